@@ -1,0 +1,64 @@
+"""The ``thermeta`` command line: one sub-command per module, imported only when used.
+
+Each command module exposes ``add_arguments(parser)`` and ``run(args) -> int`` (the exit code).
+Exit codes: 0 success, 1 runtime failure, 2 bad input or bad configuration.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import sys
+
+# name -> (module, one-line help)
+COMMANDS: dict[str, tuple[str, str]] = {
+    "forecast": ("thermeta.daemon.cmd_forecast", "forecast a threshold crossing from a CSV file"),
+    "run": ("thermeta.daemon.cmd_run", "run the service: MQTT ingest, refits, forecasts, alerts"),
+    "check-config": ("thermeta.daemon.cmd_check_config", "validate a config file and exit"),
+    "status": ("thermeta.daemon.cmd_status", "counts and health read from the store"),
+    "readings": ("thermeta.daemon.cmd_readings", "export an item's stored readings as CSV"),
+    "ack": ("thermeta.daemon.cmd_ack", "acknowledge an item's alert episode (stops reminders)"),
+    "watch": ("thermeta.daemon.cmd_watch", "live terminal dashboard beside a running service"),
+    "plot": ("thermeta.daemon.cmd_plot", "draw an item's readings and forecast to a PNG"),
+    "simulate": ("thermeta.daemon.cmd_simulate", "publish a simulated scenario over MQTT"),
+    "demo": ("thermeta.daemon.cmd_demo", "the whole product on simulated data, in one command"),
+}
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="thermeta",
+        description="Forecast when warming or cooling items will cross their temperature limits.",
+    )
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    for name, (module_name, help_text) in COMMANDS.items():
+        p = sub.add_parser(name, help=help_text, description=help_text)
+        try:
+            module = importlib.import_module(module_name)
+        except ModuleNotFoundError as exc:
+            if exc.name != module_name:
+                raise
+            p.set_defaults(_missing=name)
+            continue
+        module.add_arguments(p)
+        p.set_defaults(_run=module.run)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if args.command is None:
+        parser.print_help()
+        return 2
+    if getattr(args, "_missing", None):
+        print(f"thermeta: the '{args._missing}' command is not available in this build", file=sys.stderr)
+        return 2
+    try:
+        return int(args._run(args) or 0)
+    except KeyboardInterrupt:
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

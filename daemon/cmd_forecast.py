@@ -1,0 +1,109 @@
+"""``thermeta forecast FILE.csv --threshold X``: the offline forecast (a fixed contract)."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+
+from thermeta.daemon.errors import InputError
+
+CAUTION = (
+    "Forecasts support decisions; they are not a food-safety plan or a regulatory record. "
+    "Local codes and licensed practice decide the limits and actions."
+)
+UNIT_SIGN = {"C": "°C", "F": "°F", "K": "K"}
+
+
+def add_arguments(p: argparse.ArgumentParser) -> None:
+    p.add_argument("csv", metavar="FILE.csv", help="readings: header with time,value[,ambient]")
+    p.add_argument("--threshold", type=float, required=True, help="the limit to forecast")
+    p.add_argument("--ambient", type=float, help="known constant ambient (known mode)")
+    p.add_argument(
+        "--model", choices=["lumped", "slab", "cylinder", "sphere", "auto"], default="lumped",
+        help="lumped (Newton) or a centre probe in a slab, long cylinder or sphere",
+    )
+    p.add_argument("--unit", choices=["C", "F", "K"], default="C", help="unit of the values")
+    p.add_argument("--json", action="store_true", help="one JSON object on stdout")
+    p.add_argument("--plot", metavar="OUT.png", help="also draw readings and forecast to a PNG")
+
+
+def summary(fc, unit: str, source: str) -> str:
+    from thermeta.daemon.timefmt import human_duration, local_clock
+
+    u = UNIT_SIGN[unit]
+    d = fc.to_dict()
+    lines = [
+        f"{source}: {d['n_points']} readings, {d['model']} model, ambient {d['ambient_mode']}"
+    ]
+    if d["value_now"] is not None:
+        lines.append(f"  now {d['value_now']:.1f} {u} (last reading {local_clock(fc.t_last, True)})")
+    if not fc.ok:
+        lines.append(f"  no forecast: {fc.reason}")
+    else:
+        if d["ambient"] is not None:
+            band = ""
+            if d["ambient_lo"] is not None and d["ambient_hi"] is not None:
+                band = f" (90 %: {d['ambient_lo']:.1f} to {d['ambient_hi']:.1f})"
+            lines.append(f"  {fc.direction or 'moving'} toward an ambient of {d['ambient']:.1f} {u}{band}")
+        thr = f"{d['threshold']:g} {u}"
+        if d["eta_s"] is None:
+            lines.append(f"  does not reach {thr}: the fitted curve levels off before it")
+        elif d["eta_s"] == 0:
+            lines.append(f"  already past {thr}")
+        else:
+            lo, hi = human_duration(d["eta_lo_s"]), d["eta_hi_s"]
+            hi_text = human_duration(hi) if hi is not None else "no upper bound"
+            lines.append(
+                f"  crosses {thr} in {human_duration(d['eta_s'])} "
+                f"(90 %: {lo} to {hi_text}), at {local_clock(fc.crossing_t, True)}"
+            )
+        if d["time_constant_s"]:
+            lines.append(
+                f"  time constant {human_duration(d['time_constant_s'])}, half-cooling time "
+                f"{human_duration(d['half_cooling_s'])}, seven-eighths "
+                f"{human_duration(d['seven_eighths_cooling_s'])}"
+                + (f", Biot number {d['biot']:.2f}" if d["biot"] is not None else "")
+            )
+    for w in d["warnings"]:
+        lines.append(f"  warning: {w}")
+    lines.append(f"  {CAUTION}")
+    return "\n".join(lines)
+
+
+def run(args: argparse.Namespace) -> int:
+    from thermeta.daemon.csvio import read_series
+    from thermeta.predictors import forecast
+
+    try:
+        series = read_series(args.csv)
+        if series.t.size < 3:
+            raise InputError(f"{args.csv}: too few readings to fit ({series.t.size}; want at least 8)")
+        fc = forecast(
+            series.t,
+            series.y,
+            args.threshold,
+            model=args.model,
+            ambient=args.ambient,
+            ambient_t=series.ambient_t if args.ambient is None else None,
+            ambient_y=series.ambient_y if args.ambient is None else None,
+        )
+        if not fc.ok and fc.reason and fc.reason.startswith("too few"):
+            raise InputError(f"{args.csv}: {fc.reason}")
+    except InputError as exc:
+        print(f"thermeta forecast: {exc}", file=sys.stderr)
+        return 2
+    if args.plot:
+        try:
+            from thermeta.daemon.plotting import plot_forecast
+        except ModuleNotFoundError:
+            print("thermeta forecast: --plot is not available in this build", file=sys.stderr)
+            return 2
+        plot_forecast(series, fc, args.plot, unit=args.unit, title=str(args.csv))
+    if args.json:
+        out = fc.to_dict()
+        out["unit"] = args.unit
+        print(json.dumps(out))
+    else:
+        print(summary(fc, args.unit, str(args.csv)))
+    return 0

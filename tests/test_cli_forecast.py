@@ -1,0 +1,83 @@
+"""The offline command's contract: JSON fields, and one-line errors with exit code 2."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+
+CONTRACT_KEYS = {
+    "eta_s", "eta_lo_s", "eta_hi_s", "crossing_at", "threshold", "k_per_s", "time_constant_s",
+    "half_cooling_s", "ambient", "ambient_mode", "model", "biot", "value_now", "n_points",
+    "regime_start", "warnings",
+}
+
+
+def run_cli(*args: str) -> subprocess.CompletedProcess:
+    return subprocess.run(
+        [sys.executable, "-m", "thermeta.daemon.cli", *args], capture_output=True, text=True, timeout=120
+    )
+
+
+def write_warming_csv(path, ambient_col: bool = False) -> None:
+    rng = np.random.default_rng(7)
+    t = np.arange(0, 2 * 3600, 30.0)
+    y = 27 + (2 - 27) * np.exp(-t / 18000) + rng.normal(0, 0.05, t.size)
+    with open(path, "w") as f:
+        f.write("time,value" + (",ambient" if ambient_col else "") + "\n")
+        for a, b in zip(t, y):
+            f.write(f"{1764600000 + a:.0f},{b:.1f}" + (",27.0" if ambient_col else "") + "\n")
+
+
+def test_json_has_contract_keys(tmp_path):
+    """--json prints one object with every key the contract names."""
+    p = tmp_path / "load.csv"
+    write_warming_csv(p)
+    r = run_cli("forecast", str(p), "--threshold", "12", "--ambient", "27", "--json")
+    assert r.returncode == 0, r.stderr
+    out = json.loads(r.stdout)
+    assert CONTRACT_KEYS <= out.keys()
+    assert out["ambient_mode"] == "known"
+    assert out["n_points"] == 240
+
+
+def test_ambient_column_selects_measured(tmp_path):
+    """An ambient column selects the measured mode."""
+    p = tmp_path / "load.csv"
+    write_warming_csv(p, ambient_col=True)
+    out = json.loads(run_cli("forecast", str(p), "--threshold", "12", "--json").stdout)
+    assert out["ambient_mode"] == "measured"
+
+
+@pytest.mark.parametrize(
+    "content, fragment",
+    [
+        (b"time,value\n", "no readings"),
+        (b"when,value\n1,2\n", "missing column 'time'"),
+        (b"time,value\n1764600000,abc\n", ":2: value: not a number"),
+        (b"time,value\n1764600000,1\nyesterday,2\n", ":3: time: unparseable time"),
+        (b"time,value\n2026-12-01T10:00:00,1\n", "has no zone"),
+        (b"\x89PNG\r\n\x1a\n\x00\x00\x00\rIHDR", "binary data"),
+        (b"time,value\n1764600000,1\n1764600030,2\n", "too few readings"),
+        (b"", "empty file"),
+    ],
+)
+def test_bad_input_one_line_exit_2(tmp_path, content, fragment):
+    """Each kind of bad input gives exit 2 and one stderr line naming the file and the problem."""
+    p = tmp_path / "bad.csv"
+    p.write_bytes(content)
+    r = run_cli("forecast", str(p), "--threshold", "8")
+    assert r.returncode == 2
+    lines = r.stderr.strip().splitlines()
+    assert len(lines) == 1, r.stderr
+    assert str(p) in lines[0] and fragment in lines[0]
+    assert "Traceback" not in r.stderr
+
+
+def test_missing_file(tmp_path):
+    """A missing file is named, exit 2."""
+    r = run_cli("forecast", str(tmp_path / "nope.csv"), "--threshold", "8")
+    assert r.returncode == 2 and "no such file" in r.stderr
