@@ -1,0 +1,160 @@
+"""MQTT topic filters and the topic -> item mapping (exact topics, ``+`` and ``#`` wildcards, and
+name templates such as ``reefer-{2}`` that take topic level 2, counting from 1)."""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass, replace
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from thermeta.daemon.config import ItemConfig
+
+PLACEHOLDER = re.compile(r"\{(\d+)\}")
+
+
+def is_wildcard(topic_filter: str) -> bool:
+    return any(lv in ("+", "#") for lv in topic_filter.split("/"))
+
+
+def check_filter(topic_filter: str) -> str | None:
+    """Why ``topic_filter`` is not a valid MQTT filter (None when it is)."""
+    if not topic_filter:
+        return "must not be empty"
+    if "\x00" in topic_filter:
+        return "must not contain NUL"
+    if len(topic_filter.encode()) > 65535:
+        return "is too long"
+    levels = topic_filter.split("/")
+    for i, lv in enumerate(levels):
+        if "#" in lv and (lv != "#" or i != len(levels) - 1):
+            return f"'#' must be a whole level and the last one: {topic_filter}"
+        if "+" in lv and lv != "+":
+            return f"'+' must be a whole level: {topic_filter}"
+    if topic_filter.startswith("$"):
+        return "topics starting with '$' are the broker's own"
+    return None
+
+
+def placeholders(template: str) -> set[int] | None:
+    """The level numbers used by ``{N}`` in ``template``; None if a brace is malformed."""
+    stripped = PLACEHOLDER.sub("", template)
+    if "{" in stripped or "}" in stripped:
+        return None
+    used = {int(n) for n in PLACEHOLDER.findall(template)}
+    return None if 0 in used else used
+
+
+def match(topic_filter: str, topic: str) -> bool:
+    """Does ``topic`` match the MQTT ``topic_filter``?"""
+    f = topic_filter.split("/")
+    t = topic.split("/")
+    for i, lv in enumerate(f):
+        if lv == "#":
+            return len(t) >= i  # '#' also matches the parent level
+        if i >= len(t) or (lv != "+" and lv != t[i]):
+            return False
+    return len(t) == len(f)
+
+
+def render(template: str, topic: str) -> str | None:
+    """Fill ``{N}`` from level N (1-based) of ``topic``; None if a level is missing or empty."""
+    levels = topic.split("/")
+    out = []
+    pos = 0
+    for m in PLACEHOLDER.finditer(template):
+        n = int(m.group(1))
+        if n > len(levels) or not levels[n - 1]:
+            return None
+        out.append(template[pos:m.start()])
+        out.append(levels[n - 1])
+        pos = m.end()
+    out.append(template[pos:])
+    return "".join(out)
+
+
+def render_filter(ambient_filter: str, load_topic: str) -> str:
+    """The concrete ambient topic of one item: ``+`` levels taken from the load topic."""
+    a = ambient_filter.split("/")
+    t = load_topic.split("/")
+    return "/".join(t[i] if lv == "+" and i < len(t) else lv for i, lv in enumerate(a))
+
+
+@dataclass(frozen=True)
+class Route:
+    """Where a message goes: the concrete item (its config with the resolved name) and whether the
+    topic carries the item's own readings ("load") or its ambient probe ("ambient")."""
+
+    item: ItemConfig
+    kind: str  # "load" | "ambient"
+
+    @property
+    def store_name(self) -> str:
+        from thermeta.daemon.config import AMBIENT_SUFFIX
+
+        return self.item.name + (AMBIENT_SUFFIX if self.kind == "ambient" else "")
+
+
+class Router:
+    """Resolves topics to routes; exact topics win, then patterns in config order.  Results are
+    cached (a site has as many topics as probes)."""
+
+    def __init__(self, items: tuple[ItemConfig, ...] | list[ItemConfig]):
+        self.exact: dict[str, Route] = {}
+        self.patterns: list[tuple[str, ItemConfig, str]] = []
+        self.by_name: dict[str, ItemConfig] = {}
+        for it in items:
+            if it.is_pattern:
+                self.patterns.append((it.topic, it, "load"))
+                if it.ambient_topic:
+                    self.patterns.append((it.ambient_topic, it, "ambient"))
+            else:
+                self.exact[it.topic] = Route(it, "load")
+                self.by_name[it.name] = it
+                if it.ambient_topic:
+                    self.exact.setdefault(it.ambient_topic, Route(it, "ambient"))
+        self._cache: dict[str, Route | None] = {}
+
+    def filters(self) -> list[str]:
+        """Topic filters to subscribe to."""
+        out = list(self.exact)
+        out += [f for f, _, _ in self.patterns if f not in out]
+        return out
+
+    def resolve(self, topic: str) -> Route | None:
+        if topic in self.exact:
+            return self.exact[topic]
+        if topic in self._cache:
+            return self._cache[topic]
+        route = None
+        for flt, it, kind in self.patterns:
+            if match(flt, topic):
+                name = render(it.name, topic)
+                if name is None:
+                    continue
+                concrete = self.by_name.get(name)
+                if concrete is None:
+                    load_topic = topic if kind == "load" else None
+                    concrete = replace(
+                        it, name=name,
+                        topic=load_topic or it.topic,
+                        ambient_topic=(render_filter(it.ambient_topic, topic)
+                                       if it.ambient_topic else None),
+                    )
+                    if kind == "load":
+                        self.by_name[name] = concrete
+                route = Route(concrete, kind)
+                break
+        if len(self._cache) < 1_000_000:
+            self._cache[topic] = route
+        return route
+
+    def item_for(self, name: str, topic: str | None = None) -> ItemConfig | None:
+        """The concrete config of a stored item (re-resolved from its topic after a restart)."""
+        if name in self.by_name:
+            return self.by_name[name]
+        if topic:
+            route = self.resolve(topic)
+            if route is not None and route.kind == "load" and route.item.name == name:
+                return route.item
+        return None

@@ -1,0 +1,276 @@
+"""Every query thermeta makes, on SQLite (default) or PostgreSQL (psycopg), through SQLAlchemy 2.x.
+
+Durability: the daemon acknowledges a reading to the broker only after the transaction holding it
+commits, so SQLite runs with ``journal_mode=WAL`` and ``synchronous=FULL`` (NORMAL may roll back a
+committed transaction on power loss); batching keeps FULL cheap.  Writers take SQLite's lock up
+front (``BEGIN IMMEDIATE``) so they wait for the busy timeout instead of failing half-way.
+"""
+
+from __future__ import annotations
+
+import importlib
+import json
+import time
+from collections.abc import Iterable, Sequence
+from typing import Any
+
+from sqlalchemy import Connection, Engine, create_engine, delete, event, func, insert, select, update
+from sqlalchemy.engine import make_url
+from sqlalchemy.exc import IntegrityError, SQLAlchemyError
+
+from thermeta.storage import schema
+from thermeta.storage.schema import dead_letters, forecasts, items, meta, readings
+
+BUSY_TIMEOUT_MS = 15000
+PLUGIN_MODULES = ("thermeta.storage.alerts",)  # other parts' tables, joined to schema.metadata
+
+
+class StoreError(Exception):
+    """The store could not be opened, created or written; the message is safe to show."""
+
+
+def safe_url(url: str) -> str:
+    """The URL with any password masked, for logs and messages."""
+    try:
+        return make_url(url).render_as_string(hide_password=True)
+    except Exception:  # noqa: BLE001 - an unparseable URL is shown without its tail
+        return url.split("@")[-1]
+
+
+def _sqlite_pragmas(engine: Engine) -> None:
+    @event.listens_for(engine, "connect")
+    def _on_connect(dbapi_conn: Any, _record: Any) -> None:
+        # Driver-level autocommit: SQLAlchemy's "begin" event below emits BEGIN itself.
+        dbapi_conn.isolation_level = None
+        cur = dbapi_conn.cursor()
+        cur.execute("PRAGMA journal_mode=WAL")
+        cur.execute("PRAGMA synchronous=FULL")
+        cur.execute(f"PRAGMA busy_timeout={BUSY_TIMEOUT_MS}")
+        cur.close()
+
+    @event.listens_for(engine, "begin")
+    def _on_begin(conn: Connection) -> None:
+        immediate = conn.get_execution_options().get("sqlite_immediate", False)
+        conn.exec_driver_sql("BEGIN IMMEDIATE" if immediate else "BEGIN")
+
+
+class Store:
+    """The store behind one SQLAlchemy URL."""
+
+    def __init__(self, url: str, *, echo: bool = False):
+        self.url = url
+        try:
+            u = make_url(url)
+        except Exception as exc:  # noqa: BLE001 - SQLAlchemy raises ArgumentError and others
+            raise StoreError(f"not a database URL: {safe_url(url)!r} ({exc})") from None
+        self.dialect = u.get_backend_name()
+        kwargs: dict[str, Any] = {"echo": echo, "future": True}
+        if self.dialect == "sqlite":
+            kwargs["connect_args"] = {"check_same_thread": False, "timeout": BUSY_TIMEOUT_MS / 1000}
+        else:
+            kwargs["pool_pre_ping"] = True
+        try:
+            self.engine = create_engine(url, **kwargs)
+        except Exception as exc:  # noqa: BLE001 - missing driver, bad options
+            raise StoreError(f"cannot open store {safe_url(url)}: {exc}") from None
+        if self.dialect == "sqlite":
+            _sqlite_pragmas(self.engine)
+        self._item_ids: dict[str, int] = {}
+
+    # -- life cycle ---------------------------------------------------------------------------
+    def create_all(self) -> None:
+        """Create every table (ours and any plug-in module's) that does not exist yet."""
+        for name in PLUGIN_MODULES:
+            try:
+                importlib.import_module(name)
+            except ModuleNotFoundError as exc:
+                if exc.name != name:
+                    raise
+        try:
+            schema.metadata.create_all(self.engine)
+        except SQLAlchemyError as exc:
+            raise StoreError(f"cannot create tables in {safe_url(self.url)}: {exc.__class__.__name__}: "
+                             f"{str(exc).splitlines()[0]}") from None
+
+    def close(self) -> None:
+        self.engine.dispose()
+
+    def _write(self) -> Connection:
+        """A connection whose transactions take the write lock up front (SQLite)."""
+        return self.engine.connect().execution_options(sqlite_immediate=True)
+
+    def _insert_ignore(self, table: Any) -> Any:
+        if self.dialect == "sqlite":
+            from sqlalchemy.dialects.sqlite import insert as ins
+        elif self.dialect == "postgresql":
+            from sqlalchemy.dialects.postgresql import insert as ins
+        else:
+            return None
+        return ins(table).on_conflict_do_nothing()
+
+    # -- items --------------------------------------------------------------------------------
+    def ensure_item(self, name: str, *, kind: str = "load", unit: str = "C", topic: str | None = None,
+                    now: float | None = None) -> int:
+        """The id of item ``name``, creating it if new."""
+        if name in self._item_ids:
+            return self._item_ids[name]
+        row = {"name": name, "kind": kind, "unit": unit, "topic": topic,
+               "created_at": time.time() if now is None else now}
+        with self._write() as conn, conn.begin():
+            found = conn.execute(select(items.c.id).where(items.c.name == name)).scalar()
+            if found is None:
+                found = conn.execute(insert(items).values(**row).returning(items.c.id)).scalar_one()
+            else:
+                conn.execute(update(items).where(items.c.id == found).values(unit=unit, kind=kind))
+        self._item_ids[name] = int(found)
+        return int(found)
+
+    def item_id(self, name: str) -> int | None:
+        if name in self._item_ids:
+            return self._item_ids[name]
+        with self.engine.connect() as conn:
+            found = conn.execute(select(items.c.id).where(items.c.name == name)).scalar()
+        if found is not None:
+            self._item_ids[name] = int(found)
+        return None if found is None else int(found)
+
+    def list_items(self, kind: str | None = "load") -> list[dict[str, Any]]:
+        q = select(items).order_by(items.c.name)
+        if kind is not None:
+            q = q.where(items.c.kind == kind)
+        with self.engine.connect() as conn:
+            return [dict(r._mapping) for r in conn.execute(q)]
+
+    def last_reading_times(self) -> dict[str, float]:
+        """Newest reading time per item name (uses the (item_id, ts) key)."""
+        q = (select(items.c.name, func.max(readings.c.ts))
+             .join(readings, readings.c.item_id == items.c.id).group_by(items.c.name))
+        with self.engine.connect() as conn:
+            return {name: float(ts) for name, ts in conn.execute(q) if ts is not None}
+
+    # -- the ingest batch ---------------------------------------------------------------------
+    def write_batch(self, reading_rows: Sequence[dict[str, Any]],
+                    dead_rows: Sequence[dict[str, Any]] = ()) -> int:
+        """Insert readings (duplicates of (item_id, ts) ignored) and dead letters in ONE transaction.
+
+        reading_rows: dicts with item_id, ts, value_c, flags, received_at.
+        dead_rows: dicts with received_at, topic, item, reason, payload.
+        Returns the number of readings newly stored where the driver reports it, else -1.
+        Raises StoreError; nothing of the batch is stored then.
+        """
+        stored = 0
+        try:
+            with self._write() as conn, conn.begin():
+                if reading_rows:
+                    stmt = self._insert_ignore(readings)
+                    if stmt is not None:
+                        res = conn.execute(stmt, list(reading_rows))
+                        stored = res.rowcount if res.rowcount is not None else -1
+                    else:
+                        stored = self._insert_one_by_one(conn, reading_rows)
+                if dead_rows:
+                    conn.execute(insert(dead_letters), list(dead_rows))
+        except SQLAlchemyError as exc:
+            raise StoreError(f"write failed: {exc.__class__.__name__}: {str(exc).splitlines()[0]}") from exc
+        return stored
+
+    @staticmethod
+    def _insert_one_by_one(conn: Connection, rows: Iterable[dict[str, Any]]) -> int:
+        n = 0
+        for row in rows:
+            sp = conn.begin_nested()
+            try:
+                conn.execute(insert(readings).values(**row))
+                sp.commit()
+                n += 1
+            except IntegrityError:
+                sp.rollback()
+        return n
+
+    # -- reads --------------------------------------------------------------------------------
+    def recent_readings(self, item: str | int, since_ts: float | None = None,
+                        until_ts: float | None = None) -> list[tuple[float, float]]:
+        """(ts, value_degC) of one item, oldest first."""
+        item_id = item if isinstance(item, int) else self.item_id(item)
+        if item_id is None:
+            return []
+        q = select(readings.c.ts, readings.c.value_c).where(readings.c.item_id == item_id)
+        if since_ts is not None:
+            q = q.where(readings.c.ts >= since_ts)
+        if until_ts is not None:
+            q = q.where(readings.c.ts <= until_ts)
+        with self.engine.connect() as conn:
+            return [(float(t), float(v)) for t, v in conn.execute(q.order_by(readings.c.ts))]
+
+    def counts(self) -> dict[str, int]:
+        with self.engine.connect() as conn:
+            return {
+                "items": conn.execute(select(func.count()).select_from(items)
+                                      .where(items.c.kind == "load")).scalar_one(),
+                "readings": conn.execute(select(func.count()).select_from(readings)).scalar_one(),
+                "dead_letters": conn.execute(select(func.count()).select_from(dead_letters)).scalar_one(),
+            }
+
+    def recent_dead_letters(self, limit: int = 20) -> list[dict[str, Any]]:
+        q = select(dead_letters).order_by(dead_letters.c.id.desc()).limit(limit)
+        with self.engine.connect() as conn:
+            return [dict(r._mapping) for r in conn.execute(q)]
+
+    # -- forecasts ----------------------------------------------------------------------------
+    def save_forecast(self, item_id: int, made_at: float, state: str, body: dict[str, Any],
+                      last_reading_at: float | None) -> None:
+        eta = body.get("eta_s")
+        with self._write() as conn, conn.begin():
+            conn.execute(insert(forecasts).values(item_id=item_id, made_at=made_at, state=state,
+                                                  eta_s=eta, body=json.dumps(body)))
+            conn.execute(update(items).where(items.c.id == item_id)
+                         .values(state=state, last_reading_at=last_reading_at))
+
+    def latest_forecasts(self) -> list[dict[str, Any]]:
+        """The current forecast of each item: dicts with item, state, made_at, forecast (the JSON)."""
+        newest = select(func.max(forecasts.c.id)).group_by(forecasts.c.item_id).scalar_subquery()
+        q = (select(items.c.name, forecasts.c.state, forecasts.c.made_at, forecasts.c.body)
+             .join(items, items.c.id == forecasts.c.item_id)
+             .where(forecasts.c.id.in_(newest)).order_by(items.c.name))
+        with self.engine.connect() as conn:
+            return [{"item": n, "state": s, "made_at": float(m), "forecast": json.loads(b)}
+                    for n, s, m, b in conn.execute(q)]
+
+    def forecast_history(self, item: str, limit: int = 100) -> list[dict[str, Any]]:
+        item_id = self.item_id(item)
+        if item_id is None:
+            return []
+        q = (select(forecasts.c.made_at, forecasts.c.state, forecasts.c.body)
+             .where(forecasts.c.item_id == item_id).order_by(forecasts.c.id.desc()).limit(limit))
+        with self.engine.connect() as conn:
+            return [{"made_at": float(m), "state": s, "forecast": json.loads(b)}
+                    for m, s, b in conn.execute(q)]
+
+    # -- meta ---------------------------------------------------------------------------------
+    def set_meta(self, key: str, value: Any) -> None:
+        text = json.dumps(value)
+        with self._write() as conn, conn.begin():
+            done = conn.execute(update(meta).where(meta.c.key == key).values(value=text)).rowcount
+            if not done:
+                conn.execute(insert(meta).values(key=key, value=text))
+
+    def get_meta(self, key: str, default: Any = None) -> Any:
+        with self.engine.connect() as conn:
+            text = conn.execute(select(meta.c.value).where(meta.c.key == key)).scalar()
+        return default if text is None else json.loads(text)
+
+    def last_refit_at(self) -> float | None:
+        value = self.get_meta("last_refit_at")
+        return None if value is None else float(value)
+
+    # -- retention ----------------------------------------------------------------------------
+    def prune(self, before_ts: float) -> dict[str, int]:
+        """Delete readings and dead letters older than ``before_ts``, and forecast history older
+        than it except each item's newest forecast."""
+        newest = select(func.max(forecasts.c.id)).group_by(forecasts.c.item_id).scalar_subquery()
+        with self._write() as conn, conn.begin():
+            r = conn.execute(delete(readings).where(readings.c.ts < before_ts)).rowcount
+            f = conn.execute(delete(forecasts).where(forecasts.c.made_at < before_ts)
+                             .where(forecasts.c.id.not_in(newest))).rowcount
+            d = conn.execute(delete(dead_letters).where(dead_letters.c.received_at < before_ts)).rowcount
+        return {"readings": r, "forecasts": f, "dead_letters": d}
