@@ -1,7 +1,11 @@
-"""Top-level forecast: clean the readings, find the current regime, fit, and predict the crossing.
+"""Top-level forecast: clean the readings, find the current regime, fit, predict the crossing.
 
-PROVISIONAL: a plain lumped fit so the rest of the service can be built against the contract.
-The forecast-core work replaces the internals; the signature and the Forecast fields stay.
+    readings -> cleaning (order, duplicates, Hampel) -> regime (data since the last change)
+             -> model (lumped: fitted / known / measured ambient; conduction: slab, cylinder,
+                sphere; auto: the lower AICc) -> robust refit -> Forecast
+
+Never raises on bad data: a failed fit is a Forecast with ok=False and a reason.  Bad arguments
+(an unknown model, mismatched lengths) raise ValueError.
 """
 
 from __future__ import annotations
@@ -10,11 +14,16 @@ import math
 
 import numpy as np
 from numpy.typing import ArrayLike
-from scipy.optimize import curve_fit
 
+from thermeta.predictors.cleaning import clean, residual_outliers
+from thermeta.predictors.lumped import LumpedFit, fit_lumped
+from thermeta.predictors.measured import fit_air, fit_measured
+from thermeta.predictors.regime import find_regime
 from thermeta.predictors.result import Forecast
 
 MODELS = ("lumped", "slab", "cylinder", "sphere", "auto")
+CONDUCTION = ("slab", "cylinder", "sphere")
+AMBIENT_UNCERTAINTY = 2.5  # a "known" ambient is typically known to a couple of degrees
 
 
 def forecast(
@@ -28,70 +37,219 @@ def forecast(
     ambient_y: ArrayLike | None = None,
     window_s: float | None = None,
     min_points: int = 8,
+    ambient_bounds: tuple[float, float] | None = None,
+    ambient_uncertainty: float = AMBIENT_UNCERTAINTY,
+    detect_regimes: bool = True,
+    limit: str | None = None,
 ) -> Forecast:
     """Forecast when the series ``y(t)`` crosses ``threshold``.
 
     t: epoch seconds (any order, duplicates allowed); y: temperatures in one unit.
-    ambient: a known constant ambient (known mode); ambient_t/ambient_y: an ambient probe series
-    (measured mode); neither: the ambient is fitted.  window_s caps the history used.
+    ambient: a known constant ambient (known mode), trusted to about +-ambient_uncertainty
+    (a sd, folded into the intervals; 0 = exact); ambient_t/ambient_y: an ambient probe series
+    (measured mode); neither: the ambient is fitted within ambient_bounds (default: a wide range
+    around the readings).  window_s caps the history used.  limit: "upper" (only an upward
+    crossing counts; at or above is past), "lower", or None (either way; past means the curve
+    crossed within the data).
     """
     if model not in MODELS:
         raise ValueError(f"model must be one of {', '.join(MODELS)}, got {model!r}")
-    mode = "measured" if ambient_y is not None else ("known" if ambient is not None else "fitted")
-    ta = np.asarray(t, dtype=float)
-    ya = np.asarray(y, dtype=float)
+    if not math.isfinite(float(threshold)):
+        raise ValueError(f"threshold must be a finite number, got {threshold!r}")
+    if limit not in (None, "upper", "lower"):
+        raise ValueError(f"limit must be 'upper', 'lower' or None, got {limit!r}")
+    if ambient_uncertainty < 0:
+        raise ValueError("ambient_uncertainty must be >= 0")
+    ta, ya = np.asarray(t, dtype=float).ravel(), np.asarray(y, dtype=float).ravel()
     if ta.shape != ya.shape:
-        raise ValueError("t and y must have the same length")
-    keep = np.isfinite(ta) & np.isfinite(ya)
-    ta, ya = ta[keep], ya[keep]
-    order = np.argsort(ta, kind="stable")
-    ta, ya = ta[order], ya[order]
-    ta, idx = np.unique(ta, return_index=True)
-    ya = ya[idx]
-    if window_s is not None and ta.size:
-        sel = ta >= ta[-1] - window_s
-        ta, ya = ta[sel], ya[sel]
-    fc = Forecast(threshold=float(threshold), model=model, ambient_mode=mode, n_points=int(ta.size))
-    if ta.size == 0:
-        fc.ok, fc.reason = False, "no readings"
-        return fc
-    fc.t_last, fc.value_now = float(ta[-1]), float(ya[-1])
-    fc.regime_start = float(ta[0])
-    if ta.size < min_points:
-        fc.ok, fc.reason = False, f"too few readings to fit ({ta.size} < {min_points})"
-        return fc
-    x = ta - ta[-1]
-    if mode == "measured":
-        ta_amb = float(np.median(np.asarray(ambient_y, dtype=float)[-20:]))
-    else:
-        ta_amb = ambient
-
-    def f(x, t_now, k, amb):
-        return amb + (t_now - amb) * np.exp(-k * x)
-
-    span = max(x[-1] - x[0], 1.0)
+        raise ValueError(f"t and y must have the same length ({ta.size} != {ya.size})")
+    measured = ambient_y is not None and ambient_t is not None and np.asarray(ambient_y).size > 0
+    if ambient is not None and not math.isfinite(float(ambient)):
+        ambient = None
+    mode = "measured" if measured else ("known" if ambient is not None else "fitted")
+    fc = Forecast(threshold=float(threshold), model=model, ambient_mode=mode, n_points=0)
     try:
-        if ta_amb is None:
-            p0 = [ya[-1], 1.0 / span, ya[-1] + 2 * (ya[-1] - ya[0])]
-            popt, _ = curve_fit(f, x, ya, p0=p0, bounds=([-np.inf, 1e-9, -100], [np.inf, 1.0, 200]))
-            t_now, k, amb = popt
-        else:
-            popt, _ = curve_fit(lambda x, a, k: f(x, a, k, ta_amb), x, ya, p0=[ya[-1], 1.0 / span],
-                                bounds=([-np.inf, 1e-9], [np.inf, 1.0]))
-            (t_now, k), amb = popt, ta_amb
-    except (RuntimeError, ValueError) as exc:
+        return _forecast(fc, ta, ya, float(threshold), model, ambient, ambient_t, ambient_y,
+                         window_s, min_points, ambient_bounds, ambient_uncertainty, detect_regimes, limit)
+    except (ValueError, FloatingPointError, ArithmeticError, np.linalg.LinAlgError) as exc:
         fc.ok, fc.reason = False, f"fit failed: {exc}"
         return fc
-    fc.k_per_s, fc.ambient = float(k), float(amb)
-    fc.direction = "rising" if amb > t_now else "falling"
+
+
+def _forecast(fc, t, y, thr, model, ambient, ambient_t, ambient_y, window_s, min_points, bounds,
+              amb_sd, detect, limit) -> Forecast:
+    cl = clean(t, y)
+    tt, yy = cl.t, cl.y
+    if window_s is not None and tt.size:
+        sel = tt >= tt[-1] - window_s
+        tt, yy = tt[sel], yy[sel]
+    fc.n_outliers = cl.n_outliers
+    if cl.n_duplicates:
+        fc.warnings.append(f"{cl.n_duplicates} readings shared a timestamp; merged by their median")
+    if cl.n_nonfinite:
+        fc.warnings.append(f"{cl.n_nonfinite} readings were not finite numbers; ignored")
+    if tt.size == 0:
+        fc.ok, fc.reason = False, "no readings"
+        return fc
+    fc.t_last, fc.value_now = float(tt[-1]), float(yy[-1])
+    fc.n_points = int(tt.size)
+    fc.regime_start = float(tt[0])
+    if tt.size < min_points:
+        fc.ok, fc.reason = False, f"too few readings to fit ({tt.size} < {min_points})"
+        return fc
+    air = None
+    if fc.ambient_mode == "measured":
+        air = clean(np.asarray(ambient_t, float), np.asarray(ambient_y, float))
+        if air.t.size < 4:
+            fc.ok, fc.reason = False, f"too few ambient readings ({air.t.size})"
+            return fc
+    # the measured air explains changes of the surroundings, so only the other modes cut regimes
+    if detect and fc.ambient_mode != "measured":
+        reg = find_regime(tt, yy, cl.noise_sd, min_points=max(12, min_points))
+        if reg.note:
+            fc.warnings.append(reg.note)
+        if reg.start_index > 0:
+            fc.warnings.append(
+                f"the surroundings changed {reg.n_changes} time(s); fitted the newest "
+                f"{tt.size - reg.start_index} readings only")
+            tt, yy = tt[reg.start_index:], yy[reg.start_index:]
+            fc.regime_start = float(tt[0])
+    if model in CONDUCTION:
+        return _conduction(fc, tt, yy, thr, model, ambient, air)
+    if model == "auto":
+        return _auto(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit)
+    return _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit)
+
+
+def _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit=None) -> Forecast:
+    fc.model = "lumped" if fc.model != "auto" else fc.model
     fc.lag_factor_j = 1.0
-    # T(x) = Ta + (T_now - Ta) e^(-k x) = thr  =>  x = -ln((thr - Ta)/(T_now - Ta)) / k
-    ratio = (threshold - amb) / (t_now - amb) if t_now != amb else math.nan
-    if (fc.direction == "rising" and fc.value_now >= threshold) or (
-        fc.direction == "falling" and fc.value_now <= threshold
-    ):
-        fc.eta_s = 0.0
-    elif 0 < ratio < 1:
-        fc.eta_s = max(0.0, -math.log(ratio) / k)
-    fc.interval_method = None
+    if air is not None:
+        return _measured(fc, tt, yy, thr, air, limit)
+    kw = dict(ambient=ambient, ambient_sd=amb_sd if ambient is not None else 0.0, bounds=bounds,
+              noise_sd=cl.noise_sd, limit=limit)
+    fit = fit_lumped(tt, yy, thr, intervals=False, **kw)
+    if fit.ok:
+        # robust refit: drop what the first fit calls far off (beyond the Hampel pre-filter)
+        out = residual_outliers(fit.residuals, 4.0, floor=max(cl.quantum, cl.noise_sd))
+        if 0 < out.sum() <= max(1, int(0.1 * tt.size)):
+            tt, yy = tt[~out], yy[~out]
+            fc.n_outliers += int(out.sum())
+    fit = fit_lumped(tt, yy, thr, **kw)
+    if not fit.ok:
+        fc.ok, fc.reason = False, fit.reason
+        return fc
+    _fill_lumped(fc, fit, ambient, amb_sd)
     return fc
+
+
+def _fill_lumped(fc: Forecast, fit: LumpedFit, ambient, amb_sd) -> None:
+    fc.k_per_s, fc.k_lo_per_s, fc.k_hi_per_s = fit.k_per_s, fit.k_lo, fit.k_hi
+    fc.ambient, fc.ambient_lo, fc.ambient_hi = fit.ambient, fit.ambient_lo, fit.ambient_hi
+    fc.eta_s, fc.eta_lo_s, fc.eta_hi_s = fit.eta_s, fit.eta_lo_s, fit.eta_hi_s
+    fc.direction = fit.direction
+    fc.rmse = fit.sigma
+    fc.interval_method = "profile likelihood"
+    fc.params = {"t_first": fit.t_first, "amplitude": fit.amplitude, "ambient": fit.ambient,
+                 "k_per_s": fit.k_per_s, "value_fit_now": fit.value_fit_now}
+    if ambient is not None and amb_sd > 0:
+        fc.warnings.append(
+            f"the given ambient {ambient:g} is taken as uncertain by about {amb_sd:g} (1 sd); "
+            "the intervals include that")
+    if fc.ambient_mode == "fitted" and fc.ambient_lo is not None and fc.ambient_hi is not None:
+        if fc.ambient_hi - fc.ambient_lo > max(10.0, 2 * abs(fc.ambient - fc.value_now)):
+            fc.warnings.append("the ambient is poorly determined by the readings so far; "
+                               "give it (--ambient) or measure it for a firmer forecast")
+    if fc.eta_s is None:
+        fc.warnings.append("the fitted curve levels off before the threshold")
+
+
+def _measured(fc, tt, yy, thr, air, limit=None) -> Forecast:
+    at, ay = air.t, air.y
+    reg = find_regime(at, ay, air.noise_sd)
+    if reg.start_index > 0:
+        fc.warnings.append("the ambient changed; its forecast uses the readings since")
+    a_fit = fit_air(at[reg.start_index:], ay[reg.start_index:], air.noise_sd)
+    fit = fit_measured(tt, yy, at, ay, thr, air_fit=a_fit, limit=limit)
+    if not fit.ok:
+        fc.ok, fc.reason = False, fit.reason
+        return fc
+    out = residual_outliers(fit.residuals, 4.0, floor=max(air.quantum, 1e-9))
+    if 0 < out.sum() <= max(1, int(0.1 * tt.size)):
+        fc.n_outliers += int(out.sum())
+        fit = fit_measured(tt[~out], yy[~out], at, ay, thr, air_fit=a_fit, limit=limit)
+    fc.k_per_s, fc.k_lo_per_s, fc.k_hi_per_s = fit.k_per_s, fit.k_lo, fit.k_hi
+    if a_fit.ok:
+        fc.ambient, fc.ambient_lo, fc.ambient_hi = a_fit.ambient, a_fit.ambient_lo, a_fit.ambient_hi
+    else:
+        fc.warnings.append(f"the ambient series could not be fitted ({a_fit.reason})")
+    fc.eta_s, fc.eta_lo_s, fc.eta_hi_s = fit.eta_s, fit.eta_lo_s, fit.eta_hi_s
+    fc.direction = fit.direction
+    fc.rmse = fit.sigma
+    fc.interval_method = "delta method (log scale) on the load and ambient fits"
+    fc.params = {"T0": fit.T0, "t_first": float(tt[0]), "k_per_s": fit.k_per_s,
+                 "value_fit_now": fit.value_fit_now}
+    if a_fit.ok:
+        fc.params.update(air_ambient=a_fit.ambient, air_k_per_s=a_fit.k_per_s,
+                         air_value_now=a_fit.value_fit_now)
+    fc.warnings.append("ambient measured; its asymptote is fitted from the ambient readings")
+    if fc.eta_s is None:
+        fc.warnings.append("the forecast curve levels off before the threshold")
+    return fc
+
+
+def _conduction(fc, tt, yy, thr, shape, ambient, air) -> Forecast:
+    try:
+        from thermeta.predictors import conduction
+    except ImportError:
+        fc.ok, fc.reason = False, "conduction model not available"
+        return fc
+    kw = {}
+    if air is not None:
+        kw = dict(ambient_t=air.t, ambient_y=air.y)
+    elif ambient is not None:
+        kw = dict(ambient=float(ambient))
+    fit = conduction.fit_conduction(tt, yy, shape, **kw)
+    fc.model = shape
+    if not fit.ok:
+        fc.ok, fc.reason = False, fit.reason
+        return fc
+    eta, lo, hi = fit.time_to_threshold(thr, t_now=float(tt[-1]))
+    fc.eta_s, fc.eta_lo_s, fc.eta_hi_s = eta, lo, hi
+    fc.k_per_s, fc.k_lo_per_s, fc.k_hi_per_s = fit.k_per_s, fit.k_lo, fit.k_hi
+    fc.ambient, fc.ambient_lo, fc.ambient_hi = fit.Ta, fit.ambient_lo, fit.ambient_hi
+    fc.biot, fc.lag_factor_j = fit.biot, fit.lag_factor_j
+    fc.rmse = fit.rmse
+    fc.interval_method = fit.interval_method
+    now = fit.value_at_last
+    fc.direction = "rising" if fit.Ta > now else "falling"
+    fc.params = {"biot": fit.biot, "a_per_s": fit.a_per_s, "Ti": fit.Ti, "t0_s": fit.t0_s}
+    fc.params["aicc"] = fit.aicc
+    return fc
+
+
+def aicc(rss: float, n: int, p: int) -> float:
+    """AICc = n ln(RSS/n) + 2p + 2p(p+1)/(n-p-1)."""
+    if n - p - 1 <= 0 or rss <= 0:
+        return math.inf
+    return n * math.log(rss / n) + 2 * p + 2 * p * (p + 1) / (n - p - 1)
+
+
+def _auto(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit) -> Forecast:
+    """The lumped model, unless a core-probe model has a clearly lower AICc."""
+    import copy
+
+    base = copy.deepcopy(fc)
+    lumped = _lumped(copy.deepcopy(fc), tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit)
+    lumped.model = "lumped"
+    if not lumped.ok or lumped.rmse is None:
+        return lumped
+    p_l = 3 if (ambient is None and air is None) else 2
+    best, best_ic = lumped, aicc(lumped.rmse**2 * max(tt.size - p_l, 1), tt.size, p_l)
+    for shape in CONDUCTION:
+        c = _conduction(copy.deepcopy(base), tt, yy, thr, shape, ambient, air)
+        ic = c.params.get("aicc", math.inf) if c.ok else math.inf
+        if ic < best_ic - 2.0:
+            best, best_ic = c, ic
+    best.warnings.append(f"model chosen by AICc: {best.model}")
+    return best

@@ -113,9 +113,8 @@ def lumped_curve(x_s: np.ndarray, T0: float, ambient: float, k_per_s: float) -> 
 
 
 def lumped_crossing_s(T0: float, ambient: float, k_per_s: float, threshold: float) -> float | None:
-    """t* = ln((T0 - Ta) / (thr - Ta)) / k; 0 when T0 is already past; None if never reached."""
-    rising = ambient > T0
-    if (rising and T0 >= threshold) or (not rising and T0 <= threshold):
+    """t* = ln((T0 - Ta) / (thr - Ta)) / k when thr lies between T0 and Ta; 0 at T0; else None."""
+    if T0 == threshold:
         return 0.0
     r = (threshold - ambient) / (T0 - ambient) if T0 != ambient else math.nan
     if not (0 < r < 1):
@@ -223,15 +222,16 @@ def measured_air(
     def gap(s: float) -> float:
         return float(air_load_curves(np.array([s]), **kw)[1][0] - threshold)
 
+    # first root over a long horizon (the load is monotone or has one turn)
+    slow = 1.0 / min(k_air_per_s, k_load_per_s)
+    grid = np.concatenate([[0.0], np.geomspace(1e-4 * slow, 100 * slow, 2000)])
+    g = air_load_curves(grid, **kw)[1] - threshold
+    hit = np.flatnonzero(np.sign(g[1:]) != np.sign(g[0]))
     cross: float | None = None
-    if gap(0.0) * (load_T0 - outside) >= 0 or gap(0.0) == 0:  # starts on the near side
-        if (outside - threshold) * (load_T0 - threshold) < 0:
-            hi = 1.0
-            while gap(hi) * gap(0.0) > 0 and hi < 1e9:
-                hi *= 2
-            cross = brentq(gap, 0.0, hi, xtol=1e-6) if gap(hi) * gap(0.0) <= 0 else None
-    else:
+    if g[0] == 0:
         cross = 0.0
+    elif hit.size:
+        cross = float(brentq(gap, grid[hit[0]], grid[hit[0] + 1], xtol=1e-6))
     return Synth(
         t=xs + t_start, y=y, threshold=threshold, eta_true_s=_eta(cross, x_last),
         crossing_t_true=None if cross is None else t_start + cross, t_last=t_start + x_last,

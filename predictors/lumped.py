@@ -1,0 +1,367 @@
+"""Newton's law of cooling fitted by variable projection, with profile-likelihood intervals.
+
+Model, with d = t - t_first (seconds):
+
+    T(d) = a + b e^(-k d)          a = ambient, b = T(t_first) - a,  k > 0
+
+For a fixed k the model is linear in (a, b), so the fit reduces to one dimension (k) and every
+quantity below comes in closed form from the sums n, Sy, Syy and, per k, Se, See, Sye
+(e = e^(-k d)).  The same sums give, on a grid of k, the exact profile of the residual sum of
+squares (RSS) for k, for the ambient a, and for the crossing time (a linear constraint
+a + b e^(-k (D + eta)) = threshold, D = t_last - t_first), so the 90 % intervals are profile
+likelihood intervals at no more cost than the fit:
+
+    {theta : RSS_profile(theta) <= RSS_min (1 + F(0.90; 1, dof) / dof)}
+
+Ambient modes:
+- fitted: a free within ``bounds`` (a plausible range);
+- known: a Gaussian prior a ~ N(a0, ambient_sd^2), folded into the objective as
+  lam (a - a0)^2 with lam = sigma^2 / ambient_sd^2 (sigma: reading noise), so a given ambient that
+  is a couple of degrees off widens the interval instead of biasing it unseen; ambient_sd = 0 fixes a.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy.optimize import minimize_scalar
+from scipy.stats import f as f_dist
+
+CONF = 0.90
+KD_MIN, KD_MAX = 0.005, 60.0  # k * span: from nearly straight to relaxed in the first 2 %
+
+
+@dataclass
+class Sums:
+    """Sufficient statistics of (d, y - ybar) for a vector of k values."""
+
+    k: np.ndarray
+    n: int
+    Sy: float
+    Syy: float
+    Se: np.ndarray
+    See: np.ndarray
+    Sye: np.ndarray
+
+
+def sums(d: np.ndarray, yc: np.ndarray, k: np.ndarray) -> Sums:
+    """Se = sum e, See = sum e^2, Sye = sum y e with e = e^(-k d), for each k."""
+    k = np.atleast_1d(np.asarray(k, float))
+    E = np.exp(-np.outer(k, d))
+    return Sums(k, d.size, float(yc.sum()), float(yc @ yc), E.sum(1), (E * E).sum(1), E @ yc)
+
+
+def rss_of(s: Sums, a: np.ndarray, b: np.ndarray, lam: float, a0: float) -> np.ndarray:
+    """RSS = sum (y - a - b e)^2 + lam (a - a0)^2, expanded in the sums."""
+    r = s.Syy - 2 * a * s.Sy - 2 * b * s.Sye + s.n * a * a + 2 * a * b * s.Se + b * b * s.See
+    if math.isfinite(lam) and lam > 0:
+        r = r + lam * (a - a0) ** 2
+    return np.maximum(r, 0.0)
+
+
+def solve_fixed_k(s: Sums, lam: float, a0: float, lo: float, hi: float):
+    """Best (a, b) for each k: normal equations [[n+lam, Se], [Se, See]] [a, b] = [Sy+lam a0, Sye];
+    a clipped to [lo, hi] (the problem is convex, so clipping then re-solving b is exact)."""
+    if math.isinf(lam):
+        a = np.full(s.k.shape, np.clip(a0, lo, hi))
+    else:
+        det = (s.n + lam) * s.See - s.Se**2
+        with np.errstate(divide="ignore", invalid="ignore"):
+            a = (s.See * (s.Sy + lam * a0) - s.Se * s.Sye) / det
+        a = np.clip(np.nan_to_num(a, nan=a0), lo, hi)
+    b = (s.Sye - a * s.Se) / s.See
+    return a, b, rss_of(s, a, b, lam, a0)
+
+
+def normal_inverse(s: Sums, lam: float):
+    """Entries of M^-1, M = [[n+lam, Se], [Se, See]] the Hessian/2 of the objective in (a, b).
+    With a fixed (lam = inf) only b is free: m11 = m12 = 0, m22 = 1/See."""
+    if math.isinf(lam):
+        z = np.zeros_like(s.See)
+        return z, z, 1.0 / s.See
+    det = (s.n + lam) * s.See - s.Se**2
+    return s.See / det, -s.Se / det, (s.n + lam) / det
+
+
+def eta_sets(s: Sums, a: np.ndarray, b: np.ndarray, delta: np.ndarray, thr: float, D: float,
+             lam: float) -> tuple[np.ndarray, np.ndarray]:
+    """Per k, the crossing times eta >= 0 of curves inside {RSS(k, a, b) <= RSS_k + delta}.
+
+    For fixed k the objective is quadratic in (a, b) with Hessian/2 M, so the constrained minimum
+    on the line a + b c = thr (c = e^(-k (D + eta))) exceeds RSS_k by (a_k + b_k c - thr)^2 / g'M^-1 g,
+    g = (1, c).  Hence eta is inside iff
+        (b_k c + a_k - thr)^2 <= delta (m11 + 2 m12 c + m22 c^2),
+    a quadratic inequality in c.  c <= 0 means a curve levelling off short of the threshold
+    (eta = inf); c >= e^(-k D) means already past (eta = 0).  Returns (lo, hi), NaN where empty.
+    """
+    m11, m12, m22 = normal_inverse(s, lam)
+    al, be = a - thr, b
+    A2 = be * be - delta * m22
+    B2 = al * be - delta * m12
+    C2 = al * al - delta * m11
+    cmax = np.exp(-s.k * D)
+    disc = B2 * B2 - A2 * C2
+    sq = np.sqrt(np.maximum(disc, 0.0))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        r1, r2 = (-B2 - sq) / A2, (-B2 + sq) / A2
+    rl, ru = np.minimum(r1, r2), np.maximum(r1, r2)
+    inf = np.full(rl.shape, np.inf)
+    up, real = A2 > 0, disc >= 0
+    # A2 > 0: [rl, ru], empty if disc < 0.  A2 <= 0: (-inf, rl] U [ru, inf), or all c if disc < 0.
+    l1 = np.where(up, np.where(real, rl, inf), -inf)
+    u1 = np.where(up, np.where(real, ru, -inf), np.where(real, rl, inf))
+    l2 = np.where(up | ~real, inf, ru)
+    u2 = np.where(up | ~real, -inf, inf)
+    lo_eta = np.full(s.k.shape, np.nan)
+    hi_eta = np.full(s.k.shape, np.nan)
+    for cl, cu in ((l1, u1), (l2, u2)):
+        cu = np.minimum(cu, cmax)
+        valid = (cl <= cu) & (delta >= 0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            # eta = -ln(c)/k - D falls as c grows: the top of the c range is the earliest crossing
+            e_lo = np.where(cu >= cmax, 0.0,
+                            np.where(cu <= 0, np.inf, -np.log(np.maximum(cu, 1e-300)) / s.k - D))
+            e_hi = np.where(cl <= 0, np.inf, -np.log(np.maximum(cl, 1e-300)) / s.k - D)
+        lo_eta = np.where(valid, np.fmin(lo_eta, e_lo), lo_eta)
+        hi_eta = np.where(valid, np.fmax(hi_eta, e_hi), hi_eta)
+    return np.maximum(lo_eta, 0.0), hi_eta
+
+
+def interval_from_profile(x: np.ndarray, prof: np.ndarray, cut: float, x_hat: float):
+    """Ends of the connected set {prof <= cut} around x_hat on a sorted grid, linearly
+    interpolated; None for an end that reaches the grid's edge (unbounded)."""
+    ok = prof <= cut
+    if not ok.any():
+        return x_hat, x_hat
+    i0 = int(np.argmin(np.abs(x - x_hat)))
+    if not ok[i0]:
+        i0 = int(np.argmin(prof))
+    lo_i = i0
+    while lo_i > 0 and ok[lo_i - 1]:
+        lo_i -= 1
+    hi_i = i0
+    while hi_i < x.size - 1 and ok[hi_i + 1]:
+        hi_i += 1
+
+    def cross(i_in: int, i_out: int) -> float:
+        p_in, p_out = prof[i_in], prof[i_out]
+        if not np.isfinite(p_out) or p_out == p_in:
+            return float(x[i_in])
+        w = (cut - p_in) / (p_out - p_in)
+        return float(x[i_in] + w * (x[i_out] - x[i_in]))
+
+    lo = None if lo_i == 0 else cross(lo_i, lo_i - 1)
+    hi = None if hi_i == x.size - 1 else cross(hi_i, hi_i + 1)
+    return lo, hi
+
+
+@dataclass
+class LumpedFit:
+    """The lumped fit of one regime.  Times: seconds; eta from t_last."""
+
+    ok: bool
+    reason: str | None = None
+    k_per_s: float = math.nan
+    ambient: float = math.nan
+    value_fit_now: float = math.nan
+    t_first: float = math.nan
+    t_last: float = math.nan
+    amplitude: float = math.nan  # b: T(t_first) - ambient
+    rss: float = math.nan
+    dof: int = 0
+    sigma: float = math.nan
+    eta_s: float | None = None
+    eta_lo_s: float | None = None
+    eta_hi_s: float | None = None
+    k_lo: float | None = None
+    k_hi: float | None = None
+    ambient_lo: float | None = None
+    ambient_hi: float | None = None
+    direction: str | None = None
+    residuals: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    n: int = 0
+
+    def curve(self, t: np.ndarray) -> np.ndarray:
+        """T(t) = a + b e^(-k (t - t_first))."""
+        return self.ambient + self.amplitude * np.exp(-self.k_per_s * (np.asarray(t) - self.t_first))
+
+
+def quick_rss(t: np.ndarray, y: np.ndarray, n_grid: int = 40) -> float:
+    """Minimum RSS of a fitted-ambient lumped curve: the varpro profile on a k grid, its minimum
+    refined by a parabola in log k (the profile is smooth there).  For regime searches."""
+    n = t.size
+    if n < 5 or t[-1] <= t[0]:
+        return math.inf
+    d = t - t[0]
+    yc = y - y.mean()
+    lk = np.linspace(math.log(KD_MIN), math.log(KD_MAX), n_grid) - math.log(d[-1])
+    r = solve_fixed_k(sums(d, yc, np.exp(lk)), 0.0, 0.0, -np.inf, np.inf)[2]
+    i = int(np.argmin(r))
+    if 0 < i < n_grid - 1:
+        den = r[i - 1] - 2 * r[i] + r[i + 1]
+        if den > 0:
+            return float(max(r[i] - 0.125 * (r[i - 1] - r[i + 1]) ** 2 / den, 0.0))
+    return float(r[i])
+
+
+def crossing_eta(value_now: float, ambient: float, k: float, thr: float,
+                 value_start: float | None = None, limit: str | None = None) -> tuple[float | None, str]:
+    """Seconds from now until T(x) = a + (T_now - a) e^(-k x) reaches thr, and the direction.
+
+    eta = ln((T_now - a) / (thr - a)) / k when the asymptote a lies beyond thr; otherwise 0 if the
+    curve already crossed thr within the data (value_start on the other side), else None.
+    limit "upper"/"lower" (optional): only an upward / downward crossing counts, and a value
+    already beyond the limit is past (0).
+    """
+    if ambient > value_now:
+        direction = "rising"
+    elif ambient < value_now:
+        direction = "falling"
+    else:
+        direction = "rising" if thr > value_now else "falling"
+    if limit == "upper" and value_now >= thr or limit == "lower" and value_now <= thr:
+        return 0.0, direction
+    side_now, side_inf = value_now - thr, ambient - thr
+    if side_now == 0:
+        return 0.0, direction
+    if side_now * side_inf < 0 and k > 0:
+        if limit == "upper" and direction != "rising" or limit == "lower" and direction != "falling":
+            return None, direction
+        return math.log((value_now - ambient) / (thr - ambient)) / k, direction
+    if limit is None and value_start is not None and (value_start - thr) * side_now < 0:
+        return 0.0, direction
+    return None, direction
+
+
+def fit_lumped(
+    t: np.ndarray,
+    y: np.ndarray,
+    threshold: float,
+    *,
+    ambient: float | None = None,
+    ambient_sd: float = 0.0,
+    bounds: tuple[float, float] | None = None,
+    noise_sd: float | None = None,
+    intervals: bool = True,
+    limit: str | None = None,
+) -> LumpedFit:
+    """Fit T(t) = a + b e^(-k (t - t_first)) to sorted, cleaned readings; never raises on data."""
+    t = np.asarray(t, float)
+    y = np.asarray(y, float)
+    n = t.size
+    n_par = 2 if (ambient is not None and ambient_sd == 0) else 3
+    if n < n_par + 2:
+        return LumpedFit(False, f"too few readings to fit ({n})", n=n)
+    D = float(t[-1] - t[0])
+    if D <= 0:
+        return LumpedFit(False, "all readings at one instant", n=n)
+    d = t - t[0]
+    ybar = float(y.mean())
+    yc = y - ybar
+    thr = threshold - ybar
+    spread = max(float(np.ptp(y)), 1e-6)
+    if bounds is None:
+        bounds = (float(y.min()) - 10 * spread - 10.0, float(y.max()) + 10 * spread + 10.0)
+    lo, hi = bounds[0] - ybar, bounds[1] - ybar
+    if ambient is None:
+        lam, a0 = 0.0, 0.0
+    else:
+        a0 = float(ambient) - ybar
+        lam = math.inf if ambient_sd <= 0 else 0.0
+    k_grid = np.geomspace(KD_MIN, KD_MAX, 56) / D
+
+    def objective(logk: float, lam_: float) -> float:
+        s1 = sums(d, yc, np.array([math.exp(logk)]))
+        return float(solve_fixed_k(s1, lam_, a0, lo, hi)[2][0])
+
+    def best_k(lam_: float) -> float:
+        s0 = sums(d, yc, k_grid)
+        rss0 = solve_fixed_k(s0, lam_, a0, lo, hi)[2]
+        i = int(np.argmin(rss0))
+        lk = np.log(k_grid)
+        a_, b_ = lk[max(i - 1, 0)], lk[min(i + 1, lk.size - 1)]
+        if a_ == b_:
+            return float(k_grid[i])
+        res = minimize_scalar(objective, bounds=(a_, b_), args=(lam_,), method="bounded",
+                              options={"xatol": 1e-6})
+        return float(math.exp(res.x)) if res.fun <= rss0[i] else float(k_grid[i])
+
+    if ambient is not None and ambient_sd > 0:
+        # lam = sigma^2 / sd_a^2; sigma from the readings' own noise, then from the fit itself
+        sig = noise_sd if noise_sd and noise_sd > 0 else 0.1 * spread
+        for _ in range(2):
+            lam = sig**2 / ambient_sd**2
+            k_hat = best_k(lam)
+            r_hat = objective(math.log(k_hat), lam)
+            sig = max(math.sqrt(r_hat / max(n - 3, 1)), 1e-9)
+    else:
+        k_hat = best_k(lam)
+    s_hat = sums(d, yc, np.array([k_hat]))
+    a_hat, b_hat, r_hat = (float(v[0]) for v in solve_fixed_k(s_hat, lam, a0, lo, hi))
+    fit_y = a_hat + b_hat * np.exp(-k_hat * d)
+    dof = max(n - n_par, 1)
+    fit = LumpedFit(
+        True, k_per_s=k_hat, ambient=a_hat + ybar, amplitude=b_hat, t_first=float(t[0]),
+        t_last=float(t[-1]), value_fit_now=float(fit_y[-1] + ybar), rss=r_hat, dof=dof,
+        sigma=math.sqrt(r_hat / dof), residuals=yc - fit_y, n=n,
+    )
+    fit.eta_s, fit.direction = crossing_eta(fit.value_fit_now, fit.ambient, k_hat, threshold,
+                                            value_start=a_hat + b_hat + ybar, limit=limit)
+    if intervals:
+        add_intervals(fit, d, yc, thr, lam, a0, lo, hi, ybar, k_grid)
+    return fit
+
+
+def add_intervals(fit: LumpedFit, d, yc, thr, lam, a0, lo, hi, ybar, k_coarse) -> None:
+    """90 % profile-likelihood intervals for k, the ambient and the crossing time.
+
+    k: the varpro profile RSS_k on a grid, refined near k_hat.  Ambient and crossing time: the
+    projection of the joint region {RSS <= cut}, exact for each k (an ellipse in (a, b)), taken
+    over the k grid.
+    """
+    D = float(d[-1])
+    cut = fit.rss * (1.0 + f_dist.ppf(CONF, 1, fit.dof) / fit.dof)
+    k_hat, lk = fit.k_per_s, math.log(fit.k_per_s)
+    # curvature of RSS in log k sets a fine grid around k_hat
+    s3 = sums(d, yc, np.exp(lk + np.array([-0.01, 0.0, 0.01])))
+    r3 = solve_fixed_k(s3, lam, a0, lo, hi)[2]
+    curv = (r3[0] + r3[2] - 2 * r3[1]) / 0.01**2
+    hw = math.sqrt(2 * (cut - fit.rss) / curv) if curv > 0 else 3.0
+    hw = min(max(hw, 1e-5), 3.0)
+    fine = np.exp(lk + np.linspace(-4 * hw, 4 * hw, 61))
+    k_all = np.unique(np.concatenate([k_coarse, fine, [k_hat]]))
+    s = sums(d, yc, k_all)
+    a_k, b_k, r_k = solve_fixed_k(s, lam, a0, lo, hi)
+    fit.k_lo, fit.k_hi = interval_from_profile(k_all, r_k, cut, k_hat)
+    if fit.k_lo is None:
+        fit.k_lo = 0.0
+    inside = r_k <= cut
+    if not inside.any():
+        inside = k_all == k_hat
+    # unclipped optimum per k: the centre of the ellipse
+    a_u, b_u, r_u = solve_fixed_k(s, lam, a0, -np.inf, np.inf)
+    delta = np.where(inside, cut - r_u, -1.0)
+    if math.isinf(lam):
+        fit.ambient_lo = fit.ambient_hi = fit.ambient
+    else:
+        m11 = normal_inverse(s, lam)[0]
+        w = np.sqrt(np.maximum(delta, 0.0) * m11)
+        sel = delta >= 0
+        fit.ambient_lo = float(max(np.min((a_u - w)[sel]), lo) + ybar)
+        fit.ambient_hi = float(min(np.max((a_u + w)[sel]), hi) + ybar)
+    if fit.eta_s == 0.0:
+        fit.eta_lo_s = fit.eta_hi_s = 0.0
+        return
+    e_lo, e_hi = eta_sets(s, a_u, b_u, delta, thr, D, lam)
+    if np.all(np.isnan(e_lo)):
+        fit.eta_lo_s = fit.eta_hi_s = None
+        return
+    fit.eta_lo_s = float(np.nanmin(e_lo))
+    hi_e = float(np.nanmax(e_hi))
+    fit.eta_hi_s = None if math.isinf(hi_e) else hi_e
+    if fit.eta_s is not None:
+        fit.eta_lo_s = min(fit.eta_lo_s, fit.eta_s)
+        if fit.eta_hi_s is not None:
+            fit.eta_hi_s = max(fit.eta_hi_s, fit.eta_s)

@@ -1,0 +1,199 @@
+"""Measured ambient: the item follows an air probe, dT/dt = -k (T - Ta(t)).
+
+Fit: with Ta linear between air readings, each step of length h is solved exactly,
+
+    T_i = E T_(i-1) + u_i,   E = e^(-k h),   u_i = A1 - A0 E - (m / k)(1 - E),   m = (A1 - A0) / h,
+
+so T(t_i) = T0 P_i + G_i(k) with P_i = e^(-k (t_i - t_0)): linear in T0, one-dimensional in k
+(variable projection again).  Forecast: the air is extrapolated by its own lumped fit toward its
+own asymptote, Ta(x) = Tout + (A_now - Tout) e^(-ka x), and then
+
+    T(x) = Tout + A e^(-ka x) + (T_now - Tout - A) e^(-k x),   A = k (A_now - Tout) / (k - ka).
+
+Interval: delta method, on a log scale, on the covariances of both fits (load: T0, k; air:
+Tout, amplitude, ka), assumed independent.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.optimize import brentq, minimize_scalar
+
+from thermeta.predictors.lumped import KD_MAX, KD_MIN, LumpedFit, fit_lumped
+
+Z90 = 1.6448536269514722
+
+
+def response(k: np.ndarray, s: np.ndarray, A: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """P (K, M) and G (K, M): the response at grid s to T0 = 1 with zero air, and to the air A
+    (piecewise linear) with T0 = 0.  T_i = P_i (T0 + sum_j u_j / P_j)."""
+    k = np.atleast_1d(k)[:, None]
+    h = np.diff(s)[None, :]
+    E = np.exp(-k * h)
+    m = np.diff(A)[None, :] / h
+    u = A[None, 1:] - A[None, :-1] * E - (m / k) * (1.0 - E)
+    x = (s - s[0])[None, :]
+    P = np.exp(-k * x)
+    G = np.concatenate([np.zeros((k.shape[0], 1)), P[:, 1:] * np.cumsum(u / P[:, 1:], axis=1)], axis=1)
+    return P, G
+
+
+@dataclass
+class MeasuredFit:
+    ok: bool
+    reason: str | None = None
+    k_per_s: float = math.nan
+    k_se: float = math.nan
+    T0: float = math.nan
+    value_fit_now: float = math.nan
+    rss: float = math.nan
+    sigma: float = math.nan
+    n: int = 0
+    air: LumpedFit | None = None
+    eta_s: float | None = None
+    eta_lo_s: float | None = None
+    eta_hi_s: float | None = None
+    k_lo: float | None = None
+    k_hi: float | None = None
+    direction: str | None = None
+    residuals: np.ndarray | None = None
+
+
+def load_after(x: np.ndarray, T_now: float, k: float, air_now: float, out: float, ka: float) -> np.ndarray:
+    """T(x) for x >= 0 seconds after the newest reading, air extrapolated by its own fit."""
+    x = np.asarray(x, float)
+    if abs(k - ka) < 1e-9 * k:
+        return out + (T_now - out) * np.exp(-k * x) + k * (air_now - out) * x * np.exp(-k * x)
+    A = k * (air_now - out) / (k - ka)
+    return out + A * np.exp(-ka * x) + (T_now - out - A) * np.exp(-k * x)
+
+
+def first_crossing(T_now: float, k: float, air_now: float, out: float, ka: float, thr: float,
+                   past: bool) -> float | None:
+    """Seconds until T(x) first reaches thr (0 if ``past``, None if never)."""
+    if past or T_now == thr:
+        return 0.0
+    slow = 1.0 / max(min(k, ka if ka > 0 else k), 1e-12)
+    x = np.concatenate([[0.0], np.geomspace(1e-4 * slow, 60 * slow, 240)])
+    g = load_after(x, T_now, k, air_now, out, ka) - thr
+    hit = np.flatnonzero(np.sign(g[1:]) != np.sign(g[0]))
+    if hit.size == 0:
+        return None
+    i = int(hit[0])
+    return float(brentq(lambda z: float(load_after(np.array([z]), T_now, k, air_now, out, ka)[0] - thr),
+                        x[i], x[i + 1], xtol=1e-3))
+
+
+def fit_measured(t: np.ndarray, y: np.ndarray, air_t: np.ndarray, air_y: np.ndarray, threshold: float,
+                 *, air_fit: LumpedFit, limit: str | None = None) -> MeasuredFit:
+    """Fit k and T0 with the measured air; forecast with the air's own fit ``air_fit``."""
+    n = t.size
+    if n < 4:
+        return MeasuredFit(False, f"too few readings to fit ({n})", n=n)
+    inside = (air_t >= t[0]) & (air_t <= t[-1])
+    s = np.unique(np.concatenate([t, air_t[inside]]))
+    A = np.interp(s, air_t, air_y)  # held constant outside the air readings
+    pos = np.searchsorted(s, t)
+    D = float(t[-1] - t[0])
+    if D <= 0:
+        return MeasuredFit(False, "all readings at one instant", n=n)
+
+    def rss_k(k: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        P, G = response(k, s, A)
+        P, G = P[:, pos], G[:, pos]
+        r = y[None, :] - G
+        T0 = (r * P).sum(1) / (P * P).sum(1)  # linear in T0
+        return ((r - T0[:, None] * P) ** 2).sum(1), T0
+
+    grid = np.geomspace(KD_MIN, KD_MAX, 48) / D
+    r0, _ = rss_k(grid)
+    i = int(np.argmin(r0))
+    lg = np.log(grid)
+    res = minimize_scalar(lambda v: float(rss_k(np.array([math.exp(v)]))[0][0]),
+                          bounds=(lg[max(i - 1, 0)], lg[min(i + 1, lg.size - 1)]), method="bounded",
+                          options={"xatol": 1e-7})
+    k = float(math.exp(res.x))
+    rr, T0 = rss_k(np.array([k]))
+    rss, T0 = float(rr[0]), float(T0[0])
+    P, G = response(np.array([k]), s, A)
+    fitted = T0 * P[0, pos] + G[0, pos]
+    dof = max(n - 2, 1)
+    sigma = math.sqrt(rss / dof)
+    # covariance of (T0, log k) from the Jacobian (finite difference in log k)
+    hstep = 1e-4
+    P2, G2 = response(np.array([k * math.exp(hstep)]), s, A)
+    dlogk = ((T0 * P2[0, pos] + G2[0, pos]) - fitted) / hstep
+    J = np.column_stack([P[0, pos], dlogk])
+    cov = np.linalg.pinv(J.T @ J) * sigma**2
+    fit = MeasuredFit(True, k_per_s=k, T0=T0, value_fit_now=float(fitted[-1]), rss=rss, sigma=sigma,
+                      n=n, air=air_fit, residuals=y - fitted)
+    se_logk = math.sqrt(max(cov[1, 1], 0.0))
+    fit.k_se = k * se_logk
+    fit.k_lo, fit.k_hi = k * math.exp(-Z90 * se_logk), k * math.exp(Z90 * se_logk)
+    if not air_fit.ok:
+        return fit
+    air_now, out, ka = air_fit.value_fit_now, air_fit.ambient, air_fit.k_per_s
+    rising = out > fit.value_fit_now if out != fit.value_fit_now else threshold > fit.value_fit_now
+    fit.direction = "rising" if rising else "falling"
+
+    # already past: beyond an explicit limit, or crossed within the data
+    side_now = fit.value_fit_now - threshold
+    if limit == "upper":
+        past = side_now >= 0
+    elif limit == "lower":
+        past = side_now <= 0
+    else:
+        past = (float(fitted[0]) - threshold) * side_now < 0
+
+    def eta_of(p: np.ndarray) -> float | None:
+        return first_crossing(p[0], math.exp(p[1]), p[2], p[3], math.exp(p[4]), threshold, past)
+
+    p0 = np.array([fit.value_fit_now, math.log(k), air_now, out, math.log(max(ka, 1e-12))])
+    fit.eta_s = eta_of(p0)
+    if fit.eta_s in (None, 0.0):
+        fit.eta_lo_s = fit.eta_hi_s = fit.eta_s
+        if fit.eta_s is None:
+            fit.eta_lo_s = None
+        return fit
+    # variances: load (T_now, log k); air (A_now, Tout, log ka) from the air fit's 90 % ranges
+    grad_now = np.concatenate([P[0, pos][-1:], dlogk[-1:]])
+    var_now = float(grad_now @ cov @ grad_now)
+    air_sd = []
+    for lo_, hi_, v in ((air_fit.ambient_lo, air_fit.ambient_hi, out),
+                        (air_fit.k_lo, air_fit.k_hi, ka)):
+        if lo_ is None or hi_ is None:
+            air_sd.append(math.inf)
+        elif v is ka:
+            air_sd.append((math.log(max(hi_, 1e-15)) - math.log(max(lo_, 1e-15))) / (2 * Z90))
+        else:
+            air_sd.append((hi_ - lo_) / (2 * Z90))
+    sds = [math.sqrt(var_now), se_logk, air_fit.sigma / math.sqrt(max(air_fit.n, 1)) * 2, air_sd[0], air_sd[1]]
+    var_log = 0.0
+    for j, sd in enumerate(sds):
+        if not math.isfinite(sd):
+            fit.eta_hi_s = None
+            var_log = math.inf
+            break
+        if sd <= 0:
+            continue
+        p = p0.copy()
+        p[j] += sd
+        e = eta_of(p)
+        if e is None:
+            var_log = math.inf
+            break
+        var_log += (math.log(max(e, 1e-9)) - math.log(fit.eta_s)) ** 2
+    if math.isinf(var_log):
+        fit.eta_lo_s, fit.eta_hi_s = 0.0, None
+        return fit
+    w = Z90 * math.sqrt(var_log)
+    fit.eta_lo_s, fit.eta_hi_s = fit.eta_s * math.exp(-w), fit.eta_s * math.exp(w)
+    return fit
+
+
+def fit_air(air_t: np.ndarray, air_y: np.ndarray, noise_sd: float) -> LumpedFit:
+    """The air's own lumped fit (ambient fitted), used to extrapolate it."""
+    return fit_lumped(air_t, air_y, float(air_y[-1]), noise_sd=noise_sd)
