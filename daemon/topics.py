@@ -134,10 +134,10 @@ class Router:
                     continue
                 concrete = self.by_name.get(name)
                 if concrete is None:
-                    load_topic = topic if kind == "load" else None
+                    load_topic = topic if kind == "load" else render_filter(it.topic, topic)
                     concrete = replace(
                         it, name=name,
-                        topic=load_topic or it.topic,
+                        topic=load_topic,
                         ambient_topic=(render_filter(it.ambient_topic, topic)
                                        if it.ambient_topic else None),
                     )

@@ -1,0 +1,65 @@
+"""``thermeta run --config FILE``: the service in the foreground until SIGINT or SIGTERM."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+
+
+def add_arguments(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--config", required=True, metavar="FILE", help="the TOML config")
+    p.add_argument("--log-json", action="store_true", help="log JSON lines instead of text")
+    p.add_argument("--log-level", choices=["debug", "info", "warning", "error"],
+                   help="overrides [log] level")
+    p.add_argument("--dashboard", action="store_true",
+                   help="show the live dashboard in this terminal while the service runs")
+
+
+def run(args: argparse.Namespace) -> int:
+    import logging
+    import signal
+    import threading
+
+    from thermeta.daemon.config import load_config
+    from thermeta.daemon.errors import ConfigError
+    from thermeta.daemon.logsetup import configure
+    from thermeta.storage.store import StoreError
+
+    try:
+        cfg = load_config(args.config)
+    except ConfigError as exc:
+        for line in exc.problems:
+            print(line, file=sys.stderr)
+        return 2
+    configure(args.log_level or cfg.log_level, json_lines=args.log_json)
+    log = logging.getLogger("thermeta.run")
+
+    from thermeta.daemon.service import Service
+
+    stop = threading.Event()
+
+    def on_signal(signum, _frame) -> None:
+        log.info("received %s", signal.Signals(signum).name)
+        stop.set()
+
+    signal.signal(signal.SIGTERM, on_signal)
+    signal.signal(signal.SIGINT, on_signal)
+    try:
+        service = Service(cfg)
+        service.start()
+    except StoreError as exc:
+        log.error("%s", exc)
+        return 1
+    try:
+        if args.dashboard:
+            try:
+                from thermeta.daemon.dashboard import run_foreground
+            except ModuleNotFoundError:
+                log.error("the dashboard is not available in this build; running without it")
+            else:
+                run_foreground(service, stop)
+        while not stop.is_set():
+            stop.wait(1.0)
+    finally:
+        service.stop()
+    return 0

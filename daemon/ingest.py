@@ -1,0 +1,184 @@
+"""The MQTT side of the daemon (paho-mqtt 2.x): a durable QoS 1 subscriber and a publisher.
+
+Durability, from paho's own behaviour:
+
+- a fixed client id and a persistent session (MQTT 5: ``clean_start=False`` with a
+  SessionExpiryInterval; 3.1.1: ``clean_session=False``), so what is published while the daemon
+  is down waits in the broker;
+- ``manual_ack=True``: a message's PUBACK is sent only after the writer has committed it;
+  acknowledgements for a message from an earlier connection are dropped (the broker resends
+  those and the store's unique key absorbs the copy);
+- ``on_message`` only hands the message on, inside a try/except: an exception there would kill
+  paho's network thread;
+- subscriptions are made in ``on_connect`` so every reconnect renews them.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import ssl
+import threading
+from collections.abc import Callable
+from typing import Any
+
+import paho.mqtt.client as mqtt
+from paho.mqtt.packettypes import PacketTypes
+from paho.mqtt.properties import Properties
+
+from thermeta.daemon.clock import Clock
+from thermeta.daemon.config import BrokerConfig
+from thermeta.daemon.writer import Inbound
+
+log = logging.getLogger("thermeta.mqtt")
+
+UNSUPPORTED_PROTOCOL = (1, 132)  # 3.1.1 CONNACK code 1; MQTT 5 reason 0x84
+FALLBACK_WAIT_S = 5.0
+
+
+class MqttLink:
+    """One broker connection: subscribe to ``filters``, hand messages to ``deliver``."""
+
+    def __init__(self, cfg: BrokerConfig, filters: list[str], deliver: Callable[[Inbound], None],
+                 clock: Clock, status_topic: str, status_extra: dict[str, Any] | None = None):
+        self.cfg = cfg
+        self.filters = list(filters)
+        self.deliver = deliver
+        self.clock = clock
+        self.status_topic = status_topic
+        self.status_extra = dict(status_extra or {})
+        self.generation = 0
+        self.connected = threading.Event()
+        self.accepting = True
+        self.protocol = mqtt.MQTTv5 if cfg.protocol in ("auto", "5") else mqtt.MQTTv311
+        self.counts = {"received": 0, "dropped": 0, "connects": 0, "disconnects": 0}
+        self._refused: int | None = None
+        self._first_connack = threading.Event()
+        self._lock = threading.Lock()
+        self.client = self._make_client()
+
+    # -- set-up -------------------------------------------------------------------------------
+    def _make_client(self) -> mqtt.Client:
+        kw: dict[str, Any] = {"client_id": self.cfg.client_id, "protocol": self.protocol,
+                              "manual_ack": True}
+        if self.protocol == mqtt.MQTTv311:
+            kw["clean_session"] = False
+        c = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, **kw)
+        c.enable_logger(logging.getLogger("thermeta.mqtt.paho"))
+        if self.cfg.username:
+            c.username_pw_set(self.cfg.username, self.cfg.password)
+        if self.cfg.tls:
+            c.tls_set(ca_certs=self.cfg.ca_file, certfile=self.cfg.cert_file,
+                      keyfile=self.cfg.key_file, tls_version=ssl.PROTOCOL_TLS_CLIENT)
+            if self.cfg.tls_insecure:
+                c.tls_insecure_set(True)
+        c.will_set(self.status_topic, self._status("offline"), qos=1, retain=True)
+        c.reconnect_delay_set(min_delay=1, max_delay=30)
+        c.max_queued_messages_set(0)
+        c.on_connect = self._on_connect
+        c.on_disconnect = self._on_disconnect
+        c.on_message = self._on_message
+        return c
+
+    def _status(self, state: str) -> str:
+        body = {"state": state, "at": self.clock.now(), "client_id": self.cfg.client_id}
+        body.update(self.status_extra)
+        return json.dumps(body)
+
+    def start(self) -> None:
+        """Connect in the background (paho retries on its own) and wait briefly for the first
+        answer, so an MQTT 3.1.1-only broker can be retried with 3.1.1."""
+        self._connect_async()
+        self.client.loop_start()
+        if self.cfg.protocol == "auto":
+            self._first_connack.wait(FALLBACK_WAIT_S)
+            if self._refused in UNSUPPORTED_PROTOCOL and self.protocol == mqtt.MQTTv5:
+                log.info("broker refused MQTT 5; falling back to MQTT 3.1.1")
+                self.client.loop_stop()
+                self.client.disconnect()
+                self.protocol = mqtt.MQTTv311
+                self._first_connack.clear()
+                self.client = self._make_client()
+                self._connect_async()
+                self.client.loop_start()
+
+    def _connect_async(self) -> None:
+        if self.protocol == mqtt.MQTTv5:
+            props = Properties(PacketTypes.CONNECT)
+            props.SessionExpiryInterval = int(self.cfg.session_expiry_s)
+            self.client.connect_async(self.cfg.host, self.cfg.port, self.cfg.keepalive_s,
+                                      clean_start=False, properties=props)
+        else:
+            self.client.connect_async(self.cfg.host, self.cfg.port, self.cfg.keepalive_s)
+
+    # -- paho callbacks (network thread: keep them short, never raise) ------------------------
+    def _on_connect(self, client, userdata, flags, reason_code, properties) -> None:
+        try:
+            if reason_code.is_failure:
+                self._refused = int(reason_code.value)
+                log.error("broker %s:%s refused the connection: %s", self.cfg.host, self.cfg.port,
+                          reason_code)
+                self._first_connack.set()
+                return
+            with self._lock:
+                self.generation += 1
+            self.counts["connects"] += 1
+            resumed = bool(getattr(flags, "session_present", False))
+            log.info("connected to %s:%s (MQTT %s, session %s)", self.cfg.host, self.cfg.port,
+                     "5" if self.protocol == mqtt.MQTTv5 else "3.1.1",
+                     "resumed" if resumed else "new")
+            client.subscribe([(f, self.cfg.qos) for f in self.filters])
+            client.publish(self.status_topic, self._status("online"), qos=1, retain=True)
+            self.connected.set()
+            self._first_connack.set()
+        except Exception:  # noqa: BLE001 - an exception here would stop paho's thread
+            log.exception("error in on_connect")
+
+    def _on_disconnect(self, client, userdata, flags, reason_code, properties) -> None:
+        try:
+            self.connected.clear()
+            self.counts["disconnects"] += 1
+            if reason_code != 0:
+                log.warning("disconnected from broker (%s); reconnecting", reason_code)
+        except Exception:  # noqa: BLE001
+            log.exception("error in on_disconnect")
+
+    def _on_message(self, client, userdata, msg) -> None:
+        try:
+            if not self.accepting:
+                # Not acknowledged: the broker keeps it for the next session.
+                self.counts["dropped"] += 1
+                return
+            self.counts["received"] += 1
+            self.deliver(Inbound(topic=msg.topic, payload=bytes(msg.payload),
+                                 received_at=self.clock.now(), mid=msg.mid, qos=msg.qos,
+                                 generation=self.generation))
+        except Exception:  # noqa: BLE001 - never let one message stop the network thread
+            log.exception("error handing on a message from %s", getattr(msg, "topic", "?"))
+
+    # -- used by the writer and the service ---------------------------------------------------
+    def ack(self, batch: list[Inbound]) -> None:
+        """Acknowledge committed messages (in arrival order, as MQTT requires)."""
+        gen = self.generation
+        for m in batch:
+            if m.qos > 0 and m.generation == gen:
+                self.client.ack(m.mid, m.qos)
+
+    def publish(self, topic: str, payload: str | bytes, qos: int = 1,
+                retain: bool = False) -> mqtt.MQTTMessageInfo:
+        return self.client.publish(topic, payload, qos=qos, retain=retain)
+
+    def stop_receiving(self) -> None:
+        self.accepting = False
+
+    def close(self, timeout: float = 5.0) -> None:
+        """Say we are going offline (retained), then disconnect cleanly (no last will)."""
+        try:
+            if self.connected.is_set():
+                info = self.client.publish(self.status_topic, self._status("offline"), qos=1,
+                                           retain=True)
+                info.wait_for_publish(timeout)
+        except (RuntimeError, ValueError) as exc:
+            log.warning("could not publish the offline status: %s", exc)
+        self.client.disconnect()
+        self.client.loop_stop()

@@ -1,0 +1,46 @@
+"""Logging for the daemon: readable lines by default, JSON lines with ``--log-json``."""
+
+from __future__ import annotations
+
+import json
+import logging
+import sys
+from datetime import datetime, timezone
+
+LEVELS = {"debug": logging.DEBUG, "info": logging.INFO, "warning": logging.WARNING,
+          "error": logging.ERROR}
+
+
+class JsonFormatter(logging.Formatter):
+    """One JSON object per line: time (RFC 3339 UTC), level, logger, message, exception."""
+
+    def format(self, record: logging.LogRecord) -> str:
+        out = {
+            "time": datetime.fromtimestamp(record.created, tz=timezone.utc)
+            .isoformat(timespec="milliseconds").replace("+00:00", "Z"),
+            "level": record.levelname.lower(),
+            "logger": record.name,
+            "message": record.getMessage(),
+        }
+        if record.exc_info:
+            out["exception"] = self.formatException(record.exc_info)
+        return json.dumps(out)
+
+
+def configure(level: str = "info", json_lines: bool = False, stream=None) -> None:
+    """Route thermeta's (and paho's, APScheduler's) logs to ``stream`` (stderr by default)."""
+    handler = logging.StreamHandler(stream or sys.stderr)
+    if json_lines:
+        handler.setFormatter(JsonFormatter())
+    else:
+        handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)-7s %(name)s: %(message)s",
+                                               datefmt="%Y-%m-%d %H:%M:%S"))
+    root = logging.getLogger()
+    for h in list(root.handlers):
+        root.removeHandler(h)
+    root.addHandler(handler)
+    root.setLevel(LEVELS.get(level, logging.INFO))
+    # paho's per-packet chatter only at debug
+    logging.getLogger("thermeta.mqtt.paho").setLevel(
+        logging.DEBUG if level == "debug" else logging.WARNING)
+    logging.getLogger("apscheduler").setLevel(logging.WARNING if level != "debug" else logging.DEBUG)

@@ -1,0 +1,202 @@
+"""Rolling refits: each item with new readings is refitted on its recent window, its forecast
+stored, published (retained) and handed to listeners (alerts).
+
+States, judged in this order:
+
+    stale        no reading for longer than the item's silence limit
+    crossed      the value is already past the threshold
+    learning     too few readings to fit (or the fit gave no answer yet)
+    approaching  a crossing is forecast within the item's horizon
+    steady       no crossing within the horizon
+
+One item's failed fit (an exception, or a result with ``ok=False``) is logged and published as
+such; the other items go on.
+"""
+
+from __future__ import annotations
+
+import inspect
+import json
+import logging
+import threading
+import time
+from collections.abc import Callable
+from typing import Any
+
+import numpy as np
+
+from thermeta.daemon.clock import Clock
+from thermeta.daemon.config import AMBIENT_SUFFIX, Config, ItemConfig
+from thermeta.daemon.units import from_celsius, scale_from_celsius
+from thermeta.daemon.writer import Activity
+from thermeta.predictors.result import Forecast, rfc3339
+from thermeta.storage.store import Store
+
+log = logging.getLogger("thermeta.refit")
+
+STATES = ("learning", "steady", "approaching", "crossed", "stale")
+POINT_KEYS = ("threshold", "ambient", "ambient_lo", "ambient_hi", "value_now")
+DELTA_KEYS = ("rmse",)
+ERROR_LOG_EVERY_S = 300.0
+
+# A listener gets (item config, forecast dict with state, previous forecast dict or None).
+Listener = Callable[[ItemConfig, dict[str, Any], "dict[str, Any] | None"], None]
+Publish = Callable[[str, str], None]
+
+
+def classify(fc: Forecast, now: float, last_ts: float | None, cfg: ItemConfig,
+             first_value_c: float | None) -> str:
+    """The item's state from its forecast (see the module docstring for the order)."""
+    if last_ts is None or fc.n_points == 0:
+        return "learning"
+    if now - last_ts > cfg.silence_s:
+        return "stale"
+    thr = cfg.threshold_c
+    if fc.ok and fc.eta_s == 0:
+        return "crossed"
+    if not fc.ok:
+        # Without a fit, the direction of travel is from the window's first reading to its last.
+        v = fc.value_now
+        if first_value_c is not None and v is not None and (first_value_c - thr) * (v - thr) < 0:
+            return "crossed"
+        return "learning"
+    if fc.eta_s is not None:
+        remaining_s = fc.eta_s - max(0.0, now - (fc.t_last or now))
+        if remaining_s <= cfg.horizon_s:
+            return "approaching"
+    return "steady"
+
+
+def to_item_units(d: dict[str, Any], unit: str) -> dict[str, Any]:
+    """Temperatures of a forecast dict from degC to the item's unit (points and differences)."""
+    if unit == "C":
+        return d
+    out = dict(d)
+    for k in POINT_KEYS:
+        if out.get(k) is not None:
+            out[k] = from_celsius(out[k], unit)
+    for k in DELTA_KEYS:
+        if out.get(k) is not None:
+            out[k] = scale_from_celsius(out[k], unit)
+    return out
+
+
+class Refitter:
+    def __init__(self, store: Store, config: Config, clock: Clock, activity: Activity,
+                 publish: Publish | None = None):
+        self.store = store
+        self.config = config
+        self.clock = clock
+        self.activity = activity
+        self.publish = publish
+        self.listeners: list[Listener] = []
+        self.previous: dict[str, dict[str, Any]] = {}
+        self.item_ids: dict[str, int] = {}
+        self._lock = threading.Lock()
+        self._error_logged: dict[str, float] = {}
+        self.runs = 0
+        self.last_run_s = 0.0
+        self._predict = _load_forecast()
+
+    def load_previous(self) -> None:
+        """Pick up each item's last forecast from the store (after a restart)."""
+        for f in self.store.latest_forecasts():
+            self.previous[f["item"]] = f["forecast"]
+
+    def run_once(self, force: bool = False) -> dict[str, str]:
+        """One round; returns {item: state} for the items published.  Never raises."""
+        with self._lock:  # the scheduler never overlaps runs; this guards manual calls too
+            t0 = time.monotonic()
+            now = self.clock.now()
+            dirty = self.activity.take_dirty()
+            items, last = self.activity.snapshot()
+            done: dict[str, str] = {}
+            for name, cfg in items.items():
+                prev = self.previous.get(name)
+                due = force or name in dirty or prev is None
+                going_stale = (prev is not None and prev.get("state") != "stale"
+                               and name in last and now - last[name] > cfg.silence_s)
+                if not (due or going_stale):
+                    continue
+                try:
+                    done[name] = self._refit(name, cfg, now, last.get(name))
+                except Exception:  # noqa: BLE001 - one item never stops the others
+                    self._log_error(name, "refit of %s failed", name)
+            if done:
+                try:
+                    self.store.set_meta("last_refit_at", now)
+                except Exception:  # noqa: BLE001
+                    log.exception("could not record the refit time")
+            self.runs += 1
+            self.last_run_s = time.monotonic() - t0
+            return done
+
+    def _refit(self, name: str, cfg: ItemConfig, now: float, last_ts: float | None) -> str:
+        item_id = self.item_ids.get(name) or self.store.item_id(name)
+        if item_id is None:
+            item_id = self.store.ensure_item(name, unit=cfg.unit, topic=cfg.topic, now=now)
+        self.item_ids[name] = item_id
+        since = None if last_ts is None else last_ts - cfg.window_s
+        rows = self.store.recent_readings(item_id, since_ts=since)
+        t = np.fromiter((r[0] for r in rows), float, len(rows))
+        y = np.fromiter((r[1] for r in rows), float, len(rows))
+        amb_t = amb_y = None
+        if cfg.ambient_topic:
+            arows = self.store.recent_readings(name + AMBIENT_SUFFIX, since_ts=since)
+            if arows:
+                amb_t = np.array([r[0] for r in arows])
+                amb_y = np.array([r[1] for r in arows])
+        mode = "measured" if amb_y is not None else ("known" if cfg.ambient is not None else "fitted")
+        try:
+            fc = self._predict(t, y, cfg.threshold_c, model=cfg.model, ambient=cfg.ambient_c,
+                               ambient_t=amb_t, ambient_y=amb_y, window_s=cfg.window_s,
+                               min_points=cfg.min_points)
+            if not fc.ok and len(rows) >= cfg.min_points:
+                self._log_error(name, "no forecast for %s: %s", name, fc.reason)
+        except Exception as exc:  # noqa: BLE001 - a failed fit is a result, not a crash
+            self._log_error(name, "fit of %s raised %s: %s", name, exc.__class__.__name__, exc)
+            fc = Forecast(threshold=cfg.threshold_c, model=cfg.model, ambient_mode=mode,
+                          n_points=len(rows), ok=False,
+                          reason=f"fit error: {exc.__class__.__name__}: {exc}"[:300])
+            if len(rows):
+                fc.t_last, fc.value_now = float(t.max()), float(y[np.argmax(t)])
+        state = classify(fc, now, last_ts, cfg, float(y[0]) if len(rows) else None)
+        body = to_item_units(fc.to_dict(), cfg.unit)
+        body.update(item=name, state=state, updated_at=rfc3339(now), unit=cfg.unit)
+        if cfg.site:
+            body["site"] = cfg.site
+        self.store.save_forecast(item_id, now, state, body, last_ts)
+        if self.publish is not None:
+            try:
+                self.publish(name, json.dumps(body))
+            except Exception:  # noqa: BLE001 - the store has it; the next refit republishes
+                self._log_error(name, "publishing the forecast of %s failed", name)
+        prev = self.previous.get(name)
+        self.previous[name] = body
+        for listener in list(self.listeners):
+            try:
+                listener(cfg, body, prev)
+            except Exception:  # noqa: BLE001 - a listener's failure is its own
+                log.exception("forecast listener %r failed on %s", listener, name)
+        return state
+
+    def _log_error(self, name: str, msg: str, *args: Any) -> None:
+        # Rate-limited per item, so a persistently failing item logs every few minutes.
+        now = time.monotonic()
+        if now - self._error_logged.get(name, -1e9) >= ERROR_LOG_EVERY_S:
+            self._error_logged[name] = now
+            log.warning(msg, *args, exc_info=log.isEnabledFor(logging.DEBUG))
+
+
+def _load_forecast() -> Callable[..., Forecast]:
+    """The predictors' forecast(), passing min_points only where it is accepted."""
+    from thermeta.predictors import forecast
+
+    params = inspect.signature(forecast).parameters
+    if "min_points" in params:
+        return forecast
+
+    def call(*args: Any, min_points: int = 8, **kw: Any) -> Forecast:
+        return forecast(*args, **kw)
+
+    return call

@@ -1,0 +1,210 @@
+"""The running service: broker -> writer -> store -> refits -> forecasts out (and plug-ins).
+
+    Service(config, clock=None).start() ... .stop()
+
+Threads: paho's network loop (hands messages to the writer), the writer (batches, commits, acks),
+APScheduler's worker (refits, retention, heartbeat), and any plug-in's own (the alert outbox).
+
+Plug-in seam: if a module ``thermeta.daemon.alerts`` exists with ``attach(service)``, it is called
+once the store is open; an object it returns gets ``start()`` before ingest starts and ``stop()``
+at shutdown.  Plug-ins use ``add_forecast_listener``, ``publish``, ``store``, ``config``,
+``clock`` and ``stats``.
+"""
+
+from __future__ import annotations
+
+import importlib
+import logging
+import os
+import threading
+import time
+from datetime import timezone
+from typing import Any
+
+from thermeta.daemon.clock import Clock, SystemClock
+from thermeta.daemon.config import Config
+from thermeta.daemon.ingest import MqttLink
+from thermeta.daemon.refit import Listener, Refitter
+from thermeta.daemon.topics import Router
+from thermeta.daemon.writer import Activity, Writer
+from thermeta.storage.store import Store, safe_url
+
+log = logging.getLogger("thermeta.service")
+
+PLUGINS = ("thermeta.daemon.alerts",)
+HEARTBEAT_S = 5.0
+RETENTION_EVERY_S = 3600.0
+
+
+class Service:
+    def __init__(self, config: Config, clock: Clock | None = None, store: Store | None = None):
+        self.config = config
+        self.clock: Clock = clock or SystemClock()
+        self.store = store or Store(config.storage.url)
+        self.router = Router(config.items)
+        self.activity = Activity()
+        self.refitter = Refitter(self.store, config, self.clock, self.activity,
+                                 publish=self._publish_forecast)
+        self.writer = Writer(self.store, self.router, config, self.clock, self._ack, self.activity)
+        self.link: MqttLink | None = None
+        self.scheduler: Any = None
+        self.plugins: list[Any] = []
+        self.started_at: float | None = None
+        self.stopped = threading.Event()
+        self._rate = {"t": time.monotonic(), "n": 0, "per_s": 0.0}
+
+    # -- what plug-ins use --------------------------------------------------------------------
+    def add_forecast_listener(self, cb: Listener) -> None:
+        """``cb(item_config, forecast_dict, previous_dict_or_None)`` after each item's refit."""
+        self.refitter.listeners.append(cb)
+
+    def publish(self, topic: str, payload: str | bytes, qos: int = 1, retain: bool = False):
+        if self.link is None:
+            raise RuntimeError("the service is not connected yet")
+        return self.link.publish(topic, payload, qos=qos, retain=retain)
+
+    @property
+    def stats(self) -> dict[str, Any]:
+        w = self.writer.counts
+        return {
+            "connected": bool(self.link and self.link.connected.is_set()),
+            "broker": f"{self.config.broker.host}:{self.config.broker.port}",
+            "readings_per_s": round(self._rate["per_s"], 2),
+            "readings": w["readings"],
+            "dead_letters": w["dead_letters"],
+            "backlog": self.writer.backlog(),
+            "refits": self.refitter.runs,
+            "last_refit_s": round(self.refitter.last_run_s, 3),
+        }
+
+    # -- life cycle ---------------------------------------------------------------------------
+    def start(self) -> None:
+        cfg = self.config
+        log.info("store %s", safe_url(cfg.storage.url))
+        self.store.create_all()
+        self._load_items()
+        self.refitter.load_previous()
+        self.writer.start()
+        self._attach_plugins()
+        self.link = MqttLink(cfg.broker, self.router.filters(), self.writer.submit, self.clock,
+                             cfg.publish.status_topic, {"pid": os.getpid()})
+        self.link.start()
+        self._start_scheduler()
+        self.started_at = self.clock.now()
+        log.info("watching %d topic filter(s); forecasts on %s/<item>", len(self.router.filters()),
+                 cfg.publish.topic_prefix)
+
+    def _load_items(self) -> None:
+        last = self.store.last_reading_times()
+        for it in self.config.items:
+            if not it.is_pattern:
+                self.activity.register(it.name, it, last.get(it.name))
+        for row in self.store.list_items("load"):
+            cfg = self.router.item_for(row["name"], row["topic"])
+            if cfg is not None:
+                self.activity.register(row["name"], cfg, last.get(row["name"]))
+
+    def _attach_plugins(self) -> None:
+        for name in PLUGINS:
+            try:
+                mod = importlib.import_module(name)
+            except ModuleNotFoundError as exc:
+                if exc.name != name:
+                    raise
+                continue
+            attach = getattr(mod, "attach", None)
+            if attach is None:
+                continue
+            plugin = attach(self)
+            if plugin is not None:
+                plugin.start()
+                self.plugins.append(plugin)
+                log.info("plug-in %s started", name)
+
+    def _start_scheduler(self) -> None:
+        from apscheduler.events import EVENT_JOB_ERROR, EVENT_JOB_MAX_INSTANCES, EVENT_JOB_MISSED
+        from apscheduler.schedulers.background import BackgroundScheduler
+
+        rate = self.clock.rate
+        sched = BackgroundScheduler(timezone=timezone.utc)
+        opts = {"max_instances": 1, "coalesce": True, "misfire_grace_time": None}
+        refit_s = self.config.fit.refit_every_s / rate
+        from datetime import datetime, timedelta
+
+        first = datetime.now(timezone.utc) + timedelta(seconds=min(1.0, refit_s))
+        sched.add_job(self.refitter.run_once, "interval", seconds=refit_s, id="refit",
+                      next_run_time=first, **opts)
+        sched.add_job(self._heartbeat, "interval", seconds=HEARTBEAT_S, id="heartbeat",
+                      next_run_time=datetime.now(timezone.utc), **opts)
+        if self.config.storage.retention_days > 0:
+            sched.add_job(self.prune, "interval", seconds=RETENTION_EVERY_S / rate, id="retention",
+                          next_run_time=first + timedelta(seconds=5), **opts)
+
+        def on_event(event) -> None:
+            if event.code == EVENT_JOB_ERROR:
+                log.error("scheduled job %s failed: %r", event.job_id, event.exception)
+            else:
+                log.warning("scheduled job %s skipped: the previous run is still going",
+                            event.job_id)
+
+        sched.add_listener(on_event, EVENT_JOB_ERROR | EVENT_JOB_MISSED | EVENT_JOB_MAX_INSTANCES)
+        sched.start()
+        self.scheduler = sched
+
+    def refit_now(self) -> dict[str, str]:
+        """Run one refit round at once (tests, the demo)."""
+        return self.refitter.run_once()
+
+    def prune(self) -> None:
+        keep_s = self.config.storage.retention_days * 86400.0
+        gone = self.store.prune(self.clock.now() - keep_s)
+        if any(gone.values()):
+            log.info("retention removed %(readings)d readings, %(forecasts)d forecasts, "
+                     "%(dead_letters)d dead letters", gone)
+
+    def _heartbeat(self, state: str = "running") -> None:
+        now_m = time.monotonic()
+        n = self.writer.counts["readings"]
+        dt = now_m - self._rate["t"]
+        if dt > 0:
+            self._rate.update(per_s=(n - self._rate["n"]) / dt, t=now_m, n=n)
+        body = dict(self.stats, state=state, pid=os.getpid(), heartbeat_at=self.clock.now(),
+                    started_at=self.started_at)
+        try:
+            self.store.set_meta("daemon", body)
+        except Exception:  # noqa: BLE001 - the heartbeat is best effort
+            log.exception("could not write the heartbeat")
+
+    def stop(self) -> None:
+        """Stop taking messages, write and acknowledge what is queued, publish offline, close."""
+        if self.stopped.is_set():
+            return
+        log.info("stopping: flushing queued readings")
+        if self.link is not None:
+            self.link.stop_receiving()
+        self.writer.stop()
+        if self.scheduler is not None:
+            self.scheduler.shutdown(wait=True)
+        for plugin in self.plugins:
+            try:
+                plugin.stop()
+            except Exception:  # noqa: BLE001
+                log.exception("plug-in %r did not stop cleanly", plugin)
+        self._heartbeat("stopped")
+        if self.link is not None:
+            self.link.close()
+        self.store.close()
+        self.stopped.set()
+        log.info("stopped: %d readings and %d dead letters written this run",
+                 self.writer.counts["readings"], self.writer.counts["dead_letters"])
+
+    # -- internals ----------------------------------------------------------------------------
+    def _ack(self, batch) -> None:
+        if self.link is not None:
+            self.link.ack(batch)
+
+    def _publish_forecast(self, item: str, payload: str) -> None:
+        if self.link is None:
+            return
+        pub = self.config.publish
+        self.link.publish(f"{pub.topic_prefix}/{item}", payload, qos=pub.qos, retain=pub.retain)

@@ -1,0 +1,253 @@
+"""The batched writer: messages in, readings and dead letters committed, then acknowledged.
+
+The MQTT network thread only puts messages on this writer's queue.  Here they are parsed, mapped to
+items and written in batches: a batch is committed when it holds ``batch_size`` messages, when
+``batch_ms`` has passed since its first message, or when the queue has been quiet for a moment
+(the broker stops sending when its in-flight window is full of unacknowledged messages, so
+waiting longer would only stall).  Only after the commit are the messages acknowledged; if the
+commit fails the batch is retried, unacknowledged, until the store takes it.
+"""
+
+from __future__ import annotations
+
+import logging
+import queue
+import threading
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Any
+
+from thermeta.daemon.clock import Clock
+from thermeta.daemon.config import Config, ItemConfig
+from thermeta.daemon.payloads import Limits, PayloadError, excerpt, parse_payload
+from thermeta.daemon.topics import Route, Router
+from thermeta.storage.schema import FLAG_RECEIPT_TS
+from thermeta.storage.store import Store, StoreError
+
+log = logging.getLogger("thermeta.writer")
+
+IDLE_FLUSH_S = 0.005
+DEAD_LOG_EVERY_S = 10.0
+
+
+@dataclass(frozen=True)
+class Inbound:
+    """One received message, with what is needed to acknowledge it later."""
+
+    topic: str
+    payload: bytes
+    received_at: float
+    mid: int = 0
+    qos: int = 0
+    generation: int = 0  # which broker connection delivered it
+
+
+Ack = Callable[[list[Inbound]], None]
+
+
+@dataclass
+class Activity:
+    """What the writer has stored, for the refitter: newest reading per item and which items
+    have new readings since the refitter last looked."""
+
+    last_ts: dict[str, float] = field(default_factory=dict)
+    items: dict[str, ItemConfig] = field(default_factory=dict)
+    _dirty: set[str] = field(default_factory=set)
+    _lock: threading.Lock = field(default_factory=threading.Lock)
+
+    def note(self, name: str, cfg: ItemConfig, ts: float | None) -> None:
+        """New readings stored for ``name`` (ts None: only its ambient probe's)."""
+        with self._lock:
+            if ts is not None:
+                self.items.setdefault(name, cfg)
+            if ts is not None and ts > self.last_ts.get(name, float("-inf")):
+                self.last_ts[name] = ts
+            self._dirty.add(name)
+
+    def register(self, name: str, cfg: ItemConfig, last_ts: float | None) -> None:
+        with self._lock:
+            self.items.setdefault(name, cfg)
+            if last_ts is not None:
+                self.last_ts[name] = max(last_ts, self.last_ts.get(name, float("-inf")))
+
+    def take_dirty(self) -> set[str]:
+        with self._lock:
+            out, self._dirty = self._dirty, set()
+            return out
+
+    def snapshot(self) -> tuple[dict[str, ItemConfig], dict[str, float]]:
+        with self._lock:
+            return dict(self.items), dict(self.last_ts)
+
+
+class Writer(threading.Thread):
+    """Consumes :class:`Inbound` messages; call :meth:`submit` from any thread."""
+
+    def __init__(self, store: Store, router: Router, config: Config, clock: Clock, ack: Ack,
+                 activity: Activity):
+        super().__init__(name="thermeta-writer", daemon=True)
+        self.store = store
+        self.router = router
+        self.config = config
+        self.clock = clock
+        self.ack = ack
+        self.activity = activity
+        self.batch_size = config.storage.batch_size
+        self.batch_s = config.storage.batch_ms / 1000.0
+        self._q: queue.SimpleQueue[Inbound | None] = queue.SimpleQueue()
+        self._stopping = threading.Event()
+        self._item_ids: dict[str, int] = {}
+        self._limits: dict[str, Limits] = {}
+        self.counts = {"messages": 0, "readings": 0, "dead_letters": 0, "batches": 0,
+                       "store_errors": 0}
+        self._dead_since_log = 0
+        self._dead_last_log = 0.0
+        self._dead_latest = ""
+
+    # -- called from other threads ------------------------------------------------------------
+    def submit(self, msg: Inbound) -> None:
+        self._q.put(msg)
+
+    def stop(self, timeout: float = 30.0) -> None:
+        """Write and acknowledge everything already queued, then end the thread."""
+        self._stopping.set()
+        self._q.put(None)
+        self.join(timeout)
+
+    def backlog(self) -> int:
+        return self._q.qsize()
+
+    # -- the thread ---------------------------------------------------------------------------
+    def run(self) -> None:
+        while True:
+            batch, last = self._collect()
+            if batch:
+                self._write(batch)
+            if last:
+                return
+
+    def _collect(self) -> tuple[list[Inbound], bool]:
+        first = self._q.get()
+        if first is None:
+            return [], True
+        batch = [first]
+        deadline = time.monotonic() + self.batch_s
+        while len(batch) < self.batch_size:
+            wait = min(IDLE_FLUSH_S, deadline - time.monotonic())
+            if wait <= 0:
+                break
+            try:
+                msg = self._q.get(timeout=wait)
+            except queue.Empty:
+                break
+            if msg is None:
+                return batch, True
+            batch.append(msg)
+        return batch, False
+
+    def _write(self, batch: list[Inbound]) -> None:
+        readings: list[dict[str, Any]] = []
+        dead: list[dict[str, Any]] = []
+        seen: list[tuple[str, ItemConfig, float | None]] = []
+        for msg in batch:
+            try:
+                self._convert(msg, readings, dead, seen)
+            except StoreError:
+                raise
+            except Exception as exc:  # noqa: BLE001 - one odd message must not stop ingest
+                dead.append(self._dead(msg, None, f"internal error: {exc.__class__.__name__}"))
+                log.exception("unexpected error handling a message on %s", msg.topic)
+        delay = 0.5
+        while True:
+            try:
+                self.store.write_batch(readings, dead)
+                break
+            except StoreError as exc:
+                self.counts["store_errors"] += 1
+                log.error("store write failed (%s); retrying in %.1f s, nothing acknowledged",
+                          exc, delay)
+                time.sleep(delay)
+                delay = min(delay * 2, 30.0)
+        self.counts["batches"] += 1
+        self.counts["messages"] += len(batch)
+        self.counts["readings"] += len(readings)
+        self.counts["dead_letters"] += len(dead)
+        for name, cfg, ts in seen:
+            self.activity.note(name, cfg, ts)
+        try:
+            self.ack(batch)
+        except Exception:  # noqa: BLE001 - unacked messages come back and are absorbed
+            log.exception("acknowledging %d messages failed", len(batch))
+        if dead:
+            self._log_dead(len(dead), dead[-1])
+
+    def _convert(self, msg: Inbound, readings: list, dead: list, seen: list) -> None:
+        route = self.router.resolve(msg.topic)
+        if route is None:
+            dead.append(self._dead(msg, None, "no item is mapped to this topic"))
+            return
+        name = route.store_name
+        limits = self._limits_for(route)
+        try:
+            parsed = parse_payload(msg.payload, msg.received_at, route.item.unit, limits,
+                                   route.item.senml_name)
+        except PayloadError as exc:
+            dead.append(self._dead(msg, name, str(exc)))
+            return
+        item_id = self._item_id(route, name)
+        newest = max(r.ts for r in parsed)
+        for r in parsed:
+            readings.append({"item_id": item_id, "ts": r.ts, "value_c": r.value_c,
+                             "flags": FLAG_RECEIPT_TS if r.receipt_ts else 0,
+                             "received_at": msg.received_at})
+        if route.kind == "ambient":
+            seen.append((route.item.name, route.item, None))
+        else:
+            seen.append((name, route.item, newest))
+
+    def _limits_for(self, route: Route) -> Limits:
+        key = route.store_name
+        lim = self._limits.get(key)
+        if lim is None:
+            lo, hi = route.item.plausible_c
+            lim = Limits(low_c=lo, high_c=hi, max_future_s=self.config.ingest.max_future_s,
+                         max_bytes=self.config.ingest.max_payload_bytes)
+            self._limits[key] = lim
+        return lim
+
+    def _item_id(self, route: Route, name: str) -> int:
+        item_id = self._item_ids.get(name)
+        if item_id is None:
+            delay = 0.5
+            while True:
+                try:
+                    item_id = self.store.ensure_item(name, kind=route.kind, unit=route.item.unit,
+                                                     topic=route.item.topic if route.kind == "load"
+                                                     else route.item.ambient_topic,
+                                                     now=self.clock.now())
+                    break
+                except Exception as exc:  # noqa: BLE001 - the store may be briefly unavailable
+                    log.error("cannot register item %s (%s); retrying in %.1f s", name, exc, delay)
+                    time.sleep(delay)
+                    delay = min(delay * 2, 30.0)
+            self._item_ids[name] = item_id
+            if route.kind == "load":
+                log.info("new item %s on %s", name, route.item.topic)
+        return item_id
+
+    def _dead(self, msg: Inbound, item: str | None, reason: str) -> dict[str, Any]:
+        return {"received_at": msg.received_at, "topic": msg.topic[:1024], "item": item,
+                "reason": reason[:300],
+                "payload": excerpt(msg.payload, self.config.ingest.dead_letter_chars)}
+
+    def _log_dead(self, n: int, latest: dict[str, Any]) -> None:
+        # Rate-limited: a flood of bad payloads gives one line per interval, not one per message.
+        self._dead_since_log += n
+        self._dead_latest = f"{latest['topic']}: {latest['reason']}"
+        now = time.monotonic()
+        if now - self._dead_last_log >= DEAD_LOG_EVERY_S:
+            log.warning("%d payload(s) set aside as dead letters (latest %s)", self._dead_since_log,
+                        self._dead_latest)
+            self._dead_since_log = 0
+            self._dead_last_log = now

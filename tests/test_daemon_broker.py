@@ -1,0 +1,310 @@
+"""`thermeta run` against a real Mosquitto (the `broker` fixture): forecasts out, and no reading
+lost or doubled across a daemon kill -9, a broker restart, or a flood of malformed payloads."""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import threading
+import time
+from pathlib import Path
+
+import numpy as np
+import paho.mqtt.client as mqtt
+import pytest
+from scipy.integrate import solve_ivp
+from sqlalchemy import create_engine, text
+
+pytestmark = pytest.mark.broker
+
+REPO = Path(__file__).resolve().parents[1]
+
+
+@pytest.fixture
+def durable_broker(broker):
+    """The `broker` fixture, made able to write its persistence file when run as root.
+
+    Mosquitto started as root switches to the `mosquitto` user, which cannot enter pytest's 0700
+    temp folders: no persistence file would be written and a restart would lose every session.
+    """
+    if os.geteuid() == 0 and "user root" not in broker.conf.read_text():
+        d = broker.workdir
+        os.chmod(d, 0o777)
+        for parent in list(d.parents)[:3]:
+            os.chmod(parent, os.stat(parent).st_mode | 0o011)
+        broker.restart()
+    return broker
+
+
+def write_config(tmp_path: Path, broker, db_url: str | None = None, *, items: str,
+                 client_id: str = "thermeta-test", refit_every: float = 1.0) -> Path:
+    db_url = db_url or f"sqlite:///{tmp_path / 'store.db'}"
+    p = tmp_path / "thermeta.toml"
+    p.write_text(
+        f'[broker]\nhost = "{broker.host}"\nport = {broker.port}\nclient_id = "{client_id}"\n\n'
+        f'[storage]\nurl = "{db_url}"\nbatch_size = 200\nbatch_ms = 50\n\n'
+        f"[fit]\nrefit_every = {refit_every}\nwindow = 7200\n\n{items}"
+    )
+    return p
+
+
+class Daemon:
+    """`thermeta run` as its own process, as an operator starts it."""
+
+    def __init__(self, config: Path, log: Path):
+        self.config, self.log = config, log
+        self.proc: subprocess.Popen | None = None
+
+    def start(self) -> None:
+        self._out = open(self.log, "a")
+        self.proc = subprocess.Popen(
+            [sys.executable, "-m", "thermeta.daemon.cli", "run", "--config", str(self.config)],
+            stdout=self._out, stderr=subprocess.STDOUT, cwd=self.config.parent)
+        wait_for(lambda: self.log.read_text().count("connected to") > self.connects, 20, self.log)
+        self.connects = self.log.read_text().count("connected to")
+
+    connects = 0
+
+    def kill9(self) -> None:
+        self.proc.send_signal(signal.SIGKILL)
+        self.proc.wait(10)
+        self._out.close()
+
+    def stop(self) -> int:
+        if self.proc and self.proc.poll() is None:
+            self.proc.send_signal(signal.SIGTERM)
+            try:
+                return self.proc.wait(20)
+            except subprocess.TimeoutExpired:
+                self.proc.kill()
+                self.proc.wait()
+                return -9
+        return self.proc.returncode if self.proc else 0
+
+
+def wait_for(cond, timeout: float, log: Path | None = None, step: float = 0.1):
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        got = cond()
+        if got:
+            return got
+        time.sleep(step)
+    tail = log.read_text()[-3000:] if log and log.exists() else ""
+    raise AssertionError(f"condition not met within {timeout} s\n{tail}")
+
+
+def count_readings(db_url: str, item: str) -> int:
+    eng = create_engine(db_url)
+    try:
+        with eng.connect() as conn:
+            return conn.execute(text(
+                "SELECT count(*) FROM readings r JOIN items i ON i.id = r.item_id WHERE i.name = :n"),
+                {"n": item}).scalar_one()
+    finally:
+        eng.dispose()
+
+
+def stored_times(db_url: str, item: str) -> list[float]:
+    eng = create_engine(db_url)
+    try:
+        with eng.connect() as conn:
+            return [r[0] for r in conn.execute(text(
+                "SELECT r.ts FROM readings r JOIN items i ON i.id = r.item_id WHERE i.name = :n "
+                "ORDER BY r.ts"), {"n": item})]
+    finally:
+        eng.dispose()
+
+
+def retained(broker, topic: str) -> dict | None:
+    r = subprocess.run(["mosquitto_sub", "-h", broker.host, "-p", str(broker.port), "-t", topic,
+                        "-C", "1", "-W", "2"], capture_output=True, text=True)
+    return json.loads(r.stdout) if r.returncode == 0 and r.stdout.strip() else None
+
+
+class Publisher:
+    """A paho QoS 1 publisher that waits for every PUBACK and resends a chunk after a broker
+    outage (resent copies are duplicates the store must absorb)."""
+
+    def __init__(self, broker):
+        self.c = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id="h3-test-publisher")
+        self.c.reconnect_delay_set(0.2, 1)
+        self.c.connect(broker.host, broker.port)
+        self.c.loop_start()
+
+    def send(self, messages: list[tuple[str, str]], chunk: int = 100, pace_s: float = 0.0) -> None:
+        for i in range(0, len(messages), chunk):
+            part = messages[i:i + chunk]
+            while True:
+                infos = [self.c.publish(t, p, qos=1) for t, p in part]
+                try:
+                    for info in infos:
+                        info.wait_for_publish(5)
+                    if all(info.is_published() for info in infos):
+                        break
+                except (RuntimeError, ValueError):
+                    pass
+                time.sleep(0.3)  # broker away: try the chunk again once it is back
+            if pace_s:
+                time.sleep(pace_s)
+
+    def close(self) -> None:
+        self.c.disconnect()
+        self.c.loop_stop()
+
+
+def reading_messages(topic: str, t0: float, n: int, start: int = 0) -> list[tuple[str, str]]:
+    return [(topic, json.dumps({"ts": t0 + i, "value": 3.0 + 0.001 * i})) for i in range(start, n)]
+
+
+def test_warming_curve_forecast_is_retained_and_matches_the_truth(broker, tmp_path):
+    """A load warming toward a known ambient, published with mosquitto_pub: the retained forecast
+    read back with mosquitto_sub gives the crossing time of the exact curve.
+
+    Truth: Newton's law of cooling dT/dt = -k (T - Ta) integrated by scipy's solve_ivp (rtol
+    1e-10), with a terminal event at the threshold (the published law; a general-purpose solver).
+    """
+    k_per_s, ambient, t_start, threshold = 1.0 / 14400.0, 25.0, 2.0, 8.0
+    t_rel = np.arange(0.0, 3600.0, 60.0)  # one hour of minute readings
+    sol = solve_ivp(lambda t, T: -k_per_s * (T - ambient), (0, 40000), [t_start], rtol=1e-10,
+                    atol=1e-12, dense_output=True,
+                    events=lambda t, T: T[0] - threshold)
+    true_crossing_rel = float(sol.t_events[0][0])
+    rng = np.random.default_rng(7)
+    values = sol.sol(t_rel)[0] + rng.normal(0.0, 0.02, t_rel.size)
+    t0 = time.time() - t_rel[-1]
+    cfg = write_config(tmp_path, broker, items=(
+        '[[item]]\nname = "reefer-07"\ntopic = "yard/reefer-07/load"\nthreshold = 8.0\n'
+        'ambient = 25.0\n'))
+    daemon = Daemon(cfg, tmp_path / "daemon.log")
+    daemon.start()
+    try:
+        lines = "\n".join(json.dumps({"ts": round(t0 + tr, 3), "value": round(float(v), 4)})
+                          for tr, v in zip(t_rel, values))
+        subprocess.run(["mosquitto_pub", "-h", broker.host, "-p", str(broker.port), "-q", "1",
+                        "-t", "yard/reefer-07/load", "-l"], input=lines + "\n", text=True,
+                       check=True, timeout=20)
+        fc = wait_for(lambda: (f := retained(broker, "thermeta/forecast/reefer-07"))
+                      and f["n_points"] + f["n_outliers"] == t_rel.size and f, 20, daemon.log)
+        status = retained(broker, "thermeta/status")
+    finally:
+        assert daemon.stop() == 0
+    assert fc["item"] == "reefer-07" and fc["state"] == "approaching"
+    assert fc["ambient_mode"] == "known" and fc["threshold"] == 8.0
+    true_eta_s = true_crossing_rel - t_rel[-1]
+    assert fc["eta_s"] == pytest.approx(true_eta_s, rel=0.05)
+    from thermeta.daemon.timefmt import parse_time
+
+    assert parse_time(fc["crossing_at"]) == pytest.approx(t0 + true_crossing_rel, abs=0.05 * true_eta_s)
+    assert status["state"] == "online"
+    assert retained(broker, "thermeta/status")["state"] == "offline"  # clean stop says so
+
+
+def test_kill_9_mid_stream_loses_and_doubles_nothing(broker, tmp_path):
+    """kill -9 while readings stream in, more published while the daemon is down, then a
+    restart: every reading is stored exactly once (manual acks after commit + a persistent
+    session + the unique (item, ts) key)."""
+    db = f"sqlite:///{tmp_path / 'store.db'}"
+    cfg = write_config(tmp_path, broker, db, items=(
+        '[[item]]\nname = "probe-{2}"\ntopic = "cellar/+/t"\nthreshold = 8.0\n'))
+    daemon = Daemon(cfg, tmp_path / "daemon.log")
+    daemon.start()
+    n, t0 = 3000, time.time() - 4000
+    msgs = reading_messages("cellar/a1/t", t0, n)
+    pub = Publisher(broker)
+    try:
+        th = threading.Thread(target=pub.send, args=(msgs[:2000],), kwargs={"pace_s": 0.01})
+        th.start()
+        wait_for(lambda: count_readings(db, "probe-a1") >= 300, 20, daemon.log, step=0.02)
+        daemon.kill9()
+        th.join(60)
+        mid = count_readings(db, "probe-a1")
+        assert mid < 2000  # the kill really came mid-stream
+        pub.send(msgs[2000:2500])  # published while the daemon is down
+        daemon.start()
+        pub.send(msgs[2500:])
+        wait_for(lambda: count_readings(db, "probe-a1") >= n, 30, daemon.log)
+        time.sleep(0.5)
+    finally:
+        pub.close()
+        assert daemon.stop() == 0
+    assert stored_times(db, "probe-a1") == [t0 + i for i in range(n)]
+
+
+def test_broker_restart_mid_stream_loses_and_doubles_nothing(durable_broker, tmp_path):
+    """The broker restarts (keeping its persistence file) while readings stream in: the daemon
+    reconnects, resumes its session, and every reading is stored exactly once."""
+    broker = durable_broker
+    db = f"sqlite:///{tmp_path / 'store.db'}"
+    cfg = write_config(tmp_path, broker, db, items=(
+        '[[item]]\nname = "walkin"\ntopic = "kitchen/walkin/t"\nthreshold = 5.0\n'))
+    daemon = Daemon(cfg, tmp_path / "daemon.log")
+    daemon.start()
+    n, t0 = 2000, time.time() - 3000
+    msgs = reading_messages("kitchen/walkin/t", t0, n)
+    pub = Publisher(broker)
+    try:
+        th = threading.Thread(target=pub.send, args=(msgs,), kwargs={"pace_s": 0.05})
+        th.start()
+        wait_for(lambda: count_readings(db, "walkin") >= 300, 20, daemon.log, step=0.02)
+        at_restart = count_readings(db, "walkin")
+        broker.restart()
+        th.join(90)
+        wait_for(lambda: count_readings(db, "walkin") >= n, 40, daemon.log)
+        time.sleep(0.5)
+        log = daemon.log.read_text()
+    finally:
+        pub.close()
+        assert daemon.stop() == 0
+    assert at_restart < n  # the restart really came mid-stream
+    assert "session resumed" in log
+    assert stored_times(db, "walkin") == [t0 + i for i in range(n)]
+
+
+def test_thousand_malformed_payloads_are_dead_lettered_and_forecasting_goes_on(broker, tmp_path):
+    """1,000 malformed payloads mixed into good readings all land in dead letters (acked, not
+    redelivered), and the item's forecast keeps being updated."""
+    db = f"sqlite:///{tmp_path / 'store.db'}"
+    cfg = write_config(tmp_path, broker, db, items=(
+        '[[item]]\nname = "chiller"\ntopic = "kitchen/chiller/core"\nthreshold = 5.0\n'
+        'ambient = -2.0\n'))
+    daemon = Daemon(cfg, tmp_path / "daemon.log")
+    daemon.start()
+    t0 = time.time() - 1200
+    noise = np.random.default_rng(11).normal(0.0, 0.03, 120)
+    good = [json.dumps({"ts": t0 + 10 * i, "value": -2 + 60 * np.exp(-(10 * i) / 1800) + noise[i]})
+            for i in range(120)]
+    kinds = ["NaN", '{"value": "hot"}', "\xff-not-text", '{"ts": 99999999999, "value": 1}',
+             '{"value": 1e9}', "[{", '{"value": Infinity}', "x" * 20000]
+    bad = [kinds[i % len(kinds)] for i in range(1000)]
+    try:
+        first = good[:60]
+        subprocess.run(["mosquitto_pub", "-p", str(broker.port), "-q", "1", "-t",
+                        "kitchen/chiller/core", "-l"], input="\n".join(first) + "\n",
+                       text=True, check=True, timeout=20)
+        wait_for(lambda: (f := retained(broker, "thermeta/forecast/chiller")) and
+                 f["n_points"] + f["n_outliers"] == 60, 20, daemon.log)
+        pub = Publisher(broker)
+        pub.send([("kitchen/chiller/core", b) for b in bad] +
+                 [("kitchen/chiller/core", g) for g in good[60:]])
+        pub.close()
+        fc = wait_for(lambda: (f := retained(broker, "thermeta/forecast/chiller")) and
+                      f["n_points"] + f["n_outliers"] == 120 and f, 30, daemon.log)
+        out = subprocess.run([sys.executable, "-m", "thermeta.daemon.cli", "status", "--config",
+                              str(cfg), "--json"], capture_output=True, text=True, timeout=30)
+    finally:
+        assert daemon.stop() == 0
+    info = json.loads(out.stdout)
+    assert info["dead_letters"] == 1000 and info["readings"] == 120
+    assert info["daemon"]["running"] is True
+    assert info["per_item"][0]["item"] == "chiller"
+    assert fc["state"] in ("approaching", "crossed") and fc["fit_ok"] is True
+    eng = create_engine(db)
+    with eng.connect() as conn:
+        reasons = dict(conn.execute(text(
+            "SELECT reason, count(*) FROM dead_letters GROUP BY reason")).all())
+    eng.dispose()
+    assert sum(reasons.values()) == 1000 and len(reasons) == len(kinds)
+    assert "oversized payload (20000 bytes > 16384)" in reasons
