@@ -52,11 +52,14 @@ def classify(fc: Forecast, now: float, last_ts: float | None, cfg: ItemConfig,
     if now - last_ts > cfg.silence_s:
         return "stale"
     thr = cfg.threshold_c
+    v = fc.value_now
     if fc.ok and fc.eta_s == 0:
+        return "crossed"
+    if fc.ok and v is not None and ((fc.direction == "rising" and v >= thr)
+                                    or (fc.direction == "falling" and v <= thr)):
         return "crossed"
     if not fc.ok:
         # Without a fit, the direction of travel is from the window's first reading to its last.
-        v = fc.value_now
         if first_value_c is not None and v is not None and (first_value_c - thr) * (v - thr) < 0:
             return "crossed"
         return "learning"

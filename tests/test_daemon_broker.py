@@ -308,3 +308,47 @@ def test_thousand_malformed_payloads_are_dead_lettered_and_forecasting_goes_on(b
     eng.dispose()
     assert sum(reasons.values()) == 1000 and len(reasons) == len(kinds)
     assert "oversized payload (20000 bytes > 16384)" in reasons
+
+
+@pytest.mark.postgres
+def test_daemon_on_postgresql(broker, pg_url, tmp_path):
+    """The same ingest path on PostgreSQL (psycopg): readings stored once, dead letters set aside,
+    a retained forecast out, and `thermeta status` reads it all back."""
+    import uuid
+
+    schema = f"h3d_{uuid.uuid4().hex[:10]}"
+    admin = create_engine(pg_url)
+    with admin.begin() as conn:
+        conn.execute(text(f"CREATE SCHEMA {schema}"))
+    db = f"{pg_url}{'&' if '?' in pg_url else '?'}options=-csearch_path%3D{schema}"
+    cfg = write_config(tmp_path, broker, db, items=(
+        '[[item]]\nname = "blast-{2}"\ntopic = "kitchen/+/core"\nthreshold = 21.0\n'
+        'ambient = -5.0\n'))
+    daemon = Daemon(cfg, tmp_path / "daemon.log")
+    daemon.start()
+    try:
+        t0 = time.time() - 1800
+        noise = np.random.default_rng(13).normal(0.0, 0.03, 180)
+        lines = [json.dumps({"ts": t0 + 10 * i, "value": -5 + 62 * np.exp(-(10 * i) / 3600) + noise[i]})
+                 for i in range(180)] + ["not a reading"] * 20 + [json.dumps({"ts": t0, "value": 57.0})]
+        subprocess.run(["mosquitto_pub", "-p", str(broker.port), "-q", "1", "-t", "kitchen/b1/core",
+                        "-l"], input="\n".join(lines) + "\n", text=True, check=True, timeout=20)
+        fc = wait_for(lambda: (f := retained(broker, "thermeta/forecast/blast-b1")) and
+                      f["n_points"] + f["n_outliers"] == 180 and f, 30, daemon.log)
+        out = subprocess.run([sys.executable, "-m", "thermeta.daemon.cli", "status", "--config",
+                              str(cfg), "--json"], capture_output=True, text=True, timeout=30)
+    finally:
+        assert daemon.stop() == 0
+        eng = create_engine(db)
+        with eng.connect() as conn:
+            n = conn.execute(text("SELECT count(*) FROM readings")).scalar_one()
+            d = conn.execute(text("SELECT count(*) FROM dead_letters")).scalar_one()
+        eng.dispose()
+        with admin.begin() as conn:
+            conn.execute(text(f"DROP SCHEMA {schema} CASCADE"))
+        admin.dispose()
+    assert (n, d) == (180, 20)  # the repeated first reading was absorbed
+    assert fc["state"] == "approaching" and fc["fit_ok"] is True
+    info = json.loads(out.stdout)
+    assert info["readings"] == 180 and info["dead_letters"] == 20
+    assert info["per_item"][0]["item"] == "blast-b1" and info["per_item"][0]["state"] == "approaching"

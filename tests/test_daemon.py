@@ -1,0 +1,231 @@
+"""The daemon's logic without a broker: topic routing, the writer's batches and acks, refit states,
+failure isolation, listeners and units.  A real SQLite file is the store."""
+
+from __future__ import annotations
+
+import json
+import math
+
+import numpy as np
+import pytest
+
+from thermeta.daemon.clock import ManualClock
+from thermeta.daemon.config import parse_config
+from thermeta.daemon.refit import Refitter
+from thermeta.daemon.topics import Router, match, render
+from thermeta.daemon.writer import Activity, Inbound, Writer
+from thermeta.storage.store import Store
+
+T0 = 1_800_000_000.0
+
+
+def config(tmp_path, items: str, extra: str = ""):
+    text = f'[storage]\nurl = "sqlite:///{tmp_path / "s.db"}"\nbatch_size = 50\nbatch_ms = 20\n' \
+           f"{extra}\n{items}"
+    return parse_config(__import__("tomllib").loads(text), "t.toml", text)
+
+
+def test_topic_filters_match_like_mqtt():
+    """+ matches one level, # the rest including the parent level (MQTT 3.1.1 sec. 4.7)."""
+    assert match("yard/+/load", "yard/r7/load") and not match("yard/+/load", "yard/r7/x/load")
+    assert match("site/#", "site") and match("site/#", "site/a/b") and not match("site/#", "other")
+    assert render("reefer-{2}", "yard/07/load") == "reefer-07"
+    assert render("{3}", "a/b") is None
+
+
+def test_router_resolves_exact_then_patterns_with_ambient(tmp_path):
+    """Exact topics win; wildcard items get concrete names; ambient topics route to their item."""
+    cfg = config(tmp_path, '''
+[[item]]
+name = "reefer-07"
+topic = "yard/07/load"
+threshold = 8.0
+
+[[item]]
+name = "reefer-{2}"
+topic = "yard/+/load"
+ambient_topic = "yard/+/air"
+threshold = 8.0
+''')
+    r = Router(cfg.items)
+    assert r.resolve("yard/07/load").item.name == "reefer-07"
+    got = r.resolve("yard/11/load")
+    assert (got.item.name, got.kind, got.item.ambient_topic) == ("reefer-11", "load", "yard/11/air")
+    amb = r.resolve("yard/11/air")
+    assert (amb.item.name, amb.kind, amb.store_name) == ("reefer-11", "ambient", "reefer-11.ambient")
+    assert r.resolve("elsewhere/x") is None
+    assert set(r.filters()) == {"yard/07/load", "yard/+/load", "yard/+/air"}
+
+
+def make_writer(tmp_path, items: str):
+    cfg = config(tmp_path, items)
+    store = Store(cfg.storage.url)
+    store.create_all()
+    acked: list[list[int]] = []
+    act = Activity()
+    w = Writer(store, Router(cfg.items), cfg, ManualClock(T0), lambda b: acked.append(
+        [m.mid for m in b]), act)
+    return w, store, acked, act
+
+
+def test_writer_commits_then_acks_in_arrival_order(tmp_path):
+    """Every message is acknowledged after its batch commits, in the order received; bad ones are
+    dead letters (acknowledged too), duplicates are stored once."""
+    w, store, acked, act = make_writer(tmp_path, '[[item]]\nname = "p-{2}"\ntopic = "s/+/t"\nthreshold = 5\n')
+    w.start()
+    mids = []
+    for i in range(120):
+        payload = b"garbage" if i % 10 == 0 else json.dumps({"ts": T0 - 1000 + i // 2, "value": 3.0}).encode()
+        w.submit(Inbound("s/a/t", payload, T0, mid=i + 1, qos=1))
+        mids.append(i + 1)
+    w.submit(Inbound("nowhere", b"1", T0, mid=999, qos=1))
+    w.stop()
+    assert [m for batch in acked for m in batch] == mids + [999]
+    counts = store.counts()
+    assert counts["dead_letters"] == 13  # 12 garbage + 1 unmapped topic
+    assert counts["readings"] == len({(i // 2) for i in range(120) if i % 10})
+    assert act.take_dirty() == {"p-a"} and act.last_ts["p-a"] == T0 - 1000 + 59
+    store.close()
+
+
+def warming(t_rel, k=1 / 7200, t_start=2.0, amb=25.0):
+    # Newton's law of cooling, closed form: T = Ta + (T0 - Ta) e^(-k t)
+    return amb + (t_start - amb) * np.exp(-k * t_rel)
+
+
+def seeded_store(tmp_path, items: str, series: dict[str, tuple[np.ndarray, np.ndarray]]):
+    cfg = config(tmp_path, items)
+    store = Store(cfg.storage.url)
+    store.create_all()
+    act = Activity()
+    router = Router(cfg.items)
+    for name, (t, y) in series.items():
+        it = router.by_name[name]
+        iid = store.ensure_item(name, unit=it.unit, topic=it.topic, now=T0)
+        store.write_batch([dict(item_id=iid, ts=float(a), value_c=float(b), flags=0, received_at=T0)
+                           for a, b in zip(t, y)])
+        act.note(name, it, float(t.max()))
+    return cfg, store, act
+
+
+ITEMS = '''
+[[item]]
+name = "warm"
+topic = "a/warm"
+threshold = 8.0
+ambient = 25.0
+horizon = 7200
+
+[[item]]
+name = "far"
+topic = "a/far"
+threshold = 24.9
+ambient = 25.0
+horizon = 600
+
+[[item]]
+name = "new"
+topic = "a/new"
+threshold = 8.0
+
+[[item]]
+name = "past"
+topic = "a/past"
+threshold = 8.0
+ambient = 25.0
+'''
+
+
+def test_refit_states_and_publishing(tmp_path):
+    """learning / approaching / steady / crossed are judged per item, stored, published retained
+    and handed to listeners with the previous forecast."""
+    rng = np.random.default_rng(3)
+    t_rel = np.arange(0, 1800, 30.0)
+    t = T0 - 1800 + t_rel
+    noisy = warming(t_rel) + rng.normal(0, 0.02, t_rel.size)
+    series = {"warm": (t, noisy), "far": (t, noisy), "new": (t[-3:], noisy[-3:]),
+              "past": (t, warming(t_rel, t_start=9.0) + rng.normal(0, 0.02, t_rel.size))}
+    cfg, store, act = seeded_store(tmp_path, ITEMS, series)
+    published: dict[str, dict] = {}
+    heard = []
+    rf = Refitter(store, cfg, ManualClock(T0), act, publish=lambda n, p: published.update({n: json.loads(p)}))
+    rf.listeners.append(lambda it, body, prev: heard.append((it.name, body["state"], prev)))
+    states = rf.run_once()
+    assert states == {"warm": "approaching", "far": "steady", "new": "learning", "past": "crossed"}
+    w = published["warm"]
+    assert w["item"] == "warm" and w["updated_at"] == "2027-01-15T08:00:00Z" and w["unit"] == "C"
+    # truth: t* = -ln((thr - Ta)/(T0 - Ta)) / k from the closed form, counted from the last reading
+    true_eta = -math.log((8.0 - 25.0) / (2.0 - 25.0)) * 7200 - t_rel[-1]
+    assert w["eta_s"] == pytest.approx(true_eta, rel=0.05)
+    assert {f["item"]: f["state"] for f in store.latest_forecasts()} == states
+    assert store.last_refit_at() == T0
+    assert all(prev is None for _, _, prev in heard)
+    assert rf.run_once() == {}  # nothing new: no refit, nothing published again
+    store.close()
+
+
+def test_item_goes_stale_after_its_silence_limit(tmp_path):
+    """With no new reading for longer than `silence`, the item is republished as stale."""
+    t_rel = np.arange(0, 600, 30.0)
+    cfg, store, act = seeded_store(tmp_path, ITEMS.replace("horizon = 7200", "horizon = 7200\nsilence = 300"),
+                                   {"warm": (T0 - 600 + t_rel, warming(t_rel) + 0.01 * np.sin(t_rel))})
+    clock = ManualClock(T0)
+    heard = []
+    rf = Refitter(store, cfg, clock, act)
+    rf.listeners.append(lambda it, body, prev: heard.append((body["state"], prev and prev["state"])))
+    rf.run_once()
+    clock.advance(200)
+    assert rf.run_once() == {}
+    clock.advance(200)  # 430 s after the last reading > 300 s silence
+    assert rf.run_once() == {"warm": "stale"}
+    assert heard[-1] == ("stale", "approaching")
+    assert rf.run_once() == {}  # stale is published once, not every round
+    store.close()
+
+
+def test_one_failing_item_does_not_stop_the_others(tmp_path, monkeypatch):
+    """An exception inside one item's fit is published as fit_ok=false; the others are fitted."""
+    rng = np.random.default_rng(5)
+    t_rel = np.arange(0, 1800, 30.0)
+    t = T0 - 1800 + t_rel
+    y = warming(t_rel) + rng.normal(0, 0.02, t_rel.size)
+    cfg, store, act = seeded_store(tmp_path, ITEMS, {"warm": (t, y), "far": (t, y)})
+    rf = Refitter(store, cfg, ManualClock(T0), act)
+    real = rf._predict
+
+    def flaky(t, y, threshold, **kw):
+        if threshold == pytest.approx(24.9):
+            raise FloatingPointError("boom")
+        return real(t, y, threshold, **kw)
+
+    rf._predict = flaky
+    states = rf.run_once()
+    assert states["warm"] == "approaching"
+    far = {f["item"]: f["forecast"] for f in store.latest_forecasts()}["far"]
+    assert far["fit_ok"] is False and far["reason"].startswith("fit error: FloatingPointError: boom")
+    assert far["value_now"] == pytest.approx(y[-1])
+    store.close()
+
+
+def test_fahrenheit_item_is_fitted_in_celsius_and_published_in_fahrenheit(tmp_path):
+    """Readings are kept in degC; a F item's forecast is the C item's forecast with threshold,
+    ambient and values shown in F (F = C * 9/5 + 32, the definition) and the same times."""
+    t_rel = np.arange(0, 1800, 30.0)
+    rng = np.random.default_rng(9)
+    y_c = warming(t_rel) + rng.normal(0, 0.02, t_rel.size)
+    items = ('[[item]]\nname = "walkin-f"\ntopic = "k/f"\nunit = "F"\nthreshold = 46.4\nambient = 77.0\n'
+             '[[item]]\nname = "walkin-c"\ntopic = "k/c"\nunit = "C"\nthreshold = 8.0\nambient = 25.0\n')
+    t = T0 - 1800 + t_rel
+    cfg, store, act = seeded_store(tmp_path, items, {"walkin-f": (t, y_c), "walkin-c": (t, y_c)})
+    got: dict[str, dict] = {}
+    rf = Refitter(store, cfg, ManualClock(T0), act,
+                  publish=lambda n, p: got.update({n: json.loads(p)}))
+    rf.run_once()
+    f, c = got["walkin-f"], got["walkin-c"]
+    assert f["unit"] == "F" and f["threshold"] == pytest.approx(46.4)
+    for key in ("ambient", "value_now", "ambient_lo", "ambient_hi"):
+        if c[key] is not None:
+            assert f[key] == pytest.approx(c[key] * 9 / 5 + 32), key
+    assert f["eta_s"] == pytest.approx(c["eta_s"]) and f["k_per_s"] == pytest.approx(c["k_per_s"])
+    assert f["state"] == c["state"] == "approaching"
+    store.close()
