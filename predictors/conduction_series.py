@@ -197,6 +197,13 @@ def theta_centre_series(fo: ArrayLike, biot: float, geometry: str, n_terms: int)
     return np.exp(-np.multiply.outer(f, z * z)) @ c
 
 
+def theta_from_modes(fo: ArrayLike, zeta: Float, c: Float) -> Float:
+    """theta_centre from precomputed modes: ``fo`` of shape S, zeta and c of shape S + (n,)."""
+    f = np.asarray(fo, dtype=float)
+    th = np.sum(c * np.exp(-np.maximum(f, FO_CUT)[..., None] * zeta * zeta), axis=-1)
+    return np.where(f <= FO_CUT, 1.0, th)
+
+
 def theta_centre(fo: ArrayLike, biot: ArrayLike, geometry: str) -> Float:
     """Centre temperature (T - Ta)/(Ti - Ta) at Fourier numbers ``fo``, accurate for all Fo >= 0.
 

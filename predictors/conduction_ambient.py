@@ -1,0 +1,122 @@
+"""Centre response of a conducting body to a time-varying ambient (Duhamel superposition).
+
+With the centre's unit-step response S(t) = 1 - theta_centre(a t), an ambient Ta(t) that steps from
+the body's uniform Ti to Ta(t0) at t0 and then varies continuously gives
+
+    T(t) = Ti + (Ta(t0) - Ti) S(t - t0) + int_t0^t S(t - tau) Ta'(tau) dtau
+         = Ti theta(t) + Ta(t0) (1 - theta(t)) + R(t)
+    R(t) = (Ta(t) - Ta(t0)) - sum_n C_n v_n(t),   v_n(t) = int_t0^t exp(-lam_n (t - tau)) Ta'(tau) dtau
+
+with lam_n = zeta_n^2 a.  The initial step uses the exact (clamped) centre series; the ramp part R
+takes the ambient as piecewise linear on a uniform grid, for which each mode's recursion is exact:
+
+    v_n(tau_{k+1}) = d_n v_n(tau_k) + g_n s_k,   d_n = exp(-lam_n h),  g_n = (1 - d_n) / lam_n
+
+(s_k the ambient's slope on step k).  R is then interpolated linearly between grid points.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+
+import numpy as np
+from numpy.typing import NDArray
+from scipy.signal import lfilter
+
+Float = NDArray[np.float64]
+AmbientFn = Callable[[Float], Float]
+
+GRID_STEPS = 256
+MAX_GRID_STEPS = 4096
+
+
+def ramp_part(
+    t_rel_s: Float, ambient_fn: AmbientFn, t0_s: float, a_per_s: float, zeta: Float, c: Float,
+    step_s: float | None = None,
+) -> Float:
+    """R(t) above at times ``t_rel_s`` after t0 (0 before t0); ambient_fn takes absolute times."""
+    t_end = float(np.max(t_rel_s)) if t_rel_s.size else 0.0
+    if t_end <= 0.0:
+        return np.zeros_like(t_rel_s)
+    # A fixed step (not a fixed count) keeps R(t) the same however far the caller evaluates.
+    h = step_s if step_s else t_end / GRID_STEPS
+    h = max(h, t_end / MAX_GRID_STEPS)
+    m = int(np.ceil(t_end / h - 1e-9))
+    grid = np.arange(m + 1) * h
+    amb = ambient_fn(t0_s + grid)
+    slope = np.diff(amb) / h
+    lam = zeta * zeta * a_per_s
+    d = np.exp(-lam * h)
+    g = -np.expm1(-lam * h) / lam
+    sum_cv = np.zeros(m + 1)
+    for dn, gn, cn in zip(d, g, c):
+        if dn < 1e-12:
+            # The mode follows the slope within one step: v_n = s / lam_n.
+            sum_cv[1:] += cn * gn * slope
+        else:
+            sum_cv[1:] += cn * lfilter([gn], [1.0, -dn], slope)
+    r_grid = (amb - amb[0]) - sum_cv
+    return np.interp(t_rel_s, grid, r_grid, left=0.0)
+
+
+def exp_approach_fit(t_s: Float, y: Float) -> tuple[float, float, float]:
+    """Fit  Ta(t) = A + (B - A) exp(-k (t - t_last))  to an ambient series by a grid over k.
+
+    Returns (A, B, k_per_s); k = 0 means a hold at the recent median (too few points or no trend
+    worth extrapolating).  Separable: for each k the model is linear in (A, B).
+    """
+    n = t_s.size
+    if n < 6:
+        med = float(np.median(y[-5:])) if n else float("nan")
+        return med, med, 0.0
+    x = t_s - t_s[-1]
+    span = max(float(x[-1] - x[0]), 1.0)
+    med = float(np.median(y[-5:]))
+    best = (float(np.sum((y - med) ** 2)), 0.0, 0.0)
+    best_ab = (med, med)
+    for k in np.geomspace(0.05 / span, 30.0 / span, 40):
+        e = np.exp(-k * x)
+        a_mat = np.column_stack([1.0 - e, e])
+        coef, *_ = np.linalg.lstsq(a_mat, y, rcond=None)
+        rss = float(np.sum((y - a_mat @ coef) ** 2))
+        # A hold needs one parameter, the approach three: ask for a clear gain (AIC-style).
+        if rss < best[0] * np.exp(-4.0 / n):
+            best, best_ab = (rss, 0.0, float(k)), (float(coef[0]), float(coef[1]))
+    a_inf, b_now = best_ab
+    return a_inf, b_now, best[2]
+
+
+def make_ambient_fn(
+    amb_t: Float, amb_y: Float, future: AmbientFn | None = None
+) -> tuple[AmbientFn, str]:
+    """Ambient at any absolute time: linear between readings, held before the first, and beyond the
+    last either ``future`` or an exponential-approach fit of the series.  Returns (fn, how)."""
+    order = np.argsort(amb_t, kind="stable")
+    at, ay = amb_t[order], amb_y[order]
+    keep = np.isfinite(at) & np.isfinite(ay)
+    at, ay = at[keep], ay[keep]
+    if at.size == 0:
+        raise ValueError("ambient series has no finite readings")
+    t_end = float(at[-1])
+    if future is not None:
+        fut, how = future, "ambient beyond its last reading from the caller's extrapolation"
+    else:
+        a_inf, b_now, k = exp_approach_fit(at, ay)
+        if k == 0.0:
+            def fut(t: Float) -> Float:
+                return np.full_like(t, b_now)
+            how = "ambient held at its recent median beyond its last reading"
+        else:
+            def fut(t: Float) -> Float:
+                return a_inf + (b_now - a_inf) * np.exp(-k * (t - t_end))
+            how = "ambient extrapolated by its own exponential-approach fit"
+
+    def fn(t: Float) -> Float:
+        t = np.asarray(t, dtype=float)
+        out = np.interp(t, at, ay)
+        beyond = t > t_end
+        if np.any(beyond):
+            out[beyond] = fut(t[beyond])
+        return out
+
+    return fn, how
