@@ -120,7 +120,8 @@ def clean(t: np.ndarray, y: np.ndarray, *, n_sigma: float = 6.0) -> Cleaned:
     t2, y2, n_nf, n_dup, n_ooo = order_and_dedupe(t0, y)
     q = reading_step(y2)
     # quantisation alone is uniform noise of sd q / sqrt(12); never call a one-step wobble a spike
-    floor = max(q, 1e-9 * (float(np.ptp(y2)) if y2.size else 0.0))
+    # and never call the curvature of a noise-free curve a spike: 0.1 % of the range at least
+    floor = max(q, 1e-3 * (float(np.ptp(y2)) if y2.size else 0.0), 1e-9)
     if y2.size >= 7:
         keep, sd = hampel_mask(t2, y2, n_sigma=n_sigma, floor=floor)
     else:

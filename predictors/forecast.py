@@ -103,8 +103,10 @@ def _forecast(fc, t, y, thr, model, ambient, ambient_t, ambient_y, window_s, min
         if air.t.size < 4:
             fc.ok, fc.reason = False, f"too few ambient readings ({air.t.size})"
             return fc
-    # the measured air explains changes of the surroundings, so only the other modes cut regimes
-    if detect and fc.ambient_mode != "measured":
+    # the measured air explains changes of the surroundings, so only the other modes cut regimes;
+    # the search tests lumped curves, which a lagging centre probe misfits by nature, so the core
+    # models (and "auto", which may pick one) keep the window whole
+    if detect and fc.ambient_mode != "measured" and model == "lumped":
         reg = find_regime(tt, yy, cl.noise_sd, min_points=max(12, min_points))
         if reg.note:
             fc.warnings.append(reg.note)
@@ -131,7 +133,8 @@ def _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit=None) -> Fo
     fit = fit_lumped(tt, yy, thr, intervals=False, **kw)
     if fit.ok:
         # robust refit: drop what the first fit calls far off (beyond the Hampel pre-filter)
-        out = residual_outliers(fit.residuals, 4.0, floor=max(cl.quantum, cl.noise_sd))
+        out = residual_outliers(fit.residuals, 4.0,
+                                floor=max(cl.quantum, cl.noise_sd, 1e-3 * float(np.ptp(yy))))
         if 0 < out.sum() <= max(1, int(0.1 * tt.size)):
             tt, yy = tt[~out], yy[~out]
             fc.n_outliers += int(out.sum())
@@ -174,7 +177,7 @@ def _measured(fc, tt, yy, thr, air, limit=None) -> Forecast:
     if not fit.ok:
         fc.ok, fc.reason = False, fit.reason
         return fc
-    out = residual_outliers(fit.residuals, 4.0, floor=max(air.quantum, 1e-9))
+    out = residual_outliers(fit.residuals, 4.0, floor=max(air.quantum, 1e-3 * float(np.ptp(yy)), 1e-9))
     if 0 < out.sum() <= max(1, int(0.1 * tt.size)):
         fc.n_outliers += int(out.sum())
         fit = fit_measured(tt[~out], yy[~out], at, ay, thr, air_fit=a_fit, limit=limit)
@@ -216,8 +219,11 @@ def _conduction(fc, tt, yy, thr, shape, ambient, air) -> Forecast:
         return fc
     eta, lo, hi = fit.time_to_threshold(thr, t_now=float(tt[-1]))
     fc.eta_s, fc.eta_lo_s, fc.eta_hi_s = eta, lo, hi
-    fc.k_per_s, fc.k_lo_per_s, fc.k_hi_per_s = fit.k_per_s, fit.k_lo, fit.k_hi
+    fc.k_per_s = fit.k_per_s
+    fc.k_lo_per_s = getattr(fit, "k_lo_per_s", None)
+    fc.k_hi_per_s = getattr(fit, "k_hi_per_s", None)
     fc.ambient, fc.ambient_lo, fc.ambient_hi = fit.Ta, fit.ambient_lo, fit.ambient_hi
+    fc.warnings.extend(getattr(fit, "warnings", []) or [])
     fc.biot, fc.lag_factor_j = fit.biot, fit.lag_factor_j
     fc.rmse = fit.rmse
     fc.interval_method = fit.interval_method

@@ -55,10 +55,11 @@ def sums(d: np.ndarray, yc: np.ndarray, k: np.ndarray) -> Sums:
 
 def rss_of(s: Sums, a: np.ndarray, b: np.ndarray, lam: float, a0: float) -> np.ndarray:
     """RSS = sum (y - a - b e)^2 + lam (a - a0)^2, expanded in the sums."""
-    r = s.Syy - 2 * a * s.Sy - 2 * b * s.Sye + s.n * a * a + 2 * a * b * s.Se + b * b * s.See
-    if math.isfinite(lam) and lam > 0:
-        r = r + lam * (a - a0) ** 2
-    return np.maximum(r, 0.0)
+    with np.errstate(over="ignore", invalid="ignore"):
+        r = s.Syy - 2 * a * s.Sy - 2 * b * s.Sye + s.n * a * a + 2 * a * b * s.Se + b * b * s.See
+        if math.isfinite(lam) and lam > 0:
+            r = r + lam * (a - a0) ** 2
+    return np.where(np.isnan(r), np.inf, np.maximum(r, 0.0))
 
 
 def solve_fixed_k(s: Sums, lam: float, a0: float, lo: float, hi: float):
@@ -71,7 +72,8 @@ def solve_fixed_k(s: Sums, lam: float, a0: float, lo: float, hi: float):
         with np.errstate(divide="ignore", invalid="ignore"):
             a = (s.See * (s.Sy + lam * a0) - s.Se * s.Sye) / det
         a = np.clip(np.nan_to_num(a, nan=a0), lo, hi)
-    b = (s.Sye - a * s.Se) / s.See
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        b = (s.Sye - a * s.Se) / s.See
     return a, b, rss_of(s, a, b, lam, a0)
 
 
@@ -82,7 +84,8 @@ def normal_inverse(s: Sums, lam: float):
         z = np.zeros_like(s.See)
         return z, z, 1.0 / s.See
     det = (s.n + lam) * s.See - s.Se**2
-    return s.See / det, -s.Se / det, (s.n + lam) / det
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return s.See / det, -s.Se / det, (s.n + lam) / det
 
 
 def eta_sets(s: Sums, a: np.ndarray, b: np.ndarray, delta: np.ndarray, thr: float, D: float,
@@ -347,8 +350,11 @@ def add_intervals(fit: LumpedFit, d, yc, thr, lam, a0, lo, hi, ybar, k_coarse) -
         fit.ambient_lo = fit.ambient_hi = fit.ambient
     else:
         m11 = normal_inverse(s, lam)[0]
-        w = np.sqrt(np.maximum(delta, 0.0) * m11)
-        sel = delta >= 0
+        with np.errstate(invalid="ignore", over="ignore"):
+            w = np.sqrt(np.maximum(np.nan_to_num(np.maximum(delta, 0.0) * m11, nan=0.0), 0.0))
+        sel = (delta >= 0) & np.isfinite(w)
+        if not sel.any():
+            sel = k_all == k_hat
         fit.ambient_lo = float(max(np.min((a_u - w)[sel]), lo) + ybar)
         fit.ambient_hi = float(min(np.max((a_u + w)[sel]), hi) + ybar)
     if fit.eta_s == 0.0:

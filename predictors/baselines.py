@@ -1,0 +1,119 @@
+"""Baselines and limits for benchmarks and tests (not used by the live forecast).
+
+- linear extrapolation of the last 30 minutes;
+- an unweighted 3-parameter least-squares fit (scipy's curve_fit, no cleaning, no bounds);
+- the Cramer-Rao lower bound on the crossing-time sd for the lumped model with Gaussian noise;
+- the known-ambient two-reading solve for k.
+All times in seconds, eta counted from the newest reading.
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+
+import numpy as np
+from scipy.optimize import OptimizeWarning, curve_fit
+
+
+def linear_eta(t: np.ndarray, y: np.ndarray, threshold: float, window_s: float = 1800.0) -> float | None:
+    """Straight line through the last ``window_s`` of readings: eta = (thr - T_now) / slope."""
+    o = np.argsort(t)
+    t, y = np.asarray(t, float)[o], np.asarray(y, float)[o]
+    sel = t >= t[-1] - window_s
+    if sel.sum() < 2:
+        return None
+    slope, icpt = np.polyfit(t[sel] - t[-1], y[sel], 1)
+    if slope == 0 or (icpt - threshold) * slope > 0:  # flat, or moving away from the threshold
+        return None
+    return float((threshold - icpt) / slope)
+
+
+def lumped3(x: np.ndarray, T_now: float, k: float, ambient: float) -> np.ndarray:
+    """T(x) = Ta + (T_now - Ta) e^(-k x), x = t - t_last."""
+    return ambient + (T_now - ambient) * np.exp(-k * x)
+
+
+def curve_fit_eta(t: np.ndarray, y: np.ndarray, threshold: float) -> float | None:
+    """Plain 3-parameter least squares (curve_fit, unweighted) and its crossing time."""
+    o = np.argsort(t)
+    t, y = np.asarray(t, float)[o], np.asarray(y, float)[o]
+    x = t - t[-1]
+    span = max(-x[0], 1.0)
+    p0 = [y[-1], 1.0 / span, y[-1] + 2.0 * (y[-1] - y[0])]
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", OptimizeWarning)
+            (T_now, k, amb), _ = curve_fit(lumped3, x, y, p0=p0, maxfev=4000)
+    except (RuntimeError, ValueError):
+        return None
+    return eta_lumped(T_now, k, amb, threshold)
+
+
+def eta_lumped(T_now: float, k: float, ambient: float, threshold: float) -> float | None:
+    """eta = ln((T_now - Ta) / (thr - Ta)) / k, None when thr is not between T_now and Ta."""
+    r = (threshold - ambient) / (T_now - ambient) if T_now != ambient else math.nan
+    if not (0 < r < 1) or k <= 0:
+        return None
+    return -math.log(r) / k
+
+
+def crb_eta_sd(t: np.ndarray, T_now: float, k: float, ambient: float, threshold: float,
+               sigma: float) -> float:
+    """Cramer-Rao bound on sd(eta) for T(x) = Ta + (T_now - Ta) e^(-k x), Gaussian noise sigma.
+
+    J = (1/sigma^2) sum grad f grad f' over the readings t, parameters (T_now, k, Ta) at their
+    true values (the ambient fitted); Var(eta) >= g' J^-1 g, g = grad eta (delta method).
+    """
+    return _crb(t, T_now, k, ambient, threshold, sigma, fitted=True)
+
+
+def crb_eta_sd_known(t: np.ndarray, T_now: float, k: float, ambient: float, threshold: float,
+                     sigma: float) -> float:
+    """The same bound with the ambient known exactly (parameters T_now, k)."""
+    return _crb(t, T_now, k, ambient, threshold, sigma, fitted=False)
+
+
+def _crb(t, T_now, k, ambient, threshold, sigma, fitted: bool) -> float:
+    x = np.asarray(t, float) - float(np.max(t))
+    e = np.exp(-k * x)
+    # df/dT_now = e;  df/dk = -(T_now - Ta) x e;  df/dTa = 1 - e
+    cols = [e, -(T_now - ambient) * x * e] + ([1.0 - e] if fitted else [])
+    G = np.column_stack(cols)
+    J = G.T @ G / sigma**2
+    # eta = [ln(T_now - Ta) - ln(thr - Ta)] / k
+    u, v = T_now - ambient, threshold - ambient
+    if u == 0 or v / u <= 0 or v / u >= 1:
+        return math.inf
+    eta = math.log(u / v) / k
+    g = [1.0 / (k * u), -eta / k] + ([(-1.0 / u + 1.0 / v) / k] if fitted else [])
+    g = np.array(g)
+    try:
+        return float(math.sqrt(max(g @ np.linalg.solve(J, g), 0.0)))
+    except np.linalg.LinAlgError:
+        return math.inf
+
+
+def two_reading_k(t1: float, y1: float, t2: float, y2: float, ambient: float) -> float | None:
+    """k from two readings with the ambient known: k = ln((T1 - Ta) / (T2 - Ta)) / (t2 - t1)."""
+    if t2 == t1:
+        return None
+    r = (y1 - ambient) / (y2 - ambient) if y2 != ambient else math.nan
+    if not (r > 0) or not math.isfinite(r):
+        return None
+    k = math.log(r) / (t2 - t1)
+    return k if k > 0 else None
+
+
+def two_reading_eta(t: np.ndarray, y: np.ndarray, ambient: float, threshold: float,
+                    gap_s: float | None = None) -> float | None:
+    """Known-ambient two-reading forecast: k from the first and newest readings (or the reading
+    ``gap_s`` before the newest), then eta from the newest reading."""
+    o = np.argsort(t)
+    t, y = np.asarray(t, float)[o], np.asarray(y, float)[o]
+    i = 0 if gap_s is None else int(np.searchsorted(t, t[-1] - gap_s))
+    i = min(i, t.size - 2)
+    k = two_reading_k(t[i], y[i], t[-1], y[-1], ambient)
+    if k is None:
+        return None
+    return eta_lumped(y[-1], k, ambient, threshold)

@@ -1,0 +1,52 @@
+"""Regime changes: fit only the data since the surroundings last changed; never on noise alone
+nor on a healthy thermostat's sawtooth."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from thermeta.predictors import forecast, synth
+from thermeta.predictors.synth import Corruption
+
+C = Corruption(noise=0.1, quantum=0.1)
+
+
+def test_compressor_restart_is_found():
+    """A warming load whose compressor restarts: the regime starts at the restart (within two
+    readings) and the ETA matches the truth of the new regime."""
+    s = synth.regime_change(6, T0=4, k_per_s=1 / 5000, steps=[(0, 25), (3600, -5)], threshold=0,
+                            duration_s=6000, corruption=C)
+    fc = forecast(s.t, s.y, 0.0)
+    assert fc.regime_start == pytest.approx(s.truth["regime_start"], abs=61)
+    assert fc.eta_lo_s <= s.eta_true_s <= fc.eta_hi_s
+    assert fc.eta_s == pytest.approx(s.eta_true_s, rel=0.1)
+    assert any("changed" in w for w in fc.warnings)
+    assert fc.to_dict()["regime_start"] is not None
+
+
+def test_door_opened_then_closed():
+    """A door opened for 15 minutes then closed: the fit starts after the door closed."""
+    s = synth.regime_change(5, T0=2, k_per_s=1 / 3600, steps=[(0, 3), (3600, 18), (4500, 3)],
+                            threshold=8, duration_s=8000, corruption=C)
+    fc = forecast(s.t, s.y, 8.0)
+    assert s.truth["regime_start"] - 120 <= fc.regime_start <= s.truth["regime_start"] + 120
+    assert fc.eta_s is None  # after the door closed it settles back toward 3 degC
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_no_change_on_noise(seed):
+    """Plain noisy warming or chilling curves: no regime cut (the whole window is fitted)."""
+    s = synth.lumped(seed, T0=2, ambient=27, k_per_s=1 / 12000, threshold=8, duration_s=3000,
+                     dt_s=30, corruption=Corruption(noise=0.2, quantum=0.1, spike_frac=0.01))
+    fc = forecast(s.t, s.y, 8.0)
+    assert fc.regime_start == pytest.approx(s.t.min())
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_sawtooth_makes_no_nonsense_forecast(seed):
+    """A healthy fridge cycling between 2 and 5 degC: no crossing of 8 degC is forecast."""
+    s = synth.compressor_sawtooth(seed, corruption=Corruption(noise=0.05, quantum=0.1))
+    fc = forecast(s.t, s.y, 8.0)
+    assert fc.ok and fc.eta_s is None
+    assert any("cycle" in w for w in fc.warnings)
