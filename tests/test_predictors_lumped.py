@@ -136,3 +136,20 @@ def test_bad_data_is_a_result_not_a_crash():
         forecast([1, 2], [1, 2, 3], 8.0)
     with pytest.raises(ValueError):
         forecast([1, 2], [1, 2], 8.0, model="cubic")
+
+
+def test_predict_draws_the_fitted_curve():
+    """predict(fc, t) reproduces the fitted lumped curve (at the newest reading: value_fit_now),
+    and the measured model's forecast curve from the newest reading on."""
+    from thermeta.predictors import predict
+
+    s = synth.lumped(9, T0=60, ambient=3, k_per_s=1 / 2000, threshold=5, duration_s=3000, dt_s=30,
+                     corruption=Corruption(noise=0.05))
+    fc = forecast(s.t, s.y, 5.0)
+    assert predict(fc, np.array([fc.t_last]))[0] == pytest.approx(fc.params["value_fit_now"])
+    assert predict(fc, np.array([fc.crossing_t]))[0] == pytest.approx(5.0, abs=1e-6)
+    m = synth.measured_air(4, load_T0=3, air_T0=3, outside=30, k_air_per_s=1 / 3600,
+                           k_load_per_s=1 / 18000, threshold=8, duration_s=3600,
+                           corruption=Corruption(noise=0.1))
+    fm = forecast(m.t, m.y, 8.0, ambient_t=m.ambient_t, ambient_y=m.ambient_y)
+    assert predict(fm, np.array([fm.crossing_t]))[0] == pytest.approx(8.0, abs=1e-2)
