@@ -59,6 +59,9 @@ class Broker:
             "max_queued_messages 0\n"
             "max_inflight_messages 1000\n"
             f"log_dest file {self.workdir}/mosquitto.log\n"
+            # As root, mosquitto drops to user `mosquitto`, which cannot write into pytest's
+            # 0700 temp dirs: no persistence file, so a restart would lose every session.
+            + ("user root\n" if os.geteuid() == 0 else "")
         )
         self.proc = subprocess.Popen(
             [shutil.which("mosquitto") or "mosquitto", "-c", str(self.conf)],
