@@ -226,7 +226,9 @@ def config_text(scenario: Scenario, *, host: str, port: int, storage_url: str,
             f"topic = {_toml_str(s.topic)}",
             f"threshold = {s.threshold:g}",
         ]
-        if s.ambient_probe:
+        if s.ambient_known is not None:
+            lines.append(f"ambient = {s.ambient_known:g}")
+        elif s.ambient_probe:
             lines.append(f"ambient_topic = {_toml_str(scenario.probe(s.ambient_probe).spec.topic)}")
         if s.model != "lumped":
             lines.append(f"model = {_toml_str(s.model)}")

@@ -194,7 +194,8 @@ class ProbeSpec:
     threshold: float | None = None
     direction: str | None = None  # where the load is heading: "rising" | "falling"
     model: str = "lumped"
-    ambient_probe: str | None = None
+    ambient_probe: str | None = None  # the site's air/coolant probe (measured ambient)
+    ambient_known: float | None = None  # or a known constant ambient (a setpoint)
     lead_s: float | None = None
     window_s: float | None = None  # history a fit may use, when the default 2 h is too short
     corruption: Corruption = field(default_factory=Corruption)
@@ -347,7 +348,9 @@ def _wort() -> _Site:
     def wort(offset):
         return lambda x: two_stage(x, pieces, 97.0)[0] + offset
 
-    common = dict(threshold=20.0, direction="falling", ambient_probe=f"{base}/coolant-in",
+    # The coolant probe reads 9 degC steadily also before the pump starts, so it cannot tell the
+    # forecast when chilling began: the items use the coolant setpoint as a known ambient.
+    common = dict(threshold=20.0, direction="falling", ambient_known=coolant,
                   dt_s=10.0, lead_s=15 * MIN, corruption=DEFAULT_NOISE)
     specs = [
         ProbeSpec(f"{base}/coolant-in", f"{base}/coolant-in", lambda x: np.full(np.shape(x), coolant),

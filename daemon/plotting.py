@@ -1,0 +1,359 @@
+"""Pictures of one item: readings, the fitted curve, the forecast with its 90 % band, the threshold,
+the predicted crossing with its time, and where the current regime began.
+
+Matplotlib's object API on the Agg canvas (no pyplot state, safe in threads).  Times are shown in
+the machine's local time zone; temperatures in the item's unit.  Key artists carry a ``gid``
+("readings", "ambient", "fit", "forecast", "band", "threshold", "crossing", "crossing-interval",
+"regime-start", "truth") so tests and tools can find them.
+
+The band: the forecast curve stretched in time about the newest reading so that it meets the
+threshold exactly at the ends of the forecast's 90 % crossing interval (eta_lo_s, eta_hi_s),
+T_band(t) = T(t_last + (t - t_last) * eta / eta_bound); where the interval has no upper end the
+band reaches the value now (it may never get there).  It is the crossing interval drawn as a
+region, consistent with the numbers printed beside it.
+"""
+
+from __future__ import annotations
+
+import io
+import math
+from datetime import datetime, timezone
+from typing import Any, Protocol
+
+import numpy as np
+
+from thermeta.predictors.result import Forecast
+
+WIDTH_PX, HEIGHT_PX, DPI = 1000, 560, 100
+UNIT_SIGN = {"C": "°C", "F": "°F", "K": "K"}
+CAUTION = ("Forecasts support decisions; they are not a food-safety plan or a regulatory record. "
+           "Local codes and licensed practice decide the limits and actions.")
+# Colours of our own; meaning is also carried by labels and line styles.
+C_READ, C_FIT, C_BAND, C_THR, C_AMB, C_REG, C_TRUTH = (
+    "#2f6f8f", "#1b3b4b", "#e0a040", "#b3261e", "#6a8f3f", "#7a5c99", "#888888")
+
+
+class SeriesLike(Protocol):
+    t: np.ndarray
+    y: np.ndarray
+
+
+# ---------------------------------------------------------------------------------------------
+# the model curve
+# ---------------------------------------------------------------------------------------------
+
+
+def _air_curve(p: dict[str, float], t_last: float, amb_t, amb_y):
+    """The ambient over time: the measured series up to its end, its own fit beyond."""
+    def air(t: np.ndarray) -> np.ndarray:
+        t = np.asarray(t, float)
+        future = p["air_ambient"] + (p["air_value_now"] - p["air_ambient"]) * np.exp(
+            -p["air_k_per_s"] * np.clip(t - t_last, 0.0, None))
+        if amb_t is None or len(amb_t) == 0:
+            return future
+        order = np.argsort(amb_t)
+        at, ay = np.asarray(amb_t, float)[order], np.asarray(amb_y, float)[order]
+        past = np.interp(t, at, ay)
+        return np.where(t <= at[-1], past, future)
+    return air
+
+
+def model_curve(fc: Forecast, t: np.ndarray, series: Any = None) -> np.ndarray | None:
+    """The fitted and forecast curve of ``fc`` at epoch times ``t`` (None if it cannot be drawn).
+
+    Uses the predictors' own ``predict`` when available; otherwise rebuilds the curve from
+    ``fc.params`` (see the board note of the forecast core for the keys).
+    """
+    t = np.asarray(t, float)
+    try:
+        from thermeta.predictors import predict  # type: ignore[attr-defined]
+    except ImportError:
+        predict = None
+    if predict is not None:
+        try:
+            out = np.asarray(predict(fc, t), float)
+            if out.shape == t.shape and np.isfinite(out).any():
+                return out
+        except (TypeError, ValueError, KeyError):
+            pass  # fall back to rebuilding the curve below
+    p = fc.params or {}
+    if not fc.ok:
+        return None
+    if "amplitude" in p:
+        # T(t) = Ta + A e^(-k (t - t_first))
+        return p["ambient"] + p["amplitude"] * np.exp(-p["k_per_s"] * (t - p["t_first"]))
+    if "T0" in p and "air_ambient" in p and fc.t_last is not None:
+        # dT/dt = -k (T - Ta(t)), stepped exactly on a fine grid from the fitted start T0
+        air = _air_curve(p, fc.t_last, getattr(series, "ambient_t", None),
+                         getattr(series, "ambient_y", None))
+        k = p["k_per_s"]
+        t0 = p["t_first"]
+        grid = np.linspace(t0, max(float(t.max()), t0 + 1.0), 2000)
+        h = grid[1] - grid[0]
+        ta = air(grid[:-1] + 0.5 * h)
+        decay = math.exp(-k * h)
+        T = np.empty(grid.size)
+        T[0] = p["T0"]
+        for i in range(grid.size - 1):
+            # T_{i+1} = Ta + (T_i - Ta) e^(-k h), Ta held at the step's midpoint value
+            T[i + 1] = ta[i] + (T[i] - ta[i]) * decay
+        return np.interp(t, grid, T, left=np.nan)
+    if "biot" in p and fc.model in ("slab", "cylinder", "sphere"):
+        return _conduction_curve(fc, t, series)
+    if fc.k_per_s and fc.ambient is not None and fc.value_now is not None and fc.t_last is not None:
+        return fc.ambient + (fc.value_now - fc.ambient) * np.exp(-fc.k_per_s * (t - fc.t_last))
+    return None
+
+
+def _conduction_curve(fc: Forecast, t: np.ndarray, series: Any) -> np.ndarray | None:
+    amb_t, amb_y = getattr(series, "ambient_t", None), getattr(series, "ambient_y", None)
+    if fc.ambient_mode != "measured" or amb_t is None:
+        from thermeta.predictors.conduction_series import theta_centre
+
+        if fc.ambient is None:
+            return None
+        # T = Ta + (Ti - Ta) theta_centre(a (t - t0), Bi), constant ambient
+        fo = np.clip(fc.params["a_per_s"] * (t - fc.params["t0_s"]), 0.0, None)
+        return fc.ambient + (fc.params["Ti"] - fc.ambient) * theta_centre(fo, fc.params["biot"], fc.model)
+    # A measured ambient enters through a superposition over its history: refit the same cleaned
+    # readings with the conduction model (what the forecast did) to get its curve.
+    from thermeta.predictors.cleaning import clean
+    from thermeta.predictors.conduction import fit_conduction
+
+    cl = clean(np.asarray(series.t, float), np.asarray(series.y, float))
+    air = clean(np.asarray(amb_t, float), np.asarray(amb_y, float))
+    sel = cl.t >= (fc.regime_start if fc.regime_start is not None else -np.inf)
+    fit = fit_conduction(cl.t[sel], cl.y[sel], fc.model, ambient_t=air.t, ambient_y=air.y)
+    if not fit.ok:
+        return None
+    return fit.predict(t)
+
+
+# ---------------------------------------------------------------------------------------------
+# the figure
+# ---------------------------------------------------------------------------------------------
+
+
+def _local_tz():
+    return datetime.now(timezone.utc).astimezone().tzinfo
+
+
+def _to_dates(t: np.ndarray) -> np.ndarray:
+    """Epoch seconds to matplotlib date numbers (days since 1970-01-01 UTC)."""
+    import matplotlib.dates as mdates
+
+    return np.asarray(t, float) / 86400.0 + mdates.date2num(datetime(1970, 1, 1, tzinfo=timezone.utc))
+
+
+def _span_end(fc: Forecast, t_last: float, span_s: float) -> float:
+    """How far ahead to draw: past the slow end of the crossing interval, at most two days."""
+    ahead = max(0.25 * span_s, 900.0)
+    if fc.eta_s:
+        slow = fc.eta_hi_s if fc.eta_hi_s is not None else 2.0 * fc.eta_s
+        ahead = max(ahead, 1.15 * max(slow, fc.eta_s))
+    return t_last + min(ahead, 2 * 86400.0)
+
+
+def forecast_figure(series: SeriesLike, fc: Forecast, *, unit: str = "C", title: str | None = None,
+                    truth: tuple[np.ndarray, np.ndarray] | None = None, convert=None):
+    """A matplotlib Figure (Agg canvas) of the item; ``truth`` = (t, y) draws the true curve
+    (simulations only); ``convert`` maps degC values to the display unit (default: none)."""
+    import matplotlib.dates as mdates
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    from thermeta.daemon.timefmt import human_duration, local_clock
+
+    conv = convert or (lambda v: v)
+    sign = UNIT_SIGN.get(unit, unit)
+    fig = Figure(figsize=(WIDTH_PX / DPI, HEIGHT_PX / DPI), dpi=DPI)
+    FigureCanvasAgg(fig)
+    ax = fig.add_axes((0.08, 0.16, 0.72, 0.74))
+    t = np.asarray(series.t, float)
+    y = np.asarray(series.y, float)
+    order = np.argsort(t, kind="stable")
+    t, y = t[order], y[order]
+    t_last = fc.t_last if fc.t_last is not None else (float(t[-1]) if t.size else 0.0)
+    t_first = float(t[0]) if t.size else t_last
+    t_end = _span_end(fc, t_last, t_last - t_first)
+    D = _to_dates
+    ax.plot(D(t), conv(y), ".", ms=3, color=C_READ, label="readings", gid="readings")
+    amb_t, amb_y = getattr(series, "ambient_t", None), getattr(series, "ambient_y", None)
+    if amb_t is not None and amb_y is not None and len(amb_t):
+        ao = np.argsort(amb_t)
+        ax.plot(D(np.asarray(amb_t)[ao]), conv(np.asarray(amb_y)[ao]), "-", lw=0.8, color=C_AMB,
+                alpha=0.8, label="ambient (measured)", gid="ambient")
+    elif fc.ok and fc.ambient is not None and fc.ambient_mode in ("known", "fitted"):
+        ax.axhline(conv(fc.ambient), color=C_AMB, lw=0.8, ls=(0, (1, 2)),
+                   label=f"ambient ({fc.ambient_mode}) {conv(fc.ambient):.1f} {sign}", gid="ambient")
+    if truth is not None:
+        ax.plot(D(truth[0]), conv(np.asarray(truth[1])), "-", lw=1.0, color=C_TRUTH,
+                label="truth (simulated)", gid="truth")
+    reg = fc.regime_start if fc.regime_start is not None else t_first
+    t_fit = np.linspace(reg, t_last, 200)
+    t_fc = np.linspace(t_last, t_end, 300)
+    fit_y = model_curve(fc, t_fit, series)
+    fc_y = model_curve(fc, t_fc, series)
+    if fit_y is not None:
+        ax.plot(D(t_fit), conv(fit_y), "-", lw=2.0, color=C_FIT, label="fitted curve", gid="fit")
+    if fc_y is not None:
+        ax.plot(D(t_fc), conv(fc_y), "--", lw=2.0, color=C_FIT, label="forecast", gid="forecast")
+        band = _band(fc, t_fc, series)
+        if band is not None:
+            ax.fill_between(D(t_fc), conv(band[0]), conv(band[1]), color=C_BAND, alpha=0.35,
+                            lw=0, label="90 % band", gid="band")
+    ax.axhline(conv(fc.threshold), color=C_THR, lw=1.5, ls="-.",
+               label=f"threshold {conv(fc.threshold):g} {sign}", gid="threshold")
+    if fc.regime_start is not None and fc.regime_start > t_first:
+        ax.axvline(D(fc.regime_start), color=C_REG, lw=1.0, ls=":",
+                   label=f"regime start {local_clock(fc.regime_start)}", gid="regime-start")
+    cross = fc.crossing_t
+    if cross is not None and fc.eta_s and fc.eta_s > 0:
+        ax.plot([D(cross)], [conv(fc.threshold)], "X", ms=11, color=C_THR, mec="white",
+                label=f"crossing {local_clock(cross)}", gid="crossing")
+        ax.annotate(f"crosses {local_clock(cross)}\nin {human_duration(fc.eta_s)}",
+                    (D(cross), conv(fc.threshold)), textcoords="offset points", xytext=(-10, 10),
+                    ha="right", fontsize=9, color=C_THR)
+        if fc.eta_lo_s is not None:
+            hi = t_last + fc.eta_hi_s if fc.eta_hi_s is not None else t_end
+            ax.plot([D(t_last + fc.eta_lo_s), D(hi)], [conv(fc.threshold)] * 2, "-", lw=5,
+                    color=C_THR, alpha=0.35, solid_capstyle="butt", gid="crossing-interval",
+                    label="crossing, 90 % interval")
+    tz = _local_tz()
+    ax.xaxis.set_major_locator(mdates.AutoDateLocator(tz=tz, minticks=4, maxticks=9))
+    ax.xaxis.set_major_formatter(mdates.DateFormatter("%H:%M", tz=tz))
+    day = datetime.fromtimestamp(t_last, tz=timezone.utc).astimezone().strftime("%Y-%m-%d %Z")
+    ax.set_xlabel(f"local time ({day})")
+    ax.set_ylabel(f"temperature ({sign})")
+    ax.grid(True, alpha=0.3)
+    ax.set_xlim(D(t_first), D(t_end))
+    ax.set_title(title or "forecast", fontsize=11, loc="left")
+    ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=8, frameon=False)
+    fig.text(0.08, 0.03, _summary(fc, sign, conv), fontsize=8)
+    fig.text(0.08, 0.005, CAUTION, fontsize=7, color="#555555")
+    return fig
+
+
+def _band(fc: Forecast, t_fc: np.ndarray, series: Any) -> tuple[np.ndarray, np.ndarray] | None:
+    """Forecast curve stretched in time so it meets the threshold at eta_lo_s and eta_hi_s."""
+    if not fc.eta_s or fc.eta_s <= 0 or fc.t_last is None or fc.eta_lo_s is None:
+        return None
+    t_last = fc.t_last
+
+    def stretched(bound_s: float | None) -> np.ndarray | None:
+        if bound_s is None:  # unbounded: it may stay where it is
+            return np.full(t_fc.shape, float(model_curve(fc, np.array([t_last]), series)[0]))
+        if bound_s <= 0:
+            return None
+        out = model_curve(fc, t_last + (t_fc - t_last) * fc.eta_s / bound_s, series)
+        return out
+
+    fast = stretched(max(fc.eta_lo_s, 1e-6))
+    slow = stretched(fc.eta_hi_s)
+    if fast is None or slow is None:
+        return None
+    return np.minimum(fast, slow), np.maximum(fast, slow)
+
+
+def _summary(fc: Forecast, sign: str, conv) -> str:
+    from thermeta.daemon.timefmt import human_duration
+
+    if not fc.ok:
+        return f"no forecast: {fc.reason}"
+    bits = [f"model {fc.model}, ambient {fc.ambient_mode}"]
+    if fc.ambient is not None:
+        bits.append(f"ambient {conv(fc.ambient):.1f} {sign}")
+    if fc.time_constant_s:
+        bits.append(f"time constant {human_duration(fc.time_constant_s)}")
+    if fc.biot is not None:
+        bits.append(f"Biot {fc.biot:.2f}")
+    if fc.eta_s is None:
+        bits.append("does not reach the threshold")
+    elif fc.eta_s == 0:
+        bits.append("already past the threshold")
+    else:
+        hi = human_duration(fc.eta_hi_s) if fc.eta_hi_s is not None else "no upper bound"
+        bits.append(f"ETA {human_duration(fc.eta_s)} (90 %: {human_duration(fc.eta_lo_s)} to {hi})")
+    return "; ".join(bits)
+
+
+def figure_png(fig) -> bytes:
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=DPI)
+    return buf.getvalue()
+
+
+def forecast_png(series: SeriesLike, fc: Forecast, *, unit: str = "C", title: str | None = None,
+                 truth=None, convert=None) -> bytes:
+    """The picture as PNG bytes (1000 x 560 px), e.g. for an email attachment."""
+    return figure_png(forecast_figure(series, fc, unit=unit, title=title, truth=truth,
+                                      convert=convert))
+
+
+def plot_forecast(series: SeriesLike, fc: Forecast, out_path, *, unit: str = "C",
+                  title: str | None = None, truth=None) -> None:
+    """Write the picture to ``out_path`` (PNG)."""
+    data = forecast_png(series, fc, unit=unit, title=title, truth=truth)
+    with open(out_path, "wb") as f:
+        f.write(data)
+
+
+# ---------------------------------------------------------------------------------------------
+# from the store (the `thermeta plot` command and the email hook)
+# ---------------------------------------------------------------------------------------------
+
+
+class _Series:
+    def __init__(self, t, y, ambient_t=None, ambient_y=None):
+        self.t, self.y, self.ambient_t, self.ambient_y = t, y, ambient_t, ambient_y
+
+
+def item_series(store, cfg, *, history_s: float | None = None):
+    """An item's recent readings (and its ambient probe's) from the store, in degC.
+
+    history_s: how far back from the newest reading (default: the item's fit window)."""
+    from thermeta.daemon.config import AMBIENT_SUFFIX
+
+    last = store.last_reading_times().get(cfg.name)
+    if last is None:
+        return None
+    since = last - (history_s if history_s is not None else cfg.window_s)
+    rows = store.recent_readings(cfg.name, since_ts=since)
+    if not rows:
+        return None
+    t = np.array([r[0] for r in rows], float)
+    y = np.array([r[1] for r in rows], float)
+    at = ay = None
+    if cfg.ambient_topic:
+        arows = store.recent_readings(cfg.name + AMBIENT_SUFFIX, since_ts=since)
+        if arows:
+            at = np.array([r[0] for r in arows], float)
+            ay = np.array([r[1] for r in arows], float)
+    return _Series(t, y, at, ay)
+
+
+def item_forecast(series, cfg) -> Forecast:
+    """Refit the item as the service does (same model, ambient mode, window), in degC."""
+    from thermeta.predictors import forecast
+
+    return forecast(series.t, series.y, cfg.threshold_c, model=cfg.model, ambient=cfg.ambient_c,
+                    ambient_t=series.ambient_t, ambient_y=series.ambient_y,
+                    window_s=cfg.window_s, min_points=cfg.min_points)
+
+
+def item_png(store, cfg, *, history_s: float | None = None, title: str | None = None) -> bytes | None:
+    """PNG bytes of an item's recent readings and a fresh forecast (None without readings)."""
+    fig = item_figure(store, cfg, history_s=history_s, title=title)
+    return None if fig is None else figure_png(fig)
+
+
+def item_figure(store, cfg, *, history_s: float | None = None, title: str | None = None):
+    from thermeta.daemon.units import from_celsius
+
+    series = item_series(store, cfg, history_s=history_s)
+    if series is None:
+        return None
+    fc = item_forecast(series, cfg)
+    return forecast_figure(series, fc, unit=cfg.unit, title=title or cfg.name,
+                           convert=None if cfg.unit == "C" else np.vectorize(
+                               lambda v: from_celsius(v, cfg.unit)))
