@@ -228,7 +228,18 @@ def _projected(curve: _Curve, q: Float, t: Float, y: Float) -> tuple[Float, Floa
     if curve.prior is not None:
         a_mat = np.vstack([a_mat, [0.0, curve.prior[1]]])
         target = np.append(target, curve.prior[0] * curve.prior[1])
-    coef, *_ = np.linalg.lstsq(a_mat, target, rcond=None)
+    # Normal equations for the 1-2 linear parameters (lstsq if they are degenerate).
+    ata = a_mat.T @ a_mat
+    atb = a_mat.T @ target
+    if ata.shape == (1, 1):
+        coef = atb / ata[0] if ata[0, 0] > 0 else np.zeros(1)
+    else:
+        det = ata[0, 0] * ata[1, 1] - ata[0, 1] ** 2
+        if det > 1e-10 * ata[0, 0] * ata[1, 1]:
+            coef = np.array([ata[1, 1] * atb[0] - ata[0, 1] * atb[1],
+                             ata[0, 0] * atb[1] - ata[0, 1] * atb[0]]) / det
+        else:
+            coef, *_ = np.linalg.lstsq(a_mat, target, rcond=None)
     return target - a_mat @ coef, coef
 
 

@@ -12,7 +12,9 @@ takes the ambient as piecewise linear on a uniform grid, for which each mode's r
 
     v_n(tau_{k+1}) = d_n v_n(tau_k) + g_n s_k,   d_n = exp(-lam_n h),  g_n = (1 - d_n) / lam_n
 
-(s_k the ambient's slope on step k).  R is then interpolated linearly between grid points.
+(s_k the ambient's slope on step k), i.e. v_n(tau_k) = sum_{j<k} g_n d_n^(k-1-j) s_j, a
+convolution; summed over the modes it is one convolution of the slopes with a single kernel.
+R is then interpolated linearly between grid points.
 """
 
 from __future__ import annotations
@@ -21,7 +23,7 @@ from collections.abc import Callable
 
 import numpy as np
 from numpy.typing import NDArray
-from scipy.signal import lfilter
+from scipy.signal import fftconvolve
 
 Float = NDArray[np.float64]
 AmbientFn = Callable[[Float], Float]
@@ -46,15 +48,11 @@ def ramp_part(
     amb = ambient_fn(t0_s + grid)
     slope = np.diff(amb) / h
     lam = zeta * zeta * a_per_s
-    d = np.exp(-lam * h)
-    g = -np.expm1(-lam * h) / lam
-    sum_cv = np.zeros(m + 1)
-    for dn, gn, cn in zip(d, g, c):
-        if dn < 1e-12:
-            # The mode follows the slope within one step: v_n = s / lam_n.
-            sum_cv[1:] += cn * gn * slope
-        else:
-            sum_cv[1:] += cn * lfilter([gn], [1.0, -dn], slope)
+    # sum_n C_n v_n is linear in the slopes: one convolution with the summed kernel
+    #   kappa[m] = sum_n C_n g_n d_n^m
+    kappa = (c * -np.expm1(-lam * h) / lam) @ np.exp(-np.outer(lam * h, np.arange(m)))
+    conv = np.convolve(slope, kappa) if m <= 512 else fftconvolve(slope, kappa)
+    sum_cv = np.concatenate([[0.0], conv[:m]])
     r_grid = (amb - amb[0]) - sum_cv
     return np.interp(t_rel_s, grid, r_grid, left=0.0)
 

@@ -36,7 +36,11 @@ N_MEASURED_DRAWS = 60
 
 def fo_at_theta(th: Float, bi: Float, geometry: str, fo_min: Float) -> Float:
     """Fo >= fo_min where theta_centre falls to th (0 < th < theta(fo_min)), per element."""
-    zn = eigenvalues(geometry, bi, N_TERMS)
+    # Terms needed beyond the smallest Fo searched: exp(-zeta_n^2 Fo) < 1e-13 once
+    # zeta_n > sqrt(30 / Fo), and zeta_n > (n - 1) pi in every geometry.
+    fo_floor = max(float(np.min(fo_min)), 1e-12)
+    n_terms = int(min(N_TERMS, max(4, np.ceil(np.sqrt(30.0 / fo_floor) / np.pi) + 2)))
+    zn = eigenvalues(geometry, bi, n_terms)
     cn = centre_coefficients(geometry, zn)
     z, c = zn[..., 0], cn[..., 0]
     # First-term inversion theta ~ C1 exp(-zeta1^2 Fo) as a start; widen until bracketed.

@@ -50,6 +50,8 @@ BIOT_MAX = 1e4
 # not yet felt the surface (1 - theta < 1e-9 there, checked in the tests), so theta = 1.
 N_TERMS = 30
 FO_CUT = 0.004
+FO_FEW = 0.06
+N_FEW = 8
 _TABLE_TERMS = 64
 _TABLE_POINTS = 241
 
@@ -216,7 +218,13 @@ def theta_centre(fo: ArrayLike, biot: ArrayLike, geometry: str) -> Float:
     if bi.ndim == 0:
         z, c = modes(geometry, float(bi), N_TERMS)
         fe = np.maximum(f, FO_CUT)
-        th = np.exp(-np.multiply.outer(fe, z * z)) @ c
+        # Beyond FO_FEW the terms after N_FEW (zeta_n > N_FEW pi) are below
+        # exp(-(N_FEW pi)^2 FO_FEW) ~ 3e-17:
+        # most readings need only those, which makes a fit's model evaluations ~3x cheaper.
+        late = fe >= FO_FEW
+        th = np.empty(fe.shape)
+        th[late] = np.exp(-np.multiply.outer(fe[late], z[:N_FEW] ** 2)) @ c[:N_FEW]
+        th[~late] = np.exp(-np.multiply.outer(fe[~late], z * z)) @ c
     else:
         f, bi = np.broadcast_arrays(f, bi)
         z = eigenvalues(geometry, bi, N_TERMS)

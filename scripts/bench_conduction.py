@@ -1,0 +1,152 @@
+"""Benchmark of the core-probe (conduction) model: time per fit, forecast error, interval coverage,
+and how often the geometry is chosen right when it is not given.
+
+    python scripts/bench_conduction.py            # about a minute on 2 cores
+    python scripts/bench_conduction.py --cases 60 # more cases per family
+
+Scenario ranges are fixed here before any tuning (seeded):
+- chill: cooked food at 60-75 degC into a blast chiller at -5..3 degC, threshold 21 degC;
+  a = alpha/L^2 in 1/40000..1/8000 1/s; Bi 0.3-5; readings every 30-60 s, noise 0.1-0.3 degC,
+  quantised to 0.1; seen 35-65 % of the time to the crossing; ambient known, or fitted.
+- warm: a load at 1-4 degC whose air warms from 3-5 degC toward 22-30 degC (time constant 1-3 h),
+  threshold 8 degC, ambient measured by an air probe (truth by a method-of-lines solve_ivp).
+Forecast errors are |eta - eta_true| / eta_true, counted from the newest reading.
+"""
+
+from __future__ import annotations
+
+import argparse
+import time
+
+import numpy as np
+
+from thermeta.predictors.conduction import GEOMETRIES, fit_conduction, select_geometry
+from thermeta.predictors.synth import Corruption
+from thermeta.predictors.synth_conduction import core_probe
+
+
+def chill_case(seed: int, geometry: str):
+    rng = np.random.default_rng(seed)
+    c = Corruption(noise=float(rng.uniform(0.1, 0.3)), quantum=0.1)
+    amb = float(rng.uniform(-5.0, 3.0))
+    s = core_probe(seed, geometry=geometry, biot=float(np.exp(rng.uniform(np.log(0.3), np.log(5)))),
+                   a_per_s=float(np.exp(rng.uniform(np.log(1 / 40000), np.log(1 / 8000)))),
+                   t_i=float(rng.uniform(60, 75)), ambient=amb, threshold=21.0,
+                   seen_fraction=float(rng.uniform(0.35, 0.65)), dt_s=float(rng.uniform(30, 60)),
+                   corruption=c)
+    return s, amb
+
+
+def warm_case(seed: int, geometry: str, bi_range=(0.3, 5.0)):
+    rng = np.random.default_rng(seed)
+    c = Corruption(noise=float(rng.uniform(0.05, 0.2)), quantum=0.1)
+    air0 = float(rng.uniform(3.0, 5.0))
+    s = core_probe(seed, geometry=geometry,
+                   biot=float(np.exp(rng.uniform(np.log(bi_range[0]), np.log(bi_range[1])))),
+                   a_per_s=float(np.exp(rng.uniform(np.log(1 / 40000), np.log(1 / 8000)))),
+                   t_i=float(rng.uniform(1.0, 4.0)), ambient=air0, threshold=8.0,
+                   seen_fraction=float(rng.uniform(0.35, 0.65)), dt_s=60.0, corruption=c,
+                   ambient_rise=float(rng.uniform(22.0, 30.0)) - air0,
+                   ambient_k_per_s=1.0 / float(rng.uniform(3600, 10800)))
+    return s
+
+
+def _err(eta, truth):
+    return np.inf if eta is None else abs(eta - truth) / truth
+
+
+def _row(name, errs, covered, n_pts, ms):
+    e = np.asarray(errs)
+    return (f"| {name} | {len(e)} | {np.median(n_pts):.0f} | {100 * np.median(e):.1f} | "
+            f"{100 * np.quantile(e, 0.9):.1f} | {100 * np.mean(covered):.0f} | {np.median(ms):.0f} |")
+
+
+def accuracy(n_cases: int) -> list[str]:
+    lines = ["| family (right geometry given) | cases | points | median err % | p90 err % | "
+             "90 % interval covers % | ms per fit+interval |", "|---|---|---|---|---|---|---|"]
+    for mode in ("known", "fitted", "measured"):
+        for g in GEOMETRIES:
+            errs, cov, pts, ms = [], [], [], []
+            for i in range(n_cases):
+                seed = 1000 * (GEOMETRIES.index(g) + 1) + i
+                if mode == "measured":
+                    s = warm_case(seed, g)
+                    kw = dict(ambient_t=s.ambient_t, ambient_y=s.ambient_y)
+                else:
+                    s, amb = chill_case(seed, g)
+                    kw = dict(ambient=amb) if mode == "known" else {}
+                t0 = time.perf_counter()
+                fit = fit_conduction(s.t, s.y, g, **kw)
+                eta, lo, hi = fit.time_to_threshold(s.threshold)
+                ms.append(1e3 * (time.perf_counter() - t0))
+                errs.append(_err(eta, s.eta_true_s))
+                cov.append(lo is not None and lo <= s.eta_true_s and (hi is None or
+                                                                     s.eta_true_s <= hi))
+                pts.append(s.t.size)
+            name = {"known": "chill, ambient known", "fitted": "chill, ambient fitted",
+                    "measured": "warm, air measured"}[mode]
+            lines.append(_row(f"{name}, {g}", errs, cov, pts, ms))
+    return lines
+
+
+def selection(n_cases: int) -> list[str]:
+    lines = ["| family (geometry not given) | cases | right geometry % | median err % "
+             "(chosen) | p90 err % (chosen) |", "|---|---|---|---|---|"]
+    for mode in ("known", "fitted"):
+        for g in GEOMETRIES:
+            right, errs = 0, []
+            for i in range(n_cases):
+                s, amb = chill_case(5000 + 1000 * GEOMETRIES.index(g) + i, g)
+                kw = dict(ambient=amb) if mode == "known" else {}
+                best, _ = select_geometry(s.t, s.y, **kw)
+                right += best.geometry == g
+                errs.append(_err(best.time_to_threshold(s.threshold)[0], s.eta_true_s))
+            e = np.asarray(errs)
+            lines.append(f"| chill, ambient {mode}, true {g} | {n_cases} | "
+                         f"{100 * right / n_cases:.0f} | {100 * np.median(e):.1f} | "
+                         f"{100 * np.quantile(e, 0.9):.1f} |")
+    return lines
+
+
+def speed(repeats: int) -> list[str]:
+    lines = ["| geometry | ambient | points | median ms (fit) | median ms (fit + ETA interval) |",
+             "|---|---|---|---|---|"]
+    for g in GEOMETRIES:
+        for mode in ("known", "fitted", "measured"):
+            if mode == "measured":
+                s = warm_case(77, g)
+                kw = dict(ambient_t=s.ambient_t, ambient_y=s.ambient_y)
+            else:
+                s, amb = chill_case(77, g)
+                kw = dict(ambient=amb) if mode == "known" else {}
+            # ~200 points: subsample the case evenly
+            idx = np.linspace(0, s.t.size - 1, min(200, s.t.size)).astype(int)
+            t, y = s.t[np.argsort(s.t)][idx], s.y[np.argsort(s.t)][idx]
+            fit_ms, all_ms = [], []
+            for _ in range(repeats):
+                t0 = time.perf_counter()
+                fit = fit_conduction(t, y, g, **kw)
+                t1 = time.perf_counter()
+                fit.time_to_threshold(s.threshold)
+                t2 = time.perf_counter()
+                fit_ms.append(1e3 * (t1 - t0))
+                all_ms.append(1e3 * (t2 - t0))
+            lines.append(f"| {g} | {mode} | {t.size} | {np.median(fit_ms):.1f} | "
+                         f"{np.median(all_ms):.1f} |")
+    return lines
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--cases", type=int, default=30, help="cases per family (default 30)")
+    ap.add_argument("--repeats", type=int, default=7, help="timing repeats (default 7)")
+    args = ap.parse_args()
+    for title, lines in (("Time per fit", speed(args.repeats)),
+                         ("Forecast error with the right geometry", accuracy(args.cases)),
+                         ("Geometry chosen by AICc", selection(max(args.cases // 2, 5)))):
+        print(f"\n### {title}\n")
+        print("\n".join(lines))
+
+
+if __name__ == "__main__":
+    main()
