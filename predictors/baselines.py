@@ -86,10 +86,9 @@ def _crb(t, T_now, k, ambient, threshold, sigma, fitted: bool) -> float:
     if u == 0 or v / u <= 0 or v / u >= 1:
         return math.inf
     eta = math.log(u / v) / k
-    g = [1.0 / (k * u), -eta / k] + ([(-1.0 / u + 1.0 / v) / k] if fitted else [])
-    g = np.array(g)
+    g = np.array([1.0 / (k * u), -eta / k] + ([(-1.0 / u + 1.0 / v) / k] if fitted else []))
     try:
-        return float(math.sqrt(max(g @ np.linalg.solve(J, g), 0.0)))
+        return math.sqrt(max(float(g @ np.linalg.solve(J, g)), 0.0))
     except np.linalg.LinAlgError:
         return math.inf
 

@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import numpy as np
 from numpy.typing import ArrayLike
-
 from thermeta.predictors.measured import load_after
 from thermeta.predictors.result import Forecast
 

@@ -14,7 +14,6 @@ import math
 
 import numpy as np
 from numpy.typing import ArrayLike
-
 from thermeta.predictors.cleaning import clean, residual_outliers
 from thermeta.predictors.lumped import LumpedFit, fit_lumped
 from thermeta.predictors.measured import fit_air, fit_measured
@@ -128,8 +127,8 @@ def _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit=None) -> Fo
     fc.lag_factor_j = 1.0
     if air is not None:
         return _measured(fc, tt, yy, thr, air, limit)
-    kw = dict(ambient=ambient, ambient_sd=amb_sd if ambient is not None else 0.0, bounds=bounds,
-              noise_sd=cl.noise_sd, limit=limit)
+    kw = {"ambient": ambient, "ambient_sd": amb_sd if ambient is not None else 0.0, "bounds": bounds,
+              "noise_sd": cl.noise_sd, "limit": limit}
     fit = fit_lumped(tt, yy, thr, intervals=False, **kw)
     if fit.ok:
         # robust refit: drop what the first fit calls far off (beyond the Hampel pre-filter)
@@ -159,9 +158,9 @@ def _fill_lumped(fc: Forecast, fit: LumpedFit, ambient, amb_sd) -> None:
         fc.warnings.append(
             f"the given ambient {ambient:g} is taken as uncertain by about {amb_sd:g} (1 sd); "
             "the intervals include that")
-    if fc.ambient_mode == "fitted" and fc.ambient_lo is not None and fc.ambient_hi is not None:
-        if fc.ambient_hi - fc.ambient_lo > max(10.0, 2 * abs(fc.ambient - fc.value_now)):
-            fc.warnings.append("the ambient is poorly determined by the readings so far; "
+    if (fc.ambient_mode == "fitted" and fc.ambient_lo is not None and fc.ambient_hi is not None
+            and fc.ambient_hi - fc.ambient_lo > max(10.0, 2 * abs(fc.ambient - fc.value_now))):
+        fc.warnings.append("the ambient is poorly determined by the readings so far; "
                                "give it (--ambient) or measure it for a firmer forecast")
     if fc.eta_s is None:
         fc.warnings.append("the fitted curve levels off before the threshold")
@@ -209,9 +208,9 @@ def _conduction(fc, tt, yy, thr, shape, ambient, air) -> Forecast:
         return fc
     kw = {}
     if air is not None:
-        kw = dict(ambient_t=air.t, ambient_y=air.y)
+        kw = {"ambient_t": air.t, "ambient_y": air.y}
     elif ambient is not None:
-        kw = dict(ambient=float(ambient))
+        kw = {"ambient": float(ambient)}
     fit = conduction.fit_conduction(tt, yy, shape, **kw)
     fc.model = shape
     if not fit.ok:

@@ -336,7 +336,7 @@ def add_intervals(fit: LumpedFit, d, yc, thr, lam, a0, lo, hi, ybar, k_coarse) -
     fine = np.exp(lk + np.linspace(-4 * hw, 4 * hw, 61))
     k_all = np.unique(np.concatenate([k_coarse, fine, [k_hat]]))
     s = sums(d, yc, k_all)
-    a_k, b_k, r_k = solve_fixed_k(s, lam, a0, lo, hi)
+    r_k = solve_fixed_k(s, lam, a0, lo, hi)[2]
     fit.k_lo, fit.k_hi = interval_from_profile(k_all, r_k, cut, k_hat)
     if fit.k_lo is None:
         fit.k_lo = 0.0

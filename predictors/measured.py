@@ -21,7 +21,6 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy.optimize import brentq, minimize_scalar
-
 from thermeta.predictors.lumped import KD_MAX, KD_MIN, LumpedFit, fit_lumped
 
 Z90 = 1.6448536269514722
@@ -116,8 +115,8 @@ def fit_measured(t: np.ndarray, y: np.ndarray, air_t: np.ndarray, air_y: np.ndar
                           bounds=(lg[max(i - 1, 0)], lg[min(i + 1, lg.size - 1)]), method="bounded",
                           options={"xatol": 1e-7})
     k = float(math.exp(res.x))
-    rr, T0 = rss_k(np.array([k]))
-    rss, T0 = float(rr[0]), float(T0[0])
+    rr, T0s = rss_k(np.array([k]))
+    rss, T0 = float(rr[0]), float(T0s[0])
     P, G = response(np.array([k]), s, A)
     fitted = T0 * P[0, pos] + G[0, pos]
     dof = max(n - 2, 1)

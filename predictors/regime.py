@@ -18,7 +18,6 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-
 from thermeta.predictors.lumped import fit_lumped, quick_rss
 
 MIN_REGIME_POINTS = 12
@@ -77,7 +76,7 @@ def find_regime(t: np.ndarray, y: np.ndarray, noise_sd: float, *, min_points: in
         # cycling: keep the window whole unless the newest run outlasts the usual ones
         last = runs[-1]
         same = [r for r in runs[:-1] if r[2] == last[2]]
-        dur = lambda r: t[r[1]] - t[r[0]]  # noqa: E731
+        dur = lambda r: t[r[1]] - t[r[0]]
         if not same or dur(last) <= 2.0 * max(dur(r) for r in same) or last[1] < n - 3:
             return Regime(0, len(runs) - 1, True, "the readings cycle (a thermostat?); fitted the whole window")
         return Regime(max(runs[-2][1], 0), len(runs) - 1, True,

@@ -209,8 +209,8 @@ def measured_air(
     rng = np.random.default_rng(seed)
     c = corruption or Corruption()
     x = sample_times(rng, duration_s, dt_s, c)
-    kw = dict(load_T0=load_T0, air_T0=air_T0, outside=outside, k_air_per_s=k_air_per_s,
-              k_load_per_s=k_load_per_s)
+    kw = {"load_T0": load_T0, "air_T0": air_T0, "outside": outside, "k_air_per_s": k_air_per_s,
+              "k_load_per_s": k_load_per_s}
     air, load = air_load_curves(x, **kw)
     an = c.noise if air_noise is None else air_noise
     air_y = air + (rng.normal(0, an, x.size) if an > 0 else 0.0)

@@ -17,11 +17,9 @@ import sys
 import time
 
 import numpy as np
-
 from thermeta.predictors import forecast, synth
 from thermeta.predictors.baselines import crb_eta_sd, crb_eta_sd_known, curve_fit_eta, linear_eta
 from thermeta.predictors.synth import Corruption
-
 
 SEEN = {"mode": "time"}
 
@@ -70,7 +68,7 @@ def reefer_air(seed: int):
     T0 = r.uniform(2, 5)
     out, ta, tl = r.uniform(25, 35), r.uniform(0.5, 2) * 3600, r.uniform(3, 8) * 3600
     noise, frac = r.uniform(0.05, 0.2), r.uniform(0.35, 0.65)
-    kw = dict(load_T0=T0, air_T0=T0, outside=out, k_air_per_s=1 / ta, k_load_per_s=1 / tl)
+    kw = {"load_T0": T0, "air_T0": T0, "outside": out, "k_air_per_s": 1 / ta, "k_load_per_s": 1 / tl}
     probe = synth.measured_air(seed, threshold=8.0, duration_s=1e6, dt_s=60.0, **kw)
     cross = probe.crossing_t_true - probe.truth["t0"]
     if SEEN["mode"] == "temperature":  # when the load has gone frac of the way to 8 degC

@@ -8,10 +8,14 @@ import math
 import numpy as np
 import pytest
 from scipy.integrate import solve_ivp
-
 from thermeta.predictors import forecast, synth
 from thermeta.predictors.baselines import (
-    crb_eta_sd, crb_eta_sd_known, curve_fit_eta, linear_eta, two_reading_eta, two_reading_k,
+    crb_eta_sd,
+    crb_eta_sd_known,
+    curve_fit_eta,
+    linear_eta,
+    two_reading_eta,
+    two_reading_k,
 )
 from thermeta.predictors.measured import response
 from thermeta.predictors.synth import Corruption
@@ -74,7 +78,7 @@ def test_measured_response_matches_solve_ivp():
     approach to the outside air, sampled irregularly."""
     rng = np.random.default_rng(3)
     s = np.sort(np.concatenate([[0.0], rng.uniform(0, 20000, 400)]))
-    air = lambda x: 30 - 27 * np.exp(-x / 3600)  # noqa: E731
+    air = lambda x: 30 - 27 * np.exp(-x / 3600)
     k, T0 = 1 / 15000, 3.0
     P, G = response(np.array([k]), s, air(s))
     ours = T0 * P[0] + G[0]
@@ -87,7 +91,7 @@ def test_measured_response_matches_solve_ivp():
 def test_measured_air_forecast():
     """The reefer case (air toward outside, load toward air): the closed form of the generator
     matches solve_ivp, and the forecast recovers k and the crossing time, inside its interval."""
-    kw = dict(load_T0=3.0, air_T0=3.0, outside=30.0, k_air_per_s=1 / 3600, k_load_per_s=1 / 18000)
+    kw = {"load_T0": 3.0, "air_T0": 3.0, "outside": 30.0, "k_air_per_s": 1 / 3600, "k_load_per_s": 1 / 18000}
     x = np.linspace(0, 20000, 101)
     air, load = synth.air_load_curves(x, **kw)
     ref = solve_ivp(lambda s, y: [-kw["k_air_per_s"] * (y[0] - 30.0),

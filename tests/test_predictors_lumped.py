@@ -7,7 +7,6 @@ import math
 import numpy as np
 import pytest
 from scipy.integrate import solve_ivp
-
 from thermeta.predictors import forecast, synth
 from thermeta.predictors.lumped import fit_lumped
 from thermeta.predictors.synth import Corruption
@@ -118,7 +117,7 @@ def test_free_ambient_with_little_curvature_is_wide():
                      dt_s=60, corruption=Corruption(noise=0.1, quantum=0.1))
     free = forecast(s.t, s.y, 8.0)
     known = forecast(s.t, s.y, 8.0, ambient=27.0, ambient_uncertainty=0.0)
-    width = lambda f: (f.eta_hi_s if f.eta_hi_s is not None else math.inf) - f.eta_lo_s  # noqa: E731
+    width = lambda f: (f.eta_hi_s if f.eta_hi_s is not None else math.inf) - f.eta_lo_s
     assert width(free) > 2 * width(known)
     assert known.eta_lo_s <= s.eta_true_s <= known.eta_hi_s
 

@@ -3,9 +3,7 @@ nor on a healthy thermostat's sawtooth."""
 
 from __future__ import annotations
 
-import numpy as np
 import pytest
-
 from thermeta.predictors import forecast, synth
 from thermeta.predictors.synth import Corruption
 

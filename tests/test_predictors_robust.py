@@ -4,12 +4,12 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-
 from thermeta.predictors import forecast, synth
 from thermeta.predictors.cleaning import clean, order_and_dedupe, reading_step
 from thermeta.predictors.synth import Corruption
 
-WORT = dict(T0=95.0, ambient=12.0, k_per_s=1 / 900, threshold=20.0, duration_s=1000.0, dt_s=10.0)
+WORT = {"T0": 95.0, "ambient": 12.0, "k_per_s": 1 / 900, "threshold": 20.0,
+        "duration_s": 1000.0, "dt_s": 10.0}
 
 
 def test_order_and_dedupe():
@@ -62,7 +62,8 @@ def test_spikes_move_eta_no_more_than_noise():
 def test_duplicates_out_of_order_gaps_quantised():
     """Duplicated and shuffled timestamps, two gaps, jittered sampling and 0.1 steps give the
     same forecast (to 2 %) as the clean series of the same curve."""
-    kw = dict(T0=3.0, ambient=25.0, k_per_s=1 / 14400, threshold=8.0, duration_s=4000.0, dt_s=30.0)
+    kw = {"T0": 3.0, "ambient": 25.0, "k_per_s": 1 / 14400, "threshold": 8.0,
+          "duration_s": 4000.0, "dt_s": 30.0}
     base = synth.lumped(5, **kw, corruption=Corruption(noise=0.05))
     messy = synth.lumped(5, **kw, corruption=Corruption(noise=0.05, quantum=0.1, dup_frac=0.05,
                                                         shuffle_frac=0.05, n_gaps=2, gap_frac=0.2,
