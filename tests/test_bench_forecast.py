@@ -1,0 +1,110 @@
+"""The forecast bench (scripts/bench_forecast.py): its quick path runs and its output is whole.
+
+These tests check the instrument's structure and arithmetic, not the estimator's quality (the
+bench itself reports that) and not its speed.
+"""
+
+from __future__ import annotations
+
+import importlib.util
+import math
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+ROOT = Path(__file__).resolve().parent.parent
+
+
+@pytest.fixture(scope="module")
+def bench():
+    spec = importlib.util.spec_from_file_location("bench_forecast", ROOT / "scripts" / "bench_forecast.py")
+    mod = importlib.util.module_from_spec(spec)
+    sys.modules["bench_forecast"] = mod
+    spec.loader.exec_module(mod)
+    return mod
+
+
+@pytest.fixture(scope="module")
+def quick(bench, tmp_path_factory):
+    out = tmp_path_factory.mktemp("bench")
+    args = bench.parse_args(["--quick", "--out", str(out)])
+    summary, checks, text = bench.bench(args)
+    return out, summary, checks, text
+
+
+def test_quick_run_writes_table_and_figure(quick):
+    """--quick writes the markdown table (the text it prints) and a PNG."""
+    out, _, _, printed = quick
+    text = (out / "bench_forecast.md").read_text()
+    assert text.startswith("# Forecast quality bench")
+    assert "## Targets" in text and "## Per family" in text
+    assert printed.startswith(text)
+    png = (out / "bench_forecast.png").read_bytes()
+    assert png[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_every_family_is_in_the_table(bench, quick):
+    """Each scenario family and each variant of the curve families appears in the output."""
+    out = quick[0]
+    text = (out / "bench_forecast.md").read_text()
+    for fam in bench.FAMILIES:
+        assert fam in text, fam
+    for fam in bench.VARIANT_FAMILIES:
+        for var in bench.VARIANTS:
+            assert f"| {fam} | {var} |" in text, (fam, var)
+    assert "nan" not in text.lower()
+
+
+def test_quick_figures_are_finite(bench, quick):
+    """The summary of a quick run has finite errors and coverages in [0, 1] for every curve
+    family, variant and point of progress, and each target is judged or marked n/a."""
+    _, summary, checks, _ = quick
+    for fam in bench.VARIANT_FAMILIES:
+        for var in bench.VARIANTS:
+            for frac in bench.PROGRESS:
+                row = summary[(fam, var, frac)]
+                assert row["n"] >= 1
+                assert math.isfinite(row["median"]) and math.isfinite(row["p90"])
+                assert 0.0 <= row["median"] <= row["p90"] <= bench.MISSING_ERR
+                assert 0.0 <= row["cover"] <= 1.0
+    for after in bench.PARAMS["regime_door"]["after_s"]:
+        assert math.isfinite(summary[("regime_door", "clean", after)]["median"])
+    assert summary[("cycling", "clean", 0.0)]["windows"] > 0
+    assert {k[1] for k in summary if k[0] == "asymptote"} == {"warm", "chill"}
+    assert checks and all(c.ok in (True, False, None) for c in checks)
+
+
+def test_draws_stay_inside_the_fixed_ranges(bench):
+    """Every drawn parameter lies inside the range written in PARAMS."""
+    rng = np.random.default_rng(3)
+    for spec in bench.PARAMS.values():
+        for _ in range(50):
+            p = bench.draw(spec, rng)
+            for key, v in spec.items():
+                if isinstance(v, tuple) and len(v) == 3 and v[0] == "log":
+                    assert v[1] <= p[key] <= v[2]
+                elif isinstance(v, tuple) and len(v) == 2 and all(isinstance(x, float) for x in v):
+                    assert v[0] <= p[key] <= v[1]
+
+
+def test_error_arithmetic(bench):
+    """Relative error |eta - true| / true, a missing ETA counted as 1000 %, a non-crossing truth
+    left out; coverage counts open interval ends as unbounded."""
+    recs = [{"eta_true": 100.0, "eta": 110.0, "ok": True, "lo": 90.0, "hi": None},
+            {"eta_true": 100.0, "eta": None, "ok": True, "lo": None, "hi": None},
+            {"eta_true": None, "eta": 5.0, "ok": True, "lo": 1.0, "hi": 9.0},
+            {"eta_true": 200.0, "eta": 150.0, "ok": True, "lo": 160.0, "hi": 190.0}]
+    e = bench.rel_errors(recs)
+    assert e.tolist() == pytest.approx([0.10, bench.MISSING_ERR, 0.25])
+    assert bench.coverage(recs) == pytest.approx(2 / 3)
+
+
+def test_bad_family_exits_2(bench, capsys):
+    """An unknown family is a one-line error and exit code 2."""
+    with pytest.raises(SystemExit) as exc:
+        bench.parse_args(["--families", "nonesuch"])
+    assert exc.value.code == 2
+    err = capsys.readouterr().err.strip()
+    assert "nonesuch" in err and len(err.splitlines()) == 1
