@@ -188,7 +188,7 @@ def _measured(fc, tt, yy, thr, air, limit=None) -> Forecast:
     fc.eta_s, fc.eta_lo_s, fc.eta_hi_s = fit.eta_s, fit.eta_lo_s, fit.eta_hi_s
     fc.direction = fit.direction
     fc.rmse = fit.sigma
-    fc.interval_method = "delta method (log scale) on the load and ambient fits"
+    fc.interval_method = "parametric draws from the load and ambient fit covariances"
     fc.params = {"T0": fit.T0, "t_first": float(tt[0]), "k_per_s": fit.k_per_s,
                  "value_fit_now": fit.value_fit_now}
     if a_fit.ok:

@@ -185,6 +185,7 @@ class LumpedFit:
     direction: str | None = None
     residuals: np.ndarray = field(default_factory=lambda: np.zeros(0))
     n: int = 0
+    cov: np.ndarray | None = None  # set by callers that need it (the measured-ambient forecast)
 
     def curve(self, t: np.ndarray) -> np.ndarray:
         """T(t) = a + b e^(-k (t - t_first))."""

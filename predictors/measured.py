@@ -10,8 +10,8 @@ own asymptote, Ta(x) = Tout + (A_now - Tout) e^(-ka x), and then
 
     T(x) = Tout + A e^(-ka x) + (T_now - Tout - A) e^(-k x),   A = k (A_now - Tout) / (k - ka).
 
-Interval: delta method, on a log scale, on the covariances of both fits (load: T0, k; air:
-Tout, amplitude, ka), assumed independent.
+Interval: percentiles of the crossing time over parametric draws from the covariances of both
+fits (load: T_now, log k; air: Tout, amplitude, log ka), taken as independent.
 """
 
 from __future__ import annotations
@@ -24,6 +24,8 @@ from scipy.optimize import brentq, minimize_scalar
 from thermeta.predictors.lumped import KD_MAX, KD_MIN, LumpedFit, fit_lumped
 
 Z90 = 1.6448536269514722
+N_DRAWS = 300
+DRAW_SEED = 20_261_201  # fixed, so a forecast is a pure function of its readings
 
 
 def response(k: np.ndarray, s: np.ndarray, A: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -157,42 +159,78 @@ def fit_measured(t: np.ndarray, y: np.ndarray, air_t: np.ndarray, air_y: np.ndar
         if fit.eta_s is None:
             fit.eta_lo_s = None
         return fit
-    # variances: load (T_now, log k); air (A_now, Tout, log ka) from the air fit's 90 % ranges
-    grad_now = np.concatenate([P[0, pos][-1:], dlogk[-1:]])
-    var_now = float(grad_now @ cov @ grad_now)
-    air_sd = []
-    for lo_, hi_, v in ((air_fit.ambient_lo, air_fit.ambient_hi, out),
-                        (air_fit.k_lo, air_fit.k_hi, ka)):
-        if lo_ is None or hi_ is None:
-            air_sd.append(math.inf)
-        elif v is ka:
-            air_sd.append((math.log(max(hi_, 1e-15)) - math.log(max(lo_, 1e-15))) / (2 * Z90))
-        else:
-            air_sd.append((hi_ - lo_) / (2 * Z90))
-    sds = [math.sqrt(var_now), se_logk, air_fit.sigma / math.sqrt(max(air_fit.n, 1)) * 2, air_sd[0], air_sd[1]]
-    var_log = 0.0
-    for j, sd in enumerate(sds):
-        if not math.isfinite(sd):
-            fit.eta_hi_s = None
-            var_log = math.inf
-            break
-        if sd <= 0:
-            continue
-        p = p0.copy()
-        p[j] += sd
-        e = eta_of(p)
-        if e is None:
-            var_log = math.inf
-            break
-        var_log += (math.log(max(e, 1e-9)) - math.log(fit.eta_s)) ** 2
-    if math.isinf(var_log):
+    # 90 % interval: the 5th-95th percentiles of eta over parametric draws from both fits
+    # (load: T_now and log k; air: Tout, amplitude, log ka), treated as independent
+    G = np.array([[P[0, pos][-1], dlogk[-1]], [0.0, 1.0]])  # (T0, log k) -> (T_now, log k)
+    cov_now = G @ cov @ G.T
+    if air_fit.cov is None:
         fit.eta_lo_s, fit.eta_hi_s = 0.0, None
         return fit
-    w = Z90 * math.sqrt(var_log)
-    fit.eta_lo_s, fit.eta_hi_s = fit.eta_s * math.exp(-w), fit.eta_s * math.exp(w)
+    rng = np.random.default_rng(DRAW_SEED)
+    load = rng.multivariate_normal([fit.value_fit_now, math.log(k)], cov_now, N_DRAWS,
+                                   check_valid="ignore", method="eigh")
+    airp = rng.multivariate_normal([out, air_fit.amplitude, math.log(max(ka, 1e-15))],
+                                   air_fit.cov, N_DRAWS, check_valid="ignore", method="eigh")
+    a_out, a_amp, a_k = airp[:, 0], airp[:, 1], np.exp(airp[:, 2])
+    a_now = a_out + a_amp * np.exp(-a_k * (air_fit.t_last - air_fit.t_first))
+    etas = crossings(load[:, 0], np.exp(load[:, 1]), a_now, a_out, a_k, threshold, past,
+                     horizon_s=60.0 / max(min(k, ka if ka > 0 else k), 1e-12))
+    lo_e, hi_e = np.percentile(etas, [5.0, 95.0])
+    fit.eta_lo_s = float(min(lo_e, fit.eta_s))
+    fit.eta_hi_s = None if not math.isfinite(hi_e) else float(max(hi_e, fit.eta_s))
     return fit
 
 
+def crossings(T_now: np.ndarray, k: np.ndarray, air_now: np.ndarray, out: np.ndarray,
+              ka: np.ndarray, thr: float, past: bool, horizon_s: float) -> np.ndarray:
+    """First crossing time per draw: a vectorised scan of T(x) on a log grid, then a few
+    regula-falsi steps inside the bracket; inf where it never crosses within the horizon."""
+    if past:
+        return np.zeros(T_now.shape)
+    # k == ka has its own closed form; nudging ka by 1e-6 of itself changes T(x) by less
+    ka = np.where(np.abs(k - ka) < 1e-6 * k, ka * (1 + 1e-6), ka)
+    A = k * (air_now - out) / (k - ka)
+
+    def value(x: np.ndarray) -> np.ndarray:  # x broadcasts against (D, 1)
+        with np.errstate(over="ignore", invalid="ignore"):
+            return (out[:, None] + A[:, None] * np.exp(-ka[:, None] * x)
+                    + (T_now - out - A)[:, None] * np.exp(-k[:, None] * x) - thr)
+
+    x = np.concatenate([[0.0], np.geomspace(1e-5 * horizon_s, horizon_s, 120)])[None, :]
+    g = value(x)
+    flip = np.sign(g[:, 1:]) != np.sign(g[:, :1])
+    hit = flip.any(axis=1)
+    i = np.argmax(flip, axis=1)
+    rows = np.arange(g.shape[0])
+    x0, x1, g0, g1 = x[0, i], x[0, i + 1], g[rows, i], g[rows, i + 1]
+    for _ in range(4):
+        with np.errstate(divide="ignore", invalid="ignore"):
+            xc = x0 + (x1 - x0) * g0 / (g0 - g1)
+        xc = np.nan_to_num(xc, nan=0.5 * (x0 + x1))
+        gc = value(xc[:, None])[:, 0]
+        left = np.sign(gc) == np.sign(g0)
+        x0, g0 = np.where(left, xc, x0), np.where(left, gc, g0)
+        x1, g1 = np.where(left, x1, xc), np.where(left, g1, gc)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        xc = np.nan_to_num(x0 + (x1 - x0) * g0 / (g0 - g1), nan=0.5 * (x0 + x1))
+    # a draw whose T_now is already on the far side of thr has crossed
+    start_past = np.sign(g[:, 0]) != np.sign(thr_side(T_now, thr))
+    return np.where(start_past, 0.0, np.where(hit, xc, np.inf))
+
+
+def thr_side(T_now: np.ndarray, thr: float) -> np.ndarray:
+    """The side of thr where most draws of T_now lie."""
+    return np.full(T_now.shape, np.sign(np.median(T_now) - thr))
+
+
 def fit_air(air_t: np.ndarray, air_y: np.ndarray, noise_sd: float) -> LumpedFit:
-    """The air's own lumped fit (ambient fitted), used to extrapolate it."""
-    return fit_lumped(air_t, air_y, float(air_y[-1]), noise_sd=noise_sd)
+    """The air's own lumped fit (ambient fitted), used to extrapolate it; with the covariance of
+    (Tout, amplitude, log ka) from its Jacobian, cov = sigma^2 (J'J)^-1."""
+    fit = fit_lumped(air_t, air_y, float(air_y[-1]), noise_sd=noise_sd)
+    if fit.ok:
+        d = air_t - air_t[0]
+        e = np.exp(-fit.k_per_s * d)
+        # T = a + b e^(-k d): dT/da = 1, dT/db = e, dT/dlog k = -b k d e
+        J = np.column_stack([np.ones_like(d), e, -fit.amplitude * fit.k_per_s * d * e])
+        fit.cov = np.linalg.pinv(J.T @ J) * fit.sigma**2
+    return fit

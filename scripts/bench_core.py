@@ -165,6 +165,7 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--seen", choices=["time", "temperature"], default="time",
                    help="'35-65 %% of the way' measured in time to the crossing (default, as the "
                         "core-probe generator does) or in temperature")
+    p.add_argument("--only", default="", help="run only the families whose name contains this")
     args = p.parse_args(argv)
     SEEN["mode"] = args.seen
     print(f"seen fraction measured in {args.seen}; seeds {args.seed}..{args.seed + args.cases - 1}\n")
@@ -172,6 +173,8 @@ def main(argv: list[str] | None = None) -> int:
           "no ETA | linear 30 min (median) | curve_fit (median) | ms per forecast |")
     print("|---|---|---|---|---|---|---|---|---|---|---|")
     for name, make, target in FAMILIES:
+        if args.only not in name:
+            continue
         n = args.cases if "sphere" not in name or args.sphere_cases is None else args.sphere_cases
         try:
             r = run_family(make, n, args.seed, baselines=True)
