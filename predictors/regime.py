@@ -35,6 +35,11 @@ def _rss(t: np.ndarray, y: np.ndarray) -> float:
     return quick_rss(t, y)
 
 
+def _exact_rss(t: np.ndarray, y: np.ndarray) -> float:
+    f = fit_lumped(t, y, float(y[-1]), intervals=False)
+    return f.rss if f.ok else math.inf
+
+
 def slope_runs(t: np.ndarray, y: np.ndarray, noise_sd: float, half: int = 8) -> list[tuple[int, int, int]]:
     """Monotone runs (start, end, sign) of the local slope, with signs only where the slope is
     clearly non-zero (|slope| > 3 se of a local straight line)."""
@@ -102,6 +107,9 @@ def find_regime(t: np.ndarray, y: np.ndarray, noise_sd: float, *, min_points: in
                 j_best, rss2 = int(cands[i]), float(scores[i])
         else:
             j_best, rss2 = int(cands[i]), float(scores[i])
+        # the grid RSS above ranks the splits; the test uses exact fits
+        rss1 = _exact_rss(ts, ys)
+        rss2 = _exact_rss(ts[:j_best], ys[:j_best]) + _exact_rss(ts[j_best:], ys[j_best:])
         s2 = max(rss2 / max(m - 7, 1), sig * sig)
         # 4 more parameters (3 for the second curve, 1 for the split): BIC-style, with margin
         if (rss1 - rss2) / s2 < 4.0 * math.log(m) + 12.0:

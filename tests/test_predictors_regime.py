@@ -3,6 +3,7 @@ nor on a healthy thermostat's sawtooth."""
 
 from __future__ import annotations
 
+import numpy as np
 import pytest
 from thermeta.predictors import forecast, synth
 from thermeta.predictors.synth import Corruption
@@ -48,3 +49,29 @@ def test_sawtooth_makes_no_nonsense_forecast(seed):
     fc = forecast(s.t, s.y, 8.0)
     assert fc.ok and fc.eta_s is None
     assert any("cycle" in w for w in fc.warnings)
+
+
+def test_chiller_water_switched():
+    """Wort chilled with tap water (toward 15 degC), then switched to glycol (toward 2 degC):
+    the forecast to 10 degC uses the glycol regime only and lands near the truth."""
+    s = synth.regime_change(11, T0=95, k_per_s=1 / 700, steps=[(0, 15), (900, 2)], threshold=10,
+                            duration_s=1400, dt_s=10, corruption=Corruption(noise=0.2, quantum=0.1))
+    fc = forecast(s.t, s.y, 10.0)
+    assert abs(fc.regime_start - s.truth["regime_start"]) <= 30
+    assert fc.eta_s == pytest.approx(s.eta_true_s, rel=0.05)
+    assert fc.eta_lo_s <= s.eta_true_s <= fc.eta_hi_s
+
+
+def test_no_false_regime_over_many_clean_chills():
+    """Over 80 seeded clean chills (noise 0.05-0.3, 0.1 steps, 5-15 s sampling) the regime
+    search never cuts the window."""
+    rng = np.random.default_rng(12)
+    fired = 0
+    for seed in range(80):
+        tau = rng.uniform(480, 1500)
+        s = synth.lumped(seed, T0=rng.uniform(90, 98), ambient=rng.uniform(8, 15), k_per_s=1 / tau,
+                         threshold=20, duration_s=rng.uniform(0.4, 1.2) * tau,
+                         dt_s=rng.uniform(5, 15),
+                         corruption=Corruption(noise=rng.uniform(0.05, 0.3), quantum=0.1))
+        fired += forecast(s.t, s.y, 20.0).regime_start != pytest.approx(s.t.min())
+    assert fired == 0
