@@ -10,6 +10,7 @@ Never raises on bad data: a failed fit is a Forecast with ok=False and a reason.
 
 from __future__ import annotations
 
+import importlib
 import math
 
 import numpy as np
@@ -159,7 +160,7 @@ def _fill_lumped(fc: Forecast, fit: LumpedFit, ambient, amb_sd) -> None:
             f"the given ambient {ambient:g} is taken as uncertain by about {amb_sd:g} (1 sd); "
             "the intervals include that")
     if (fc.ambient_mode == "fitted" and fc.ambient_lo is not None and fc.ambient_hi is not None
-            and fc.ambient_hi - fc.ambient_lo > max(10.0, 2 * abs(fc.ambient - fc.value_now))):
+            and fc.ambient_hi - fc.ambient_lo > max(10.0, abs(fc.ambient - fc.value_now))):
         fc.warnings.append("the ambient is poorly determined by the readings so far; "
                                "give it (--ambient) or measure it for a firmer forecast")
     if fc.eta_s is None:
@@ -202,7 +203,7 @@ def _measured(fc, tt, yy, thr, air, limit=None) -> Forecast:
 
 def _conduction(fc, tt, yy, thr, shape, ambient, air) -> Forecast:
     try:
-        from thermeta.predictors import conduction
+        conduction = importlib.import_module("thermeta.predictors.conduction")
     except ImportError:
         fc.ok, fc.reason = False, "conduction model not available"
         return fc
