@@ -41,6 +41,7 @@ class BrokerConfig:
     keepalive_s: int = 60
     session_expiry_s: int = 7 * 86400
     qos: int = 1
+    receive_maximum: int = 1000  # MQTT 5: unacknowledged messages the broker may send ahead
     username: str | None = None
     password_env: str | None = None
     password: str | None = field(default=None, repr=False)
@@ -412,10 +413,19 @@ def _broker(c: _Checker, t: dict) -> BrokerConfig:
         keepalive_s=c.get(t, w, "keepalive", "int", 60, positive=True),
         session_expiry_s=c.get(t, w, "session_expiry", "int", 7 * 86400, positive=True),
         qos=c.get(t, w, "qos", "int", 1, choices=(0, 1)),
+        receive_maximum=_receive_max(c, t, w),
         username=username, password_env=password_env, password=password, tls=tls,
         ca_file=files["ca_file"], cert_file=files["cert_file"], key_file=files["key_file"],
         tls_insecure=c.get(t, w, "tls_insecure", "bool", False),
     )
+
+
+def _receive_max(c: _Checker, t: dict, w: tuple) -> int:
+    v = c.get(t, w, "receive_maximum", "int", 1000, positive=True)
+    if v > 65535:
+        c.problem(w + ("receive_maximum",), "broker.receive_maximum", f"must be 1-65535, got {v}")
+        return 1000
+    return v
 
 
 def _storage(c: _Checker, t: dict) -> StorageConfig:

@@ -106,6 +106,9 @@ class MqttLink:
         if self.protocol == mqtt.MQTTv5:
             props = Properties(PacketTypes.CONNECT)
             props.SessionExpiryInterval = int(self.cfg.session_expiry_s)
+            # Unacknowledged messages the broker may send ahead (MQTT 5 Receive Maximum); for
+            # 3.1.1 the broker's max_inflight_messages plays this part.
+            props.ReceiveMaximum = int(self.cfg.receive_maximum)
             self.client.connect_async(self.cfg.host, self.cfg.port, self.cfg.keepalive_s,
                                       clean_start=False, properties=props)
         else:

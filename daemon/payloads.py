@@ -56,6 +56,10 @@ def parse_payload(payload: bytes, now: float, unit: str = "C", limits: Limits = 
     """
     if len(payload) > limits.max_bytes:
         raise PayloadError(f"oversized payload ({len(payload)} bytes > {limits.max_bytes})")
+    if payload[:1] == b"{":
+        fast = _fast_object(payload, now, unit, limits)
+        if fast is not None:
+            return [fast]
     try:
         text = payload.decode("utf-8").strip()
     except UnicodeDecodeError:
@@ -86,6 +90,31 @@ def parse_payload(payload: bytes, now: float, unit: str = "C", limits: Limits = 
 
 def _reject_constant(name: str) -> float:
     raise PayloadError(f"value is not a finite number ({name})")
+
+
+_DECODE = json.JSONDecoder(parse_constant=_reject_constant).decode
+_NUMBER = (int, float)
+
+
+def _fast_object(payload: bytes, now: float, unit: str, limits: Limits) -> Reading | None:
+    """The common case, ``{"ts": number, "value": number[, "unit": ...]}``, checked quickly.
+
+    None means "not this simple or not valid": the general path then gives the exact reason.
+    """
+    try:
+        doc = _DECODE(payload.decode("utf-8"))
+    except (ValueError, RecursionError):  # UnicodeDecodeError, JSONDecodeError, PayloadError
+        return None
+    if type(doc) is not dict:
+        return None
+    value, ts, u = doc.get("value"), doc.get("ts"), doc.get("unit", unit)
+    if type(value) not in _NUMBER or type(ts) not in _NUMBER or u not in ("C", "F", "K"):
+        return None
+    value_c = value if u == "C" else to_celsius(value, u)
+    if not (limits.low_c <= value_c <= limits.high_c and EPOCH_MIN_S <= ts <= EPOCH_MAX_S
+            and ts <= now + limits.max_future_s):
+        return None  # NaN and infinities fail the range test too
+    return Reading(float(ts), float(value_c), False)
 
 
 def _finite(value: float, what: str, unit: str) -> float:

@@ -131,7 +131,9 @@ class Service:
         refit_s = self.config.fit.refit_every_s / rate
         from datetime import datetime, timedelta
 
-        first = datetime.now(timezone.utc) + timedelta(seconds=min(1.0, refit_s))
+        # The first round comes one interval after start: forecasts from before a restart are
+        # still retained and stored, and a restart's backlog drains first.
+        first = datetime.now(timezone.utc) + timedelta(seconds=refit_s)
         sched.add_job(self.refitter.run_once, "interval", seconds=refit_s, id="refit",
                       next_run_time=first, **opts)
         sched.add_job(self._heartbeat, "interval", seconds=HEARTBEAT_S, id="heartbeat",

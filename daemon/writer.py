@@ -99,6 +99,7 @@ class Writer(threading.Thread):
         self._stopping = threading.Event()
         self._item_ids: dict[str, int] = {}
         self._limits: dict[str, Limits] = {}
+        self._topics: dict[str, tuple] = {}  # topic -> (route, store name, limits, id, item)
         self.counts = {"messages": 0, "readings": 0, "dead_letters": 0, "batches": 0,
                        "store_errors": 0}
         self._dead_since_log = 0
@@ -123,9 +124,27 @@ class Writer(threading.Thread):
         while True:
             batch, last = self._collect()
             if batch:
-                self._write(batch)
+                self._write_guarded(batch)
             if last:
                 return
+
+    def _write_guarded(self, batch: list[Inbound]) -> None:
+        # The writer thread must not die: unacknowledged messages would fill the broker's
+        # in-flight window and stop ingest.  After a few failures the batch is set aside.
+        for attempt in range(3):
+            try:
+                self._write(batch)
+                return
+            except Exception:  # noqa: BLE001
+                log.exception("writing a batch of %d failed (attempt %d)", len(batch), attempt + 1)
+                time.sleep(0.5)
+        try:
+            self.store.write_batch([], [self._dead(m, None, "internal error while storing")
+                                        for m in batch])
+            self.counts["dead_letters"] += len(batch)
+            self.ack(batch)
+        except Exception:  # noqa: BLE001 - the broker resends them after a reconnect
+            log.exception("could not set aside a failed batch of %d", len(batch))
 
     def _collect(self) -> tuple[list[Inbound], bool]:
         first = self._q.get()
@@ -147,9 +166,10 @@ class Writer(threading.Thread):
         return batch, False
 
     def _write(self, batch: list[Inbound]) -> None:
-        readings: list[dict[str, Any]] = []
+        readings: list[tuple] = []
         dead: list[dict[str, Any]] = []
         seen: list[tuple[str, ItemConfig, float | None]] = []
+        self._prepare_topics(batch)
         for msg in batch:
             try:
                 self._convert(msg, readings, dead, seen)
@@ -173,7 +193,12 @@ class Writer(threading.Thread):
         self.counts["messages"] += len(batch)
         self.counts["readings"] += len(readings)
         self.counts["dead_letters"] += len(dead)
+        newest: dict[str, tuple[ItemConfig, float | None]] = {}
         for name, cfg, ts in seen:
+            prev = newest.get(name)
+            if prev is None or (ts is not None and (prev[1] is None or ts > prev[1])):
+                newest[name] = (cfg, ts)
+        for name, (cfg, ts) in newest.items():
             self.activity.note(name, cfg, ts)
         try:
             self.ack(batch)
@@ -182,29 +207,58 @@ class Writer(threading.Thread):
         if dead:
             self._log_dead(len(dead), dead[-1])
 
+    def _prepare_topics(self, batch: list[Inbound]) -> None:
+        """Resolve the batch's new topics and register their new items in one go."""
+        routes = {}
+        for msg in batch:
+            if msg.topic not in self._topics and msg.topic not in routes:
+                try:
+                    routes[msg.topic] = self.router.resolve(msg.topic)
+                except Exception:  # noqa: BLE001 - the message becomes a dead letter
+                    log.exception("cannot map topic %r", msg.topic[:200])
+                    routes[msg.topic] = None
+        specs = [(r.store_name, r.kind, r.item.unit,
+                  r.item.topic if r.kind == "load" else r.item.ambient_topic)
+                 for r in routes.values() if r is not None]
+        delay = 0.5
+        while True:
+            try:
+                ids = self.store.ensure_items(specs, now=self.clock.now()) if specs else {}
+                break
+            except Exception as exc:  # noqa: BLE001 - the store may be briefly unavailable
+                log.error("cannot register new items (%s); retrying in %.1f s", exc, delay)
+                time.sleep(delay)
+                delay = min(delay * 2, 30.0)
+        for topic, route in routes.items():
+            if route is None:
+                continue
+            name = route.store_name
+            if route.kind == "load" and name not in self._item_ids:
+                log.info("new item %s on %s", name, topic)
+            self._item_ids[name] = ids[name]
+            if len(self._topics) < 1_000_000:
+                self._topics[topic] = (route, name, self._limits_for(route), ids[name],
+                                       route.item.name if route.kind == "ambient" else name)
+
     def _convert(self, msg: Inbound, readings: list, dead: list, seen: list) -> None:
-        route = self.router.resolve(msg.topic)
-        if route is None:
+        hit = self._topics.get(msg.topic)
+        if hit is None:
             dead.append(self._dead(msg, None, "no item is mapped to this topic"))
             return
-        name = route.store_name
-        limits = self._limits_for(route)
+        route, name, limits, item_id, load_name = hit
         try:
             parsed = parse_payload(msg.payload, msg.received_at, route.item.unit, limits,
                                    route.item.senml_name)
         except PayloadError as exc:
             dead.append(self._dead(msg, name, str(exc)))
             return
-        item_id = self._item_id(route, name)
-        newest = max(r.ts for r in parsed)
+        newest = parsed[0].ts
         for r in parsed:
-            readings.append({"item_id": item_id, "ts": r.ts, "value_c": r.value_c,
-                             "flags": FLAG_RECEIPT_TS if r.receipt_ts else 0,
-                             "received_at": msg.received_at})
-        if route.kind == "ambient":
-            seen.append((route.item.name, route.item, None))
-        else:
-            seen.append((name, route.item, newest))
+            readings.append((item_id, r.ts, r.value_c, FLAG_RECEIPT_TS if r.receipt_ts else 0,
+                             msg.received_at))
+            if r.ts > newest:
+                newest = r.ts
+        seen.append((load_name, route.item, None if route.kind == "ambient" else newest))
 
     def _limits_for(self, route: Route) -> Limits:
         key = route.store_name
@@ -215,26 +269,6 @@ class Writer(threading.Thread):
                          max_bytes=self.config.ingest.max_payload_bytes)
             self._limits[key] = lim
         return lim
-
-    def _item_id(self, route: Route, name: str) -> int:
-        item_id = self._item_ids.get(name)
-        if item_id is None:
-            delay = 0.5
-            while True:
-                try:
-                    item_id = self.store.ensure_item(name, kind=route.kind, unit=route.item.unit,
-                                                     topic=route.item.topic if route.kind == "load"
-                                                     else route.item.ambient_topic,
-                                                     now=self.clock.now())
-                    break
-                except Exception as exc:  # noqa: BLE001 - the store may be briefly unavailable
-                    log.error("cannot register item %s (%s); retrying in %.1f s", name, exc, delay)
-                    time.sleep(delay)
-                    delay = min(delay * 2, 30.0)
-            self._item_ids[name] = item_id
-            if route.kind == "load":
-                log.info("new item %s on %s", name, route.item.topic)
-        return item_id
 
     def _dead(self, msg: Inbound, item: str | None, reason: str) -> dict[str, Any]:
         return {"received_at": msg.received_at, "topic": msg.topic[:1024], "item": item,

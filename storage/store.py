@@ -25,6 +25,13 @@ BUSY_TIMEOUT_MS = 15000
 PLUGIN_MODULES = ("thermeta.storage.alerts",)  # other parts' tables, joined to schema.metadata
 
 
+READING_COLUMNS = ("item_id", "ts", "value_c", "flags", "received_at")
+SQLITE_INSERT_READINGS = (
+    f"INSERT INTO readings ({', '.join(READING_COLUMNS)}) VALUES (?, ?, ?, ?, ?) "
+    "ON CONFLICT (item_id, ts) DO NOTHING"
+)
+
+
 class StoreError(Exception):
     """The store could not be opened, created or written; the message is safe to show."""
 
@@ -125,6 +132,31 @@ class Store:
         self._item_ids[name] = int(found)
         return int(found)
 
+    def ensure_items(self, specs: Sequence[tuple[str, str, str, str | None]],
+                     now: float | None = None) -> dict[str, int]:
+        """Ids of many items at once, creating the new ones in ONE transaction.
+
+        specs: (name, kind, unit, topic) tuples.  A site's first minute brings hundreds of new
+        probes; one commit each would stall ingest on fsyncs.
+        """
+        want = {name: (kind, unit, topic) for name, kind, unit, topic in specs
+                if name not in self._item_ids}
+        created = time.time() if now is None else now
+        names = list(want)
+        for i in range(0, len(names), 500):
+            chunk = names[i:i + 500]
+            with self._write() as conn, conn.begin():
+                found = dict(conn.execute(select(items.c.name, items.c.id)
+                                          .where(items.c.name.in_(chunk))).all())
+                new = [{"name": n, "kind": want[n][0], "unit": want[n][1], "topic": want[n][2],
+                        "created_at": created} for n in chunk if n not in found]
+                if new:
+                    conn.execute(insert(items), new)
+                    found.update(conn.execute(select(items.c.name, items.c.id)
+                                              .where(items.c.name.in_([r["name"] for r in new]))).all())
+            self._item_ids.update({n: int(v) for n, v in found.items()})
+        return {name: self._item_ids[name] for name, *_ in specs}
+
     def item_id(self, name: str) -> int | None:
         if name in self._item_ids:
             return self._item_ids[name]
@@ -149,19 +181,30 @@ class Store:
             return {name: float(ts) for name, ts in conn.execute(q) if ts is not None}
 
     # -- the ingest batch ---------------------------------------------------------------------
-    def write_batch(self, reading_rows: Sequence[dict[str, Any]],
+    def write_batch(self, reading_rows: Sequence[tuple | dict[str, Any]],
                     dead_rows: Sequence[dict[str, Any]] = ()) -> int:
         """Insert readings (duplicates of (item_id, ts) ignored) and dead letters in ONE transaction.
 
-        reading_rows: dicts with item_id, ts, value_c, flags, received_at.
+        reading_rows: tuples (item_id, ts, value_c, flags, received_at), or dicts with those keys.
         dead_rows: dicts with received_at, topic, item, reason, payload.
         Returns the number of readings newly stored where the driver reports it, else -1.
         Raises StoreError; nothing of the batch is stored then.
         """
         stored = 0
+        rows = list(reading_rows)
+        if rows and isinstance(rows[0], tuple):
+            if self.dialect != "sqlite":
+                rows = [dict(zip(READING_COLUMNS, r)) for r in rows]
+        elif rows and self.dialect == "sqlite":
+            rows = [tuple(r[c] for c in READING_COLUMNS) for r in rows]
         try:
             with self._write() as conn, conn.begin():
-                if reading_rows:
+                if rows and self.dialect == "sqlite":
+                    # The hot path: the driver's executemany, no per-row SQL compilation.
+                    res = conn.exec_driver_sql(SQLITE_INSERT_READINGS, rows)
+                    stored = res.rowcount
+                elif rows:
+                    reading_rows = rows
                     stmt = self._insert_ignore(readings)
                     if stmt is not None:
                         res = conn.execute(stmt, list(reading_rows))
