@@ -211,3 +211,15 @@ def test_check_config_command_exit_codes(tmp_path):
                        capture_output=True, text=True, timeout=60)
     assert r.returncode == 2
     assert r.stderr.strip() == f'{bad}:15: item.threshold: must be a number, got "eight"'
+
+
+@pytest.mark.parametrize("name", ["minimal.toml", "thermeta.example.toml"])
+def test_shipped_example_configs_are_valid(name):
+    """The configs in config/ load as shipped (the minimal one is the issue's, verbatim)."""
+    from pathlib import Path
+
+    path = Path(__file__).resolve().parents[1] / "config" / name
+    cfg = load_config(path)
+    assert cfg.items and cfg.items[0].name == "reefer-07"
+    if name == "minimal.toml":
+        assert path.read_text().split("\n", 1)[1] == MINIMAL
