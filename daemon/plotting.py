@@ -51,8 +51,10 @@ def _air_curve(p: dict[str, float], t_last: float, amb_t, amb_y):
             -p["air_k_per_s"] * np.clip(t - t_last, 0.0, None))
         if amb_t is None or len(amb_t) == 0:
             return future
-        order = np.argsort(amb_t)
-        at, ay = np.asarray(amb_t, float)[order], np.asarray(amb_y, float)[order]
+        from thermeta.predictors.cleaning import clean
+
+        cl = clean(np.asarray(amb_t, float), np.asarray(amb_y, float))  # as the forecast did
+        at, ay = cl.t, cl.y
         past = np.interp(t, at, ay)
         return np.where(t <= at[-1], past, future)
     return air
@@ -65,17 +67,25 @@ def model_curve(fc: Forecast, t: np.ndarray, series: Any = None) -> np.ndarray |
     ``fc.params`` (see the board note of the forecast core for the keys).
     """
     t = np.asarray(t, float)
+    mine = _rebuilt_curve(fc, t, series)
     try:
         from thermeta.predictors import predict  # type: ignore[attr-defined]
     except ImportError:
-        predict = None
-    if predict is not None:
-        try:
-            out = np.asarray(predict(fc, t), float)
-            if out.shape == t.shape and np.isfinite(out).any():
-                return out
-        except (TypeError, ValueError, KeyError):
-            pass  # fall back to rebuilding the curve below
+        return mine
+    try:
+        theirs = np.asarray(predict(fc, t), float)
+    except (TypeError, ValueError, KeyError):
+        return mine
+    if theirs.shape != t.shape:
+        return mine
+    if mine is None:
+        return theirs if np.isfinite(theirs).any() else None
+    # the predictors' own values where they give one (NaN where the curve needs the fit object)
+    return np.where(np.isfinite(theirs), theirs, mine)
+
+
+def _rebuilt_curve(fc: Forecast, t: np.ndarray, series: Any) -> np.ndarray | None:
+    """The curve rebuilt from ``fc.params`` (and the series, for a measured ambient)."""
     p = fc.params or {}
     if not fc.ok:
         return None
@@ -187,7 +197,7 @@ def forecast_figure(series: SeriesLike, fc: Forecast, *, unit: str = "C", title:
         ax.axhline(conv(fc.ambient), color=C_AMB, lw=0.8, ls=(0, (1, 2)),
                    label=f"ambient ({fc.ambient_mode}) {conv(fc.ambient):.1f} {sign}", gid="ambient")
     if truth is not None:
-        ax.plot(D(truth[0]), conv(np.asarray(truth[1])), "-", lw=1.0, color=C_TRUTH,
+        ax.plot(D(truth[0]), conv(np.asarray(truth[1])), ":", lw=1.6, color=C_TRUTH, zorder=5,
                 label="truth (simulated)", gid="truth")
     reg = fc.regime_start if fc.regime_start is not None else t_first
     t_fit = np.linspace(reg, t_last, 200)

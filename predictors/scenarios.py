@@ -470,11 +470,11 @@ def build(name: str, *, seed: int = 0, t_start: float = T_START,
     probes: list[ProbeSeries] = []
     events: list[tuple[float, str]] = []
     titles = []
-    longest = 0.0
-    for key in keys:
-        site = SITES[key]()
-        dur = duration_s or site.duration_s
-        longest = max(longest, dur)
+    sites = {key: SITES[key]() for key in keys}
+    # on one timeline every site keeps sending until the longest story has played out
+    longest = duration_s or max(site.duration_s for site in sites.values())
+    for key, site in sites.items():
+        dur = longest
         titles.append(site.title)
         events += [(t_start + s, text) for s, text in site.events]
         for spec in site.specs:

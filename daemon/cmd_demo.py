@@ -1,0 +1,392 @@
+"""``thermeta demo``: the whole product on simulated sites, in one command.
+
+Uses the MQTT broker at --host/--port when one answers there, else starts one inside this process
+(amqtt, loopback, a free port).  Then a temporary SQLite store, the service (ingest, refits,
+forecasts, alerts) and the simulator, all on ONE scaled clock so that at ``--speed N`` readings,
+refits and countdowns run N times faster together.  Shows the dashboard, or with ``--headless``
+prints forecast and alert lines and exits 0 after ``--duration`` seconds.  Ctrl-C stops it all.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import logging
+import math
+import shutil
+import signal
+import sys
+import tempfile
+import threading
+import time
+from pathlib import Path
+from typing import Any
+
+DEMO_PREFIX = "thermeta-demo"
+
+
+def add_arguments(p: argparse.ArgumentParser) -> None:
+    from thermeta.predictors.scenarios import NAMES
+
+    p.add_argument("--scenario", choices=NAMES, default="all",
+                   help="which invented site to play (default: all six)")
+    p.add_argument("--speed", type=float, default=60.0,
+                   help="simulated seconds per real second (default 60: an hour a minute)")
+    p.add_argument("--headless", action="store_true",
+                   help="print forecast and alert lines instead of the dashboard")
+    p.add_argument("--duration", type=float, metavar="S",
+                   help="stop after S real seconds (default: run until Ctrl-C)")
+    p.add_argument("--host", default="127.0.0.1", help="broker to use if one answers (127.0.0.1)")
+    p.add_argument("--port", type=int, default=1883, help="its port (default 1883)")
+    p.add_argument("--embedded", action="store_true",
+                   help="always start the in-process broker, even if one answers at host:port")
+    p.add_argument("--seed", type=int, default=0, help="noise seed (default 0)")
+    p.add_argument("--keep", metavar="DIR",
+                   help="keep the store, config and log in DIR (default: a temporary folder, removed)")
+    p.add_argument("--summary-json", metavar="FILE",
+                   help="write forecasts against the simulated truth as JSON at the end")
+
+
+class _HeldClock:
+    """A scaled clock that stands at ``start_epoch_s`` until :meth:`release`, so the set-up time
+    (broker, store, connections) is not played as simulated hours."""
+
+    def __init__(self, start_epoch_s: float, rate: float):
+        self.rate = float(rate)
+        self._start = float(start_epoch_s)
+        self._m0: float | None = None
+
+    def release(self) -> None:
+        self._m0 = time.monotonic()
+
+    def now(self) -> float:
+        # now = start + (monotonic elapsed since release) * rate
+        m0 = self._m0
+        return self._start if m0 is None else self._start + (time.monotonic() - m0) * self.rate
+
+
+class _Recorder:
+    """Collects every forecast (listener of the service) and every alert (MQTT), prints lines."""
+
+    def __init__(self, scenario, clock, out, echo: bool):
+        self.scenario, self.clock, self.out, self.echo = scenario, clock, out, echo
+        self.truth = {p.name: p for p in scenario.loads}
+        self.forecasts: dict[str, list[dict[str, Any]]] = {}
+        self.alerts: list[dict[str, Any]] = []
+        self._last_print: dict[str, tuple[str, float]] = {}
+        self._lock = threading.Lock()
+
+    def on_forecast(self, item_cfg, body: dict[str, Any], prev: dict[str, Any] | None) -> None:
+        now = self.clock.now()
+        rec = {"made_at": now, "state": body.get("state"), "eta_s": body.get("eta_s"),
+               "eta_lo_s": body.get("eta_lo_s"), "eta_hi_s": body.get("eta_hi_s"),
+               "t_last": _epoch(body.get("last_reading_at")), "value_now": body.get("value_now")}
+        with self._lock:
+            self.forecasts.setdefault(item_cfg.name, []).append(rec)
+            state_then, printed_at = self._last_print.get(item_cfg.name, ("", -math.inf))
+            due = rec["state"] != state_then or now - printed_at >= 1800.0
+            if due:
+                self._last_print[item_cfg.name] = (rec["state"], now)
+        if due and self.echo:
+            self._print(self._forecast_line(item_cfg, body, now))
+
+    def _forecast_line(self, item_cfg, d: dict[str, Any], now: float) -> str:
+        from thermeta.daemon.timefmt import human_duration, local_clock
+
+        unit = {"C": "°C", "F": "°F", "K": "K"}.get(item_cfg.unit, item_cfg.unit)
+        parts = [f"{self._stamp(now)} forecast {item_cfg.name}: {d.get('state')}"]
+        if d.get("value_now") is not None:
+            parts.append(f"now {d['value_now']:.1f} {unit}")
+        eta = d.get("eta_s")
+        t_last = _epoch(d.get("last_reading_at"))
+        if eta and t_last is not None:
+            lo, hi = d.get("eta_lo_s"), d.get("eta_hi_s")
+            if hi is None:
+                hi_text = "no upper bound"
+            elif hi > 30 * 86400:
+                hi_text = "beyond 30 d"
+            else:
+                hi_text = human_duration(hi)
+            band = f"{human_duration(lo)} to {hi_text}"
+            parts.append(f"crosses {d.get('threshold'):g} {unit} at {local_clock(t_last + eta)} "
+                         f"(in {human_duration(t_last + eta - now)}; 90 %: {band})")
+        elif d.get("state") == "steady":
+            parts.append("no crossing ahead")
+        truth = self.truth.get(item_cfg.name)
+        if truth is not None and d.get("state") in ("approaching", "steady"):
+            c = truth.crossing_t_true
+            parts.append("truth: " + ("never crosses" if c is None else
+                                      f"crosses at {local_clock(c)}" if c > now else "already crossed"))
+        return "; ".join(parts)
+
+    def on_alert(self, topic: str, payload: bytes) -> None:
+        try:
+            doc = json.loads(payload)
+        except ValueError:
+            doc = {"text": payload.decode("utf-8", "replace")}
+        if not isinstance(doc, dict):
+            doc = {"text": str(doc)}
+        item = doc.get("item") or topic.rsplit("/", 1)[-1]
+        now = self.clock.now()
+        with self._lock:
+            self.alerts.append({"at": now, "topic": topic, "item": item, "level": doc.get("level"),
+                                "body": doc})
+        if self.echo:
+            text = doc.get("sentence") or doc.get("text") or doc.get("message") or json.dumps(doc)
+            self._print(f"{self._stamp(now)} ALERT {doc.get('level') or ''} {item}: {text}")
+
+    def _stamp(self, now: float) -> str:
+        from thermeta.daemon.timefmt import local_clock
+
+        return f"[{local_clock(now)} +{(now - self.scenario.t_start) / 60:5.0f} min]"
+
+    def _print(self, line: str) -> None:
+        print(line, file=self.out, flush=True)
+
+    def summary(self) -> dict[str, Any]:
+        """Per item: how the forecasts made ahead of the true crossing compare with it."""
+        items = {}
+        for name, p in self.truth.items():
+            fcs = self.forecasts.get(name, [])
+            c = p.crossing_t_true
+            errors = []
+            for f in fcs:
+                if c is None or f["eta_s"] is None or f["t_last"] is None or f["state"] != "approaching":
+                    continue
+                true_left = c - f["t_last"]
+                if true_left <= 0:
+                    continue
+                errors.append({"made_at": f["made_at"], "true_eta_s": true_left,
+                               "eta_s": f["eta_s"], "rel_error": (f["eta_s"] - true_left) / true_left,
+                               "inside_90": (f["eta_lo_s"] is None or f["eta_lo_s"] <= true_left)
+                               and (f["eta_hi_s"] is None or true_left <= f["eta_hi_s"])})
+            items[name] = {
+                "true_crossing_t": c, "n_forecasts": len(fcs),
+                "states": sorted({f["state"] for f in fcs if f["state"]}),
+                "alerts": [a["level"] for a in self.alerts if a["item"] == name],
+                "ahead": errors,
+            }
+        return {"scenario": self.scenario.name, "t_start": self.scenario.t_start,
+                "sim_end": self.clock.now(), "items": items, "n_alerts": len(self.alerts)}
+
+
+def _epoch(text: str | None) -> float | None:
+    if not text:
+        return None
+    from thermeta.daemon.timefmt import parse_time
+
+    try:
+        return parse_time(text)
+    except ValueError:
+        return None
+
+
+def _alert_subscriber(host: str, port: int, prefix: str, recorder: _Recorder):
+    import paho.mqtt.client as mqtt
+
+    c = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=f"{DEMO_PREFIX}-alerts-{id(recorder)}",
+                    protocol=mqtt.MQTTv311, clean_session=True)
+
+    def on_connect(client, userdata, flags, reason_code, properties):
+        client.subscribe(f"{prefix}/#", qos=1)
+
+    def on_message(client, userdata, msg):
+        try:
+            recorder.on_alert(msg.topic, msg.payload)
+        except Exception:  # noqa: BLE001 - never let a print kill paho's thread
+            logging.getLogger("thermeta.demo").exception("alert line failed")
+
+    c.on_connect, c.on_message = on_connect, on_message
+    c.connect_async(host, port)
+    c.loop_start()
+    return c
+
+
+def run(args: argparse.Namespace) -> int:
+    if not 0 < args.speed <= 100_000:
+        print(f"thermeta demo: --speed must be in (0, 100000], got {args.speed:g}", file=sys.stderr)
+        return 2
+    if args.duration is not None and not args.duration > 0:
+        print(f"thermeta demo: --duration must be positive, got {args.duration:g}", file=sys.stderr)
+        return 2
+    if not 0 < args.port < 65536:
+        print(f"thermeta demo: --port must be 1-65535, got {args.port}", file=sys.stderr)
+        return 2
+    workdir = Path(args.keep) if args.keep else Path(tempfile.mkdtemp(prefix="thermeta-demo-"))
+    try:
+        workdir.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        print(f"thermeta demo: --keep {args.keep}: {exc.strerror or exc}", file=sys.stderr)
+        return 2
+    try:
+        return _run(args, workdir)
+    finally:
+        if not args.keep:
+            shutil.rmtree(workdir, ignore_errors=True)
+
+
+def _run(args: argparse.Namespace, workdir: Path) -> int:
+    from thermeta.daemon.config import load_config
+    from thermeta.daemon.embedded_broker import EmbeddedBroker, broker_reachable
+    from thermeta.daemon.service import Service
+    from thermeta.daemon.simulator import Simulator, config_text, truth_lines
+    from thermeta.predictors.scenarios import build
+
+    log_path = workdir / "thermeta-demo.log"
+    handler = logging.FileHandler(log_path, encoding="utf-8")
+    handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
+    root = logging.getLogger()
+    root.addHandler(handler)
+    root.setLevel(logging.INFO)
+    logging.getLogger("apscheduler").setLevel(logging.WARNING)
+    # numerical warnings of hard fits go to the log, not over the dashboard
+    logging.captureWarnings(True)
+    out = sys.stdout
+    broker = None
+    service = None
+    sim = None
+    alerts_client = None
+    stop = threading.Event()
+    old_term = signal.signal(signal.SIGTERM, lambda signum, frame: stop.set())
+    try:
+        host, port = args.host, args.port
+        if args.embedded or not broker_reachable(host, port):
+            broker = EmbeddedBroker().start()
+            host, port = broker.host, broker.port
+            where = f"an embedded broker on {host}:{port}"
+        else:
+            where = f"the broker at {host}:{port}"
+        start = time.time()
+        clock = _HeldClock(start, args.speed)
+        scenario = build(args.scenario, seed=args.seed, t_start=start)
+        # at most one refit round per real second: a round of all sites takes a few tenths of a
+        # second on a small machine, and the machine is shared
+        refit_every_s = max(30.0, args.speed * 1.0)
+        cfg_path = workdir / "demo.toml"
+        text = config_text(scenario, host=host, port=port,
+                           storage_url=f"sqlite:///{workdir / 'demo.db'}",
+                           refit_every_s=refit_every_s, client_id=f"{DEMO_PREFIX}-{int(start)}")
+        text = text.replace('topic_prefix = "thermeta/alert"', f'topic_prefix = "{DEMO_PREFIX}/alert"')
+        if broker is not None:
+            # amqtt speaks MQTT 3.1.1 only, and does not answer an MQTT 5 CONNECT at all
+            text = text.replace("[broker]\n", '[broker]\nprotocol = "3.1.1"\n', 1)
+        text += f'\n[publish]\ntopic_prefix = "{DEMO_PREFIX}/forecast"\nstatus_topic = "{DEMO_PREFIX}/status"\n'
+        cfg_path.write_text(text, encoding="utf-8")
+        config = load_config(cfg_path)
+        print(f"thermeta demo: {scenario.title}, {len(scenario.loads)} items, at {args.speed:g}x, "
+              f"using {where}; store, config and log in {workdir}", file=out, flush=True)
+        print("Forecasts support decisions; they are not a food-safety plan or a regulatory "
+              "record. Simulated, invented sites.", file=out, flush=True)
+        lines = args.headless or not _have_dashboard()
+        if lines:
+            for line in truth_lines(scenario):
+                print(line, file=out, flush=True)
+        recorder = _Recorder(scenario, clock, out, echo=lines)
+        service = Service(config, clock=clock)
+        service.add_forecast_listener(recorder.on_forecast)
+        service.start()
+        alerts_client = _alert_subscriber(host, port, f"{DEMO_PREFIX}/alert", recorder)
+        deadline = time.monotonic() + 10.0
+        while not (service.stats["connected"] or time.monotonic() > deadline):
+            time.sleep(0.05)
+        if not service.stats["connected"]:
+            print(f"thermeta demo: the service could not connect to {host}:{port} (see {log_path})",
+                  file=sys.stderr)
+            return 1
+        sim = Simulator(scenario, host, port, clock, client_id=f"{DEMO_PREFIX}-sim-{int(start)}")
+        clock.release()  # simulated time starts now, when everything is connected
+        sim.start()
+        end_at = None if args.duration is None else time.monotonic() + args.duration
+        if lines:
+            if not args.headless:
+                print("thermeta demo: the dashboard is not in this build; showing lines instead "
+                      "(Ctrl-C stops)", file=out, flush=True)
+            _wait(stop, end_at, sim)
+        else:
+            _dashboard(service, stop, end_at, sim, out)
+        if sim.stats.error:
+            print(f"thermeta demo: simulator: {sim.stats.error}", file=sys.stderr)
+            return 1
+        summary = recorder.summary()
+        if lines:
+            _print_summary(summary, out)
+        if args.summary_json:
+            Path(args.summary_json).write_text(json.dumps(summary, indent=1), encoding="utf-8")
+        return 0
+    except KeyboardInterrupt:
+        return 0
+    finally:
+        signal.signal(signal.SIGTERM, old_term)
+        if sim is not None:
+            sim.stop()
+        if service is not None:
+            service.stop()
+        if alerts_client is not None:
+            alerts_client.disconnect()
+            alerts_client.loop_stop()
+        if broker is not None:
+            broker.stop()
+        logging.captureWarnings(False)
+        root.removeHandler(handler)
+        handler.close()
+
+
+def _wait(stop: threading.Event, end_at: float | None, sim) -> None:
+    while not stop.is_set():
+        if end_at is not None and time.monotonic() >= end_at:
+            return
+        stop.wait(0.2)
+
+
+def _have_dashboard() -> bool:
+    import importlib.util
+
+    return importlib.util.find_spec("thermeta.daemon.dashboard") is not None
+
+
+def _dashboard(service, stop: threading.Event, end_at: float | None, sim, out) -> None:
+    from thermeta.daemon.dashboard import run_foreground
+
+    running = threading.Event()
+    running.set()
+
+    def ender() -> None:
+        # the dashboard blocks until the user quits; this ends it for --duration or SIGTERM
+        while running.is_set() and not stop.is_set():
+            if end_at is not None and time.monotonic() >= end_at:
+                break
+            stop.wait(0.2)
+        if running.is_set():
+            import _thread
+
+            _thread.interrupt_main()
+
+    threading.Thread(target=ender, name="demo-timer", daemon=True).start()
+    try:
+        run_foreground(service)
+    except KeyboardInterrupt:
+        pass
+    finally:
+        running.clear()
+    stop.set()
+
+
+def _print_summary(summary: dict[str, Any], out) -> None:
+    from thermeta.daemon.timefmt import local_clock
+
+    print("forecasts against the simulated truth (remaining time to the crossing, forecasts made "
+          "while approaching):", file=out)
+    for name, it in summary["items"].items():
+        ahead = it["ahead"]
+        truth = "never crosses" if it["true_crossing_t"] is None else f"crosses at {local_clock(it['true_crossing_t'])}"
+        if ahead:
+            errs = sorted(abs(a["rel_error"]) for a in ahead)
+            med = errs[len(errs) // 2]
+            inside = sum(a["inside_90"] for a in ahead) / len(ahead)
+            how = (f"{len(ahead)} forecasts ahead, median error {100 * med:.1f} %, "
+                   f"truth inside the 90 % interval in {100 * inside:.0f} %")
+        else:
+            how = f"{it['n_forecasts']} forecasts, none ahead of a crossing"
+        alerts = ", ".join(str(a) for a in it["alerts"]) or "no alerts"
+        print(f"  {name}: {truth}; {how}; {alerts}", file=out)
+    print(f"{summary['n_alerts']} alerts in all", file=out, flush=True)
