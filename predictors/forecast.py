@@ -69,8 +69,11 @@ def forecast(
     mode = "measured" if measured else ("known" if ambient is not None else "fitted")
     fc = Forecast(threshold=float(threshold), model=model, ambient_mode=mode, n_points=0)
     try:
-        return _forecast(fc, ta, ya, float(threshold), model, ambient, ambient_t, ambient_y,
-                         window_s, min_points, ambient_bounds, ambient_uncertainty, detect_regimes, limit)
+        # overflow in a far-off corner of a grid is expected and handled; keep logs quiet
+        with np.errstate(all="ignore"):
+            return _forecast(fc, ta, ya, float(threshold), model, ambient, ambient_t, ambient_y,
+                             window_s, min_points, ambient_bounds, ambient_uncertainty,
+                             detect_regimes, limit)
     except (ValueError, FloatingPointError, ArithmeticError, np.linalg.LinAlgError) as exc:
         fc.ok, fc.reason = False, f"fit failed: {exc}"
         return fc

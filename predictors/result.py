@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from typing import Any
 
 
@@ -17,7 +17,10 @@ def rfc3339(epoch_s: float | None) -> str | None:
     """Epoch seconds to an RFC 3339 UTC string with a ``Z`` (None stays None)."""
     if epoch_s is None or not math.isfinite(epoch_s):
         return None
-    dt = datetime.fromtimestamp(epoch_s, tz=timezone.utc)
+    try:
+        dt = datetime.fromtimestamp(epoch_s, tz=UTC)
+    except (OverflowError, ValueError, OSError):  # beyond year 9999: no calendar date to give
+        return None
     text = dt.isoformat(timespec="milliseconds" if epoch_s % 1 else "seconds")
     return text.replace("+00:00", "Z")
 

@@ -86,3 +86,40 @@ def test_robust_refit_catches_a_spike_on_the_newest_reading():
     fc = forecast(t, y, 20.0)
     assert fc.n_outliers >= 1
     assert fc.eta_s == pytest.approx(ref.eta_s, rel=0.02)
+
+
+def test_junk_never_raises():
+    """300 seeded junk inputs (empty, one instant, reversed, NaN/inf, huge values, integer
+    steps, wild ambient series) all give a Forecast whose ETA fields are None or finite and
+    ordered lo <= eta <= hi, and whose to_dict() works: a failed fit is a result, not a crash."""
+    rng = np.random.default_rng(0)
+    for _ in range(300):
+        n = int(rng.integers(0, 60))
+        kind = int(rng.integers(0, 7))
+        t = synth.T_START + np.sort(rng.uniform(0, 1e4, n))
+        if kind == 1:
+            t = np.full(n, 5.0)
+        elif kind == 2:
+            t = t[::-1]
+        y = rng.normal(5, rng.choice([0, 1e-9, 0.1, 10, 1e6]), n)
+        if kind == 3 and n:
+            y[rng.integers(0, n, max(1, n // 5))] = rng.choice([np.nan, np.inf, -np.inf, 1e300])
+        elif kind == 4:
+            y = np.round(y)
+        elif kind == 5:
+            y = 5 + np.exp(-(t - t.min(initial=0)) / rng.uniform(1, 1e6)) * rng.uniform(-100, 100)
+        kw: dict = {}
+        r = int(rng.integers(0, 3))
+        if r == 1:
+            kw["ambient"] = float(rng.normal(10, 20))
+        elif r == 2 and n:
+            kw["ambient_t"], kw["ambient_y"] = t + rng.normal(0, 10, n), rng.normal(20, 5, n)
+        fc = forecast(t, y, float(rng.normal(8, 5)), **kw)
+        d = fc.to_dict()
+        for key in ("eta_s", "eta_lo_s", "eta_hi_s"):
+            assert d[key] is None or (np.isfinite(d[key]) and d[key] >= 0)
+        if d["eta_s"] is not None and d["eta_lo_s"] is not None:
+            assert d["eta_lo_s"] <= d["eta_s"] + 1e-6
+        if d["eta_s"] is not None and d["eta_hi_s"] is not None:
+            assert d["eta_hi_s"] >= d["eta_s"] - 1e-6
+        assert fc.ok or fc.reason
