@@ -33,7 +33,7 @@ from thermeta.daemon.writer import Inbound
 log = logging.getLogger("thermeta.mqtt")
 
 UNSUPPORTED_PROTOCOL = (1, 132)  # 3.1.1 CONNACK code 1; MQTT 5 reason 0x84
-FALLBACK_WAIT_S = 5.0
+FALLBACK_WAIT_S = 3.0
 
 
 class MqttLink:
@@ -53,6 +53,7 @@ class MqttLink:
         self.protocol = mqtt.MQTTv5 if cfg.protocol in ("auto", "5") else mqtt.MQTTv311
         self.counts = {"received": 0, "dropped": 0, "connects": 0, "disconnects": 0}
         self._refused: int | None = None
+        self._outcome: str | None = None  # first answer: connected | refused | closed | unreachable
         self._first_connack = threading.Event()
         self._lock = threading.Lock()
         self.client = self._make_client()
@@ -76,6 +77,7 @@ class MqttLink:
         c.reconnect_delay_set(min_delay=1, max_delay=30)
         c.max_queued_messages_set(0)
         c.on_connect = self._on_connect
+        c.on_connect_fail = self._on_connect_fail
         c.on_disconnect = self._on_disconnect
         c.on_message = self._on_message
         return c
@@ -86,21 +88,36 @@ class MqttLink:
         return json.dumps(body)
 
     def start(self) -> None:
-        """Connect in the background (paho retries on its own) and wait briefly for the first
-        answer, so an MQTT 3.1.1-only broker can be retried with 3.1.1."""
+        """Connect in the background (paho retries on its own).  With ``protocol = "auto"`` try
+        MQTT 5 first and, if the broker refuses it or never answers, MQTT 3.1.1."""
+        if self.cfg.protocol != "auto":
+            self._launch()
+            return
+        for proto in (mqtt.MQTTv5, mqtt.MQTTv311):
+            self.protocol = proto
+            self._launch()
+            answered = self._first_connack.wait(FALLBACK_WAIT_S)
+            outcome = self._outcome
+            if answered and outcome in ("connected", "unreachable"):
+                return  # an unreachable broker: keep trying with this version (paho retries)
+            if answered and outcome == "refused" and self._refused not in UNSUPPORTED_PROTOCOL:
+                return  # refused for another reason (credentials): the log says which
+            if proto == mqtt.MQTTv5:
+                log.info("broker did not accept MQTT 5 (%s); trying MQTT 3.1.1",
+                         outcome or "no answer")
+            self.client.loop_stop()
+            self.client.disconnect()
+        log.warning("broker answered neither MQTT 5 nor 3.1.1; retrying with MQTT 5")
+        self.protocol = mqtt.MQTTv5
+        self._launch()
+
+    def _launch(self) -> None:
+        self._first_connack.clear()
+        self._outcome = None
+        self._refused = None
+        self.client = self._make_client()
         self._connect_async()
         self.client.loop_start()
-        if self.cfg.protocol == "auto":
-            self._first_connack.wait(FALLBACK_WAIT_S)
-            if self._refused in UNSUPPORTED_PROTOCOL and self.protocol == mqtt.MQTTv5:
-                log.info("broker refused MQTT 5; falling back to MQTT 3.1.1")
-                self.client.loop_stop()
-                self.client.disconnect()
-                self.protocol = mqtt.MQTTv311
-                self._first_connack.clear()
-                self.client = self._make_client()
-                self._connect_async()
-                self.client.loop_start()
 
     def _connect_async(self) -> None:
         if self.protocol == mqtt.MQTTv5:
@@ -119,6 +136,7 @@ class MqttLink:
         try:
             if reason_code.is_failure:
                 self._refused = int(reason_code.value)
+                self._outcome = self._outcome or "refused"
                 log.error("broker %s:%s refused the connection: %s", self.cfg.host, self.cfg.port,
                           reason_code)
                 self._first_connack.set()
@@ -133,12 +151,24 @@ class MqttLink:
             client.subscribe([(f, self.cfg.qos) for f in self.filters])
             client.publish(self.status_topic, self._status("online"), qos=1, retain=True)
             self.connected.set()
+            self._outcome = self._outcome or "connected"
             self._first_connack.set()
         except Exception:  # noqa: BLE001 - an exception here would stop paho's thread
             log.exception("error in on_connect")
 
+    def _on_connect_fail(self, client, userdata) -> None:
+        try:
+            self._outcome = self._outcome or "unreachable"
+            self._first_connack.set()
+            log.warning("cannot reach broker %s:%s; retrying", self.cfg.host, self.cfg.port)
+        except Exception:  # noqa: BLE001
+            log.exception("error in on_connect_fail")
+
     def _on_disconnect(self, client, userdata, flags, reason_code, properties) -> None:
         try:
+            if not self.connected.is_set() and self._outcome is None:
+                self._outcome = "closed"  # closed before any CONNACK: maybe the version
+                self._first_connack.set()
             self.connected.clear()
             self.counts["disconnects"] += 1
             if reason_code != 0:

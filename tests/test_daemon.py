@@ -229,3 +229,81 @@ def test_fahrenheit_item_is_fitted_in_celsius_and_published_in_fahrenheit(tmp_pa
     assert f["eta_s"] == pytest.approx(c["eta_s"]) and f["k_per_s"] == pytest.approx(c["k_per_s"])
     assert f["state"] == c["state"] == "approaching"
     store.close()
+
+
+def test_auto_protocol_falls_back_to_mqtt_311(tmp_path):
+    """protocol = "auto" against a broker that speaks only MQTT 3.1.1 (amqtt, a real broker):
+    the daemon retries with 3.1.1, stores what is published, and says so in the log."""
+    import logging
+    import time
+    import tomllib
+
+    import paho.mqtt.client as mqtt
+
+    from thermeta.daemon.embedded_broker import EmbeddedBroker
+    from thermeta.daemon.service import Service
+
+    records: list[str] = []
+    handler = logging.Handler()
+    handler.emit = lambda r: records.append(r.getMessage())
+    logging.getLogger("thermeta.mqtt").addHandler(handler)
+    logging.getLogger("thermeta.mqtt").setLevel(logging.INFO)
+    with EmbeddedBroker() as b:
+        text = (f'[broker]\nport = {b.port}\nclient_id = "fallback-test"\n'
+                f'[storage]\nurl = "sqlite:///{tmp_path / "s.db"}"\nbatch_ms = 20\n'
+                '[[item]]\nname = "x"\ntopic = "a/x"\nthreshold = 5\n')
+        svc = Service(parse_config(tomllib.loads(text), "t.toml", text))
+        svc.start()
+        try:
+            c = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id="fallback-pub")
+            c.connect("127.0.0.1", b.port)
+            c.loop_start()
+            now = time.time()
+            for i in range(20):
+                c.publish("a/x", json.dumps({"ts": now - 100 + i, "value": 3.0}), qos=1).wait_for_publish(5)
+            c.disconnect()
+            c.loop_stop()
+            deadline = time.monotonic() + 10
+            while svc.store.counts()["readings"] < 20 and time.monotonic() < deadline:
+                time.sleep(0.05)
+            assert svc.store.counts()["readings"] == 20
+        finally:
+            svc.stop()
+            logging.getLogger("thermeta.mqtt").removeHandler(handler)
+    assert any("trying MQTT 3.1.1" in m for m in records)
+    assert any("(MQTT 3.1.1, session new)" in m for m in records)
+
+
+def test_readings_export_is_read_back_by_thermeta_forecast(tmp_path):
+    """`thermeta readings` writes time,value CSV (RFC 3339 UTC, the item's unit) that
+    `thermeta forecast` reads; --since filters; an unknown item exits 2 naming the known ones."""
+    import subprocess
+    import sys
+
+    t_rel = np.arange(0, 1800, 30.0)
+    y_c = warming(t_rel) + np.random.default_rng(2).normal(0, 0.02, t_rel.size)
+    items = '[[item]]\nname = "walkin"\ntopic = "k/w"\nunit = "F"\nthreshold = 46.4\nambient = 77.0\n'
+    cfg, store, act = seeded_store(tmp_path, items, {"walkin": (T0 - 1800 + t_rel, y_c)})
+    store.close()
+    cfg_path = tmp_path / "c.toml"
+    cfg_path.write_text(f'[storage]\nurl = "{cfg.storage.url}"\n{items}')
+    cli = [sys.executable, "-m", "thermeta.daemon.cli"]
+    r = subprocess.run(cli + ["readings", "walkin", "--config", str(cfg_path)], capture_output=True,
+                       text=True, timeout=60)
+    assert r.returncode == 0, r.stderr
+    lines = r.stdout.splitlines()
+    assert lines[0] == "time,value" and len(lines) == 61
+    assert lines[1] == f"2027-01-15T07:30:00Z,{y_c[0] * 9 / 5 + 32:.10g}"
+    csv_path = tmp_path / "trip.csv"
+    csv_path.write_text(r.stdout)
+    f = subprocess.run(cli + ["forecast", str(csv_path), "--threshold", "46.4", "--ambient", "77",
+                              "--unit", "F", "--json"], capture_output=True, text=True, timeout=60)
+    assert f.returncode == 0, f.stderr
+    assert json.loads(f.stdout)["n_points"] + json.loads(f.stdout)["n_outliers"] == 60
+    since = subprocess.run(cli + ["readings", "walkin", "--config", str(cfg_path), "--since",
+                                  "2027-01-15T07:55:00Z"], capture_output=True, text=True, timeout=60)
+    assert len(since.stdout.splitlines()) == 1 + 10
+    bad = subprocess.run(cli + ["readings", "nobody", "--config", str(cfg_path)],
+                         capture_output=True, text=True, timeout=60)
+    assert bad.returncode == 2
+    assert bad.stderr.strip() == "thermeta readings: no item named 'nobody' in the store (items: walkin)"

@@ -352,3 +352,60 @@ def test_daemon_on_postgresql(broker, pg_url, tmp_path):
     info = json.loads(out.stdout)
     assert info["readings"] == 180 and info["dead_letters"] == 20
     assert info["per_item"][0]["item"] == "blast-b1" and info["per_item"][0]["state"] == "approaching"
+
+
+def test_password_from_environment_never_logged_json_logs_and_sigint(broker, tmp_path):
+    """A broker with a password file: the daemon logs in with the password from the environment
+    variable named in the config, never writes it to its (JSON, debug-level) log, and SIGINT
+    stops it cleanly (exit 0, the queued readings committed)."""
+    import socket
+
+    secret = "Wx9-not-in-any-log-7Q"
+    work = tmp_path / "authbroker"
+    work.mkdir()
+    os.chmod(work, 0o777)
+    subprocess.run(["mosquitto_passwd", "-b", "-c", str(work / "passwd"), "thermeta", secret],
+                   check=True, capture_output=True)
+    os.chmod(work / "passwd", 0o644)
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    # As root, mosquitto would switch to its own user, which cannot read pytest's 0700 folders.
+    as_root = "user root\n" if os.geteuid() == 0 else ""
+    (work / "m.conf").write_text(f"listener {port} 127.0.0.1\nallow_anonymous false\n"
+                                 f"password_file {work / 'passwd'}\n{as_root}")
+    mq = subprocess.Popen(["mosquitto", "-c", str(work / "m.conf")], stdout=subprocess.DEVNULL,
+                          stderr=subprocess.DEVNULL)
+    try:
+        wait_for(lambda: subprocess.run(["mosquitto_pub", "-p", str(port), "-u", "thermeta", "-P",
+                                         secret, "-t", "probe/ping", "-m", "1"]).returncode == 0, 10)
+        db = f"sqlite:///{tmp_path / 'store.db'}"
+        cfg = tmp_path / "auth.toml"
+        cfg.write_text(
+            f'[broker]\nport = {port}\nclient_id = "auth-test"\nusername = "thermeta"\n'
+            f'password_env = "H3_TEST_MQTT_PW"\n\n[storage]\nurl = "{db}"\n\n'
+            '[log]\nlevel = "debug"\n\n'
+            '[[item]]\nname = "walkin"\ntopic = "kitchen/walkin/t"\nthreshold = 5.0\n')
+        log = tmp_path / "daemon.log"
+        out = open(log, "w")
+        proc = subprocess.Popen([sys.executable, "-m", "thermeta.daemon.cli", "run", "--config",
+                                 str(cfg), "--log-json"], stdout=out, stderr=subprocess.STDOUT,
+                                env=dict(os.environ, H3_TEST_MQTT_PW=secret))
+        wait_for(lambda: "connected to" in log.read_text(), 20, log)
+        t0 = time.time() - 100
+        lines = "\n".join(json.dumps({"ts": t0 + i, "value": 3.0}) for i in range(50))
+        subprocess.run(["mosquitto_pub", "-p", str(port), "-u", "thermeta", "-P", secret, "-q", "1",
+                        "-t", "kitchen/walkin/t", "-l"], input=lines + "\n", text=True, check=True)
+        wait_for(lambda: count_readings(db, "walkin") == 50, 20, log)
+        proc.send_signal(signal.SIGINT)
+        assert proc.wait(20) == 0
+        out.close()
+    finally:
+        mq.terminate()
+        mq.wait(10)
+    text_log = log.read_text()
+    assert secret not in text_log
+    records = [json.loads(line) for line in text_log.splitlines() if line.strip()]
+    assert {"time", "level", "logger", "message"} <= set(records[0])
+    assert any(r["message"] == "received SIGINT" for r in records)
+    assert any(r["message"].startswith("stopped: 50 readings") for r in records)
