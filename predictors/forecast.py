@@ -167,7 +167,17 @@ def _fill_lumped(fc: Forecast, fit: LumpedFit, ambient, amb_sd) -> None:
         fc.warnings.append("the ambient is poorly determined by the readings so far; "
                                "give it (--ambient) or measure it for a firmer forecast")
     if fc.eta_s is None:
-        fc.warnings.append("the fitted curve levels off before the threshold")
+        fc.warnings.append(never_reason(fc))
+
+
+def never_reason(fc: Forecast) -> str:
+    """Why there is no crossing: moving away from the threshold, or levelling off short of it."""
+    if fc.value_now is not None and fc.direction is not None:
+        away = (fc.direction == "rising") == (fc.value_now > fc.threshold)
+        if away:
+            return ("the readings move away from the threshold without having crossed it; "
+                    "give the limit's side (upper/lower) if being beyond it already counts")
+    return "the fitted curve levels off before the threshold"
 
 
 def _measured(fc, tt, yy, thr, air, limit=None) -> Forecast:
@@ -200,7 +210,7 @@ def _measured(fc, tt, yy, thr, air, limit=None) -> Forecast:
                          air_value_now=a_fit.value_fit_now)
     fc.warnings.append("ambient measured; its asymptote is fitted from the ambient readings")
     if fc.eta_s is None:
-        fc.warnings.append("the forecast curve levels off before the threshold")
+        fc.warnings.append(never_reason(fc))
     return fc
 
 
