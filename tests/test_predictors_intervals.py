@@ -142,3 +142,23 @@ def test_baselines():
     assert two_reading_eta(x, y, 27.0, 8.0) == pytest.approx(true, rel=1e-9)
     assert linear_eta(x, y, 8.0) < true  # a straight line ignores the slowing down
     assert curve_fit_eta(x, y, 8.0) == pytest.approx(true, rel=1e-3)
+
+
+def test_measured_ambient_coverage_200_cases():
+    """The measured-ambient interval (parametric draws from the load and air fits) covers the
+    true crossing in 85-95 % of 200 seeded reefer cases (air toward outside, load toward air)."""
+    hits = []
+    for seed in range(200):
+        r = np.random.default_rng(5000 + seed)
+        T0 = r.uniform(2, 5)
+        kw = {"load_T0": T0, "air_T0": T0, "outside": r.uniform(25, 35),
+                  "k_air_per_s": 1 / (r.uniform(0.5, 2) * 3600), "k_load_per_s": 1 / (r.uniform(3, 8) * 3600)}
+        full = synth.measured_air(seed, threshold=8.0, duration_s=1e6, dt_s=600.0, **kw)
+        cross = full.crossing_t_true - full.truth["t0"]
+        s = synth.measured_air(seed, threshold=8.0, duration_s=r.uniform(0.35, 0.65) * cross,
+                               dt_s=60.0, corruption=Corruption(noise=r.uniform(0.05, 0.2),
+                                                                quantum=0.1), **kw)
+        fc = forecast(s.t, s.y, 8.0, ambient_t=s.ambient_t, ambient_y=s.ambient_y)
+        hi = math.inf if fc.eta_hi_s is None else fc.eta_hi_s
+        hits.append(fc.eta_lo_s <= s.eta_true_s <= hi)
+    assert 0.85 <= np.mean(hits) <= 0.95, np.mean(hits)
