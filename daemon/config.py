@@ -109,6 +109,7 @@ class ItemConfig:
     plausible: tuple[float, float] = (-100.0, 200.0)  # in the item's unit
     senml_name: str | None = None
     site: str | None = None
+    limit: str = "auto"  # "upper" | "lower" | "auto" (the side the item's first reading is on)
     lead_s: float = 1800.0
     hysteresis: float = 0.5
     hold_s: float = 300.0
@@ -485,7 +486,7 @@ def _ingest(c: _Checker, t: dict) -> IngestConfig:
 
 
 ITEM_KEYS = {"name", "topic", "threshold", "unit", "ambient", "ambient_topic", "model", "window",
-             "min_points", "plausible", "senml_name", "site"} | set(ALERT_KEYS)
+             "min_points", "plausible", "senml_name", "site", "limit"} | set(ALERT_KEYS)
 
 
 def _items(c: _Checker, raw: Any, fit: FitConfig, alerts: AlertDefaults,
@@ -558,7 +559,9 @@ def _items(c: _Checker, raw: Any, fit: FitConfig, alerts: AlertDefaults,
             window_s=float(c.get(t, w, "window", "num", fit.window_s, positive=True)),
             min_points=c.get(t, w, "min_points", "int", fit.min_points, minimum=3),
             plausible=plausible, senml_name=c.get(t, w, "senml_name", "str"),
-            site=c.get(t, w, "site", "str"), line=c.index.line(w), **values,
+            site=c.get(t, w, "site", "str"),
+            limit=c.get(t, w, "limit", "str", "auto", choices=("upper", "lower", "auto")),
+            line=c.index.line(w), **values,
         )
         if len(c.problems) == n_problems:
             lo, hi = item.plausible

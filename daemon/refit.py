@@ -4,7 +4,8 @@ stored, published (retained) and handed to listeners (alerts).
 States, judged in this order:
 
     stale        no reading for longer than the item's silence limit
-    crossed      the value is already past the threshold
+    crossed      the value is already past the threshold, on the limit's side (``limit``: upper,
+                 lower, or by default the side opposite the item's first stored reading)
     learning     too few readings to fit (or the fit gave no answer yet)
     approaching  a crossing is forecast within the item's horizon
     steady       no crossing within the horizon
@@ -44,26 +45,33 @@ Listener = Callable[[ItemConfig, dict[str, Any], "dict[str, Any] | None"], None]
 Publish = Callable[[str, str], None]
 
 
+def limit_side(cfg: ItemConfig, first_value_c: float | None) -> str | None:
+    """Which side of the threshold is past the limit: the configured one, or else the side the
+    item's first stored reading was NOT on (a probe starting below its threshold has an upper
+    limit; a hot tray starting above its target, a lower one)."""
+    if cfg.limit in ("upper", "lower"):
+        return cfg.limit
+    if first_value_c is None or first_value_c == cfg.threshold_c:
+        return None
+    return "upper" if first_value_c < cfg.threshold_c else "lower"
+
+
 def classify(fc: Forecast, now: float, last_ts: float | None, cfg: ItemConfig,
-             first_value_c: float | None) -> str:
+             limit: str | None) -> str:
     """The item's state from its forecast (see the module docstring for the order)."""
-    if last_ts is None or fc.n_points == 0:
+    if last_ts is None or (fc.n_points == 0 and fc.value_now is None):
         return "learning"
     if now - last_ts > cfg.silence_s:
         return "stale"
     thr = cfg.threshold_c
     v = fc.value_now
-    if fc.ok and fc.eta_s == 0:
+    if v is not None and ((limit == "upper" and v >= thr) or (limit == "lower" and v <= thr)):
         return "crossed"
-    if fc.ok and v is not None and ((fc.direction == "rising" and v >= thr)
-                                    or (fc.direction == "falling" and v <= thr)):
+    if limit is None and fc.ok and fc.eta_s == 0:
         return "crossed"
     if not fc.ok:
-        # Without a fit, the direction of travel is from the window's first reading to its last.
-        if first_value_c is not None and v is not None and (first_value_c - thr) * (v - thr) < 0:
-            return "crossed"
         return "learning"
-    if fc.eta_s is not None:
+    if fc.eta_s is not None and fc.eta_s > 0:
         remaining_s = fc.eta_s - max(0.0, now - (fc.t_last or now))
         if remaining_s <= cfg.horizon_s:
             return "approaching"
@@ -95,6 +103,7 @@ class Refitter:
         self.listeners: list[Listener] = []
         self.previous: dict[str, dict[str, Any]] = {}
         self.item_ids: dict[str, int] = {}
+        self.first_values: dict[str, float] = {}  # degC of each item's oldest stored reading
         self._lock = threading.Lock()
         self._error_logged: dict[str, float] = {}
         self.runs = 0
@@ -150,10 +159,15 @@ class Refitter:
                 amb_t = np.array([r[0] for r in arows])
                 amb_y = np.array([r[1] for r in arows])
         mode = "measured" if amb_y is not None else ("known" if cfg.ambient is not None else "fitted")
+        if name not in self.first_values:
+            first = self.store.first_reading(item_id)
+            if first is not None:
+                self.first_values[name] = first[1]
+        limit = limit_side(cfg, self.first_values.get(name))
         try:
             fc = self._predict(t, y, cfg.threshold_c, model=cfg.model, ambient=cfg.ambient_c,
                                ambient_t=amb_t, ambient_y=amb_y, window_s=cfg.window_s,
-                               min_points=cfg.min_points)
+                               min_points=cfg.min_points, limit=limit)
             if not fc.ok and len(rows) >= cfg.min_points:
                 self._log_error(name, "no forecast for %s: %s", name, fc.reason)
         except Exception as exc:  # noqa: BLE001 - a failed fit is a result, not a crash
@@ -163,9 +177,9 @@ class Refitter:
                           reason=f"fit error: {exc.__class__.__name__}: {exc}"[:300])
             if len(rows):
                 fc.t_last, fc.value_now = float(t.max()), float(y[np.argmax(t)])
-        state = classify(fc, now, last_ts, cfg, float(y[0]) if len(rows) else None)
+        state = classify(fc, now, last_ts, cfg, limit)
         body = to_item_units(fc.to_dict(), cfg.unit)
-        body.update(item=name, state=state, updated_at=rfc3339(now), unit=cfg.unit)
+        body.update(item=name, state=state, updated_at=rfc3339(now), unit=cfg.unit, limit=limit)
         if cfg.site:
             body["site"] = cfg.site
         self.store.save_forecast(item_id, now, state, body, last_ts)
@@ -192,14 +206,18 @@ class Refitter:
 
 
 def _load_forecast() -> Callable[..., Forecast]:
-    """The predictors' forecast(), passing min_points only where it is accepted."""
+    """The predictors' forecast(), passing only the keywords its signature accepts."""
     from thermeta.predictors import forecast
 
     params = inspect.signature(forecast).parameters
-    if "min_points" in params:
+    optional = {"min_points", "limit"}
+    dropped = {k for k in optional if k not in params}
+    if not dropped:
         return forecast
 
-    def call(*args: Any, min_points: int = 8, **kw: Any) -> Forecast:
+    def call(*args: Any, **kw: Any) -> Forecast:
+        for k in dropped:
+            kw.pop(k, None)
         return forecast(*args, **kw)
 
     return call

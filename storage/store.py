@@ -245,6 +245,17 @@ class Store:
         with self.engine.connect() as conn:
             return [(float(t), float(v)) for t, v in conn.execute(q.order_by(readings.c.ts))]
 
+    def first_reading(self, item: str | int) -> tuple[float, float] | None:
+        """(ts, value_degC) of an item's oldest stored reading."""
+        item_id = item if isinstance(item, int) else self.item_id(item)
+        if item_id is None:
+            return None
+        q = (select(readings.c.ts, readings.c.value_c).where(readings.c.item_id == item_id)
+             .order_by(readings.c.ts).limit(1))
+        with self.engine.connect() as conn:
+            row = conn.execute(q).first()
+        return None if row is None else (float(row[0]), float(row[1]))
+
     def counts(self) -> dict[str, int]:
         with self.engine.connect() as conn:
             return {

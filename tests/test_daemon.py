@@ -133,6 +133,7 @@ name = "past"
 topic = "a/past"
 threshold = 8.0
 ambient = 25.0
+limit = "upper"
 '''
 
 
@@ -307,3 +308,23 @@ def test_readings_export_is_read_back_by_thermeta_forecast(tmp_path):
                          capture_output=True, text=True, timeout=60)
     assert bad.returncode == 2
     assert bad.stderr.strip() == "thermeta readings: no item named 'nobody' in the store (items: walkin)"
+
+
+def test_limit_side_decides_crossed(tmp_path):
+    """A healthy cold crate below its upper limit and drifting down is not "crossed"; a tray
+    chilled below its target is (the limit's side comes from the first stored reading unless
+    configured)."""
+    rng = np.random.default_rng(21)
+    t_rel = np.arange(0, 3600, 60.0)
+    t = T0 - 3600 + t_rel
+    # Newton's law, closed form, cooling toward the air: T = Ta + (T0 - Ta) e^(-k t)
+    crate = 2.0 + (2.9 - 2.0) * np.exp(-t_rel / 3000) + rng.normal(0, 0.02, t_rel.size)
+    tray = -18.0 + (60.0 - -18.0) * np.exp(-t_rel / 900) + rng.normal(0, 0.05, t_rel.size)
+    items = ('[[item]]\nname = "crate"\ntopic = "c/crate"\nthreshold = 5.0\nambient = 2.0\n'
+             '[[item]]\nname = "tray"\ntopic = "c/tray"\nthreshold = 5.0\nambient = -18.0\n')
+    cfg, store, act = seeded_store(tmp_path, items, {"crate": (t, crate), "tray": (t, tray)})
+    got: dict[str, dict] = {}
+    rf = Refitter(store, cfg, ManualClock(T0), act, publish=lambda n, p: got.update({n: json.loads(p)}))
+    assert rf.run_once() == {"crate": "steady", "tray": "crossed"}
+    assert (got["crate"]["limit"], got["tray"]["limit"]) == ("upper", "lower")
+    store.close()
