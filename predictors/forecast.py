@@ -17,7 +17,7 @@ import numpy as np
 from numpy.typing import ArrayLike
 from thermeta.predictors.cleaning import clean, residual_outliers
 from thermeta.predictors.lumped import LumpedFit, fit_lumped
-from thermeta.predictors.measured import fit_air, fit_measured
+from thermeta.predictors.measured import fit_air, fit_measured, steady_air
 from thermeta.predictors.regime import find_regime
 from thermeta.predictors.result import Forecast
 
@@ -185,7 +185,12 @@ def _measured(fc, tt, yy, thr, air, limit=None) -> Forecast:
     reg = find_regime(at, ay, air.noise_sd)
     if reg.start_index > 0:
         fc.warnings.append("the ambient changed; its forecast uses the readings since")
-    a_fit = fit_air(at[reg.start_index:], ay[reg.start_index:], air.noise_sd)
+    if reg.cycling and reg.start_index == 0:
+        # a thermostat holds the air: extrapolate its mean, not a curve through one sawtooth
+        a_fit = steady_air(at, ay, n_runs=reg.n_changes + 1)
+        fc.warnings.append("the ambient cycles (a thermostat?); its mean is carried forward")
+    else:
+        a_fit = fit_air(at[reg.start_index:], ay[reg.start_index:], air.noise_sd)
     fit = fit_measured(tt, yy, at, ay, thr, air_fit=a_fit, limit=limit)
     if not fit.ok:
         fc.ok, fc.reason = False, fit.reason
@@ -208,7 +213,8 @@ def _measured(fc, tt, yy, thr, air, limit=None) -> Forecast:
     if a_fit.ok:
         fc.params.update(air_ambient=a_fit.ambient, air_k_per_s=a_fit.k_per_s,
                          air_value_now=a_fit.value_fit_now)
-    fc.warnings.append("ambient measured; its asymptote is fitted from the ambient readings")
+    if not (reg.cycling and reg.start_index == 0):
+        fc.warnings.append("ambient measured; its asymptote is fitted from the ambient readings")
     if fc.eta_s is None:
         fc.warnings.append(never_reason(fc))
     return fc

@@ -234,3 +234,18 @@ def fit_air(air_t: np.ndarray, air_y: np.ndarray, noise_sd: float) -> LumpedFit:
         J = np.column_stack([np.ones_like(d), e, -fit.amplitude * fit.k_per_s * d * e])
         fit.cov = np.linalg.pinv(J.T @ J) * fit.sigma**2
     return fit
+
+
+def steady_air(air_t: np.ndarray, air_y: np.ndarray, n_runs: int) -> LumpedFit:
+    """A held (cycling) air as a constant: its mean, with the doubt of a mean over the cycles
+    seen (each half-cycle counted as one independent look)."""
+    mean = float(np.mean(air_y))
+    sd = float(np.std(air_y))
+    se = sd / math.sqrt(max(n_runs / 2.0, 1.0))
+    D = float(air_t[-1] - air_t[0]) if air_t.size > 1 else 1.0
+    k = 1.0 / max(D, 1.0)
+    fit = LumpedFit(True, k_per_s=k, ambient=mean, value_fit_now=mean, t_first=float(air_t[0]),
+                    t_last=float(air_t[-1]), amplitude=0.0, sigma=sd, n=int(air_y.size),
+                    ambient_lo=mean - Z90 * se, ambient_hi=mean + Z90 * se, k_lo=k, k_hi=k)
+    fit.cov = np.diag([se * se, 0.0, 0.0])
+    return fit

@@ -75,3 +75,22 @@ def test_no_false_regime_over_many_clean_chills():
                          corruption=Corruption(noise=rng.uniform(0.05, 0.3), quantum=0.1))
         fired += forecast(s.t, s.y, 20.0).regime_start != pytest.approx(s.t.min())
     assert fired == 0
+
+
+def test_load_beside_cycling_air_gets_no_crossing():
+    """A crate beside air that a thermostat cycles between 2 and 5 degC (measured ambient): the
+    air's mean is carried forward, so no crossing of 8 degC is forecast.  The crate's curve is
+    scipy.integrate.solve_ivp of dT/dt = -k (T - Ta(t)) with the sawtooth air."""
+    from scipy.integrate import solve_ivp
+
+    air = synth.compressor_sawtooth(3, duration_s=4 * 3600, corruption=Corruption(noise=0.05))
+    o = np.argsort(air.t)
+    at, clean_air = air.t[o], air.y_clean[o]
+    sol = solve_ivp(lambda s, T: -(1 / 20000) * (T - np.interp(s, at, clean_air)), (at[0], at[-1]),
+                    [3.4], t_eval=at, rtol=1e-10, atol=1e-12, max_step=30)
+    rng = np.random.default_rng(3)
+    load = np.round((sol.y[0] + rng.normal(0, 0.05, at.size)) / 0.1) * 0.1
+    fc = forecast(at, load, 8.0, ambient_t=at, ambient_y=air.y[o])
+    assert fc.ok and fc.eta_s is None
+    assert 2.0 < fc.ambient < 5.0
+    assert any("cycles" in w for w in fc.warnings)
