@@ -13,12 +13,14 @@ def predict(fc: Forecast, t: ArrayLike) -> np.ndarray:
 
     lumped (fitted/known): T(t) = Ta + b e^(-k (t - t_first)); measured: from the newest reading
     on, T(x) with the air extrapolated by its own fit (before it, NaN: that part depends on the
-    measured air).  Core models: NaN (their curve needs the fit object).
+    measured air).  Core models: their own fit's curve.
     """
     tt = np.asarray(t, dtype=float)
     p = fc.params or {}
     if not fc.ok:
         return np.full(tt.shape, np.nan)
+    if fc.model_fit is not None and hasattr(fc.model_fit, "predict"):
+        return np.asarray(fc.model_fit.predict(tt), dtype=float)
     if "amplitude" in p:
         return p["ambient"] + p["amplitude"] * np.exp(-p["k_per_s"] * (tt - p["t_first"]))
     if "air_ambient" in p and fc.t_last is not None:

@@ -120,7 +120,7 @@ def _forecast(fc, t, y, thr, model, ambient, ambient_t, ambient_y, window_s, min
             tt, yy = tt[reg.start_index:], yy[reg.start_index:]
             fc.regime_start = float(tt[0])
     if model in CONDUCTION:
-        return _conduction(fc, tt, yy, thr, model, ambient, air)
+        return _conduction(fc, tt, yy, thr, model, ambient, air, amb_sd)
     if model == "auto":
         return _auto(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit)
     return _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit)
@@ -157,7 +157,8 @@ def _fill_lumped(fc: Forecast, fit: LumpedFit, ambient, amb_sd) -> None:
     fc.rmse = fit.sigma
     fc.interval_method = "profile likelihood"
     fc.params = {"t_first": fit.t_first, "amplitude": fit.amplitude, "ambient": fit.ambient,
-                 "k_per_s": fit.k_per_s, "value_fit_now": fit.value_fit_now}
+                 "k_per_s": fit.k_per_s, "value_fit_now": fit.value_fit_now, "rss": fit.rss,
+                 "n_fit": float(fit.n), "n_params": float(fit.n - fit.dof)}
     if ambient is not None and amb_sd > 0:
         fc.warnings.append(
             f"the given ambient {ambient:g} is taken as uncertain by about {amb_sd:g} (1 sd); "
@@ -209,7 +210,8 @@ def _measured(fc, tt, yy, thr, air, limit=None) -> Forecast:
     fc.rmse = fit.sigma
     fc.interval_method = "parametric draws from the load and ambient fit covariances"
     fc.params = {"T0": fit.T0, "t_first": float(tt[0]), "k_per_s": fit.k_per_s,
-                 "value_fit_now": fit.value_fit_now}
+                 "value_fit_now": fit.value_fit_now, "rss": fit.rss, "n_fit": float(fit.n),
+                 "n_params": 2.0}
     if a_fit.ok:
         fc.params.update(air_ambient=a_fit.ambient, air_k_per_s=a_fit.k_per_s,
                          air_value_now=a_fit.value_fit_now)
@@ -220,7 +222,7 @@ def _measured(fc, tt, yy, thr, air, limit=None) -> Forecast:
     return fc
 
 
-def _conduction(fc, tt, yy, thr, shape, ambient, air) -> Forecast:
+def _conduction(fc, tt, yy, thr, shape, ambient, air, amb_sd=0.0) -> Forecast:
     try:
         conduction = importlib.import_module("thermeta.predictors.conduction")
     except ImportError:
@@ -230,8 +232,9 @@ def _conduction(fc, tt, yy, thr, shape, ambient, air) -> Forecast:
     if air is not None:
         kw = {"ambient_t": air.t, "ambient_y": air.y}
     elif ambient is not None:
-        kw = {"ambient": float(ambient)}
+        kw = {"ambient": float(ambient), "ambient_sd": float(amb_sd)}
     fit = conduction.fit_conduction(tt, yy, shape, **kw)
+    fc.model_fit = fit
     fc.model = shape
     if not fit.ok:
         fc.ok, fc.reason = False, fit.reason
@@ -248,8 +251,13 @@ def _conduction(fc, tt, yy, thr, shape, ambient, air) -> Forecast:
     fc.interval_method = fit.interval_method
     now = fit.value_at_last
     fc.direction = "rising" if fit.Ta > now else "falling"
-    fc.params = {"biot": fit.biot, "a_per_s": fit.a_per_s, "Ti": fit.Ti, "t0_s": fit.t0_s}
-    fc.params["aicc"] = fit.aicc
+    fc.params = {"biot": fit.biot, "a_per_s": fit.a_per_s, "Ti": fit.Ti, "t0_s": fit.t0_s,
+                 "aicc": fit.aicc, "rss": fit.rss, "n_fit": float(fit.n_points),
+                 "n_params": float(fit.n_params)}
+    if ambient is not None and amb_sd > 0:
+        fc.warnings.append(
+            f"the given ambient {ambient:g} is taken as uncertain by about {amb_sd:g} (1 sd); "
+            "the intervals include that")
     return fc
 
 
@@ -261,18 +269,18 @@ def aicc(rss: float, n: int, p: int) -> float:
 
 
 def _auto(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit) -> Forecast:
-    """The lumped model, unless a core-probe model has a clearly lower AICc."""
+    """The lumped model, unless a core-probe model has a clearly lower AICc (by more than 2)."""
     import copy
 
     base = copy.deepcopy(fc)
     lumped = _lumped(copy.deepcopy(fc), tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit)
     lumped.model = "lumped"
-    if not lumped.ok or lumped.rmse is None:
+    if not lumped.ok or "rss" not in lumped.params:
         return lumped
-    p_l = 3 if (ambient is None and air is None) else 2
-    best, best_ic = lumped, aicc(lumped.rmse**2 * max(tt.size - p_l, 1), tt.size, p_l)
+    p = lumped.params
+    best, best_ic = lumped, aicc(p["rss"], int(p["n_fit"]), int(p["n_params"]))
     for shape in CONDUCTION:
-        c = _conduction(copy.deepcopy(base), tt, yy, thr, shape, ambient, air)
+        c = _conduction(copy.deepcopy(base), tt, yy, thr, shape, ambient, air, amb_sd)
         ic = c.params.get("aicc", math.inf) if c.ok else math.inf
         if ic < best_ic - 2.0:
             best, best_ic = c, ic

@@ -69,6 +69,8 @@ class Forecast:
     warnings: list[str] = field(default_factory=list)
     # Model parameters needed to draw the curve (t0, T0, ...), model-specific.
     params: dict[str, float] = field(default_factory=dict)
+    # The model's own fit object where it can draw its curve (core models); not part of the JSON.
+    model_fit: Any = field(default=None, repr=False, compare=False)
 
     @property
     def crossing_t(self) -> float | None:

@@ -7,7 +7,7 @@ import sys
 
 import numpy as np
 import pytest
-from thermeta.predictors import forecast, synth
+from thermeta.predictors import forecast, predict, synth
 from thermeta.predictors.synth import Corruption
 
 
@@ -29,6 +29,9 @@ def test_sphere_model_reports_biot_and_lag():
     assert fc.lag_factor_j > 1.0
     assert fc.eta_s == pytest.approx(s.eta_true_s, rel=0.25)
     assert fc.to_dict()["biot"] == pytest.approx(fc.biot)
+    # predict() draws the core model's own curve: it passes the threshold at the crossing
+    assert predict(fc, np.array([fc.crossing_t]))[0] == pytest.approx(8.0, abs=0.05)
+    assert "model_fit" not in fc.to_dict()
 
 
 def test_auto_prefers_lumped_on_a_newton_curve_and_conduction_on_a_lagging_probe():
