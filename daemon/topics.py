@@ -96,11 +96,12 @@ class Route:
 
 
 class Router:
-    """Resolves topics to routes; exact topics win, then patterns in config order.  Results are
-    cached (a site has as many topics as probes)."""
+    """Resolves topics to routes; exact topics win, then patterns in config order.  One topic can
+    feed several items: an air probe shared as the ambient of several loads (and maybe an item of
+    its own).  Results are cached (a site has as many topics as probes)."""
 
     def __init__(self, items: tuple[ItemConfig, ...] | list[ItemConfig]):
-        self.exact: dict[str, Route] = {}
+        self.exact: dict[str, list[Route]] = {}
         self.patterns: list[tuple[str, ItemConfig, str]] = []
         self.by_name: dict[str, ItemConfig] = {}
         for it in items:
@@ -109,11 +110,11 @@ class Router:
                 if it.ambient_topic:
                     self.patterns.append((it.ambient_topic, it, "ambient"))
             else:
-                self.exact[it.topic] = Route(it, "load")
+                self.exact.setdefault(it.topic, []).insert(0, Route(it, "load"))
                 self.by_name[it.name] = it
                 if it.ambient_topic:
-                    self.exact.setdefault(it.ambient_topic, Route(it, "ambient"))
-        self._cache: dict[str, Route | None] = {}
+                    self.exact.setdefault(it.ambient_topic, []).append(Route(it, "ambient"))
+        self._cache: dict[str, list[Route]] = {}
 
     def filters(self) -> list[str]:
         """Topic filters to subscribe to."""
@@ -122,39 +123,49 @@ class Router:
         return out
 
     def resolve(self, topic: str) -> Route | None:
+        """The first route of ``topic`` (its load item if it has one)."""
+        routes = self.resolve_all(topic)
+        return routes[0] if routes else None
+
+    def resolve_all(self, topic: str) -> list[Route]:
+        """Every route of ``topic``: exact entries, else the first matching load pattern and every
+        matching ambient pattern."""
         if topic in self.exact:
             return self.exact[topic]
         if topic in self._cache:
             return self._cache[topic]
-        route = None
+        routes: list[Route] = []
+        have_load = False
         for flt, it, kind in self.patterns:
-            if match(flt, topic):
-                name = render(it.name, topic)
-                if name is None:
-                    continue
-                concrete = self.by_name.get(name)
-                if concrete is None:
-                    load_topic = topic if kind == "load" else render_filter(it.topic, topic)
-                    concrete = replace(
-                        it, name=name,
-                        topic=load_topic,
-                        ambient_topic=(render_filter(it.ambient_topic, topic)
-                                       if it.ambient_topic else None),
-                    )
-                    if kind == "load":
-                        self.by_name[name] = concrete
-                route = Route(concrete, kind)
-                break
+            if (kind == "load" and have_load) or not match(flt, topic):
+                continue
+            name = render(it.name, topic)
+            if name is None:
+                continue
+            concrete = self.by_name.get(name)
+            if concrete is None:
+                load_topic = topic if kind == "load" else render_filter(it.topic, topic)
+                concrete = replace(
+                    it, name=name,
+                    topic=load_topic,
+                    ambient_topic=(render_filter(it.ambient_topic, topic)
+                                   if it.ambient_topic else None),
+                )
+                if kind == "load":
+                    self.by_name[name] = concrete
+            routes.append(Route(concrete, kind))
+            have_load = have_load or kind == "load"
+        routes.sort(key=lambda r: r.kind != "load")
         if len(self._cache) < 1_000_000:
-            self._cache[topic] = route
-        return route
+            self._cache[topic] = routes
+        return routes
 
     def item_for(self, name: str, topic: str | None = None) -> ItemConfig | None:
         """The concrete config of a stored item (re-resolved from its topic after a restart)."""
         if name in self.by_name:
             return self.by_name[name]
         if topic:
-            route = self.resolve(topic)
-            if route is not None and route.kind == "load" and route.item.name == name:
-                return route.item
+            for route in self.resolve_all(topic):
+                if route.kind == "load" and route.item.name == name:
+                    return route.item
         return None

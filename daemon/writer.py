@@ -209,17 +209,17 @@ class Writer(threading.Thread):
 
     def _prepare_topics(self, batch: list[Inbound]) -> None:
         """Resolve the batch's new topics and register their new items in one go."""
-        routes = {}
+        routes: dict[str, list[Route]] = {}
         for msg in batch:
             if msg.topic not in self._topics and msg.topic not in routes:
                 try:
-                    routes[msg.topic] = self.router.resolve(msg.topic)
+                    routes[msg.topic] = self.router.resolve_all(msg.topic)
                 except Exception:  # noqa: BLE001 - the message becomes a dead letter
                     log.exception("cannot map topic %r", msg.topic[:200])
-                    routes[msg.topic] = None
+                    routes[msg.topic] = []
         specs = [(r.store_name, r.kind, r.item.unit,
                   r.item.topic if r.kind == "load" else r.item.ambient_topic)
-                 for r in routes.values() if r is not None]
+                 for rs in routes.values() for r in rs]
         delay = 0.5
         while True:
             try:
@@ -229,36 +229,40 @@ class Writer(threading.Thread):
                 log.error("cannot register new items (%s); retrying in %.1f s", exc, delay)
                 time.sleep(delay)
                 delay = min(delay * 2, 30.0)
-        for topic, route in routes.items():
-            if route is None:
-                continue
-            name = route.store_name
-            if route.kind == "load" and name not in self._item_ids:
-                log.info("new item %s on %s", name, topic)
-            self._item_ids[name] = ids[name]
-            if len(self._topics) < 1_000_000:
-                self._topics[topic] = (route, name, self._limits_for(route), ids[name],
-                                       route.item.name if route.kind == "ambient" else name)
+        for topic, rs in routes.items():
+            hits = []
+            for route in rs:
+                name = route.store_name
+                if route.kind == "load" and name not in self._item_ids:
+                    log.info("new item %s on %s", name, topic)
+                self._item_ids[name] = ids[name]
+                hits.append((route, name, self._limits_for(route), ids[name],
+                             route.item.name if route.kind == "ambient" else name))
+            if hits and len(self._topics) < 1_000_000:
+                self._topics[topic] = hits
 
     def _convert(self, msg: Inbound, readings: list, dead: list, seen: list) -> None:
-        hit = self._topics.get(msg.topic)
-        if hit is None:
+        hits = self._topics.get(msg.topic)
+        if not hits:
             dead.append(self._dead(msg, None, "no item is mapped to this topic"))
             return
-        route, name, limits, item_id, load_name = hit
-        try:
-            parsed = parse_payload(msg.payload, msg.received_at, route.item.unit, limits,
-                                   route.item.senml_name)
-        except PayloadError as exc:
-            dead.append(self._dead(msg, name, str(exc)))
-            return
-        newest = parsed[0].ts
-        for r in parsed:
-            readings.append((item_id, r.ts, r.value_c, FLAG_RECEIPT_TS if r.receipt_ts else 0,
-                             msg.received_at))
-            if r.ts > newest:
-                newest = r.ts
-        seen.append((load_name, route.item, None if route.kind == "ambient" else newest))
+        failed: tuple[str, str] | None = None
+        for route, name, limits, item_id, load_name in hits:
+            try:
+                parsed = parse_payload(msg.payload, msg.received_at, route.item.unit, limits,
+                                       route.item.senml_name)
+            except PayloadError as exc:
+                failed = failed or (name, str(exc))
+                continue
+            newest = parsed[0].ts
+            for r in parsed:
+                readings.append((item_id, r.ts, r.value_c, FLAG_RECEIPT_TS if r.receipt_ts else 0,
+                                 msg.received_at))
+                if r.ts > newest:
+                    newest = r.ts
+            seen.append((load_name, route.item, None if route.kind == "ambient" else newest))
+        if failed is not None:
+            dead.append(self._dead(msg, failed[0], failed[1]))
 
     def _limits_for(self, route: Route) -> Limits:
         key = route.store_name

@@ -57,6 +57,24 @@ threshold = 8.0
     assert set(r.filters()) == {"yard/07/load", "yard/+/load", "yard/+/air"}
 
 
+def test_one_air_probe_is_the_ambient_of_several_loads(tmp_path):
+    """Pallet probes sharing one return-air probe each get its readings as their ambient, and
+    the air probe can be an item of its own too."""
+    items = "".join(
+        f'[[item]]\nname = "{n}"\ntopic = "r9/{n}"\nambient_topic = "r9/air"\nthreshold = 8.0\n'
+        for n in ("pallet-1", "pallet-2")) + '[[item]]\nname = "air"\ntopic = "r9/air"\nthreshold = 12.0\n'
+    w, store, acked, act = make_writer(tmp_path, items)
+    w.start()
+    w.submit(Inbound("r9/air", json.dumps({"ts": T0 - 10, "value": 6.5}).encode(), T0, mid=1, qos=1))
+    w.stop()
+    assert [(rt.store_name, rt.kind) for rt in w.router.resolve_all("r9/air")] == [
+        ("air", "load"), ("pallet-1.ambient", "ambient"), ("pallet-2.ambient", "ambient")]
+    for name in ("air", "pallet-1.ambient", "pallet-2.ambient"):
+        assert store.recent_readings(name) == [(T0 - 10, 6.5)]
+    assert act.take_dirty() == {"air", "pallet-1", "pallet-2"}
+    store.close()
+
+
 def make_writer(tmp_path, items: str):
     cfg = config(tmp_path, items)
     store = Store(cfg.storage.url)

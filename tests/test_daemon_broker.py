@@ -23,22 +23,6 @@ pytestmark = pytest.mark.broker
 REPO = Path(__file__).resolve().parents[1]
 
 
-@pytest.fixture
-def durable_broker(broker):
-    """The `broker` fixture, made able to write its persistence file when run as root.
-
-    Mosquitto started as root switches to the `mosquitto` user, which cannot enter pytest's 0700
-    temp folders: no persistence file would be written and a restart would lose every session.
-    """
-    if os.geteuid() == 0 and "user root" not in broker.conf.read_text():
-        d = broker.workdir
-        os.chmod(d, 0o777)
-        for parent in list(d.parents)[:3]:
-            os.chmod(parent, os.stat(parent).st_mode | 0o011)
-        broker.restart()
-    return broker
-
-
 def write_config(tmp_path: Path, broker, db_url: str | None = None, *, items: str,
                  client_id: str = "thermeta-test", refit_every: float = 1.0) -> Path:
     db_url = db_url or f"sqlite:///{tmp_path / 'store.db'}"
@@ -233,10 +217,9 @@ def test_kill_9_mid_stream_loses_and_doubles_nothing(broker, tmp_path):
     assert stored_times(db, "probe-a1") == [t0 + i for i in range(n)]
 
 
-def test_broker_restart_mid_stream_loses_and_doubles_nothing(durable_broker, tmp_path):
+def test_broker_restart_mid_stream_loses_and_doubles_nothing(broker, tmp_path):
     """The broker restarts (keeping its persistence file) while readings stream in: the daemon
     reconnects, resumes its session, and every reading is stored exactly once."""
-    broker = durable_broker
     db = f"sqlite:///{tmp_path / 'store.db'}"
     cfg = write_config(tmp_path, broker, db, items=(
         '[[item]]\nname = "walkin"\ntopic = "kitchen/walkin/t"\nthreshold = 5.0\n'))
@@ -409,3 +392,69 @@ def test_password_from_environment_never_logged_json_logs_and_sigint(broker, tmp
     assert {"time", "level", "logger", "message"} <= set(records[0])
     assert any(r["message"] == "received SIGINT" for r in records)
     assert any(r["message"].startswith("stopped: 50 readings") for r in records)
+
+
+def _make_certs(d: Path) -> None:
+    """A CA, a server certificate for 127.0.0.1 and a client certificate (openssl)."""
+    def ossl(*args: str) -> None:
+        subprocess.run(["openssl", *args], cwd=d, check=True, capture_output=True)
+
+    ossl("req", "-x509", "-newkey", "rsa:2048", "-nodes", "-days", "2", "-subj", "/CN=test-ca",
+         "-keyout", "ca.key", "-out", "ca.pem")
+    for name, ext in (("server", "subjectAltName=IP:127.0.0.1"), ("client", "extendedKeyUsage=clientAuth")):
+        ossl("req", "-newkey", "rsa:2048", "-nodes", "-subj", f"/CN={name}", "-keyout", f"{name}.key",
+             "-out", f"{name}.csr")
+        (d / f"{name}.ext").write_text(ext + "\n")
+        ossl("x509", "-req", "-in", f"{name}.csr", "-CA", "ca.pem", "-CAkey", "ca.key",
+             "-CAcreateserial", "-days", "2", "-extfile", f"{name}.ext", "-out", f"{name}.pem")
+    for p in d.iterdir():
+        os.chmod(p, 0o644)
+
+
+def test_tls_with_client_certificate(broker, tmp_path):
+    """TLS from the config (CA file, client certificate and key) against a Mosquitto listener that
+    requires a client certificate: readings arrive and are stored."""
+    import shutil
+    import socket
+
+    if shutil.which("openssl") is None:
+        pytest.fail("openssl is needed to make test certificates")
+    work = tmp_path / "tls"
+    work.mkdir()
+    _make_certs(work)
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    as_root = "user root\n" if os.geteuid() == 0 else ""
+    (work / "m.conf").write_text(
+        f"listener {port} 127.0.0.1\nallow_anonymous true\ncafile {work / 'ca.pem'}\n"
+        f"certfile {work / 'server.pem'}\nkeyfile {work / 'server.key'}\n"
+        f"require_certificate true\n{as_root}")
+    mq = subprocess.Popen(["mosquitto", "-c", str(work / "m.conf")], stdout=subprocess.DEVNULL,
+                          stderr=subprocess.DEVNULL)
+    tls_args = ["--cafile", str(work / "ca.pem"), "--cert", str(work / "client.pem"),
+                "--key", str(work / "client.key")]
+    try:
+        wait_for(lambda: subprocess.run(["mosquitto_pub", "-h", "127.0.0.1", "-p", str(port),
+                                         *tls_args, "-t", "probe/ping", "-m", "1"],
+                                        capture_output=True).returncode == 0, 10)
+        db = f"sqlite:///{tmp_path / 'store.db'}"
+        cfg = tmp_path / "tls.toml"
+        cfg.write_text(
+            f'[broker]\nhost = "127.0.0.1"\nport = {port}\nclient_id = "tls-test"\n'
+            f'ca_file = "{work / "ca.pem"}"\ncert_file = "{work / "client.pem"}"\n'
+            f'key_file = "{work / "client.key"}"\n\n[storage]\nurl = "{db}"\n\n'
+            '[[item]]\nname = "walkin"\ntopic = "kitchen/walkin/t"\nthreshold = 5.0\n')
+        daemon = Daemon(cfg, tmp_path / "daemon.log")
+        daemon.start()
+        try:
+            t0 = time.time() - 100
+            lines = "\n".join(json.dumps({"ts": t0 + i, "value": 3.0}) for i in range(30))
+            subprocess.run(["mosquitto_pub", "-h", "127.0.0.1", "-p", str(port), *tls_args, "-q", "1",
+                            "-t", "kitchen/walkin/t", "-l"], input=lines + "\n", text=True, check=True)
+            wait_for(lambda: count_readings(db, "walkin") == 30, 20, daemon.log)
+        finally:
+            assert daemon.stop() == 0
+    finally:
+        mq.terminate()
+        mq.wait(10)
