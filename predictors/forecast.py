@@ -17,7 +17,7 @@ import numpy as np
 from numpy.typing import ArrayLike
 from thermeta.predictors.cleaning import clean, residual_outliers
 from thermeta.predictors.lumped import LumpedFit, fit_lumped
-from thermeta.predictors.measured import fit_air, fit_measured, steady_air
+from thermeta.predictors.measured import fit_air, fit_measured, measured_rss, steady_air
 from thermeta.predictors.regime import find_regime
 from thermeta.predictors.result import Forecast
 
@@ -123,14 +123,15 @@ def _forecast(fc, t, y, thr, model, ambient, ambient_t, ambient_y, window_s, min
         return _conduction(fc, tt, yy, thr, model, ambient, air, amb_sd)
     if model == "auto":
         return _auto(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit)
-    return _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit)
+    return _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, detect, min_points)
 
 
-def _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit=None) -> Forecast:
+def _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit=None, detect=True,
+            min_points=8) -> Forecast:
     fc.model = "lumped" if fc.model != "auto" else fc.model
     fc.lag_factor_j = 1.0
     if air is not None:
-        return _measured(fc, tt, yy, thr, air, limit)
+        return _measured(fc, tt, yy, thr, air, limit, detect, cl.noise_sd, min_points)
     kw = {"ambient": ambient, "ambient_sd": amb_sd if ambient is not None else 0.0, "bounds": bounds,
               "noise_sd": cl.noise_sd, "limit": limit}
     fit = fit_lumped(tt, yy, thr, intervals=False, **kw)
@@ -181,7 +182,8 @@ def never_reason(fc: Forecast) -> str:
     return "the fitted curve levels off before the threshold"
 
 
-def _measured(fc, tt, yy, thr, air, limit=None) -> Forecast:
+def _measured(fc, tt, yy, thr, air, limit=None, detect=True, noise_sd=0.0,
+              min_points=8) -> Forecast:
     at, ay = air.t, air.y
     reg = find_regime(at, ay, air.noise_sd)
     if reg.start_index > 0:
@@ -196,6 +198,23 @@ def _measured(fc, tt, yy, thr, air, limit=None) -> Forecast:
     if not fit.ok:
         fc.ok, fc.reason = False, fit.reason
         return fc
+    if detect:
+        # the air explains most changes; what it cannot (a pump started, a lid put on) shows as
+        # a misfit of the load against the air: then keep only the readings since
+        load_reg = find_regime(
+            tt, yy, noise_sd, min_points=max(12, min_points), n_params=2, fit_sigma=fit.sigma,
+            rss=lambda i0, i1: measured_rss(tt[i0:i1], yy[i0:i1], at, ay),
+            exact=lambda i0, i1: measured_rss(tt[i0:i1], yy[i0:i1], at, ay, exact=True))
+        if load_reg.start_index > 0 and not load_reg.cycling:
+            fc.warnings.append(
+                f"the load changed against its ambient {load_reg.n_changes} time(s); fitted the "
+                f"newest {tt.size - load_reg.start_index} readings only")
+            tt, yy = tt[load_reg.start_index:], yy[load_reg.start_index:]
+            fc.regime_start = float(tt[0])
+            fit = fit_measured(tt, yy, at, ay, thr, air_fit=a_fit, limit=limit)
+            if not fit.ok:
+                fc.ok, fc.reason = False, fit.reason
+                return fc
     out = residual_outliers(fit.residuals, 4.0, floor=max(air.quantum, 1e-3 * float(np.ptp(yy)), 1e-9))
     if 0 < out.sum() <= max(1, int(0.1 * tt.size)):
         fc.n_outliers += int(out.sum())

@@ -249,3 +249,36 @@ def steady_air(air_t: np.ndarray, air_y: np.ndarray, n_runs: int) -> LumpedFit:
                     ambient_lo=mean - Z90 * se, ambient_hi=mean + Z90 * se, k_lo=k, k_hi=k)
     fit.cov = np.diag([se * se, 0.0, 0.0])
     return fit
+
+
+def measured_rss(t: np.ndarray, y: np.ndarray, air_t: np.ndarray, air_y: np.ndarray, *,
+                 exact: bool = False, n_grid: int = 24) -> float:
+    """Minimum RSS of the measured-ambient model on readings (t, y): a k grid with a parabola
+    in log k (quick), or that refined by a bounded 1-D search (exact).  For regime searches."""
+    if t.size < 4 or t[-1] <= t[0]:
+        return math.inf
+    inside = (air_t >= t[0]) & (air_t <= t[-1])
+    s = np.unique(np.concatenate([t, air_t[inside]]))
+    A = np.interp(s, air_t, air_y)
+    pos = np.searchsorted(s, t)
+
+    def rss_k(k: np.ndarray) -> np.ndarray:
+        P, G = response(k, s, A)
+        P, G = P[:, pos], G[:, pos]
+        r = y[None, :] - G
+        T0 = (r * P).sum(1) / (P * P).sum(1)
+        return ((r - T0[:, None] * P) ** 2).sum(1)
+
+    lg = np.linspace(math.log(KD_MIN), math.log(KD_MAX), n_grid) - math.log(t[-1] - t[0])
+    r = rss_k(np.exp(lg))
+    i = int(np.argmin(r))
+    if exact:
+        res = minimize_scalar(lambda v: float(rss_k(np.array([math.exp(v)]))[0]),
+                              bounds=(lg[max(i - 1, 0)], lg[min(i + 1, n_grid - 1)]),
+                              method="bounded", options={"xatol": 1e-6})
+        return float(min(res.fun, r[i]))
+    if 0 < i < n_grid - 1:
+        den = r[i - 1] - 2 * r[i] + r[i + 1]
+        if den > 0:
+            return float(max(r[i] - 0.125 * (r[i - 1] - r[i + 1]) ** 2 / den, 0.0))
+    return float(r[i])

@@ -15,12 +15,14 @@ bends the curve: dT/dt = -k (T - Ta) jumps with Ta.  One lumped curve then fits 
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
 from thermeta.predictors.lumped import fit_lumped, quick_rss
 
 MIN_REGIME_POINTS = 12
+RssFn = Callable[[int, int], float]
 
 
 @dataclass
@@ -65,16 +67,26 @@ def slope_runs(t: np.ndarray, y: np.ndarray, noise_sd: float, half: int = 8) -> 
 
 
 def find_regime(t: np.ndarray, y: np.ndarray, noise_sd: float, *, min_points: int = MIN_REGIME_POINTS,
-                max_changes: int = 4) -> Regime:
-    """Index where the current regime starts (0 = the whole window)."""
+                max_changes: int = 4, rss: RssFn | None = None, exact: RssFn | None = None,
+                fit_sigma: float | None = None, n_params: int = 3) -> Regime:
+    """Index where the current regime starts (0 = the whole window).
+
+    rss / exact: RSS of the model on a slice (i0, i1) of the readings, a quick one to rank the
+    splits and an exact one to test the best (default: the fitted-ambient lumped curve);
+    fit_sigma: the residual sd of the model on the whole window (default: computed here).
+    """
     n = t.size
     if n < 2 * min_points:
         return Regime(0, 0, False)
-    full = fit_lumped(t, y, float(y[-1]), intervals=False)
-    if not full.ok:
-        return Regime(0, 0, False)
+    rss = rss or (lambda i0, i1: _rss(t[i0:i1], y[i0:i1]))
+    exact = exact or (lambda i0, i1: _exact_rss(t[i0:i1], y[i0:i1]))
+    if fit_sigma is None:
+        full = fit_lumped(t, y, float(y[-1]), intervals=False)
+        if not full.ok:
+            return Regime(0, 0, False)
+        fit_sigma = full.sigma
     sig = max(noise_sd, 1e-6)
-    if full.sigma <= 1.5 * sig:
+    if fit_sigma <= 1.5 * sig:
         return Regime(0, 0, False)
     runs = slope_runs(t, y, sig)
     if len(runs) >= 4:
@@ -88,32 +100,26 @@ def find_regime(t: np.ndarray, y: np.ndarray, noise_sd: float, *, min_points: in
                       "the readings stopped cycling; fitted the newest run only")
     start, changes = 0, 0
     while changes < max_changes and n - start >= 2 * min_points:
-        ts, ys = t[start:], y[start:]
-        m = ts.size
-        rss1 = _rss(ts, ys)
-        cands = np.unique(np.linspace(min_points, m - min_points, 14).astype(int))
-        scores = np.array([_rss(ts[:j], ys[:j]) + _rss(ts[j:], ys[j:]) for j in cands])
+        m = n - start
+        cands = start + np.unique(np.linspace(min_points, m - min_points, 14).astype(int))
+        scores = np.array([rss(start, j) + rss(j, n) for j in cands])
         i = int(np.argmin(scores))
         # refine between the neighbouring candidates
-        lo_j = cands[max(i - 1, 0)]
-        hi_j = cands[min(i + 1, cands.size - 1)]
-        fine = np.unique(np.linspace(lo_j, hi_j, 9).astype(int))
-        fine = fine[(fine >= min_points) & (fine <= m - min_points)]
+        fine = np.unique(np.linspace(cands[max(i - 1, 0)], cands[min(i + 1, cands.size - 1)],
+                                     9).astype(int))
+        fine = fine[(fine >= start + min_points) & (fine <= n - min_points)]
+        j_best, best = int(cands[i]), float(scores[i])
         if fine.size:
-            fs = np.array([_rss(ts[:j], ys[:j]) + _rss(ts[j:], ys[j:]) for j in fine])
-            if fs.min() < scores[i]:
-                j_best, rss2 = int(fine[np.argmin(fs)]), float(fs.min())
-            else:
-                j_best, rss2 = int(cands[i]), float(scores[i])
-        else:
-            j_best, rss2 = int(cands[i]), float(scores[i])
-        # the grid RSS above ranks the splits; the test uses exact fits
-        rss1 = _exact_rss(ts, ys)
-        rss2 = _exact_rss(ts[:j_best], ys[:j_best]) + _exact_rss(ts[j_best:], ys[j_best:])
-        s2 = max(rss2 / max(m - 7, 1), sig * sig)
-        # 4 more parameters (3 for the second curve, 1 for the split): BIC-style, with margin
-        if (rss1 - rss2) / s2 < 4.0 * math.log(m) + 12.0:
+            fs = np.array([rss(start, j) + rss(j, n) for j in fine])
+            if fs.min() < best:
+                j_best = int(fine[np.argmin(fs)])
+        # the quick RSS ranks the splits; the test uses exact fits
+        rss1 = exact(start, n)
+        rss2 = exact(start, j_best) + exact(j_best, n)
+        s2 = max(rss2 / max(m - 2 * n_params - 1, 1), sig * sig)
+        # n_params + 1 more parameters (a second curve and the split): BIC-style, with margin
+        if (rss1 - rss2) / s2 < (n_params + 1) * math.log(m) + 12.0:
             break
-        start += j_best
+        start = j_best
         changes += 1
     return Regime(start, changes, False)

@@ -3,6 +3,8 @@ nor on a healthy thermostat's sawtooth."""
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 import pytest
 from thermeta.predictors import forecast, synth
@@ -94,3 +96,21 @@ def test_load_beside_cycling_air_gets_no_crossing():
     assert fc.ok and fc.eta_s is None
     assert 2.0 < fc.ambient < 5.0
     assert any("cycles" in w for w in fc.warnings)
+
+
+def test_measured_ambient_pump_start_is_found():
+    """Wort held at 97 degC beside a coolant probe reading 9 degC, then the pump starts: the
+    measured-ambient model cannot explain the hold, so the fit keeps the readings since the
+    pump started and the crossing of 20 degC lands near the truth (Newton's law from then)."""
+    rng = np.random.default_rng(21)
+    t = synth.T_START + np.arange(0, 2400, 10.0)
+    tp, k = synth.T_START + 600, 1 / 900
+    clean = np.where(t < tp, 97.0, 9.0 + 88.0 * np.exp(-k * (t - tp)))
+    sel = t <= tp + 900
+    y = np.round((clean + rng.normal(0, 0.2, t.size)) / 0.1) * 0.1
+    air = np.round((9.0 + rng.normal(0, 0.1, t.size)) / 0.1) * 0.1
+    fc = forecast(t[sel], y[sel], 20.0, ambient_t=t[sel], ambient_y=air[sel])
+    true_eta = tp + math.log(88 / 11) / k - t[sel][-1]
+    assert abs(fc.regime_start - tp) <= 30
+    assert fc.eta_s == pytest.approx(true_eta, rel=0.05)
+    assert any("changed against its ambient" in w for w in fc.warnings)
