@@ -37,10 +37,13 @@ def run(args: argparse.Namespace) -> int:
     from thermeta.daemon.service import Service
 
     stop = threading.Event()
+    in_dashboard = threading.Event()
 
     def on_signal(signum, _frame) -> None:
         log.info("received %s", signal.Signals(signum).name)
         stop.set()
+        if in_dashboard.is_set():
+            raise KeyboardInterrupt  # ends the dashboard's loop in this (main) thread
 
     signal.signal(signal.SIGTERM, on_signal)
     signal.signal(signal.SIGINT, on_signal)
@@ -57,7 +60,14 @@ def run(args: argparse.Namespace) -> int:
             except ModuleNotFoundError:
                 log.error("the dashboard is not available in this build; running without it")
             else:
-                run_foreground(service, stop)
+                in_dashboard.set()
+                try:
+                    run_foreground(service)  # blocks until the user quits
+                except KeyboardInterrupt:
+                    pass
+                finally:
+                    in_dashboard.clear()
+                stop.set()
         while not stop.is_set():
             stop.wait(1.0)
     finally:

@@ -115,11 +115,14 @@ class Service:
             attach = getattr(mod, "attach", None)
             if attach is None:
                 continue
-            plugin = attach(self)
-            if plugin is not None:
-                plugin.start()
-                self.plugins.append(plugin)
-                log.info("plug-in %s started", name)
+            try:
+                plugin = attach(self)
+                if plugin is not None:
+                    plugin.start()
+                    self.plugins.append(plugin)
+                    log.info("plug-in %s started", name)
+            except Exception:  # noqa: BLE001 - readings must still be kept without the plug-in
+                log.exception("plug-in %s failed to start; running without it", name)
 
     def _start_scheduler(self) -> None:
         from apscheduler.events import EVENT_JOB_ERROR, EVENT_JOB_MAX_INSTANCES, EVENT_JOB_MISSED
