@@ -6,12 +6,15 @@ Model, with d = t - t_first (seconds):
 
 For a fixed k the model is linear in (a, b), so the fit reduces to one dimension (k) and every
 quantity below comes in closed form from the sums n, Sy, Syy and, per k, Se, See, Sye
-(e = e^(-k d)).  The same sums give, on a grid of k, the exact profile of the residual sum of
-squares (RSS) for k, for the ambient a, and for the crossing time (a linear constraint
-a + b e^(-k (D + eta)) = threshold, D = t_last - t_first), so the 90 % intervals are profile
-likelihood intervals at no more cost than the fit:
+(e = e^(-k d)).  The 90 % intervals are profile-likelihood intervals,
 
-    {theta : RSS_profile(theta) <= RSS_min (1 + F(0.90; 1, dof) / dof)}
+    {theta : RSS_profile(theta) <= RSS_min (1 + F(0.90; 1, dof) / dof)},
+
+at little more cost than the fit: for k, the profile RSS_k on a grid of k (refined near the
+estimate); for the ambient a and the crossing time eta, the projection of the joint region
+{RSS <= cut}, which for each fixed k is an ellipse in (a, b) known in closed form from the same
+sums (the crossing time enters through the linear constraint a + b e^(-k (D + eta)) = threshold,
+D = t_last - t_first), taken over the k grid.
 
 Ambient modes:
 - fitted: a free within ``bounds`` (a plausible range);
