@@ -39,6 +39,7 @@ STATES = ("learning", "steady", "approaching", "crossed", "stale")
 POINT_KEYS = ("threshold", "ambient", "ambient_lo", "ambient_hi", "value_now")
 DELTA_KEYS = ("rmse",)
 ERROR_LOG_EVERY_S = 300.0
+SAVE_EVERY = 50  # forecasts per store transaction
 
 # A listener gets (item config, forecast dict with state, previous forecast dict or None).
 Listener = Callable[[ItemConfig, dict[str, Any], "dict[str, Any] | None"], None]
@@ -123,6 +124,7 @@ class Refitter:
             dirty = self.activity.take_dirty()
             items, last = self.activity.snapshot()
             done: dict[str, str] = {}
+            pending: list[tuple[str, ItemConfig, int, str, dict[str, Any], float | None]] = []
             for name, cfg in items.items():
                 prev = self.previous.get(name)
                 due = force or name in dirty or prev is None
@@ -131,9 +133,13 @@ class Refitter:
                 if not (due or going_stale):
                     continue
                 try:
-                    done[name] = self._refit(name, cfg, now, last.get(name))
+                    item_id, state, body = self._refit(name, cfg, now, last.get(name))
+                    pending.append((name, cfg, item_id, state, body, last.get(name)))
                 except Exception:  # noqa: BLE001 - one item never stops the others
                     self._log_error(name, "refit of %s failed", name)
+                if len(pending) >= SAVE_EVERY:
+                    self._flush(pending, now, done)
+            self._flush(pending, now, done)
             if done:
                 try:
                     self.store.set_meta("last_refit_at", now)
@@ -143,7 +149,24 @@ class Refitter:
             self.last_run_s = time.monotonic() - t0
             return done
 
-    def _refit(self, name: str, cfg: ItemConfig, now: float, last_ts: float | None) -> str:
+    def _flush(self, pending: list, now: float, done: dict[str, str]) -> None:
+        """Store a chunk of forecasts in one transaction, then publish them (one commit per item
+        would cost an fsync each and hold the writer's lock as often)."""
+        if not pending:
+            return
+        try:
+            self.store.save_forecasts([(item_id, now, state, body, last_ts)
+                                       for _, _, item_id, state, body, last_ts in pending])
+        except Exception:  # noqa: BLE001 - published anyway; the next refit stores again
+            log.exception("storing %d forecasts failed", len(pending))
+        for name, cfg, _, state, body, _ in pending:
+            self._deliver(name, cfg, body)
+            done[name] = state
+        pending.clear()
+
+    def _refit(self, name: str, cfg: ItemConfig, now: float,
+               last_ts: float | None) -> tuple[int, str, dict[str, Any]]:
+        """Fit one item; returns (item id, state, forecast body) for storing and publishing."""
         item_id = self.item_ids.get(name) or self.store.item_id(name)
         if item_id is None:
             item_id = self.store.ensure_item(name, unit=cfg.unit, topic=cfg.topic, now=now)
@@ -182,7 +205,10 @@ class Refitter:
         body.update(item=name, state=state, updated_at=rfc3339(now), unit=cfg.unit, limit=limit)
         if cfg.site:
             body["site"] = cfg.site
-        self.store.save_forecast(item_id, now, state, body, last_ts)
+        return item_id, state, body
+
+    def _deliver(self, name: str, cfg: ItemConfig, body: dict[str, Any]) -> None:
+        """Publish a stored forecast and hand it to the listeners."""
         if self.publish is not None:
             try:
                 self.publish(name, json.dumps(body))
@@ -195,7 +221,6 @@ class Refitter:
                 listener(cfg, body, prev)
             except Exception:  # noqa: BLE001 - a listener's failure is its own
                 log.exception("forecast listener %r failed on %s", listener, name)
-        return state
 
     def _log_error(self, name: str, msg: str, *args: Any) -> None:
         # Rate-limited per item, so a persistently failing item logs every few minutes.

@@ -280,6 +280,17 @@ class Store:
             conn.execute(update(items).where(items.c.id == item_id)
                          .values(state=state, last_reading_at=last_reading_at))
 
+    def save_forecasts(self, rows: Sequence[tuple[int, float, str, dict[str, Any], float | None]]) -> None:
+        """Many (item_id, made_at, state, body, last_reading_at) in one transaction."""
+        if not rows:
+            return
+        with self._write() as conn, conn.begin():
+            conn.execute(insert(forecasts), [
+                {"item_id": i, "made_at": m, "state": s, "eta_s": b.get("eta_s"), "body": json.dumps(b)}
+                for i, m, s, b, _ in rows])
+            for i, _, s, _, last in rows:
+                conn.execute(update(items).where(items.c.id == i).values(state=s, last_reading_at=last))
+
     def latest_forecasts(self) -> list[dict[str, Any]]:
         """The current forecast of each item: dicts with item, state, made_at, forecast (the JSON)."""
         newest = select(func.max(forecasts.c.id)).group_by(forecasts.c.item_id).scalar_subquery()
