@@ -141,7 +141,10 @@ class _Recorder:
         return f"[{local_clock(now)} +{(now - self.scenario.t_start) / 60:5.0f} min]"
 
     def _print(self, line: str) -> None:
-        print(line, file=self.out, flush=True)
+        try:
+            print(line, file=self.out, flush=True)
+        except BrokenPipeError:  # the reader went away (e.g. `| head`): stop printing
+            self.echo = False
 
     def summary(self) -> dict[str, Any]:
         """Per item: how the forecasts made ahead of the true crossing compare with it."""

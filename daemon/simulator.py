@@ -225,6 +225,8 @@ def config_text(scenario: Scenario, *, host: str, port: int, storage_url: str,
             f"name = {_toml_str(s.name)}",
             f"topic = {_toml_str(s.topic)}",
             f"threshold = {s.threshold:g}",
+            # the side of the limit: rising loads must stay below it, cooling ones get below it
+            f'limit = "{"upper" if s.direction == "rising" else "lower"}"',
         ]
         if s.ambient_known is not None:
             lines.append(f"ambient = {s.ambient_known:g}")
