@@ -625,6 +625,38 @@ def _mp(pair) -> str:
     return f"{_fmt(pair[0])} / {_fmt(pair[1])}"
 
 
+def summary_table(summary: dict, cs: list[Check]) -> list[str]:
+    """The short table for the README: one row per curve family and variant, then the others."""
+    def three(fam, var, key):
+        vals = _series(summary, fam, var, key)
+        return " / ".join(_fmt(v) for v in vals) if vals else "-"
+
+    def at50(fam, key):
+        r = summary.get((fam, "clean", 0.5))
+        return _fmt(r[key][0]) if r and key in r else "-"
+
+    lines = ["| family | variant | median error 25 / 50 / 75 % | p90 | 90 % interval coverage | "
+             "linear, LSQ-3 median at 50 % |", "|---|---|---|---|---|---|"]
+    for fam in VARIANT_FAMILIES:
+        for var in VARIANTS:
+            if (fam, var, PROGRESS[0]) not in summary:
+                continue
+            base = f"{at50(fam, 'linear')}, {at50(fam, 'lsq3')}" if var == "clean" else ""
+            lines.append(f"| {fam} | {var} | {three(fam, var, 'median')} | {three(fam, var, 'p90')} | "
+                         f"{three(fam, var, 'cover')} | {base} |")
+    by_target = {c.target: c for c in cs}
+    for name, label in (("regime change", "regime_door"), ("never-crossing asymptote", "asymptote"),
+                        ("healthy cycling cold room", "cycling")):
+        c = by_target.get(name)
+        if c is not None:
+            lines.append(f"| {label} | {c.figure} | {c.shown()} | | | |")
+    n_pass = sum(1 for c in cs if c.ok)
+    n_fail = sum(1 for c in cs if c.ok is False)
+    lines += ["", f"Targets of issue 6, section 3: {n_pass} pass, {n_fail} fail "
+              f"({len(cs) - n_pass - n_fail} not measurable)."]
+    return lines
+
+
 def targets_table(cs: list[Check]) -> list[str]:
     lines = ["| target (issue 6, section 3) | figure | measured at 25 / 50 / 75 % | limit | result |",
              "|---|---|---|---|---|"]
@@ -716,10 +748,10 @@ def markdown(summary: dict, cs: list[Check], meta: dict) -> str:
         "Forecasts support decisions; they are not a food-safety plan or a regulatory record. "
         "Local codes and licensed practice decide the limits and actions.",
         "",
-        "## Targets",
+        "## Summary",
         "",
     ]
-    body = targets_table(cs) + ["", "## Per family", ""] + detail_table(summary) + other_tables(summary)
+    body = summary_table(summary, cs) + ["", "## Targets", ""] + targets_table(cs) + ["", "## Per family", ""] + detail_table(summary) + other_tables(summary)
     tail = ["", "## Scenario parameters (fixed before any result was seen)", ""] + params_table() + [
         "", f"All readings quantised to {QUANTUM:g} degC, sampling jitter +-{100 * IRREGULAR:.0f} %. "
         f"Spikes: {100 * SPIKES['spike_frac']:g} % of readings, +-{SPIKES['spike_size']:g} degC "
@@ -732,6 +764,31 @@ def markdown(summary: dict, cs: list[Check], meta: dict) -> str:
 def _legend(ax) -> None:
     if ax.get_legend_handles_labels()[0]:
         ax.legend(fontsize=7)
+
+
+README_BEGIN = "<!-- bench_forecast: begin (written by scripts/bench_forecast.py --readme) -->"
+README_END = "<!-- bench_forecast: end -->"
+
+
+def readme_block(summary: dict, cs: list[Check], meta: dict) -> str:
+    lines = [README_BEGIN,
+             f"Measured by `{meta['command']}` ({meta['elapsed_s']:.0f} s, seed {meta['seed']}, "
+             f"tree {meta['commit']}); errors at 25 / 50 / 75 % of the time to the true crossing:",
+             ""] + summary_table(summary, cs) + [
+             "", "![median ETA error per family](docs/bench_forecast.png)", "",
+             "Every target, the Cramer-Rao ratios, the baselines and the scenario ranges: "
+             "[docs/bench_forecast.md](docs/bench_forecast.md).", README_END]
+    return "\n".join(lines)
+
+
+def update_readme(path: Path, block: str) -> str | None:
+    """Replace the text between the bench's markers in README.md; an error message or None."""
+    text = path.read_text()
+    i, j = text.find(README_BEGIN), text.find(README_END)
+    if i < 0 or j < i:
+        return f"{path}: the bench's markers are missing; add them to its section first"
+    path.write_text(text[:i] + block + text[j + len(README_END):])
+    return None
 
 
 def plot(summary: dict, path: Path) -> None:
@@ -830,6 +887,8 @@ def parse_args(argv: list[str] | None) -> argparse.Namespace:
     ap.add_argument("--seed", type=int, default=2026)
     ap.add_argument("--families", help=f"comma list of: {', '.join(FAMILIES)}")
     ap.add_argument("--jobs", type=int, default=1, help="worker processes (default 1)")
+    ap.add_argument("--readme", action="store_true",
+                    help="also rewrite the table in README.md (between the bench's markers)")
     ap.add_argument("--out", default=str(Path(__file__).resolve().parent.parent / "docs"),
                     help="folder for bench_forecast.md and bench_forecast.png")
     args = ap.parse_args(argv)
@@ -862,6 +921,11 @@ def bench(args: argparse.Namespace) -> tuple[dict, list[Check], str]:
     text = markdown(summary, cs, meta)
     (out / "bench_forecast.md").write_text(text)
     plot(summary, out / "bench_forecast.png")
+    if args.readme:
+        err = update_readme(Path(__file__).resolve().parent.parent / "README.md",
+                            readme_block(summary, cs, meta))
+        if err:
+            print(f"bench_forecast: {err}", file=sys.stderr)
     crashed = sum(r["crashed"] for r in summary.values())
     n_pass = sum(1 for c in cs if c.ok)
     n_fail = sum(1 for c in cs if c.ok is False)
