@@ -246,6 +246,7 @@ def _run(args: argparse.Namespace, workdir: Path) -> int:
     logging.captureWarnings(True)
     out = sys.stdout
     broker = None
+    config = None
     service = None
     sim = None
     alerts_client = None
@@ -273,6 +274,9 @@ def _run(args: argparse.Namespace, workdir: Path) -> int:
         if broker is not None:
             # amqtt speaks MQTT 3.1.1 only, and does not answer an MQTT 5 CONNECT at all
             text = text.replace("[broker]\n", '[broker]\nprotocol = "3.1.1"\n', 1)
+        else:
+            # someone else's broker: leave no week-long session behind
+            text = text.replace("[broker]\n", "[broker]\nsession_expiry = 60\n", 1)
         text += f'\n[publish]\ntopic_prefix = "{DEMO_PREFIX}/forecast"\nstatus_topic = "{DEMO_PREFIX}/status"\n'
         cfg_path.write_text(text, encoding="utf-8")
         config = load_config(cfg_path)
@@ -325,6 +329,8 @@ def _run(args: argparse.Namespace, workdir: Path) -> int:
         if service is not None:
             service.stop()
         if alerts_client is not None:
+            if broker is None and config is not None:
+                _clear_retained(alerts_client, config)
             alerts_client.disconnect()
             alerts_client.loop_stop()
         if broker is not None:
@@ -332,6 +338,15 @@ def _run(args: argparse.Namespace, workdir: Path) -> int:
         logging.captureWarnings(False)
         root.removeHandler(handler)
         handler.close()
+
+
+def _clear_retained(client, config) -> None:
+    """Remove the demo's retained forecasts and status from a broker that is not ours."""
+    infos = [client.publish(f"{config.publish.topic_prefix}/{it.name}", b"", qos=1, retain=True)
+             for it in config.items]
+    infos.append(client.publish(config.publish.status_topic, b"", qos=1, retain=True))
+    for info in infos:
+        info.wait_for_publish(2.0)
 
 
 def _wait(stop: threading.Event, end_at: float | None, sim) -> None:
