@@ -196,7 +196,7 @@ def _alert_subscriber(host: str, port: int, prefix: str, recorder: _Recorder):
     def on_message(client, userdata, msg):
         try:
             recorder.on_alert(msg.topic, msg.payload)
-        except Exception:  # noqa: BLE001 - never let a print kill paho's thread
+        except Exception:
             logging.getLogger("thermeta.demo").exception("alert line failed")
 
     c.on_connect, c.on_message = on_connect, on_message

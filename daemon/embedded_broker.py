@@ -53,7 +53,7 @@ class EmbeddedBroker:
             "plugins": {"amqtt.plugins.authentication.AnonymousAuthPlugin": {"allow_anonymous": True}},
         }
 
-    def start(self, timeout_s: float = 10.0) -> "EmbeddedBroker":
+    def start(self, timeout_s: float = 10.0) -> EmbeddedBroker:
         """Start the broker thread; return once it accepts connections (raise RuntimeError if not)."""
         if self._thread is not None:
             raise RuntimeError("embedded broker already started")
@@ -71,7 +71,7 @@ class EmbeddedBroker:
                     await self._broker.start()
 
                 loop.run_until_complete(boot())
-            except Exception as exc:  # reported to the starting thread, which raises it
+            except Exception as exc:  # noqa: BLE001 - reported to the starting thread, which raises it
                 ready.set_exception(exc)
                 loop.close()
                 return
@@ -104,7 +104,7 @@ class EmbeddedBroker:
             fut = asyncio.run_coroutine_threadsafe(broker.shutdown(), loop)
             try:
                 fut.result(timeout_s)
-            except Exception as exc:  # shutting down: log it, still stop the loop
+            except Exception as exc:  # noqa: BLE001 - shutting down: log it, still stop the loop
                 log.warning("embedded broker shutdown: %s", exc)
         if loop.is_running():
             loop.call_soon_threadsafe(loop.stop)
@@ -113,7 +113,7 @@ class EmbeddedBroker:
         self._loop = None
         self._broker = None
 
-    def __enter__(self) -> "EmbeddedBroker":
+    def __enter__(self) -> EmbeddedBroker:
         return self.start()
 
     def __exit__(self, *exc: object) -> None:

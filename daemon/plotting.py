@@ -17,11 +17,10 @@ from __future__ import annotations
 
 import io
 import math
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from typing import Any, Protocol
 
 import numpy as np
-
 from thermeta.predictors.result import Forecast
 
 WIDTH_PX, HEIGHT_PX, DPI = 1000, 560, 100
@@ -145,14 +144,14 @@ def _conduction_curve(fc: Forecast, t: np.ndarray, series: Any) -> np.ndarray | 
 
 
 def _local_tz():
-    return datetime.now(timezone.utc).astimezone().tzinfo
+    return datetime.now(UTC).astimezone().tzinfo
 
 
 def _to_dates(t: np.ndarray) -> np.ndarray:
     """Epoch seconds to matplotlib date numbers (days since 1970-01-01 UTC)."""
     import matplotlib.dates as mdates
 
-    return np.asarray(t, float) / 86400.0 + mdates.date2num(datetime(1970, 1, 1, tzinfo=timezone.utc))
+    return np.asarray(t, float) / 86400.0 + mdates.date2num(datetime(1970, 1, 1, tzinfo=UTC))
 
 
 def _span_end(fc: Forecast, t_last: float, span_s: float) -> float:
@@ -171,7 +170,6 @@ def forecast_figure(series: SeriesLike, fc: Forecast, *, unit: str = "C", title:
     import matplotlib.dates as mdates
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
-
     from thermeta.daemon.timefmt import human_duration, local_clock
 
     conv = convert or (lambda v: v)
@@ -232,7 +230,7 @@ def forecast_figure(series: SeriesLike, fc: Forecast, *, unit: str = "C", title:
     tz = _local_tz()
     ax.xaxis.set_major_locator(mdates.AutoDateLocator(tz=tz, minticks=4, maxticks=9))
     ax.xaxis.set_major_formatter(mdates.DateFormatter("%H:%M", tz=tz))
-    day = datetime.fromtimestamp(t_last, tz=timezone.utc).astimezone().strftime("%Y-%m-%d %Z")
+    day = datetime.fromtimestamp(t_last, tz=UTC).astimezone().strftime("%Y-%m-%d %Z")
     ax.set_xlabel(f"local time ({day})")
     ax.set_ylabel(f"temperature ({sign})")
     ax.grid(True, alpha=0.3)

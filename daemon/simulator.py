@@ -24,7 +24,6 @@ from typing import Protocol
 from thermeta.predictors.result import rfc3339
 from thermeta.predictors.scenarios import Scenario
 
-
 MAX_PENDING = 2000  # unacknowledged QoS 1 publishes before we wait (paho's ids wrap at 65,535)
 
 
@@ -173,7 +172,7 @@ class Simulator:
             client.loop_stop()
         return self.stats
 
-    def start(self) -> "Simulator":
+    def start(self) -> Simulator:
         self._thread = threading.Thread(target=self.run, name="thermeta-simulator", daemon=True)
         self._thread.start()
         return self

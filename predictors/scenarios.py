@@ -28,7 +28,6 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
-
 from thermeta.predictors import synth
 from thermeta.predictors.conduction_series import theta_centre
 from thermeta.predictors.synth import Corruption
@@ -473,7 +472,7 @@ def build(name: str, *, seed: int = 0, t_start: float = T_START,
     sites = {key: SITES[key]() for key in keys}
     # on one timeline every site keeps sending until the longest story has played out
     longest = duration_s or max(site.duration_s for site in sites.values())
-    for key, site in sites.items():
+    for site in sites.values():
         dur = longest
         titles.append(site.title)
         events += [(t_start + s, text) for s, text in site.events]

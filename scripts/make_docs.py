@@ -55,7 +55,6 @@ def capture_dashboard(seconds: float, speed: float, width: int, height: int) -> 
 
 def reefer_plot() -> Path:
     import numpy as np
-
     from thermeta.daemon.plotting import _Series, plot_forecast
     from thermeta.predictors import forecast
     from thermeta.predictors import scenarios as S

@@ -8,14 +8,13 @@ import struct
 import subprocess
 import sys
 import time
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from zoneinfo import ZoneInfo
 
 import numpy as np
 import pytest
 from matplotlib.collections import PolyCollection
 from matplotlib.lines import Line2D
-
 from thermeta.daemon import plotting as P
 from thermeta.predictors import forecast
 from thermeta.predictors import scenarios as S
@@ -55,7 +54,7 @@ def test_png_size_and_the_parts_of_the_figure():
     """A wort forecast renders to a 1000 x 560 px PNG; its axes hold one threshold line at the
     threshold, a non-empty 90 % band, the crossing marker at the forecast crossing time, the fit
     and forecast curves, and axis labels with units."""
-    sc, p, series, fc = _case("wort-chill", "copperbeck/brewhouse/batch-0417/wort", 0.3, "known")
+    _, _, series, fc = _case("wort-chill", "copperbeck/brewhouse/batch-0417/wort", 0.3, "known")
     assert fc.ok and fc.eta_s and fc.eta_s > 0
     fig = P.forecast_figure(series, fc, title="wort")
     data = P.figure_png(fig)
@@ -80,7 +79,7 @@ def test_png_size_and_the_parts_of_the_figure():
 def test_drawn_curve_crosses_the_threshold_at_the_forecast_eta(case):
     """The drawn forecast curve (lumped known, measured air, and the slab centre probe) meets the
     threshold within 2 % of the forecast's ETA, and the band meets it at the interval's ends."""
-    sc, p, series, fc = _case(*case)
+    _, p, series, fc = _case(*case)
     assert fc.ok and fc.eta_s and fc.eta_s > 0, fc.reason
     t = np.linspace(fc.t_last, fc.t_last + 3 * fc.eta_s, 3000)
     y = P.model_curve(fc, t, series)
@@ -119,9 +118,9 @@ def test_times_are_local_time():
     os.environ["TZ"] = "Asia/Kolkata"
     time.tzset()
     try:
-        sc, p, series, fc = _case("wort-chill", "copperbeck/brewhouse/batch-0417/wort", 0.3, "known")
+        _, _, series, fc = _case("wort-chill", "copperbeck/brewhouse/batch-0417/wort", 0.3, "known")
         fig = P.forecast_figure(series, fc)
-        want = datetime.fromtimestamp(fc.crossing_t, tz=timezone.utc).astimezone(
+        want = datetime.fromtimestamp(fc.crossing_t, tz=UTC).astimezone(
             ZoneInfo("Asia/Kolkata")).strftime("%H:%M")
         (mark,) = _by_gid(fig, "crossing")
         assert want in mark.get_label()

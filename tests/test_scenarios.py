@@ -7,7 +7,6 @@ import math
 import numpy as np
 import pytest
 from scipy.integrate import solve_ivp
-
 from thermeta.predictors import scenarios as S
 from thermeta.predictors import synth
 from thermeta.predictors.conduction_series import theta_centre
@@ -19,13 +18,14 @@ def _ode_reference(pieces, air0, load0, kl, t_eval):
     y = [air0, load0]
     bounds = [p[0] for p in pieces[1:]] + [t_eval[-1] + 1.0]
     for (s, u, ka), end in zip(pieces, bounds):
+        def rhs(t, z, u=u, ka=ka):
+            return [-ka * (z[0] - u), -kl * (z[1] - z[0])]
+
         sel = t_eval[(t_eval >= s) & (t_eval < end)]
-        sol = solve_ivp(lambda t, z: [-ka * (z[0] - u), -kl * (z[1] - z[0])], (s, end), y,
-                        t_eval=sel, rtol=1e-10, atol=1e-10, method="DOP853")
+        sol = solve_ivp(rhs, (s, end), y, t_eval=sel, rtol=1e-10, atol=1e-10, method="DOP853")
         out.append(sol.y)
-        y = [float(v) for v in solve_ivp(
-            lambda t, z: [-ka * (z[0] - u), -kl * (z[1] - z[0])], (s, end), y, rtol=1e-10,
-            atol=1e-10, method="DOP853").y[:, -1]]
+        y = [float(v) for v in solve_ivp(rhs, (s, end), y, rtol=1e-10, atol=1e-10,
+                                         method="DOP853").y[:, -1]]
     return np.concatenate(out, axis=1)
 
 
@@ -44,7 +44,7 @@ def test_two_stage_equal_rates_limit():
     """With the air and load rates equal, the t e^(-kt) limit is used and still matches solve_ivp."""
     pieces = [(0.0, 30.0, 1 / 3600)]
     t = np.linspace(0, 5 * 3600, 50)
-    air, load = S.two_stage(t, pieces, 2.0, 2.0, 1 / 3600)
+    _, load = S.two_stage(t, pieces, 2.0, 2.0, 1 / 3600)
     ref = _ode_reference(pieces, 2.0, 2.0, 1 / 3600, t)
     assert np.allclose(load, ref[1], atol=1e-7)
 

@@ -12,7 +12,6 @@ import time
 
 import numpy as np
 import pytest
-
 from thermeta.daemon import simulator as sim
 from thermeta.daemon.clock import ScaledClock
 from thermeta.daemon.config import load_config
