@@ -183,9 +183,8 @@ class MqttLink:
                 self.counts["dropped"] += 1
                 return
             self.counts["received"] += 1
-            self.deliver(Inbound(topic=msg.topic, payload=bytes(msg.payload),
-                                 received_at=self.clock.now(), mid=msg.mid, qos=msg.qos,
-                                 generation=self.generation))
+            self.deliver(Inbound(msg.topic, msg.payload, self.clock.now(), msg.mid, msg.qos,
+                                 self.generation))
         except Exception:  # noqa: BLE001 - never let one message stop the network thread
             log.exception("error handing on a message from %s", getattr(msg, "topic", "?"))
 

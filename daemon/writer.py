@@ -16,7 +16,7 @@ import threading
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, NamedTuple
 
 from thermeta.daemon.clock import Clock
 from thermeta.daemon.config import Config, ItemConfig
@@ -31,9 +31,9 @@ IDLE_FLUSH_S = 0.005
 DEAD_LOG_EVERY_S = 10.0
 
 
-@dataclass(frozen=True)
-class Inbound:
-    """One received message, with what is needed to acknowledge it later."""
+class Inbound(NamedTuple):
+    """One received message, with what is needed to acknowledge it later (a tuple: made once
+    per message on the network thread, so it must be cheap)."""
 
     topic: str
     payload: bytes
