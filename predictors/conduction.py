@@ -21,7 +21,6 @@ from typing import Any
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy.optimize import least_squares
-
 from thermeta.predictors import conduction_eta as ceta
 from thermeta.predictors.conduction_ambient import AmbientFn, make_ambient_fn, ramp_part
 from thermeta.predictors.conduction_series import (
@@ -43,18 +42,18 @@ N_DRAWS = 400
 _BI_GRID = (0.01, 0.06, 0.3, 1.0, 3.0, 10.0, 40.0)
 _K_SPAN_GRID = tuple(np.geomspace(0.03, 30.0, 11))
 INTERVAL_METHOD = (
-    "delta method by simulation: draws from the fit's asymptotic normal s^2 (J'J)^-1 "
-    "pushed through the exact crossing time"
+    "delta method by simulation: draws from the fit's sampling distribution (multivariate t, "
+    "scale s^2 (J'J)^-1) pushed through the exact crossing time"
 )
 
 __all__ = [
     "GEOMETRIES",
-    "SHAPE_FACTOR",
     "INTERVAL_METHOD",
+    "SHAPE_FACTOR",
     "ConductionFit",
+    "aicc",
     "fit_conduction",
     "select_geometry",
-    "aicc",
 ]
 
 
@@ -374,7 +373,8 @@ def _fit_curve(curve: _Curve, t: Float, y: Float) -> ConductionFit:
     fit.lag_factor_j = float(c1)
     fit.value_at_last = float(curve.full(p, t[-1:])[0])
     fit.cov = _covariance(curve, p, t, rss, n)
-    fit._draws = ceta.draw_params(p, fit.cov, N_DRAWS) if fit.cov is not None else None
+    fit._draws = (ceta.draw_params(p, fit.cov, N_DRAWS, dof=n - p.size)
+                  if fit.cov is not None else None)
     if fit._draws is not None:
         # Keep draws inside the eigen-solver's range (beyond it nothing changes in the curve).
         fit._draws[:, n_lin] = np.clip(fit._draws[:, n_lin], math.log(1.0001 * BIOT_MIN),

@@ -6,7 +6,8 @@ bisection in Fo, vectorised over parameter draws.  Measured (time-varying) ambie
 stepped forward on a geometric grid and the first crossing refined with brentq.
 
 Interval: the delta method by simulation (Krinsky-Robb): parameter vectors drawn from the fit's
-asymptotic normal N(p_hat, s^2 (J'J)^-1) are pushed through the exact, nonlinear crossing-time
+sampling distribution (multivariate t, n - p degrees of freedom, scale s^2 (J'J)^-1) are pushed
+through the exact, nonlinear crossing-time
 map; the 5th and 95th percentiles bound the 90 % interval, and the upper end is unbounded when
 more than 5 % of the draws never cross.
 """
@@ -18,7 +19,6 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 from numpy.typing import NDArray
-
 from thermeta.predictors.conduction_series import (
     N_TERMS,
     centre_coefficients,
@@ -123,15 +123,22 @@ def etas(curve: _Curve, p: Float, threshold: float, t_now: float, span_s: float)
     return etas_constant(curve, p, threshold, t_now)
 
 
-def draw_params(p_hat: Float, cov: Float, n: int, seed: int = 20260101) -> Float | None:
-    """Draws from N(p_hat, cov) (seeded, so a refit of the same data gives the same interval)."""
+def draw_params(
+    p_hat: Float, cov: Float, n: int, dof: int | None = None, seed: int = 20260101
+) -> Float | None:
+    """Draws from the fit's sampling distribution: multivariate t with ``dof`` = n_points - p
+    degrees of freedom (the noise sd is itself estimated) and scale ``cov``; normal if dof is
+    None.  Seeded, so a refit of the same data gives the same interval."""
     if cov is None or not np.all(np.isfinite(cov)):
         return None
     rng = np.random.default_rng(seed)
     try:
-        return rng.multivariate_normal(p_hat, cov, size=n, method="eigh")
+        z = rng.multivariate_normal(np.zeros(p_hat.size), cov, size=n, method="eigh")
     except (np.linalg.LinAlgError, ValueError):
         return None
+    if dof is not None and dof >= 1:
+        z = z / np.sqrt(rng.chisquare(dof, size=n) / dof)[:, None]
+    return p_hat + z
 
 
 def quantiles_90(values: Float) -> tuple[float | None, float | None]:

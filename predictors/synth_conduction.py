@@ -14,7 +14,6 @@ import numpy as np
 from numpy.typing import NDArray
 from scipy.integrate import solve_ivp
 from scipy.optimize import brentq
-
 from thermeta.predictors.conduction_series import GEOMETRIES, theta_centre
 from thermeta.predictors.synth import T_START, Corruption, Synth, corrupt, sample_times
 

@@ -6,9 +6,9 @@ import math
 
 import numpy as np
 import pytest
-
 from thermeta.predictors import synth
-from thermeta.predictors.conduction import SHAPE_FACTOR, fit_conduction, select_geometry
+from thermeta.predictors.conduction import SHAPE_FACTOR, _Curve, fit_conduction, select_geometry
+from thermeta.predictors.conduction_ambient import make_ambient_fn
 from thermeta.predictors.conduction_series import theta_centre
 from thermeta.predictors.synth import Corruption
 from thermeta.predictors.synth_conduction import centre_mol, core_probe
@@ -18,8 +18,8 @@ NOISY = Corruption(noise=0.1, quantum=0.1)
 
 def _chill(seed: int, geometry: str, bi: float, **kw) -> synth.Synth:
     """Cooked food at 70 degC into a 2 degC chiller, threshold 21 degC, seen half-way in time."""
-    args = dict(geometry=geometry, biot=bi, a_per_s=1 / 30000, t_i=70.0, ambient=2.0,
-                threshold=21.0, seen_fraction=0.5, dt_s=30.0, corruption=NOISY)
+    args = {"geometry": geometry, "biot": bi, "a_per_s": 1 / 30000, "t_i": 70.0, "ambient": 2.0,
+            "threshold": 21.0, "seen_fraction": 0.5, "dt_s": 30.0, "corruption": NOISY}
     args.update(kw)
     return core_probe(seed, **args)
 
@@ -45,7 +45,7 @@ def test_fitted_ambient_recovers_crossing():
     s = _chill(12, "sphere", 2.0)
     fit = fit_conduction(s.t, s.y, "sphere")
     assert fit.ok and fit.ambient_mode == "fitted"
-    eta, lo, hi = fit.time_to_threshold(21.0)
+    eta, _, _ = fit.time_to_threshold(21.0)
     assert eta == pytest.approx(s.eta_true_s, rel=0.05)
     assert fit.Ta == pytest.approx(2.0, abs=1.5)
     assert fit.ambient_lo < fit.Ta < fit.ambient_hi
@@ -78,7 +78,7 @@ def test_measured_ambient_matches_method_of_lines():
     ref = centre_mol("slab", 0.8, t_rel / 20000,
                      lambda f: 5.0 + 20.0 * (1 - np.exp(-f * 20000 / 7200)), t_i=2.0)
     np.testing.assert_allclose(model, ref, atol=0.01)
-    eta, lo, hi = fit.time_to_threshold(8.0)
+    eta, _, _ = fit.time_to_threshold(8.0)
     assert eta == pytest.approx(s.eta_true_s, rel=0.08)
 
 
@@ -98,6 +98,24 @@ def test_small_biot_fit_is_the_lumped_fit(geometry):
     assert eta == pytest.approx(s.eta_true_s, rel=0.05)
 
 
+def test_noisy_measured_ambient_matches_method_of_lines():
+    """An air probe with 0.3 degC noise: the Duhamel superposition (piecewise-linear ambient)
+    agrees with solve_ivp driven by the same noisy series to 0.02 degC, so the newest noisy
+    ambient reading does not leak into the centre temperature (the sphere, whose series does not
+    converge at Fo = 0, is the hard case)."""
+    rng = np.random.default_rng(31)
+    a_per_s = 1 / 5000
+    at = np.arange(0.0, 5000.0, 60.0) + synth.T_START
+    ay = 2.0 + rng.normal(0.0, 0.3, at.size)
+    t = np.arange(0.0, 4800.0, 30.0) + synth.T_START
+    fn, _ = make_ambient_fn(at, ay)
+    curve = _Curve("sphere", "measured", float(t[0]), float(t[-1] - t[0]), None, fn, False)
+    model = curve.full(np.array([70.0, math.log(5.0), math.log(a_per_s)]), t)
+    ref = centre_mol("sphere", 5.0, (t - t[0]) * a_per_s,
+                     lambda f: np.interp(f / a_per_s + t[0], at, ay), t_i=70.0, n_cells=60)
+    np.testing.assert_allclose(model, ref, atol=0.02)
+
+
 def test_never_reaching_and_already_past():
     """A threshold beyond the ambient is never reached (None); one behind the newest value is
     already past (0)."""
@@ -112,7 +130,7 @@ def test_unbounded_interval_when_ambient_is_uncertain():
     some plausible curves never cross: the interval's upper end is None, not a made-up number."""
     s = _chill(15, "sphere", 2.0, seen_fraction=0.15, threshold=4.0)
     fit = fit_conduction(s.t, s.y, "sphere")
-    eta, lo, hi = fit.time_to_threshold(4.0)
+    _, _, hi = fit.time_to_threshold(4.0)
     assert hi is None
 
 
@@ -121,7 +139,7 @@ def test_soft_known_ambient_widens_interval():
     s = _chill(16, "slab", 1.0)
     exact = fit_conduction(s.t, s.y, "slab", ambient=2.0)
     soft = fit_conduction(s.t, s.y, "slab", ambient=2.0, ambient_sd=2.0)
-    e1, lo1, hi1 = exact.time_to_threshold(21.0)
+    _, lo1, hi1 = exact.time_to_threshold(21.0)
     e2, lo2, hi2 = soft.time_to_threshold(21.0)
     assert soft.ambient_mode == "known"
     assert (hi2 - lo2) > 1.5 * (hi1 - lo1)
@@ -179,16 +197,16 @@ def test_fit_agrees_with_lmfit():
 
 
 def test_interval_coverage_known_ambient():
-    """Over 80 seeded sphere/slab/cylinder cases (Bi 0.3-5) with the ambient known, the 90 %
-    interval covers the true crossing in 80-98 % of them (measured 87.5 % when written)."""
+    """Over 60 seeded sphere/slab/cylinder cases (Bi 0.3-5) with the ambient known, the 90 %
+    interval covers the true crossing in 80-98 % of them (measured 90 % when written)."""
     rng = np.random.default_rng(7)
     hits = 0
-    n = 80
+    n = 60
     for i in range(n):
         g = ("slab", "cylinder", "sphere")[i % 3]
         bi = float(np.exp(rng.uniform(np.log(0.3), np.log(5.0))))
         s = _chill(100 + i, g, bi, seen_fraction=float(rng.uniform(0.3, 0.6)), dt_s=60.0)
-        eta, lo, hi = fit_conduction(s.t, s.y, g, ambient=2.0).time_to_threshold(21.0)
+        _, lo, hi = fit_conduction(s.t, s.y, g, ambient=2.0).time_to_threshold(21.0)
         hits += (lo is not None) and (hi is not None) and lo <= s.eta_true_s <= hi
     assert 0.80 <= hits / n <= 0.98
 

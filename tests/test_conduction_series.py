@@ -6,7 +6,6 @@ import numpy as np
 import pytest
 from scipy.optimize import brentq
 from scipy.special import j0, j1
-
 from thermeta.predictors.conduction_series import (
     FO_CUT,
     GEOMETRIES,
