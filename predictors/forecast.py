@@ -17,7 +17,14 @@ import numpy as np
 from numpy.typing import ArrayLike
 from thermeta.predictors.cleaning import clean, residual_outliers
 from thermeta.predictors.lumped import LumpedFit, fit_lumped
-from thermeta.predictors.measured import fit_air, fit_measured, measured_rss, steady_air
+from thermeta.predictors.measured import (
+    air_identified,
+    fit_air,
+    fit_measured,
+    held_air,
+    measured_rss,
+    steady_air,
+)
 from thermeta.predictors.regime import find_regime
 from thermeta.predictors.result import Forecast
 
@@ -194,7 +201,13 @@ def _measured(fc, tt, yy, thr, air, limit=None, detect=True, noise_sd=0.0,
         fc.warnings.append("the ambient cycles (a thermostat?); its mean is carried forward")
     else:
         a_fit = fit_air(at[reg.start_index:], ay[reg.start_index:], air.noise_sd)
-    fit = fit_measured(tt, yy, at, ay, thr, air_fit=a_fit, limit=limit)
+    spread = None
+    if a_fit.ok and not air_identified(a_fit):
+        # where the air is heading is not clear yet (a short stretch, an off-cycle): the point
+        # forecast holds it at its present level; the interval keeps the fitted trend's doubt
+        spread, a_fit = a_fit, held_air(a_fit)
+        fc.warnings.append("the ambient's trend is not clear yet; held at its present level")
+    fit = fit_measured(tt, yy, at, ay, thr, air_fit=a_fit, limit=limit, air_spread=spread)
     if not fit.ok:
         fc.ok, fc.reason = False, fit.reason
         return fc
@@ -211,14 +224,15 @@ def _measured(fc, tt, yy, thr, air, limit=None, detect=True, noise_sd=0.0,
                 f"newest {tt.size - load_reg.start_index} readings only")
             tt, yy = tt[load_reg.start_index:], yy[load_reg.start_index:]
             fc.regime_start = float(tt[0])
-            fit = fit_measured(tt, yy, at, ay, thr, air_fit=a_fit, limit=limit)
+            fit = fit_measured(tt, yy, at, ay, thr, air_fit=a_fit, limit=limit, air_spread=spread)
             if not fit.ok:
                 fc.ok, fc.reason = False, fit.reason
                 return fc
     out = residual_outliers(fit.residuals, 4.0, floor=max(air.quantum, 1e-3 * float(np.ptp(yy)), 1e-9))
     if 0 < out.sum() <= max(1, int(0.1 * tt.size)):
         fc.n_outliers += int(out.sum())
-        fit = fit_measured(tt[~out], yy[~out], at, ay, thr, air_fit=a_fit, limit=limit)
+        fit = fit_measured(tt[~out], yy[~out], at, ay, thr, air_fit=a_fit, limit=limit,
+                           air_spread=spread)
     fc.k_per_s, fc.k_lo_per_s, fc.k_hi_per_s = fit.k_per_s, fit.k_lo, fit.k_hi
     if a_fit.ok:
         fc.ambient, fc.ambient_lo, fc.ambient_hi = a_fit.ambient, a_fit.ambient_lo, a_fit.ambient_hi
@@ -234,7 +248,7 @@ def _measured(fc, tt, yy, thr, air, limit=None, detect=True, noise_sd=0.0,
     if a_fit.ok:
         fc.params.update(air_ambient=a_fit.ambient, air_k_per_s=a_fit.k_per_s,
                          air_value_now=a_fit.value_fit_now)
-    if not (reg.cycling and reg.start_index == 0):
+    if not (reg.cycling and reg.start_index == 0) and spread is None:
         fc.warnings.append("ambient measured; its asymptote is fitted from the ambient readings")
     if fc.eta_s is None:
         fc.warnings.append(never_reason(fc))

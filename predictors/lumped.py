@@ -189,6 +189,7 @@ class LumpedFit:
     residuals: np.ndarray = field(default_factory=lambda: np.zeros(0))
     n: int = 0
     cov: np.ndarray | None = None  # set by callers that need it (the measured-ambient forecast)
+    bounds: tuple[float, float] = (-math.inf, math.inf)  # the plausible range the ambient had
 
     def curve(self, t: np.ndarray) -> np.ndarray:
         """T(t) = a + b e^(-k (t - t_first))."""
@@ -312,7 +313,7 @@ def fit_lumped(
     fit = LumpedFit(
         True, k_per_s=k_hat, ambient=a_hat + ybar, amplitude=b_hat, t_first=float(t[0]),
         t_last=float(t[-1]), value_fit_now=float(fit_y[-1] + ybar), rss=r_hat, dof=dof,
-        sigma=math.sqrt(r_hat / dof), residuals=yc - fit_y, n=n,
+        sigma=math.sqrt(r_hat / dof), residuals=yc - fit_y, n=n, bounds=(lo + ybar, hi + ybar),
     )
     fit.eta_s, fit.direction = crossing_eta(fit.value_fit_now, fit.ambient, k_hat, threshold,
                                             value_start=a_hat + b_hat + ybar, limit=limit)

@@ -89,7 +89,8 @@ def first_crossing(T_now: float, k: float, air_now: float, out: float, ka: float
 
 
 def fit_measured(t: np.ndarray, y: np.ndarray, air_t: np.ndarray, air_y: np.ndarray, threshold: float,
-                 *, air_fit: LumpedFit, limit: str | None = None) -> MeasuredFit:
+                 *, air_fit: LumpedFit, limit: str | None = None,
+                 air_spread: LumpedFit | None = None) -> MeasuredFit:
     """Fit k and T0 with the measured air; forecast with the air's own fit ``air_fit``."""
     n = t.size
     if n < 4:
@@ -154,31 +155,58 @@ def fit_measured(t: np.ndarray, y: np.ndarray, air_t: np.ndarray, air_y: np.ndar
 
     p0 = np.array([fit.value_fit_now, math.log(k), air_now, out, math.log(max(ka, 1e-12))])
     fit.eta_s = eta_of(p0)
-    if fit.eta_s in (None, 0.0):
-        fit.eta_lo_s = fit.eta_hi_s = fit.eta_s
-        if fit.eta_s is None:
-            fit.eta_lo_s = None
+    if fit.eta_s == 0.0:
+        fit.eta_lo_s = fit.eta_hi_s = 0.0
         return fit
     # 90 % interval: the 5th-95th percentiles of eta over parametric draws from both fits
-    # (load: T_now and log k; air: Tout, amplitude, log ka), treated as independent
+    # (load: T_now and log k; air: Tout, amplitude, log ka), treated as independent.  The draws
+    # use ``air_spread`` when given (a held air whose trend is not yet clear keeps its doubt).
+    spread = air_spread if air_spread is not None else air_fit
     G = np.array([[P[0, pos][-1], dlogk[-1]], [0.0, 1.0]])  # (T0, log k) -> (T_now, log k)
     cov_now = G @ cov @ G.T
-    if air_fit.cov is None:
-        fit.eta_lo_s, fit.eta_hi_s = 0.0, None
+    if spread.cov is None or not np.all(np.isfinite(spread.cov)):
+        fit.eta_lo_s, fit.eta_hi_s = (None, None) if fit.eta_s is None else (0.0, None)
         return fit
     rng = np.random.default_rng(DRAW_SEED)
     load = rng.multivariate_normal([fit.value_fit_now, math.log(k)], cov_now, N_DRAWS,
                                    check_valid="ignore", method="eigh")
-    airp = rng.multivariate_normal([out, air_fit.amplitude, math.log(max(ka, 1e-15))],
-                                   air_fit.cov, N_DRAWS, check_valid="ignore", method="eigh")
+    ka_s = spread.k_per_s
+    airp = rng.multivariate_normal([spread.ambient, spread.amplitude, math.log(max(ka_s, 1e-15))],
+                                   spread.cov, N_DRAWS, check_valid="ignore", method="eigh")
     a_out, a_amp, a_k = airp[:, 0], airp[:, 1], np.exp(airp[:, 2])
-    a_now = a_out + a_amp * np.exp(-a_k * (air_fit.t_last - air_fit.t_first))
+    a_now = a_out + a_amp * np.exp(-a_k * (spread.t_last - spread.t_first))
     etas = crossings(load[:, 0], np.exp(load[:, 1]), a_now, a_out, a_k, threshold, past,
                      horizon_s=60.0 / max(min(k, ka if ka > 0 else k), 1e-12))
+    etas = np.where(np.isnan(etas), np.inf, etas)
     lo_e, hi_e = np.percentile(etas, [5.0, 95.0])
+    if fit.eta_s is None:
+        fit.eta_lo_s = float(lo_e) if math.isfinite(lo_e) else None
+        fit.eta_hi_s = None
+        return fit
     fit.eta_lo_s = float(min(lo_e, fit.eta_s))
     fit.eta_hi_s = None if not math.isfinite(hi_e) else float(max(hi_e, fit.eta_s))
     return fit
+
+
+def air_identified(fit: LumpedFit) -> bool:
+    """Whether the air's own fit pins down where it is heading: its asymptote known to within
+    +-50 % of the distance still to go, and its rate bounded away from 0."""
+    if not fit.ok or fit.ambient_lo is None or fit.ambient_hi is None or not fit.k_lo:
+        return False
+    margin = 1e-6 * max(1.0, fit.bounds[1] - fit.bounds[0])
+    if fit.ambient_lo <= fit.bounds[0] + margin or fit.ambient_hi >= fit.bounds[1] - margin:
+        return False  # the range runs into the plausible bounds: not pinned down by the data
+    return fit.ambient_hi - fit.ambient_lo <= abs(fit.ambient - fit.value_fit_now)
+
+
+def held_air(fit: LumpedFit) -> LumpedFit:
+    """The air held at its present fitted level (for the point forecast)."""
+    held = LumpedFit(True, k_per_s=fit.k_per_s, ambient=fit.value_fit_now,
+                     value_fit_now=fit.value_fit_now, t_first=fit.t_first, t_last=fit.t_last,
+                     amplitude=0.0, sigma=fit.sigma, n=fit.n, ambient_lo=fit.ambient_lo,
+                     ambient_hi=fit.ambient_hi, k_lo=fit.k_lo, k_hi=fit.k_hi)
+    held.cov = fit.cov
+    return held
 
 
 def crossings(T_now: np.ndarray, k: np.ndarray, air_now: np.ndarray, out: np.ndarray,

@@ -114,3 +114,17 @@ def test_measured_ambient_pump_start_is_found():
     assert abs(fc.regime_start - tp) <= 30
     assert fc.eta_s == pytest.approx(true_eta, rel=0.05)
     assert any("changed against its ambient" in w for w in fc.warnings)
+
+
+def test_short_warm_stretch_of_air_is_not_extrapolated():
+    """Forty minutes of air warming in a thermostat's off-cycle (no cycle seen yet) beside a
+    flat crate: the air's asymptote is not pinned down, so the point forecast holds the air at
+    its present level and no crossing of 5 degC is forecast."""
+    rng = np.random.default_rng(8)
+    t = synth.T_START + np.arange(0, 2400, 60.0)
+    air = 2.0 + 1.5 * (1 - np.exp(-(t - t[0]) / 3000)) + rng.normal(0, 0.1, t.size)
+    crate = 2.9 + rng.normal(0, 0.05, t.size)
+    fc = forecast(t, np.round(crate, 1), 5.0, ambient_t=t, ambient_y=np.round(air, 1),
+                  limit="upper")
+    assert fc.ok and fc.eta_s is None
+    assert any("not clear yet" in w for w in fc.warnings)
