@@ -247,10 +247,12 @@ class Scenario:
         return int(sum(p.t.size for p in self.probes))
 
 
+# One dropout per probe, under 10 minutes in 12 h: shorter than the daemon's default silence limit
+# (15 min), so a healthy site does not go stale.
 DEFAULT_NOISE = Corruption(noise=0.06, quantum=0.1, spike_frac=0.004, spike_size=12.0, n_gaps=1,
-                           gap_frac=0.02, irregular=0.05)
+                           gap_frac=0.012, irregular=0.05)
 AIR_NOISE = Corruption(noise=0.1, quantum=0.1, spike_frac=0.002, spike_size=10.0, n_gaps=1,
-                       gap_frac=0.01, irregular=0.05)
+                       gap_frac=0.008, irregular=0.05)
 
 
 def _sample(spec: ProbeSpec, rng: np.random.Generator, duration_s: float, t_start: float,
