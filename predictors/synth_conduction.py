@@ -14,6 +14,7 @@ import numpy as np
 from numpy.typing import NDArray
 from scipy.integrate import solve_ivp
 from scipy.optimize import brentq
+from scipy.sparse import csr_matrix
 from thermeta.predictors.conduction_series import GEOMETRIES, theta_centre
 from thermeta.predictors.synth import T_START, Corruption, Synth, corrupt, sample_times
 
@@ -50,6 +51,8 @@ def centre_mol(
     mat[idx + 1, idx] += g_in
     mat[-1, -1] -= g_out
     mat /= vol[:, None]
+    # Sparse (tridiagonal): cheap products and LU in the implicit solver, no BLAS threads.
+    mat = csr_matrix(mat)
     src = np.zeros(n_cells)
     src[-1] = g_out / vol[-1]
 
