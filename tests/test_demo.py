@@ -3,6 +3,7 @@ forecasts checked against the simulator's truth."""
 
 from __future__ import annotations
 
+import importlib.util
 import json
 import subprocess
 import sys
@@ -10,7 +11,6 @@ import time
 
 import paho.mqtt.client as mqtt
 import pytest
-
 from thermeta.daemon.embedded_broker import EmbeddedBroker, broker_reachable
 
 DEMO = [sys.executable, "-m", "thermeta.daemon.cli", "demo"]
@@ -51,13 +51,18 @@ def _median(xs):
 
 
 # Forecasts made while approaching, ahead of the true crossing: median |relative error of the
-# remaining time| per item.  Stated tolerances (measured runs gave about 1-2 % for the first three
-# and 5-15 % for the centre probe): 5 % where the ambient is known or measured beside the load
-# and the curve is plain Newton cooling; 20 % for the carton's centre probe (conduction lag).
+# remaining time| per item.  Stated tolerances (two runs measured 0.1-1.7 % for the lumped items
+# and 7-9 % for the small carton's centre probe): 5 % where the load follows plain Newton cooling
+# with the ambient measured beside it or known; 20 % for the small carton's centre probe.  The large
+# carton (13-22 % measured) is left out: its early forecasts are still far off.
 TOLERANCE = {
     "copperbeck/brewhouse/batch-0417/wort": 0.05,
+    "copperbeck/brewhouse/batch-0417/wort-top": 0.05,
     "eastpier/reefer-12/load-top": 0.05,
+    "eastpier/reefer-12/load-door": 0.05,
     "riverside-canteen/blast-1/tray-a": 0.05,
+    "riverside-canteen/blast-1/tray-b": 0.05,
+    "riverside-canteen/blast-1/tray-c": 0.05,
     "route9/trailer-4/carton-small": 0.20,
 }
 
@@ -95,14 +100,35 @@ def test_demo_headless_forecasts_against_truth(headless_run):
         assert med <= tol, (name, med)
 
 
+def test_healthy_cold_room_raises_no_alert(headless_run):
+    """In the same run the healthy cold room (compressor cycling, crates flat near 2.9 degC, limit
+    5 degC) is refitted many times and never approaches, crosses or raises an alert, while the
+    reefer that loses power does raise one (when the alert rules are in the build)."""
+    r, _, s = headless_run
+    assert r.returncode == 0, r.stderr[-2000:]
+    items = s["items"]
+    for name in ("hillside-dairy/cold-room-b/crate-1", "hillside-dairy/cold-room-b/crate-2"):
+        assert items[name]["n_forecasts"] > 10, items[name]
+        assert not {"approaching", "crossed"} & set(items[name]["states"]), items[name]
+        assert items[name]["alerts"] == [], items[name]
+    if importlib.util.find_spec("thermeta.daemon.alerts") is not None:
+        # with the alert rules in the build, the same run does page for the failing reefer
+        assert items["eastpier/reefer-12/load-top"]["alerts"], items["eastpier/reefer-12/load-top"]
+
+
 def test_demo_uses_a_reachable_broker(broker):
-    """With a broker answering at --host/--port the demo uses it instead of starting its own."""
+    """With a broker answering at --host/--port the demo uses it instead of starting its own, and
+    leaves none of its retained forecasts behind there (read with the standard mosquitto_sub)."""
     r = subprocess.run(DEMO + ["--headless", "--duration", "6", "--speed", "600", "--host",
                                broker.host, "--port", str(broker.port)],
                        capture_output=True, text=True, timeout=60)
     assert r.returncode == 0, r.stderr[-2000:]
     assert f"using the broker at {broker.host}:{broker.port}" in r.stdout
     assert "forecast " in r.stdout
+    left = subprocess.run(["mosquitto_sub", "-h", broker.host, "-p", str(broker.port), "-t",
+                           "thermeta-demo/#", "-v", "-W", "2"], capture_output=True, text=True,
+                          timeout=30)
+    assert left.stdout.strip() == ""
 
 
 def test_demo_bad_arguments():
