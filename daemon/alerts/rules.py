@@ -1,0 +1,235 @@
+"""The alert rules: pure logic over one item's sequence of forecast dicts, with the time passed in.
+
+Levels an item's episode goes through (an *episode* starts when an item leaves ``clear``):
+
+    clear --(early end of the ETA interval within lead)--> approaching --(value past)--> crossed
+      ^                                                        |                          |
+      +---- condition false for hold_s ("recovered") ----------+                          |
+      +---- value inside by the hysteresis band, or inside for hold_s ("recovered") ------+
+
+Beside the episode: ``stale`` once when the sensor falls silent (``resumed`` when it speaks
+again), and ``regime`` when the fit reports that the surroundings changed at a new time.
+
+No flapping: a level is raised once and then holds; it clears only by the hysteresis band (a
+crossing) or after its condition has stayed false for ``hold_s`` (an approach, or a value that is
+back inside but not yet by the band).  While crossed, a reminder goes out every
+``remind_every_s`` unless the episode was acknowledged.
+
+:func:`step` is the whole engine: ``step(state, forecast, params, now, acked) -> events``; it
+mutates ``state`` (a JSON-able :class:`ItemAlertState`) and returns what to send.
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass, field
+from typing import Any
+
+from thermeta.daemon.timefmt import parse_time
+
+LEVELS = ("approaching", "crossed", "recovered", "stale", "resumed", "regime")
+REGIME_NOTE = "the surroundings changed"
+
+
+@dataclass(frozen=True)
+class RuleParams:
+    """An item's alert settings, temperatures in the item's unit, times in seconds."""
+
+    threshold: float
+    lead_s: float = 1800.0
+    hysteresis: float = 0.5
+    hold_s: float = 300.0
+    remind_every_s: float = 1800.0
+
+    def __post_init__(self) -> None:
+        for name in ("lead_s", "hold_s", "remind_every_s"):
+            if not getattr(self, name) > 0:
+                raise ValueError(f"{name} must be > 0, got {getattr(self, name)!r}")
+        if not self.hysteresis >= 0:
+            raise ValueError(f"hysteresis must be >= 0, got {self.hysteresis!r}")
+
+    @classmethod
+    def of(cls, item_cfg: Any) -> RuleParams:
+        return cls(threshold=item_cfg.threshold, lead_s=item_cfg.lead_s,
+                   hysteresis=item_cfg.hysteresis, hold_s=item_cfg.hold_s,
+                   remind_every_s=item_cfg.remind_every_s)
+
+
+@dataclass
+class ItemAlertState:
+    """What the rules remember about one item (stored as JSON between refits and restarts)."""
+
+    level: str = "clear"  # clear | approaching | crossed
+    episode: int = 0
+    side: str | None = None  # "upper": the limit is a ceiling (warming toward it); "lower": a floor
+    since: float | None = None  # when the current level was entered
+    crossed_at: float | None = None
+    last_sent: float | None = None  # the last crossed alert or reminder
+    off_since: float | None = None  # since when the current level's condition has been false
+    stale: bool = False
+    regime_start: float | None = None  # the newest change of the surroundings alerted on
+    seq: int = 0  # counts events, so each alert has its own key
+
+    def to_json(self) -> dict[str, Any]:
+        return asdict(self)
+
+    @classmethod
+    def from_json(cls, d: dict[str, Any] | None) -> ItemAlertState:
+        if not d:
+            return cls()
+        known = set(cls.__dataclass_fields__)
+        return cls(**{k: v for k, v in d.items() if k in known})
+
+
+@dataclass
+class Event:
+    """One alert to send: its level, whether it repeats an open crossing, and context."""
+
+    level: str
+    reminder: bool = False
+    context: dict[str, Any] = field(default_factory=dict)
+
+
+def _t(text: Any) -> float | None:
+    if text is None:
+        return None
+    if isinstance(text, (int, float)):
+        return float(text)
+    try:
+        return parse_time(str(text))
+    except ValueError:
+        return None
+
+
+def remaining_s(fc: dict[str, Any], key: str, now: float) -> float | None:
+    """An ETA of the forecast counted from ``now`` instead of from its newest reading."""
+    eta = fc.get(key)
+    if eta is None:
+        return None
+    t_last = _t(fc.get("last_reading_at"))
+    elapsed = 0.0 if t_last is None else max(0.0, now - t_last)
+    return max(0.0, float(eta) - elapsed)
+
+
+def side_of(fc: dict[str, Any], threshold: float) -> str | None:
+    """Which side of the threshold is unsafe: from the direction of travel, else the value."""
+    d = fc.get("direction")
+    if d == "rising":
+        return "upper"
+    if d == "falling":
+        return "lower"
+    v = fc.get("value_now")
+    if v is None:
+        return None
+    return None if v == threshold else ("upper" if v > threshold else "lower")
+
+
+def is_past(v: float, side: str, threshold: float) -> bool:
+    return v >= threshold if side == "upper" else v <= threshold
+
+
+def is_inside(v: float, side: str, threshold: float, band: float = 0.0) -> bool:
+    # upper limit: back inside when v <= threshold - band; lower: v >= threshold + band
+    return v <= threshold - band if side == "upper" else v >= threshold + band
+
+
+def approach_due(fc: dict[str, Any], p: RuleParams, now: float) -> bool:
+    """A crossing is forecast within the horizon and the EARLY end of its interval within lead."""
+    if fc.get("state") != "approaching" or not fc.get("fit_ok", True):
+        return False
+    early = remaining_s(fc, "eta_lo_s", now)
+    if early is None:
+        early = remaining_s(fc, "eta_s", now)
+    return early is not None and early <= p.lead_s
+
+
+def step(st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float,
+         acked: bool = False) -> list[Event]:
+    """Advance ``st`` by one forecast; return the alerts it raises (often none)."""
+    events: list[Event] = []
+    state = fc.get("state")
+    if state == "stale":
+        if not st.stale:
+            st.stale = True
+            events.append(Event("stale"))
+        return events  # no readings: nothing else can be judged
+    if st.stale:
+        st.stale = False
+        events.append(Event("resumed"))
+    events += _regime(st, fc, p)
+    v = fc.get("value_now")
+    if v is None:
+        return events
+    v = float(v)
+    thr = p.threshold
+    if st.level == "clear":
+        # The unsafe side is learnt from the first travel toward the limit and then kept: a load
+        # cooling back down after a crossing is recovering, not heading for a floor.
+        side = st.side or side_of(fc, thr)
+        if side is None:
+            return events
+        if state == "crossed" or is_past(v, side, thr):
+            _enter(st, "crossed", side, now, new_episode=True)
+            events.append(Event("crossed"))
+        elif approach_due(fc, p, now):
+            _enter(st, "approaching", side, now, new_episode=True)
+            events.append(Event("approaching"))
+        return events
+    side = st.side or side_of(fc, thr) or "upper"
+    if st.level == "approaching":
+        if is_past(v, side, thr):
+            _enter(st, "crossed", side, now)
+            events.append(Event("crossed"))
+        elif approach_due(fc, p, now):
+            st.off_since = None
+        else:
+            st.off_since = st.off_since if st.off_since is not None else now
+            if now - st.off_since >= p.hold_s:
+                events.append(Event("recovered", context={"from_level": "approaching"}))
+                _clear(st)
+        return events
+    # crossed
+    if is_inside(v, side, thr, p.hysteresis):
+        events.append(Event("recovered", context={"from_level": "crossed", "by": "band",
+                                                  "crossed_at_s": st.crossed_at}))
+        _clear(st)
+    elif is_inside(v, side, thr):
+        st.off_since = st.off_since if st.off_since is not None else now
+        if now - st.off_since >= p.hold_s:
+            events.append(Event("recovered", context={"from_level": "crossed", "by": "hold",
+                                                      "crossed_at_s": st.crossed_at}))
+            _clear(st)
+    else:
+        st.off_since = None
+        if not acked and st.last_sent is not None and now - st.last_sent >= p.remind_every_s:
+            st.last_sent = now
+            events.append(Event("crossed", reminder=True))
+    return events
+
+
+def _regime(st: ItemAlertState, fc: dict[str, Any], p: RuleParams) -> list[Event]:
+    # The fit notes a change of the surroundings and starts its window there; the estimate of
+    # that moment may wander by a reading or two between refits, so only a start later than the
+    # last one alerted on by more than the hold time counts as new.
+    warnings = fc.get("warnings") or []
+    if not any(str(w).startswith(REGIME_NOTE) for w in warnings):
+        return []
+    start = _t(fc.get("regime_start"))
+    if start is None:
+        return []
+    if st.regime_start is not None and start <= st.regime_start + p.hold_s:
+        return []
+    st.regime_start = start
+    return [Event("regime", context={"regime_start": start})]
+
+
+def _enter(st: ItemAlertState, level: str, side: str, now: float, new_episode: bool = False) -> None:
+    if new_episode:
+        st.episode += 1
+    st.level, st.side, st.since, st.off_since = level, side, now, None
+    if level == "crossed":
+        st.crossed_at = now
+        st.last_sent = now
+
+
+def _clear(st: ItemAlertState) -> None:
+    st.level, st.since, st.off_since, st.last_sent, st.crossed_at = "clear", None, None, None, None

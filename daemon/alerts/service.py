@@ -1,0 +1,104 @@
+"""The alert plug-in of the running service: forecasts in, rules applied, alerts into the outbox,
+one worker per hook delivering them.
+
+    svc = AlertService(config, store, clock, publish)   # attach() builds it from a Service
+    svc.start(); ...; svc.on_forecast(item_cfg, body, prev); ...; svc.stop()
+
+``on_forecast`` runs on the refit thread and only touches the store (one short transaction when
+something changed); every network call happens on the hooks' own threads.
+"""
+
+from __future__ import annotations
+
+import logging
+import threading
+from collections.abc import Callable
+from typing import Any
+
+from thermeta.daemon.alerts.message import build_alert
+from thermeta.daemon.alerts.outbox import OutboxWorker
+from thermeta.daemon.alerts.rules import ItemAlertState, RuleParams, step
+from thermeta.daemon.clock import Clock, SystemClock
+from thermeta.daemon.hooks.base import Hook, make_hook
+from thermeta.storage.alerts import AlertStore
+
+log = logging.getLogger("thermeta.alerts")
+
+PNG_HISTORY_S = 4 * 3600.0
+
+
+class AlertService:
+    def __init__(self, config: Any, store: Any, clock: Clock | None = None,
+                 publish: Callable[..., Any] | None = None, *, base_s: float = 5.0,
+                 max_s: float = 300.0, poll_s: float = 2.0, attach_png: bool = True):
+        self.config = config
+        self.store = store
+        self.clock = clock or SystemClock()
+        self.astore = AlertStore(store)
+        self.items: dict[str, Any] = {it.name: it for it in config.items if not it.is_pattern}
+        png = self.png_for if attach_png else None
+        self.hooks: list[Hook] = [make_hook(i, h, publish=publish, png_for=png)
+                                  for i, h in enumerate(config.hooks)]
+        self.worker_opts = {"base_s": base_s, "max_s": max_s, "poll_s": poll_s}
+        self.workers: list[OutboxWorker] = []
+        self.states: dict[str, ItemAlertState] = {}
+        self.raised: list[dict[str, Any]] = []  # this run's alerts, newest last
+        self._lock = threading.Lock()
+
+    # -- life cycle ---------------------------------------------------------------------------
+    def start(self) -> None:
+        self.states = {k: ItemAlertState.from_json(v) for k, v in self.astore.load_states().items()}
+        for hook in self.hooks:
+            w = OutboxWorker(hook, self.astore, **self.worker_opts)
+            w.start()
+            self.workers.append(w)
+        if not self.hooks:
+            log.info("no [[hook]] tables: alerts are logged and stored only")
+
+    def stop(self) -> None:
+        for w in self.workers:
+            w.halt.set()
+            w.wake.set()
+        for w in self.workers:
+            w.join(10.0)
+        for hook in self.hooks:
+            hook.close()
+        self.workers = []
+
+    # -- the listener -------------------------------------------------------------------------
+    def on_forecast(self, cfg: Any, body: dict[str, Any], prev: dict[str, Any] | None) -> None:
+        name = body.get("item") or cfg.name
+        self.items.setdefault(name, cfg)
+        now = self.clock.now()
+        params = RuleParams.of(cfg)
+        with self._lock:
+            old = self.states.get(name) or ItemAlertState()
+            st = ItemAlertState.from_json(old.to_json())
+            acked = st.level == "crossed" and self.astore.ack_of(name, st.episode) is not None
+            events = step(st, body, params, now, acked)
+            alerts = [build_alert(name, body, ev, st, params, now, unit=cfg.unit,
+                                  silence_s=cfg.silence_s, site=cfg.site) for ev in events]
+            if alerts or st.to_json() != old.to_json():
+                # Raises on a store failure: the old state stays and the next refit decides again.
+                self.astore.commit_step(name, st.to_json(), alerts, self.hooks_for, now)
+            self.states[name] = st
+            self.raised.extend(alerts)
+            del self.raised[:-1000]
+        for a in alerts:
+            log.warning("alert %s: %s", a["level"], a["sentence"])
+        if alerts:
+            for w in self.workers:
+                w.wake.set()
+
+    def hooks_for(self, alert: dict[str, Any]) -> list[str]:
+        return [h.key for h in self.hooks if h.wants(alert)]
+
+    # -- the email attachment -----------------------------------------------------------------
+    def png_for(self, alert: dict[str, Any]) -> bytes | None:
+        cfg = self.items.get(alert["item"])
+        if cfg is None:
+            return None
+        from thermeta.daemon import plotting
+
+        title = f"{alert['item']}: {alert['level']}"
+        return plotting.item_png(self.store, cfg, history_s=PNG_HISTORY_S, title=title)

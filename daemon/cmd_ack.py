@@ -1,0 +1,69 @@
+"""``thermeta ack ITEM --config FILE [--by NAME] [--note TEXT]``: acknowledge an item's open alert
+episode.  Reminders for that episode stop; the acknowledgement is recorded in the store (who, when,
+why) and the next episode alerts as usual.  Works while the daemon runs."""
+
+from __future__ import annotations
+
+import argparse
+import getpass
+import sys
+import time
+
+
+def add_arguments(p: argparse.ArgumentParser) -> None:
+    p.add_argument("item", metavar="ITEM", help="the item whose episode to acknowledge")
+    p.add_argument("--config", required=True, metavar="FILE", help="the TOML config")
+    p.add_argument("--by", metavar="NAME", help="who acknowledges (default: the login name)")
+    p.add_argument("--note", metavar="TEXT", help="why, or what is being done")
+
+
+def run(args: argparse.Namespace) -> int:
+    from thermeta.daemon.alerts.message import clock
+    from thermeta.daemon.cmd_status import open_store
+    from thermeta.daemon.config import load_config
+    from thermeta.daemon.errors import ConfigError
+    from thermeta.storage.alerts import AlertStore
+
+    try:
+        cfg = load_config(args.config)
+    except ConfigError as exc:
+        for line in exc.problems:
+            print(line, file=sys.stderr)
+        return 2
+    store = open_store(cfg, "ack")
+    if store is None:
+        return 1
+    try:
+        store.create_all()
+        astore = AlertStore(store)
+        st = astore.get_state(args.item)
+        if st is None:
+            known = sorted(astore.load_states())
+            hint = f" (items with alert history: {', '.join(known[:10])})" if known else ""
+            print(f"thermeta ack: no alerts recorded for item {args.item!r}{hint}", file=sys.stderr)
+            return 2
+        if st.get("level", "clear") == "clear" or not st.get("episode"):
+            print(f"thermeta ack: {args.item} has no open alert episode; nothing to acknowledge",
+                  file=sys.stderr)
+            return 1
+        episode = int(st["episode"])
+        earlier = astore.ack_of(args.item, episode)
+        if earlier is not None:
+            print(f"{args.item}: episode {episode} was already acknowledged by "
+                  f"{earlier['by'] or 'someone'} at {clock(earlier['acked_at'])}")
+            return 0
+        by = args.by or _login()
+        now = time.time()
+        astore.add_ack(args.item, episode, now, by, args.note)
+        print(f"{args.item}: episode {episode} ({st['level']}) acknowledged by {by} at "
+              f"{clock(now)}; reminders stop until it clears")
+        return 0
+    finally:
+        store.close()
+
+
+def _login() -> str:
+    try:
+        return getpass.getuser()
+    except (KeyError, OSError):
+        return "unknown"

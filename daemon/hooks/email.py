@@ -1,0 +1,91 @@
+"""``kind = "email"``: SMTP with STARTTLS (``tls = "starttls"``, port 587), implicit TLS
+(``"implicit"``, port 465) or none (``"none"``, a relay on the local network); login from the
+environment variables named by ``username_env`` / ``password_env``.
+
+The mail is plain text (the sentence, then the numbers), with a PNG of the item's recent readings,
+fitted curve and forecast band attached when one can be drawn.
+"""
+
+from __future__ import annotations
+
+import os
+import smtplib
+import ssl
+from collections.abc import Callable
+from email.message import EmailMessage
+from email.utils import formatdate, make_msgid
+from typing import Any
+
+from thermeta.daemon.errors import DeliveryError
+from thermeta.daemon.hooks.base import Hook
+
+FIELDS = (("value_now", "value now"), ("threshold", "threshold"), ("eta_s", "ETA (s)"),
+          ("crossing_at", "crossing at"), ("crossing_lo_at", "interval from"),
+          ("crossing_hi_at", "interval to"), ("ambient", "fitted ambient"),
+          ("time_constant_s", "time constant (s)"), ("state", "state"), ("at", "alert time"))
+
+
+def subject(alert: dict[str, Any]) -> str:
+    tag = "reminder: " if alert.get("reminder") else ""
+    return f"[thermeta] {alert['item']} {tag}{alert['level']}"
+
+
+def body_text(alert: dict[str, Any]) -> str:
+    lines = [alert["sentence"], ""]
+    for key, label in FIELDS:
+        v = alert.get(key)
+        if v is not None:
+            lines.append(f"{label:>18}: {v:.2f}" if isinstance(v, float) else f"{label:>18}: {v}")
+    lines += ["", alert.get("caution", ""), ""]
+    return "\n".join(lines)
+
+
+class EmailHook(Hook):
+    kind = "email"
+
+    def __init__(self, cfg: Any, key: str,
+                 png_for: Callable[[dict[str, Any]], bytes | None] | None = None):
+        super().__init__(cfg, key)
+        self.png_for = png_for
+
+    def message(self, alert: dict[str, Any]) -> EmailMessage:
+        msg = EmailMessage()
+        msg["From"] = self.cfg.from_addr
+        msg["To"] = ", ".join(self.cfg.to)
+        msg["Subject"] = subject(alert)
+        msg["Date"] = formatdate(localtime=True)
+        msg["Message-ID"] = make_msgid(domain="thermeta.local")
+        msg["X-Thermeta-Alert"] = alert["id"]
+        msg.set_content(body_text(alert))
+        png = None
+        if self.png_for is not None:
+            try:
+                png = self.png_for(alert)
+            except Exception:  # noqa: BLE001 - a failed picture never stops the mail
+                png = None
+        if png:
+            msg.add_attachment(png, maintype="image", subtype="png",
+                               filename=f"{alert['item'].replace('/', '_')}-forecast.png")
+        return msg
+
+    def deliver(self, alert: dict[str, Any]) -> None:
+        cfg = self.cfg
+        msg = self.message(alert)
+        user = os.environ.get(cfg.username_env) if cfg.username_env else None
+        password = os.environ.get(cfg.password_env) if cfg.password_env else None
+        ctx = ssl.create_default_context()
+        try:
+            if cfg.tls == "implicit":
+                smtp: smtplib.SMTP = smtplib.SMTP_SSL(cfg.host, cfg.port, timeout=cfg.timeout_s,
+                                                      context=ctx)
+            else:
+                smtp = smtplib.SMTP(cfg.host, cfg.port, timeout=cfg.timeout_s)
+            with smtp:
+                if cfg.tls == "starttls":
+                    smtp.starttls(context=ctx)
+                if user is not None:
+                    smtp.login(user, password or "")
+                smtp.send_message(msg)
+        except (smtplib.SMTPException, OSError, ssl.SSLError) as exc:
+            raise DeliveryError(f"{self.key}: mail via {cfg.host}:{cfg.port} failed: "
+                                f"{exc.__class__.__name__}: {exc}") from exc

@@ -1,0 +1,47 @@
+"""``kind = "exec"``: run a program with the alert as JSON on stdin and as environment variables.
+
+The command is a list, run directly (never through a shell).  Each scalar field of the alert is
+also in the environment as ``THERMETA_<FIELD>`` (e.g. ``THERMETA_ITEM``, ``THERMETA_LEVEL``,
+``THERMETA_SENTENCE``).  A non-zero exit or running past ``timeout`` is a failed delivery.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+from typing import Any
+
+from thermeta.daemon.errors import DeliveryError
+from thermeta.daemon.hooks.base import Hook
+
+
+def alert_env(alert: dict[str, Any]) -> dict[str, str]:
+    out = {}
+    for k, v in alert.items():
+        if isinstance(v, (dict, list)) or v is None:
+            continue
+        out["THERMETA_" + k.upper()] = str(v).lower() if isinstance(v, bool) else str(v)
+    return out
+
+
+class ExecHook(Hook):
+    kind = "exec"
+
+    def deliver(self, alert: dict[str, Any]) -> None:
+        env = dict(os.environ)
+        env.update(alert_env(alert))
+        cmd = list(self.cfg.command)
+        try:
+            proc = subprocess.run(cmd, input=json.dumps(alert).encode(), env=env, shell=False,
+                                  stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                                  timeout=self.cfg.timeout_s, check=False)
+        except subprocess.TimeoutExpired as exc:
+            raise DeliveryError(f"{self.key}: {cmd[0]} ran past its {self.cfg.timeout_s:g} s "
+                                "timeout and was stopped") from exc
+        except OSError as exc:
+            raise DeliveryError(f"{self.key}: cannot run {cmd[0]}: {exc.strerror or exc}") from exc
+        if proc.returncode != 0:
+            err = proc.stderr.decode(errors="replace").strip().splitlines()
+            raise DeliveryError(f"{self.key}: {cmd[0]} exited with {proc.returncode}"
+                                + (f": {err[-1][:200]}" if err else ""))
