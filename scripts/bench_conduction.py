@@ -19,7 +19,6 @@ import argparse
 import time
 
 import numpy as np
-
 from thermeta.predictors.conduction import GEOMETRIES, fit_conduction, select_geometry
 from thermeta.predictors.synth import Corruption
 from thermeta.predictors.synth_conduction import core_probe
