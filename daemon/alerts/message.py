@@ -64,7 +64,8 @@ def sentence(a: dict[str, Any]) -> str:
         return f"{item} is approaching its limit: {now_thr}, {eta_clause(a)}; {fit_clause(a)}."
     if level == "crossed":
         since = a.get("crossed_at_s")
-        ago = f" since {clock(since)} ({human_duration(a['at_s'] - since)} ago)" if since else ""
+        ago = (f" since {clock(since)} ({human_duration(a['at_s'] - since)} ago)"
+               if since and a.get("reminder") else "")
         head = (f"Reminder: {item} is still past its limit" if a.get("reminder")
                 else f"{item} has crossed its limit")
         return f"{head}{ago}: {now_thr}; {fit_clause(a)}."

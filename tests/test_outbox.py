@@ -1,0 +1,130 @@
+"""The outbox: alerts queue while a webhook is down, arrive exactly once when it returns (also
+across a restart of the alert service on the same store), and a slow hook never holds up the
+refit thread that raised the alert."""
+
+from __future__ import annotations
+
+import json
+import sys
+import time
+
+from conftest import free_port
+from test_alerts_rules import THR, T0_EPOCH, fc_at
+from test_hooks import Receiver
+
+from thermeta.daemon.alerts.outbox import backoff_s
+from thermeta.daemon.alerts.service import AlertService
+from thermeta.daemon.clock import ManualClock
+from thermeta.daemon.config import load_config
+from thermeta.storage.alerts import AlertStore
+from thermeta.storage.store import Store
+
+
+def write_config(tmp_path, hooks: str) -> str:
+    path = tmp_path / "thermeta.toml"
+    path.write_text(f"""
+[storage]
+url = "sqlite:///{tmp_path / 'store.db'}"
+
+[[item]]
+name = "trailer-4"
+topic = "fleet/trailer-4/load"
+threshold = -15.0
+ambient = 12.0
+lead = 3600
+remind_every = 600
+
+{hooks}
+""")
+    return str(path)
+
+
+def wait_for(cond, timeout: float = 10.0) -> bool:
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        if cond():
+            return True
+        time.sleep(0.02)
+    return cond()
+
+
+def feed(svc: AlertService, clock: ManualClock, cfg, steps) -> None:
+    for t_s, fc in steps:
+        clock.set(T0_EPOCH + t_s)
+        svc.on_forecast(cfg, fc, None)
+
+
+def test_backoff_doubles_and_caps():
+    """5 s, 10 s, 20 s ... capped at 300 s."""
+    assert [backoff_s(n, 5, 300) for n in (0, 1, 2, 3, 7, 20)] == [0, 5, 10, 20, 300, 300]
+
+
+def test_down_webhook_queues_then_each_alert_arrives_once_across_a_restart(tmp_path):
+    """With nothing listening, three alerts stay pending (tried, not lost); the service restarts;
+    the receiver comes up on that port; each alert arrives exactly once, in order, and a further
+    restart sends nothing again."""
+    port = free_port()
+    path = write_config(tmp_path, f'[[hook]]\nkind = "webhook"\nurl = "http://127.0.0.1:{port}/a"\n'
+                                  'timeout = 2\n')
+    cfg = load_config(path)
+    item = cfg.items[0]
+    store = Store(cfg.storage.url)
+    store.create_all()
+    clock = ManualClock(T0_EPOCH)
+    opts = {"base_s": 0.05, "max_s": 0.2, "poll_s": 0.05, "attach_png": False}
+    svc = AlertService(cfg, store, clock, **opts)
+    svc.start()
+    feed(svc, clock, item, [(3000, fc_at(3000))]
+         + [(3600, fc_at(600, value=THR + 1, state="crossed")),
+            (4300, fc_at(4300, value=THR + 1, state="crossed"))])
+    astore = AlertStore(store)
+    assert [e["level"] for e in astore.events()] == ["approaching", "crossed", "crossed"]
+    assert wait_for(lambda: all(r["attempts"] >= 2 for r in astore.outbox_rows()[:1]))
+    assert astore.outbox_counts()["pending"] == 3
+    svc.stop()
+    store.close()
+
+    receiver = Receiver(port)
+    try:
+        store = Store(cfg.storage.url)
+        svc = AlertService(cfg, store, clock, **opts)
+        svc.start()
+        assert wait_for(lambda: len(receiver.posts) >= 3)
+        time.sleep(0.3)
+        svc.stop()
+        ids = [json.loads(b)["id"] for _, _, b in receiver.posts]
+        assert ids == [e["key"] for e in AlertStore(store).events()]
+        assert AlertStore(store).outbox_counts() == {"pending": 0, "delivered": 3, "failed": 0}
+        svc = AlertService(cfg, store, clock, **opts)
+        svc.start()
+        time.sleep(0.3)
+        svc.stop()
+        assert len(receiver.posts) == 3
+        store.close()
+    finally:
+        receiver.close()
+
+
+def test_a_slow_hook_never_delays_the_refit_thread(tmp_path):
+    """An exec hook that takes 3 s: on_forecast (what the refit thread calls) returns at once,
+    and the alert is still delivered by the hook's own worker."""
+    out = tmp_path / "done"
+    prog = f"import time, sys; time.sleep(3); open({str(out)!r}, 'w').write(sys.stdin.read())"
+    cmd = json.dumps([sys.executable, "-c", prog])
+    path = write_config(tmp_path, f'[[hook]]\nkind = "exec"\ncommand = {cmd}\ntimeout = 20\n')
+    cfg = load_config(path)
+    store = Store(cfg.storage.url)
+    store.create_all()
+    clock = ManualClock(T0_EPOCH)
+    svc = AlertService(cfg, store, clock, poll_s=0.05, attach_png=False)
+    svc.start()
+    try:
+        t0 = time.monotonic()
+        feed(svc, clock, cfg.items[0], [(0, fc_at(0, value=THR + 1, state="crossed"))])
+        took = time.monotonic() - t0
+        assert took < 0.5
+        assert wait_for(out.exists, 15)
+        assert json.loads(out.read_text())["level"] == "crossed"
+    finally:
+        svc.stop()
+        store.close()
