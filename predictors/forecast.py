@@ -139,9 +139,9 @@ def _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit=None, detec
     fc.lag_factor_j = 1.0
     if air is not None:
         return _measured(fc, tt, yy, thr, air, limit, detect, cl.noise_sd, min_points)
-    kw = {"ambient": ambient, "ambient_sd": amb_sd if ambient is not None else 0.0, "bounds": bounds,
-              "noise_sd": cl.noise_sd, "limit": limit}
-    fit = fit_lumped(tt, yy, thr, intervals=False, **kw)
+    kw = {"ambient": ambient, "ambient_sd": amb_sd if ambient is not None else 0.0,
+          "bounds": bounds, "noise_sd": cl.noise_sd, "limit": limit}
+    fit = fit_lumped(tt, yy, thr, **kw)
     if fit.ok:
         # robust refit: drop what the first fit calls far off (beyond the Hampel pre-filter)
         out = residual_outliers(fit.residuals, 4.0,
@@ -149,7 +149,7 @@ def _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit=None, detec
         if 0 < out.sum() <= max(1, int(0.1 * tt.size)):
             tt, yy = tt[~out], yy[~out]
             fc.n_outliers += int(out.sum())
-    fit = fit_lumped(tt, yy, thr, **kw)
+            fit = fit_lumped(tt, yy, thr, **kw)
     if not fit.ok:
         fc.ok, fc.reason = False, fit.reason
         return fc
