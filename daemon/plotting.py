@@ -235,11 +235,48 @@ def forecast_figure(series: SeriesLike, fc: Forecast, *, unit: str = "C", title:
     ax.set_ylabel(f"temperature ({sign})")
     ax.grid(True, alpha=0.3)
     ax.set_xlim(D(t_first), D(t_end))
+    context = [c for c in (fit_y, fc_y) if c is not None]
+    if amb_t is not None and amb_y is not None and len(amb_y) >= 7:
+        context.append(np.percentile(np.asarray(amb_y, float), [2.0, 98.0]))
+    _robust_ylim(ax, conv(y), [conv(fc.threshold)] + [conv(np.asarray(c)) for c in context])
     ax.set_title(title or "forecast", fontsize=11, loc="left")
     ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=8, frameon=False)
     fig.text(0.08, 0.03, _summary(fc, sign, conv), fontsize=8)
     fig.text(0.08, 0.005, CAUTION, fontsize=7, color="#555555")
     return fig
+
+
+def _robust_ylim(ax, readings: np.ndarray, keep: list) -> None:
+    """Scale the y axis to the bulk of the readings and the curves, so one spike (a probe lifted
+    out, a loose contact) does not flatten the picture; say how many readings fall outside."""
+    vals = [np.asarray(v, float).ravel() for v in keep]
+    vals = np.concatenate(vals) if vals else np.zeros(0)
+    vals = vals[np.isfinite(vals)]
+    r = np.asarray(readings, float)
+    r = r[np.isfinite(r)]
+    if r.size >= 7:
+        # a reading far from the running median of its neighbours is a spike
+        med = np.median(np.lib.stride_tricks.sliding_window_view(np.pad(r, 3, mode="edge"), 7),
+                        axis=1)
+        dev = np.abs(r - med)
+        scale = max(1.4826 * float(np.median(dev)), 0.2)
+        good = r[dev <= 6 * scale]
+        bulk = np.array([good.min(), good.max()]) if good.size else np.zeros(0)
+    elif r.size:
+        bulk = np.array([r.min(), r.max()])
+    else:
+        bulk = np.zeros(0)
+    span = np.concatenate([bulk, vals])
+    if span.size == 0:
+        return
+    lo, hi = float(span.min()), float(span.max())
+    pad = max(0.08 * (hi - lo), 0.5)
+    lo, hi = lo - pad, hi + pad
+    off = int(np.sum((r < lo) | (r > hi)))
+    ax.set_ylim(lo, hi)
+    if off:
+        ax.text(0.99, 0.02, f"{off} reading{'s' if off > 1 else ''} off the scale (spikes)",
+                transform=ax.transAxes, ha="right", va="bottom", fontsize=8, color="#555555")
 
 
 def _band(fc: Forecast, t_fc: np.ndarray, series: Any) -> tuple[np.ndarray, np.ndarray] | None:

@@ -209,3 +209,18 @@ def test_plot_command(tmp_path):
                          capture_output=True, text=True, timeout=120)
     assert bad.returncode == 2 and "no-such-item" in bad.stderr
     assert len(bad.stderr.strip().splitlines()) == 1
+
+
+def test_a_spike_does_not_flatten_the_picture():
+    """A single -40 degC spike among readings near 3 degC stays off the y scale (which still holds
+    the threshold and the readings), and the figure says one reading is off the scale."""
+    _, _, series, fc = _case("reefer-power-loss", "eastpier/reefer-12/load-top", 1.0)
+    y = series.y.copy()
+    y[len(y) // 2] = -40.0
+    spiky = P._Series(series.t, y, series.ambient_t, series.ambient_y)
+    fig = P.forecast_figure(spiky, fc)
+    lo, hi = fig.axes[0].get_ylim()
+    assert lo > -5.0
+    assert lo < float(np.min(series.y)) and hi > fc.threshold
+    texts = [t.get_text() for t in fig.axes[0].texts]
+    assert any("off the scale" in t for t in texts)
