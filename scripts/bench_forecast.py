@@ -111,7 +111,7 @@ VARIANTS = ("clean", "spikes", "dropouts")
 FAMILIES = tuple(PARAMS)
 RATIO_FLOOR = 1e-3  # spikes/dropouts vs clean: clean figures under 0.1 % count as 0.1 %
 CASES = {"default": 200, "centre": 40, "regime_door": 150, "cycling": 30, "asymptote": 200}
-QUICK_CASES = {"default": 3, "centre": 1, "regime_door": 2, "cycling": 1, "asymptote": 2}
+QUICK_CASES = {"default": 2, "centre": 1, "regime_door": 2, "cycling": 1, "asymptote": 2}
 
 # Targets of issue 6, section 3 (checked, never tuned here)
 TARGETS = {
