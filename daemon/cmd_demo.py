@@ -363,8 +363,11 @@ def _have_dashboard() -> bool:
 
 
 def _dashboard(service, stop: threading.Event, end_at: float | None, sim, out) -> None:
+    import inspect
+
     from thermeta.daemon.dashboard import run_foreground
 
+    takes_stop = "stop" in inspect.signature(run_foreground).parameters
     running = threading.Event()
     running.set()
 
@@ -375,13 +378,18 @@ def _dashboard(service, stop: threading.Event, end_at: float | None, sim, out) -
                 break
             stop.wait(0.2)
         if running.is_set():
-            import _thread
+            stop.set()
+            if not takes_stop:
+                import _thread
 
-            _thread.interrupt_main()
+                _thread.interrupt_main()
 
     threading.Thread(target=ender, name="demo-timer", daemon=True).start()
     try:
-        run_foreground(service)
+        if takes_stop:
+            run_foreground(service, stop)
+        else:
+            run_foreground(service)
     except KeyboardInterrupt:
         pass
     finally:
