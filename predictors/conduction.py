@@ -206,8 +206,13 @@ class ConductionFit:
             draws = self._draws
             if self._curve.mode == "measured":
                 draws = draws[: ceta.N_MEASURED_DRAWS]
-            lo, hi = ceta.quantiles_90(
-                ceta.etas(self._curve, draws, threshold, t_now, self._curve.span_s))
+            try:
+                with np.errstate(all="ignore"):
+                    lo, hi = ceta.quantiles_90(
+                        ceta.etas(self._curve, draws, threshold, t_now, self._curve.span_s))
+            except (ArithmeticError, ValueError, np.linalg.LinAlgError) as exc:
+                # No interval is a result too; the point forecast stands.
+                self.warnings.append(f"no interval for the crossing time: {exc}")
         if not math.isfinite(eta):
             return None, lo, None
         lo = None if lo is None else min(lo, eta)
@@ -333,6 +338,15 @@ def _start_grid(curve: _Curve, t: Float, y: Float) -> Float:
 
 
 def _fit_curve(curve: _Curve, t: Float, y: Float) -> ConductionFit:
+    """The fit, with any numerical failure turned into a failed result (never raised)."""
+    try:
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            return _fit_curve_raw(curve, t, y)
+    except (ArithmeticError, ValueError, np.linalg.LinAlgError) as exc:
+        return _failed(curve.geometry, curve.mode, int(t.size), f"fit failed: {exc}")
+
+
+def _fit_curve_raw(curve: _Curve, t: Float, y: Float) -> ConductionFit:
     n = int(t.size)
     span = curve.span_s
     lo = [math.log(FIT_BIOT_MIN), math.log(1e-4 / span)]
@@ -379,6 +393,9 @@ def _fit_curve(curve: _Curve, t: Float, y: Float) -> ConductionFit:
         # Keep draws inside the eigen-solver's range (beyond it nothing changes in the curve).
         fit._draws[:, n_lin] = np.clip(fit._draws[:, n_lin], math.log(1.0001 * BIOT_MIN),
                                        math.log(0.9999 * BIOT_MAX))
+        # Heavy-tailed draws of the time scale / start stay within the fit's own bounds.
+        for j in range(1, len(lo)):
+            fit._draws[:, n_lin + j] = np.clip(fit._draws[:, n_lin + j], lo[j], hi[j])
     _parameter_intervals(fit, n_lin)
     if fit.biot <= FIT_BIOT_MIN * 1.01:
         fit.warnings.append("Biot number at its lower bound: the probe behaves as a lumped body")

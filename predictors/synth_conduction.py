@@ -112,7 +112,7 @@ def core_probe(
 
     if drifting:
         horizon = 30.0 / a_per_s
-        fo_grid = np.linspace(0.0, horizon * a_per_s, 3001)
+        fo_grid = np.linspace(0.0, horizon * a_per_s, 12001)
         truth_grid = centre_mol(geometry, biot, fo_grid, lambda f: amb_abs(f / a_per_s), t_i)
         t_grid = fo_grid / a_per_s
 
