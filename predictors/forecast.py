@@ -192,6 +192,9 @@ def never_reason(fc: Forecast) -> str:
 def _measured(fc, tt, yy, thr, air, limit=None, detect=True, noise_sd=0.0,
               min_points=8) -> Forecast:
     at, ay = air.t, air.y
+    if at[-1] < tt[-1] - max(600.0, 3 * float(np.median(np.diff(at))) if at.size > 1 else 600.0):
+        fc.warnings.append(f"the ambient's newest reading is {(tt[-1] - at[-1]) / 60:.0f} min "
+                           "older than the item's; the ambient is extrapolated over the gap")
     reg = find_regime(at, ay, air.noise_sd)
     if reg.start_index > 0:
         fc.warnings.append("the ambient changed; its forecast uses the readings since")

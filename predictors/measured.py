@@ -97,7 +97,10 @@ def fit_measured(t: np.ndarray, y: np.ndarray, air_t: np.ndarray, air_y: np.ndar
         return MeasuredFit(False, f"too few readings to fit ({n})", n=n)
     inside = (air_t >= t[0]) & (air_t <= t[-1])
     s = np.unique(np.concatenate([t, air_t[inside]]))
-    A = np.interp(s, air_t, air_y)  # held constant outside the air readings
+    A = np.interp(s, air_t, air_y)  # held constant before the first air reading
+    beyond = s > air_t[-1]
+    if beyond.any() and air_fit.ok:  # after the last one, the air's own curve
+        A[beyond] = air_fit.curve(s[beyond])
     pos = np.searchsorted(s, t)
     D = float(t[-1] - t[0])
     if D <= 0:
@@ -137,7 +140,10 @@ def fit_measured(t: np.ndarray, y: np.ndarray, air_t: np.ndarray, air_y: np.ndar
     fit.k_lo, fit.k_hi = k * math.exp(-Z90 * se_logk), k * math.exp(Z90 * se_logk)
     if not air_fit.ok:
         return fit
-    air_now, out, ka = air_fit.value_fit_now, air_fit.ambient, air_fit.k_per_s
+    # the air's own curve at the load's newest reading (the air may have stopped earlier)
+    t_now = max(float(t[-1]), air_fit.t_last)
+    air_now = float(air_fit.curve(np.array([t_now]))[0])
+    out, ka = air_fit.ambient, air_fit.k_per_s
     rising = out > fit.value_fit_now if out != fit.value_fit_now else threshold > fit.value_fit_now
     fit.direction = "rising" if rising else "falling"
 
@@ -174,7 +180,7 @@ def fit_measured(t: np.ndarray, y: np.ndarray, air_t: np.ndarray, air_y: np.ndar
     airp = rng.multivariate_normal([spread.ambient, spread.amplitude, math.log(max(ka_s, 1e-15))],
                                    spread.cov, N_DRAWS, check_valid="ignore", method="eigh")
     a_out, a_amp, a_k = airp[:, 0], airp[:, 1], np.exp(airp[:, 2])
-    a_now = a_out + a_amp * np.exp(-a_k * (spread.t_last - spread.t_first))
+    a_now = a_out + a_amp * np.exp(-a_k * (t_now - spread.t_first))
     etas = crossings(load[:, 0], np.exp(load[:, 1]), a_now, a_out, a_k, threshold, past,
                      horizon_s=60.0 / max(min(k, ka if ka > 0 else k), 1e-12))
     etas = np.where(np.isnan(etas), np.inf, etas)
