@@ -60,6 +60,8 @@ def run(seq, p: RuleParams, st: ItemAlertState | None = None, acked: bool = Fals
 
 
 P = RuleParams(threshold=THR, lead_s=3600, hysteresis=0.5, hold_s=300, remind_every_s=1800)
+# An item is first seen inside its limit; that tells the rules which side is unsafe.
+FIRST = (-60.0, fc_at(0, value=THR - 2, state="steady"))
 
 
 def test_approaching_once_at_least_lead_before_the_true_crossing_then_crossed_then_recovered():
@@ -119,7 +121,7 @@ def test_no_flapping_around_the_threshold():
 
 def test_inside_but_not_by_the_band_recovers_after_the_hold_time():
     """Back inside by 0.2 degC only (band 0.5): recovery after hold_s (300 s), not before."""
-    seq = [(0, fc_at(0, value=THR + 1, state="crossed"))]
+    seq = [FIRST, (0, fc_at(0, value=THR + 1, state="crossed"))]
     seq += [(60.0 * i, fc_at(0, value=THR - 0.2, state="steady")) for i in range(1, 8)]
     _, out = run(seq, P)
     rec = [(t, e) for t, e in out if e.level == "recovered"]
@@ -142,13 +144,13 @@ def test_approach_that_eases_clears_only_after_hold():
 
 def test_reminders_while_crossed_and_ack_silences_them():
     """Crossed for 2 h with remind_every 30 min: 4 reminders; acknowledged: none."""
-    seq = [(60.0 * i, fc_at(0, value=THR + 2, state="crossed")) for i in range(0, 121)]
+    seq = [FIRST] + [(60.0 * i, fc_at(0, value=THR + 2, state="crossed")) for i in range(0, 121)]
     _, out = run(seq, P)
     assert [e.reminder for _, e in out] == [False, True, True, True, True]
     assert [t for t, _ in out] == [0, 1800, 3600, 5400, 7200]
     st = ItemAlertState()
-    run(seq[:1], P, st)
-    _, out_acked = run(seq[1:], P, st, acked=True)
+    run(seq[:2], P, st)
+    _, out_acked = run(seq[2:], P, st, acked=True)
     assert out_acked == []
 
 
@@ -192,7 +194,7 @@ def test_lower_limit_falling_toward_a_floor():
 
 def test_state_survives_json_round_trip_so_a_restart_repeats_nothing():
     """The rule state stored as JSON and read back continues without raising again."""
-    st, out = run([(0, fc_at(0, value=THR + 1, state="crossed"))], P)
+    st, out = run([FIRST, (0, fc_at(0, value=THR + 1, state="crossed"))], P)
     st2 = ItemAlertState.from_json(st.to_json())
     _, out2 = run([(60, fc_at(0, value=THR + 1, state="crossed"))], P, st2)
     assert len(out) == 1 and out2 == []

@@ -75,7 +75,7 @@ def test_down_webhook_queues_then_each_alert_arrives_once_across_a_restart(tmp_p
     svc = AlertService(cfg, store, clock, **opts)
     svc.start()
     feed(svc, clock, item, [(3000, fc_at(3000))]
-         + [(3600, fc_at(600, value=THR + 1, state="crossed")),
+         + [(3600, fc_at(3600, value=THR + 1, state="crossed")),
             (4300, fc_at(4300, value=THR + 1, state="crossed"))])
     astore = AlertStore(store)
     assert [e["level"] for e in astore.events()] == ["approaching", "crossed", "crossed"]
@@ -120,7 +120,8 @@ def test_a_slow_hook_never_delays_the_refit_thread(tmp_path):
     svc.start()
     try:
         t0 = time.monotonic()
-        feed(svc, clock, cfg.items[0], [(0, fc_at(0, value=THR + 1, state="crossed"))])
+        feed(svc, clock, cfg.items[0], [(-60, fc_at(0, value=THR - 2, state="steady")),
+                                         (0, fc_at(0, value=THR + 1, state="crossed"))])
         took = time.monotonic() - t0
         assert took < 0.5
         assert wait_for(out.exists, 15)

@@ -41,6 +41,8 @@ def eta_clause(a: dict[str, Any]) -> str:
     """'forecast to cross at 14:05 UTC (in 42 min; 90 % interval ...)' or why there is none."""
     if a.get("eta_s") is None:
         return "no crossing forecast"
+    if a["eta_s"] == 0:
+        return "the fitted curve is already past the threshold"
     text = f"forecast to cross at {clock(a['crossing_at_s'])} (in {human_duration(a['eta_s'])}"
     lo, hi = a.get("eta_lo_s"), a.get("eta_hi_s")
     if lo is not None:

@@ -4,15 +4,15 @@ Levels an item's episode goes through (an *episode* starts when an item leaves `
 
     clear --(early end of the ETA interval within lead)--> approaching --(value past)--> crossed
       ^                                                        |                          |
-      +---- condition false for hold_s ("recovered") ----------+                          |
+      +---- early end beyond 2 x lead for hold_s ("recovered") +                          |
       +---- value inside by the hysteresis band, or inside for hold_s ("recovered") ------+
 
 Beside the episode: ``stale`` once when the sensor falls silent (``resumed`` when it speaks
 again), and ``regime`` when the fit reports that the surroundings changed at a new time.
 
-No flapping: a level is raised once and then holds; it clears only by the hysteresis band (a
-crossing) or after its condition has stayed false for ``hold_s`` (an approach, or a value that is
-back inside but not yet by the band).  While crossed, a reminder goes out every
+No flapping: a level is raised once and then holds; a crossing clears by the hysteresis band (or
+inside but not yet by the band, for ``hold_s``); an approach clears only when the early end of
+the interval has stayed beyond a band of one more lead (2 x lead) for ``hold_s``.  While crossed, a reminder goes out every
 ``remind_every_s`` unless the episode was acknowledged.
 
 :func:`step` is the whole engine: ``step(state, forecast, params, now, acked) -> events``; it
@@ -28,6 +28,7 @@ from thermeta.daemon.timefmt import parse_time
 
 LEVELS = ("approaching", "crossed", "recovered", "stale", "resumed", "regime")
 REGIME_NOTE = "the surroundings changed"
+REGIME_GAP_S = 1800.0  # a change found within this of the last one is the same change, re-estimated
 
 
 @dataclass(frozen=True)
@@ -39,6 +40,9 @@ class RuleParams:
     hysteresis: float = 0.5
     hold_s: float = 300.0
     remind_every_s: float = 1800.0
+    # How long until the next refit looks again: an approach is raised when the early end of the
+    # interval falls within lead + this, so the warning is never later than lead.
+    check_every_s: float = 0.0
 
     def __post_init__(self) -> None:
         for name in ("lead_s", "hold_s", "remind_every_s"):
@@ -48,10 +52,10 @@ class RuleParams:
             raise ValueError(f"hysteresis must be >= 0, got {self.hysteresis!r}")
 
     @classmethod
-    def of(cls, item_cfg: Any) -> RuleParams:
+    def of(cls, item_cfg: Any, check_every_s: float = 0.0) -> RuleParams:
         return cls(threshold=item_cfg.threshold, lead_s=item_cfg.lead_s,
                    hysteresis=item_cfg.hysteresis, hold_s=item_cfg.hold_s,
-                   remind_every_s=item_cfg.remind_every_s)
+                   remind_every_s=item_cfg.remind_every_s, check_every_s=check_every_s)
 
 
 @dataclass
@@ -111,16 +115,14 @@ def remaining_s(fc: dict[str, Any], key: str, now: float) -> float | None:
 
 
 def side_of(fc: dict[str, Any], threshold: float) -> str | None:
-    """Which side of the threshold is unsafe: from the direction of travel, else the value."""
-    d = fc.get("direction")
-    if d == "rising":
-        return "upper"
-    if d == "falling":
-        return "lower"
+    """Which side of the threshold is unsafe, judged when the item is first seen: an item starts
+    inside its limit, so below the threshold the limit is a ceiling ("upper"), above it a floor.
+    (The fitted direction alone is not trusted: an early fit on a few noisy readings can point
+    either way.)"""
     v = fc.get("value_now")
-    if v is None:
+    if v is None or v == threshold:
         return None
-    return None if v == threshold else ("upper" if v > threshold else "lower")
+    return "upper" if v < threshold else "lower"
 
 
 def is_past(v: float, side: str, threshold: float) -> bool:
@@ -133,13 +135,25 @@ def is_inside(v: float, side: str, threshold: float, band: float = 0.0) -> bool:
 
 
 def approach_due(fc: dict[str, Any], p: RuleParams, now: float) -> bool:
-    """A crossing is forecast within the horizon and the EARLY end of its interval within lead."""
+    """A crossing is forecast within the horizon and the EARLY end of its interval within lead
+    (plus the time to the next look)."""
     if fc.get("state") != "approaching" or not fc.get("fit_ok", True):
         return False
     early = remaining_s(fc, "eta_lo_s", now)
     if early is None:
         early = remaining_s(fc, "eta_s", now)
-    return early is not None and early <= p.lead_s
+    return early is not None and early <= p.lead_s + p.check_every_s
+
+
+def approach_eased(fc: dict[str, Any], p: RuleParams, now: float) -> bool:
+    """The approach no longer holds: no crossing forecast, or its early end beyond a band of one
+    more lead (lead + lead), so an estimate wandering about the lead does not flap."""
+    if fc.get("state") not in ("approaching", "crossed"):
+        return fc.get("state") != "learning"  # no fit yet is no news: hold the level
+    early = remaining_s(fc, "eta_lo_s", now)
+    if early is None:
+        early = remaining_s(fc, "eta_s", now)
+    return early is None or early > 2.0 * p.lead_s + p.check_every_s
 
 
 def step(st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float,
@@ -167,7 +181,8 @@ def step(st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float,
         side = st.side or side_of(fc, thr)
         if side is None:
             return events
-        if state == "crossed" or is_past(v, side, thr):
+        st.side = side
+        if is_past(v, side, thr):
             _enter(st, "crossed", side, now, new_episode=True)
             events.append(Event("crossed"))
         elif approach_due(fc, p, now):
@@ -179,7 +194,7 @@ def step(st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float,
         if is_past(v, side, thr):
             _enter(st, "crossed", side, now)
             events.append(Event("crossed"))
-        elif approach_due(fc, p, now):
+        elif not approach_eased(fc, p, now):
             st.off_since = None
         else:
             st.off_since = st.off_since if st.off_since is not None else now
@@ -208,15 +223,15 @@ def step(st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float,
 
 def _regime(st: ItemAlertState, fc: dict[str, Any], p: RuleParams) -> list[Event]:
     # The fit notes a change of the surroundings and starts its window there; the estimate of
-    # that moment may wander by a reading or two between refits, so only a start later than the
-    # last one alerted on by more than the hold time counts as new.
+    # that moment wanders as readings arrive, so only a start later than the last one alerted on
+    # by more than REGIME_GAP_S (or the hold time) counts as new.
     warnings = fc.get("warnings") or []
     if not any(str(w).startswith(REGIME_NOTE) for w in warnings):
         return []
     start = _t(fc.get("regime_start"))
     if start is None:
         return []
-    if st.regime_start is not None and start <= st.regime_start + p.hold_s:
+    if st.regime_start is not None and start <= st.regime_start + max(p.hold_s, REGIME_GAP_S):
         return []
     st.regime_start = start
     return [Event("regime", context={"regime_start": start})]

@@ -70,7 +70,7 @@ class AlertService:
         name = body.get("item") or cfg.name
         self.items.setdefault(name, cfg)
         now = self.clock.now()
-        params = RuleParams.of(cfg)
+        params = RuleParams.of(cfg, self.config.fit.refit_every_s)
         with self._lock:
             old = self.states.get(name) or ItemAlertState()
             st = ItemAlertState.from_json(old.to_json())

@@ -1,0 +1,395 @@
+"""The terminal dashboard: every item's forecast at a glance, read from the store.
+
+    collect(store, now)            -> Board (header facts + one Row per item)
+    render(board, width, height)   -> a rich renderable (fresh each frame)
+    watch(store, console, ...)     the loop behind ``thermeta watch`` (and ``run --dashboard``)
+
+Items are sorted by urgency (crossed, then the soonest early end of the ETA interval), grouped by
+site or first name/topic level when there are many.  Every state is shown as a symbol and a word;
+colour only repeats it.  When stdout is not a terminal, plain lines are printed instead.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from dataclasses import dataclass, field
+from typing import Any
+
+from rich.console import Console, Group
+from rich.table import Table
+from rich.text import Text
+
+from thermeta.daemon.alerts.message import CAUTION, UNIT_SIGN
+from thermeta.daemon.alerts.rules import remaining_s
+from thermeta.daemon.timefmt import human_duration
+
+STATE_LOOK = {  # symbol, word, style (colours of our own; the word always carries the meaning)
+    "crossed": ("✖", "crossed", "bold #ff6b6b"),
+    "approaching": ("▲", "approaching", "bold #ffb347"),
+    "stale": ("?", "stale", "#a0a0d0"),
+    "learning": ("…", "learning", "#9a9a9a"),
+    "steady": ("●", "steady", "#6fcf97"),
+}
+RANK = {"crossed": 0, "approaching": 1, "stale": 2, "learning": 3, "steady": 4}
+SPARK = "▁▂▃▄▅▆▇█"
+HEARTBEAT_LATE_S = 20.0
+GROUP_WHEN_MORE_THAN = 10
+
+
+@dataclass
+class Row:
+    item: str
+    state: str
+    unit: str = "C"
+    value: float | None = None
+    threshold: float | None = None
+    eta_s: float | None = None
+    eta_lo_s: float | None = None
+    eta_hi_s: float | None = None
+    ambient: float | None = None
+    tau_s: float | None = None
+    trend_per_h: float | None = None
+    spark: list[float] = field(default_factory=list)
+    group: str = ""
+    alert: str | None = None  # the open alert level, "+ack" when acknowledged
+
+    @property
+    def urgency(self) -> tuple:
+        soon = self.eta_lo_s if self.eta_lo_s is not None else self.eta_s
+        return (RANK.get(self.state, 5), math.inf if soon is None else soon, self.item)
+
+
+@dataclass
+class Board:
+    rows: list[Row]
+    connected: bool | None = None
+    running: bool = False
+    broker: str = "?"
+    readings_per_s: float | None = None
+    dead_letters: int | None = None
+    last_refit_at: float | None = None
+    heartbeat_at: float | None = None
+    now: float = 0.0
+
+
+def _group_of(item: str, body: dict[str, Any], topic: str | None) -> str:
+    if body.get("site"):
+        return str(body["site"])
+    if "/" in item:
+        return item.split("/", 1)[0]
+    if topic and "/" in topic:
+        return topic.split("/", 1)[0]
+    return item.split("-", 1)[0]
+
+
+def collect(store: Any, now: float | None = None, *, history_s: float = 3 * 3600.0,
+            spark_n: int = 24, stats: dict[str, Any] | None = None) -> Board:
+    """Everything one frame shows, read from the store (and the live stats when in-process)."""
+    now = time.time() if now is None else now
+    daemon = dict(store.get_meta("daemon") or {})
+    if stats:
+        daemon.update(stats, heartbeat_at=now, state="running")
+    beat = daemon.get("heartbeat_at")
+    running = daemon.get("state") == "running" and beat is not None and now - beat < HEARTBEAT_LATE_S
+    topics = {r["name"]: r.get("topic") for r in store.list_items(None)}
+    alert_levels = _alert_levels(store)
+    rows = []
+    for f in store.latest_forecasts():
+        d, name = f["forecast"], f["item"]
+        series = store.recent_readings(name, since_ts=now - history_s)
+        unit = d.get("unit", "C")
+        if unit != "C":
+            from thermeta.daemon.units import from_celsius
+
+            series = [(t, from_celsius(v, unit)) for t, v in series]
+        rows.append(Row(
+            item=name, state=f["state"], unit=unit, value=d.get("value_now"),
+            threshold=d.get("threshold"), eta_s=remaining_s(d, "eta_s", now),
+            eta_lo_s=remaining_s(d, "eta_lo_s", now), eta_hi_s=remaining_s(d, "eta_hi_s", now),
+            ambient=d.get("ambient"), tau_s=d.get("time_constant_s"),
+            trend_per_h=_trend_per_h(series), spark=_buckets(series, now - history_s, now, spark_n),
+            group=_group_of(name, d, topics.get(name)), alert=alert_levels.get(name)))
+    return Board(rows=rows, connected=daemon.get("connected"), running=running,
+                 broker=str(daemon.get("broker", "?")), readings_per_s=daemon.get("readings_per_s"),
+                 dead_letters=daemon.get("dead_letters"), last_refit_at=store.last_refit_at(),
+                 heartbeat_at=beat, now=now)
+
+
+def _alert_levels(store: Any) -> dict[str, str]:
+    try:
+        from thermeta.storage.alerts import AlertStore
+
+        a = AlertStore(store)
+        out = {}
+        for item, st in a.load_states().items():
+            if st.get("level", "clear") != "clear":
+                acked = a.ack_of(item, int(st.get("episode", 0))) is not None
+                out[item] = st["level"] + ("+ack" if acked else "")
+        return out
+    except Exception:  # noqa: BLE001 - no alert tables yet: the board still shows forecasts
+        return {}
+
+
+def _trend_per_h(series: list[tuple[float, float]], span_s: float = 1800.0) -> float | None:
+    """Least-squares slope of the last ``span_s`` of readings, in degrees per hour."""
+    if len(series) < 3:
+        return None
+    t_end = series[-1][0]
+    pts = [(t, v) for t, v in series if t >= t_end - span_s]
+    if len(pts) < 3:
+        return None
+    n = len(pts)
+    mt = sum(t for t, _ in pts) / n
+    mv = sum(v for _, v in pts) / n
+    sxx = sum((t - mt) ** 2 for t, _ in pts)
+    if sxx <= 0:
+        return None
+    # slope = sum((t - mean t)(v - mean v)) / sum((t - mean t)^2)
+    return 3600.0 * sum((t - mt) * (v - mv) for t, v in pts) / sxx
+
+
+def _buckets(series: list[tuple[float, float]], t0: float, t1: float, n: int) -> list[float]:
+    """Mean value per time bucket (NaN where empty), for the sparkline."""
+    sums, counts = [0.0] * n, [0] * n
+    for t, v in series:
+        i = min(n - 1, max(0, int((t - t0) / (t1 - t0) * n)))
+        sums[i] += v
+        counts[i] += 1
+    return [s / c if c else math.nan for s, c in zip(sums, counts)]
+
+
+def sparkline(values: list[float], threshold: float | None, width: int) -> str:
+    vals = values[-width:] if width < len(values) else values
+    finite = [v for v in vals if math.isfinite(v)]
+    if not finite:
+        return " " * len(vals)
+    lo, hi = min(finite), max(finite)
+    if threshold is not None and abs(threshold - hi) < 3 * (hi - lo + 1e-9):
+        lo, hi = min(lo, threshold), max(hi, threshold)
+    span = hi - lo or 1.0
+    return "".join(" " if not math.isfinite(v) else SPARK[min(7, int((v - lo) / span * 7.999))]
+                   for v in vals)
+
+
+def short_duration(s: float | None) -> str:
+    """Compact countdown: 45s, 42m, 3h05, 2d4h; '∞' for unbounded."""
+    if s is None or not math.isfinite(s):
+        return "∞"
+    s = max(0.0, s)
+    if s < 90:
+        return f"{s:.0f}s"
+    if s < 5400:
+        return f"{s / 60:.0f}m"
+    h, m = divmod(int(round(s / 60)), 60)
+    if h < 48:
+        return f"{h}h{m:02d}"
+    d, h = divmod(h, 24)
+    return f"{d}d{h}h"
+
+
+def eta_text(r: Row) -> str:
+    if r.state == "crossed":
+        return "past limit"
+    if r.eta_s is None:
+        return "none" if r.state == "steady" else "-"
+    text = short_duration(r.eta_s)
+    if r.eta_lo_s is not None or r.eta_hi_s is not None:
+        text += f" [{short_duration(r.eta_lo_s)}-{short_duration(r.eta_hi_s)}]"
+    return text
+
+
+def _num(v: float | None, fmt: str = "{:.1f}") -> str:
+    return "-" if v is None else fmt.format(v)
+
+
+def _arrow(trend: float | None) -> str:
+    if trend is None:
+        return "·"
+    return "↑" if trend > 0.05 else ("↓" if trend < -0.05 else "→")
+
+
+def visible(board: Board, text_filter: str = "", attention_only: bool = False) -> list[Row]:
+    rows = [r for r in board.rows if text_filter.lower() in r.item.lower()]
+    if attention_only:
+        rows = [r for r in rows if r.state in ("crossed", "approaching", "stale") or r.alert]
+    return sorted(rows, key=lambda r: r.urgency)
+
+
+def header_text(board: Board) -> Text:
+    t = Text()
+    if not board.running:
+        ago = (f", last heartbeat {human_duration(board.now - board.heartbeat_at)} ago"
+               if board.heartbeat_at else "")
+        t.append(f"✖ daemon not running{ago}", style="bold #ff6b6b")
+    else:
+        up = "connected" if board.connected else "DISCONNECTED"
+        t.append(f"{'●' if board.connected else '✖'} {board.broker} {up}",
+                 style="#6fcf97" if board.connected else "bold #ff6b6b")
+    rate = "-" if board.readings_per_s is None else f"{board.readings_per_s:.1f}"
+    refit = ("never" if board.last_refit_at is None
+             else f"{short_duration(board.now - board.last_refit_at)} ago")
+    dead = "-" if board.dead_letters is None else board.dead_letters
+    t.append(f" · {rate} readings/s · {dead} dead letters · refit {refit}")
+    return t
+
+
+def render(board: Board, width: int = 80, height: int = 24, *, text_filter: str = "",
+           attention_only: bool = False, typing: bool = False) -> Group:
+    """One frame: header, the items table, key help and the caution line."""
+    rows = visible(board, text_filter, attention_only)
+    wide = width >= 110
+    spark_w = 24 if wide else 8
+    table = Table(box=None, padding=(0, 1, 0, 0), pad_edge=False, expand=False, show_edge=False,
+                  header_style="bold")
+    table.add_column("state", no_wrap=True, min_width=13 if wide else 12)
+    table.add_column("item", no_wrap=True, overflow="ellipsis",
+                     max_width=max(10, width - 62) if not wide else 32)
+    table.add_column("now", justify="right", no_wrap=True)
+    table.add_column("limit", justify="right", no_wrap=True)
+    table.add_column("ETA [90 %]", no_wrap=True)
+    table.add_column("amb", justify="right", no_wrap=True)
+    table.add_column("tau", justify="right", no_wrap=True)
+    table.add_column(f"last {3}h", no_wrap=True, width=spark_w)
+    room = max(1, height - 6)
+    grouped = len(rows) > GROUP_WHEN_MORE_THAN and len({r.group for r in rows}) > 1
+    ordered = rows
+    if grouped:
+        first: dict[str, tuple] = {}
+        for r in rows:
+            first.setdefault(r.group, r.urgency)
+        ordered = sorted(rows, key=lambda r: (first[r.group], r.urgency))
+    shown, current = 0, None
+    lines_used = 0
+    for r in ordered:
+        if lines_used >= room:
+            break
+        if grouped and r.group != current:
+            if lines_used + 1 >= room:
+                break
+            current = r.group
+            n = sum(1 for x in rows if x.group == current)
+            table.add_row(Text(f"{current} ({n})", style="bold underline"), "", "", "", "", "", "", "")
+            lines_used += 1
+        sym, word, style = STATE_LOOK.get(r.state, ("·", r.state, ""))
+        label = Text(f"{sym} {word}", style=style)
+        if r.alert and r.alert.endswith("+ack"):
+            label.append(" ack", style="dim")
+        sign = UNIT_SIGN.get(r.unit, r.unit) if wide else ""
+        table.add_row(label, r.item, f"{_num(r.value)}{sign}{_arrow(r.trend_per_h)}",
+                      _num(r.threshold), Text(eta_text(r), style=style if r.state in
+                                              ("crossed", "approaching") else ""),
+                      _num(r.ambient, "{:.0f}" if not wide else "{:.1f}"), short_duration(r.tau_s)
+                      if r.tau_s else "-", Text(sparkline(r.spark, r.threshold, spark_w),
+                                                style="#7fb3d5"))
+        shown += 1
+        lines_used += 1
+    parts: list[Any] = [header_text(board)]
+    counts = {s: sum(1 for r in board.rows if r.state == s) for s in RANK}
+    summary = ", ".join(f"{n} {s}" for s, n in counts.items() if n)
+    parts.append(Text(f"{len(board.rows)} items: {summary or 'none yet'}", style="dim"))
+    parts.append(table)
+    if shown < len(rows):
+        parts.append(Text(f"… {len(rows) - shown} more (filter with / or a)", style="dim"))
+    keys = "keys: q quit · a attention only · / filter · esc clear"
+    if typing:
+        keys = f"filter: {text_filter}_  (enter to keep, esc to clear)"
+    elif text_filter or attention_only:
+        keys += f"   [showing: {'attention only ' if attention_only else ''}{text_filter!r}]"
+    parts.append(Text(keys, style="dim"))
+    parts.append(Text(CAUTION, style="italic"))
+    return Group(*parts)
+
+
+def plain_lines(board: Board) -> list[str]:
+    """The frame as plain lines (stdout not a terminal): one for the daemon, one per item."""
+    out = [header_text(board).plain]
+    for r in visible(board):
+        out.append(f"{r.item} {r.state} now {_num(r.value)} {r.unit} limit {_num(r.threshold)} "
+                   f"eta {eta_text(r)} ambient {_num(r.ambient)} tau {human_duration(r.tau_s)}"
+                   + (f" alert {r.alert}" if r.alert else ""))
+    return out
+
+
+# -- the loops --------------------------------------------------------------------------------
+def watch(store: Any, console: Console, *, refresh_s: float = 2.0, once: bool = False,
+          stats=None, stop=None) -> int:
+    """Show the board until the user presses q (or ``stop`` is set); plain lines when not a tty."""
+    import sys
+
+    def board() -> Board:
+        return collect(store, stats=stats() if stats else None)
+
+    if once or not console.is_terminal:
+        while True:
+            for line in plain_lines(board()):
+                print(line, flush=True)
+            if once:
+                return 0
+            if stop is not None:
+                if stop.wait(refresh_s):
+                    return 0
+            else:
+                time.sleep(refresh_s)
+    from rich.live import Live
+
+    from thermeta.daemon.dashboard_keys import KeyReader
+
+    state = {"filter": "", "attention": False, "typing": False}
+    with KeyReader(sys.stdin) as keys, Live(console=console, screen=True, auto_refresh=False) as live:
+        next_frame = 0.0
+        while stop is None or not stop.is_set():
+            if time.monotonic() >= next_frame:
+                size = console.size
+                live.update(render(board(), size.width, size.height, text_filter=state["filter"],
+                                   attention_only=state["attention"], typing=state["typing"]),
+                            refresh=True)
+                next_frame = time.monotonic() + refresh_s
+            key = keys.read(min(0.25, refresh_s))
+            if key is None:
+                continue
+            if _on_key(state, key):
+                return 0
+            next_frame = 0.0
+    return 0
+
+
+def _on_key(state: dict[str, Any], key: str) -> bool:
+    """Apply one key press; True means quit."""
+    if state["typing"]:
+        if key in ("\r", "\n"):
+            state["typing"] = False
+        elif key == "\x1b":
+            state.update(typing=False, filter="")
+        elif key in ("\x7f", "\b"):
+            state["filter"] = state["filter"][:-1]
+        elif key.isprintable():
+            state["filter"] += key
+        return False
+    if key in ("q", "Q", "\x03"):
+        return True
+    if key == "a":
+        state["attention"] = not state["attention"]
+    elif key == "/":
+        state.update(typing=True, filter="")
+    elif key == "\x1b":
+        state.update(filter="", attention=False)
+    return False
+
+
+def run_foreground(service: Any, stop: Any) -> None:
+    """``thermeta run --dashboard``: the board in this terminal; q stops the service."""
+    import logging
+
+    console = Console()
+    quiet = []
+    for h in logging.getLogger().handlers:  # log lines would tear the full-screen frame
+        if isinstance(h, logging.StreamHandler) and console.is_terminal:
+            quiet.append((h, h.level))
+            h.setLevel(logging.CRITICAL)
+    try:
+        watch(service.store, console, stats=lambda: service.stats, stop=stop)
+    finally:
+        for h, level in quiet:
+            h.setLevel(level)
+        stop.set()
