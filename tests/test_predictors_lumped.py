@@ -152,3 +152,16 @@ def test_predict_draws_the_fitted_curve():
                            corruption=Corruption(noise=0.1))
     fm = forecast(m.t, m.y, 8.0, ambient_t=m.ambient_t, ambient_y=m.ambient_y)
     assert predict(fm, np.array([fm.crossing_t]))[0] == pytest.approx(8.0, abs=1e-2)
+
+
+def test_limit_side_and_window():
+    """limit="lower": a chill already below the target is past (0) while an upper limit on the
+    same readings is not; window_s keeps only the newest stretch of history."""
+    s = synth.lumped(10, T0=95, ambient=10, k_per_s=1 / 600, threshold=20, duration_s=1800,
+                     dt_s=10, corruption=Corruption(noise=0.2, quantum=0.1))
+    assert forecast(s.t, s.y, 20.0, limit="lower").eta_s == 0.0
+    assert forecast(s.t, s.y, 20.0, limit="upper").eta_s is None
+    fw = forecast(s.t, s.y, 20.0, window_s=600.0)
+    assert fw.n_points <= 61 and fw.regime_start >= s.t_last - 600.0
+    with pytest.raises(ValueError):
+        forecast(s.t, s.y, 20.0, limit="sideways")
