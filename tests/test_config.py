@@ -223,3 +223,12 @@ def test_shipped_example_configs_are_valid(name):
     assert cfg.items and cfg.items[0].name == "reefer-07"
     if name == "minimal.toml":
         assert path.read_text().split("\n", 1)[1] == MINIMAL
+
+
+def test_run_refuses_a_bad_config_with_exit_2(tmp_path):
+    """`thermeta run` validates the whole config before starting: problems on stderr, exit 2."""
+    bad = write(tmp_path, MINIMAL.replace("refit_every = 30", "refit_every = 0"), "bad.toml")
+    r = subprocess.run([sys.executable, "-m", "thermeta.daemon.cli", "run", "--config", str(bad)],
+                       capture_output=True, text=True, timeout=60)
+    assert r.returncode == 2
+    assert r.stderr.strip() == f"{bad}:9: fit.refit_every: must be > 0, got 0"

@@ -346,3 +346,30 @@ def test_limit_side_decides_crossed(tmp_path):
     assert rf.run_once() == {"crate": "steady", "tray": "crossed"}
     assert (got["crate"]["limit"], got["tray"]["limit"]) == ("upper", "lower")
     store.close()
+
+
+def test_status_text_reads_the_store(tmp_path):
+    """`thermeta status` (no daemon running) prints the counts, the last refit and one line per
+    item with its state and crossing, read from the store."""
+    import subprocess
+    import sys
+
+    rng = np.random.default_rng(4)
+    t_rel = np.arange(0, 1800, 30.0)
+    y = warming(t_rel) + rng.normal(0, 0.02, t_rel.size)
+    cfg, store, act = seeded_store(tmp_path, ITEMS, {"warm": (T0 - 1800 + t_rel, y)})
+    Refitter(store, cfg, ManualClock(T0), act).run_once()
+    store.close()
+    cfg_path = tmp_path / "c.toml"
+    cfg_path.write_text(f'[storage]\nurl = "{cfg.storage.url}"\n{ITEMS}')
+    r = subprocess.run([sys.executable, "-m", "thermeta.daemon.cli", "status", "--config",
+                        str(cfg_path)], capture_output=True, text=True, timeout=60)
+    assert r.returncode == 0, r.stderr
+    lines = r.stdout.splitlines()
+    assert lines[0] == "daemon not running (last heartbeat never)"
+    assert lines[1].startswith("items 1, readings 60, dead letters 0, last refit 2027-01-15T08:00:00Z (")
+    rows = {ln.split()[0]: ln.split()[1] for ln in lines[3:-1]}
+    assert rows == {"warm": "approaching", "far": "-", "new": "-", "past": "-"}
+    missing = subprocess.run([sys.executable, "-m", "thermeta.daemon.cli", "status", "--config",
+                              str(tmp_path / "nowhere.toml")], capture_output=True, text=True, timeout=60)
+    assert missing.returncode == 2
