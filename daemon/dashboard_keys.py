@@ -14,6 +14,7 @@ class KeyReader:
         self.stream = stream or sys.stdin
         self.fd: int | None = None
         self._saved: Any = None
+        self._pending = ""
 
     def __enter__(self) -> KeyReader:
         try:
@@ -37,6 +38,9 @@ class KeyReader:
 
     def read(self, timeout_s: float) -> str | None:
         """One key, or None after ``timeout_s``."""
+        if self._pending:
+            key, self._pending = self._pending[0], self._pending[1:]
+            return key
         if self.fd is None:
             import time
 
@@ -45,5 +49,9 @@ class KeyReader:
         ready, _, _ = select.select([self.fd], [], [], timeout_s)
         if not ready:
             return None
-        data = os.read(self.fd, 32).decode(errors="replace")
-        return data[:1] if data else None
+        data = os.read(self.fd, 64).decode(errors="replace")
+        if not data:
+            return None
+        # Keys typed (or pasted) together arrive in one read: hand them out one by one.
+        self._pending = data[1:]
+        return data[0]
