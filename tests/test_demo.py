@@ -69,10 +69,10 @@ TOLERANCE = {
 
 @pytest.fixture(scope="module")
 def headless_run(tmp_path_factory):
-    """One `thermeta demo --embedded --headless --duration 40 --speed 240` run for the tests below."""
+    """One `thermeta demo --embedded --headless --duration 35 --speed 270` run for the tests below."""
     summary_path = tmp_path_factory.mktemp("demo") / "summary.json"
     t0 = time.monotonic()
-    r = subprocess.run(DEMO + ["--embedded", "--headless", "--duration", "40", "--speed", "240",
+    r = subprocess.run(DEMO + ["--embedded", "--headless", "--duration", "35", "--speed", "270",
                                "--summary-json", str(summary_path)],
                        capture_output=True, text=True, timeout=120)
     wall = time.monotonic() - t0
@@ -82,7 +82,7 @@ def headless_run(tmp_path_factory):
 
 def test_demo_headless_forecasts_against_truth(headless_run):
     """The headless demo exits 0, prints forecast lines and the comparison with the truth, plays
-    240 simulated seconds per real second, and lands its forecasts within the stated tolerance of
+    270 simulated seconds per real second, and lands its forecasts within the stated tolerance of
     the simulator's truth."""
     r, wall, s = headless_run
     assert r.returncode == 0, r.stderr[-2000:]
@@ -91,7 +91,7 @@ def test_demo_headless_forecasts_against_truth(headless_run):
     assert "forecast eastpier/reefer-12/load-top: approaching" in r.stdout
     assert "forecasts against the simulated truth" in r.stdout
     played = s["sim_end"] - s["t_start"]
-    assert 0.85 * 40 * 240 < played < 1.15 * 40 * 240
+    assert 0.85 * 35 * 270 < played < 1.15 * 35 * 270
     items = s["items"]
     for name, tol in TOLERANCE.items():
         ahead = items[name]["ahead"]
