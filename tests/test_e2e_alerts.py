@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import json
 import math
+import subprocess
 import time
 
 import numpy as np
@@ -77,6 +78,10 @@ remind_every = 100000
 [[hook]]
 kind = "webhook"
 url = "{receiver.url}"
+
+[[hook]]
+kind = "mqtt"
+levels = ["approaching"]
 """)
     cfg = load_config(cfg_path)
     clock = ManualClock(T0)
@@ -85,6 +90,9 @@ url = "{receiver.url}"
     pub = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id="e2e-sensor")
     pub.connect(broker.host, broker.port)
     pub.loop_start()
+    sub = subprocess.Popen(["mosquitto_sub", "-h", broker.host, "-p", str(broker.port), "-q", "1",
+                            "-t", "thermeta/alert/#", "-v", "-W", "60"],
+                           stdout=subprocess.PIPE, text=True)
     try:
         svc.start()
         assert wait_for(svc.link.connected.is_set)
@@ -104,7 +112,10 @@ url = "{receiver.url}"
             assert wait_for(lambda: len(svc.store.recent_readings("trailer-4")) == n_sent)
             svc.refit_now()
         assert wait_for(lambda: svc.alerts.astore.outbox_counts()["pending"] == 0)
+        time.sleep(0.3)
     finally:
+        sub.terminate()
+        mqtt_lines = sub.communicate(timeout=10)[0].splitlines()
         svc.stop()
         pub.loop_stop()
         pub.disconnect()
@@ -118,3 +129,8 @@ url = "{receiver.url}"
     assert recovered["at_s"] > T0 + T_COOL
     assert "trailer-4 is approaching its limit" in approach["sentence"]
     assert len({a["id"] for a in alerts}) == len(alerts)  # each alert posted once
+    # the mqtt hook, limited to `approaching`, published exactly that one alert
+    assert len(mqtt_lines) == 1
+    topic, payload = mqtt_lines[0].split(" ", 1)
+    assert topic == "thermeta/alert/trailer-4"
+    assert json.loads(payload)["id"] == approach["id"]
