@@ -23,6 +23,7 @@ from numpy.typing import ArrayLike, NDArray
 from scipy.optimize import least_squares
 from thermeta.predictors import conduction_eta as ceta
 from thermeta.predictors.conduction_ambient import AmbientFn, make_ambient_fn, ramp_part
+from thermeta.predictors.conduction_profile import profile_interval
 from thermeta.predictors.conduction_series import (
     BIOT_MAX,
     BIOT_MIN,
@@ -41,6 +42,10 @@ AMBIENT_BOUNDS = (-100.0, 300.0)
 N_DRAWS = 400
 _BI_GRID = (0.01, 0.06, 0.3, 1.0, 3.0, 10.0, 40.0)
 _K_SPAN_GRID = tuple(np.geomspace(0.03, 30.0, 11))
+PROFILE_METHOD = (
+    "profile likelihood: refits constrained to cross at each trial time, "
+    "n ln(RSS/RSS_min) <= chi2_1(0.90)"
+)
 INTERVAL_METHOD = (
     "delta method by simulation: draws from the fit's sampling distribution (multivariate t, "
     "scale s^2 (J'J)^-1) pushed through the exact crossing time"
@@ -163,10 +168,13 @@ class ConductionFit:
     ambient_hi: float | None = None
     value_at_last: float = math.nan
     interval_method: str = INTERVAL_METHOD
+    interval_kind: str = "draws"
     ambient_note: str | None = None
     warnings: list[str] = field(default_factory=list)
     _curve: _Curve | None = field(default=None, repr=False)
     _draws: Float | None = field(default=None, repr=False)
+    _data: tuple[Float, Float] | None = field(default=None, repr=False)
+    _bounds: tuple[list[float], list[float]] | None = field(default=None, repr=False)
 
     def predict(self, t_abs: ArrayLike) -> Float:
         """Fitted centre temperature at absolute times (also beyond the data)."""
@@ -202,6 +210,17 @@ class ConductionFit:
         if eta == 0.0:
             return 0.0, 0.0, 0.0
         lo = hi = None
+        if self.interval_kind == "profile" and math.isfinite(eta) and self._data is not None:
+            try:
+                with np.errstate(all="ignore"):
+                    lo, hi = profile_interval(self, *self._data, threshold, t_now, eta,
+                                              *self._bounds)  # type: ignore[misc]
+                lo = None if lo is None else min(lo, eta)
+                hi = None if hi is None else max(hi, eta)
+                return eta, lo, hi
+            except (ArithmeticError, ValueError, np.linalg.LinAlgError) as exc:
+                self.warnings.append(f"profile interval failed ({exc}); used draws")
+                self.interval_method = INTERVAL_METHOD
         if self._draws is not None:
             draws = self._draws
             if self._curve.mode == "measured":
@@ -260,6 +279,7 @@ def fit_conduction(
     fit_start: bool = False,
     ambient_bounds: tuple[float, float] = AMBIENT_BOUNDS,
     ambient_sd: float = 0.0,
+    interval: str = "auto",
     min_points: int = 8,
 ) -> ConductionFit:
     """Fit the centre-probe curve to cleaned readings ``y`` at epoch seconds ``t_s``.
@@ -269,11 +289,16 @@ def fit_conduction(
     the series); neither: fitted.  start_s: the episode start when the body was uniform (default
     the first reading); fit_start also fits an offset to it.  ambient_sd > 0 (known mode) says
     the given ambient is only known to that sd: the ambient is then fitted with a Gaussian prior
-    centred on it, so the intervals carry that doubt.  A failed fit is returned with
+    centred on it, so the intervals carry that doubt.  interval: "profile" (profile likelihood
+    of the crossing time; slower, better coverage), "draws" (simulated delta method, also used
+    for the Bi, k and ambient intervals) or "auto" (profile with a constant ambient, draws with
+    a measured one, where each profile refit costs ~5x more).  A failed fit is returned with
     ``ok=False`` and a reason; ValueError only for a bad geometry or mismatched arrays.
     """
     if geometry not in GEOMETRIES:
         raise ValueError(f"geometry must be one of {', '.join(GEOMETRIES)}, got {geometry!r}")
+    if interval not in ("profile", "draws", "auto"):
+        raise ValueError(f"interval must be 'profile', 'draws' or 'auto', got {interval!r}")
     t = np.asarray(t_s, dtype=float)
     yy = np.asarray(y, dtype=float)
     if t.shape != yy.shape or t.ndim != 1:
@@ -317,6 +342,8 @@ def fit_conduction(
             soft.ambient_mode = "known"
             fit = soft
     fit.ambient_note = note
+    if interval == "profile" or (interval == "auto" and mode != "measured"):
+        fit.interval_kind, fit.interval_method = "profile", PROFILE_METHOD
     return fit
 
 
@@ -387,6 +414,7 @@ def _fit_curve_raw(curve: _Curve, t: Float, y: Float) -> ConductionFit:
     fit.lag_factor_j = float(c1)
     fit.value_at_last = float(curve.full(p, t[-1:])[0])
     fit.cov = _covariance(curve, p, t, rss, n)
+    fit._data, fit._bounds = (t, y), (lo, hi)
     fit._draws = (ceta.draw_params(p, fit.cov, N_DRAWS, dof=n - p.size)
                   if fit.cov is not None else None)
     if fit._draws is not None:

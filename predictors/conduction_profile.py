@@ -1,0 +1,128 @@
+"""Profile-likelihood interval for the crossing time of a fitted core-probe curve.
+
+For a trial crossing instant tau the curve is refitted under the constraint T(tau) = threshold.
+The constraint is linear in the linear parameters (Ti[, Ta]), so for given nonlinear parameters q
+it is met exactly by  c = c_p + N lam  (c_p the minimum-norm solution, N the constraint's null
+space) and lam is a linear least-squares solve; q is then optimised starting from the best fit.
+With sigma profiled out, the likelihood-ratio statistic is
+
+    D(tau) = n ln(RSS(tau) / RSS_min)
+
+and the 90 % interval is {tau : D(tau) <= chi2_1(0.90) = 2.706}.  An end that is not reached
+within the search horizon is unbounded (None): some curves that fit about as well never cross.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import TYPE_CHECKING
+
+import numpy as np
+from numpy.typing import NDArray
+from scipy.optimize import brentq, least_squares
+from thermeta.predictors.conduction_eta import etas
+
+if TYPE_CHECKING:
+    from thermeta.predictors.conduction import ConductionFit, _Curve
+
+Float = NDArray[np.float64]
+CHI2_1_90 = 2.705543454095404
+
+
+def _constrained_residual(
+    curve: _Curve, q: Float, t: Float, y: Float, tau: float, threshold: float
+) -> tuple[Float, Float]:
+    a_mat, r0 = curve.basis(q, t)
+    a_c, r0_c = curve.basis(q, np.array([tau]))
+    row, b = a_c[0], threshold - r0_c[0]
+    target = y - r0
+    if curve.prior is not None:
+        a_mat = np.vstack([a_mat, [0.0, curve.prior[1]]])
+        target = np.append(target, curve.prior[0] * curve.prior[1])
+    norm2 = float(row @ row)
+    if norm2 < 1e-300:
+        return np.full(target.size, 1e6), np.zeros(row.size)
+    c_p = row * b / norm2
+    if row.size == 1:
+        c = c_p
+    else:
+        null = np.array([row[1], -row[0]]) / math.sqrt(norm2)
+        col = a_mat @ null
+        denom = float(col @ col)
+        lam = float(col @ (target - a_mat @ c_p)) / denom if denom > 0 else 0.0
+        c = c_p + lam * null
+    return target - a_mat @ c, c
+
+
+def profile_interval(
+    fit: ConductionFit, t: Float, y: Float, threshold: float, t_now: float, eta_s: float,
+    lo_bounds: list[float], hi_bounds: list[float],
+) -> tuple[float | None, float | None]:
+    """(lo_s, hi_s) of the 90 % profile-likelihood interval for the crossing, from t_now."""
+    curve = fit._curve
+    if curve is None or not math.isfinite(eta_s) or fit.rss <= 0:
+        return None, None
+    n = int(t.size)
+    n_lin = len(curve.linear_names)
+    q_hat = fit.params[n_lin:].copy()
+    rss_min = fit.rss
+    lo_b, hi_b = np.array(lo_bounds), np.array(hi_bounds)
+    state = {"q": q_hat}
+
+    def stat(tau: float) -> float:
+        def res(q: Float) -> Float:
+            return _constrained_residual(curve, q, t, y, tau, threshold)[0][:n]
+
+        q0 = np.clip(state["q"], lo_b, hi_b)
+        sol = least_squares(res, q0, bounds=(lo_b, hi_b), method="trf", xtol=1e-6, ftol=1e-6,
+                            max_nfev=40)
+        r = sol.fun
+        rss = float(r @ r)
+        state["q"] = sol.x
+        return n * math.log(max(rss, rss_min) / rss_min) - CHI2_1_90
+
+    t_hat = t_now + eta_s
+    scale = max(eta_s, 0.02 * curve.span_s, 1.0)
+    # First step from the delta method's sd (gradient by central differences), so the search
+    # brackets each end within a few steps however narrow the interval is.
+    first = 0.03 * scale
+    if fit.cov is not None and np.all(np.isfinite(fit.cov)):
+        p_hat = fit.params
+        sd_p = np.sqrt(np.maximum(np.diag(fit.cov), 0.0))
+        h = np.clip(0.1 * sd_p, 1e-9, 0.01 * np.maximum(np.abs(p_hat), 1.0))
+        rows = np.vstack([p_hat + np.diag(h), p_hat - np.diag(h)])
+        e = etas(curve, rows, threshold, t_now, curve.span_s)
+        if np.all(np.isfinite(e)):
+            grad = (e[: p_hat.size] - e[p_hat.size:]) / (2 * h)
+            sd = math.sqrt(max(float(grad @ fit.cov @ grad), 0.0))
+            if sd > 0:
+                first = min(first, 0.5 * sd)
+    horizon = t_now + 50.0 * max(eta_s, curve.span_s)
+
+    def search(direction: int) -> float | None:
+        state["q"] = q_hat
+        prev, step = t_hat, max(first, 0.5)
+        while True:
+            tau = prev + direction * step
+            if direction < 0 and tau <= t_now:
+                tau = t_now
+                return 0.0 if stat(tau) <= 0 else _refine(prev, tau)
+            if direction > 0 and tau >= horizon:
+                return None
+            if stat(tau) > 0:
+                return _refine(prev, tau)
+            prev, step = tau, step * 1.8
+
+    def _refine(inside: float, outside: float) -> float:
+        q_keep = state["q"]
+        try:
+            root = brentq(stat, min(inside, outside), max(inside, outside),
+                          xtol=max(0.01 * abs(outside - inside), 0.5), maxiter=30)
+        except ValueError:
+            root = outside
+        state["q"] = q_keep
+        return float(root) - t_now
+
+    hi = search(+1)
+    lo = search(-1)
+    return lo, hi
