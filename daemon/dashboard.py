@@ -313,12 +313,15 @@ def plain_lines(board: Board) -> list[str]:
 
 # -- the loops --------------------------------------------------------------------------------
 def watch(store: Any, console: Console, *, refresh_s: float = 2.0, once: bool = False,
-          stats=None, stop=None) -> int:
-    """Show the board until the user presses q (or ``stop`` is set); plain lines when not a tty."""
+          stats=None, stop=None, now_fn=None) -> int:
+    """Show the board until the user presses q (or ``stop`` is set); plain lines when not a tty.
+
+    ``now_fn`` is the service's clock when it runs simulated time (the demo), so countdowns and
+    ages are counted in the same time as the forecasts."""
     import sys
 
     def board() -> Board:
-        return collect(store, stats=stats() if stats else None)
+        return collect(store, now_fn() if now_fn else None, stats=stats() if stats else None)
 
     if once or not console.is_terminal:
         while True:
@@ -377,19 +380,22 @@ def _on_key(state: dict[str, Any], key: str) -> bool:
     return False
 
 
-def run_foreground(service: Any, stop: Any) -> None:
-    """``thermeta run --dashboard``: the board in this terminal; q stops the service."""
+def run_foreground(service: Any, stop: Any = None) -> None:
+    """``thermeta run --dashboard``: the board in this terminal until q (or ``stop`` is set)."""
     import logging
 
     console = Console()
     quiet = []
-    for h in logging.getLogger().handlers:  # log lines would tear the full-screen frame
-        if isinstance(h, logging.StreamHandler) and console.is_terminal:
+    for h in logging.getLogger().handlers:  # log lines to the terminal would tear the frame
+        if (isinstance(h, logging.StreamHandler) and not isinstance(h, logging.FileHandler)
+                and console.is_terminal):
             quiet.append((h, h.level))
             h.setLevel(logging.CRITICAL)
     try:
-        watch(service.store, console, stats=lambda: service.stats, stop=stop)
+        watch(service.store, console, stats=lambda: service.stats, stop=stop,
+              now_fn=service.clock.now)
     finally:
         for h, level in quiet:
             h.setLevel(level)
-        stop.set()
+        if stop is not None:
+            stop.set()
