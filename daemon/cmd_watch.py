@@ -17,7 +17,6 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def run(args: argparse.Namespace) -> int:
     from rich.console import Console
-
     from thermeta.daemon.cmd_status import open_store
     from thermeta.daemon.config import load_config
     from thermeta.daemon.dashboard import watch

@@ -19,7 +19,6 @@ from typing import Any
 from rich.console import Console, Group
 from rich.table import Table
 from rich.text import Text
-
 from thermeta.daemon.alerts.message import CAUTION, UNIT_SIGN
 from thermeta.daemon.alerts.rules import remaining_s
 from thermeta.daemon.timefmt import human_duration
@@ -335,7 +334,6 @@ def watch(store: Any, console: Console, *, refresh_s: float = 2.0, once: bool = 
             else:
                 time.sleep(refresh_s)
     from rich.live import Live
-
     from thermeta.daemon.dashboard_keys import KeyReader
 
     state = {"filter": "", "attention": False, "typing": False}

@@ -30,7 +30,7 @@ class KeyReader:
             self.fd = None
         return self
 
-    def __exit__(self, *exc: Any) -> None:
+    def __exit__(self, *exc: object) -> None:
         if self.fd is not None and self._saved is not None:
             import termios
 

@@ -31,7 +31,6 @@ from sqlalchemy import (
     select,
     update,
 )
-
 from thermeta.storage.schema import _Id, metadata
 
 alert_state = Table(

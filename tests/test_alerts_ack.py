@@ -7,7 +7,6 @@ from types import SimpleNamespace
 
 from test_alerts_rules import T0_EPOCH, THR, fc_at
 from test_outbox import write_config
-
 from thermeta.daemon.alerts.service import AlertService
 from thermeta.daemon.clock import ManualClock
 from thermeta.daemon.config import load_config

@@ -10,7 +10,6 @@ from __future__ import annotations
 import math
 
 import pytest
-
 from thermeta.daemon.alerts.message import build_alert, sentence
 from thermeta.daemon.alerts.rules import ItemAlertState, RuleParams, remaining_s, step
 from thermeta.predictors.result import rfc3339
@@ -77,7 +76,7 @@ def test_approaching_once_at_least_lead_before_the_true_crossing_then_crossed_th
     assert not any(ev.reminder for _, ev in out)  # crossed for less than remind_every_s
     levels = [ev.level for _, ev in out]
     assert levels == ["approaching", "crossed", "recovered"]
-    t_app, t_crossed, t_rec = (t for t, _ in out)
+    t_app, t_crossed, _t_rec = (t for t, _ in out)
     assert t_cross - t_app >= P.lead_s
     assert t_crossed >= t_cross and t_crossed - t_cross < 300 + 1e-9
     assert newton(0) < THR  # the start is inside the limit
@@ -144,7 +143,7 @@ def test_approach_that_eases_clears_only_after_hold():
 
 def test_reminders_while_crossed_and_ack_silences_them():
     """Crossed for 2 h with remind_every 30 min: 4 reminders; acknowledged: none."""
-    seq = [FIRST] + [(60.0 * i, fc_at(0, value=THR + 2, state="crossed")) for i in range(0, 121)]
+    seq = [FIRST] + [(60.0 * i, fc_at(0, value=THR + 2, state="crossed")) for i in range(121)]
     _, out = run(seq, P)
     assert [e.reminder for _, e in out] == [False, True, True, True, True]
     assert [t for t, _ in out] == [0, 1800, 3600, 5400, 7200]

@@ -16,7 +16,6 @@ import uuid
 
 import pytest
 from rich.console import Console
-
 from thermeta.daemon.dashboard import _on_key, collect, render, short_duration, sparkline
 from thermeta.predictors.result import rfc3339
 from thermeta.storage.store import Store
@@ -130,7 +129,8 @@ def test_watch_prints_plain_lines_when_not_a_terminal(tmp_path):
     cfg.write_text(f'[storage]\nurl = "{url}"\n[[item]]\nname = "trailer-4"\n'
                    'topic = "fleet/trailer-4/load"\nthreshold = -15.0\n')
     out = subprocess.run([sys.executable, "-m", "thermeta.daemon.cli", "watch", "--config",
-                          str(cfg), "--once"], capture_output=True, text=True, timeout=60)
+                          str(cfg), "--once"], capture_output=True, text=True, timeout=60,
+                         check=False)
     assert out.returncode == 0, out.stderr
     lines = out.stdout.splitlines()
     assert "\x1b[" not in out.stdout
@@ -140,9 +140,18 @@ def test_watch_prints_plain_lines_when_not_a_terminal(tmp_path):
 
 
 # -- a real terminal -------------------------------------------------------------------------
+def _daemon_meta(store: Store) -> dict:
+    """The daemon's heartbeat, or {} while it has not made its tables yet."""
+    from sqlalchemy import inspect
+
+    if not inspect(store.engine).has_table("meta"):
+        return {}
+    return store.get_meta("daemon") or {}
+
+
 def _tmux(sock: str, *args: str) -> str:
     return subprocess.run(["tmux", "-L", sock, *args], capture_output=True, text=True,
-                          timeout=20).stdout
+                          timeout=20, check=False).stdout
 
 
 def _wait_pane(sock: str, needle: str, timeout: float = 20.0) -> str:
@@ -189,16 +198,16 @@ ambient = 27.0
     sock = f"thermeta-test-{uuid.uuid4().hex[:8]}"
     try:
         # A new client id has no session yet: publish only once the daemon has subscribed.
-        db = Store(f"sqlite:///{tmp_path / 'd.db'}")
+        db_file = tmp_path / "d.db"
         deadline = time.monotonic() + 20
-        while time.monotonic() < deadline:
-            try:
-                if (db.get_meta("daemon") or {}).get("connected"):
-                    break
-            except Exception:  # noqa: BLE001 - the daemon may not have made its tables yet
-                pass
+        connected = False
+        while not connected and time.monotonic() < deadline:
             time.sleep(0.2)
-        db.close()
+            if db_file.exists():
+                db = Store(f"sqlite:///{db_file}")
+                connected = bool(_daemon_meta(db).get("connected"))
+                db.close()
+        assert connected, (tmp_path / "daemon.log").read_text()
         now = time.time()
         lines = []
         for i in range(40):
@@ -229,7 +238,8 @@ ambient = 27.0
         assert "dash" not in _tmux(sock, "list-sessions")
         assert daemon.poll() is None  # the dashboard never disturbed the daemon
     finally:
-        subprocess.run(["tmux", "-L", sock, "kill-server"], capture_output=True, timeout=10)
+        subprocess.run(["tmux", "-L", sock, "kill-server"], capture_output=True, timeout=10,
+                       check=False)
         daemon.terminate()
         daemon.wait(20)
         log.close()

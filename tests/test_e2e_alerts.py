@@ -17,9 +17,7 @@ import time
 
 import numpy as np
 import paho.mqtt.client as mqtt
-
 from test_hooks import Receiver
-
 from thermeta.daemon.clock import ManualClock
 from thermeta.daemon.config import load_config
 from thermeta.daemon.service import Service
@@ -109,7 +107,7 @@ levels = ["approaching"]
                 n_sent += 1
                 t += DT_S
             clock.set(T0 + t - DT_S)
-            assert wait_for(lambda: len(svc.store.recent_readings("trailer-4")) == n_sent)
+            assert wait_for(lambda n=n_sent: len(svc.store.recent_readings("trailer-4")) == n)
             svc.refit_now()
         assert wait_for(lambda: svc.alerts.astore.outbox_counts()["pending"] == 0)
         time.sleep(0.3)

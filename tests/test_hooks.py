@@ -15,7 +15,6 @@ from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from pathlib import Path
 
 import pytest
-
 from thermeta.daemon.config import HookConfig
 from thermeta.daemon.errors import DeliveryError
 from thermeta.daemon.hooks.base import hook_key, make_hook
@@ -38,7 +37,7 @@ class Receiver(ThreadingHTTPServer):
         outer = self
 
         class Handler(BaseHTTPRequestHandler):
-            def do_POST(self):  # noqa: N802 - the stdlib's name
+            def do_POST(self):
                 n = int(self.headers.get("Content-Length", 0))
                 body = self.rfile.read(n)
                 outer.posts.append((self.path, dict(self.headers), body))
@@ -205,7 +204,7 @@ class Inbox:
         self.messages: list[email.message.Message] = []
         self.logins: list[tuple[str, str]] = []
 
-    async def handle_DATA(self, server, session, envelope):  # noqa: N802 - aiosmtpd's name
+    async def handle_DATA(self, server, session, envelope):
         self.messages.append(email.message_from_bytes(envelope.original_content))
         return "250 OK"
 
@@ -225,7 +224,6 @@ def _auth(inbox: Inbox):
 def _png_of_a_real_forecast(tmp_path: Path) -> bytes:
     """The plotting module's PNG of a warming load stored in a real SQLite file."""
     import numpy as np
-
     from thermeta.daemon import plotting
     from thermeta.daemon.config import ItemConfig
     from thermeta.storage.store import Store
@@ -248,7 +246,6 @@ def test_email_starttls_login_and_png_attachment(tmp_path, monkeypatch):
     """aiosmtpd with STARTTLS required and login: the mail arrives with the sentence in a
     plain-text body and a PNG of the curve attached; the login came from env vars."""
     from aiosmtpd.controller import Controller
-
     from conftest import free_port
 
     key, crt = _cert(tmp_path)
@@ -287,7 +284,6 @@ def test_email_starttls_login_and_png_attachment(tmp_path, monkeypatch):
 def test_email_implicit_tls(tmp_path, monkeypatch):
     """tls = "implicit": the connection is TLS from the first byte (SMTP_SSL)."""
     from aiosmtpd.controller import Controller
-
     from conftest import free_port
 
     key, crt = _cert(tmp_path)

@@ -9,9 +9,8 @@ import sys
 import time
 
 from conftest import free_port
-from test_alerts_rules import THR, T0_EPOCH, fc_at
+from test_alerts_rules import T0_EPOCH, THR, fc_at
 from test_hooks import Receiver
-
 from thermeta.daemon.alerts.outbox import backoff_s
 from thermeta.daemon.alerts.service import AlertService
 from thermeta.daemon.clock import ManualClock

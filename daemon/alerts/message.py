@@ -10,7 +10,7 @@ Clock times are the host's local zone with its name, durations counted from the 
 from __future__ import annotations
 
 import math
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from typing import Any
 
 from thermeta.daemon.alerts.rules import Event, ItemAlertState, RuleParams, _t, remaining_s
@@ -26,8 +26,8 @@ def clock(epoch_s: float | None) -> str:
     """'14:05 UTC' in the host's zone; with the date when it is not today."""
     if epoch_s is None or not math.isfinite(epoch_s):
         return "-"
-    dt = datetime.fromtimestamp(epoch_s, tz=timezone.utc).astimezone()
-    today = datetime.now(timezone.utc).astimezone().date()
+    dt = datetime.fromtimestamp(epoch_s, tz=UTC).astimezone()
+    today = datetime.now(UTC).astimezone().date()
     return dt.strftime("%H:%M %Z" if dt.date() == today else "%Y-%m-%d %H:%M %Z")
 
 

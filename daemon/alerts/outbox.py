@@ -54,7 +54,7 @@ class OutboxWorker(threading.Thread):
         while not self.halt.is_set():
             try:
                 wait_s = self.drain()
-            except Exception:  # noqa: BLE001 - the worker outlives a store hiccup
+            except Exception:
                 log.exception("outbox of %s: unexpected error; retrying", self.hook.key)
                 wait_s = self.poll_s
             if self.failures:
@@ -83,7 +83,7 @@ class OutboxWorker(threading.Thread):
                     continue
                 try:
                     self.hook.deliver(row["alert"])
-                except Exception as exc:  # noqa: BLE001 - every failure is retried
+                except Exception as exc:
                     if not isinstance(exc, DeliveryError):
                         log.exception("hook %s raised unexpectedly", self.hook.key)
                     self.failures += 1

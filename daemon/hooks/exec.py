@@ -34,7 +34,7 @@ class ExecHook(Hook):
         cmd = list(self.cfg.command)
         try:
             proc = subprocess.run(cmd, input=json.dumps(alert).encode(), env=env, shell=False,
-                                  stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                                  capture_output=True,
                                   timeout=self.cfg.timeout_s, check=False)
         except subprocess.TimeoutExpired as exc:
             raise DeliveryError(f"{self.key}: {cmd[0]} ran past its {self.cfg.timeout_s:g} s "
