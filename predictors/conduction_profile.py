@@ -65,13 +65,15 @@ def profile_interval(
     n = int(t.size)
     n_lin = len(curve.linear_names)
     q_hat = fit.params[n_lin:].copy()
-    rss_min = fit.rss
+    # The minimum includes the prior row of a softly known ambient, like every refit below.
+    r_hat, _ = _constrained_residual(curve, q_hat, t, y, t_now + eta_s, threshold)
+    rss_min = max(float(r_hat @ r_hat), 1e-300)
     lo_b, hi_b = np.array(lo_bounds), np.array(hi_bounds)
     state = {"q": q_hat}
 
     def stat(tau: float) -> float:
         def res(q: Float) -> Float:
-            return _constrained_residual(curve, q, t, y, tau, threshold)[0][:n]
+            return _constrained_residual(curve, q, t, y, tau, threshold)[0]
 
         q0 = np.clip(state["q"], lo_b, hi_b)
         sol = least_squares(res, q0, bounds=(lo_b, hi_b), method="trf", xtol=1e-6, ftol=1e-6,
