@@ -215,6 +215,10 @@ def run(args: argparse.Namespace) -> int:
     if not 0 < args.port < 65536:
         print(f"thermeta demo: --port must be 1-65535, got {args.port}", file=sys.stderr)
         return 2
+    if args.keep and (Path(args.keep) / "demo.db").exists():
+        print(f"thermeta demo: --keep {args.keep}: holds an earlier run's demo.db; choose a new "
+              "folder", file=sys.stderr)
+        return 2
     workdir = Path(args.keep) if args.keep else Path(tempfile.mkdtemp(prefix="thermeta-demo-"))
     try:
         workdir.mkdir(parents=True, exist_ok=True)
@@ -230,7 +234,7 @@ def run(args: argparse.Namespace) -> int:
 
 def _run(args: argparse.Namespace, workdir: Path) -> int:
     from thermeta.daemon.config import load_config
-    from thermeta.daemon.embedded_broker import EmbeddedBroker, broker_reachable
+    from thermeta.daemon.embedded_broker import EmbeddedBroker, broker_accepts
     from thermeta.daemon.service import Service
     from thermeta.daemon.simulator import Simulator, config_text, truth_lines
     from thermeta.predictors.scenarios import build
@@ -254,7 +258,7 @@ def _run(args: argparse.Namespace, workdir: Path) -> int:
     old_term = signal.signal(signal.SIGTERM, lambda signum, frame: stop.set())
     try:
         host, port = args.host, args.port
-        if args.embedded or not broker_reachable(host, port):
+        if args.embedded or not broker_accepts(host, port):
             broker = EmbeddedBroker().start()
             host, port = broker.host, broker.port
             where = f"an embedded broker on {host}:{port}"

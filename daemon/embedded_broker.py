@@ -34,6 +34,37 @@ def broker_reachable(host: str, port: int, timeout_s: float = 0.5) -> bool:
         return False
 
 
+def broker_accepts(host: str, port: int, timeout_s: float = 3.0) -> bool:
+    """True when an MQTT broker at host:port accepts an anonymous MQTT 3.1.1 connection (a port
+    that is open but refuses us, e.g. one that wants a password, is no use to the demo)."""
+    if not broker_reachable(host, port, timeout_s=min(timeout_s, 0.5)):
+        return False
+    import paho.mqtt.client as mqtt
+
+    ok = threading.Event()
+    answered = threading.Event()
+
+    def on_connect(client, userdata, flags, reason_code, properties):
+        if not reason_code.is_failure:
+            ok.set()
+        answered.set()
+
+    c = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id="", protocol=mqtt.MQTTv311,
+                    clean_session=True)
+    c.on_connect = on_connect
+    try:
+        c.connect(host, port, keepalive=10)
+    except OSError:
+        return False
+    c.loop_start()
+    try:
+        answered.wait(timeout_s)
+    finally:
+        c.disconnect()
+        c.loop_stop()
+    return ok.is_set()
+
+
 class EmbeddedBroker:
     """amqtt on 127.0.0.1:``port`` (a free one when 0), started and stopped from ordinary threads."""
 

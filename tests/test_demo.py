@@ -69,10 +69,10 @@ TOLERANCE = {
 
 @pytest.fixture(scope="module")
 def headless_run(tmp_path_factory):
-    """One `thermeta demo --embedded --headless --duration 35 --speed 270` run for the tests below."""
+    """One `thermeta demo --embedded --headless --duration 30 --speed 320` run for the tests below."""
     summary_path = tmp_path_factory.mktemp("demo") / "summary.json"
     t0 = time.monotonic()
-    r = subprocess.run(DEMO + ["--embedded", "--headless", "--duration", "35", "--speed", "270",
+    r = subprocess.run(DEMO + ["--embedded", "--headless", "--duration", "30", "--speed", "320",
                                "--summary-json", str(summary_path)],
                        capture_output=True, text=True, timeout=120)
     wall = time.monotonic() - t0
@@ -82,7 +82,7 @@ def headless_run(tmp_path_factory):
 
 def test_demo_headless_forecasts_against_truth(headless_run):
     """The headless demo exits 0, prints forecast lines and the comparison with the truth, plays
-    270 simulated seconds per real second, and lands its forecasts within the stated tolerance of
+    320 simulated seconds per real second, and lands its forecasts within the stated tolerance of
     the simulator's truth."""
     r, wall, s = headless_run
     assert r.returncode == 0, r.stderr[-2000:]
@@ -91,7 +91,7 @@ def test_demo_headless_forecasts_against_truth(headless_run):
     assert "forecast eastpier/reefer-12/load-top: approaching" in r.stdout
     assert "forecasts against the simulated truth" in r.stdout
     played = s["sim_end"] - s["t_start"]
-    assert 0.85 * 35 * 270 < played < 1.15 * 35 * 270
+    assert 0.85 * 30 * 320 < played < 1.15 * 30 * 320
     items = s["items"]
     for name, tol in TOLERANCE.items():
         ahead = items[name]["ahead"]
@@ -119,7 +119,7 @@ def test_healthy_cold_room_raises_no_alert(headless_run):
 def test_demo_uses_a_reachable_broker(broker):
     """With a broker answering at --host/--port the demo uses it instead of starting its own, and
     leaves none of its retained forecasts behind there (read with the standard mosquitto_sub)."""
-    r = subprocess.run(DEMO + ["--headless", "--duration", "6", "--speed", "600", "--host",
+    r = subprocess.run(DEMO + ["--headless", "--duration", "2", "--speed", "600", "--host",
                                broker.host, "--port", str(broker.port)],
                        capture_output=True, text=True, timeout=60)
     assert r.returncode == 0, r.stderr[-2000:]
@@ -131,9 +131,43 @@ def test_demo_uses_a_reachable_broker(broker):
     assert left.stdout.strip() == ""
 
 
-def test_demo_bad_arguments():
-    """A bad --speed or --duration is exit 2 with one line naming the option."""
-    for args, word in ((["--speed", "-3"], "--speed"), (["--duration", "0"], "--duration")):
-        r = subprocess.run(DEMO + args, capture_output=True, text=True, timeout=60)
-        assert r.returncode == 2 and word in r.stderr
-        assert len(r.stderr.strip().splitlines()) == 1
+def test_demo_starts_its_own_broker_when_the_one_there_refuses(tmp_path):
+    """A Mosquitto at --port that refuses anonymous clients is no use: the demo starts its own
+    broker instead (and says so)."""
+    import shutil
+
+    from conftest import _need_mosquitto, free_port
+
+    from thermeta.daemon.embedded_broker import broker_accepts
+
+    _need_mosquitto()
+    port = free_port()
+    conf = tmp_path / "closed.conf"
+    conf.write_text(f"listener {port} 127.0.0.1\nallow_anonymous false\n")
+    proc = subprocess.Popen([shutil.which("mosquitto"), "-c", str(conf)],
+                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    try:
+        deadline = time.monotonic() + 10
+        while not broker_reachable("127.0.0.1", port) and time.monotonic() < deadline:
+            time.sleep(0.05)
+        assert broker_reachable("127.0.0.1", port) and not broker_accepts("127.0.0.1", port)
+        r = subprocess.run(DEMO + ["--headless", "--duration", "2", "--speed", "600", "--port",
+                                   str(port)], capture_output=True, text=True, timeout=60)
+    finally:
+        proc.terminate()
+        proc.wait(10)
+    assert r.returncode == 0, r.stderr[-2000:]
+    assert "using an embedded broker" in r.stdout
+
+
+def test_demo_bad_arguments(tmp_path, capsys):
+    """A bad --speed or --duration, or --keep naming an earlier run's folder, is exit 2 with one
+    line naming the option."""
+    from thermeta.daemon.cli import main
+
+    (tmp_path / "demo.db").write_text("")
+    for args, word in ((["--speed", "-3"], "--speed"), (["--duration", "0"], "--duration"),
+                       (["--keep", str(tmp_path)], "--keep")):
+        assert main(["demo", *args]) == 2
+        err = capsys.readouterr().err
+        assert word in err and len(err.strip().splitlines()) == 1
