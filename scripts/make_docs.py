@@ -1,6 +1,6 @@
 """Make the pictures the README shows, from the real program.
 
-    python scripts/make_docs.py [--seconds 45] [--speed 120] [--width 100] [--height 30]
+    python scripts/make_docs.py [--seconds 40] [--speed 60] [--width 120] [--height 34]
 
 1. docs/dashboard.txt: `thermeta demo` (embedded broker) runs in a real terminal inside a detached
    tmux session of the given size; after --seconds the pane is captured (tmux capture-pane) and
@@ -76,10 +76,10 @@ def reefer_plot() -> Path:
 
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--seconds", type=float, default=45.0, help="real seconds before the capture")
-    ap.add_argument("--speed", type=float, default=120.0, help="demo speed")
-    ap.add_argument("--width", type=int, default=100)
-    ap.add_argument("--height", type=int, default=30)
+    ap.add_argument("--seconds", type=float, default=40.0, help="real seconds before the capture")
+    ap.add_argument("--speed", type=float, default=60.0, help="demo speed")
+    ap.add_argument("--width", type=int, default=120)
+    ap.add_argument("--height", type=int, default=34)
     ap.add_argument("--no-dashboard", action="store_true", help="only the plot")
     args = ap.parse_args()
     DOCS.mkdir(exist_ok=True)
