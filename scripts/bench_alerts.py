@@ -258,7 +258,7 @@ def table(results: list[dict]) -> list[str]:
               f"{n_false} ({n_air} / {n_false - n_air}) | "
               f"{n_false / n_weeks if n_weeks else math.nan:.2f} | "
               f"{'PASS' if n_false == 0 and n_weeks >= 30 / 7 else ('FAIL' if n_false else 'n/a (under a month)')} |",
-              f"| all, incl. the 2 h before each event (load probes) | {weeks:.1f} | {false} | "
+              f"| all no-event time (normal traces, and the 2 h before each event) | {weeks:.1f} | {false} | "
               f"{false / weeks if weeks else math.nan:.2f} | |"]
     return lines
 
