@@ -63,8 +63,8 @@ def _row(name, errs, covered, n_pts, ms):
 
 
 def accuracy(n_cases: int) -> list[str]:
-    lines = ["| family (right geometry given) | cases | points | median err % | p90 err % | "
-             "90 % interval covers % | CPU ms per fit+interval |", "|---|---|---|---|---|---|---|"]
+    lines = [("| family (right geometry given) | cases | points | median err % | p90 err % | "
+             "90 % interval covers % | CPU ms per fit+interval |"), "|---|---|---|---|---|---|---|"]
     for mode in ("known", "fitted", "measured"):
         for g in GEOMETRIES:
             errs, cov, pts, ms = [], [], [], []
@@ -72,10 +72,10 @@ def accuracy(n_cases: int) -> list[str]:
                 seed = 1000 * (GEOMETRIES.index(g) + 1) + i
                 if mode == "measured":
                     s = warm_case(seed, g)
-                    kw = dict(ambient_t=s.ambient_t, ambient_y=s.ambient_y)
+                    kw = {"ambient_t": s.ambient_t, "ambient_y": s.ambient_y}
                 else:
                     s, amb = chill_case(seed, g)
-                    kw = dict(ambient=amb) if mode == "known" else {}
+                    kw = {"ambient": amb} if mode == "known" else {}
                 t0 = time.process_time()
                 fit = fit_conduction(s.t, s.y, g, **kw)
                 eta, lo, hi = fit.time_to_threshold(s.threshold)
@@ -91,14 +91,14 @@ def accuracy(n_cases: int) -> list[str]:
 
 
 def selection(n_cases: int) -> list[str]:
-    lines = ["| family (geometry not given) | cases | right geometry % | median err % "
-             "(chosen) | p90 err % (chosen) |", "|---|---|---|---|---|"]
+    lines = [("| family (geometry not given) | cases | right geometry % | median err % "
+             "(chosen) | p90 err % (chosen) |"), "|---|---|---|---|---|"]
     for mode in ("known", "fitted"):
         for g in GEOMETRIES:
             right, errs = 0, []
             for i in range(n_cases):
                 s, amb = chill_case(5000 + 1000 * GEOMETRIES.index(g) + i, g)
-                kw = dict(ambient=amb) if mode == "known" else {}
+                kw = {"ambient": amb} if mode == "known" else {}
                 best, _ = select_geometry(s.t, s.y, **kw)
                 right += best.geometry == g
                 errs.append(_err(best.time_to_threshold(s.threshold)[0], s.eta_true_s))
@@ -110,17 +110,17 @@ def selection(n_cases: int) -> list[str]:
 
 
 def speed(repeats: int) -> list[str]:
-    lines = ["| geometry | ambient | points | median CPU ms (fit) | "
-             "median CPU ms (fit + ETA interval) |",
+    lines = [("| geometry | ambient | points | median CPU ms (fit) | "
+             "median CPU ms (fit + ETA interval) |"),
              "|---|---|---|---|---|"]
     for g in GEOMETRIES:
         for mode in ("known", "fitted", "measured"):
             if mode == "measured":
                 s = warm_case(77, g)
-                kw = dict(ambient_t=s.ambient_t, ambient_y=s.ambient_y)
+                kw = {"ambient_t": s.ambient_t, "ambient_y": s.ambient_y}
             else:
                 s, amb = chill_case(77, g)
-                kw = dict(ambient=amb) if mode == "known" else {}
+                kw = {"ambient": amb} if mode == "known" else {}
             # ~200 points: subsample the case evenly
             idx = np.linspace(0, s.t.size - 1, min(200, s.t.size)).astype(int)
             t, y = s.t[np.argsort(s.t)][idx], s.y[np.argsort(s.t)][idx]
