@@ -350,9 +350,9 @@ def load_config(path: str | Path) -> Config:
     except tomllib.TOMLDecodeError as exc:
         msg = str(exc)
         m = re.search(r"\(at line (\d+), column (\d+)\)", msg)
-        line = m.group(1) if m else "1"
+        where = m.group(1) if m else "1"
         detail = re.sub(r"\s*\(at line \d+, column \d+\)", "", msg) or "invalid TOML"
-        raise ConfigError([f"{name}:{line}: toml: {detail}"]) from None
+        raise ConfigError([f"{name}:{where}: toml: {detail}"]) from None
     return parse_config(data, name, text)
 
 

@@ -16,6 +16,7 @@ from __future__ import annotations
 import json
 import math
 from dataclasses import dataclass
+from typing import Any
 
 from thermeta.daemon.timefmt import parse_time
 from thermeta.daemon.units import to_celsius
@@ -107,7 +108,9 @@ def _fast_object(payload: bytes, now: float, unit: str, limits: Limits) -> Readi
         return None
     if type(doc) is not dict:
         return None
-    value, ts, u = doc.get("value"), doc.get("ts"), doc.get("unit", unit)
+    value: Any = doc.get("value")
+    ts: Any = doc.get("ts")
+    u = doc.get("unit", unit)
     if type(value) not in _NUMBER or type(ts) not in _NUMBER or u not in ("C", "F", "K"):
         return None
     value_c = value if u == "C" else to_celsius(value, u)

@@ -99,7 +99,8 @@ class Writer(threading.Thread):
         self._stopping = threading.Event()
         self._item_ids: dict[str, int] = {}
         self._limits: dict[str, Limits] = {}
-        self._topics: dict[str, tuple] = {}  # topic -> (route, store name, limits, id, item)
+        # topic -> [(route, store name, limits, item id, load item name), ...]
+        self._topics: dict[str, list[tuple]] = {}
         self.counts = {"messages": 0, "readings": 0, "dead_letters": 0, "batches": 0,
                        "store_errors": 0}
         self._dead_since_log = 0
@@ -230,7 +231,7 @@ class Writer(threading.Thread):
                 time.sleep(delay)
                 delay = min(delay * 2, 30.0)
         for topic, rs in routes.items():
-            hits = []
+            hits: list[tuple] = []
             for route in rs:
                 name = route.store_name
                 if route.kind == "load" and name not in self._item_ids:

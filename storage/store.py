@@ -108,12 +108,14 @@ class Store:
 
     def _insert_ignore(self, table: Any) -> Any:
         if self.dialect == "sqlite":
-            from sqlalchemy.dialects.sqlite import insert as ins
-        elif self.dialect == "postgresql":
-            from sqlalchemy.dialects.postgresql import insert as ins
-        else:
-            return None
-        return ins(table).on_conflict_do_nothing()
+            from sqlalchemy.dialects import sqlite
+
+            return sqlite.insert(table).on_conflict_do_nothing()
+        if self.dialect == "postgresql":
+            from sqlalchemy.dialects import postgresql
+
+            return postgresql.insert(table).on_conflict_do_nothing()
+        return None
 
     # -- items --------------------------------------------------------------------------------
     def ensure_item(self, name: str, *, kind: str = "load", unit: str = "C", topic: str | None = None,
@@ -146,7 +148,7 @@ class Store:
         for i in range(0, len(names), 500):
             chunk = names[i:i + 500]
             with self._write() as conn, conn.begin():
-                found = dict(conn.execute(select(items.c.name, items.c.id)
+                found: dict[str, int] = dict(conn.execute(select(items.c.name, items.c.id)
                                           .where(items.c.name.in_(chunk))).all())
                 new = [{"name": n, "kind": want[n][0], "unit": want[n][1], "topic": want[n][2],
                         "created_at": created} for n in chunk if n not in found]
@@ -191,7 +193,7 @@ class Store:
         Raises StoreError; nothing of the batch is stored then.
         """
         stored = 0
-        rows = list(reading_rows)
+        rows: list[Any] = list(reading_rows)
         if rows and isinstance(rows[0], tuple):
             if self.dialect != "sqlite":
                 rows = [dict(zip(READING_COLUMNS, r)) for r in rows]
@@ -204,13 +206,12 @@ class Store:
                     res = conn.exec_driver_sql(SQLITE_INSERT_READINGS, rows)
                     stored = res.rowcount
                 elif rows:
-                    reading_rows = rows
                     stmt = self._insert_ignore(readings)
                     if stmt is not None:
-                        res = conn.execute(stmt, list(reading_rows))
+                        res = conn.execute(stmt, rows)
                         stored = res.rowcount if res.rowcount is not None else -1
                     else:
-                        stored = self._insert_one_by_one(conn, reading_rows)
+                        stored = self._insert_one_by_one(conn, rows)
                 if dead_rows:
                     conn.execute(insert(dead_letters), list(dead_rows))
         except SQLAlchemyError as exc:
