@@ -263,6 +263,20 @@ def table(results: list[dict]) -> list[str]:
     return lines
 
 
+README_BEGIN = "<!-- bench_alerts: begin (written by scripts/bench_alerts.py --readme) -->"
+README_END = "<!-- bench_alerts: end -->"
+
+
+def update_readme(path: Path, block: str) -> str | None:
+    """Replace the text between this bench's markers in README.md; an error message or None."""
+    text = path.read_text()
+    i, j = text.find(README_BEGIN), text.find(README_END)
+    if i < 0 or j < i:
+        return f"{path}: the bench's markers are missing; add them to its section first"
+    path.write_text(text[:i] + block + text[j + len(README_END):])
+    return None
+
+
 def run_all(cases: dict, days: float, seed: int, jobs: int = 1) -> tuple[list[dict], float]:
     """Every trace; returns one result per trace and the seconds it took."""
     units = [(k, i, seed, days) for k, n in cases.items() for i in range(n)]
@@ -280,6 +294,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--quick", action="store_true")
     ap.add_argument("--seed", type=int, default=2026)
     ap.add_argument("--jobs", type=int, default=1)
+    ap.add_argument("--readme", action="store_true",
+                    help="also rewrite the alerting table in README.md (between the bench's markers)")
     ap.add_argument("--out", default=str(Path(__file__).resolve().parent.parent / "docs"))
     args = ap.parse_args(argv)
     if args.jobs < 1:
@@ -299,6 +315,13 @@ def main(argv: list[str] | None = None) -> int:
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
     (out / "bench_alerts.md").write_text(text)
+    if args.readme:
+        err = update_readme(Path(__file__).resolve().parent.parent / "README.md",
+                            "\n".join([README_BEGIN, f"Measured by `{cmd}` ({elapsed:.0f} s, seed "
+                                        f"{args.seed}; lead 45 min, threshold 8 degC):", "",
+                                        *table(results), README_END]))
+        if err:
+            print(f"bench_alerts: {err}", file=sys.stderr)
     print(text)
     print(f"wrote {out / 'bench_alerts.md'}")
     return 0
