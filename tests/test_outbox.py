@@ -90,7 +90,7 @@ def queue_then_deliver_once(tmp_path, url: str | None = None, item: str = "trail
             (4300, fc_at(4300, value=THR + 1, state="crossed"))])
     astore = AlertStore(store)
     assert [e["level"] for e in astore.events(item)] == ["approaching", "crossed", "crossed"]
-    mine = lambda: [r for r in astore.outbox_rows() if r["hook"] == hook]  # noqa: E731
+    mine = lambda: [r for r in astore.outbox_rows() if r["hook"] == hook]
     assert wait_for(lambda: mine()[0]["attempts"] >= 2)
     assert [r["status"] for r in mine()] == ["pending"] * 3
     svc.stop()
