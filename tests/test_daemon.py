@@ -373,3 +373,18 @@ def test_status_text_reads_the_store(tmp_path):
     missing = subprocess.run([sys.executable, "-m", "thermeta.daemon.cli", "status", "--config",
                               str(tmp_path / "nowhere.toml")], capture_output=True, text=True, timeout=60)
     assert missing.returncode == 2
+
+
+def test_retention_keeps_the_configured_days(tmp_path):
+    """The service's retention job, on its injected clock, deletes readings older than
+    retention_days and keeps the rest."""
+    from thermeta.daemon.service import Service
+
+    items = '[[item]]\nname = "walkin"\ntopic = "k/w"\nthreshold = 5.0\n'
+    cfg = config(tmp_path, items, extra="retention_days = 2\n")
+    t = np.array([T0 - 3 * 86400, T0 - 2 * 86400 - 1, T0 - 2 * 86400 + 1, T0 - 60])
+    _, store, _ = seeded_store(tmp_path, items, {"walkin": (t, np.full(t.size, 3.0))})
+    svc = Service(cfg, clock=ManualClock(T0), store=store)
+    svc.prune()
+    assert [ts for ts, _ in store.recent_readings("walkin")] == [T0 - 2 * 86400 + 1, T0 - 60]
+    store.close()
