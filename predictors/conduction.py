@@ -336,7 +336,7 @@ def fit_conduction(
         # Weight the prior row by noise sd / ambient sd (noise sd from the exact-ambient fit).
         w = max(fit.rmse, 1e-9) / ambient_sd
         curve = _Curve(geometry, "fitted", start, span, None, None, fit_start,
-                       prior=(float(ambient), w))
+                       prior=(float(ambient), w))  # type: ignore[arg-type]
         soft = _fit_curve(curve, t, yy)
         if soft.ok:
             soft.ambient_mode = "known"
@@ -449,7 +449,8 @@ def _covariance(curve: _Curve, p: Float, t: Float, rss: float, n: int) -> Float 
     if curve.prior is not None:
         info[1, 1] += curve.prior[1] ** 2
     try:
-        return s2 * np.linalg.pinv(info, rcond=1e-12, hermitian=True)
+        cov = np.asarray(s2 * np.linalg.pinv(info, rcond=1e-12, hermitian=True), dtype=np.float64)
+        return cov
     except np.linalg.LinAlgError:
         return None
 

@@ -44,7 +44,7 @@ def ramp_part(
     h = step_s if step_s else t_end / GRID_STEPS
     h = max(h, t_end / MAX_GRID_STEPS)
     m = int(np.ceil(t_end / h - 1e-9))
-    grid = np.arange(m + 1) * h
+    grid = np.arange(m + 1, dtype=np.float64) * h
     amb = ambient_fn(t0_s + grid)
     slope = np.diff(amb) / h
     lam = zeta * zeta * a_per_s
