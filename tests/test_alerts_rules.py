@@ -219,13 +219,15 @@ def test_the_sentence_carries_the_numbers():
     a = build_alert("trailer-4", fc, evs[0], st, P, now, unit="C", silence_s=900)
     s = a["sentence"]
     assert remaining_s(fc, "eta_s", now) == pytest.approx(2520.0)
-    assert s.startswith("trailer-4 is approaching its limit: ")
+    assert s.startswith("trailer-4 is approaching its threshold: ")
     assert f"{newton(600):.1f} °C now" in s and "threshold of -15.0 °C" in s
     assert "(in 42 min; 90 % interval" in s and "in 27 min to 68 min" in s
     assert "fitted ambient 12.0 °C, time constant 10 h 00 min" in s
     assert s.count(". ") == 0 and s.endswith(".")
     assert a["crossing_at"] == rfc3339(now + 2520.0)
     assert a["id"] == "trailer-4:1:approaching:1"
+    rec = sentence(dict(a, level="recovered", from_level="crossed", by="band"))
+    assert rec.startswith("trailer-4 is back below its threshold by more than the 0.5 °C band: ")
     for level in ("crossed", "recovered", "stale", "resumed", "regime"):
         b = dict(a, level=level, from_level="crossed", by="band", regime_start_s=now)
         assert b["item"] in sentence(b)

@@ -125,7 +125,7 @@ levels = ["approaching"]
     assert T0 + T_CROSS - approach["at_s"] >= LEAD
     assert crossed["at_s"] >= T0 + T_CROSS - 2 * STEP_S  # noise 0.05 may show it a step early
     assert recovered["at_s"] > T0 + T_COOL
-    assert "trailer-4 is approaching its limit" in approach["sentence"]
+    assert "trailer-4 is approaching its threshold" in approach["sentence"]
     assert len({a["id"] for a in alerts}) == len(alerts)  # each alert posted once
     # the mqtt hook, limited to `approaching`, published exactly that one alert
     assert len(mqtt_lines) == 1

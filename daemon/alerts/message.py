@@ -1,6 +1,6 @@
 """An alert as data (the JSON every hook gets) and as one plain sentence with the numbers.
 
-    trailer-4 is approaching its limit: -16.4 °C now against a threshold of -15.0 °C, forecast to
+    trailer-4 is approaching its threshold: -16.4 °C now against a threshold of -15.0 °C, forecast to
     cross at 14:05 UTC (in 42 min; 90 % interval 13:50 UTC to 14:31 UTC, in 27 min to 68 min);
     fitted ambient 12.0 °C, time constant 9 h 58 min.
 
@@ -45,6 +45,8 @@ def eta_clause(a: dict[str, Any]) -> str:
         return "the fitted curve is already past the threshold"
     text = f"forecast to cross at {clock(a['crossing_at_s'])} (in {human_duration(a['eta_s'])}"
     lo, hi = a.get("eta_lo_s"), a.get("eta_hi_s")
+    if lo is not None and hi is not None and hi - lo < 60:
+        return text + "; 90 % interval under a minute wide)"
     if lo is not None:
         hi_clock = clock(a["crossing_hi_at_s"]) if hi is not None else "no later bound"
         hi_in = human_duration(hi) if hi is not None else "open-ended"
@@ -63,13 +65,13 @@ def sentence(a: dict[str, Any]) -> str:
     item, level, unit = a["item"], a["level"], a["unit"]
     now_thr = f"{temp(a.get('value_now'), unit)} now against a threshold of {temp(a['threshold'], unit)}"
     if level == "approaching":
-        return f"{item} is approaching its limit: {now_thr}, {eta_clause(a)}; {fit_clause(a)}."
+        return f"{item} is approaching its threshold: {now_thr}, {eta_clause(a)}; {fit_clause(a)}."
     if level == "crossed":
         since = a.get("crossed_at_s")
         ago = (f" since {clock(since)} ({human_duration(a['at_s'] - since)} ago)"
                if since and a.get("reminder") else "")
-        head = (f"Reminder: {item} is still past its limit" if a.get("reminder")
-                else f"{item} has crossed its limit")
+        head = (f"Reminder: {item} is still past its threshold" if a.get("reminder")
+                else f"{item} has crossed its threshold")
         return f"{head}{ago}: {now_thr}; {fit_clause(a)}."
     if level == "recovered":
         if a.get("from_level") == "approaching":
@@ -78,7 +80,8 @@ def sentence(a: dict[str, Any]) -> str:
         band = f"{a['hysteresis']:g} {UNIT_SIGN.get(unit, unit)}"
         how = (f"by more than the {band} band" if a.get("by") == "band"
                else f"for {human_duration(a['hold_s'])}")
-        return f"{item} is back inside its limit {how}: {now_thr}; {fit_clause(a)}."
+        where = {"upper": "below", "lower": "above"}.get(a.get("side") or "", "back across")
+        return f"{item} is back {where} its threshold {how}: {now_thr}; {fit_clause(a)}."
     if level == "stale":
         last = a.get("last_reading_at_s")
         quiet = human_duration(a["at_s"] - last) if last else "a while"
