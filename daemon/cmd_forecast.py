@@ -24,6 +24,10 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
         help="lumped (Newton) or a centre probe in a slab, long cylinder or sphere",
     )
     p.add_argument("--unit", choices=["C", "F", "K"], default="C", help="unit of the values")
+    p.add_argument(
+        "--limit", choices=["upper", "lower", "auto"], default="auto",
+        help="which side of the threshold is unsafe; auto: the side the first reading is not on",
+    )
     p.add_argument("--json", action="store_true", help="one JSON object on stdout")
     p.add_argument("--plot", metavar="OUT.png", help="also draw readings and forecast to a PNG")
 
@@ -79,6 +83,11 @@ def run(args: argparse.Namespace) -> int:
         series = read_series(args.csv)
         if series.t.size < 3:
             raise InputError(f"{args.csv}: too few readings to fit ({series.t.size}; want at least 8)")
+        limit = args.limit
+        if limit == "auto":
+            # As the daemon does: a probe that starts below its threshold has an upper limit.
+            first = float(series.y[series.t.argmin()])
+            limit = None if first == args.threshold else ("upper" if first < args.threshold else "lower")
         fc = forecast(
             series.t,
             series.y,
@@ -87,6 +96,7 @@ def run(args: argparse.Namespace) -> int:
             ambient=args.ambient,
             ambient_t=series.ambient_t if args.ambient is None else None,
             ambient_y=series.ambient_y if args.ambient is None else None,
+            limit=limit,
         )
         if not fc.ok and fc.reason and fc.reason.startswith("too few"):
             raise InputError(f"{args.csv}: {fc.reason}")
@@ -103,6 +113,7 @@ def run(args: argparse.Namespace) -> int:
     if args.json:
         out = fc.to_dict()
         out["unit"] = args.unit
+        out["limit"] = limit
         print(json.dumps(out))
     else:
         print(summary(fc, args.unit, str(args.csv)))

@@ -81,3 +81,21 @@ def test_missing_file(tmp_path):
     """A missing file is named, exit 2."""
     r = run_cli("forecast", str(tmp_path / "nope.csv"), "--threshold", "8")
     assert r.returncode == 2 and "no such file" in r.stderr
+
+
+def test_already_past_upper_limit_gives_zero(tmp_path):
+    """A load whose newest reading is above its (upper) threshold: eta_s is 0, crossing now."""
+    p = tmp_path / "load.csv"
+    write_warming_csv(p)  # 2 -> about 10 degC over two hours
+    out = json.loads(run_cli("forecast", str(p), "--threshold", "6", "--ambient", "27", "--json").stdout)
+    assert out["limit"] == "upper"
+    assert out["eta_s"] == 0
+    assert out["value_now"] > 6
+
+
+def test_never_reaching_threshold_gives_null(tmp_path):
+    """A load levelling off toward 27 degC never reaches 40 degC: eta_s is null, no crossing time."""
+    p = tmp_path / "load.csv"
+    write_warming_csv(p)
+    out = json.loads(run_cli("forecast", str(p), "--threshold", "40", "--ambient", "27", "--json").stdout)
+    assert out["eta_s"] is None and out["crossing_at"] is None
