@@ -302,3 +302,52 @@ def test_email_implicit_tls(tmp_path, monkeypatch):
         ctl.stop()
     assert len(inbox.messages) == 1
     assert inbox.messages[0]["To"] == "a@x.example, b@x.example"
+
+
+def test_email_through_the_alert_service_attaches_the_items_curve(tmp_path):
+    """Wired as the daemon wires it: a crossing raised by the alert service reaches aiosmtpd
+    (tls = "none", a local relay) with the plotting module's PNG of the stored readings."""
+    from aiosmtpd.controller import Controller
+    from conftest import free_port
+    from test_outbox import wait_for, write_config
+    from thermeta.daemon.alerts.service import AlertService
+    from thermeta.daemon.clock import ManualClock
+    from thermeta.daemon.config import load_config
+    from thermeta.storage.store import Store
+
+    inbox = Inbox()
+    port = free_port()
+    ctl = Controller(inbox, hostname="127.0.0.1", port=port)
+    ctl.start()
+    path = write_config(tmp_path, f'[[hook]]\nkind = "email"\nhost = "127.0.0.1"\nport = {port}\n'
+                                  'tls = "none"\nfrom = "t@yard.example"\nto = "ops@yard.example"\n')
+    cfg = load_config(path)
+    png = _png_of_a_real_forecast(tmp_path)  # same readings, written to this store below
+    store = Store(cfg.storage.url)
+    store.create_all()
+    src = Store(f"sqlite:///{tmp_path / 'png.db'}")
+    iid = store.ensure_item("trailer-4", now=1.8e9)
+    store.write_batch([(iid, t, v, 0, t) for t, v in src.recent_readings("trailer-4")])
+    src.close()
+    t_last = store.recent_readings("trailer-4")[-1][0]
+    clock = ManualClock(t_last)
+    svc = AlertService(cfg, store, clock, poll_s=0.05)
+    svc.start()
+    try:
+        base = {"item": "trailer-4", "threshold": -15.0, "unit": "C", "fit_ok": True,
+                "last_reading_at": t_last, "warnings": []}
+        svc.on_forecast(cfg.items[0], dict(base, state="steady", value_now=-16.0), None)
+        svc.on_forecast(cfg.items[0], dict(base, state="crossed", value_now=-14.5), None)
+        assert wait_for(lambda: len(inbox.messages) == 1, 20)
+    finally:
+        svc.stop()
+        ctl.stop()
+        store.close()
+    msg = inbox.messages[0]
+    assert msg["Subject"] == "[thermeta] trailer-4 crossed"
+    att = [p for p in msg.walk() if p.get_content_type() == "image/png"]
+    assert len(att) == 1
+    got = att[0].get_payload(decode=True)
+    assert got[:8] == b"\x89PNG\r\n\x1a\n" and len(got) > 10000
+    # the IHDR chunk's width and height match the picture drawn directly from the same readings
+    assert got[16:24] == png[16:24]
