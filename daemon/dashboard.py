@@ -83,7 +83,7 @@ def _group_of(item: str, body: dict[str, Any], topic: str | None) -> str:
 
 
 def collect(store: Any, now: float | None = None, *, history_s: float = 3 * 3600.0,
-            spark_n: int = 24, stats: dict[str, Any] | None = None) -> Board:
+            spark_n: int = 48, stats: dict[str, Any] | None = None) -> Board:
     """Everything one frame shows, read from the store (and the live stats when in-process)."""
     now = time.time() if now is None else now
     daemon = dict(store.get_meta("daemon") or {})
@@ -159,7 +159,14 @@ def _buckets(series: list[tuple[float, float]], t0: float, t1: float, n: int) ->
 
 
 def sparkline(values: list[float], threshold: float | None, width: int) -> str:
-    vals = values[-width:] if width < len(values) else values
+    """Block characters for the bucket means, resampled to ``width`` cells (blank: no reading)."""
+    vals = values
+    if width < len(values):
+        n = len(values)
+        vals = []
+        for i in range(width):
+            chunk = [v for v in values[i * n // width:(i + 1) * n // width] if math.isfinite(v)]
+            vals.append(sum(chunk) / len(chunk) if chunk else math.nan)
     finite = [v for v in vals if math.isfinite(v)]
     if not finite:
         return " " * len(vals)
@@ -233,24 +240,43 @@ def header_text(board: Board) -> Text:
     return t
 
 
+def column_widths(width: int) -> dict[str, int]:
+    """Fixed widths, the same for every group's table so the columns line up; the item name and,
+    on a wide screen, the sparkline take what is left."""
+    if width >= 110:
+        w = {"state": 15, "now": 9, "limit": 7, "eta": 20, "amb": 6, "tau": 6}
+        rest = width - sum(w.values()) - 7
+        w["item"] = min(40, max(16, rest - 24))
+        w["spark"] = max(8, min(48, rest - w["item"]))
+    else:
+        w = {"state": 13, "now": 7, "limit": 6, "eta": 16, "amb": 4, "tau": 5, "spark": 8}
+        w["item"] = max(8, width - sum(w.values()) - 7)
+    return w
+
+
+def fit_name(name: str, width: int) -> str:
+    """The name, or its end (the most telling part of a long topic-like name) with a leading '…'."""
+    return name if len(name) <= width else "…" + name[-(width - 1):]
+
+
+def _table(w: dict[str, int], show_header: bool) -> Table:
+    table = Table(box=None, padding=(0, 1, 0, 0), pad_edge=False, expand=False, show_edge=False,
+                  header_style="bold", show_header=show_header)
+    for key, title, justify in (("state", "state", "left"), ("item", "item", "left"),
+                                ("now", "now", "right"), ("limit", "limit", "right"),
+                                ("eta", "ETA [90 %]", "left"), ("amb", "amb", "right"),
+                                ("tau", "tau", "right"), ("spark", "last 3h", "left")):
+        table.add_column(title, width=w[key], justify=justify, no_wrap=True, overflow="crop")
+    return table
+
+
 def render(board: Board, width: int = 80, height: int = 24, *, text_filter: str = "",
            attention_only: bool = False, typing: bool = False) -> Group:
-    """One frame: header, the items table, key help and the caution line."""
+    """One frame: header, the items (grouped when many), key help and the caution line."""
     rows = visible(board, text_filter, attention_only)
     wide = width >= 110
-    spark_w = 24 if wide else 8
-    table = Table(box=None, padding=(0, 1, 0, 0), pad_edge=False, expand=False, show_edge=False,
-                  header_style="bold")
-    table.add_column("state", no_wrap=True, min_width=13 if wide else 12)
-    table.add_column("item", no_wrap=True, overflow="ellipsis",
-                     max_width=max(10, width - 62) if not wide else 32)
-    table.add_column("now", justify="right", no_wrap=True)
-    table.add_column("limit", justify="right", no_wrap=True)
-    table.add_column("ETA [90 %]", no_wrap=True)
-    table.add_column("amb", justify="right", no_wrap=True)
-    table.add_column("tau", justify="right", no_wrap=True)
-    table.add_column(f"last {3}h", no_wrap=True, width=spark_w)
-    room = max(1, height - 6)
+    w = column_widths(width)
+    room = max(1, height - 6 - (1 if width < len(CAUTION) else 0))
     grouped = len(rows) > GROUP_WHEN_MORE_THAN and len({r.group for r in rows}) > 1
     ordered = rows
     if grouped:
@@ -258,36 +284,46 @@ def render(board: Board, width: int = 80, height: int = 24, *, text_filter: str 
         for r in rows:
             first.setdefault(r.group, r.urgency)
         ordered = sorted(rows, key=lambda r: (first[r.group], r.urgency))
-    shown, current = 0, None
-    lines_used = 0
+    body: list[Any] = []
+    table = _table(w, show_header=True)
+    shown, current, lines_used = 0, None, 1
     for r in ordered:
         if lines_used >= room:
             break
         if grouped and r.group != current:
-            if lines_used + 1 >= room:
+            if lines_used + 2 > room:
                 break
+            if table.row_count or table.show_header:
+                body.append(table)
             current = r.group
             n = sum(1 for x in rows if x.group == current)
-            table.add_row(Text(f"{current} ({n})", style="bold underline"), "", "", "", "", "", "", "")
+            body.append(Text(f"{current} ({n})", style="bold underline", no_wrap=True,
+                             overflow="ellipsis"))
+            table = _table(w, show_header=False)
             lines_used += 1
         sym, word, style = STATE_LOOK.get(r.state, ("·", r.state, ""))
         label = Text(f"{sym} {word}", style=style)
         if r.alert and r.alert.endswith("+ack"):
             label.append(" ack", style="dim")
+        name = r.item
+        if grouped and name.startswith(current + "/"):
+            name = name[len(current) + 1:]
         sign = UNIT_SIGN.get(r.unit, r.unit) if wide else ""
-        table.add_row(label, r.item, f"{_num(r.value)}{sign}{_arrow(r.trend_per_h)}",
-                      _num(r.threshold), Text(eta_text(r), style=style if r.state in
-                                              ("crossed", "approaching") else ""),
-                      _num(r.ambient, "{:.0f}" if not wide else "{:.1f}"), short_duration(r.tau_s)
-                      if r.tau_s else "-", Text(sparkline(r.spark, r.threshold, spark_w),
-                                                style="#7fb3d5"))
+        hot = style if r.state in ("crossed", "approaching") else ""
+        table.add_row(label, fit_name(name, w["item"]),
+                      f"{_num(r.value)}{sign}{_arrow(r.trend_per_h)}", _num(r.threshold),
+                      Text(eta_text(r), style=hot),
+                      _num(r.ambient, "{:.1f}" if wide else "{:.0f}"),
+                      short_duration(r.tau_s) if r.tau_s else "-",
+                      Text(sparkline(r.spark, r.threshold, w["spark"]), style="#7fb3d5"))
         shown += 1
         lines_used += 1
+    body.append(table)
     parts: list[Any] = [header_text(board)]
     counts = {s: sum(1 for r in board.rows if r.state == s) for s in RANK}
     summary = ", ".join(f"{n} {s}" for s, n in counts.items() if n)
     parts.append(Text(f"{len(board.rows)} items: {summary or 'none yet'}", style="dim"))
-    parts.append(table)
+    parts += body
     if shown < len(rows):
         parts.append(Text(f"… {len(rows) - shown} more (filter with / or a)", style="dim"))
     keys = "keys: q quit · a attention only · / filter · esc clear"
