@@ -70,6 +70,7 @@ class Board:
     last_refit_at: float | None = None
     heartbeat_at: float | None = None
     now: float = 0.0
+    alerts_waiting: int = 0  # outbox rows not yet taken by their hook
 
 
 def _group_of(item: str, body: dict[str, Any], topic: str | None) -> str:
@@ -92,7 +93,7 @@ def collect(store: Any, now: float | None = None, *, history_s: float = 3 * 3600
     beat = daemon.get("heartbeat_at")
     running = daemon.get("state") == "running" and beat is not None and now - beat < HEARTBEAT_LATE_S
     topics = {r["name"]: r.get("topic") for r in store.list_items(None)}
-    alert_levels = _alert_levels(store)
+    alert_levels, waiting = _alert_levels(store)
     rows = []
     for f in store.latest_forecasts():
         d, name = f["forecast"], f["item"]
@@ -112,22 +113,24 @@ def collect(store: Any, now: float | None = None, *, history_s: float = 3 * 3600
     return Board(rows=rows, connected=daemon.get("connected"), running=running,
                  broker=str(daemon.get("broker", "?")), readings_per_s=daemon.get("readings_per_s"),
                  dead_letters=daemon.get("dead_letters"), last_refit_at=store.last_refit_at(),
-                 heartbeat_at=beat, now=now)
+                 heartbeat_at=beat, now=now, alerts_waiting=waiting)
 
 
-def _alert_levels(store: Any) -> dict[str, str]:
-    try:
-        from thermeta.storage.alerts import AlertStore
+def _alert_levels(store: Any) -> tuple[dict[str, str], int]:
+    """Open alert levels per item ("+ack" when acknowledged) and the outbox rows waiting."""
+    from sqlalchemy import inspect
 
-        a = AlertStore(store)
-        out = {}
-        for item, st in a.load_states().items():
-            if st.get("level", "clear") != "clear":
-                acked = a.ack_of(item, int(st.get("episode", 0))) is not None
-                out[item] = st["level"] + ("+ack" if acked else "")
-        return out
-    except Exception:  # noqa: BLE001 - no alert tables yet: the board still shows forecasts
-        return {}
+    from thermeta.storage.alerts import AlertStore
+
+    if not inspect(store.engine).has_table("alert_state"):
+        return {}, 0  # a store from before alerts: the board still shows forecasts
+    a = AlertStore(store)
+    out = {}
+    for item, st in a.load_states().items():
+        if st.get("level", "clear") != "clear":
+            acked = a.ack_of(item, int(st.get("episode", 0))) is not None
+            out[item] = st["level"] + ("+ack" if acked else "")
+    return out, a.outbox_counts()["pending"]
 
 
 def _trend_per_h(series: list[tuple[float, float]], span_s: float = 1800.0) -> float | None:
@@ -237,6 +240,8 @@ def header_text(board: Board) -> Text:
              else f"{short_duration(board.now - board.last_refit_at)} ago")
     dead = "-" if board.dead_letters is None else board.dead_letters
     t.append(f" · {rate} readings/s · {dead} dead letters · refit {refit}")
+    if board.alerts_waiting:
+        t.append(f" · {board.alerts_waiting} alerts waiting for hooks", style="bold #ffb347")
     return t
 
 
