@@ -25,6 +25,7 @@ from thermeta.predictors.measured import (
     measured_rss,
     steady_air,
 )
+from thermeta.predictors.prior import Prior
 from thermeta.predictors.regime import find_regime
 from thermeta.predictors.result import Forecast
 
@@ -48,6 +49,7 @@ def forecast(
     ambient_uncertainty: float = AMBIENT_UNCERTAINTY,
     detect_regimes: bool = True,
     limit: str | None = None,
+    prior: Prior | None = None,
 ) -> Forecast:
     """Forecast when the series ``y(t)`` crosses ``threshold``.
 
@@ -57,7 +59,9 @@ def forecast(
     (measured mode); neither: the ambient is fitted within ambient_bounds (default: a wide range
     around the readings).  window_s caps the history used.  limit: "upper" (only an upward
     crossing counts; at or above is past), "lower", or None (either way; past means the curve
-    crossed within the data).
+    crossed within the data).  prior: k (and, with the ambient fitted, the ambient) learned from
+    past episodes of the item's class (:mod:`thermeta.predictors.prior`), folded into the lumped
+    fit as Gaussian penalties; not used by the measured-ambient and conduction models.
     """
     if model not in MODELS:
         raise ValueError(f"model must be one of {', '.join(MODELS)}, got {model!r}")
@@ -80,14 +84,14 @@ def forecast(
         with np.errstate(all="ignore"):
             return _forecast(fc, ta, ya, float(threshold), model, ambient, ambient_t, ambient_y,
                              window_s, min_points, ambient_bounds, ambient_uncertainty,
-                             detect_regimes, limit)
+                             detect_regimes, limit, prior)
     except (ValueError, FloatingPointError, ArithmeticError, np.linalg.LinAlgError) as exc:
         fc.ok, fc.reason = False, f"fit failed: {exc}"
         return fc
 
 
 def _forecast(fc, t, y, thr, model, ambient, ambient_t, ambient_y, window_s, min_points, bounds,
-              amb_sd, detect, limit) -> Forecast:
+              amb_sd, detect, limit, prior=None) -> Forecast:
     cl = clean(t, y)
     tt, yy = cl.t, cl.y
     if window_s is not None and tt.size:
@@ -126,21 +130,32 @@ def _forecast(fc, t, y, thr, model, ambient, ambient_t, ambient_y, window_s, min
                 f"{tt.size - reg.start_index} readings only")
             tt, yy = tt[reg.start_index:], yy[reg.start_index:]
             fc.regime_start = float(tt[0])
+    if prior is not None and prior.n_episodes and (model in CONDUCTION or air is not None):
+        fc.warnings.append("the learned prior is used by the lumped model with a fitted or "
+                           "given ambient only; not here")
     if model in CONDUCTION:
         return _conduction(fc, tt, yy, thr, model, ambient, air, amb_sd)
     if model == "auto":
-        return _auto(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit)
-    return _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, detect, min_points)
+        return _auto(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, prior)
+    return _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, detect, min_points,
+                   prior)
 
 
 def _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit=None, detect=True,
-            min_points=8) -> Forecast:
+            min_points=8, prior=None) -> Forecast:
     fc.model = "lumped" if fc.model != "auto" else fc.model
     fc.lag_factor_j = 1.0
     if air is not None:
         return _measured(fc, tt, yy, thr, air, limit, detect, cl.noise_sd, min_points)
     kw = {"ambient": ambient, "ambient_sd": amb_sd if ambient is not None else 0.0,
           "bounds": bounds, "noise_sd": cl.noise_sd, "limit": limit}
+    k_prior = prior.k_prior() if prior is not None else None
+    a_prior = prior.ambient_prior() if prior is not None and ambient is None else None
+    if k_prior is not None:
+        kw["k_prior"] = k_prior
+    if a_prior is not None:
+        # the learned ambient is a Gaussian prior, the same penalty as a given one
+        kw["ambient"], kw["ambient_sd"] = a_prior
     fit = fit_lumped(tt, yy, thr, **kw)
     if fit.ok:
         # robust refit: drop what the first fit calls far off (beyond the Hampel pre-filter)
@@ -154,7 +169,25 @@ def _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit=None, detec
         fc.ok, fc.reason = False, fit.reason
         return fc
     _fill_lumped(fc, fit, ambient, amb_sd)
+    if k_prior is not None:
+        _note_prior(fc, prior, k_prior, a_prior)
     return fc
+
+
+def _note_prior(fc: Forecast, prior: Prior, k_prior, a_prior) -> None:
+    """Say that a learned prior was used, and when the readings contradict it."""
+    tau_h = math.exp(-k_prior[0]) / 3600.0
+    text = (f"a prior learned from {prior.n_episodes} past episode(s) is folded in "
+            f"(time constant about {tau_h:.3g} h")
+    if a_prior is not None:
+        text += f", ambient about {a_prior[0]:.3g} +- {a_prior[1]:.2g}"
+    fc.warnings.append(text + ")")
+    fc.params["prior_episodes"] = float(prior.n_episodes)
+    z = (math.log(fc.k_per_s) - k_prior[0]) / k_prior[1] if fc.k_per_s else 0.0
+    if abs(z) > 2.0:
+        fc.warnings.append(
+            f"the readings disagree with the learned prior (k {math.exp(z * k_prior[1]):.2g} x "
+            "the class's usual); is this a different product or setup?")
 
 
 def _fill_lumped(fc: Forecast, fit: LumpedFit, ambient, amb_sd) -> None:
@@ -304,12 +337,13 @@ def aicc(rss: float, n: int, p: int) -> float:
     return n * math.log(rss / n) + 2 * p + 2 * p * (p + 1) / (n - p - 1)
 
 
-def _auto(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit) -> Forecast:
+def _auto(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, prior=None) -> Forecast:
     """The lumped model, unless a core-probe model has a clearly lower AICc (by more than 2)."""
     import copy
 
     base = copy.deepcopy(fc)
-    lumped = _lumped(copy.deepcopy(fc), tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit)
+    lumped = _lumped(copy.deepcopy(fc), tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit,
+                     prior=prior)
     lumped.model = "lumped"
     if not lumped.ok or "rss" not in lumped.params:
         return lumped

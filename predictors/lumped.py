@@ -21,6 +21,10 @@ Ambient modes:
 - known: a Gaussian prior a ~ N(a0, ambient_sd^2), folded into the objective as
   lam (a - a0)^2 with lam = sigma^2 / ambient_sd^2 (sigma: reading noise), so a given ambient that
   is a couple of degrees off widens the interval instead of biasing it unseen; ambient_sd = 0 fixes a.
+
+A prior on k learned from past episodes (``k_prior = (mu, sd)`` of ln k) enters the same way, as a
+penalty lam_k (ln k - mu)^2 with lam_k = sigma^2 / sd^2 added to the profile RSS_k: it is a prior,
+not a constraint, so readings with curvature that contradict it outweigh it as they accumulate.
 """
 
 from __future__ import annotations
@@ -254,8 +258,14 @@ def fit_lumped(
     noise_sd: float | None = None,
     intervals: bool = True,
     limit: str | None = None,
+    k_prior: tuple[float, float] | None = None,
 ) -> LumpedFit:
-    """Fit T(t) = a + b e^(-k (t - t_first)) to sorted, cleaned readings; never raises on data."""
+    """Fit T(t) = a + b e^(-k (t - t_first)) to sorted, cleaned readings; never raises on data.
+
+    k_prior: (mean, sd) of ln(k_per_s), a Gaussian prior (see the module docstring).
+    """
+    if k_prior is not None and not (math.isfinite(k_prior[0]) and k_prior[1] > 0):
+        raise ValueError(f"k_prior must be (finite mean, sd > 0) of ln k, got {k_prior!r}")
     t = np.asarray(t, float)
     y = np.asarray(y, float)
     n = t.size
@@ -279,14 +289,19 @@ def fit_lumped(
         a0 = float(ambient) - ybar
         lam = math.inf if ambient_sd <= 0 else 0.0
     k_grid = np.geomspace(KD_MIN, KD_MAX, 56) / D
+    if k_prior is not None:
+        # early on the prior's k may lie below the data's grid (k D < KD_MIN): cover it too
+        k_grid = np.unique(np.concatenate(
+            [k_grid, np.exp(k_prior[0] + k_prior[1] * np.linspace(-4.0, 4.0, 17))]))
+    pen = KPenalty(k_prior)
 
     def objective(logk: float, lam_: float) -> float:
         s1 = sums(d, yc, np.array([math.exp(logk)]))
-        return float(solve_fixed_k(s1, lam_, a0, lo, hi)[2][0])
+        return float(solve_fixed_k(s1, lam_, a0, lo, hi)[2][0] + pen(s1.k)[0])
 
     def best_k(lam_: float) -> float:
         s0 = sums(d, yc, k_grid)
-        rss0 = solve_fixed_k(s0, lam_, a0, lo, hi)[2]
+        rss0 = solve_fixed_k(s0, lam_, a0, lo, hi)[2] + pen(k_grid)
         i = int(np.argmin(rss0))
         lk = np.log(k_grid)
         a_, b_ = lk[max(i - 1, 0)], lk[min(i + 1, lk.size - 1)]
@@ -296,11 +311,13 @@ def fit_lumped(
                               options={"xatol": 1e-6})
         return float(math.exp(res.x)) if res.fun <= rss0[i] else float(k_grid[i])
 
-    if ambient is not None and ambient_sd > 0:
+    if (ambient is not None and ambient_sd > 0) or k_prior is not None:
         # lam = sigma^2 / sd_a^2; sigma from the readings' own noise, then from the fit itself
         sig = noise_sd if noise_sd and noise_sd > 0 else 0.1 * spread
         for _ in range(2):
-            lam = sig**2 / ambient_sd**2
+            if ambient is not None and ambient_sd > 0:
+                lam = sig**2 / ambient_sd**2
+            pen.sigma = sig
             k_hat = best_k(lam)
             r_hat = objective(math.log(k_hat), lam)
             sig = max(math.sqrt(r_hat / max(n - 3, 1)), 1e-9)
@@ -308,6 +325,7 @@ def fit_lumped(
         k_hat = best_k(lam)
     s_hat = sums(d, yc, np.array([k_hat]))
     a_hat, b_hat, r_hat = (float(v[0]) for v in solve_fixed_k(s_hat, lam, a0, lo, hi))
+    r_hat += float(pen(s_hat.k)[0])
     fit_y = a_hat + b_hat * np.exp(-k_hat * d)
     dof = max(n - n_par, 1)
     fit = LumpedFit(
@@ -318,11 +336,28 @@ def fit_lumped(
     fit.eta_s, fit.direction = crossing_eta(fit.value_fit_now, fit.ambient, k_hat, threshold,
                                             value_start=a_hat + b_hat + ybar, limit=limit)
     if intervals:
-        add_intervals(fit, d, yc, thr, lam, a0, lo, hi, ybar, k_grid)
+        add_intervals(fit, d, yc, thr, lam, a0, lo, hi, ybar, k_grid, pen)
     return fit
 
 
-def add_intervals(fit: LumpedFit, d, yc, thr, lam, a0, lo, hi, ybar, k_coarse) -> None:
+class KPenalty:
+    """lam_k (ln k - mu)^2 with lam_k = sigma^2 / sd^2, in RSS units; zero without a prior."""
+
+    def __init__(self, k_prior: tuple[float, float] | None, sigma: float = 0.0):
+        self.k_prior = k_prior
+        self.sigma = sigma
+
+    def __call__(self, k: np.ndarray) -> np.ndarray:
+        k = np.atleast_1d(np.asarray(k, float))
+        if self.k_prior is None or self.sigma <= 0:
+            return np.zeros(k.shape)
+        mu, sd = self.k_prior
+        with np.errstate(divide="ignore"):
+            return (self.sigma / sd) ** 2 * (np.log(k) - mu) ** 2
+
+
+def add_intervals(fit: LumpedFit, d, yc, thr, lam, a0, lo, hi, ybar, k_coarse,
+                  pen: KPenalty | None = None) -> None:
     """90 % profile-likelihood intervals for k, the ambient and the crossing time.
 
     k: the varpro profile RSS_k on a grid, refined near k_hat.  Ambient and crossing time: the
@@ -330,18 +365,19 @@ def add_intervals(fit: LumpedFit, d, yc, thr, lam, a0, lo, hi, ybar, k_coarse) -
     over the k grid.
     """
     D = float(d[-1])
+    pen = pen or KPenalty(None)
     cut = fit.rss * (1.0 + f_dist.ppf(CONF, 1, fit.dof) / fit.dof)
     k_hat, lk = fit.k_per_s, math.log(fit.k_per_s)
     # curvature of RSS in log k sets a fine grid around k_hat
     s3 = sums(d, yc, np.exp(lk + np.array([-0.01, 0.0, 0.01])))
-    r3 = solve_fixed_k(s3, lam, a0, lo, hi)[2]
+    r3 = solve_fixed_k(s3, lam, a0, lo, hi)[2] + pen(s3.k)
     curv = (r3[0] + r3[2] - 2 * r3[1]) / 0.01**2
     hw = math.sqrt(2 * (cut - fit.rss) / curv) if curv > 0 else 3.0
     hw = min(max(hw, 1e-5), 3.0)
     fine = np.exp(lk + np.linspace(-4 * hw, 4 * hw, 61))
     k_all = np.unique(np.concatenate([k_coarse, fine, [k_hat]]))
     s = sums(d, yc, k_all)
-    r_k = solve_fixed_k(s, lam, a0, lo, hi)[2]
+    r_k = solve_fixed_k(s, lam, a0, lo, hi)[2] + pen(k_all)
     fit.k_lo, fit.k_hi = interval_from_profile(k_all, r_k, cut, k_hat)
     if fit.k_lo is None:
         fit.k_lo = 0.0
@@ -350,6 +386,7 @@ def add_intervals(fit: LumpedFit, d, yc, thr, lam, a0, lo, hi, ybar, k_coarse) -
         inside = k_all == k_hat
     # unclipped optimum per k: the centre of the ellipse
     a_u, b_u, r_u = solve_fixed_k(s, lam, a0, -np.inf, np.inf)
+    r_u = r_u + pen(k_all)
     delta = np.where(inside, cut - r_u, -1.0)
     if math.isinf(lam):
         fit.ambient_lo = fit.ambient_hi = fit.ambient
