@@ -70,15 +70,10 @@ def _two_stage_step(
     T(tau)  = U + C e^(-ka tau) + (l0 - U - C) e^(-kl tau),   C = kl (a0 - U) / (kl - ka)
     (ka -> kl:  T = U + (l0 - U) e^(-k tau) + k (a0 - U) tau e^(-k tau))
     """
-    air = u + (a0 - u) * np.exp(-ka * tau)
     if kl <= 0:
-        return air, np.full_like(tau, l0)
-    if abs(kl - ka) < 1e-9 * max(kl, ka):
-        load = u + (l0 - u) * np.exp(-kl * tau) + kl * (a0 - u) * tau * np.exp(-kl * tau)
-    else:
-        c = kl * (a0 - u) / (kl - ka)
-        load = u + c * np.exp(-ka * tau) + (l0 - u - c) * np.exp(-kl * tau)
-    return air, load
+        return u + (a0 - u) * np.exp(-ka * tau), np.full_like(tau, l0)
+    return synth.air_load_curves(tau, load_T0=l0, air_T0=a0, outside=u, k_air_per_s=ka,
+                                 k_load_per_s=kl)
 
 
 def two_stage(
