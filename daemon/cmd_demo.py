@@ -36,10 +36,11 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                    help="print forecast and alert lines instead of the dashboard")
     p.add_argument("--duration", type=float, metavar="S",
                    help="stop after S real seconds (default: run until Ctrl-C)")
-    p.add_argument("--host", default="127.0.0.1", help="broker to use if one answers (127.0.0.1)")
+    p.add_argument("--host", default="127.0.0.1",
+                   help="broker to use if it accepts an anonymous client (default 127.0.0.1)")
     p.add_argument("--port", type=int, default=1883, help="its port (default 1883)")
     p.add_argument("--embedded", action="store_true",
-                   help="always start the in-process broker, even if one answers at host:port")
+                   help="always start the in-process broker, even if one accepts at host:port")
     p.add_argument("--seed", type=int, default=0, help="noise seed (default 0)")
     p.add_argument("--keep", metavar="DIR",
                    help="keep the store, config and log in DIR (default: a temporary folder, removed)")
