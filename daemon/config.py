@@ -110,6 +110,7 @@ class ItemConfig:
     senml_name: str | None = None
     site: str | None = None
     limit: str = "auto"  # "upper" | "lower" | "auto" (the side the item's first reading is on)
+    prior_class: str | None = None  # whose past episodes make the prior: None = the item's name
     lead_s: float = 1800.0
     hysteresis: float = 0.5
     hold_s: float = 300.0
@@ -486,7 +487,7 @@ def _ingest(c: _Checker, t: dict) -> IngestConfig:
 
 
 ITEM_KEYS = {"name", "topic", "threshold", "unit", "ambient", "ambient_topic", "model", "window",
-             "min_points", "plausible", "senml_name", "site", "limit"} | set(ALERT_KEYS)
+             "min_points", "plausible", "senml_name", "site", "limit", "prior_class"} | set(ALERT_KEYS)
 
 
 def _items(c: _Checker, raw: Any, fit: FitConfig, alerts: AlertDefaults,
@@ -561,6 +562,7 @@ def _items(c: _Checker, raw: Any, fit: FitConfig, alerts: AlertDefaults,
             plausible=plausible, senml_name=c.get(t, w, "senml_name", "str"),
             site=c.get(t, w, "site", "str"),
             limit=c.get(t, w, "limit", "str", "auto", choices=("upper", "lower", "auto")),
+            prior_class=_prior_class(c, t, w),
             line=c.index.line(w), **values,
         )
         if len(c.problems) == n_problems:
@@ -570,6 +572,16 @@ def _items(c: _Checker, raw: Any, fit: FitConfig, alerts: AlertDefaults,
                           f"{item.threshold:g} is outside the plausible range [{lo:g}, {hi:g}]")
         out.append(item)
     return out
+
+
+def _prior_class(c: _Checker, t: dict, w: tuple) -> str | None:
+    """prior_class: a non-empty name of at most 200 characters (the store's key), or absent."""
+    v = c.get(t, w, "prior_class", "str")
+    if v is not None and not 0 < len(v.strip()) <= 200:
+        c.problem(w + ("prior_class",), "item.prior_class",
+                  f"must be a name of 1-200 characters, got {_show(v)}")
+        return None
+    return None if v is None else v.strip()
 
 
 def _check_name(c: _Checker, w: tuple, name: str, topic: str | None, ambient_topic: str | None) -> None:

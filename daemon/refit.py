@@ -12,6 +12,14 @@ States, judged in this order:
 
 One item's failed fit (an exception, or a result with ``ok=False``) is logged and published as
 such; the other items go on.
+
+Priors (``predictors/prior.py``, stored in ``storage/priors.py``): each item teaches its prior
+class (item key ``prior_class``, default its own name) and its lumped fits (fitted or given
+ambient) use the class's prior.  The rule for an episode: a stretch of readings counts once, at
+the first refit whose fit WITHOUT the prior pins k (and a fitted ambient) down
+(``prior.learnable``); the item's next lesson can only come from a fit whose readings all start
+after that one's newest reading (a change of the surroundings cut the window, or the window
+slid past).  So lessons never share readings, and the prior never learns from itself.
 """
 
 from __future__ import annotations
@@ -19,6 +27,7 @@ from __future__ import annotations
 import inspect
 import json
 import logging
+import math
 import threading
 import time
 from collections.abc import Callable
@@ -30,7 +39,9 @@ from thermeta.daemon.clock import Clock
 from thermeta.daemon.config import AMBIENT_SUFFIX, Config, ItemConfig
 from thermeta.daemon.units import from_celsius, scale_from_celsius
 from thermeta.daemon.writer import Activity
+from thermeta.predictors.prior import Prior, learn, learnable
 from thermeta.predictors.result import Forecast, rfc3339
+from thermeta.storage.priors import PriorStore
 from thermeta.storage.store import Store
 
 log = logging.getLogger("thermeta.refit")
@@ -110,6 +121,10 @@ class Refitter:
         self.runs = 0
         self.last_run_s = 0.0
         self._predict = _load_forecast()
+        self.prior_store = PriorStore(store)
+        self.priors: dict[str, Prior] = {}  # by prior class, loaded on first use
+        self.learned_until: dict[str, float] = {}  # by item
+        self.lessons = 0
 
     def load_previous(self) -> None:
         """Pick up each item's last forecast from the store (after a restart)."""
@@ -187,12 +202,18 @@ class Refitter:
             if first is not None:
                 self.first_values[name] = first[1]
         limit = limit_side(cfg, self.first_values.get(name))
+        cls = cfg.prior_class or name
+        prior = self._prior(cls) if mode != "measured" and cfg.model in ("lumped", "auto") else None
+        kw: dict[str, Any] = {"model": cfg.model, "ambient": cfg.ambient_c, "ambient_t": amb_t,
+                              "ambient_y": amb_y, "window_s": cfg.window_s,
+                              "min_points": cfg.min_points, "limit": limit}
         try:
-            fc = self._predict(t, y, cfg.threshold_c, model=cfg.model, ambient=cfg.ambient_c,
-                               ambient_t=amb_t, ambient_y=amb_y, window_s=cfg.window_s,
-                               min_points=cfg.min_points, limit=limit)
+            fc = self._predict(t, y, cfg.threshold_c, prior=prior, **kw)
             if not fc.ok and len(rows) >= cfg.min_points:
                 self._log_error(name, "no forecast for %s: %s", name, fc.reason)
+            if mode != "measured":
+                self._maybe_learn(name, cls, fc, prior, now,
+                                  lambda: self._predict(t, y, cfg.threshold_c, **kw))
         except Exception as exc:  # noqa: BLE001 - a failed fit is a result, not a crash
             self._log_error(name, "fit of %s raised %s: %s", name, exc.__class__.__name__, exc)
             fc = Forecast(threshold=cfg.threshold_c, model=cfg.model, ambient_mode=mode,
@@ -205,7 +226,51 @@ class Refitter:
         body.update(item=name, state=state, updated_at=rfc3339(now), unit=cfg.unit, limit=limit)
         if cfg.site:
             body["site"] = cfg.site
+        if prior is not None and prior.n_episodes:
+            body["prior_class"] = cls
         return item_id, state, body
+
+    def _prior(self, cls: str) -> Prior:
+        """The class's prior (an empty one if it has none yet, or the store cannot say)."""
+        if cls not in self.priors:
+            try:
+                body = self.prior_store.get(cls)
+            except Exception:  # noqa: BLE001 - forecasts go on without a prior
+                log.exception("reading the prior of %s failed", cls)
+                return Prior()
+            self.priors[cls] = Prior() if body is None else Prior.from_dict(body)
+        return self.priors[cls]
+
+    def _maybe_learn(self, name: str, cls: str, fc: Forecast, prior: Prior | None, now: float,
+                     refit_plain: Callable[[], Forecast]) -> None:
+        """Teach the class this episode's k (and fitted ambient) per the module's rule."""
+        if not learnable(fc) or fc.regime_start is None or fc.t_last is None:
+            return
+        if name not in self.learned_until:
+            try:
+                self.learned_until[name] = self.prior_store.learned_until(name) or -math.inf
+            except Exception:  # noqa: BLE001
+                log.exception("reading the prior mark of %s failed", name)
+                return
+        if fc.regime_start <= self.learned_until[name]:
+            return
+        plain = fc if prior is None or not prior.n_episodes else refit_plain()
+        if not learnable(plain):
+            return
+
+        def update(body: dict[str, Any] | None) -> dict[str, Any]:
+            return learn(None if body is None else Prior.from_dict(body), plain).to_dict()
+
+        try:
+            body = self.prior_store.learn(cls, name, float(plain.t_last), now, update)
+        except Exception:  # noqa: BLE001 - the next episode teaches again
+            log.exception("storing the prior of %s failed", cls)
+            return
+        self.priors[cls] = Prior.from_dict(body)
+        self.learned_until[name] = float(plain.t_last)
+        self.lessons += 1
+        log.info("prior %s learned from %s: %d episode(s), time constant about %.3g h", cls, name,
+                 self.priors[cls].n_episodes, 1.0 / (plain.k_per_s or math.inf) / 3600.0)
 
     def _deliver(self, name: str, cfg: ItemConfig, body: dict[str, Any]) -> None:
         """Publish a stored forecast and hand it to the listeners."""
@@ -235,7 +300,7 @@ def _load_forecast() -> Callable[..., Forecast]:
     from thermeta.predictors import forecast
 
     params = inspect.signature(forecast).parameters
-    optional = {"min_points", "limit"}
+    optional = {"min_points", "limit", "prior"}
     dropped = {k for k in optional if k not in params}
     if not dropped:
         return forecast

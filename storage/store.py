@@ -22,7 +22,7 @@ from thermeta.storage import schema
 from thermeta.storage.schema import dead_letters, forecasts, items, meta, readings
 
 BUSY_TIMEOUT_MS = 15000
-PLUGIN_MODULES = ("thermeta.storage.alerts",)  # other parts' tables, joined to schema.metadata
+PLUGIN_MODULES = ("thermeta.storage.alerts", "thermeta.storage.priors")  # other parts' tables, joined to schema.metadata
 
 
 READING_COLUMNS = ("item_id", "ts", "value_c", "flags", "received_at")
