@@ -231,3 +231,15 @@ def test_the_sentence_carries_the_numbers():
     for level in ("crossed", "recovered", "stale", "resumed", "regime"):
         b = dict(a, level=level, from_level="crossed", by="band", regime_start_s=now)
         assert b["item"] in sentence(b)
+
+
+def test_the_daemons_limit_side_is_used_when_given():
+    """A forecast saying limit = "lower" (a floor, configured) makes a value under the threshold
+    a crossing even on first sight, and one above it safe."""
+    p = RuleParams(threshold=10.0, lead_s=600)
+    base = {"item": "cellar", "unit": "C", "fit_ok": True, "warnings": [], "limit": "lower",
+            "last_reading_at": rfc3339(T0_EPOCH)}
+    _, out = run([(0, dict(base, state="crossed", value_now=9.0))], p)
+    assert [e.level for _, e in out] == ["crossed"]
+    _, out = run([(0, dict(base, state="steady", value_now=11.0, limit="lower"))], p)
+    assert out == []

@@ -178,7 +178,9 @@ def step(st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float,
     if st.level == "clear":
         # The unsafe side is learnt from the first travel toward the limit and then kept: a load
         # cooling back down after a crossing is recovering, not heading for a floor.
-        side = st.side or side_of(fc, thr)
+        # The daemon's own judgement (``limit``: configured, or from the first reading) wins.
+        side = fc.get("limit") if fc.get("limit") in ("upper", "lower") else None
+        side = side or st.side or side_of(fc, thr)
         if side is None:
             return events
         st.side = side
