@@ -643,6 +643,12 @@ def _hooks(c: _Checker, raw: Any) -> list[HookConfig]:
         c.unknown(t, w, {"kind", "name", "items", "levels"} | HOOK_KEYS[kind])
         items = c.get(t, w, "items", "strlist")
         levels = c.get(t, w, "levels", "strlist")
+        from thermeta.daemon.alerts.rules import LEVELS as ALERT_LEVELS
+
+        for lv in levels or ():
+            if lv not in ALERT_LEVELS:
+                c.problem(w + ("levels",), "hook.levels",
+                          f"unknown level {_show(lv)} (one of {', '.join(ALERT_LEVELS)})")
         kw: dict[str, Any] = {}
         if kind == "webhook":
             url = c.get(t, w, "url", "str", required=True)

@@ -232,3 +232,17 @@ def test_run_refuses_a_bad_config_with_exit_2(tmp_path):
                        capture_output=True, text=True, timeout=60)
     assert r.returncode == 2
     assert r.stderr.strip() == f"{bad}:9: fit.refit_every: must be > 0, got 0"
+
+
+def test_hook_levels_must_be_known(tmp_path):
+    """A misspelt level in a hook's `levels` is reported at its line instead of matching nothing."""
+    p = tmp_path / "c.toml"
+    p.write_text(
+        '[broker]\nhost = "127.0.0.1"\nport = 1883\n[storage]\nurl = "sqlite:///x.db"\n'
+        '[[item]]\nname = "trailer-4"\ntopic = "fleet/trailer-4/load"\nthreshold = -15.0\n'
+        '[[hook]]\nkind = "webhook"\nurl = "http://127.0.0.1:8080/alerts"\n'
+        'levels = ["approaching", "crosed"]\n'
+    )
+    with pytest.raises(ConfigError) as err:
+        load_config(p)
+    assert any(line.startswith(f"{p}:13: hook.levels: unknown level") for line in err.value.problems)
