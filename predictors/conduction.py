@@ -22,7 +22,12 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy.optimize import least_squares
 from thermeta.predictors import conduction_eta as ceta
-from thermeta.predictors.conduction_ambient import AmbientFn, make_ambient_fn, ramp_part
+from thermeta.predictors.conduction_ambient import (
+    AmbientFn,
+    make_ambient_fn,
+    ramp_part,
+    steady_level,
+)
 from thermeta.predictors.conduction_profile import profile_interval
 from thermeta.predictors.conduction_series import (
     BIOT_MAX,
@@ -40,6 +45,7 @@ FIT_BIOT_MIN = 1e-3
 FIT_BIOT_MAX = 100.0
 AMBIENT_BOUNDS = (-100.0, 300.0)
 N_DRAWS = 400
+STEADY_INTERVAL: str | None = None
 _BI_GRID = (0.01, 0.06, 0.3, 1.0, 3.0, 10.0, 40.0)
 _K_SPAN_GRID = tuple(np.geomspace(0.03, 30.0, 11))
 PROFILE_METHOD = (
@@ -281,6 +287,7 @@ def fit_conduction(
     ambient_sd: float = 0.0,
     interval: str = "auto",
     min_points: int = 8,
+    hold_steady: bool = True,
 ) -> ConductionFit:
     """Fit the centre-probe curve to cleaned readings ``y`` at epoch seconds ``t_s``.
 
@@ -292,7 +299,9 @@ def fit_conduction(
     centred on it, so the intervals carry that doubt.  interval: "profile" (profile likelihood
     of the crossing time; slower, better coverage), "draws" (simulated delta method, also used
     for the Bi, k and ambient intervals) or "auto" (profile with a constant ambient, draws with
-    a measured one, where each profile refit costs ~5x more).  A failed fit is returned with
+    a measured one, where each profile refit costs ~5x more).  hold_steady: a measured ambient
+    with no significant trend over the episode (:func:`steady_level`) is taken as a constant
+    at its mean (ambient_mode stays "measured").  A failed fit is returned with
     ``ok=False`` and a reason; ValueError only for a bad geometry or mismatched arrays.
     """
     if geometry not in GEOMETRIES:
@@ -323,6 +332,20 @@ def fit_conduction(
                                            np.asarray(ambient_y, float), ambient_future)
         except ValueError as exc:
             return _failed(geometry, mode, n, str(exc))
+        level = (_steady_ambient(np.asarray(ambient_t, float), np.asarray(ambient_y, float),
+                                 start, float(t[-1])) if hold_steady and ambient_future is None
+                 else None)
+        if level is not None:
+            # No trend in the air: the constant-ambient model at its mean (the mean's standard
+            # error as the sd of a soft prior), instead of a Duhamel sum over its noise and an
+            # extrapolated curve whose asymptote wanders with that noise.
+            fit = fit_conduction(t, yy, geometry, ambient=level[0], start_s=start,
+                                 fit_start=fit_start, ambient_sd=level[1], interval=STEADY_INTERVAL or interval,
+                                 min_points=min_points)
+            fit.ambient_mode = "measured"
+            fit.ambient_note = (f"the ambient shows no trend; carried forward at its mean "
+                                f"{level[0]:.4g} (standard error {level[1]:.2g})")
+            return fit
     curve = _Curve(geometry, mode, start, span, ambient, amb_fn, fit_start)
     fit = _fit_curve(curve, t, yy)
     if fit.ok and mode == "fitted" and not ambient_bounds[0] <= fit.Ta <= ambient_bounds[1]:
@@ -345,6 +368,21 @@ def fit_conduction(
     if interval == "profile" or (interval == "auto" and mode != "measured"):
         fit.interval_kind, fit.interval_method = "profile", PROFILE_METHOD
     return fit
+
+
+def _steady_ambient(
+    at: Float, ay: Float, start_s: float, end_s: float
+) -> tuple[float, float] | None:
+    """steady_level of the air readings over the episode [start_s, end_s] (all of them when
+    fewer than 6 fall inside)."""
+    keep = np.isfinite(at) & np.isfinite(ay)
+    at, ay = at[keep], ay[keep]
+    order = np.argsort(at, kind="stable")
+    at, ay = at[order], ay[order]
+    inside = (at >= start_s) & (at <= end_s)
+    if int(inside.sum()) >= 6:
+        at, ay = at[inside], ay[inside]
+    return steady_level(at, ay)
 
 
 def _start_grid(curve: _Curve, t: Float, y: Float) -> Float:

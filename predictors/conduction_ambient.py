@@ -19,11 +19,13 @@ R is then interpolated linearly between grid points.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable
 
 import numpy as np
 from numpy.typing import NDArray
 from scipy.signal import fftconvolve
+from scipy.stats import f as f_dist
 
 Float = NDArray[np.float64]
 AmbientFn = Callable[[Float], Float]
@@ -82,6 +84,43 @@ def exp_approach_fit(t_s: Float, y: Float) -> tuple[float, float, float]:
             best, best_ab = (rss, 0.0, float(k)), (float(coef[0]), float(coef[1]))
     a_inf, b_now = best_ab
     return a_inf, b_now, best[2]
+
+
+def steady_level(t_s: Float, y: Float, alpha: float = 0.01) -> tuple[float, float] | None:
+    """(mean, standard error) when an ambient series shows no trend, else None.
+
+    Two tests against a constant level, each an F test of the extra sum of squares (Gaussian
+    noise): a straight line, F = (RSS0 - RSS1) / (RSS1 / (n - 2)) on (1, n - 2) dof, and the
+    best exponential approach of :func:`exp_approach_fit`'s k grid, F on (2, n - 3) dof with a
+    Bonferroni factor for the grid's size.  Steady when neither is significant at ``alpha``;
+    a steady air is then carried forward at its mean instead of an extrapolated curve whose
+    asymptote would wander with the noise.
+    """
+    n = int(t_s.size)
+    if n < 6 or float(t_s[-1] - t_s[0]) <= 0.0:
+        return None
+    mean = float(np.mean(y))
+    rss0 = float(np.sum((y - mean) ** 2))
+    se = math.sqrt(rss0 / (n - 1) / n)
+    if rss0 <= 1e-12 * max(1.0, mean * mean) * n:
+        return mean, se  # every reading the same (a quantised, steady air)
+    x = t_s - t_s[-1]
+    span = float(x[-1] - x[0])
+    slope, icept = np.polyfit(x / span, y, 1)
+    rss1 = float(np.sum((y - (icept + slope * x / span)) ** 2))
+    p_lin = float(f_dist.sf((rss0 - rss1) / max(rss1 / (n - 2), 1e-300), 1, n - 2))
+    ks = np.geomspace(0.05 / span, 30.0 / span, 40)
+    rss2 = rss0
+    for k in ks:
+        e = np.exp(-k * x)
+        a_mat = np.column_stack([1.0 - e, e])
+        coef, *_ = np.linalg.lstsq(a_mat, y, rcond=None)
+        rss2 = min(rss2, float(np.sum((y - a_mat @ coef) ** 2)))
+    p_exp = min(1.0, ks.size * float(
+        f_dist.sf((rss0 - rss2) / 2.0 / max(rss2 / (n - 3), 1e-300), 2, n - 3)))
+    if min(p_lin, p_exp) < alpha:
+        return None
+    return mean, se
 
 
 def make_ambient_fn(

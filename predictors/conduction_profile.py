@@ -27,6 +27,12 @@ if TYPE_CHECKING:
 
 Float = NDArray[np.float64]
 CHI2_1_90 = 2.705543454095404
+# Search: steps grow by STEP_GROWTH until the statistic passes the cut-off, then brentq to
+# REFINE_REL of the last step; each constrained refit gets at most MAX_NFEV evaluations.
+STEP_GROWTH = 2.5
+REFINE_REL = 0.05
+MAX_NFEV = 20
+LSQ_TOL = 1e-6
 
 
 def _constrained_residual(
@@ -76,8 +82,8 @@ def profile_interval(
             return _constrained_residual(curve, q, t, y, tau, threshold)[0]
 
         q0 = np.clip(state["q"], lo_b, hi_b)
-        sol = least_squares(res, q0, bounds=(lo_b, hi_b), method="trf", xtol=1e-6, ftol=1e-6,
-                            max_nfev=40)
+        sol = least_squares(res, q0, bounds=(lo_b, hi_b), method="trf", xtol=LSQ_TOL, ftol=LSQ_TOL,
+                            max_nfev=MAX_NFEV)
         r = sol.fun
         rss = float(r @ r)
         state["q"] = sol.x
@@ -113,13 +119,13 @@ def profile_interval(
                 return None
             if stat(tau) > 0:
                 return _refine(prev, tau)
-            prev, step = tau, step * 1.8
+            prev, step = tau, step * STEP_GROWTH
 
     def _refine(inside: float, outside: float) -> float:
         q_keep = state["q"]
         try:
             root = brentq(stat, min(inside, outside), max(inside, outside),
-                          xtol=max(0.01 * abs(outside - inside), 0.5), maxiter=30)
+                          xtol=max(REFINE_REL * abs(outside - inside), 0.5), maxiter=30)
         except ValueError:
             root = outside
         state["q"] = q_keep

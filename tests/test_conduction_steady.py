@@ -1,0 +1,65 @@
+"""A measured ambient with no trend is carried forward at its mean (core-probe model)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy.stats import linregress
+from thermeta.predictors import synth
+from thermeta.predictors.conduction import fit_conduction
+from thermeta.predictors.conduction_ambient import steady_level
+from thermeta.predictors.synth import Corruption
+from thermeta.predictors.synth_conduction import core_probe
+
+
+def _sphere(seed: int) -> synth.Synth:
+    """A sphere's centre at 3 degC in 25 degC air, Bi 2, seen half-way in time to 8 degC."""
+    return core_probe(seed, geometry="sphere", biot=2.0, a_per_s=4e-5, t_i=3.0, ambient=25.0,
+                      threshold=8.0, seen_fraction=0.5, dt_s=60.0,
+                      corruption=Corruption(noise=0.1, quantum=0.1))
+
+
+def test_steady_test_false_alarm_rate_and_power():
+    """On constant air with 0.1 degC noise, quantised to 0.1, the no-trend test calls a trend in
+    at most 5 % of 200 seeded series (its size is 1 %, Bonferroni-bounded); an air warming 1 degC
+    over the same 40 min (a slope scipy's linregress finds at p < 1e-6) is never called steady."""
+    t = synth.T_START + np.arange(0.0, 2400.0, 60.0)
+    trend = 0
+    for seed in range(200):
+        rng = np.random.default_rng(seed)
+        y = np.round((24.0 + rng.normal(0.0, 0.1, t.size)) / 0.1) * 0.1
+        level = steady_level(t, y)
+        if level is None:
+            trend += 1
+        else:
+            assert level[0] == pytest.approx(float(np.mean(y)))
+            assert 0.0 < level[1] < 0.05
+    assert trend <= 10
+    rng = np.random.default_rng(7)
+    warm = 24.0 + (t - t[0]) / 2400.0 + rng.normal(0.0, 0.1, t.size)
+    assert linregress(t, warm).pvalue < 1e-6
+    assert steady_level(t, warm) is None
+
+
+def test_steady_air_fit_equals_known_ambient_fit():
+    """A steady, noisy air probe gives the fit at the air's mean as a known ambient (same Bi and
+    crossing within 1 %), keeps ambient_mode 'measured', says so in its note, and uses the
+    profile-likelihood interval, which covers the truth here."""
+    s = _sphere(3)
+    rng = np.random.default_rng(3)
+    at = np.sort(s.t)
+    ay = np.round((25.0 + rng.normal(0.0, 0.1, at.size)) / 0.1) * 0.1
+    fit = fit_conduction(s.t, s.y, "sphere", ambient_t=at, ambient_y=ay)
+    assert fit.ok, fit.reason
+    assert fit.ambient_mode == "measured"
+    assert "no trend" in (fit.ambient_note or "")
+    assert fit.interval_kind == "profile"
+    ref = fit_conduction(s.t, s.y, "sphere", ambient=float(np.mean(ay)))
+    assert fit.biot == pytest.approx(ref.biot, rel=0.01)
+    eta, lo, hi = fit.time_to_threshold(8.0)
+    eta_ref, _, _ = ref.time_to_threshold(8.0)
+    assert eta == pytest.approx(eta_ref, rel=0.01)
+    assert lo <= s.eta_true_s <= (hi if hi is not None else np.inf)
+    # With the steady hold switched off the Duhamel path is used (the draws interval).
+    raw = fit_conduction(s.t, s.y, "sphere", ambient_t=at, ambient_y=ay, hold_steady=False)
+    assert raw.ok and raw.interval_kind == "draws"
