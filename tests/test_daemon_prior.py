@@ -52,8 +52,8 @@ def wort(seed: int, t_end: float, duration_s: float) -> tuple[np.ndarray, np.nda
 def feed(store: Store, act: Activity, cfg, name: str, t: np.ndarray, y: np.ndarray) -> None:
     it = next(i for i in cfg.items if i.name == name)
     iid = store.ensure_item(name, unit="C", topic=it.topic, now=float(t[0]))
-    store.write_batch([dict(item_id=iid, ts=float(a), value_c=float(b), flags=0,
-                            received_at=float(a)) for a, b in zip(t, y)])
+    store.write_batch([{"item_id": iid, "ts": float(a), "value_c": float(b), "flags": 0,
+                        "received_at": float(a)} for a, b in zip(t, y)])
     act.note(name, it, float(t.max()))
 
 
@@ -114,3 +114,40 @@ def test_prior_class_is_validated(tmp_path):
         with pytest.raises(ConfigError) as info:
             config(tmp_path, [(1, bad)])
         assert any("prior_class" in p for p in info.value.problems)
+
+
+def learn_twice(url: str, cls: str, item: str) -> None:
+    """Two lessons of one class through PriorStore.learn: the update sees the stored body, the
+    row and the item's mark are written together."""
+    from thermeta.predictors.prior import Prior
+
+    store = Store(url)
+    store.create_all()
+    ps = PriorStore(store)
+    assert ps.get(cls) is None and ps.learned_until(item) is None
+    seen = []
+
+    def step(k):
+        def update(body):
+            seen.append(body)
+            return (Prior.from_dict(body) if body else Prior()).updated(k, COOLANT).to_dict()
+        return update
+
+    ps.learn(cls, item, T0, T0, step(K))
+    ps.learn(cls, item, T0 + 60, T0 + 60, step(2 * K))
+    assert seen[0] is None and seen[1]["n_episodes"] == 1
+    body = ps.get(cls)
+    assert body["n_episodes"] == 2 and math.exp(body["logk_mean"]) == pytest.approx(math.sqrt(2) * K)
+    assert ps.learned_until(item) == T0 + 60 and cls in ps.all()
+    store.close()
+
+
+def test_prior_store_on_sqlite(tmp_path):
+    """PriorStore on a SQLite file (see learn_twice)."""
+    learn_twice(f"sqlite:///{tmp_path / 'p.db'}", "cellar-chillers", "tank-1")
+
+
+def test_prior_store_on_postgresql(pg_url):
+    """PriorStore on PostgreSQL (THERMETA_TEST_PG_URL), unique names per run."""
+    tag = f"{np.random.default_rng().integers(1 << 40):x}"
+    learn_twice(pg_url, f"chillers-{tag}", f"tank-{tag}")
