@@ -45,7 +45,6 @@ FIT_BIOT_MIN = 1e-3
 FIT_BIOT_MAX = 100.0
 AMBIENT_BOUNDS = (-100.0, 300.0)
 N_DRAWS = 400
-STEADY_INTERVAL: str | None = None
 _BI_GRID = (0.01, 0.06, 0.3, 1.0, 3.0, 10.0, 40.0)
 _K_SPAN_GRID = tuple(np.geomspace(0.03, 30.0, 11))
 PROFILE_METHOD = (
@@ -340,11 +339,13 @@ def fit_conduction(
             # error as the sd of a soft prior), instead of a Duhamel sum over its noise and an
             # extrapolated curve whose asymptote wanders with that noise.
             fit = fit_conduction(t, yy, geometry, ambient=level[0], start_s=start,
-                                 fit_start=fit_start, ambient_sd=level[1], interval=STEADY_INTERVAL or interval,
+                                 fit_start=fit_start, ambient_sd=level[1], interval=interval,
                                  min_points=min_points)
             fit.ambient_mode = "measured"
             fit.ambient_note = (f"the ambient shows no trend; carried forward at its mean "
                                 f"{level[0]:.4g} (standard error {level[1]:.2g})")
+            if fit.ok:
+                fit.warnings.append(fit.ambient_note)
             return fit
     curve = _Curve(geometry, mode, start, span, ambient, amb_fn, fit_start)
     fit = _fit_curve(curve, t, yy)

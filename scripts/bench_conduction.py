@@ -138,17 +138,63 @@ def speed(repeats: int) -> list[str]:
     return lines
 
 
+def crb(n_cases: int) -> list[str]:
+    """Issue 2's family "sphere centre Bi 0.8-4, air measured" (scripts/bench_core.py, same
+    seeds): the Cramer-Rao bound on the crossing time's sd at the true parameters, relative to
+    the true ETA, and the forecast's error on the same cases."""
+    import math
+    import sys
+    from pathlib import Path
+
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    from bench_core import sphere_measured
+    from thermeta.predictors import forecast
+    from thermeta.predictors.conduction_crb import crb_eta_sd
+
+    rel, errs = [], []
+    for seed in range(n_cases):
+        s, kw, _, amb = sphere_measured(seed)
+        # the generator's noise sd: the same draws, in the same order, as sphere_measured
+        r = np.random.default_rng(40_000 + seed)
+        r.uniform(0.8, 4.0), r.uniform(3e-5, 1e-4), r.uniform(2, 4)
+        if abs(r.uniform(20, 30) - amb) > 1e-12:
+            raise RuntimeError("bench_core.sphere_measured draws changed; update crb()")
+        noise = r.uniform(0.05, 0.2)
+        tr = s.truth
+        # readings: noise and 0.1 quantisation (variance q^2 / 12); air: 0.1 noise, same quantum
+        air_sd = math.sqrt(0.1**2 + 0.1**2 / 12) / math.sqrt(len(kw["ambient_t"]))
+        sd = crb_eta_sd(s.t, "sphere", t_i=tr["Ti"], ambient=amb, biot=tr["biot"],
+                        a_per_s=tr["a_per_s"], threshold=s.threshold,
+                        noise_sd=math.sqrt(noise**2 + 0.1**2 / 12), t0_s=tr["t0"],
+                        ambient_sd=air_sd)
+        rel.append(sd / s.eta_true_s)
+        fc = forecast(s.t, s.y, s.threshold, **kw)
+        errs.append(_err(fc.eta_s, s.eta_true_s))
+    rel_a = np.asarray(rel)
+    # median |error| an unbiased estimator at the bound would reach: |N(0, crb)| per case
+    sim = np.abs(np.random.default_rng(1).normal(size=(2000, rel_a.size))) * rel_a
+    return ["| family | cases | median CRB sd / ETA | p90 CRB sd / ETA | cases with CRB <= 10 % | "
+            "median error at the CRB (simulated) | forecast median error |",
+            "|---|---|---|---|---|---|---|",
+            f"| sphere centre Bi 0.8-4, air measured | {n_cases} | {100 * np.median(rel_a):.0f} % | "
+            f"{100 * np.quantile(rel_a, 0.9):.0f} % | {100 * np.mean(rel_a <= 0.10):.0f} % | "
+            f"{100 * float(np.median(np.median(sim, axis=1))):.0f} % | "
+            f"{100 * np.median(errs):.1f} % |"]
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--cases", type=int, default=30, help="cases per family (default 30)")
     ap.add_argument("--repeats", type=int, default=7, help="timing repeats (default 7)")
-    ap.add_argument("--only", choices=("speed", "accuracy", "selection"),
+    ap.add_argument("--only", choices=("speed", "accuracy", "selection", "crb"),
                     help="print one table only")
     args = ap.parse_args()
     tables = {
         "speed": ("Time per fit", lambda: speed(args.repeats)),
         "accuracy": ("Forecast error with the right geometry", lambda: accuracy(args.cases)),
         "selection": ("Geometry chosen by AICc", lambda: selection(max(args.cases // 2, 5))),
+        "crb": ("Information limit of issue 2's sphere family (Cramer-Rao)",
+                lambda: crb(2 * args.cases)),
     }
     for key, (title, make) in tables.items():
         if args.only in (None, key):
