@@ -19,16 +19,11 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def run(args: argparse.Namespace) -> int:
     from thermeta.daemon.alerts.message import clock
-    from thermeta.daemon.cmd_status import open_store
-    from thermeta.daemon.config import load_config
-    from thermeta.daemon.errors import ConfigError
+    from thermeta.daemon.cmdutil import load_config_or_report, open_store
     from thermeta.storage.alerts import AlertStore
 
-    try:
-        cfg = load_config(args.config)
-    except ConfigError as exc:
-        for line in exc.problems:
-            print(line, file=sys.stderr)
+    cfg = load_config_or_report(args.config)
+    if cfg is None:
         return 2
     store = open_store(cfg, "ack")
     if store is None:

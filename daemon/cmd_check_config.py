@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import argparse
-import sys
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
@@ -11,14 +10,10 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from thermeta.daemon.config import load_config
-    from thermeta.daemon.errors import ConfigError
+    from thermeta.daemon.cmdutil import load_config_or_report
 
-    try:
-        cfg = load_config(args.config)
-    except ConfigError as exc:
-        for line in exc.problems:
-            print(line, file=sys.stderr)
+    cfg = load_config_or_report(args.config)
+    if cfg is None:
         return 2
     patterns = sum(1 for it in cfg.items if it.is_pattern)
     n = len(cfg.items)

@@ -16,9 +16,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from thermeta.daemon.cmd_status import open_store
-    from thermeta.daemon.config import load_config
-    from thermeta.daemon.errors import ConfigError
+    from thermeta.daemon.cmdutil import load_config_or_report, open_store
     from thermeta.daemon.plotting import figure_png, item_figure
     from thermeta.daemon.topics import Router
 
@@ -28,11 +26,8 @@ def run(args: argparse.Namespace) -> int:
     if not args.out.lower().endswith(".png"):
         print(f"thermeta plot: --out {args.out}: the picture is a PNG; name it *.png", file=sys.stderr)
         return 2
-    try:
-        cfg = load_config(args.config)
-    except ConfigError as exc:
-        for line in exc.problems:
-            print(line, file=sys.stderr)
+    cfg = load_config_or_report(args.config)
+    if cfg is None:
         return 2
     store = open_store(cfg, "plot")
     if store is None:

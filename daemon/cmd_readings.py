@@ -17,18 +17,13 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from thermeta.daemon.cmd_status import open_store
-    from thermeta.daemon.config import load_config
-    from thermeta.daemon.errors import ConfigError
+    from thermeta.daemon.cmdutil import load_config_or_report, open_store
     from thermeta.daemon.timefmt import parse_time
     from thermeta.daemon.units import from_celsius
     from thermeta.predictors.result import rfc3339
 
-    try:
-        cfg = load_config(args.config)
-    except ConfigError as exc:
-        for line in exc.problems:
-            print(line, file=sys.stderr)
+    cfg = load_config_or_report(args.config)
+    if cfg is None:
         return 2
     bounds = {}
     for key in ("since", "until"):

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import argparse
-import sys
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
@@ -20,16 +19,12 @@ def run(args: argparse.Namespace) -> int:
     import signal
     import threading
 
-    from thermeta.daemon.config import load_config
-    from thermeta.daemon.errors import ConfigError
+    from thermeta.daemon.cmdutil import load_config_or_report
     from thermeta.daemon.logsetup import configure
     from thermeta.storage.store import StoreError
 
-    try:
-        cfg = load_config(args.config)
-    except ConfigError as exc:
-        for line in exc.problems:
-            print(line, file=sys.stderr)
+    cfg = load_config_or_report(args.config)
+    if cfg is None:
         return 2
     configure(args.log_level or cfg.log_level, json_lines=args.log_json)
     log = logging.getLogger("thermeta.run")

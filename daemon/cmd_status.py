@@ -5,7 +5,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import sys
 from typing import Any
 
 HEARTBEAT_LATE_S = 20.0  # the daemon writes one every 5 s
@@ -14,32 +13,6 @@ HEARTBEAT_LATE_S = 20.0  # the daemon writes one every 5 s
 def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--config", required=True, metavar="FILE", help="the TOML config")
     p.add_argument("--json", action="store_true", help="one JSON object on stdout")
-
-
-def open_store(cfg: Any, command: str):
-    """The config's store, or None after printing why it cannot be read."""
-    from sqlalchemy import inspect
-
-    from thermeta.storage.store import Store, StoreError, safe_url
-
-    url = cfg.storage.url
-    if url.startswith("sqlite:///") and url != "sqlite:///:memory:":
-        from pathlib import Path
-
-        if not Path(url[len("sqlite:///"):]).exists():
-            print(f"thermeta {command}: no store at {safe_url(url)} yet (has `thermeta run` started "
-                  "with this config?)", file=sys.stderr)
-            return None
-    try:
-        store = Store(url)
-        if not inspect(store.engine).has_table("readings"):
-            print(f"thermeta {command}: {safe_url(url)} holds no thermeta tables", file=sys.stderr)
-            return None
-    except (StoreError, Exception) as exc:  # noqa: BLE001 - driver errors vary by database
-        print(f"thermeta {command}: cannot open {safe_url(url)}: {str(exc).splitlines()[0]}",
-              file=sys.stderr)
-        return None
-    return store
 
 
 def collect(cfg: Any, store: Any, now: float) -> dict[str, Any]:
@@ -99,15 +72,11 @@ def _eta_text(r: dict[str, Any], now: float) -> str:
 def run(args: argparse.Namespace) -> int:
     import time
 
-    from thermeta.daemon.config import load_config
-    from thermeta.daemon.errors import ConfigError
+    from thermeta.daemon.cmdutil import load_config_or_report, open_store
     from thermeta.daemon.timefmt import human_duration, parse_time
 
-    try:
-        cfg = load_config(args.config)
-    except ConfigError as exc:
-        for line in exc.problems:
-            print(line, file=sys.stderr)
+    cfg = load_config_or_report(args.config)
+    if cfg is None:
         return 2
     store = open_store(cfg, "status")
     if store is None:

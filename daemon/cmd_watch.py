@@ -17,19 +17,14 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def run(args: argparse.Namespace) -> int:
     from rich.console import Console
-    from thermeta.daemon.cmd_status import open_store
-    from thermeta.daemon.config import load_config
+    from thermeta.daemon.cmdutil import load_config_or_report, open_store
     from thermeta.daemon.dashboard import watch
-    from thermeta.daemon.errors import ConfigError
 
     if not args.interval > 0:
         print(f"thermeta watch: --interval must be > 0, got {args.interval:g}", file=sys.stderr)
         return 2
-    try:
-        cfg = load_config(args.config)
-    except ConfigError as exc:
-        for line in exc.problems:
-            print(line, file=sys.stderr)
+    cfg = load_config_or_report(args.config)
+    if cfg is None:
         return 2
     store = open_store(cfg, "watch")
     if store is None:
