@@ -32,6 +32,8 @@ from thermeta.predictors.result import Forecast
 MODELS = ("lumped", "slab", "cylinder", "sphere", "auto")
 CONDUCTION = ("slab", "cylinder", "sphere")
 AMBIENT_UNCERTAINTY = 2.5  # a "known" ambient is typically known to a couple of degrees
+MIN_POINTS = 5  # three parameters and two degrees of freedom for the residual scatter
+MIN_POINTS_KNOWN = 4  # the given ambient acts as one more observation
 
 
 def forecast(
@@ -44,7 +46,7 @@ def forecast(
     ambient_t: ArrayLike | None = None,
     ambient_y: ArrayLike | None = None,
     window_s: float | None = None,
-    min_points: int = 8,
+    min_points: int | None = None,
     ambient_bounds: tuple[float, float] | None = None,
     ambient_uncertainty: float = AMBIENT_UNCERTAINTY,
     detect_regimes: bool = True,
@@ -57,7 +59,9 @@ def forecast(
     ambient: a known constant ambient (known mode), trusted to about +-ambient_uncertainty
     (a sd, folded into the intervals; 0 = exact); ambient_t/ambient_y: an ambient probe series
     (measured mode); neither: the ambient is fitted within ambient_bounds (default: a wide range
-    around the readings).  window_s caps the history used.  limit: "upper" (only an upward
+    around the readings).  window_s caps the history used.  min_points: the fewest readings to
+    fit (default None: the fewest the model can fit with an honest interval, 4 with a given
+    ambient, 5 otherwise; the intervals' F(1, n - p) cut-offs widen with few readings).  limit: "upper" (only an upward
     crossing counts; at or above is past), "lower", or None (either way; past means the curve
     crossed within the data).  prior: k (and, with the ambient fitted, the ambient) learned from
     past episodes of the item's class (:mod:`thermeta.predictors.prior`), folded into the lumped
@@ -79,6 +83,9 @@ def forecast(
         ambient = None
     mode = "measured" if measured else ("known" if ambient is not None else "fitted")
     fc = Forecast(threshold=float(threshold), model=model, ambient_mode=mode, n_points=0)
+    if min_points is None:
+        # a given ambient is one more piece of information (the lumped fit's Gaussian prior)
+        min_points = MIN_POINTS_KNOWN if mode == "known" and model == "lumped" else MIN_POINTS
     try:
         # overflow in a far-off corner of a grid is expected and handled; keep logs quiet
         with np.errstate(all="ignore"):

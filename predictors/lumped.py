@@ -270,7 +270,8 @@ def fit_lumped(
     y = np.asarray(y, float)
     n = t.size
     n_par = 2 if (ambient is not None and ambient_sd == 0) else 3
-    if n < n_par + 2:
+    # a given ambient with a spread is a Gaussian prior: one more observation of a
+    if n < n_par + 2 - (1 if ambient is not None and ambient_sd > 0 else 0):
         return LumpedFit(False, f"too few readings to fit ({n})", n=n)
     D = float(t[-1] - t[0])
     if D <= 0:
