@@ -215,6 +215,11 @@ def _fill_lumped(fc: Forecast, fit: LumpedFit, ambient, amb_sd) -> None:
             and fc.ambient_hi - fc.ambient_lo > max(10.0, abs(fc.ambient - fc.value_now))):
         fc.warnings.append("the ambient is poorly determined by the readings so far; "
                                "give it (--ambient) or measure it for a firmer forecast")
+    if fit.straight:
+        fc.warnings.append(
+            "no significant bend in the readings yet, so the ambient and k are barely known: the "
+            "ETA extrapolates the present slope (early if the curve levels off); the interval "
+            "spans every curve the readings allow")
     if fc.eta_s is None:
         fc.warnings.append(never_reason(fc))
 

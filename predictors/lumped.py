@@ -194,6 +194,7 @@ class LumpedFit:
     n: int = 0
     cov: np.ndarray | None = None  # set by callers that need it (the measured-ambient forecast)
     bounds: tuple[float, float] = (-math.inf, math.inf)  # the plausible range the ambient had
+    straight: bool = False  # no significant curvature: eta from the straight trend (see straight_eta)
 
     def curve(self, t: np.ndarray) -> np.ndarray:
         """T(t) = a + b e^(-k (t - t_first))."""
@@ -336,9 +337,42 @@ def fit_lumped(
     )
     fit.eta_s, fit.direction = crossing_eta(fit.value_fit_now, fit.ambient, k_hat, threshold,
                                             value_start=a_hat + b_hat + ybar, limit=limit)
+    # only a forecast crossing is brought forward: a fit that levels off short of the threshold
+    # keeps "never" (its interval still says whether a crossing is possible)
+    if ambient is None and k_prior is None and fit.eta_s is not None and fit.eta_s > 0:
+        slope_now = -k_hat * b_hat * math.exp(-k_hat * D)  # dT/dt of the fit at the last reading
+        eta_line = straight_eta(d, yc, thr, r_hat, dof, limit, slope_now, fit_y[-1])
+        if eta_line is not None:
+            fit.eta_s, fit.straight = eta_line, True
     if intervals:
         add_intervals(fit, d, yc, thr, lam, a0, lo, hi, ybar, k_grid, pen)
     return fit
+
+
+def straight_eta(d: np.ndarray, yc: np.ndarray, thr: float, rss: float, dof: int,
+                 limit: str | None, slope: float, now: float) -> float | None:
+    """Seconds until the tangent at the newest reading (value ``now``, ``slope`` per s) reaches
+    thr, when the curve's bend is not significant: F = (RSS_line - RSS) / (RSS / dof) <
+    F(0.90; 1, dof) for the straight line through the readings.  None otherwise.
+
+    With the ambient free and little curvature seen, k and the ambient are barely identified and
+    the best fit scatters toward curves that level off early (a late or missing ETA), while its
+    present slope is well determined.  A straight line (the lumped curve's limit k -> 0) is then
+    inside the 90 % profile region, by the same F cut-off as the intervals: the point forecast
+    extrapolates the present slope with no further bend (early, the safe side, for a curve that
+    bends away from the threshold); the interval still spans the whole region and includes it.
+    """
+    if dof < 2 or rss <= 0:
+        return None
+    s_line, icpt = np.polyfit(d, yc, 1)
+    rss_line = float(np.sum((yc - (icpt + s_line * d)) ** 2))
+    if (rss_line - rss) / (rss / dof) >= f_dist.ppf(CONF, 1, dof):
+        return None
+    if slope == 0 or (thr - now) / slope <= 0:
+        return None
+    if limit == "upper" and slope < 0 or limit == "lower" and slope > 0:
+        return None
+    return float((thr - now) / slope)  # T(now) + slope x = thr
 
 
 class KPenalty:
