@@ -49,7 +49,7 @@ _BI_GRID = (0.01, 0.06, 0.3, 1.0, 3.0, 10.0, 40.0)
 _K_SPAN_GRID = tuple(np.geomspace(0.03, 30.0, 11))
 PROFILE_METHOD = (
     "profile likelihood: refits constrained to cross at each trial time, "
-    "n ln(RSS/RSS_min) <= chi2_1(0.90)"
+    "(n - p) (RSS/RSS_min - 1) <= F(1, n - p; 0.90)"
 )
 INTERVAL_METHOD = (
     "delta method by simulation: draws from the fit's sampling distribution (multivariate t, "

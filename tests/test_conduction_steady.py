@@ -1,13 +1,19 @@
-"""A measured ambient with no trend is carried forward at its mean (core-probe model)."""
+"""A measured ambient with no trend is carried forward at its mean (core-probe model), and the
+profile interval of an early, poorly determined centre probe."""
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 import pytest
+from scipy.optimize import least_squares
+from scipy.stats import f as f_dist
 from scipy.stats import linregress
 from thermeta.predictors import synth
 from thermeta.predictors.conduction import fit_conduction
 from thermeta.predictors.conduction_ambient import steady_level
+from thermeta.predictors.conduction_profile import _constrained_residual
 from thermeta.predictors.synth import Corruption
 from thermeta.predictors.synth_conduction import core_probe
 
@@ -63,3 +69,38 @@ def test_steady_air_fit_equals_known_ambient_fit():
     # With the steady hold switched off the Duhamel path is used (the draws interval).
     raw = fit_conduction(s.t, s.y, "sphere", ambient_t=at, ambient_y=ay, hold_steady=False)
     assert raw.ok and raw.interval_kind == "draws"
+
+
+def test_profile_ends_are_roots_of_the_profile_statistic():
+    """An early centre probe (22 readings, the centre has barely moved; the best fit drifts to a
+    small Bi): each end of the profile interval is where the profile statistic crosses its
+    F(1, n - p; 0.90) cut-off, checked by refits from 24 starting points over the (Bi, a) plane
+    (scipy least_squares), so the warm-started search has not stopped in a stale basin and the
+    refinement has not fallen back to the outer end of its bracket."""
+    s = core_probe(12, geometry="sphere", biot=2.33, a_per_s=4.72e-5, t_i=3.58, ambient=23.9,
+                   threshold=8.0, seen_fraction=0.4265, dt_s=60.0,
+                   corruption=Corruption(noise=0.135, quantum=0.1))
+    fit = fit_conduction(s.t, s.y, "sphere", ambient=23.9)
+    eta, lo, hi = fit.time_to_threshold(8.0)
+    assert fit.ok and fit.interval_kind == "profile" and lo is not None and lo < eta
+    curve, (t, y) = fit._curve, fit._data
+    lo_b, hi_b = (np.array(b) for b in fit._bounds)
+    q_hat = fit.params[1:]
+    dof = t.size - fit.n_params
+    cut = f_dist.ppf(0.90, 1, dof)
+
+    def d_stat(eta_s: float) -> float:
+        tau = fit.t_last + eta_s
+        best = np.inf
+        for q0 in [q_hat] + [np.array([math.log(b), math.log(a)])
+                             for b in (0.01, 0.3, 1.0, 3.0, 10.0, 50.0)
+                             for a in (1e-5, 3e-5, 1e-4, 3e-4)]:
+            sol = least_squares(
+                lambda q: _constrained_residual(curve, q, t, y, tau, 8.0)[0],
+                np.clip(q0, lo_b, hi_b), bounds=(lo_b, hi_b), method="trf")
+            best = min(best, float(sol.fun @ sol.fun))
+        return dof * (best / fit.rss - 1.0)
+
+    assert d_stat(lo * 1.08) < cut < d_stat(lo * 0.92)
+    if hi is not None:
+        assert d_stat(hi * 0.92) < cut < d_stat(hi * 1.08)
