@@ -16,6 +16,7 @@ import math
 import numpy as np
 from numpy.typing import ArrayLike
 from thermeta.predictors.cleaning import clean, residual_outliers
+from thermeta.predictors.cycling import cycle_trend
 from thermeta.predictors.lumped import LumpedFit, fit_lumped
 from thermeta.predictors.measured import (
     air_identified,
@@ -129,6 +130,9 @@ def _forecast(fc, t, y, thr, model, ambient, ambient_t, ambient_y, window_s, min
     # models (and "auto", which may pick one) keep the window whole
     if detect and fc.ambient_mode != "measured" and model == "lumped":
         reg = find_regime(tt, yy, cl.noise_sd, min_points=max(12, min_points))
+        if reg.cycling and reg.start_index == 0:
+            # a thermostat's sawtooth: a curve through it extrapolates the window's ends
+            return _cycling(fc, tt, yy, thr, cl.noise_sd, limit)
         if reg.note:
             fc.warnings.append(reg.note)
         if reg.start_index > 0:
@@ -178,6 +182,31 @@ def _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit=None, detec
     _fill_lumped(fc, fit, ambient, amb_sd)
     if k_prior is not None:
         _note_prior(fc, prior, k_prior, a_prior)
+    return fc
+
+
+def _cycling(fc: Forecast, tt, yy, thr, noise_sd, limit) -> Forecast:
+    """The readings cycle: forecast from the drift of the cycle means (predictors.cycling)."""
+    tr = cycle_trend(tt, yy, thr, noise_sd, limit)
+    fc.model = "cycling"
+    fc.eta_s, fc.eta_lo_s, fc.eta_hi_s = tr.eta_s, tr.eta_lo_s, tr.eta_hi_s
+    fc.direction = "rising" if tr.drift_per_s > 0 else "falling"
+    fc.interval_method = "t interval of the drift of the cycle means"
+    fc.params = {"n_cycles": float(tr.n_cycles), "cycle_mean": tr.mean_now,
+                 "half_swing": tr.half_swing, "drift_per_s": tr.drift_per_s,
+                 "drift_se_per_s": tr.drift_se, "n_fit": float(tt.size)}
+    text = (f"the readings cycle (a thermostat?) around {tr.mean_now:.3g} +- {tr.half_swing:.2g} "
+            f"over {tr.n_cycles} full cycle(s)")
+    if tr.beyond_horizon:
+        fc.warnings.append(text + f"; their mean drifts by {tr.drift_per_s * 3600:+.2g} per hour "
+                           "toward the threshold, too slowly to forecast a crossing from these "
+                           "readings (it would lie beyond twice their span)")
+    elif tr.significant:
+        fc.warnings.append(text + f"; their mean drifts by {tr.drift_per_s * 3600:+.2g} per hour, "
+                           "so the swing's edge is extrapolated to the threshold")
+    else:
+        fc.warnings.append(text + "; no drift toward the threshold that the cycles can tell "
+                           "from zero, so no crossing is forecast while they hold")
     return fc
 
 

@@ -1,0 +1,103 @@
+"""A thermostat's sawtooth: no exponential curve through it, but the drift of its cycle means.
+
+A healthy cold room's probe swings between the thermostat's cut-in and cut-out (compressor on,
+off).  A lumped curve fitted across a few of those swings extrapolates whatever slope the window's
+ends happen to show, and so forecasts crossings that never come.  What the readings do tell is the
+mean of each full cycle and the swing around it.  A crossing is forecast only when the cycle means
+drift toward the threshold significantly (a unit losing ground); then the upper (or lower) edge
+of the swing reaches it at
+
+    eta = (thr - edge_now) / drift,        edge_now = mean_now + half swing (toward thr),
+
+with the 90 % interval from the drift's t interval.  The drift must be clear (a one-sided t test
+at 99.5 %: a healthy room is tested every few minutes, month after month) and the crossing within
+HORIZON_SPANS times the span of readings it was seen over (a drift of a few tenths of a degree over
+two hours says nothing about tomorrow).  Otherwise: no crossing while the cycling holds (the
+regime search reports when it stops).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.stats import t as t_dist
+
+from thermeta.predictors.regime import slope_runs
+
+CONF = 0.90
+DRIFT_CONF = 0.995  # one-sided: evidence of a drift, strict against a healthy room's false alerts
+HORIZON_SPANS = 2.0  # a drift is extrapolated at most twice as far as the readings reach back
+MIN_CYCLES = 3  # a drift needs at least three cycle means (one degree of freedom)
+
+
+@dataclass
+class CycleTrend:
+    """Cycle means and their drift; eta from the newest reading (None: no crossing forecast)."""
+
+    n_cycles: int
+    mean_now: float
+    half_swing: float
+    drift_per_s: float
+    drift_se: float
+    significant: bool
+    beyond_horizon: bool = False
+    eta_s: float | None = None
+    eta_lo_s: float | None = None
+    eta_hi_s: float | None = None
+
+
+def cycle_means(t: np.ndarray, y: np.ndarray, noise_sd: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(mid time, time-weighted mean, peak-to-peak) of each full cycle: from one rising run's start
+    to the next (the trapezoid rule, so irregular sampling weighs by time, not by count)."""
+    runs = slope_runs(t, y, max(noise_sd, 1e-6))
+    starts = [r[0] for r in runs if r[2] > 0]
+    mids, means, swings = [], [], []
+    for i0, i1 in zip(starts[:-1], starts[1:]):
+        tt, yy = t[i0:i1 + 1], y[i0:i1 + 1]
+        span = tt[-1] - tt[0]
+        if span <= 0 or tt.size < 3:
+            continue
+        mids.append(0.5 * (tt[0] + tt[-1]))
+        means.append(float(np.sum(0.5 * (yy[1:] + yy[:-1]) * np.diff(tt)) / span))
+        swings.append(float(np.ptp(yy)))
+    return np.array(mids), np.array(means), np.array(swings)
+
+
+def cycle_trend(t: np.ndarray, y: np.ndarray, thr: float, noise_sd: float,
+                limit: str | None = None) -> CycleTrend:
+    """Drift of the cycle means (a straight line through them, its slope's one-sided t test at
+    90 %) and, when it carries the swing's edge toward thr, the crossing time and its interval."""
+    mids, means, swings = cycle_means(t, y, noise_sd)
+    half = 0.5 * float(np.median(swings)) if swings.size else 0.5 * float(np.ptp(y))
+    if means.size < MIN_CYCLES:
+        return CycleTrend(int(means.size), float(np.mean(y)), half, 0.0, math.inf, False)
+    slope, icpt = np.polyfit(mids - mids[-1], means, 1)
+    resid = means - (icpt + slope * (mids - mids[-1]))
+    dof = means.size - 2
+    sxx = float(np.sum((mids - mids.mean()) ** 2))
+    # the scatter of the cycle means, floored by what the reading noise alone leaves in a mean
+    s2 = max(float(resid @ resid) / dof, noise_sd**2 / max(t.size / means.size, 1.0))
+    se = math.sqrt(s2 / sxx) if sxx > 0 else math.inf
+    mean_now = float(icpt + slope * (t[-1] - mids[-1]))
+    out = CycleTrend(int(means.size), mean_now, half, float(slope), se, False)
+    toward = 1.0 if (thr > mean_now if limit is None else limit == "upper") else -1.0
+    if toward * slope <= float(t_dist.ppf(DRIFT_CONF, dof)) * se:
+        return out  # no drift toward the threshold that the cycle means can tell from zero
+    out.significant = True
+    edge = mean_now + toward * half
+    gap = thr - edge
+    if gap * toward <= 0:
+        out.eta_s = out.eta_lo_s = out.eta_hi_s = 0.0  # the swing already reaches the threshold
+        return out
+    eta = gap / slope  # edge_now + drift eta = thr
+    if eta > HORIZON_SPANS * float(t[-1] - t[0]):
+        out.beyond_horizon = True
+        return out
+    out.eta_s = eta
+    q = float(t_dist.ppf(CONF, dof))
+    fast, slow = toward * slope + q * se, toward * slope - q * se
+    out.eta_lo_s = abs(gap) / fast
+    out.eta_hi_s = abs(gap) / slow if slow > 0 else None
+    return out
