@@ -280,10 +280,13 @@ def _measured(fc, tt, yy, thr, air, limit=None, detect=True, noise_sd=0.0,
         a_fit = fit_air(at[reg.start_index:], ay[reg.start_index:], air.noise_sd)
     spread = None
     if a_fit.ok and not air_identified(a_fit):
-        # where the air is heading is not clear yet (a short stretch, an off-cycle): the point
-        # forecast holds it at its present level; the interval keeps the fitted trend's doubt
+        # where the air is heading is not clear yet (a short stretch, an off-cycle): the air held
+        # at its present level decides whether a crossing is forecast at all; its time is then
+        # the median over the fitted trend's doubt, which the interval keeps too
         spread, a_fit = a_fit, held_air(a_fit)
-        fc.warnings.append("the ambient's trend is not clear yet; held at its present level")
+        fc.warnings.append("the ambient's trend is not clear yet; held at its present level, "
+                           "and a crossing that holds then is forecast at the median of the "
+                           "ambient fit's spread")
     fit = fit_measured(tt, yy, at, ay, thr, air_fit=a_fit, limit=limit, air_spread=spread)
     if not fit.ok:
         fc.ok, fc.reason = False, fit.reason

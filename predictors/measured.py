@@ -185,6 +185,11 @@ def fit_measured(t: np.ndarray, y: np.ndarray, air_t: np.ndarray, air_y: np.ndar
                      horizon_s=60.0 / max(min(k, ka if ka > 0 else k), 1e-12))
     etas = np.where(np.isnan(etas), np.inf, etas)
     lo_e, hi_e = np.percentile(etas, [5.0, 95.0])
+    if air_spread is not None and fit.eta_s is not None:
+        # the air's heading is not clear: holding it flat is the late extreme of what its fit
+        # allows; when even the held air crosses, the point forecast is the median crossing over
+        # the same draws as the interval (a held air that never crosses keeps "no crossing")
+        fit.eta_s = float(min(fit.eta_s, np.median(etas)))
     if fit.eta_s is None:
         fit.eta_lo_s = float(lo_e) if math.isfinite(lo_e) else None
         fit.eta_hi_s = None
