@@ -15,6 +15,7 @@ import math
 
 import numpy as np
 from numpy.typing import ArrayLike
+from scipy.stats import t as t_dist
 from thermeta.predictors.cleaning import clean, residual_outliers
 from thermeta.predictors.cycling import cycle_trend
 from thermeta.predictors.lumped import LumpedFit, fit_lumped
@@ -35,6 +36,7 @@ CONDUCTION = ("slab", "cylinder", "sphere")
 AMBIENT_UNCERTAINTY = 2.5  # a "known" ambient is typically known to a couple of degrees
 MIN_POINTS = 5  # three parameters and two degrees of freedom for the residual scatter
 MIN_POINTS_KNOWN = 4  # the given ambient acts as one more observation
+MIN_TREND_POINTS = 3  # fewer than a curve needs: a straight trend, with one degree of freedom
 
 
 def forecast(
@@ -84,6 +86,7 @@ def forecast(
         ambient = None
     mode = "measured" if measured else ("known" if ambient is not None else "fitted")
     fc = Forecast(threshold=float(threshold), model=model, ambient_mode=mode, n_points=0)
+    few_trend = min_points is None and model == "lumped" and mode != "measured"
     if min_points is None:
         # a given ambient is one more piece of information (the lumped fit's Gaussian prior)
         min_points = MIN_POINTS_KNOWN if mode == "known" and model == "lumped" else MIN_POINTS
@@ -92,14 +95,14 @@ def forecast(
         with np.errstate(all="ignore"):
             return _forecast(fc, ta, ya, float(threshold), model, ambient, ambient_t, ambient_y,
                              window_s, min_points, ambient_bounds, ambient_uncertainty,
-                             detect_regimes, limit, prior)
+                             detect_regimes, limit, prior, few_trend)
     except (ValueError, FloatingPointError, ArithmeticError, np.linalg.LinAlgError) as exc:
         fc.ok, fc.reason = False, f"fit failed: {exc}"
         return fc
 
 
 def _forecast(fc, t, y, thr, model, ambient, ambient_t, ambient_y, window_s, min_points, bounds,
-              amb_sd, detect, limit, prior=None) -> Forecast:
+              amb_sd, detect, limit, prior=None, few_trend=False) -> Forecast:
     cl = clean(t, y)
     tt, yy = cl.t, cl.y
     if window_s is not None and tt.size:
@@ -116,6 +119,8 @@ def _forecast(fc, t, y, thr, model, ambient, ambient_t, ambient_y, window_s, min
     fc.t_last, fc.value_now = float(tt[-1]), float(yy[-1])
     fc.n_points = int(tt.size)
     fc.regime_start = float(tt[0])
+    if few_trend and MIN_TREND_POINTS <= tt.size < min_points:
+        return _few_trend(fc, tt, yy, thr, limit, cl)
     if tt.size < min_points:
         fc.ok, fc.reason = False, f"too few readings to fit ({tt.size} < {min_points})"
         return fc
@@ -207,6 +212,39 @@ def _cycling(fc: Forecast, tt, yy, thr, noise_sd, limit) -> Forecast:
     else:
         fc.warnings.append(text + "; no drift toward the threshold that the cycles can tell "
                            "from zero, so no crossing is forecast while they hold")
+    return fc
+
+
+def _few_trend(fc: Forecast, tt, yy, thr, limit, cl) -> Forecast:
+    """Too few readings for a curve (the default min_points): the straight trend through them,
+    T(x) = T_now + s x, with the slope's one-sided 95 % t bound as the early end and an open late
+    end (the curve may level off; nothing here says where).  The scatter is floored by the
+    readings' noise and quantisation, which a line through three points cannot measure."""
+    d = tt - tt[0]
+    slope, icpt = np.polyfit(d, yy, 1)
+    dof = tt.size - 2
+    resid = yy - (icpt + slope * d)
+    s2 = max(float(resid @ resid) / dof, cl.noise_sd**2 + cl.quantum**2 / 12.0)
+    sxx = float(np.sum((d - d.mean()) ** 2))
+    se = math.sqrt(s2 / sxx) if sxx > 0 else math.inf
+    now = float(icpt + slope * d[-1])
+    fc.model, fc.interval_method = "lumped", "t bound of a straight trend's slope"
+    fc.direction = "rising" if slope > 0 else "falling"
+    fc.rmse = math.sqrt(s2)
+    fc.params = {"slope_per_s": float(slope), "slope_se_per_s": se, "value_fit_now": now,
+                 "n_fit": float(tt.size), "n_params": 2.0}
+    fc.warnings.append(f"only {tt.size} readings: a straight trend, not a curve, and the "
+                       "interval's late end is open (the curve may level off)")
+    toward = 1.0 if (thr > now if limit is None else limit == "upper") else -1.0
+    if (thr - now) * toward <= 0:
+        fc.eta_s = fc.eta_lo_s = fc.eta_hi_s = 0.0
+        return fc
+    if slope * toward <= 0:
+        fc.warnings.append(never_reason(fc))
+        return fc
+    fast = slope * toward + float(t_dist.ppf(0.95, dof)) * se
+    fc.eta_s = (thr - now) / slope  # T_now + s eta = thr
+    fc.eta_lo_s, fc.eta_hi_s = abs(thr - now) / fast, None
     return fc
 
 

@@ -49,7 +49,8 @@ def thermostat(duration_s: float, dt_s: float, low: float, high: float, warm: fl
 def test_four_readings_with_a_given_ambient_give_an_honest_forecast():
     """Four readings of a warming load (every 5 min, 0.1 degC steps) and an ambient given 2 degC
     off: a forecast comes out (the default min_points no longer waits for eight), and its 90 %
-    interval holds the solve_ivp crossing time (reference: scipy.integrate.solve_ivp)."""
+    interval holds the solve_ivp crossing time; two readings are refused (reference:
+    scipy.integrate.solve_ivp)."""
     k, T0, amb, thr = 1 / 18000, 2.0, 27.0, 8.0
     x = np.arange(0, 4) * 300.0
     y = np.round(newton(x, T0, k, amb) / 0.1) * 0.1
@@ -57,7 +58,7 @@ def test_four_readings_with_a_given_ambient_give_an_honest_forecast():
     assert fc.ok and fc.n_points == 4 and fc.eta_s is not None
     true_eta = math.log((T0 - amb) / (thr - amb)) / k - x[-1]
     assert fc.eta_lo_s <= true_eta and (fc.eta_hi_s is None or true_eta <= fc.eta_hi_s)
-    too_few = forecast(x[:3] + T0_EPOCH, y[:3], thr, ambient=amb, limit="upper")
+    too_few = forecast(x[:2] + T0_EPOCH, y[:2], thr, ambient=amb, limit="upper")
     assert not too_few.ok and "too few readings" in too_few.reason
 
 
@@ -145,3 +146,20 @@ def test_power_loss_with_the_air_heading_unclear_is_forecast_from_the_middle():
         assert fc.eta_lo_s <= fc.eta_s <= fc.eta_hi_s
         assert fc.eta_lo_s <= true_eta <= fc.eta_hi_s
     assert unclear >= 1
+
+
+def test_three_readings_give_a_straight_trend_with_an_open_late_end():
+    """Three readings of a warming load (every 5 min, 0.1 degC steps), the ambient left to the
+    fit: fewer than a curve needs, so the forecast is the straight trend, its early end before
+    the solve_ivp crossing and its late end open; with min_points given, the caller's floor holds
+    (reference: scipy.integrate.solve_ivp)."""
+    k, T0, amb, thr = 1 / 18000, 2.0, 27.0, 8.0
+    x = np.arange(0, 3) * 300.0
+    y = np.round(newton(x, T0, k, amb) / 0.1) * 0.1
+    fc = forecast(x + T0_EPOCH, y, thr, limit="upper")
+    true_eta = math.log((T0 - amb) / (thr - amb)) / k - x[-1]
+    assert fc.ok and fc.eta_s is not None and fc.eta_hi_s is None
+    assert fc.eta_lo_s <= min(fc.eta_s, true_eta)
+    assert any("straight trend" in w for w in fc.warnings)
+    strict = forecast(x + T0_EPOCH, y, thr, limit="upper", min_points=8)
+    assert not strict.ok and "too few readings" in strict.reason
