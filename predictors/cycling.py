@@ -20,10 +20,10 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from itertools import pairwise
 
 import numpy as np
 from scipy.stats import t as t_dist
-
 from thermeta.predictors.regime import slope_runs
 
 CONF = 0.90
@@ -48,13 +48,14 @@ class CycleTrend:
     eta_hi_s: float | None = None
 
 
-def cycle_means(t: np.ndarray, y: np.ndarray, noise_sd: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def cycle_means(t: np.ndarray, y: np.ndarray,
+                noise_sd: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """(mid time, time-weighted mean, peak-to-peak) of each full cycle: from one rising run's start
     to the next (the trapezoid rule, so irregular sampling weighs by time, not by count)."""
     runs = slope_runs(t, y, max(noise_sd, 1e-6))
     starts = [r[0] for r in runs if r[2] > 0]
     mids, means, swings = [], [], []
-    for i0, i1 in zip(starts[:-1], starts[1:]):
+    for i0, i1 in pairwise(starts):
         tt, yy = t[i0:i1 + 1], y[i0:i1 + 1]
         span = tt[-1] - tt[0]
         if span <= 0 or tt.size < 3:

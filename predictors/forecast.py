@@ -35,7 +35,7 @@ MODELS = ("lumped", "slab", "cylinder", "sphere", "auto")
 CONDUCTION = ("slab", "cylinder", "sphere")
 AMBIENT_UNCERTAINTY = 2.5  # a "known" ambient is typically known to a couple of degrees
 MIN_POINTS = 5  # three parameters and two degrees of freedom for the residual scatter
-MIN_POINTS_KNOWN = 4  # the given ambient acts as one more observation
+MIN_POINTS_KNOWN = 4  # a given ambient is one more observation; a measured one leaves 2 parameters
 MIN_TREND_POINTS = 3  # fewer than a curve needs: a straight trend, with one degree of freedom
 
 
@@ -63,12 +63,14 @@ def forecast(
     (a sd, folded into the intervals; 0 = exact); ambient_t/ambient_y: an ambient probe series
     (measured mode); neither: the ambient is fitted within ambient_bounds (default: a wide range
     around the readings).  window_s caps the history used.  min_points: the fewest readings to
-    fit (default None: the fewest the model can fit with an honest interval, 4 with a given
-    ambient, 5 otherwise; the intervals' F(1, n - p) cut-offs widen with few readings).  limit: "upper" (only an upward
-    crossing counts; at or above is past), "lower", or None (either way; past means the curve
-    crossed within the data).  prior: k (and, with the ambient fitted, the ambient) learned from
-    past episodes of the item's class (:mod:`thermeta.predictors.prior`), folded into the lumped
-    fit as Gaussian penalties; not used by the measured-ambient and conduction models.
+    fit (default None: the fewest the model can fit with an honest interval, 4 with a given or
+    measured ambient, 5 otherwise, and with a given or fitted ambient 3 readings give a straight
+    trend with an open late end; the intervals' F(1, n - p) cut-offs widen with few readings).
+    limit: "upper" (only an upward crossing counts; at or above is past), "lower", or None
+    (either way; past means the curve crossed within the data).  prior: k (and, with the
+    ambient fitted, the ambient) learned from past episodes of the item's class
+    (:mod:`thermeta.predictors.prior`), folded into the lumped fit as Gaussian penalties; not
+    used by the measured-ambient and conduction models.
     """
     if model not in MODELS:
         raise ValueError(f"model must be one of {', '.join(MODELS)}, got {model!r}")
@@ -89,7 +91,8 @@ def forecast(
     few_trend = min_points is None and model == "lumped" and mode != "measured"
     if min_points is None:
         # a given ambient is one more piece of information (the lumped fit's Gaussian prior)
-        min_points = MIN_POINTS_KNOWN if mode == "known" and model == "lumped" else MIN_POINTS
+        # (a measured ambient leaves the load two parameters, T0 and k)
+        min_points = MIN_POINTS_KNOWN if mode != "fitted" and model == "lumped" else MIN_POINTS
     try:
         # overflow in a far-off corner of a grid is expected and handled; keep logs quiet
         with np.errstate(all="ignore"):
