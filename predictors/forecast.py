@@ -196,7 +196,7 @@ def _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit=None, detec
 def _cycling(fc: Forecast, tt, yy, thr, noise_sd, limit) -> Forecast:
     """The readings cycle: forecast from the drift of the cycle means (predictors.cycling)."""
     tr = cycle_trend(tt, yy, thr, noise_sd, limit)
-    fc.model = "cycling"
+    fc.pattern = "cycling"
     fc.eta_s, fc.eta_lo_s, fc.eta_hi_s = tr.eta_s, tr.eta_lo_s, tr.eta_hi_s
     fc.direction = "rising" if tr.drift_per_s > 0 else "falling"
     fc.interval_method = "t interval of the drift of the cycle means"

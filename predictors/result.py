@@ -62,6 +62,9 @@ class Forecast:
     direction: str | None = None  # "rising" | "falling"
     regime_start: float | None = None
     interval_method: str | None = None
+    # A shape the readings show that changes how the crossing is judged: "cycling" (a thermostat's
+    # sawtooth, forecast from the drift of its cycle means); None for a plain warming/cooling curve.
+    pattern: str | None = None
     rmse: float | None = None
     n_outliers: int = 0
     ok: bool = True
@@ -114,6 +117,7 @@ class Forecast:
             "ambient_hi": _num(self.ambient_hi),
             "ambient_mode": self.ambient_mode,
             "model": self.model,
+            "pattern": self.pattern,
             "biot": _num(self.biot),
             "value_now": _num(self.value_now),
             "last_reading_at": rfc3339(self.t_last),

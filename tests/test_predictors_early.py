@@ -96,7 +96,7 @@ def test_healthy_thermostat_sawtooth_forecasts_no_crossing(period_hint_k):
             assert fc.ok, fc.reason
             etas.append(fc.eta_s)
     assert all(e is None for e in etas)
-    assert fc.model == "cycling" and any("cycle" in w for w in fc.warnings)
+    assert fc.model == "lumped" and fc.pattern == "cycling" and any("cycle" in w for w in fc.warnings)
 
 
 def test_thermostat_losing_ground_gets_a_crossing():
@@ -106,7 +106,7 @@ def test_thermostat_losing_ground_gets_a_crossing():
     drift = 0.75 / 3600
     t, y = thermostat(2 * 3600.0, 30.0, 2.0, 5.0, 25.0, -8.0, 1 / 1500, drift_per_s=drift)
     fc = forecast(t + T0_EPOCH, y, 8.0, limit="upper")
-    assert fc.ok and fc.model == "cycling" and fc.eta_s is not None
+    assert fc.ok and fc.model == "lumped" and fc.pattern == "cycling" and fc.eta_s is not None
     top_now = 5.0 + drift * t[-1]
     expected = (8.0 - top_now) / drift
     assert abs(fc.eta_s - expected) / expected < 0.3
