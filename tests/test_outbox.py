@@ -126,7 +126,9 @@ def test_a_slow_hook_never_delays_the_refit_thread(tmp_path):
     """An exec hook that takes 3 s: on_forecast (what the refit thread calls) returns at once,
     and the alert is still delivered by the hook's own worker."""
     out = tmp_path / "done"
-    prog = f"import time, sys; time.sleep(3); open({str(out)!r}, 'w').write(sys.stdin.read())"
+    # Written aside and renamed, so the test never reads a file the program is still writing.
+    prog = (f"import os, sys, time; time.sleep(3); data = sys.stdin.read(); "
+            f"open({str(out) + '.part'!r}, 'w').write(data); os.replace({str(out) + '.part'!r}, {str(out)!r})")
     cmd = json.dumps([sys.executable, "-c", prog])
     path = write_config(tmp_path, f'[[hook]]\nkind = "exec"\ncommand = {cmd}\ntimeout = 20\n')
     cfg = load_config(path)
