@@ -108,3 +108,14 @@ def test_bad_family_exits_2(bench, capsys):
     assert exc.value.code == 2
     err = capsys.readouterr().err.strip()
     assert "nonesuch" in err and len(err.splitlines()) == 1
+
+
+def test_a_failure_at_the_statistical_limit_is_marked(bench):
+    """A target is marked "at the limit" only where the CRB-limited figure fails it too."""
+    summary = {("chill_fitted", "clean", f): {"median": m, "p90": 0.01, "crb": 1.0,
+                                              "crb_limited": (lim, 0.01), "cover": 0.9}
+               for f, m, lim in zip(bench.PROGRESS, (0.05, 0.02, 0.01), (0.046, 0.011, 0.007))}
+    cs = [c for c in bench.checks(summary, ("chill_fitted",)) if c.figure == "median"]
+    assert len(cs) == 1 and cs[0].ok is False
+    assert cs[0].beyond_limit() == [0]  # 25 %: 5 % against a limit of 4.6 %; 50 %: reachable
+    assert cs[0].result().startswith("FAIL (at the limit at 25 %")

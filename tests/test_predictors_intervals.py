@@ -8,9 +8,13 @@ import math
 import numpy as np
 import pytest
 from scipy.integrate import solve_ivp
+from scipy.optimize import least_squares
 from thermeta.predictors import forecast, synth
 from thermeta.predictors.baselines import (
+    air_load,
     crb_eta_sd,
+    crb_eta_sd_air,
+    crb_eta_sd_given,
     crb_eta_sd_known,
     curve_fit_eta,
     linear_eta,
@@ -176,3 +180,62 @@ def test_air_probe_that_stopped_reporting():
     assert any("older than the item's" in w for w in fc.warnings)
     assert fc.eta_s == pytest.approx(s.eta_true_s, rel=0.08)
     assert fc.eta_lo_s <= s.eta_true_s <= fc.eta_hi_s
+
+
+def test_crb_with_a_given_ambient_lies_between_known_and_fitted():
+    """A Gaussian prior of sd s on the ambient adds 1/s^2 to its Fisher information: s -> 0 is the
+    known-ambient bound, s -> infinity the fitted one, and the bound grows with s."""
+    t = np.arange(0, 3000, 60.0)
+    args = (t, 4.0, 1 / 18000, 27.0, 8.0, 0.1)
+    known, fitted = crb_eta_sd_known(*args), crb_eta_sd(*args)
+    sds = [1e-6, 0.5, 1.73, 5.0, 1e6]
+    given = [crb_eta_sd_given(*args, s) for s in sds]
+    assert given[0] == pytest.approx(known, rel=1e-6)
+    assert given[-1] == pytest.approx(fitted, rel=1e-6)
+    assert all(a < b for a, b in zip(given, given[1:]))
+
+
+AIR_TRUTH = dict(outside=27.0, air0=3.0, k_air=1 / 3600, load0=2.5, k_load=1 / 18000)
+
+
+def test_air_load_curves_match_solve_ivp():
+    """The closed-form air-and-load curves against scipy's solve_ivp (rtol 1e-10) integrating
+    da/dt = -ka (a - O), dT/dt = -kl (T - a)."""
+    p = AIR_TRUTH
+    x = np.linspace(0, 8 * 3600, 60)
+    sol = solve_ivp(lambda _t, u: [-p["k_air"] * (u[0] - p["outside"]),
+                                   -p["k_load"] * (u[1] - u[0])],
+                    (0, x[-1]), [p["air0"], p["load0"]], t_eval=x, rtol=1e-10, atol=1e-10)
+    air, load = air_load(x, **p)
+    assert np.max(np.abs(air - sol.y[0])) < 1e-6
+    assert np.max(np.abs(load - sol.y[1])) < 1e-6
+
+
+def test_air_crb_matches_the_spread_of_a_maximum_likelihood_fit():
+    """Estimation theory: with Gaussian noise the maximum-likelihood fit (scipy's least_squares
+    on both probes, started at the truth) is asymptotically efficient, so the sd of its crossing
+    time over seeded noise draws is close to the Cramer-Rao bound (here within 20 %)."""
+    p, thr, sig = AIR_TRUTH, 8.0, 0.1
+    t = np.arange(0, 2 * 3600, 120.0)
+    bound = crb_eta_sd_air(t, t, p, thr, sig, sig, 0.0)
+    keys = tuple(p)
+    scale = np.array([abs(p[k]) for k in keys])
+    air_true, load_true = air_load(t, **p)
+    rng = np.random.default_rng(7)
+    etas = []
+    for _ in range(200):
+        ya = air_true + rng.normal(0, sig, t.size)
+        yl = load_true + rng.normal(0, sig, t.size)
+
+        def resid(u):
+            a, ld = air_load(t, **dict(zip(keys, u * scale)))
+            return np.concatenate([a - ya, ld - yl])
+
+        u = least_squares(resid, np.ones(len(keys)), x_scale="jac").x * scale
+        fit = dict(zip(keys, u))
+        grid = t[-1] + np.linspace(0, 20 * 3600, 20001)
+        above = np.flatnonzero(air_load(grid, **fit)[1] >= thr)
+        if above.size:
+            etas.append(grid[above[0]] - t[-1])
+    assert len(etas) >= 190
+    assert np.std(etas) == pytest.approx(bound, rel=0.20)
