@@ -95,6 +95,28 @@ def sphere_measured(seed: int):
     return s, {"model": "sphere", "ambient_t": at, "ambient_y": ay}, None, amb
 
 
+def sphere_chiller(seed: int):
+    """Centre of a sphere, Bi 0.8-4, cooked food at 60-75 degC in blast-chiller air at -5..3 degC
+    (measured) down to 21 degC (a food-code cooling stage), seen 35-65 %; the size and diffusivity
+    ranges of bench_forecast.py's centre families (alpha 1.2-1.6e-7 m2/s, radius 2-8 cm).
+
+    The warming carton above crosses 8 degC while its centre is still in its early lag, which is
+    nearly flat: the Cramer-Rao bound there allows no better than about 56 % median spread
+    (scripts/bench_conduction.py --only crb).  A cooling from far above the limit, the kitchen's
+    use of a centre probe, shows the curve's bend before the crossing."""
+    from thermeta.predictors.synth_conduction import core_probe
+
+    r = np.random.default_rng(45_000 + seed)
+    bi, alpha, radius = r.uniform(0.8, 4.0), r.uniform(1.2e-7, 1.6e-7), r.uniform(0.02, 0.08)
+    t_i, amb, noise = r.uniform(60, 75), r.uniform(-5, 3), r.uniform(0.05, 0.2)
+    s = core_probe(seed, geometry="sphere", biot=bi, a_per_s=alpha / radius**2, t_i=t_i,
+                   ambient=amb, threshold=21.0, seen_fraction=r.uniform(0.35, 0.65), dt_s=60.0,
+                   corruption=Corruption(noise=noise, quantum=0.1))
+    at = np.sort(s.t)
+    ay = np.round((amb + r.normal(0, 0.1, at.size)) / 0.1) * 0.1
+    return s, {"model": "sphere", "ambient_t": at, "ambient_y": ay, "limit": "lower"}, None, amb
+
+
 def never_reaching(seed: int):
     """Cooling from 50-70 degC toward 24-28 degC with a threshold of 21 degC: never reached."""
     r = np.random.default_rng(50_000 + seed)
@@ -111,6 +133,7 @@ FAMILIES = [
     ("warming load, ambient given 2 off", warming_known_off, "median <= 4 %"),
     ("reefer, air probe measured", reefer_air, "median <= 3 %"),
     ("sphere centre Bi 0.8-4, air measured", sphere_measured, "median <= 10 %"),
+    ("sphere centre Bi 0.8-4, blast chiller, air measured", sphere_chiller, "median <= 10 %"),
     ("asymptote short of threshold", never_reaching, "no ETA in >= 90 %"),
 ]
 
