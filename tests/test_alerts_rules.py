@@ -231,6 +231,13 @@ def test_the_sentence_carries_the_numbers():
     for level in ("crossed", "recovered", "stale", "resumed", "regime"):
         b = dict(a, level=level, from_level="crossed", by="band", regime_start_s=now)
         assert b["item"] in sentence(b)
+    # the crossing says which way: a warming load rose above, a chilled batch fell below
+    assert sentence(dict(a, level="crossed", side="upper")).startswith(
+        "trailer-4 has risen above its threshold: ")
+    assert sentence(dict(a, level="crossed", side="lower")).startswith(
+        "trailer-4 has fallen below its threshold: ")
+    assert sentence(dict(a, level="crossed", side=None)).startswith(
+        "trailer-4 has crossed its threshold: ")
 
 
 def test_the_daemons_limit_side_is_used_when_given():

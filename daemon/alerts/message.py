@@ -70,8 +70,11 @@ def sentence(a: dict[str, Any]) -> str:
         since = a.get("crossed_at_s")
         ago = (f" since {clock(since)} ({human_duration(a['at_s'] - since)} ago)"
                if since and a.get("reminder") else "")
+        # a cooling batch reaching its pitching or holding temperature has "fallen below" it
+        went = {"upper": "risen above", "lower": "fallen below"}.get(a.get("side") or "",
+                                                                     "crossed")
         head = (f"Reminder: {item} is still past its threshold" if a.get("reminder")
-                else f"{item} has crossed its threshold")
+                else f"{item} has {went} its threshold")
         return f"{head}{ago}: {now_thr}; {fit_clause(a)}."
     if level == "recovered":
         if a.get("from_level") == "approaching":
