@@ -277,6 +277,9 @@ def _fill_lumped(fc: Forecast, fit: LumpedFit, ambient, amb_sd) -> None:
     fc.params = {"t_first": fit.t_first, "amplitude": fit.amplitude, "ambient": fit.ambient,
                  "k_per_s": fit.k_per_s, "value_fit_now": fit.value_fit_now, "rss": fit.rss,
                  "n_fit": float(fit.n), "n_params": float(fit.n - fit.dof)}
+    if fit.bend_kept < 1.0:
+        # the point ETA follows the fit's present value and slope with the bend shrunk (lumped)
+        fc.params.update(k_ahead_per_s=fit.bend_kept * fit.k_per_s, ahead_from_t=fit.t_last)
     if ambient is not None and amb_sd > 0:
         fc.warnings.append(
             f"the given ambient {ambient:g} is taken as uncertain by about {amb_sd:g} (1 sd); "
@@ -290,8 +293,18 @@ def _fill_lumped(fc: Forecast, fit: LumpedFit, ambient, amb_sd) -> None:
             "no significant bend in the readings yet, so the ambient and k are barely known: the "
             "ETA extrapolates the present slope (early if the curve levels off); the interval "
             "spans every curve the readings allow")
+    elif fit.bend_kept < 0.995:  # shown as a whole percent below 100
+        fc.warnings.append(
+            f"the bend in the readings is weak: the ETA keeps {100 * fit.bend_kept:.0f} % of the "
+            "fitted bend ahead (k and the ambient are poorly known); the interval spans every "
+            "curve the readings allow")
     if fc.eta_s is None:
         fc.warnings.append(never_reason(fc))
+        if fc.eta_lo_s is not None and 0 < fc.eta_lo_s < math.inf:
+            fc.params["eta_earliest_s"] = fc.eta_lo_s
+            fc.warnings.append(
+                "the readings do not rule a crossing out: the earliest they allow is in "
+                f"{fc.eta_lo_s / 60:.0f} min (the interval's early end; its late end is open)")
 
 
 def never_reason(fc: Forecast) -> str:

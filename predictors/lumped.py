@@ -38,6 +38,9 @@ from scipy.stats import f as f_dist
 
 CONF = 0.90
 KD_MIN, KD_MAX = 0.005, 60.0  # k * span: from nearly straight to relaxed in the first 2 %
+# the point forecast keeps the fitted bend ahead only in the measure the readings show it: shrunk by
+# (1 - F(BEND_CONF; 1, dof) / F)+, F the bend's F statistic against a straight line (bend_weight)
+BEND_CONF = 0.99
 
 
 @dataclass
@@ -194,7 +197,8 @@ class LumpedFit:
     n: int = 0
     cov: np.ndarray | None = None  # set by callers that need it (the measured-ambient forecast)
     bounds: tuple[float, float] = (-math.inf, math.inf)  # the plausible range the ambient had
-    straight: bool = False  # no significant curvature: eta from the straight trend (see straight_eta)
+    straight: bool = False  # no clear curvature: eta from the straight tangent (see bend_weight)
+    bend_kept: float = 1.0  # share of the fitted k kept ahead in the point ETA (see bend_weight)
 
     def curve(self, t: np.ndarray) -> np.ndarray:
         """T(t) = a + b e^(-k (t - t_first))."""
@@ -340,39 +344,57 @@ def fit_lumped(
     # only a forecast crossing is brought forward: a fit that levels off short of the threshold
     # keeps "never" (its interval still says whether a crossing is possible)
     if ambient is None and k_prior is None and fit.eta_s is not None and fit.eta_s > 0:
+        w = bend_weight(d, yc, r_hat, dof)
         slope_now = -k_hat * b_hat * math.exp(-k_hat * D)  # dT/dt of the fit at the last reading
-        eta_line = straight_eta(d, yc, thr, r_hat, dof, limit, slope_now, fit_y[-1])
-        if eta_line is not None:
-            fit.eta_s, fit.straight = eta_line, True
+        eta_w = shrunk_eta(float(fit_y[-1]), slope_now, w * k_hat, thr, limit)
+        if w < 1.0 and eta_w is not None:
+            fit.eta_s, fit.bend_kept, fit.straight = eta_w, w, w == 0.0
     if intervals:
         add_intervals(fit, d, yc, thr, lam, a0, lo, hi, ybar, k_grid, pen)
     return fit
 
 
-def straight_eta(d: np.ndarray, yc: np.ndarray, thr: float, rss: float, dof: int,
-                 limit: str | None, slope: float, now: float) -> float | None:
-    """Seconds until the tangent at the newest reading (value ``now``, ``slope`` per s) reaches
-    thr, when the curve's bend is not significant: F = (RSS_line - RSS) / (RSS / dof) <
-    F(0.90; 1, dof) for the straight line through the readings.  None otherwise.
+def bend_weight(d: np.ndarray, yc: np.ndarray, rss: float, dof: int) -> float:
+    """The share w of the fitted bend that the point forecast keeps ahead: (1 - q / F)+ with
+    F = (RSS_line - RSS) / (RSS / dof) the bend's F statistic against the straight line through
+    the readings and q = F(BEND_CONF; 1, dof); 1 when it cannot be judged (dof < 2, RSS 0).
 
-    With the ambient free and little curvature seen, k and the ambient are barely identified and
-    the best fit scatters toward curves that level off early (a late or missing ETA), while its
-    present slope is well determined.  A straight line (the lumped curve's limit k -> 0) is then
-    inside the 90 % profile region, by the same F cut-off as the intervals: the point forecast
-    extrapolates the present slope with no further bend (early, the safe side, for a curve that
-    bends away from the threshold); the interval still spans the whole region and includes it.
+    With the ambient free and little curvature seen, k and the ambient are barely identified:
+    the fitted k scatters upward (curves that level off early, a late or missing ETA) while the
+    present value and slope are well determined, and the crossing time is a steep function of k.
+    A 90 % test still calls one bend in ten significant when there is none, and a hard switch
+    at any level jumps between the straight and the bent forecast.  Shrinking k by its own
+    evidence (the positive-part rule, here at the 99 % point) keeps the bend where the readings
+    show it clearly (a hot liquid chilled toward coolant: F in the thousands, w ~ 1) and takes
+    the tangent (the lumped curve's limit k -> 0, inside the model) where they do not.  Only the
+    point forecast is shrunk: the intervals remain the 90 % profile region of the unshrunk fit.
     """
     if dof < 2 or rss <= 0:
-        return None
+        return 1.0
     s_line, icpt = np.polyfit(d, yc, 1)
     rss_line = float(np.sum((yc - (icpt + s_line * d)) ** 2))
-    if (rss_line - rss) / (rss / dof) >= f_dist.ppf(CONF, 1, dof):
-        return None
+    F = (rss_line - rss) / (rss / dof)
+    q = float(f_dist.ppf(BEND_CONF, 1, dof))
+    return max(0.0, 1.0 - q / F) if F > 0 else 0.0
+
+
+def shrunk_eta(now: float, slope: float, k: float, thr: float, limit: str | None) -> float | None:
+    """Seconds until the lumped curve through the present value ``now`` with the present
+    ``slope`` (per s) and rate ``k`` reaches thr:
+
+        T(x) = now + (slope / k) (1 - e^(-k x)),  ambient now + slope / k;
+
+    k = 0 is its tangent, T(x) = now + slope x.  None if it does not get there."""
     if slope == 0 or (thr - now) / slope <= 0:
         return None
     if limit == "upper" and slope < 0 or limit == "lower" and slope > 0:
         return None
-    return float((thr - now) / slope)  # T(now) + slope x = thr
+    if k <= 0:
+        return float((thr - now) / slope)  # the tangent: now + slope x = thr
+    u = k * (thr - now) / slope  # the share of the way to the ambient that thr lies at
+    if u >= 1.0:
+        return None  # the curve levels off at or before thr
+    return float(-math.log1p(-u) / k)
 
 
 class KPenalty:
