@@ -22,6 +22,10 @@ Ambient modes:
   lam (a - a0)^2 with lam = sigma^2 / ambient_sd^2 (sigma: reading noise), so a given ambient that
   is a couple of degrees off widens the interval instead of biasing it unseen; ambient_sd = 0 fixes a.
 
+Point forecast with the ambient fitted and no prior: a fit that crosses keeps its present value
+and slope, and its bend ahead only in the measure the readings show it (``bend_weight``: k shrunk by
+(1 - F(0.99; 1, dof) / F)+, the tangent at 0); the intervals stay those of the unshrunk fit.
+
 A prior on k learned from past episodes (``k_prior = (mu, sd)`` of ln k) enters the same way, as a
 penalty lam_k (ln k - mu)^2 with lam_k = sigma^2 / sd^2 added to the profile RSS_k: it is a prior,
 not a constraint, so readings with curvature that contradict it outweigh it as they accumulate.
@@ -342,7 +346,9 @@ def fit_lumped(
     fit.eta_s, fit.direction = crossing_eta(fit.value_fit_now, fit.ambient, k_hat, threshold,
                                             value_start=a_hat + b_hat + ybar, limit=limit)
     # only a forecast crossing is brought forward: a fit that levels off short of the threshold
-    # keeps "never" (its interval still says whether a crossing is possible)
+    # keeps "never" (its interval still says whether a crossing is possible).  A weakly bent
+    # level-off looks the same in the readings whether the load levels off short of the
+    # threshold or warms toward a far ambient, so "never" stays the point forecast there
     if ambient is None and k_prior is None and fit.eta_s is not None and fit.eta_s > 0:
         w = bend_weight(d, yc, r_hat, dof)
         slope_now = -k_hat * b_hat * math.exp(-k_hat * D)  # dT/dt of the fit at the last reading

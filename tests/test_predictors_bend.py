@@ -31,7 +31,8 @@ def ivp_crossing(now: float, amb: float, k: float, thr: float) -> float:
     return float(sol.t_events[0][0])
 
 
-@pytest.mark.parametrize("now,slope,k,thr", [(3.0, 8e-4, 1 / 18000, 8.0), (60.0, -0.05, 1 / 900, 20.0),
+@pytest.mark.parametrize("now,slope,k,thr", [(3.0, 8e-4, 1 / 18000, 8.0),
+                                             (60.0, -0.05, 1 / 900, 20.0),
                                              (2.0, 1e-3, 1 / 3000, 4.5)])
 def test_shrunk_eta_is_the_lumped_crossing_of_the_present_state(now, slope, k, thr):
     """The curve through the present value and slope with rate k (ambient now + slope / k)
