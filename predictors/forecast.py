@@ -28,7 +28,7 @@ from thermeta.predictors.measured import (
     steady_air,
 )
 from thermeta.predictors.prior import Prior
-from thermeta.predictors.regime import find_regime
+from thermeta.predictors.regime import find_regime, newest_start, oldest_regime_end
 from thermeta.predictors.result import Forecast
 
 MODELS = ("lumped", "slab", "cylinder", "sphere", "auto")
@@ -127,7 +127,7 @@ def _forecast(fc, t, y, thr, model, ambient, ambient_t, ambient_y, window_s, min
     if tt.size < min_points:
         fc.ok, fc.reason = False, f"too few readings to fit ({tt.size} < {min_points})"
         return fc
-    air = None
+    air, before = None, None
     if fc.ambient_mode == "measured":
         air = clean(np.asarray(ambient_t, float), np.asarray(ambient_y, float))
         if air.t.size < 4:
@@ -147,6 +147,9 @@ def _forecast(fc, t, y, thr, model, ambient, ambient_t, ambient_y, window_s, min
             fc.warnings.append(
                 f"the surroundings changed {reg.n_changes} time(s); fitted the newest "
                 f"{tt.size - reg.start_index} readings only")
+            end = oldest_regime_end(tt, yy, cl.noise_sd, reg, min_points=max(12, min_points))
+            if end:
+                before = (tt, yy, end)
             tt, yy = tt[reg.start_index:], yy[reg.start_index:]
             fc.regime_start = float(tt[0])
     if prior is not None and prior.n_episodes and (model in CONDUCTION or air is not None):
@@ -157,11 +160,11 @@ def _forecast(fc, t, y, thr, model, ambient, ambient_t, ambient_y, window_s, min
     if model == "auto":
         return _auto(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, prior)
     return _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, detect, min_points,
-                   prior)
+                   prior, before)
 
 
 def _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit=None, detect=True,
-            min_points=8, prior=None) -> Forecast:
+            min_points=8, prior=None, before=None) -> Forecast:
     fc.model = "lumped" if fc.model != "auto" else fc.model
     fc.lag_factor_j = 1.0
     if air is not None:
@@ -176,6 +179,9 @@ def _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit=None, detec
         # the learned ambient is a Gaussian prior, the same penalty as a given one
         kw["ambient"], kw["ambient_sd"] = a_prior
     fit = fit_lumped(tt, yy, thr, **kw)
+    if before is not None:
+        kw, fit, tt, yy = _carry_before(fc, fit, kw, before, tt, yy, thr)
+        k_prior = kw.get("k_prior", k_prior)
     if fit.ok:
         # robust refit: drop what the first fit calls far off (beyond the Hampel pre-filter)
         out = residual_outliers(fit.residuals, 4.0,
@@ -188,9 +194,95 @@ def _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit=None, detec
         fc.ok, fc.reason = False, fit.reason
         return fc
     _fill_lumped(fc, fit, ambient, amb_sd)
-    if k_prior is not None:
+    if k_prior is not None and prior is not None and before is None:
         _note_prior(fc, prior, k_prior, a_prior)
     return fc
+
+
+Z90 = 1.6449  # the two-sided 90 % point of the normal: a 90 % interval spans 2 Z90 sd
+CARRY_Z = 3.0  # |z| beyond this: the newest readings contradict the older regime's value
+
+
+def _log_sd(lo, hi, est) -> float | None:
+    """The sd of ln(value) from a 90 % interval; None when an end is open."""
+    if lo is None or hi is None or not lo > 0 or not hi > lo or not est > 0:
+        return None
+    return (math.log(hi) - math.log(lo)) / (2 * Z90)
+
+
+def _lin_sd(fit: LumpedFit) -> float | None:
+    """The sd of the fitted ambient from its 90 % interval; None when it reaches the bounds."""
+    lo, hi = fit.ambient_lo, fit.ambient_hi
+    if lo is None or hi is None or not hi > lo:
+        return None
+    if lo <= fit.bounds[0] + 1e-9 or hi >= fit.bounds[1] - 1e-9:
+        return None
+    return (hi - lo) / (2 * Z90)
+
+
+def _agrees(a: float, sd_a: float | None, b: float, sd_b: float | None) -> bool:
+    """|a - b| <= CARRY_Z combined sd; a missing sd of the newest fit means it cannot tell."""
+    if sd_b is None:
+        return True
+    return abs(a - b) <= CARRY_Z * math.hypot(sd_a or 0.0, sd_b)
+
+
+def _carry_before(fc: Forecast, fit: LumpedFit, kw: dict, before, tt, yy, thr):
+    """Carry k (and a fitted ambient) from the readings before the first change into the newest
+    regime's fit, as Gaussian priors, when the two agree.
+
+    A door opened and closed again changes neither the load's k nor, once shut, the ambient:
+    Newton's law is memoryless, so the load goes on along the same k and ambient from a new start.
+    The readings before the door then hold most of what is known of k, and with k known the
+    newest regime is located to a reading (regime.newest_start) instead of to the dozen readings
+    the blind search needs.  A real change of the surroundings (chiller water switched, a new set
+    point) shows as a newest fit whose k or ambient lies beyond CARRY_Z combined sd of the older
+    one: then the newest readings stand alone, as found by the blind search.
+    Returns the keyword arguments, the fit and the readings to go on with.
+    """
+    t_all, y_all, end = before
+    old = fit_lumped(t_all[:end], y_all[:end], thr, **kw)
+    sd_k = _log_sd(old.k_lo, old.k_hi, old.k_per_s) if old.ok else None
+    if sd_k is None or not fit.ok:
+        return kw, fit, tt, yy
+    j = newest_start(t_all, y_all, old.curve, old.k_per_s, old.ambient, end)
+    t_new, y_new = t_all[j:], y_all[j:]
+    if kw.get("bounds") is None:
+        # the default plausible range of the ambient scales with the readings' spread, which a
+        # few readings after the change understate: take the older readings' range
+        kw = dict(kw, bounds=old.bounds)
+    alone = fit_lumped(t_new, y_new, thr, **kw)
+    if not alone.ok:
+        return kw, fit, tt, yy
+    k_ok = _agrees(math.log(old.k_per_s), sd_k, math.log(alone.k_per_s),
+                   _log_sd(alone.k_lo, alone.k_hi, alone.k_per_s))
+    new_kw = dict(kw, k_prior=(math.log(old.k_per_s), sd_k))
+    carry_a = False
+    if kw.get("ambient") is None:
+        sd_a, sd_a_new = _lin_sd(old), _lin_sd(alone)
+        # the ambient is carried only when the newest readings can test it (its interval
+        # is bounded): a few readings cannot tell a door from a new set point
+        carry_a = sd_a is not None and sd_a_new is not None
+        if carry_a and not _agrees(old.ambient, sd_a, alone.ambient, sd_a_new):
+            k_ok = False
+        if carry_a:
+            new_kw.update(ambient=old.ambient, ambient_sd=sd_a)
+    if not k_ok:
+        fc.warnings.append("the readings before the change follow another curve (k or ambient "
+                           "differ); they are not used")
+        return kw, fit, tt, yy
+    joint = fit_lumped(t_new, y_new, thr, **new_kw)
+    if not joint.ok:
+        return kw, fit, tt, yy
+    fc.warnings[:] = [w for w in fc.warnings if not w.startswith("the surroundings changed")]
+    text = (f"the surroundings changed and came back: the {end} readings before the change "
+            f"agree with the newest {t_new.size}, so their time constant (about "
+            f"{1 / old.k_per_s / 3600:.3g} h")
+    if carry_a:
+        text += f") and ambient (about {old.ambient:.3g}"
+    fc.warnings.append(text + ") are carried into the newest fit")
+    fc.regime_start = float(t_new[0])
+    return new_kw, joint, t_new, y_new
 
 
 def _cycling(fc: Forecast, tt, yy, thr, noise_sd, limit) -> Forecast:

@@ -16,7 +16,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 from thermeta.predictors.lumped import fit_lumped, quick_rss
@@ -31,6 +31,7 @@ class Regime:
     n_changes: int
     cycling: bool
     note: str | None = None
+    changes: list[int] = field(default_factory=list)  # indices of the cuts found, oldest first
 
 
 def _rss(t: np.ndarray, y: np.ndarray) -> float:
@@ -98,7 +99,7 @@ def find_regime(t: np.ndarray, y: np.ndarray, noise_sd: float, *, min_points: in
             return Regime(0, len(runs) - 1, True, "the readings cycle (a thermostat?); fitted the whole window")
         return Regime(max(runs[-2][1], 0), len(runs) - 1, True,
                       "the readings stopped cycling; fitted the newest run only")
-    start, changes = 0, 0
+    start, changes, cuts = 0, 0, []
     while changes < max_changes and n - start >= 2 * min_points:
         m = n - start
         cands = start + np.unique(np.linspace(min_points, m - min_points, 14).astype(int))
@@ -122,4 +123,75 @@ def find_regime(t: np.ndarray, y: np.ndarray, noise_sd: float, *, min_points: in
             break
         start = j_best
         changes += 1
-    return Regime(start, changes, False)
+        cuts.append(j_best)
+    return Regime(start, changes, False, changes=cuts)
+
+
+def oldest_regime_end(t: np.ndarray, y: np.ndarray, noise_sd: float, reg: Regime, *,
+                      min_points: int = MIN_REGIME_POINTS, margin: int = 2) -> int:
+    """End index (exclusive) of the readings before the first change, or 0 if too few.
+
+    The first cut may fall anywhere inside a short disturbance (a door open a few minutes holds
+    fewer readings than a regime needs), so the part before it is searched again until one curve
+    explains it; ``margin`` readings are dropped before the cut, which is only located to within
+    a reading or two.
+    """
+    if not reg.changes:
+        return 0
+    end = reg.changes[0]
+    for _ in range(4):
+        inner = find_regime(t[:end], y[:end], noise_sd, min_points=min_points)
+        if inner.cycling:
+            return 0
+        if not inner.changes:
+            break
+        end = inner.changes[0]
+    end -= margin
+    return end if end >= min_points else 0
+
+
+def newest_start(t: np.ndarray, y: np.ndarray, before: Callable[[np.ndarray], np.ndarray],
+                 k: float, ambient: float, i0: int, min_tail: int = 4) -> int:
+    """Where the newest regime starts, when the load keeps its k and ambient across a
+    disturbance (a door opened and closed again) that began after reading i0.
+
+    Three pieces from i0 on, each a lumped curve with the same k: the older curve ``before`` (the
+    fit of the readings before i0, no parameter free) up to c1; the disturbance from c1 to j,
+    toward its own ambient (both levels free); the newest regime from j, toward ``ambient`` (its
+    start free).  (c1, j) minimise the sum of the three RSS, by prefix sums over all pairs.  A
+    reading too many given to the disturbance costs little, so the split errs late if at all,
+    which only drops a reading from the newest fit.
+    """
+    n = t.size
+    tt, yy = t[i0:], y[i0:]
+    m = tt.size
+    e = np.exp(-k * (tt - tt[0]))
+    r = yy - ambient
+
+    def cum(v: np.ndarray) -> np.ndarray:
+        return np.concatenate([[0.0], np.cumsum(v)])
+
+    old_r = yy - before(tt)
+    R_old = cum(old_r * old_r)  # R_old[c] = RSS of the older curve on [0, c)
+    # the newest regime on [j, m): r = b e, b free
+    Srr, Sre, See = (cum(v[::-1])[::-1] for v in (r * r, r * e, e * e))
+    R_tail = Srr - np.divide(Sre**2, See, out=np.zeros_like(See), where=See > 0)
+    # the disturbance on [c, j): y = p + q e, both free (exact with two readings or fewer)
+    S1, Se, Se2, Sy, Sye, Syy = (cum(v) for v in (np.ones(m), e, e * e, yy, yy * e, yy * yy))
+    c = np.arange(m + 1)[:, None]
+    j = np.arange(m + 1)[None, :]
+    n_ = S1[j] - S1[c]
+    se, se2 = Se[j] - Se[c], Se2[j] - Se2[c]
+    sy, sye, syy = Sy[j] - Sy[c], Sye[j] - Sye[c], Syy[j] - Syy[c]
+    det = n_ * se2 - se * se
+    with np.errstate(divide="ignore", invalid="ignore"):
+        p = (se2 * sy - se * sye) / det
+        q = (n_ * sye - se * sy) / det
+        R_door = syy - p * sy - q * sye
+    R_door = np.where((n_ >= 3) & (det > 1e-12 * np.maximum(n_ * se2, 1e-300)),
+                      np.maximum(R_door, 0.0), 0.0)
+    total = R_old[c] + R_door + R_tail[j]
+    valid = (j >= c) & (j <= m - min_tail)
+    total = np.where(valid, total, np.inf)
+    _, jb = np.unravel_index(int(np.argmin(total)), total.shape)
+    return i0 + int(jb) if n - (i0 + int(jb)) >= min_tail else i0
