@@ -28,7 +28,7 @@ from thermeta.predictors.measured import (
     steady_air,
 )
 from thermeta.predictors.prior import Prior
-from thermeta.predictors.regime import find_regime, newest_start, oldest_regime_end
+from thermeta.predictors.regime import find_door, find_regime, newest_start, oldest_regime_end
 from thermeta.predictors.result import Forecast
 
 MODELS = ("lumped", "slab", "cylinder", "sphere", "auto")
@@ -152,6 +152,10 @@ def _forecast(fc, t, y, thr, model, ambient, ambient_t, ambient_y, window_s, min
                 before = (tt, yy, end)
             tt, yy = tt[reg.start_index:], yy[reg.start_index:]
             fc.regime_start = float(tt[0])
+        elif not reg.cycling:
+            end = _short_door(tt, yy, max(12, min_points))
+            if end:
+                before = (tt, yy, end)
     if prior is not None and prior.n_episodes and (model in CONDUCTION or air is not None):
         fc.warnings.append("the learned prior is used by the lumped model with a fitted or "
                            "given ambient only; not here")
@@ -197,6 +201,25 @@ def _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit=None, detec
     if k_prior is not None and prior is not None and before is None:
         _note_prior(fc, prior, k_prior, a_prior)
     return fc
+
+
+def _short_door(tt, yy, min_points: int, margin: int = 2) -> int:
+    """End of the readings before a short disturbance (regime.find_door) that the regime search
+    cannot see, or 0.  The door is first placed with the whole window's k and ambient, which it
+    biases, then again with those of the readings before it."""
+    whole = fit_lumped(tt, yy, float(yy[-1]), intervals=False)
+    if not whole.ok:
+        return 0
+    door = find_door(tt, yy, whole.k_per_s, whole.ambient, whole.rss, min_side=min_points)
+    if not door.found:
+        return 0
+    pre = fit_lumped(tt[:door.c1], yy[:door.c1], float(yy[-1]), intervals=False)
+    if pre.ok:
+        again = find_door(tt, yy, pre.k_per_s, pre.ambient, whole.rss, min_side=min_points)
+        if again.found:
+            door = again
+    end = door.c1 - margin
+    return end if end >= min_points else 0
 
 
 Z90 = 1.6449  # the two-sided 90 % point of the normal: a 90 % interval spans 2 Z90 sd

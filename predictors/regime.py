@@ -168,16 +168,30 @@ def newest_start(t: np.ndarray, y: np.ndarray, before: Callable[[np.ndarray], np
     e = np.exp(-k * (tt - tt[0]))
     r = yy - ambient
 
-    def cum(v: np.ndarray) -> np.ndarray:
-        return np.concatenate([[0.0], np.cumsum(v)])
-
     old_r = yy - before(tt)
-    R_old = cum(old_r * old_r)  # R_old[c] = RSS of the older curve on [0, c)
+    R_old = _cum(old_r * old_r)  # R_old[c] = RSS of the older curve on [0, c)
     # the newest regime on [j, m): r = b e, b free
-    Srr, Sre, See = (cum(v[::-1])[::-1] for v in (r * r, r * e, e * e))
+    Srr, Sre, See = (_cum(v[::-1])[::-1] for v in (r * r, r * e, e * e))
     R_tail = Srr - np.divide(Sre**2, See, out=np.zeros_like(See), where=See > 0)
-    # the disturbance on [c, j): y = p + q e, both free (exact with two readings or fewer)
-    S1, Se, Se2, Sy, Sye, Syy = (cum(v) for v in (np.ones(m), e, e * e, yy, yy * e, yy * yy))
+    c = np.arange(m + 1)[:, None]
+    j = np.arange(m + 1)[None, :]
+    R_door = _two_level_rss(tt, yy, e)
+    total = R_old[c] + R_door + R_tail[j]
+    valid = (j >= c) & (j <= m - min_tail)
+    total = np.where(valid, total, np.inf)
+    _, jb = np.unravel_index(int(np.argmin(total)), total.shape)
+    return i0 + int(jb) if n - (i0 + int(jb)) >= min_tail else i0
+
+
+def _cum(v: np.ndarray) -> np.ndarray:
+    return np.concatenate([[0.0], np.cumsum(v)])
+
+
+def _two_level_rss(tt: np.ndarray, yy: np.ndarray, e: np.ndarray) -> np.ndarray:
+    """RSS of y = p + q e (both free) on every slice [c, j), a matrix by prefix sums; zero
+    where two readings or fewer (an exact fit)."""
+    m = tt.size
+    S1, Se, Se2, Sy, Sye, Syy = (_cum(v) for v in (np.ones(m), e, e * e, yy, yy * e, yy * yy))
     c = np.arange(m + 1)[:, None]
     j = np.arange(m + 1)[None, :]
     n_ = S1[j] - S1[c]
@@ -187,11 +201,47 @@ def newest_start(t: np.ndarray, y: np.ndarray, before: Callable[[np.ndarray], np
     with np.errstate(divide="ignore", invalid="ignore"):
         p = (se2 * sy - se * sye) / det
         q = (n_ * sye - se * sy) / det
-        R_door = syy - p * sy - q * sye
-    R_door = np.where((n_ >= 3) & (det > 1e-12 * np.maximum(n_ * se2, 1e-300)),
-                      np.maximum(R_door, 0.0), 0.0)
-    total = R_old[c] + R_door + R_tail[j]
-    valid = (j >= c) & (j <= m - min_tail)
-    total = np.where(valid, total, np.inf)
-    _, jb = np.unravel_index(int(np.argmin(total)), total.shape)
-    return i0 + int(jb) if n - (i0 + int(jb)) >= min_tail else i0
+        r = syy - p * sy - q * sye
+    return np.where((n_ >= 3) & (det > 1e-12 * np.maximum(n_ * se2, 1e-300)),
+                    np.maximum(r, 0.0), 0.0)
+
+
+@dataclass
+class Door:
+    """A disturbance between readings c1 and j that left k and the ambient as they were."""
+
+    found: bool
+    c1: int
+    j: int
+    stat: float
+
+
+def find_door(t: np.ndarray, y: np.ndarray, k: float, ambient: float, rss_single: float, *,
+              min_side: int = 8, min_tail: int = 4) -> Door:
+    """A short disturbance (a door opened, then closed) inside the window, too short for the
+    regime search (whose pieces need a dozen readings each).
+
+    Model: before c1 and from j on, curves with the given k toward the given ambient (each its
+    own start); between, a curve with the same k toward its own ambient.  Kept when the RSS gain
+    over one curve (rss_single), in units of the model's residual variance, beats a BIC-style
+    penalty for its five more parameters (two levels, two instants, one start) with the regime
+    search's margin of 12.
+    """
+    m = t.size
+    if m < min_side + min_tail + 3:
+        return Door(False, 0, 0, 0.0)
+    e = np.exp(-k * (t - t[0]))
+    r = y - ambient
+    Prr, Pre, Pee = _cum(r * r), _cum(r * e), _cum(e * e)
+    r_pre = Prr - np.divide(Pre**2, Pee, out=np.zeros_like(Pee), where=Pee > 0)
+    Srr, Sre, See = (_cum(v[::-1])[::-1] for v in (r * r, r * e, e * e))
+    r_suf = Srr - np.divide(Sre**2, See, out=np.zeros_like(See), where=See > 0)
+    c = np.arange(m + 1)[:, None]
+    j = np.arange(m + 1)[None, :]
+    total = r_pre[c] + _two_level_rss(t, y, e) + r_suf[j]
+    total = np.where((j >= c) & (c >= min_side) & (j <= m - min_tail), total, np.inf)
+    ci, ji = np.unravel_index(int(np.argmin(total)), total.shape)
+    best = float(total[ci, ji])
+    s2 = max(best / max(m - 7, 1), 1e-18)
+    stat = (rss_single - best) / s2
+    return Door(bool(stat >= 5 * math.log(m) + 12.0), int(ci), int(ji), float(stat))
