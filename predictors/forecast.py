@@ -149,13 +149,13 @@ def _forecast(fc, t, y, thr, model, ambient, ambient_t, ambient_y, window_s, min
                 f"{tt.size - reg.start_index} readings only")
             end = oldest_regime_end(tt, yy, cl.noise_sd, reg, min_points=max(12, min_points))
             if end:
-                before = (tt, yy, end)
+                before = (tt, yy, end, True)
             tt, yy = tt[reg.start_index:], yy[reg.start_index:]
             fc.regime_start = float(tt[0])
         elif not reg.cycling:
             end = _short_door(tt, yy, max(12, min_points))
             if end:
-                before = (tt, yy, end)
+                before = (tt, yy, end, False)
     if prior is not None and prior.n_episodes and (model in CONDUCTION or air is not None):
         fc.warnings.append("the learned prior is used by the lumped model with a fitted or "
                            "given ambient only; not here")
@@ -263,7 +263,7 @@ def _carry_before(fc: Forecast, fit: LumpedFit, kw: dict, before, tt, yy, thr):
     one: then the newest readings stand alone, as found by the blind search.
     Returns the keyword arguments, the fit and the readings to go on with.
     """
-    t_all, y_all, end = before
+    t_all, y_all, end, cut = before
     old = fit_lumped(t_all[:end], y_all[:end], thr, **kw)
     sd_k = _log_sd(old.k_lo, old.k_hi, old.k_per_s) if old.ok else None
     if sd_k is None or not fit.ok:
@@ -275,24 +275,29 @@ def _carry_before(fc: Forecast, fit: LumpedFit, kw: dict, before, tt, yy, thr):
         # few readings after the change understate: take the older readings' range
         kw = dict(kw, bounds=old.bounds)
     alone = fit_lumped(t_new, y_new, thr, **kw)
-    if not alone.ok:
-        return kw, fit, tt, yy
-    k_ok = _agrees(math.log(old.k_per_s), sd_k, math.log(alone.k_per_s),
-                   _log_sd(alone.k_lo, alone.k_hi, alone.k_per_s))
+    # the newest readings on their own, as the blind search cut them and as located here
+    newest = [f for f in ((fit if cut else None), alone) if f is not None and f.ok]
+    agree = alone.ok and all(
+        _agrees(math.log(old.k_per_s), sd_k, math.log(f.k_per_s),
+                _log_sd(f.k_lo, f.k_hi, f.k_per_s)) for f in newest)
     new_kw = dict(kw, k_prior=(math.log(old.k_per_s), sd_k))
     carry_a = False
     if kw.get("ambient") is None:
-        sd_a, sd_a_new = _lin_sd(old), _lin_sd(alone)
         # the ambient is carried only when the newest readings can test it (its interval
         # is bounded): a few readings cannot tell a door from a new set point
-        carry_a = sd_a is not None and sd_a_new is not None
-        if carry_a and not _agrees(old.ambient, sd_a, alone.ambient, sd_a_new):
-            k_ok = False
+        sd_a = _lin_sd(old)
+        tested = [f for f in newest if _lin_sd(f) is not None]
+        carry_a = sd_a is not None and bool(tested)
+        agree = agree and all(_agrees(old.ambient, sd_a, f.ambient, _lin_sd(f)) for f in tested)
         if carry_a:
             new_kw.update(ambient=old.ambient, ambient_sd=sd_a)
-    if not k_ok:
-        fc.warnings.append("the readings before the change follow another curve (k or ambient "
-                           "differ); they are not used")
+    elif kw.get("ambient_sd", 0.0) > 0:
+        # a given ambient holds for the newest readings; the older ones must have followed it too
+        agree = agree and abs(old.ambient - kw["ambient"]) <= CARRY_Z * kw["ambient_sd"]
+    if not agree:
+        if cut:
+            fc.warnings.append("the readings before the change follow another curve (k or "
+                               "ambient differ); they are not used")
         return kw, fit, tt, yy
     joint = fit_lumped(t_new, y_new, thr, **new_kw)
     if not joint.ok:
