@@ -28,7 +28,7 @@ from thermeta.predictors.measured import (
     steady_air,
 )
 from thermeta.predictors.prior import Prior
-from thermeta.predictors.regime import find_door, find_regime, newest_start, oldest_regime_end
+from thermeta.predictors.regime import MIN_REGIME_POINTS, find_door, find_regime, oldest_regime_end, split_disturbance
 from thermeta.predictors.result import Forecast
 
 MODELS = ("lumped", "slab", "cylinder", "sphere", "auto")
@@ -250,67 +250,89 @@ def _agrees(a: float, sd_a: float | None, b: float, sd_b: float | None) -> bool:
     return abs(a - b) <= CARRY_Z * math.hypot(sd_a or 0.0, sd_b)
 
 
+def _older_fit(t_all, y_all, end: int, thr: float, kw: dict, margin: int = 2):
+    """The fit of the readings before a disturbance, and where the newest regime starts.
+
+    The searches place the disturbance's start only roughly (often a few readings late, and
+    a few of its readings bias the older fit), so it is placed again with the older curve itself
+    (regime.split_disturbance, searching from a third of the way back), and the older readings
+    end ``margin`` readings before it.
+    """
+    floor = MIN_REGIME_POINTS
+    old = fit_lumped(t_all[:end], y_all[:end], thr, **kw)
+    j = end
+    for _ in range(2):
+        if not old.ok:
+            break
+        i0 = max(floor, end - end // 3)
+        c1, j = split_disturbance(t_all, y_all, old.curve, old.k_per_s, old.ambient, i0)
+        if c1 - margin >= end or c1 - margin < floor:
+            break
+        end = c1 - margin
+        old = fit_lumped(t_all[:end], y_all[:end], thr, **kw)
+    return old, max(j, end)
+
+
 def _carry_before(fc: Forecast, fit: LumpedFit, kw: dict, before, tt, yy, thr):
-    """Carry k (and a fitted ambient) from the readings before the first change into the newest
-    regime's fit, as Gaussian priors, when the two agree.
+    """Carry k from the readings before a change into the newest regime's fit, as a Gaussian
+    prior on ln k, when the two agree.
 
     A door opened and closed again changes neither the load's k nor, once shut, the ambient:
     Newton's law is memoryless, so the load goes on along the same k and ambient from a new start.
     The readings before the door then hold most of what is known of k, and with k known the
-    newest regime is located to a reading (regime.newest_start) instead of to the dozen readings
-    the blind search needs.  A real change of the surroundings (chiller water switched, a new set
-    point) shows as a newest fit whose k or ambient lies beyond CARRY_Z combined sd of the older
-    one: then the newest readings stand alone, as found by the blind search.
+    newest regime is located to a reading or two (regime.split_disturbance) instead of to the
+    dozen readings the blind search needs.  A real change of the surroundings (chiller water
+    switched, a new set point) shows as a newest fit whose k or fitted ambient lies beyond CARRY_Z
+    combined sd of the older one, as too few readings after the located start to fit at all, or
+    as older readings that did not follow a given ambient: then the newest readings stand alone,
+    as found by the blind search.  Only k is carried: the older fit's ambient is correlated with
+    its k, and the two carried as independent priors made intervals too narrow in trials.
     Returns the keyword arguments, the fit and the readings to go on with.
     """
     t_all, y_all, end, cut = before
-    old = fit_lumped(t_all[:end], y_all[:end], thr, **kw)
+    old, j = _older_fit(t_all, y_all, end, thr, kw)
     sd_k = _log_sd(old.k_lo, old.k_hi, old.k_per_s) if old.ok else None
     if sd_k is None or not fit.ok:
         return kw, fit, tt, yy
-    j = newest_start(t_all, y_all, old.curve, old.k_per_s, old.ambient, end)
     t_new, y_new = t_all[j:], y_all[j:]
-    if kw.get("bounds") is None:
-        # the default plausible range of the ambient scales with the readings' spread, which a
-        # few readings after the change understate: take the older readings' range
-        kw = dict(kw, bounds=old.bounds)
-    alone = fit_lumped(t_new, y_new, thr, **kw)
-    # the newest readings on their own, as the blind search cut them and as located here
-    newest = [f for f in ((fit if cut else None), alone) if f is not None and f.ok]
-    agree = alone.ok and all(
-        _agrees(math.log(old.k_per_s), sd_k, math.log(f.k_per_s),
-                _log_sd(f.k_lo, f.k_hi, f.k_per_s)) for f in newest)
-    new_kw = dict(kw, k_prior=(math.log(old.k_per_s), sd_k))
-    carry_a = False
-    if kw.get("ambient") is None:
-        # the ambient is carried only when the newest readings can test it (its interval
-        # is bounded): a few readings cannot tell a door from a new set point
-        sd_a = _lin_sd(old)
-        tested = [f for f in newest if _lin_sd(f) is not None]
-        carry_a = sd_a is not None and bool(tested)
-        agree = agree and all(_agrees(old.ambient, sd_a, f.ambient, _lin_sd(f)) for f in tested)
-        if carry_a:
-            new_kw.update(ambient=old.ambient, ambient_sd=sd_a)
-    elif kw.get("ambient_sd", 0.0) > 0:
-        # a given ambient holds for the newest readings; the older ones must have followed it too
-        agree = agree and abs(old.ambient - kw["ambient"]) <= CARRY_Z * kw["ambient_sd"]
-    if not agree:
+    # the default plausible range of the ambient scales with the readings' spread, which a few
+    # readings after the change understate: take the older readings' range
+    new_kw = dict(kw, bounds=kw.get("bounds") or old.bounds)
+    alone = fit_lumped(t_new, y_new, thr, **new_kw)
+    if not _carry_agrees(old, sd_k, alone, kw):
         if cut:
             fc.warnings.append("the readings before the change follow another curve (k or "
                                "ambient differ); they are not used")
         return kw, fit, tt, yy
+    new_kw["k_prior"] = (math.log(old.k_per_s), sd_k)
     joint = fit_lumped(t_new, y_new, thr, **new_kw)
     if not joint.ok:
         return kw, fit, tt, yy
     fc.warnings[:] = [w for w in fc.warnings if not w.startswith("the surroundings changed")]
-    text = (f"the surroundings changed and came back: the {end} readings before the change "
-            f"agree with the newest {t_new.size}, so their time constant (about "
-            f"{1 / old.k_per_s / 3600:.3g} h")
-    if carry_a:
-        text += f") and ambient (about {old.ambient:.3g}"
-    fc.warnings.append(text + ") are carried into the newest fit")
+    fc.warnings.append(
+        f"the surroundings changed and came back: the {old.n} readings before the change agree "
+        f"with the newest {t_new.size}, so their time constant (about "
+        f"{1 / old.k_per_s / 3600:.3g} h, as a prior) is carried into the newest fit")
     fc.regime_start = float(t_new[0])
     return new_kw, joint, t_new, y_new
+
+
+def _carry_agrees(old: LumpedFit, sd_k: float, alone: LumpedFit, kw: dict) -> bool:
+    """Whether the newest readings, fitted on their own, go on along the older curve's k and
+    ambient (see _carry_before)."""
+    if not alone.ok:
+        return False  # too few readings after the located start: the older curve does not go on
+    if not _agrees(math.log(old.k_per_s), sd_k, math.log(alone.k_per_s),
+                   _log_sd(alone.k_lo, alone.k_hi, alone.k_per_s)):
+        return False
+    if kw.get("ambient") is None:
+        sd_new = _lin_sd(alone)
+        # an ambient the newest readings cannot bound (a few readings) cannot be tested
+        return sd_new is None or _agrees(old.ambient, _lin_sd(old), alone.ambient, sd_new)
+    if kw.get("ambient_sd", 0.0) > 0:
+        # a given ambient holds for the newest readings; the older ones must have followed it too
+        return abs(old.ambient - kw["ambient"]) <= CARRY_Z * kw["ambient_sd"]
+    return True
 
 
 def _cycling(fc: Forecast, tt, yy, thr, noise_sd, limit) -> Forecast:

@@ -150,17 +150,17 @@ def oldest_regime_end(t: np.ndarray, y: np.ndarray, noise_sd: float, reg: Regime
     return end if end >= min_points else 0
 
 
-def newest_start(t: np.ndarray, y: np.ndarray, before: Callable[[np.ndarray], np.ndarray],
-                 k: float, ambient: float, i0: int, min_tail: int = 4) -> int:
-    """Where the newest regime starts, when the load keeps its k and ambient across a
-    disturbance (a door opened and closed again) that began after reading i0.
+def split_disturbance(t: np.ndarray, y: np.ndarray, before: Callable[[np.ndarray], np.ndarray],
+                      k: float, ambient: float, i0: int, min_tail: int = 4) -> tuple[int, int]:
+    """Where a disturbance that began after reading i0 starts (c1) and where the newest regime
+    starts (j), when the load keeps its k and ambient across it (a door opened, closed again).
 
     Three pieces from i0 on, each a lumped curve with the same k: the older curve ``before`` (the
     fit of the readings before i0, no parameter free) up to c1; the disturbance from c1 to j,
     toward its own ambient (both levels free); the newest regime from j, toward ``ambient`` (its
     start free).  (c1, j) minimise the sum of the three RSS, by prefix sums over all pairs.  A
-    reading too many given to the disturbance costs little, so the split errs late if at all,
-    which only drops a reading from the newest fit.
+    reading too many given to the disturbance costs little, so the splits err toward a longer
+    disturbance, which only drops a reading or two from the fits on either side.
     """
     n = t.size
     tt, yy = t[i0:], y[i0:]
@@ -179,8 +179,10 @@ def newest_start(t: np.ndarray, y: np.ndarray, before: Callable[[np.ndarray], np
     total = R_old[c] + R_door + R_tail[j]
     valid = (j >= c) & (j <= m - min_tail)
     total = np.where(valid, total, np.inf)
-    _, jb = np.unravel_index(int(np.argmin(total)), total.shape)
-    return i0 + int(jb) if n - (i0 + int(jb)) >= min_tail else i0
+    cb, jb = np.unravel_index(int(np.argmin(total)), total.shape)
+    if n - (i0 + int(jb)) < min_tail:
+        return i0, i0
+    return i0 + int(cb), i0 + int(jb)
 
 
 def _cum(v: np.ndarray) -> np.ndarray:
