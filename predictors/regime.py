@@ -158,54 +158,92 @@ def split_disturbance(t: np.ndarray, y: np.ndarray, before: Callable[[np.ndarray
     Three pieces from i0 on, each a lumped curve with the same k: the older curve ``before`` (the
     fit of the readings before i0, no parameter free) up to c1; the disturbance from c1 to j,
     toward its own ambient (both levels free); the newest regime from j, toward ``ambient`` (its
-    start free).  (c1, j) minimise the sum of the three RSS, by prefix sums over all pairs.  A
+    start free).  (c1, j) minimise the sum of the three RSS (prefix sums, see _best_pair).  A
     reading too many given to the disturbance costs little, so the splits err toward a longer
     disturbance, which only drops a reading or two from the fits on either side.
     """
     n = t.size
     tt, yy = t[i0:], y[i0:]
     m = tt.size
-    e = np.exp(-k * (tt - tt[0]))
-    r = yy - ambient
-
-    old_r = yy - before(tt)
-    R_old = _cum(old_r * old_r)  # R_old[c] = RSS of the older curve on [0, c)
-    # the newest regime on [j, m): r = b e, b free
-    Srr, Sre, See = (_cum(v[::-1])[::-1] for v in (r * r, r * e, e * e))
-    R_tail = Srr - np.divide(Sre**2, See, out=np.zeros_like(See), where=See > 0)
-    c = np.arange(m + 1)[:, None]
-    j = np.arange(m + 1)[None, :]
-    R_door = _two_level_rss(tt, yy, e)
-    total = R_old[c] + R_door + R_tail[j]
-    valid = (j >= c) & (j <= m - min_tail)
-    total = np.where(valid, total, np.inf)
-    cb, jb = np.unravel_index(int(np.argmin(total)), total.shape)
-    if n - (i0 + int(jb)) < min_tail:
+    if m < min_tail:
         return i0, i0
-    return i0 + int(cb), i0 + int(jb)
+    e = np.exp(-k * (tt - tt[0]))
+    old_r = yy - before(tt)
+    r_old = _cum(old_r * old_r)  # r_old[c] = RSS of the older curve on [0, c)
+    r_tail = _one_level_suffix(yy - ambient, e)
+    door = _two_level_rss(yy, e)
+    cb, jb, _ = _best_pair(lambda c, j: r_old[c] + door(c, j) + r_tail[j], 0, m - min_tail,
+                           m - min_tail)
+    if n - (i0 + jb) < min_tail:
+        return i0, i0
+    return i0 + cb, i0 + jb
 
 
 def _cum(v: np.ndarray) -> np.ndarray:
     return np.concatenate([[0.0], np.cumsum(v)])
 
 
-def _two_level_rss(tt: np.ndarray, yy: np.ndarray, e: np.ndarray) -> np.ndarray:
-    """RSS of y = p + q e (both free) on every slice [c, j), a matrix by prefix sums; zero
-    where two readings or fewer (an exact fit)."""
-    m = tt.size
-    S1, Se, Se2, Sy, Sye, Syy = (_cum(v) for v in (np.ones(m), e, e * e, yy, yy * e, yy * yy))
-    c = np.arange(m + 1)[:, None]
-    j = np.arange(m + 1)[None, :]
-    n_ = S1[j] - S1[c]
-    se, se2 = Se[j] - Se[c], Se2[j] - Se2[c]
-    sy, sye, syy = Sy[j] - Sy[c], Sye[j] - Sye[c], Syy[j] - Syy[c]
-    det = n_ * se2 - se * se
-    with np.errstate(divide="ignore", invalid="ignore"):
-        p = (se2 * sy - se * sye) / det
-        q = (n_ * sye - se * sy) / det
-        r = syy - p * sy - q * sye
-    return np.where((n_ >= 3) & (det > 1e-12 * np.maximum(n_ * se2, 1e-300)),
-                    np.maximum(r, 0.0), 0.0)
+def _one_level_suffix(r: np.ndarray, e: np.ndarray) -> np.ndarray:
+    """RSS of r = b e (b free) on every suffix [j, m), for j = 0..m."""
+    srr, sre, see = (_cum(v[::-1])[::-1] for v in (r * r, r * e, e * e))
+    return srr - np.divide(sre**2, see, out=np.zeros_like(see), where=see > 0)
+
+
+def _one_level_prefix(r: np.ndarray, e: np.ndarray) -> np.ndarray:
+    """RSS of r = b e (b free) on every prefix [0, c), for c = 0..m."""
+    prr, pre, pee = _cum(r * r), _cum(r * e), _cum(e * e)
+    return prr - np.divide(pre**2, pee, out=np.zeros_like(pee), where=pee > 0)
+
+
+def _two_level_rss(yy: np.ndarray, e: np.ndarray) -> Callable[[np.ndarray, np.ndarray], np.ndarray]:
+    """RSS of y = p + q e (both free) on slices [c, j), by prefix sums: a function of index
+    arrays c (column) and j (row) giving the matrix; zero where two readings or fewer (an exact
+    fit)."""
+    S1, Se, Se2, Sy, Sye, Syy = (_cum(v) for v in (np.ones(yy.size), e, e * e, yy, yy * e,
+                                                   yy * yy))
+
+    def rss(c: np.ndarray, j: np.ndarray) -> np.ndarray:
+        n_ = S1[j] - S1[c]
+        se, se2 = Se[j] - Se[c], Se2[j] - Se2[c]
+        sy, sye, syy = Sy[j] - Sy[c], Sye[j] - Sye[c], Syy[j] - Syy[c]
+        det = n_ * se2 - se * se
+        with np.errstate(divide="ignore", invalid="ignore"):
+            p = (se2 * sy - se * sye) / det
+            q = (n_ * sye - se * sy) / det
+            r = syy - p * sy - q * sye
+        return np.where((n_ >= 3) & (det > 1e-12 * np.maximum(n_ * se2, 1e-300)),
+                        np.maximum(r, 0.0), 0.0)
+
+    return rss
+
+
+PAIR_GRID = 120  # candidates per side in the coarse pass: memory and time stay O(PAIR_GRID^2)
+
+
+def _best_pair(total: Callable[[np.ndarray, np.ndarray], np.ndarray], c_lo: int, c_hi: int,
+               j_hi: int) -> tuple[int, int, float]:
+    """(c, j) with c_lo <= c <= j <= j_hi, c <= c_hi, minimising total(c, j) (vectorised over
+    index arrays).  Long windows: a coarse grid of PAIR_GRID candidates a side, then every index
+    within one grid step of the coarse best, so cost stays bounded where a full matrix would
+    not (3,000 readings: 9 million pairs)."""
+    if c_hi < c_lo or j_hi < c_lo:
+        return c_lo, c_lo, math.inf
+
+    def search(cs: np.ndarray, js: np.ndarray) -> tuple[int, int, float]:
+        c, j = cs[:, None], js[None, :]
+        tot = np.where(j >= c, total(c, j), np.inf)
+        a, b = np.unravel_index(int(np.argmin(tot)), tot.shape)
+        return int(cs[a]), int(js[b]), float(tot[a, b])
+
+    step = max(1, math.ceil((j_hi - c_lo + 1) / PAIR_GRID))
+    cs = np.unique(np.append(np.arange(c_lo, c_hi + 1, step), c_hi))
+    js = np.unique(np.append(np.arange(c_lo, j_hi + 1, step), j_hi))
+    c0, j0, best = search(cs, js)
+    if step == 1:
+        return c0, j0, best
+    cs = np.arange(max(c_lo, c0 - step), min(c_hi, c0 + step) + 1)
+    js = np.arange(max(c_lo, j0 - step), min(j_hi, j0 + step) + 1)
+    return search(cs, js)
 
 
 @dataclass
@@ -234,16 +272,10 @@ def find_door(t: np.ndarray, y: np.ndarray, k: float, ambient: float, rss_single
         return Door(False, 0, 0, 0.0)
     e = np.exp(-k * (t - t[0]))
     r = y - ambient
-    Prr, Pre, Pee = _cum(r * r), _cum(r * e), _cum(e * e)
-    r_pre = Prr - np.divide(Pre**2, Pee, out=np.zeros_like(Pee), where=Pee > 0)
-    Srr, Sre, See = (_cum(v[::-1])[::-1] for v in (r * r, r * e, e * e))
-    r_suf = Srr - np.divide(Sre**2, See, out=np.zeros_like(See), where=See > 0)
-    c = np.arange(m + 1)[:, None]
-    j = np.arange(m + 1)[None, :]
-    total = r_pre[c] + _two_level_rss(t, y, e) + r_suf[j]
-    total = np.where((j >= c) & (c >= min_side) & (j <= m - min_tail), total, np.inf)
-    ci, ji = np.unravel_index(int(np.argmin(total)), total.shape)
-    best = float(total[ci, ji])
+    r_pre, r_suf = _one_level_prefix(r, e), _one_level_suffix(r, e)
+    door = _two_level_rss(y, e)
+    ci, ji, best = _best_pair(lambda c, j: r_pre[c] + door(c, j) + r_suf[j], min_side,
+                              m - min_tail, m - min_tail)
     s2 = max(best / max(m - 7, 1), 1e-18)
     stat = (rss_single - best) / s2
-    return Door(bool(stat >= 5 * math.log(m) + 12.0), int(ci), int(ji), float(stat))
+    return Door(bool(stat >= 5 * math.log(m) + 12.0), ci, ji, float(stat))
