@@ -28,7 +28,13 @@ from thermeta.predictors.measured import (
     steady_air,
 )
 from thermeta.predictors.prior import Prior
-from thermeta.predictors.regime import MIN_REGIME_POINTS, find_door, find_regime, oldest_regime_end, split_disturbance
+from thermeta.predictors.regime import (
+    MIN_REGIME_POINTS,
+    find_door,
+    find_regime,
+    oldest_regime_end,
+    split_disturbance,
+)
 from thermeta.predictors.result import Forecast
 
 MODELS = ("lumped", "slab", "cylinder", "sphere", "auto")
@@ -183,9 +189,9 @@ def _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit=None, detec
         # the learned ambient is a Gaussian prior, the same penalty as a given one
         kw["ambient"], kw["ambient_sd"] = a_prior
     fit = fit_lumped(tt, yy, thr, **kw)
-    if before is not None:
-        kw, fit, tt, yy = _carry_before(fc, fit, kw, before, tt, yy, thr)
-        k_prior = kw.get("k_prior", k_prior)
+    carried = _carry_before(fc, fit, kw, before, tt, yy, thr) if before is not None else None
+    if carried is not None:
+        kw, fit, tt, yy = carried
     if fit.ok:
         # robust refit: drop what the first fit calls far off (beyond the Hampel pre-filter)
         out = residual_outliers(fit.residuals, 4.0,
@@ -198,7 +204,8 @@ def _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit=None, detec
         fc.ok, fc.reason = False, fit.reason
         return fc
     _fill_lumped(fc, fit, ambient, amb_sd)
-    if k_prior is not None and prior is not None and before is None:
+    if k_prior is not None and carried is None:
+        # (carried: the older readings' fit already folded the learned prior into its k)
         _note_prior(fc, prior, k_prior, a_prior)
     return fc
 
@@ -287,13 +294,14 @@ def _carry_before(fc: Forecast, fit: LumpedFit, kw: dict, before, tt, yy, thr):
     as older readings that did not follow a given ambient: then the newest readings stand alone,
     as found by the blind search.  Only k is carried: the older fit's ambient is correlated with
     its k, and the two carried as independent priors made intervals too narrow in trials.
-    Returns the keyword arguments, the fit and the readings to go on with.
+    Returns the keyword arguments, the fit and the readings to go on with, or None (the
+    newest regime's own fit stands).
     """
     t_all, y_all, end, cut = before
     old, j = _older_fit(t_all, y_all, end, thr, kw)
     sd_k = _log_sd(old.k_lo, old.k_hi, old.k_per_s) if old.ok else None
     if sd_k is None or not fit.ok:
-        return kw, fit, tt, yy
+        return None
     t_new, y_new = t_all[j:], y_all[j:]
     # the default plausible range of the ambient scales with the readings' spread, which a few
     # readings after the change understate: take the older readings' range
@@ -303,11 +311,11 @@ def _carry_before(fc: Forecast, fit: LumpedFit, kw: dict, before, tt, yy, thr):
         if cut:
             fc.warnings.append("the readings before the change follow another curve (k or "
                                "ambient differ); they are not used")
-        return kw, fit, tt, yy
+        return None
     new_kw["k_prior"] = (math.log(old.k_per_s), sd_k)
     joint = fit_lumped(t_new, y_new, thr, **new_kw)
     if not joint.ok:
-        return kw, fit, tt, yy
+        return None
     fc.warnings[:] = [w for w in fc.warnings if not w.startswith("the surroundings changed")]
     fc.warnings.append(
         f"the surroundings changed and came back: the {old.n} readings before the change agree "
