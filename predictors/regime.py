@@ -10,6 +10,11 @@ bends the curve: dT/dt = -k (T - Ta) jumps with Ta.  One lumped curve then fits 
    than the usual runs (the unit stopped cycling);
 3. otherwise binary segmentation on the tail: the split that lowers the RSS of two lumped fits the
    most, kept when the gain beats a BIC-style penalty; repeated on the part after the split.
+
+A door opened and closed again is a change that leaves the load's k and the ambient as they were:
+find_door sees one too short for step 3 (a few minutes of readings), split_disturbance places its
+start and end with the older curve's k, and the forecast (predictors.forecast._carry_before)
+carries k from the readings before into the newest regime's fit when the two agree.
 """
 
 from __future__ import annotations
