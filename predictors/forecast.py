@@ -28,7 +28,13 @@ from thermeta.predictors.measured import (
     steady_air,
 )
 from thermeta.predictors.prior import Prior
-from thermeta.predictors.regime import find_regime
+from thermeta.predictors.regime import (
+    MIN_REGIME_POINTS,
+    find_door,
+    find_regime,
+    oldest_regime_end,
+    split_disturbance,
+)
 from thermeta.predictors.result import Forecast
 
 MODELS = ("lumped", "slab", "cylinder", "sphere", "auto")
@@ -127,7 +133,7 @@ def _forecast(fc, t, y, thr, model, ambient, ambient_t, ambient_y, window_s, min
     if tt.size < min_points:
         fc.ok, fc.reason = False, f"too few readings to fit ({tt.size} < {min_points})"
         return fc
-    air = None
+    air, before = None, None
     if fc.ambient_mode == "measured":
         air = clean(np.asarray(ambient_t, float), np.asarray(ambient_y, float))
         if air.t.size < 4:
@@ -147,8 +153,15 @@ def _forecast(fc, t, y, thr, model, ambient, ambient_t, ambient_y, window_s, min
             fc.warnings.append(
                 f"the surroundings changed {reg.n_changes} time(s); fitted the newest "
                 f"{tt.size - reg.start_index} readings only")
+            end = oldest_regime_end(tt, yy, cl.noise_sd, reg, min_points=max(12, min_points))
+            if end:
+                before = (tt, yy, end, True)
             tt, yy = tt[reg.start_index:], yy[reg.start_index:]
             fc.regime_start = float(tt[0])
+        elif not reg.cycling:
+            end = _short_door(tt, yy, max(12, min_points))
+            if end:
+                before = (tt, yy, end, False)
     if prior is not None and prior.n_episodes and (model in CONDUCTION or air is not None):
         fc.warnings.append("the learned prior is used by the lumped model with a fitted or "
                            "given ambient only; not here")
@@ -157,11 +170,11 @@ def _forecast(fc, t, y, thr, model, ambient, ambient_t, ambient_y, window_s, min
     if model == "auto":
         return _auto(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, prior)
     return _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, detect, min_points,
-                   prior)
+                   prior, before)
 
 
 def _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit=None, detect=True,
-            min_points=8, prior=None) -> Forecast:
+            min_points=8, prior=None, before=None) -> Forecast:
     fc.model = "lumped" if fc.model != "auto" else fc.model
     fc.lag_factor_j = 1.0
     if air is not None:
@@ -176,6 +189,9 @@ def _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit=None, detec
         # the learned ambient is a Gaussian prior, the same penalty as a given one
         kw["ambient"], kw["ambient_sd"] = a_prior
     fit = fit_lumped(tt, yy, thr, **kw)
+    carried = _carry_before(fc, fit, kw, before, tt, yy, thr) if before is not None else None
+    if carried is not None:
+        kw, fit, tt, yy = carried
     if fit.ok:
         # robust refit: drop what the first fit calls far off (beyond the Hampel pre-filter)
         out = residual_outliers(fit.residuals, 4.0,
@@ -188,9 +204,143 @@ def _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit=None, detec
         fc.ok, fc.reason = False, fit.reason
         return fc
     _fill_lumped(fc, fit, ambient, amb_sd)
-    if k_prior is not None:
+    if k_prior is not None and carried is None:
+        # (carried: the older readings' fit already folded the learned prior into its k)
         _note_prior(fc, prior, k_prior, a_prior)
     return fc
+
+
+def _short_door(tt, yy, min_points: int, margin: int = 2) -> int:
+    """End of the readings before a short disturbance (regime.find_door) that the regime search
+    cannot see, or 0.  The door is first placed with the whole window's k and ambient, which it
+    biases, then again with those of the readings before it."""
+    whole = fit_lumped(tt, yy, float(yy[-1]), intervals=False)
+    if not whole.ok:
+        return 0
+    door = find_door(tt, yy, whole.k_per_s, whole.ambient, whole.rss, min_side=min_points)
+    if not door.found:
+        return 0
+    pre = fit_lumped(tt[:door.c1], yy[:door.c1], float(yy[-1]), intervals=False)
+    if pre.ok:
+        again = find_door(tt, yy, pre.k_per_s, pre.ambient, whole.rss, min_side=min_points)
+        if again.found:
+            door = again
+    end = door.c1 - margin
+    return end if end >= min_points else 0
+
+
+Z90 = 1.6449  # the two-sided 90 % point of the normal: a 90 % interval spans 2 Z90 sd
+CARRY_Z = 3.0  # |z| beyond this: the newest readings contradict the older regime's value
+
+
+def _log_sd(lo, hi, est) -> float | None:
+    """The sd of ln(value) from a 90 % interval; None when an end is open."""
+    if lo is None or hi is None or not lo > 0 or not hi > lo or not est > 0:
+        return None
+    return (math.log(hi) - math.log(lo)) / (2 * Z90)
+
+
+def _lin_sd(fit: LumpedFit) -> float | None:
+    """The sd of the fitted ambient from its 90 % interval; None when it reaches the bounds."""
+    lo, hi = fit.ambient_lo, fit.ambient_hi
+    if lo is None or hi is None or not hi > lo:
+        return None
+    if lo <= fit.bounds[0] + 1e-9 or hi >= fit.bounds[1] - 1e-9:
+        return None
+    return (hi - lo) / (2 * Z90)
+
+
+def _agrees(a: float, sd_a: float | None, b: float, sd_b: float | None) -> bool:
+    """|a - b| <= CARRY_Z combined sd; a missing sd of the newest fit means it cannot tell."""
+    if sd_b is None:
+        return True
+    return abs(a - b) <= CARRY_Z * math.hypot(sd_a or 0.0, sd_b)
+
+
+def _older_fit(t_all, y_all, end: int, thr: float, kw: dict, margin: int = 2):
+    """The fit of the readings before a disturbance, and where the newest regime starts.
+
+    The searches place the disturbance's start only roughly (often a few readings late, and
+    a few of its readings bias the older fit), so it is placed again with the older curve itself
+    (regime.split_disturbance, searching from a third of the way back), and the older readings
+    end ``margin`` readings before it.
+    """
+    floor = MIN_REGIME_POINTS
+    old = fit_lumped(t_all[:end], y_all[:end], thr, **kw)
+    j = end
+    for _ in range(2):
+        if not old.ok:
+            break
+        i0 = max(floor, end - end // 3)
+        c1, j = split_disturbance(t_all, y_all, old.curve, old.k_per_s, old.ambient, i0)
+        if c1 - margin >= end or c1 - margin < floor:
+            break
+        end = c1 - margin
+        old = fit_lumped(t_all[:end], y_all[:end], thr, **kw)
+    return old, max(j, end)
+
+
+def _carry_before(fc: Forecast, fit: LumpedFit, kw: dict, before, tt, yy, thr):
+    """Carry k from the readings before a change into the newest regime's fit, as a Gaussian
+    prior on ln k, when the two agree.
+
+    A door opened and closed again changes neither the load's k nor, once shut, the ambient:
+    Newton's law is memoryless, so the load goes on along the same k and ambient from a new start.
+    The readings before the door then hold most of what is known of k, and with k known the
+    newest regime is located to a reading or two (regime.split_disturbance) instead of to the
+    dozen readings the blind search needs.  A real change of the surroundings (chiller water
+    switched, a new set point) shows as a newest fit whose k or fitted ambient lies beyond CARRY_Z
+    combined sd of the older one, as too few readings after the located start to fit at all, or
+    as older readings that did not follow a given ambient: then the newest readings stand alone,
+    as found by the blind search.  Only k is carried: the older fit's ambient is correlated with
+    its k, and the two carried as independent priors made intervals too narrow in trials.
+    Returns the keyword arguments, the fit and the readings to go on with, or None (the
+    newest regime's own fit stands).
+    """
+    t_all, y_all, end, cut = before
+    old, j = _older_fit(t_all, y_all, end, thr, kw)
+    sd_k = _log_sd(old.k_lo, old.k_hi, old.k_per_s) if old.ok else None
+    if sd_k is None or not fit.ok:
+        return None
+    t_new, y_new = t_all[j:], y_all[j:]
+    # the default plausible range of the ambient scales with the readings' spread, which a few
+    # readings after the change understate: take the older readings' range
+    new_kw = dict(kw, bounds=kw.get("bounds") or old.bounds)
+    alone = fit_lumped(t_new, y_new, thr, **new_kw)
+    if not _carry_agrees(old, sd_k, alone, kw):
+        if cut:
+            fc.warnings.append("the readings before the change follow another curve (k or "
+                               "ambient differ); they are not used")
+        return None
+    new_kw["k_prior"] = (math.log(old.k_per_s), sd_k)
+    joint = fit_lumped(t_new, y_new, thr, **new_kw)
+    if not joint.ok:
+        return None
+    fc.warnings[:] = [w for w in fc.warnings if not w.startswith("the surroundings changed")]
+    fc.warnings.append(
+        f"the surroundings changed and came back: the {old.n} readings before the change agree "
+        f"with the newest {t_new.size}, so their time constant (about "
+        f"{1 / old.k_per_s / 3600:.3g} h, as a prior) is carried into the newest fit")
+    fc.regime_start = float(t_new[0])
+    return new_kw, joint, t_new, y_new
+
+
+def _carry_agrees(old: LumpedFit, sd_k: float, alone: LumpedFit, kw: dict) -> bool:
+    """Whether the newest readings, fitted on their own, go on along the older curve's k and
+    ambient (see _carry_before)."""
+    if not alone.ok:
+        return False  # too few readings after the located start: the older curve does not go on
+    if not _agrees(math.log(old.k_per_s), sd_k, math.log(alone.k_per_s),
+                   _log_sd(alone.k_lo, alone.k_hi, alone.k_per_s)):
+        return False
+    if kw.get("ambient") is None:
+        sd_new = _lin_sd(alone)
+        # an ambient the newest readings cannot bound (a few readings) cannot be tested
+        return sd_new is None or _agrees(old.ambient, _lin_sd(old), alone.ambient, sd_new)
+    if kw.get("ambient_sd", 0.0) > 0:
+        # a given ambient holds for the newest readings; the older ones must have followed it too
+        return abs(old.ambient - kw["ambient"]) <= CARRY_Z * kw["ambient_sd"]
+    return True
 
 
 def _cycling(fc: Forecast, tt, yy, thr, noise_sd, limit) -> Forecast:

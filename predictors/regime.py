@@ -10,13 +10,18 @@ bends the curve: dT/dt = -k (T - Ta) jumps with Ta.  One lumped curve then fits 
    than the usual runs (the unit stopped cycling);
 3. otherwise binary segmentation on the tail: the split that lowers the RSS of two lumped fits the
    most, kept when the gain beats a BIC-style penalty; repeated on the part after the split.
+
+A door opened and closed again is a change that leaves the load's k and the ambient as they were:
+find_door sees one too short for step 3 (a few minutes of readings), split_disturbance places its
+start and end with the older curve's k, and the forecast (predictors.forecast._carry_before)
+carries k from the readings before into the newest regime's fit when the two agree.
 """
 
 from __future__ import annotations
 
 import math
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 from thermeta.predictors.lumped import fit_lumped, quick_rss
@@ -31,6 +36,7 @@ class Regime:
     n_changes: int
     cycling: bool
     note: str | None = None
+    changes: list[int] = field(default_factory=list)  # indices of the cuts found, oldest first
 
 
 def _rss(t: np.ndarray, y: np.ndarray) -> float:
@@ -98,7 +104,7 @@ def find_regime(t: np.ndarray, y: np.ndarray, noise_sd: float, *, min_points: in
             return Regime(0, len(runs) - 1, True, "the readings cycle (a thermostat?); fitted the whole window")
         return Regime(max(runs[-2][1], 0), len(runs) - 1, True,
                       "the readings stopped cycling; fitted the newest run only")
-    start, changes = 0, 0
+    start, changes, cuts = 0, 0, []
     while changes < max_changes and n - start >= 2 * min_points:
         m = n - start
         cands = start + np.unique(np.linspace(min_points, m - min_points, 14).astype(int))
@@ -122,4 +128,159 @@ def find_regime(t: np.ndarray, y: np.ndarray, noise_sd: float, *, min_points: in
             break
         start = j_best
         changes += 1
-    return Regime(start, changes, False)
+        cuts.append(j_best)
+    return Regime(start, changes, False, changes=cuts)
+
+
+def oldest_regime_end(t: np.ndarray, y: np.ndarray, noise_sd: float, reg: Regime, *,
+                      min_points: int = MIN_REGIME_POINTS, margin: int = 2) -> int:
+    """End index (exclusive) of the readings before the first change, or 0 if too few.
+
+    The first cut may fall anywhere inside a short disturbance (a door open a few minutes holds
+    fewer readings than a regime needs), so the part before it is searched again until one curve
+    explains it; ``margin`` readings are dropped before the cut, which is only located to within
+    a reading or two.
+    """
+    if not reg.changes:
+        return 0
+    end = reg.changes[0]
+    for _ in range(4):
+        inner = find_regime(t[:end], y[:end], noise_sd, min_points=min_points)
+        if inner.cycling:
+            return 0
+        if not inner.changes:
+            break
+        end = inner.changes[0]
+    end -= margin
+    return end if end >= min_points else 0
+
+
+def split_disturbance(t: np.ndarray, y: np.ndarray, before: Callable[[np.ndarray], np.ndarray],
+                      k: float, ambient: float, i0: int, min_tail: int = 4) -> tuple[int, int]:
+    """Where a disturbance that began after reading i0 starts (c1) and where the newest regime
+    starts (j), when the load keeps its k and ambient across it (a door opened, closed again).
+
+    Three pieces from i0 on, each a lumped curve with the same k: the older curve ``before`` (the
+    fit of the readings before i0, no parameter free) up to c1; the disturbance from c1 to j,
+    toward its own ambient (both levels free); the newest regime from j, toward ``ambient`` (its
+    start free).  (c1, j) minimise the sum of the three RSS (prefix sums, see _best_pair).  A
+    reading too many given to the disturbance costs little, so the splits err toward a longer
+    disturbance, which only drops a reading or two from the fits on either side.
+    """
+    n = t.size
+    tt, yy = t[i0:], y[i0:]
+    m = tt.size
+    if m < min_tail:
+        return i0, i0
+    e = np.exp(-k * (tt - tt[0]))
+    old_r = yy - before(tt)
+    r_old = _cum(old_r * old_r)  # r_old[c] = RSS of the older curve on [0, c)
+    r_tail = _one_level_suffix(yy - ambient, e)
+    door = _two_level_rss(yy, e)
+    cb, jb, _ = _best_pair(lambda c, j: r_old[c] + door(c, j) + r_tail[j], 0, m - min_tail,
+                           m - min_tail)
+    if n - (i0 + jb) < min_tail:
+        return i0, i0
+    return i0 + cb, i0 + jb
+
+
+def _cum(v: np.ndarray) -> np.ndarray:
+    return np.concatenate([[0.0], np.cumsum(v)])
+
+
+def _one_level_suffix(r: np.ndarray, e: np.ndarray) -> np.ndarray:
+    """RSS of r = b e (b free) on every suffix [j, m), for j = 0..m."""
+    srr, sre, see = (_cum(v[::-1])[::-1] for v in (r * r, r * e, e * e))
+    return srr - np.divide(sre**2, see, out=np.zeros_like(see), where=see > 0)
+
+
+def _one_level_prefix(r: np.ndarray, e: np.ndarray) -> np.ndarray:
+    """RSS of r = b e (b free) on every prefix [0, c), for c = 0..m."""
+    prr, pre, pee = _cum(r * r), _cum(r * e), _cum(e * e)
+    return prr - np.divide(pre**2, pee, out=np.zeros_like(pee), where=pee > 0)
+
+
+def _two_level_rss(yy: np.ndarray, e: np.ndarray) -> Callable[[np.ndarray, np.ndarray], np.ndarray]:
+    """RSS of y = p + q e (both free) on slices [c, j), by prefix sums: a function of index
+    arrays c (column) and j (row) giving the matrix; zero where two readings or fewer (an exact
+    fit)."""
+    S1, Se, Se2, Sy, Sye, Syy = (_cum(v) for v in (np.ones(yy.size), e, e * e, yy, yy * e,
+                                                   yy * yy))
+
+    def rss(c: np.ndarray, j: np.ndarray) -> np.ndarray:
+        n_ = S1[j] - S1[c]
+        se, se2 = Se[j] - Se[c], Se2[j] - Se2[c]
+        sy, sye, syy = Sy[j] - Sy[c], Sye[j] - Sye[c], Syy[j] - Syy[c]
+        det = n_ * se2 - se * se
+        with np.errstate(divide="ignore", invalid="ignore"):
+            p = (se2 * sy - se * sye) / det
+            q = (n_ * sye - se * sy) / det
+            r = syy - p * sy - q * sye
+        return np.where((n_ >= 3) & (det > 1e-12 * np.maximum(n_ * se2, 1e-300)),
+                        np.maximum(r, 0.0), 0.0)
+
+    return rss
+
+
+PAIR_GRID = 120  # candidates per side in the coarse pass: memory and time stay O(PAIR_GRID^2)
+
+
+def _best_pair(total: Callable[[np.ndarray, np.ndarray], np.ndarray], c_lo: int, c_hi: int,
+               j_hi: int) -> tuple[int, int, float]:
+    """(c, j) with c_lo <= c <= j <= j_hi, c <= c_hi, minimising total(c, j) (vectorised over
+    index arrays).  Long windows: a coarse grid of PAIR_GRID candidates a side, then every index
+    within one grid step of the coarse best, so cost stays bounded where a full matrix would
+    not (3,000 readings: 9 million pairs)."""
+    if c_hi < c_lo or j_hi < c_lo:
+        return c_lo, c_lo, math.inf
+
+    def search(cs: np.ndarray, js: np.ndarray) -> tuple[int, int, float]:
+        c, j = cs[:, None], js[None, :]
+        tot = np.where(j >= c, total(c, j), np.inf)
+        a, b = np.unravel_index(int(np.argmin(tot)), tot.shape)
+        return int(cs[a]), int(js[b]), float(tot[a, b])
+
+    step = max(1, math.ceil((j_hi - c_lo + 1) / PAIR_GRID))
+    cs = np.unique(np.append(np.arange(c_lo, c_hi + 1, step), c_hi))
+    js = np.unique(np.append(np.arange(c_lo, j_hi + 1, step), j_hi))
+    c0, j0, best = search(cs, js)
+    if step == 1:
+        return c0, j0, best
+    cs = np.arange(max(c_lo, c0 - step), min(c_hi, c0 + step) + 1)
+    js = np.arange(max(c_lo, j0 - step), min(j_hi, j0 + step) + 1)
+    return search(cs, js)
+
+
+@dataclass
+class Door:
+    """A disturbance between readings c1 and j that left k and the ambient as they were."""
+
+    found: bool
+    c1: int
+    j: int
+    stat: float
+
+
+def find_door(t: np.ndarray, y: np.ndarray, k: float, ambient: float, rss_single: float, *,
+              min_side: int = 8, min_tail: int = 4) -> Door:
+    """A short disturbance (a door opened, then closed) inside the window, too short for the
+    regime search (whose pieces need a dozen readings each).
+
+    Model: before c1 and from j on, curves with the given k toward the given ambient (each its
+    own start); between, a curve with the same k toward its own ambient.  Kept when the RSS gain
+    over one curve (rss_single), in units of the model's residual variance, beats a BIC-style
+    penalty for its five more parameters (two levels, two instants, one start) with the regime
+    search's margin of 12.
+    """
+    m = t.size
+    if m < min_side + min_tail + 3:
+        return Door(False, 0, 0, 0.0)
+    e = np.exp(-k * (t - t[0]))
+    r = y - ambient
+    r_pre, r_suf = _one_level_prefix(r, e), _one_level_suffix(r, e)
+    door = _two_level_rss(y, e)
+    ci, ji, best = _best_pair(lambda c, j: r_pre[c] + door(c, j) + r_suf[j], min_side,
+                              m - min_tail, m - min_tail)
+    s2 = max(best / max(m - 7, 1), 1e-18)
+    stat = (rss_single - best) / s2
+    return Door(bool(stat >= 5 * math.log(m) + 12.0), ci, ji, float(stat))
