@@ -26,6 +26,7 @@ from thermeta.predictors.measured import (
     fit_air,
     fit_measured,
     held_air,
+    straight_air,
     measured_rss,
     steady_air,
 )
@@ -367,16 +368,7 @@ def _measured(fc, tt, yy, thr, air, limit=None, detect=True, noise_sd=0.0,
         a_fit = fit_air(at[reg.start_index:], ay[reg.start_index:], air.noise_sd)
     spread = None
     few_air = isinstance(a_fit, FewAir)
-    straight = few_air and a_fit.straight
-    if straight:
-        fc.warnings.append(
-            f"only {at.size} ambient readings: the ambient's straight trend is extrapolated (it "
-            "may level off sooner, so the crossing is early and the interval's late end open)")
-    elif few_air:
-        fc.warnings.append(
-            f"only {at.size} ambient readings: the ambient's curve through them is extrapolated, "
-            "their scatter assumed; the interval is wide for that")
-    elif a_fit.ok and not air_identified(a_fit):
+    if not few_air and a_fit.ok and not air_identified(a_fit):
         # where the air is heading is not clear yet (a short stretch, an off-cycle): the air held
         # at its present level decides whether a crossing is forecast at all; its time is then
         # the median over the fitted trend's doubt, which the interval keeps too
@@ -385,6 +377,13 @@ def _measured(fc, tt, yy, thr, air, limit=None, detect=True, noise_sd=0.0,
                            "and a crossing that holds then is forecast at the median of the "
                            "ambient fit's spread")
     fit = fit_measured(tt, yy, at, ay, thr, air_fit=a_fit, limit=limit, air_spread=spread)
+    if few_air and not a_fit.straight and fit.ok and fit.eta_s is None:
+        # a bend through four noisy air readings cannot rule a crossing out: the straight trend
+        a_fit = straight_air(at[reg.start_index:], ay[reg.start_index:], air.noise_sd)
+        fit = fit_measured(tt, yy, at, ay, thr, air_fit=a_fit, limit=limit)
+    straight = few_air and a_fit.straight
+    if few_air:
+        fc.warnings.append(_few_air_note(int(at.size), straight))
     if not fit.ok:
         fc.ok, fc.reason = False, fit.reason
         return fc
@@ -431,6 +430,14 @@ def _measured(fc, tt, yy, thr, air, limit=None, detect=True, noise_sd=0.0,
     if fc.eta_s is None:
         fc.warnings.append(never_reason(fc))
     return fc
+
+
+def _few_air_note(n_air: int, straight: bool) -> str:
+    if straight:
+        return (f"only {n_air} ambient readings: the ambient's straight trend is extrapolated (it "
+                "may level off sooner, so the crossing is early and the interval's late end open)")
+    return (f"only {n_air} ambient readings: the ambient's curve through them is extrapolated, "
+            "their scatter assumed; the interval is wide for that")
 
 
 def _conduction(fc, tt, yy, thr, shape, ambient, air, amb_sd=0.0) -> Forecast:

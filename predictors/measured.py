@@ -319,8 +319,9 @@ def thr_side(T_now: np.ndarray, thr: float) -> np.ndarray:
 
 
 class FewAir(LumpedFit):
-    """The air's curve through fewer readings than its full fit needs (few_air_curve), or with
-    two its straight trend (straight_air, ``straight`` set): used as it is, never held."""
+    """The air's curve through four readings, one fewer than its full fit needs (few_air_curve),
+    or with two or three its straight trend (straight_air, ``straight`` set): used as it is,
+    never held at its present level."""
 
 
 def straight_air(air_t: np.ndarray, air_y: np.ndarray, noise_sd: float) -> FewAir:
@@ -349,7 +350,7 @@ def straight_air(air_t: np.ndarray, air_y: np.ndarray, noise_sd: float) -> FewAi
 
 
 def few_air_curve(air_t: np.ndarray, air_y: np.ndarray, noise_sd: float) -> FewAir:
-    """The air's lumped curve through three or four readings, A = a + b e^(-ka d), by variable
+    """The air's lumped curve through four readings (one more than its parameters), A = a + b e^(-ka d), by variable
     projection on a grid of ka (then refined), with the scatter taken as at least the assumed
     one (they cannot measure it) and the covariance of (Tout, b, log ka) from the Jacobian."""
     d = air_t - air_t[0]
@@ -392,9 +393,10 @@ def few_air_curve(air_t: np.ndarray, air_y: np.ndarray, noise_sd: float) -> FewA
 def fit_air(air_t: np.ndarray, air_y: np.ndarray, noise_sd: float) -> LumpedFit:
     """The air's own lumped fit (ambient fitted), used to extrapolate it; with the covariance of
     (Tout, amplitude, log ka) from its Jacobian, cov = sigma^2 (J'J)^-1.  With fewer readings
-    than that fit needs (after a logger's gap, say), the air's straight trend (straight_air)."""
+    than that fit needs (after a logger's gap, say), few_air_curve or straight_air."""
     if 2 <= air_t.size < MIN_AIR_CURVE and air_t[-1] > air_t[0]:
-        if air_t.size >= 3:
+        if air_t.size >= MIN_AIR_CURVE - 1:
+            # (three readings would fix three parameters exactly: their noise decides the bend)
             return few_air_curve(air_t, air_y, noise_sd)
         return straight_air(air_t, air_y, noise_sd)
     fit = fit_lumped(air_t, air_y, float(air_y[-1]), noise_sd=noise_sd)
