@@ -12,6 +12,11 @@ own asymptote, Ta(x) = Tout + (A_now - Tout) e^(-ka x), and then
 
 Interval: percentiles of the crossing time over parametric draws from the covariances of both
 fits (load: T_now, log k; air: Tout, amplitude, log ka), taken as independent.
+
+Few readings (a logger's gaps): two load readings determine T0 and k against the air, their
+scatter then assumed (few.assumed_scatter); four air readings give the air's curve with an
+assumed scatter, two or three its straight trend (the early extreme; the late end open).  Across
+a gap in the air readings the air follows its own fitted curve, not a straight line.
 """
 
 from __future__ import annotations
@@ -350,9 +355,10 @@ def straight_air(air_t: np.ndarray, air_y: np.ndarray, noise_sd: float) -> FewAi
 
 
 def few_air_curve(air_t: np.ndarray, air_y: np.ndarray, noise_sd: float) -> FewAir:
-    """The air's lumped curve through four readings (one more than its parameters), A = a + b e^(-ka d), by variable
-    projection on a grid of ka (then refined), with the scatter taken as at least the assumed
-    one (they cannot measure it) and the covariance of (Tout, b, log ka) from the Jacobian."""
+    """The air's lumped curve through four readings (one more than its parameters),
+    A = a + b e^(-ka d), by variable projection on a grid of ka (then refined), with the scatter
+    taken as at least the assumed one (four readings barely measure it) and the covariance of
+    (Tout, b, log ka) from the Jacobian."""
     d = air_t - air_t[0]
     D = float(d[-1])
     spread = max(float(np.ptp(air_y)), 1e-6)
