@@ -81,8 +81,8 @@ def run(args: argparse.Namespace) -> int:
 
     try:
         series = read_series(args.csv)
-        if series.t.size < 3:
-            raise InputError(f"{args.csv}: too few readings to fit ({series.t.size}; want at least 8)")
+        if series.t.size < 2:
+            raise InputError(f"{args.csv}: too few readings to fit ({series.t.size}; want at least 2)")
         limit = args.limit
         if limit == "auto":
             # As the daemon does: a probe that starts below its threshold has an upper limit.

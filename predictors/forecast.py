@@ -18,12 +18,15 @@ from numpy.typing import ArrayLike
 from scipy.stats import t as t_dist
 from thermeta.predictors.cleaning import clean, residual_outliers
 from thermeta.predictors.cycling import cycle_trend
+from thermeta.predictors.few import assumed_scatter, known_few
 from thermeta.predictors.lumped import LumpedFit, fit_lumped
 from thermeta.predictors.measured import (
+    FewAir,
     air_identified,
     fit_air,
     fit_measured,
     held_air,
+    straight_air,
     measured_rss,
     steady_air,
 )
@@ -39,10 +42,11 @@ from thermeta.predictors.result import Forecast
 
 MODELS = ("lumped", "slab", "cylinder", "sphere", "auto")
 CONDUCTION = ("slab", "cylinder", "sphere")
+Z90 = 1.6448536269514722  # the standard normal's 95th percentile (two-sided 90 %)
 AMBIENT_UNCERTAINTY = 2.5  # a "known" ambient is typically known to a couple of degrees
 MIN_POINTS = 5  # three parameters and two degrees of freedom for the residual scatter
 MIN_POINTS_KNOWN = 4  # a given ambient is one more observation; a measured one leaves 2 parameters
-MIN_TREND_POINTS = 3  # fewer than a curve needs: a straight trend, with one degree of freedom
+MIN_FEW_POINTS = 2  # fewer than a curve fit needs: the two-reading solve, or a straight trend
 
 
 def forecast(
@@ -70,8 +74,10 @@ def forecast(
     (measured mode); neither: the ambient is fitted within ambient_bounds (default: a wide range
     around the readings).  window_s caps the history used.  min_points: the fewest readings to
     fit (default None: the fewest the model can fit with an honest interval, 4 with a given or
-    measured ambient, 5 otherwise, and with a given or fitted ambient 3 readings give a straight
-    trend with an open late end; the intervals' F(1, n - p) cut-offs widen with few readings).
+    measured ambient, 5 otherwise; below that, down to 2 readings, a given ambient gives the
+    two-reading solve and a fitted one a straight trend with an open late end, both with an
+    interval from the assumed reading scatter (:mod:`thermeta.predictors.few`); one reading is
+    "too few readings to fit"; the intervals' F(1, n - p) cut-offs widen with few readings).
     limit: "upper" (only an upward crossing counts; at or above is past), "lower", or None
     (either way; past means the curve crossed within the data).  prior: k (and, with the
     ambient fitted, the ambient) learned from past episodes of the item's class
@@ -94,7 +100,7 @@ def forecast(
         ambient = None
     mode = "measured" if measured else ("known" if ambient is not None else "fitted")
     fc = Forecast(threshold=float(threshold), model=model, ambient_mode=mode, n_points=0)
-    few_trend = min_points is None and model == "lumped" and mode != "measured"
+    few = min_points is None and model == "lumped"
     if min_points is None:
         # a given ambient is one more piece of information (the lumped fit's Gaussian prior)
         # (a measured ambient leaves the load two parameters, T0 and k)
@@ -104,14 +110,14 @@ def forecast(
         with np.errstate(all="ignore"):
             return _forecast(fc, ta, ya, float(threshold), model, ambient, ambient_t, ambient_y,
                              window_s, min_points, ambient_bounds, ambient_uncertainty,
-                             detect_regimes, limit, prior, few_trend)
+                             detect_regimes, limit, prior, few)
     except (ValueError, FloatingPointError, ArithmeticError, np.linalg.LinAlgError) as exc:
         fc.ok, fc.reason = False, f"fit failed: {exc}"
         return fc
 
 
 def _forecast(fc, t, y, thr, model, ambient, ambient_t, ambient_y, window_s, min_points, bounds,
-              amb_sd, detect, limit, prior=None, few_trend=False) -> Forecast:
+              amb_sd, detect, limit, prior=None, few=False) -> Forecast:
     cl = clean(t, y)
     tt, yy = cl.t, cl.y
     if window_s is not None and tt.size:
@@ -128,15 +134,18 @@ def _forecast(fc, t, y, thr, model, ambient, ambient_t, ambient_y, window_s, min
     fc.t_last, fc.value_now = float(tt[-1]), float(yy[-1])
     fc.n_points = int(tt.size)
     fc.regime_start = float(tt[0])
-    if few_trend and MIN_TREND_POINTS <= tt.size < min_points:
-        return _few_trend(fc, tt, yy, thr, limit, cl)
+    if few and MIN_FEW_POINTS <= tt.size < min_points:
+        if fc.ambient_mode != "measured":
+            return _few_readings(fc, tt, yy, thr, ambient, amb_sd, limit, cl)
+        # against a measured air two readings determine T0 and k; their scatter is assumed
+        min_points = MIN_FEW_POINTS
     if tt.size < min_points:
         fc.ok, fc.reason = False, f"too few readings to fit ({tt.size} < {min_points})"
         return fc
     air, before = None, None
     if fc.ambient_mode == "measured":
         air = clean(np.asarray(ambient_t, float), np.asarray(ambient_y, float))
-        if air.t.size < 4:
+        if air.t.size < (MIN_FEW_POINTS if few else 4):
             fc.ok, fc.reason = False, f"too few ambient readings ({air.t.size})"
             return fc
     # the measured air explains changes of the surroundings, so only the other modes cut regimes;
@@ -169,8 +178,14 @@ def _forecast(fc, t, y, thr, model, ambient, ambient_t, ambient_y, window_s, min
         return _conduction(fc, tt, yy, thr, model, ambient, air, amb_sd)
     if model == "auto":
         return _auto(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, prior)
-    return _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, detect, min_points,
-                   prior, before)
+    out = _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, detect, min_points,
+                  prior, before)
+    if (few and air is None and not out.ok
+            and (out.reason or "").startswith("too few readings")):
+        # the robust refit set a reading aside and left fewer than the fit needs
+        out.ok, out.reason = True, None
+        return _few_readings(out, tt, yy, thr, ambient, amb_sd, limit, cl)
+    return out
 
 
 def _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit=None, detect=True,
@@ -368,20 +383,51 @@ def _cycling(fc: Forecast, tt, yy, thr, noise_sd, limit) -> Forecast:
     return fc
 
 
-def _few_trend(fc: Forecast, tt, yy, thr, limit, cl) -> Forecast:
-    """Too few readings for a curve (the default min_points): the straight trend through them,
-    T(x) = T_now + s x, with the slope's one-sided 95 % t bound as the early end and an open late
-    end (the curve may level off; nothing here says where).  The scatter is floored by the
-    readings' noise and quantisation, which a line through three points cannot measure."""
+def _few_readings(fc: Forecast, tt, yy, thr, ambient, amb_sd, limit, cl) -> Forecast:
+    """Fewer readings than a curve fit needs: with the ambient given, the lumped curve through
+    them (two readings determine T0 and k); with it fitted, the straight trend."""
+    sigma = assumed_scatter(yy, cl.noise_sd, cl.quantum)
+    if ambient is None:
+        return _few_trend(fc, tt, yy, thr, limit, sigma)
+    fit = known_few(tt, yy, thr, float(ambient), amb_sd, sigma, limit)
+    if not fit.ok:
+        return _few_trend(fc, tt, yy, thr, limit, sigma)
+    fc.model, fc.lag_factor_j = "lumped", 1.0
+    fc.k_per_s, fc.k_lo_per_s, fc.k_hi_per_s = fit.k_per_s, fit.k_lo, fit.k_hi
+    fc.ambient = float(ambient)
+    fc.ambient_lo, fc.ambient_hi = ambient - Z90 * amb_sd, ambient + Z90 * amb_sd
+    fc.eta_s, fc.eta_lo_s, fc.eta_hi_s = fit.eta_s, fit.eta_lo_s, fit.eta_hi_s
+    fc.direction, fc.rmse = fit.direction, sigma
+    fc.interval_method = ("parametric draws over the assumed reading scatter and the given "
+                          "ambient's uncertainty")
+    fc.params = {"t_first": float(tt[0]), "amplitude": fit.value_start - float(ambient),
+                 "ambient": float(ambient), "k_per_s": fit.k_per_s,
+                 "value_fit_now": fit.value_fit_now, "n_fit": float(tt.size), "n_params": 2.0}
+    fc.warnings.append(
+        f"only {tt.size} readings: the curve toward the given ambient through them, with their "
+        f"scatter taken as {sigma:.2g} (1 sd, not measured) and the ambient as uncertain by "
+        f"{amb_sd:g}; the interval is wide for that")
+    if fc.eta_s is None:
+        fc.warnings.append(never_reason(fc))
+    return fc
+
+
+def _few_trend(fc: Forecast, tt, yy, thr, limit, sigma: float) -> Forecast:
+    """Too few readings for a curve with the ambient fitted: the straight trend through them,
+    T(x) = T_now + s x, with the slope's one-sided 95 % bound as the early end and an open late
+    end (the curve may level off; nothing here says where).  The scatter is at least ``sigma``
+    (the assumed scatter of few.assumed_scatter), which a line through two or three readings
+    cannot measure; with two readings it is all there is (a normal bound), with more a t bound
+    on the larger of it and the residuals' scatter."""
     d = tt - tt[0]
     slope, icpt = np.polyfit(d, yy, 1)
     dof = tt.size - 2
     resid = yy - (icpt + slope * d)
-    s2 = max(float(resid @ resid) / dof, cl.noise_sd**2 + cl.quantum**2 / 12.0)
+    s2 = max(float(resid @ resid) / dof, sigma**2) if dof > 0 else sigma**2
     sxx = float(np.sum((d - d.mean()) ** 2))
     se = math.sqrt(s2 / sxx) if sxx > 0 else math.inf
     now = float(icpt + slope * d[-1])
-    fc.model, fc.interval_method = "lumped", "t bound of a straight trend's slope"
+    fc.model, fc.interval_method = "lumped", "one-sided bound of a straight trend's slope"
     fc.direction = "rising" if slope > 0 else "falling"
     fc.rmse = math.sqrt(s2)
     fc.params = {"slope_per_s": float(slope), "slope_se_per_s": se, "value_fit_now": now,
@@ -395,7 +441,8 @@ def _few_trend(fc: Forecast, tt, yy, thr, limit, cl) -> Forecast:
     if slope * toward <= 0:
         fc.warnings.append(never_reason(fc))
         return fc
-    fast = slope * toward + float(t_dist.ppf(0.95, dof)) * se
+    q95 = float(t_dist.ppf(0.95, dof)) if dof > 0 else Z90
+    fast = slope * toward + q95 * se
     fc.eta_s = (thr - now) / slope  # T_now + s eta = thr
     fc.eta_lo_s, fc.eta_hi_s = abs(thr - now) / fast, None
     return fc
@@ -483,7 +530,8 @@ def _measured(fc, tt, yy, thr, air, limit=None, detect=True, noise_sd=0.0,
     else:
         a_fit = fit_air(at[reg.start_index:], ay[reg.start_index:], air.noise_sd)
     spread = None
-    if a_fit.ok and not air_identified(a_fit):
+    few_air = isinstance(a_fit, FewAir)
+    if not few_air and a_fit.ok and not air_identified(a_fit):
         # where the air is heading is not clear yet (a short stretch, an off-cycle): the air held
         # at its present level decides whether a crossing is forecast at all; its time is then
         # the median over the fitted trend's doubt, which the interval keeps too
@@ -492,6 +540,13 @@ def _measured(fc, tt, yy, thr, air, limit=None, detect=True, noise_sd=0.0,
                            "and a crossing that holds then is forecast at the median of the "
                            "ambient fit's spread")
     fit = fit_measured(tt, yy, at, ay, thr, air_fit=a_fit, limit=limit, air_spread=spread)
+    if few_air and not a_fit.straight and fit.ok and fit.eta_s is None:
+        # a bend through four noisy air readings cannot rule a crossing out: the straight trend
+        a_fit = straight_air(at[reg.start_index:], ay[reg.start_index:], air.noise_sd)
+        fit = fit_measured(tt, yy, at, ay, thr, air_fit=a_fit, limit=limit)
+    straight = few_air and a_fit.straight
+    if few_air:
+        fc.warnings.append(_few_air_note(int(at.size), straight))
     if not fit.ok:
         fc.ok, fc.reason = False, fit.reason
         return fc
@@ -513,14 +568,15 @@ def _measured(fc, tt, yy, thr, air, limit=None, detect=True, noise_sd=0.0,
                 fc.ok, fc.reason = False, fit.reason
                 return fc
     out = residual_outliers(fit.residuals, 4.0, floor=max(air.quantum, 1e-3 * float(np.ptp(yy)), 1e-9))
-    if 0 < out.sum() <= max(1, int(0.1 * tt.size)):
+    # (a refit needs readings to spare: not with fewer than a curve through a measured air needs)
+    if 0 < out.sum() <= max(1, int(0.1 * tt.size)) and tt.size - out.sum() >= MIN_POINTS_KNOWN:
         fc.n_outliers += int(out.sum())
         fit = fit_measured(tt[~out], yy[~out], at, ay, thr, air_fit=a_fit, limit=limit,
                            air_spread=spread)
     fc.k_per_s, fc.k_lo_per_s, fc.k_hi_per_s = fit.k_per_s, fit.k_lo, fit.k_hi
-    if a_fit.ok:
+    if a_fit.ok and not straight:
         fc.ambient, fc.ambient_lo, fc.ambient_hi = a_fit.ambient, a_fit.ambient_lo, a_fit.ambient_hi
-    else:
+    elif not a_fit.ok:
         fc.warnings.append(f"the ambient series could not be fitted ({a_fit.reason})")
     fc.eta_s, fc.eta_lo_s, fc.eta_hi_s = fit.eta_s, fit.eta_lo_s, fit.eta_hi_s
     fc.direction = fit.direction
@@ -532,11 +588,19 @@ def _measured(fc, tt, yy, thr, air, limit=None, detect=True, noise_sd=0.0,
     if a_fit.ok:
         fc.params.update(air_ambient=a_fit.ambient, air_k_per_s=a_fit.k_per_s,
                          air_value_now=a_fit.value_fit_now)
-    if not (reg.cycling and reg.start_index == 0) and spread is None:
+    if not (reg.cycling and reg.start_index == 0) and spread is None and not few_air:
         fc.warnings.append("ambient measured; its asymptote is fitted from the ambient readings")
     if fc.eta_s is None:
         fc.warnings.append(never_reason(fc))
     return fc
+
+
+def _few_air_note(n_air: int, straight: bool) -> str:
+    if straight:
+        return (f"only {n_air} ambient readings: the ambient's straight trend is extrapolated (it "
+                "may level off sooner, so the crossing is early and the interval's late end open)")
+    return (f"only {n_air} ambient readings: the ambient's curve through them is extrapolated, "
+            "their scatter assumed; the interval is wide for that")
 
 
 def _conduction(fc, tt, yy, thr, shape, ambient, air, amb_sd=0.0) -> Forecast:

@@ -12,6 +12,11 @@ own asymptote, Ta(x) = Tout + (A_now - Tout) e^(-ka x), and then
 
 Interval: percentiles of the crossing time over parametric draws from the covariances of both
 fits (load: T_now, log k; air: Tout, amplitude, log ka), taken as independent.
+
+Few readings (a logger's gaps): two load readings determine T0 and k against the air, their
+scatter then assumed (few.assumed_scatter); four air readings give the air's curve with an
+assumed scatter, two or three its straight trend (the early extreme; the late end open).  Across
+a gap in the air readings the air follows its own fitted curve, not a straight line.
 """
 
 from __future__ import annotations
@@ -21,11 +26,16 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy.optimize import brentq, minimize_scalar
+from thermeta.predictors.few import assumed_scatter
 from thermeta.predictors.lumped import KD_MAX, KD_MIN, LumpedFit, fit_lumped
 
 Z90 = 1.6448536269514722
 N_DRAWS = 300
 DRAW_SEED = 20_261_201  # fixed, so a forecast is a pure function of its readings
+MIN_LOAD = 2  # T0 and k: two readings against the measured air determine them
+MIN_MEASURED_SCATTER = 4  # below this the residuals cannot measure the scatter: it is assumed
+MIN_AIR_CURVE = 5  # the air's own curve has three parameters; below this its straight trend
+STRAIGHT_KD = 1e-6  # k * horizon of the air's straight trend written as a lumped curve
 
 
 def response(k: np.ndarray, s: np.ndarray, A: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -73,11 +83,13 @@ def load_after(x: np.ndarray, T_now: float, k: float, air_now: float, out: float
 
 
 def first_crossing(T_now: float, k: float, air_now: float, out: float, ka: float, thr: float,
-                   past: bool) -> float | None:
-    """Seconds until T(x) first reaches thr (0 if ``past``, None if never)."""
+                   past: bool, slow: float | None = None) -> float | None:
+    """Seconds until T(x) first reaches thr (0 if ``past``, None if never); searched up to 60
+    ``slow`` (default: the slower of the two time constants)."""
     if past or T_now == thr:
         return 0.0
-    slow = 1.0 / max(min(k, ka if ka > 0 else k), 1e-12)
+    if slow is None:
+        slow = 1.0 / max(min(k, ka if ka > 0 else k), 1e-12)
     x = np.concatenate([[0.0], np.geomspace(1e-4 * slow, 60 * slow, 240)])
     g = load_after(x, T_now, k, air_now, out, ka) - thr
     hit = np.flatnonzero(np.sign(g[1:]) != np.sign(g[0]))
@@ -93,11 +105,11 @@ def fit_measured(t: np.ndarray, y: np.ndarray, air_t: np.ndarray, air_y: np.ndar
                  air_spread: LumpedFit | None = None) -> MeasuredFit:
     """Fit k and T0 with the measured air; forecast with the air's own fit ``air_fit``."""
     n = t.size
-    if n < 4:
+    if n < MIN_LOAD:
         return MeasuredFit(False, f"too few readings to fit ({n})", n=n)
     inside = (air_t >= t[0]) & (air_t <= t[-1])
-    s = np.unique(np.concatenate([t, air_t[inside]]))
-    A = np.interp(s, air_t, air_y)  # held constant before the first air reading
+    s = gap_grid(np.unique(np.concatenate([t, air_t[inside]])), air_t)
+    A = air_input(s, air_t, air_y, air_spread if air_spread is not None else air_fit)
     beyond = s > air_t[-1]
     if beyond.any() and air_fit.ok:  # after the last one, the air's own curve
         A[beyond] = air_fit.curve(s[beyond])
@@ -127,6 +139,9 @@ def fit_measured(t: np.ndarray, y: np.ndarray, air_t: np.ndarray, air_y: np.ndar
     fitted = T0 * P[0, pos] + G[0, pos]
     dof = max(n - 2, 1)
     sigma = math.sqrt(rss / dof)
+    if n < MIN_MEASURED_SCATTER:
+        # two or three readings cannot measure their own scatter: take the assumed one
+        sigma = max(sigma, assumed_scatter(y))
     # covariance of (T0, log k) from the Jacobian (finite difference in log k)
     hstep = 1e-4
     P2, G2 = response(np.array([k * math.exp(hstep)]), s, A)
@@ -156,8 +171,14 @@ def fit_measured(t: np.ndarray, y: np.ndarray, air_t: np.ndarray, air_y: np.ndar
     else:
         past = (float(fitted[0]) - threshold) * side_now < 0
 
+    # a straight air has no time constant of its own: the load's sets the search's horizon
+    straight = isinstance(air_fit, FewAir) and air_fit.straight
+    k_slow = k if straight else min(k, ka if ka > 0 else k)
+    slow = 1.0 / max(k_slow, 1e-12)
+
     def eta_of(p: np.ndarray) -> float | None:
-        return first_crossing(p[0], math.exp(p[1]), p[2], p[3], math.exp(p[4]), threshold, past)
+        return first_crossing(p[0], math.exp(p[1]), p[2], p[3], math.exp(p[4]), threshold, past,
+                              slow)
 
     p0 = np.array([fit.value_fit_now, math.log(k), air_now, out, math.log(max(ka, 1e-12))])
     fit.eta_s = eta_of(p0)
@@ -182,7 +203,7 @@ def fit_measured(t: np.ndarray, y: np.ndarray, air_t: np.ndarray, air_y: np.ndar
     a_out, a_amp, a_k = airp[:, 0], airp[:, 1], np.exp(airp[:, 2])
     a_now = a_out + a_amp * np.exp(-a_k * (t_now - spread.t_first))
     etas = crossings(load[:, 0], np.exp(load[:, 1]), a_now, a_out, a_k, threshold, past,
-                     horizon_s=60.0 / max(min(k, ka if ka > 0 else k), 1e-12))
+                     horizon_s=60.0 * slow)
     etas = np.where(np.isnan(etas), np.inf, etas)
     lo_e, hi_e = np.percentile(etas, [5.0, 95.0])
     if air_spread is not None and fit.eta_s is not None:
@@ -196,7 +217,47 @@ def fit_measured(t: np.ndarray, y: np.ndarray, air_t: np.ndarray, air_y: np.ndar
         return fit
     fit.eta_lo_s = float(min(lo_e, fit.eta_s))
     fit.eta_hi_s = None if not math.isfinite(hi_e) else float(max(hi_e, fit.eta_s))
+    if straight:
+        fit.eta_hi_s = None  # the air may level off at any time: nothing bounds the late end
     return fit
+
+
+GAP_FACTOR = 3.0  # an air gap: a step between air readings over 3 x their median step
+
+
+def gap_grid(s: np.ndarray, air_t: np.ndarray) -> np.ndarray:
+    """The instants s plus instants inside each gap of the air readings (see air_input), at the
+    air's median step, so the load's steps follow the air's curve across the gap."""
+    if air_t.size < 3:
+        return s
+    steps = np.diff(air_t)
+    typical = float(np.median(steps))
+    extra = [np.arange(air_t[i] + typical, air_t[i + 1] - 0.5 * typical, typical)
+             for i in np.flatnonzero(steps > GAP_FACTOR * typical)]
+    if not extra:
+        return s
+    fill = np.concatenate(extra)
+    fill = fill[(fill > s[0]) & (fill < s[-1])]
+    return np.unique(np.concatenate([s, fill]))
+
+
+def air_input(s: np.ndarray, air_t: np.ndarray, air_y: np.ndarray, curve: LumpedFit) -> np.ndarray:
+    """The air at the instants s: linear between air readings (held before the first), but
+    across a gap in the air readings (a logger's dropout) the air's own fitted curve plus the
+    residuals at the gap's two ends interpolated, so it meets the readings on both sides: a
+    curving air is not a straight line over half an hour, and a load fitted against that line
+    would take the misfit for its own k."""
+    A = np.interp(s, air_t, air_y)
+    if not curve.ok or air_t.size < 3 or not np.isfinite(curve.amplitude):
+        return A
+    steps = np.diff(air_t)
+    i = np.clip(np.searchsorted(air_t, s, side="right") - 1, 0, steps.size - 1)
+    gap = (s > air_t[0]) & (s < air_t[-1]) & (steps[i] > GAP_FACTOR * float(np.median(steps)))
+    gap &= s >= curve.t_first
+    if gap.any():
+        resid = air_y - curve.curve(air_t)
+        A = np.where(gap, curve.curve(s) + np.interp(s, air_t, resid), A)
+    return A
 
 
 def air_identified(fit: LumpedFit) -> bool:
@@ -262,9 +323,88 @@ def thr_side(T_now: np.ndarray, thr: float) -> np.ndarray:
     return np.full(T_now.shape, np.sign(np.median(T_now) - thr))
 
 
+class FewAir(LumpedFit):
+    """The air's curve through four readings, one fewer than its full fit needs (few_air_curve),
+    or with two or three its straight trend (straight_air, ``straight`` set): used as it is,
+    never held at its present level."""
+
+
+def straight_air(air_t: np.ndarray, air_y: np.ndarray, noise_sd: float) -> FewAir:
+    """The air's straight trend A(d) = c + s d, written as a lumped curve that stays straight
+    over any horizon that matters, Tout + b e^(-ka d) with ka d << 1, Tout = c + s / ka,
+    b = -s / ka; the covariance of (Tout, b, log ka) maps that of (c, s) of the line, with the
+    scatter taken as at least the assumed one (two readings cannot measure it).  A rising air
+    held straight is the early extreme of where it may head: the crossing is early, not late."""
+    d = air_t - air_t[0]
+    D = max(float(d[-1]), 1.0)
+    X = np.column_stack([np.ones_like(d), d])
+    coef, *_ = np.linalg.lstsq(X, air_y, rcond=None)
+    c, slope = float(coef[0]), float(coef[1])
+    resid = air_y - X @ coef
+    dof = air_y.size - 2
+    s2 = float(resid @ resid) / dof if dof > 0 else 0.0
+    sigma = math.sqrt(max(s2, assumed_scatter(air_y, noise_sd) ** 2))
+    ka = STRAIGHT_KD / (1e4 * D)  # straight within 1e-6 over 10^4 spans
+    fit = FewAir(True, k_per_s=ka, ambient=c + slope / ka, amplitude=-slope / ka,
+                 value_fit_now=c + slope * D, t_first=float(air_t[0]), t_last=float(air_t[-1]),
+                 sigma=sigma, n=int(air_y.size), residuals=resid, k_lo=ka, k_hi=ka, straight=True)
+    cov2 = np.linalg.pinv(X.T @ X) * sigma**2
+    J = np.array([[1.0, 1.0 / ka], [0.0, -1.0 / ka], [0.0, 0.0]])
+    fit.cov = J @ cov2 @ J.T
+    return fit
+
+
+def few_air_curve(air_t: np.ndarray, air_y: np.ndarray, noise_sd: float) -> FewAir:
+    """The air's lumped curve through four readings (one more than its parameters),
+    A = a + b e^(-ka d), by variable projection on a grid of ka (then refined), with the scatter
+    taken as at least the assumed one (four readings barely measure it) and the covariance of
+    (Tout, b, log ka) from the Jacobian."""
+    d = air_t - air_t[0]
+    D = float(d[-1])
+    spread = max(float(np.ptp(air_y)), 1e-6)
+    bounds = (float(air_y.min()) - 10 * spread - 10.0, float(air_y.max()) + 10 * spread + 10.0)
+
+    def solve(k: float) -> tuple[float, float, float]:
+        X = np.column_stack([np.ones_like(d), np.exp(-k * d)])
+        coef, *_ = np.linalg.lstsq(X, air_y, rcond=None)
+        a = float(np.clip(coef[0], *bounds))
+        e = X[:, 1]
+        b = float((air_y - a) @ e / (e @ e))
+        r = air_y - a - b * e
+        return a, b, float(r @ r)
+
+    lg = np.log(np.geomspace(KD_MIN, KD_MAX, 96) / D)
+    rss = np.array([solve(math.exp(v))[2] for v in lg])
+    i = int(np.argmin(rss))
+    res = minimize_scalar(lambda v: solve(math.exp(v))[2], method="bounded",
+                          bounds=(lg[max(i - 1, 0)], lg[min(i + 1, lg.size - 1)]),
+                          options={"xatol": 1e-6})
+    k = math.exp(res.x) if res.fun <= rss[i] else math.exp(lg[i])
+    a, b, r = solve(k)
+    dof = air_y.size - 3
+    sigma = math.sqrt(max(r / dof if dof > 0 else 0.0, assumed_scatter(air_y, noise_sd) ** 2))
+    e = np.exp(-k * d)
+    J = np.column_stack([np.ones_like(d), e, -b * k * d * e])
+    cov = np.linalg.pinv(J.T @ J) * sigma**2
+    sd_a, sd_lk = math.sqrt(max(cov[0, 0], 0.0)), math.sqrt(max(cov[2, 2], 0.0))
+    fit = FewAir(True, k_per_s=k, ambient=a, amplitude=b, value_fit_now=a + b * float(e[-1]),
+                 t_first=float(air_t[0]), t_last=float(air_t[-1]), rss=r, dof=max(dof, 1),
+                 sigma=sigma, n=int(air_y.size), residuals=air_y - a - b * e,
+                 ambient_lo=a - Z90 * sd_a, ambient_hi=a + Z90 * sd_a,
+                 k_lo=k * math.exp(-Z90 * sd_lk), k_hi=k * math.exp(Z90 * sd_lk), bounds=bounds)
+    fit.cov = cov
+    return fit
+
+
 def fit_air(air_t: np.ndarray, air_y: np.ndarray, noise_sd: float) -> LumpedFit:
     """The air's own lumped fit (ambient fitted), used to extrapolate it; with the covariance of
-    (Tout, amplitude, log ka) from its Jacobian, cov = sigma^2 (J'J)^-1."""
+    (Tout, amplitude, log ka) from its Jacobian, cov = sigma^2 (J'J)^-1.  With fewer readings
+    than that fit needs (after a logger's gap, say), few_air_curve or straight_air."""
+    if 2 <= air_t.size < MIN_AIR_CURVE and air_t[-1] > air_t[0]:
+        if air_t.size >= MIN_AIR_CURVE - 1:
+            # (three readings would fix three parameters exactly: their noise decides the bend)
+            return few_air_curve(air_t, air_y, noise_sd)
+        return straight_air(air_t, air_y, noise_sd)
     fit = fit_lumped(air_t, air_y, float(air_y[-1]), noise_sd=noise_sd)
     if fit.ok:
         d = air_t - air_t[0]

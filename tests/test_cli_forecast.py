@@ -61,7 +61,7 @@ def test_ambient_column_selects_measured(tmp_path):
         (b"time,value\n1764600000,1\nyesterday,2\n", ":3: time: unparseable time"),
         (b"time,value\n2026-12-01T10:00:00,1\n", "has no zone"),
         (b"\x89PNG\r\n\x1a\n\x00\x00\x00\rIHDR", "binary data"),
-        (b"time,value\n1764600000,1\n1764600030,2\n", "too few readings"),
+        (b"time,value\n1764600000,1\n", "too few readings"),
         (b"", "empty file"),
     ],
 )
@@ -75,6 +75,17 @@ def test_bad_input_one_line_exit_2(tmp_path, content, fragment):
     assert len(lines) == 1, r.stderr
     assert str(p) in lines[0] and fragment in lines[0]
     assert "Traceback" not in r.stderr
+
+
+def test_two_readings_give_a_forecast(tmp_path):
+    """Two readings and a given ambient are enough for the two-reading solve: exit 0, an ETA
+    with an early end above 0 (one reading stays an error, above)."""
+    p = tmp_path / "two.csv"
+    p.write_text("time,value\n1764600000,2.0\n1764600600,2.8\n")
+    r = run_cli("forecast", str(p), "--threshold", "8", "--ambient", "27", "--json")
+    assert r.returncode == 0, r.stderr
+    out = json.loads(r.stdout)
+    assert out["n_points"] == 2 and out["eta_s"] > 0 and 0 < out["eta_lo_s"] < out["eta_s"]
 
 
 def test_missing_file(tmp_path):
