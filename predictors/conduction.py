@@ -45,6 +45,7 @@ FIT_BIOT_MIN = 1e-3
 FIT_BIOT_MAX = 100.0
 AMBIENT_BOUNDS = (-100.0, 300.0)
 N_DRAWS = 400
+MIN_DOF = 2  # degrees of freedom left for the noise by the fewest readings fitted by default
 _BI_GRID = (0.01, 0.06, 0.3, 1.0, 3.0, 10.0, 40.0)
 _K_SPAN_GRID = tuple(np.geomspace(0.03, 30.0, 11))
 PROFILE_METHOD = (
@@ -285,7 +286,7 @@ def fit_conduction(
     ambient_bounds: tuple[float, float] = AMBIENT_BOUNDS,
     ambient_sd: float = 0.0,
     interval: str = "auto",
-    min_points: int = 8,
+    min_points: int | None = None,
     hold_steady: bool = True,
 ) -> ConductionFit:
     """Fit the centre-probe curve to cleaned readings ``y`` at epoch seconds ``t_s``.
@@ -300,7 +301,10 @@ def fit_conduction(
     for the Bi, k and ambient intervals) or "auto" (profile with a constant ambient, draws with
     a measured one, where each profile refit costs ~5x more).  hold_steady: a measured ambient
     with no significant trend over the episode (:func:`steady_level`) is taken as a constant
-    at its mean (ambient_mode stays "measured").  A failed fit is returned with
+    at its mean (ambient_mode stays "measured").  min_points: the fewest readings to fit (default:
+    the free parameters plus two, so the noise has two degrees of freedom: 5 with a given or
+    measured ambient, 6 with it fitted, one more with fit_start; the intervals' t and F(1, n - p)
+    cut-offs widen as it nears that).  A failed fit is returned with
     ``ok=False`` and a reason; ValueError only for a bad geometry or mismatched arrays.
     """
     if geometry not in GEOMETRIES:
@@ -316,6 +320,8 @@ def fit_conduction(
     order = np.argsort(t[keep], kind="stable")
     t, yy = t[keep][order], yy[keep][order]
     n = int(t.size)
+    if min_points is None:
+        min_points = 3 + (mode == "fitted") + fit_start + MIN_DOF
     if n < min_points:
         return _failed(geometry, mode, n, f"too few readings to fit ({n} < {min_points})")
     start = float(t[0]) if start_s is None else float(start_s)

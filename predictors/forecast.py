@@ -603,18 +603,24 @@ def _few_air_note(n_air: int, straight: bool) -> str:
             "their scatter assumed; the interval is wide for that")
 
 
-def _conduction(fc, tt, yy, thr, shape, ambient, air, amb_sd=0.0) -> Forecast:
-    try:
-        conduction = importlib.import_module("thermeta.predictors.conduction")
-    except ImportError:
-        fc.ok, fc.reason = False, "conduction model not available"
-        return fc
-    kw = {}
+def _conduction_kwargs(ambient, air, amb_sd) -> dict:
+    """How fit_conduction is told the ambient: a measured series, a given value, or nothing."""
     if air is not None:
-        kw = {"ambient_t": air.t, "ambient_y": air.y}
-    elif ambient is not None:
-        kw = {"ambient": float(ambient), "ambient_sd": float(amb_sd)}
-    fit = conduction.fit_conduction(tt, yy, shape, **kw)
+        return {"ambient_t": air.t, "ambient_y": air.y}
+    if ambient is not None:
+        return {"ambient": float(ambient), "ambient_sd": float(amb_sd)}
+    return {}
+
+
+def _conduction(fc, tt, yy, thr, shape, ambient, air, amb_sd=0.0, fit=None) -> Forecast:
+    """A core-probe forecast; ``fit`` is an already fitted curve of that shape (from _auto)."""
+    if fit is None:
+        try:
+            conduction = importlib.import_module("thermeta.predictors.conduction")
+        except ImportError:
+            fc.ok, fc.reason = False, "conduction model not available"
+            return fc
+        fit = conduction.fit_conduction(tt, yy, shape, **_conduction_kwargs(ambient, air, amb_sd))
     fc.model_fit = fit
     fc.model = shape
     if not fit.ok:
@@ -649,8 +655,18 @@ def aicc(rss: float, n: int, p: int) -> float:
     return n * math.log(rss / n) + 2 * p + 2 * p * (p + 1) / (n - p - 1)
 
 
+AUTO_MARGIN = 2.0  # AICc points a core model must gain over the lumped one (a common rule of thumb)
+
+
 def _auto(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, prior=None) -> Forecast:
-    """The lumped model, unless a core-probe model has a clearly lower AICc (by more than 2)."""
+    """The lumped model, unless the best core-probe shape has a clearly lower AICc.
+
+    All three shapes have the same parameters (Ti, [Ta,] Bi, a), so among them the lowest AICc
+    is the lowest residual sum: the best shape is kept however small its lead over the other
+    two (:func:`conduction.select_geometry`).  Only against the lumped curve, the simpler
+    family, must it win by AUTO_MARGIN; a Newton curve is then kept on a tie.  Only the chosen
+    shape's crossing interval is computed (the profile refits are most of the cost).
+    """
     import copy
 
     base = copy.deepcopy(fc)
@@ -660,11 +676,22 @@ def _auto(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, prior=None) 
     if not lumped.ok or "rss" not in lumped.params:
         return lumped
     p = lumped.params
-    best, best_ic = lumped, aicc(p["rss"], int(p["n_fit"]), int(p["n_params"]))
-    for shape in CONDUCTION:
-        c = _conduction(copy.deepcopy(base), tt, yy, thr, shape, ambient, air, amb_sd)
-        ic = c.params.get("aicc", math.inf) if c.ok else math.inf
-        if ic < best_ic - 2.0:
-            best, best_ic = c, ic
-    best.warnings.append(f"model chosen by AICc: {best.model}")
+    lumped_ic = aicc(p["rss"], int(p["n_fit"]), int(p["n_params"]))
+    try:
+        conduction = importlib.import_module("thermeta.predictors.conduction")
+    except ImportError:
+        return lumped
+    fit, scores = conduction.select_geometry(tt, yy, **_conduction_kwargs(ambient, air, amb_sd))
+    best = lumped
+    if fit.ok and fit.aicc < lumped_ic - AUTO_MARGIN:
+        best = _conduction(copy.deepcopy(base), tt, yy, thr, fit.geometry, ambient, air, amb_sd,
+                           fit=fit)
+        if not best.ok:
+            best = lumped
+    scores["lumped"] = lumped_ic
+    ref = scores[best.model]
+    others = ", ".join(f"{m} {v - ref:+.1f}" for m, v in scores.items()
+                       if m != best.model and math.isfinite(v))
+    best.warnings.append(f"model chosen by AICc: {best.model}" + (f" (others: {others})"
+                                                                  if others else ""))
     return best
