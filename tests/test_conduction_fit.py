@@ -241,3 +241,22 @@ def test_geometry_selection_rate():
         best, _ = select_geometry(s.t, s.y, ambient=2.0)
         right += best.geometry == g
     assert right / n >= 0.8
+
+
+def test_fewest_readings_by_default_leave_two_degrees_of_freedom():
+    """By default a fit needs its free parameters plus two readings: 5 with the ambient given
+    (Ti, Bi, a), 6 with it fitted; below that a result with a reason, at it an ETA whose 90 %
+    interval contains the truth (wide: F(1, 2) is 8.5).  Readings: the centre series (checked
+    against Incropera & DeWitt Table 5.1, from memory, in test_conduction_series)."""
+    s = _chill(41, "sphere", 2.0, dt_s=600.0, seen_fraction=0.5)
+    order = np.argsort(s.t)
+    t, y = s.t[order][:5], s.y[order][:5]
+    known = fit_conduction(t, y, "sphere", ambient=2.0)
+    assert known.ok and known.n_params == 3
+    eta, lo, hi = known.time_to_threshold(21.0)
+    true_eta = s.crossing_t_true - t[-1]
+    assert eta is not None and lo is not None and lo <= true_eta and (hi is None or hi >= true_eta)
+    short = fit_conduction(t[:4], y[:4], "sphere", ambient=2.0)
+    assert not short.ok and "4 < 5" in short.reason
+    fitted = fit_conduction(t, y, "sphere")
+    assert not fitted.ok and "5 < 6" in fitted.reason
