@@ -322,7 +322,8 @@ def _carry_before(fc: Forecast, fit: LumpedFit, kw: dict, before, tt, yy, thr):
     # readings after the change understate: take the older readings' range
     new_kw = dict(kw, bounds=kw.get("bounds") or old.bounds)
     alone = fit_lumped(t_new, y_new, thr, **new_kw)
-    if not _carry_agrees(old, sd_k, alone, kw):
+    toward = kw["ambient"] if kw.get("ambient") is not None else old.ambient
+    if _moves_away(t_new, y_new, toward) or not _carry_agrees(old, sd_k, alone, kw):
         if cut:
             fc.warnings.append("the readings before the change follow another curve (k or "
                                "ambient differ); they are not used")
@@ -340,6 +341,22 @@ def _carry_before(fc: Forecast, fit: LumpedFit, kw: dict, before, tt, yy, thr):
     return new_kw, joint, t_new, y_new
 
 
+def _moves_away(t: np.ndarray, y: np.ndarray, ambient: float) -> bool:
+    """Whether the readings clearly move away from ``ambient`` (their straight trend's slope
+    beyond 3 se, against the side the ambient is on): a compressor pulling the load back is not
+    the older curve going on, whatever a fit toward that ambient makes of a few readings."""
+    if t.size < 3:
+        return False
+    d = t - t[0]
+    slope, icpt = np.polyfit(d, y, 1)
+    resid = y - (icpt + slope * d)
+    sxx = float(np.sum((d - d.mean()) ** 2))
+    if sxx <= 0:
+        return False
+    se = math.sqrt(max(float(resid @ resid) / max(t.size - 2, 1), 1e-12) / sxx)
+    return abs(slope) > 3 * se and slope * (ambient - y[-1]) < 0
+
+
 def _carry_agrees(old: LumpedFit, sd_k: float, alone: LumpedFit, kw: dict) -> bool:
     """Whether the newest readings, fitted on their own, go on along the older curve's k and
     ambient (see _carry_before)."""
@@ -353,8 +370,11 @@ def _carry_agrees(old: LumpedFit, sd_k: float, alone: LumpedFit, kw: dict) -> bo
         # an ambient the newest readings cannot bound (a few readings) cannot be tested
         return sd_new is None or _agrees(old.ambient, _lin_sd(old), alone.ambient, sd_new)
     if kw.get("ambient_sd", 0.0) > 0:
-        # a given ambient holds for the newest readings; the older ones must have followed it too
-        return abs(old.ambient - kw["ambient"]) <= CARRY_Z * kw["ambient_sd"]
+        # a given ambient must hold for both: the older readings followed it, and the newest
+        # ones, fitted on their own, do not pull the ambient away from it
+        near = CARRY_Z * kw["ambient_sd"]
+        return (abs(old.ambient - kw["ambient"]) <= near
+                and abs(alone.ambient - kw["ambient"]) <= near)
     return True
 
 

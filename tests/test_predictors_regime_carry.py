@@ -149,3 +149,22 @@ def test_find_door_sees_a_short_door():
     t, y = s.t[o], s.y[o]
     whole = fit_lumped(t, y, float(y[-1]), intervals=False)
     assert find_door(t, y, whole.k_per_s, whole.ambient, whole.rss, min_side=12).found
+
+
+@pytest.mark.parametrize("minutes_after", [15, 25, 40])
+def test_a_compressor_pulling_the_load_back_is_not_carried(minutes_after):
+    """A reefer's load warms toward a given 12 degC, then its compressor returns and pulls it down
+    toward -30 degC: the newest readings move away from the given ambient, so the warming curve's
+    k must not be carried into them and no crossing of the upper limit may be forecast.  Truth:
+    the closed form of Newton's law on each piece (the e2e alert test's scenario)."""
+    ta, t_load, k, thr = 12.0, -20.0, 1 / 36000, -15.0
+    t_cool = -math.log((thr - ta) / (t_load - ta)) / k + 1200.0
+    v_cool = ta + (t_load - ta) * math.exp(-k * t_cool)
+    rng = np.random.default_rng(7)
+    t = np.arange(0.0, t_cool + 60 * minutes_after, 60.0)
+    y = np.where(t <= t_cool, ta + (t_load - ta) * np.exp(-k * t),
+                 -30.0 + (v_cool + 30.0) * np.exp(-(t - t_cool) / 3600.0))
+    y = y + rng.normal(0, 0.05, t.size)
+    fc = forecast(t, y, thr, ambient=ta, limit="upper", min_points=8)
+    assert not any(w.startswith("the surroundings changed and came back") for w in fc.warnings)
+    assert fc.direction == "falling" and fc.eta_s is None
