@@ -283,8 +283,9 @@ url = "{receiver.url}"
                 clock.set(T0 + t)
                 if t == D_ON:  # the controller: a JSON object with its own time, then a bare word
                     send("walkin/defrost", json.dumps({"defrost": "on", "ts": T0 + t}))
-                if t == D_OFF:
+                if t == D_OFF:  # stamped on receipt: stored before the clock moves on
                     send("walkin/defrost", "off")
+                    assert _wait(lambda: len(svc.store.recent_readings("told.defrost")) == 2)
                 v = air(t) + rng.normal(0, 0.05)
                 for item in ("told", "untold"):
                     send(f"walkin/{item}/air", json.dumps({"ts": T0 + t, "value": round(v, 2)}))
