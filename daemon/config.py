@@ -30,6 +30,7 @@ TLS_MODES = ("starttls", "implicit", "none")
 PROTOCOLS = ("auto", "5", "3.1.1")
 NAME_RE = re.compile(r"^[A-Za-z0-9._:/{}-]+$")
 AMBIENT_SUFFIX = ".ambient"
+DEFROST_SUFFIX = ".defrost"  # the stored series of an item's defrost signal (daemon/defrost.py)
 
 
 @dataclass(frozen=True)
@@ -117,6 +118,10 @@ class ItemConfig:
     remind_every_s: float = 1800.0
     silence_s: float = 900.0
     horizon_s: float = 86400.0
+    # The controller's defrost signal (daemon/defrost.py) and how long alerts wait after it.
+    defrost_topic: str | None = None
+    defrost_recovery_s: float = 1800.0
+    defrost_max_s: float = 3600.0
     line: int = 0
 
     @property
@@ -487,7 +492,8 @@ def _ingest(c: _Checker, t: dict) -> IngestConfig:
 
 
 ITEM_KEYS = {"name", "topic", "threshold", "unit", "ambient", "ambient_topic", "model", "window",
-             "min_points", "plausible", "senml_name", "site", "limit", "prior_class"} | set(ALERT_KEYS)
+             "min_points", "plausible", "senml_name", "site", "limit", "prior_class",
+             "defrost_topic", "defrost_recovery", "defrost_max"} | set(ALERT_KEYS)
 
 
 def _items(c: _Checker, raw: Any, fit: FitConfig, alerts: AlertDefaults,
@@ -532,6 +538,7 @@ def _items(c: _Checker, raw: Any, fit: FitConfig, alerts: AlertDefaults,
             elif topic and is_wildcard(ambient_topic) != is_wildcard(topic):
                 c.problem(w + ("ambient_topic",), "item.ambient_topic",
                           "must use wildcards exactly when topic does")
+        defrost = _defrost(c, t, w, topic, ambient_topic)
         if name is not None:
             _check_name(c, w, name, topic, ambient_topic)
             if name in names:
@@ -563,7 +570,7 @@ def _items(c: _Checker, raw: Any, fit: FitConfig, alerts: AlertDefaults,
             site=c.get(t, w, "site", "str"),
             limit=c.get(t, w, "limit", "str", "auto", choices=("upper", "lower", "auto")),
             prior_class=_prior_class(c, t, w),
-            line=c.index.line(w), **values,
+            line=c.index.line(w), **values, **defrost,
         )
         if len(c.problems) == n_problems:
             lo, hi = item.plausible
@@ -572,6 +579,30 @@ def _items(c: _Checker, raw: Any, fit: FitConfig, alerts: AlertDefaults,
                           f"{item.threshold:g} is outside the plausible range [{lo:g}, {hi:g}]")
         out.append(item)
     return out
+
+
+def _defrost(c: _Checker, t: dict, w: tuple, topic: str | None,
+             ambient_topic: str | None) -> dict[str, Any]:
+    """defrost_topic (a topic of its own, with wildcards exactly when topic has them),
+    defrost_recovery (seconds, >= 0) and defrost_max (seconds, > 0); the delays only with a topic."""
+    dtopic = c.get(t, w, "defrost_topic", "str")
+    if dtopic is not None:
+        err = check_filter(dtopic)
+        if err:
+            c.problem(w + ("defrost_topic",), "item.defrost_topic", err)
+        elif dtopic in (topic, ambient_topic):
+            c.problem(w + ("defrost_topic",), "item.defrost_topic",
+                      "must differ from topic and ambient_topic (it carries on/off, not readings)")
+        elif topic and is_wildcard(dtopic) != is_wildcard(topic):
+            c.problem(w + ("defrost_topic",), "item.defrost_topic",
+                      "must use wildcards exactly when topic does")
+    else:
+        for key in ("defrost_recovery", "defrost_max"):
+            if key in t:
+                c.problem(w + (key,), f"item.{key}", "needs defrost_topic (the controller's signal)")
+    return {"defrost_topic": dtopic,
+            "defrost_recovery_s": float(c.get(t, w, "defrost_recovery", "num", 1800.0, minimum=0)),
+            "defrost_max_s": float(c.get(t, w, "defrost_max", "num", 3600.0, positive=True))}
 
 
 def _prior_class(c: _Checker, t: dict, w: tuple) -> str | None:
@@ -591,6 +622,8 @@ def _check_name(c: _Checker, w: tuple, name: str, topic: str | None, ambient_top
         return
     if name.endswith(AMBIENT_SUFFIX):
         c.problem(w + ("name",), "item.name", f"must not end in '{AMBIENT_SUFFIX}' (kept for ambient probes)")
+    if name.endswith(DEFROST_SUFFIX):
+        c.problem(w + ("name",), "item.name", f"must not end in '{DEFROST_SUFFIX}' (kept for defrost signals)")
     used = placeholders(name)
     if used is None:
         c.problem(w + ("name",), "item.name", "braces must hold a topic level number such as {2}")

@@ -13,6 +13,9 @@ States, judged in this order:
 One item's failed fit (an exception, or a result with ``ok=False``) is logged and published as
 such; the other items go on.
 
+An item with a ``defrost_topic`` gets its newest defrost in the forecast (``"defrost"``:
+``on``, ``started_at``, ``ended_at``; ``daemon/defrost.py``) for the alert rules' defrost hold.
+
 Priors (``predictors/prior.py``, stored in ``storage/priors.py``): each item teaches its prior
 class (item key ``prior_class``, default its own name) and its lumped fits (fitted or given
 ambient) use the class's prior.  The rule for an episode: a stretch of readings counts once, at
@@ -36,7 +39,8 @@ from typing import Any
 import numpy as np
 
 from thermeta.daemon.clock import Clock
-from thermeta.daemon.config import AMBIENT_SUFFIX, Config, ItemConfig
+from thermeta.daemon.config import AMBIENT_SUFFIX, DEFROST_SUFFIX, Config, ItemConfig
+from thermeta.daemon.defrost import defrost_status
 from thermeta.daemon.units import from_celsius, scale_from_celsius
 from thermeta.daemon.writer import Activity
 from thermeta.predictors.prior import Prior, learn, learnable
@@ -51,6 +55,9 @@ POINT_KEYS = ("threshold", "ambient", "ambient_lo", "ambient_hi", "value_now")
 DELTA_KEYS = ("rmse",)
 ERROR_LOG_EVERY_S = 300.0
 SAVE_EVERY = 50  # forecasts per store transaction
+# How far back a defrost signal is read beyond the longest hold (max + recovery): a start older
+# than that holds nothing any more, and a signal repeated at least this often is read right.
+DEFROST_LOOKBACK_S = 3600.0
 
 # A listener gets (item config, forecast dict with state, previous forecast dict or None).
 Listener = Callable[[ItemConfig, dict[str, Any], "dict[str, Any] | None"], None]
@@ -226,9 +233,18 @@ class Refitter:
         body.update(item=name, state=state, updated_at=rfc3339(now), unit=cfg.unit, limit=limit)
         if cfg.site:
             body["site"] = cfg.site
+        if cfg.defrost_topic:
+            body["defrost"] = self._defrost(name, cfg, now)
         if prior is not None and prior.n_episodes:
             body["prior_class"] = cls
         return item_id, state, body
+
+    def _defrost(self, name: str, cfg: ItemConfig, now: float) -> dict[str, Any] | None:
+        """The item's newest defrost from its stored signal (None: none lately), for the rules'
+        defrost hold."""
+        since = now - cfg.defrost_max_s - cfg.defrost_recovery_s - DEFROST_LOOKBACK_S
+        rows = self.store.recent_readings(name + DEFROST_SUFFIX, since_ts=since, until_ts=now)
+        return defrost_status(rows)
 
     def _prior(self, cls: str) -> Prior:
         """The class's prior (an empty one if it has none yet, or the store cannot say)."""

@@ -86,13 +86,20 @@ class Route:
     topic carries the item's own readings ("load") or its ambient probe ("ambient")."""
 
     item: ItemConfig
-    kind: str  # "load" | "ambient"
+    kind: str  # "load" | "ambient" | "defrost" (the controller's defrost signal)
 
     @property
     def store_name(self) -> str:
-        from thermeta.daemon.config import AMBIENT_SUFFIX
+        from thermeta.daemon.config import AMBIENT_SUFFIX, DEFROST_SUFFIX
 
-        return self.item.name + (AMBIENT_SUFFIX if self.kind == "ambient" else "")
+        suffix = {"ambient": AMBIENT_SUFFIX, "defrost": DEFROST_SUFFIX}.get(self.kind, "")
+        return self.item.name + suffix
+
+    @property
+    def source_topic(self) -> str | None:
+        """The configured topic (filter) this route comes from."""
+        return {"load": self.item.topic, "ambient": self.item.ambient_topic,
+                "defrost": self.item.defrost_topic}[self.kind]
 
 
 class Router:
@@ -109,11 +116,15 @@ class Router:
                 self.patterns.append((it.topic, it, "load"))
                 if it.ambient_topic:
                     self.patterns.append((it.ambient_topic, it, "ambient"))
+                if it.defrost_topic:
+                    self.patterns.append((it.defrost_topic, it, "defrost"))
             else:
                 self.exact.setdefault(it.topic, []).insert(0, Route(it, "load"))
                 self.by_name[it.name] = it
                 if it.ambient_topic:
                     self.exact.setdefault(it.ambient_topic, []).append(Route(it, "ambient"))
+                if it.defrost_topic:
+                    self.exact.setdefault(it.defrost_topic, []).append(Route(it, "defrost"))
         self._cache: dict[str, list[Route]] = {}
 
     def filters(self) -> list[str]:
@@ -129,7 +140,7 @@ class Router:
 
     def resolve_all(self, topic: str) -> list[Route]:
         """Every route of ``topic``: exact entries, else the first matching load pattern and every
-        matching ambient pattern."""
+        matching ambient (and defrost) pattern."""
         if topic in self.exact:
             return self.exact[topic]
         if topic in self._cache:
@@ -150,6 +161,8 @@ class Router:
                     topic=load_topic,
                     ambient_topic=(render_filter(it.ambient_topic, topic)
                                    if it.ambient_topic else None),
+                    defrost_topic=(render_filter(it.defrost_topic, topic)
+                                   if it.defrost_topic else None),
                 )
                 if kind == "load":
                     self.by_name[name] = concrete

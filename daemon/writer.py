@@ -20,6 +20,7 @@ from typing import Any, NamedTuple
 
 from thermeta.daemon.clock import Clock
 from thermeta.daemon.config import Config, ItemConfig
+from thermeta.daemon.defrost import parse_defrost
 from thermeta.daemon.payloads import Limits, PayloadError, excerpt, parse_payload
 from thermeta.daemon.topics import Route, Router
 from thermeta.storage.schema import FLAG_RECEIPT_TS
@@ -218,8 +219,7 @@ class Writer(threading.Thread):
                 except Exception:  # noqa: BLE001 - the message becomes a dead letter
                     log.exception("cannot map topic %r", msg.topic[:200])
                     routes[msg.topic] = []
-        specs = [(r.store_name, r.kind, r.item.unit,
-                  r.item.topic if r.kind == "load" else r.item.ambient_topic)
+        specs = [(r.store_name, r.kind, r.item.unit, r.source_topic)
                  for rs in routes.values() for r in rs]
         delay = 0.5
         while True:
@@ -238,7 +238,7 @@ class Writer(threading.Thread):
                     log.info("new item %s on %s", name, topic)
                 self._item_ids[name] = ids[name]
                 hits.append((route, name, self._limits_for(route), ids[name],
-                             route.item.name if route.kind == "ambient" else name))
+                             name if route.kind == "load" else route.item.name))
             if hits and len(self._topics) < 1_000_000:
                 self._topics[topic] = hits
 
@@ -250,8 +250,11 @@ class Writer(threading.Thread):
         failed: tuple[str, str] | None = None
         for route, name, limits, item_id, load_name in hits:
             try:
-                parsed = parse_payload(msg.payload, msg.received_at, route.item.unit, limits,
-                                       route.item.senml_name)
+                if route.kind == "defrost":
+                    parsed = parse_defrost(msg.payload, msg.received_at, limits)
+                else:
+                    parsed = parse_payload(msg.payload, msg.received_at, route.item.unit, limits,
+                                           route.item.senml_name)
             except PayloadError as exc:
                 failed = failed or (name, str(exc))
                 continue
@@ -261,7 +264,7 @@ class Writer(threading.Thread):
                                  msg.received_at))
                 if r.ts > newest:
                     newest = r.ts
-            seen.append((load_name, route.item, None if route.kind == "ambient" else newest))
+            seen.append((load_name, route.item, newest if route.kind == "load" else None))
         if failed is not None:
             dead.append(self._dead(msg, failed[0], failed[1]))
 

@@ -33,7 +33,8 @@ from pathlib import Path
 import numpy as np
 from thermeta.daemon.alerts.rules import ItemAlertState, RuleParams, step
 from thermeta.daemon.config import ItemConfig
-from thermeta.daemon.refit import classify, limit_side
+from thermeta.daemon.defrost import defrost_status
+from thermeta.daemon.refit import DEFROST_LOOKBACK_S, classify, limit_side
 from thermeta.predictors import forecast, synth
 from thermeta.predictors.scenarios import first_crossing, thermostat_pieces, two_stage
 from thermeta.predictors.synth import Corruption
@@ -105,6 +106,23 @@ def room_pieces(p: dict, end_s: float, rng: np.random.Generator) -> list[tuple[f
     return pieces
 
 
+def defrost_signal(pieces: list[tuple[float, float, float]], p: dict, cut_s: float | None = None,
+                   off_at_cut: bool = True) -> list[tuple[float, float]]:
+    """The controller's defrost signal (trace seconds, 1 on / 0 off) for the defrosts in ``pieces``:
+    on at each start, off when its timer ends it.  A defrost cut by an event at ``cut_s`` still
+    ends by the timer unless ``off_at_cut`` is False (a power failure: the controller falls
+    silent, no off ever arrives)."""
+    out: list[tuple[float, float]] = []
+    for t0, drive, k in pieces:
+        if drive != p["defrost_drive"] or k != 1.0 / p["defrost_tau_s"]:
+            continue
+        out.append((t0, 1.0))
+        end = t0 + p["defrost_s"]
+        if cut_s is None or end <= cut_s or off_at_cut:
+            out.append((end, 0.0))
+    return out
+
+
 def readings(rng: np.random.Generator, curve, duration_s: float, p: dict, spikes: bool = True):
     c = Corruption(noise=p["noise"], quantum=0.1, irregular=0.05,
                    spike_frac=p["spike_frac"] if spikes else 0.0, spike_size=p["spike_size"])
@@ -114,19 +132,27 @@ def readings(rng: np.random.Generator, curve, duration_s: float, p: dict, spikes
     return x[o], y[o]
 
 
+DEFROST_SIGNAL = True  # --no-defrost-signal: the probes are not told of defrosts (for comparison)
+
+
 def item_cfgs(thr: float) -> tuple[ItemConfig, ItemConfig]:
     common = dict(threshold=thr, lead_s=RULES["lead_s"], hysteresis=RULES["hysteresis"],
                   hold_s=RULES["hold_s"], remind_every_s=RULES["remind_every_s"],
                   silence_s=RULES["silence_s"], horizon_s=RULES["horizon_s"],
                   window_s=RULES["window_s"], min_points=RULES["min_points"])
+    # the room's controller publishes its defrost on/off; both probes are told (the defaults of
+    # defrost_recovery and defrost_max)
+    common["defrost_topic"] = "room/defrost" if DEFROST_SIGNAL else None
     air = ItemConfig(name="room/air", topic="room/air", **common)
     load = ItemConfig(name="room/load", topic="room/load", ambient_topic="room/air", **common)
     return air, load
 
 
 def replay(t: np.ndarray, y: np.ndarray, cfg: ItemConfig, times: np.ndarray,
-           air: tuple[np.ndarray, np.ndarray] | None = None) -> list[tuple[float, str]]:
-    """The alerts (time, level) one item raises over the refit instants ``times``."""
+           air: tuple[np.ndarray, np.ndarray] | None = None,
+           defrost: list[tuple[float, float]] = ()) -> list[tuple[float, str]]:
+    """The alerts (time, level) one item raises over the refit instants ``times``; ``defrost`` is
+    the controller's signal (epoch seconds, 1|0), read as daemon/refit.py reads the stored one."""
     st, params = ItemAlertState(), RuleParams.of(cfg)
     out: list[tuple[float, str]] = []
     w = cfg.window_s
@@ -146,6 +172,9 @@ def replay(t: np.ndarray, y: np.ndarray, cfg: ItemConfig, times: np.ndarray,
         state = classify(fc, float(now), float(tw[-1]), cfg, limit)
         body = fc.to_dict()
         body.update(state=state, limit=limit)
+        if cfg.defrost_topic:
+            since = now - cfg.defrost_max_s - cfg.defrost_recovery_s - DEFROST_LOOKBACK_S
+            body["defrost"] = defrost_status([r for r in defrost if since <= r[0] <= now])
         for ev in step(st, body, params, float(now)):
             if ev.level in ("approaching", "crossed") and not ev.reminder:
                 out.append((float(now), ev.level))
@@ -182,8 +211,9 @@ def run_normal(index: int, seed: int, days: float) -> dict:
     ta, tl = ta + synth.T_START, tl + synth.T_START
     air_cfg, load_cfg = item_cfgs(p["threshold"])
     times = synth.T_START + np.arange(RULES["window_s"], dur + 1, REFIT_NORMAL_S)
-    a_alerts = replay(ta, ya, air_cfg, times)
-    l_alerts = replay(tl, yl, load_cfg, times, air=(ta, ya))
+    sig = [(t0 + synth.T_START, v) for t0, v in defrost_signal(pieces, p)]
+    a_alerts = replay(ta, ya, air_cfg, times, defrost=sig)
+    l_alerts = replay(tl, yl, load_cfg, times, air=(ta, ya), defrost=sig)
     fa, fl = n_false(a_alerts, air_curve, p["threshold"]), n_false(l_alerts, load_curve, p["threshold"])
     weeks = (dur - RULES["window_s"]) / (7 * DAY)
     return {"kind": "normal", "item_weeks": 2 * weeks, "false": fa + fl, "false_air": fa,
@@ -212,7 +242,10 @@ def run_event(kind: str, index: int, seed: int) -> dict:
     ta, tl = ta + synth.T_START, tl + synth.T_START
     _, load_cfg = item_cfgs(p["threshold"])
     times = synth.T_START + np.arange(RULES["window_s"], dur + 1, REFIT_EVENT_S)
-    alerts = replay(tl, yl, load_cfg, times, air=(ta, ya))
+    # a power failure silences the controller too: a defrost it cut never reports its end
+    sig = [(t0 + synth.T_START, v)
+           for t0, v in defrost_signal(pieces, p, event_s, off_at_cut=kind != "power")]
+    alerts = replay(tl, yl, load_cfg, times, air=(ta, ya), defrost=sig)
     t_event, t_cross = synth.T_START + event_s, synth.T_START + cross
     before = [a for a in alerts if a[0] < t_event]
     false_before = n_false(before, load_curve, p["threshold"])
@@ -294,12 +327,16 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--quick", action="store_true")
     ap.add_argument("--seed", type=int, default=2026)
     ap.add_argument("--jobs", type=int, default=1)
+    ap.add_argument("--no-defrost-signal", action="store_true",
+                    help="do not tell the probes of the controller's defrosts (shows what it buys)")
     ap.add_argument("--readme", action="store_true",
                     help="also rewrite the alerting table in README.md (between the bench's markers)")
     ap.add_argument("--out", default=str(Path(__file__).resolve().parent.parent / "docs"))
     args = ap.parse_args(argv)
     if args.jobs < 1:
         ap.exit(2, "bench_alerts: --jobs must be >= 1\n")
+    global DEFROST_SIGNAL
+    DEFROST_SIGNAL = not args.no_defrost_signal
     cases = QUICK_CASES if args.quick else CASES
     days = QUICK_NORMAL_DAYS if args.quick else NORMAL_DAYS
     results, elapsed = run_all(cases, days, args.seed, args.jobs)
@@ -309,7 +346,11 @@ def main(argv: list[str] | None = None) -> int:
         f"Produced by `{cmd}` ({elapsed:.0f} s, seed {args.seed}). Rules: lead 45 min, hysteresis "
         "0.5 degC, hold 5 min, horizon 24 h, window 2 h; refits every "
         f"{REFIT_EVENT_S / MIN:g} min on event traces and {REFIT_NORMAL_S / MIN:g} min on normal traces; "
-        "threshold 8 degC; the load probe is fitted with the air probe as measured ambient.",
+        "threshold 8 degC; the load probe is fitted with the air probe as measured ambient; "
+        + ("both probes get the controller's defrost signal (on at each defrost's start, off at "
+           "its end; none after a power failure) and hold new alerts through a defrost and 30 min "
+           "after it (at most 60 min + 30 min)." if DEFROST_SIGNAL else
+           "no defrost signal is given (`--no-defrost-signal`)."),
         "", "Forecasts support decisions; they are not a food-safety plan or a regulatory record.",
         "", *table(results), ""])
     out = Path(args.out)

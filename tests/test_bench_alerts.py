@@ -64,3 +64,19 @@ def test_sawtooth_period(bench):
     off = math.log((20.0 - 2.0) / (20.0 - 5.0)) / k
     on = math.log((5.0 + 8.0) / (2.0 + 8.0)) / k
     assert off + on == pytest.approx(1800.0)
+
+
+def test_defrost_signal_is_the_controllers_on_and_off(bench):
+    """The bench tells the probes of each defrost as the controller would: on at the start of each
+    defrost piece, off when its timer ends it; after a power failure cut it, no off arrives."""
+    rng = np.random.default_rng([2026, 0, 0])
+    p = bench.draw(bench.ROOM, rng)
+    pieces = bench.room_pieces(p, 2 * bench.DAY, rng)
+    starts = [q[0] for q in pieces if q[1] == p["defrost_drive"]]
+    assert len(starts) >= 5  # every 6-8 h over two days
+    sig = bench.defrost_signal(pieces, p)
+    assert sig == [x for s in starts for x in ((s, 1.0), (s + p["defrost_s"], 0.0))]
+    cut = starts[-1] + 60.0
+    assert bench.defrost_signal(pieces, p, cut, off_at_cut=False)[-1] == (starts[-1], 1.0)
+    timer_end = (starts[-1] + p["defrost_s"], 0.0)
+    assert bench.defrost_signal(pieces, p, cut, off_at_cut=True)[-1] == timer_end

@@ -15,6 +15,15 @@ inside but not yet by the band, for ``hold_s``); an approach clears only when th
 the interval has stayed beyond a band of one more lead (2 x lead) for ``hold_s``.  While crossed, a reminder goes out every
 ``remind_every_s`` unless the episode was acknowledged.
 
+Defrost hold (common practice in the trade: temperature alarms wait through a defrost and a
+recovery delay after it, because the room air swings up while the coil is heated).  When the
+forecast carries the item's newest defrost (``"defrost": {"started_at", "ended_at"}``, from the
+controller's defrost signal, see ``daemon/defrost.py``), no new level is raised from its start
+until ``defrost_recovery_s`` after its end: no ``approaching``, no ``crossed``.  A value still past
+the threshold when the hold ends raises ``crossed`` then.  A signal that never ends holds at most
+``defrost_max_s`` (plus the recovery delay), so a stuck defrost signal cannot silence an item.
+Levels already raised go on as before (reminders, recoveries).
+
 :func:`step` is the whole engine: ``step(state, forecast, params, now, acked) -> events``; it
 mutates ``state`` (a JSON-able :class:`ItemAlertState`) and returns what to send.
 """
@@ -43,19 +52,26 @@ class RuleParams:
     # How long until the next refit looks again: an approach is raised when the early end of the
     # interval falls within lead + this, so the warning is never later than lead.
     check_every_s: float = 0.0
+    # The defrost hold (module docstring): the recovery delay after a defrost ends, and the
+    # longest a defrost may hold alerts however long its signal stays on.
+    defrost_recovery_s: float = 1800.0
+    defrost_max_s: float = 3600.0
 
     def __post_init__(self) -> None:
-        for name in ("lead_s", "hold_s", "remind_every_s"):
+        for name in ("lead_s", "hold_s", "remind_every_s", "defrost_max_s"):
             if not getattr(self, name) > 0:
                 raise ValueError(f"{name} must be > 0, got {getattr(self, name)!r}")
-        if not self.hysteresis >= 0:
-            raise ValueError(f"hysteresis must be >= 0, got {self.hysteresis!r}")
+        for name in ("hysteresis", "defrost_recovery_s"):
+            if not getattr(self, name) >= 0:
+                raise ValueError(f"{name} must be >= 0, got {getattr(self, name)!r}")
 
     @classmethod
     def of(cls, item_cfg: Any, check_every_s: float = 0.0) -> RuleParams:
         return cls(threshold=item_cfg.threshold, lead_s=item_cfg.lead_s,
                    hysteresis=item_cfg.hysteresis, hold_s=item_cfg.hold_s,
-                   remind_every_s=item_cfg.remind_every_s, check_every_s=check_every_s)
+                   remind_every_s=item_cfg.remind_every_s, check_every_s=check_every_s,
+                   defrost_recovery_s=getattr(item_cfg, "defrost_recovery_s", 1800.0),
+                   defrost_max_s=getattr(item_cfg, "defrost_max_s", 3600.0))
 
 
 @dataclass
@@ -156,6 +172,27 @@ def approach_eased(fc: dict[str, Any], p: RuleParams, now: float) -> bool:
     return early is None or early > 2.0 * p.lead_s + p.check_every_s
 
 
+def defrost_hold_until(fc: dict[str, Any], p: RuleParams) -> tuple[float, float] | None:
+    """(start, end) of the hold of the forecast's newest defrost, or None without one: from the
+    defrost's start to its end (at most ``defrost_max_s`` after the start; a signal still on counts
+    as ending then) plus the recovery delay."""
+    d = fc.get("defrost")
+    if not isinstance(d, dict):
+        return None
+    start = _t(d.get("started_at"))
+    if start is None:
+        return None
+    end = _t(d.get("ended_at"))
+    cut = start + p.defrost_max_s
+    end = cut if end is None else min(max(end, start), cut)
+    return start, end + p.defrost_recovery_s
+
+
+def in_defrost_hold(fc: dict[str, Any], p: RuleParams, now: float) -> bool:
+    span = defrost_hold_until(fc, p)
+    return span is not None and span[0] <= now < span[1]
+
+
 def step(st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float,
          acked: bool = False) -> list[Event]:
     """Advance ``st`` by one forecast; return the alerts it raises (often none)."""
@@ -175,6 +212,7 @@ def step(st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float,
         return events
     v = float(v)
     thr = p.threshold
+    held = in_defrost_hold(fc, p, now)
     if st.level == "clear":
         # The unsafe side is learnt from the first travel toward the limit and then kept: a load
         # cooling back down after a crossing is recovering, not heading for a floor.
@@ -184,6 +222,8 @@ def step(st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float,
         if side is None:
             return events
         st.side = side
+        if held:
+            return events  # a defrost and its recovery delay raise nothing new
         if is_past(v, side, thr):
             _enter(st, "crossed", side, now, new_episode=True)
             events.append(Event("crossed"))
@@ -193,7 +233,9 @@ def step(st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float,
         return events
     side = st.side or side_of(fc, thr) or "upper"
     if st.level == "approaching":
-        if is_past(v, side, thr):
+        if is_past(v, side, thr) and held:
+            st.off_since = None  # the crossing waits for the end of the hold
+        elif is_past(v, side, thr):
             _enter(st, "crossed", side, now)
             events.append(Event("crossed"))
         elif not approach_eased(fc, p, now):
