@@ -95,7 +95,9 @@ def test_demo_headless_forecasts_against_truth(headless_run):
     items = s["items"]
     for name, tol in TOLERANCE.items():
         ahead = items[name]["ahead"]
-        assert len(ahead) >= 3, (name, items[name])
+        # at --speed 320 a refit round comes every 320 simulated s: the wort, chilled in minutes,
+        # is forecast two or three times between its approach and its crossing
+        assert len(ahead) >= 2, (name, items[name])
         med = _median([abs(a["rel_error"]) for a in ahead])
         assert med <= tol, (name, med)
 
