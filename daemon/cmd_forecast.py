@@ -82,7 +82,8 @@ def run(args: argparse.Namespace) -> int:
     try:
         series = read_series(args.csv)
         if series.t.size < 2:
-            raise InputError(f"{args.csv}: too few readings to fit ({series.t.size}; want at least 2)")
+            raise InputError(f"{args.csv}:{series.last_line}: too few readings to fit "
+                             f"({series.t.size}; want at least 2)")
         limit = args.limit
         if limit == "auto":
             # As the daemon does: a probe that starts below its threshold has an upper limit.
@@ -99,7 +100,7 @@ def run(args: argparse.Namespace) -> int:
             limit=limit,
         )
         if not fc.ok and fc.reason and fc.reason.startswith("too few"):
-            raise InputError(f"{args.csv}: {fc.reason}")
+            raise InputError(f"{args.csv}:{series.last_line}: {fc.reason}")
     except InputError as exc:
         print(f"thermeta forecast: {exc}", file=sys.stderr)
         return 2

@@ -22,6 +22,7 @@ class Series:
     y: np.ndarray
     ambient_t: np.ndarray | None
     ambient_y: np.ndarray | None
+    last_line: int = 0  # the file's last line read, for messages about the readings as a whole
 
 
 def _number(text: str, where: str, column: str) -> float:
@@ -96,4 +97,5 @@ def read_series(path: str | Path) -> Series:
         y=np.asarray(y),
         ambient_t=np.asarray(at) if has_amb else None,
         ambient_y=np.asarray(ay) if has_amb else None,
+        last_line=reader.line_num,
     )

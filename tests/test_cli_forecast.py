@@ -61,7 +61,7 @@ def test_ambient_column_selects_measured(tmp_path):
         (b"time,value\n1764600000,1\nyesterday,2\n", ":3: time: unparseable time"),
         (b"time,value\n2026-12-01T10:00:00,1\n", "has no zone"),
         (b"\x89PNG\r\n\x1a\n\x00\x00\x00\rIHDR", "binary data"),
-        (b"time,value\n1764600000,1\n", "too few readings"),
+        (b"time,value\n1764600000,1\n", ":2: too few readings"),
         (b"", "empty file"),
     ],
 )
