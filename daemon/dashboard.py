@@ -52,6 +52,7 @@ class Row:
     spark: list[float] = field(default_factory=list)
     group: str = ""
     alert: str | None = None  # the open alert level, "+ack" when acknowledged
+    defrost: bool = False  # the controller's defrost signal is on: new alerts are held
 
     @property
     def urgency(self) -> tuple:
@@ -109,7 +110,8 @@ def collect(store: Any, now: float | None = None, *, history_s: float = 3 * 3600
             eta_lo_s=remaining_s(d, "eta_lo_s", now), eta_hi_s=remaining_s(d, "eta_hi_s", now),
             ambient=d.get("ambient"), tau_s=d.get("time_constant_s"),
             trend_per_h=_trend_per_h(series), spark=_buckets(series, now - history_s, now, spark_n),
-            group=_group_of(name, d, topics.get(name)), alert=alert_levels.get(name)))
+            group=_group_of(name, d, topics.get(name)), alert=alert_levels.get(name),
+            defrost=bool((d.get("defrost") or {}).get("on"))))
     return Board(rows=rows, connected=daemon.get("connected"), running=running,
                  broker=str(daemon.get("broker", "?")), readings_per_s=daemon.get("readings_per_s"),
                  dead_letters=daemon.get("dead_letters"), last_refit_at=store.last_refit_at(),
@@ -313,6 +315,8 @@ def render(board: Board, width: int = 80, height: int = 24, *, text_filter: str 
         name = r.item
         if grouped and name.startswith(current + "/"):
             name = name[len(current) + 1:]
+        if r.defrost:
+            name += " (defrost)"  # at the end, which fit_name keeps: new alerts are held
         sign = UNIT_SIGN.get(r.unit, r.unit) if wide else ""
         hot = style if r.state in ("crossed", "approaching") else ""
         table.add_row(label, fit_name(name, w["item"]),
@@ -347,7 +351,8 @@ def plain_lines(board: Board) -> list[str]:
     for r in visible(board):
         out.append(f"{r.item} {r.state} now {_num(r.value)} {r.unit} limit {_num(r.threshold)} "
                    f"eta {eta_text(r)} ambient {_num(r.ambient)} tau {human_duration(r.tau_s)}"
-                   + (f" alert {r.alert}" if r.alert else ""))
+                   + (f" alert {r.alert}" if r.alert else "")
+                   + (" defrost" if r.defrost else ""))
     return out
 
 

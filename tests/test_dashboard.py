@@ -245,3 +245,27 @@ ambient = 27.0
         daemon.wait(20)
         log.close()
     assert daemon.returncode == 0
+
+
+def test_an_item_in_defrost_says_so(tmp_path):
+    """While the controller's defrost signal is on, new alerts are held (daemon/alerts/rules.py):
+    the board says "(defrost)" after the item's name, so an approaching air probe without an alert is
+    explained, and the plain lines say it too."""
+    from thermeta.daemon.dashboard import plain_lines
+
+    store = fill_store(f"sqlite:///{tmp_path / 'd.db'}")
+    iid = store.ensure_item("cold-room-a/air", now=NOW)
+    store.write_batch([(iid, NOW - 60 * k, 5.0 + 0.01 * k, 0, NOW) for k in range(30)])
+    body = {"item": "cold-room-a/air", "state": "approaching", "value_now": 5.0, "threshold": 8.0,
+            "unit": "C", "eta_s": 2400.0, "eta_lo_s": 1500.0, "eta_hi_s": 4000.0, "ambient": 9.0,
+            "time_constant_s": 3000.0, "last_reading_at": rfc3339(NOW), "fit_ok": True,
+            "warnings": [], "defrost": {"on": True, "started_at": rfc3339(NOW - 900),
+                                        "ended_at": None}}
+    store.save_forecast(iid, NOW, "approaching", body, NOW)
+    board = collect(store, NOW)
+    lines = [ln for ln in text_of(store, 120, 40).splitlines() if "cold-room-a/air" in ln]
+    assert len(lines) == 1 and "approaching" in lines[0] and "cold-room-a/air (defrost)" in lines[0]
+    others = [ln for ln in text_of(store, 120, 40).splitlines() if "trailer-4" in ln]
+    assert others and "defrost" not in others[0]
+    plain = [ln for ln in plain_lines(board) if ln.startswith("cold-room-a/air ")]
+    assert plain and plain[0].endswith(" defrost")
