@@ -20,6 +20,11 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--threshold", type=float, required=True, help="the limit to forecast")
     p.add_argument("--ambient", type=float, help="known constant ambient (known mode)")
     p.add_argument(
+        "--ambient-within", type=float, metavar="W",
+        help="the known ambient is right to within +-W (sd W / sqrt 3; default a 2.5 degC sd), "
+             "in the unit of the values",
+    )
+    p.add_argument(
         "--model", choices=["lumped", "slab", "cylinder", "sphere", "auto"], default="lumped",
         help="lumped (Newton) or a centre probe in a slab, long cylinder or sphere",
     )
@@ -75,11 +80,30 @@ def summary(fc, unit: str, source: str) -> str:
     return "\n".join(lines)
 
 
+def _ambient_sd(args: argparse.Namespace) -> float | None:
+    """The given ambient's doubt as a sd in the values' unit (None: no ambient given)."""
+    from thermeta.daemon.units import scale_from_celsius
+    from thermeta.predictors.forecast import AMBIENT_UNCERTAINTY, ambient_sd_within
+
+    if args.ambient_within is not None:
+        if args.ambient is None:
+            raise InputError("--ambient-within says how far off --ambient may be: "
+                             "give --ambient too")
+        if not args.ambient_within >= 0 or args.ambient_within == float("inf"):
+            raise InputError(f"--ambient-within must be a number >= 0, got {args.ambient_within:g}")
+        return ambient_sd_within(args.ambient_within)
+    if args.ambient is None:
+        return None
+    # the default doubt is stated in degC; the values may be in degF
+    return scale_from_celsius(AMBIENT_UNCERTAINTY, args.unit)
+
+
 def run(args: argparse.Namespace) -> int:
     from thermeta.daemon.csvio import read_series
     from thermeta.predictors import forecast
 
     try:
+        amb_sd = _ambient_sd(args)
         series = read_series(args.csv)
         if series.t.size < 2:
             raise InputError(f"{args.csv}:{series.last_line}: too few readings to fit "
@@ -98,6 +122,7 @@ def run(args: argparse.Namespace) -> int:
             ambient_t=series.ambient_t if args.ambient is None else None,
             ambient_y=series.ambient_y if args.ambient is None else None,
             limit=limit,
+            **({} if amb_sd is None else {"ambient_uncertainty": amb_sd}),
         )
         if not fc.ok and fc.reason and fc.reason.startswith("too few"):
             raise InputError(f"{args.csv}:{series.last_line}: {fc.reason}")

@@ -103,6 +103,9 @@ class ItemConfig:
     threshold: float
     unit: str = "C"
     ambient: float | None = None
+    # the given ambient is right to within +- this (item unit; sd this / sqrt 3); None: the
+    # forecast's default doubt (AMBIENT_UNCERTAINTY, 1 sd, degC)
+    ambient_within: float | None = None
     ambient_topic: str | None = None
     model: str = "lumped"
     window_s: float = 7200.0
@@ -135,6 +138,16 @@ class ItemConfig:
     @property
     def ambient_c(self) -> float | None:
         return None if self.ambient is None else to_celsius(self.ambient, self.unit)
+
+    @property
+    def ambient_sd_c(self) -> float | None:
+        """The given ambient's doubt as a sd in degC (None: the forecast's default)."""
+        if self.ambient_within is None:
+            return None
+        from thermeta.daemon.units import scale_to_celsius
+        from thermeta.predictors.forecast import ambient_sd_within
+
+        return ambient_sd_within(scale_to_celsius(self.ambient_within, self.unit))
 
     @property
     def plausible_c(self) -> tuple[float, float]:
@@ -491,7 +504,8 @@ def _ingest(c: _Checker, t: dict) -> IngestConfig:
     )
 
 
-ITEM_KEYS = {"name", "topic", "threshold", "unit", "ambient", "ambient_topic", "model", "window",
+ITEM_KEYS = {"name", "topic", "threshold", "unit", "ambient", "ambient_within", "ambient_topic",
+             "model", "window",
              "min_points", "plausible", "senml_name", "site", "limit", "prior_class",
              "defrost_topic", "defrost_recovery", "defrost_max"} | set(ALERT_KEYS)
 
@@ -522,6 +536,10 @@ def _items(c: _Checker, raw: Any, fit: FitConfig, alerts: AlertDefaults,
         if ambient is not None and ambient_topic is not None:
             c.problem(w + ("ambient_topic",), "item.ambient_topic",
                       "give ambient (known) or ambient_topic (measured), not both")
+        ambient_within = c.get(t, w, "ambient_within", "num", minimum=0)
+        if ambient_within is not None and ambient is None:
+            c.problem(w + ("ambient_within",), "item.ambient_within",
+                      "says how far off the given ambient may be: give ambient too")
         if topic is not None:
             err = check_filter(topic)
             if err:
@@ -563,6 +581,7 @@ def _items(c: _Checker, raw: Any, fit: FitConfig, alerts: AlertDefaults,
         item = ItemConfig(
             name=name or "", topic=topic or "", threshold=float(threshold or 0.0), unit=unit or "C",
             ambient=None if ambient is None else float(ambient), ambient_topic=ambient_topic,
+            ambient_within=None if ambient_within is None else float(ambient_within),
             model=c.get(t, w, "model", "str", fit.model, choices=MODELS),
             window_s=float(c.get(t, w, "window", "num", fit.window_s, positive=True)),
             min_points=c.get(t, w, "min_points", "int", fit.min_points, minimum=3),

@@ -214,6 +214,8 @@ class Refitter:
         kw: dict[str, Any] = {"model": cfg.model, "ambient": cfg.ambient_c, "ambient_t": amb_t,
                               "ambient_y": amb_y, "window_s": cfg.window_s,
                               "min_points": cfg.min_points, "limit": limit}
+        if cfg.ambient is not None and cfg.ambient_sd_c is not None:
+            kw["ambient_uncertainty"] = cfg.ambient_sd_c
         try:
             fc = self._predict(t, y, cfg.threshold_c, prior=prior, **kw)
             if not fc.ok and len(rows) >= cfg.min_points:

@@ -31,3 +31,8 @@ def scale_from_celsius(delta_c: float, unit: str) -> float:
     if unit not in UNITS:
         raise ValueError(f"unit must be one of {', '.join(UNITS)}, got {unit!r}")
     return float(delta_c) * (9.0 / 5.0 if unit == "F" else 1.0)
+
+
+def scale_to_celsius(delta: float, unit: str) -> float:
+    """A temperature difference in ``unit`` in degC steps (the inverse of scale_from_celsius)."""
+    return float(delta) / scale_from_celsius(1.0, unit)

@@ -44,6 +44,17 @@ MODELS = ("lumped", "slab", "cylinder", "sphere", "auto")
 CONDUCTION = ("slab", "cylinder", "sphere")
 Z90 = 1.6448536269514722  # the standard normal's 95th percentile (two-sided 90 %)
 AMBIENT_UNCERTAINTY = 2.5  # a "known" ambient is typically known to a couple of degrees
+# "the given ambient is right to within +-w" is a bound with nothing known of where inside it:
+# the rectangular distribution's standard uncertainty u = w / sqrt(3) (GUM, JCGM 100:2008,
+# 4.3.7, from memory), folded into the fit as a Gaussian prior of that sd
+WITHIN_DIVISOR = math.sqrt(3.0)
+
+
+def ambient_sd_within(within: float) -> float:
+    """The sd of a given ambient said to be right to within +-``within``: within / sqrt(3)."""
+    if not math.isfinite(within) or within < 0:
+        raise ValueError(f"ambient_within must be a number >= 0, got {within!r}")
+    return float(within) / WITHIN_DIVISOR
 MIN_POINTS = 5  # three parameters and two degrees of freedom for the residual scatter
 MIN_POINTS_KNOWN = 4  # a given ambient is one more observation; a measured one leaves 2 parameters
 MIN_FEW_POINTS = 2  # fewer than a curve fit needs: the two-reading solve, or a straight trend
@@ -493,7 +504,7 @@ def _fill_lumped(fc: Forecast, fit: LumpedFit, ambient, amb_sd) -> None:
     fc.interval_method = "profile likelihood"
     fc.params = {"t_first": fit.t_first, "amplitude": fit.amplitude, "ambient": fit.ambient,
                  "k_per_s": fit.k_per_s, "value_fit_now": fit.value_fit_now, "rss": fit.rss,
-                 "n_fit": float(fit.n), "n_params": float(fit.n - fit.dof)}
+                 "n_fit": float(fit.n), "n_params": float(fit.n_par)}
     if fit.bend_kept < 1.0:
         # the point ETA follows the fit's present value and slope with the bend shrunk (lumped)
         fc.params.update(k_ahead_per_s=fit.bend_kept * fit.k_per_s, ahead_from_t=fit.t_last)

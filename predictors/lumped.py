@@ -187,7 +187,8 @@ class LumpedFit:
     t_last: float = math.nan
     amplitude: float = math.nan  # b: T(t_first) - ambient
     rss: float = math.nan
-    dof: int = 0
+    dof: int = 0  # readings plus priors (one pseudo-observation each) minus parameters
+    n_par: int = 3  # parameters fitted (the ambient counts when a prior, not a constant, holds it)
     sigma: float = math.nan
     eta_s: float | None = None
     eta_lo_s: float | None = None
@@ -279,6 +280,9 @@ def fit_lumped(
     y = np.asarray(y, float)
     n = t.size
     n_par = 2 if (ambient is not None and ambient_sd == 0) else 3
+    # each Gaussian prior is one more observation (of a, of ln k) whose squared residual is in
+    # the penalised RSS: it adds one degree of freedom to the RSS's, as a reading would
+    n_prior = int(ambient is not None and ambient_sd > 0) + int(k_prior is not None)
     # a given ambient with a spread is a Gaussian prior: one more observation of a
     if n < n_par + 2 - (1 if ambient is not None and ambient_sd > 0 else 0):
         return LumpedFit(False, f"too few readings to fit ({n})", n=n)
@@ -330,17 +334,17 @@ def fit_lumped(
             pen.sigma = sig
             k_hat = best_k(lam)
             r_hat = objective(math.log(k_hat), lam)
-            sig = max(math.sqrt(r_hat / max(n - 3, 1)), 1e-9)
+            sig = max(math.sqrt(r_hat / max(n + n_prior - n_par, 1)), 1e-9)
     else:
         k_hat = best_k(lam)
     s_hat = sums(d, yc, np.array([k_hat]))
     a_hat, b_hat, r_hat = (float(v[0]) for v in solve_fixed_k(s_hat, lam, a0, lo, hi))
     r_hat += float(pen(s_hat.k)[0])
     fit_y = a_hat + b_hat * np.exp(-k_hat * d)
-    dof = max(n - n_par, 1)
+    dof = max(n + n_prior - n_par, 1)
     fit = LumpedFit(
         True, k_per_s=k_hat, ambient=a_hat + ybar, amplitude=b_hat, t_first=float(t[0]),
-        t_last=float(t[-1]), value_fit_now=float(fit_y[-1] + ybar), rss=r_hat, dof=dof,
+        t_last=float(t[-1]), value_fit_now=float(fit_y[-1] + ybar), rss=r_hat, dof=dof, n_par=n_par,
         sigma=math.sqrt(r_hat / dof), residuals=yc - fit_y, n=n, bounds=(lo + ybar, hi + ybar),
     )
     fit.eta_s, fit.direction = crossing_eta(fit.value_fit_now, fit.ambient, k_hat, threshold,

@@ -42,6 +42,7 @@ from pathlib import Path
 import numpy as np
 from thermeta.predictors import baselines, synth
 from thermeta.predictors import forecast as forecast_fn
+from thermeta.predictors.forecast import ambient_sd_within
 from thermeta.predictors.synth import Corruption, Synth
 
 MIN = 60.0
@@ -181,6 +182,12 @@ class Case:
     given_ambient: float | None = None
 
 
+def told_sd(family: str) -> float:
+    """The doubt the predictor is told for a family's given ambient: right to within the
+    error range's half-width (``ambient_within`` of the config: sd = half-width / sqrt 3)."""
+    return ambient_sd_within(max(abs(e) for e in PARAMS[family]["ambient_error"]))
+
+
 def lumped_case(p: dict, frac: float, variant: str, seed: int, known: bool) -> Case:
     k = 1.0 / p["tau_s"]
     cross = synth.lumped_crossing_s(p["T0"], p["ambient"], k, p["threshold"])
@@ -190,7 +197,9 @@ def lumped_case(p: dict, frac: float, variant: str, seed: int, known: bool) -> C
     given = None
     if known:
         given = p["ambient"] + p["ambient_error"]
+        # told what the operator knows: the given ambient is right to within the error's range
         kw["ambient"] = given
+        kw["ambient_uncertainty"] = told_sd("warm_known")
     crb = dict(T0=p["T0"], ambient=p["ambient"], k_per_s=k, known=known)
     if known:
         # the given ambient is the truth plus a uniform error: its spread is what is known
@@ -353,7 +362,8 @@ def run_regime_case(index: int, seed: int) -> list[dict]:
         s = synth.regime_change(case_seed, T0=p["T0"], k_per_s=k, steps=steps,
                                 threshold=p["threshold"], duration_s=closed + after,
                                 dt_s=p["dt_s"], corruption=corruption(p, "clean"))
-        case = Case(s, {"ambient": given, "limit": p["limit"]}, given_ambient=given)
+        kw = {"ambient": given, "ambient_uncertainty": told_sd(family), "limit": p["limit"]}
+        case = Case(s, kw, given_ambient=given)
         rec = evaluate(family, p, case)
         rec.update(family=family, variant="clean", progress=after, index=index)
         recs.append(rec)

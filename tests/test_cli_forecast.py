@@ -110,3 +110,45 @@ def test_never_reaching_threshold_gives_null(tmp_path):
     write_warming_csv(p)
     out = json.loads(run_cli("forecast", str(p), "--threshold", "40", "--ambient", "27", "--json").stdout)
     assert out["eta_s"] is None and out["crossing_at"] is None
+
+
+def test_ambient_within_narrows_the_ambient_band(tmp_path):
+    """--ambient-within W says the given ambient is right to within +-W: a smaller W gives a
+    narrower ambient band (the doubt is a prior of sd W / sqrt 3); without --ambient it is an
+    error naming the missing option, exit 2."""
+    p = tmp_path / "load.csv"
+    write_warming_csv(p)
+    bands = {}
+    for w in ("0.5", "6"):
+        r = run_cli("forecast", str(p), "--threshold", "12", "--ambient", "26", "--ambient-within",
+                    w, "--json")
+        assert r.returncode == 0, r.stderr
+        out = json.loads(r.stdout)
+        bands[w] = out["ambient_hi"] - out["ambient_lo"]
+    assert bands["0.5"] < 0.5 * bands["6"]
+    r = run_cli("forecast", str(p), "--threshold", "12", "--ambient-within", "2")
+    assert r.returncode == 2 and "give --ambient too" in r.stderr
+    r = run_cli("forecast", str(p), "--threshold", "12", "--ambient", "26",
+                "--ambient-within", "-1")
+    assert r.returncode == 2 and ">= 0" in r.stderr
+
+
+def test_default_ambient_doubt_follows_the_unit(tmp_path):
+    """The default doubt of a given ambient is 2.5 degC (1 sd): the same readings in degF give
+    the same forecast and an ambient band 9/5 as wide (the doubt scaled too; left at 2.5 degF
+    the band comes out about 8 % narrower)."""
+    rng = np.random.default_rng(7)
+    t = np.arange(0, 2 * 3600, 60.0)
+    y = 27 + (2 - 27) * np.exp(-t / 18000) + rng.normal(0, 0.05, t.size)
+    out = {}
+    for unit, conv in (("C", lambda v: v), ("F", lambda v: v * 9 / 5 + 32)):
+        p = tmp_path / f"load_{unit}.csv"
+        p.write_text("time,value\n" + "".join(f"{1764600000 + a:.0f},{conv(b):.3f}\n"
+                                              for a, b in zip(t, y)))
+        r = run_cli("forecast", str(p), "--threshold", f"{conv(12.0):g}", "--ambient",
+                    f"{conv(25.0):g}", "--unit", unit, "--json")
+        assert r.returncode == 0, r.stderr
+        out[unit] = json.loads(r.stdout)
+    assert out["F"]["eta_s"] == pytest.approx(out["C"]["eta_s"], rel=0.01)
+    band = {u: out[u]["ambient_hi"] - out[u]["ambient_lo"] for u in out}
+    assert band["F"] == pytest.approx(band["C"] * 9 / 5, rel=0.02)

@@ -141,6 +141,21 @@ def test_units_are_converted_to_celsius(tmp_path):
     assert it.plausible_c == pytest.approx((-100.0, 200.0))
 
 
+def test_ambient_within_is_a_difference_in_the_items_unit(tmp_path):
+    """ambient_within = 5.4 degF is 3 degC (a step, 5/9 as big, no offset), read as a bound:
+    sd = 3 / sqrt 3 (the rectangular distribution, GUM JCGM 100:2008 4.3.7, from memory);
+    without ambient it is a problem on its line."""
+    cfg = load_config(write(tmp_path, '[[item]]\nname = "walkin"\ntopic = "k/w"\nunit = "F"\n'
+                                       'threshold = 41\nambient = 75.2\nambient_within = 5.4\n'))
+    assert cfg.items[0].ambient_sd_c == pytest.approx(3.0 / 3 ** 0.5, rel=1e-9)
+    assert load_config(write(tmp_path, MINIMAL)).items[0].ambient_sd_c is None
+    got = problems(tmp_path, '[[item]]\nname = "w"\ntopic = "k/w"\nthreshold = 8\n'
+                             'ambient_within = 2\n')
+    assert any(":5: item.ambient_within: " in line and "give ambient too" in line for line in got)
+    got = problems(tmp_path, MINIMAL + "ambient_within = -1\n")
+    assert any("item.ambient_within" in line for line in got)
+
+
 def test_alert_and_hook_keys_are_validated(tmp_path, monkeypatch):
     """Issue 4's keys: [alerts] defaults with per-item overrides, and [[hook]] tables per kind."""
     monkeypatch.setenv("H3_TEST_TOKEN", "t")

@@ -250,6 +250,29 @@ def test_fahrenheit_item_is_fitted_in_celsius_and_published_in_fahrenheit(tmp_pa
     store.close()
 
 
+def test_ambient_within_reaches_the_refit(tmp_path):
+    """An item's ambient_within (its unit) is the doubt the refit's fit gives the ambient: 1.8 degF
+    on a degF item fits like 1 degC on a degC item (a band 9/5 as wide in degF), and both are
+    narrower than the same items without it (the default doubt, 2.5 degC sd)."""
+    t_rel = np.arange(0, 1800, 30.0)
+    rng = np.random.default_rng(9)
+    y_c = warming(t_rel) + rng.normal(0, 0.02, t_rel.size)
+    t = T0 - 1800 + t_rel
+    items = ('[[item]]\nname = "f"\ntopic = "k/f"\nunit = "F"\nthreshold = 46.4\nambient = 77.0\n'
+             'ambient_within = 1.8\n'
+             '[[item]]\nname = "c"\ntopic = "k/c"\nthreshold = 8.0\nambient = 25.0\n'
+             'ambient_within = 1.0\n'
+             '[[item]]\nname = "plain"\ntopic = "k/p"\nthreshold = 8.0\nambient = 25.0\n')
+    cfg, store, act = seeded_store(tmp_path, items, {n: (t, y_c) for n in ("f", "c", "plain")})
+    got: dict[str, dict] = {}
+    Refitter(store, cfg, ManualClock(T0), act,
+             publish=lambda n, p: got.update({n: json.loads(p)})).run_once()
+    band = {n: got[n]["ambient_hi"] - got[n]["ambient_lo"] for n in got}
+    assert band["f"] == pytest.approx(band["c"] * 9 / 5, rel=1e-3)
+    assert band["c"] < 0.8 * band["plain"]
+    store.close()
+
+
 def test_auto_protocol_falls_back_to_mqtt_311(tmp_path):
     """protocol = "auto" against a broker that speaks only MQTT 3.1.1 (amqtt, a real broker):
     the daemon retries with 3.1.1, stores what is published, and says so in the log."""
