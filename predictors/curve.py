@@ -28,11 +28,13 @@ def predict(fc: Forecast, t: ArrayLike) -> np.ndarray:
         if "k_ahead_per_s" in p:
             # ahead of the newest reading, the curve the point ETA uses: the fit's present value
             # and slope with its bend shrunk (lumped.bend_weight); the tangent when k_ahead = 0
+            # (or, over a fitted level-off, the readings' straight trend: ahead_value/_slope)
             x = tt - p["ahead_from_t"]
             slope = -k * p["amplitude"] * np.exp(-k * (p["ahead_from_t"] - p["t_first"]))
+            slope = p.get("ahead_slope_per_s", slope)
             kw = p["k_ahead_per_s"]
             rise = slope * x if kw <= 0 else slope / kw * -np.expm1(-kw * np.maximum(x, 0.0))
-            v = np.where(x > 0, p["value_fit_now"] + rise, v)
+            v = np.where(x > 0, p.get("ahead_value", p["value_fit_now"]) + rise, v)
         return v
     if "air_ambient" in p and fc.t_last is not None:
         x = tt - fc.t_last

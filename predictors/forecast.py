@@ -508,6 +508,8 @@ def _fill_lumped(fc: Forecast, fit: LumpedFit, ambient, amb_sd) -> None:
     if fit.bend_kept < 1.0:
         # the point ETA follows the fit's present value and slope with the bend shrunk (lumped)
         fc.params.update(k_ahead_per_s=fit.bend_kept * fit.k_per_s, ahead_from_t=fit.t_last)
+    if fit.trend_now is not None:
+        fc.params.update(ahead_value=fit.trend_now[0], ahead_slope_per_s=fit.trend_now[1])
     if ambient is not None and amb_sd > 0:
         fc.warnings.append(
             f"the given ambient {ambient:g} is taken as uncertain by about {amb_sd:g} (1 sd); "
@@ -516,7 +518,12 @@ def _fill_lumped(fc: Forecast, fit: LumpedFit, ambient, amb_sd) -> None:
             and fc.ambient_hi - fc.ambient_lo > max(10.0, abs(fc.ambient - fc.value_now))):
         fc.warnings.append("the ambient is poorly determined by the readings so far; "
                                "give it (--ambient) or measure it for a firmer forecast")
-    if fit.straight:
+    if fit.trend_now is not None:
+        fc.warnings.append(
+            "the best fit levels off short of the threshold, but the readings show no "
+            "significant bend: the ETA follows their straight trend, which gets there within "
+            "as long again as they have been watched; the interval spans every curve they allow")
+    elif fit.straight:
         fc.warnings.append(
             "no significant bend in the readings yet, so the ambient and k are barely known: the "
             "ETA extrapolates the present slope (early if the curve levels off); the interval "

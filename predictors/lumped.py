@@ -204,6 +204,9 @@ class LumpedFit:
     bounds: tuple[float, float] = (-math.inf, math.inf)  # the plausible range the ambient had
     straight: bool = False  # no clear curvature: eta from the straight tangent (see bend_weight)
     bend_kept: float = 1.0  # share of the fitted k kept ahead in the point ETA (see bend_weight)
+    # set when an unbent straight trend overrides a fitted level-off: its value and slope (per s)
+    # at the newest reading, which the point ETA and the curve ahead follow
+    trend_now: tuple[float, float] | None = None
 
     def curve(self, t: np.ndarray) -> np.ndarray:
         """T(t) = a + b e^(-k (t - t_first))."""
@@ -359,9 +362,23 @@ def fit_lumped(
         eta_w = shrunk_eta(float(fit_y[-1]), slope_now, w * k_hat, thr, limit)
         if w < 1.0 and eta_w is not None:
             fit.eta_s, fit.bend_kept, fit.straight = eta_w, w, w == 0.0
+    elif ambient is None and k_prior is None and fit.eta_s is None and n >= 3:
+        # a level-off the readings do not show (no bend at all by the F test) whose straight
+        # trend reaches the threshold within as long again as it has been watched: the trend
+        # (the straight line through the readings, the model the F test could not reject)
+        if bend_weight(d, yc, r_hat, dof) == 0.0:
+            slope, icpt = np.polyfit(d, yc, 1)
+            eta_t = shrunk_eta(float(icpt + slope * D), float(slope), 0.0, thr, limit)
+            if eta_t is not None and eta_t <= TREND_REACH * D:
+                fit.eta_s, fit.bend_kept, fit.straight = eta_t, 0.0, True
+                fit.direction = "rising" if slope > 0 else "falling"
+                fit.trend_now = (float(icpt + slope * D + ybar), float(slope))
     if intervals:
         add_intervals(fit, d, yc, thr, lam, a0, lo, hi, ybar, k_grid, pen)
     return fit
+
+
+TREND_REACH = 1.0  # an unbent trend is taken over a level-off up to this many spans of readings ahead
 
 
 def bend_weight(d: np.ndarray, yc: np.ndarray, rss: float, dof: int) -> float:
