@@ -39,6 +39,9 @@ from thermeta.predictors import forecast, synth
 from thermeta.predictors.scenarios import first_crossing, thermostat_pieces, two_stage
 from thermeta.predictors.synth import Corruption
 
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from readme_block import update_readme  # noqa: E402 - the scripts folder, put on the path above
+
 MIN = 60.0
 H = 3600.0
 DAY = 24 * H
@@ -300,16 +303,6 @@ README_BEGIN = "<!-- bench_alerts: begin (written by scripts/bench_alerts.py --r
 README_END = "<!-- bench_alerts: end -->"
 
 
-def update_readme(path: Path, block: str) -> str | None:
-    """Replace the text between this bench's markers in README.md; an error message or None."""
-    text = path.read_text()
-    i, j = text.find(README_BEGIN), text.find(README_END)
-    if i < 0 or j < i:
-        return f"{path}: the bench's markers are missing; add them to its section first"
-    path.write_text(text[:i] + block + text[j + len(README_END):])
-    return None
-
-
 def run_all(cases: dict, days: float, seed: int, jobs: int = 1) -> tuple[list[dict], float]:
     """Every trace; returns one result per trace and the seconds it took."""
     units = [(k, i, seed, days) for k, n in cases.items() for i in range(n)]
@@ -360,7 +353,8 @@ def main(argv: list[str] | None = None) -> int:
         err = update_readme(Path(__file__).resolve().parent.parent / "README.md",
                             "\n".join([README_BEGIN, f"Measured by `{cmd}` ({elapsed:.0f} s, seed "
                                         f"{args.seed}; lead 45 min, threshold 8 degC):", "",
-                                        *table(results), README_END]))
+                                        *table(results), README_END]),
+                            README_BEGIN, README_END)
         if err:
             print(f"bench_alerts: {err}", file=sys.stderr)
     print(text)

@@ -45,6 +45,9 @@ from thermeta.predictors import forecast as forecast_fn
 from thermeta.predictors.forecast import ambient_sd_within
 from thermeta.predictors.synth import Corruption, Synth
 
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from readme_block import update_readme  # noqa: E402 - the scripts folder, put on the path above
+
 MIN = 60.0
 H = 3600.0
 PROGRESS = (0.25, 0.50, 0.75)
@@ -860,16 +863,6 @@ def readme_block(summary: dict, cs: list[Check], meta: dict) -> str:
     return "\n".join(lines)
 
 
-def update_readme(path: Path, block: str) -> str | None:
-    """Replace the text between the bench's markers in README.md; an error message or None."""
-    text = path.read_text()
-    i, j = text.find(README_BEGIN), text.find(README_END)
-    if i < 0 or j < i:
-        return f"{path}: the bench's markers are missing; add them to its section first"
-    path.write_text(text[:i] + block + text[j + len(README_END):])
-    return None
-
-
 def plot(summary: dict, path: Path) -> None:
     import matplotlib
 
@@ -1002,7 +995,7 @@ def bench(args: argparse.Namespace) -> tuple[dict, list[Check], str]:
     plot(summary, out / "bench_forecast.png")
     if args.readme:
         err = update_readme(Path(__file__).resolve().parent.parent / "README.md",
-                            readme_block(summary, cs, meta))
+                            readme_block(summary, cs, meta), README_BEGIN, README_END)
         if err:
             print(f"bench_forecast: {err}", file=sys.stderr)
     crashed = sum(r["crashed"] for r in summary.values())

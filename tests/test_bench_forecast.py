@@ -119,3 +119,20 @@ def test_a_failure_at_the_statistical_limit_is_marked(bench):
     assert len(cs) == 1 and cs[0].ok is False
     assert cs[0].beyond_limit() == [0]  # 25 %: 5 % against a limit of 4.6 %; 50 %: reachable
     assert cs[0].result().startswith("FAIL (at the limit at 25 %")
+
+
+def test_readme_block_is_replaced_between_its_markers(tmp_path):
+    """--readme rewrites only the bench's own block (markers kept, text around untouched) and
+    names the file when the markers are missing."""
+    sys.path.insert(0, str(ROOT / "scripts"))
+    from readme_block import update_readme
+
+    begin, end = "<!-- b: begin -->", "<!-- b: end -->"
+    p = tmp_path / "README.md"
+    p.write_text(f"intro\n{begin}\nold table\n{end}\noutro\n")
+    assert update_readme(p, f"{begin}\nnew table\n{end}", begin, end) is None
+    assert p.read_text() == f"intro\n{begin}\nnew table\n{end}\noutro\n"
+    q = tmp_path / "OTHER.md"
+    q.write_text("no markers here\n")
+    err = update_readme(q, f"{begin}\nx\n{end}", begin, end)
+    assert err is not None and str(q) in err and q.read_text() == "no markers here\n"
