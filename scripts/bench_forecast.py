@@ -512,6 +512,11 @@ def summarise(records: list[dict]) -> dict:
         for b in ("linear", "lsq3", "two_reading"):
             if any(b in r for r in done):
                 row[b] = med_p90(rel_errors(done, b))
+        # what the interval says where the point forecast cannot (an open late end; no point
+        # ETA, yet an early end: the readings allow a crossing from then on)
+        row["open_hi"] = sum(1 for r in done if r.get("ok") and r.get("hi") is None)
+        row["never_allowed"] = sum(1 for r in done if r.get("ok") and r.get("eta") is None
+                                   and r.get("lo") is not None)
         picks = [r["auto_model"] for r in done if "auto_model" in r]
         if picks:
             geometry = key[0].removeprefix("centre_")
@@ -771,14 +776,28 @@ def other_tables(summary: dict) -> list[str]:
             r = summary[k]
             lines.append(f"| {k[2] / MIN:g} min | {r['n']} | {_fmt(r['median'])} | {_fmt(r['p90'])} | "
                          f"{_fmt(r['cover'])} | {_mp(r.get('linear'))} | {_mp(r.get('lsq3'))} |")
+    wf = [(k, summary[k]) for k in sorted(summary) if k[0] == "warm_fitted" and k[1] == "clean"]
+    if wf:
+        lines += ["", "Warming load, ambient fitted (clean): what the 90 % interval says where little "
+                  "bend is seen. Early on the readings cannot tell a far ambient from a level-off "
+                  "just short of the threshold (compare the asymptotes below, which also give an "
+                  "early end): the interval's late end is open, and a forecast without a point "
+                  "ETA still names the earliest crossing the readings allow.", "",
+                  "| seen | n | late end open | no point ETA | of these, an early end given | "
+                  "90 % cover |", "|---|---|---|---|---|---|"]
+        for k, r in wf:
+            lines.append(f"| {100 * k[2]:.0f} % | {r['n']} | {r['open_hi']} | {r['no_eta']} | "
+                         f"{r['never_allowed']} | {_fmt(r['cover'])} |")
     asy = sorted(k for k in summary if k[0] == "asymptote")
     if asy:
         lines += ["", "Never-crossing asymptotes (seen for 25/50/75 % of 3 time constants):", "",
-                  "| kind | seen | n | no ETA | fit failed |", "|---|---|---|---|---|"]
+                  "| kind | seen | n | no ETA | no ETA, an early end given | fit failed |",
+                  "|---|---|---|---|---|---|"]
         for k in asy:
             r = summary[k]
             lines.append(f"| {k[1]} | {100 * k[2]:.0f} % | {r['n']} | "
-                         f"{_fmt(r['no_eta'] / r['n'] if r['n'] else math.nan)} | {r['failed']} |")
+                         f"{_fmt(r['no_eta'] / r['n'] if r['n'] else math.nan)} | "
+                         f"{r['never_allowed']} | {r['failed']} |")
     cyc = summary.get(("cycling", "clean", 0.0))
     if cyc:
         lines += ["", "Healthy cold room, compressor cycling (2 h windows every 10 min over 12 h):", "",
