@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import os
 import sys
 
 # name -> (module, one-line help)
@@ -58,6 +59,12 @@ def main(argv: list[str] | None = None) -> int:
         return int(args._run(args) or 0)
     except KeyboardInterrupt:
         return 130
+    except BrokenPipeError:
+        # the reader went away (`thermeta forecast ... | head`): stop quietly, as a filter
+        # does; stdout is pointed at devnull so the interpreter's final flush cannot fail again
+        # (the Python docs' recipe for SIGPIPE, library/signal.html)
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 141  # 128 + SIGPIPE, what a shell reports for a filter cut off
 
 
 if __name__ == "__main__":

@@ -38,10 +38,12 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def summary(fc, unit: str, source: str) -> str:
+    """The forecast in words; ``fc`` is in degC, shown in ``unit``."""
     from thermeta.daemon.timefmt import human_duration, local_clock
+    from thermeta.daemon.units import to_item_units
 
     u = UNIT_SIGN[unit]
-    d = fc.to_dict()
+    d = to_item_units(fc.to_dict(), unit)
     lines = [
         f"{source}: {d['n_points']} readings, {d['model']} model, ambient {d['ambient_mode']}"
     ]
@@ -80,9 +82,9 @@ def summary(fc, unit: str, source: str) -> str:
     return "\n".join(lines)
 
 
-def _ambient_sd(args: argparse.Namespace) -> float | None:
-    """The given ambient's doubt as a sd in the values' unit (None: no ambient given)."""
-    from thermeta.daemon.units import scale_from_celsius
+def _ambient_sd_c(args: argparse.Namespace) -> float | None:
+    """The given ambient's doubt as a sd in degC (None: no ambient given)."""
+    from thermeta.daemon.units import scale_to_celsius
     from thermeta.predictors.forecast import AMBIENT_UNCERTAINTY, ambient_sd_within
 
     if args.ambient_within is not None:
@@ -91,19 +93,29 @@ def _ambient_sd(args: argparse.Namespace) -> float | None:
                              "give --ambient too")
         if not args.ambient_within >= 0 or args.ambient_within == float("inf"):
             raise InputError(f"--ambient-within must be a number >= 0, got {args.ambient_within:g}")
-        return ambient_sd_within(args.ambient_within)
-    if args.ambient is None:
-        return None
-    # the default doubt is stated in degC; the values may be in degF
-    return scale_from_celsius(AMBIENT_UNCERTAINTY, args.unit)
+        return ambient_sd_within(scale_to_celsius(args.ambient_within, args.unit))
+    return None if args.ambient is None else AMBIENT_UNCERTAINTY
+
+
+def _celsius(values, unit: str):
+    """Readings in ``unit`` as degC (an array; None stays None)."""
+    import numpy as np
+    from thermeta.daemon.units import to_celsius
+
+    if values is None or unit == "C":
+        return values
+    return np.vectorize(lambda v: to_celsius(v, unit), otypes=[float])(values)
 
 
 def run(args: argparse.Namespace) -> int:
     from thermeta.daemon.csvio import read_series
     from thermeta.predictors import forecast
 
+    import numpy as np
+    from thermeta.daemon.units import from_celsius, to_celsius, to_item_units
+
     try:
-        amb_sd = _ambient_sd(args)
+        amb_sd = _ambient_sd_c(args)
         series = read_series(args.csv)
         if series.t.size < 2:
             raise InputError(f"{args.csv}:{series.last_line}: too few readings to fit "
@@ -113,12 +125,16 @@ def run(args: argparse.Namespace) -> int:
             # As the daemon does: a probe that starts below its threshold has an upper limit.
             first = float(series.y[series.t.argmin()])
             limit = None if first == args.threshold else ("upper" if first < args.threshold else "lower")
+        # as the daemon does, the forecast is made in degC (its defaults are stated in degC)
+        series.y, series.ambient_y = _celsius(series.y, args.unit), _celsius(series.ambient_y, args.unit)
+        threshold_c = to_celsius(args.threshold, args.unit)
+        ambient_c = None if args.ambient is None else to_celsius(args.ambient, args.unit)
         fc = forecast(
             series.t,
             series.y,
-            args.threshold,
+            threshold_c,
             model=args.model,
-            ambient=args.ambient,
+            ambient=ambient_c,
             ambient_t=series.ambient_t if args.ambient is None else None,
             ambient_y=series.ambient_y if args.ambient is None else None,
             limit=limit,
@@ -135,9 +151,10 @@ def run(args: argparse.Namespace) -> int:
         except ModuleNotFoundError:
             print("thermeta forecast: --plot is not available in this build", file=sys.stderr)
             return 2
-        plot_forecast(series, fc, args.plot, unit=args.unit, title=str(args.csv))
+        convert = None if args.unit == "C" else np.vectorize(lambda v: from_celsius(v, args.unit))
+        plot_forecast(series, fc, args.plot, unit=args.unit, title=str(args.csv), convert=convert)
     if args.json:
-        out = fc.to_dict()
+        out = to_item_units(fc.to_dict(), args.unit)
         out["unit"] = args.unit
         out["limit"] = limit
         print(json.dumps(out))

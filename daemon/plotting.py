@@ -336,9 +336,9 @@ def forecast_png(series: SeriesLike, fc: Forecast, *, unit: str = "C", title: st
 
 
 def plot_forecast(series: SeriesLike, fc: Forecast, out_path, *, unit: str = "C",
-                  title: str | None = None, truth=None) -> None:
-    """Write the picture to ``out_path`` (PNG)."""
-    data = forecast_png(series, fc, unit=unit, title=title, truth=truth)
+                  title: str | None = None, truth=None, convert=None) -> None:
+    """Write the picture to ``out_path`` (PNG); ``convert`` as in :func:`forecast_figure`."""
+    data = forecast_png(series, fc, unit=unit, title=title, truth=truth, convert=convert)
     with open(out_path, "wb") as f:
         f.write(data)
 

@@ -41,7 +41,7 @@ import numpy as np
 from thermeta.daemon.clock import Clock
 from thermeta.daemon.config import AMBIENT_SUFFIX, DEFROST_SUFFIX, Config, ItemConfig
 from thermeta.daemon.defrost import defrost_status
-from thermeta.daemon.units import from_celsius, scale_from_celsius
+from thermeta.daemon.units import to_item_units
 from thermeta.daemon.writer import Activity
 from thermeta.predictors.prior import Prior, learn, learnable
 from thermeta.predictors.result import Forecast, rfc3339
@@ -51,8 +51,6 @@ from thermeta.storage.store import Store
 log = logging.getLogger("thermeta.refit")
 
 STATES = ("learning", "steady", "approaching", "crossed", "stale")
-POINT_KEYS = ("threshold", "ambient", "ambient_lo", "ambient_hi", "value_now")
-DELTA_KEYS = ("rmse",)
 ERROR_LOG_EVERY_S = 300.0
 SAVE_EVERY = 50  # forecasts per store transaction
 # How far back a defrost signal is read beyond the longest hold (max + recovery): a start older
@@ -95,20 +93,6 @@ def classify(fc: Forecast, now: float, last_ts: float | None, cfg: ItemConfig,
         if remaining_s <= cfg.horizon_s:
             return "approaching"
     return "steady"
-
-
-def to_item_units(d: dict[str, Any], unit: str) -> dict[str, Any]:
-    """Temperatures of a forecast dict from degC to the item's unit (points and differences)."""
-    if unit == "C":
-        return d
-    out = dict(d)
-    for k in POINT_KEYS:
-        if out.get(k) is not None:
-            out[k] = from_celsius(out[k], unit)
-    for k in DELTA_KEYS:
-        if out.get(k) is not None:
-            out[k] = scale_from_celsius(out[k], unit)
-    return out
 
 
 class Refitter:

@@ -2,7 +2,12 @@
 
 from __future__ import annotations
 
+from typing import Any
+
 UNITS = ("C", "F", "K")
+# temperatures in a forecast's dict: points (converted with the offset) and differences (scaled)
+POINT_KEYS = ("threshold", "ambient", "ambient_lo", "ambient_hi", "value_now")
+DELTA_KEYS = ("rmse",)
 
 
 def to_celsius(value: float, unit: str) -> float:
@@ -36,3 +41,17 @@ def scale_from_celsius(delta_c: float, unit: str) -> float:
 def scale_to_celsius(delta: float, unit: str) -> float:
     """A temperature difference in ``unit`` in degC steps (the inverse of scale_from_celsius)."""
     return float(delta) / scale_from_celsius(1.0, unit)
+
+
+def to_item_units(d: dict[str, Any], unit: str) -> dict[str, Any]:
+    """Temperatures of a forecast dict from degC to ``unit`` (points and differences)."""
+    if unit == "C":
+        return d
+    out = dict(d)
+    for k in POINT_KEYS:
+        if out.get(k) is not None:
+            out[k] = from_celsius(out[k], unit)
+    for k in DELTA_KEYS:
+        if out.get(k) is not None:
+            out[k] = scale_from_celsius(out[k], unit)
+    return out

@@ -152,3 +152,40 @@ def test_default_ambient_doubt_follows_the_unit(tmp_path):
     assert out["F"]["eta_s"] == pytest.approx(out["C"]["eta_s"], rel=0.01)
     band = {u: out[u]["ambient_hi"] - out[u]["ambient_lo"] for u in out}
     assert band["F"] == pytest.approx(band["C"] * 9 / 5, rel=0.02)
+
+
+def test_fahrenheit_readings_forecast_as_their_celsius_twins(tmp_path):
+    """Values in degF are forecast in degC as the daemon does (the assumed scatter of a
+    two-reading forecast, 0.15 degC, and the default doubt of a given ambient are stated in
+    degC): the same two readings in degF and degC give the same times, and the JSON's
+    temperatures come back in degF (F = C * 9/5 + 32, the definition)."""
+    out = {}
+    for unit, conv in (("C", lambda v: v), ("F", lambda v: v * 9 / 5 + 32)):
+        p = tmp_path / f"two_{unit}.csv"
+        p.write_text(f"time,value\n1764600000,{conv(2.0):.2f}\n1764600600,{conv(2.8):.2f}\n")
+        r = run_cli("forecast", str(p), "--threshold", f"{conv(8.0):g}", "--ambient",
+                    f"{conv(27.0):g}", "--unit", unit, "--json")
+        assert r.returncode == 0, r.stderr
+        out[unit] = json.loads(r.stdout)
+    for key in ("eta_s", "eta_lo_s", "eta_hi_s", "k_per_s"):
+        if out["C"][key] is None:
+            assert out["F"][key] is None, key
+        else:
+            assert out["F"][key] == pytest.approx(out["C"][key], rel=1e-6), key
+    for key in ("threshold", "ambient", "value_now"):
+        assert out["F"][key] == pytest.approx(out["C"][key] * 9 / 5 + 32, abs=1e-6), key
+    assert out["F"]["unit"] == "F"
+
+
+def test_a_reader_that_goes_away_gets_no_traceback(tmp_path):
+    """`thermeta forecast ... | head` with the reader gone before the output: no traceback,
+    the exit status a shell gives a filter cut off (141 = 128 + SIGPIPE)."""
+    p = tmp_path / "load.csv"
+    write_warming_csv(p)
+    proc = subprocess.Popen([sys.executable, "-m", "thermeta.daemon.cli", "forecast", str(p),
+                             "--threshold", "12", "--ambient", "27"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    proc.stdout.close()  # the reader is gone before anything is written
+    err = proc.stderr.read().decode()
+    assert proc.wait(timeout=120) == 141
+    assert "Traceback" not in err and "BrokenPipe" not in err
