@@ -126,7 +126,8 @@ def run(args: argparse.Namespace) -> int:
             first = float(series.y[series.t.argmin()])
             limit = None if first == args.threshold else ("upper" if first < args.threshold else "lower")
         # as the daemon does, the forecast is made in degC (its defaults are stated in degC)
-        series.y, series.ambient_y = _celsius(series.y, args.unit), _celsius(series.ambient_y, args.unit)
+        series.y = _celsius(series.y, args.unit)
+        series.ambient_y = _celsius(series.ambient_y, args.unit)
         threshold_c = to_celsius(args.threshold, args.unit)
         ambient_c = None if args.ambient is None else to_celsius(args.ambient, args.unit)
         fc = forecast(
