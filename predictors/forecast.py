@@ -185,10 +185,12 @@ def _forecast(fc, t, y, thr, model, ambient, ambient_t, ambient_y, window_s, min
     if prior is not None and prior.n_episodes and (model in CONDUCTION or air is not None):
         fc.warnings.append("the learned prior is used by the lumped model with a fitted or "
                            "given ambient only; not here")
+    start = _first_reading(t, y, tt, window_s)
     if model in CONDUCTION:
-        return _conduction(fc, tt, yy, thr, model, ambient, air, amb_sd)
+        return _conduction(fc, tt, yy, thr, model, ambient, air, amb_sd, start_s=start)
     if model == "auto":
-        return _auto(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, prior)
+        return _auto(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, prior,
+                     start_s=start)
     out = _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, detect, min_points,
                   prior, before)
     if (few and air is None and not out.ok
@@ -641,16 +643,35 @@ def _few_air_note(n_air: int, straight: bool) -> str:
             "their scatter assumed; the interval is wide for that")
 
 
-def _conduction_kwargs(ambient, air, amb_sd) -> dict:
-    """How fit_conduction is told the ambient: a measured series, a given value, or nothing."""
+def _first_reading(t, y, tt, window_s) -> float | None:
+    """The earliest reading of the window, kept or not by the cleaning: the core models' episode
+    start.  A first reading the spike filter sets aside (the lag of a centre probe's flat start
+    can look like one) still marks when the episode began; starting the curve at the next kept
+    reading instead shifts it by a sampling step, a bias that early forecasts have no
+    parameter for (seen on seeded centre cases: the truth then fails the interval's test by
+    far)."""
+    if tt.size == 0:
+        return None
+    t, y = np.asarray(t, float), np.asarray(y, float)
+    raw = t[np.isfinite(t) & np.isfinite(y)]
+    if window_s is not None:
+        raw = raw[raw >= tt[-1] - window_s]
+    return float(min(raw.min(), tt[0])) if raw.size else float(tt[0])
+
+
+def _conduction_kwargs(ambient, air, amb_sd, start_s=None) -> dict:
+    """How fit_conduction is told the ambient (a measured series, a given value, or nothing)
+    and, when known, the episode start."""
+    kw: dict = {} if start_s is None else {"start_s": float(start_s)}
     if air is not None:
-        return {"ambient_t": air.t, "ambient_y": air.y}
+        return {**kw, "ambient_t": air.t, "ambient_y": air.y}
     if ambient is not None:
-        return {"ambient": float(ambient), "ambient_sd": float(amb_sd)}
-    return {}
+        return {**kw, "ambient": float(ambient), "ambient_sd": float(amb_sd)}
+    return kw
 
 
-def _conduction(fc, tt, yy, thr, shape, ambient, air, amb_sd=0.0, fit=None) -> Forecast:
+def _conduction(fc, tt, yy, thr, shape, ambient, air, amb_sd=0.0, fit=None,
+                start_s=None) -> Forecast:
     """A core-probe forecast; ``fit`` is an already fitted curve of that shape (from _auto)."""
     if fit is None:
         try:
@@ -658,7 +679,8 @@ def _conduction(fc, tt, yy, thr, shape, ambient, air, amb_sd=0.0, fit=None) -> F
         except ImportError:
             fc.ok, fc.reason = False, "conduction model not available"
             return fc
-        fit = conduction.fit_conduction(tt, yy, shape, **_conduction_kwargs(ambient, air, amb_sd))
+        fit = conduction.fit_conduction(tt, yy, shape,
+                                        **_conduction_kwargs(ambient, air, amb_sd, start_s))
     fc.model_fit = fit
     fc.model = shape
     if not fit.ok:
@@ -696,7 +718,8 @@ def aicc(rss: float, n: int, p: int) -> float:
 AUTO_MARGIN = 2.0  # AICc points a core model must gain over the lumped one (a common rule of thumb)
 
 
-def _auto(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, prior=None) -> Forecast:
+def _auto(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, prior=None,
+          start_s=None) -> Forecast:
     """The lumped model, unless the best core-probe shape has a clearly lower AICc.
 
     All three shapes have the same parameters (Ti, [Ta,] Bi, a), so among them the lowest AICc
@@ -719,7 +742,8 @@ def _auto(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, prior=None) 
         conduction = importlib.import_module("thermeta.predictors.conduction")
     except ImportError:
         return lumped
-    fit, scores = conduction.select_geometry(tt, yy, **_conduction_kwargs(ambient, air, amb_sd))
+    fit, scores = conduction.select_geometry(tt, yy,
+                                             **_conduction_kwargs(ambient, air, amb_sd, start_s))
     best = lumped
     if fit.ok and fit.aicc < lumped_ic - AUTO_MARGIN:
         best = _conduction(copy.deepcopy(base), tt, yy, thr, fit.geometry, ambient, air, amb_sd,

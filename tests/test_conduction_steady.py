@@ -13,7 +13,7 @@ from scipy.stats import linregress
 from thermeta.predictors import synth
 from thermeta.predictors.conduction import fit_conduction
 from thermeta.predictors.conduction_ambient import steady_level
-from thermeta.predictors.conduction_profile import _constrained_residual
+from thermeta.predictors.conduction_profile import _constrained_residual, cut_off
 from thermeta.predictors.synth import Corruption
 from thermeta.predictors.synth_conduction import core_probe
 
@@ -74,7 +74,8 @@ def test_steady_air_fit_equals_known_ambient_fit():
 def test_profile_ends_are_roots_of_the_profile_statistic():
     """An early centre probe (22 readings, the centre has barely moved; the best fit drifts to a
     small Bi): each end of the profile interval is where the profile statistic crosses its
-    F(1, n - p; 0.90) cut-off, checked by refits from 24 starting points over the (Bi, a) plane
+    cut-off (F(1, n - p) at the small-sample level of conduction_profile.cut_off, about 92 % here),
+    checked by refits from 24 starting points over the (Bi, a) plane
     (scipy least_squares), so the warm-started search has not stopped in a stale basin and the
     refinement has not fallen back to the outer end of its bracket."""
     s = core_probe(12, geometry="sphere", biot=2.33, a_per_s=4.72e-5, t_i=3.58, ambient=23.9,
@@ -87,7 +88,8 @@ def test_profile_ends_are_roots_of_the_profile_statistic():
     lo_b, hi_b = (np.array(b) for b in fit._bounds)
     q_hat = fit.params[1:]
     dof = t.size - fit.n_params
-    cut = f_dist.ppf(0.90, 1, dof)
+    cut = cut_off(dof)
+    assert cut > f_dist.ppf(0.90, 1, dof)
 
     def d_stat(eta_s: float) -> float:
         tau = fit.t_last + eta_s
