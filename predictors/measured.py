@@ -152,7 +152,7 @@ def fit_measured(t: np.ndarray, y: np.ndarray, air_t: np.ndarray, air_y: np.ndar
                       n=n, air=air_fit, residuals=y - fitted)
     se_logk = math.sqrt(max(cov[1, 1], 0.0))
     fit.k_se = k * se_logk
-    fit.k_lo, fit.k_hi = k * math.exp(-Z90 * se_logk), k * math.exp(Z90 * se_logk)
+    fit.k_lo, fit.k_hi = k_band(k, se_logk)
     if not air_fit.ok:
         return fit
     # the air's own curve at the load's newest reading (the air may have stopped earlier)
@@ -354,6 +354,22 @@ def straight_air(air_t: np.ndarray, air_y: np.ndarray, noise_sd: float) -> FewAi
     return fit
 
 
+def flat_air(air_t: np.ndarray, air_y: np.ndarray, noise_sd: float) -> bool:
+    """Whether a few air readings hold still: their straight trend changes by less than twice
+    the assumed scatter of one reading over their span."""
+    slope = float(np.polyfit(air_t - air_t[0], air_y, 1)[0])
+    return abs(slope) * float(air_t[-1] - air_t[0]) < 2.0 * assumed_scatter(air_y, noise_sd)
+
+
+def k_band(k: float, sd_logk: float) -> tuple[float, float]:
+    """k e^(-+Z90 sd) with sd the standard error of ln k; an unidentified rate (a flat series:
+    sd without bound) gives (0, inf) instead of overflowing."""
+    x = Z90 * sd_logk
+    if not math.isfinite(x) or x > 700.0:
+        return 0.0, math.inf
+    return k * math.exp(-x), k * math.exp(x)
+
+
 def few_air_curve(air_t: np.ndarray, air_y: np.ndarray, noise_sd: float) -> FewAir:
     """The air's lumped curve through four readings (one more than its parameters),
     A = a + b e^(-ka d), by variable projection on a grid of ka (then refined), with the scatter
@@ -391,7 +407,7 @@ def few_air_curve(air_t: np.ndarray, air_y: np.ndarray, noise_sd: float) -> FewA
                  t_first=float(air_t[0]), t_last=float(air_t[-1]), rss=r, dof=max(dof, 1),
                  sigma=sigma, n=int(air_y.size), residuals=air_y - a - b * e,
                  ambient_lo=a - Z90 * sd_a, ambient_hi=a + Z90 * sd_a,
-                 k_lo=k * math.exp(-Z90 * sd_lk), k_hi=k * math.exp(Z90 * sd_lk), bounds=bounds)
+                 k_lo=k_band(k, sd_lk)[0], k_hi=k_band(k, sd_lk)[1], bounds=bounds)
     fit.cov = cov
     return fit
 
@@ -401,6 +417,9 @@ def fit_air(air_t: np.ndarray, air_y: np.ndarray, noise_sd: float) -> LumpedFit:
     (Tout, amplitude, log ka) from its Jacobian, cov = sigma^2 (J'J)^-1.  With fewer readings
     than that fit needs (after a logger's gap, say), few_air_curve or straight_air."""
     if 2 <= air_t.size < MIN_AIR_CURVE and air_t[-1] > air_t[0]:
+        if air_t.size >= 3 and flat_air(air_t, air_y, noise_sd):
+            # a held set point read a few times: a curve through it would bend on its noise
+            return steady_air(air_t, air_y, air_t.size)
         if air_t.size >= MIN_AIR_CURVE - 1:
             # (three readings would fix three parameters exactly: their noise decides the bend)
             return few_air_curve(air_t, air_y, noise_sd)

@@ -188,3 +188,21 @@ def test_a_gap_in_the_air_follows_the_air_curve():
     assert fc.ok and fc.eta_s is not None
     assert fc.k_per_s == pytest.approx(k, rel=0.02)
     assert fc.eta_s == pytest.approx(reefer_crossing(sol, 8.0) - x[-1], rel=0.01)
+
+
+def test_four_readings_against_a_steady_air_probe():
+    """A blast chiller's air probe holding its set point (-3.2 degC, flat to its 0.1 degC step)
+    and four readings of a tray cooling toward it, 100 s apart: the air's rate cannot be told from a flat
+    line, which is no reason to fail (it once overflowed): the air is held at its mean, and the
+    forecast has an interval whose
+    early end is above 0 and that holds the solve_ivp crossing."""
+    k, T0, air_c = 1 / 2400, 70.0, -3.2
+    x = np.array([0.0, 105.1, 203.1, 295.2])
+    load = np.round(newton(x, T0, k, air_c) / 0.1) * 0.1
+    air = np.array([-3.2, -3.2, -3.1, -3.3])  # these four overflowed the air's rate band
+    fc = forecast(x + T0_EPOCH, load, 21.0, ambient_t=x + T0_EPOCH, ambient_y=air, limit="lower")
+    assert fc.ok, fc.reason
+    true_eta = newton_crossing(T0, k, air_c, 21.0) - x[-1]
+    hi = math.inf if fc.eta_hi_s is None else fc.eta_hi_s
+    assert 0 < fc.eta_lo_s <= true_eta <= hi
+    assert fc.eta_s == pytest.approx(true_eta, rel=0.1)
