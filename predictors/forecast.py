@@ -48,6 +48,9 @@ AMBIENT_UNCERTAINTY = 2.5  # a "known" ambient is typically known to a couple of
 # the rectangular distribution's standard uncertainty u = w / sqrt(3) (GUM, JCGM 100:2008,
 # 4.3.7, from memory), folded into the fit as a Gaussian prior of that sd
 WITHIN_DIVISOR = math.sqrt(3.0)
+MIN_POINTS = 5  # three parameters and two degrees of freedom for the residual scatter
+MIN_POINTS_KNOWN = 4  # a given ambient is one more observation; a measured one leaves 2 parameters
+MIN_FEW_POINTS = 2  # fewer than a curve fit needs: the two-reading solve, or a straight trend
 
 
 def ambient_sd_within(within: float) -> float:
@@ -55,9 +58,6 @@ def ambient_sd_within(within: float) -> float:
     if not math.isfinite(within) or within < 0:
         raise ValueError(f"ambient_within must be a number >= 0, got {within!r}")
     return float(within) / WITHIN_DIVISOR
-MIN_POINTS = 5  # three parameters and two degrees of freedom for the residual scatter
-MIN_POINTS_KNOWN = 4  # a given ambient is one more observation; a measured one leaves 2 parameters
-MIN_FEW_POINTS = 2  # fewer than a curve fit needs: the two-reading solve, or a straight trend
 
 
 def forecast(
