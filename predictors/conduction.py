@@ -458,7 +458,7 @@ def _fit_curve_raw(curve: _Curve, t: Float, y: Float) -> ConductionFit:
     fit.k_per_s = float(z1) ** 2 * fit.a_per_s
     fit.lag_factor_j = float(c1)
     fit.value_at_last = float(curve.full(p, t[-1:])[0])
-    fit.cov = _covariance(curve, p, t, rss, n)
+    fit.cov = _covariance(curve, p, t, rss, n, y)
     fit._data, fit._bounds = (t, y), (lo, hi)
     fit._draws = (ceta.draw_params(p, fit.cov, N_DRAWS, dof=n - p.size)
                   if fit.cov is not None else None)
@@ -479,7 +479,8 @@ def _fit_curve_raw(curve: _Curve, t: Float, y: Float) -> ConductionFit:
     return fit
 
 
-def _covariance(curve: _Curve, p: Float, t: Float, rss: float, n: int) -> Float | None:
+def _covariance(curve: _Curve, p: Float, t: Float, rss: float, n: int,
+                y: Float | None = None) -> Float | None:
     """s^2 (J'J)^-1 with J by central differences of the full model (pseudo-inverse if singular)."""
     if n <= p.size:
         return None
@@ -490,6 +491,11 @@ def _covariance(curve: _Curve, p: Float, t: Float, rss: float, n: int) -> Float 
         dp[i] = h
         jac[:, i] = (curve.full(p + dp, t) - curve.full(p - dp, t)) / (2 * h)
     s2 = rss / (n - p.size)
+    if n - p.size < 2 and y is not None:
+        # one degree of freedom cannot measure the scatter: at least the assumed one
+        from thermeta.predictors.few import assumed_scatter
+
+        s2 = max(s2, assumed_scatter(np.asarray(y, float)) ** 2)
     info = jac.T @ jac
     if curve.prior is not None:
         info[1, 1] += curve.prior[1] ** 2

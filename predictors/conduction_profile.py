@@ -37,6 +37,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 from numpy.typing import NDArray
 from scipy.optimize import least_squares
+from scipy.stats import chi2 as chi2_dist
 from scipy.stats import f as f_dist
 from thermeta.predictors.conduction_eta import etas
 
@@ -62,6 +63,21 @@ def cut_off(dof: int) -> float:
     """The F(1, dof) cut-off on D at the small-sample corrected level 1 - alpha'."""
     alpha = ALPHA * dof / (dof + SMALL_SAMPLE_DOF)
     return float(f_dist.ppf(1.0 - alpha, 1, dof))
+
+
+def scale_and_cut(rss_min: float, dof: int, y: Float) -> tuple[float, float]:
+    """The scatter s^2 the statistic divides by, and its cut-off.  With two or more degrees of
+    freedom the readings measure it (s^2 = RSS_min / dof, the F cut-off above); with one they
+    cannot, so it is at least the assumed scatter of a reading (few.assumed_scatter, as the
+    lumped model's few-reading forecasts do), taken as known: a chi2(1) cut-off at the same
+    small-sample level."""
+    if dof >= 2:
+        return rss_min / dof, cut_off(dof)
+    from thermeta.predictors.few import assumed_scatter
+
+    alpha = ALPHA * dof / (dof + SMALL_SAMPLE_DOF)
+    s2 = max(rss_min / max(dof, 1), assumed_scatter(np.asarray(y, float)) ** 2)
+    return s2, float(chi2_dist.ppf(1.0 - alpha, 1))
 
 
 def _constrained_residual(
@@ -109,7 +125,7 @@ def profile_interval(
     dof = n - fit.n_params
     if dof < 1:
         return None, None
-    cut = cut_off(dof)
+    s2, cut = scale_and_cut(rss_min, dof, y)
 
     def stat(tau: float) -> float:
         def res(q: Float) -> Float:
@@ -119,7 +135,7 @@ def profile_interval(
         sol = least_squares(res, q0, bounds=(lo_b, hi_b), method="trf", xtol=LSQ_TOL, ftol=LSQ_TOL,
                             max_nfev=MAX_NFEV)
         rss, q_best = float(sol.fun @ sol.fun), sol.x
-        d = dof * (max(rss, rss_min) / rss_min - 1.0) - cut
+        d = (max(rss, rss_min) - rss_min) / s2 - cut
         if d > 0:
             # Before calling tau outside, refit from the best fit's q too: a warm start from the
             # previous trial can stay in a basin (Bi and the time scale trade off along a long
@@ -130,7 +146,7 @@ def profile_interval(
             r2 = float(sol.fun @ sol.fun)
             if r2 < rss:
                 rss, q_best = r2, sol.x
-            d = dof * (max(rss, rss_min) / rss_min - 1.0) - cut
+            d = (max(rss, rss_min) - rss_min) / s2 - cut
         state["q"] = q_best
         return d
 

@@ -115,7 +115,9 @@ def forecast(
     if min_points is None:
         # a given ambient is one more piece of information (the lumped fit's Gaussian prior)
         # (a measured ambient leaves the load two parameters, T0 and k)
-        min_points = MIN_POINTS_KNOWN if mode != "fitted" and model == "lumped" else MIN_POINTS
+        # (a core shape with a given or measured ambient has three: Ti, Bi and a; with one degree
+        # of freedom left its scatter is taken as at least the assumed one, conduction_profile)
+        min_points = MIN_POINTS_KNOWN if mode != "fitted" else MIN_POINTS
     try:
         # overflow in a far-off corner of a grid is expected and handled; keep logs quiet
         with np.errstate(all="ignore"):
@@ -187,10 +189,11 @@ def _forecast(fc, t, y, thr, model, ambient, ambient_t, ambient_y, window_s, min
                            "given ambient only; not here")
     start = _first_reading(t, y, tt, window_s)
     if model in CONDUCTION:
-        return _conduction(fc, tt, yy, thr, model, ambient, air, amb_sd, start_s=start)
+        return _conduction(fc, tt, yy, thr, model, ambient, air, amb_sd, start_s=start,
+                           min_points=min_points)
     if model == "auto":
         return _auto(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, prior,
-                     start_s=start)
+                     start_s=start, min_points=min_points)
     out = _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, detect, min_points,
                   prior, before)
     if (few and air is None and not out.ok
@@ -659,10 +662,12 @@ def _first_reading(t, y, tt, window_s) -> float | None:
     return float(min(raw.min(), tt[0])) if raw.size else float(tt[0])
 
 
-def _conduction_kwargs(ambient, air, amb_sd, start_s=None) -> dict:
-    """How fit_conduction is told the ambient (a measured series, a given value, or nothing)
-    and, when known, the episode start."""
+def _conduction_kwargs(ambient, air, amb_sd, start_s=None, min_points=None) -> dict:
+    """How fit_conduction is told the ambient (a measured series, a given value, or nothing),
+    when known the episode start, and the fewest readings to fit."""
     kw: dict = {} if start_s is None else {"start_s": float(start_s)}
+    if min_points is not None:
+        kw["min_points"] = int(min_points)
     if air is not None:
         return {**kw, "ambient_t": air.t, "ambient_y": air.y}
     if ambient is not None:
@@ -671,7 +676,7 @@ def _conduction_kwargs(ambient, air, amb_sd, start_s=None) -> dict:
 
 
 def _conduction(fc, tt, yy, thr, shape, ambient, air, amb_sd=0.0, fit=None,
-                start_s=None) -> Forecast:
+                start_s=None, min_points=None) -> Forecast:
     """A core-probe forecast; ``fit`` is an already fitted curve of that shape (from _auto)."""
     if fit is None:
         try:
@@ -680,7 +685,8 @@ def _conduction(fc, tt, yy, thr, shape, ambient, air, amb_sd=0.0, fit=None,
             fc.ok, fc.reason = False, "conduction model not available"
             return fc
         fit = conduction.fit_conduction(tt, yy, shape,
-                                        **_conduction_kwargs(ambient, air, amb_sd, start_s))
+                                        **_conduction_kwargs(ambient, air, amb_sd, start_s,
+                                                             min_points))
     fc.model_fit = fit
     fc.model = shape
     if not fit.ok:
@@ -719,7 +725,7 @@ AUTO_MARGIN = 2.0  # AICc points a core model must gain over the lumped one (a c
 
 
 def _auto(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, prior=None,
-          start_s=None) -> Forecast:
+          start_s=None, min_points=None) -> Forecast:
     """The lumped model, unless the best core-probe shape has a clearly lower AICc.
 
     All three shapes have the same parameters (Ti, [Ta,] Bi, a), so among them the lowest AICc
@@ -743,7 +749,8 @@ def _auto(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, prior=None,
     except ImportError:
         return lumped
     fit, scores = conduction.select_geometry(tt, yy,
-                                             **_conduction_kwargs(ambient, air, amb_sd, start_s))
+                                             **_conduction_kwargs(ambient, air, amb_sd,
+                                                                  start_s, min_points))
     best = lumped
     if fit.ok and fit.aicc < lumped_ic - AUTO_MARGIN:
         best = _conduction(copy.deepcopy(base), tt, yy, thr, fit.geometry, ambient, air, amb_sd,

@@ -206,3 +206,35 @@ def test_four_readings_against_a_steady_air_probe():
     hi = math.inf if fc.eta_hi_s is None else fc.eta_hi_s
     assert 0 < fc.eta_lo_s <= true_eta <= hi
     assert fc.eta_s == pytest.approx(true_eta, rel=0.1)
+
+
+def test_four_readings_of_a_core_probe_get_a_core_curve_with_an_honest_interval():
+    """Four readings of a slab's centre (Bi 1-3, a 3-5 cm half-thickness) and a steady air probe
+    are enough for the core-probe curve (Ti, Bi and a: one degree of freedom left), with the
+    scatter taken as at least the assumed one: over 30 seeded cases every forecast comes out,
+    the 90 % interval holds the true crossing (the series solution of
+    predictors.synth_conduction) in at least 80 % of them, and no interval is narrower than
+    1 % of its ETA (a near-exact fit of four points must not look certain)."""
+    from thermeta.predictors.synth import Corruption
+    from thermeta.predictors.synth_conduction import core_probe
+
+    hits, n = 0, 30
+    rng = np.random.default_rng(11)
+    for seed in range(n):
+        L, bi = rng.uniform(0.03, 0.05), rng.uniform(1.0, 3.0)
+        a = 1.4e-7 / L**2
+        probe = core_probe(seed, geometry="slab", biot=bi, a_per_s=a, t_i=70.0, ambient=-3.0,
+                           threshold=21.0, seen_fraction=1.0, dt_s=60.0)
+        cross = probe.crossing_t_true - probe.t.min()
+        s = core_probe(seed, geometry="slab", biot=bi, a_per_s=a, t_i=70.0, ambient=-3.0,
+                       threshold=21.0, seen_fraction=0.3, dt_s=0.3 * cross / 3.5,
+                       corruption=Corruption(noise=0.1, quantum=0.1))
+        t, y = np.sort(s.t)[:4], s.y[np.argsort(s.t)][:4]
+        fc = forecast(t, y, 21.0, ambient_t=t, ambient_y=np.full(4, -3.0), model="slab",
+                      limit="lower")
+        assert fc.ok and fc.model == "slab" and fc.eta_s is not None, fc.reason
+        true_eta = s.crossing_t_true - t.max()
+        hi = math.inf if fc.eta_hi_s is None else fc.eta_hi_s
+        assert hi - fc.eta_lo_s >= 0.01 * fc.eta_s
+        hits += fc.eta_lo_s <= true_eta <= hi
+    assert hits / n >= 0.8
