@@ -17,6 +17,10 @@ import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
 
 MAD_TO_SD = 1.4826  # sd of a Gaussian = 1.4826 x its median absolute deviation
+# a pause of more than GAP_STEPS typical sampling steps (a logger's dropout) ends a run: a line
+# through readings on both sides of it bends with the curve and would flag the newest readings
+GAP_STEPS = 4.0
+MIN_HAMPEL = 7  # the fewest readings in a run the filter judges (a 5-reading window and more)
 
 
 @dataclass
@@ -114,6 +118,33 @@ def hampel_mask(t: np.ndarray, y: np.ndarray, n_sigma: float = 6.0, half: int = 
     return np.abs(r) <= n_sigma * scale, sd
 
 
+def runs(t: np.ndarray, gap_steps: float = GAP_STEPS) -> list[slice]:
+    """Stretches of time-ordered readings without a pause longer than ``gap_steps`` times the
+    median sampling step."""
+    if t.size < 2:
+        return [slice(0, t.size)]
+    d = np.diff(t)
+    cuts = np.flatnonzero(d > gap_steps * float(np.median(d))) + 1
+    edges = [0, *cuts.tolist(), t.size]
+    return [slice(a, b) for a, b in zip(edges[:-1], edges[1:])]
+
+
+def gap_hampel_mask(t: np.ndarray, y: np.ndarray, n_sigma: float, floor: float
+                    ) -> tuple[np.ndarray, float]:
+    """:func:`hampel_mask` within each run between dropouts (:func:`runs`); a run too short to
+    judge keeps its readings, for the fitted curve to judge (:func:`residual_outliers`).  The
+    noise sd is the one of the longest run judged."""
+    keep, sd, longest = np.ones(t.size, bool), 0.0, 0
+    for run in runs(t):
+        n = run.stop - run.start
+        if n < MIN_HAMPEL:
+            continue
+        keep[run], run_sd = hampel_mask(t[run], y[run], n_sigma=n_sigma, floor=floor)
+        if n > longest:
+            sd, longest = run_sd, n
+    return keep, sd
+
+
 def clean(t: np.ndarray, y: np.ndarray, *, n_sigma: float = 6.0) -> Cleaned:
     """Order, dedupe and de-spike readings.  Never raises on bad values (only on bad shapes)."""
     t0 = np.asarray(t, dtype=float).ravel()
@@ -122,10 +153,7 @@ def clean(t: np.ndarray, y: np.ndarray, *, n_sigma: float = 6.0) -> Cleaned:
     # quantisation alone is uniform noise of sd q / sqrt(12); never call a one-step wobble a spike
     # and never call the curvature of a noise-free curve a spike: 0.1 % of the range at least
     floor = max(q, 1e-3 * (float(np.ptp(y2)) if y2.size else 0.0), 1e-9)
-    if y2.size >= 7:
-        keep, sd = hampel_mask(t2, y2, n_sigma=n_sigma, floor=floor)
-    else:
-        keep, sd = np.ones(y2.size, bool), 0.0
+    keep, sd = gap_hampel_mask(t2, y2, n_sigma, floor)
     sd = max(sd, q / np.sqrt(12.0))
     return Cleaned(
         t=t2[keep], y=y2[keep], n_in=int(t0.size), n_nonfinite=n_nf, n_duplicates=n_dup,

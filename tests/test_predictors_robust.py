@@ -123,3 +123,37 @@ def test_junk_never_raises():
         if d["eta_s"] is not None and d["eta_hi_s"] is not None:
             assert d["eta_hi_s"] >= d["eta_s"] - 1e-6
         assert fc.ok or fc.reason
+
+
+def test_readings_after_a_dropout_are_not_spikes():
+    """A logger pause (11 min here, 7 sampling steps) on the bending start of a centre probe's
+    chill: the two readings after it lie far below a line through the ten before, yet they are
+    the curve, and the forecast must use them.  Truth: the slab's centre series solution
+    (checked against scipy's method of lines in test_conduction_fit.py).  A spike inside the
+    run after the pause is still caught."""
+    from thermeta.predictors.synth_conduction import core_probe
+
+    s = core_probe(3, geometry="slab", biot=2.1, a_per_s=1.95e-4, t_i=73.0, ambient=1.5,
+                   threshold=21.0, seen_fraction=0.25, dt_s=100.0,
+                   corruption=Corruption(noise=0.1, quantum=0.1))
+    rel = s.t - s.t[0]
+    keep = (rel < 700.0) | (rel > 1390.0)
+    t, y = s.t[keep], s.y[keep]
+    assert np.diff(t).max() > 4 * np.median(np.diff(t))  # the pause is in the readings
+    assert clean(t, y).n_outliers == 0
+    air_t = np.unique(t)
+    fc = forecast(t, y, 21.0, model="slab", ambient_t=air_t, ambient_y=np.full(air_t.size, 1.5),
+                  limit="lower")
+    assert fc.n_points == t.size
+    assert fc.eta_s == pytest.approx(s.eta_true_s, rel=0.10)
+    # the same pause, seen longer, with a +15 degC spike in the run after it
+    s = core_probe(3, geometry="slab", biot=2.1, a_per_s=1.95e-4, t_i=73.0, ambient=1.5,
+                   threshold=21.0, seen_fraction=0.5, dt_s=100.0,
+                   corruption=Corruption(noise=0.1, quantum=0.1))
+    rel = s.t - s.t[0]
+    keep = (rel < 700.0) | (rel > 1390.0)
+    t, y = s.t[keep], s.y[keep].copy()
+    spike = int(np.searchsorted(t, s.t[0] + 2000.0))
+    y[spike] += 15.0
+    c = clean(t, y)
+    assert c.n_outliers == 1 and t[spike] not in c.t
