@@ -7,12 +7,12 @@ import json
 import sys
 
 from thermeta.daemon.errors import InputError
+from thermeta.daemon.units import UNIT_SIGN
 
 CAUTION = (
     "Forecasts support decisions; they are not a food-safety plan or a regulatory record. "
     "Local codes and licensed practice decide the limits and actions."
 )
-UNIT_SIGN = {"C": "°C", "F": "°F", "K": "K"}
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
@@ -112,7 +112,7 @@ def run(args: argparse.Namespace) -> int:
     from thermeta.predictors import forecast
 
     import numpy as np
-    from thermeta.daemon.units import from_celsius, to_celsius, to_item_units
+    from thermeta.daemon.units import from_celsius, shown_in, to_celsius, to_item_units
 
     try:
         amb_sd = _ambient_sd_c(args)
@@ -139,6 +139,7 @@ def run(args: argparse.Namespace) -> int:
             ambient_t=series.ambient_t if args.ambient is None else None,
             ambient_y=series.ambient_y if args.ambient is None else None,
             limit=limit,
+            shown=shown_in(args.unit),
             **({} if amb_sd is None else {"ambient_uncertainty": amb_sd}),
         )
         if not fc.ok and fc.reason and fc.reason.startswith("too few"):

@@ -21,10 +21,10 @@ from datetime import UTC, datetime
 from typing import Any, Protocol
 
 import numpy as np
+from thermeta.daemon.units import UNIT_SIGN
 from thermeta.predictors.result import Forecast
 
 WIDTH_PX, HEIGHT_PX, DPI = 1000, 560, 100
-UNIT_SIGN = {"C": "°C", "F": "°F", "K": "K"}
 CAUTION = ("Forecasts support decisions; they are not a food-safety plan or a regulatory record. "
            "Local codes and licensed practice decide the limits and actions.")
 # Colours of our own; meaning is also carried by labels and line styles.

@@ -41,7 +41,7 @@ import numpy as np
 from thermeta.daemon.clock import Clock
 from thermeta.daemon.config import AMBIENT_SUFFIX, DEFROST_SUFFIX, Config, ItemConfig
 from thermeta.daemon.defrost import defrost_status
-from thermeta.daemon.units import to_item_units
+from thermeta.daemon.units import shown_in, to_item_units
 from thermeta.daemon.writer import Activity
 from thermeta.predictors.prior import Prior, learn, learnable
 from thermeta.predictors.result import Forecast, rfc3339
@@ -197,7 +197,8 @@ class Refitter:
         prior = self._prior(cls) if mode != "measured" and cfg.model in ("lumped", "auto") else None
         kw: dict[str, Any] = {"model": cfg.model, "ambient": cfg.ambient_c, "ambient_t": amb_t,
                               "ambient_y": amb_y, "window_s": cfg.window_s,
-                              "min_points": cfg.min_points, "limit": limit}
+                              "min_points": cfg.min_points, "limit": limit,
+                              "shown": shown_in(cfg.unit)}  # the warnings' temperatures
         if cfg.ambient is not None and cfg.ambient_sd_c is not None:
             kw["ambient_uncertainty"] = cfg.ambient_sd_c
         try:
@@ -302,7 +303,7 @@ def _load_forecast() -> Callable[..., Forecast]:
     from thermeta.predictors import forecast
 
     params = inspect.signature(forecast).parameters
-    optional = {"min_points", "limit", "prior"}
+    optional = {"min_points", "limit", "prior", "shown"}
     dropped = {k for k in optional if k not in params}
     if not dropped:
         return forecast

@@ -2,9 +2,13 @@
 
 from __future__ import annotations
 
-from typing import Any
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:  # the predictors (numpy, scipy) load only when a forecast is made
+    from thermeta.predictors.wording import DisplayUnit
 
 UNITS = ("C", "F", "K")
+UNIT_SIGN = {"C": "°C", "F": "°F", "K": "K"}  # as the command line, alerts and dashboard print
 # temperatures in a forecast's dict: points (converted with the offset) and differences (scaled)
 POINT_KEYS = ("threshold", "ambient", "ambient_lo", "ambient_hi", "value_now")
 DELTA_KEYS = ("rmse",)
@@ -55,3 +59,15 @@ def to_item_units(d: dict[str, Any], unit: str) -> dict[str, Any]:
         if out.get(k) is not None:
             out[k] = scale_from_celsius(out[k], unit)
     return out
+
+
+def shown_in(unit: str) -> DisplayUnit | None:
+    """How the forecast's warnings show their degC temperatures in ``unit`` (None for degC: the
+    predictors' own text)."""
+    from thermeta.predictors.wording import DisplayUnit
+
+    if unit == "C":
+        return None
+    # from_celsius is a straight line: x * scale + offset
+    return DisplayUnit(scale=scale_from_celsius(1.0, unit), offset=from_celsius(0.0, unit),
+                       symbol=UNIT_SIGN[unit])

@@ -38,6 +38,7 @@ from thermeta.predictors.conduction_series import (
     modes,
     theta_centre,
 )
+from thermeta.predictors.wording import point, step
 
 Float = NDArray[np.float64]
 
@@ -349,7 +350,8 @@ def fit_conduction(
                                  min_points=min_points)
             fit.ambient_mode = "measured"
             fit.ambient_note = (f"the ambient shows no trend; carried forward at its mean "
-                                f"{level[0]:.4g} (standard error {level[1]:.2g})")
+                                f"{point(level[0], '.4g')} (standard error "
+                                f"{step(level[1], '.2g')})")
             if fit.ok:
                 fit.warnings.append(fit.ambient_note)
             return fit
@@ -361,7 +363,7 @@ def fit_conduction(
         curve = _Curve(geometry, "known", start, span, ta, None, fit_start)
         fit = _fit_curve(curve, t, yy)
         fit.ambient_mode = "fitted"
-        fit.warnings.append(f"ambient not identifiable from the curvature; held at {ta:g}")
+        fit.warnings.append(f"ambient not identifiable from the curvature; held at {point(ta)}")
     if fit.ok and mode == "known" and ambient_sd > 0.0:
         # Weight the prior row by noise sd / ambient sd (noise sd from the exact-ambient fit).
         w = max(fit.rmse, 1e-9) / ambient_sd

@@ -39,6 +39,7 @@ from thermeta.predictors.regime import (
     split_disturbance,
 )
 from thermeta.predictors.result import Forecast
+from thermeta.predictors.wording import DisplayUnit, point, showing, step
 
 MODELS = ("lumped", "slab", "cylinder", "sphere", "auto")
 CONDUCTION = ("slab", "cylinder", "sphere")
@@ -76,6 +77,7 @@ def forecast(
     detect_regimes: bool = True,
     limit: str | None = None,
     prior: Prior | None = None,
+    shown: DisplayUnit | None = None,
 ) -> Forecast:
     """Forecast when the series ``y(t)`` crosses ``threshold``.
 
@@ -93,7 +95,9 @@ def forecast(
     (either way; past means the curve crossed within the data).  prior: k (and, with the
     ambient fitted, the ambient) learned from past episodes of the item's class
     (:mod:`thermeta.predictors.prior`), folded into the lumped fit as Gaussian penalties; not
-    used by the measured-ambient and conduction models.
+    used by the measured-ambient and conduction models.  shown: the unit the caller shows
+    temperatures in, when it converted them for the call (:mod:`thermeta.predictors.wording`):
+    the warnings print theirs in it; None: as passed in.  It changes no number of the result.
     """
     if model not in MODELS:
         raise ValueError(f"model must be one of {', '.join(MODELS)}, got {model!r}")
@@ -103,6 +107,8 @@ def forecast(
         raise ValueError(f"limit must be 'upper', 'lower' or None, got {limit!r}")
     if ambient_uncertainty < 0:
         raise ValueError("ambient_uncertainty must be >= 0")
+    if shown is not None and not isinstance(shown, DisplayUnit):
+        raise ValueError(f"shown must be a DisplayUnit or None, got {shown!r}")
     ta, ya = np.asarray(t, dtype=float).ravel(), np.asarray(y, dtype=float).ravel()
     if ta.shape != ya.shape:
         raise ValueError(f"t and y must have the same length ({ta.size} != {ya.size})")
@@ -120,7 +126,7 @@ def forecast(
         min_points = MIN_POINTS_KNOWN if mode != "fitted" else MIN_POINTS
     try:
         # overflow in a far-off corner of a grid is expected and handled; keep logs quiet
-        with np.errstate(all="ignore"):
+        with np.errstate(all="ignore"), showing(shown):
             return _forecast(fc, ta, ya, float(threshold), model, ambient, ambient_t, ambient_y,
                              window_s, min_points, ambient_bounds, ambient_uncertainty,
                              detect_regimes, limit, prior, few)
@@ -404,15 +410,15 @@ def _cycling(fc: Forecast, tt, yy, thr, noise_sd, limit) -> Forecast:
     fc.params = {"n_cycles": float(tr.n_cycles), "cycle_mean": tr.mean_now,
                  "half_swing": tr.half_swing, "drift_per_s": tr.drift_per_s,
                  "drift_se_per_s": tr.drift_se, "n_fit": float(tt.size)}
-    text = (f"the readings cycle (a thermostat?) around {tr.mean_now:.3g} +- {tr.half_swing:.2g} "
-            f"over {tr.n_cycles} full cycle(s)")
+    text = (f"the readings cycle (a thermostat?) around {point(tr.mean_now, '.3g')} +- "
+            f"{step(tr.half_swing, '.2g')} over {tr.n_cycles} full cycle(s)")
     if tr.beyond_horizon:
-        fc.warnings.append(text + f"; their mean drifts by {tr.drift_per_s * 3600:+.2g} per hour "
-                           "toward the threshold, too slowly to forecast a crossing from these "
-                           "readings (it would lie beyond twice their span)")
+        fc.warnings.append(text + f"; their mean drifts by {step(tr.drift_per_s * 3600, '+.2g')} "
+                           "per hour toward the threshold, too slowly to forecast a crossing "
+                           "from these readings (it would lie beyond twice their span)")
     elif tr.significant:
-        fc.warnings.append(text + f"; their mean drifts by {tr.drift_per_s * 3600:+.2g} per hour, "
-                           "so the swing's edge is extrapolated to the threshold")
+        fc.warnings.append(text + f"; their mean drifts by {step(tr.drift_per_s * 3600, '+.2g')} "
+                           "per hour, so the swing's edge is extrapolated to the threshold")
     else:
         fc.warnings.append(text + "; no drift toward the threshold that the cycles can tell "
                            "from zero, so no crossing is forecast while they hold")
@@ -441,8 +447,8 @@ def _few_readings(fc: Forecast, tt, yy, thr, ambient, amb_sd, limit, cl) -> Fore
                  "value_fit_now": fit.value_fit_now, "n_fit": float(tt.size), "n_params": 2.0}
     fc.warnings.append(
         f"only {tt.size} readings: the curve toward the given ambient through them, with their "
-        f"scatter taken as {sigma:.2g} (1 sd, not measured) and the ambient as uncertain by "
-        f"{amb_sd:g}; the interval is wide for that")
+        f"scatter taken as {step(sigma, '.2g')} (1 sd, not measured) and the ambient as uncertain "
+        f"by {step(amb_sd)}; the interval is wide for that")
     if fc.eta_s is None:
         fc.warnings.append(never_reason(fc))
     return fc
@@ -490,7 +496,7 @@ def _note_prior(fc: Forecast, prior: Prior, k_prior, a_prior) -> None:
     text = (f"a prior learned from {prior.n_episodes} past episode(s) is folded in "
             f"(time constant about {tau_h:.3g} h")
     if a_prior is not None:
-        text += f", ambient about {a_prior[0]:.3g} +- {a_prior[1]:.2g}"
+        text += f", ambient about {point(a_prior[0], '.3g')} +- {step(a_prior[1], '.2g')}"
     fc.warnings.append(text + ")")
     fc.params["prior_episodes"] = float(prior.n_episodes)
     z = (math.log(fc.k_per_s) - k_prior[0]) / k_prior[1] if fc.k_per_s else 0.0
@@ -517,8 +523,8 @@ def _fill_lumped(fc: Forecast, fit: LumpedFit, ambient, amb_sd) -> None:
         fc.params.update(ahead_value=fit.trend_now[0], ahead_slope_per_s=fit.trend_now[1])
     if ambient is not None and amb_sd > 0:
         fc.warnings.append(
-            f"the given ambient {ambient:g} is taken as uncertain by about {amb_sd:g} (1 sd); "
-            "the intervals include that")
+            f"the given ambient {point(ambient)} is taken as uncertain by about {step(amb_sd)} "
+            "(1 sd); the intervals include that")
     if (fc.ambient_mode == "fitted" and fc.ambient_lo is not None and fc.ambient_hi is not None
             and fc.ambient_hi - fc.ambient_lo > max(10.0, abs(fc.ambient - fc.value_now))):
         fc.warnings.append("the ambient is poorly determined by the readings so far; "
@@ -709,8 +715,8 @@ def _conduction(fc, tt, yy, thr, shape, ambient, air, amb_sd=0.0, fit=None,
                  "n_params": float(fit.n_params)}
     if ambient is not None and amb_sd > 0:
         fc.warnings.append(
-            f"the given ambient {ambient:g} is taken as uncertain by about {amb_sd:g} (1 sd); "
-            "the intervals include that")
+            f"the given ambient {point(ambient)} is taken as uncertain by about {step(amb_sd)} "
+            "(1 sd); the intervals include that")
     return fc
 
 

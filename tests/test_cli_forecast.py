@@ -189,3 +189,66 @@ def test_a_reader_that_goes_away_gets_no_traceback(tmp_path):
     err = proc.stderr.read().decode()
     assert proc.wait(timeout=120) == 141
     assert "Traceback" not in err and "BrokenPipe" not in err
+
+
+def write_cooling_csv(path, conv) -> None:
+    """A load cooling from 21 toward 40 degF (4.44 degC) with a 2 h time constant (Newton's law,
+    closed form), 0.05 degC noise, each value written as ``conv`` of its degC."""
+    rng = np.random.default_rng(3)
+    t = np.arange(0, 2 * 3600, 60.0)
+    amb = (40 - 32) * 5 / 9
+    y = amb + (21.0 - amb) * np.exp(-t / 7200) + rng.normal(0, 0.05, t.size)
+    path.write_text("time,value\n" + "".join(f"{1764600000 + a:.0f},{conv(b):.4f}\n"
+                                             for a, b in zip(t, y)))
+
+
+KNOWN_NOTE = ("the given ambient {} is taken as uncertain by about {} (1 sd); "
+              "the intervals include that")
+
+
+def test_fahrenheit_warnings_show_fahrenheit(tmp_path):
+    """A degF item with a given ambient of 40 degF: the warning shows that ambient in degF and
+    its default doubt, 2.5 degC (1 sd), as the step 2.5 * 9/5 = 4.5 degF (degF = degC * 9/5 + 32,
+    a step * 9/5: NIST SP 811 App. B, from memory), in the JSON and in the text; with
+    --ambient-within 9 (degF) the doubt is 9 / sqrt 3 degF (GUM's rectangular sd)."""
+    p = tmp_path / "cool_F.csv"
+    write_cooling_csv(p, lambda v: v * 9 / 5 + 32)
+    args = ("forecast", str(p), "--threshold", "45", "--ambient", "40", "--unit", "F")
+    r = run_cli(*args, "--json")
+    assert r.returncode == 0, r.stderr
+    out = json.loads(r.stdout)
+    assert out["ambient_mode"] == "known" and out["unit"] == "F"
+    assert KNOWN_NOTE.format("40 °F", f"{2.5 * 9 / 5:g} °F") in out["warnings"]
+    r = run_cli(*args)
+    assert r.returncode == 0, r.stderr
+    assert "warning: " + KNOWN_NOTE.format("40 °F", "4.5 °F") in r.stdout
+    r = run_cli(*args, "--ambient-within", "9", "--json")
+    assert r.returncode == 0, r.stderr
+    sd_f = f"{9 / np.sqrt(3):g}"
+    assert sd_f == "5.19615"
+    assert KNOWN_NOTE.format("40 °F", f"{sd_f} °F") in json.loads(r.stdout)["warnings"]
+
+
+def test_kelvin_warnings_show_kelvin(tmp_path):
+    """A K item with a given ambient of 277.6 K: the warning shows 277.6 K and the 2.5 degC doubt
+    as 2.5 K (K = degC + 273.15, a kelvin step equal to a degC step: NIST SP 811, from memory)."""
+    p = tmp_path / "cool_K.csv"
+    write_cooling_csv(p, lambda v: v + 273.15)
+    r = run_cli("forecast", str(p), "--threshold", "280", "--ambient", "277.6", "--unit", "K",
+                "--json")
+    assert r.returncode == 0, r.stderr
+    out = json.loads(r.stdout)
+    assert out["ambient"] == pytest.approx(277.6, abs=0.5)
+    assert KNOWN_NOTE.format("277.6 K", "2.5 K") in out["warnings"]
+
+
+def test_celsius_warnings_are_unchanged(tmp_path):
+    """In degC (--unit C or no --unit) the warning is the predictors' own text, no unit sign:
+    the given ambient as typed and the 2.5 degC default doubt."""
+    p = tmp_path / "cool_C.csv"
+    write_cooling_csv(p, lambda v: v)
+    base = ("forecast", str(p), "--threshold", "7.2", "--ambient", "4.44", "--json")
+    outs = [json.loads(run_cli(*base, *unit).stdout) for unit in ((), ("--unit", "C"))]
+    assert outs[0] == outs[1]
+    assert KNOWN_NOTE.format("4.44", "2.5") in outs[0]["warnings"]
+    assert not any("°" in w for w in outs[0]["warnings"])

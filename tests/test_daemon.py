@@ -250,6 +250,35 @@ def test_fahrenheit_item_is_fitted_in_celsius_and_published_in_fahrenheit(tmp_pa
     store.close()
 
 
+def test_refit_warnings_show_the_item_unit(tmp_path):
+    """The refit passes each item's unit to the forecast's warnings: the given ambient 25 degC
+    reads 77 degF and 298.15 K, its default doubt (2.5 degC, 1 sd) 4.5 degF and 2.5 K, and an
+    ambient_within of 1.8 degF the sd 1.8 / sqrt 3 degF (degF = degC * 9/5 + 32, a step * 9/5;
+    K = degC + 273.15: NIST SP 811 App. B, from memory); a degC item's text is unchanged."""
+    t_rel = np.arange(0, 1800, 30.0)
+    rng = np.random.default_rng(9)
+    y_c = warming(t_rel) + rng.normal(0, 0.02, t_rel.size)
+    t = T0 - 1800 + t_rel
+    items = ('[[item]]\nname = "f"\ntopic = "k/f"\nunit = "F"\nthreshold = 46.4\nambient = 77.0\n'
+             '[[item]]\nname = "fw"\ntopic = "k/fw"\nunit = "F"\nthreshold = 46.4\n'
+             'ambient = 77.0\nambient_within = 1.8\n'
+             '[[item]]\nname = "k"\ntopic = "k/k"\nunit = "K"\nthreshold = 281.15\n'
+             'ambient = 298.15\n'
+             '[[item]]\nname = "c"\ntopic = "k/c"\nthreshold = 8.0\nambient = 25.0\n')
+    cfg, store, act = seeded_store(tmp_path, items, {n: (t, y_c) for n in ("f", "fw", "k", "c")})
+    got: dict[str, dict] = {}
+    Refitter(store, cfg, ManualClock(T0), act,
+             publish=lambda n, p: got.update({n: json.loads(p)})).run_once()
+    note = ("the given ambient {} is taken as uncertain by about {} (1 sd); "
+            "the intervals include that")
+    assert note.format("77 °F", "4.5 °F") in got["f"]["warnings"]
+    assert note.format("77 °F", f"{1.8 / math.sqrt(3):g} °F") in got["fw"]["warnings"]
+    assert note.format("298.15 K", "2.5 K") in got["k"]["warnings"]
+    assert note.format("25", "2.5") in got["c"]["warnings"]
+    assert got["f"]["eta_s"] == pytest.approx(got["c"]["eta_s"], rel=1e-9)
+    store.close()
+
+
 def test_ambient_within_reaches_the_refit(tmp_path):
     """An item's ambient_within (its unit) is the doubt the refit's fit gives the ambient: 1.8 degF
     on a degF item fits like 1 degC on a degC item (a band 9/5 as wide in degF), and both are

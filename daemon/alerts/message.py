@@ -15,9 +15,9 @@ from typing import Any
 
 from thermeta.daemon.alerts.rules import Event, ItemAlertState, RuleParams, _t, remaining_s
 from thermeta.daemon.timefmt import human_duration
+from thermeta.daemon.units import UNIT_SIGN
 from thermeta.predictors.result import rfc3339
 
-UNIT_SIGN = {"C": "°C", "F": "°F", "K": "K"}
 CAUTION = ("Forecasts support decisions; local codes and the site's own procedures decide "
            "limits and actions.")
 
