@@ -118,13 +118,17 @@ def hampel_mask(t: np.ndarray, y: np.ndarray, n_sigma: float = 6.0, half: int = 
     return np.abs(r) <= n_sigma * scale, sd
 
 
-def runs(t: np.ndarray, gap_steps: float = GAP_STEPS) -> list[slice]:
+def runs(t: np.ndarray, gap_steps: float = GAP_STEPS, half: int = 5) -> list[slice]:
     """Stretches of time-ordered readings without a pause longer than ``gap_steps`` times the
-    median sampling step."""
+    sampling step around it (the median of the ``half`` steps on either side), so a logger that
+    changes its rate (every 5 min, then every minute in an alarm) is not cut at each step."""
     if t.size < 2:
         return [slice(0, t.size)]
     d = np.diff(t)
-    cuts = np.flatnonzero(d > gap_steps * float(np.median(d))) + 1
+    w = min(2 * half + 1, d.size)
+    idx = np.clip(np.arange(d.size) - w // 2, 0, d.size - w)
+    local = np.median(sliding_window_view(d, w)[idx], axis=1)
+    cuts = np.flatnonzero(d > gap_steps * local) + 1
     edges = [0, *cuts.tolist(), t.size]
     return [slice(a, b) for a, b in zip(edges[:-1], edges[1:])]
 

@@ -157,3 +157,14 @@ def test_readings_after_a_dropout_are_not_spikes():
     y[spike] += 15.0
     c = clean(t, y)
     assert c.n_outliers == 1 and t[spike] not in c.t
+
+
+def test_a_change_of_logging_rate_is_not_a_pause():
+    """A logger that reads every 5 min, then every minute (an alarm's faster rate), is one run;
+    a pause of 7 sampling steps (11.7 min at 100 s) cuts one."""
+    from thermeta.predictors.cleaning import runs
+
+    t = np.concatenate([np.arange(0, 3000, 300.0), 3000 + np.arange(0, 1200, 60.0)])
+    assert runs(t) == [slice(0, t.size)]
+    t2 = np.concatenate([np.arange(0, 700, 100.0), 1400 + np.arange(0, 1000, 100.0)])
+    assert runs(t2) == [slice(0, 7), slice(7, 17)]
