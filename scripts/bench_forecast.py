@@ -523,8 +523,9 @@ def crb_limited(recs: list[dict], draws: int = 400) -> tuple[float, float] | Non
     |N(0, sd_CRB)| / eta_true pooled over the cases (seeded draws).  An infinite bound (the
     readings cannot determine the parameters, e.g. two readings of a three-parameter curve)
     counts as a missing ETA, as the predictor's "too few readings" does."""
-    rel = [r["crb_sd"] / r["eta_true"] for r in recs
-           if (r.get("eta_true") or 0) > 0 and not math.isnan(r.get("crb_sd", math.nan))]
+    # sorted: the pool's order (the workers finish in any order) must not change the draws
+    rel = sorted(r["crb_sd"] / r["eta_true"] for r in recs
+                 if (r.get("eta_true") or 0) > 0 and not math.isnan(r.get("crb_sd", math.nan)))
     if not rel:
         return None
     z = np.abs(np.random.default_rng(0).standard_normal((len(rel), draws)))
