@@ -250,15 +250,19 @@ def test_fahrenheit_item_is_fitted_in_celsius_and_published_in_fahrenheit(tmp_pa
     store.close()
 
 
+def _half_hour_warming() -> tuple[np.ndarray, np.ndarray]:
+    """Half an hour of a load warming (degC), a reading every 30 s, up to T0."""
+    t_rel = np.arange(0, 1800, 30.0)
+    rng = np.random.default_rng(9)
+    return T0 - 1800 + t_rel, warming(t_rel) + rng.normal(0, 0.02, t_rel.size)
+
+
 def test_refit_warnings_show_the_item_unit(tmp_path):
     """The refit passes each item's unit to the forecast's warnings: the given ambient 25 degC
     reads 77 degF and 298.15 K, its default doubt (2.5 degC, 1 sd) 4.5 degF and 2.5 K, and an
     ambient_within of 1.8 degF the sd 1.8 / sqrt 3 degF (degF = degC * 9/5 + 32, a step * 9/5;
     K = degC + 273.15: NIST SP 811 App. B, from memory); a degC item's text is unchanged."""
-    t_rel = np.arange(0, 1800, 30.0)
-    rng = np.random.default_rng(9)
-    y_c = warming(t_rel) + rng.normal(0, 0.02, t_rel.size)
-    t = T0 - 1800 + t_rel
+    t, y_c = _half_hour_warming()
     items = ('[[item]]\nname = "f"\ntopic = "k/f"\nunit = "F"\nthreshold = 46.4\nambient = 77.0\n'
              '[[item]]\nname = "fw"\ntopic = "k/fw"\nunit = "F"\nthreshold = 46.4\n'
              'ambient = 77.0\nambient_within = 1.8\n'
@@ -283,10 +287,7 @@ def test_ambient_within_reaches_the_refit(tmp_path):
     """An item's ambient_within (its unit) is the doubt the refit's fit gives the ambient: 1.8 degF
     on a degF item fits like 1 degC on a degC item (a band 9/5 as wide in degF), and both are
     narrower than the same items without it (the default doubt, 2.5 degC sd)."""
-    t_rel = np.arange(0, 1800, 30.0)
-    rng = np.random.default_rng(9)
-    y_c = warming(t_rel) + rng.normal(0, 0.02, t_rel.size)
-    t = T0 - 1800 + t_rel
+    t, y_c = _half_hour_warming()
     items = ('[[item]]\nname = "f"\ntopic = "k/f"\nunit = "F"\nthreshold = 46.4\nambient = 77.0\n'
              'ambient_within = 1.8\n'
              '[[item]]\nname = "c"\ntopic = "k/c"\nthreshold = 8.0\nambient = 25.0\n'
