@@ -26,6 +26,7 @@ from __future__ import annotations
 import argparse
 import math
 import multiprocessing as mp
+import os
 import sys
 import time
 from pathlib import Path
@@ -319,7 +320,8 @@ def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true")
     ap.add_argument("--seed", type=int, default=2026)
-    ap.add_argument("--jobs", type=int, default=1)
+    ap.add_argument("--jobs", type=int, default=os.cpu_count() or 1,
+                    help="worker processes (default: one per CPU)")
     ap.add_argument("--no-defrost-signal", action="store_true",
                     help="do not tell the probes of the controller's defrosts (shows what it buys)")
     ap.add_argument("--readme", action="store_true",

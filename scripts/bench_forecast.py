@@ -6,7 +6,7 @@ over seeded scenario families with known truth, at 25, 50 and 75 % of the time t
 crossing, and writes a markdown table (docs/bench_forecast.md) and a figure
 (docs/bench_forecast.png).  Prints the tables.
 
-    python scripts/bench_forecast.py                 # the full run (a few minutes on one core)
+    python scripts/bench_forecast.py                 # the full run (about 6 min, one worker per CPU)
     python scripts/bench_forecast.py --quick         # a smoke run, a few cases per family
     python scripts/bench_forecast.py --families chill_fitted,warm_known --cases 100 --jobs 2
 
@@ -34,6 +34,7 @@ from __future__ import annotations
 import argparse
 import math
 import multiprocessing as mp
+import os
 import sys
 import time
 from collections.abc import Callable
@@ -1042,7 +1043,8 @@ def parse_args(argv: list[str] | None) -> argparse.Namespace:
                     help="cases per family (default: 200; regime 150, cycling 30)")
     ap.add_argument("--seed", type=int, default=2026)
     ap.add_argument("--families", help=f"comma list of: {', '.join(FAMILIES)}")
-    ap.add_argument("--jobs", type=int, default=1, help="worker processes (default 1)")
+    ap.add_argument("--jobs", type=int, default=os.cpu_count() or 1,
+                    help="worker processes (default: one per CPU)")
     ap.add_argument("--readme", action="store_true",
                     help="also rewrite the table in README.md (between the bench's markers)")
     ap.add_argument("--out", default=str(Path(__file__).resolve().parent.parent / "docs"),
