@@ -93,22 +93,25 @@ class _Recorder:
 
     def _forecast_line(self, item_cfg, d: dict[str, Any], now: float) -> str:
         from thermeta.daemon.timefmt import human_duration, local_clock
+        from thermeta.daemon.units import UNIT_SIGN
 
-        unit = {"C": "°C", "F": "°F", "K": "K"}.get(item_cfg.unit, item_cfg.unit)
+        unit = UNIT_SIGN.get(item_cfg.unit, item_cfg.unit)
         parts = [f"{self._stamp(now)} forecast {item_cfg.name}: {d.get('state')}"]
         if d.get("value_now") is not None:
             parts.append(f"now {d['value_now']:.1f} {unit}")
         eta = d.get("eta_s")
         t_last = _epoch(d.get("last_reading_at"))
         if eta and t_last is not None:
+            # the forecast counts from its newest reading; the line counts from now
+            ahead = t_last - now
             lo, hi = d.get("eta_lo_s"), d.get("eta_hi_s")
             if hi is None:
                 hi_text = "no upper bound"
             elif hi > 30 * 86400:
                 hi_text = "beyond 30 d"
             else:
-                hi_text = human_duration(hi)
-            band = f"{human_duration(lo)} to {hi_text}"
+                hi_text = human_duration(hi + ahead)
+            band = f"{human_duration(None if lo is None else lo + ahead)} to {hi_text}"
             parts.append(f"crosses {d.get('threshold'):g} {unit} at {local_clock(t_last + eta)} "
                          f"(in {human_duration(t_last + eta - now)}; 90 %: {band})")
         elif d.get("state") == "steady":

@@ -174,3 +174,20 @@ def test_demo_bad_arguments(tmp_path, capsys):
         assert main(["demo", *args]) == 2
         err = capsys.readouterr().err
         assert word in err and len(err.strip().splitlines()) == 1
+
+
+def test_forecast_line_counts_point_and_interval_from_now():
+    """The forecast's times count from its newest reading; a line printed two minutes later
+    counts the point and both ends of the interval from the moment it is printed."""
+    from types import SimpleNamespace
+
+    from thermeta.daemon.cmd_demo import _Recorder
+    from thermeta.predictors.result import rfc3339
+
+    t_last = 1_764_600_000.0
+    rec = _Recorder(SimpleNamespace(loads=[], t_start=t_last - 3600.0), clock=None, out=None,
+                    echo=False)
+    d = {"state": "approaching", "value_now": -16.0, "threshold": -15.0, "eta_s": 1980.0,
+         "eta_lo_s": 1920.0, "eta_hi_s": 2100.0, "last_reading_at": rfc3339(t_last)}
+    line = rec._forecast_line(SimpleNamespace(name="yard/box", unit="C"), d, t_last + 120.0)
+    assert "(in 31 min; 90 %: 30 min to 33 min)" in line
