@@ -6,7 +6,7 @@ over seeded scenario families with known truth, at 25, 50 and 75 % of the time t
 crossing, and writes a markdown table (docs/bench_forecast.md) and a figure
 (docs/bench_forecast.png).  Prints the tables.
 
-    python scripts/bench_forecast.py                 # the full run (about 6 min, one worker per CPU)
+    python scripts/bench_forecast.py                 # the full run (~6 min, a worker per CPU)
     python scripts/bench_forecast.py --quick         # a smoke run, a few cases per family
     python scripts/bench_forecast.py --families chill_fitted,warm_known --cases 100 --jobs 2
 
