@@ -299,12 +299,12 @@ def fit_conduction(
     the given ambient is only known to that sd: the ambient is then fitted with a Gaussian prior
     centred on it, so the intervals carry that doubt.  interval: "profile" (profile likelihood
     of the crossing time; slower, better coverage), "draws" (simulated delta method, also used
-    for the Bi, k and ambient intervals) or "auto" (the profile; with a measured, drifting
-    ambient too, where draws from the linearised covariance covered the true crossing in only
-    60-83 % of scripts/bench_conduction.py's warm cases, the profile in 93-100 %, at 0.2-0.35 s
-    of CPU per fit and interval instead of 0.06-0.1 s).  hold_steady: a measured ambient
-    with no significant trend over the episode (:func:`steady_level`) is taken as a constant
-    at its mean (ambient_mode stays "measured").  min_points: the fewest readings to fit (default:
+    for the Bi, k and ambient intervals) or "auto" (the profile, with a measured, drifting
+    ambient too: there the draws covered the true crossing in only 60-83 % of
+    scripts/bench_conduction.py's warm cases, the profile in 93-100 %, for about 4x the CPU
+    time, 0.23-0.27 s instead of 0.055 s per fit and interval when measured).  hold_steady: a
+    measured ambient with no significant trend over the episode (:func:`steady_level`) is taken
+    as a constant at its mean (ambient_mode stays "measured").  min_points: the fewest readings to fit (default:
     the free parameters plus two, so the noise has two degrees of freedom: 5 with a given or
     measured ambient, 6 with it fitted, one more with fit_start; the intervals' t and F(1, n - p)
     cut-offs widen as it nears that).  A failed fit is returned with
