@@ -305,9 +305,9 @@ def fit_conduction(
     time, 0.23-0.27 s instead of 0.055 s per fit and interval when measured).  hold_steady: a
     measured ambient with no significant trend over the episode (:func:`steady_level`) is taken
     as a constant at its mean (ambient_mode stays "measured").  min_points: the fewest readings
-    to fit (default: the free parameters plus two, so the noise has two degrees of freedom: 5 with a given or
-    measured ambient, 6 with it fitted, one more with fit_start; the intervals' t and F(1, n - p)
-    cut-offs widen as it nears that).  A failed fit is returned with
+    to fit (default: the free parameters plus two, so the noise has two degrees of freedom: 5
+    with a given or measured ambient, 6 with it fitted, one more with fit_start; the intervals'
+    t and F(1, n - p) cut-offs widen as it nears that).  A failed fit is returned with
     ``ok=False`` and a reason; ValueError only for a bad geometry or mismatched arrays.
     """
     if geometry not in GEOMETRIES:
