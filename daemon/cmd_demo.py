@@ -76,6 +76,7 @@ class _Recorder:
         self.alerts: list[dict[str, Any]] = []
         self._last_print: dict[str, tuple[str, float]] = {}
         self._lock = threading.Lock()
+        self._print_lock = threading.Lock()
 
     def on_forecast(self, item_cfg, body: dict[str, Any], prev: dict[str, Any] | None) -> None:
         now = self.clock.now()
@@ -101,7 +102,7 @@ class _Recorder:
             parts.append(f"now {d['value_now']:.1f} {unit}")
         eta = d.get("eta_s")
         t_last = _epoch(d.get("last_reading_at"))
-        if eta and t_last is not None:
+        if eta and t_last is not None and d.get("state") != "crossed":
             # the forecast counts from its newest reading; the line counts from now
             ahead = t_last - now
             lo, hi = d.get("eta_lo_s"), d.get("eta_hi_s")
@@ -145,8 +146,11 @@ class _Recorder:
         return f"[{local_clock(now)} +{(now - self.scenario.t_start) / 60:5.0f} min]"
 
     def _print(self, line: str) -> None:
+        # forecasts (the refit thread) and alerts (the MQTT thread) print: one write per line
         try:
-            print(line, file=self.out, flush=True)
+            with self._print_lock:
+                self.out.write(line + "\n")
+                self.out.flush()
         except BrokenPipeError:  # the reader went away (e.g. `| head`): stop printing
             self.echo = False
 
@@ -169,6 +173,7 @@ class _Recorder:
                                and (f["eta_hi_s"] is None or true_left <= f["eta_hi_s"])})
             items[name] = {
                 "true_crossing_t": c, "n_forecasts": len(fcs),
+                "n_approaching": sum(f["state"] == "approaching" for f in fcs),
                 "states": sorted({f["state"] for f in fcs if f["state"]}),
                 "alerts": [a["level"] for a in self.alerts if a["item"] == name],
                 "ahead": errors,
@@ -405,6 +410,10 @@ def _dashboard(service, stop: threading.Event, end_at: float | None, sim, out) -
     stop.set()
 
 
+def _count(n: int, noun: str) -> str:
+    return f"{n} {noun}" if n == 1 else f"{n} {noun}s"
+
+
 def _print_summary(summary: dict[str, Any], out) -> None:
     from thermeta.daemon.timefmt import local_clock
 
@@ -417,10 +426,17 @@ def _print_summary(summary: dict[str, Any], out) -> None:
             errs = sorted(abs(a["rel_error"]) for a in ahead)
             med = errs[len(errs) // 2]
             inside = sum(a["inside_90"] for a in ahead) / len(ahead)
-            how = (f"{len(ahead)} forecasts ahead, median error {100 * med:.1f} %, "
+            how = (f"{_count(len(ahead), 'forecast')} ahead, median error {100 * med:.1f} %, "
                    f"truth inside the 90 % interval in {100 * inside:.0f} %")
+        elif it["true_crossing_t"] is None:
+            n_app = it["n_approaching"]
+            how = f"{_count(it['n_forecasts'], 'forecast')}, " + (
+                f"{n_app} of them approaching a crossing that never comes" if n_app
+                else "none approaching")
+        elif it["true_crossing_t"] > summary["sim_end"]:
+            how = f"{_count(it['n_forecasts'], 'forecast')}, none approaching it yet"
         else:
-            how = f"{it['n_forecasts']} forecasts, none ahead of a crossing"
+            how = f"{_count(it['n_forecasts'], 'forecast')}, none approaching it before it came"
         alerts = ", ".join(str(a) for a in it["alerts"]) or "no alerts"
         print(f"  {name}: {truth}; {how}; {alerts}", file=out)
     print(f"{summary['n_alerts']} alerts in all", file=out, flush=True)

@@ -55,6 +55,7 @@ def collect(cfg: Any, store: Any, now: float) -> dict[str, Any]:
 
 
 def _eta_text(r: dict[str, Any], now: float) -> str:
+    from thermeta.daemon.alerts.rules import remaining_s
     from thermeta.daemon.timefmt import human_duration, parse_time
 
     if r["state"] == "crossed":
@@ -64,8 +65,9 @@ def _eta_text(r: dict[str, Any], now: float) -> str:
     left = parse_time(r["crossing_at"]) - now
     text = f"in {human_duration(left)}" if left > 0 else "due now"
     if r["eta_lo_s"] is not None or r["eta_hi_s"] is not None:
-        text += (f" (90 %: {human_duration(r['eta_lo_s'])} to "
-                 f"{human_duration(r['eta_hi_s']) if r['eta_hi_s'] is not None else 'open'})")
+        # the forecast's interval counts from its newest reading; the line counts from now
+        lo, hi = remaining_s(r, "eta_lo_s", now), remaining_s(r, "eta_hi_s", now)
+        text += f" (90 %: {human_duration(lo)} to {human_duration(hi) if hi is not None else 'open'})"
     return text
 
 
@@ -74,6 +76,7 @@ def run(args: argparse.Namespace) -> int:
 
     from thermeta.daemon.cmdutil import load_config_or_report, open_store
     from thermeta.daemon.timefmt import human_duration, parse_time
+    from thermeta.daemon.units import UNIT_SIGN
 
     cfg = load_config_or_report(args.config)
     if cfg is None:
@@ -103,7 +106,7 @@ def run(args: argparse.Namespace) -> int:
           f"last refit {last or 'never'}{ago}")
     rows = [("ITEM", "STATE", "NOW", "THRESHOLD", "CROSSING")]
     for r in info["per_item"]:
-        u = r["unit"]
+        u = UNIT_SIGN.get(r["unit"], r["unit"])
         rows.append((r["item"], r["state"] or "-",
                      f"{r['value_now']:.1f} {u}" if r["value_now"] is not None else "-",
                      f"{r['threshold']:g} {u}" if r["threshold"] is not None else "-",

@@ -61,13 +61,11 @@ def to_item_units(d: dict[str, Any], unit: str) -> dict[str, Any]:
     return out
 
 
-def shown_in(unit: str) -> DisplayUnit | None:
-    """How the forecast's warnings show their degC temperatures in ``unit`` (None for degC: the
-    predictors' own text)."""
+def shown_in(unit: str) -> DisplayUnit:
+    """How the forecast's warnings show their degC temperatures in ``unit``, with its sign (the
+    predictors' own text has none, so a degC item gets the identity scale and its sign too)."""
     from thermeta.predictors.wording import DisplayUnit
 
-    if unit == "C":
-        return None
     # from_celsius is a straight line: x * scale + offset
     return DisplayUnit(scale=scale_from_celsius(1.0, unit), offset=from_celsius(0.0, unit),
                        symbol=UNIT_SIGN[unit])

@@ -209,7 +209,7 @@ def test_bad_params_are_value_errors():
 
 def test_the_sentence_carries_the_numbers():
     """One sentence: item, level, value now, threshold, crossing clock time and 'in N min' with
-    the interval, fitted ambient and time constant."""
+    the interval, the ambient (given, measured or fitted) and time constant."""
     now = T0_EPOCH + 600
     fc = fc_at(600)
     fc.update(eta_s=2520.0 + 600, eta_lo_s=1620.0 + 600, eta_hi_s=4080.0 + 600,
@@ -222,7 +222,10 @@ def test_the_sentence_carries_the_numbers():
     assert s.startswith("trailer-4 is approaching its threshold: ")
     assert f"{newton(600):.1f} °C now" in s and "threshold of -15.0 °C" in s
     assert "(in 42 min; 90 % interval" in s and "in 27 min to 68 min" in s
-    assert "fitted ambient 12.0 °C, time constant 10 h 00 min" in s
+    # the ambient says where it came from: the item's config (here), its air probe, or the fit
+    assert "; given ambient 12.0 °C, time constant 10 h 00 min" in s
+    assert "; fitted ambient 12.0 °C," in sentence(dict(a, ambient_mode="fitted"))
+    assert "; measured ambient 12.0 °C," in sentence(dict(a, ambient_mode="measured"))
     assert s.count(". ") == 0 and s.endswith(".")
     assert a["crossing_at"] == rfc3339(now + 2520.0)
     assert a["id"] == "trailer-4:1:approaching:1"

@@ -242,13 +242,12 @@ def test_kelvin_warnings_show_kelvin(tmp_path):
     assert KNOWN_NOTE.format("277.6 K", "2.5 K") in out["warnings"]
 
 
-def test_celsius_warnings_are_unchanged(tmp_path):
-    """In degC (--unit C or no --unit) the warning is the predictors' own text, no unit sign:
-    the given ambient as typed and the 2.5 degC default doubt."""
+def test_celsius_warnings_carry_their_sign(tmp_path):
+    """In degC (--unit C or no --unit) the warning shows the given ambient as typed and the
+    2.5 degC default doubt, each with its sign, as the other units do."""
     p = tmp_path / "cool_C.csv"
     write_cooling_csv(p, lambda v: v)
     base = ("forecast", str(p), "--threshold", "7.2", "--ambient", "4.44", "--json")
     outs = [json.loads(run_cli(*base, *unit).stdout) for unit in ((), ("--unit", "C"))]
     assert outs[0] == outs[1]
-    assert KNOWN_NOTE.format("4.44", "2.5") in outs[0]["warnings"]
-    assert not any("°" in w for w in outs[0]["warnings"])
+    assert KNOWN_NOTE.format("4.44 °C", "2.5 °C") in outs[0]["warnings"]

@@ -261,7 +261,7 @@ def test_refit_warnings_show_the_item_unit(tmp_path):
     """The refit passes each item's unit to the forecast's warnings: the given ambient 25 degC
     reads 77 degF and 298.15 K, its default doubt (2.5 degC, 1 sd) 4.5 degF and 2.5 K, and an
     ambient_within of 1.8 degF the sd 1.8 / sqrt 3 degF (degF = degC * 9/5 + 32, a step * 9/5;
-    K = degC + 273.15: NIST SP 811 App. B, from memory); a degC item's text is unchanged."""
+    K = degC + 273.15: NIST SP 811 App. B, from memory); a degC item's note reads 25 °C and 2.5 °C."""
     t, y_c = _half_hour_warming()
     items = ('[[item]]\nname = "f"\ntopic = "k/f"\nunit = "F"\nthreshold = 46.4\nambient = 77.0\n'
              '[[item]]\nname = "fw"\ntopic = "k/fw"\nunit = "F"\nthreshold = 46.4\n'
@@ -278,7 +278,7 @@ def test_refit_warnings_show_the_item_unit(tmp_path):
     assert note.format("77 °F", "4.5 °F") in got["f"]["warnings"]
     assert note.format("77 °F", f"{1.8 / math.sqrt(3):g} °F") in got["fw"]["warnings"]
     assert note.format("298.15 K", "2.5 K") in got["k"]["warnings"]
-    assert note.format("25", "2.5") in got["c"]["warnings"]
+    assert note.format("25 °C", "2.5 °C") in got["c"]["warnings"]
     assert got["f"]["eta_s"] == pytest.approx(got["c"]["eta_s"], rel=1e-9)
     store.close()
 
@@ -426,6 +426,19 @@ def test_status_text_reads_the_store(tmp_path):
     missing = subprocess.run([sys.executable, "-m", "thermeta.daemon.cli", "status", "--config",
                               str(tmp_path / "nowhere.toml")], capture_output=True, text=True, timeout=60)
     assert missing.returncode == 2
+
+
+def test_status_line_counts_point_and_interval_from_now():
+    """The forecast's times count from its newest reading; `thermeta status` two minutes later
+    counts the point and both ends of the interval from the moment it prints."""
+    from thermeta.daemon.cmd_status import _eta_text
+    from thermeta.predictors.result import rfc3339
+
+    t_last = T0 - 120.0
+    r = {"state": "approaching", "eta_s": 1980.0, "eta_lo_s": 1920.0, "eta_hi_s": 2100.0,
+         "crossing_at": rfc3339(t_last + 1980.0), "last_reading_at": rfc3339(t_last)}
+    assert _eta_text(r, T0 + 0.0) == "in 31 min (90 %: 30 min to 33 min)"
+    assert _eta_text(dict(r, eta_hi_s=None), T0 + 0.0) == "in 31 min (90 %: 30 min to open)"
 
 
 def test_retention_keeps_the_configured_days(tmp_path):

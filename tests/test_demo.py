@@ -191,3 +191,62 @@ def test_forecast_line_counts_point_and_interval_from_now():
          "eta_lo_s": 1920.0, "eta_hi_s": 2100.0, "last_reading_at": rfc3339(t_last)}
     line = rec._forecast_line(SimpleNamespace(name="yard/box", unit="C"), d, t_last + 120.0)
     assert "(in 31 min; 90 %: 30 min to 33 min)" in line
+
+
+def test_lines_from_two_threads_stay_whole():
+    """Forecast lines (the refit thread) and alert lines (the MQTT thread) go out as one write
+    each, under one lock, so two lines never run together as `...21:44[19:12 ...] ALERT`."""
+    import threading
+    from types import SimpleNamespace
+
+    from thermeta.daemon.cmd_demo import _Recorder
+
+    class Out:
+        def __init__(self):
+            self.writes: list[str] = []
+
+        def write(self, text):
+            self.writes.append(text)
+            time.sleep(0)  # let the other thread in between writes, as a terminal would
+
+        def flush(self):
+            pass
+
+    out = Out()
+    rec = _Recorder(SimpleNamespace(loads=[], t_start=0.0), clock=None, out=out, echo=True)
+    threads = [threading.Thread(target=lambda tag=tag: [rec._print(f"{tag} line {i}")
+                                                         for i in range(200)])
+               for tag in ("forecast", "ALERT")]
+    for th in threads:
+        th.start()
+    for th in threads:
+        th.join()
+    assert len(out.writes) == 400
+    assert all(w.endswith("\n") and w.count("\n") == 1 for w in out.writes)
+
+
+def test_summary_says_what_the_forecasts_missed():
+    """The closing summary: an item that never crosses says how many forecasts were approaching
+    anyway; one whose crossing came with no forecast approaching it says so; one whose crossing
+    lies beyond the run says 'yet'; counts of one are singular."""
+    import io
+
+    from thermeta.daemon.cmd_demo import _print_summary
+
+    def item(crossing, n, n_app, ahead=()):
+        return {"true_crossing_t": crossing, "n_forecasts": n, "n_approaching": n_app,
+                "alerts": [], "ahead": list(ahead)}
+
+    one = {"rel_error": 0.05, "inside_90": True}
+    summary = {"sim_end": 5000.0, "n_alerts": 0, "items": {
+        "never-quiet": item(None, 22, 0), "never-loud": item(None, 22, 9),
+        "missed": item(4000.0, 10, 0), "later": item(9000.0, 10, 0),
+        "caught": item(4000.0, 3, 1, [one])}}
+    out = io.StringIO()
+    _print_summary(summary, out)
+    lines = {ln.split(":")[0].strip(): ln for ln in out.getvalue().splitlines()}
+    assert "22 forecasts, none approaching;" in lines["never-quiet"]
+    assert "22 forecasts, 9 of them approaching a crossing that never comes" in lines["never-loud"]
+    assert "10 forecasts, none approaching it before it came" in lines["missed"]
+    assert "10 forecasts, none approaching it yet" in lines["later"]
+    assert "1 forecast ahead, median error 5.0 %" in lines["caught"]

@@ -58,7 +58,9 @@ def eta_clause(a: dict[str, Any]) -> str:
 def fit_clause(a: dict[str, Any]) -> str:
     amb = temp(a.get("ambient"), a["unit"]) if a.get("ambient") is not None else "not known"
     tau = human_duration(a.get("time_constant_s")) if a.get("time_constant_s") else "not known"
-    return f"fitted ambient {amb}, time constant {tau}"
+    # the ambient's source: the item's config, its air probe, or the fit
+    how = {"known": "given", "measured": "measured"}.get(a.get("ambient_mode") or "", "fitted")
+    return f"{how} ambient {amb}, time constant {tau}"
 
 
 def sentence(a: dict[str, Any]) -> str:

@@ -21,7 +21,8 @@ from thermeta.daemon.hooks.base import Hook
 
 FIELDS = (("value_now", "value now"), ("threshold", "threshold"), ("eta_s", "ETA (s)"),
           ("crossing_at", "crossing at"), ("crossing_lo_at", "interval from"),
-          ("crossing_hi_at", "interval to"), ("ambient", "fitted ambient"),
+          ("crossing_hi_at", "interval to"), ("ambient", "ambient"),
+          ("ambient_mode", "ambient mode"),
           ("time_constant_s", "time constant (s)"), ("state", "state"), ("at", "alert time"))
 
 
