@@ -212,5 +212,8 @@ class MqttLink:
                 info.wait_for_publish(timeout)
         except (RuntimeError, ValueError) as exc:
             log.warning("could not publish the offline status: %s", exc)
+        # paho's network thread runs once more after the socket closes and logs that as an
+        # error ("Client is not connected"); on a stop we asked for, that line would only alarm
+        self.client.disable_logger()
         self.client.disconnect()
         self.client.loop_stop()

@@ -184,6 +184,8 @@ def test_warming_curve_forecast_is_retained_and_matches_the_truth(broker, tmp_pa
     assert parse_time(fc["crossing_at"]) == pytest.approx(t0 + true_crossing_rel, abs=0.05 * true_eta_s)
     assert status["state"] == "online"
     assert retained(broker, "thermeta/status")["state"] == "offline"  # clean stop says so
+    # a clean run and stop log nothing at ERROR (paho's own last-loop complaint included)
+    assert " ERROR " not in (tmp_path / "daemon.log").read_text()
 
 
 def test_kill_9_mid_stream_loses_and_doubles_nothing(broker, tmp_path):
