@@ -16,6 +16,7 @@ region, consistent with the numbers printed beside it.
 from __future__ import annotations
 
 import io
+import logging
 import math
 from datetime import UTC, datetime
 from typing import Any, Protocol
@@ -23,6 +24,8 @@ from typing import Any, Protocol
 import numpy as np
 from thermeta.daemon.units import UNIT_SIGN
 from thermeta.predictors.result import Forecast
+
+log = logging.getLogger("thermeta.plot")
 
 WIDTH_PX, HEIGHT_PX, DPI = 1000, 560, 100
 CAUTION = ("Forecasts support decisions; they are not a food-safety plan or a regulatory record. "
@@ -377,13 +380,34 @@ def item_series(store, cfg, *, history_s: float | None = None):
     return _Series(t, y, at, ay)
 
 
-def item_forecast(series, cfg) -> Forecast:
-    """Refit the item as the service does (same model, ambient mode, window), in degC."""
+def item_forecast(series, cfg, *, limit: str | None = None, prior=None) -> Forecast:
+    """Refit the item as the service does (the refit's own arguments: model, ambient mode and
+    its doubt, window, limit side, the learned prior), in degC."""
+    from thermeta.daemon.refit import forecast_kwargs
     from thermeta.predictors import forecast
 
-    return forecast(series.t, series.y, cfg.threshold_c, model=cfg.model, ambient=cfg.ambient_c,
-                    ambient_t=series.ambient_t, ambient_y=series.ambient_y,
-                    window_s=cfg.window_s, min_points=cfg.min_points)
+    return forecast(series.t, series.y, cfg.threshold_c, prior=prior,
+                    **forecast_kwargs(cfg, limit, series.ambient_t, series.ambient_y))
+
+
+def _limit_and_prior(store, cfg, measured: bool):
+    """The limit side and learned prior the refit would use for the item, read from the store."""
+    from thermeta.daemon.refit import limit_side, uses_prior
+    from thermeta.predictors.prior import Prior
+    from thermeta.storage.priors import PriorStore
+
+    item_id = store.item_id(cfg.name)
+    first = store.first_reading(item_id) if item_id is not None else None
+    limit = limit_side(cfg, None if first is None else first[1])
+    prior = None
+    if uses_prior(cfg, measured):
+        try:
+            body = PriorStore(store).get(cfg.prior_class or cfg.name)
+        except Exception:  # noqa: BLE001 - as the refit: the picture goes on without a prior
+            log.exception("reading the prior of %s failed", cfg.name)
+            body = None
+        prior = Prior() if body is None else Prior.from_dict(body)
+    return limit, prior
 
 
 def item_png(store, cfg, *, history_s: float | None = None, title: str | None = None) -> bytes | None:
@@ -398,7 +422,8 @@ def item_figure(store, cfg, *, history_s: float | None = None, title: str | None
     series = item_series(store, cfg, history_s=history_s)
     if series is None:
         return None
-    fc = item_forecast(series, cfg)
+    limit, prior = _limit_and_prior(store, cfg, series.ambient_y is not None)
+    fc = item_forecast(series, cfg, limit=limit, prior=prior)
     return forecast_figure(series, fc, unit=cfg.unit, title=title or cfg.name,
                            convert=None if cfg.unit == "C" else np.vectorize(
                                lambda v: from_celsius(v, cfg.unit)))

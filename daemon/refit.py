@@ -73,6 +73,24 @@ def limit_side(cfg: ItemConfig, first_value_c: float | None) -> str | None:
     return "upper" if first_value_c < cfg.threshold_c else "lower"
 
 
+def forecast_kwargs(cfg: ItemConfig, limit: str | None, ambient_t: np.ndarray | None = None,
+                    ambient_y: np.ndarray | None = None) -> dict[str, Any]:
+    """The forecast's arguments for one item, as the refit passes them (the picture of the item
+    passes the same, so it shows the forecast the alerts were made from); the prior apart."""
+    kw: dict[str, Any] = {"model": cfg.model, "ambient": cfg.ambient_c, "ambient_t": ambient_t,
+                          "ambient_y": ambient_y, "window_s": cfg.window_s,
+                          "min_points": cfg.min_points, "limit": limit,
+                          "shown": shown_in(cfg.unit)}  # the warnings' temperatures
+    if cfg.ambient is not None and cfg.ambient_sd_c is not None:
+        kw["ambient_uncertainty"] = cfg.ambient_sd_c
+    return kw
+
+
+def uses_prior(cfg: ItemConfig, measured: bool) -> bool:
+    """A learned prior serves the lumped model with a given or fitted ambient only."""
+    return not measured and cfg.model in ("lumped", "auto")
+
+
 def classify(fc: Forecast, now: float, last_ts: float | None, cfg: ItemConfig,
              limit: str | None) -> str:
     """The item's state from its forecast (see the module docstring for the order)."""
@@ -194,13 +212,8 @@ class Refitter:
                 self.first_values[name] = first[1]
         limit = limit_side(cfg, self.first_values.get(name))
         cls = cfg.prior_class or name
-        prior = self._prior(cls) if mode != "measured" and cfg.model in ("lumped", "auto") else None
-        kw: dict[str, Any] = {"model": cfg.model, "ambient": cfg.ambient_c, "ambient_t": amb_t,
-                              "ambient_y": amb_y, "window_s": cfg.window_s,
-                              "min_points": cfg.min_points, "limit": limit,
-                              "shown": shown_in(cfg.unit)}  # the warnings' temperatures
-        if cfg.ambient is not None and cfg.ambient_sd_c is not None:
-            kw["ambient_uncertainty"] = cfg.ambient_sd_c
+        prior = self._prior(cls) if uses_prior(cfg, mode == "measured") else None
+        kw = forecast_kwargs(cfg, limit, amb_t, amb_y)
         try:
             fc = self._predict(t, y, cfg.threshold_c, prior=prior, **kw)
             if not fc.ok and len(rows) >= cfg.min_points:

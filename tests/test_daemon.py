@@ -428,6 +428,35 @@ def test_status_text_reads_the_store(tmp_path):
     assert missing.returncode == 2
 
 
+def test_the_picture_shows_the_forecast_the_refit_made(tmp_path):
+    """`thermeta plot` and the email picture refit the item from the store; they pass the refit's
+    own arguments, so an item's given ambient doubt (`ambient_within`) and its limit side give
+    the same point and interval as the forecast the alerts were judged by.  (The picture used to
+    drop `ambient_within`: its interval is shown to differ without it.)"""
+    from thermeta.daemon import plotting
+    from thermeta.predictors import forecast
+
+    t, y = _half_hour_warming()
+    items = ('[[item]]\nname = "w"\ntopic = "k/w"\nthreshold = 8.0\nambient = 25.0\n'
+             'ambient_within = 0.5\n')
+    cfg, store, act = seeded_store(tmp_path, items, {"w": (t, y)})
+    item = cfg.items[0]
+    series = plotting.item_series(store, item)
+    limit, prior = plotting._limit_and_prior(store, item, measured=False)
+    drawn = plotting.item_forecast(series, item, limit=limit, prior=prior)
+    got: dict[str, dict] = {}
+    Refitter(store, cfg, ManualClock(T0), act,
+             publish=lambda n, p: got.update({n: json.loads(p)})).run_once()
+    made = got["w"]
+    assert limit == "upper" and made["limit"] == "upper"
+    for key in ("eta_s", "eta_lo_s", "eta_hi_s"):
+        assert getattr(drawn, key) == pytest.approx(made[key], rel=1e-9), key
+    old = forecast(series.t, series.y, item.threshold_c, ambient=item.ambient_c,
+                   window_s=item.window_s, min_points=item.min_points)
+    assert abs(old.eta_hi_s - made["eta_hi_s"]) > 0.01 * made["eta_s"]
+    store.close()
+
+
 def test_status_line_counts_point_and_interval_from_now():
     """The forecast's times count from its newest reading; `thermeta status` two minutes later
     counts the point and both ends of the interval from the moment it prints."""
