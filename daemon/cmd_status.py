@@ -67,7 +67,8 @@ def _eta_text(r: dict[str, Any], now: float) -> str:
     if r["eta_lo_s"] is not None or r["eta_hi_s"] is not None:
         # the forecast's interval counts from its newest reading; the line counts from now
         lo, hi = remaining_s(r, "eta_lo_s", now), remaining_s(r, "eta_hi_s", now)
-        text += f" (90 %: {human_duration(lo)} to {human_duration(hi) if hi is not None else 'open'})"
+        hi_text = human_duration(hi) if hi is not None else "open"
+        text += f" (90 %: {human_duration(lo)} to {hi_text})"
     return text
 
 

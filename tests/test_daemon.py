@@ -261,7 +261,8 @@ def test_refit_warnings_show_the_item_unit(tmp_path):
     """The refit passes each item's unit to the forecast's warnings: the given ambient 25 degC
     reads 77 degF and 298.15 K, its default doubt (2.5 degC, 1 sd) 4.5 degF and 2.5 K, and an
     ambient_within of 1.8 degF the sd 1.8 / sqrt 3 degF (degF = degC * 9/5 + 32, a step * 9/5;
-    K = degC + 273.15: NIST SP 811 App. B, from memory); a degC item's note reads 25 °C and 2.5 °C."""
+    K = degC + 273.15: NIST SP 811 App. B, from memory); a degC item's note reads 25 °C and
+    2.5 °C."""
     t, y_c = _half_hour_warming()
     items = ('[[item]]\nname = "f"\ntopic = "k/f"\nunit = "F"\nthreshold = 46.4\nambient = 77.0\n'
              '[[item]]\nname = "fw"\ntopic = "k/fw"\nunit = "F"\nthreshold = 46.4\n'
