@@ -225,7 +225,9 @@ def test_the_sentence_carries_the_numbers():
     # the ambient says where it came from: the item's config (here), its air probe, or the fit
     assert "; given ambient 12.0 °C, time constant 10 h 00 min" in s
     assert "; fitted ambient 12.0 °C," in sentence(dict(a, ambient_mode="fitted"))
-    assert "; measured ambient 12.0 °C," in sentence(dict(a, ambient_mode="measured"))
+    assert "; air probe heading for 12.0 °C," in sentence(dict(a, ambient_mode="measured"))
+    assert "; ambient from the air probe, time" in sentence(dict(a, ambient_mode="measured",
+                                                                 ambient=None))
     assert s.count(". ") == 0 and s.endswith(".")
     assert a["crossing_at"] == rfc3339(now + 2520.0)
     assert a["id"] == "trailer-4:1:approaching:1"

@@ -58,9 +58,15 @@ def eta_clause(a: dict[str, Any]) -> str:
 def fit_clause(a: dict[str, Any]) -> str:
     amb = temp(a.get("ambient"), a["unit"]) if a.get("ambient") is not None else "not known"
     tau = human_duration(a.get("time_constant_s")) if a.get("time_constant_s") else "not known"
-    # the ambient's source: the item's config, its air probe, or the fit
-    how = {"known": "given", "measured": "measured"}.get(a.get("ambient_mode") or "", "fitted")
-    return f"{how} ambient {amb}, time constant {tau}"
+    # the ambient's source: the item's config, its air probe (whose fitted level is where the
+    # air is heading, not a reading), or the fit
+    mode = a.get("ambient_mode")
+    if mode == "measured":
+        where = (f"air probe heading for {amb}" if a.get("ambient") is not None
+                 else "ambient from the air probe")
+    else:
+        where = f"{'given' if mode == 'known' else 'fitted'} ambient {amb}"
+    return f"{where}, time constant {tau}"
 
 
 def sentence(a: dict[str, Any]) -> str:
