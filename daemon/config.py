@@ -92,6 +92,7 @@ class AlertDefaults:
     remind_every_s: float = 1800.0
     silence_s: float = 900.0
     horizon_s: float = 86400.0
+    delay_s: float = 0.0
 
 
 @dataclass(frozen=True)
@@ -121,6 +122,9 @@ class ItemConfig:
     remind_every_s: float = 1800.0
     silence_s: float = 900.0
     horizon_s: float = 86400.0
+    # A new approaching or crossed waits until its condition has held this long (an alarm delay:
+    # an air probe by a busy door passes its limit for minutes at a time); 0: at once.
+    delay_s: float = 0.0
     # The controller's defrost signal (daemon/defrost.py) and how long alerts wait after it.
     defrost_topic: str | None = None
     defrost_recovery_s: float = 1800.0
@@ -336,14 +340,15 @@ def _closest(key: str, allowed: set[str]) -> str | None:
 
 
 ALERT_KEYS = {"lead": "lead_s", "hysteresis": "hysteresis", "hold": "hold_s",
-              "remind_every": "remind_every_s", "silence": "silence_s", "horizon": "horizon_s"}
+              "remind_every": "remind_every_s", "silence": "silence_s", "horizon": "horizon_s",
+              "delay": "delay_s"}
 
 
 def _alert_values(c: _Checker, tbl: dict, where: tuple, defaults: AlertDefaults) -> dict[str, float]:
     out = {}
     for key, attr in ALERT_KEYS.items():
         dflt = getattr(defaults, attr)
-        if key == "hysteresis":
+        if key in ("hysteresis", "delay"):
             out[attr] = float(c.get(tbl, where, key, "num", dflt, minimum=0))
         else:
             out[attr] = float(c.get(tbl, where, key, "num", dflt, positive=True))

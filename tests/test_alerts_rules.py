@@ -255,3 +255,68 @@ def test_the_daemons_limit_side_is_used_when_given():
     assert [e.level for _, e in out] == ["crossed"]
     _, out = run([(0, dict(base, state="steady", value_now=11.0, limit="lower"))], p)
     assert out == []
+
+
+NOTE = ["the surroundings changed 1 time(s); fitted the newest 40 readings only"]
+
+
+def _excursion(start_s: float, minutes: int, every_s: float = 60.0, inside: float = THR - 2,
+               past: float = THR + 1.5):
+    """An air probe by a busy door: inside its limit, then past it for ``minutes``, then back,
+    one refit a minute, the fit reporting the change from its start on."""
+    seq = []
+    for i in range(90):
+        t = start_s - 600 + i * every_s
+        is_past = start_s <= t < start_s + 60 * minutes
+        seq.append((t, fc_at(t, value=past if is_past else inside,
+                             state="crossed" if is_past else "steady",
+                             warnings=NOTE if t >= start_s else None,
+                             regime_start=T0_EPOCH + start_s if t >= start_s else None)))
+    return seq
+
+
+def test_delay_lets_a_short_excursion_pass_and_raises_a_long_one_when_it_is_over():
+    """The alarm delay (common practice for air probes by a door): with delay 15 min, 10 minutes
+    past the threshold raise nothing, not even the change of surroundings; 20 minutes raise the
+    regime change and `crossed` 15 min after the value went past (the order as without a delay).  Without a
+    delay the short excursion raises regime, crossed and recovered."""
+    d15 = RuleParams(threshold=THR, lead_s=1800, hold_s=300, delay_s=900)
+    _, out = run([FIRST] + _excursion(3600, 10), d15)
+    assert out == []
+    _, out = run([FIRST] + _excursion(3600, 20), d15)
+    assert [(t, e.level) for t, e in out][:2] == [(3600 + 900, "regime"), (3600 + 900, "crossed")]
+    _, out = run([FIRST] + _excursion(3600, 10), RuleParams(threshold=THR, lead_s=1800, hold_s=300))
+    assert [e.level for _, e in out] == ["regime", "crossed", "recovered"]
+    assert [t for t, e in out][:2] == [3600, 3600]
+
+
+def test_delay_holds_an_approach_until_it_has_lasted():
+    """An approach due from t = 0 (early end within lead) is raised at once without a delay and
+    10 min later with delay 10 min; an approach that lapses before the delay starts over."""
+    seq = [(t, fc_at(t)) for t in range(int(crossing_s() - 3000), int(crossing_s() - 1000), 60)]
+    lead = RuleParams(threshold=THR, lead_s=3600)
+    first = run(seq, lead)[1][0]
+    delayed = run(seq, RuleParams(threshold=THR, lead_s=3600, delay_s=600))[1][0]
+    assert first[1].level == delayed[1].level == "approaching"
+    assert delayed[0] - first[0] == 600
+    # the condition lapses (no crossing forecast) for one refit after 5 minutes: counted again
+    t0 = seq[0][0]
+    broken = [(t, fc if t != t0 + 300 else fc_at(t, state="steady", direction="falling"))
+              for t, fc in seq]
+    again = run(broken, RuleParams(threshold=THR, lead_s=3600, delay_s=600))[1][0]
+    assert again[0] == t0 + 360 + 600
+
+
+def test_a_change_inside_a_defrost_hold_is_not_told():
+    """The fit finds the defrost itself as a change of the surroundings; inside the hold that
+    is noted without an alert, and not told later either (the same start)."""
+    start = 1000.0
+    defrost = {"on": False, "started_at": rfc3339(T0_EPOCH + start),
+               "ended_at": rfc3339(T0_EPOCH + start + 1500)}
+    seq = [(t, dict(fc_at(t, value=THR - 3, state="steady", warnings=NOTE,
+                          regime_start=T0_EPOCH + start), defrost=defrost))
+           for t in range(1200, 9000, 300)]
+    _, out = run(seq, RuleParams(threshold=THR, lead_s=60))
+    assert out == []
+    no_defrost = [(t, {k: v for k, v in fc.items() if k != "defrost"}) for t, fc in seq]
+    assert [e.level for _, e in run(no_defrost, RuleParams(threshold=THR, lead_s=60))[1]] == ["regime"]

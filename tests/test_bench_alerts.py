@@ -31,9 +31,14 @@ def test_quick_run_gives_every_trace_kind(bench):
     None or between 0 and the time from the event to the crossing."""
     results, _ = bench.run_all(bench.QUICK_CASES, bench.QUICK_NORMAL_DAYS, seed=5)
     kinds = {r["kind"] for r in results}
-    assert kinds == {"normal", *bench.EVENTS}
+    assert kinds == {"normal", "busy", *bench.EVENTS}
     for r in results:
         if "skipped" in r:
+            continue
+        if r["kind"] == "busy":
+            # the delay can only take alerts away: each level no more often than without it
+            assert r["openings"] > 0 and 0 <= r["past"] <= r["openings"]
+            assert all(r["delayed"][lv] <= r["plain"][lv] for lv in r["plain"])
             continue
         assert math.isfinite(r["item_weeks"]) and r["item_weeks"] > 0
         assert r["false"] >= 0
@@ -44,6 +49,7 @@ def test_quick_run_gives_every_trace_kind(bench):
     for kind in bench.EVENTS:
         assert f"| {kind} |" in text
     assert "per item-week" in text
+    assert "| 1 trace |" in text and "with delay = 15 min" in text
 
 
 def test_false_alert_needs_a_safe_truth(bench):

@@ -214,6 +214,32 @@ def test_alert_and_hook_keys_are_validated(tmp_path, monkeypatch):
     assert len(got) == 4
 
 
+def test_delay_defaults_to_zero_and_is_not_negative(tmp_path):
+    """The alarm delay: 0 unless set, an [alerts] default with a per-item override, and a
+    negative one is a problem on its line."""
+    text = """\
+    [alerts]
+    delay = 600
+
+    [[item]]
+    name = "walkin/air"
+    topic = "walkin/air"
+    threshold = 8.0
+    delay = 900
+
+    [[item]]
+    name = "walkin/load"
+    topic = "walkin/load"
+    threshold = 8.0
+    """
+    cfg = load_config(write(tmp_path, text))
+    assert cfg.alerts.delay_s == 600 and [i.delay_s for i in cfg.items] == [900, 600]
+    plain = load_config(write(tmp_path, text.replace("    [alerts]\n    delay = 600\n", "")))
+    assert [i.delay_s for i in plain.items] == [900, 0]
+    got = problems(tmp_path, text.replace("delay = 900", "delay = -1"))
+    assert len(got) == 1 and ":8: item.delay: must be >= 0" in got[0]
+
+
 def test_check_config_command_exit_codes(tmp_path):
     """`thermeta check-config` exits 0 on a good file and 2 with the problem lines on a bad one."""
     good = write(tmp_path, MINIMAL, "good.toml")

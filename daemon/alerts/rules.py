@@ -22,7 +22,15 @@ controller's defrost signal, see ``daemon/defrost.py``), no new level is raised 
 until ``defrost_recovery_s`` after its end: no ``approaching``, no ``crossed``.  A value still past
 the threshold when the hold ends raises ``crossed`` then.  A signal that never ends holds at most
 ``defrost_max_s`` (plus the recovery delay), so a stuck defrost signal cannot silence an item.
-Levels already raised go on as before (reminders, recoveries).
+Levels already raised go on as before (reminders, recoveries).  A change of the surroundings
+that the fit finds inside the hold is the defrost itself: noted, not alerted.
+
+Alarm delay (``delay_s``; common practice for air probes, which pass their limit for minutes at
+every long door opening while the product barely moves): a new ``approaching`` or ``crossed`` is
+raised only once its condition (the approach due, or the value past) has held that long, counted
+from the first refit that saw it; a refit without it starts the count again.  With a delay, a
+``regime`` change is told only once an episode is open, so a door opened and shut again, which
+put nothing at stake, is never told.
 
 :func:`step` is the whole engine: ``step(state, forecast, params, now, acked) -> events``; it
 mutates ``state`` (a JSON-able :class:`ItemAlertState`) and returns what to send.
@@ -56,12 +64,15 @@ class RuleParams:
     # longest a defrost may hold alerts however long its signal stays on.
     defrost_recovery_s: float = 1800.0
     defrost_max_s: float = 3600.0
+    # The alarm delay: a new approaching or crossed (and a regime change) is raised only once its
+    # condition has held this long; 0 raises it at the first refit that sees it.
+    delay_s: float = 0.0
 
     def __post_init__(self) -> None:
         for name in ("lead_s", "hold_s", "remind_every_s", "defrost_max_s"):
             if not getattr(self, name) > 0:
                 raise ValueError(f"{name} must be > 0, got {getattr(self, name)!r}")
-        for name in ("hysteresis", "defrost_recovery_s"):
+        for name in ("hysteresis", "defrost_recovery_s", "delay_s"):
             if not getattr(self, name) >= 0:
                 raise ValueError(f"{name} must be >= 0, got {getattr(self, name)!r}")
 
@@ -71,7 +82,8 @@ class RuleParams:
                    hysteresis=item_cfg.hysteresis, hold_s=item_cfg.hold_s,
                    remind_every_s=item_cfg.remind_every_s, check_every_s=check_every_s,
                    defrost_recovery_s=getattr(item_cfg, "defrost_recovery_s", 1800.0),
-                   defrost_max_s=getattr(item_cfg, "defrost_max_s", 3600.0))
+                   defrost_max_s=getattr(item_cfg, "defrost_max_s", 3600.0),
+                   delay_s=getattr(item_cfg, "delay_s", 0.0))
 
 
 @dataclass
@@ -87,6 +99,7 @@ class ItemAlertState:
     off_since: float | None = None  # since when the current level's condition has been false
     stale: bool = False
     regime_start: float | None = None  # the newest change of the surroundings alerted on
+    pending_since: float | None = None  # since when a new level's condition has held (delay)
     seq: int = 0  # counts events, so each alert has its own key
 
     def to_json(self) -> dict[str, Any]:
@@ -206,13 +219,23 @@ def step(st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float,
     if st.stale:
         st.stale = False
         events.append(Event("resumed"))
-    events += _regime(st, fc, p)
+    held = in_defrost_hold(fc, p, now)
+    if p.delay_s <= 0:
+        return events + _regime(st, fc, p, now, held) + _levels(st, fc, p, now, held, acked)
+    # with an alarm delay, a change of the surroundings is told once it has opened an episode
+    levels = _levels(st, fc, p, now, held, acked)
+    return events + _regime(st, fc, p, now, held) + levels
+
+
+def _levels(st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float, held: bool,
+            acked: bool) -> list[Event]:
+    """The episode's levels: approaching, crossed (with reminders) and recovered."""
+    events: list[Event] = []
     v = fc.get("value_now")
     if v is None:
         return events
     v = float(v)
     thr = p.threshold
-    held = in_defrost_hold(fc, p, now)
     if st.level == "clear":
         # The unsafe side is learnt from the first travel toward the limit and then kept: a load
         # cooling back down after a crossing is recovering, not heading for a floor.
@@ -223,24 +246,29 @@ def step(st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float,
             return events
         st.side = side
         if held:
+            st.pending_since = None
             return events  # a defrost and its recovery delay raise nothing new
-        if is_past(v, side, thr):
-            _enter(st, "crossed", side, now, new_episode=True)
-            events.append(Event("crossed"))
-        elif approach_due(fc, p, now):
-            _enter(st, "approaching", side, now, new_episode=True)
-            events.append(Event("approaching"))
+        want = ("crossed" if is_past(v, side, thr) else
+                "approaching" if approach_due(fc, p, now) else None)
+        if want is None:
+            st.pending_since = None
+        elif _delay_over(st, p, now):
+            _enter(st, want, side, now, new_episode=True)
+            events.append(Event(want))
         return events
     side = st.side or side_of(fc, thr) or "upper"
     if st.level == "approaching":
         if is_past(v, side, thr) and held:
-            st.off_since = None  # the crossing waits for the end of the hold
+            st.off_since = st.pending_since = None  # the crossing waits for the end of the hold
         elif is_past(v, side, thr):
-            _enter(st, "crossed", side, now)
-            events.append(Event("crossed"))
-        elif not approach_eased(fc, p, now):
             st.off_since = None
+            if _delay_over(st, p, now):
+                _enter(st, "crossed", side, now)
+                events.append(Event("crossed"))
+        elif not approach_eased(fc, p, now):
+            st.off_since = st.pending_since = None
         else:
+            st.pending_since = None
             st.off_since = st.off_since if st.off_since is not None else now
             if now - st.off_since >= p.hold_s:
                 events.append(Event("recovered", context={"from_level": "approaching"}))
@@ -265,10 +293,22 @@ def step(st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float,
     return events
 
 
-def _regime(st: ItemAlertState, fc: dict[str, Any], p: RuleParams) -> list[Event]:
+def _delay_over(st: ItemAlertState, p: RuleParams, now: float) -> bool:
+    """The alarm delay: True once a new level's condition has held ``delay_s`` (counted from the
+    first refit that saw it; any refit without it starts the count again)."""
+    if st.pending_since is None:
+        st.pending_since = now
+    return now - st.pending_since >= p.delay_s
+
+
+def _regime(st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float,
+            held: bool = False) -> list[Event]:
     # The fit notes a change of the surroundings and starts its window there; the estimate of
     # that moment wanders as readings arrive, so only a start later than the last one alerted on
-    # by more than REGIME_GAP_S (or the hold time) counts as new.
+    # by more than REGIME_GAP_S (or the hold time) counts as new.  A change inside a defrost
+    # hold is taken note of without an alert (the defrost is the change).  With an alarm delay,
+    # a change waits until an episode is open (approaching or crossed, each past its delay):
+    # a door opened for a minute and shut again, which puts nothing at stake, is never told.
     warnings = fc.get("warnings") or []
     if not any(str(w).startswith(REGIME_NOTE) for w in warnings):
         return []
@@ -277,6 +317,11 @@ def _regime(st: ItemAlertState, fc: dict[str, Any], p: RuleParams) -> list[Event
         return []
     if st.regime_start is not None and start <= st.regime_start + max(p.hold_s, REGIME_GAP_S):
         return []
+    if held:
+        st.regime_start = start
+        return []
+    if p.delay_s > 0 and st.level == "clear":
+        return []  # nothing at stake (yet): judged again at the next refit
     st.regime_start = start
     return [Event("regime", context={"regime_start": start})]
 
@@ -284,7 +329,7 @@ def _regime(st: ItemAlertState, fc: dict[str, Any], p: RuleParams) -> list[Event
 def _enter(st: ItemAlertState, level: str, side: str, now: float, new_episode: bool = False) -> None:
     if new_episode:
         st.episode += 1
-    st.level, st.side, st.since, st.off_since = level, side, now, None
+    st.level, st.side, st.since, st.off_since, st.pending_since = level, side, now, None, None
     if level == "crossed":
         st.crossed_at = now
         st.last_sent = now
@@ -292,3 +337,4 @@ def _enter(st: ItemAlertState, level: str, side: str, now: float, new_episode: b
 
 def _clear(st: ItemAlertState) -> None:
     st.level, st.since, st.off_since, st.last_sent, st.crossed_at = "clear", None, None, None, None
+    st.pending_since = None
