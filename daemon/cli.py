@@ -53,7 +53,10 @@ def main(argv: list[str] | None = None) -> int:
         parser.print_help()
         return 2
     if getattr(args, "_missing", None):
-        print(f"thermeta: the '{args._missing}' command is not available in this build", file=sys.stderr)
+        print(
+            f"thermeta: the '{args._missing}' command is not available in this build",
+            file=sys.stderr,
+        )
         return 2
     try:
         return int(args._run(args) or 0)

@@ -38,20 +38,26 @@ def run(args: argparse.Namespace) -> int:
             print(f"thermeta ack: no alerts recorded for item {args.item!r}{hint}", file=sys.stderr)
             return 2
         if st.get("level", "clear") == "clear" or not st.get("episode"):
-            print(f"thermeta ack: {args.item} has no open alert episode; nothing to acknowledge",
-                  file=sys.stderr)
+            print(
+                f"thermeta ack: {args.item} has no open alert episode; nothing to acknowledge",
+                file=sys.stderr,
+            )
             return 1
         episode = int(st["episode"])
         earlier = astore.ack_of(args.item, episode)
         if earlier is not None:
-            print(f"{args.item}: episode {episode} was already acknowledged by "
-                  f"{earlier['by'] or 'someone'} at {clock(earlier['acked_at'])}")
+            print(
+                f"{args.item}: episode {episode} was already acknowledged by "
+                f"{earlier['by'] or 'someone'} at {clock(earlier['acked_at'])}"
+            )
             return 0
         by = args.by or _login()
         now = time.time()
         astore.add_ack(args.item, episode, now, by, args.note)
-        print(f"{args.item}: episode {episode} ({st['level']}) acknowledged by {by} at "
-              f"{clock(now)}; reminders stop until it clears")
+        print(
+            f"{args.item}: episode {episode} ({st['level']}) acknowledged by {by} at "
+            f"{clock(now)}; reminders stop until it clears"
+        )
         return 0
     finally:
         store.close()

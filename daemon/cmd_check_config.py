@@ -17,8 +17,10 @@ def run(args: argparse.Namespace) -> int:
         return 2
     patterns = sum(1 for it in cfg.items if it.is_pattern)
     n = len(cfg.items)
-    print(f"{args.config}: ok: {n} item{'s' if n != 1 else ''}"
-          + (f" ({patterns} wildcard pattern{'s' if patterns != 1 else ''})" if patterns else "")
-          + f", {len(cfg.hooks)} hook{'s' if len(cfg.hooks) != 1 else ''}, broker "
-          f"{cfg.broker.host}:{cfg.broker.port}")
+    print(
+        f"{args.config}: ok: {n} item{'s' if n != 1 else ''}"
+        + (f" ({patterns} wildcard pattern{'s' if patterns != 1 else ''})" if patterns else "")
+        + f", {len(cfg.hooks)} hook{'s' if len(cfg.hooks) != 1 else ''}, broker "
+        f"{cfg.broker.host}:{cfg.broker.port}"
+    )
     return 0

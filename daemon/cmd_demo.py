@@ -28,24 +28,51 @@ DEMO_PREFIX = "thermeta-demo"
 def add_arguments(p: argparse.ArgumentParser) -> None:
     from thermeta.predictors.scenarios import NAMES
 
-    p.add_argument("--scenario", choices=NAMES, default="all",
-                   help="which invented site to play (default: all six)")
-    p.add_argument("--speed", type=float, default=60.0,
-                   help="simulated seconds per real second (default 60: an hour a minute)")
-    p.add_argument("--headless", action="store_true",
-                   help="print forecast and alert lines instead of the dashboard")
-    p.add_argument("--duration", type=float, metavar="S",
-                   help="stop after S real seconds (default: run until Ctrl-C)")
-    p.add_argument("--host", default="127.0.0.1",
-                   help="broker to use if it accepts an anonymous client (default 127.0.0.1)")
+    p.add_argument(
+        "--scenario",
+        choices=NAMES,
+        default="all",
+        help="which invented site to play (default: all six)",
+    )
+    p.add_argument(
+        "--speed",
+        type=float,
+        default=60.0,
+        help="simulated seconds per real second (default 60: an hour a minute)",
+    )
+    p.add_argument(
+        "--headless",
+        action="store_true",
+        help="print forecast and alert lines instead of the dashboard",
+    )
+    p.add_argument(
+        "--duration",
+        type=float,
+        metavar="S",
+        help="stop after S real seconds (default: run until Ctrl-C)",
+    )
+    p.add_argument(
+        "--host",
+        default="127.0.0.1",
+        help="broker to use if it accepts an anonymous client (default 127.0.0.1)",
+    )
     p.add_argument("--port", type=int, default=1883, help="its port (default 1883)")
-    p.add_argument("--embedded", action="store_true",
-                   help="always start the in-process broker, even if one accepts at host:port")
+    p.add_argument(
+        "--embedded",
+        action="store_true",
+        help="always start the in-process broker, even if one accepts at host:port",
+    )
     p.add_argument("--seed", type=int, default=0, help="noise seed (default 0)")
-    p.add_argument("--keep", metavar="DIR",
-                   help="keep the store, config and log in DIR (default: a temporary folder, removed)")
-    p.add_argument("--summary-json", metavar="FILE",
-                   help="write forecasts against the simulated truth as JSON at the end")
+    p.add_argument(
+        "--keep",
+        metavar="DIR",
+        help="keep the store, config and log in DIR (default: a temporary folder, removed)",
+    )
+    p.add_argument(
+        "--summary-json",
+        metavar="FILE",
+        help="write forecasts against the simulated truth as JSON at the end",
+    )
 
 
 class _HeldClock:
@@ -80,9 +107,15 @@ class _Recorder:
 
     def on_forecast(self, item_cfg, body: dict[str, Any], prev: dict[str, Any] | None) -> None:
         now = self.clock.now()
-        rec = {"made_at": now, "state": body.get("state"), "eta_s": body.get("eta_s"),
-               "eta_lo_s": body.get("eta_lo_s"), "eta_hi_s": body.get("eta_hi_s"),
-               "t_last": _epoch(body.get("last_reading_at")), "value_now": body.get("value_now")}
+        rec = {
+            "made_at": now,
+            "state": body.get("state"),
+            "eta_s": body.get("eta_s"),
+            "eta_lo_s": body.get("eta_lo_s"),
+            "eta_hi_s": body.get("eta_hi_s"),
+            "t_last": _epoch(body.get("last_reading_at")),
+            "value_now": body.get("value_now"),
+        }
         with self._lock:
             self.forecasts.setdefault(item_cfg.name, []).append(rec)
             state_then, printed_at = self._last_print.get(item_cfg.name, ("", -math.inf))
@@ -113,15 +146,25 @@ class _Recorder:
             else:
                 hi_text = human_duration(hi + ahead)
             band = f"{human_duration(None if lo is None else lo + ahead)} to {hi_text}"
-            parts.append(f"crosses {d.get('threshold'):g} {unit} at {local_clock(t_last + eta)} "
-                         f"(in {human_duration(t_last + eta - now)}; 90 %: {band})")
+            parts.append(
+                f"crosses {d.get('threshold'):g} {unit} at {local_clock(t_last + eta)} "
+                f"(in {human_duration(t_last + eta - now)}; 90 %: {band})"
+            )
         elif d.get("state") == "steady":
             parts.append("no crossing ahead")
         truth = self.truth.get(item_cfg.name)
         if truth is not None and d.get("state") in ("approaching", "steady"):
             c = truth.crossing_t_true
-            parts.append("truth: " + ("never crosses" if c is None else
-                                      f"crosses at {local_clock(c)}" if c > now else "already crossed"))
+            parts.append(
+                "truth: "
+                + (
+                    "never crosses"
+                    if c is None
+                    else f"crosses at {local_clock(c)}"
+                    if c > now
+                    else "already crossed"
+                )
+            )
         return "; ".join(parts)
 
     def on_alert(self, topic: str, payload: bytes) -> None:
@@ -134,8 +177,9 @@ class _Recorder:
         item = doc.get("item") or topic.rsplit("/", 1)[-1]
         now = self.clock.now()
         with self._lock:
-            self.alerts.append({"at": now, "topic": topic, "item": item, "level": doc.get("level"),
-                                "body": doc})
+            self.alerts.append(
+                {"at": now, "topic": topic, "item": item, "level": doc.get("level"), "body": doc}
+            )
         if self.echo:
             text = doc.get("sentence") or doc.get("text") or doc.get("message") or json.dumps(doc)
             self._print(f"{self._stamp(now)} ALERT {doc.get('level') or ''} {item}: {text}")
@@ -162,24 +206,41 @@ class _Recorder:
             c = p.crossing_t_true
             errors = []
             for f in fcs:
-                if c is None or f["eta_s"] is None or f["t_last"] is None or f["state"] != "approaching":
+                if (
+                    c is None
+                    or f["eta_s"] is None
+                    or f["t_last"] is None
+                    or f["state"] != "approaching"
+                ):
                     continue
                 true_left = c - f["t_last"]
                 if true_left <= 0:
                     continue
-                errors.append({"made_at": f["made_at"], "true_eta_s": true_left,
-                               "eta_s": f["eta_s"], "rel_error": (f["eta_s"] - true_left) / true_left,
-                               "inside_90": (f["eta_lo_s"] is None or f["eta_lo_s"] <= true_left)
-                               and (f["eta_hi_s"] is None or true_left <= f["eta_hi_s"])})
+                errors.append(
+                    {
+                        "made_at": f["made_at"],
+                        "true_eta_s": true_left,
+                        "eta_s": f["eta_s"],
+                        "rel_error": (f["eta_s"] - true_left) / true_left,
+                        "inside_90": (f["eta_lo_s"] is None or f["eta_lo_s"] <= true_left)
+                        and (f["eta_hi_s"] is None or true_left <= f["eta_hi_s"]),
+                    }
+                )
             items[name] = {
-                "true_crossing_t": c, "n_forecasts": len(fcs),
+                "true_crossing_t": c,
+                "n_forecasts": len(fcs),
                 "n_approaching": sum(f["state"] == "approaching" for f in fcs),
                 "states": sorted({f["state"] for f in fcs if f["state"]}),
                 "alerts": [a["level"] for a in self.alerts if a["item"] == name],
                 "ahead": errors,
             }
-        return {"scenario": self.scenario.name, "t_start": self.scenario.t_start,
-                "sim_end": self.clock.now(), "items": items, "n_alerts": len(self.alerts)}
+        return {
+            "scenario": self.scenario.name,
+            "t_start": self.scenario.t_start,
+            "sim_end": self.clock.now(),
+            "items": items,
+            "n_alerts": len(self.alerts),
+        }
 
 
 def _epoch(text: str | None) -> float | None:
@@ -196,8 +257,12 @@ def _epoch(text: str | None) -> float | None:
 def _alert_subscriber(host: str, port: int, prefix: str, recorder: _Recorder):
     import paho.mqtt.client as mqtt
 
-    c = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=f"{DEMO_PREFIX}-alerts-{id(recorder)}",
-                    protocol=mqtt.MQTTv311, clean_session=True)
+    c = mqtt.Client(
+        mqtt.CallbackAPIVersion.VERSION2,
+        client_id=f"{DEMO_PREFIX}-alerts-{id(recorder)}",
+        protocol=mqtt.MQTTv311,
+        clean_session=True,
+    )
 
     def on_connect(client, userdata, flags, reason_code, properties):
         client.subscribe(f"{prefix}/#", qos=1)
@@ -225,8 +290,11 @@ def run(args: argparse.Namespace) -> int:
         print(f"thermeta demo: --port must be 1-65535, got {args.port}", file=sys.stderr)
         return 2
     if args.keep and (Path(args.keep) / "demo.db").exists():
-        print(f"thermeta demo: --keep {args.keep}: holds an earlier run's demo.db; choose a new "
-              "folder", file=sys.stderr)
+        print(
+            f"thermeta demo: --keep {args.keep}: holds an earlier run's demo.db; choose a new "
+            "folder",
+            file=sys.stderr,
+        )
         return 2
     workdir = Path(args.keep) if args.keep else Path(tempfile.mkdtemp(prefix="thermeta-demo-"))
     try:
@@ -280,10 +348,17 @@ def _run(args: argparse.Namespace, workdir: Path) -> int:
         # second on a small machine, and the machine is shared
         refit_every_s = max(30.0, args.speed * 1.0)
         cfg_path = workdir / "demo.toml"
-        text = config_text(scenario, host=host, port=port,
-                           storage_url=f"sqlite:///{workdir / 'demo.db'}",
-                           refit_every_s=refit_every_s, client_id=f"{DEMO_PREFIX}-{int(start)}")
-        text = text.replace('topic_prefix = "thermeta/alert"', f'topic_prefix = "{DEMO_PREFIX}/alert"')
+        text = config_text(
+            scenario,
+            host=host,
+            port=port,
+            storage_url=f"sqlite:///{workdir / 'demo.db'}",
+            refit_every_s=refit_every_s,
+            client_id=f"{DEMO_PREFIX}-{int(start)}",
+        )
+        text = text.replace(
+            'topic_prefix = "thermeta/alert"', f'topic_prefix = "{DEMO_PREFIX}/alert"'
+        )
         if broker is not None:
             # amqtt speaks MQTT 3.1.1 only, and does not answer an MQTT 5 CONNECT at all
             text = text.replace("[broker]\n", '[broker]\nprotocol = "3.1.1"\n', 1)
@@ -293,10 +368,18 @@ def _run(args: argparse.Namespace, workdir: Path) -> int:
         text += f'\n[publish]\ntopic_prefix = "{DEMO_PREFIX}/forecast"\nstatus_topic = "{DEMO_PREFIX}/status"\n'
         cfg_path.write_text(text, encoding="utf-8")
         config = load_config(cfg_path)
-        print(f"thermeta demo: {scenario.title}, {len(scenario.loads)} items, at {args.speed:g}x, "
-              f"using {where}; store, config and log in {workdir}", file=out, flush=True)
-        print("Forecasts support decisions; they are not a food-safety plan or a regulatory "
-              "record. Simulated, invented sites.", file=out, flush=True)
+        print(
+            f"thermeta demo: {scenario.title}, {len(scenario.loads)} items, at {args.speed:g}x, "
+            f"using {where}; store, config and log in {workdir}",
+            file=out,
+            flush=True,
+        )
+        print(
+            "Forecasts support decisions; they are not a food-safety plan or a regulatory "
+            "record. Simulated, invented sites.",
+            file=out,
+            flush=True,
+        )
         lines = args.headless or not _have_dashboard()
         if lines:
             for line in truth_lines(scenario):
@@ -310,8 +393,10 @@ def _run(args: argparse.Namespace, workdir: Path) -> int:
         while not (service.stats["connected"] or time.monotonic() > deadline):
             time.sleep(0.05)
         if not service.stats["connected"]:
-            print(f"thermeta demo: the service could not connect to {host}:{port} (see {log_path})",
-                  file=sys.stderr)
+            print(
+                f"thermeta demo: the service could not connect to {host}:{port} (see {log_path})",
+                file=sys.stderr,
+            )
             return 1
         sim = Simulator(scenario, host, port, clock, client_id=f"{DEMO_PREFIX}-sim-{int(start)}")
         clock.release()  # simulated time starts now, when everything is connected
@@ -319,8 +404,12 @@ def _run(args: argparse.Namespace, workdir: Path) -> int:
         end_at = None if args.duration is None else time.monotonic() + args.duration
         if lines:
             if not args.headless:
-                print("thermeta demo: the dashboard is not in this build; showing lines instead "
-                      "(Ctrl-C stops)", file=out, flush=True)
+                print(
+                    "thermeta demo: the dashboard is not in this build; showing lines instead "
+                    "(Ctrl-C stops)",
+                    file=out,
+                    flush=True,
+                )
             _wait(stop, end_at, sim)
         else:
             _dashboard(service, stop, end_at, sim, out)
@@ -355,8 +444,10 @@ def _run(args: argparse.Namespace, workdir: Path) -> int:
 
 def _clear_retained(client, config) -> None:
     """Remove the demo's retained forecasts and status from a broker that is not ours."""
-    infos = [client.publish(f"{config.publish.topic_prefix}/{it.name}", b"", qos=1, retain=True)
-             for it in config.items]
+    infos = [
+        client.publish(f"{config.publish.topic_prefix}/{it.name}", b"", qos=1, retain=True)
+        for it in config.items
+    ]
     infos.append(client.publish(config.publish.status_topic, b"", qos=1, retain=True))
     for info in infos:
         info.wait_for_publish(2.0)
@@ -417,22 +508,33 @@ def _count(n: int, noun: str) -> str:
 def _print_summary(summary: dict[str, Any], out) -> None:
     from thermeta.daemon.timefmt import local_clock
 
-    print("forecasts against the simulated truth (remaining time to the crossing, forecasts made "
-          "while approaching):", file=out)
+    print(
+        "forecasts against the simulated truth (remaining time to the crossing, forecasts made "
+        "while approaching):",
+        file=out,
+    )
     for name, it in summary["items"].items():
         ahead = it["ahead"]
-        truth = "never crosses" if it["true_crossing_t"] is None else f"crosses at {local_clock(it['true_crossing_t'])}"
+        truth = (
+            "never crosses"
+            if it["true_crossing_t"] is None
+            else f"crosses at {local_clock(it['true_crossing_t'])}"
+        )
         if ahead:
             errs = sorted(abs(a["rel_error"]) for a in ahead)
             med = errs[len(errs) // 2]
             inside = sum(a["inside_90"] for a in ahead) / len(ahead)
-            how = (f"{_count(len(ahead), 'forecast')} ahead, median error {100 * med:.1f} %, "
-                   f"truth inside the 90 % interval in {100 * inside:.0f} %")
+            how = (
+                f"{_count(len(ahead), 'forecast')} ahead, median error {100 * med:.1f} %, "
+                f"truth inside the 90 % interval in {100 * inside:.0f} %"
+            )
         elif it["true_crossing_t"] is None:
             n_app = it["n_approaching"]
             how = f"{_count(it['n_forecasts'], 'forecast')}, " + (
-                f"{n_app} of them approaching a crossing that never comes" if n_app
-                else "none approaching")
+                f"{n_app} of them approaching a crossing that never comes"
+                if n_app
+                else "none approaching"
+            )
         elif it["true_crossing_t"] > summary["sim_end"]:
             how = f"{_count(it['n_forecasts'], 'forecast')}, none approaching it yet"
         else:

@@ -20,17 +20,23 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--threshold", type=float, required=True, help="the limit to forecast")
     p.add_argument("--ambient", type=float, help="known constant ambient (known mode)")
     p.add_argument(
-        "--ambient-within", type=float, metavar="W",
+        "--ambient-within",
+        type=float,
+        metavar="W",
         help="the known ambient is right to within +-W (sd W / sqrt 3; default a 2.5 degC sd), "
-             "in the unit of the values",
+        "in the unit of the values",
     )
     p.add_argument(
-        "--model", choices=["lumped", "slab", "cylinder", "sphere", "auto"], default="lumped",
+        "--model",
+        choices=["lumped", "slab", "cylinder", "sphere", "auto"],
+        default="lumped",
         help="lumped (Newton) or a centre probe in a slab, long cylinder or sphere",
     )
     p.add_argument("--unit", choices=["C", "F", "K"], default="C", help="unit of the values")
     p.add_argument(
-        "--limit", choices=["upper", "lower", "auto"], default="auto",
+        "--limit",
+        choices=["upper", "lower", "auto"],
+        default="auto",
         help="which side of the threshold is unsafe; auto: the side the first reading is not on",
     )
     p.add_argument("--json", action="store_true", help="one JSON object on stdout")
@@ -44,11 +50,11 @@ def summary(fc, unit: str, source: str) -> str:
 
     u = UNIT_SIGN[unit]
     d = to_item_units(fc.to_dict(), unit)
-    lines = [
-        f"{source}: {d['n_points']} readings, {d['model']} model, ambient {d['ambient_mode']}"
-    ]
+    lines = [f"{source}: {d['n_points']} readings, {d['model']} model, ambient {d['ambient_mode']}"]
     if d["value_now"] is not None:
-        lines.append(f"  now {d['value_now']:.1f} {u} (last reading {local_clock(fc.t_last, True)})")
+        lines.append(
+            f"  now {d['value_now']:.1f} {u} (last reading {local_clock(fc.t_last, True)})"
+        )
     if not fc.ok:
         lines.append(f"  no forecast: {fc.reason}")
     else:
@@ -56,7 +62,9 @@ def summary(fc, unit: str, source: str) -> str:
             band = ""
             if d["ambient_lo"] is not None and d["ambient_hi"] is not None:
                 band = f" (90 %: {d['ambient_lo']:.1f} to {d['ambient_hi']:.1f})"
-            lines.append(f"  {fc.direction or 'moving'} toward an ambient of {d['ambient']:.1f} {u}{band}")
+            lines.append(
+                f"  {fc.direction or 'moving'} toward an ambient of {d['ambient']:.1f} {u}{band}"
+            )
         thr = f"{d['threshold']:g} {u}"
         if d["eta_s"] is None:
             lines.append(f"  does not reach {thr}: the fitted curve levels off before it")
@@ -89,8 +97,9 @@ def _ambient_sd_c(args: argparse.Namespace) -> float | None:
 
     if args.ambient_within is not None:
         if args.ambient is None:
-            raise InputError("--ambient-within says how far off --ambient may be: "
-                             "give --ambient too")
+            raise InputError(
+                "--ambient-within says how far off --ambient may be: give --ambient too"
+            )
         if not args.ambient_within >= 0 or args.ambient_within == float("inf"):
             raise InputError(f"--ambient-within must be a number >= 0, got {args.ambient_within:g}")
         return ambient_sd_within(scale_to_celsius(args.ambient_within, args.unit))
@@ -108,23 +117,28 @@ def _celsius(values, unit: str):
 
 
 def run(args: argparse.Namespace) -> int:
-    from thermeta.daemon.csvio import read_series
-    from thermeta.predictors import forecast
-
     import numpy as np
+    from thermeta.daemon.csvio import read_series
     from thermeta.daemon.units import from_celsius, shown_in, to_celsius, to_item_units
+    from thermeta.predictors import forecast
 
     try:
         amb_sd = _ambient_sd_c(args)
         series = read_series(args.csv)
         if series.t.size < 2:
-            raise InputError(f"{args.csv}:{series.last_line}: too few readings to fit "
-                             f"({series.t.size}; want at least 2)")
+            raise InputError(
+                f"{args.csv}:{series.last_line}: too few readings to fit "
+                f"({series.t.size}; want at least 2)"
+            )
         limit = args.limit
         if limit == "auto":
             # As the daemon does: a probe that starts below its threshold has an upper limit.
             first = float(series.y[series.t.argmin()])
-            limit = None if first == args.threshold else ("upper" if first < args.threshold else "lower")
+            limit = (
+                None
+                if first == args.threshold
+                else ("upper" if first < args.threshold else "lower")
+            )
         # as the daemon does, the forecast is made in degC (its defaults are stated in degC)
         series.y = _celsius(series.y, args.unit)
         series.ambient_y = _celsius(series.ambient_y, args.unit)

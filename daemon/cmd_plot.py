@@ -11,8 +11,12 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("item", metavar="ITEM", help="the item's name (as in thermeta status)")
     p.add_argument("--config", required=True, metavar="FILE", help="the TOML config")
     p.add_argument("--out", required=True, metavar="FILE.png", help="where to write the PNG")
-    p.add_argument("--hours", type=float, metavar="H",
-                   help="history to show, in hours before the newest reading (default: the item's fit window)")
+    p.add_argument(
+        "--hours",
+        type=float,
+        metavar="H",
+        help="history to show, in hours before the newest reading (default: the item's fit window)",
+    )
 
 
 def run(args: argparse.Namespace) -> int:
@@ -24,7 +28,9 @@ def run(args: argparse.Namespace) -> int:
         print(f"thermeta plot: --hours must be positive, got {args.hours:g}", file=sys.stderr)
         return 2
     if not args.out.lower().endswith(".png"):
-        print(f"thermeta plot: --out {args.out}: the picture is a PNG; name it *.png", file=sys.stderr)
+        print(
+            f"thermeta plot: --out {args.out}: the picture is a PNG; name it *.png", file=sys.stderr
+        )
         return 2
     cfg = load_config_or_report(args.config)
     if cfg is None:
@@ -37,9 +43,14 @@ def run(args: argparse.Namespace) -> int:
         row = known.get(args.item)
         item = Router(cfg.items).item_for(args.item, row["topic"] if row else None)
         if item is None:
-            names = ", ".join(sorted(n for n, r in known.items() if r["kind"] == "load")) or "none yet"
-            print(f"thermeta plot: no item named {args.item!r} in {args.config} and the store "
-                  f"(items: {names})", file=sys.stderr)
+            names = (
+                ", ".join(sorted(n for n, r in known.items() if r["kind"] == "load")) or "none yet"
+            )
+            print(
+                f"thermeta plot: no item named {args.item!r} in {args.config} and the store "
+                f"(items: {names})",
+                file=sys.stderr,
+            )
             return 2
         fig = item_figure(store, item, history_s=None if args.hours is None else args.hours * 3600)
     finally:

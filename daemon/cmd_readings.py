@@ -12,7 +12,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--config", required=True, metavar="FILE", help="the TOML config")
     p.add_argument("--since", metavar="RFC3339", help="only readings at or after this time")
     p.add_argument("--until", metavar="RFC3339", help="only readings at or before this time")
-    p.add_argument("--unit", choices=["C", "F", "K"], help="unit of the values (default: the item's)")
+    p.add_argument(
+        "--unit", choices=["C", "F", "K"], help="unit of the values (default: the item's)"
+    )
     p.add_argument("-o", "--output", metavar="OUT.csv", help="write to a file instead of stdout")
 
 
@@ -42,12 +44,15 @@ def run(args: argparse.Namespace) -> int:
         row = known.get(args.item)
         if row is None:
             names = ", ".join(n for n, r in known.items() if r["kind"] == "load") or "none yet"
-            print(f"thermeta readings: no item named {args.item!r} in the store (items: {names})",
-                  file=sys.stderr)
+            print(
+                f"thermeta readings: no item named {args.item!r} in the store (items: {names})",
+                file=sys.stderr,
+            )
             return 2
         unit = args.unit or row["unit"] or "C"
-        rows = store.recent_readings(row["id"], since_ts=bounds.get("since"),
-                                     until_ts=bounds.get("until"))
+        rows = store.recent_readings(
+            row["id"], since_ts=bounds.get("since"), until_ts=bounds.get("until")
+        )
     finally:
         store.close()
     out = open(args.output, "w", newline="") if args.output else sys.stdout
@@ -65,5 +70,8 @@ def run(args: argparse.Namespace) -> int:
         if args.output:
             out.close()
     if args.output:
-        print(f"{len(rows)} readings of {args.item} ({unit}) written to {args.output}", file=sys.stderr)
+        print(
+            f"{len(rows)} readings of {args.item} ({unit}) written to {args.output}",
+            file=sys.stderr,
+        )
     return 0

@@ -8,10 +8,14 @@ import argparse
 def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--config", required=True, metavar="FILE", help="the TOML config")
     p.add_argument("--log-json", action="store_true", help="log JSON lines instead of text")
-    p.add_argument("--log-level", choices=["debug", "info", "warning", "error"],
-                   help="overrides [log] level")
-    p.add_argument("--dashboard", action="store_true",
-                   help="show the live dashboard in this terminal while the service runs")
+    p.add_argument(
+        "--log-level", choices=["debug", "info", "warning", "error"], help="overrides [log] level"
+    )
+    p.add_argument(
+        "--dashboard",
+        action="store_true",
+        help="show the live dashboard in this terminal while the service runs",
+    )
 
 
 def run(args: argparse.Namespace) -> int:

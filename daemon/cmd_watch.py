@@ -10,8 +10,13 @@ import sys
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--config", required=True, metavar="FILE", help="the TOML config")
-    p.add_argument("--interval", type=float, default=2.0, metavar="S",
-                   help="seconds between frames (default 2)")
+    p.add_argument(
+        "--interval",
+        type=float,
+        default=2.0,
+        metavar="S",
+        help="seconds between frames (default 2)",
+    )
     p.add_argument("--once", action="store_true", help="print one plain frame and exit")
 
 

@@ -28,9 +28,12 @@ def open_store(cfg: Any, command: str):
     if url.startswith("sqlite:///") and url != "sqlite:///:memory:":
         from pathlib import Path
 
-        if not Path(url[len("sqlite:///"):]).exists():
-            print(f"thermeta {command}: no store at {safe_url(url)} yet (has `thermeta run` started "
-                  "with this config?)", file=sys.stderr)
+        if not Path(url[len("sqlite:///") :]).exists():
+            print(
+                f"thermeta {command}: no store at {safe_url(url)} yet (has `thermeta run` started "
+                "with this config?)",
+                file=sys.stderr,
+            )
             return None
     try:
         store = Store(url)
@@ -38,7 +41,9 @@ def open_store(cfg: Any, command: str):
             print(f"thermeta {command}: {safe_url(url)} holds no thermeta tables", file=sys.stderr)
             return None
     except (StoreError, Exception) as exc:  # noqa: BLE001 - driver errors vary by database
-        print(f"thermeta {command}: cannot open {safe_url(url)}: {str(exc).splitlines()[0]}",
-              file=sys.stderr)
+        print(
+            f"thermeta {command}: cannot open {safe_url(url)}: {str(exc).splitlines()[0]}",
+            file=sys.stderr,
+        )
         return None
     return store

@@ -277,12 +277,25 @@ class _Checker:
         for key in tbl:
             if key not in allowed:
                 hint = _closest(key, allowed)
-                self.problem(where + (key,), self.label(where + (key,)),
-                             "unknown key" + (f" (did you mean '{hint}'?)" if hint else ""))
+                self.problem(
+                    where + (key,),
+                    self.label(where + (key,)),
+                    "unknown key" + (f" (did you mean '{hint}'?)" if hint else ""),
+                )
 
-    def get(self, tbl: dict, where: tuple, key: str, kind: str, default: Any = None, *,
-            required: bool = False, positive: bool = False, choices: tuple = (),
-            minimum: float | None = None) -> Any:
+    def get(
+        self,
+        tbl: dict,
+        where: tuple,
+        key: str,
+        kind: str,
+        default: Any = None,
+        *,
+        required: bool = False,
+        positive: bool = False,
+        choices: tuple = (),
+        minimum: float | None = None,
+    ) -> Any:
         lbl = self.label(where + (key,))
         if key not in tbl:
             if required:
@@ -297,8 +310,13 @@ class _Checker:
             "strlist": isinstance(v, list) and all(isinstance(s, str) for s in v),
         }[kind]
         if not ok:
-            want = {"str": "a string", "int": "an integer", "num": "a number", "bool": "true or false",
-                    "strlist": "a list of strings"}[kind]
+            want = {
+                "str": "a string",
+                "int": "an integer",
+                "num": "a number",
+                "bool": "true or false",
+                "strlist": "a list of strings",
+            }[kind]
             self.problem(where + (key,), lbl, f"must be {want}, got {_show(v)}")
             return default
         if kind == "num" and not math.isfinite(v):
@@ -308,8 +326,11 @@ class _Checker:
             self.problem(where + (key,), lbl, "must not be empty")
             return default
         if choices and v not in choices:
-            self.problem(where + (key,), lbl,
-                         f"must be one of {', '.join(map(str, choices))}, got {_show(v)}")
+            self.problem(
+                where + (key,),
+                lbl,
+                f"must be one of {', '.join(map(str, choices))}, got {_show(v)}",
+            )
             return default
         if positive and not v > 0:
             self.problem(where + (key,), lbl, f"must be > 0, got {v}")
@@ -339,12 +360,20 @@ def _closest(key: str, allowed: set[str]) -> str | None:
     return hits[0] if hits else None
 
 
-ALERT_KEYS = {"lead": "lead_s", "hysteresis": "hysteresis", "hold": "hold_s",
-              "remind_every": "remind_every_s", "silence": "silence_s", "horizon": "horizon_s",
-              "delay": "delay_s"}
+ALERT_KEYS = {
+    "lead": "lead_s",
+    "hysteresis": "hysteresis",
+    "hold": "hold_s",
+    "remind_every": "remind_every_s",
+    "silence": "silence_s",
+    "horizon": "horizon_s",
+    "delay": "delay_s",
+}
 
 
-def _alert_values(c: _Checker, tbl: dict, where: tuple, defaults: AlertDefaults) -> dict[str, float]:
+def _alert_values(
+    c: _Checker, tbl: dict, where: tuple, defaults: AlertDefaults
+) -> dict[str, float]:
     out = {}
     for key, attr in ALERT_KEYS.items():
         dflt = getattr(defaults, attr)
@@ -382,26 +411,50 @@ def load_config(path: str | Path) -> Config:
 
 def parse_config(data: dict, name: str, text: str) -> Config:
     c = _Checker(name, _LineIndex(text))
-    c.unknown(data, (), {"broker", "storage", "fit", "publish", "ingest", "alerts", "log", "item",
-                         "hook"})
-    broker = _broker(c, c.table(data, "broker", set(BrokerConfig.__dataclass_fields__) - {"keepalive_s",
-                     "session_expiry_s"} | {"keepalive", "session_expiry"}))
-    storage = _storage(c, c.table(data, "storage", {"url", "url_env", "retention_days", "batch_size",
-                                                    "batch_ms"}))
+    c.unknown(
+        data, (), {"broker", "storage", "fit", "publish", "ingest", "alerts", "log", "item", "hook"}
+    )
+    broker = _broker(
+        c,
+        c.table(
+            data,
+            "broker",
+            set(BrokerConfig.__dataclass_fields__) - {"keepalive_s", "session_expiry_s"}
+            | {"keepalive", "session_expiry"},
+        ),
+    )
+    storage = _storage(
+        c, c.table(data, "storage", {"url", "url_env", "retention_days", "batch_size", "batch_ms"})
+    )
     fit = _fit(c, c.table(data, "fit", {"refit_every", "window", "min_points", "model"}))
-    publish = _publish(c, c.table(data, "publish", {"topic_prefix", "status_topic", "qos", "retain"}))
-    ingest = _ingest(c, c.table(data, "ingest", {"max_payload_bytes", "max_future", "dead_letter_chars"}))
+    publish = _publish(
+        c, c.table(data, "publish", {"topic_prefix", "status_topic", "qos", "retain"})
+    )
+    ingest = _ingest(
+        c, c.table(data, "ingest", {"max_payload_bytes", "max_future", "dead_letter_chars"})
+    )
     alerts_tbl = c.table(data, "alerts", set(ALERT_KEYS))
     alerts = AlertDefaults(**_alert_values(c, alerts_tbl, ("alerts",), AlertDefaults()))
     log_tbl = c.table(data, "log", {"level"})
-    level = c.get(log_tbl, ("log",), "level", "str", "info",
-                  choices=("debug", "info", "warning", "error"))
+    level = c.get(
+        log_tbl, ("log",), "level", "str", "info", choices=("debug", "info", "warning", "error")
+    )
     items = _items(c, data.get("item", []), fit, alerts, publish)
     hooks = _hooks(c, data.get("hook", []))
     if c.problems:
         raise ConfigError(c.problems)
-    return Config(path=name, broker=broker, storage=storage, fit=fit, publish=publish, ingest=ingest,
-                  alerts=alerts, items=tuple(items), hooks=tuple(hooks), log_level=level)
+    return Config(
+        path=name,
+        broker=broker,
+        storage=storage,
+        fit=fit,
+        publish=publish,
+        ingest=ingest,
+        alerts=alerts,
+        items=tuple(items),
+        hooks=tuple(hooks),
+        log_level=level,
+    )
 
 
 def _broker(c: _Checker, t: dict) -> BrokerConfig:
@@ -421,26 +474,39 @@ def _broker(c: _Checker, t: dict) -> BrokerConfig:
     password_env = c.get(t, w, "password_env", "str")
     password = None
     if "password" in t:
-        c.problem(w + ("password",), "broker.password",
-                  "put the password in an environment variable and name it with password_env")
+        c.problem(
+            w + ("password",),
+            "broker.password",
+            "put the password in an environment variable and name it with password_env",
+        )
     if password_env:
         password = os.environ.get(password_env)
         if password is None:
-            c.problem(w + ("password_env",), "broker.password_env",
-                      f"environment variable {password_env} is not set")
+            c.problem(
+                w + ("password_env",),
+                "broker.password_env",
+                f"environment variable {password_env} is not set",
+            )
     username = c.get(t, w, "username", "str")
     if password_env and not username:
         c.problem(w + ("password_env",), "broker.username", "missing (a password needs a username)")
     client_id = c.get(t, w, "client_id", "str", f"thermeta-{socket.gethostname()}"[:64])
     return BrokerConfig(
-        host=c.get(t, w, "host", "str", "127.0.0.1"), port=port, client_id=client_id,
+        host=c.get(t, w, "host", "str", "127.0.0.1"),
+        port=port,
+        client_id=client_id,
         protocol=str(c.get(t, w, "protocol", "str", "auto", choices=PROTOCOLS)),
         keepalive_s=c.get(t, w, "keepalive", "int", 60, positive=True),
         session_expiry_s=c.get(t, w, "session_expiry", "int", 7 * 86400, positive=True),
         qos=c.get(t, w, "qos", "int", 1, choices=(0, 1)),
         receive_maximum=_receive_max(c, t, w),
-        username=username, password_env=password_env, password=password, tls=tls,
-        ca_file=files["ca_file"], cert_file=files["cert_file"], key_file=files["key_file"],
+        username=username,
+        password_env=password_env,
+        password=password,
+        tls=tls,
+        ca_file=files["ca_file"],
+        cert_file=files["cert_file"],
+        key_file=files["key_file"],
         tls_insecure=c.get(t, w, "tls_insecure", "bool", False),
     )
 
@@ -462,12 +528,17 @@ def _storage(c: _Checker, t: dict) -> StorageConfig:
             c.problem(w + ("url_env",), "storage.url_env", "give url or url_env, not both")
         url = os.environ.get(url_env)
         if url is None:
-            c.problem(w + ("url_env",), "storage.url_env", f"environment variable {url_env} is not set")
+            c.problem(
+                w + ("url_env",), "storage.url_env", f"environment variable {url_env} is not set"
+            )
             url = "sqlite:///thermeta.db"
     if not re.match(r"^[A-Za-z][A-Za-z0-9+]*://", url or ""):
-        c.problem(w + ("url",), "storage.url",
-                  "must be a database URL such as sqlite:///thermeta.db or "
-                  "postgresql+psycopg://user@host/db")
+        c.problem(
+            w + ("url",),
+            "storage.url",
+            "must be a database URL such as sqlite:///thermeta.db or "
+            "postgresql+psycopg://user@host/db",
+        )
     return StorageConfig(
         url=url,
         retention_days=float(c.get(t, w, "retention_days", "num", 90.0, minimum=0)),
@@ -509,14 +580,31 @@ def _ingest(c: _Checker, t: dict) -> IngestConfig:
     )
 
 
-ITEM_KEYS = {"name", "topic", "threshold", "unit", "ambient", "ambient_within", "ambient_topic",
-             "model", "window",
-             "min_points", "plausible", "senml_name", "site", "limit", "prior_class",
-             "defrost_topic", "defrost_recovery", "defrost_max"} | set(ALERT_KEYS)
+ITEM_KEYS = {
+    "name",
+    "topic",
+    "threshold",
+    "unit",
+    "ambient",
+    "ambient_within",
+    "ambient_topic",
+    "model",
+    "window",
+    "min_points",
+    "plausible",
+    "senml_name",
+    "site",
+    "limit",
+    "prior_class",
+    "defrost_topic",
+    "defrost_recovery",
+    "defrost_max",
+} | set(ALERT_KEYS)
 
 
-def _items(c: _Checker, raw: Any, fit: FitConfig, alerts: AlertDefaults,
-           publish: PublishConfig) -> list[ItemConfig]:
+def _items(
+    c: _Checker, raw: Any, fit: FitConfig, alerts: AlertDefaults, publish: PublishConfig
+) -> list[ItemConfig]:
     if not isinstance(raw, list):
         c.problem(("item",), "item", "must be [[item]] tables")
         return []
@@ -539,19 +627,28 @@ def _items(c: _Checker, raw: Any, fit: FitConfig, alerts: AlertDefaults,
         ambient = c.get(t, w, "ambient", "num")
         ambient_topic = c.get(t, w, "ambient_topic", "str")
         if ambient is not None and ambient_topic is not None:
-            c.problem(w + ("ambient_topic",), "item.ambient_topic",
-                      "give ambient (known) or ambient_topic (measured), not both")
+            c.problem(
+                w + ("ambient_topic",),
+                "item.ambient_topic",
+                "give ambient (known) or ambient_topic (measured), not both",
+            )
         ambient_within = c.get(t, w, "ambient_within", "num", minimum=0)
         if ambient_within is not None and ambient is None:
-            c.problem(w + ("ambient_within",), "item.ambient_within",
-                      "says how far off the given ambient may be: give ambient too")
+            c.problem(
+                w + ("ambient_within",),
+                "item.ambient_within",
+                "says how far off the given ambient may be: give ambient too",
+            )
         if topic is not None:
             err = check_filter(topic)
             if err:
                 c.problem(w + ("topic",), "item.topic", err)
             elif topic in topics:
-                c.problem(w + ("topic",), "item.topic",
-                          f"already used by the item on line {topics[topic]}")
+                c.problem(
+                    w + ("topic",),
+                    "item.topic",
+                    f"already used by the item on line {topics[topic]}",
+                )
             else:
                 topics[topic] = c.index.line(w + ("topic",))
         if ambient_topic is not None:
@@ -559,54 +656,76 @@ def _items(c: _Checker, raw: Any, fit: FitConfig, alerts: AlertDefaults,
             if err:
                 c.problem(w + ("ambient_topic",), "item.ambient_topic", err)
             elif topic and is_wildcard(ambient_topic) != is_wildcard(topic):
-                c.problem(w + ("ambient_topic",), "item.ambient_topic",
-                          "must use wildcards exactly when topic does")
+                c.problem(
+                    w + ("ambient_topic",),
+                    "item.ambient_topic",
+                    "must use wildcards exactly when topic does",
+                )
         defrost = _defrost(c, t, w, topic, ambient_topic)
         if name is not None:
             _check_name(c, w, name, topic, ambient_topic)
             if name in names:
-                c.problem(w + ("name",), "item.name", f"already used by the item on line {names[name]}")
+                c.problem(
+                    w + ("name",), "item.name", f"already used by the item on line {names[name]}"
+                )
             else:
                 names[name] = c.index.line(w + ("name",))
         plausible = (-100.0, 200.0) if unit == "C" else None
         if "plausible" in t:
             p = t["plausible"]
-            if (isinstance(p, list) and len(p) == 2
-                    and all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in p)
-                    and p[0] < p[1]):
+            if (
+                isinstance(p, list)
+                and len(p) == 2
+                and all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in p)
+                and p[0] < p[1]
+            ):
                 plausible = (float(p[0]), float(p[1]))
             else:
-                c.problem(w + ("plausible",), "item.plausible",
-                          f"must be [low, high] with low < high, got {_show(p)}")
+                c.problem(
+                    w + ("plausible",),
+                    "item.plausible",
+                    f"must be [low, high] with low < high, got {_show(p)}",
+                )
         if plausible is None:
             from thermeta.daemon.units import from_celsius
 
             plausible = (from_celsius(-100.0, unit or "C"), from_celsius(200.0, unit or "C"))
         values = _alert_values(c, t, w, alerts)
         item = ItemConfig(
-            name=name or "", topic=topic or "", threshold=float(threshold or 0.0), unit=unit or "C",
-            ambient=None if ambient is None else float(ambient), ambient_topic=ambient_topic,
+            name=name or "",
+            topic=topic or "",
+            threshold=float(threshold or 0.0),
+            unit=unit or "C",
+            ambient=None if ambient is None else float(ambient),
+            ambient_topic=ambient_topic,
             ambient_within=None if ambient_within is None else float(ambient_within),
             model=c.get(t, w, "model", "str", fit.model, choices=MODELS),
             window_s=float(c.get(t, w, "window", "num", fit.window_s, positive=True)),
             min_points=c.get(t, w, "min_points", "int", fit.min_points, minimum=3),
-            plausible=plausible, senml_name=c.get(t, w, "senml_name", "str"),
+            plausible=plausible,
+            senml_name=c.get(t, w, "senml_name", "str"),
             site=c.get(t, w, "site", "str"),
             limit=c.get(t, w, "limit", "str", "auto", choices=("upper", "lower", "auto")),
             prior_class=_prior_class(c, t, w),
-            line=c.index.line(w), **values, **defrost,
+            line=c.index.line(w),
+            **values,
+            **defrost,
         )
         if len(c.problems) == n_problems:
             lo, hi = item.plausible
             if not lo <= item.threshold <= hi:
-                c.problem(w + ("threshold",), "item.threshold",
-                          f"{item.threshold:g} is outside the plausible range [{lo:g}, {hi:g}]")
+                c.problem(
+                    w + ("threshold",),
+                    "item.threshold",
+                    f"{item.threshold:g} is outside the plausible range [{lo:g}, {hi:g}]",
+                )
         out.append(item)
     return out
 
 
-def _defrost(c: _Checker, t: dict, w: tuple, topic: str | None,
-             ambient_topic: str | None) -> dict[str, Any]:
+def _defrost(
+    c: _Checker, t: dict, w: tuple, topic: str | None, ambient_topic: str | None
+) -> dict[str, Any]:
     """defrost_topic (a topic of its own, with wildcards exactly when topic has them),
     defrost_recovery (seconds, >= 0) and defrost_max (seconds, > 0); the delays only with a topic."""
     dtopic = c.get(t, w, "defrost_topic", "str")
@@ -615,39 +734,63 @@ def _defrost(c: _Checker, t: dict, w: tuple, topic: str | None,
         if err:
             c.problem(w + ("defrost_topic",), "item.defrost_topic", err)
         elif dtopic in (topic, ambient_topic):
-            c.problem(w + ("defrost_topic",), "item.defrost_topic",
-                      "must differ from topic and ambient_topic (it carries on/off, not readings)")
+            c.problem(
+                w + ("defrost_topic",),
+                "item.defrost_topic",
+                "must differ from topic and ambient_topic (it carries on/off, not readings)",
+            )
         elif topic and is_wildcard(dtopic) != is_wildcard(topic):
-            c.problem(w + ("defrost_topic",), "item.defrost_topic",
-                      "must use wildcards exactly when topic does")
+            c.problem(
+                w + ("defrost_topic",),
+                "item.defrost_topic",
+                "must use wildcards exactly when topic does",
+            )
     else:
         for key in ("defrost_recovery", "defrost_max"):
             if key in t:
-                c.problem(w + (key,), f"item.{key}", "needs defrost_topic (the controller's signal)")
-    return {"defrost_topic": dtopic,
-            "defrost_recovery_s": float(c.get(t, w, "defrost_recovery", "num", 1800.0, minimum=0)),
-            "defrost_max_s": float(c.get(t, w, "defrost_max", "num", 3600.0, positive=True))}
+                c.problem(
+                    w + (key,), f"item.{key}", "needs defrost_topic (the controller's signal)"
+                )
+    return {
+        "defrost_topic": dtopic,
+        "defrost_recovery_s": float(c.get(t, w, "defrost_recovery", "num", 1800.0, minimum=0)),
+        "defrost_max_s": float(c.get(t, w, "defrost_max", "num", 3600.0, positive=True)),
+    }
 
 
 def _prior_class(c: _Checker, t: dict, w: tuple) -> str | None:
     """prior_class: a non-empty name of at most 200 characters (the store's key), or absent."""
     v = c.get(t, w, "prior_class", "str")
     if v is not None and not 0 < len(v.strip()) <= 200:
-        c.problem(w + ("prior_class",), "item.prior_class",
-                  f"must be a name of 1-200 characters, got {_show(v)}")
+        c.problem(
+            w + ("prior_class",),
+            "item.prior_class",
+            f"must be a name of 1-200 characters, got {_show(v)}",
+        )
         return None
     return None if v is None else v.strip()
 
 
-def _check_name(c: _Checker, w: tuple, name: str, topic: str | None, ambient_topic: str | None) -> None:
+def _check_name(
+    c: _Checker, w: tuple, name: str, topic: str | None, ambient_topic: str | None
+) -> None:
     if not NAME_RE.match(name) or name.startswith("/") or name.endswith("/"):
-        c.problem(w + ("name",), "item.name",
-                  f"{_show(name)}: use letters, digits and . _ - : / only")
+        c.problem(
+            w + ("name",), "item.name", f"{_show(name)}: use letters, digits and . _ - : / only"
+        )
         return
     if name.endswith(AMBIENT_SUFFIX):
-        c.problem(w + ("name",), "item.name", f"must not end in '{AMBIENT_SUFFIX}' (kept for ambient probes)")
+        c.problem(
+            w + ("name",),
+            "item.name",
+            f"must not end in '{AMBIENT_SUFFIX}' (kept for ambient probes)",
+        )
     if name.endswith(DEFROST_SUFFIX):
-        c.problem(w + ("name",), "item.name", f"must not end in '{DEFROST_SUFFIX}' (kept for defrost signals)")
+        c.problem(
+            w + ("name",),
+            "item.name",
+            f"must not end in '{DEFROST_SUFFIX}' (kept for defrost signals)",
+        )
     used = placeholders(name)
     if used is None:
         c.problem(w + ("name",), "item.name", "braces must hold a topic level number such as {2}")
@@ -658,19 +801,27 @@ def _check_name(c: _Checker, w: tuple, name: str, topic: str | None, ambient_top
     if is_wildcard(topic):
         wild = {i + 1 for i, lv in enumerate(levels) if lv in ("+", "#")}
         if not used & wild:
-            c.problem(w + ("name",), "item.name",
-                      "a wildcard topic needs a name template using a wildcard level, e.g. "
-                      f"{{{min(wild)}}} for level {min(wild)} of {topic}")
+            c.problem(
+                w + ("name",),
+                "item.name",
+                "a wildcard topic needs a name template using a wildcard level, e.g. "
+                f"{{{min(wild)}}} for level {min(wild)} of {topic}",
+            )
         has_hash = levels[-1] == "#"
         for n in used:
             if n > len(levels) and not has_hash:
-                c.problem(w + ("name",), "item.name", f"{{{n}}}: the topic has only {len(levels)} levels")
+                c.problem(
+                    w + ("name",), "item.name", f"{{{n}}}: the topic has only {len(levels)} levels"
+                )
         if ambient_topic and is_wildcard(ambient_topic):
             alevels = ambient_topic.split("/")
             for n in sorted(used & wild):
                 if levels[n - 1] == "+" and (n > len(alevels) or alevels[n - 1] != "+"):
-                    c.problem(w + ("ambient_topic",), "item.ambient_topic",
-                              f"level {n} must be a + wildcard like in topic, so {{{n}}} names both")
+                    c.problem(
+                        w + ("ambient_topic",),
+                        "item.ambient_topic",
+                        f"level {n} must be a + wildcard like in topic, so {{{n}}} names both",
+                    )
                     break
     elif used:
         c.problem(w + ("name",), "item.name", "placeholders such as {2} need a wildcard topic")
@@ -704,25 +855,40 @@ def _hooks(c: _Checker, raw: Any) -> list[HookConfig]:
 
         for lv in levels or ():
             if lv not in ALERT_LEVELS:
-                c.problem(w + ("levels",), "hook.levels",
-                          f"unknown level {_show(lv)} (one of {', '.join(ALERT_LEVELS)})")
+                c.problem(
+                    w + ("levels",),
+                    "hook.levels",
+                    f"unknown level {_show(lv)} (one of {', '.join(ALERT_LEVELS)})",
+                )
         kw: dict[str, Any] = {}
         if kind == "webhook":
             url = c.get(t, w, "url", "str", required=True)
             if url and not re.match(r"^https?://[^/\s]+", url):
-                c.problem(w + ("url",), "hook.url", f"must be an http:// or https:// URL, got {_show(url)}")
+                c.problem(
+                    w + ("url",),
+                    "hook.url",
+                    f"must be an http:// or https:// URL, got {_show(url)}",
+                )
             headers = t.get("headers", {})
-            if not (isinstance(headers, dict) and all(isinstance(v, str) for v in headers.values())):
+            if not (
+                isinstance(headers, dict) and all(isinstance(v, str) for v in headers.values())
+            ):
                 c.problem(w + ("headers",), "hook.headers", "must be a table of strings")
                 headers = {}
-            kw.update(url=url, headers=dict(headers), body_template=c.get(t, w, "body_template", "str"),
-                      token_env=_env_key(c, t, w, "token_env"))
+            kw.update(
+                url=url,
+                headers=dict(headers),
+                body_template=c.get(t, w, "body_template", "str"),
+                token_env=_env_key(c, t, w, "token_env"),
+            )
         elif kind == "email":
-            kw.update(host=c.get(t, w, "host", "str", required=True),
-                      tls=c.get(t, w, "tls", "str", "starttls", choices=TLS_MODES),
-                      username_env=_env_key(c, t, w, "username_env"),
-                      password_env=_env_key(c, t, w, "password_env"),
-                      from_addr=c.get(t, w, "from", "str", required=True))
+            kw.update(
+                host=c.get(t, w, "host", "str", required=True),
+                tls=c.get(t, w, "tls", "str", "starttls", choices=TLS_MODES),
+                username_env=_env_key(c, t, w, "username_env"),
+                password_env=_env_key(c, t, w, "password_env"),
+                from_addr=c.get(t, w, "from", "str", required=True),
+            )
             default_port = {"starttls": 587, "implicit": 465, "none": 25}.get(kw["tls"] or "", 587)
             kw["port"] = c.get(t, w, "port", "int", default_port, positive=True)
             to = t.get("to")
@@ -731,8 +897,11 @@ def _hooks(c: _Checker, raw: Any) -> list[HookConfig]:
             elif isinstance(to, list) and to and all(isinstance(s, str) and s.strip() for s in to):
                 kw["to"] = tuple(to)
             else:
-                c.problem(w + ("to",) if "to" in t else w, "hook.to",
-                          "missing (required)" if to is None else "must be an address or a list of them")
+                c.problem(
+                    w + ("to",) if "to" in t else w,
+                    "hook.to",
+                    "missing (required)" if to is None else "must be an address or a list of them",
+                )
             for k in ("from",):
                 v = t.get(k)
                 if isinstance(v, str) and "@" not in v:
@@ -740,8 +909,11 @@ def _hooks(c: _Checker, raw: Any) -> list[HookConfig]:
         elif kind == "exec":
             cmd = None
             if isinstance(t.get("command"), str):
-                c.problem(w + ("command",), "hook.command",
-                          'must be a list such as ["/usr/local/bin/prog", "arg"] (no shell is used)')
+                c.problem(
+                    w + ("command",),
+                    "hook.command",
+                    'must be a list such as ["/usr/local/bin/prog", "arg"] (no shell is used)',
+                )
             else:
                 cmd = c.get(t, w, "command", "strlist", required=True)
             if cmd is not None and not cmd:
@@ -754,9 +926,16 @@ def _hooks(c: _Checker, raw: Any) -> list[HookConfig]:
             kw["topic_prefix"] = prefix.rstrip("/")
         if "timeout" in HOOK_KEYS[kind]:
             kw["timeout_s"] = float(c.get(t, w, "timeout", "num", 10.0, positive=True))
-        out.append(HookConfig(kind=kind, line=c.index.line(w), name=c.get(t, w, "name", "str"),
-                              items=tuple(items) if items is not None else None,
-                              levels=tuple(levels) if levels is not None else None, **kw))
+        out.append(
+            HookConfig(
+                kind=kind,
+                line=c.index.line(w),
+                name=c.get(t, w, "name", "str"),
+                items=tuple(items) if items is not None else None,
+                levels=tuple(levels) if levels is not None else None,
+                **kw,
+            )
+        )
     return out
 
 

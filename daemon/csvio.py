@@ -9,7 +9,6 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-
 from thermeta.daemon.errors import InputError
 from thermeta.daemon.timefmt import parse_time
 
@@ -63,7 +62,9 @@ def read_series(path: str | Path) -> Series:
     cols = [h.strip().lower() for h in header]
     for needed in ("time", "value"):
         if needed not in cols:
-            raise InputError(f"{name}:1: missing column '{needed}' (header is {','.join(header)!r})")
+            raise InputError(
+                f"{name}:1: missing column '{needed}' (header is {','.join(header)!r})"
+            )
     i_t, i_v = cols.index("time"), cols.index("value")
     i_a = cols.index("ambient") if "ambient" in cols else None
     t: list[float] = []

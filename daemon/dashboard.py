@@ -84,15 +84,23 @@ def _group_of(item: str, body: dict[str, Any], topic: str | None) -> str:
     return item.split("-", 1)[0]
 
 
-def collect(store: Any, now: float | None = None, *, history_s: float = 3 * 3600.0,
-            spark_n: int = 48, stats: dict[str, Any] | None = None) -> Board:
+def collect(
+    store: Any,
+    now: float | None = None,
+    *,
+    history_s: float = 3 * 3600.0,
+    spark_n: int = 48,
+    stats: dict[str, Any] | None = None,
+) -> Board:
     """Everything one frame shows, read from the store (and the live stats when in-process)."""
     now = time.time() if now is None else now
     daemon = dict(store.get_meta("daemon") or {})
     if stats:
         daemon.update(stats, heartbeat_at=now, state="running")
     beat = daemon.get("heartbeat_at")
-    running = daemon.get("state") == "running" and beat is not None and now - beat < HEARTBEAT_LATE_S
+    running = (
+        daemon.get("state") == "running" and beat is not None and now - beat < HEARTBEAT_LATE_S
+    )
     topics = {r["name"]: r.get("topic") for r in store.list_items(None)}
     alert_levels, waiting = _alert_levels(store)
     rows = []
@@ -104,24 +112,42 @@ def collect(store: Any, now: float | None = None, *, history_s: float = 3 * 3600
             from thermeta.daemon.units import from_celsius
 
             series = [(t, from_celsius(v, unit)) for t, v in series]
-        rows.append(Row(
-            item=name, state=f["state"], unit=unit, value=d.get("value_now"),
-            threshold=d.get("threshold"), eta_s=remaining_s(d, "eta_s", now),
-            eta_lo_s=remaining_s(d, "eta_lo_s", now), eta_hi_s=remaining_s(d, "eta_hi_s", now),
-            ambient=d.get("ambient"), tau_s=d.get("time_constant_s"),
-            trend_per_h=_trend_per_h(series), spark=_buckets(series, now - history_s, now, spark_n),
-            group=_group_of(name, d, topics.get(name)), alert=alert_levels.get(name),
-            defrost=bool((d.get("defrost") or {}).get("on"))))
-    return Board(rows=rows, connected=daemon.get("connected"), running=running,
-                 broker=str(daemon.get("broker", "?")), readings_per_s=daemon.get("readings_per_s"),
-                 dead_letters=daemon.get("dead_letters"), last_refit_at=store.last_refit_at(),
-                 heartbeat_at=beat, now=now, alerts_waiting=waiting)
+        rows.append(
+            Row(
+                item=name,
+                state=f["state"],
+                unit=unit,
+                value=d.get("value_now"),
+                threshold=d.get("threshold"),
+                eta_s=remaining_s(d, "eta_s", now),
+                eta_lo_s=remaining_s(d, "eta_lo_s", now),
+                eta_hi_s=remaining_s(d, "eta_hi_s", now),
+                ambient=d.get("ambient"),
+                tau_s=d.get("time_constant_s"),
+                trend_per_h=_trend_per_h(series),
+                spark=_buckets(series, now - history_s, now, spark_n),
+                group=_group_of(name, d, topics.get(name)),
+                alert=alert_levels.get(name),
+                defrost=bool((d.get("defrost") or {}).get("on")),
+            )
+        )
+    return Board(
+        rows=rows,
+        connected=daemon.get("connected"),
+        running=running,
+        broker=str(daemon.get("broker", "?")),
+        readings_per_s=daemon.get("readings_per_s"),
+        dead_letters=daemon.get("dead_letters"),
+        last_refit_at=store.last_refit_at(),
+        heartbeat_at=beat,
+        now=now,
+        alerts_waiting=waiting,
+    )
 
 
 def _alert_levels(store: Any) -> tuple[dict[str, str], int]:
     """Open alert levels per item ("+ack" when acknowledged) and the outbox rows waiting."""
     from sqlalchemy import inspect
-
     from thermeta.storage.alerts import AlertStore
 
     if not inspect(store.engine).has_table("alert_state"):
@@ -170,7 +196,7 @@ def sparkline(values: list[float], threshold: float | None, width: int) -> str:
         n = len(values)
         vals = []
         for i in range(width):
-            chunk = [v for v in values[i * n // width:(i + 1) * n // width] if math.isfinite(v)]
+            chunk = [v for v in values[i * n // width : (i + 1) * n // width] if math.isfinite(v)]
             vals.append(sum(chunk) / len(chunk) if chunk else math.nan)
     finite = [v for v in vals if math.isfinite(v)]
     if not finite:
@@ -179,8 +205,9 @@ def sparkline(values: list[float], threshold: float | None, width: int) -> str:
     if threshold is not None and abs(threshold - hi) < 3 * (hi - lo + 1e-9):
         lo, hi = min(lo, threshold), max(hi, threshold)
     span = hi - lo or 1.0
-    return "".join(" " if not math.isfinite(v) else SPARK[min(7, int((v - lo) / span * 7.999))]
-                   for v in vals)
+    return "".join(
+        " " if not math.isfinite(v) else SPARK[min(7, int((v - lo) / span * 7.999))] for v in vals
+    )
 
 
 def short_duration(s: float | None) -> str:
@@ -230,16 +257,24 @@ def visible(board: Board, text_filter: str = "", attention_only: bool = False) -
 def header_text(board: Board) -> Text:
     t = Text()
     if not board.running:
-        ago = (f", last heartbeat {human_duration(board.now - board.heartbeat_at)} ago"
-               if board.heartbeat_at else "")
+        ago = (
+            f", last heartbeat {human_duration(board.now - board.heartbeat_at)} ago"
+            if board.heartbeat_at
+            else ""
+        )
         t.append(f"✖ daemon not running{ago}", style="bold #ff6b6b")
     else:
         up = "connected" if board.connected else "DISCONNECTED"
-        t.append(f"{'●' if board.connected else '✖'} {board.broker} {up}",
-                 style="#6fcf97" if board.connected else "bold #ff6b6b")
+        t.append(
+            f"{'●' if board.connected else '✖'} {board.broker} {up}",
+            style="#6fcf97" if board.connected else "bold #ff6b6b",
+        )
     rate = "-" if board.readings_per_s is None else f"{board.readings_per_s:.1f}"
-    refit = ("never" if board.last_refit_at is None
-             else f"{short_duration(board.now - board.last_refit_at)} ago")
+    refit = (
+        "never"
+        if board.last_refit_at is None
+        else f"{short_duration(board.now - board.last_refit_at)} ago"
+    )
     dead = "-" if board.dead_letters is None else board.dead_letters
     t.append(f" · {rate} readings/s · {dead} dead letters · refit {refit}")
     if board.alerts_waiting:
@@ -263,22 +298,42 @@ def column_widths(width: int) -> dict[str, int]:
 
 def fit_name(name: str, width: int) -> str:
     """The name, or its end (the most telling part of a long topic-like name) with a leading '…'."""
-    return name if len(name) <= width else "…" + name[-(width - 1):]
+    return name if len(name) <= width else "…" + name[-(width - 1) :]
 
 
 def _table(w: dict[str, int], show_header: bool) -> Table:
-    table = Table(box=None, padding=(0, 1, 0, 0), pad_edge=False, expand=False, show_edge=False,
-                  header_style="bold", show_header=show_header)
-    for key, title, justify in (("state", "state", "left"), ("item", "item", "left"),
-                                ("now", "now", "right"), ("limit", "limit", "right"),
-                                ("eta", "ETA [90 %]", "left"), ("amb", "amb", "right"),
-                                ("tau", "tau", "right"), ("spark", "last 3h", "left")):
+    table = Table(
+        box=None,
+        padding=(0, 1, 0, 0),
+        pad_edge=False,
+        expand=False,
+        show_edge=False,
+        header_style="bold",
+        show_header=show_header,
+    )
+    for key, title, justify in (
+        ("state", "state", "left"),
+        ("item", "item", "left"),
+        ("now", "now", "right"),
+        ("limit", "limit", "right"),
+        ("eta", "ETA [90 %]", "left"),
+        ("amb", "amb", "right"),
+        ("tau", "tau", "right"),
+        ("spark", "last 3h", "left"),
+    ):
         table.add_column(title, width=w[key], justify=justify, no_wrap=True, overflow="crop")
     return table
 
 
-def render(board: Board, width: int = 80, height: int = 24, *, text_filter: str = "",
-           attention_only: bool = False, typing: bool = False) -> Group:
+def render(
+    board: Board,
+    width: int = 80,
+    height: int = 24,
+    *,
+    text_filter: str = "",
+    attention_only: bool = False,
+    typing: bool = False,
+) -> Group:
     """One frame: header, the items (grouped when many), key help and the caution line."""
     rows = visible(board, text_filter, attention_only)
     wide = width >= 110
@@ -304,8 +359,9 @@ def render(board: Board, width: int = 80, height: int = 24, *, text_filter: str 
                 body.append(table)
             current = r.group
             n = sum(1 for x in rows if x.group == current)
-            body.append(Text(f"{current} ({n})", style="bold underline", no_wrap=True,
-                             overflow="ellipsis"))
+            body.append(
+                Text(f"{current} ({n})", style="bold underline", no_wrap=True, overflow="ellipsis")
+            )
             table = _table(w, show_header=False)
             lines_used += 1
         sym, word, style = STATE_LOOK.get(r.state, ("·", r.state, ""))
@@ -314,17 +370,21 @@ def render(board: Board, width: int = 80, height: int = 24, *, text_filter: str 
             label.append(" ack", style="dim")
         name = r.item
         if grouped and name.startswith(current + "/"):
-            name = name[len(current) + 1:]
+            name = name[len(current) + 1 :]
         if r.defrost:
             name += " (defrost)"  # at the end, which fit_name keeps: new alerts are held
         sign = UNIT_SIGN.get(r.unit, r.unit) if wide else ""
         hot = style if r.state in ("crossed", "approaching") else ""
-        table.add_row(label, fit_name(name, w["item"]),
-                      f"{_num(r.value)}{sign}{_arrow(r.trend_per_h)}", _num(r.threshold),
-                      Text(eta_text(r), style=hot),
-                      _num(r.ambient, "{:.1f}" if wide else "{:.0f}"),
-                      short_duration(r.tau_s) if r.tau_s else "-",
-                      Text(sparkline(r.spark, r.threshold, w["spark"]), style="#7fb3d5"))
+        table.add_row(
+            label,
+            fit_name(name, w["item"]),
+            f"{_num(r.value)}{sign}{_arrow(r.trend_per_h)}",
+            _num(r.threshold),
+            Text(eta_text(r), style=hot),
+            _num(r.ambient, "{:.1f}" if wide else "{:.0f}"),
+            short_duration(r.tau_s) if r.tau_s else "-",
+            Text(sparkline(r.spark, r.threshold, w["spark"]), style="#7fb3d5"),
+        )
         shown += 1
         lines_used += 1
     body.append(table)
@@ -349,16 +409,26 @@ def plain_lines(board: Board) -> list[str]:
     """The frame as plain lines (stdout not a terminal): one for the daemon, one per item."""
     out = [header_text(board).plain]
     for r in visible(board):
-        out.append(f"{r.item} {r.state} now {_num(r.value)} {r.unit} limit {_num(r.threshold)} "
-                   f"eta {eta_text(r)} ambient {_num(r.ambient)} tau {human_duration(r.tau_s)}"
-                   + (f" alert {r.alert}" if r.alert else "")
-                   + (" defrost" if r.defrost else ""))
+        out.append(
+            f"{r.item} {r.state} now {_num(r.value)} {r.unit} limit {_num(r.threshold)} "
+            f"eta {eta_text(r)} ambient {_num(r.ambient)} tau {human_duration(r.tau_s)}"
+            + (f" alert {r.alert}" if r.alert else "")
+            + (" defrost" if r.defrost else "")
+        )
     return out
 
 
 # -- the loops --------------------------------------------------------------------------------
-def watch(store: Any, console: Console, *, refresh_s: float = 2.0, once: bool = False,
-          stats=None, stop=None, now_fn=None) -> int:
+def watch(
+    store: Any,
+    console: Console,
+    *,
+    refresh_s: float = 2.0,
+    once: bool = False,
+    stats=None,
+    stop=None,
+    now_fn=None,
+) -> int:
     """Show the board until the user presses q (or ``stop`` is set); plain lines when not a tty.
 
     ``now_fn`` is the service's clock when it runs simulated time (the demo), so countdowns and
@@ -383,14 +453,25 @@ def watch(store: Any, console: Console, *, refresh_s: float = 2.0, once: bool = 
     from thermeta.daemon.dashboard_keys import KeyReader
 
     state = {"filter": "", "attention": False, "typing": False}
-    with KeyReader(sys.stdin) as keys, Live(console=console, screen=True, auto_refresh=False) as live:
+    with (
+        KeyReader(sys.stdin) as keys,
+        Live(console=console, screen=True, auto_refresh=False) as live,
+    ):
         next_frame = 0.0
         while stop is None or not stop.is_set():
             if time.monotonic() >= next_frame:
                 size = console.size
-                live.update(render(board(), size.width, size.height, text_filter=state["filter"],
-                                   attention_only=state["attention"], typing=state["typing"]),
-                            refresh=True)
+                live.update(
+                    render(
+                        board(),
+                        size.width,
+                        size.height,
+                        text_filter=state["filter"],
+                        attention_only=state["attention"],
+                        typing=state["typing"],
+                    ),
+                    refresh=True,
+                )
                 next_frame = time.monotonic() + refresh_s
             key = keys.read(min(0.25, refresh_s))
             if key is None:
@@ -431,13 +512,17 @@ def run_foreground(service: Any, stop: Any = None) -> None:
     console = Console()
     quiet = []
     for h in logging.getLogger().handlers:  # log lines to the terminal would tear the frame
-        if (isinstance(h, logging.StreamHandler) and not isinstance(h, logging.FileHandler)
-                and console.is_terminal):
+        if (
+            isinstance(h, logging.StreamHandler)
+            and not isinstance(h, logging.FileHandler)
+            and console.is_terminal
+        ):
             quiet.append((h, h.level))
             h.setLevel(logging.CRITICAL)
     try:
-        watch(service.store, console, stats=lambda: service.stats, stop=stop,
-              now_fn=service.clock.now)
+        watch(
+            service.store, console, stats=lambda: service.stats, stop=stop, now_fn=service.clock.now
+        )
     finally:
         for h, level in quiet:
             h.setLevel(level)

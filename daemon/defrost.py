@@ -91,6 +91,9 @@ def defrost_status(rows: Sequence[tuple[float, float]]) -> dict[str, Any] | None
             break
     if start_i is None:
         return None
-    end = next((t for t, v in rows[start_i + 1:] if v < 0.5), None)
-    return {"on": end is None, "started_at": rfc3339(rows[start_i][0]),
-            "ended_at": None if end is None else rfc3339(end)}
+    end = next((t for t, v in rows[start_i + 1 :] if v < 0.5), None)
+    return {
+        "on": end is None,
+        "started_at": rfc3339(rows[start_i][0]),
+        "ended_at": None if end is None else rfc3339(end),
+    }

@@ -49,8 +49,9 @@ def broker_accepts(host: str, port: int, timeout_s: float = 3.0) -> bool:
             ok.set()
         answered.set()
 
-    c = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id="", protocol=mqtt.MQTTv311,
-                    clean_session=True)
+    c = mqtt.Client(
+        mqtt.CallbackAPIVersion.VERSION2, client_id="", protocol=mqtt.MQTTv311, clean_session=True
+    )
     c.on_connect = on_connect
     try:
         c.connect(host, port, keepalive=10)
@@ -81,7 +82,9 @@ class EmbeddedBroker:
     def _config(self) -> dict:
         return {
             "listeners": {"default": {"type": "tcp", "bind": f"{self.host}:{self.port}"}},
-            "plugins": {"amqtt.plugins.authentication.AnonymousAuthPlugin": {"allow_anonymous": True}},
+            "plugins": {
+                "amqtt.plugins.authentication.AnonymousAuthPlugin": {"allow_anonymous": True}
+            },
         }
 
     def start(self, timeout_s: float = 10.0) -> EmbeddedBroker:
@@ -122,7 +125,9 @@ class EmbeddedBroker:
         try:
             ready.result(timeout_s)
         except Exception as exc:
-            raise RuntimeError(f"embedded MQTT broker did not start on {self.host}:{self.port}: {exc}") from exc
+            raise RuntimeError(
+                f"embedded MQTT broker did not start on {self.host}:{self.port}: {exc}"
+            ) from exc
         log.info("embedded MQTT broker listening on %s:%d", self.host, self.port)
         return self
 

@@ -1,10 +1,10 @@
 """thermeta's exceptions, one tree:
 
-    ThermetaError
-    ├── InputError        bad user input: a CSV, a payload, an argument (exit code 2)
-    │   └── ConfigError   a config file problem, reported as FILE:LINE: key: problem
-    ├── StoreError        the store could not be opened or written
-    └── DeliveryError     an alert hook failed to deliver (retried by the outbox)
+ThermetaError
+├── InputError        bad user input: a CSV, a payload, an argument (exit code 2)
+│   └── ConfigError   a config file problem, reported as FILE:LINE: key: problem
+├── StoreError        the store could not be opened or written
+└── DeliveryError     an alert hook failed to deliver (retried by the outbox)
 """
 
 from __future__ import annotations

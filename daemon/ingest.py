@@ -25,7 +25,6 @@ from typing import Any
 import paho.mqtt.client as mqtt
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
-
 from thermeta.daemon.clock import Clock
 from thermeta.daemon.config import BrokerConfig
 from thermeta.daemon.writer import Inbound
@@ -39,8 +38,15 @@ FALLBACK_WAIT_S = 3.0
 class MqttLink:
     """One broker connection: subscribe to ``filters``, hand messages to ``deliver``."""
 
-    def __init__(self, cfg: BrokerConfig, filters: list[str], deliver: Callable[[Inbound], None],
-                 clock: Clock, status_topic: str, status_extra: dict[str, Any] | None = None):
+    def __init__(
+        self,
+        cfg: BrokerConfig,
+        filters: list[str],
+        deliver: Callable[[Inbound], None],
+        clock: Clock,
+        status_topic: str,
+        status_extra: dict[str, Any] | None = None,
+    ):
         self.cfg = cfg
         self.filters = list(filters)
         self.deliver = deliver
@@ -60,8 +66,11 @@ class MqttLink:
 
     # -- set-up -------------------------------------------------------------------------------
     def _make_client(self) -> mqtt.Client:
-        kw: dict[str, Any] = {"client_id": self.cfg.client_id, "protocol": self.protocol,
-                              "manual_ack": True}
+        kw: dict[str, Any] = {
+            "client_id": self.cfg.client_id,
+            "protocol": self.protocol,
+            "manual_ack": True,
+        }
         if self.protocol == mqtt.MQTTv311:
             kw["clean_session"] = False
         c = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, **kw)
@@ -69,8 +78,12 @@ class MqttLink:
         if self.cfg.username:
             c.username_pw_set(self.cfg.username, self.cfg.password)
         if self.cfg.tls:
-            c.tls_set(ca_certs=self.cfg.ca_file, certfile=self.cfg.cert_file,
-                      keyfile=self.cfg.key_file, tls_version=ssl.PROTOCOL_TLS_CLIENT)
+            c.tls_set(
+                ca_certs=self.cfg.ca_file,
+                certfile=self.cfg.cert_file,
+                keyfile=self.cfg.key_file,
+                tls_version=ssl.PROTOCOL_TLS_CLIENT,
+            )
             if self.cfg.tls_insecure:
                 c.tls_insecure_set(True)
         c.will_set(self.status_topic, self._status("offline"), qos=1, retain=True)
@@ -103,8 +116,9 @@ class MqttLink:
             if answered and outcome == "refused" and self._refused not in UNSUPPORTED_PROTOCOL:
                 return  # refused for another reason (credentials): the log says which
             if proto == mqtt.MQTTv5:
-                log.info("broker did not accept MQTT 5 (%s); trying MQTT 3.1.1",
-                         outcome or "no answer")
+                log.info(
+                    "broker did not accept MQTT 5 (%s); trying MQTT 3.1.1", outcome or "no answer"
+                )
             self.client.loop_stop()
             self.client.disconnect()
         log.warning("broker answered neither MQTT 5 nor 3.1.1; retrying with MQTT 5")
@@ -126,8 +140,13 @@ class MqttLink:
             # Unacknowledged messages the broker may send ahead (MQTT 5 Receive Maximum); for
             # 3.1.1 the broker's max_inflight_messages plays this part.
             props.ReceiveMaximum = int(self.cfg.receive_maximum)
-            self.client.connect_async(self.cfg.host, self.cfg.port, self.cfg.keepalive_s,
-                                      clean_start=False, properties=props)
+            self.client.connect_async(
+                self.cfg.host,
+                self.cfg.port,
+                self.cfg.keepalive_s,
+                clean_start=False,
+                properties=props,
+            )
         else:
             self.client.connect_async(self.cfg.host, self.cfg.port, self.cfg.keepalive_s)
 
@@ -137,17 +156,25 @@ class MqttLink:
             if reason_code.is_failure:
                 self._refused = int(reason_code.value)
                 self._outcome = self._outcome or "refused"
-                log.error("broker %s:%s refused the connection: %s", self.cfg.host, self.cfg.port,
-                          reason_code)
+                log.error(
+                    "broker %s:%s refused the connection: %s",
+                    self.cfg.host,
+                    self.cfg.port,
+                    reason_code,
+                )
                 self._first_connack.set()
                 return
             with self._lock:
                 self.generation += 1
             self.counts["connects"] += 1
             resumed = bool(getattr(flags, "session_present", False))
-            log.info("connected to %s:%s (MQTT %s, session %s)", self.cfg.host, self.cfg.port,
-                     "5" if self.protocol == mqtt.MQTTv5 else "3.1.1",
-                     "resumed" if resumed else "new")
+            log.info(
+                "connected to %s:%s (MQTT %s, session %s)",
+                self.cfg.host,
+                self.cfg.port,
+                "5" if self.protocol == mqtt.MQTTv5 else "3.1.1",
+                "resumed" if resumed else "new",
+            )
             client.subscribe([(f, self.cfg.qos) for f in self.filters])
             client.publish(self.status_topic, self._status("online"), qos=1, retain=True)
             self.connected.set()
@@ -183,8 +210,9 @@ class MqttLink:
                 self.counts["dropped"] += 1
                 return
             self.counts["received"] += 1
-            self.deliver(Inbound(msg.topic, msg.payload, self.clock.now(), msg.mid, msg.qos,
-                                 self.generation))
+            self.deliver(
+                Inbound(msg.topic, msg.payload, self.clock.now(), msg.mid, msg.qos, self.generation)
+            )
         except Exception:  # noqa: BLE001 - never let one message stop the network thread
             log.exception("error handing on a message from %s", getattr(msg, "topic", "?"))
 
@@ -196,8 +224,9 @@ class MqttLink:
             if m.qos > 0 and m.generation == gen:
                 self.client.ack(m.mid, m.qos)
 
-    def publish(self, topic: str, payload: str | bytes, qos: int = 1,
-                retain: bool = False) -> mqtt.MQTTMessageInfo:
+    def publish(
+        self, topic: str, payload: str | bytes, qos: int = 1, retain: bool = False
+    ) -> mqtt.MQTTMessageInfo:
         return self.client.publish(topic, payload, qos=qos, retain=retain)
 
     def stop_receiving(self) -> None:
@@ -207,8 +236,9 @@ class MqttLink:
         """Say we are going offline (retained), then disconnect cleanly (no last will)."""
         try:
             if self.connected.is_set():
-                info = self.client.publish(self.status_topic, self._status("offline"), qos=1,
-                                           retain=True)
+                info = self.client.publish(
+                    self.status_topic, self._status("offline"), qos=1, retain=True
+                )
                 info.wait_for_publish(timeout)
         except (RuntimeError, ValueError) as exc:
             log.warning("could not publish the offline status: %s", exc)

@@ -5,10 +5,14 @@ from __future__ import annotations
 import json
 import logging
 import sys
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 
-LEVELS = {"debug": logging.DEBUG, "info": logging.INFO, "warning": logging.WARNING,
-          "error": logging.ERROR}
+LEVELS = {
+    "debug": logging.DEBUG,
+    "info": logging.INFO,
+    "warning": logging.WARNING,
+    "error": logging.ERROR,
+}
 
 
 class JsonFormatter(logging.Formatter):
@@ -16,8 +20,9 @@ class JsonFormatter(logging.Formatter):
 
     def format(self, record: logging.LogRecord) -> str:
         out = {
-            "time": datetime.fromtimestamp(record.created, tz=timezone.utc)
-            .isoformat(timespec="milliseconds").replace("+00:00", "Z"),
+            "time": datetime.fromtimestamp(record.created, tz=UTC)
+            .isoformat(timespec="milliseconds")
+            .replace("+00:00", "Z"),
             "level": record.levelname.lower(),
             "logger": record.name,
             "message": record.getMessage(),
@@ -33,8 +38,11 @@ def configure(level: str = "info", json_lines: bool = False, stream=None) -> Non
     if json_lines:
         handler.setFormatter(JsonFormatter())
     else:
-        handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)-7s %(name)s: %(message)s",
-                                               datefmt="%Y-%m-%d %H:%M:%S"))
+        handler.setFormatter(
+            logging.Formatter(
+                "%(asctime)s %(levelname)-7s %(name)s: %(message)s", datefmt="%Y-%m-%d %H:%M:%S"
+            )
+        )
     root = logging.getLogger()
     for h in list(root.handlers):
         root.removeHandler(h)
@@ -42,5 +50,8 @@ def configure(level: str = "info", json_lines: bool = False, stream=None) -> Non
     root.setLevel(LEVELS.get(level, logging.INFO))
     # paho's per-packet chatter only at debug
     logging.getLogger("thermeta.mqtt.paho").setLevel(
-        logging.DEBUG if level == "debug" else logging.WARNING)
-    logging.getLogger("apscheduler").setLevel(logging.WARNING if level != "debug" else logging.DEBUG)
+        logging.DEBUG if level == "debug" else logging.WARNING
+    )
+    logging.getLogger("apscheduler").setLevel(
+        logging.WARNING if level != "debug" else logging.DEBUG
+    )

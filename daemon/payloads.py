@@ -49,8 +49,13 @@ class Limits:
     max_bytes: int = 16384
 
 
-def parse_payload(payload: bytes, now: float, unit: str = "C", limits: Limits = Limits(),
-                  senml_name: str | None = None) -> list[Reading]:
+def parse_payload(
+    payload: bytes,
+    now: float,
+    unit: str = "C",
+    limits: Limits = Limits(),
+    senml_name: str | None = None,
+) -> list[Reading]:
     """Readings in ``payload`` (received at ``now``; ``unit`` is the item's default unit).
 
     Raises PayloadError with a short reason when nothing usable is in it or a value is invalid.
@@ -73,7 +78,9 @@ def parse_payload(payload: bytes, now: float, unit: str = "C", limits: Limits = 
         except PayloadError:
             raise
         except (json.JSONDecodeError, RecursionError) as exc:
-            raise PayloadError(f"invalid JSON: {getattr(exc, 'msg', 'too deeply nested')}") from None
+            raise PayloadError(
+                f"invalid JSON: {getattr(exc, 'msg', 'too deeply nested')}"
+            ) from None
         if isinstance(doc, list):
             out = _senml(doc, now, unit, senml_name)
         else:
@@ -114,8 +121,11 @@ def _fast_object(payload: bytes, now: float, unit: str, limits: Limits) -> Readi
     if type(value) not in _NUMBER or type(ts) not in _NUMBER or u not in ("C", "F", "K"):
         return None
     value_c = value if u == "C" else to_celsius(value, u)
-    if not (limits.low_c <= value_c <= limits.high_c and EPOCH_MIN_S <= ts <= EPOCH_MAX_S
-            and ts <= now + limits.max_future_s):
+    if not (
+        limits.low_c <= value_c <= limits.high_c
+        and EPOCH_MIN_S <= ts <= EPOCH_MAX_S
+        and ts <= now + limits.max_future_s
+    ):
         return None  # NaN and infinities fail the range test too
     return Reading(float(ts), float(value_c), False)
 
@@ -191,11 +201,14 @@ def _senml(pack: list, now: float, unit: str, want_name: str | None) -> list[Rea
         t = bt + _number(rec.get("t", 0.0), f"SenML record {i}: t")
         relative = abs(t) < SENML_RELATIVE_LIMIT
         ts = now + t if relative else t
-        out.append(Reading(ts, _finite(value, f"SenML record {i}: v", unit_code),
-                           relative and t == 0.0))
+        out.append(
+            Reading(ts, _finite(value, f"SenML record {i}: v", unit_code), relative and t == 0.0)
+        )
     if not out:
-        raise PayloadError("SenML pack has no temperature record (unit Cel or K)"
-                           + (f" named {want_name!r}" if want_name and seen_values else ""))
+        raise PayloadError(
+            "SenML pack has no temperature record (unit Cel or K)"
+            + (f" named {want_name!r}" if want_name and seen_values else "")
+        )
     return out
 
 
@@ -206,7 +219,8 @@ def _check(r: Reading, now: float, limits: Limits) -> None:
         raise PayloadError(f"timestamp {r.ts - now:.0f} s in the future")
     if not limits.low_c <= r.value_c <= limits.high_c:
         raise PayloadError(
-            f"value {r.value_c:.6g} degC outside the plausible range [{limits.low_c:g}, {limits.high_c:g}]")
+            f"value {r.value_c:.6g} degC outside the plausible range [{limits.low_c:g}, {limits.high_c:g}]"
+        )
 
 
 def excerpt(payload: bytes, limit: int) -> str:

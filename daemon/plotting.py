@@ -28,11 +28,20 @@ from thermeta.predictors.result import Forecast
 log = logging.getLogger("thermeta.plot")
 
 WIDTH_PX, HEIGHT_PX, DPI = 1000, 560, 100
-CAUTION = ("Forecasts support decisions; they are not a food-safety plan or a regulatory record. "
-           "Local codes and licensed practice decide the limits and actions.")
+CAUTION = (
+    "Forecasts support decisions; they are not a food-safety plan or a regulatory record. "
+    "Local codes and licensed practice decide the limits and actions."
+)
 # Colours of our own; meaning is also carried by labels and line styles.
 C_READ, C_FIT, C_BAND, C_THR, C_AMB, C_REG, C_TRUTH = (
-    "#2f6f8f", "#1b3b4b", "#e0a040", "#b3261e", "#6a8f3f", "#7a5c99", "#888888")
+    "#2f6f8f",
+    "#1b3b4b",
+    "#e0a040",
+    "#b3261e",
+    "#6a8f3f",
+    "#7a5c99",
+    "#888888",
+)
 
 
 class SeriesLike(Protocol):
@@ -47,10 +56,12 @@ class SeriesLike(Protocol):
 
 def _air_curve(p: dict[str, float], t_last: float, amb_t, amb_y):
     """The ambient over time: the measured series up to its end, its own fit beyond."""
+
     def air(t: np.ndarray) -> np.ndarray:
         t = np.asarray(t, float)
         future = p["air_ambient"] + (p["air_value_now"] - p["air_ambient"]) * np.exp(
-            -p["air_k_per_s"] * np.clip(t - t_last, 0.0, None))
+            -p["air_k_per_s"] * np.clip(t - t_last, 0.0, None)
+        )
         if amb_t is None or len(amb_t) == 0:
             return future
         from thermeta.predictors.cleaning import clean
@@ -59,6 +70,7 @@ def _air_curve(p: dict[str, float], t_last: float, amb_t, amb_y):
         at, ay = cl.t, cl.y
         past = np.interp(t, at, ay)
         return np.where(t <= at[-1], past, future)
+
     return air
 
 
@@ -96,8 +108,9 @@ def _rebuilt_curve(fc: Forecast, t: np.ndarray, series: Any) -> np.ndarray | Non
         return p["ambient"] + p["amplitude"] * np.exp(-p["k_per_s"] * (t - p["t_first"]))
     if "T0" in p and "air_ambient" in p and fc.t_last is not None:
         # dT/dt = -k (T - Ta(t)), stepped exactly on a fine grid from the fitted start T0
-        air = _air_curve(p, fc.t_last, getattr(series, "ambient_t", None),
-                         getattr(series, "ambient_y", None))
+        air = _air_curve(
+            p, fc.t_last, getattr(series, "ambient_t", None), getattr(series, "ambient_y", None)
+        )
         k = p["k_per_s"]
         t0 = p["t_first"]
         grid = np.linspace(t0, max(float(t.max()), t0 + 1.0), 2000)
@@ -126,7 +139,9 @@ def _conduction_curve(fc: Forecast, t: np.ndarray, series: Any) -> np.ndarray | 
             return None
         # T = Ta + (Ti - Ta) theta_centre(a (t - t0), Bi), constant ambient
         fo = np.clip(fc.params["a_per_s"] * (t - fc.params["t0_s"]), 0.0, None)
-        return fc.ambient + (fc.params["Ti"] - fc.ambient) * theta_centre(fo, fc.params["biot"], fc.model)
+        return fc.ambient + (fc.params["Ti"] - fc.ambient) * theta_centre(
+            fo, fc.params["biot"], fc.model
+        )
     # A measured ambient enters through a superposition over its history: refit the same cleaned
     # readings with the conduction model (what the forecast did) to get its curve.
     from thermeta.predictors.cleaning import clean
@@ -166,8 +181,15 @@ def _span_end(fc: Forecast, t_last: float, span_s: float) -> float:
     return t_last + min(ahead, 2 * 86400.0)
 
 
-def forecast_figure(series: SeriesLike, fc: Forecast, *, unit: str = "C", title: str | None = None,
-                    truth: tuple[np.ndarray, np.ndarray] | None = None, convert=None):
+def forecast_figure(
+    series: SeriesLike,
+    fc: Forecast,
+    *,
+    unit: str = "C",
+    title: str | None = None,
+    truth: tuple[np.ndarray, np.ndarray] | None = None,
+    convert=None,
+):
     """A matplotlib Figure (Agg canvas) of the item; ``truth`` = (t, y) draws the true curve
     (simulations only); ``convert`` maps degC values to the display unit (default: none)."""
     import matplotlib.dates as mdates
@@ -192,14 +214,36 @@ def forecast_figure(series: SeriesLike, fc: Forecast, *, unit: str = "C", title:
     amb_t, amb_y = getattr(series, "ambient_t", None), getattr(series, "ambient_y", None)
     if amb_t is not None and amb_y is not None and len(amb_t):
         ao = np.argsort(amb_t)
-        ax.plot(D(np.asarray(amb_t)[ao]), conv(np.asarray(amb_y)[ao]), "-", lw=0.8, color=C_AMB,
-                alpha=0.8, label="ambient (measured)", gid="ambient")
+        ax.plot(
+            D(np.asarray(amb_t)[ao]),
+            conv(np.asarray(amb_y)[ao]),
+            "-",
+            lw=0.8,
+            color=C_AMB,
+            alpha=0.8,
+            label="ambient (measured)",
+            gid="ambient",
+        )
     elif fc.ok and fc.ambient is not None and fc.ambient_mode in ("known", "fitted"):
-        ax.axhline(conv(fc.ambient), color=C_AMB, lw=0.8, ls=(0, (1, 2)),
-                   label=f"ambient ({fc.ambient_mode}) {conv(fc.ambient):.1f} {sign}", gid="ambient")
+        ax.axhline(
+            conv(fc.ambient),
+            color=C_AMB,
+            lw=0.8,
+            ls=(0, (1, 2)),
+            label=f"ambient ({fc.ambient_mode}) {conv(fc.ambient):.1f} {sign}",
+            gid="ambient",
+        )
     if truth is not None:
-        ax.plot(D(truth[0]), conv(np.asarray(truth[1])), ":", lw=1.6, color=C_TRUTH, zorder=5,
-                label="truth (simulated)", gid="truth")
+        ax.plot(
+            D(truth[0]),
+            conv(np.asarray(truth[1])),
+            ":",
+            lw=1.6,
+            color=C_TRUTH,
+            zorder=5,
+            label="truth (simulated)",
+            gid="truth",
+        )
     reg = fc.regime_start if fc.regime_start is not None else t_first
     t_fit = np.linspace(reg, t_last, 200)
     t_fc = np.linspace(t_last, t_end, 300)
@@ -211,25 +255,67 @@ def forecast_figure(series: SeriesLike, fc: Forecast, *, unit: str = "C", title:
         ax.plot(D(t_fc), conv(fc_y), "--", lw=2.0, color=C_FIT, label="forecast", gid="forecast")
         band = _band(fc, t_fc, series)
         if band is not None:
-            ax.fill_between(D(t_fc), conv(band[0]), conv(band[1]), color=C_BAND, alpha=0.35,
-                            lw=0, label="90 % band", gid="band")
-    ax.axhline(conv(fc.threshold), color=C_THR, lw=1.5, ls="-.",
-               label=f"threshold {conv(fc.threshold):g} {sign}", gid="threshold")
+            ax.fill_between(
+                D(t_fc),
+                conv(band[0]),
+                conv(band[1]),
+                color=C_BAND,
+                alpha=0.35,
+                lw=0,
+                label="90 % band",
+                gid="band",
+            )
+    ax.axhline(
+        conv(fc.threshold),
+        color=C_THR,
+        lw=1.5,
+        ls="-.",
+        label=f"threshold {conv(fc.threshold):g} {sign}",
+        gid="threshold",
+    )
     if fc.regime_start is not None and fc.regime_start > t_first:
-        ax.axvline(D(fc.regime_start), color=C_REG, lw=1.0, ls=":",
-                   label=f"regime start {local_clock(fc.regime_start)}", gid="regime-start")
+        ax.axvline(
+            D(fc.regime_start),
+            color=C_REG,
+            lw=1.0,
+            ls=":",
+            label=f"regime start {local_clock(fc.regime_start)}",
+            gid="regime-start",
+        )
     cross = fc.crossing_t
     if cross is not None and fc.eta_s and fc.eta_s > 0:
-        ax.plot([D(cross)], [conv(fc.threshold)], "X", ms=11, color=C_THR, mec="white",
-                label=f"crossing {local_clock(cross)}", gid="crossing")
-        ax.annotate(f"crosses {local_clock(cross)}\nin {human_duration(fc.eta_s)}",
-                    (D(cross), conv(fc.threshold)), textcoords="offset points", xytext=(-10, 10),
-                    ha="right", fontsize=9, color=C_THR)
+        ax.plot(
+            [D(cross)],
+            [conv(fc.threshold)],
+            "X",
+            ms=11,
+            color=C_THR,
+            mec="white",
+            label=f"crossing {local_clock(cross)}",
+            gid="crossing",
+        )
+        ax.annotate(
+            f"crosses {local_clock(cross)}\nin {human_duration(fc.eta_s)}",
+            (D(cross), conv(fc.threshold)),
+            textcoords="offset points",
+            xytext=(-10, 10),
+            ha="right",
+            fontsize=9,
+            color=C_THR,
+        )
         if fc.eta_lo_s is not None:
             hi = t_last + fc.eta_hi_s if fc.eta_hi_s is not None else t_end
-            ax.plot([D(t_last + fc.eta_lo_s), D(hi)], [conv(fc.threshold)] * 2, "-", lw=5,
-                    color=C_THR, alpha=0.35, solid_capstyle="butt", gid="crossing-interval",
-                    label="crossing, 90 % interval")
+            ax.plot(
+                [D(t_last + fc.eta_lo_s), D(hi)],
+                [conv(fc.threshold)] * 2,
+                "-",
+                lw=5,
+                color=C_THR,
+                alpha=0.35,
+                solid_capstyle="butt",
+                gid="crossing-interval",
+                label="crossing, 90 % interval",
+            )
     tz = _local_tz()
     ax.xaxis.set_major_locator(mdates.AutoDateLocator(tz=tz, minticks=4, maxticks=9))
     ax.xaxis.set_major_formatter(mdates.DateFormatter("%H:%M", tz=tz))
@@ -259,8 +345,9 @@ def _robust_ylim(ax, readings: np.ndarray, keep: list) -> None:
     r = r[np.isfinite(r)]
     if r.size >= 7:
         # a reading far from the running median of its neighbours is a spike
-        med = np.median(np.lib.stride_tricks.sliding_window_view(np.pad(r, 3, mode="edge"), 7),
-                        axis=1)
+        med = np.median(
+            np.lib.stride_tricks.sliding_window_view(np.pad(r, 3, mode="edge"), 7), axis=1
+        )
         dev = np.abs(r - med)
         scale = max(1.4826 * float(np.median(dev)), 0.2)
         good = r[dev <= 6 * scale]
@@ -278,8 +365,16 @@ def _robust_ylim(ax, readings: np.ndarray, keep: list) -> None:
     off = int(np.sum((r < lo) | (r > hi)))
     ax.set_ylim(lo, hi)
     if off:
-        ax.text(0.99, 0.02, f"{off} reading{'s' if off > 1 else ''} off the scale (spikes)",
-                transform=ax.transAxes, ha="right", va="bottom", fontsize=8, color="#555555")
+        ax.text(
+            0.99,
+            0.02,
+            f"{off} reading{'s' if off > 1 else ''} off the scale (spikes)",
+            transform=ax.transAxes,
+            ha="right",
+            va="bottom",
+            fontsize=8,
+            color="#555555",
+        )
 
 
 def _band(fc: Forecast, t_fc: np.ndarray, series: Any) -> tuple[np.ndarray, np.ndarray] | None:
@@ -331,15 +426,31 @@ def figure_png(fig) -> bytes:
     return buf.getvalue()
 
 
-def forecast_png(series: SeriesLike, fc: Forecast, *, unit: str = "C", title: str | None = None,
-                 truth=None, convert=None) -> bytes:
+def forecast_png(
+    series: SeriesLike,
+    fc: Forecast,
+    *,
+    unit: str = "C",
+    title: str | None = None,
+    truth=None,
+    convert=None,
+) -> bytes:
     """The picture as PNG bytes (1000 x 560 px), e.g. for an email attachment."""
-    return figure_png(forecast_figure(series, fc, unit=unit, title=title, truth=truth,
-                                      convert=convert))
+    return figure_png(
+        forecast_figure(series, fc, unit=unit, title=title, truth=truth, convert=convert)
+    )
 
 
-def plot_forecast(series: SeriesLike, fc: Forecast, out_path, *, unit: str = "C",
-                  title: str | None = None, truth=None, convert=None) -> None:
+def plot_forecast(
+    series: SeriesLike,
+    fc: Forecast,
+    out_path,
+    *,
+    unit: str = "C",
+    title: str | None = None,
+    truth=None,
+    convert=None,
+) -> None:
     """Write the picture to ``out_path`` (PNG); ``convert`` as in :func:`forecast_figure`."""
     data = forecast_png(series, fc, unit=unit, title=title, truth=truth, convert=convert)
     with open(out_path, "wb") as f:
@@ -386,8 +497,13 @@ def item_forecast(series, cfg, *, limit: str | None = None, prior=None) -> Forec
     from thermeta.daemon.refit import forecast_kwargs
     from thermeta.predictors import forecast
 
-    return forecast(series.t, series.y, cfg.threshold_c, prior=prior,
-                    **forecast_kwargs(cfg, limit, series.ambient_t, series.ambient_y))
+    return forecast(
+        series.t,
+        series.y,
+        cfg.threshold_c,
+        prior=prior,
+        **forecast_kwargs(cfg, limit, series.ambient_t, series.ambient_y),
+    )
 
 
 def _limit_and_prior(store, cfg, measured: bool):
@@ -410,7 +526,9 @@ def _limit_and_prior(store, cfg, measured: bool):
     return limit, prior
 
 
-def item_png(store, cfg, *, history_s: float | None = None, title: str | None = None) -> bytes | None:
+def item_png(
+    store, cfg, *, history_s: float | None = None, title: str | None = None
+) -> bytes | None:
     """PNG bytes of an item's recent readings and a fresh forecast (None without readings)."""
     fig = item_figure(store, cfg, history_s=history_s, title=title)
     return None if fig is None else figure_png(fig)
@@ -424,6 +542,10 @@ def item_figure(store, cfg, *, history_s: float | None = None, title: str | None
         return None
     limit, prior = _limit_and_prior(store, cfg, series.ambient_y is not None)
     fc = item_forecast(series, cfg, limit=limit, prior=prior)
-    return forecast_figure(series, fc, unit=cfg.unit, title=title or cfg.name,
-                           convert=None if cfg.unit == "C" else np.vectorize(
-                               lambda v: from_celsius(v, cfg.unit)))
+    return forecast_figure(
+        series,
+        fc,
+        unit=cfg.unit,
+        title=title or cfg.name,
+        convert=None if cfg.unit == "C" else np.vectorize(lambda v: from_celsius(v, cfg.unit)),
+    )

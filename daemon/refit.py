@@ -37,7 +37,6 @@ from collections.abc import Callable
 from typing import Any
 
 import numpy as np
-
 from thermeta.daemon.clock import Clock
 from thermeta.daemon.config import AMBIENT_SUFFIX, DEFROST_SUFFIX, Config, ItemConfig
 from thermeta.daemon.defrost import defrost_status
@@ -73,14 +72,24 @@ def limit_side(cfg: ItemConfig, first_value_c: float | None) -> str | None:
     return "upper" if first_value_c < cfg.threshold_c else "lower"
 
 
-def forecast_kwargs(cfg: ItemConfig, limit: str | None, ambient_t: np.ndarray | None = None,
-                    ambient_y: np.ndarray | None = None) -> dict[str, Any]:
+def forecast_kwargs(
+    cfg: ItemConfig,
+    limit: str | None,
+    ambient_t: np.ndarray | None = None,
+    ambient_y: np.ndarray | None = None,
+) -> dict[str, Any]:
     """The forecast's arguments for one item, as the refit passes them (the picture of the item
     passes the same, so it shows the forecast the alerts were made from); the prior apart."""
-    kw: dict[str, Any] = {"model": cfg.model, "ambient": cfg.ambient_c, "ambient_t": ambient_t,
-                          "ambient_y": ambient_y, "window_s": cfg.window_s,
-                          "min_points": cfg.min_points, "limit": limit,
-                          "shown": shown_in(cfg.unit)}  # the warnings' temperatures
+    kw: dict[str, Any] = {
+        "model": cfg.model,
+        "ambient": cfg.ambient_c,
+        "ambient_t": ambient_t,
+        "ambient_y": ambient_y,
+        "window_s": cfg.window_s,
+        "min_points": cfg.min_points,
+        "limit": limit,
+        "shown": shown_in(cfg.unit),
+    }  # the warnings' temperatures
     if cfg.ambient is not None and cfg.ambient_sd_c is not None:
         kw["ambient_uncertainty"] = cfg.ambient_sd_c
     return kw
@@ -91,8 +100,9 @@ def uses_prior(cfg: ItemConfig, measured: bool) -> bool:
     return not measured and cfg.model in ("lumped", "auto")
 
 
-def classify(fc: Forecast, now: float, last_ts: float | None, cfg: ItemConfig,
-             limit: str | None) -> str:
+def classify(
+    fc: Forecast, now: float, last_ts: float | None, cfg: ItemConfig, limit: str | None
+) -> str:
     """The item's state from its forecast (see the module docstring for the order)."""
     if last_ts is None or (fc.n_points == 0 and fc.value_now is None):
         return "learning"
@@ -114,8 +124,14 @@ def classify(fc: Forecast, now: float, last_ts: float | None, cfg: ItemConfig,
 
 
 class Refitter:
-    def __init__(self, store: Store, config: Config, clock: Clock, activity: Activity,
-                 publish: Publish | None = None):
+    def __init__(
+        self,
+        store: Store,
+        config: Config,
+        clock: Clock,
+        activity: Activity,
+        publish: Publish | None = None,
+    ):
         self.store = store
         self.config = config
         self.clock = clock
@@ -152,8 +168,12 @@ class Refitter:
             for name, cfg in items.items():
                 prev = self.previous.get(name)
                 due = force or name in dirty or prev is None
-                going_stale = (prev is not None and prev.get("state") != "stale"
-                               and name in last and now - last[name] > cfg.silence_s)
+                going_stale = (
+                    prev is not None
+                    and prev.get("state") != "stale"
+                    and name in last
+                    and now - last[name] > cfg.silence_s
+                )
                 if not (due or going_stale):
                     continue
                 try:
@@ -179,8 +199,12 @@ class Refitter:
         if not pending:
             return
         try:
-            self.store.save_forecasts([(item_id, now, state, body, last_ts)
-                                       for _, _, item_id, state, body, last_ts in pending])
+            self.store.save_forecasts(
+                [
+                    (item_id, now, state, body, last_ts)
+                    for _, _, item_id, state, body, last_ts in pending
+                ]
+            )
         except Exception:  # noqa: BLE001 - published anyway; the next refit stores again
             log.exception("storing %d forecasts failed", len(pending))
         for name, cfg, _, state, body, _ in pending:
@@ -188,8 +212,9 @@ class Refitter:
             done[name] = state
         pending.clear()
 
-    def _refit(self, name: str, cfg: ItemConfig, now: float,
-               last_ts: float | None) -> tuple[int, str, dict[str, Any]]:
+    def _refit(
+        self, name: str, cfg: ItemConfig, now: float, last_ts: float | None
+    ) -> tuple[int, str, dict[str, Any]]:
         """Fit one item; returns (item id, state, forecast body) for storing and publishing."""
         item_id = self.item_ids.get(name) or self.store.item_id(name)
         if item_id is None:
@@ -205,7 +230,9 @@ class Refitter:
             if arows:
                 amb_t = np.array([r[0] for r in arows])
                 amb_y = np.array([r[1] for r in arows])
-        mode = "measured" if amb_y is not None else ("known" if cfg.ambient is not None else "fitted")
+        mode = (
+            "measured" if amb_y is not None else ("known" if cfg.ambient is not None else "fitted")
+        )
         if name not in self.first_values:
             first = self.store.first_reading(item_id)
             if first is not None:
@@ -219,13 +246,19 @@ class Refitter:
             if not fc.ok and len(rows) >= cfg.min_points:
                 self._log_error(name, "no forecast for %s: %s", name, fc.reason)
             if mode != "measured":
-                self._maybe_learn(name, cls, fc, prior, now,
-                                  lambda: self._predict(t, y, cfg.threshold_c, **kw))
+                self._maybe_learn(
+                    name, cls, fc, prior, now, lambda: self._predict(t, y, cfg.threshold_c, **kw)
+                )
         except Exception as exc:  # noqa: BLE001 - a failed fit is a result, not a crash
             self._log_error(name, "fit of %s raised %s: %s", name, exc.__class__.__name__, exc)
-            fc = Forecast(threshold=cfg.threshold_c, model=cfg.model, ambient_mode=mode,
-                          n_points=len(rows), ok=False,
-                          reason=f"fit error: {exc.__class__.__name__}: {exc}"[:300])
+            fc = Forecast(
+                threshold=cfg.threshold_c,
+                model=cfg.model,
+                ambient_mode=mode,
+                n_points=len(rows),
+                ok=False,
+                reason=f"fit error: {exc.__class__.__name__}: {exc}"[:300],
+            )
             if len(rows):
                 fc.t_last, fc.value_now = float(t.max()), float(y[np.argmax(t)])
         state = classify(fc, now, last_ts, cfg, limit)
@@ -257,8 +290,15 @@ class Refitter:
             self.priors[cls] = Prior() if body is None else Prior.from_dict(body)
         return self.priors[cls]
 
-    def _maybe_learn(self, name: str, cls: str, fc: Forecast, prior: Prior | None, now: float,
-                     refit_plain: Callable[[], Forecast]) -> None:
+    def _maybe_learn(
+        self,
+        name: str,
+        cls: str,
+        fc: Forecast,
+        prior: Prior | None,
+        now: float,
+        refit_plain: Callable[[], Forecast],
+    ) -> None:
         """Teach the class this episode's k (and fitted ambient) per the module's rule."""
         if not learnable(fc) or fc.regime_start is None or fc.t_last is None:
             return
@@ -285,8 +325,13 @@ class Refitter:
         self.priors[cls] = Prior.from_dict(body)
         self.learned_until[name] = float(plain.t_last)
         self.lessons += 1
-        log.info("prior %s learned from %s: %d episode(s), time constant about %.3g h", cls, name,
-                 self.priors[cls].n_episodes, 1.0 / (plain.k_per_s or math.inf) / 3600.0)
+        log.info(
+            "prior %s learned from %s: %d episode(s), time constant about %.3g h",
+            cls,
+            name,
+            self.priors[cls].n_episodes,
+            1.0 / (plain.k_per_s or math.inf) / 3600.0,
+        )
 
     def _deliver(self, name: str, cfg: ItemConfig, body: dict[str, Any]) -> None:
         """Publish a stored forecast and hand it to the listeners."""

@@ -18,7 +18,7 @@ import logging
 import os
 import threading
 import time
-from datetime import timezone
+from datetime import UTC
 from typing import Any
 
 from thermeta.daemon.clock import Clock, SystemClock
@@ -43,8 +43,9 @@ class Service:
         self.store = store or Store(config.storage.url)
         self.router = Router(config.items)
         self.activity = Activity()
-        self.refitter = Refitter(self.store, config, self.clock, self.activity,
-                                 publish=self._publish_forecast)
+        self.refitter = Refitter(
+            self.store, config, self.clock, self.activity, publish=self._publish_forecast
+        )
         self.writer = Writer(self.store, self.router, config, self.clock, self._ack, self.activity)
         self.link: MqttLink | None = None
         self.scheduler: Any = None
@@ -86,13 +87,22 @@ class Service:
         self.refitter.load_previous()
         self.writer.start()
         self._attach_plugins()
-        self.link = MqttLink(cfg.broker, self.router.filters(), self.writer.submit, self.clock,
-                             cfg.publish.status_topic, {"pid": os.getpid()})
+        self.link = MqttLink(
+            cfg.broker,
+            self.router.filters(),
+            self.writer.submit,
+            self.clock,
+            cfg.publish.status_topic,
+            {"pid": os.getpid()},
+        )
         self.link.start()
         self._start_scheduler()
         self.started_at = self.clock.now()
-        log.info("watching %d topic filter(s); forecasts on %s/<item>", len(self.router.filters()),
-                 cfg.publish.topic_prefix)
+        log.info(
+            "watching %d topic filter(s); forecasts on %s/<item>",
+            len(self.router.filters()),
+            cfg.publish.topic_prefix,
+        )
 
     def _load_items(self) -> None:
         last = self.store.last_reading_times()
@@ -129,28 +139,47 @@ class Service:
         from apscheduler.schedulers.background import BackgroundScheduler
 
         rate = self.clock.rate
-        sched = BackgroundScheduler(timezone=timezone.utc)
+        sched = BackgroundScheduler(timezone=UTC)
         opts = {"max_instances": 1, "coalesce": True, "misfire_grace_time": None}
         refit_s = self.config.fit.refit_every_s / rate
         from datetime import datetime, timedelta
 
         # The first round comes one interval after start: forecasts from before a restart are
         # still retained and stored, and a restart's backlog drains first.
-        first = datetime.now(timezone.utc) + timedelta(seconds=refit_s)
-        sched.add_job(self.refitter.run_once, "interval", seconds=refit_s, id="refit",
-                      next_run_time=first, **opts)
-        sched.add_job(self._heartbeat, "interval", seconds=HEARTBEAT_S, id="heartbeat",
-                      next_run_time=datetime.now(timezone.utc), **opts)
+        first = datetime.now(UTC) + timedelta(seconds=refit_s)
+        sched.add_job(
+            self.refitter.run_once,
+            "interval",
+            seconds=refit_s,
+            id="refit",
+            next_run_time=first,
+            **opts,
+        )
+        sched.add_job(
+            self._heartbeat,
+            "interval",
+            seconds=HEARTBEAT_S,
+            id="heartbeat",
+            next_run_time=datetime.now(UTC),
+            **opts,
+        )
         if self.config.storage.retention_days > 0:
-            sched.add_job(self.prune, "interval", seconds=RETENTION_EVERY_S / rate, id="retention",
-                          next_run_time=first + timedelta(seconds=5), **opts)
+            sched.add_job(
+                self.prune,
+                "interval",
+                seconds=RETENTION_EVERY_S / rate,
+                id="retention",
+                next_run_time=first + timedelta(seconds=5),
+                **opts,
+            )
 
         def on_event(event) -> None:
             if event.code == EVENT_JOB_ERROR:
                 log.error("scheduled job %s failed: %r", event.job_id, event.exception)
             else:
-                log.warning("scheduled job %s skipped: the previous run is still going",
-                            event.job_id)
+                log.warning(
+                    "scheduled job %s skipped: the previous run is still going", event.job_id
+                )
 
         sched.add_listener(on_event, EVENT_JOB_ERROR | EVENT_JOB_MISSED | EVENT_JOB_MAX_INSTANCES)
         sched.start()
@@ -164,8 +193,11 @@ class Service:
         keep_s = self.config.storage.retention_days * 86400.0
         gone = self.store.prune(self.clock.now() - keep_s)
         if any(gone.values()):
-            log.info("retention removed %(readings)d readings, %(forecasts)d forecasts, "
-                     "%(dead_letters)d dead letters", gone)
+            log.info(
+                "retention removed %(readings)d readings, %(forecasts)d forecasts, "
+                "%(dead_letters)d dead letters",
+                gone,
+            )
 
     def _heartbeat(self, state: str = "running") -> None:
         now_m = time.monotonic()
@@ -173,8 +205,13 @@ class Service:
         dt = now_m - self._rate["t"]
         if dt > 0:
             self._rate.update(per_s=(n - self._rate["n"]) / dt, t=now_m, n=n)
-        body = dict(self.stats, state=state, pid=os.getpid(), heartbeat_at=self.clock.now(),
-                    started_at=self.started_at)
+        body = dict(
+            self.stats,
+            state=state,
+            pid=os.getpid(),
+            heartbeat_at=self.clock.now(),
+            started_at=self.started_at,
+        )
         try:
             self.store.set_meta("daemon", body)
         except Exception:  # noqa: BLE001 - the heartbeat is best effort
@@ -200,8 +237,11 @@ class Service:
             self.link.close()
         self.store.close()
         self.stopped.set()
-        log.info("stopped: %d readings and %d dead letters written this run",
-                 self.writer.counts["readings"], self.writer.counts["dead_letters"])
+        log.info(
+            "stopped: %d readings and %d dead letters written this run",
+            self.writer.counts["readings"],
+            self.writer.counts["dead_letters"],
+        )
 
     # -- internals ----------------------------------------------------------------------------
     def _ack(self, batch) -> None:

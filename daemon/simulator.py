@@ -74,7 +74,7 @@ def messages(scenario: Scenario) -> list[Message]:
         step = max(1, spec.batch if spec.form == "senml" else 1)
         t, y = p.t.tolist(), p.y.tolist()
         for lo in range(0, len(t), step):
-            ts, vs = t[lo:lo + step], y[lo:lo + step]
+            ts, vs = t[lo : lo + step], y[lo : lo + step]
             out.append(Message(max(ts), spec.topic, encode(spec.form, spec.name, ts, vs), len(ts)))
     out.sort(key=lambda m: m.due_t)
     return out
@@ -94,8 +94,17 @@ class Simulator:
     """Publishes a scenario to a broker, paced by ``clock``; :meth:`run` blocks, :meth:`start`
     runs it in a thread, :meth:`stop` ends it early."""
 
-    def __init__(self, scenario: Scenario, host: str, port: int, clock: Clock, *,
-                 client_id: str | None = None, qos: int = 1, connect_timeout_s: float = 10.0):
+    def __init__(
+        self,
+        scenario: Scenario,
+        host: str,
+        port: int,
+        clock: Clock,
+        *,
+        client_id: str | None = None,
+        qos: int = 1,
+        connect_timeout_s: float = 10.0,
+    ):
         if qos not in (0, 1):
             raise ValueError(f"qos must be 0 or 1, got {qos!r}")
         self.scenario = scenario
@@ -110,8 +119,12 @@ class Simulator:
     def _client(self):
         import paho.mqtt.client as mqtt
 
-        c = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=self.client_id,
-                        protocol=mqtt.MQTTv311, clean_session=True)
+        c = mqtt.Client(
+            mqtt.CallbackAPIVersion.VERSION2,
+            client_id=self.client_id,
+            protocol=mqtt.MQTTv311,
+            clean_session=True,
+        )
 
         def on_connect(client, userdata, flags, reason_code, properties):
             if not reason_code.is_failure:
@@ -159,7 +172,7 @@ class Simulator:
                     # pace: let the broker acknowledge the older half before queueing more
                     for old in pending[: MAX_PENDING // 2]:
                         old.wait_for_publish(timeout=10)
-                    pending = pending[MAX_PENDING // 2:]
+                    pending = pending[MAX_PENDING // 2 :]
             for info in pending:
                 if self._stop.is_set():
                     break
@@ -195,9 +208,16 @@ def _toml_str(s: str) -> str:
     return json.dumps(s)  # a JSON string of printable text is a valid TOML basic string
 
 
-def config_text(scenario: Scenario, *, host: str, port: int, storage_url: str,
-                refit_every_s: float = 60.0, client_id: str = "thermeta-demo",
-                mqtt_alerts: bool = True) -> str:
+def config_text(
+    scenario: Scenario,
+    *,
+    host: str,
+    port: int,
+    storage_url: str,
+    refit_every_s: float = 60.0,
+    client_id: str = "thermeta-demo",
+    mqtt_alerts: bool = True,
+) -> str:
     """A thermeta config (TOML) that watches every load probe of ``scenario``."""
     lines = [
         f"# Written by thermeta for the simulated scenario {scenario.name!r} ({scenario.title}).",
@@ -247,19 +267,26 @@ def truth_lines(scenario: Scenario) -> list[str]:
     """What really happens, in words: for people comparing forecasts with the truth."""
     from thermeta.daemon.timefmt import human_duration, local_clock
 
-    out = [f"scenario {scenario.name}: {scenario.title}; starts {local_clock(scenario.t_start, True)}"]
+    out = [
+        f"scenario {scenario.name}: {scenario.title}; starts {local_clock(scenario.t_start, True)}"
+    ]
     for t, text in scenario.events:
         out.append(f"  event at +{human_duration(t - scenario.t_start)}: {text}")
     for p in scenario.loads:
         c = p.crossing_t_true
-        when = ("never crosses" if c is None else
-                f"crosses {p.spec.threshold:g} degC at +{human_duration(c - scenario.t_start)} "
-                f"({local_clock(c)})")
+        when = (
+            "never crosses"
+            if c is None
+            else f"crosses {p.spec.threshold:g} degC at +{human_duration(c - scenario.t_start)} "
+            f"({local_clock(c)})"
+        )
         out.append(f"  {p.name}: {when}")
         if "stage1_met" in p.truth:
             ok1 = "met" if p.truth["stage1_met"] else "MISSED"
             ok2 = "met" if p.truth["stage2_met"] else "MISSED"
-            out.append(f"    cooling schedule: 57->21 degC within 2 h {ok1}; ->5 degC within 6 h {ok2}")
+            out.append(
+                f"    cooling schedule: 57->21 degC within 2 h {ok1}; ->5 degC within 6 h {ok2}"
+            )
     return out
 
 

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import math
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 
 
 def parse_time(text: str) -> float:
@@ -52,5 +52,5 @@ def local_clock(epoch_s: float | None, with_date: bool = False) -> str:
     """A local wall-clock time for people: '14:05' or '2026-12-01 14:05'."""
     if epoch_s is None or not math.isfinite(epoch_s):
         return "-"
-    dt = datetime.fromtimestamp(epoch_s, tz=timezone.utc).astimezone()
+    dt = datetime.fromtimestamp(epoch_s, tz=UTC).astimezone()
     return dt.strftime("%Y-%m-%d %H:%M %Z" if with_date else "%H:%M")

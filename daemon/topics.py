@@ -66,7 +66,7 @@ def render(template: str, topic: str) -> str | None:
         n = int(m.group(1))
         if n > len(levels) or not levels[n - 1]:
             return None
-        out.append(template[pos:m.start()])
+        out.append(template[pos : m.start()])
         out.append(levels[n - 1])
         pos = m.end()
     out.append(template[pos:])
@@ -98,8 +98,11 @@ class Route:
     @property
     def source_topic(self) -> str | None:
         """The configured topic (filter) this route comes from."""
-        return {"load": self.item.topic, "ambient": self.item.ambient_topic,
-                "defrost": self.item.defrost_topic}[self.kind]
+        return {
+            "load": self.item.topic,
+            "ambient": self.item.ambient_topic,
+            "defrost": self.item.defrost_topic,
+        }[self.kind]
 
 
 class Router:
@@ -157,12 +160,15 @@ class Router:
             if concrete is None:
                 load_topic = topic if kind == "load" else render_filter(it.topic, topic)
                 concrete = replace(
-                    it, name=name,
+                    it,
+                    name=name,
                     topic=load_topic,
-                    ambient_topic=(render_filter(it.ambient_topic, topic)
-                                   if it.ambient_topic else None),
-                    defrost_topic=(render_filter(it.defrost_topic, topic)
-                                   if it.defrost_topic else None),
+                    ambient_topic=(
+                        render_filter(it.ambient_topic, topic) if it.ambient_topic else None
+                    ),
+                    defrost_topic=(
+                        render_filter(it.defrost_topic, topic) if it.defrost_topic else None
+                    ),
                 )
                 if kind == "load":
                     self.by_name[name] = concrete

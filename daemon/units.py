@@ -67,5 +67,6 @@ def shown_in(unit: str) -> DisplayUnit:
     from thermeta.predictors.wording import DisplayUnit
 
     # from_celsius is a straight line: x * scale + offset
-    return DisplayUnit(scale=scale_from_celsius(1.0, unit), offset=from_celsius(0.0, unit),
-                       symbol=UNIT_SIGN[unit])
+    return DisplayUnit(
+        scale=scale_from_celsius(1.0, unit), offset=from_celsius(0.0, unit), symbol=UNIT_SIGN[unit]
+    )

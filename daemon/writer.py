@@ -85,8 +85,15 @@ class Activity:
 class Writer(threading.Thread):
     """Consumes :class:`Inbound` messages; call :meth:`submit` from any thread."""
 
-    def __init__(self, store: Store, router: Router, config: Config, clock: Clock, ack: Ack,
-                 activity: Activity):
+    def __init__(
+        self,
+        store: Store,
+        router: Router,
+        config: Config,
+        clock: Clock,
+        ack: Ack,
+        activity: Activity,
+    ):
         super().__init__(name="thermeta-writer", daemon=True)
         self.store = store
         self.router = router
@@ -102,8 +109,13 @@ class Writer(threading.Thread):
         self._limits: dict[str, Limits] = {}
         # topic -> [(route, store name, limits, item id, load item name), ...]
         self._topics: dict[str, list[tuple]] = {}
-        self.counts = {"messages": 0, "readings": 0, "dead_letters": 0, "batches": 0,
-                       "store_errors": 0}
+        self.counts = {
+            "messages": 0,
+            "readings": 0,
+            "dead_letters": 0,
+            "batches": 0,
+            "store_errors": 0,
+        }
         self._dead_since_log = 0
         self._dead_last_log = 0.0
         self._dead_latest = ""
@@ -141,8 +153,9 @@ class Writer(threading.Thread):
                 log.exception("writing a batch of %d failed (attempt %d)", len(batch), attempt + 1)
                 time.sleep(0.5)
         try:
-            self.store.write_batch([], [self._dead(m, None, "internal error while storing")
-                                        for m in batch])
+            self.store.write_batch(
+                [], [self._dead(m, None, "internal error while storing") for m in batch]
+            )
             self.counts["dead_letters"] += len(batch)
             self.ack(batch)
         except Exception:  # noqa: BLE001 - the broker resends them after a reconnect
@@ -187,8 +200,9 @@ class Writer(threading.Thread):
                 break
             except StoreError as exc:
                 self.counts["store_errors"] += 1
-                log.error("store write failed (%s); retrying in %.1f s, nothing acknowledged",
-                          exc, delay)
+                log.error(
+                    "store write failed (%s); retrying in %.1f s, nothing acknowledged", exc, delay
+                )
                 time.sleep(delay)
                 delay = min(delay * 2, 30.0)
         self.counts["batches"] += 1
@@ -219,8 +233,11 @@ class Writer(threading.Thread):
                 except Exception:  # noqa: BLE001 - the message becomes a dead letter
                     log.exception("cannot map topic %r", msg.topic[:200])
                     routes[msg.topic] = []
-        specs = [(r.store_name, r.kind, r.item.unit, r.source_topic)
-                 for rs in routes.values() for r in rs]
+        specs = [
+            (r.store_name, r.kind, r.item.unit, r.source_topic)
+            for rs in routes.values()
+            for r in rs
+        ]
         delay = 0.5
         while True:
             try:
@@ -237,8 +254,15 @@ class Writer(threading.Thread):
                 if route.kind == "load" and name not in self._item_ids:
                     log.info("new item %s on %s", name, topic)
                 self._item_ids[name] = ids[name]
-                hits.append((route, name, self._limits_for(route), ids[name],
-                             name if route.kind == "load" else route.item.name))
+                hits.append(
+                    (
+                        route,
+                        name,
+                        self._limits_for(route),
+                        ids[name],
+                        name if route.kind == "load" else route.item.name,
+                    )
+                )
             if hits and len(self._topics) < 1_000_000:
                 self._topics[topic] = hits
 
@@ -253,15 +277,23 @@ class Writer(threading.Thread):
                 if route.kind == "defrost":
                     parsed = parse_defrost(msg.payload, msg.received_at, limits)
                 else:
-                    parsed = parse_payload(msg.payload, msg.received_at, route.item.unit, limits,
-                                           route.item.senml_name)
+                    parsed = parse_payload(
+                        msg.payload, msg.received_at, route.item.unit, limits, route.item.senml_name
+                    )
             except PayloadError as exc:
                 failed = failed or (name, str(exc))
                 continue
             newest = parsed[0].ts
             for r in parsed:
-                readings.append((item_id, r.ts, r.value_c, FLAG_RECEIPT_TS if r.receipt_ts else 0,
-                                 msg.received_at))
+                readings.append(
+                    (
+                        item_id,
+                        r.ts,
+                        r.value_c,
+                        FLAG_RECEIPT_TS if r.receipt_ts else 0,
+                        msg.received_at,
+                    )
+                )
                 if r.ts > newest:
                     newest = r.ts
             seen.append((load_name, route.item, newest if route.kind == "load" else None))
@@ -273,15 +305,23 @@ class Writer(threading.Thread):
         lim = self._limits.get(key)
         if lim is None:
             lo, hi = route.item.plausible_c
-            lim = Limits(low_c=lo, high_c=hi, max_future_s=self.config.ingest.max_future_s,
-                         max_bytes=self.config.ingest.max_payload_bytes)
+            lim = Limits(
+                low_c=lo,
+                high_c=hi,
+                max_future_s=self.config.ingest.max_future_s,
+                max_bytes=self.config.ingest.max_payload_bytes,
+            )
             self._limits[key] = lim
         return lim
 
     def _dead(self, msg: Inbound, item: str | None, reason: str) -> dict[str, Any]:
-        return {"received_at": msg.received_at, "topic": msg.topic[:1024], "item": item,
-                "reason": reason[:300],
-                "payload": excerpt(msg.payload, self.config.ingest.dead_letter_chars)}
+        return {
+            "received_at": msg.received_at,
+            "topic": msg.topic[:1024],
+            "item": item,
+            "reason": reason[:300],
+            "payload": excerpt(msg.payload, self.config.ingest.dead_letter_chars),
+        }
 
     def _log_dead(self, n: int, latest: dict[str, Any]) -> None:
         # Rate-limited: a flood of bad payloads gives one line per interval, not one per message.
@@ -289,7 +329,10 @@ class Writer(threading.Thread):
         self._dead_latest = f"{latest['topic']}: {latest['reason']}"
         now = time.monotonic()
         if now - self._dead_last_log >= DEAD_LOG_EVERY_S:
-            log.warning("%d payload(s) set aside as dead letters (latest %s)", self._dead_since_log,
-                        self._dead_latest)
+            log.warning(
+                "%d payload(s) set aside as dead letters (latest %s)",
+                self._dead_since_log,
+                self._dead_latest,
+            )
             self._dead_since_log = 0
             self._dead_last_log = now

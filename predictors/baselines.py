@@ -18,7 +18,9 @@ import numpy as np
 from scipy.optimize import OptimizeWarning, curve_fit
 
 
-def linear_eta(t: np.ndarray, y: np.ndarray, threshold: float, window_s: float = 1800.0) -> float | None:
+def linear_eta(
+    t: np.ndarray, y: np.ndarray, threshold: float, window_s: float = 1800.0
+) -> float | None:
     """Straight line through the last ``window_s`` of readings: eta = (thr - T_now) / slope."""
     o = np.argsort(t)
     t, y = np.asarray(t, float)[o], np.asarray(y, float)[o]
@@ -60,8 +62,9 @@ def eta_lumped(T_now: float, k: float, ambient: float, threshold: float) -> floa
     return -math.log(r) / k
 
 
-def crb_eta_sd(t: np.ndarray, T_now: float, k: float, ambient: float, threshold: float,
-               sigma: float) -> float:
+def crb_eta_sd(
+    t: np.ndarray, T_now: float, k: float, ambient: float, threshold: float, sigma: float
+) -> float:
     """Cramer-Rao bound on sd(eta) for T(x) = Ta + (T_now - Ta) e^(-k x), Gaussian noise sigma.
 
     J = (1/sigma^2) sum grad f grad f' over the readings t, parameters (T_now, k, Ta) at their
@@ -70,22 +73,31 @@ def crb_eta_sd(t: np.ndarray, T_now: float, k: float, ambient: float, threshold:
     return _crb(t, T_now, k, ambient, threshold, sigma, fitted=True)
 
 
-def crb_eta_sd_known(t: np.ndarray, T_now: float, k: float, ambient: float, threshold: float,
-                     sigma: float) -> float:
+def crb_eta_sd_known(
+    t: np.ndarray, T_now: float, k: float, ambient: float, threshold: float, sigma: float
+) -> float:
     """The same bound with the ambient known exactly (parameters T_now, k)."""
     return _crb(t, T_now, k, ambient, threshold, sigma, fitted=False)
 
 
-def crb_eta_sd_given(t: np.ndarray, T_now: float, k: float, ambient: float, threshold: float,
-                     sigma: float, ambient_sd: float) -> float:
+def crb_eta_sd_given(
+    t: np.ndarray,
+    T_now: float,
+    k: float,
+    ambient: float,
+    threshold: float,
+    sigma: float,
+    ambient_sd: float,
+) -> float:
     """The bound with the ambient given to within ``ambient_sd`` (1 sd): the three-parameter
     information plus 1 / ambient_sd^2 on the ambient, as a Gaussian prior adds it (a Bayesian
     bound in the sense of Van Trees, with the prior's information taken at its centre)."""
     return _crb(t, T_now, k, ambient, threshold, sigma, fitted=True, ambient_sd=ambient_sd)
 
 
-def _crb(t, T_now, k, ambient, threshold, sigma, fitted: bool,
-         ambient_sd: float | None = None) -> float:
+def _crb(
+    t, T_now, k, ambient, threshold, sigma, fitted: bool, ambient_sd: float | None = None
+) -> float:
     x = np.asarray(t, float) - float(np.max(t))
     e = np.exp(-k * x)
     # df/dT_now = e;  df/dk = -(T_now - Ta) x e;  df/dTa = 1 - e
@@ -117,8 +129,9 @@ def two_reading_k(t1: float, y1: float, t2: float, y2: float, ambient: float) ->
     return k if k > 0 else None
 
 
-def two_reading_eta(t: np.ndarray, y: np.ndarray, ambient: float, threshold: float,
-                    gap_s: float | None = None) -> float | None:
+def two_reading_eta(
+    t: np.ndarray, y: np.ndarray, ambient: float, threshold: float, gap_s: float | None = None
+) -> float | None:
     """Known-ambient two-reading forecast: k from the first and newest readings (or the reading
     ``gap_s`` before the newest), then eta from the newest reading."""
     o = np.argsort(t)
@@ -131,12 +144,13 @@ def two_reading_eta(t: np.ndarray, y: np.ndarray, ambient: float, threshold: flo
     return eta_lumped(y[-1], k, ambient, threshold)
 
 
-def air_load(x: np.ndarray, outside: float, air0: float, k_air: float, load0: float,
-             k_load: float) -> tuple[np.ndarray, np.ndarray]:
+def air_load(
+    x: np.ndarray, outside: float, air0: float, k_air: float, load0: float, k_load: float
+) -> tuple[np.ndarray, np.ndarray]:
     """Air toward the outside, the load toward the air (x from the first reading):
 
-        a(x) = O + (a0 - O) e^(-ka x),  dT/dx = -kl (T - a(x))
-        => T(x) = O + B e^(-ka x) + (T0 - O - B) e^(-kl x),  B = kl (a0 - O) / (kl - ka).
+    a(x) = O + (a0 - O) e^(-ka x),  dT/dx = -kl (T - a(x))
+    => T(x) = O + B e^(-ka x) + (T0 - O - B) e^(-kl x),  B = kl (a0 - O) / (kl - ka).
     """
     air = outside + (air0 - outside) * np.exp(-k_air * x)
     if abs(k_load - k_air) < 1e-9 * max(k_air, k_load):
@@ -146,8 +160,15 @@ def air_load(x: np.ndarray, outside: float, air0: float, k_air: float, load0: fl
     return air, load
 
 
-def crb_eta_sd_air(t_load: np.ndarray, t_air: np.ndarray, theta: dict, threshold: float,
-                   sigma_load: float, sigma_air: float, t0: float) -> float:
+def crb_eta_sd_air(
+    t_load: np.ndarray,
+    t_air: np.ndarray,
+    theta: dict,
+    threshold: float,
+    sigma_load: float,
+    sigma_air: float,
+    t0: float,
+) -> float:
     """Cramer-Rao bound on sd(eta) for the measured-air model, both probes observed with
     Gaussian noise; parameters (O, a0, ka, T0, kl) as in :func:`air_load`, t0 the curves' origin.
 
@@ -171,13 +192,15 @@ def crb_eta_sd_air(t_load: np.ndarray, t_air: np.ndarray, theta: dict, threshold
         fu = air_load(np.concatenate([xa, xl, [cross]]), **dict(zip(keys, up)))
         fd = air_load(np.concatenate([xa, xl, [cross]]), **dict(zip(keys, dn)))
         da, dl = (fu[0] - fd[0]) / (2 * h[i]), (fu[1] - fd[1]) / (2 * h[i])
-        g_obs.append(np.concatenate([da[: xa.size] / sigma_air, dl[xa.size: -1] / sigma_load]))
+        g_obs.append(np.concatenate([da[: xa.size] / sigma_air, dl[xa.size : -1] / sigma_load]))
         g_cross.append(dl[-1])
     G = np.column_stack(g_obs)
     dx = max(cross * 1e-6, 1e-3)
     base = dict(zip(keys, p))
-    slope = (air_load(np.array([cross + dx]), **base)[1][0]
-             - air_load(np.array([cross - dx]), **base)[1][0]) / (2 * dx)
+    slope = (
+        air_load(np.array([cross + dx]), **base)[1][0]
+        - air_load(np.array([cross - dx]), **base)[1][0]
+    ) / (2 * dx)
     if slope == 0:
         return math.inf
     g = -np.asarray(g_cross) / slope
@@ -203,5 +226,11 @@ def _first_crossing(p: np.ndarray, keys, x_last: float, threshold: float) -> flo
         return x_last
     if not hit.size:
         return None
-    return float(brentq(lambda x: air_load(np.array([x]), **kw)[1][0] - threshold,
-                        grid[hit[0]], grid[hit[0] + 1], xtol=1e-6))
+    return float(
+        brentq(
+            lambda x: air_load(np.array([x]), **kw)[1][0] - threshold,
+            grid[hit[0]],
+            grid[hit[0] + 1],
+            xtol=1e-6,
+        )
+    )

@@ -106,8 +106,9 @@ def robust_sd(r: np.ndarray) -> float:
     return float(MAD_TO_SD * np.median(np.abs(r - np.median(r))))
 
 
-def hampel_mask(t: np.ndarray, y: np.ndarray, n_sigma: float = 6.0, half: int = 5,
-                floor: float = 0.0) -> tuple[np.ndarray, float]:
+def hampel_mask(
+    t: np.ndarray, y: np.ndarray, n_sigma: float = 6.0, half: int = 5, floor: float = 0.0
+) -> tuple[np.ndarray, float]:
     """True for readings to keep.  Also returns the robust noise sd of the local residuals."""
     r = local_line_residuals(t, y, half)
     # measured on pure Gaussian noise: these residuals carry 0.99 of the noise sd
@@ -133,8 +134,9 @@ def runs(t: np.ndarray, gap_steps: float = GAP_STEPS, half: int = 5) -> list[sli
     return [slice(a, b) for a, b in zip(edges[:-1], edges[1:])]
 
 
-def gap_hampel_mask(t: np.ndarray, y: np.ndarray, n_sigma: float, floor: float
-                    ) -> tuple[np.ndarray, float]:
+def gap_hampel_mask(
+    t: np.ndarray, y: np.ndarray, n_sigma: float, floor: float
+) -> tuple[np.ndarray, float]:
     """:func:`hampel_mask` within each run between dropouts (:func:`runs`); a run too short to
     judge keeps its readings, for the fitted curve to judge (:func:`residual_outliers`).  The
     noise sd is the one of the longest run judged."""
@@ -160,12 +162,21 @@ def clean(t: np.ndarray, y: np.ndarray, *, n_sigma: float = 6.0) -> Cleaned:
     keep, sd = gap_hampel_mask(t2, y2, n_sigma, floor)
     sd = max(sd, q / np.sqrt(12.0))
     return Cleaned(
-        t=t2[keep], y=y2[keep], n_in=int(t0.size), n_nonfinite=n_nf, n_duplicates=n_dup,
-        n_out_of_order=n_ooo, n_outliers=int((~keep).sum()), noise_sd=float(sd), quantum=q,
+        t=t2[keep],
+        y=y2[keep],
+        n_in=int(t0.size),
+        n_nonfinite=n_nf,
+        n_duplicates=n_dup,
+        n_out_of_order=n_ooo,
+        n_outliers=int((~keep).sum()),
+        noise_sd=float(sd),
+        quantum=q,
     )
 
 
-def residual_outliers(residuals: np.ndarray, n_sigma: float = 4.0, floor: float = 0.0) -> np.ndarray:
+def residual_outliers(
+    residuals: np.ndarray, n_sigma: float = 4.0, floor: float = 0.0
+) -> np.ndarray:
     """True where a residual from the fitted curve is an outlier (robust scale, n_sigma)."""
     r = np.asarray(residuals, float)
     scale = max(robust_sd(r), floor)

@@ -85,8 +85,14 @@ class _Curve:
     """
 
     def __init__(
-        self, geometry: str, mode: str, start_s: float, span_s: float,
-        ambient: float | None, ambient_fn: AmbientFn | None, fit_start: bool,
+        self,
+        geometry: str,
+        mode: str,
+        start_s: float,
+        span_s: float,
+        ambient: float | None,
+        ambient_fn: AmbientFn | None,
+        fit_start: bool,
         prior: tuple[float, float] | None = None,
     ) -> None:
         self.geometry, self.mode, self.start_s, self.span_s = geometry, mode, start_s, span_s
@@ -110,9 +116,7 @@ class _Curve:
     def t0(self, q: Float) -> float:
         return self.start_s + (float(q[2]) * self.span_s if self.fit_start else 0.0)
 
-    def basis(
-        self, q: Float, t_abs: Float, step_s: float | None = None
-    ) -> tuple[Float, Float]:
+    def basis(self, q: Float, t_abs: Float, step_s: float | None = None) -> tuple[Float, Float]:
         """(A, r0) with  T = A @ (linear params) + r0  for nonlinear params q."""
         bi, a = math.exp(q[0]), math.exp(q[1])
         t0 = self.t0(q)
@@ -196,9 +200,16 @@ class ConductionFit:
     def summary(self) -> dict[str, Any]:
         """The fitted figures as plain floats (for logs and Forecast.params)."""
         return {
-            "geometry": self.geometry, "biot": self.biot, "a_per_s": self.a_per_s,
-            "Ti": self.Ti, "Ta": self.Ta, "t0": self.t0_s, "k_per_s": self.k_per_s,
-            "lag_factor_j": self.lag_factor_j, "rmse": self.rmse, "aicc": self.aicc,
+            "geometry": self.geometry,
+            "biot": self.biot,
+            "a_per_s": self.a_per_s,
+            "Ti": self.Ti,
+            "Ta": self.Ta,
+            "t0": self.t0_s,
+            "k_per_s": self.k_per_s,
+            "lag_factor_j": self.lag_factor_j,
+            "rmse": self.rmse,
+            "aicc": self.aicc,
         }
 
     def time_to_threshold(
@@ -220,8 +231,9 @@ class ConductionFit:
         if self.interval_kind == "profile" and math.isfinite(eta) and self._data is not None:
             try:
                 with np.errstate(all="ignore"):
-                    lo, hi = profile_interval(self, *self._data, threshold, t_now, eta,
-                                              *self._bounds)  # type: ignore[misc]
+                    lo, hi = profile_interval(
+                        self, *self._data, threshold, t_now, eta, *self._bounds
+                    )  # type: ignore[misc]
                 lo = None if lo is None else min(lo, eta)
                 hi = None if hi is None else max(hi, eta)
                 return eta, lo, hi
@@ -235,7 +247,8 @@ class ConductionFit:
             try:
                 with np.errstate(all="ignore"):
                     lo, hi = ceta.quantiles_90(
-                        ceta.etas(self._curve, draws, threshold, t_now, self._curve.span_s))
+                        ceta.etas(self._curve, draws, threshold, t_now, self._curve.span_s)
+                    )
             except (ArithmeticError, ValueError, np.linalg.LinAlgError) as exc:
                 # No interval is a result too; the point forecast stands.
                 self.warnings.append(f"no interval for the crossing time: {exc}")
@@ -247,8 +260,7 @@ class ConductionFit:
 
 
 def _failed(geometry: str, mode: str, n: int, reason: str) -> ConductionFit:
-    return ConductionFit(geometry=geometry, ambient_mode=mode, ok=False, reason=reason,
-                         n_points=n)
+    return ConductionFit(geometry=geometry, ambient_mode=mode, ok=False, reason=reason, n_points=n)
 
 
 def _projected(curve: _Curve, q: Float, t: Float, y: Float) -> tuple[Float, Float]:
@@ -266,8 +278,15 @@ def _projected(curve: _Curve, q: Float, t: Float, y: Float) -> tuple[Float, Floa
     else:
         det = ata[0, 0] * ata[1, 1] - ata[0, 1] ** 2
         if det > 1e-10 * ata[0, 0] * ata[1, 1]:
-            coef = np.array([ata[1, 1] * atb[0] - ata[0, 1] * atb[1],
-                             ata[0, 0] * atb[1] - ata[0, 1] * atb[0]]) / det
+            coef = (
+                np.array(
+                    [
+                        ata[1, 1] * atb[0] - ata[0, 1] * atb[1],
+                        ata[0, 0] * atb[1] - ata[0, 1] * atb[0],
+                    ]
+                )
+                / det
+            )
         else:
             coef, *_ = np.linalg.lstsq(a_mat, target, rcond=None)
     return target - a_mat @ coef, coef
@@ -336,24 +355,39 @@ def fit_conduction(
         if ambient_t is None:
             raise ValueError("ambient_y needs ambient_t")
         try:
-            amb_fn, note = make_ambient_fn(np.asarray(ambient_t, float),
-                                           np.asarray(ambient_y, float), ambient_future)
+            amb_fn, note = make_ambient_fn(
+                np.asarray(ambient_t, float), np.asarray(ambient_y, float), ambient_future
+            )
         except ValueError as exc:
             return _failed(geometry, mode, n, str(exc))
-        level = (_steady_ambient(np.asarray(ambient_t, float), np.asarray(ambient_y, float),
-                                 start, float(t[-1])) if hold_steady and ambient_future is None
-                 else None)
+        level = (
+            _steady_ambient(
+                np.asarray(ambient_t, float), np.asarray(ambient_y, float), start, float(t[-1])
+            )
+            if hold_steady and ambient_future is None
+            else None
+        )
         if level is not None:
             # No trend in the air: the constant-ambient model at its mean (the mean's standard
             # error as the sd of a soft prior), instead of a Duhamel sum over its noise and an
             # extrapolated curve whose asymptote wanders with that noise.
-            fit = fit_conduction(t, yy, geometry, ambient=level[0], start_s=start,
-                                 fit_start=fit_start, ambient_sd=level[1], interval=interval,
-                                 min_points=min_points)
+            fit = fit_conduction(
+                t,
+                yy,
+                geometry,
+                ambient=level[0],
+                start_s=start,
+                fit_start=fit_start,
+                ambient_sd=level[1],
+                interval=interval,
+                min_points=min_points,
+            )
             fit.ambient_mode = "measured"
-            fit.ambient_note = (f"the ambient shows no trend; carried forward at its mean "
-                                f"{point(level[0], '.4g')} (standard error "
-                                f"{step(level[1], '.2g')})")
+            fit.ambient_note = (
+                f"the ambient shows no trend; carried forward at its mean "
+                f"{point(level[0], '.4g')} (standard error "
+                f"{step(level[1], '.2g')})"
+            )
             if fit.ok:
                 fit.warnings.append(fit.ambient_note)
             return fit
@@ -369,8 +403,9 @@ def fit_conduction(
     if fit.ok and mode == "known" and ambient_sd > 0.0:
         # Weight the prior row by noise sd / ambient sd (noise sd from the exact-ambient fit).
         w = max(fit.rmse, 1e-9) / ambient_sd
-        curve = _Curve(geometry, "fitted", start, span, None, None, fit_start,
-                       prior=(float(ambient), w))  # type: ignore[arg-type]
+        curve = _Curve(
+            geometry, "fitted", start, span, None, None, fit_start, prior=(float(ambient), w)
+        )  # type: ignore[arg-type]
         soft = _fit_curve(curve, t, yy)
         if soft.ok:
             soft.ambient_mode = "known"
@@ -434,8 +469,15 @@ def _fit_curve_raw(curve: _Curve, t: Float, y: Float) -> ConductionFit:
         scale.append(0.05)
     try:
         q0 = np.clip(_start_grid(curve, t, y), lo, hi)
-        sol = least_squares(lambda q: _projected(curve, q, t, y)[0], q0, bounds=(lo, hi),
-                            x_scale=np.array(scale), method="trf", xtol=1e-10, ftol=1e-10)
+        sol = least_squares(
+            lambda q: _projected(curve, q, t, y)[0],
+            q0,
+            bounds=(lo, hi),
+            x_scale=np.array(scale),
+            method="trf",
+            xtol=1e-10,
+            ftol=1e-10,
+        )
     except (ValueError, np.linalg.LinAlgError, FloatingPointError) as exc:
         return _failed(curve.geometry, curve.mode, n, f"fit failed: {exc}")
     q = sol.x
@@ -443,9 +485,17 @@ def _fit_curve_raw(curve: _Curve, t: Float, y: Float) -> ConductionFit:
     p = np.concatenate([coef, q])
     rss = float(res[:n] @ res[:n])
     n_par = p.size - (1 if curve.prior is not None else 0)
-    fit = ConductionFit(geometry=curve.geometry, ambient_mode=curve.mode, n_points=n,
-                        t_last=float(t[-1]), param_names=curve.names, params=p, rss=rss,
-                        n_params=n_par, _curve=curve)
+    fit = ConductionFit(
+        geometry=curve.geometry,
+        ambient_mode=curve.mode,
+        n_points=n,
+        t_last=float(t[-1]),
+        param_names=curve.names,
+        params=p,
+        rss=rss,
+        n_params=n_par,
+        _curve=curve,
+    )
     fit.aicc = aicc(rss, n, n_par)
     fit.rmse = math.sqrt(rss / n)
     n_lin = len(curve.linear_names)
@@ -464,12 +514,14 @@ def _fit_curve_raw(curve: _Curve, t: Float, y: Float) -> ConductionFit:
     fit.value_at_last = float(curve.full(p, t[-1:])[0])
     fit.cov = _covariance(curve, p, t, rss, n, y)
     fit._data, fit._bounds = (t, y), (lo, hi)
-    fit._draws = (ceta.draw_params(p, fit.cov, N_DRAWS, dof=n - p.size)
-                  if fit.cov is not None else None)
+    fit._draws = (
+        ceta.draw_params(p, fit.cov, N_DRAWS, dof=n - p.size) if fit.cov is not None else None
+    )
     if fit._draws is not None:
         # Keep draws inside the eigen-solver's range (beyond it nothing changes in the curve).
-        fit._draws[:, n_lin] = np.clip(fit._draws[:, n_lin], math.log(1.0001 * BIOT_MIN),
-                                       math.log(0.9999 * BIOT_MAX))
+        fit._draws[:, n_lin] = np.clip(
+            fit._draws[:, n_lin], math.log(1.0001 * BIOT_MIN), math.log(0.9999 * BIOT_MAX)
+        )
         # Heavy-tailed draws of the time scale / start stay within the fit's own bounds.
         for j in range(1, len(lo)):
             fit._draws[:, n_lin + j] = np.clip(fit._draws[:, n_lin + j], lo[j], hi[j])
@@ -483,8 +535,9 @@ def _fit_curve_raw(curve: _Curve, t: Float, y: Float) -> ConductionFit:
     return fit
 
 
-def _covariance(curve: _Curve, p: Float, t: Float, rss: float, n: int,
-                y: Float | None = None) -> Float | None:
+def _covariance(
+    curve: _Curve, p: Float, t: Float, rss: float, n: int, y: Float | None = None
+) -> Float | None:
     """s^2 (J'J)^-1 with J by central differences of the full model (pseudo-inverse if singular)."""
     if n <= p.size:
         return None

@@ -35,7 +35,12 @@ MAX_GRID_STEPS = 4096
 
 
 def ramp_part(
-    t_rel_s: Float, ambient_fn: AmbientFn, t0_s: float, a_per_s: float, zeta: Float, c: Float,
+    t_rel_s: Float,
+    ambient_fn: AmbientFn,
+    t0_s: float,
+    a_per_s: float,
+    zeta: Float,
+    c: Float,
     step_s: float | None = None,
 ) -> Float:
     """R(t) above at times ``t_rel_s`` after t0 (0 before t0); ambient_fn takes absolute times."""
@@ -116,8 +121,9 @@ def steady_level(t_s: Float, y: Float, alpha: float = 0.01) -> tuple[float, floa
         a_mat = np.column_stack([1.0 - e, e])
         coef, *_ = np.linalg.lstsq(a_mat, y, rcond=None)
         rss2 = min(rss2, float(np.sum((y - a_mat @ coef) ** 2)))
-    p_exp = min(1.0, ks.size * float(
-        f_dist.sf((rss0 - rss2) / 2.0 / max(rss2 / (n - 3), 1e-300), 2, n - 3)))
+    p_exp = min(
+        1.0, ks.size * float(f_dist.sf((rss0 - rss2) / 2.0 / max(rss2 / (n - 3), 1e-300), 2, n - 3))
+    )
     if min(p_lin, p_exp) < alpha:
         return None
     return mean, se
@@ -140,12 +146,16 @@ def make_ambient_fn(
     else:
         a_inf, b_now, k = exp_approach_fit(at, ay)
         if k == 0.0:
+
             def fut(t: Float) -> Float:
                 return np.full_like(t, b_now)
+
             how = "ambient held at its recent median beyond its last reading"
         else:
+
             def fut(t: Float) -> Float:
                 return a_inf + (b_now - a_inf) * np.exp(-k * (t - t_end))
+
             how = "ambient extrapolated by its own exponential-approach fit"
 
     def fn(t: Float) -> Float:

@@ -20,9 +20,18 @@ from thermeta.predictors.conduction_eta import etas_constant
 
 
 def crb_eta_sd(
-    t_s: ArrayLike, geometry: str, *, t_i: float, ambient: float, biot: float, a_per_s: float,
-    threshold: float, noise_sd: float, t0_s: float | None = None,
-    ambient_sd: float | None = None, t_now: float | None = None,
+    t_s: ArrayLike,
+    geometry: str,
+    *,
+    t_i: float,
+    ambient: float,
+    biot: float,
+    a_per_s: float,
+    threshold: float,
+    noise_sd: float,
+    t0_s: float | None = None,
+    ambient_sd: float | None = None,
+    t_now: float | None = None,
 ) -> float:
     """Lower bound on the sd (seconds) of an unbiased crossing-time estimate from readings at
     ``t_s``.  ambient_sd: None = the ambient is fitted from the readings alone; 0 = known

@@ -106,8 +106,11 @@ def eta_measured(curve: _Curve, p: Float, threshold: float, t_now: float, span_s
     i = int(hit[0])
     fine = np.linspace(grid[i - 1], grid[i], 33)
     vf = curve.full(p, fine, step) - threshold
-    j = int(np.nonzero((vf >= 0) if rising else (vf <= 0))[0][0]) if np.any(
-        (vf >= 0) if rising else (vf <= 0)) else 32
+    j = (
+        int(np.nonzero((vf >= 0) if rising else (vf <= 0))[0][0])
+        if np.any((vf >= 0) if rising else (vf <= 0))
+        else 32
+    )
     if j == 0:
         return float(fine[0]) - t_now
     # Linear interpolation inside the last fine step.

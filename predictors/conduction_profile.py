@@ -107,8 +107,14 @@ def _constrained_residual(
 
 
 def profile_interval(
-    fit: ConductionFit, t: Float, y: Float, threshold: float, t_now: float, eta_s: float,
-    lo_bounds: list[float], hi_bounds: list[float],
+    fit: ConductionFit,
+    t: Float,
+    y: Float,
+    threshold: float,
+    t_now: float,
+    eta_s: float,
+    lo_bounds: list[float],
+    hi_bounds: list[float],
 ) -> tuple[float | None, float | None]:
     """(lo_s, hi_s) of the 90 % profile-likelihood interval for the crossing, from t_now."""
     curve = fit._curve
@@ -132,8 +138,15 @@ def profile_interval(
             return _constrained_residual(curve, q, t, y, tau, threshold)[0]
 
         q0 = np.clip(state["q"], lo_b, hi_b)
-        sol = least_squares(res, q0, bounds=(lo_b, hi_b), method="trf", xtol=LSQ_TOL, ftol=LSQ_TOL,
-                            max_nfev=MAX_NFEV)
+        sol = least_squares(
+            res,
+            q0,
+            bounds=(lo_b, hi_b),
+            method="trf",
+            xtol=LSQ_TOL,
+            ftol=LSQ_TOL,
+            max_nfev=MAX_NFEV,
+        )
         rss, q_best = float(sol.fun @ sol.fun), sol.x
         d = (max(rss, rss_min) - rss_min) / s2 - cut
         if d > 0:
@@ -141,8 +154,15 @@ def profile_interval(
             # previous trial can stay in a basin (Bi and the time scale trade off along a long
             # valley) that the constrained optimum has left, and the interval then comes out
             # too narrow (seen on early centre probes: 70 % coverage instead of 82 %).
-            sol = least_squares(res, np.clip(q_hat, lo_b, hi_b), bounds=(lo_b, hi_b),
-                                method="trf", xtol=LSQ_TOL, ftol=LSQ_TOL, max_nfev=RETRY_NFEV)
+            sol = least_squares(
+                res,
+                np.clip(q_hat, lo_b, hi_b),
+                bounds=(lo_b, hi_b),
+                method="trf",
+                xtol=LSQ_TOL,
+                ftol=LSQ_TOL,
+                max_nfev=RETRY_NFEV,
+            )
             r2 = float(sol.fun @ sol.fun)
             if r2 < rss:
                 rss, q_best = r2, sol.x
@@ -162,7 +182,7 @@ def profile_interval(
         rows = np.vstack([p_hat + np.diag(h), p_hat - np.diag(h)])
         e = etas(curve, rows, threshold, t_now, curve.span_s)
         if np.all(np.isfinite(e)):
-            grad = (e[: p_hat.size] - e[p_hat.size:]) / (2 * h)
+            grad = (e[: p_hat.size] - e[p_hat.size :]) / (2 * h)
             sd = math.sqrt(max(float(grad @ fit.cov @ grad), 0.0))
             if sd > 0:
                 first = min(first, 0.5 * sd)

@@ -38,7 +38,13 @@ def predict(fc: Forecast, t: ArrayLike) -> np.ndarray:
         return v
     if "air_ambient" in p and fc.t_last is not None:
         x = tt - fc.t_last
-        v = load_after(np.maximum(x, 0.0), p["value_fit_now"], p["k_per_s"], p["air_value_now"],
-                       p["air_ambient"], p["air_k_per_s"])
+        v = load_after(
+            np.maximum(x, 0.0),
+            p["value_fit_now"],
+            p["k_per_s"],
+            p["air_value_now"],
+            p["air_ambient"],
+            p["air_k_per_s"],
+        )
         return np.where(x >= 0, v, np.nan)
     return np.full(tt.shape, np.nan)

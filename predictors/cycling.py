@@ -48,15 +48,16 @@ class CycleTrend:
     eta_hi_s: float | None = None
 
 
-def cycle_means(t: np.ndarray, y: np.ndarray,
-                noise_sd: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def cycle_means(
+    t: np.ndarray, y: np.ndarray, noise_sd: float
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """(mid time, time-weighted mean, peak-to-peak) of each full cycle: from one rising run's start
     to the next (the trapezoid rule, so irregular sampling weighs by time, not by count)."""
     runs = slope_runs(t, y, max(noise_sd, 1e-6))
     starts = [r[0] for r in runs if r[2] > 0]
     mids, means, swings = [], [], []
     for i0, i1 in pairwise(starts):
-        tt, yy = t[i0:i1 + 1], y[i0:i1 + 1]
+        tt, yy = t[i0 : i1 + 1], y[i0 : i1 + 1]
         span = tt[-1] - tt[0]
         if span <= 0 or tt.size < 3:
             continue
@@ -66,8 +67,9 @@ def cycle_means(t: np.ndarray, y: np.ndarray,
     return np.array(mids), np.array(means), np.array(swings)
 
 
-def cycle_trend(t: np.ndarray, y: np.ndarray, thr: float, noise_sd: float,
-                limit: str | None = None) -> CycleTrend:
+def cycle_trend(
+    t: np.ndarray, y: np.ndarray, thr: float, noise_sd: float, limit: str | None = None
+) -> CycleTrend:
     """Drift of the cycle means (a straight line through them, its slope's one-sided t test at
     90 %) and, when it carries the swing's edge toward thr, the crossing time and its interval."""
     mids, means, swings = cycle_means(t, y, noise_sd)

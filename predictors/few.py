@@ -84,8 +84,15 @@ def log_line(d: np.ndarray, y: np.ndarray, ambient: np.ndarray):
     return -slope, u_now, sgn
 
 
-def known_few(t: np.ndarray, y: np.ndarray, thr: float, ambient: float, ambient_sd: float,
-              sigma: float, limit: str | None = None) -> FewFit:
+def known_few(
+    t: np.ndarray,
+    y: np.ndarray,
+    thr: float,
+    ambient: float,
+    ambient_sd: float,
+    sigma: float,
+    limit: str | None = None,
+) -> FewFit:
     """The lumped curve through two or more readings toward a given ambient, with a 90 %
     interval over draws of the readings (sd ``sigma`` each) and the ambient (sd ``ambient_sd``)."""
     d = np.asarray(t, float) - float(t[0])
@@ -126,8 +133,14 @@ def known_few(t: np.ndarray, y: np.ndarray, thr: float, ambient: float, ambient_
     return fit
 
 
-def draw_etas(k: np.ndarray, u_now: np.ndarray, sgn: np.ndarray, ambient: np.ndarray,
-              thr: float, limit: str | None) -> np.ndarray:
+def draw_etas(
+    k: np.ndarray,
+    u_now: np.ndarray,
+    sgn: np.ndarray,
+    ambient: np.ndarray,
+    thr: float,
+    limit: str | None,
+) -> np.ndarray:
     """Crossing time per draw, eta = ln((Ta - T_now) / (Ta - thr)) / k with T_now = Ta - sgn
     e^u_now; 0 where the draw is already beyond the limit, inf where it never crosses (k <= 0,
     the asymptote short of the threshold, the wrong direction for the limit, or a reading
@@ -139,8 +152,7 @@ def draw_etas(k: np.ndarray, u_now: np.ndarray, sgn: np.ndarray, ambient: np.nda
             heads &= sgn > 0
         elif limit == "lower":
             heads &= sgn < 0
-        eta = np.where(heads & (k > 0), np.log((ambient - value_now) / (ambient - thr)) / k,
-                       np.inf)
+        eta = np.where(heads & (k > 0), np.log((ambient - value_now) / (ambient - thr)) / k, np.inf)
     if limit == "upper":
         eta = np.where(value_now >= thr, 0.0, eta)
     elif limit == "lower":

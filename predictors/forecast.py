@@ -26,9 +26,9 @@ from thermeta.predictors.measured import (
     fit_air,
     fit_measured,
     held_air,
-    straight_air,
     measured_rss,
     steady_air,
+    straight_air,
 )
 from thermeta.predictors.prior import Prior
 from thermeta.predictors.regime import (
@@ -127,16 +127,47 @@ def forecast(
     try:
         # overflow in a far-off corner of a grid is expected and handled; keep logs quiet
         with np.errstate(all="ignore"), showing(shown):
-            return _forecast(fc, ta, ya, float(threshold), model, ambient, ambient_t, ambient_y,
-                             window_s, min_points, ambient_bounds, ambient_uncertainty,
-                             detect_regimes, limit, prior, few)
+            return _forecast(
+                fc,
+                ta,
+                ya,
+                float(threshold),
+                model,
+                ambient,
+                ambient_t,
+                ambient_y,
+                window_s,
+                min_points,
+                ambient_bounds,
+                ambient_uncertainty,
+                detect_regimes,
+                limit,
+                prior,
+                few,
+            )
     except (ValueError, FloatingPointError, ArithmeticError, np.linalg.LinAlgError) as exc:
         fc.ok, fc.reason = False, f"fit failed: {exc}"
         return fc
 
 
-def _forecast(fc, t, y, thr, model, ambient, ambient_t, ambient_y, window_s, min_points, bounds,
-              amb_sd, detect, limit, prior=None, few=False) -> Forecast:
+def _forecast(
+    fc,
+    t,
+    y,
+    thr,
+    model,
+    ambient,
+    ambient_t,
+    ambient_y,
+    window_s,
+    min_points,
+    bounds,
+    amb_sd,
+    detect,
+    limit,
+    prior=None,
+    few=False,
+) -> Forecast:
     cl = clean(t, y)
     tt, yy = cl.t, cl.y
     if window_s is not None and tt.size:
@@ -180,44 +211,80 @@ def _forecast(fc, t, y, thr, model, ambient, ambient_t, ambient_y, window_s, min
         if reg.start_index > 0:
             fc.warnings.append(
                 f"the surroundings changed {reg.n_changes} time(s); fitted the newest "
-                f"{tt.size - reg.start_index} readings only")
+                f"{tt.size - reg.start_index} readings only"
+            )
             end = oldest_regime_end(tt, yy, cl.noise_sd, reg, min_points=max(12, min_points))
             if end:
                 before = (tt, yy, end, True)
-            tt, yy = tt[reg.start_index:], yy[reg.start_index:]
+            tt, yy = tt[reg.start_index :], yy[reg.start_index :]
             fc.regime_start = float(tt[0])
         elif not reg.cycling:
             end = _short_door(tt, yy, max(12, min_points))
             if end:
                 before = (tt, yy, end, False)
     if prior is not None and prior.n_episodes and (model in CONDUCTION or air is not None):
-        fc.warnings.append("the learned prior is used by the lumped model with a fitted or "
-                           "given ambient only; not here")
+        fc.warnings.append(
+            "the learned prior is used by the lumped model with a fitted or "
+            "given ambient only; not here"
+        )
     start = _first_reading(t, y, tt, window_s)
     if model in CONDUCTION:
-        return _conduction(fc, tt, yy, thr, model, ambient, air, amb_sd, start_s=start,
-                           min_points=min_points)
+        return _conduction(
+            fc, tt, yy, thr, model, ambient, air, amb_sd, start_s=start, min_points=min_points
+        )
     if model == "auto":
-        return _auto(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, prior,
-                     start_s=start, min_points=min_points)
-    out = _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, detect, min_points,
-                  prior, before)
-    if (few and air is None and not out.ok
-            and (out.reason or "").startswith("too few readings")):
+        return _auto(
+            fc,
+            tt,
+            yy,
+            thr,
+            ambient,
+            air,
+            bounds,
+            amb_sd,
+            cl,
+            limit,
+            prior,
+            start_s=start,
+            min_points=min_points,
+        )
+    out = _lumped(
+        fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, detect, min_points, prior, before
+    )
+    if few and air is None and not out.ok and (out.reason or "").startswith("too few readings"):
         # the robust refit set a reading aside and left fewer than the fit needs
         out.ok, out.reason = True, None
         return _few_readings(out, tt, yy, thr, ambient, amb_sd, limit, cl)
     return out
 
 
-def _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit=None, detect=True,
-            min_points=8, prior=None, before=None) -> Forecast:
+def _lumped(
+    fc,
+    tt,
+    yy,
+    thr,
+    ambient,
+    air,
+    bounds,
+    amb_sd,
+    cl,
+    limit=None,
+    detect=True,
+    min_points=8,
+    prior=None,
+    before=None,
+) -> Forecast:
     fc.model = "lumped" if fc.model != "auto" else fc.model
     fc.lag_factor_j = 1.0
     if air is not None:
         return _measured(fc, tt, yy, thr, air, limit, detect, cl.noise_sd, min_points)
-    kw = {"ambient": ambient, "ambient_sd": amb_sd if ambient is not None else 0.0,
-          "bounds": bounds, "noise_sd": cl.noise_sd, "limit": limit}
+    kw = {
+        "ambient": ambient,
+        "ambient_sd": amb_sd if ambient is not None else 0.0,
+        "bounds": bounds,
+        "noise_sd": cl.noise_sd,
+        "limit": limit,
+    }
     k_prior = prior.k_prior() if prior is not None else None
     a_prior = prior.ambient_prior() if prior is not None and ambient is None else None
     if k_prior is not None:
@@ -231,8 +298,9 @@ def _lumped(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit=None, detec
         kw, fit, tt, yy = carried
     if fit.ok:
         # robust refit: drop what the first fit calls far off (beyond the Hampel pre-filter)
-        out = residual_outliers(fit.residuals, 4.0,
-                                floor=max(cl.quantum, cl.noise_sd, 1e-3 * float(np.ptp(yy))))
+        out = residual_outliers(
+            fit.residuals, 4.0, floor=max(cl.quantum, cl.noise_sd, 1e-3 * float(np.ptp(yy)))
+        )
         if 0 < out.sum() <= max(1, int(0.1 * tt.size)):
             tt, yy = tt[~out], yy[~out]
             fc.n_outliers += int(out.sum())
@@ -257,7 +325,7 @@ def _short_door(tt, yy, min_points: int, margin: int = 2) -> int:
     door = find_door(tt, yy, whole.k_per_s, whole.ambient, whole.rss, min_side=min_points)
     if not door.found:
         return 0
-    pre = fit_lumped(tt[:door.c1], yy[:door.c1], float(yy[-1]), intervals=False)
+    pre = fit_lumped(tt[: door.c1], yy[: door.c1], float(yy[-1]), intervals=False)
     if pre.ok:
         again = find_door(tt, yy, pre.k_per_s, pre.ambient, whole.rss, min_side=min_points)
         if again.found:
@@ -347,8 +415,10 @@ def _carry_before(fc: Forecast, fit: LumpedFit, kw: dict, before, tt, yy, thr):
     toward = kw["ambient"] if kw.get("ambient") is not None else old.ambient
     if _moves_away(t_new, y_new, toward) or not _carry_agrees(old, sd_k, alone, kw):
         if cut:
-            fc.warnings.append("the readings before the change follow another curve (k or "
-                               "ambient differ); they are not used")
+            fc.warnings.append(
+                "the readings before the change follow another curve (k or "
+                "ambient differ); they are not used"
+            )
         return None
     new_kw["k_prior"] = (math.log(old.k_per_s), sd_k)
     joint = fit_lumped(t_new, y_new, thr, **new_kw)
@@ -358,7 +428,8 @@ def _carry_before(fc: Forecast, fit: LumpedFit, kw: dict, before, tt, yy, thr):
     fc.warnings.append(
         f"the surroundings changed and came back: the {old.n} readings before the change agree "
         f"with the newest {t_new.size}, so their time constant (about "
-        f"{1 / old.k_per_s / 3600:.3g} h, as a prior) is carried into the newest fit")
+        f"{1 / old.k_per_s / 3600:.3g} h, as a prior) is carried into the newest fit"
+    )
     fc.regime_start = float(t_new[0])
     return new_kw, joint, t_new, y_new
 
@@ -384,8 +455,12 @@ def _carry_agrees(old: LumpedFit, sd_k: float, alone: LumpedFit, kw: dict) -> bo
     ambient (see _carry_before)."""
     if not alone.ok:
         return False  # too few readings after the located start: the older curve does not go on
-    if not _agrees(math.log(old.k_per_s), sd_k, math.log(alone.k_per_s),
-                   _log_sd(alone.k_lo, alone.k_hi, alone.k_per_s)):
+    if not _agrees(
+        math.log(old.k_per_s),
+        sd_k,
+        math.log(alone.k_per_s),
+        _log_sd(alone.k_lo, alone.k_hi, alone.k_per_s),
+    ):
         return False
     if kw.get("ambient") is None:
         sd_new = _lin_sd(alone)
@@ -395,8 +470,9 @@ def _carry_agrees(old: LumpedFit, sd_k: float, alone: LumpedFit, kw: dict) -> bo
         # a given ambient must hold for both: the older readings followed it, and the newest
         # ones, fitted on their own, do not pull the ambient away from it
         near = CARRY_Z * kw["ambient_sd"]
-        return (abs(old.ambient - kw["ambient"]) <= near
-                and abs(alone.ambient - kw["ambient"]) <= near)
+        return (
+            abs(old.ambient - kw["ambient"]) <= near and abs(alone.ambient - kw["ambient"]) <= near
+        )
     return True
 
 
@@ -407,21 +483,34 @@ def _cycling(fc: Forecast, tt, yy, thr, noise_sd, limit) -> Forecast:
     fc.eta_s, fc.eta_lo_s, fc.eta_hi_s = tr.eta_s, tr.eta_lo_s, tr.eta_hi_s
     fc.direction = "rising" if tr.drift_per_s > 0 else "falling"
     fc.interval_method = "t interval of the drift of the cycle means"
-    fc.params = {"n_cycles": float(tr.n_cycles), "cycle_mean": tr.mean_now,
-                 "half_swing": tr.half_swing, "drift_per_s": tr.drift_per_s,
-                 "drift_se_per_s": tr.drift_se, "n_fit": float(tt.size)}
-    text = (f"the readings cycle (a thermostat?) around {point(tr.mean_now, '.3g')} +- "
-            f"{step(tr.half_swing, '.2g')} over {tr.n_cycles} full cycle(s)")
+    fc.params = {
+        "n_cycles": float(tr.n_cycles),
+        "cycle_mean": tr.mean_now,
+        "half_swing": tr.half_swing,
+        "drift_per_s": tr.drift_per_s,
+        "drift_se_per_s": tr.drift_se,
+        "n_fit": float(tt.size),
+    }
+    text = (
+        f"the readings cycle (a thermostat?) around {point(tr.mean_now, '.3g')} +- "
+        f"{step(tr.half_swing, '.2g')} over {tr.n_cycles} full cycle(s)"
+    )
     if tr.beyond_horizon:
-        fc.warnings.append(text + f"; their mean drifts by {step(tr.drift_per_s * 3600, '+.2g')} "
-                           "per hour toward the threshold, too slowly to forecast a crossing "
-                           "from these readings (it would lie beyond twice their span)")
+        fc.warnings.append(
+            text + f"; their mean drifts by {step(tr.drift_per_s * 3600, '+.2g')} "
+            "per hour toward the threshold, too slowly to forecast a crossing "
+            "from these readings (it would lie beyond twice their span)"
+        )
     elif tr.significant:
-        fc.warnings.append(text + f"; their mean drifts by {step(tr.drift_per_s * 3600, '+.2g')} "
-                           "per hour, so the swing's edge is extrapolated to the threshold")
+        fc.warnings.append(
+            text + f"; their mean drifts by {step(tr.drift_per_s * 3600, '+.2g')} "
+            "per hour, so the swing's edge is extrapolated to the threshold"
+        )
     else:
-        fc.warnings.append(text + "; no drift toward the threshold that the cycles can tell "
-                           "from zero, so no crossing is forecast while they hold")
+        fc.warnings.append(
+            text + "; no drift toward the threshold that the cycles can tell "
+            "from zero, so no crossing is forecast while they hold"
+        )
     return fc
 
 
@@ -440,15 +529,23 @@ def _few_readings(fc: Forecast, tt, yy, thr, ambient, amb_sd, limit, cl) -> Fore
     fc.ambient_lo, fc.ambient_hi = ambient - Z90 * amb_sd, ambient + Z90 * amb_sd
     fc.eta_s, fc.eta_lo_s, fc.eta_hi_s = fit.eta_s, fit.eta_lo_s, fit.eta_hi_s
     fc.direction, fc.rmse = fit.direction, sigma
-    fc.interval_method = ("parametric draws over the assumed reading scatter and the given "
-                          "ambient's uncertainty")
-    fc.params = {"t_first": float(tt[0]), "amplitude": fit.value_start - float(ambient),
-                 "ambient": float(ambient), "k_per_s": fit.k_per_s,
-                 "value_fit_now": fit.value_fit_now, "n_fit": float(tt.size), "n_params": 2.0}
+    fc.interval_method = (
+        "parametric draws over the assumed reading scatter and the given ambient's uncertainty"
+    )
+    fc.params = {
+        "t_first": float(tt[0]),
+        "amplitude": fit.value_start - float(ambient),
+        "ambient": float(ambient),
+        "k_per_s": fit.k_per_s,
+        "value_fit_now": fit.value_fit_now,
+        "n_fit": float(tt.size),
+        "n_params": 2.0,
+    }
     fc.warnings.append(
         f"only {tt.size} readings: the curve toward the given ambient through them, with their "
         f"scatter taken as {step(sigma, '.2g')} (1 sd, not measured) and the ambient as uncertain "
-        f"by {step(amb_sd)}; the interval is wide for that")
+        f"by {step(amb_sd)}; the interval is wide for that"
+    )
     if fc.eta_s is None:
         fc.warnings.append(never_reason(fc))
     return fc
@@ -472,10 +569,17 @@ def _few_trend(fc: Forecast, tt, yy, thr, limit, sigma: float) -> Forecast:
     fc.model, fc.interval_method = "lumped", "one-sided bound of a straight trend's slope"
     fc.direction = "rising" if slope > 0 else "falling"
     fc.rmse = math.sqrt(s2)
-    fc.params = {"slope_per_s": float(slope), "slope_se_per_s": se, "value_fit_now": now,
-                 "n_fit": float(tt.size), "n_params": 2.0}
-    fc.warnings.append(f"only {tt.size} readings: a straight trend, not a curve, and the "
-                       "interval's late end is open (the curve may level off)")
+    fc.params = {
+        "slope_per_s": float(slope),
+        "slope_se_per_s": se,
+        "value_fit_now": now,
+        "n_fit": float(tt.size),
+        "n_params": 2.0,
+    }
+    fc.warnings.append(
+        f"only {tt.size} readings: a straight trend, not a curve, and the "
+        "interval's late end is open (the curve may level off)"
+    )
     toward = 1.0 if (thr > now if limit is None else limit == "upper") else -1.0
     if (thr - now) * toward <= 0:
         fc.eta_s = fc.eta_lo_s = fc.eta_hi_s = 0.0
@@ -493,8 +597,10 @@ def _few_trend(fc: Forecast, tt, yy, thr, limit, sigma: float) -> Forecast:
 def _note_prior(fc: Forecast, prior: Prior, k_prior, a_prior) -> None:
     """Say that a learned prior was used, and when the readings contradict it."""
     tau_h = math.exp(-k_prior[0]) / 3600.0
-    text = (f"a prior learned from {prior.n_episodes} past episode(s) is folded in "
-            f"(time constant about {tau_h:.3g} h")
+    text = (
+        f"a prior learned from {prior.n_episodes} past episode(s) is folded in "
+        f"(time constant about {tau_h:.3g} h"
+    )
     if a_prior is not None:
         text += f", ambient about {point(a_prior[0], '.3g')} +- {step(a_prior[1], '.2g')}"
     fc.warnings.append(text + ")")
@@ -503,7 +609,8 @@ def _note_prior(fc: Forecast, prior: Prior, k_prior, a_prior) -> None:
     if abs(z) > 2.0:
         fc.warnings.append(
             f"the readings disagree with the learned prior (k {math.exp(z * k_prior[1]):.2g} x "
-            "the class's usual); is this a different product or setup?")
+            "the class's usual); is this a different product or setup?"
+        )
 
 
 def _fill_lumped(fc: Forecast, fit: LumpedFit, ambient, amb_sd) -> None:
@@ -513,9 +620,16 @@ def _fill_lumped(fc: Forecast, fit: LumpedFit, ambient, amb_sd) -> None:
     fc.direction = fit.direction
     fc.rmse = fit.sigma
     fc.interval_method = "profile likelihood"
-    fc.params = {"t_first": fit.t_first, "amplitude": fit.amplitude, "ambient": fit.ambient,
-                 "k_per_s": fit.k_per_s, "value_fit_now": fit.value_fit_now, "rss": fit.rss,
-                 "n_fit": float(fit.n), "n_params": float(fit.n_par)}
+    fc.params = {
+        "t_first": fit.t_first,
+        "amplitude": fit.amplitude,
+        "ambient": fit.ambient,
+        "k_per_s": fit.k_per_s,
+        "value_fit_now": fit.value_fit_now,
+        "rss": fit.rss,
+        "n_fit": float(fit.n),
+        "n_params": float(fit.n_par),
+    }
     if fit.bend_kept < 1.0:
         # the point ETA follows the fit's present value and slope with the bend shrunk (lumped)
         fc.params.update(k_ahead_per_s=fit.bend_kept * fit.k_per_s, ahead_from_t=fit.t_last)
@@ -524,33 +638,44 @@ def _fill_lumped(fc: Forecast, fit: LumpedFit, ambient, amb_sd) -> None:
     if ambient is not None and amb_sd > 0:
         fc.warnings.append(
             f"the given ambient {point(ambient)} is taken as uncertain by about {step(amb_sd)} "
-            "(1 sd); the intervals include that")
-    if (fc.ambient_mode == "fitted" and fc.ambient_lo is not None and fc.ambient_hi is not None
-            and fc.ambient_hi - fc.ambient_lo > max(10.0, abs(fc.ambient - fc.value_now))):
-        fc.warnings.append("the ambient is poorly determined by the readings so far; "
-                               "give it (--ambient) or measure it for a firmer forecast")
+            "(1 sd); the intervals include that"
+        )
+    if (
+        fc.ambient_mode == "fitted"
+        and fc.ambient_lo is not None
+        and fc.ambient_hi is not None
+        and fc.ambient_hi - fc.ambient_lo > max(10.0, abs(fc.ambient - fc.value_now))
+    ):
+        fc.warnings.append(
+            "the ambient is poorly determined by the readings so far; "
+            "give it (--ambient) or measure it for a firmer forecast"
+        )
     if fit.trend_now is not None:
         fc.warnings.append(
             "the best fit levels off short of the threshold, but the readings show no "
             "significant bend: the ETA follows their straight trend, which gets there within "
-            "as long again as they have been watched; the interval spans every curve they allow")
+            "as long again as they have been watched; the interval spans every curve they allow"
+        )
     elif fit.straight:
         fc.warnings.append(
             "no significant bend in the readings yet, so the ambient and k are barely known: the "
             "ETA extrapolates the present slope (early if the curve levels off); the interval "
-            "spans every curve the readings allow")
+            "spans every curve the readings allow"
+        )
     elif fit.bend_kept < 0.995:  # shown as a whole percent below 100
         fc.warnings.append(
             f"the bend in the readings is weak: the ETA keeps {100 * fit.bend_kept:.0f} % of the "
             "fitted bend ahead (k and the ambient are poorly known); the interval spans every "
-            "curve the readings allow")
+            "curve the readings allow"
+        )
     if fc.eta_s is None:
         fc.warnings.append(never_reason(fc))
         if fc.eta_lo_s is not None and 0 < fc.eta_lo_s < math.inf:
             fc.params["eta_earliest_s"] = fc.eta_lo_s
             fc.warnings.append(
                 "the readings do not rule a crossing out: the earliest they allow is in "
-                f"{fc.eta_lo_s / 60:.0f} min (the interval's early end; its late end is open)")
+                f"{fc.eta_lo_s / 60:.0f} min (the interval's early end; its late end is open)"
+            )
 
 
 def never_reason(fc: Forecast) -> str:
@@ -558,17 +683,22 @@ def never_reason(fc: Forecast) -> str:
     if fc.value_now is not None and fc.direction is not None:
         away = (fc.direction == "rising") == (fc.value_now > fc.threshold)
         if away:
-            return ("the readings move away from the threshold without having crossed it; "
-                    "give the limit's side (upper/lower) if being beyond it already counts")
+            return (
+                "the readings move away from the threshold without having crossed it; "
+                "give the limit's side (upper/lower) if being beyond it already counts"
+            )
     return "the fitted curve levels off before the threshold"
 
 
-def _measured(fc, tt, yy, thr, air, limit=None, detect=True, noise_sd=0.0,
-              min_points=8) -> Forecast:
+def _measured(
+    fc, tt, yy, thr, air, limit=None, detect=True, noise_sd=0.0, min_points=8
+) -> Forecast:
     at, ay = air.t, air.y
     if at[-1] < tt[-1] - max(600.0, 3 * float(np.median(np.diff(at))) if at.size > 1 else 600.0):
-        fc.warnings.append(f"the ambient's newest reading is {(tt[-1] - at[-1]) / 60:.0f} min "
-                           "older than the item's; the ambient is extrapolated over the gap")
+        fc.warnings.append(
+            f"the ambient's newest reading is {(tt[-1] - at[-1]) / 60:.0f} min "
+            "older than the item's; the ambient is extrapolated over the gap"
+        )
     reg = find_regime(at, ay, air.noise_sd)
     if reg.start_index > 0:
         fc.warnings.append("the ambient changed; its forecast uses the readings since")
@@ -577,7 +707,7 @@ def _measured(fc, tt, yy, thr, air, limit=None, detect=True, noise_sd=0.0,
         a_fit = steady_air(at, ay, n_runs=reg.n_changes + 1)
         fc.warnings.append("the ambient cycles (a thermostat?); its mean is carried forward")
     else:
-        a_fit = fit_air(at[reg.start_index:], ay[reg.start_index:], air.noise_sd)
+        a_fit = fit_air(at[reg.start_index :], ay[reg.start_index :], air.noise_sd)
     spread = None
     few_air = isinstance(a_fit, FewAir)
     if not few_air and a_fit.ok and not air_identified(a_fit):
@@ -585,13 +715,15 @@ def _measured(fc, tt, yy, thr, air, limit=None, detect=True, noise_sd=0.0,
         # at its present level decides whether a crossing is forecast at all; its time is then
         # the median over the fitted trend's doubt, which the interval keeps too
         spread, a_fit = a_fit, held_air(a_fit)
-        fc.warnings.append("the ambient's trend is not clear yet; held at its present level, "
-                           "and a crossing that holds then is forecast at the median of the "
-                           "ambient fit's spread")
+        fc.warnings.append(
+            "the ambient's trend is not clear yet; held at its present level, "
+            "and a crossing that holds then is forecast at the median of the "
+            "ambient fit's spread"
+        )
     fit = fit_measured(tt, yy, at, ay, thr, air_fit=a_fit, limit=limit, air_spread=spread)
     if few_air and not a_fit.straight and fit.ok and fit.eta_s is None:
         # a bend through four noisy air readings cannot rule a crossing out: the straight trend
-        a_fit = straight_air(at[reg.start_index:], ay[reg.start_index:], air.noise_sd)
+        a_fit = straight_air(at[reg.start_index :], ay[reg.start_index :], air.noise_sd)
         fit = fit_measured(tt, yy, at, ay, thr, air_fit=a_fit, limit=limit)
     straight = few_air and a_fit.straight
     if few_air:
@@ -603,25 +735,35 @@ def _measured(fc, tt, yy, thr, air, limit=None, detect=True, noise_sd=0.0,
         # the air explains most changes; what it cannot (a pump started, a lid put on) shows as
         # a misfit of the load against the air: then keep only the readings since
         load_reg = find_regime(
-            tt, yy, noise_sd, min_points=max(12, min_points), n_params=2, fit_sigma=fit.sigma,
+            tt,
+            yy,
+            noise_sd,
+            min_points=max(12, min_points),
+            n_params=2,
+            fit_sigma=fit.sigma,
             rss=lambda i0, i1: measured_rss(tt[i0:i1], yy[i0:i1], at, ay),
-            exact=lambda i0, i1: measured_rss(tt[i0:i1], yy[i0:i1], at, ay, exact=True))
+            exact=lambda i0, i1: measured_rss(tt[i0:i1], yy[i0:i1], at, ay, exact=True),
+        )
         if load_reg.start_index > 0 and not load_reg.cycling:
             fc.warnings.append(
                 f"the load changed against its ambient {load_reg.n_changes} time(s); fitted the "
-                f"newest {tt.size - load_reg.start_index} readings only")
-            tt, yy = tt[load_reg.start_index:], yy[load_reg.start_index:]
+                f"newest {tt.size - load_reg.start_index} readings only"
+            )
+            tt, yy = tt[load_reg.start_index :], yy[load_reg.start_index :]
             fc.regime_start = float(tt[0])
             fit = fit_measured(tt, yy, at, ay, thr, air_fit=a_fit, limit=limit, air_spread=spread)
             if not fit.ok:
                 fc.ok, fc.reason = False, fit.reason
                 return fc
-    out = residual_outliers(fit.residuals, 4.0, floor=max(air.quantum, 1e-3 * float(np.ptp(yy)), 1e-9))
+    out = residual_outliers(
+        fit.residuals, 4.0, floor=max(air.quantum, 1e-3 * float(np.ptp(yy)), 1e-9)
+    )
     # (a refit needs readings to spare: not with fewer than a curve through a measured air needs)
     if 0 < out.sum() <= max(1, int(0.1 * tt.size)) and tt.size - out.sum() >= MIN_POINTS_KNOWN:
         fc.n_outliers += int(out.sum())
-        fit = fit_measured(tt[~out], yy[~out], at, ay, thr, air_fit=a_fit, limit=limit,
-                           air_spread=spread)
+        fit = fit_measured(
+            tt[~out], yy[~out], at, ay, thr, air_fit=a_fit, limit=limit, air_spread=spread
+        )
     fc.k_per_s, fc.k_lo_per_s, fc.k_hi_per_s = fit.k_per_s, fit.k_lo, fit.k_hi
     if a_fit.ok and not straight:
         fc.ambient, fc.ambient_lo, fc.ambient_hi = a_fit.ambient, a_fit.ambient_lo, a_fit.ambient_hi
@@ -631,12 +773,19 @@ def _measured(fc, tt, yy, thr, air, limit=None, detect=True, noise_sd=0.0,
     fc.direction = fit.direction
     fc.rmse = fit.sigma
     fc.interval_method = "parametric draws from the load and ambient fit covariances"
-    fc.params = {"T0": fit.T0, "t_first": float(tt[0]), "k_per_s": fit.k_per_s,
-                 "value_fit_now": fit.value_fit_now, "rss": fit.rss, "n_fit": float(fit.n),
-                 "n_params": 2.0}
+    fc.params = {
+        "T0": fit.T0,
+        "t_first": float(tt[0]),
+        "k_per_s": fit.k_per_s,
+        "value_fit_now": fit.value_fit_now,
+        "rss": fit.rss,
+        "n_fit": float(fit.n),
+        "n_params": 2.0,
+    }
     if a_fit.ok:
-        fc.params.update(air_ambient=a_fit.ambient, air_k_per_s=a_fit.k_per_s,
-                         air_value_now=a_fit.value_fit_now)
+        fc.params.update(
+            air_ambient=a_fit.ambient, air_k_per_s=a_fit.k_per_s, air_value_now=a_fit.value_fit_now
+        )
     if not (reg.cycling and reg.start_index == 0) and spread is None and not few_air:
         fc.warnings.append("ambient measured; its asymptote is fitted from the ambient readings")
     if fc.eta_s is None:
@@ -646,10 +795,14 @@ def _measured(fc, tt, yy, thr, air, limit=None, detect=True, noise_sd=0.0,
 
 def _few_air_note(n_air: int, straight: bool) -> str:
     if straight:
-        return (f"only {n_air} ambient readings: the ambient's straight trend is extrapolated (it "
-                "may level off sooner, so the crossing is early and the interval's late end open)")
-    return (f"only {n_air} ambient readings: the ambient's curve through them is extrapolated, "
-            "their scatter assumed; the interval is wide for that")
+        return (
+            f"only {n_air} ambient readings: the ambient's straight trend is extrapolated (it "
+            "may level off sooner, so the crossing is early and the interval's late end open)"
+        )
+    return (
+        f"only {n_air} ambient readings: the ambient's curve through them is extrapolated, "
+        "their scatter assumed; the interval is wide for that"
+    )
 
 
 def _first_reading(t, y, tt, window_s) -> float | None:
@@ -681,8 +834,9 @@ def _conduction_kwargs(ambient, air, amb_sd, start_s=None, min_points=None) -> d
     return kw
 
 
-def _conduction(fc, tt, yy, thr, shape, ambient, air, amb_sd=0.0, fit=None,
-                start_s=None, min_points=None) -> Forecast:
+def _conduction(
+    fc, tt, yy, thr, shape, ambient, air, amb_sd=0.0, fit=None, start_s=None, min_points=None
+) -> Forecast:
     """A core-probe forecast; ``fit`` is an already fitted curve of that shape (from _auto)."""
     if fit is None:
         try:
@@ -690,9 +844,9 @@ def _conduction(fc, tt, yy, thr, shape, ambient, air, amb_sd=0.0, fit=None,
         except ImportError:
             fc.ok, fc.reason = False, "conduction model not available"
             return fc
-        fit = conduction.fit_conduction(tt, yy, shape,
-                                        **_conduction_kwargs(ambient, air, amb_sd, start_s,
-                                                             min_points))
+        fit = conduction.fit_conduction(
+            tt, yy, shape, **_conduction_kwargs(ambient, air, amb_sd, start_s, min_points)
+        )
     fc.model_fit = fit
     fc.model = shape
     if not fit.ok:
@@ -710,13 +864,21 @@ def _conduction(fc, tt, yy, thr, shape, ambient, air, amb_sd=0.0, fit=None,
     fc.interval_method = fit.interval_method
     now = fit.value_at_last
     fc.direction = "rising" if fit.Ta > now else "falling"
-    fc.params = {"biot": fit.biot, "a_per_s": fit.a_per_s, "Ti": fit.Ti, "t0_s": fit.t0_s,
-                 "aicc": fit.aicc, "rss": fit.rss, "n_fit": float(fit.n_points),
-                 "n_params": float(fit.n_params)}
+    fc.params = {
+        "biot": fit.biot,
+        "a_per_s": fit.a_per_s,
+        "Ti": fit.Ti,
+        "t0_s": fit.t0_s,
+        "aicc": fit.aicc,
+        "rss": fit.rss,
+        "n_fit": float(fit.n_points),
+        "n_params": float(fit.n_params),
+    }
     if ambient is not None and amb_sd > 0:
         fc.warnings.append(
             f"the given ambient {point(ambient)} is taken as uncertain by about {step(amb_sd)} "
-            "(1 sd); the intervals include that")
+            "(1 sd); the intervals include that"
+        )
     return fc
 
 
@@ -730,8 +892,21 @@ def aicc(rss: float, n: int, p: int) -> float:
 AUTO_MARGIN = 2.0  # AICc points a core model must gain over the lumped one (a common rule of thumb)
 
 
-def _auto(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, prior=None,
-          start_s=None, min_points=None) -> Forecast:
+def _auto(
+    fc,
+    tt,
+    yy,
+    thr,
+    ambient,
+    air,
+    bounds,
+    amb_sd,
+    cl,
+    limit,
+    prior=None,
+    start_s=None,
+    min_points=None,
+) -> Forecast:
     """The lumped model, unless the best core-probe shape has a clearly lower AICc.
 
     All three shapes have the same parameters (Ti, [Ta,] Bi, a), so among them the lowest AICc
@@ -743,8 +918,9 @@ def _auto(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, prior=None,
     import copy
 
     base = copy.deepcopy(fc)
-    lumped = _lumped(copy.deepcopy(fc), tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit,
-                     prior=prior)
+    lumped = _lumped(
+        copy.deepcopy(fc), tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, prior=prior
+    )
     lumped.model = "lumped"
     if not lumped.ok or "rss" not in lumped.params:
         return lumped
@@ -754,19 +930,22 @@ def _auto(fc, tt, yy, thr, ambient, air, bounds, amb_sd, cl, limit, prior=None,
         conduction = importlib.import_module("thermeta.predictors.conduction")
     except ImportError:
         return lumped
-    fit, scores = conduction.select_geometry(tt, yy,
-                                             **_conduction_kwargs(ambient, air, amb_sd,
-                                                                  start_s, min_points))
+    fit, scores = conduction.select_geometry(
+        tt, yy, **_conduction_kwargs(ambient, air, amb_sd, start_s, min_points)
+    )
     best = lumped
     if fit.ok and fit.aicc < lumped_ic - AUTO_MARGIN:
-        best = _conduction(copy.deepcopy(base), tt, yy, thr, fit.geometry, ambient, air, amb_sd,
-                           fit=fit)
+        best = _conduction(
+            copy.deepcopy(base), tt, yy, thr, fit.geometry, ambient, air, amb_sd, fit=fit
+        )
         if not best.ok:
             best = lumped
     scores["lumped"] = lumped_ic
     ref = scores[best.model]
-    others = ", ".join(f"{m} {v - ref:+.1f}" for m, v in scores.items()
-                       if m != best.model and math.isfinite(v))
-    best.warnings.append(f"model chosen by AICc: {best.model}" + (f" (others: {others})"
-                                                                  if others else ""))
+    others = ", ".join(
+        f"{m} {v - ref:+.1f}" for m, v in scores.items() if m != best.model and math.isfinite(v)
+    )
+    best.warnings.append(
+        f"model chosen by AICc: {best.model}" + (f" (others: {others})" if others else "")
+    )
     return best

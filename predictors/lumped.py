@@ -102,8 +102,9 @@ def normal_inverse(s: Sums, lam: float):
         return s.See / det, -s.Se / det, (s.n + lam) / det
 
 
-def eta_sets(s: Sums, a: np.ndarray, b: np.ndarray, delta: np.ndarray, thr: float, D: float,
-             lam: float) -> tuple[np.ndarray, np.ndarray]:
+def eta_sets(
+    s: Sums, a: np.ndarray, b: np.ndarray, delta: np.ndarray, thr: float, D: float, lam: float
+) -> tuple[np.ndarray, np.ndarray]:
     """Per k, the crossing times eta >= 0 of curves inside {RSS(k, a, b) <= RSS_k + delta}.
 
     For fixed k the objective is quadratic in (a, b) with Hessian/2 M, so the constrained minimum
@@ -138,8 +139,11 @@ def eta_sets(s: Sums, a: np.ndarray, b: np.ndarray, delta: np.ndarray, thr: floa
         valid = (cl <= cu) & (delta >= 0)
         with np.errstate(divide="ignore", invalid="ignore"):
             # eta = -ln(c)/k - D falls as c grows: the top of the c range is the earliest crossing
-            e_lo = np.where(cu >= cmax, 0.0,
-                            np.where(cu <= 0, np.inf, -np.log(np.maximum(cu, 1e-300)) / s.k - D))
+            e_lo = np.where(
+                cu >= cmax,
+                0.0,
+                np.where(cu <= 0, np.inf, -np.log(np.maximum(cu, 1e-300)) / s.k - D),
+            )
             e_hi = np.where(cl <= 0, np.inf, -np.log(np.maximum(cl, 1e-300)) / s.k - D)
         lo_eta = np.where(valid, np.fmin(lo_eta, e_lo), lo_eta)
         hi_eta = np.where(valid, np.fmax(hi_eta, e_hi), hi_eta)
@@ -210,7 +214,9 @@ class LumpedFit:
 
     def curve(self, t: np.ndarray) -> np.ndarray:
         """T(t) = a + b e^(-k (t - t_first))."""
-        return self.ambient + self.amplitude * np.exp(-self.k_per_s * (np.asarray(t) - self.t_first))
+        return self.ambient + self.amplitude * np.exp(
+            -self.k_per_s * (np.asarray(t) - self.t_first)
+        )
 
 
 def quick_rss(t: np.ndarray, y: np.ndarray, n_grid: int = 40) -> float:
@@ -231,8 +237,14 @@ def quick_rss(t: np.ndarray, y: np.ndarray, n_grid: int = 40) -> float:
     return float(r[i])
 
 
-def crossing_eta(value_now: float, ambient: float, k: float, thr: float,
-                 value_start: float | None = None, limit: str | None = None) -> tuple[float | None, str]:
+def crossing_eta(
+    value_now: float,
+    ambient: float,
+    k: float,
+    thr: float,
+    value_start: float | None = None,
+    limit: str | None = None,
+) -> tuple[float | None, str]:
     """Seconds from now until T(x) = a + (T_now - a) e^(-k x) reaches thr, and the direction.
 
     eta = ln((T_now - a) / (thr - a)) / k when the asymptote a lies beyond thr; otherwise 0 if the
@@ -252,7 +264,12 @@ def crossing_eta(value_now: float, ambient: float, k: float, thr: float,
     if side_now == 0:
         return 0.0, direction
     if side_now * side_inf < 0 and k > 0:
-        if limit == "upper" and direction != "rising" or limit == "lower" and direction != "falling":
+        if (
+            limit == "upper"
+            and direction != "rising"
+            or limit == "lower"
+            and direction != "falling"
+        ):
             return None, direction
         return math.log((value_now - ambient) / (thr - ambient)) / k, direction
     if limit is None and value_start is not None and (value_start - thr) * side_now < 0:
@@ -308,8 +325,9 @@ def fit_lumped(
     k_grid = np.geomspace(KD_MIN, KD_MAX, 56) / D
     if k_prior is not None:
         # early on the prior's k may lie below the data's grid (k D < KD_MIN): cover it too
-        k_grid = np.unique(np.concatenate(
-            [k_grid, np.exp(k_prior[0] + k_prior[1] * np.linspace(-4.0, 4.0, 17))]))
+        k_grid = np.unique(
+            np.concatenate([k_grid, np.exp(k_prior[0] + k_prior[1] * np.linspace(-4.0, 4.0, 17))])
+        )
     pen = KPenalty(k_prior)
 
     def objective(logk: float, lam_: float) -> float:
@@ -324,8 +342,9 @@ def fit_lumped(
         a_, b_ = lk[max(i - 1, 0)], lk[min(i + 1, lk.size - 1)]
         if a_ == b_:
             return float(k_grid[i])
-        res = minimize_scalar(objective, bounds=(a_, b_), args=(lam_,), method="bounded",
-                              options={"xatol": 1e-6})
+        res = minimize_scalar(
+            objective, bounds=(a_, b_), args=(lam_,), method="bounded", options={"xatol": 1e-6}
+        )
         return float(math.exp(res.x)) if res.fun <= rss0[i] else float(k_grid[i])
 
     if (ambient is not None and ambient_sd > 0) or k_prior is not None:
@@ -346,12 +365,29 @@ def fit_lumped(
     fit_y = a_hat + b_hat * np.exp(-k_hat * d)
     dof = max(n + n_prior - n_par, 1)
     fit = LumpedFit(
-        True, k_per_s=k_hat, ambient=a_hat + ybar, amplitude=b_hat, t_first=float(t[0]),
-        t_last=float(t[-1]), value_fit_now=float(fit_y[-1] + ybar), rss=r_hat, dof=dof, n_par=n_par,
-        sigma=math.sqrt(r_hat / dof), residuals=yc - fit_y, n=n, bounds=(lo + ybar, hi + ybar),
+        True,
+        k_per_s=k_hat,
+        ambient=a_hat + ybar,
+        amplitude=b_hat,
+        t_first=float(t[0]),
+        t_last=float(t[-1]),
+        value_fit_now=float(fit_y[-1] + ybar),
+        rss=r_hat,
+        dof=dof,
+        n_par=n_par,
+        sigma=math.sqrt(r_hat / dof),
+        residuals=yc - fit_y,
+        n=n,
+        bounds=(lo + ybar, hi + ybar),
     )
-    fit.eta_s, fit.direction = crossing_eta(fit.value_fit_now, fit.ambient, k_hat, threshold,
-                                            value_start=a_hat + b_hat + ybar, limit=limit)
+    fit.eta_s, fit.direction = crossing_eta(
+        fit.value_fit_now,
+        fit.ambient,
+        k_hat,
+        threshold,
+        value_start=a_hat + b_hat + ybar,
+        limit=limit,
+    )
     # only a forecast crossing is brought forward: a fit that levels off short of the threshold
     # keeps "never" (its interval still says whether a crossing is possible).  A weakly bent
     # level-off looks the same in the readings whether the load levels off short of the
@@ -378,7 +414,9 @@ def fit_lumped(
     return fit
 
 
-TREND_REACH = 1.0  # an unbent trend is taken over a level-off up to this many spans of readings ahead
+TREND_REACH = (
+    1.0  # an unbent trend is taken over a level-off up to this many spans of readings ahead
+)
 
 
 def bend_weight(d: np.ndarray, yc: np.ndarray, rss: float, dof: int) -> float:
@@ -440,8 +478,9 @@ class KPenalty:
             return (self.sigma / sd) ** 2 * (np.log(k) - mu) ** 2
 
 
-def add_intervals(fit: LumpedFit, d, yc, thr, lam, a0, lo, hi, ybar, k_coarse,
-                  pen: KPenalty | None = None) -> None:
+def add_intervals(
+    fit: LumpedFit, d, yc, thr, lam, a0, lo, hi, ybar, k_coarse, pen: KPenalty | None = None
+) -> None:
     """90 % profile-likelihood intervals for k, the ambient and the crossing time.
 
     k: the varpro profile RSS_k on a grid, refined near k_hat.  Ambient and crossing time: the

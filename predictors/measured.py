@@ -48,7 +48,9 @@ def response(k: np.ndarray, s: np.ndarray, A: np.ndarray) -> tuple[np.ndarray, n
     u = A[None, 1:] - A[None, :-1] * E - (m / k) * (1.0 - E)
     x = (s - s[0])[None, :]
     P = np.exp(-k * x)
-    G = np.concatenate([np.zeros((k.shape[0], 1)), P[:, 1:] * np.cumsum(u / P[:, 1:], axis=1)], axis=1)
+    G = np.concatenate(
+        [np.zeros((k.shape[0], 1)), P[:, 1:] * np.cumsum(u / P[:, 1:], axis=1)], axis=1
+    )
     return P, G
 
 
@@ -73,7 +75,9 @@ class MeasuredFit:
     residuals: np.ndarray | None = None
 
 
-def load_after(x: np.ndarray, T_now: float, k: float, air_now: float, out: float, ka: float) -> np.ndarray:
+def load_after(
+    x: np.ndarray, T_now: float, k: float, air_now: float, out: float, ka: float
+) -> np.ndarray:
     """T(x) for x >= 0 seconds after the newest reading, air extrapolated by its own fit."""
     x = np.asarray(x, float)
     if abs(k - ka) < 1e-9 * k:
@@ -82,8 +86,16 @@ def load_after(x: np.ndarray, T_now: float, k: float, air_now: float, out: float
     return out + A * np.exp(-ka * x) + (T_now - out - A) * np.exp(-k * x)
 
 
-def first_crossing(T_now: float, k: float, air_now: float, out: float, ka: float, thr: float,
-                   past: bool, slow: float | None = None) -> float | None:
+def first_crossing(
+    T_now: float,
+    k: float,
+    air_now: float,
+    out: float,
+    ka: float,
+    thr: float,
+    past: bool,
+    slow: float | None = None,
+) -> float | None:
     """Seconds until T(x) first reaches thr (0 if ``past``, None if never); searched up to 60
     ``slow`` (default: the slower of the two time constants)."""
     if past or T_now == thr:
@@ -96,13 +108,27 @@ def first_crossing(T_now: float, k: float, air_now: float, out: float, ka: float
     if hit.size == 0:
         return None
     i = int(hit[0])
-    return float(brentq(lambda z: float(load_after(np.array([z]), T_now, k, air_now, out, ka)[0] - thr),
-                        x[i], x[i + 1], xtol=1e-3))
+    return float(
+        brentq(
+            lambda z: float(load_after(np.array([z]), T_now, k, air_now, out, ka)[0] - thr),
+            x[i],
+            x[i + 1],
+            xtol=1e-3,
+        )
+    )
 
 
-def fit_measured(t: np.ndarray, y: np.ndarray, air_t: np.ndarray, air_y: np.ndarray, threshold: float,
-                 *, air_fit: LumpedFit, limit: str | None = None,
-                 air_spread: LumpedFit | None = None) -> MeasuredFit:
+def fit_measured(
+    t: np.ndarray,
+    y: np.ndarray,
+    air_t: np.ndarray,
+    air_y: np.ndarray,
+    threshold: float,
+    *,
+    air_fit: LumpedFit,
+    limit: str | None = None,
+    air_spread: LumpedFit | None = None,
+) -> MeasuredFit:
     """Fit k and T0 with the measured air; forecast with the air's own fit ``air_fit``."""
     n = t.size
     if n < MIN_LOAD:
@@ -129,9 +155,12 @@ def fit_measured(t: np.ndarray, y: np.ndarray, air_t: np.ndarray, air_y: np.ndar
     r0, _ = rss_k(grid)
     i = int(np.argmin(r0))
     lg = np.log(grid)
-    res = minimize_scalar(lambda v: float(rss_k(np.array([math.exp(v)]))[0][0]),
-                          bounds=(lg[max(i - 1, 0)], lg[min(i + 1, lg.size - 1)]), method="bounded",
-                          options={"xatol": 1e-7})
+    res = minimize_scalar(
+        lambda v: float(rss_k(np.array([math.exp(v)]))[0][0]),
+        bounds=(lg[max(i - 1, 0)], lg[min(i + 1, lg.size - 1)]),
+        method="bounded",
+        options={"xatol": 1e-7},
+    )
     k = float(math.exp(res.x))
     rr, T0s = rss_k(np.array([k]))
     rss, T0 = float(rr[0]), float(T0s[0])
@@ -148,8 +177,17 @@ def fit_measured(t: np.ndarray, y: np.ndarray, air_t: np.ndarray, air_y: np.ndar
     dlogk = ((T0 * P2[0, pos] + G2[0, pos]) - fitted) / hstep
     J = np.column_stack([P[0, pos], dlogk])
     cov = np.linalg.pinv(J.T @ J) * sigma**2
-    fit = MeasuredFit(True, k_per_s=k, T0=T0, value_fit_now=float(fitted[-1]), rss=rss, sigma=sigma,
-                      n=n, air=air_fit, residuals=y - fitted)
+    fit = MeasuredFit(
+        True,
+        k_per_s=k,
+        T0=T0,
+        value_fit_now=float(fitted[-1]),
+        rss=rss,
+        sigma=sigma,
+        n=n,
+        air=air_fit,
+        residuals=y - fitted,
+    )
     se_logk = math.sqrt(max(cov[1, 1], 0.0))
     fit.k_se = k * se_logk
     fit.k_lo, fit.k_hi = k_band(k, se_logk)
@@ -177,8 +215,9 @@ def fit_measured(t: np.ndarray, y: np.ndarray, air_t: np.ndarray, air_y: np.ndar
     slow = 1.0 / max(k_slow, 1e-12)
 
     def eta_of(p: np.ndarray) -> float | None:
-        return first_crossing(p[0], math.exp(p[1]), p[2], p[3], math.exp(p[4]), threshold, past,
-                              slow)
+        return first_crossing(
+            p[0], math.exp(p[1]), p[2], p[3], math.exp(p[4]), threshold, past, slow
+        )
 
     p0 = np.array([fit.value_fit_now, math.log(k), air_now, out, math.log(max(ka, 1e-12))])
     fit.eta_s = eta_of(p0)
@@ -195,15 +234,22 @@ def fit_measured(t: np.ndarray, y: np.ndarray, air_t: np.ndarray, air_y: np.ndar
         fit.eta_lo_s, fit.eta_hi_s = (None, None) if fit.eta_s is None else (0.0, None)
         return fit
     rng = np.random.default_rng(DRAW_SEED)
-    load = rng.multivariate_normal([fit.value_fit_now, math.log(k)], cov_now, N_DRAWS,
-                                   check_valid="ignore", method="eigh")
+    load = rng.multivariate_normal(
+        [fit.value_fit_now, math.log(k)], cov_now, N_DRAWS, check_valid="ignore", method="eigh"
+    )
     ka_s = spread.k_per_s
-    airp = rng.multivariate_normal([spread.ambient, spread.amplitude, math.log(max(ka_s, 1e-15))],
-                                   spread.cov, N_DRAWS, check_valid="ignore", method="eigh")
+    airp = rng.multivariate_normal(
+        [spread.ambient, spread.amplitude, math.log(max(ka_s, 1e-15))],
+        spread.cov,
+        N_DRAWS,
+        check_valid="ignore",
+        method="eigh",
+    )
     a_out, a_amp, a_k = airp[:, 0], airp[:, 1], np.exp(airp[:, 2])
     a_now = a_out + a_amp * np.exp(-a_k * (t_now - spread.t_first))
-    etas = crossings(load[:, 0], np.exp(load[:, 1]), a_now, a_out, a_k, threshold, past,
-                     horizon_s=60.0 * slow)
+    etas = crossings(
+        load[:, 0], np.exp(load[:, 1]), a_now, a_out, a_k, threshold, past, horizon_s=60.0 * slow
+    )
     etas = np.where(np.isnan(etas), np.inf, etas)
     lo_e, hi_e = np.percentile(etas, [5.0, 95.0])
     if air_spread is not None and fit.eta_s is not None:
@@ -232,8 +278,10 @@ def gap_grid(s: np.ndarray, air_t: np.ndarray) -> np.ndarray:
         return s
     steps = np.diff(air_t)
     typical = float(np.median(steps))
-    extra = [np.arange(air_t[i] + typical, air_t[i + 1] - 0.5 * typical, typical)
-             for i in np.flatnonzero(steps > GAP_FACTOR * typical)]
+    extra = [
+        np.arange(air_t[i] + typical, air_t[i + 1] - 0.5 * typical, typical)
+        for i in np.flatnonzero(steps > GAP_FACTOR * typical)
+    ]
     if not extra:
         return s
     fill = np.concatenate(extra)
@@ -273,16 +321,35 @@ def air_identified(fit: LumpedFit) -> bool:
 
 def held_air(fit: LumpedFit) -> LumpedFit:
     """The air held at its present fitted level (for the point forecast)."""
-    held = LumpedFit(True, k_per_s=fit.k_per_s, ambient=fit.value_fit_now,
-                     value_fit_now=fit.value_fit_now, t_first=fit.t_first, t_last=fit.t_last,
-                     amplitude=0.0, sigma=fit.sigma, n=fit.n, ambient_lo=fit.ambient_lo,
-                     ambient_hi=fit.ambient_hi, k_lo=fit.k_lo, k_hi=fit.k_hi)
+    held = LumpedFit(
+        True,
+        k_per_s=fit.k_per_s,
+        ambient=fit.value_fit_now,
+        value_fit_now=fit.value_fit_now,
+        t_first=fit.t_first,
+        t_last=fit.t_last,
+        amplitude=0.0,
+        sigma=fit.sigma,
+        n=fit.n,
+        ambient_lo=fit.ambient_lo,
+        ambient_hi=fit.ambient_hi,
+        k_lo=fit.k_lo,
+        k_hi=fit.k_hi,
+    )
     held.cov = fit.cov
     return held
 
 
-def crossings(T_now: np.ndarray, k: np.ndarray, air_now: np.ndarray, out: np.ndarray,
-              ka: np.ndarray, thr: float, past: bool, horizon_s: float) -> np.ndarray:
+def crossings(
+    T_now: np.ndarray,
+    k: np.ndarray,
+    air_now: np.ndarray,
+    out: np.ndarray,
+    ka: np.ndarray,
+    thr: float,
+    past: bool,
+    horizon_s: float,
+) -> np.ndarray:
     """First crossing time per draw: a vectorised scan of T(x) on a log grid, then a few
     regula-falsi steps inside the bracket; inf where it never crosses within the horizon."""
     if past:
@@ -293,8 +360,12 @@ def crossings(T_now: np.ndarray, k: np.ndarray, air_now: np.ndarray, out: np.nda
 
     def value(x: np.ndarray) -> np.ndarray:  # x broadcasts against (D, 1)
         with np.errstate(over="ignore", invalid="ignore"):
-            return (out[:, None] + A[:, None] * np.exp(-ka[:, None] * x)
-                    + (T_now - out - A)[:, None] * np.exp(-k[:, None] * x) - thr)
+            return (
+                out[:, None]
+                + A[:, None] * np.exp(-ka[:, None] * x)
+                + (T_now - out - A)[:, None] * np.exp(-k[:, None] * x)
+                - thr
+            )
 
     x = np.concatenate([[0.0], np.geomspace(1e-5 * horizon_s, horizon_s, 120)])[None, :]
     g = value(x)
@@ -345,9 +416,21 @@ def straight_air(air_t: np.ndarray, air_y: np.ndarray, noise_sd: float) -> FewAi
     s2 = float(resid @ resid) / dof if dof > 0 else 0.0
     sigma = math.sqrt(max(s2, assumed_scatter(air_y, noise_sd) ** 2))
     ka = STRAIGHT_KD / (1e4 * D)  # straight within 1e-6 over 10^4 spans
-    fit = FewAir(True, k_per_s=ka, ambient=c + slope / ka, amplitude=-slope / ka,
-                 value_fit_now=c + slope * D, t_first=float(air_t[0]), t_last=float(air_t[-1]),
-                 sigma=sigma, n=int(air_y.size), residuals=resid, k_lo=ka, k_hi=ka, straight=True)
+    fit = FewAir(
+        True,
+        k_per_s=ka,
+        ambient=c + slope / ka,
+        amplitude=-slope / ka,
+        value_fit_now=c + slope * D,
+        t_first=float(air_t[0]),
+        t_last=float(air_t[-1]),
+        sigma=sigma,
+        n=int(air_y.size),
+        residuals=resid,
+        k_lo=ka,
+        k_hi=ka,
+        straight=True,
+    )
     cov2 = np.linalg.pinv(X.T @ X) * sigma**2
     J = np.array([[1.0, 1.0 / ka], [0.0, -1.0 / ka], [0.0, 0.0]])
     fit.cov = J @ cov2 @ J.T
@@ -392,9 +475,12 @@ def few_air_curve(air_t: np.ndarray, air_y: np.ndarray, noise_sd: float) -> FewA
     lg = np.log(np.geomspace(KD_MIN, KD_MAX, 96) / D)
     rss = np.array([solve(math.exp(v))[2] for v in lg])
     i = int(np.argmin(rss))
-    res = minimize_scalar(lambda v: solve(math.exp(v))[2], method="bounded",
-                          bounds=(lg[max(i - 1, 0)], lg[min(i + 1, lg.size - 1)]),
-                          options={"xatol": 1e-6})
+    res = minimize_scalar(
+        lambda v: solve(math.exp(v))[2],
+        method="bounded",
+        bounds=(lg[max(i - 1, 0)], lg[min(i + 1, lg.size - 1)]),
+        options={"xatol": 1e-6},
+    )
     k = math.exp(res.x) if res.fun <= rss[i] else math.exp(lg[i])
     a, b, r = solve(k)
     dof = air_y.size - 3
@@ -403,11 +489,25 @@ def few_air_curve(air_t: np.ndarray, air_y: np.ndarray, noise_sd: float) -> FewA
     J = np.column_stack([np.ones_like(d), e, -b * k * d * e])
     cov = np.linalg.pinv(J.T @ J) * sigma**2
     sd_a, sd_lk = math.sqrt(max(cov[0, 0], 0.0)), math.sqrt(max(cov[2, 2], 0.0))
-    fit = FewAir(True, k_per_s=k, ambient=a, amplitude=b, value_fit_now=a + b * float(e[-1]),
-                 t_first=float(air_t[0]), t_last=float(air_t[-1]), rss=r, dof=max(dof, 1),
-                 sigma=sigma, n=int(air_y.size), residuals=air_y - a - b * e,
-                 ambient_lo=a - Z90 * sd_a, ambient_hi=a + Z90 * sd_a,
-                 k_lo=k_band(k, sd_lk)[0], k_hi=k_band(k, sd_lk)[1], bounds=bounds)
+    fit = FewAir(
+        True,
+        k_per_s=k,
+        ambient=a,
+        amplitude=b,
+        value_fit_now=a + b * float(e[-1]),
+        t_first=float(air_t[0]),
+        t_last=float(air_t[-1]),
+        rss=r,
+        dof=max(dof, 1),
+        sigma=sigma,
+        n=int(air_y.size),
+        residuals=air_y - a - b * e,
+        ambient_lo=a - Z90 * sd_a,
+        ambient_hi=a + Z90 * sd_a,
+        k_lo=k_band(k, sd_lk)[0],
+        k_hi=k_band(k, sd_lk)[1],
+        bounds=bounds,
+    )
     fit.cov = cov
     return fit
 
@@ -442,15 +542,34 @@ def steady_air(air_t: np.ndarray, air_y: np.ndarray, n_runs: int) -> LumpedFit:
     se = sd / math.sqrt(max(n_runs / 2.0, 1.0))
     D = float(air_t[-1] - air_t[0]) if air_t.size > 1 else 1.0
     k = 1.0 / max(D, 1.0)
-    fit = LumpedFit(True, k_per_s=k, ambient=mean, value_fit_now=mean, t_first=float(air_t[0]),
-                    t_last=float(air_t[-1]), amplitude=0.0, sigma=sd, n=int(air_y.size),
-                    ambient_lo=mean - Z90 * se, ambient_hi=mean + Z90 * se, k_lo=k, k_hi=k)
+    fit = LumpedFit(
+        True,
+        k_per_s=k,
+        ambient=mean,
+        value_fit_now=mean,
+        t_first=float(air_t[0]),
+        t_last=float(air_t[-1]),
+        amplitude=0.0,
+        sigma=sd,
+        n=int(air_y.size),
+        ambient_lo=mean - Z90 * se,
+        ambient_hi=mean + Z90 * se,
+        k_lo=k,
+        k_hi=k,
+    )
     fit.cov = np.diag([se * se, 0.0, 0.0])
     return fit
 
 
-def measured_rss(t: np.ndarray, y: np.ndarray, air_t: np.ndarray, air_y: np.ndarray, *,
-                 exact: bool = False, n_grid: int = 24) -> float:
+def measured_rss(
+    t: np.ndarray,
+    y: np.ndarray,
+    air_t: np.ndarray,
+    air_y: np.ndarray,
+    *,
+    exact: bool = False,
+    n_grid: int = 24,
+) -> float:
     """Minimum RSS of the measured-ambient model on readings (t, y): a k grid with a parabola
     in log k (quick), or that refined by a bounded 1-D search (exact).  For regime searches."""
     if t.size < 4 or t[-1] <= t[0]:
@@ -471,9 +590,12 @@ def measured_rss(t: np.ndarray, y: np.ndarray, air_t: np.ndarray, air_y: np.ndar
     r = rss_k(np.exp(lg))
     i = int(np.argmin(r))
     if exact:
-        res = minimize_scalar(lambda v: float(rss_k(np.array([math.exp(v)]))[0]),
-                              bounds=(lg[max(i - 1, 0)], lg[min(i + 1, n_grid - 1)]),
-                              method="bounded", options={"xatol": 1e-6})
+        res = minimize_scalar(
+            lambda v: float(rss_k(np.array([math.exp(v)]))[0]),
+            bounds=(lg[max(i - 1, 0)], lg[min(i + 1, n_grid - 1)]),
+            method="bounded",
+            options={"xatol": 1e-6},
+        )
         return float(min(res.fun, r[i]))
     if 0 < i < n_grid - 1:
         den = r[i - 1] - 2 * r[i] + r[i + 1]

@@ -56,8 +56,9 @@ class Prior:
 
     @property
     def ambient_sd_c(self) -> float:
-        return _shrunk_sd(self.n_ambient, self.ambient_var_c2, SD_AMBIENT_DEFAULT_C,
-                          SD_AMBIENT_FLOOR_C)
+        return _shrunk_sd(
+            self.n_ambient, self.ambient_var_c2, SD_AMBIENT_DEFAULT_C, SD_AMBIENT_FLOOR_C
+        )
 
     @property
     def k_per_s(self) -> float | None:
@@ -76,13 +77,18 @@ class Prior:
         """A new prior with one more episode (k > 0; the ambient where the fit gave one)."""
         if not (k_per_s > 0 and math.isfinite(k_per_s)):
             raise ValueError(f"k_per_s must be a positive finite number, got {k_per_s!r}")
-        n, mu, var = _update(self.n_episodes, self.logk_mean, self.logk_var, self.logk_sd,
-                             math.log(k_per_s))
+        n, mu, var = _update(
+            self.n_episodes, self.logk_mean, self.logk_var, self.logk_sd, math.log(k_per_s)
+        )
         out = Prior(n, mu, var, self.n_ambient, self.ambient_mean_c, self.ambient_var_c2)
         if ambient_c is not None and math.isfinite(ambient_c):
             out.n_ambient, out.ambient_mean_c, out.ambient_var_c2 = _update(
-                self.n_ambient, self.ambient_mean_c, self.ambient_var_c2, self.ambient_sd_c,
-                float(ambient_c))
+                self.n_ambient,
+                self.ambient_mean_c,
+                self.ambient_var_c2,
+                self.ambient_sd_c,
+                float(ambient_c),
+            )
         return out
 
     def to_dict(self) -> dict[str, Any]:

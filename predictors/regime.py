@@ -48,7 +48,9 @@ def _exact_rss(t: np.ndarray, y: np.ndarray) -> float:
     return f.rss if f.ok else math.inf
 
 
-def slope_runs(t: np.ndarray, y: np.ndarray, noise_sd: float, half: int = 8) -> list[tuple[int, int, int]]:
+def slope_runs(
+    t: np.ndarray, y: np.ndarray, noise_sd: float, half: int = 8
+) -> list[tuple[int, int, int]]:
     """Monotone runs (start, end, sign) of the local slope, with signs only where the slope is
     clearly non-zero (|slope| > 3 se of a local straight line)."""
     n = t.size
@@ -72,9 +74,18 @@ def slope_runs(t: np.ndarray, y: np.ndarray, noise_sd: float, half: int = 8) -> 
     return runs
 
 
-def find_regime(t: np.ndarray, y: np.ndarray, noise_sd: float, *, min_points: int = MIN_REGIME_POINTS,
-                max_changes: int = 4, rss: RssFn | None = None, exact: RssFn | None = None,
-                fit_sigma: float | None = None, n_params: int = 3) -> Regime:
+def find_regime(
+    t: np.ndarray,
+    y: np.ndarray,
+    noise_sd: float,
+    *,
+    min_points: int = MIN_REGIME_POINTS,
+    max_changes: int = 4,
+    rss: RssFn | None = None,
+    exact: RssFn | None = None,
+    fit_sigma: float | None = None,
+    n_params: int = 3,
+) -> Regime:
     """Index where the current regime starts (0 = the whole window).
 
     rss / exact: RSS of the model on a slice (i0, i1) of the readings, a quick one to rank the
@@ -101,9 +112,18 @@ def find_regime(t: np.ndarray, y: np.ndarray, noise_sd: float, *, min_points: in
         same = [r for r in runs[:-1] if r[2] == last[2]]
         dur = lambda r: t[r[1]] - t[r[0]]
         if not same or dur(last) <= 2.0 * max(dur(r) for r in same) or last[1] < n - 3:
-            return Regime(0, len(runs) - 1, True, "the readings cycle (a thermostat?); fitted the whole window")
-        return Regime(max(runs[-2][1], 0), len(runs) - 1, True,
-                      "the readings stopped cycling; fitted the newest run only")
+            return Regime(
+                0,
+                len(runs) - 1,
+                True,
+                "the readings cycle (a thermostat?); fitted the whole window",
+            )
+        return Regime(
+            max(runs[-2][1], 0),
+            len(runs) - 1,
+            True,
+            "the readings stopped cycling; fitted the newest run only",
+        )
     start, changes, cuts = 0, 0, []
     while changes < max_changes and n - start >= 2 * min_points:
         m = n - start
@@ -111,8 +131,9 @@ def find_regime(t: np.ndarray, y: np.ndarray, noise_sd: float, *, min_points: in
         scores = np.array([rss(start, j) + rss(j, n) for j in cands])
         i = int(np.argmin(scores))
         # refine between the neighbouring candidates
-        fine = np.unique(np.linspace(cands[max(i - 1, 0)], cands[min(i + 1, cands.size - 1)],
-                                     9).astype(int))
+        fine = np.unique(
+            np.linspace(cands[max(i - 1, 0)], cands[min(i + 1, cands.size - 1)], 9).astype(int)
+        )
         fine = fine[(fine >= start + min_points) & (fine <= n - min_points)]
         j_best, best = int(cands[i]), float(scores[i])
         if fine.size:
@@ -132,8 +153,15 @@ def find_regime(t: np.ndarray, y: np.ndarray, noise_sd: float, *, min_points: in
     return Regime(start, changes, False, changes=cuts)
 
 
-def oldest_regime_end(t: np.ndarray, y: np.ndarray, noise_sd: float, reg: Regime, *,
-                      min_points: int = MIN_REGIME_POINTS, margin: int = 2) -> int:
+def oldest_regime_end(
+    t: np.ndarray,
+    y: np.ndarray,
+    noise_sd: float,
+    reg: Regime,
+    *,
+    min_points: int = MIN_REGIME_POINTS,
+    margin: int = 2,
+) -> int:
     """End index (exclusive) of the readings before the first change, or 0 if too few.
 
     The first cut may fall anywhere inside a short disturbance (a door open a few minutes holds
@@ -155,8 +183,15 @@ def oldest_regime_end(t: np.ndarray, y: np.ndarray, noise_sd: float, reg: Regime
     return end if end >= min_points else 0
 
 
-def split_disturbance(t: np.ndarray, y: np.ndarray, before: Callable[[np.ndarray], np.ndarray],
-                      k: float, ambient: float, i0: int, min_tail: int = 4) -> tuple[int, int]:
+def split_disturbance(
+    t: np.ndarray,
+    y: np.ndarray,
+    before: Callable[[np.ndarray], np.ndarray],
+    k: float,
+    ambient: float,
+    i0: int,
+    min_tail: int = 4,
+) -> tuple[int, int]:
     """Where a disturbance that began after reading i0 starts (c1) and where the newest regime
     starts (j), when the load keeps its k and ambient across it (a door opened, closed again).
 
@@ -177,8 +212,9 @@ def split_disturbance(t: np.ndarray, y: np.ndarray, before: Callable[[np.ndarray
     r_old = _cum(old_r * old_r)  # r_old[c] = RSS of the older curve on [0, c)
     r_tail = _one_level_suffix(yy - ambient, e)
     door = _two_level_rss(yy, e)
-    cb, jb, _ = _best_pair(lambda c, j: r_old[c] + door(c, j) + r_tail[j], 0, m - min_tail,
-                           m - min_tail)
+    cb, jb, _ = _best_pair(
+        lambda c, j: r_old[c] + door(c, j) + r_tail[j], 0, m - min_tail, m - min_tail
+    )
     if n - (i0 + jb) < min_tail:
         return i0, i0
     return i0 + cb, i0 + jb
@@ -204,8 +240,7 @@ def _two_level_rss(yy: np.ndarray, e: np.ndarray) -> Callable[[np.ndarray, np.nd
     """RSS of y = p + q e (both free) on slices [c, j), by prefix sums: a function of index
     arrays c (column) and j (row) giving the matrix; zero where two readings or fewer (an exact
     fit)."""
-    S1, Se, Se2, Sy, Sye, Syy = (_cum(v) for v in (np.ones(yy.size), e, e * e, yy, yy * e,
-                                                   yy * yy))
+    S1, Se, Se2, Sy, Sye, Syy = (_cum(v) for v in (np.ones(yy.size), e, e * e, yy, yy * e, yy * yy))
 
     def rss(c: np.ndarray, j: np.ndarray) -> np.ndarray:
         n_ = S1[j] - S1[c]
@@ -216,8 +251,9 @@ def _two_level_rss(yy: np.ndarray, e: np.ndarray) -> Callable[[np.ndarray, np.nd
             p = (se2 * sy - se * sye) / det
             q = (n_ * sye - se * sy) / det
             r = syy - p * sy - q * sye
-        return np.where((n_ >= 3) & (det > 1e-12 * np.maximum(n_ * se2, 1e-300)),
-                        np.maximum(r, 0.0), 0.0)
+        return np.where(
+            (n_ >= 3) & (det > 1e-12 * np.maximum(n_ * se2, 1e-300)), np.maximum(r, 0.0), 0.0
+        )
 
     return rss
 
@@ -225,8 +261,9 @@ def _two_level_rss(yy: np.ndarray, e: np.ndarray) -> Callable[[np.ndarray, np.nd
 PAIR_GRID = 120  # candidates per side in the coarse pass: memory and time stay O(PAIR_GRID^2)
 
 
-def _best_pair(total: Callable[[np.ndarray, np.ndarray], np.ndarray], c_lo: int, c_hi: int,
-               j_hi: int) -> tuple[int, int, float]:
+def _best_pair(
+    total: Callable[[np.ndarray, np.ndarray], np.ndarray], c_lo: int, c_hi: int, j_hi: int
+) -> tuple[int, int, float]:
     """(c, j) with c_lo <= c <= j <= j_hi, c <= c_hi, minimising total(c, j) (vectorised over
     index arrays).  Long windows: a coarse grid of PAIR_GRID candidates a side, then every index
     within one grid step of the coarse best, so cost stays bounded where a full matrix would
@@ -261,8 +298,16 @@ class Door:
     stat: float
 
 
-def find_door(t: np.ndarray, y: np.ndarray, k: float, ambient: float, rss_single: float, *,
-              min_side: int = 8, min_tail: int = 4) -> Door:
+def find_door(
+    t: np.ndarray,
+    y: np.ndarray,
+    k: float,
+    ambient: float,
+    rss_single: float,
+    *,
+    min_side: int = 8,
+    min_tail: int = 4,
+) -> Door:
     """A short disturbance (a door opened, then closed) inside the window, too short for the
     regime search (whose pieces need a dozen readings each).
 
@@ -279,8 +324,9 @@ def find_door(t: np.ndarray, y: np.ndarray, k: float, ambient: float, rss_single
     r = y - ambient
     r_pre, r_suf = _one_level_prefix(r, e), _one_level_suffix(r, e)
     door = _two_level_rss(y, e)
-    ci, ji, best = _best_pair(lambda c, j: r_pre[c] + door(c, j) + r_suf[j], min_side,
-                              m - min_tail, m - min_tail)
+    ci, ji, best = _best_pair(
+        lambda c, j: r_pre[c] + door(c, j) + r_suf[j], min_side, m - min_tail, m - min_tail
+    )
     s2 = max(best / max(m - 7, 1), 1e-18)
     stat = (rss_single - best) / s2
     return Door(bool(stat >= 5 * math.log(m) + 12.0), ci, ji, float(stat))

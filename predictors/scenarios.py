@@ -72,8 +72,9 @@ def _two_stage_step(
     """
     if kl <= 0:
         return u + (a0 - u) * np.exp(-ka * tau), np.full_like(tau, l0)
-    return synth.air_load_curves(tau, load_T0=l0, air_T0=a0, outside=u, k_air_per_s=ka,
-                                 k_load_per_s=kl)
+    return synth.air_load_curves(
+        tau, load_T0=l0, air_T0=a0, outside=u, k_air_per_s=ka, k_load_per_s=kl
+    )
 
 
 def two_stage(
@@ -109,8 +110,14 @@ def time_to_reach(a0: float, u: float, ka: float, target: float) -> float | None
 
 
 def thermostat_pieces(
-    duration_s: float, air0: float, low: float, high: float, cold: tuple[float, float],
-    warm: tuple[float, float], start_on: bool = False, t0_s: float = 0.0,
+    duration_s: float,
+    air0: float,
+    low: float,
+    high: float,
+    cold: tuple[float, float],
+    warm: tuple[float, float],
+    start_on: bool = False,
+    t0_s: float = 0.0,
 ) -> list[Piece]:
     """A compressor cycling on a thermostat: on, the air heads for the coil (cold = (U, k)) until
     ``low``; off, it drifts toward the room (warm = (U, k)) until ``high``.  Switch times exact."""
@@ -129,8 +136,13 @@ def thermostat_pieces(
 
 
 def centre_probe(
-    x_s: np.ndarray, air: Callable[[np.ndarray], np.ndarray], Ti: float, biot: float,
-    a_per_s: float, geometry: str = "slab", step_s: float = 30.0,
+    x_s: np.ndarray,
+    air: Callable[[np.ndarray], np.ndarray],
+    Ti: float,
+    biot: float,
+    a_per_s: float,
+    geometry: str = "slab",
+    step_s: float = 30.0,
 ) -> np.ndarray:
     """Centre temperature of a body at Ti in air Ta(t) (Duhamel superposition of the step response).
 
@@ -151,8 +163,12 @@ def centre_probe(
 
 
 def first_crossing(
-    curve: Callable[[np.ndarray], np.ndarray], threshold: float, direction: str,
-    start_s: float, end_s: float, step_s: float = 10.0,
+    curve: Callable[[np.ndarray], np.ndarray],
+    threshold: float,
+    direction: str,
+    start_s: float,
+    end_s: float,
+    step_s: float = 10.0,
 ) -> float | None:
     """First time in [start_s, end_s] the curve passes ``threshold`` going ``direction``
     ("rising"/"falling"), by a fine grid and linear interpolation; None when it does not."""
@@ -244,14 +260,34 @@ class Scenario:
 
 # One dropout per probe, under 10 minutes in 12 h: shorter than the daemon's default silence limit
 # (15 min), so a healthy site does not go stale.
-DEFAULT_NOISE = Corruption(noise=0.06, quantum=0.1, spike_frac=0.004, spike_size=12.0, n_gaps=1,
-                           gap_frac=0.012, irregular=0.05)
-AIR_NOISE = Corruption(noise=0.1, quantum=0.1, spike_frac=0.002, spike_size=10.0, n_gaps=1,
-                       gap_frac=0.008, irregular=0.05)
+DEFAULT_NOISE = Corruption(
+    noise=0.06,
+    quantum=0.1,
+    spike_frac=0.004,
+    spike_size=12.0,
+    n_gaps=1,
+    gap_frac=0.012,
+    irregular=0.05,
+)
+AIR_NOISE = Corruption(
+    noise=0.1,
+    quantum=0.1,
+    spike_frac=0.002,
+    spike_size=10.0,
+    n_gaps=1,
+    gap_frac=0.008,
+    irregular=0.05,
+)
 
 
-def _sample(spec: ProbeSpec, rng: np.random.Generator, duration_s: float, t_start: float,
-            event_s: float, horizon_s: float) -> ProbeSeries:
+def _sample(
+    spec: ProbeSpec,
+    rng: np.random.Generator,
+    duration_s: float,
+    t_start: float,
+    event_s: float,
+    horizon_s: float,
+) -> ProbeSeries:
     x = synth.sample_times(rng, duration_s, spec.dt_s, spec.corruption)
     clean = spec.curve(x)
     x, y, clean, spikes = synth.corrupt(rng, x, clean, spec.corruption)
@@ -287,24 +323,57 @@ def _reefer() -> _Site:
     def load(kl):
         return lambda x: two_stage(x, pieces, 2.0, 2.0, kl)[1]
 
-    common = dict(threshold=8.0, direction="rising", ambient_probe=f"{base}/air", form="senml",
-                  dt_s=60.0, lead_s=3 * H, corruption=DEFAULT_NOISE)
+    common = dict(
+        threshold=8.0,
+        direction="rising",
+        ambient_probe=f"{base}/air",
+        form="senml",
+        dt_s=60.0,
+        lead_s=3 * H,
+        corruption=DEFAULT_NOISE,
+    )
     specs = [
-        ProbeSpec(f"{base}/air", f"{base}/air", air, role="ambient", form="senml", dt_s=60.0,
-                  corruption=AIR_NOISE),
-        ProbeSpec(f"{base}/load-top", f"{base}/load-top", load(1 / (4.5 * H)),
-                  truth={"k_per_s": 1 / (4.5 * H), "ambient": outside}, **common),
-        ProbeSpec(f"{base}/load-door", f"{base}/load-door", load(1 / (7 * H)),
-                  truth={"k_per_s": 1 / (7 * H), "ambient": outside}, **common),
+        ProbeSpec(
+            f"{base}/air",
+            f"{base}/air",
+            air,
+            role="ambient",
+            form="senml",
+            dt_s=60.0,
+            corruption=AIR_NOISE,
+        ),
+        ProbeSpec(
+            f"{base}/load-top",
+            f"{base}/load-top",
+            load(1 / (4.5 * H)),
+            truth={"k_per_s": 1 / (4.5 * H), "ambient": outside},
+            **common,
+        ),
+        ProbeSpec(
+            f"{base}/load-door",
+            f"{base}/load-door",
+            load(1 / (7 * H)),
+            truth={"k_per_s": 1 / (7 * H), "ambient": outside},
+            **common,
+        ),
     ]
-    return _Site("reefer on the east pier loses power", 8 * H, fail, specs,
-                 [(fail, "eastpier/reefer-12: power lost, unit stopped")])
+    return _Site(
+        "reefer on the east pier loses power",
+        8 * H,
+        fail,
+        specs,
+        [(fail, "eastpier/reefer-12: power lost, unit stopped")],
+    )
 
 
 def _walkin() -> _Site:
     """A kitchen walk-in cooler whose door is left ajar for 20 minutes, then closed."""
     opened, closed = 30 * MIN, 50 * MIN
-    pre = [(0.0, 3.0, 1 / (15 * MIN)), (opened, 16.0, 1 / (8 * MIN)), (closed, -6.0, 1 / (15 * MIN))]
+    pre = [
+        (0.0, 3.0, 1 / (15 * MIN)),
+        (opened, 16.0, 1 / (8 * MIN)),
+        (closed, -6.0, 1 / (15 * MIN)),
+    ]
     a_closed = float(two_stage(np.array([closed]), pre, 3.0)[0][0])
     back = closed + (time_to_reach(a_closed, -6.0, 1 / (15 * MIN), 3.0) or 0.0)
     pieces = pre + [(back, 3.0, 1 / (15 * MIN))]
@@ -316,18 +385,47 @@ def _walkin() -> _Site:
     def load(l0, kl):
         return lambda x: two_stage(x, pieces, 3.0, l0, kl)[1]
 
-    common = dict(threshold=5.0, direction="rising", ambient_probe=f"{base}/air",
-                  form="json-rfc3339", dt_s=30.0, lead_s=45 * MIN, corruption=DEFAULT_NOISE)
+    common = dict(
+        threshold=5.0,
+        direction="rising",
+        ambient_probe=f"{base}/air",
+        form="json-rfc3339",
+        dt_s=30.0,
+        lead_s=45 * MIN,
+        corruption=DEFAULT_NOISE,
+    )
     specs = [
-        ProbeSpec(f"{base}/air", f"{base}/air", air, role="ambient", form="json-rfc3339",
-                  dt_s=30.0, corruption=AIR_NOISE),
-        ProbeSpec(f"{base}/dairy-shelf", f"{base}/dairy-shelf", load(3.0, 1 / (2.5 * H)),
-                  truth={"k_per_s": 1 / (2.5 * H), "ambient_while_open": 16.0}, **common),
-        ProbeSpec(f"{base}/meat-rack", f"{base}/meat-rack", load(2.8, 1 / (4 * H)),
-                  truth={"k_per_s": 1 / (4 * H), "ambient_while_open": 16.0}, **common),
+        ProbeSpec(
+            f"{base}/air",
+            f"{base}/air",
+            air,
+            role="ambient",
+            form="json-rfc3339",
+            dt_s=30.0,
+            corruption=AIR_NOISE,
+        ),
+        ProbeSpec(
+            f"{base}/dairy-shelf",
+            f"{base}/dairy-shelf",
+            load(3.0, 1 / (2.5 * H)),
+            truth={"k_per_s": 1 / (2.5 * H), "ambient_while_open": 16.0},
+            **common,
+        ),
+        ProbeSpec(
+            f"{base}/meat-rack",
+            f"{base}/meat-rack",
+            load(2.8, 1 / (4 * H)),
+            truth={"k_per_s": 1 / (4 * H), "ambient_while_open": 16.0},
+            **common,
+        ),
     ]
-    return _Site("walk-in door left ajar for 20 minutes", 4 * H, opened, specs,
-                 [(opened, f"{base}: door left ajar"), (closed, f"{base}: door closed")])
+    return _Site(
+        "walk-in door left ajar for 20 minutes",
+        4 * H,
+        opened,
+        specs,
+        [(opened, f"{base}: door left ajar"), (closed, f"{base}: door closed")],
+    )
 
 
 def _wort() -> _Site:
@@ -346,18 +444,45 @@ def _wort() -> _Site:
 
     # The coolant probe reads 9 degC steadily also before the pump starts, so it cannot tell the
     # forecast when chilling began: the items use the coolant setpoint as a known ambient.
-    common = dict(threshold=20.0, direction="falling", ambient_known=coolant,
-                  dt_s=10.0, lead_s=15 * MIN, corruption=DEFAULT_NOISE)
+    common = dict(
+        threshold=20.0,
+        direction="falling",
+        ambient_known=coolant,
+        dt_s=10.0,
+        lead_s=15 * MIN,
+        corruption=DEFAULT_NOISE,
+    )
     specs = [
-        ProbeSpec(f"{base}/coolant-in", f"{base}/coolant-in", lambda x: np.full(np.shape(x), coolant),
-                  role="ambient", dt_s=10.0, corruption=AIR_NOISE),
-        ProbeSpec(f"{base}/wort", f"{base}/wort", wort(0.0),
-                  truth={"k_per_s": k, "ambient": coolant}, **common),
-        ProbeSpec(f"{base}/wort-top", f"{base}/wort-top", wort(0.3),
-                  truth={"k_per_s": k, "ambient": coolant + 0.3}, **common),
+        ProbeSpec(
+            f"{base}/coolant-in",
+            f"{base}/coolant-in",
+            lambda x: np.full(np.shape(x), coolant),
+            role="ambient",
+            dt_s=10.0,
+            corruption=AIR_NOISE,
+        ),
+        ProbeSpec(
+            f"{base}/wort",
+            f"{base}/wort",
+            wort(0.0),
+            truth={"k_per_s": k, "ambient": coolant},
+            **common,
+        ),
+        ProbeSpec(
+            f"{base}/wort-top",
+            f"{base}/wort-top",
+            wort(0.3),
+            truth={"k_per_s": k, "ambient": coolant + 0.3},
+            **common,
+        ),
     ]
-    return _Site("20 hl of wort through the plate chiller", 2 * H, start, specs,
-                 [(start, f"{base}: chilling started"), (stop, f"{base}: chilling stopped at 18 degC")])
+    return _Site(
+        "20 hl of wort through the plate chiller",
+        2 * H,
+        start,
+        specs,
+        [(start, f"{base}: chilling started"), (stop, f"{base}: chilling stopped at 18 degC")],
+    )
 
 
 def _blast_chiller() -> _Site:
@@ -373,15 +498,36 @@ def _blast_chiller() -> _Site:
     def tray(kl):
         return lambda x: two_stage(x, pieces, 20.0, 74.0, kl)[1]
 
-    common = dict(threshold=21.0, direction="falling", ambient_probe=f"{base}/air", dt_s=30.0,
-                  lead_s=30 * MIN, corruption=DEFAULT_NOISE)
-    specs = [ProbeSpec(f"{base}/air", f"{base}/air", air, role="ambient", dt_s=30.0,
-                       corruption=AIR_NOISE)]
+    common = dict(
+        threshold=21.0,
+        direction="falling",
+        ambient_probe=f"{base}/air",
+        dt_s=30.0,
+        lead_s=30 * MIN,
+        corruption=DEFAULT_NOISE,
+    )
+    specs = [
+        ProbeSpec(
+            f"{base}/air", f"{base}/air", air, role="ambient", dt_s=30.0, corruption=AIR_NOISE
+        )
+    ]
     for tag, tau in (("tray-a", 55 * MIN), ("tray-b", 65 * MIN), ("tray-c", 170 * MIN)):
-        specs.append(ProbeSpec(f"{base}/{tag}", f"{base}/{tag}", tray(1 / tau),
-                               truth={"k_per_s": 1 / tau, "ambient": -6.0}, **common))
-    return _Site("cooked rice in the blast chiller", 7 * H, 0.0, specs,
-                 [(0.0, f"{base}: trays loaded at 74 degC"), (hold, f"{base}: switched to holding")])
+        specs.append(
+            ProbeSpec(
+                f"{base}/{tag}",
+                f"{base}/{tag}",
+                tray(1 / tau),
+                truth={"k_per_s": 1 / tau, "ambient": -6.0},
+                **common,
+            )
+        )
+    return _Site(
+        "cooked rice in the blast chiller",
+        7 * H,
+        0.0,
+        specs,
+        [(0.0, f"{base}: trays loaded at 74 degC"), (hold, f"{base}: switched to holding")],
+    )
 
 
 def _trailer() -> _Site:
@@ -403,26 +549,66 @@ def _trailer() -> _Site:
     small, a_small = carton(0.06, 0.6)
     # Quick-frozen food: -18 degC, brief rises of at most 3 degC in transport, so -15 degC is the
     # limit: Council Directive 89/108/EEC (from memory).
-    common = dict(threshold=-15.0, direction="rising", ambient_probe=f"{base}/air", form="senml",
-                  dt_s=60.0, batch=5, model="slab", lead_s=2 * H, window_s=12 * H, corruption=DEFAULT_NOISE)
+    common = dict(
+        threshold=-15.0,
+        direction="rising",
+        ambient_probe=f"{base}/air",
+        form="senml",
+        dt_s=60.0,
+        batch=5,
+        model="slab",
+        lead_s=2 * H,
+        window_s=12 * H,
+        corruption=DEFAULT_NOISE,
+    )
     specs = [
-        ProbeSpec(f"{base}/air", f"{base}/air", air, role="ambient", form="senml", dt_s=60.0,
-                  batch=5, corruption=AIR_NOISE),
-        ProbeSpec(f"{base}/carton-large", f"{base}/carton-large", large,
-                  truth={"biot": 1.5, "a_per_s": a_large, "ambient": 4.0}, **common),
-        ProbeSpec(f"{base}/carton-small", f"{base}/carton-small", small,
-                  truth={"biot": 0.6, "a_per_s": a_small, "ambient": 4.0}, **common),
+        ProbeSpec(
+            f"{base}/air",
+            f"{base}/air",
+            air,
+            role="ambient",
+            form="senml",
+            dt_s=60.0,
+            batch=5,
+            corruption=AIR_NOISE,
+        ),
+        ProbeSpec(
+            f"{base}/carton-large",
+            f"{base}/carton-large",
+            large,
+            truth={"biot": 1.5, "a_per_s": a_large, "ambient": 4.0},
+            **common,
+        ),
+        ProbeSpec(
+            f"{base}/carton-small",
+            f"{base}/carton-small",
+            small,
+            truth={"biot": 0.6, "a_per_s": a_small, "ambient": 4.0},
+            **common,
+        ),
     ]
-    return _Site("frozen load, trailer unit failing", 12 * H, fail, specs,
-                 [(fail, f"{base}: unit capacity failing")])
+    return _Site(
+        "frozen load, trailer unit failing",
+        12 * H,
+        fail,
+        specs,
+        [(fail, f"{base}: unit capacity failing")],
+    )
 
 
 def _cold_room() -> _Site:
     """A healthy cheese cold room: the compressor cycles between 1.5 and 4 degC air; the crates
     barely notice.  Nothing here should raise an alert."""
     duration = 12 * H
-    pieces = thermostat_pieces(duration + 30 * H, 4.0, 1.5, 4.0, cold=(-7.0, 1 / (20 * MIN)),
-                               warm=(14.0, 1 / (1.5 * H)), start_on=True)
+    pieces = thermostat_pieces(
+        duration + 30 * H,
+        4.0,
+        1.5,
+        4.0,
+        cold=(-7.0, 1 / (20 * MIN)),
+        warm=(14.0, 1 / (1.5 * H)),
+        start_on=True,
+    )
     base = "hillside-dairy/cold-room-b"
 
     def air(x):
@@ -431,14 +617,32 @@ def _cold_room() -> _Site:
     def crate(l0, kl):
         return lambda x: two_stage(x, pieces, 4.0, l0, kl)[1]
 
-    common = dict(threshold=5.0, direction="rising", ambient_probe=f"{base}/air", dt_s=60.0,
-                  lead_s=45 * MIN, corruption=DEFAULT_NOISE)
+    common = dict(
+        threshold=5.0,
+        direction="rising",
+        ambient_probe=f"{base}/air",
+        dt_s=60.0,
+        lead_s=45 * MIN,
+        corruption=DEFAULT_NOISE,
+    )
     specs = [
-        ProbeSpec(f"{base}/air", f"{base}/air", air, role="ambient", dt_s=60.0, corruption=AIR_NOISE),
-        ProbeSpec(f"{base}/crate-1", f"{base}/crate-1", crate(2.9, 1 / (4 * H)),
-                  truth={"k_per_s": 1 / (4 * H)}, **common),
-        ProbeSpec(f"{base}/crate-2", f"{base}/crate-2", crate(3.0, 1 / (6 * H)),
-                  truth={"k_per_s": 1 / (6 * H)}, **common),
+        ProbeSpec(
+            f"{base}/air", f"{base}/air", air, role="ambient", dt_s=60.0, corruption=AIR_NOISE
+        ),
+        ProbeSpec(
+            f"{base}/crate-1",
+            f"{base}/crate-1",
+            crate(2.9, 1 / (4 * H)),
+            truth={"k_per_s": 1 / (4 * H)},
+            **common,
+        ),
+        ProbeSpec(
+            f"{base}/crate-2",
+            f"{base}/crate-2",
+            crate(3.0, 1 / (6 * H)),
+            truth={"k_per_s": 1 / (6 * H)},
+            **common,
+        ),
     ]
     return _Site("healthy cold room, compressor cycling", duration, 0.0, specs, [])
 
@@ -454,8 +658,9 @@ SITES: dict[str, Callable[[], _Site]] = {
 NAMES = tuple(SITES) + ("all",)
 
 
-def build(name: str, *, seed: int = 0, t_start: float = T_START,
-          duration_s: float | None = None) -> Scenario:
+def build(
+    name: str, *, seed: int = 0, t_start: float = T_START, duration_s: float | None = None
+) -> Scenario:
     """The scenario ``name`` (one of :data:`NAMES`; "all" runs every site on one timeline)."""
     if name not in NAMES:
         raise ValueError(f"unknown scenario {name!r}; choose one of {', '.join(NAMES)}")

@@ -59,7 +59,9 @@ class Corruption:
     shuffle_frac: float = 0.0
 
 
-def sample_times(rng: np.random.Generator, duration_s: float, dt_s: float, c: Corruption) -> np.ndarray:
+def sample_times(
+    rng: np.random.Generator, duration_s: float, dt_s: float, c: Corruption
+) -> np.ndarray:
     """Sampling instants (relative seconds, sorted, from 0) with jitter and gaps."""
     if duration_s <= 0 or dt_s <= 0:
         raise ValueError("duration_s and dt_s must be positive")
@@ -128,7 +130,9 @@ def _eta(crossing_rel: float | None, x_last: float) -> float | None:
     return max(0.0, crossing_rel - x_last)
 
 
-def seen_duration_s(T0: float, ambient: float, k_per_s: float, threshold: float, fraction: float) -> float:
+def seen_duration_s(
+    T0: float, ambient: float, k_per_s: float, threshold: float, fraction: float
+) -> float:
     """How long until the curve has gone ``fraction`` of the way from T0 to the threshold."""
     target = T0 + fraction * (threshold - T0)
     t = lumped_crossing_s(T0, ambient, k_per_s, target)
@@ -158,15 +162,25 @@ def lumped(
     cross = lumped_crossing_s(T0, ambient, k_per_s, threshold)
     x_last = float(x.max())
     return Synth(
-        t=xs + t_start, y=y, threshold=threshold, eta_true_s=_eta(cross, x_last),
-        crossing_t_true=None if cross is None else t_start + cross, t_last=t_start + x_last,
+        t=xs + t_start,
+        y=y,
+        threshold=threshold,
+        eta_true_s=_eta(cross, x_last),
+        crossing_t_true=None if cross is None else t_start + cross,
+        t_last=t_start + x_last,
         truth={"T0": T0, "ambient": ambient, "k_per_s": k_per_s, "t0": t_start},
-        y_clean=clean, spike_mask=spikes,
+        y_clean=clean,
+        spike_mask=spikes,
     )
 
 
 def air_load_curves(
-    x_s: np.ndarray, *, load_T0: float, air_T0: float, outside: float, k_air_per_s: float,
+    x_s: np.ndarray,
+    *,
+    load_T0: float,
+    air_T0: float,
+    outside: float,
+    k_air_per_s: float,
     k_load_per_s: float,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Air warms toward outside; the load follows the air.
@@ -179,7 +193,11 @@ def air_load_curves(
     air = outside + (air_T0 - outside) * np.exp(-a * x)
     if abs(b - a) < 1e-12 * max(a, b):
         # limit a -> b: T = Tout + (T0 - Tout) e^(-b t) + b (Ta0 - Tout) t e^(-b t)
-        load = outside + (load_T0 - outside) * np.exp(-b * x) + b * (air_T0 - outside) * x * np.exp(-b * x)
+        load = (
+            outside
+            + (load_T0 - outside) * np.exp(-b * x)
+            + b * (air_T0 - outside) * x * np.exp(-b * x)
+        )
     else:
         A = b * (air_T0 - outside) / (b - a)
         load = outside + A * np.exp(-a * x) + (load_T0 - outside - A) * np.exp(-b * x)
@@ -209,8 +227,13 @@ def measured_air(
     rng = np.random.default_rng(seed)
     c = corruption or Corruption()
     x = sample_times(rng, duration_s, dt_s, c)
-    kw = {"load_T0": load_T0, "air_T0": air_T0, "outside": outside, "k_air_per_s": k_air_per_s,
-              "k_load_per_s": k_load_per_s}
+    kw = {
+        "load_T0": load_T0,
+        "air_T0": air_T0,
+        "outside": outside,
+        "k_air_per_s": k_air_per_s,
+        "k_load_per_s": k_load_per_s,
+    }
     air, load = air_load_curves(x, **kw)
     an = c.noise if air_noise is None else air_noise
     air_y = air + (rng.normal(0, an, x.size) if an > 0 else 0.0)
@@ -233,9 +256,16 @@ def measured_air(
     elif hit.size:
         cross = float(brentq(gap, grid[hit[0]], grid[hit[0] + 1], xtol=1e-6))
     return Synth(
-        t=xs + t_start, y=y, threshold=threshold, eta_true_s=_eta(cross, x_last),
-        crossing_t_true=None if cross is None else t_start + cross, t_last=t_start + x_last,
-        truth={**kw, "t0": t_start}, ambient_t=x + t_start, ambient_y=air_y, y_clean=clean,
+        t=xs + t_start,
+        y=y,
+        threshold=threshold,
+        eta_true_s=_eta(cross, x_last),
+        crossing_t_true=None if cross is None else t_start + cross,
+        t_last=t_start + x_last,
+        truth={**kw, "t0": t_start},
+        ambient_t=x + t_start,
+        ambient_y=air_y,
+        y_clean=clean,
         spike_mask=spikes,
     )
 
@@ -288,11 +318,22 @@ def regime_change(
     x_last = float(x.max())
     cross = None if rel is None else s_last + rel
     return Synth(
-        t=xs + t_start, y=y, threshold=threshold, eta_true_s=_eta(cross, x_last),
-        crossing_t_true=None if cross is None else t_start + cross, t_last=t_start + x_last,
-        truth={"T0": T0, "k_per_s": k_per_s, "ambient": ta_last, "regime_start": t_start + s_last,
-               "T_regime_start": T_at, "t0": t_start},
-        y_clean=clean, spike_mask=spikes,
+        t=xs + t_start,
+        y=y,
+        threshold=threshold,
+        eta_true_s=_eta(cross, x_last),
+        crossing_t_true=None if cross is None else t_start + cross,
+        t_last=t_start + x_last,
+        truth={
+            "T0": T0,
+            "k_per_s": k_per_s,
+            "ambient": ta_last,
+            "regime_start": t_start + s_last,
+            "T_regime_start": T_at,
+            "t0": t_start,
+        },
+        y_clean=clean,
+        spike_mask=spikes,
     )
 
 
@@ -332,8 +373,13 @@ def compressor_sawtooth(
     clean = np.interp(x, grid, temp)
     xs, y, clean, spikes = corrupt(rng, x, clean, c)
     return Synth(
-        t=xs + t_start, y=y, threshold=threshold, eta_true_s=None, crossing_t_true=None,
+        t=xs + t_start,
+        y=y,
+        threshold=threshold,
+        eta_true_s=None,
+        crossing_t_true=None,
         t_last=t_start + float(x.max()),
         truth={"low": low, "high": high, "k_per_s": k_per_s, "t0": t_start},
-        y_clean=clean, spike_mask=spikes,
+        y_clean=clean,
+        spike_mask=spikes,
     )

@@ -22,8 +22,12 @@ Float = NDArray[np.float64]
 
 
 def centre_mol(
-    geometry: str, biot: float, fo: Float, ambient_of_fo: Callable[[Float], Float],
-    t_i: float, n_cells: int = 120,
+    geometry: str,
+    biot: float,
+    fo: Float,
+    ambient_of_fo: Callable[[Float], Float],
+    t_i: float,
+    n_cells: int = 120,
 ) -> Float:
     """Centre temperature at Fourier numbers ``fo`` for a body at uniform ``t_i`` whose surface
     convects (Biot number ``biot``) to an ambient ``ambient_of_fo(fo)``.
@@ -60,8 +64,16 @@ def centre_mol(
         return mat @ temp + src * float(ambient_of_fo(np.array([f]))[0])
 
     fo = np.asarray(fo, dtype=float)
-    sol = solve_ivp(rhs, (0.0, float(fo.max())), np.full(n_cells, float(t_i)), method="BDF",
-                    t_eval=fo, jac=mat, rtol=1e-9, atol=1e-11)
+    sol = solve_ivp(
+        rhs,
+        (0.0, float(fo.max())),
+        np.full(n_cells, float(t_i)),
+        method="BDF",
+        t_eval=fo,
+        jac=mat,
+        rtol=1e-9,
+        atol=1e-11,
+    )
     if not sol.success:
         raise RuntimeError(f"solve_ivp failed: {sol.message}")
     return (9.0 * sol.y[0] - sol.y[1]) / 8.0
@@ -122,8 +134,9 @@ def core_probe(
         horizon = 30.0 / a_per_s
 
         def truth(t_rel: Float) -> Float:
-            return ambient + (t_i - ambient) * theta_centre(a_per_s * np.asarray(t_rel), biot,
-                                                            geometry)
+            return ambient + (t_i - ambient) * theta_centre(
+                a_per_s * np.asarray(t_rel), biot, geometry
+            )
 
     cross = _first_crossing(lambda t: float(truth(np.array([t]))[0]), threshold, horizon)
     if cross is None or cross == 0.0:
@@ -134,11 +147,22 @@ def core_probe(
     xs, y, clean, spikes = corrupt(rng, x, clean, c)
     x_last = float(x.max())
     out = Synth(
-        t=xs + t_start, y=y, threshold=threshold, eta_true_s=cross - x_last,
-        crossing_t_true=t_start + cross, t_last=t_start + x_last,
-        truth={"geometry_index": float(GEOMETRIES.index(geometry)), "biot": biot,
-               "a_per_s": a_per_s, "Ti": t_i, "ambient": ambient, "t0": t_start},
-        y_clean=clean, spike_mask=spikes,
+        t=xs + t_start,
+        y=y,
+        threshold=threshold,
+        eta_true_s=cross - x_last,
+        crossing_t_true=t_start + cross,
+        t_last=t_start + x_last,
+        truth={
+            "geometry_index": float(GEOMETRIES.index(geometry)),
+            "biot": biot,
+            "a_per_s": a_per_s,
+            "Ti": t_i,
+            "ambient": ambient,
+            "t0": t_start,
+        },
+        y_clean=clean,
+        spike_mask=spikes,
     )
     if drifting:
         out.ambient_t = np.arange(0.0, x_last + 0.5 * dt_s, dt_s) + t_start

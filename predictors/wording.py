@@ -30,8 +30,10 @@ class DisplayUnit:
 
     def __post_init__(self) -> None:
         if not (math.isfinite(self.scale) and self.scale > 0 and math.isfinite(self.offset)):
-            raise ValueError(f"a display unit needs a finite scale > 0 and a finite offset, "
-                             f"got scale {self.scale!r}, offset {self.offset!r}")
+            raise ValueError(
+                f"a display unit needs a finite scale > 0 and a finite offset, "
+                f"got scale {self.scale!r}, offset {self.offset!r}"
+            )
 
 
 _SHOWN: ContextVar[DisplayUnit | None] = ContextVar("thermeta_shown_unit", default=None)

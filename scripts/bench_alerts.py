@@ -53,11 +53,24 @@ DAY = 24 * H
 # ---------------------------------------------------------------------------------------------
 # Parameters, fixed up front.  (lo, hi) = uniform draw.
 # ---------------------------------------------------------------------------------------------
-ROOM = dict(mid=(2.5, 4.5), half_swing=1.5, period_s=(15 * MIN, 40 * MIN), warm=(12.0, 25.0),
-            coil=(-12.0, -4.0), load_tau_s=(3 * H, 8 * H), load_offset=(-0.5, 0.5),
-            defrost_every_s=(6 * H, 8 * H), defrost_s=(20 * MIN, 30 * MIN), defrost_drive=(8.0, 12.0),
-            defrost_tau_s=(40 * MIN, 60 * MIN), noise=(0.05, 0.1), spike_frac=0.005, spike_size=12.0,
-            dt_s=60.0, threshold=8.0)
+ROOM = dict(
+    mid=(2.5, 4.5),
+    half_swing=1.5,
+    period_s=(15 * MIN, 40 * MIN),
+    warm=(12.0, 25.0),
+    coil=(-12.0, -4.0),
+    load_tau_s=(3 * H, 8 * H),
+    load_offset=(-0.5, 0.5),
+    defrost_every_s=(6 * H, 8 * H),
+    defrost_s=(20 * MIN, 30 * MIN),
+    defrost_drive=(8.0, 12.0),
+    defrost_tau_s=(40 * MIN, 60 * MIN),
+    noise=(0.05, 0.1),
+    spike_frac=0.005,
+    spike_size=12.0,
+    dt_s=60.0,
+    threshold=8.0,
+)
 EVENTS = {
     # the door stands open: the air heads for the kitchen's air, the compressor cannot hold it
     "door": dict(drive=(15.0, 22.0), air_tau_s=(5 * MIN, 15 * MIN)),
@@ -66,8 +79,16 @@ EVENTS = {
     # the unit fails slowly: it holds the air only near 10-14 degC
     "failing": dict(drive=(10.0, 14.0), air_tau_s=(2 * H, 4 * H)),
 }
-RULES = dict(lead_s=45 * MIN, hysteresis=0.5, hold_s=5 * MIN, remind_every_s=30 * MIN,
-             silence_s=15 * MIN, horizon_s=DAY, window_s=2 * H, min_points=8)
+RULES = dict(
+    lead_s=45 * MIN,
+    hysteresis=0.5,
+    hold_s=5 * MIN,
+    remind_every_s=30 * MIN,
+    silence_s=15 * MIN,
+    horizon_s=DAY,
+    window_s=2 * H,
+    min_points=8,
+)
 REFIT_NORMAL_S = 5 * MIN  # refit interval on the week-long normal traces
 REFIT_EVENT_S = 2 * MIN  # and on the event traces (the daemon's default is 30 s)
 NORMAL_DAYS = 7.0
@@ -77,8 +98,12 @@ LATE_CROSSED_S = 15 * MIN
 # A busy walk-in: the normal room, and on top of its air brief door openings (the kitchen's air
 # pushes the probe up while the door stands open, then the coil pulls it back).  Fixed before the
 # alarm delay was built, as the room above.
-BUSY = dict(every_s=(30 * MIN, 120 * MIN), open_s=(1 * MIN, 3 * MIN), rise=(3.0, 6.0),
-            back_tau_s=(5 * MIN, 10 * MIN))
+BUSY = dict(
+    every_s=(30 * MIN, 120 * MIN),
+    open_s=(1 * MIN, 3 * MIN),
+    rise=(3.0, 6.0),
+    back_tau_s=(5 * MIN, 10 * MIN),
+)
 BUSY_DELAY_S = 15 * MIN  # the air probe's alarm delay on the busy traces (common practice)
 CASES = {"normal": 5, "busy": 5, "door": 20, "power": 20, "failing": 20}
 QUICK_CASES = {"normal": 1, "busy": 1, "door": 1, "power": 1, "failing": 1}
@@ -94,11 +119,15 @@ def sawtooth_k(p: dict) -> float:
     """One k for both phases giving the drawn period:
     off: ln((W - low)/(W - high))/k,  on: ln((high - C)/(low - C))/k."""
     low, high = p["mid"] - p["half_swing"], p["mid"] + p["half_swing"]
-    logs = math.log((p["warm"] - low) / (p["warm"] - high)) + math.log((high - p["coil"]) / (low - p["coil"]))
+    logs = math.log((p["warm"] - low) / (p["warm"] - high)) + math.log(
+        (high - p["coil"]) / (low - p["coil"])
+    )
     return logs / p["period_s"]
 
 
-def room_pieces(p: dict, end_s: float, rng: np.random.Generator) -> list[tuple[float, float, float]]:
+def room_pieces(
+    p: dict, end_s: float, rng: np.random.Generator
+) -> list[tuple[float, float, float]]:
     """Thermostat cycling with defrost cycles up to ``end_s`` (pieces of a piecewise drive)."""
     k = sawtooth_k(p)
     low, high = p["mid"] - p["half_swing"], p["mid"] + p["half_swing"]
@@ -107,8 +136,9 @@ def room_pieces(p: dict, end_s: float, rng: np.random.Generator) -> list[tuple[f
     next_defrost = rng.uniform(0.0, p["defrost_every_s"])
     while t < end_s:
         seg_end = min(next_defrost, end_s)
-        seg = thermostat_pieces(seg_end, air, low, high, cold=(p["coil"], k), warm=(p["warm"], k),
-                                t0_s=t)
+        seg = thermostat_pieces(
+            seg_end, air, low, high, cold=(p["coil"], k), warm=(p["warm"], k), t0_s=t
+        )
         pieces += [q for q in seg if q[0] < seg_end] or [(t, p["warm"], k)]
         if seg_end >= end_s:
             break
@@ -119,8 +149,12 @@ def room_pieces(p: dict, end_s: float, rng: np.random.Generator) -> list[tuple[f
     return pieces
 
 
-def defrost_signal(pieces: list[tuple[float, float, float]], p: dict, cut_s: float | None = None,
-                   off_at_cut: bool = True) -> list[tuple[float, float]]:
+def defrost_signal(
+    pieces: list[tuple[float, float, float]],
+    p: dict,
+    cut_s: float | None = None,
+    off_at_cut: bool = True,
+) -> list[tuple[float, float]]:
     """The controller's defrost signal (trace seconds, 1 on / 0 off) for the defrosts in ``pieces``:
     on at each start, off when its timer ends it.  A defrost cut by an event at ``cut_s`` still
     ends by the timer unless ``off_at_cut`` is False (a power failure: the controller falls
@@ -137,8 +171,13 @@ def defrost_signal(pieces: list[tuple[float, float, float]], p: dict, cut_s: flo
 
 
 def readings(rng: np.random.Generator, curve, duration_s: float, p: dict, spikes: bool = True):
-    c = Corruption(noise=p["noise"], quantum=0.1, irregular=0.05,
-                   spike_frac=p["spike_frac"] if spikes else 0.0, spike_size=p["spike_size"])
+    c = Corruption(
+        noise=p["noise"],
+        quantum=0.1,
+        irregular=0.05,
+        spike_frac=p["spike_frac"] if spikes else 0.0,
+        spike_size=p["spike_size"],
+    )
     x = synth.sample_times(rng, duration_s, p["dt_s"], c)
     x, y, _, _ = synth.corrupt(rng, x, curve(x), c)
     o = np.argsort(x, kind="stable")
@@ -149,10 +188,17 @@ DEFROST_SIGNAL = True  # --no-defrost-signal: the probes are not told of defrost
 
 
 def item_cfgs(thr: float) -> tuple[ItemConfig, ItemConfig]:
-    common = dict(threshold=thr, lead_s=RULES["lead_s"], hysteresis=RULES["hysteresis"],
-                  hold_s=RULES["hold_s"], remind_every_s=RULES["remind_every_s"],
-                  silence_s=RULES["silence_s"], horizon_s=RULES["horizon_s"],
-                  window_s=RULES["window_s"], min_points=RULES["min_points"])
+    common = dict(
+        threshold=thr,
+        lead_s=RULES["lead_s"],
+        hysteresis=RULES["hysteresis"],
+        hold_s=RULES["hold_s"],
+        remind_every_s=RULES["remind_every_s"],
+        silence_s=RULES["silence_s"],
+        horizon_s=RULES["horizon_s"],
+        window_s=RULES["window_s"],
+        min_points=RULES["min_points"],
+    )
     # the room's controller publishes its defrost on/off; both probes are told (the defaults of
     # defrost_recovery and defrost_max)
     common["defrost_topic"] = "room/defrost" if DEFROST_SIGNAL else None
@@ -161,10 +207,15 @@ def item_cfgs(thr: float) -> tuple[ItemConfig, ItemConfig]:
     return air, load
 
 
-def replay(t: np.ndarray, y: np.ndarray, cfg: ItemConfig, times: np.ndarray,
-           air: tuple[np.ndarray, np.ndarray] | None = None,
-           defrost: list[tuple[float, float]] = (),
-           levels: tuple[str, ...] = ("approaching", "crossed")) -> list[tuple[float, str]]:
+def replay(
+    t: np.ndarray,
+    y: np.ndarray,
+    cfg: ItemConfig,
+    times: np.ndarray,
+    air: tuple[np.ndarray, np.ndarray] | None = None,
+    defrost: list[tuple[float, float]] = (),
+    levels: tuple[str, ...] = ("approaching", "crossed"),
+) -> list[tuple[float, str]]:
     """The alerts (time, level) of ``levels`` one item raises over the refit instants ``times``
     (reminders left out); ``defrost`` is the controller's signal (epoch seconds, 1|0), read as
     daemon/refit.py reads the stored one."""
@@ -179,7 +230,10 @@ def replay(t: np.ndarray, y: np.ndarray, cfg: ItemConfig, times: np.ndarray,
         tw, yw = t[lo:hi], y[lo:hi]
         kw = {}
         if air is not None:
-            alo, ahi = np.searchsorted(air[0], now - w, "right"), np.searchsorted(air[0], now, "right")
+            alo, ahi = (
+                np.searchsorted(air[0], now - w, "right"),
+                np.searchsorted(air[0], now, "right"),
+            )
             kw = dict(ambient_t=air[0][alo:ahi], ambient_y=air[1][alo:ahi])
         # with the refit's own arguments (no learned prior: each trace is a new item)
         fc = forecast(tw, yw, cfg.threshold_c, **dict(forecast_kwargs(cfg, limit), **kw))
@@ -214,6 +268,7 @@ def run_normal(index: int, seed: int, days: float) -> dict:
     pieces = room_pieces(p, dur + H, rng)
     kl = 1.0 / p["load_tau_s"]
     load0 = p["mid"] + p["load_offset"]
+
     def air_curve(x):
         return two_stage(np.asarray(x, float), pieces, p["mid"])[0]
 
@@ -228,10 +283,19 @@ def run_normal(index: int, seed: int, days: float) -> dict:
     sig = [(t0 + synth.T_START, v) for t0, v in defrost_signal(pieces, p)]
     a_alerts = replay(ta, ya, air_cfg, times, defrost=sig)
     l_alerts = replay(tl, yl, load_cfg, times, air=(ta, ya), defrost=sig)
-    fa, fl = n_false(a_alerts, air_curve, p["threshold"]), n_false(l_alerts, load_curve, p["threshold"])
+    fa, fl = (
+        n_false(a_alerts, air_curve, p["threshold"]),
+        n_false(l_alerts, load_curve, p["threshold"]),
+    )
     weeks = (dur - RULES["window_s"]) / (7 * DAY)
-    return {"kind": "normal", "item_weeks": 2 * weeks, "false": fa + fl, "false_air": fa,
-            "false_load": fl, "alerts": len(a_alerts) + len(l_alerts)}
+    return {
+        "kind": "normal",
+        "item_weeks": 2 * weeks,
+        "false": fa + fl,
+        "false_air": fa,
+        "false_load": fl,
+        "alerts": len(a_alerts) + len(l_alerts),
+    }
 
 
 def run_busy(index: int, seed: int, days: float) -> dict:
@@ -247,8 +311,14 @@ def run_busy(index: int, seed: int, days: float) -> dict:
     opens = []
     t = rng.uniform(0.0, BUSY["every_s"][1])
     while t < dur:
-        opens.append((t, rng.uniform(*BUSY["open_s"]), rng.uniform(*BUSY["rise"]),
-                      rng.uniform(*BUSY["back_tau_s"])))
+        opens.append(
+            (
+                t,
+                rng.uniform(*BUSY["open_s"]),
+                rng.uniform(*BUSY["rise"]),
+                rng.uniform(*BUSY["back_tau_s"]),
+            )
+        )
         t += rng.uniform(*BUSY["every_s"])
 
     def air_curve(x):
@@ -257,8 +327,11 @@ def run_busy(index: int, seed: int, days: float) -> dict:
         for t0, open_s, rise, back_tau in opens:
             since = x - t0
             up = np.clip(since / open_s, 0.0, 1.0) * rise
-            out += np.where(since >= 0, up * np.where(since > open_s,
-                                                      np.exp(-(since - open_s) / back_tau), 1.0), 0.0)
+            out += np.where(
+                since >= 0,
+                up * np.where(since > open_s, np.exp(-(since - open_s) / back_tau), 1.0),
+                0.0,
+            )
         return out
 
     ta, ya = readings(rng, air_curve, dur, p)
@@ -267,10 +340,15 @@ def run_busy(index: int, seed: int, days: float) -> dict:
     times = synth.T_START + np.arange(RULES["window_s"], dur + 1, REFIT_NORMAL_S)
     sig = [(t0 + synth.T_START, v) for t0, v in defrost_signal(pieces, p)]
     levels = ("approaching", "crossed", "regime")
-    out = {"kind": "busy", "air_weeks": (dur - RULES["window_s"]) / (7 * DAY),
-           "openings": len(opens),
-           "past": sum(float(np.max(air_curve(np.arange(t0, t0 + o + 3 * bt, 30.0)))) >= p["threshold"]
-                       for t0, o, _, bt in opens)}
+    out = {
+        "kind": "busy",
+        "air_weeks": (dur - RULES["window_s"]) / (7 * DAY),
+        "openings": len(opens),
+        "past": sum(
+            float(np.max(air_curve(np.arange(t0, t0 + o + 3 * bt, 30.0)))) >= p["threshold"]
+            for t0, o, _, bt in opens
+        ),
+    }
     for tag, delay in (("plain", 0.0), ("delayed", BUSY_DELAY_S)):
         cfg = dataclasses.replace(air_cfg, delay_s=delay)
         got = replay(ta, ya, cfg, times, defrost=sig, levels=levels)
@@ -301,18 +379,25 @@ def run_event(kind: str, index: int, seed: int) -> dict:
     _, load_cfg = item_cfgs(p["threshold"])
     times = synth.T_START + np.arange(RULES["window_s"], dur + 1, REFIT_EVENT_S)
     # a power failure silences the controller too: a defrost it cut never reports its end
-    sig = [(t0 + synth.T_START, v)
-           for t0, v in defrost_signal(pieces, p, event_s, off_at_cut=kind != "power")]
+    sig = [
+        (t0 + synth.T_START, v)
+        for t0, v in defrost_signal(pieces, p, event_s, off_at_cut=kind != "power")
+    ]
     alerts = replay(tl, yl, load_cfg, times, air=(ta, ya), defrost=sig)
     t_event, t_cross = synth.T_START + event_s, synth.T_START + cross
     before = [a for a in alerts if a[0] < t_event]
     false_before = n_false(before, load_curve, p["threshold"])
     appr = [a[0] for a in alerts if a[1] == "approaching" and t_event <= a[0] <= t_cross]
     crossed = [a[0] for a in alerts if a[1] == "crossed" and a[0] >= t_event]
-    return {"kind": kind, "lead_s": (t_cross - appr[0]) if appr else None,
-            "warned": bool(appr), "crossed_in_time": bool(crossed) and crossed[0] <= t_cross + LATE_CROSSED_S,
-            "false": false_before, "item_weeks": (event_s - RULES["window_s"]) / (7 * DAY),
-            "event_to_cross_s": cross - event_s}
+    return {
+        "kind": kind,
+        "lead_s": (t_cross - appr[0]) if appr else None,
+        "warned": bool(appr),
+        "crossed_in_time": bool(crossed) and crossed[0] <= t_cross + LATE_CROSSED_S,
+        "false": false_before,
+        "item_weeks": (event_s - RULES["window_s"]) / (7 * DAY),
+        "event_to_cross_s": cross - event_s,
+    }
 
 
 def run_unit(u: tuple[str, int, int, float]) -> dict:
@@ -326,10 +411,12 @@ def run_unit(u: tuple[str, int, int, float]) -> dict:
 
 def table(results: list[dict]) -> list[str]:
     lead = RULES["lead_s"]
-    lines = ["| traces | n | time from event to crossing (median) | lead of first approaching, "
-             "median / 5th pct | no approaching before the crossing | no crossed alert within 15 min | "
-             f"5th pct >= {TARGET_LEAD_FRAC:.0%} of lead |",
-             "|---|---|---|---|---|---|---|"]
+    lines = [
+        "| traces | n | time from event to crossing (median) | lead of first approaching, "
+        "median / 5th pct | no approaching before the crossing | no crossed alert within 15 min | "
+        f"5th pct >= {TARGET_LEAD_FRAC:.0%} of lead |",
+        "|---|---|---|---|---|---|---|",
+    ]
     for kind in EVENTS:
         rs = [r for r in results if r["kind"] == kind and "skipped" not in r]
         if not rs:
@@ -337,35 +424,50 @@ def table(results: list[dict]) -> list[str]:
         leads = np.array([r["lead_s"] if r["lead_s"] is not None else 0.0 for r in rs])
         med, p5 = float(np.median(leads)), float(np.percentile(leads, 5))
         to_cross = float(np.median([r["event_to_cross_s"] for r in rs]))
-        verdict = "-" if kind == "failing" else ("PASS" if p5 >= TARGET_LEAD_FRAC * lead else "FAIL")
-        lines.append(f"| {kind} | {len(rs)} | {to_cross / MIN:.0f} min | {med / MIN:.0f} / {p5 / MIN:.0f} min | "
-                     f"{sum(not r['warned'] for r in rs)} | {sum(not r['crossed_in_time'] for r in rs)} | "
-                     f"{verdict} |")
+        verdict = (
+            "-" if kind == "failing" else ("PASS" if p5 >= TARGET_LEAD_FRAC * lead else "FAIL")
+        )
+        lines.append(
+            f"| {kind} | {len(rs)} | {to_cross / MIN:.0f} min | {med / MIN:.0f} / {p5 / MIN:.0f} min | "
+            f"{sum(not r['warned'] for r in rs)} | {sum(not r['crossed_in_time'] for r in rs)} | "
+            f"{verdict} |"
+        )
     weeks = sum(r["item_weeks"] for r in results if "item_weeks" in r)
     false = sum(r["false"] for r in results if "false" in r)
     normal = [r for r in results if r["kind"] == "normal"]
     n_weeks = sum(r["item_weeks"] for r in normal)
     n_false = sum(r["false"] for r in normal)
     n_air = sum(r["false_air"] for r in normal)
-    lines += ["", "| no-event time | item-weeks | false alerts (air / load probes) | per item-week | "
-              "zero over >= 1 item-month |", "|---|---|---|---|---|",
-              f"| normal cycling with defrost (air and load probes) | {n_weeks:.1f} | "
-              f"{n_false} ({n_air} / {n_false - n_air}) | "
-              f"{n_false / n_weeks if n_weeks else math.nan:.2f} | "
-              f"{'PASS' if n_false == 0 and n_weeks >= 30 / 7 else ('FAIL' if n_false else 'n/a (under a month)')} |",
-              f"| all no-event time (normal traces, and the 2 h before each event) | {weeks:.1f} | {false} | "
-              f"{false / weeks if weeks else math.nan:.2f} | |"]
+    lines += [
+        "",
+        "| no-event time | item-weeks | false alerts (air / load probes) | per item-week | "
+        "zero over >= 1 item-month |",
+        "|---|---|---|---|---|",
+        f"| normal cycling with defrost (air and load probes) | {n_weeks:.1f} | "
+        f"{n_false} ({n_air} / {n_false - n_air}) | "
+        f"{n_false / n_weeks if n_weeks else math.nan:.2f} | "
+        f"{'PASS' if n_false == 0 and n_weeks >= 30 / 7 else ('FAIL' if n_false else 'n/a (under a month)')} |",
+        f"| all no-event time (normal traces, and the 2 h before each event) | {weeks:.1f} | {false} | "
+        f"{false / weeks if weeks else math.nan:.2f} | |",
+    ]
     busy = [r for r in results if r["kind"] == "busy"]
     if busy:
+
         def counts(tag):
-            return " / ".join(str(sum(r[tag][lv] for r in busy))
-                              for lv in ("approaching", "crossed", "regime"))
-        lines += ["", "| busy walk-in, air probe (door open 1-3 min every 30-120 min) | item-weeks | "
-                  "openings (air past the threshold) | alerts approaching / crossed / regime, no "
-                  f"delay | with delay = {BUSY_DELAY_S / MIN:.0f} min |", "|---|---|---|---|---|",
-                  f"| {len(busy)} trace{'' if len(busy) == 1 else 's'} | {sum(r['air_weeks'] for r in busy):.1f} | "
-                  f"{sum(r['openings'] for r in busy)} ({sum(r['past'] for r in busy)}) | "
-                  f"{counts('plain')} | {counts('delayed')} |"]
+            return " / ".join(
+                str(sum(r[tag][lv] for r in busy)) for lv in ("approaching", "crossed", "regime")
+            )
+
+        lines += [
+            "",
+            "| busy walk-in, air probe (door open 1-3 min every 30-120 min) | item-weeks | "
+            "openings (air past the threshold) | alerts approaching / crossed / regime, no "
+            f"delay | with delay = {BUSY_DELAY_S / MIN:.0f} min |",
+            "|---|---|---|---|---|",
+            f"| {len(busy)} trace{'' if len(busy) == 1 else 's'} | {sum(r['air_weeks'] for r in busy):.1f} | "
+            f"{sum(r['openings'] for r in busy)} ({sum(r['past'] for r in busy)}) | "
+            f"{counts('plain')} | {counts('delayed')} |",
+        ]
     return lines
 
 
@@ -389,12 +491,22 @@ def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true")
     ap.add_argument("--seed", type=int, default=2026)
-    ap.add_argument("--jobs", type=int, default=os.cpu_count() or 1,
-                    help="worker processes (default: one per CPU)")
-    ap.add_argument("--no-defrost-signal", action="store_true",
-                    help="do not tell the probes of the controller's defrosts (shows what it buys)")
-    ap.add_argument("--readme", action="store_true",
-                    help="also rewrite the alerting table in README.md (between the bench's markers)")
+    ap.add_argument(
+        "--jobs",
+        type=int,
+        default=os.cpu_count() or 1,
+        help="worker processes (default: one per CPU)",
+    )
+    ap.add_argument(
+        "--no-defrost-signal",
+        action="store_true",
+        help="do not tell the probes of the controller's defrosts (shows what it buys)",
+    )
+    ap.add_argument(
+        "--readme",
+        action="store_true",
+        help="also rewrite the alerting table in README.md (between the bench's markers)",
+    )
     ap.add_argument("--out", default=str(Path(__file__).resolve().parent.parent / "docs"))
     args = ap.parse_args(argv)
     if args.jobs < 1:
@@ -404,28 +516,50 @@ def main(argv: list[str] | None = None) -> int:
     cases = QUICK_CASES if args.quick else CASES
     days = QUICK_NORMAL_DAYS if args.quick else NORMAL_DAYS
     results, elapsed = run_all(cases, days, args.seed, args.jobs)
-    cmd = ("python scripts/bench_alerts.py " + " ".join(argv if argv is not None else sys.argv[1:])).strip()
-    text = "\n".join([
-        "# Alerting bench", "",
-        f"Produced by `{cmd}` ({elapsed:.0f} s, seed {args.seed}). Rules: lead 45 min, hysteresis "
-        "0.5 degC, hold 5 min, horizon 24 h, window 2 h; refits every "
-        f"{REFIT_EVENT_S / MIN:g} min on event traces and {REFIT_NORMAL_S / MIN:g} min on normal traces; "
-        "threshold 8 degC; the load probe is fitted with the air probe as measured ambient; "
-        + ("both probes get the controller's defrost signal (on at each defrost's start, off at "
-           "its end; none after a power failure) and hold new alerts through a defrost and 30 min "
-           "after it (at most 60 min + 30 min)." if DEFROST_SIGNAL else
-           "no defrost signal is given (`--no-defrost-signal`)."),
-        "", "Forecasts support decisions; they are not a food-safety plan or a regulatory record.",
-        "", *table(results), ""])
+    cmd = (
+        "python scripts/bench_alerts.py " + " ".join(argv if argv is not None else sys.argv[1:])
+    ).strip()
+    text = "\n".join(
+        [
+            "# Alerting bench",
+            "",
+            f"Produced by `{cmd}` ({elapsed:.0f} s, seed {args.seed}). Rules: lead 45 min, hysteresis "
+            "0.5 degC, hold 5 min, horizon 24 h, window 2 h; refits every "
+            f"{REFIT_EVENT_S / MIN:g} min on event traces and {REFIT_NORMAL_S / MIN:g} min on normal traces; "
+            "threshold 8 degC; the load probe is fitted with the air probe as measured ambient; "
+            + (
+                "both probes get the controller's defrost signal (on at each defrost's start, off at "
+                "its end; none after a power failure) and hold new alerts through a defrost and 30 min "
+                "after it (at most 60 min + 30 min)."
+                if DEFROST_SIGNAL
+                else "no defrost signal is given (`--no-defrost-signal`)."
+            ),
+            "",
+            "Forecasts support decisions; they are not a food-safety plan or a regulatory record.",
+            "",
+            *table(results),
+            "",
+        ]
+    )
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
     (out / "bench_alerts.md").write_text(text)
     if args.readme:
-        err = update_readme(Path(__file__).resolve().parent.parent / "README.md",
-                            "\n".join([README_BEGIN, f"Measured by `{cmd}` ({elapsed:.0f} s, seed "
-                                        f"{args.seed}; lead 45 min, threshold 8 degC):", "",
-                                        *table(results), README_END]),
-                            README_BEGIN, README_END)
+        err = update_readme(
+            Path(__file__).resolve().parent.parent / "README.md",
+            "\n".join(
+                [
+                    README_BEGIN,
+                    f"Measured by `{cmd}` ({elapsed:.0f} s, seed "
+                    f"{args.seed}; lead 45 min, threshold 8 degC):",
+                    "",
+                    *table(results),
+                    README_END,
+                ]
+            ),
+            README_BEGIN,
+            README_END,
+        )
         if err:
             print(f"bench_alerts: {err}", file=sys.stderr)
     print(text)

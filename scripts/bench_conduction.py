@@ -30,11 +30,18 @@ def chill_case(seed: int, geometry: str):
     rng = np.random.default_rng(seed)
     c = Corruption(noise=float(rng.uniform(0.1, 0.3)), quantum=0.1)
     amb = float(rng.uniform(-5.0, 3.0))
-    s = core_probe(seed, geometry=geometry, biot=float(np.exp(rng.uniform(np.log(0.3), np.log(5)))),
-                   a_per_s=float(np.exp(rng.uniform(np.log(1 / 40000), np.log(1 / 8000)))),
-                   t_i=float(rng.uniform(60, 75)), ambient=amb, threshold=21.0,
-                   seen_fraction=float(rng.uniform(0.35, 0.65)), dt_s=float(rng.uniform(30, 60)),
-                   corruption=c)
+    s = core_probe(
+        seed,
+        geometry=geometry,
+        biot=float(np.exp(rng.uniform(np.log(0.3), np.log(5)))),
+        a_per_s=float(np.exp(rng.uniform(np.log(1 / 40000), np.log(1 / 8000)))),
+        t_i=float(rng.uniform(60, 75)),
+        ambient=amb,
+        threshold=21.0,
+        seen_fraction=float(rng.uniform(0.35, 0.65)),
+        dt_s=float(rng.uniform(30, 60)),
+        corruption=c,
+    )
     return s, amb
 
 
@@ -42,13 +49,20 @@ def warm_case(seed: int, geometry: str, bi_range=(0.3, 5.0)):
     rng = np.random.default_rng(seed)
     c = Corruption(noise=float(rng.uniform(0.05, 0.2)), quantum=0.1)
     air0 = float(rng.uniform(3.0, 5.0))
-    s = core_probe(seed, geometry=geometry,
-                   biot=float(np.exp(rng.uniform(np.log(bi_range[0]), np.log(bi_range[1])))),
-                   a_per_s=float(np.exp(rng.uniform(np.log(1 / 40000), np.log(1 / 8000)))),
-                   t_i=float(rng.uniform(1.0, 4.0)), ambient=air0, threshold=8.0,
-                   seen_fraction=float(rng.uniform(0.35, 0.65)), dt_s=60.0, corruption=c,
-                   ambient_rise=float(rng.uniform(22.0, 30.0)) - air0,
-                   ambient_k_per_s=1.0 / float(rng.uniform(3600, 10800)))
+    s = core_probe(
+        seed,
+        geometry=geometry,
+        biot=float(np.exp(rng.uniform(np.log(bi_range[0]), np.log(bi_range[1])))),
+        a_per_s=float(np.exp(rng.uniform(np.log(1 / 40000), np.log(1 / 8000)))),
+        t_i=float(rng.uniform(1.0, 4.0)),
+        ambient=air0,
+        threshold=8.0,
+        seen_fraction=float(rng.uniform(0.35, 0.65)),
+        dt_s=60.0,
+        corruption=c,
+        ambient_rise=float(rng.uniform(22.0, 30.0)) - air0,
+        ambient_k_per_s=1.0 / float(rng.uniform(3600, 10800)),
+    )
     return s
 
 
@@ -58,13 +72,20 @@ def _err(eta, truth):
 
 def _row(name, errs, covered, n_pts, ms):
     e = np.asarray(errs)
-    return (f"| {name} | {len(e)} | {np.median(n_pts):.0f} | {100 * np.median(e):.1f} | "
-            f"{100 * np.quantile(e, 0.9):.1f} | {100 * np.mean(covered):.0f} | {np.median(ms):.0f} |")
+    return (
+        f"| {name} | {len(e)} | {np.median(n_pts):.0f} | {100 * np.median(e):.1f} | "
+        f"{100 * np.quantile(e, 0.9):.1f} | {100 * np.mean(covered):.0f} | {np.median(ms):.0f} |"
+    )
 
 
 def accuracy(n_cases: int) -> list[str]:
-    lines = [("| family (right geometry given) | cases | points | median err % | p90 err % | "
-             "90 % interval covers % | CPU ms per fit+interval |"), "|---|---|---|---|---|---|---|"]
+    lines = [
+        (
+            "| family (right geometry given) | cases | points | median err % | p90 err % | "
+            "90 % interval covers % | CPU ms per fit+interval |"
+        ),
+        "|---|---|---|---|---|---|---|",
+    ]
     for mode in ("known", "fitted", "measured"):
         for g in GEOMETRIES:
             errs, cov, pts, ms = [], [], [], []
@@ -81,18 +102,27 @@ def accuracy(n_cases: int) -> list[str]:
                 eta, lo, hi = fit.time_to_threshold(s.threshold)
                 ms.append(1e3 * (time.process_time() - t0))
                 errs.append(_err(eta, s.eta_true_s))
-                cov.append(lo is not None and lo <= s.eta_true_s and (hi is None or
-                                                                     s.eta_true_s <= hi))
+                cov.append(
+                    lo is not None and lo <= s.eta_true_s and (hi is None or s.eta_true_s <= hi)
+                )
                 pts.append(s.t.size)
-            name = {"known": "chill, ambient known", "fitted": "chill, ambient fitted",
-                    "measured": "warm, air measured"}[mode]
+            name = {
+                "known": "chill, ambient known",
+                "fitted": "chill, ambient fitted",
+                "measured": "warm, air measured",
+            }[mode]
             lines.append(_row(f"{name}, {g}", errs, cov, pts, ms))
     return lines
 
 
 def selection(n_cases: int) -> list[str]:
-    lines = [("| family (geometry not given) | cases | right geometry % | median err % "
-             "(chosen) | p90 err % (chosen) |"), "|---|---|---|---|---|"]
+    lines = [
+        (
+            "| family (geometry not given) | cases | right geometry % | median err % "
+            "(chosen) | p90 err % (chosen) |"
+        ),
+        "|---|---|---|---|---|",
+    ]
     for mode in ("known", "fitted"):
         for g in GEOMETRIES:
             right, errs = 0, []
@@ -103,16 +133,22 @@ def selection(n_cases: int) -> list[str]:
                 right += best.geometry == g
                 errs.append(_err(best.time_to_threshold(s.threshold)[0], s.eta_true_s))
             e = np.asarray(errs)
-            lines.append(f"| chill, ambient {mode}, true {g} | {n_cases} | "
-                         f"{100 * right / n_cases:.0f} | {100 * np.median(e):.1f} | "
-                         f"{100 * np.quantile(e, 0.9):.1f} |")
+            lines.append(
+                f"| chill, ambient {mode}, true {g} | {n_cases} | "
+                f"{100 * right / n_cases:.0f} | {100 * np.median(e):.1f} | "
+                f"{100 * np.quantile(e, 0.9):.1f} |"
+            )
     return lines
 
 
 def speed(repeats: int) -> list[str]:
-    lines = [("| geometry | ambient | points | median CPU ms (fit) | "
-             "median CPU ms (fit + ETA interval) |"),
-             "|---|---|---|---|---|"]
+    lines = [
+        (
+            "| geometry | ambient | points | median CPU ms (fit) | "
+            "median CPU ms (fit + ETA interval) |"
+        ),
+        "|---|---|---|---|---|",
+    ]
     for g in GEOMETRIES:
         for mode in ("known", "fitted", "measured"):
             if mode == "measured":
@@ -133,8 +169,9 @@ def speed(repeats: int) -> list[str]:
                 t2 = time.process_time()
                 fit_ms.append(1e3 * (t1 - t0))
                 all_ms.append(1e3 * (t2 - t0))
-            lines.append(f"| {g} | {mode} | {t.size} | {np.median(fit_ms):.1f} | "
-                         f"{np.median(all_ms):.1f} |")
+            lines.append(
+                f"| {g} | {mode} | {t.size} | {np.median(fit_ms):.1f} | {np.median(all_ms):.1f} |"
+            )
     return lines
 
 
@@ -163,38 +200,51 @@ def crb(n_cases: int) -> list[str]:
         tr = s.truth
         # readings: noise and 0.1 quantisation (variance q^2 / 12); air: 0.1 noise, same quantum
         air_sd = math.sqrt(0.1**2 + 0.1**2 / 12) / math.sqrt(len(kw["ambient_t"]))
-        sd = crb_eta_sd(s.t, "sphere", t_i=tr["Ti"], ambient=amb, biot=tr["biot"],
-                        a_per_s=tr["a_per_s"], threshold=s.threshold,
-                        noise_sd=math.sqrt(noise**2 + 0.1**2 / 12), t0_s=tr["t0"],
-                        ambient_sd=air_sd)
+        sd = crb_eta_sd(
+            s.t,
+            "sphere",
+            t_i=tr["Ti"],
+            ambient=amb,
+            biot=tr["biot"],
+            a_per_s=tr["a_per_s"],
+            threshold=s.threshold,
+            noise_sd=math.sqrt(noise**2 + 0.1**2 / 12),
+            t0_s=tr["t0"],
+            ambient_sd=air_sd,
+        )
         rel.append(sd / s.eta_true_s)
         fc = forecast(s.t, s.y, s.threshold, **kw)
         errs.append(_err(fc.eta_s, s.eta_true_s))
     rel_a = np.asarray(rel)
     # median |error| an unbiased estimator at the bound would reach: |N(0, crb)| per case
     sim = np.abs(np.random.default_rng(1).normal(size=(2000, rel_a.size))) * rel_a
-    return ["| family | cases | median CRB sd / ETA | p90 CRB sd / ETA | cases with CRB <= 10 % | "
-            "median error at the CRB (simulated) | forecast median error |",
-            "|---|---|---|---|---|---|---|",
-            f"| sphere centre Bi 0.8-4, air measured | {n_cases} | {100 * np.median(rel_a):.0f} % | "
-            f"{100 * np.quantile(rel_a, 0.9):.0f} % | {100 * np.mean(rel_a <= 0.10):.0f} % | "
-            f"{100 * float(np.median(np.median(sim, axis=1))):.0f} % | "
-            f"{100 * np.median(errs):.1f} % |"]
+    return [
+        "| family | cases | median CRB sd / ETA | p90 CRB sd / ETA | cases with CRB <= 10 % | "
+        "median error at the CRB (simulated) | forecast median error |",
+        "|---|---|---|---|---|---|---|",
+        f"| sphere centre Bi 0.8-4, air measured | {n_cases} | {100 * np.median(rel_a):.0f} % | "
+        f"{100 * np.quantile(rel_a, 0.9):.0f} % | {100 * np.mean(rel_a <= 0.10):.0f} % | "
+        f"{100 * float(np.median(np.median(sim, axis=1))):.0f} % | "
+        f"{100 * np.median(errs):.1f} % |",
+    ]
 
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--cases", type=int, default=30, help="cases per family (default 30)")
     ap.add_argument("--repeats", type=int, default=7, help="timing repeats (default 7)")
-    ap.add_argument("--only", choices=("speed", "accuracy", "selection", "crb"),
-                    help="print one table only")
+    ap.add_argument(
+        "--only", choices=("speed", "accuracy", "selection", "crb"), help="print one table only"
+    )
     args = ap.parse_args()
     tables = {
         "speed": ("Time per fit", lambda: speed(args.repeats)),
         "accuracy": ("Forecast error with the right geometry", lambda: accuracy(args.cases)),
         "selection": ("Geometry chosen by AICc", lambda: selection(max(args.cases // 2, 5))),
-        "crb": ("Information limit of issue 2's sphere family (Cramer-Rao)",
-                lambda: crb(2 * args.cases)),
+        "crb": (
+            "Information limit of issue 2's sphere family (Cramer-Rao)",
+            lambda: crb(2 * args.cases),
+        ),
     }
     for key, (title, make) in tables.items():
         if args.only in (None, key):

@@ -40,8 +40,9 @@ def wort(seed: int, spikes: bool = False):
     k = 1 / tau
     dur = seen(T0, amb, k, 20.0, frac)
     c = Corruption(noise=noise, quantum=0.1, spike_frac=0.02 if spikes else 0.0, spike_size=15.0)
-    s = synth.lumped(seed, T0=T0, ambient=amb, k_per_s=k, threshold=20.0, duration_s=dur, dt_s=dt,
-                     corruption=c)
+    s = synth.lumped(
+        seed, T0=T0, ambient=amb, k_per_s=k, threshold=20.0, duration_s=dur, dt_s=dt, corruption=c
+    )
     T_now = synth.lumped_curve(np.array([s.t_last - s.truth["t0"]]), T0, amb, k)[0]
     crb = crb_eta_sd(np.sort(s.t), T_now, k, amb, 20.0, noise)
     return s, {}, crb, amb
@@ -54,8 +55,16 @@ def warming_known_off(seed: int):
     noise, frac = r.uniform(0.05, 0.2), r.uniform(0.35, 0.65)
     k, thr = 1 / tau, 8.0
     dur = seen(T0, amb, k, thr, frac)
-    s = synth.lumped(seed, T0=T0, ambient=amb, k_per_s=k, threshold=thr, duration_s=dur, dt_s=60.0,
-                     corruption=Corruption(noise=noise, quantum=0.1))
+    s = synth.lumped(
+        seed,
+        T0=T0,
+        ambient=amb,
+        k_per_s=k,
+        threshold=thr,
+        duration_s=dur,
+        dt_s=60.0,
+        corruption=Corruption(noise=noise, quantum=0.1),
+    )
     given = amb + (2.0 if r.random() < 0.5 else -2.0)
     T_now = synth.lumped_curve(np.array([s.t_last - s.truth["t0"]]), T0, amb, k)[0]
     crb = crb_eta_sd_known(np.sort(s.t), T_now, k, amb, thr, noise)
@@ -68,15 +77,27 @@ def reefer_air(seed: int):
     T0 = r.uniform(2, 5)
     out, ta, tl = r.uniform(25, 35), r.uniform(0.5, 2) * 3600, r.uniform(3, 8) * 3600
     noise, frac = r.uniform(0.05, 0.2), r.uniform(0.35, 0.65)
-    kw = {"load_T0": T0, "air_T0": T0, "outside": out, "k_air_per_s": 1 / ta, "k_load_per_s": 1 / tl}
+    kw = {
+        "load_T0": T0,
+        "air_T0": T0,
+        "outside": out,
+        "k_air_per_s": 1 / ta,
+        "k_load_per_s": 1 / tl,
+    }
     probe = synth.measured_air(seed, threshold=8.0, duration_s=1e6, dt_s=60.0, **kw)
     cross = probe.crossing_t_true - probe.truth["t0"]
     if SEEN["mode"] == "temperature":  # when the load has gone frac of the way to 8 degC
         x = np.linspace(0, cross, 4001)
         load = synth.air_load_curves(x, **kw)[1]
         cross = float(np.interp(T0 + frac * (8.0 - T0), load, x)) / frac
-    s = synth.measured_air(seed, threshold=8.0, duration_s=frac * cross, dt_s=60.0,
-                           corruption=Corruption(noise=noise, quantum=0.1), **kw)
+    s = synth.measured_air(
+        seed,
+        threshold=8.0,
+        duration_s=frac * cross,
+        dt_s=60.0,
+        corruption=Corruption(noise=noise, quantum=0.1),
+        **kw,
+    )
     return s, {"ambient_t": s.ambient_t, "ambient_y": s.ambient_y}, None, out
 
 
@@ -87,9 +108,18 @@ def sphere_measured(seed: int):
     r = np.random.default_rng(40_000 + seed)
     bi, a = r.uniform(0.8, 4.0), r.uniform(3e-5, 1e-4)
     t_i, amb, noise = r.uniform(2, 4), r.uniform(20, 30), r.uniform(0.05, 0.2)
-    s = core_probe(seed, geometry="sphere", biot=bi, a_per_s=a, t_i=t_i, ambient=amb, threshold=8.0,
-                   seen_fraction=r.uniform(0.35, 0.65), dt_s=60.0,
-                   corruption=Corruption(noise=noise, quantum=0.1))
+    s = core_probe(
+        seed,
+        geometry="sphere",
+        biot=bi,
+        a_per_s=a,
+        t_i=t_i,
+        ambient=amb,
+        threshold=8.0,
+        seen_fraction=r.uniform(0.35, 0.65),
+        dt_s=60.0,
+        corruption=Corruption(noise=noise, quantum=0.1),
+    )
     at = np.sort(s.t)
     ay = np.round((amb + r.normal(0, 0.1, at.size)) / 0.1) * 0.1
     return s, {"model": "sphere", "ambient_t": at, "ambient_y": ay}, None, amb
@@ -109,9 +139,18 @@ def sphere_chiller(seed: int):
     r = np.random.default_rng(45_000 + seed)
     bi, alpha, radius = r.uniform(0.8, 4.0), r.uniform(1.2e-7, 1.6e-7), r.uniform(0.02, 0.08)
     t_i, amb, noise = r.uniform(60, 75), r.uniform(-5, 3), r.uniform(0.05, 0.2)
-    s = core_probe(seed, geometry="sphere", biot=bi, a_per_s=alpha / radius**2, t_i=t_i,
-                   ambient=amb, threshold=21.0, seen_fraction=r.uniform(0.35, 0.65), dt_s=60.0,
-                   corruption=Corruption(noise=noise, quantum=0.1))
+    s = core_probe(
+        seed,
+        geometry="sphere",
+        biot=bi,
+        a_per_s=alpha / radius**2,
+        t_i=t_i,
+        ambient=amb,
+        threshold=21.0,
+        seen_fraction=r.uniform(0.35, 0.65),
+        dt_s=60.0,
+        corruption=Corruption(noise=noise, quantum=0.1),
+    )
     at = np.sort(s.t)
     ay = np.round((amb + r.normal(0, 0.1, at.size)) / 0.1) * 0.1
     return s, {"model": "sphere", "ambient_t": at, "ambient_y": ay, "limit": "lower"}, None, amb
@@ -121,9 +160,16 @@ def never_reaching(seed: int):
     """Cooling from 50-70 degC toward 24-28 degC with a threshold of 21 degC: never reached."""
     r = np.random.default_rng(50_000 + seed)
     T0, amb, tau = r.uniform(50, 70), r.uniform(24, 28), r.uniform(20, 60) * 60
-    s = synth.lumped(seed, T0=T0, ambient=amb, k_per_s=1 / tau, threshold=21.0,
-                     duration_s=r.uniform(1, 2) * tau, dt_s=30.0,
-                     corruption=Corruption(noise=r.uniform(0.05, 0.3), quantum=0.1))
+    s = synth.lumped(
+        seed,
+        T0=T0,
+        ambient=amb,
+        k_per_s=1 / tau,
+        threshold=21.0,
+        duration_s=r.uniform(1, 2) * tau,
+        dt_s=30.0,
+        corruption=Corruption(noise=r.uniform(0.05, 0.3), quantum=0.1),
+    )
     return s, {}, None, amb
 
 
@@ -164,14 +210,19 @@ def run_family(make, n: int, seed0: int, baselines: bool) -> dict:
             lin.append(math.inf if e is None else abs(e - truth) / truth)
             e = curve_fit_eta(s.t, s.y, s.threshold)
             cf.append(math.inf if e is None else abs(e - truth) / truth)
+
     def med(v):
         return float(np.median(v)) if v else math.nan
 
     return {
-        "n": n, "median": med(errs), "p90": float(np.percentile(errs, 90)) if errs else math.nan,
+        "n": n,
+        "median": med(errs),
+        "p90": float(np.percentile(errs, 90)) if errs else math.nan,
         "coverage": float(np.mean(cover)) if cover else math.nan,
         "crb_ratio": float(np.sqrt(np.mean(np.square(z)))) if len(z) > 10 else math.nan,
-        "linear": med(lin), "curve_fit": med(cf), "no_eta": no_eta / n,
+        "linear": med(lin),
+        "curve_fit": med(cf),
+        "no_eta": no_eta / n,
         "ms": 1e3 * float(np.median(times)),
     }
 
@@ -185,15 +236,23 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--cases", type=int, default=300)
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--sphere-cases", type=int, default=None, help="default: --cases")
-    p.add_argument("--seen", choices=["time", "temperature"], default="time",
-                   help="'35-65 %% of the way' measured in time to the crossing (default, as the "
-                        "core-probe generator does) or in temperature")
+    p.add_argument(
+        "--seen",
+        choices=["time", "temperature"],
+        default="time",
+        help="'35-65 %% of the way' measured in time to the crossing (default, as the "
+        "core-probe generator does) or in temperature",
+    )
     p.add_argument("--only", default="", help="run only the families whose name contains this")
     args = p.parse_args(argv)
     SEEN["mode"] = args.seen
-    print(f"seen fraction measured in {args.seen}; seeds {args.seed}..{args.seed + args.cases - 1}\n")
-    print("| family | target | n | median rel. error | p90 | 90 % coverage | spread / CRB | "
-          "no ETA | linear 30 min (median) | curve_fit (median) | ms per forecast |")
+    print(
+        f"seen fraction measured in {args.seen}; seeds {args.seed}..{args.seed + args.cases - 1}\n"
+    )
+    print(
+        "| family | target | n | median rel. error | p90 | 90 % coverage | spread / CRB | "
+        "no ETA | linear 30 min (median) | curve_fit (median) | ms per forecast |"
+    )
     print("|---|---|---|---|---|---|---|---|---|---|---|")
     for name, make, target in FAMILIES:
         if args.only not in name:
@@ -205,9 +264,11 @@ def main(argv: list[str] | None = None) -> int:
             print(f"| {name} | {target} | 0 | not available: {exc} | | | | | | | |")
             continue
         crb = "-" if not math.isfinite(r["crb_ratio"]) else f"{r['crb_ratio']:.2f}"
-        print(f"| {name} | {target} | {r['n']} | {pct(r['median'])} | {pct(r['p90'])} | "
-              f"{pct(r['coverage'])} | {crb} | {pct(r['no_eta'])} | {pct(r['linear'])} | "
-              f"{pct(r['curve_fit'])} | {r['ms']:.1f} |")
+        print(
+            f"| {name} | {target} | {r['n']} | {pct(r['median'])} | {pct(r['p90'])} | "
+            f"{pct(r['coverage'])} | {crb} | {pct(r['no_eta'])} | {pct(r['linear'])} | "
+            f"{pct(r['curve_fit'])} | {r['ms']:.1f} |"
+        )
         sys.stdout.flush()
     return 0
 

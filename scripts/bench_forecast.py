@@ -60,49 +60,135 @@ MISSING_ERR = 10.0  # a missing ETA counts as a 1000 % error
 # ---------------------------------------------------------------------------------------------
 PARAMS: dict[str, dict] = {
     # hot wort through a plate chiller toward the coolant; ambient fitted (issue 2, section 5)
-    "chill_fitted": dict(T0=(90.0, 98.0), ambient=(8.0, 15.0), tau_s=(8 * MIN, 25 * MIN),
-                         dt_s=(5.0, 15.0), noise=(0.05, 0.3), threshold=20.0, limit="lower"),
+    "chill_fitted": dict(
+        T0=(90.0, 98.0),
+        ambient=(8.0, 15.0),
+        tau_s=(8 * MIN, 25 * MIN),
+        dt_s=(5.0, 15.0),
+        noise=(0.05, 0.3),
+        threshold=20.0,
+        limit="lower",
+    ),
     # a load warming after refrigeration loss; the ambient given up to 3 degC off
-    "warm_known": dict(T0=(0.5, 4.5), ambient=(21.0, 33.0), tau_s=(2.5 * H, 9 * H),
-                       dt_s=(60.0, 300.0), noise=(0.05, 0.2), threshold=8.0, limit="upper",
-                       ambient_error=(-3.0, 3.0)),
+    "warm_known": dict(
+        T0=(0.5, 4.5),
+        ambient=(21.0, 33.0),
+        tau_s=(2.5 * H, 9 * H),
+        dt_s=(60.0, 300.0),
+        noise=(0.05, 0.2),
+        threshold=8.0,
+        limit="upper",
+        ambient_error=(-3.0, 3.0),
+    ),
     # the same load, the ambient left to the fit
-    "warm_fitted": dict(T0=(0.5, 4.5), ambient=(21.0, 33.0), tau_s=(2.5 * H, 9 * H),
-                        dt_s=(60.0, 300.0), noise=(0.05, 0.2), threshold=8.0, limit="upper"),
+    "warm_fitted": dict(
+        T0=(0.5, 4.5),
+        ambient=(21.0, 33.0),
+        tau_s=(2.5 * H, 9 * H),
+        dt_s=(60.0, 300.0),
+        noise=(0.05, 0.2),
+        threshold=8.0,
+        limit="upper",
+    ),
     # reefer: the air warms toward the outside, the load follows the air (ambient measured)
-    "air_probe": dict(T0=(0.5, 4.5), air_offset=(-1.0, 1.0), outside=(21.0, 33.0),
-                      air_tau_s=(0.5 * H, 2 * H), tau_s=(2.5 * H, 9 * H), dt_s=(60.0, 300.0),
-                      noise=(0.05, 0.2), threshold=8.0, limit="upper"),
+    "air_probe": dict(
+        T0=(0.5, 4.5),
+        air_offset=(-1.0, 1.0),
+        outside=(21.0, 33.0),
+        air_tau_s=(0.5 * H, 2 * H),
+        tau_s=(2.5 * H, 9 * H),
+        dt_s=(60.0, 300.0),
+        noise=(0.05, 0.2),
+        threshold=8.0,
+        limit="upper",
+    ),
     # cooked food at the centre of a slab / long cylinder / sphere in a blast chiller, the air
     # measured by its own probe; a = alpha / L^2 with alpha 1.2-1.6e-7 m2/s (moist foods, from
     # memory) and half-thickness or radius L 2-8 cm; food-code stage limit 21 degC
-    "centre_slab": dict(geometry="slab", biot=("log", 0.3, 5.0), alpha=(1.2e-7, 1.6e-7),
-                        L_m=(0.02, 0.08), T0=(60.0, 75.0), ambient=(-5.0, 3.0), dt_s=(30.0, 120.0),
-                        noise=(0.05, 0.2), threshold=21.0, limit="lower"),
-    "centre_cylinder": dict(geometry="cylinder", biot=("log", 0.3, 5.0), alpha=(1.2e-7, 1.6e-7),
-                            L_m=(0.02, 0.08), T0=(60.0, 75.0), ambient=(-5.0, 3.0),
-                            dt_s=(30.0, 120.0), noise=(0.05, 0.2), threshold=21.0, limit="lower"),
-    "centre_sphere": dict(geometry="sphere", biot=("log", 0.3, 5.0), alpha=(1.2e-7, 1.6e-7),
-                          L_m=(0.02, 0.08), T0=(60.0, 75.0), ambient=(-5.0, 3.0),
-                          dt_s=(30.0, 120.0), noise=(0.05, 0.2), threshold=21.0, limit="lower"),
+    "centre_slab": dict(
+        geometry="slab",
+        biot=("log", 0.3, 5.0),
+        alpha=(1.2e-7, 1.6e-7),
+        L_m=(0.02, 0.08),
+        T0=(60.0, 75.0),
+        ambient=(-5.0, 3.0),
+        dt_s=(30.0, 120.0),
+        noise=(0.05, 0.2),
+        threshold=21.0,
+        limit="lower",
+    ),
+    "centre_cylinder": dict(
+        geometry="cylinder",
+        biot=("log", 0.3, 5.0),
+        alpha=(1.2e-7, 1.6e-7),
+        L_m=(0.02, 0.08),
+        T0=(60.0, 75.0),
+        ambient=(-5.0, 3.0),
+        dt_s=(30.0, 120.0),
+        noise=(0.05, 0.2),
+        threshold=21.0,
+        limit="lower",
+    ),
+    "centre_sphere": dict(
+        geometry="sphere",
+        biot=("log", 0.3, 5.0),
+        alpha=(1.2e-7, 1.6e-7),
+        L_m=(0.02, 0.08),
+        T0=(60.0, 75.0),
+        ambient=(-5.0, 3.0),
+        dt_s=(30.0, 120.0),
+        noise=(0.05, 0.2),
+        threshold=21.0,
+        limit="lower",
+    ),
     # a tray in a blast chiller (lumped); the door is opened then closed again; the set point is
     # given (known ambient, up to 1 degC off); figures at minutes after the door closed
-    "regime_door": dict(T0=(60.0, 75.0), ambient=(-5.0, 2.0), tau_s=(45 * MIN, 120 * MIN),
-                        open_at=(0.15, 0.35), open_s=(2 * MIN, 10 * MIN), door_air=(18.0, 28.0),
-                        dt_s=(30.0, 60.0), noise=(0.05, 0.2), threshold=21.0, limit="lower",
-                        ambient_error=(-1.0, 1.0), after_s=(5 * MIN, 10 * MIN, 15 * MIN, 30 * MIN)),
+    "regime_door": dict(
+        T0=(60.0, 75.0),
+        ambient=(-5.0, 2.0),
+        tau_s=(45 * MIN, 120 * MIN),
+        open_at=(0.15, 0.35),
+        open_s=(2 * MIN, 10 * MIN),
+        door_air=(18.0, 28.0),
+        dt_s=(30.0, 60.0),
+        noise=(0.05, 0.2),
+        threshold=21.0,
+        limit="lower",
+        ambient_error=(-1.0, 1.0),
+        after_s=(5 * MIN, 10 * MIN, 15 * MIN, 30 * MIN),
+    ),
     # a healthy cold room's air probe: thermostat sawtooth of +-1.5 degC, period 15-40 min;
     # 2 h windows every 10 min over 12 h; no crossing of 8 degC may be forecast
-    "cycling": dict(mid=(2.5, 4.5), half_swing=1.5, period_s=(15 * MIN, 40 * MIN),
-                    warm=(12.0, 25.0), coil=(-12.0, -4.0), dt_s=(30.0, 60.0), noise=(0.05, 0.2),
-                    threshold=8.0, limit="upper", trace_s=12 * H, window_s=2 * H, step_s=10 * MIN),
+    "cycling": dict(
+        mid=(2.5, 4.5),
+        half_swing=1.5,
+        period_s=(15 * MIN, 40 * MIN),
+        warm=(12.0, 25.0),
+        coil=(-12.0, -4.0),
+        dt_s=(30.0, 60.0),
+        noise=(0.05, 0.2),
+        threshold=8.0,
+        limit="upper",
+        trace_s=12 * H,
+        window_s=2 * H,
+        step_s=10 * MIN,
+    ),
     # asymptotes on the near side of the threshold (half warming, half chilling), ambient fitted;
     # seen for 25/50/75 % of 3 time constants
-    "asymptote": dict(warm_T0=(0.5, 4.5), warm_ambient=(5.0, 7.0), warm_tau_s=(2.5 * H, 9 * H),
-                      warm_threshold=8.0, chill_T0=(90.0, 98.0), chill_ambient=(21.0, 25.0),
-                      chill_tau_s=(8 * MIN, 25 * MIN), chill_threshold=20.0,
-                      warm_dt_s=(60.0, 300.0), chill_dt_s=(5.0, 15.0), noise=(0.05, 0.2),
-                      span_tau=3.0),
+    "asymptote": dict(
+        warm_T0=(0.5, 4.5),
+        warm_ambient=(5.0, 7.0),
+        warm_tau_s=(2.5 * H, 9 * H),
+        warm_threshold=8.0,
+        chill_T0=(90.0, 98.0),
+        chill_ambient=(21.0, 25.0),
+        chill_tau_s=(8 * MIN, 25 * MIN),
+        chill_threshold=20.0,
+        warm_dt_s=(60.0, 300.0),
+        chill_dt_s=(5.0, 15.0),
+        noise=(0.05, 0.2),
+        span_tau=3.0,
+    ),
 }
 # common to all: readings quantised to 0.1 degC, sampling jitter of +-10 %
 QUANTUM = 0.1
@@ -114,8 +200,15 @@ SPIKES = dict(spike_frac=0.02, spike_size=15.0)  # 2 % of readings hit by +-(7.5
 GAP_S = (10 * MIN, 30 * MIN)
 GAP_CAP = 0.4
 AMBIENT_PROBE_NOISE = 0.1  # the blast-chiller air probe (centre families)
-VARIANT_FAMILIES = ("chill_fitted", "warm_known", "warm_fitted", "air_probe", "centre_slab",
-                    "centre_cylinder", "centre_sphere")
+VARIANT_FAMILIES = (
+    "chill_fitted",
+    "warm_known",
+    "warm_fitted",
+    "air_probe",
+    "centre_slab",
+    "centre_cylinder",
+    "centre_sphere",
+)
 VARIANTS = ("clean", "spikes", "dropouts")
 FAMILIES = tuple(PARAMS)
 RATIO_FLOOR = 1e-3  # spikes/dropouts vs clean: clean figures under 0.1 % count as 0.1 %
@@ -129,7 +222,8 @@ TARGETS = {
     "air_probe": dict(median=0.02, p90=0.05),
     "centre": dict(median=0.08, p90=0.15, pick=0.80),
     "variant_ratio": 1.5,
-    "regime_after_s": 15 * MIN, "regime_p90": 0.05,
+    "regime_after_s": 15 * MIN,
+    "regime_p90": 0.05,
     "asymptote_no_eta": 0.95,
     "coverage": (0.85, 0.95),
 }
@@ -196,8 +290,16 @@ def told_sd(family: str) -> float:
 def lumped_case(p: dict, frac: float, variant: str, seed: int, known: bool) -> Case:
     k = 1.0 / p["tau_s"]
     cross = synth.lumped_crossing_s(p["T0"], p["ambient"], k, p["threshold"])
-    s = synth.lumped(seed, T0=p["T0"], ambient=p["ambient"], k_per_s=k, threshold=p["threshold"],
-                     duration_s=frac * cross, dt_s=p["dt_s"], corruption=corruption(p, variant))
+    s = synth.lumped(
+        seed,
+        T0=p["T0"],
+        ambient=p["ambient"],
+        k_per_s=k,
+        threshold=p["threshold"],
+        duration_s=frac * cross,
+        dt_s=p["dt_s"],
+        corruption=corruption(p, variant),
+    )
     kw: dict = {"limit": p["limit"]}
     given = None
     if known:
@@ -214,34 +316,63 @@ def lumped_case(p: dict, frac: float, variant: str, seed: int, known: bool) -> C
 
 
 def air_case(p: dict, frac: float, variant: str, seed: int) -> Case:
-    kw = dict(load_T0=p["T0"], air_T0=p["T0"] + p["air_offset"], outside=p["outside"],
-              k_air_per_s=1.0 / p["air_tau_s"], k_load_per_s=1.0 / p["tau_s"],
-              threshold=p["threshold"], dt_s=p["dt_s"])
+    kw = dict(
+        load_T0=p["T0"],
+        air_T0=p["T0"] + p["air_offset"],
+        outside=p["outside"],
+        k_air_per_s=1.0 / p["air_tau_s"],
+        k_load_per_s=1.0 / p["tau_s"],
+        threshold=p["threshold"],
+        dt_s=p["dt_s"],
+    )
     probe = synth.measured_air(seed, duration_s=p["dt_s"] * 4, **kw)
     cross = probe.crossing_t_true - synth.T_START
     s = synth.measured_air(seed, duration_s=frac * cross, corruption=corruption(p, variant), **kw)
-    crb = dict(kind="air", theta=dict(outside=p["outside"], air0=p["T0"] + p["air_offset"],
-                                      k_air=1.0 / p["air_tau_s"], load0=p["T0"],
-                                      k_load=1.0 / p["tau_s"]))
-    return Case(s, {"ambient_t": s.ambient_t, "ambient_y": s.ambient_y, "limit": p["limit"]},
-                crb=crb)
+    crb = dict(
+        kind="air",
+        theta=dict(
+            outside=p["outside"],
+            air0=p["T0"] + p["air_offset"],
+            k_air=1.0 / p["air_tau_s"],
+            load0=p["T0"],
+            k_load=1.0 / p["tau_s"],
+        ),
+    )
+    return Case(
+        s, {"ambient_t": s.ambient_t, "ambient_y": s.ambient_y, "limit": p["limit"]}, crb=crb
+    )
 
 
 def centre_case(p: dict, frac: float, variant: str, seed: int, model: str | None = None) -> Case:
     from thermeta.predictors.synth_conduction import core_probe
 
     a = p["alpha"] / p["L_m"] ** 2
-    s = core_probe(seed, geometry=p["geometry"], biot=p["biot"], a_per_s=a, t_i=p["T0"],
-                   ambient=p["ambient"], threshold=p["threshold"], seen_fraction=frac,
-                   dt_s=p["dt_s"], corruption=corruption(p, variant))
+    s = core_probe(
+        seed,
+        geometry=p["geometry"],
+        biot=p["biot"],
+        a_per_s=a,
+        t_i=p["T0"],
+        ambient=p["ambient"],
+        threshold=p["threshold"],
+        seen_fraction=frac,
+        dt_s=p["dt_s"],
+        corruption=corruption(p, variant),
+    )
     # the air probe of the chiller: the constant set point, with its own noise, same instants
     rng = np.random.default_rng(seed + 1)
     at = np.unique(s.t)
     ay = np.round((p["ambient"] + rng.normal(0, AMBIENT_PROBE_NOISE, at.size)) / QUANTUM) * QUANTUM
     s.ambient_t, s.ambient_y = at, ay
     kw = {"ambient_t": at, "ambient_y": ay, "model": model or p["geometry"], "limit": p["limit"]}
-    crb = dict(kind="centre", geometry=p["geometry"], t_i=p["T0"], ambient=p["ambient"],
-               biot=p["biot"], a_per_s=a)
+    crb = dict(
+        kind="centre",
+        geometry=p["geometry"],
+        t_i=p["T0"],
+        ambient=p["ambient"],
+        biot=p["biot"],
+        a_per_s=a,
+    )
     return Case(s, kw, crb=crb)
 
 
@@ -273,11 +404,24 @@ def run_predictor(t: np.ndarray, y: np.ndarray, thr: float, kwargs: dict) -> dic
     try:
         fc = forecast_fn(t, y, thr, **kwargs)
     except Exception as exc:  # noqa: BLE001 - the bench measures; a crash is a figure too
-        return {"eta": None, "lo": None, "hi": None, "ok": False, "error": repr(exc)[:120],
-                "model": None, "crash": True}
+        return {
+            "eta": None,
+            "lo": None,
+            "hi": None,
+            "ok": False,
+            "error": repr(exc)[:120],
+            "model": None,
+            "crash": True,
+        }
     eta = fc.eta_s if fc.ok else None
-    return {"eta": eta, "lo": fc.eta_lo_s if fc.ok else None, "hi": fc.eta_hi_s if fc.ok else None,
-            "ok": bool(fc.ok), "error": None if fc.ok else fc.reason, "model": fc.model}
+    return {
+        "eta": eta,
+        "lo": fc.eta_lo_s if fc.ok else None,
+        "hi": fc.eta_hi_s if fc.ok else None,
+        "ok": bool(fc.ok),
+        "error": None if fc.ok else fc.reason,
+        "model": fc.model,
+    }
 
 
 def _baseline(fn: Callable[..., float | None], *args) -> float | None:
@@ -295,15 +439,25 @@ def run_baselines(case: Case) -> dict:
     s = case.s
     order = np.argsort(s.t, kind="stable")
     t, y = s.t[order], s.y[order]
-    out = {"linear": _baseline(baselines.linear_eta, t, y, s.threshold),
-           "lsq3": _baseline(baselines.curve_fit_eta, t, y, s.threshold)}
+    out = {
+        "linear": _baseline(baselines.linear_eta, t, y, s.threshold),
+        "lsq3": _baseline(baselines.curve_fit_eta, t, y, s.threshold),
+    }
     if case.given_ambient is not None:
-        out["two_reading"] = _baseline(baselines.two_reading_eta, t, y, case.given_ambient,
-                                       s.threshold)
+        out["two_reading"] = _baseline(
+            baselines.two_reading_eta, t, y, case.given_ambient, s.threshold
+        )
     if case.crb is not None and case.crb.get("kind") == "air":
         c = case.crb
-        out["crb_sd"] = baselines.crb_eta_sd_air(np.unique(s.t), np.unique(s.ambient_t), c["theta"],
-                                                 s.threshold, c["noise"], c["noise"], c["t0"])
+        out["crb_sd"] = baselines.crb_eta_sd_air(
+            np.unique(s.t),
+            np.unique(s.ambient_t),
+            c["theta"],
+            s.threshold,
+            c["noise"],
+            c["noise"],
+            c["t0"],
+        )
     elif case.crb is not None and case.crb.get("kind") == "centre":
         from thermeta.predictors.conduction_crb import crb_eta_sd as centre_crb
 
@@ -312,24 +466,35 @@ def run_baselines(case: Case) -> dict:
         n_air = max(1, np.unique(s.ambient_t).size)
         amb_sd = math.sqrt(AMBIENT_PROBE_NOISE**2 + QUANTUM**2 / 12) / math.sqrt(n_air)
         try:
-            out["crb_sd"] = centre_crb(np.unique(s.t), c["geometry"], t_i=c["t_i"],
-                                       ambient=c["ambient"], biot=c["biot"],
-                                       a_per_s=c["a_per_s"], threshold=s.threshold,
-                                       noise_sd=c["noise"], t0_s=c["t0"], ambient_sd=amb_sd)
+            out["crb_sd"] = centre_crb(
+                np.unique(s.t),
+                c["geometry"],
+                t_i=c["t_i"],
+                ambient=c["ambient"],
+                biot=c["biot"],
+                a_per_s=c["a_per_s"],
+                threshold=s.threshold,
+                noise_sd=c["noise"],
+                t0_s=c["t0"],
+                ambient_sd=amb_sd,
+            )
         except ValueError:
             out["crb_sd"] = math.inf
     elif case.crb is not None:
         c = case.crb
         tu = np.unique(s.t)
         # the bound is parametrised at the newest reading: T(x) = Ta + (T_now - Ta) e^(-k x)
-        t_now = float(synth.lumped_curve(np.array([tu[-1] - c["t0"]]), c["T0"], c["ambient"],
-                                         c["k_per_s"])[0])
+        t_now = float(
+            synth.lumped_curve(np.array([tu[-1] - c["t0"]]), c["T0"], c["ambient"], c["k_per_s"])[0]
+        )
         if c["known"]:
-            out["crb_sd"] = baselines.crb_eta_sd_given(tu, t_now, c["k_per_s"], c["ambient"],
-                                                       s.threshold, c["noise"], c["ambient_sd"])
+            out["crb_sd"] = baselines.crb_eta_sd_given(
+                tu, t_now, c["k_per_s"], c["ambient"], s.threshold, c["noise"], c["ambient_sd"]
+            )
         else:
-            out["crb_sd"] = baselines.crb_eta_sd(tu, t_now, c["k_per_s"], c["ambient"],
-                                                 s.threshold, c["noise"])
+            out["crb_sd"] = baselines.crb_eta_sd(
+                tu, t_now, c["k_per_s"], c["ambient"], s.threshold, c["noise"]
+            )
     return out
 
 
@@ -351,11 +516,14 @@ def run_curve_case(family: str, index: int, seed: int) -> list[dict]:
             try:
                 case = make_case(family, p, frac, variant, case_seed)
             except ValueError as exc:  # the generator refuses (e.g. never crosses): say so
-                recs.append({"family": family, "variant": variant, "progress": frac,
-                             "skipped": str(exc)})
+                recs.append(
+                    {"family": family, "variant": variant, "progress": frac, "skipped": str(exc)}
+                )
                 continue
             if case.crb is not None:
-                case.crb.update(t0=synth.T_START, noise=math.sqrt(p["noise"] ** 2 + QUANTUM**2 / 12))
+                case.crb.update(
+                    t0=synth.T_START, noise=math.sqrt(p["noise"] ** 2 + QUANTUM**2 / 12)
+                )
             rec = evaluate(family, p, case)
             rec.update(family=family, variant=variant, progress=frac, index=index)
             if family.startswith("centre_") and variant == "clean":
@@ -399,9 +567,16 @@ def run_regime_case(index: int, seed: int) -> list[dict]:
     given = p["ambient"] + p["ambient_error"]
     recs = []
     for after in p["after_s"]:
-        s = synth.regime_change(case_seed, T0=p["T0"], k_per_s=k, steps=steps,
-                                threshold=p["threshold"], duration_s=closed + after,
-                                dt_s=p["dt_s"], corruption=corruption(p, "clean"))
+        s = synth.regime_change(
+            case_seed,
+            T0=p["T0"],
+            k_per_s=k,
+            steps=steps,
+            threshold=p["threshold"],
+            duration_s=closed + after,
+            dt_s=p["dt_s"],
+            corruption=corruption(p, "clean"),
+        )
         kw = {"ambient": given, "ambient_uncertainty": told_sd(family), "limit": p["limit"]}
         case = Case(s, kw, given_ambient=given)
         rec = evaluate(family, p, case)
@@ -413,7 +588,9 @@ def run_regime_case(index: int, seed: int) -> list[dict]:
 def sawtooth_k(p: dict) -> float:
     """k giving the drawn period: off  t = ln((W - low)/(W - high))/k, on  t = ln((high - C)/(low - C))/k."""
     low, high = p["mid"] - p["half_swing"], p["mid"] + p["half_swing"]
-    logs = math.log((p["warm"] - low) / (p["warm"] - high)) + math.log((high - p["coil"]) / (low - p["coil"]))
+    logs = math.log((p["warm"] - low) / (p["warm"] - high)) + math.log(
+        (high - p["coil"]) / (low - p["coil"])
+    )
     return logs / p["period_s"]
 
 
@@ -424,18 +601,33 @@ def run_cycling_case(index: int, seed: int) -> list[dict]:
     p = draw(PARAMS[family], rng)
     case_seed = int(rng.integers(2**31))
     s = synth.compressor_sawtooth(
-        case_seed, low=p["mid"] - p["half_swing"], high=p["mid"] + p["half_swing"],
-        warm_ambient=p["warm"], cold_coil=p["coil"], k_per_s=sawtooth_k(p),
-        threshold=p["threshold"], duration_s=p["trace_s"], dt_s=p["dt_s"],
-        corruption=corruption(p, "clean"))
+        case_seed,
+        low=p["mid"] - p["half_swing"],
+        high=p["mid"] + p["half_swing"],
+        warm_ambient=p["warm"],
+        cold_coil=p["coil"],
+        k_per_s=sawtooth_k(p),
+        threshold=p["threshold"],
+        duration_s=p["trace_s"],
+        dt_s=p["dt_s"],
+        corruption=corruption(p, "clean"),
+    )
     order = np.argsort(s.t, kind="stable")
     t, y = s.t[order], s.y[order]
     recs = []
     for end in np.arange(synth.T_START + p["window_s"], t[-1] + 1.0, p["step_s"]):
         sel = (t > end - p["window_s"]) & (t <= end)
         r = run_predictor(t[sel], y[sel], p["threshold"], {"limit": p["limit"]})
-        recs.append({"family": family, "variant": "clean", "progress": 0.0, "index": index,
-                     "eta_true": None, **r})
+        recs.append(
+            {
+                "family": family,
+                "variant": "clean",
+                "progress": 0.0,
+                "index": index,
+                "eta_true": None,
+                **r,
+            }
+        )
     return recs
 
 
@@ -445,14 +637,27 @@ def run_asymptote_case(index: int, seed: int) -> list[dict]:
     p = draw(PARAMS[family], rng)
     case_seed = int(rng.integers(2**31))
     kind = "warm" if index % 2 == 0 else "chill"
-    q = {"T0": p[f"{kind}_T0"], "ambient": p[f"{kind}_ambient"], "tau_s": p[f"{kind}_tau_s"],
-         "threshold": p[f"{kind}_threshold"], "dt_s": p[f"{kind}_dt_s"], "noise": p["noise"],
-         "limit": "upper" if kind == "warm" else "lower"}
+    q = {
+        "T0": p[f"{kind}_T0"],
+        "ambient": p[f"{kind}_ambient"],
+        "tau_s": p[f"{kind}_tau_s"],
+        "threshold": p[f"{kind}_threshold"],
+        "dt_s": p[f"{kind}_dt_s"],
+        "noise": p["noise"],
+        "limit": "upper" if kind == "warm" else "lower",
+    }
     recs = []
     for frac in PROGRESS:
-        s = synth.lumped(case_seed, T0=q["T0"], ambient=q["ambient"], k_per_s=1.0 / q["tau_s"],
-                         threshold=q["threshold"], duration_s=frac * p["span_tau"] * q["tau_s"],
-                         dt_s=q["dt_s"], corruption=corruption(q, "clean"))
+        s = synth.lumped(
+            case_seed,
+            T0=q["T0"],
+            ambient=q["ambient"],
+            k_per_s=1.0 / q["tau_s"],
+            threshold=q["threshold"],
+            duration_s=frac * p["span_tau"] * q["tau_s"],
+            dt_s=q["dt_s"],
+            corruption=corruption(q, "clean"),
+        )
         rec = run_predictor(s.t, s.y, s.threshold, {"limit": q["limit"]})
         rec.update(family=family, variant=kind, progress=frac, index=index, eta_true=None)
         recs.append(rec)
@@ -513,9 +718,14 @@ def coverage(recs: list[dict]) -> float:
 
 def crb_ratio(recs: list[dict]) -> float:
     """median(|z|) / 0.6745, z = (eta - eta_true) / sd_CRB: 1 for an efficient unbiased estimator."""
-    z = [(r["eta"] - r["eta_true"]) / r["crb_sd"] for r in recs
-         if r.get("eta") is not None and r.get("eta_true") and math.isfinite(r.get("crb_sd", math.nan))
-         and r["crb_sd"] > 0]
+    z = [
+        (r["eta"] - r["eta_true"]) / r["crb_sd"]
+        for r in recs
+        if r.get("eta") is not None
+        and r.get("eta_true")
+        and math.isfinite(r.get("crb_sd", math.nan))
+        and r["crb_sd"] > 0
+    ]
     return float(np.median(np.abs(z)) / 0.6745) if z else math.nan
 
 
@@ -525,8 +735,11 @@ def crb_limited(recs: list[dict], draws: int = 400) -> tuple[float, float] | Non
     readings cannot determine the parameters, e.g. two readings of a three-parameter curve)
     counts as a missing ETA, as the predictor's "too few readings" does."""
     # sorted: the pool's order (the workers finish in any order) must not change the draws
-    rel = sorted(r["crb_sd"] / r["eta_true"] for r in recs
-                 if (r.get("eta_true") or 0) > 0 and not math.isnan(r.get("crb_sd", math.nan)))
+    rel = sorted(
+        r["crb_sd"] / r["eta_true"]
+        for r in recs
+        if (r.get("eta_true") or 0) > 0 and not math.isnan(r.get("crb_sd", math.nan))
+    )
     if not rel:
         return None
     z = np.abs(np.random.default_rng(0).standard_normal((len(rel), draws)))
@@ -543,11 +756,16 @@ def summarise(records: list[dict]) -> dict:
     for key, recs in groups.items():
         done = [r for r in recs if "skipped" not in r]
         e = rel_errors(done)
-        row = {"n": len(done), "skipped": len(recs) - len(done),
-               "crashed": sum(1 for r in done if r.get("crash")),
-               "no_eta": sum(1 for r in done if r.get("eta") is None),
-               "failed": sum(1 for r in done if not r.get("ok")),
-               "cover": coverage(done), "crb": crb_ratio(done), "crb_limited": crb_limited(done)}
+        row = {
+            "n": len(done),
+            "skipped": len(recs) - len(done),
+            "crashed": sum(1 for r in done if r.get("crash")),
+            "no_eta": sum(1 for r in done if r.get("eta") is None),
+            "failed": sum(1 for r in done if not r.get("ok")),
+            "cover": coverage(done),
+            "crb": crb_ratio(done),
+            "crb_limited": crb_limited(done),
+        }
         row["median"], row["p90"] = med_p90(e)
         for b in ("linear", "lsq3", "two_reading"):
             if any(b in r for r in done):
@@ -555,8 +773,9 @@ def summarise(records: list[dict]) -> dict:
         # what the interval says where the point forecast cannot (an open late end; no point
         # ETA, yet an early end: the readings allow a crossing from then on)
         row["open_hi"] = sum(1 for r in done if r.get("ok") and r.get("hi") is None)
-        row["never_allowed"] = sum(1 for r in done if r.get("ok") and r.get("eta") is None
-                                   and r.get("lo") is not None)
+        row["never_allowed"] = sum(
+            1 for r in done if r.get("ok") and r.get("eta") is None and r.get("lo") is not None
+        )
         picks = [r["auto_model"] for r in done if "auto_model" in r]
         if picks:
             geometry = key[0].removeprefix("centre_")
@@ -643,10 +862,14 @@ def checks(summary: dict, families: tuple[str, ...]) -> list[Check]:
     out: list[Check] = []
 
     def add(target, figure, values, limit_text, test, fmt="pct", limited=None):
-        beyond = [i for i, (v, lim) in enumerate(zip(values, limited or []))
-                  if math.isfinite(v) and not test(v) and math.isfinite(lim) and not test(lim)]
-        out.append(Check(target, figure, values, limit_text, _all(values, test), fmt,
-                         limited, beyond))
+        beyond = [
+            i
+            for i, (v, lim) in enumerate(zip(values, limited or []))
+            if math.isfinite(v) and not test(v) and math.isfinite(lim) and not test(lim)
+        ]
+        out.append(
+            Check(target, figure, values, limit_text, _all(values, test), fmt, limited, beyond)
+        )
 
     def limited(fam, stat):
         i = 0 if stat == "median" else 1
@@ -655,14 +878,30 @@ def checks(summary: dict, families: tuple[str, ...]) -> list[Check]:
 
     if "chill_fitted" in families:
         t = T["chill_fitted"]
-        add("chilled liquid", "median", _series(summary, "chill_fitted", "clean", "median"),
-            f"<= {100 * t['median']:g} %", lambda v: v <= t["median"],
-            limited=limited("chill_fitted", "median"))
-        add("chilled liquid", "p90", _series(summary, "chill_fitted", "clean", "p90"),
-            f"<= {100 * t['p90']:g} %", lambda v: v <= t["p90"],
-            limited=limited("chill_fitted", "p90"))
-        add("chilled liquid", "spread / CRB", _series(summary, "chill_fitted", "clean", "crb"),
-            f"<= {t['crb']:g}", lambda v: v <= t["crb"], "ratio")
+        add(
+            "chilled liquid",
+            "median",
+            _series(summary, "chill_fitted", "clean", "median"),
+            f"<= {100 * t['median']:g} %",
+            lambda v: v <= t["median"],
+            limited=limited("chill_fitted", "median"),
+        )
+        add(
+            "chilled liquid",
+            "p90",
+            _series(summary, "chill_fitted", "clean", "p90"),
+            f"<= {100 * t['p90']:g} %",
+            lambda v: v <= t["p90"],
+            limited=limited("chill_fitted", "p90"),
+        )
+        add(
+            "chilled liquid",
+            "spread / CRB",
+            _series(summary, "chill_fitted", "clean", "crb"),
+            f"<= {t['crb']:g}",
+            lambda v: v <= t["crb"],
+            "ratio",
+        )
     for fam in VARIANT_FAMILIES:
         if fam not in families:
             continue
@@ -676,84 +915,159 @@ def checks(summary: dict, families: tuple[str, ...]) -> list[Check]:
                 i = 0 if stat == "median" else 1
                 lim_c = _series(summary, fam, "clean", "crb_limited")
                 lim_d = _series(summary, fam, var, "crb_limited")
-                lim = [d[i] / max(c[i], RATIO_FLOOR)
-                       if isinstance(c, tuple) and isinstance(d, tuple) else math.nan
-                       for c, d in zip(lim_c, lim_d)]
-                add(f"{fam} with {var}", f"{stat} / clean {stat}", ratios,
-                    f"<= {T['variant_ratio']:g}", lambda v: v <= T["variant_ratio"], "ratio",
-                    limited=lim)
+                lim = [
+                    d[i] / max(c[i], RATIO_FLOOR)
+                    if isinstance(c, tuple) and isinstance(d, tuple)
+                    else math.nan
+                    for c, d in zip(lim_c, lim_d)
+                ]
+                add(
+                    f"{fam} with {var}",
+                    f"{stat} / clean {stat}",
+                    ratios,
+                    f"<= {T['variant_ratio']:g}",
+                    lambda v: v <= T["variant_ratio"],
+                    "ratio",
+                    limited=lim,
+                )
     if "warm_known" in families:
         t = T["warm_known"]
-        add("warming, ambient known", "median", _series(summary, "warm_known", "clean", "median"),
-            f"<= {100 * t['median']:g} %", lambda v: v <= t["median"],
-            limited=limited("warm_known", "median"))
-        add("warming, ambient known", "p90", _series(summary, "warm_known", "clean", "p90"),
-            f"<= {100 * t['p90']:g} %", lambda v: v <= t["p90"],
-            limited=limited("warm_known", "p90"))
+        add(
+            "warming, ambient known",
+            "median",
+            _series(summary, "warm_known", "clean", "median"),
+            f"<= {100 * t['median']:g} %",
+            lambda v: v <= t["median"],
+            limited=limited("warm_known", "median"),
+        )
+        add(
+            "warming, ambient known",
+            "p90",
+            _series(summary, "warm_known", "clean", "p90"),
+            f"<= {100 * t['p90']:g} %",
+            lambda v: v <= t["p90"],
+            limited=limited("warm_known", "p90"),
+        )
     if "warm_fitted" in families:
         for i, stat in enumerate(("median", "p90")):
             ours = _series(summary, "warm_fitted", "clean", stat)
             lin = _series(summary, "warm_fitted", "clean", "linear", i)
             diff = [a - b for a, b in zip(ours, lin)]
-            add("warming, ambient fitted", f"{stat} minus linear's {stat}", diff, "<= 0",
-                lambda v: v <= 0)
+            add(
+                "warming, ambient fitted",
+                f"{stat} minus linear's {stat}",
+                diff,
+                "<= 0",
+                lambda v: v <= 0,
+            )
             rows = [summary.get(("warm_fitted", "clean", f)) for f in PROGRESS]
             if out[-1].ok is False and all(rows):
-                said = " / ".join(f"{r['no_eta']}, {r['never_allowed']}, {r['open_hi']}"
-                                  for r in rows)
-                out[-1].note = (f"of {rows[0]['n']} cases: no point ETA; of these, an interval "
-                                f"with an early end; intervals with an open late end: {said}")
+                said = " / ".join(
+                    f"{r['no_eta']}, {r['never_allowed']}, {r['open_hi']}" for r in rows
+                )
+                out[-1].note = (
+                    f"of {rows[0]['n']} cases: no point ETA; of these, an interval "
+                    f"with an early end; intervals with an open late end: {said}"
+                )
     if "air_probe" in families:
         t = T["air_probe"]
-        add("measured air probe", "median", _series(summary, "air_probe", "clean", "median"),
-            f"<= {100 * t['median']:g} %", lambda v: v <= t["median"],
-            limited=limited("air_probe", "median"))
-        add("measured air probe", "p90", _series(summary, "air_probe", "clean", "p90"),
-            f"<= {100 * t['p90']:g} %", lambda v: v <= t["p90"],
-            limited=limited("air_probe", "p90"))
+        add(
+            "measured air probe",
+            "median",
+            _series(summary, "air_probe", "clean", "median"),
+            f"<= {100 * t['median']:g} %",
+            lambda v: v <= t["median"],
+            limited=limited("air_probe", "median"),
+        )
+        add(
+            "measured air probe",
+            "p90",
+            _series(summary, "air_probe", "clean", "p90"),
+            f"<= {100 * t['p90']:g} %",
+            lambda v: v <= t["p90"],
+            limited=limited("air_probe", "p90"),
+        )
     t = T["centre"]
     for fam in ("centre_slab", "centre_cylinder", "centre_sphere"):
         if fam not in families:
             continue
         g = fam.removeprefix("centre_")
-        add(f"centre probe, {g} given", "median", _series(summary, fam, "clean", "median"),
-            f"<= {100 * t['median']:g} %", lambda v: v <= t["median"],
-            limited=limited(fam, "median"))
-        add(f"centre probe, {g} given", "p90", _series(summary, fam, "clean", "p90"),
-            f"<= {100 * t['p90']:g} %", lambda v: v <= t["p90"], limited=limited(fam, "p90"))
-        add(f"centre probe, {g} not given", "right model picked",
-            _series(summary, fam, "clean", "pick"), f">= {100 * t['pick']:g} %",
-            lambda v: v >= t["pick"])
+        add(
+            f"centre probe, {g} given",
+            "median",
+            _series(summary, fam, "clean", "median"),
+            f"<= {100 * t['median']:g} %",
+            lambda v: v <= t["median"],
+            limited=limited(fam, "median"),
+        )
+        add(
+            f"centre probe, {g} given",
+            "p90",
+            _series(summary, fam, "clean", "p90"),
+            f"<= {100 * t['p90']:g} %",
+            lambda v: v <= t["p90"],
+            limited=limited(fam, "p90"),
+        )
+        add(
+            f"centre probe, {g} not given",
+            "right model picked",
+            _series(summary, fam, "clean", "pick"),
+            f">= {100 * t['pick']:g} %",
+            lambda v: v >= t["pick"],
+        )
         rows = [summary.get((fam, "clean", f)) for f in PROGRESS]
         if out[-1].ok is False and all(r and "pick_misses" in r for r in rows):
             beaten = " / ".join(f"{r['misses_beaten']} of {r['pick_misses']}" for r in rows)
-            out[-1].note = (f"wrong picks where that shape fits the readings better than the true "
-                            f"curve itself: {beaten}")
+            out[-1].note = (
+                f"wrong picks where that shape fits the readings better than the true "
+                f"curve itself: {beaten}"
+            )
     if "regime_door" in families:
         row = summary.get(("regime_door", "clean", T["regime_after_s"]))
         vals = [row["p90"]] if row else []
-        add("regime change", f"p90 {T['regime_after_s'] / MIN:g} min after the door closed", vals,
-            f"<= {100 * T['regime_p90']:g} %", lambda v: v <= T["regime_p90"])
+        add(
+            "regime change",
+            f"p90 {T['regime_after_s'] / MIN:g} min after the door closed",
+            vals,
+            f"<= {100 * T['regime_p90']:g} %",
+            lambda v: v <= T["regime_p90"],
+        )
     if "asymptote" in families:
         vals = []
         for frac in PROGRESS:
             rows = [summary[k] for k in summary if k[0] == "asymptote" and k[2] == frac]
             n = sum(r["n"] for r in rows)
             vals.append(sum(r["no_eta"] for r in rows) / n if n else math.nan)
-        add("never-crossing asymptote", "share with no ETA", vals,
-            f">= {100 * T['asymptote_no_eta']:g} %", lambda v: v >= T["asymptote_no_eta"])
+        add(
+            "never-crossing asymptote",
+            "share with no ETA",
+            vals,
+            f">= {100 * T['asymptote_no_eta']:g} %",
+            lambda v: v >= T["asymptote_no_eta"],
+        )
     if "cycling" in families:
         row = summary.get(("cycling", "clean", 0.0))
         vals = [float(row["eta_any"])] if row else []
-        add("healthy cycling cold room", "2 h windows with any ETA", vals, "0",
-            lambda v: v == 0, "num")
+        add(
+            "healthy cycling cold room",
+            "2 h windows with any ETA",
+            vals,
+            "0",
+            lambda v: v == 0,
+            "num",
+        )
     lo, hi = T["coverage"]
     for fam in VARIANT_FAMILIES:
         if fam not in families:
             continue
         for var in VARIANTS:
-            add("90 % interval coverage", f"{fam}, {var}", _series(summary, fam, var, "cover"),
-                f"{100 * lo:g}-{100 * hi:g} %", lambda v: lo <= v <= hi)
+            add(
+                "90 % interval coverage",
+                f"{fam}, {var}",
+                _series(summary, fam, var, "cover"),
+                f"{100 * lo:g}-{100 * hi:g} %",
+                lambda v: lo <= v <= hi,
+            )
     return out
 
 
@@ -770,6 +1084,7 @@ def _mp(pair) -> str:
 
 def summary_table(summary: dict, cs: list[Check]) -> list[str]:
     """The short table for the README: one row per curve family and variant, then the others."""
+
     def three(fam, var, key):
         vals = _series(summary, fam, var, key)
         return " / ".join(_fmt(v) for v in vals) if vals else "-"
@@ -778,42 +1093,57 @@ def summary_table(summary: dict, cs: list[Check]) -> list[str]:
         r = summary.get((fam, "clean", 0.5))
         return _fmt(r[key][0]) if r and key in r else "-"
 
-    lines = ["| family | variant | median error 25 / 50 / 75 % | p90 | 90 % interval coverage | "
-             "linear, LSQ-3 median at 50 % |", "|---|---|---|---|---|---|"]
+    lines = [
+        "| family | variant | median error 25 / 50 / 75 % | p90 | 90 % interval coverage | "
+        "linear, LSQ-3 median at 50 % |",
+        "|---|---|---|---|---|---|",
+    ]
     for fam in VARIANT_FAMILIES:
         for var in VARIANTS:
             if (fam, var, PROGRESS[0]) not in summary:
                 continue
             base = f"{at50(fam, 'linear')}, {at50(fam, 'lsq3')}" if var == "clean" else ""
-            lines.append(f"| {fam} | {var} | {three(fam, var, 'median')} | {three(fam, var, 'p90')} | "
-                         f"{three(fam, var, 'cover')} | {base} |")
+            lines.append(
+                f"| {fam} | {var} | {three(fam, var, 'median')} | {three(fam, var, 'p90')} | "
+                f"{three(fam, var, 'cover')} | {base} |"
+            )
     by_target = {c.target: c for c in cs}
-    for name, label in (("regime change", "regime_door"), ("never-crossing asymptote", "asymptote"),
-                        ("healthy cycling cold room", "cycling")):
+    for name, label in (
+        ("regime change", "regime_door"),
+        ("never-crossing asymptote", "asymptote"),
+        ("healthy cycling cold room", "cycling"),
+    ):
         c = by_target.get(name)
         if c is not None:
             lines.append(f"| {label} | {c.figure} | {c.shown()} | | | |")
     n_pass = sum(1 for c in cs if c.ok)
     n_fail = sum(1 for c in cs if c.ok is False)
     n_limit = sum(1 for c in cs if c.ok is False and c.beyond_limit())
-    lines += ["", f"Targets of issue 6, section 3: {n_pass} pass, {n_fail} fail "
-              f"({n_limit} of them at a point where even an efficient unbiased estimator would "
-              f"fail, by the Cramer-Rao bound; {len(cs) - n_pass - n_fail} not measurable)."]
+    lines += [
+        "",
+        f"Targets of issue 6, section 3: {n_pass} pass, {n_fail} fail "
+        f"({n_limit} of them at a point where even an efficient unbiased estimator would "
+        f"fail, by the Cramer-Rao bound; {len(cs) - n_pass - n_fail} not measurable).",
+    ]
     return lines
 
 
 def targets_table(cs: list[Check]) -> list[str]:
-    lines = ["| target (issue 6, section 3) | figure | measured at 25 / 50 / 75 % | limit | result |",
-             "|---|---|---|---|---|"]
+    lines = [
+        "| target (issue 6, section 3) | figure | measured at 25 / 50 / 75 % | limit | result |",
+        "|---|---|---|---|---|",
+    ]
     for c in cs:
         lines.append(f"| {c.target} | {c.figure} | {c.shown()} | {c.limit} | {c.result()} |")
     return lines
 
 
 def detail_table(summary: dict) -> list[str]:
-    lines = ["| family | variant | seen | n | median | p90 | no ETA | 90 % cover | spread/CRB | "
-             "CRB-limited med / p90 | linear med / p90 | LSQ-3 med / p90 | two-reading med / p90 |",
-             "|---|---|---|---|---|---|---|---|---|---|---|---|---|"]
+    lines = [
+        "| family | variant | seen | n | median | p90 | no ETA | 90 % cover | spread/CRB | "
+        "CRB-limited med / p90 | linear med / p90 | LSQ-3 med / p90 | two-reading med / p90 |",
+        "|---|---|---|---|---|---|---|---|---|---|---|---|---|",
+    ]
     for fam in VARIANT_FAMILIES:
         for var in VARIANTS:
             for frac in PROGRESS:
@@ -824,7 +1154,8 @@ def detail_table(summary: dict) -> list[str]:
                     f"| {fam} | {var} | {100 * frac:.0f} % | {r['n']} | {_fmt(r['median'])} | "
                     f"{_fmt(r['p90'])} | {r['no_eta']} | {_fmt(r['cover'])} | "
                     f"{_fmt(r['crb'], 'ratio') if math.isfinite(r['crb']) else '-'} | "
-                    f"{_mp(r.get('crb_limited'))} | {_mp(r.get('linear'))} | {_mp(r.get('lsq3'))} | {_mp(r.get('two_reading'))} |")
+                    f"{_mp(r.get('crb_limited'))} | {_mp(r.get('linear'))} | {_mp(r.get('lsq3'))} | {_mp(r.get('two_reading'))} |"
+                )
     return lines
 
 
@@ -832,42 +1163,66 @@ def other_tables(summary: dict) -> list[str]:
     lines: list[str] = []
     reg = sorted(k for k in summary if k[0] == "regime_door")
     if reg:
-        lines += ["", "Regime change (door opened 2-10 min, closed again; ambient given):", "",
-                  "| after the door closed | n | median | p90 | 90 % cover | linear med / p90 | "
-                  "LSQ-3 med / p90 |", "|---|---|---|---|---|---|---|"]
+        lines += [
+            "",
+            "Regime change (door opened 2-10 min, closed again; ambient given):",
+            "",
+            "| after the door closed | n | median | p90 | 90 % cover | linear med / p90 | "
+            "LSQ-3 med / p90 |",
+            "|---|---|---|---|---|---|---|",
+        ]
         for k in reg:
             r = summary[k]
-            lines.append(f"| {k[2] / MIN:g} min | {r['n']} | {_fmt(r['median'])} | {_fmt(r['p90'])} | "
-                         f"{_fmt(r['cover'])} | {_mp(r.get('linear'))} | {_mp(r.get('lsq3'))} |")
+            lines.append(
+                f"| {k[2] / MIN:g} min | {r['n']} | {_fmt(r['median'])} | {_fmt(r['p90'])} | "
+                f"{_fmt(r['cover'])} | {_mp(r.get('linear'))} | {_mp(r.get('lsq3'))} |"
+            )
     wf = [(k, summary[k]) for k in sorted(summary) if k[0] == "warm_fitted" and k[1] == "clean"]
     if wf:
-        lines += ["", "Warming load, ambient fitted (clean): what the 90 % interval says where little "
-                  "bend is seen. Early on the readings cannot tell a far ambient from a level-off "
-                  "just short of the threshold (compare the asymptotes below, which also give an "
-                  "early end): the interval's late end is open, and a forecast without a point "
-                  "ETA still names the earliest crossing the readings allow.", "",
-                  "| seen | n | late end open | no point ETA | of these, an early end given | "
-                  "90 % cover |", "|---|---|---|---|---|---|"]
+        lines += [
+            "",
+            "Warming load, ambient fitted (clean): what the 90 % interval says where little "
+            "bend is seen. Early on the readings cannot tell a far ambient from a level-off "
+            "just short of the threshold (compare the asymptotes below, which also give an "
+            "early end): the interval's late end is open, and a forecast without a point "
+            "ETA still names the earliest crossing the readings allow.",
+            "",
+            "| seen | n | late end open | no point ETA | of these, an early end given | "
+            "90 % cover |",
+            "|---|---|---|---|---|---|",
+        ]
         for k, r in wf:
-            lines.append(f"| {100 * k[2]:.0f} % | {r['n']} | {r['open_hi']} | {r['no_eta']} | "
-                         f"{r['never_allowed']} | {_fmt(r['cover'])} |")
+            lines.append(
+                f"| {100 * k[2]:.0f} % | {r['n']} | {r['open_hi']} | {r['no_eta']} | "
+                f"{r['never_allowed']} | {_fmt(r['cover'])} |"
+            )
     asy = sorted(k for k in summary if k[0] == "asymptote")
     if asy:
-        lines += ["", "Never-crossing asymptotes (seen for 25/50/75 % of 3 time constants):", "",
-                  "| kind | seen | n | no ETA | no ETA, an early end given | fit failed |",
-                  "|---|---|---|---|---|---|"]
+        lines += [
+            "",
+            "Never-crossing asymptotes (seen for 25/50/75 % of 3 time constants):",
+            "",
+            "| kind | seen | n | no ETA | no ETA, an early end given | fit failed |",
+            "|---|---|---|---|---|---|",
+        ]
         for k in asy:
             r = summary[k]
-            lines.append(f"| {k[1]} | {100 * k[2]:.0f} % | {r['n']} | "
-                         f"{_fmt(r['no_eta'] / r['n'] if r['n'] else math.nan)} | "
-                         f"{r['never_allowed']} | {r['failed']} |")
+            lines.append(
+                f"| {k[1]} | {100 * k[2]:.0f} % | {r['n']} | "
+                f"{_fmt(r['no_eta'] / r['n'] if r['n'] else math.nan)} | "
+                f"{r['never_allowed']} | {r['failed']} |"
+            )
     cyc = summary.get(("cycling", "clean", 0.0))
     if cyc:
-        lines += ["", "Healthy cold room, compressor cycling (2 h windows every 10 min over 12 h):", "",
-                  "| windows | any ETA | ETA <= 12 h | ETA <= 45 min | fit failed |",
-                  "|---|---|---|---|---|",
-                  f"| {cyc['windows']} | {cyc['eta_any']} | {cyc['eta_12h']} | {cyc['eta_45min']} | "
-                  f"{cyc['failed']} |"]
+        lines += [
+            "",
+            "Healthy cold room, compressor cycling (2 h windows every 10 min over 12 h):",
+            "",
+            "| windows | any ETA | ETA <= 12 h | ETA <= 45 min | fit failed |",
+            "|---|---|---|---|---|",
+            f"| {cyc['windows']} | {cyc['eta_any']} | {cyc['eta_12h']} | {cyc['eta_45min']} | "
+            f"{cyc['failed']} |",
+        ]
     return lines
 
 
@@ -918,13 +1273,27 @@ def markdown(summary: dict, cs: list[Check], meta: dict) -> str:
         "## Summary",
         "",
     ]
-    body = summary_table(summary, cs) + ["", "## Targets", ""] + targets_table(cs) + ["", "## Per family", ""] + detail_table(summary) + other_tables(summary)
-    tail = ["", "## Scenario parameters (fixed before any result was seen)", ""] + params_table() + [
-        "", f"All readings quantised to {QUANTUM:g} degC, sampling jitter +-{100 * IRREGULAR:.0f} %. "
-        f"Spikes: {100 * SPIKES['spike_frac']:g} % of readings, +-{SPIKES['spike_size']:g} degC "
-        "(0.5-1.5 x). Dropouts: 1 gap (windows under 3 h) or 2, each 10-30 min, capped at "
-        f"{100 * GAP_CAP:g} % of the window / number of gaps, inside 10-90 % of the window. In the ratios to the clean figures, clean figures under "
-        f"{100 * RATIO_FLOOR:g} % count as {100 * RATIO_FLOOR:g} %.", ""]
+    body = (
+        summary_table(summary, cs)
+        + ["", "## Targets", ""]
+        + targets_table(cs)
+        + ["", "## Per family", ""]
+        + detail_table(summary)
+        + other_tables(summary)
+    )
+    tail = (
+        ["", "## Scenario parameters (fixed before any result was seen)", ""]
+        + params_table()
+        + [
+            "",
+            f"All readings quantised to {QUANTUM:g} degC, sampling jitter +-{100 * IRREGULAR:.0f} %. "
+            f"Spikes: {100 * SPIKES['spike_frac']:g} % of readings, +-{SPIKES['spike_size']:g} degC "
+            "(0.5-1.5 x). Dropouts: 1 gap (windows under 3 h) or 2, each 10-30 min, capped at "
+            f"{100 * GAP_CAP:g} % of the window / number of gaps, inside 10-90 % of the window. In the ratios to the clean figures, clean figures under "
+            f"{100 * RATIO_FLOOR:g} % count as {100 * RATIO_FLOOR:g} %.",
+            "",
+        ]
+    )
     return "\n".join(head + body + tail)
 
 
@@ -938,13 +1307,23 @@ README_END = "<!-- bench_forecast: end -->"
 
 
 def readme_block(summary: dict, cs: list[Check], meta: dict) -> str:
-    lines = [README_BEGIN,
-             f"Measured by `{meta['command']}` ({meta['elapsed_s']:.0f} s, seed {meta['seed']}, "
-             f"tree {meta['commit']}); errors at 25 / 50 / 75 % of the time to the true crossing:",
-             ""] + summary_table(summary, cs) + [
-             "", "![median ETA error per family](docs/bench_forecast.png)", "",
-             "Every target, the Cramer-Rao ratios, the baselines and the scenario ranges: "
-             "[docs/bench_forecast.md](docs/bench_forecast.md).", README_END]
+    lines = (
+        [
+            README_BEGIN,
+            f"Measured by `{meta['command']}` ({meta['elapsed_s']:.0f} s, seed {meta['seed']}, "
+            f"tree {meta['commit']}); errors at 25 / 50 / 75 % of the time to the true crossing:",
+            "",
+        ]
+        + summary_table(summary, cs)
+        + [
+            "",
+            "![median ETA error per family](docs/bench_forecast.png)",
+            "",
+            "Every target, the Cramer-Rao ratios, the baselines and the scenario ranges: "
+            "[docs/bench_forecast.md](docs/bench_forecast.md).",
+            README_END,
+        ]
+    )
     return "\n".join(lines)
 
 
@@ -965,8 +1344,14 @@ def plot(summary: dict, path: Path) -> None:
         for b, style in (("linear", "-x"), ("lsq3", "-+"), ("two_reading", "-d")):
             m = _series(summary, fam, "clean", b, 0)
             if m and all(math.isfinite(v) for v in m):
-                ax.plot(x[: len(m)], [100 * v for v in m], style, color="grey", alpha=0.7,
-                        label=f"{b}, clean")
+                ax.plot(
+                    x[: len(m)],
+                    [100 * v for v in m],
+                    style,
+                    color="grey",
+                    alpha=0.7,
+                    label=f"{b}, clean",
+                )
         ax.set_yscale("log")
         ax.set_title(fam)
         ax.set_xlabel("seen, % of time to crossing")
@@ -976,8 +1361,15 @@ def plot(summary: dict, path: Path) -> None:
     ax = axes[7]
     reg = sorted(k for k in summary if k[0] == "regime_door")
     if reg:
-        ax.plot([k[2] / MIN for k in reg], [100 * summary[k]["median"] for k in reg], "-o", label="median")
-        ax.plot([k[2] / MIN for k in reg], [100 * summary[k]["p90"] for k in reg], "--s", label="p90")
+        ax.plot(
+            [k[2] / MIN for k in reg],
+            [100 * summary[k]["median"] for k in reg],
+            "-o",
+            label="median",
+        )
+        ax.plot(
+            [k[2] / MIN for k in reg], [100 * summary[k]["p90"] for k in reg], "--s", label="p90"
+        )
         ax.axhline(100 * TARGETS["regime_p90"], color="red", lw=0.8)
         ax.set_yscale("log")
         _legend(ax)
@@ -986,7 +1378,9 @@ def plot(summary: dict, path: Path) -> None:
     ax.set_ylabel("relative ETA error, %")
     ax = axes[8]
     for kind in ("warm", "chill"):
-        vals = [summary[(f, v, p)] for (f, v, p) in sorted(summary) if f == "asymptote" and v == kind]
+        vals = [
+            summary[(f, v, p)] for (f, v, p) in sorted(summary) if f == "asymptote" and v == kind
+        ]
         if vals:
             ax.plot(x[: len(vals)], [100 * r["no_eta"] / r["n"] for r in vals], "-o", label=kind)
     ax.axhline(100 * TARGETS["asymptote_no_eta"], color="red", lw=0.8)
@@ -1013,14 +1407,22 @@ def _commit() -> str:
     import subprocess
 
     try:
-        out = subprocess.run(["git", "rev-parse", "--short", "HEAD"], capture_output=True, text=True,
-                             check=False, cwd=Path(__file__).resolve().parent, timeout=10)
+        out = subprocess.run(
+            ["git", "rev-parse", "--short", "HEAD"],
+            capture_output=True,
+            text=True,
+            check=False,
+            cwd=Path(__file__).resolve().parent,
+            timeout=10,
+        )
         return out.stdout.strip() or "unknown"
     except (OSError, subprocess.SubprocessError):
         return "unknown"
 
 
-def run(families: tuple[str, ...], cases: dict, seed: int, jobs: int = 1) -> tuple[list[dict], float]:
+def run(
+    families: tuple[str, ...], cases: dict, seed: int, jobs: int = 1
+) -> tuple[list[dict], float]:
     """Every case of the chosen families; returns the records and the seconds it took."""
     units = units_for(families, cases, seed)
     t0 = time.perf_counter()
@@ -1039,31 +1441,47 @@ def parse_args(argv: list[str] | None) -> argparse.Namespace:
     """Command-line options; a bad value is a one-line error and exit code 2."""
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="a few cases per family (smoke run)")
-    ap.add_argument("--cases", type=int,
-                    help="cases per family (default: 200; regime 150, cycling 30)")
+    ap.add_argument(
+        "--cases", type=int, help="cases per family (default: 200; regime 150, cycling 30)"
+    )
     ap.add_argument("--seed", type=int, default=2026)
     ap.add_argument("--families", help=f"comma list of: {', '.join(FAMILIES)}")
-    ap.add_argument("--jobs", type=int, default=os.cpu_count() or 1,
-                    help="worker processes (default: one per CPU)")
-    ap.add_argument("--readme", action="store_true",
-                    help="also rewrite the table in README.md (between the bench's markers)")
-    ap.add_argument("--out", default=str(Path(__file__).resolve().parent.parent / "docs"),
-                    help="folder for bench_forecast.md and bench_forecast.png")
+    ap.add_argument(
+        "--jobs",
+        type=int,
+        default=os.cpu_count() or 1,
+        help="worker processes (default: one per CPU)",
+    )
+    ap.add_argument(
+        "--readme",
+        action="store_true",
+        help="also rewrite the table in README.md (between the bench's markers)",
+    )
+    ap.add_argument(
+        "--out",
+        default=str(Path(__file__).resolve().parent.parent / "docs"),
+        help="folder for bench_forecast.md and bench_forecast.png",
+    )
     args = ap.parse_args(argv)
     args.family_list = FAMILIES
     if args.families:
         args.family_list = tuple(f.strip() for f in args.families.split(",") if f.strip())
         bad = [f for f in args.family_list if f not in FAMILIES]
         if bad or not args.family_list:
-            ap.exit(2, f"bench_forecast: unknown family {', '.join(bad) or '(none)'}; "
-                       f"choose from {', '.join(FAMILIES)}\n")
+            ap.exit(
+                2,
+                f"bench_forecast: unknown family {', '.join(bad) or '(none)'}; "
+                f"choose from {', '.join(FAMILIES)}\n",
+            )
     if (args.cases is not None and args.cases < 1) or args.jobs < 1:
         ap.exit(2, "bench_forecast: --cases and --jobs must be >= 1\n")
     args.case_counts = dict(QUICK_CASES if args.quick else CASES)
     if args.cases is not None:
         args.case_counts = {k: args.cases for k in args.case_counts}
-    args.command = ("python scripts/bench_forecast.py " + " ".join(
-        a for a in (argv if argv is not None else sys.argv[1:]))).strip()
+    args.command = (
+        "python scripts/bench_forecast.py "
+        + " ".join(a for a in (argv if argv is not None else sys.argv[1:]))
+    ).strip()
     return args
 
 
@@ -1072,24 +1490,35 @@ def bench(args: argparse.Namespace) -> tuple[dict, list[Check], str]:
     records, elapsed = run(args.family_list, args.case_counts, args.seed, args.jobs)
     summary = summarise(records)
     cs = checks(summary, args.family_list)
-    meta = {"command": args.command, "elapsed_s": elapsed, "seed": args.seed, "commit": _commit(),
-            "cases": ", ".join(f"{k} {v}" for k, v in args.case_counts.items()) + " cases"}
+    meta = {
+        "command": args.command,
+        "elapsed_s": elapsed,
+        "seed": args.seed,
+        "commit": _commit(),
+        "cases": ", ".join(f"{k} {v}" for k, v in args.case_counts.items()) + " cases",
+    }
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
     text = markdown(summary, cs, meta)
     (out / "bench_forecast.md").write_text(text)
     plot(summary, out / "bench_forecast.png")
     if args.readme:
-        err = update_readme(Path(__file__).resolve().parent.parent / "README.md",
-                            readme_block(summary, cs, meta), README_BEGIN, README_END)
+        err = update_readme(
+            Path(__file__).resolve().parent.parent / "README.md",
+            readme_block(summary, cs, meta),
+            README_BEGIN,
+            README_END,
+        )
         if err:
             print(f"bench_forecast: {err}", file=sys.stderr)
     crashed = sum(r["crashed"] for r in summary.values())
     n_pass = sum(1 for c in cs if c.ok)
     n_fail = sum(1 for c in cs if c.ok is False)
-    text += (f"\n\n{len(records)} predictor runs in {elapsed:.1f} s; targets: {n_pass} pass, "
-             f"{n_fail} fail, {len(cs) - n_pass - n_fail} n/a; predictor exceptions: {crashed}\n"
-             f"wrote {out / 'bench_forecast.md'} and {out / 'bench_forecast.png'}")
+    text += (
+        f"\n\n{len(records)} predictor runs in {elapsed:.1f} s; targets: {n_pass} pass, "
+        f"{n_fail} fail, {len(cs) - n_pass - n_fail} n/a; predictor exceptions: {crashed}\n"
+        f"wrote {out / 'bench_forecast.md'} and {out / 'bench_forecast.png'}"
+    )
     return summary, cs, text
 
 

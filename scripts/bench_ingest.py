@@ -126,25 +126,38 @@ def wait_port(port: int, timeout: float = 10.0) -> None:
 def start_broker(workdir: Path, port: int, inflight: int) -> subprocess.Popen:
     conf = workdir / "mosquitto.conf"
     os.chmod(workdir, 0o777)  # mosquitto started as root runs as the `mosquitto` user
-    conf.write_text(f"listener {port} 127.0.0.1\nallow_anonymous true\npersistence true\n"
-                    f"persistence_location {workdir}/\nautosave_interval 60\n"
-                    f"max_queued_messages 0\nmax_inflight_messages {inflight}\n")
-    proc = subprocess.Popen([shutil.which("mosquitto") or "mosquitto", "-c", str(conf)],
-                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    conf.write_text(
+        f"listener {port} 127.0.0.1\nallow_anonymous true\npersistence true\n"
+        f"persistence_location {workdir}/\nautosave_interval 60\n"
+        f"max_queued_messages 0\nmax_inflight_messages {inflight}\n"
+    )
+    proc = subprocess.Popen(
+        [shutil.which("mosquitto") or "mosquitto", "-c", str(conf)],
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+    )
     wait_port(port)
     return proc
 
 
 def publish(port: int, n: int, items: int, t0: float) -> dict:
-    out = subprocess.run([sys.executable, "-c", PUBLISHER, str(port), str(n), str(items), str(t0)],
-                         capture_output=True, text=True, timeout=900, check=True)
+    out = subprocess.run(
+        [sys.executable, "-c", PUBLISHER, str(port), str(n), str(items), str(t0)],
+        capture_output=True,
+        text=True,
+        timeout=900,
+        check=True,
+    )
     return json.loads(out.stdout)
 
 
 def run_raw(port: int, n: int, items: int, t0: float, mode: str, raw_protocol: str) -> dict:
     def sub(m: str) -> subprocess.Popen:
-        p = subprocess.Popen([sys.executable, "-c", RAW_SUB, str(port), str(n), m, raw_protocol],
-                             stdout=subprocess.PIPE, text=True)
+        p = subprocess.Popen(
+            [sys.executable, "-c", RAW_SUB, str(port), str(n), m, raw_protocol],
+            stdout=subprocess.PIPE,
+            text=True,
+        )
         assert p.stdout is not None
         if p.stdout.readline().strip() != "ready":
             raise SystemExit("raw subscriber did not start")
@@ -164,8 +177,11 @@ def run_raw(port: int, n: int, items: int, t0: float, mode: str, raw_protocol: s
     if res["got"] != n:
         raise SystemExit(f"raw subscriber got {res['got']} of {n}")
     start = res["first"] if mode == "drain" else pub["start"]
-    return {"rate": n / (res["last"] - start), "rss_mb": res["rss_kb"] / 1024,
-            "pub_rate": n / (pub["end"] - pub["start"])}
+    return {
+        "rate": n / (res["last"] - start),
+        "rss_mb": res["rss_kb"] / 1024,
+        "pub_rate": n / (pub["end"] - pub["start"]),
+    }
 
 
 def wipe_session(port: int, client_id: str) -> None:
@@ -190,8 +206,11 @@ def vm_hwm_mb(pid: int) -> float:
 def start_daemon(cfg: Path, log_path: Path) -> subprocess.Popen:
     log = open(log_path, "a")
     before = log_path.read_text().count("watching") if log_path.exists() else 0
-    proc = subprocess.Popen([sys.executable, "-m", "thermeta.daemon.cli", "run", "--config", str(cfg)],
-                            stdout=log, stderr=subprocess.STDOUT)
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "thermeta.daemon.cli", "run", "--config", str(cfg)],
+        stdout=log,
+        stderr=subprocess.STDOUT,
+    )
     log.close()
     deadline = time.monotonic() + 30
     while log_path.read_text().count("watching") <= before:
@@ -215,12 +234,15 @@ def run_thermeta(port: int, n: int, items: int, t0: float, workdir: Path, args) 
         p.unlink()
     cfg = workdir / "bench.toml"
     client_id = f"bench-thermeta-{time.time_ns()}"
-    batch = f"batch_size = {args.batch_size}\nbatch_ms = {args.batch_ms}\n" if args.batch_size else ""
+    batch = (
+        f"batch_size = {args.batch_size}\nbatch_ms = {args.batch_ms}\n" if args.batch_size else ""
+    )
     cfg.write_text(
         f'[broker]\nhost = "127.0.0.1"\nport = {port}\nclient_id = "{client_id}"\n'
         f'protocol = "{args.protocol}"\nreceive_maximum = {args.receive_maximum}\n\n'
         f'[storage]\nurl = "sqlite:///{db}"\n{batch}\n[fit]\nrefit_every = {args.refit_every}\n\n'
-        f'[[item]]\nname = "probe-{{2}}"\ntopic = "bench/+/t"\nthreshold = 8.0\nambient = 25.0\n')
+        f'[[item]]\nname = "probe-{{2}}"\ntopic = "bench/+/t"\nthreshold = 8.0\nambient = 25.0\n'
+    )
     log_path = workdir / "daemon.log"
     proc = start_daemon(cfg, log_path)
     result: dict = {}
@@ -264,8 +286,11 @@ def run_thermeta(port: int, n: int, items: int, t0: float, workdir: Path, args) 
         stop_daemon(proc)
         wipe_session(port, client_id)
     start = first_at if args.mode == "drain" else result["start"]
-    return {"rate": n / (done_at - start), "rss_mb": rss,
-            "pub_rate": n / (result["end"] - result["start"])}
+    return {
+        "rate": n / (done_at - start),
+        "rss_mb": rss,
+        "pub_rate": n / (result["end"] - result["start"]),
+    }
 
 
 def main() -> int:
@@ -277,18 +302,26 @@ def main() -> int:
     ap.add_argument("--batch-size", type=int, default=0, help="[storage] batch_size (0: default)")
     ap.add_argument("--batch-ms", type=int, default=200)
     ap.add_argument("--refit-every", type=float, default=30.0)
-    ap.add_argument("--protocol", choices=["auto", "5", "3.1.1"], default="auto",
-                    help="thermeta's MQTT version (the bare subscriber uses paho's default, 3.1.1)")
+    ap.add_argument(
+        "--protocol",
+        choices=["auto", "5", "3.1.1"],
+        default="auto",
+        help="thermeta's MQTT version (the bare subscriber uses paho's default, 3.1.1)",
+    )
     ap.add_argument("--receive-maximum", type=int, default=1000, help="[broker] receive_maximum")
-    ap.add_argument("--mode", choices=["drain", "live"], default="drain",
-                    help="drain: N messages wait in each subscriber's session, then it connects "
-                         "(measures the subscriber, not the publisher); live: published while "
-                         "it runs")
+    ap.add_argument(
+        "--mode",
+        choices=["drain", "live"],
+        default="drain",
+        help="drain: N messages wait in each subscriber's session, then it connects "
+        "(measures the subscriber, not the publisher); live: published while "
+        "it runs",
+    )
     args = ap.parse_args()
     if shutil.which("mosquitto") is None:
         print("mosquitto is not installed (apt-get install mosquitto)", file=sys.stderr)
         return 2
-    raw: list[dict] = []   # bare paho, MQTT 3.1.1 (paho's default)
+    raw: list[dict] = []  # bare paho, MQTT 3.1.1 (paho's default)
     raw5: list[dict] = []  # bare paho, MQTT 5 (what thermeta speaks by default)
     ours: list[dict] = []
     with tempfile.TemporaryDirectory(prefix="thermeta-bench-") as tmp:
@@ -301,28 +334,40 @@ def main() -> int:
                 raw.append(run_raw(port, args.messages, args.items, t0, args.mode, "3.1.1"))
                 raw5.append(run_raw(port, args.messages, args.items, t0 + 1, args.mode, "5"))
                 ours.append(run_thermeta(port, args.messages, args.items, t0 + 2, work, args))
-                print(f"  repeat {r + 1}: raw 3.1.1 {raw[-1]['rate']:,.0f}/s, raw 5 "
-                      f"{raw5[-1]['rate']:,.0f}/s, thermeta {ours[-1]['rate']:,.0f}/s", file=sys.stderr)
+                print(
+                    f"  repeat {r + 1}: raw 3.1.1 {raw[-1]['rate']:,.0f}/s, raw 5 "
+                    f"{raw5[-1]['rate']:,.0f}/s, thermeta {ours[-1]['rate']:,.0f}/s",
+                    file=sys.stderr,
+                )
         finally:
             broker.terminate()
             broker.wait(10)
     med = lambda rows, k: statistics.median(x[k] for x in rows)  # noqa: E731
     proto = {"auto": "MQTT 5", "5": "MQTT 5", "3.1.1": "MQTT 3.1.1"}[args.protocol]
-    print(f"\n{args.messages:,} QoS 1 messages over {args.items:,} items, {args.repeat} repeats "
-          f"(medians), mode {args.mode}, broker max_inflight_messages {args.inflight}, "
-          f"{os.cpu_count()} CPUs\n")
+    print(
+        f"\n{args.messages:,} QoS 1 messages over {args.items:,} items, {args.repeat} repeats "
+        f"(medians), mode {args.mode}, broker max_inflight_messages {args.inflight}, "
+        f"{os.cpu_count()} CPUs\n"
+    )
     print("| subscriber | received/committed per s | publisher per s | peak RSS MB |")
     print("|---|---:|---:|---:|")
-    for label, rows in (("bare paho, MQTT 3.1.1 (decode only)", raw),
-                        ("bare paho, MQTT 5 (decode only)", raw5),
-                        (f"thermeta run, {proto} (parse, commit, ack)", ours)):
-        print(f"| {label} | {med(rows, 'rate'):,.0f} | {med(rows, 'pub_rate'):,.0f} | "
-              f"{med(rows, 'rss_mb'):.0f} |")
+    for label, rows in (
+        ("bare paho, MQTT 3.1.1 (decode only)", raw),
+        ("bare paho, MQTT 5 (decode only)", raw5),
+        (f"thermeta run, {proto} (parse, commit, ack)", ours),
+    ):
+        print(
+            f"| {label} | {med(rows, 'rate'):,.0f} | {med(rows, 'pub_rate'):,.0f} | "
+            f"{med(rows, 'rss_mb'):.0f} |"
+        )
     for label, base in (("bare paho 3.1.1", raw), ("bare paho 5", raw5)):
         ratios = [o["rate"] / r["rate"] for o, r in zip(ours, base)]
-        print(f"\nratio thermeta / {label}: median {statistics.median(ratios):.2f} "
-              f"(per repeat: {', '.join(f'{x:.2f}' for x in ratios)}); target >= 0.50")
+        print(
+            f"\nratio thermeta / {label}: median {statistics.median(ratios):.2f} "
+            f"(per repeat: {', '.join(f'{x:.2f}' for x in ratios)}); target >= 0.50"
+        )
     return 0
+
 
 if __name__ == "__main__":
     sys.exit(main())

@@ -50,14 +50,23 @@ PAST_MIN_TAU = 1.0  # ... one time constant (a load past its limit is watched un
 VARIANTS = ("none", "right", "k x 3", "k / 3", "k x 3, ambient +5")
 
 
-def episode(seed: int, p: dict, k: float, ambient: float, span: float,
-            min_tau: float = 0.0) -> synth.Synth:
+def episode(
+    seed: int, p: dict, k: float, ambient: float, span: float, min_tau: float = 0.0
+) -> synth.Synth:
     """One episode lasting span x its time to the crossing (at least min_tau / k), readings as
     in bench_forecast (noise, 0.1 degC steps, +-10 % jitter)."""
     cross = synth.lumped_crossing_s(p["T0"], ambient, k, p["threshold"])
     c = Corruption(noise=p["noise"], quantum=QUANTUM, irregular=IRREGULAR)
-    return synth.lumped(seed, T0=p["T0"], ambient=ambient, k_per_s=k, threshold=p["threshold"],
-                        duration_s=max(span * cross, min_tau / k), dt_s=p["dt_s"], corruption=c)
+    return synth.lumped(
+        seed,
+        T0=p["T0"],
+        ambient=ambient,
+        k_per_s=k,
+        threshold=p["threshold"],
+        duration_s=max(span * cross, min_tau / k),
+        dt_s=p["dt_s"],
+        corruption=c,
+    )
 
 
 def given_ambient(fam: str, p: dict, ambient: float) -> dict:
@@ -72,8 +81,14 @@ def learned_prior(fam: str, rng: np.random.Generator, k_c: float, amb_c: float) 
         k = k_c * math.exp(SD_LOGK_EPISODE * rng.standard_normal())
         amb = amb_c + SD_AMBIENT_EPISODE_C * rng.standard_normal()
         s = episode(int(rng.integers(2**31)), p, k, amb, PAST_SPAN, PAST_MIN_TAU)
-        fc = forecast(s.t, s.y, p["threshold"], limit=p["limit"], min_points=MIN_POINTS,
-                      **given_ambient(fam, p, amb))
+        fc = forecast(
+            s.t,
+            s.y,
+            p["threshold"],
+            limit=p["limit"],
+            min_points=MIN_POINTS,
+            **given_ambient(fam, p, amb),
+        )
         if learnable(fc):
             prior = learn(prior, fc)
     return prior
@@ -85,11 +100,15 @@ def run_case(fam: str, seed: int) -> dict:
     k_c, amb_c = 1.0 / cls["tau_s"], cls["ambient"]
     right = learned_prior(fam, rng, k_c, amb_c)
     priors: dict[str, Prior | None] = {
-        "none": None, "right": right,
+        "none": None,
+        "right": right,
         "k x 3": replace(right, logk_mean=right.logk_mean + math.log(3.0)),
         "k / 3": replace(right, logk_mean=right.logk_mean - math.log(3.0)),
-        "k x 3, ambient +5": replace(right, logk_mean=right.logk_mean + math.log(3.0),
-                                     ambient_mean_c=right.ambient_mean_c + 5.0),
+        "k x 3, ambient +5": replace(
+            right,
+            logk_mean=right.logk_mean + math.log(3.0),
+            ambient_mean_c=right.ambient_mean_c + 5.0,
+        ),
     }
     p = draw(PARAMS[fam], rng)
     k = k_c * math.exp(SD_LOGK_EPISODE * rng.standard_normal())
@@ -108,8 +127,15 @@ def run_case(fam: str, seed: int) -> dict:
                 continue
             tt, yy = s.t[sel], s.y[sel]
             eta_true = t0 + cross - tt.max()
-            fc = forecast(tt, yy, p["threshold"], limit=p["limit"], min_points=MIN_POINTS,
-                          prior=prior, **given_ambient(fam, p, amb))
+            fc = forecast(
+                tt,
+                yy,
+                p["threshold"],
+                limit=p["limit"],
+                min_points=MIN_POINTS,
+                prior=prior,
+                **given_ambient(fam, p, amb),
+            )
             e = math.inf if (not fc.ok or fc.eta_s is None) else abs(fc.eta_s - eta_true) / eta_true
             errs.append(e)
             lo = fc.eta_lo_s if fc.eta_lo_s is not None else math.inf
@@ -117,8 +143,11 @@ def run_case(fam: str, seed: int) -> dict:
             cov.append(fc.ok and fc.eta_s is not None and lo <= eta_true <= hi)
         errs_a = np.array(errs)
         bad = np.nonzero(errs_a > WITHIN)[0]
-        first = GRID[0] if bad.size == 0 else (GRID[bad[-1] + 1] if bad[-1] + 1 < GRID.size
-                                               else math.inf)
+        first = (
+            GRID[0]
+            if bad.size == 0
+            else (GRID[bad[-1] + 1] if bad[-1] + 1 < GRID.size else math.inf)
+        )
         out[name] = {"first": first, "errs": errs_a, "cov": np.array(cov)}
     return out
 
@@ -136,7 +165,11 @@ def summarise(fam: str, cases: list[dict]) -> list[str]:
         never = int(np.sum(~np.isfinite(first)))
         rows.append(
             f"| {fam} | {v} | {_pct(med)} | {_min(minutes)} | {never}/{len(cases)} | "
-            + " | ".join(_pct(e) for e in errs) + " | " + " | ".join(f"{c:.0%}" for c in cov) + " |")
+            + " | ".join(_pct(e) for e in errs)
+            + " | "
+            + " | ".join(f"{c:.0%}" for c in cov)
+            + " |"
+        )
     # medians of the first-within times (a "never" counts as later than any time)
     base = np.array([c["none"]["first"] for c in cases])
     with_ = np.array([c["right"]["first"] for c in cases])
@@ -144,8 +177,10 @@ def summarise(fam: str, cases: list[dict]) -> list[str]:
     gain = b_med - w_med if math.isfinite(b_med) else math.inf
     ratio = b_med / w_med if w_med > 0 else math.inf
     gain_min = float(np.median(base * cross_min) - np.median(with_ * cross_min))
-    rows.append(f"| {fam} | right prior earlier by (difference of medians) | {_pct(gain)} | {_min(gain_min)} | | ratio {ratio:.1f}x |"
-                " | | | | |")
+    rows.append(
+        f"| {fam} | right prior earlier by (difference of medians) | {_pct(gain)} | {_min(gain_min)} | | ratio {ratio:.1f}x |"
+        " | | | | |"
+    )
     return rows
 
 
@@ -168,20 +203,28 @@ def main(argv: list[str] | None = None) -> int:
     fams = [f for f in args.families.split(",") if f]
     for f in fams:
         if f not in FAMILIES:
-            print(f"bench_prior: unknown family {f!r} (one of {', '.join(FAMILIES)})", file=sys.stderr)
+            print(
+                f"bench_prior: unknown family {f!r} (one of {', '.join(FAMILIES)})", file=sys.stderr
+            )
             return 2
     t_start = time.perf_counter()
-    lines = [("| family | prior | within 10 % from (share of time to crossing) | (minutes) | never |"
-              " err 25 % | err 50 % | err 75 % | cov 25 % | cov 50 % | cov 75 % |"),
-             "|---|---|---|---|---|---|---|---|---|---|---|"]
+    lines = [
+        (
+            "| family | prior | within 10 % from (share of time to crossing) | (minutes) | never |"
+            " err 25 % | err 50 % | err 75 % | cov 25 % | cov 50 % | cov 75 % |"
+        ),
+        "|---|---|---|---|---|---|---|---|---|---|---|",
+    ]
     learned = []
     for fi, fam in enumerate(fams):
         cases = [run_case(fam, args.seed * 1000 + 100 * fi + i) for i in range(n)]
         learned.append(f"{fam}: {np.median([c['n_episodes'] for c in cases]):.0f} of {N_PAST}")
         lines.extend(summarise(fam, cases))
-    print(f"Priors learned from past episodes: {n} cases per family, seed {args.seed}; "
-          f"median past episodes learnable: {', '.join(learned)}; errors are medians, "
-          f"coverage of the 90 % interval; {time.perf_counter() - t_start:.0f} s\n")
+    print(
+        f"Priors learned from past episodes: {n} cases per family, seed {args.seed}; "
+        f"median past episodes learnable: {', '.join(learned)}; errors are medians, "
+        f"coverage of the 90 % interval; {time.perf_counter() - t_start:.0f} s\n"
+    )
     print("\n".join(lines))
     return 0
 

@@ -25,7 +25,6 @@ import sys
 import tempfile
 import time
 import tomllib
-from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
@@ -44,32 +43,55 @@ NOISE = Corruption(noise=0.05, quantum=0.1)
 END = synth.T_START + 86400.0  # every series ends here
 
 
-def _series(family: str, i: int, seed: int) -> tuple[np.ndarray, np.ndarray,
-                                                      np.ndarray | None, np.ndarray | None]:
+def _series(
+    family: str, i: int, seed: int
+) -> tuple[np.ndarray, np.ndarray, np.ndarray | None, np.ndarray | None]:
     """Readings (degC) over the history and 30 spare minutes, shifted to end at END (every item
     of a round is then equally fresh); the caller holds the spare ones back for the live rounds.
     The ranges keep most items short of their threshold (approaching or steady), as on a site."""
     rng = np.random.default_rng([seed, i])
     span = HISTORY_S + 30 * DT_S
     if family in ("known", "fitted"):
-        s = synth.lumped(seed * 100_000 + i, T0=rng.uniform(1, 4), ambient=rng.uniform(12, 18),
-                         k_per_s=1 / (3600 * rng.uniform(8, 12)), threshold=8.0, duration_s=span,
-                         dt_s=DT_S, corruption=NOISE)
+        s = synth.lumped(
+            seed * 100_000 + i,
+            T0=rng.uniform(1, 4),
+            ambient=rng.uniform(12, 18),
+            k_per_s=1 / (3600 * rng.uniform(8, 12)),
+            threshold=8.0,
+            duration_s=span,
+            dt_s=DT_S,
+            corruption=NOISE,
+        )
     elif family == "cycling":
-        s = synth.compressor_sawtooth(seed * 100_000 + i, duration_s=span, dt_s=DT_S,
-                                      corruption=NOISE)
+        s = synth.compressor_sawtooth(
+            seed * 100_000 + i, duration_s=span, dt_s=DT_S, corruption=NOISE
+        )
     elif family == "measured":
-        s = synth.measured_air(seed * 100_000 + i, load_T0=rng.uniform(1, 4),
-                               air_T0=rng.uniform(1, 4), outside=rng.uniform(12, 18),
-                               k_air_per_s=1 / (3600 * rng.uniform(0.5, 2)),
-                               k_load_per_s=1 / (3600 * rng.uniform(3, 9)), threshold=8.0,
-                               duration_s=span, dt_s=DT_S, corruption=NOISE)
+        s = synth.measured_air(
+            seed * 100_000 + i,
+            load_T0=rng.uniform(1, 4),
+            air_T0=rng.uniform(1, 4),
+            outside=rng.uniform(12, 18),
+            k_air_per_s=1 / (3600 * rng.uniform(0.5, 2)),
+            k_load_per_s=1 / (3600 * rng.uniform(3, 9)),
+            threshold=8.0,
+            duration_s=span,
+            dt_s=DT_S,
+            corruption=NOISE,
+        )
     elif family == "core":
-        s = synth_conduction.core_probe(seed * 100_000 + i, geometry="slab",
-                                        biot=rng.uniform(0.5, 5), a_per_s=1 / (3600 * 6),
-                                        t_i=rng.uniform(-22, -18), ambient=rng.uniform(5, 15),
-                                        threshold=-15.0, seen_fraction=0.6, dt_s=DT_S,
-                                        corruption=NOISE)
+        s = synth_conduction.core_probe(
+            seed * 100_000 + i,
+            geometry="slab",
+            biot=rng.uniform(0.5, 5),
+            a_per_s=1 / (3600 * 6),
+            t_i=rng.uniform(-22, -18),
+            ambient=rng.uniform(5, 15),
+            threshold=-15.0,
+            seen_fraction=0.6,
+            dt_s=DT_S,
+            corruption=NOISE,
+        )
     else:
         raise SystemExit(f"bench_refit: unknown family {family!r}")
     shift = END - float(np.max(s.t))
@@ -91,14 +113,25 @@ def _item_toml(family: str, name: str) -> str:
 
 def _write(store: Store, name: str, t: np.ndarray, y: np.ndarray, kind: str = "load") -> None:
     iid = store.ensure_item(name, kind=kind, unit="C", topic=f"bench/{name}")
-    store.write_batch([{"item_id": iid, "ts": float(a), "value_c": float(b), "flags": 0,
-                        "received_at": float(a)} for a, b in zip(t, y)])
+    store.write_batch(
+        [
+            {
+                "item_id": iid,
+                "ts": float(a),
+                "value_c": float(b),
+                "flags": 0,
+                "received_at": float(a),
+            }
+            for a, b in zip(t, y)
+        ]
+    )
 
 
 def run_case(family: str, n_items: int, rounds: int, seed: int, folder: Path) -> dict:
     db = folder / f"{family}-{n_items}.db"
-    text = (f'[storage]\nurl = "sqlite:///{db}"\n[fit]\nrefit_every = {REFIT_EVERY_S:g}\n'
-            + "".join(_item_toml(family, f"{family}-{i:04d}") for i in range(n_items)))
+    text = f'[storage]\nurl = "sqlite:///{db}"\n[fit]\nrefit_every = {REFIT_EVERY_S:g}\n' + "".join(
+        _item_toml(family, f"{family}-{i:04d}") for i in range(n_items)
+    )
     cfg = parse_config(tomllib.loads(text), "bench.toml", text)
     store = Store(cfg.storage.url)
     store.create_all()
@@ -115,11 +148,15 @@ def run_case(family: str, n_items: int, rounds: int, seed: int, folder: Path) ->
         _write(store, name, t[keep], y[keep])
         if at is not None:
             _write(store, name + AMBIENT_SUFFIX, at[at <= cut], ay[at <= cut], kind="ambient")
-        held[name] = [(t[(t > cut + r * DT_S) & (t <= cut + (r + 1) * DT_S)],
-                       y[(t > cut + r * DT_S) & (t <= cut + (r + 1) * DT_S)],
-                       None if at is None else at[(at > cut + r * DT_S) & (at <= cut + (r + 1) * DT_S)],
-                       None if ay is None else ay[(at > cut + r * DT_S) & (at <= cut + (r + 1) * DT_S)])
-                      for r in range(rounds)]
+        held[name] = [
+            (
+                t[(t > cut + r * DT_S) & (t <= cut + (r + 1) * DT_S)],
+                y[(t > cut + r * DT_S) & (t <= cut + (r + 1) * DT_S)],
+                None if at is None else at[(at > cut + r * DT_S) & (at <= cut + (r + 1) * DT_S)],
+                None if ay is None else ay[(at > cut + r * DT_S) & (at <= cut + (r + 1) * DT_S)],
+            )
+            for r in range(rounds)
+        ]
         act.note(name, by_name[name], float(t[keep].max()))
     clock = ManualClock(cut_at + 5.0)
     refitter = Refitter(store, cfg, clock, act)
@@ -144,9 +181,15 @@ def run_case(family: str, n_items: int, rounds: int, seed: int, folder: Path) ->
     for s in done.values():
         states[s] = states.get(s, 0) + 1
     med = statistics.median(live)
-    return {"family": family, "items": n_items, "first_s": first_s, "live_s": med,
-            "ms_per_item": 1000 * med / n_items, "per_core": int(REFIT_EVERY_S / (med / n_items)),
-            "states": states}
+    return {
+        "family": family,
+        "items": n_items,
+        "first_s": first_s,
+        "live_s": med,
+        "ms_per_item": 1000 * med / n_items,
+        "per_core": int(REFIT_EVERY_S / (med / n_items)),
+        "states": states,
+    }
 
 
 DESCRIBE = {
@@ -163,27 +206,36 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--items", default="10,100,500", help="comma list of item counts")
     ap.add_argument("--rounds", type=int, default=3, help="live rounds after the first")
     ap.add_argument("--seed", type=int, default=1)
-    ap.add_argument("--families", default=",".join(DESCRIBE), help="comma list of: "
-                    + ", ".join(DESCRIBE))
+    ap.add_argument(
+        "--families", default=",".join(DESCRIBE), help="comma list of: " + ", ".join(DESCRIBE)
+    )
     args = ap.parse_args(argv)
     try:
         counts = [int(x) for x in args.items.split(",") if x.strip()]
     except ValueError:
-        print(f"bench_refit: --items must be a comma list of whole numbers, got {args.items!r}",
-              file=sys.stderr)
+        print(
+            f"bench_refit: --items must be a comma list of whole numbers, got {args.items!r}",
+            file=sys.stderr,
+        )
         return 2
     families = [f.strip() for f in args.families.split(",") if f.strip()]
     bad = [f for f in families if f not in DESCRIBE]
     if bad or not counts or min(counts) < 1 or args.rounds < 1:
-        print(f"bench_refit: families must be among {', '.join(DESCRIBE)}; --items and --rounds "
-              f"at least 1 (got families {families}, items {counts}, rounds {args.rounds})",
-              file=sys.stderr)
+        print(
+            f"bench_refit: families must be among {', '.join(DESCRIBE)}; --items and --rounds "
+            f"at least 1 (got families {families}, items {counts}, rounds {args.rounds})",
+            file=sys.stderr,
+        )
         return 2
-    print(f"Measured by `python scripts/bench_refit.py --items {args.items} --rounds {args.rounds}"
-          f" --seed {args.seed}`: 2 h of one-minute readings per item, one new reading per item "
-          f"before each live round; wall clock, one thread.\n")
-    print("| family | items | first round | live round (median) | ms per item | items per core "
-          "within 30 s | first round's states |")
+    print(
+        f"Measured by `python scripts/bench_refit.py --items {args.items} --rounds {args.rounds}"
+        f" --seed {args.seed}`: 2 h of one-minute readings per item, one new reading per item "
+        f"before each live round; wall clock, one thread.\n"
+    )
+    print(
+        "| family | items | first round | live round (median) | ms per item | items per core "
+        "within 30 s | first round's states |"
+    )
     print("|---|---|---|---|---|---|---|")
     started = time.perf_counter()
     with tempfile.TemporaryDirectory(prefix="thermeta-bench-refit-") as d:
@@ -191,8 +243,11 @@ def main(argv: list[str] | None = None) -> int:
             for n in counts:
                 r = run_case(fam, n, args.rounds, args.seed, Path(d))
                 states = ", ".join(f"{k} {v}" for k, v in sorted(r["states"].items()))
-                print(f"| {DESCRIBE[fam]} | {n} | {r['first_s']:.2f} s | {r['live_s']:.2f} s | "
-                      f"{r['ms_per_item']:.1f} | {r['per_core']} | {states} |", flush=True)
+                print(
+                    f"| {DESCRIBE[fam]} | {n} | {r['first_s']:.2f} s | {r['live_s']:.2f} s | "
+                    f"{r['ms_per_item']:.1f} | {r['per_core']} | {states} |",
+                    flush=True,
+                )
     peak_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     print(f"\n{time.perf_counter() - started:.0f} s in all; peak RSS {peak_mb:.0f} MB.")
     return 0

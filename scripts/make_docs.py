@@ -31,16 +31,26 @@ def capture_dashboard(seconds: float, speed: float, width: int, height: int) -> 
         raise SystemExit("make_docs: tmux is not installed (apt-get install tmux)")
     session = f"thermeta-docs-{uuid.uuid4().hex[:8]}"
     cmd = f"{shlex.quote(sys.executable)} -m thermeta.daemon.cli demo --embedded --speed {speed:g}"
-    subprocess.run(["tmux", "new-session", "-d", "-s", session, "-x", str(width), "-y", str(height),
-                    cmd], check=True)
+    subprocess.run(
+        ["tmux", "new-session", "-d", "-s", session, "-x", str(width), "-y", str(height), cmd],
+        check=True,
+    )
     try:
         time.sleep(seconds)
-        text = subprocess.run(["tmux", "capture-pane", "-p", "-t", session], check=True,
-                              capture_output=True, text=True).stdout
+        text = subprocess.run(
+            ["tmux", "capture-pane", "-p", "-t", session],
+            check=True,
+            capture_output=True,
+            text=True,
+        ).stdout
         subprocess.run(["tmux", "send-keys", "-t", session, "C-c"], check=False)
         for _ in range(50):  # let the demo stop cleanly before the session goes
-            if subprocess.run(["tmux", "has-session", "-t", session],
-                              capture_output=True).returncode != 0:
+            if (
+                subprocess.run(
+                    ["tmux", "has-session", "-t", session], capture_output=True
+                ).returncode
+                != 0
+            ):
                 break
             time.sleep(0.2)
     finally:
@@ -65,12 +75,23 @@ def reefer_plot() -> Path:
     cut = sc.events[0][0] + 40 * 60
     sel, asel = load.t <= cut, air.t <= cut
     series = _Series(load.t[sel], load.y[sel], air.t[asel], air.y[asel])
-    fc = forecast(series.t, series.y, load.spec.threshold, ambient_t=series.ambient_t,
-                  ambient_y=series.ambient_y, window_s=7200)
+    fc = forecast(
+        series.t,
+        series.y,
+        load.spec.threshold,
+        ambient_t=series.ambient_t,
+        ambient_y=series.ambient_y,
+        window_s=7200,
+    )
     tt = np.linspace(sc.t_start, sc.t_start + 4 * 3600, 400)
     out = DOCS / "forecast-reefer.png"
-    plot_forecast(series, fc, out, title="eastpier/reefer-12/load-top (simulated: power lost at "
-                  "the 10th minute)", truth=(tt, load.spec.curve(tt - sc.t_start)))
+    plot_forecast(
+        series,
+        fc,
+        out,
+        title="eastpier/reefer-12/load-top (simulated: power lost at the 10th minute)",
+        truth=(tt, load.spec.curve(tt - sc.t_start)),
+    )
     return out
 
 

@@ -12,5 +12,5 @@ def update_readme(path: Path, block: str, begin: str, end: str) -> str | None:
     i, j = text.find(begin), text.find(end)
     if i < 0 or j < i:
         return f"{path}: the bench's markers are missing; add them to its section first"
-    path.write_text(text[:i] + block + text[j + len(end):])
+    path.write_text(text[:i] + block + text[j + len(end) :])
     return None

@@ -98,11 +98,19 @@ class AlertStore:
 
     def get_state(self, item: str) -> dict[str, Any] | None:
         with self.engine.connect() as conn:
-            text = conn.execute(select(alert_state.c.body).where(alert_state.c.item == item)).scalar()
+            text = conn.execute(
+                select(alert_state.c.body).where(alert_state.c.item == item)
+            ).scalar()
         return None if text is None else json.loads(text)
 
-    def commit_step(self, item: str, state: dict[str, Any], alerts: list[dict[str, Any]],
-                    hooks_for: Any, now: float) -> list[int]:
+    def commit_step(
+        self,
+        item: str,
+        state: dict[str, Any],
+        alerts: list[dict[str, Any]],
+        hooks_for: Any,
+        now: float,
+    ) -> list[int]:
         """Save ``state`` and insert ``alerts`` with one outbox row per hook, in one transaction.
 
         ``hooks_for(alert) -> list[str]`` names the hooks that want each alert.  Returns the ids
@@ -111,56 +119,103 @@ class AlertStore:
         new_rows: list[int] = []
         with self.store._write() as conn, conn.begin():
             text = json.dumps(state)
-            done = conn.execute(update(alert_state).where(alert_state.c.item == item)
-                                .values(body=text, updated_at=now)).rowcount
+            done = conn.execute(
+                update(alert_state)
+                .where(alert_state.c.item == item)
+                .values(body=text, updated_at=now)
+            ).rowcount
             if not done:
                 conn.execute(insert(alert_state).values(item=item, body=text, updated_at=now))
             for a in alerts:
-                exists = conn.execute(select(alert_events.c.id)
-                                      .where(alert_events.c.key == a["id"])).scalar()
+                exists = conn.execute(
+                    select(alert_events.c.id).where(alert_events.c.key == a["id"])
+                ).scalar()
                 if exists is not None:  # the same alert raised again after a crash: once only
                     continue
-                event_id = conn.execute(insert(alert_events).values(
-                    key=a["id"], item=a["item"], level=a["level"], episode=a["episode"],
-                    made_at=now, sentence=a["sentence"], body=json.dumps(a))
-                    .returning(alert_events.c.id)).scalar_one()
+                event_id = conn.execute(
+                    insert(alert_events)
+                    .values(
+                        key=a["id"],
+                        item=a["item"],
+                        level=a["level"],
+                        episode=a["episode"],
+                        made_at=now,
+                        sentence=a["sentence"],
+                        body=json.dumps(a),
+                    )
+                    .returning(alert_events.c.id)
+                ).scalar_one()
                 for hook in hooks_for(a):
-                    rid = conn.execute(insert(outbox).values(
-                        event_id=event_id, hook=hook, status="pending", attempts=0,
-                        created_at=now, next_at=now).returning(outbox.c.id)).scalar_one()
+                    rid = conn.execute(
+                        insert(outbox)
+                        .values(
+                            event_id=event_id,
+                            hook=hook,
+                            status="pending",
+                            attempts=0,
+                            created_at=now,
+                            next_at=now,
+                        )
+                        .returning(outbox.c.id)
+                    ).scalar_one()
                     new_rows.append(int(rid))
         return new_rows
 
     # -- outbox -------------------------------------------------------------------------------
     def due(self, hook: str, now: float | None = None, limit: int = 20) -> list[dict[str, Any]]:
         """Pending rows of ``hook`` (whose next try is due by ``now`` if given), oldest first."""
-        q = (select(outbox.c.id, outbox.c.attempts, outbox.c.created_at, alert_events.c.body)
-             .join(alert_events, alert_events.c.id == outbox.c.event_id)
-             .where(outbox.c.hook == hook, outbox.c.status == "pending")
-             .order_by(outbox.c.id).limit(limit))
+        q = (
+            select(outbox.c.id, outbox.c.attempts, outbox.c.created_at, alert_events.c.body)
+            .join(alert_events, alert_events.c.id == outbox.c.event_id)
+            .where(outbox.c.hook == hook, outbox.c.status == "pending")
+            .order_by(outbox.c.id)
+            .limit(limit)
+        )
         if now is not None:
             q = q.where(outbox.c.next_at <= now)
         with self.engine.connect() as conn:
-            return [{"id": int(r.id), "attempts": int(r.attempts), "created_at": float(r.created_at),
-                     "alert": json.loads(r.body)} for r in conn.execute(q)]
+            return [
+                {
+                    "id": int(r.id),
+                    "attempts": int(r.attempts),
+                    "created_at": float(r.created_at),
+                    "alert": json.loads(r.body),
+                }
+                for r in conn.execute(q)
+            ]
 
     def next_due_at(self, hook: str) -> float | None:
-        q = select(func.min(outbox.c.next_at)).where(outbox.c.hook == hook,
-                                                     outbox.c.status == "pending")
+        q = select(func.min(outbox.c.next_at)).where(
+            outbox.c.hook == hook, outbox.c.status == "pending"
+        )
         with self.engine.connect() as conn:
             v = conn.execute(q).scalar()
         return None if v is None else float(v)
 
     def mark_delivered(self, row_id: int, now: float) -> None:
         with self.store._write() as conn, conn.begin():
-            conn.execute(update(outbox).where(outbox.c.id == row_id)
-                         .values(status="delivered", done_at=now, attempts=outbox.c.attempts + 1,
-                                 last_error=None))
+            conn.execute(
+                update(outbox)
+                .where(outbox.c.id == row_id)
+                .values(
+                    status="delivered", done_at=now, attempts=outbox.c.attempts + 1, last_error=None
+                )
+            )
 
-    def mark_failed_try(self, row_id: int, next_at: float, error: str, *, give_up: bool = False,
-                        now: float | None = None) -> None:
-        values: dict[str, Any] = {"attempts": outbox.c.attempts + 1, "next_at": next_at,
-                                  "last_error": error[:500]}
+    def mark_failed_try(
+        self,
+        row_id: int,
+        next_at: float,
+        error: str,
+        *,
+        give_up: bool = False,
+        now: float | None = None,
+    ) -> None:
+        values: dict[str, Any] = {
+            "attempts": outbox.c.attempts + 1,
+            "next_at": next_at,
+            "last_error": error[:500],
+        }
         if give_up:
             values.update(status="failed", done_at=time.time() if now is None else now)
         with self.store._write() as conn, conn.begin():
@@ -188,15 +243,23 @@ class AlertStore:
             r["body"] = json.loads(r["body"])
         return rows[::-1]
 
-    def add_ack(self, item: str, episode: int, now: float, by: str | None,
-                note: str | None) -> None:
+    def add_ack(
+        self, item: str, episode: int, now: float, by: str | None, note: str | None
+    ) -> None:
         with self.store._write() as conn, conn.begin():
-            conn.execute(insert(alert_acks).values(item=item, episode=episode, acked_at=now,
-                                                   by=by, note=note))
+            conn.execute(
+                insert(alert_acks).values(
+                    item=item, episode=episode, acked_at=now, by=by, note=note
+                )
+            )
 
     def ack_of(self, item: str, episode: int) -> dict[str, Any] | None:
-        q = (select(alert_acks).where(alert_acks.c.item == item, alert_acks.c.episode == episode)
-             .order_by(alert_acks.c.id).limit(1))
+        q = (
+            select(alert_acks)
+            .where(alert_acks.c.item == item, alert_acks.c.episode == episode)
+            .order_by(alert_acks.c.id)
+            .limit(1)
+        )
         with self.engine.connect() as conn:
             r = conn.execute(q).first()
         return None if r is None else dict(r._mapping)

@@ -47,36 +47,54 @@ class PriorStore:
 
     def get(self, prior_class: str) -> dict[str, Any] | None:
         with self.engine.connect() as conn:
-            text = conn.execute(select(priors.c.body)
-                                .where(priors.c.prior_class == prior_class)).scalar()
+            text = conn.execute(
+                select(priors.c.body).where(priors.c.prior_class == prior_class)
+            ).scalar()
         return None if text is None else json.loads(text)
 
     def all(self) -> dict[str, dict[str, Any]]:
         with self.engine.connect() as conn:
-            return {c: json.loads(b) for c, b in conn.execute(
-                select(priors.c.prior_class, priors.c.body))}
+            return {
+                c: json.loads(b)
+                for c, b in conn.execute(select(priors.c.prior_class, priors.c.body))
+            }
 
     def learned_until(self, item: str) -> float | None:
         with self.engine.connect() as conn:
-            v = conn.execute(select(prior_items.c.learned_until)
-                             .where(prior_items.c.item == item)).scalar()
+            v = conn.execute(
+                select(prior_items.c.learned_until).where(prior_items.c.item == item)
+            ).scalar()
         return None if v is None else float(v)
 
-    def learn(self, prior_class: str, item: str, until_ts: float, now: float,
-              update_fn: Callable[[dict[str, Any] | None], dict[str, Any]]) -> dict[str, Any]:
+    def learn(
+        self,
+        prior_class: str,
+        item: str,
+        until_ts: float,
+        now: float,
+        update_fn: Callable[[dict[str, Any] | None], dict[str, Any]],
+    ) -> dict[str, Any]:
         """body' = update_fn(body or None) for the class, and the item's mark set to until_ts,
         in one transaction; returns body'."""
         with self.store._write() as conn, conn.begin():
-            text = conn.execute(select(priors.c.body)
-                                .where(priors.c.prior_class == prior_class)).scalar()
+            text = conn.execute(
+                select(priors.c.body).where(priors.c.prior_class == prior_class)
+            ).scalar()
             body = update_fn(None if text is None else json.loads(text))
-            row = {"updated_at": now, "n_episodes": int(body.get("n_episodes", 0)),
-                   "body": json.dumps(body)}
-            if not conn.execute(update(priors).where(priors.c.prior_class == prior_class)
-                                .values(**row)).rowcount:
+            row = {
+                "updated_at": now,
+                "n_episodes": int(body.get("n_episodes", 0)),
+                "body": json.dumps(body),
+            }
+            if not conn.execute(
+                update(priors).where(priors.c.prior_class == prior_class).values(**row)
+            ).rowcount:
                 conn.execute(insert(priors).values(prior_class=prior_class, **row))
             mark = {"prior_class": prior_class, "learned_until": until_ts}
-            if not conn.execute(update(prior_items).where(prior_items.c.item == item)
-                                .values(n_learned=prior_items.c.n_learned + 1, **mark)).rowcount:
+            if not conn.execute(
+                update(prior_items)
+                .where(prior_items.c.item == item)
+                .values(n_learned=prior_items.c.n_learned + 1, **mark)
+            ).rowcount:
                 conn.execute(insert(prior_items).values(item=item, n_learned=1, **mark))
         return body

@@ -14,15 +14,27 @@ import time
 from collections.abc import Iterable, Sequence
 from typing import Any
 
-from sqlalchemy import Connection, Engine, create_engine, delete, event, func, insert, select, update
+from sqlalchemy import (
+    Connection,
+    Engine,
+    create_engine,
+    delete,
+    event,
+    func,
+    insert,
+    select,
+    update,
+)
 from sqlalchemy.engine import make_url
 from sqlalchemy.exc import IntegrityError, SQLAlchemyError
-
 from thermeta.storage import schema
 from thermeta.storage.schema import dead_letters, forecasts, items, meta, readings
 
 BUSY_TIMEOUT_MS = 15000
-PLUGIN_MODULES = ("thermeta.storage.alerts", "thermeta.storage.priors")  # other parts' tables, joined to schema.metadata
+PLUGIN_MODULES = (
+    "thermeta.storage.alerts",
+    "thermeta.storage.priors",
+)  # other parts' tables, joined to schema.metadata
 
 
 READING_COLUMNS = ("item_id", "ts", "value_c", "flags", "received_at")
@@ -96,8 +108,10 @@ class Store:
         try:
             schema.metadata.create_all(self.engine)
         except SQLAlchemyError as exc:
-            raise StoreError(f"cannot create tables in {safe_url(self.url)}: {exc.__class__.__name__}: "
-                             f"{str(exc).splitlines()[0]}") from None
+            raise StoreError(
+                f"cannot create tables in {safe_url(self.url)}: {exc.__class__.__name__}: "
+                f"{str(exc).splitlines()[0]}"
+            ) from None
 
     def close(self) -> None:
         self.engine.dispose()
@@ -118,13 +132,25 @@ class Store:
         return None
 
     # -- items --------------------------------------------------------------------------------
-    def ensure_item(self, name: str, *, kind: str = "load", unit: str = "C", topic: str | None = None,
-                    now: float | None = None) -> int:
+    def ensure_item(
+        self,
+        name: str,
+        *,
+        kind: str = "load",
+        unit: str = "C",
+        topic: str | None = None,
+        now: float | None = None,
+    ) -> int:
         """The id of item ``name``, creating it if new."""
         if name in self._item_ids:
             return self._item_ids[name]
-        row = {"name": name, "kind": kind, "unit": unit, "topic": topic,
-               "created_at": time.time() if now is None else now}
+        row = {
+            "name": name,
+            "kind": kind,
+            "unit": unit,
+            "topic": topic,
+            "created_at": time.time() if now is None else now,
+        }
         with self._write() as conn, conn.begin():
             found = conn.execute(select(items.c.id).where(items.c.name == name)).scalar()
             if found is None:
@@ -134,28 +160,49 @@ class Store:
         self._item_ids[name] = int(found)
         return int(found)
 
-    def ensure_items(self, specs: Sequence[tuple[str, str, str, str | None]],
-                     now: float | None = None) -> dict[str, int]:
+    def ensure_items(
+        self, specs: Sequence[tuple[str, str, str, str | None]], now: float | None = None
+    ) -> dict[str, int]:
         """Ids of many items at once, creating the new ones in ONE transaction.
 
         specs: (name, kind, unit, topic) tuples.  A site's first minute brings hundreds of new
         probes; one commit each would stall ingest on fsyncs.
         """
-        want = {name: (kind, unit, topic) for name, kind, unit, topic in specs
-                if name not in self._item_ids}
+        want = {
+            name: (kind, unit, topic)
+            for name, kind, unit, topic in specs
+            if name not in self._item_ids
+        }
         created = time.time() if now is None else now
         names = list(want)
         for i in range(0, len(names), 500):
-            chunk = names[i:i + 500]
+            chunk = names[i : i + 500]
             with self._write() as conn, conn.begin():
-                found: dict[str, int] = dict(conn.execute(select(items.c.name, items.c.id)
-                                          .where(items.c.name.in_(chunk))).all())
-                new = [{"name": n, "kind": want[n][0], "unit": want[n][1], "topic": want[n][2],
-                        "created_at": created} for n in chunk if n not in found]
+                found: dict[str, int] = dict(
+                    conn.execute(
+                        select(items.c.name, items.c.id).where(items.c.name.in_(chunk))
+                    ).all()
+                )
+                new = [
+                    {
+                        "name": n,
+                        "kind": want[n][0],
+                        "unit": want[n][1],
+                        "topic": want[n][2],
+                        "created_at": created,
+                    }
+                    for n in chunk
+                    if n not in found
+                ]
                 if new:
                     conn.execute(insert(items), new)
-                    found.update(conn.execute(select(items.c.name, items.c.id)
-                                              .where(items.c.name.in_([r["name"] for r in new]))).all())
+                    found.update(
+                        conn.execute(
+                            select(items.c.name, items.c.id).where(
+                                items.c.name.in_([r["name"] for r in new])
+                            )
+                        ).all()
+                    )
             self._item_ids.update({n: int(v) for n, v in found.items()})
         return {name: self._item_ids[name] for name, *_ in specs}
 
@@ -177,14 +224,20 @@ class Store:
 
     def last_reading_times(self) -> dict[str, float]:
         """Newest reading time per item name (uses the (item_id, ts) key)."""
-        q = (select(items.c.name, func.max(readings.c.ts))
-             .join(readings, readings.c.item_id == items.c.id).group_by(items.c.name))
+        q = (
+            select(items.c.name, func.max(readings.c.ts))
+            .join(readings, readings.c.item_id == items.c.id)
+            .group_by(items.c.name)
+        )
         with self.engine.connect() as conn:
             return {name: float(ts) for name, ts in conn.execute(q) if ts is not None}
 
     # -- the ingest batch ---------------------------------------------------------------------
-    def write_batch(self, reading_rows: Sequence[tuple | dict[str, Any]],
-                    dead_rows: Sequence[dict[str, Any]] = ()) -> int:
+    def write_batch(
+        self,
+        reading_rows: Sequence[tuple | dict[str, Any]],
+        dead_rows: Sequence[dict[str, Any]] = (),
+    ) -> int:
         """Insert readings (duplicates of (item_id, ts) ignored) and dead letters in ONE transaction.
 
         reading_rows: tuples (item_id, ts, value_c, flags, received_at), or dicts with those keys.
@@ -215,7 +268,9 @@ class Store:
                 if dead_rows:
                     conn.execute(insert(dead_letters), list(dead_rows))
         except SQLAlchemyError as exc:
-            raise StoreError(f"write failed: {exc.__class__.__name__}: {str(exc).splitlines()[0]}") from exc
+            raise StoreError(
+                f"write failed: {exc.__class__.__name__}: {str(exc).splitlines()[0]}"
+            ) from exc
         return stored
 
     @staticmethod
@@ -232,8 +287,9 @@ class Store:
         return n
 
     # -- reads --------------------------------------------------------------------------------
-    def recent_readings(self, item: str | int, since_ts: float | None = None,
-                        until_ts: float | None = None) -> list[tuple[float, float]]:
+    def recent_readings(
+        self, item: str | int, since_ts: float | None = None, until_ts: float | None = None
+    ) -> list[tuple[float, float]]:
         """(ts, value_degC) of one item, oldest first."""
         item_id = item if isinstance(item, int) else self.item_id(item)
         if item_id is None:
@@ -251,8 +307,12 @@ class Store:
         item_id = item if isinstance(item, int) else self.item_id(item)
         if item_id is None:
             return None
-        q = (select(readings.c.ts, readings.c.value_c).where(readings.c.item_id == item_id)
-             .order_by(readings.c.ts).limit(1))
+        q = (
+            select(readings.c.ts, readings.c.value_c)
+            .where(readings.c.item_id == item_id)
+            .order_by(readings.c.ts)
+            .limit(1)
+        )
         with self.engine.connect() as conn:
             row = conn.execute(q).first()
         return None if row is None else (float(row[0]), float(row[1]))
@@ -260,10 +320,13 @@ class Store:
     def counts(self) -> dict[str, int]:
         with self.engine.connect() as conn:
             return {
-                "items": conn.execute(select(func.count()).select_from(items)
-                                      .where(items.c.kind == "load")).scalar_one(),
+                "items": conn.execute(
+                    select(func.count()).select_from(items).where(items.c.kind == "load")
+                ).scalar_one(),
                 "readings": conn.execute(select(func.count()).select_from(readings)).scalar_one(),
-                "dead_letters": conn.execute(select(func.count()).select_from(dead_letters)).scalar_one(),
+                "dead_letters": conn.execute(
+                    select(func.count()).select_from(dead_letters)
+                ).scalar_one(),
             }
 
     def recent_dead_letters(self, limit: int = 20) -> list[dict[str, Any]]:
@@ -272,45 +335,82 @@ class Store:
             return [dict(r._mapping) for r in conn.execute(q)]
 
     # -- forecasts ----------------------------------------------------------------------------
-    def save_forecast(self, item_id: int, made_at: float, state: str, body: dict[str, Any],
-                      last_reading_at: float | None) -> None:
+    def save_forecast(
+        self,
+        item_id: int,
+        made_at: float,
+        state: str,
+        body: dict[str, Any],
+        last_reading_at: float | None,
+    ) -> None:
         eta = body.get("eta_s")
         with self._write() as conn, conn.begin():
-            conn.execute(insert(forecasts).values(item_id=item_id, made_at=made_at, state=state,
-                                                  eta_s=eta, body=json.dumps(body)))
-            conn.execute(update(items).where(items.c.id == item_id)
-                         .values(state=state, last_reading_at=last_reading_at))
+            conn.execute(
+                insert(forecasts).values(
+                    item_id=item_id, made_at=made_at, state=state, eta_s=eta, body=json.dumps(body)
+                )
+            )
+            conn.execute(
+                update(items)
+                .where(items.c.id == item_id)
+                .values(state=state, last_reading_at=last_reading_at)
+            )
 
-    def save_forecasts(self, rows: Sequence[tuple[int, float, str, dict[str, Any], float | None]]) -> None:
+    def save_forecasts(
+        self, rows: Sequence[tuple[int, float, str, dict[str, Any], float | None]]
+    ) -> None:
         """Many (item_id, made_at, state, body, last_reading_at) in one transaction."""
         if not rows:
             return
         with self._write() as conn, conn.begin():
-            conn.execute(insert(forecasts), [
-                {"item_id": i, "made_at": m, "state": s, "eta_s": b.get("eta_s"), "body": json.dumps(b)}
-                for i, m, s, b, _ in rows])
+            conn.execute(
+                insert(forecasts),
+                [
+                    {
+                        "item_id": i,
+                        "made_at": m,
+                        "state": s,
+                        "eta_s": b.get("eta_s"),
+                        "body": json.dumps(b),
+                    }
+                    for i, m, s, b, _ in rows
+                ],
+            )
             for i, _, s, _, last in rows:
-                conn.execute(update(items).where(items.c.id == i).values(state=s, last_reading_at=last))
+                conn.execute(
+                    update(items).where(items.c.id == i).values(state=s, last_reading_at=last)
+                )
 
     def latest_forecasts(self) -> list[dict[str, Any]]:
         """The current forecast of each item: dicts with item, state, made_at, forecast (the JSON)."""
         newest = select(func.max(forecasts.c.id)).group_by(forecasts.c.item_id).scalar_subquery()
-        q = (select(items.c.name, forecasts.c.state, forecasts.c.made_at, forecasts.c.body)
-             .join(items, items.c.id == forecasts.c.item_id)
-             .where(forecasts.c.id.in_(newest)).order_by(items.c.name))
+        q = (
+            select(items.c.name, forecasts.c.state, forecasts.c.made_at, forecasts.c.body)
+            .join(items, items.c.id == forecasts.c.item_id)
+            .where(forecasts.c.id.in_(newest))
+            .order_by(items.c.name)
+        )
         with self.engine.connect() as conn:
-            return [{"item": n, "state": s, "made_at": float(m), "forecast": json.loads(b)}
-                    for n, s, m, b in conn.execute(q)]
+            return [
+                {"item": n, "state": s, "made_at": float(m), "forecast": json.loads(b)}
+                for n, s, m, b in conn.execute(q)
+            ]
 
     def forecast_history(self, item: str, limit: int = 100) -> list[dict[str, Any]]:
         item_id = self.item_id(item)
         if item_id is None:
             return []
-        q = (select(forecasts.c.made_at, forecasts.c.state, forecasts.c.body)
-             .where(forecasts.c.item_id == item_id).order_by(forecasts.c.id.desc()).limit(limit))
+        q = (
+            select(forecasts.c.made_at, forecasts.c.state, forecasts.c.body)
+            .where(forecasts.c.item_id == item_id)
+            .order_by(forecasts.c.id.desc())
+            .limit(limit)
+        )
         with self.engine.connect() as conn:
-            return [{"made_at": float(m), "state": s, "forecast": json.loads(b)}
-                    for m, s, b in conn.execute(q)]
+            return [
+                {"made_at": float(m), "state": s, "forecast": json.loads(b)}
+                for m, s, b in conn.execute(q)
+            ]
 
     # -- meta ---------------------------------------------------------------------------------
     def set_meta(self, key: str, value: Any) -> None:
@@ -336,7 +436,12 @@ class Store:
         newest = select(func.max(forecasts.c.id)).group_by(forecasts.c.item_id).scalar_subquery()
         with self._write() as conn, conn.begin():
             r = conn.execute(delete(readings).where(readings.c.ts < before_ts)).rowcount
-            f = conn.execute(delete(forecasts).where(forecasts.c.made_at < before_ts)
-                             .where(forecasts.c.id.not_in(newest))).rowcount
-            d = conn.execute(delete(dead_letters).where(dead_letters.c.received_at < before_ts)).rowcount
+            f = conn.execute(
+                delete(forecasts)
+                .where(forecasts.c.made_at < before_ts)
+                .where(forecasts.c.id.not_in(newest))
+            ).rowcount
+            d = conn.execute(
+                delete(dead_letters).where(dead_letters.c.received_at < before_ts)
+            ).rowcount
         return {"readings": r, "forecasts": f, "dead_letters": d}

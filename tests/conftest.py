@@ -110,5 +110,7 @@ def pg_url() -> str:
     if not url:
         if IN_CI and os.environ.get("THERMETA_REQUIRE_PG"):
             pytest.fail("THERMETA_REQUIRE_PG set but THERMETA_TEST_PG_URL is empty")
-        pytest.skip("THERMETA_TEST_PG_URL not set (e.g. postgresql+psycopg://postgres@127.0.0.1/test)")
+        pytest.skip(
+            "THERMETA_TEST_PG_URL not set (e.g. postgresql+psycopg://postgres@127.0.0.1/test)"
+        )
     return url

@@ -29,23 +29,44 @@ def crossing_s(thr: float = THR, ta: float = TA, t0: float = T_START, k: float =
     return -math.log((thr - ta) / (t0 - ta)) / k
 
 
-def fc_at(t_s: float, value: float | None = None, *, state: str | None = None, spread: float = 0.15,
-          horizon_s: float = 86400.0, warnings: list[str] | None = None,
-          regime_start: float | None = None, direction: str = "rising") -> dict:
+def fc_at(
+    t_s: float,
+    value: float | None = None,
+    *,
+    state: str | None = None,
+    spread: float = 0.15,
+    horizon_s: float = 86400.0,
+    warnings: list[str] | None = None,
+    regime_start: float | None = None,
+    direction: str = "rising",
+) -> dict:
     """The forecast dict of the refitter at t_s seconds after the start (reading just taken)."""
     v = newton(t_s) if value is None else value
     eta = max(0.0, crossing_s() - t_s) if direction == "rising" else None
     if state is None:
-        state = "crossed" if v >= THR else ("approaching" if eta is not None and eta <= horizon_s
-                                            else "steady")
+        state = (
+            "crossed"
+            if v >= THR
+            else ("approaching" if eta is not None and eta <= horizon_s else "steady")
+        )
     return {
-        "item": "trailer-4", "state": state, "value_now": v, "threshold": THR, "unit": "C",
-        "direction": direction, "eta_s": eta,
+        "item": "trailer-4",
+        "state": state,
+        "value_now": v,
+        "threshold": THR,
+        "unit": "C",
+        "direction": direction,
+        "eta_s": eta,
         "eta_lo_s": None if eta is None else eta * (1 - spread),
         "eta_hi_s": None if eta is None else eta * (1 + spread),
-        "ambient": TA, "time_constant_s": 1.0 / K, "k_per_s": K, "fit_ok": True,
-        "last_reading_at": rfc3339(T0_EPOCH + t_s), "warnings": warnings or [],
-        "regime_start": rfc3339(regime_start), "ambient_mode": "known",
+        "ambient": TA,
+        "time_constant_s": 1.0 / K,
+        "k_per_s": K,
+        "fit_ok": True,
+        "last_reading_at": rfc3339(T0_EPOCH + t_s),
+        "warnings": warnings or [],
+        "regime_start": rfc3339(regime_start),
+        "ambient_mode": "known",
     }
 
 
@@ -68,8 +89,13 @@ def test_approaching_once_at_least_lead_before_the_true_crossing_then_crossed_th
     `crossed` at the crossing, and `recovered` once it is cooled back past the band."""
     t_cross = crossing_s()
     seq = [(t, fc_at(t)) for t in range(0, int(t_cross) + 1800, 300)]
-    cool = [(t_cross + 1800 + i * 300, fc_at(0, value=-15.3 - 0.4 * i, state="steady",
-                                           direction="falling")) for i in range(6)]
+    cool = [
+        (
+            t_cross + 1800 + i * 300,
+            fc_at(0, value=-15.3 - 0.4 * i, state="steady", direction="falling"),
+        )
+        for i in range(6)
+    ]
     for t, fc in cool:
         fc["last_reading_at"] = rfc3339(T0_EPOCH + t)
     st, out = run(seq + cool, P)
@@ -165,10 +191,12 @@ def test_regime_change_alerts_once_per_new_change_not_for_jitter():
     """A change of surroundings at t=1000 s alerts once; the estimate wandering by a reading
     does not alert again; a later change (t=5000 s) does."""
     note = ["the surroundings changed 1 time(s); fitted the newest 40 readings only"]
-    seq = [(1200, fc_at(1200, warnings=note, regime_start=T0_EPOCH + 1000)),
-           (1500, fc_at(1500, warnings=note, regime_start=T0_EPOCH + 1060)),
-           (1800, fc_at(1800, regime_start=T0_EPOCH + 1060)),
-           (5400, fc_at(5400, warnings=note, regime_start=T0_EPOCH + 5000))]
+    seq = [
+        (1200, fc_at(1200, warnings=note, regime_start=T0_EPOCH + 1000)),
+        (1500, fc_at(1500, warnings=note, regime_start=T0_EPOCH + 1060)),
+        (1800, fc_at(1800, regime_start=T0_EPOCH + 1060)),
+        (5400, fc_at(5400, warnings=note, regime_start=T0_EPOCH + 5000)),
+    ]
     _, out = run(seq, RuleParams(threshold=THR, lead_s=60))
     assert [(t, e.level) for t, e in out] == [(1200, "regime"), (5400, "regime")]
 
@@ -178,17 +206,56 @@ def test_lower_limit_falling_toward_a_floor():
     the floor plus the band."""
     p = RuleParams(threshold=10.0, lead_s=3600, hysteresis=0.5, hold_s=300)
     base = {"item": "cellar", "unit": "C", "fit_ok": True, "warnings": [], "direction": "falling"}
-    seq = [(0, dict(base, state="approaching", value_now=11.0, eta_s=3000.0, eta_lo_s=2500.0,
-                    eta_hi_s=3500.0, last_reading_at=rfc3339(T0_EPOCH))),
-           (3000, dict(base, state="crossed", value_now=9.8, eta_s=0.0,
-                       last_reading_at=rfc3339(T0_EPOCH + 3000))),
-           (4000, dict(base, state="steady", value_now=10.3, direction="rising",
-                       last_reading_at=rfc3339(T0_EPOCH + 4000))),
-           (4100, dict(base, state="steady", value_now=10.6, direction="rising",
-                       last_reading_at=rfc3339(T0_EPOCH + 4100)))]
+    seq = [
+        (
+            0,
+            dict(
+                base,
+                state="approaching",
+                value_now=11.0,
+                eta_s=3000.0,
+                eta_lo_s=2500.0,
+                eta_hi_s=3500.0,
+                last_reading_at=rfc3339(T0_EPOCH),
+            ),
+        ),
+        (
+            3000,
+            dict(
+                base,
+                state="crossed",
+                value_now=9.8,
+                eta_s=0.0,
+                last_reading_at=rfc3339(T0_EPOCH + 3000),
+            ),
+        ),
+        (
+            4000,
+            dict(
+                base,
+                state="steady",
+                value_now=10.3,
+                direction="rising",
+                last_reading_at=rfc3339(T0_EPOCH + 4000),
+            ),
+        ),
+        (
+            4100,
+            dict(
+                base,
+                state="steady",
+                value_now=10.6,
+                direction="rising",
+                last_reading_at=rfc3339(T0_EPOCH + 4100),
+            ),
+        ),
+    ]
     _, out = run(seq, p)
-    assert [(t, e.level) for t, e in out] == [(0, "approaching"), (3000, "crossed"),
-                                              (4100, "recovered")]
+    assert [(t, e.level) for t, e in out] == [
+        (0, "approaching"),
+        (3000, "crossed"),
+        (4100, "recovered"),
+    ]
 
 
 def test_state_survives_json_round_trip_so_a_restart_repeats_nothing():
@@ -212,8 +279,12 @@ def test_the_sentence_carries_the_numbers():
     the interval, the ambient (given, measured or fitted) and time constant."""
     now = T0_EPOCH + 600
     fc = fc_at(600)
-    fc.update(eta_s=2520.0 + 600, eta_lo_s=1620.0 + 600, eta_hi_s=4080.0 + 600,
-              last_reading_at=rfc3339(T0_EPOCH))
+    fc.update(
+        eta_s=2520.0 + 600,
+        eta_lo_s=1620.0 + 600,
+        eta_hi_s=4080.0 + 600,
+        last_reading_at=rfc3339(T0_EPOCH),
+    )
     st = ItemAlertState()
     evs = step(st, fc, P, now)
     a = build_alert("trailer-4", fc, evs[0], st, P, now, unit="C", silence_s=900)
@@ -226,8 +297,9 @@ def test_the_sentence_carries_the_numbers():
     assert "; given ambient 12.0 °C, time constant 10 h 00 min" in s
     assert "; fitted ambient 12.0 °C," in sentence(dict(a, ambient_mode="fitted"))
     assert "; air probe heading for 12.0 °C," in sentence(dict(a, ambient_mode="measured"))
-    assert "; ambient from the air probe, time" in sentence(dict(a, ambient_mode="measured",
-                                                                 ambient=None))
+    assert "; ambient from the air probe, time" in sentence(
+        dict(a, ambient_mode="measured", ambient=None)
+    )
     assert s.count(". ") == 0 and s.endswith(".")
     assert a["crossing_at"] == rfc3339(now + 2520.0)
     assert a["id"] == "trailer-4:1:approaching:1"
@@ -238,19 +310,28 @@ def test_the_sentence_carries_the_numbers():
         assert b["item"] in sentence(b)
     # the crossing says which way: a warming load rose above, a chilled batch fell below
     assert sentence(dict(a, level="crossed", side="upper")).startswith(
-        "trailer-4 has risen above its threshold: ")
+        "trailer-4 has risen above its threshold: "
+    )
     assert sentence(dict(a, level="crossed", side="lower")).startswith(
-        "trailer-4 has fallen below its threshold: ")
+        "trailer-4 has fallen below its threshold: "
+    )
     assert sentence(dict(a, level="crossed", side=None)).startswith(
-        "trailer-4 has crossed its threshold: ")
+        "trailer-4 has crossed its threshold: "
+    )
 
 
 def test_the_daemons_limit_side_is_used_when_given():
     """A forecast saying limit = "lower" (a floor, configured) makes a value under the threshold
     a crossing even on first sight, and one above it safe."""
     p = RuleParams(threshold=10.0, lead_s=600)
-    base = {"item": "cellar", "unit": "C", "fit_ok": True, "warnings": [], "limit": "lower",
-            "last_reading_at": rfc3339(T0_EPOCH)}
+    base = {
+        "item": "cellar",
+        "unit": "C",
+        "fit_ok": True,
+        "warnings": [],
+        "limit": "lower",
+        "last_reading_at": rfc3339(T0_EPOCH),
+    }
     _, out = run([(0, dict(base, state="crossed", value_now=9.0))], p)
     assert [e.level for _, e in out] == ["crossed"]
     _, out = run([(0, dict(base, state="steady", value_now=11.0, limit="lower"))], p)
@@ -260,18 +341,31 @@ def test_the_daemons_limit_side_is_used_when_given():
 NOTE = ["the surroundings changed 1 time(s); fitted the newest 40 readings only"]
 
 
-def _excursion(start_s: float, minutes: int, every_s: float = 60.0, inside: float = THR - 2,
-               past: float = THR + 1.5):
+def _excursion(
+    start_s: float,
+    minutes: int,
+    every_s: float = 60.0,
+    inside: float = THR - 2,
+    past: float = THR + 1.5,
+):
     """An air probe by a busy door: inside its limit, then past it for ``minutes``, then back,
     one refit a minute, the fit reporting the change from its start on."""
     seq = []
     for i in range(90):
         t = start_s - 600 + i * every_s
         is_past = start_s <= t < start_s + 60 * minutes
-        seq.append((t, fc_at(t, value=past if is_past else inside,
-                             state="crossed" if is_past else "steady",
-                             warnings=NOTE if t >= start_s else None,
-                             regime_start=T0_EPOCH + start_s if t >= start_s else None)))
+        seq.append(
+            (
+                t,
+                fc_at(
+                    t,
+                    value=past if is_past else inside,
+                    state="crossed" if is_past else "steady",
+                    warnings=NOTE if t >= start_s else None,
+                    regime_start=T0_EPOCH + start_s if t >= start_s else None,
+                ),
+            )
+        )
     return seq
 
 
@@ -301,8 +395,9 @@ def test_delay_holds_an_approach_until_it_has_lasted():
     assert delayed[0] - first[0] == 600
     # the condition lapses (no crossing forecast) for one refit after 5 minutes: counted again
     t0 = seq[0][0]
-    broken = [(t, fc if t != t0 + 300 else fc_at(t, state="steady", direction="falling"))
-              for t, fc in seq]
+    broken = [
+        (t, fc if t != t0 + 300 else fc_at(t, state="steady", direction="falling")) for t, fc in seq
+    ]
     again = run(broken, RuleParams(threshold=THR, lead_s=3600, delay_s=600))[1][0]
     assert again[0] == t0 + 360 + 600
 
@@ -311,12 +406,26 @@ def test_a_change_inside_a_defrost_hold_is_not_told():
     """The fit finds the defrost itself as a change of the surroundings; inside the hold that
     is noted without an alert, and not told later either (the same start)."""
     start = 1000.0
-    defrost = {"on": False, "started_at": rfc3339(T0_EPOCH + start),
-               "ended_at": rfc3339(T0_EPOCH + start + 1500)}
-    seq = [(t, dict(fc_at(t, value=THR - 3, state="steady", warnings=NOTE,
-                          regime_start=T0_EPOCH + start), defrost=defrost))
-           for t in range(1200, 9000, 300)]
+    defrost = {
+        "on": False,
+        "started_at": rfc3339(T0_EPOCH + start),
+        "ended_at": rfc3339(T0_EPOCH + start + 1500),
+    }
+    seq = [
+        (
+            t,
+            dict(
+                fc_at(
+                    t, value=THR - 3, state="steady", warnings=NOTE, regime_start=T0_EPOCH + start
+                ),
+                defrost=defrost,
+            ),
+        )
+        for t in range(1200, 9000, 300)
+    ]
     _, out = run(seq, RuleParams(threshold=THR, lead_s=60))
     assert out == []
     no_defrost = [(t, {k: v for k, v in fc.items() if k != "defrost"}) for t, fc in seq]
-    assert [e.level for _, e in run(no_defrost, RuleParams(threshold=THR, lead_s=60))[1]] == ["regime"]
+    assert [e.level for _, e in run(no_defrost, RuleParams(threshold=THR, lead_s=60))[1]] == [
+        "regime"
+    ]

@@ -19,7 +19,9 @@ ROOT = Path(__file__).resolve().parent.parent
 
 @pytest.fixture(scope="module")
 def bench():
-    spec = importlib.util.spec_from_file_location("bench_alerts", ROOT / "scripts" / "bench_alerts.py")
+    spec = importlib.util.spec_from_file_location(
+        "bench_alerts", ROOT / "scripts" / "bench_alerts.py"
+    )
     mod = importlib.util.module_from_spec(spec)
     sys.modules["bench_alerts"] = mod
     spec.loader.exec_module(mod)

@@ -19,7 +19,9 @@ ROOT = Path(__file__).resolve().parent.parent
 
 @pytest.fixture(scope="module")
 def bench():
-    spec = importlib.util.spec_from_file_location("bench_forecast", ROOT / "scripts" / "bench_forecast.py")
+    spec = importlib.util.spec_from_file_location(
+        "bench_forecast", ROOT / "scripts" / "bench_forecast.py"
+    )
     mod = importlib.util.module_from_spec(spec)
     sys.modules["bench_forecast"] = mod
     spec.loader.exec_module(mod)
@@ -92,10 +94,12 @@ def test_draws_stay_inside_the_fixed_ranges(bench):
 def test_error_arithmetic(bench):
     """Relative error |eta - true| / true, a missing ETA counted as 1000 %, a non-crossing truth
     left out; coverage counts open interval ends as unbounded."""
-    recs = [{"eta_true": 100.0, "eta": 110.0, "ok": True, "lo": 90.0, "hi": None},
-            {"eta_true": 100.0, "eta": None, "ok": True, "lo": None, "hi": None},
-            {"eta_true": None, "eta": 5.0, "ok": True, "lo": 1.0, "hi": 9.0},
-            {"eta_true": 200.0, "eta": 150.0, "ok": True, "lo": 160.0, "hi": 190.0}]
+    recs = [
+        {"eta_true": 100.0, "eta": 110.0, "ok": True, "lo": 90.0, "hi": None},
+        {"eta_true": 100.0, "eta": None, "ok": True, "lo": None, "hi": None},
+        {"eta_true": None, "eta": 5.0, "ok": True, "lo": 1.0, "hi": 9.0},
+        {"eta_true": 200.0, "eta": 150.0, "ok": True, "lo": 160.0, "hi": 190.0},
+    ]
     e = bench.rel_errors(recs)
     assert e.tolist() == pytest.approx([0.10, bench.MISSING_ERR, 0.25])
     assert bench.coverage(recs) == pytest.approx(2 / 3)
@@ -112,9 +116,16 @@ def test_bad_family_exits_2(bench, capsys):
 
 def test_a_failure_at_the_statistical_limit_is_marked(bench):
     """A target is marked "at the limit" only where the CRB-limited figure fails it too."""
-    summary = {("chill_fitted", "clean", f): {"median": m, "p90": 0.01, "crb": 1.0,
-                                              "crb_limited": (lim, 0.01), "cover": 0.9}
-               for f, m, lim in zip(bench.PROGRESS, (0.05, 0.02, 0.01), (0.046, 0.011, 0.007))}
+    summary = {
+        ("chill_fitted", "clean", f): {
+            "median": m,
+            "p90": 0.01,
+            "crb": 1.0,
+            "crb_limited": (lim, 0.01),
+            "cover": 0.9,
+        }
+        for f, m, lim in zip(bench.PROGRESS, (0.05, 0.02, 0.01), (0.046, 0.011, 0.007))
+    }
     cs = [c for c in bench.checks(summary, ("chill_fitted",)) if c.figure == "median"]
     assert len(cs) == 1 and cs[0].ok is False
     assert cs[0].beyond_limit() == [0]  # 25 %: 5 % against a limit of 4.6 %; 50 %: reachable

@@ -16,7 +16,9 @@ ROOT = Path(__file__).resolve().parent.parent
 
 def load():
     sys.path.insert(0, str(ROOT / "scripts"))
-    spec = importlib.util.spec_from_file_location("bench_prior", ROOT / "scripts" / "bench_prior.py")
+    spec = importlib.util.spec_from_file_location(
+        "bench_prior", ROOT / "scripts" / "bench_prior.py"
+    )
     mod = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(mod)
     return mod

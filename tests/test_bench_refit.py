@@ -10,7 +10,9 @@ ROOT = Path(__file__).resolve().parent.parent
 
 
 def load():
-    spec = importlib.util.spec_from_file_location("bench_refit", ROOT / "scripts" / "bench_refit.py")
+    spec = importlib.util.spec_from_file_location(
+        "bench_refit", ROOT / "scripts" / "bench_refit.py"
+    )
     mod = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(mod)
     return mod

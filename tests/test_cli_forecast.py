@@ -10,15 +10,31 @@ import numpy as np
 import pytest
 
 CONTRACT_KEYS = {
-    "eta_s", "eta_lo_s", "eta_hi_s", "crossing_at", "threshold", "k_per_s", "time_constant_s",
-    "half_cooling_s", "ambient", "ambient_mode", "model", "biot", "value_now", "n_points",
-    "regime_start", "warnings",
+    "eta_s",
+    "eta_lo_s",
+    "eta_hi_s",
+    "crossing_at",
+    "threshold",
+    "k_per_s",
+    "time_constant_s",
+    "half_cooling_s",
+    "ambient",
+    "ambient_mode",
+    "model",
+    "biot",
+    "value_now",
+    "n_points",
+    "regime_start",
+    "warnings",
 }
 
 
 def run_cli(*args: str) -> subprocess.CompletedProcess:
     return subprocess.run(
-        [sys.executable, "-m", "thermeta.daemon.cli", *args], capture_output=True, text=True, timeout=120
+        [sys.executable, "-m", "thermeta.daemon.cli", *args],
+        capture_output=True,
+        text=True,
+        timeout=120,
     )
 
 
@@ -98,7 +114,9 @@ def test_already_past_upper_limit_gives_zero(tmp_path):
     """A load whose newest reading is above its (upper) threshold: eta_s is 0, crossing now."""
     p = tmp_path / "load.csv"
     write_warming_csv(p)  # 2 -> about 10 degC over two hours
-    out = json.loads(run_cli("forecast", str(p), "--threshold", "6", "--ambient", "27", "--json").stdout)
+    out = json.loads(
+        run_cli("forecast", str(p), "--threshold", "6", "--ambient", "27", "--json").stdout
+    )
     assert out["limit"] == "upper"
     assert out["eta_s"] == 0
     assert out["value_now"] > 6
@@ -108,7 +126,9 @@ def test_never_reaching_threshold_gives_null(tmp_path):
     """A load levelling off toward 27 degC never reaches 40 degC: eta_s is null, no crossing time."""
     p = tmp_path / "load.csv"
     write_warming_csv(p)
-    out = json.loads(run_cli("forecast", str(p), "--threshold", "40", "--ambient", "27", "--json").stdout)
+    out = json.loads(
+        run_cli("forecast", str(p), "--threshold", "40", "--ambient", "27", "--json").stdout
+    )
     assert out["eta_s"] is None and out["crossing_at"] is None
 
 
@@ -120,16 +140,26 @@ def test_ambient_within_narrows_the_ambient_band(tmp_path):
     write_warming_csv(p)
     bands = {}
     for w in ("0.5", "6"):
-        r = run_cli("forecast", str(p), "--threshold", "12", "--ambient", "26", "--ambient-within",
-                    w, "--json")
+        r = run_cli(
+            "forecast",
+            str(p),
+            "--threshold",
+            "12",
+            "--ambient",
+            "26",
+            "--ambient-within",
+            w,
+            "--json",
+        )
         assert r.returncode == 0, r.stderr
         out = json.loads(r.stdout)
         bands[w] = out["ambient_hi"] - out["ambient_lo"]
     assert bands["0.5"] < 0.5 * bands["6"]
     r = run_cli("forecast", str(p), "--threshold", "12", "--ambient-within", "2")
     assert r.returncode == 2 and "give --ambient too" in r.stderr
-    r = run_cli("forecast", str(p), "--threshold", "12", "--ambient", "26",
-                "--ambient-within", "-1")
+    r = run_cli(
+        "forecast", str(p), "--threshold", "12", "--ambient", "26", "--ambient-within", "-1"
+    )
     assert r.returncode == 2 and ">= 0" in r.stderr
 
 
@@ -143,10 +173,20 @@ def test_default_ambient_doubt_follows_the_unit(tmp_path):
     out = {}
     for unit, conv in (("C", lambda v: v), ("F", lambda v: v * 9 / 5 + 32)):
         p = tmp_path / f"load_{unit}.csv"
-        p.write_text("time,value\n" + "".join(f"{1764600000 + a:.0f},{conv(b):.3f}\n"
-                                              for a, b in zip(t, y)))
-        r = run_cli("forecast", str(p), "--threshold", f"{conv(12.0):g}", "--ambient",
-                    f"{conv(25.0):g}", "--unit", unit, "--json")
+        p.write_text(
+            "time,value\n" + "".join(f"{1764600000 + a:.0f},{conv(b):.3f}\n" for a, b in zip(t, y))
+        )
+        r = run_cli(
+            "forecast",
+            str(p),
+            "--threshold",
+            f"{conv(12.0):g}",
+            "--ambient",
+            f"{conv(25.0):g}",
+            "--unit",
+            unit,
+            "--json",
+        )
         assert r.returncode == 0, r.stderr
         out[unit] = json.loads(r.stdout)
     assert out["F"]["eta_s"] == pytest.approx(out["C"]["eta_s"], rel=0.01)
@@ -163,8 +203,17 @@ def test_fahrenheit_readings_forecast_as_their_celsius_twins(tmp_path):
     for unit, conv in (("C", lambda v: v), ("F", lambda v: v * 9 / 5 + 32)):
         p = tmp_path / f"two_{unit}.csv"
         p.write_text(f"time,value\n1764600000,{conv(2.0):.2f}\n1764600600,{conv(2.8):.2f}\n")
-        r = run_cli("forecast", str(p), "--threshold", f"{conv(8.0):g}", "--ambient",
-                    f"{conv(27.0):g}", "--unit", unit, "--json")
+        r = run_cli(
+            "forecast",
+            str(p),
+            "--threshold",
+            f"{conv(8.0):g}",
+            "--ambient",
+            f"{conv(27.0):g}",
+            "--unit",
+            unit,
+            "--json",
+        )
         assert r.returncode == 0, r.stderr
         out[unit] = json.loads(r.stdout)
     for key in ("eta_s", "eta_lo_s", "eta_hi_s", "k_per_s"):
@@ -182,9 +231,21 @@ def test_a_reader_that_goes_away_gets_no_traceback(tmp_path):
     the exit status a shell gives a filter cut off (141 = 128 + SIGPIPE)."""
     p = tmp_path / "load.csv"
     write_warming_csv(p)
-    proc = subprocess.Popen([sys.executable, "-m", "thermeta.daemon.cli", "forecast", str(p),
-                             "--threshold", "12", "--ambient", "27"],
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    proc = subprocess.Popen(
+        [
+            sys.executable,
+            "-m",
+            "thermeta.daemon.cli",
+            "forecast",
+            str(p),
+            "--threshold",
+            "12",
+            "--ambient",
+            "27",
+        ],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+    )
     proc.stdout.close()  # the reader is gone before anything is written
     err = proc.stderr.read().decode()
     assert proc.wait(timeout=120) == 141
@@ -198,12 +259,14 @@ def write_cooling_csv(path, conv) -> None:
     t = np.arange(0, 2 * 3600, 60.0)
     amb = (40 - 32) * 5 / 9
     y = amb + (21.0 - amb) * np.exp(-t / 7200) + rng.normal(0, 0.05, t.size)
-    path.write_text("time,value\n" + "".join(f"{1764600000 + a:.0f},{conv(b):.4f}\n"
-                                             for a, b in zip(t, y)))
+    path.write_text(
+        "time,value\n" + "".join(f"{1764600000 + a:.0f},{conv(b):.4f}\n" for a, b in zip(t, y))
+    )
 
 
-KNOWN_NOTE = ("the given ambient {} is taken as uncertain by about {} (1 sd); "
-              "the intervals include that")
+KNOWN_NOTE = (
+    "the given ambient {} is taken as uncertain by about {} (1 sd); the intervals include that"
+)
 
 
 def test_fahrenheit_warnings_show_fahrenheit(tmp_path):
@@ -234,8 +297,9 @@ def test_kelvin_warnings_show_kelvin(tmp_path):
     as 2.5 K (K = degC + 273.15, a kelvin step equal to a degC step: NIST SP 811, from memory)."""
     p = tmp_path / "cool_K.csv"
     write_cooling_csv(p, lambda v: v + 273.15)
-    r = run_cli("forecast", str(p), "--threshold", "280", "--ambient", "277.6", "--unit", "K",
-                "--json")
+    r = run_cli(
+        "forecast", str(p), "--threshold", "280", "--ambient", "277.6", "--unit", "K", "--json"
+    )
     assert r.returncode == 0, r.stderr
     out = json.loads(r.stdout)
     assert out["ambient"] == pytest.approx(277.6, abs=0.5)

@@ -16,9 +16,18 @@ TRUTH = {"t_i": 70.0, "ambient": 2.0, "biot": 2.0, "a_per_s": 1 / 30000, "thresh
 
 def _case(seed: int):
     """Cooked food at 70 degC, sphere centre, 2 degC chiller, 0.2 degC noise, seen half-way."""
-    return core_probe(seed, geometry="sphere", biot=2.0, a_per_s=1 / 30000, t_i=70.0, ambient=2.0,
-                      threshold=21.0, seen_fraction=0.5, dt_s=30.0,
-                      corruption=Corruption(noise=0.2))
+    return core_probe(
+        seed,
+        geometry="sphere",
+        biot=2.0,
+        a_per_s=1 / 30000,
+        t_i=70.0,
+        ambient=2.0,
+        threshold=21.0,
+        seen_fraction=0.5,
+        dt_s=30.0,
+        corruption=Corruption(noise=0.2),
+    )
 
 
 def test_bound_matches_the_spread_of_a_well_determined_fit():
@@ -46,7 +55,10 @@ def test_bound_orders_by_what_is_known_of_the_ambient():
     free = crb_eta_sd(t, "sphere", noise_sd=0.2, ambient_sd=None, **TRUTH)
     assert known < measured < free
     assert crb_eta_sd(t, "sphere", noise_sd=0.1, ambient_sd=0.0, **TRUTH) == pytest.approx(
-        known / 2, rel=1e-6)
+        known / 2, rel=1e-6
+    )
     # a threshold beyond the ambient is never crossed: no finite bound
-    assert crb_eta_sd(t, "sphere", noise_sd=0.2, ambient_sd=0.0,
-                      **{**TRUTH, "threshold": 1.0}) == math.inf
+    assert (
+        crb_eta_sd(t, "sphere", noise_sd=0.2, ambient_sd=0.0, **{**TRUTH, "threshold": 1.0})
+        == math.inf
+    )

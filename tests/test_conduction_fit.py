@@ -18,8 +18,17 @@ NOISY = Corruption(noise=0.1, quantum=0.1)
 
 def _chill(seed: int, geometry: str, bi: float, **kw) -> synth.Synth:
     """Cooked food at 70 degC into a 2 degC chiller, threshold 21 degC, seen half-way in time."""
-    args = {"geometry": geometry, "biot": bi, "a_per_s": 1 / 30000, "t_i": 70.0, "ambient": 2.0,
-            "threshold": 21.0, "seen_fraction": 0.5, "dt_s": 30.0, "corruption": NOISY}
+    args = {
+        "geometry": geometry,
+        "biot": bi,
+        "a_per_s": 1 / 30000,
+        "t_i": 70.0,
+        "ambient": 2.0,
+        "threshold": 21.0,
+        "seen_fraction": 0.5,
+        "dt_s": 30.0,
+        "corruption": NOISY,
+    }
     args.update(kw)
     return core_probe(seed, **args)
 
@@ -65,18 +74,29 @@ def test_reports_late_rate_and_lag_factor():
 def test_measured_ambient_matches_method_of_lines():
     """With a warming ambient, the fitted curve's Duhamel superposition with the true parameters
     equals the method-of-lines solution (solve_ivp), and a fit forecasts the crossing within 8 %."""
-    s = core_probe(5, geometry="slab", biot=0.8, a_per_s=1 / 20000, t_i=2.0, ambient=5.0,
-                   threshold=8.0, seen_fraction=0.5, dt_s=60.0,
-                   corruption=Corruption(noise=0.05, quantum=0.1),
-                   ambient_rise=20.0, ambient_k_per_s=1 / 7200)
+    s = core_probe(
+        5,
+        geometry="slab",
+        biot=0.8,
+        a_per_s=1 / 20000,
+        t_i=2.0,
+        ambient=5.0,
+        threshold=8.0,
+        seen_fraction=0.5,
+        dt_s=60.0,
+        corruption=Corruption(noise=0.05, quantum=0.1),
+        ambient_rise=20.0,
+        ambient_k_per_s=1 / 7200,
+    )
     fit = fit_conduction(s.t, s.y, "slab", ambient_t=s.ambient_t, ambient_y=s.ambient_y)
     assert fit.ok, fit.reason
     # The model at the true parameters against the independent reference:
     p_true = np.array([2.0, math.log(0.8), math.log(1 / 20000)])
     t_rel = np.sort(s.t) - s.t.min()
     model = fit._curve.full(p_true, np.sort(s.t))
-    ref = centre_mol("slab", 0.8, t_rel / 20000,
-                     lambda f: 5.0 + 20.0 * (1 - np.exp(-f * 20000 / 7200)), t_i=2.0)
+    ref = centre_mol(
+        "slab", 0.8, t_rel / 20000, lambda f: 5.0 + 20.0 * (1 - np.exp(-f * 20000 / 7200)), t_i=2.0
+    )
     np.testing.assert_allclose(model, ref, atol=0.01)
     eta, _, _ = fit.time_to_threshold(8.0)
     assert eta == pytest.approx(s.eta_true_s, rel=0.08)
@@ -86,14 +106,23 @@ def test_measured_ambient_matches_method_of_lines():
 def test_small_biot_fit_is_the_lumped_fit(geometry):
     """On a lumped exponential (Newton's law, H1's generator) the core model's late rate k and the
     crossing equal the lumped truth: the lumped model is the small-Bi case, k = m Bi a."""
-    s = synth.lumped(21, T0=2.0, ambient=27.0, k_per_s=1 / 3600, threshold=8.0,
-                     duration_s=2400.0, dt_s=30.0, corruption=Corruption(noise=0.05))
+    s = synth.lumped(
+        21,
+        T0=2.0,
+        ambient=27.0,
+        k_per_s=1 / 3600,
+        threshold=8.0,
+        duration_s=2400.0,
+        dt_s=30.0,
+        corruption=Corruption(noise=0.05),
+    )
     fit = fit_conduction(s.t, s.y, geometry, ambient=27.0)
     assert fit.ok
     assert fit.k_per_s == pytest.approx(1 / 3600, rel=0.05)
     if fit.biot < 0.05:
-        assert fit.k_per_s == pytest.approx(SHAPE_FACTOR[geometry] * fit.biot * fit.a_per_s,
-                                            rel=0.05)
+        assert fit.k_per_s == pytest.approx(
+            SHAPE_FACTOR[geometry] * fit.biot * fit.a_per_s, rel=0.05
+        )
     eta, _, _ = fit.time_to_threshold(8.0)
     assert eta == pytest.approx(s.eta_true_s, rel=0.05)
 
@@ -111,8 +140,14 @@ def test_noisy_measured_ambient_matches_method_of_lines():
     fn, _ = make_ambient_fn(at, ay)
     curve = _Curve("sphere", "measured", float(t[0]), float(t[-1] - t[0]), None, fn, False)
     model = curve.full(np.array([70.0, math.log(5.0), math.log(a_per_s)]), t)
-    ref = centre_mol("sphere", 5.0, (t - t[0]) * a_per_s,
-                     lambda f: np.interp(f / a_per_s + t[0], at, ay), t_i=70.0, n_cells=60)
+    ref = centre_mol(
+        "sphere",
+        5.0,
+        (t - t[0]) * a_per_s,
+        lambda f: np.interp(f / a_per_s + t[0], at, ay),
+        t_i=70.0,
+        n_cells=60,
+    )
     np.testing.assert_allclose(model, ref, atol=0.02)
 
 
@@ -168,8 +203,9 @@ def test_unknown_episode_start_is_fitted():
     s = _chill(17, "sphere", 2.0)
     order = np.argsort(s.t)
     t, y = s.t[order][10:], s.y[order][10:]
-    fit = fit_conduction(t, y, "sphere", ambient=2.0, start_s=float(s.t.min()) - 600.0,
-                         fit_start=True)
+    fit = fit_conduction(
+        t, y, "sphere", ambient=2.0, start_s=float(s.t.min()) - 600.0, fit_start=True
+    )
     assert fit.ok
     assert abs(fit.t0_s - s.t.min()) < 180.0
     assert fit.time_to_threshold(21.0)[0] == pytest.approx(s.eta_true_s, rel=0.05)
@@ -194,14 +230,14 @@ def test_fit_agrees_with_lmfit():
     """lmfit (PyPI, Levenberg-Marquardt) fitting the same series model to the same data lands on
     the same Bi, a and Ti."""
     import lmfit
+
     s = _chill(18, "cylinder", 2.0)
     order = np.argsort(s.t)
     t, y = s.t[order], s.y[order]
     ours = fit_conduction(t, y, "cylinder", ambient=2.0)
 
     def model(x, ti, log_bi, log_a):
-        return 2.0 + (ti - 2.0) * theta_centre(np.exp(log_a) * x, float(np.exp(log_bi)),
-                                               "cylinder")
+        return 2.0 + (ti - 2.0) * theta_centre(np.exp(log_a) * x, float(np.exp(log_bi)), "cylinder")
 
     m = lmfit.Model(model)
     pars = m.make_params(ti=65.0, log_bi=0.0, log_a=math.log(1 / 20000))
@@ -237,14 +273,20 @@ def test_interval_coverage_warming_air_measured():
     hits, n = 0, 24
     for i in range(n):
         air0 = float(rng.uniform(3.0, 5.0))
-        s = core_probe(300 + i, geometry="slab",
-                       biot=float(np.exp(rng.uniform(np.log(0.3), np.log(5.0)))),
-                       a_per_s=float(np.exp(rng.uniform(np.log(1 / 40000), np.log(1 / 8000)))),
-                       t_i=float(rng.uniform(1.0, 4.0)), ambient=air0, threshold=8.0,
-                       seen_fraction=float(rng.uniform(0.35, 0.65)), dt_s=60.0,
-                       corruption=Corruption(noise=float(rng.uniform(0.05, 0.2)), quantum=0.1),
-                       ambient_rise=float(rng.uniform(22.0, 30.0)) - air0,
-                       ambient_k_per_s=1.0 / float(rng.uniform(3600, 10800)))
+        s = core_probe(
+            300 + i,
+            geometry="slab",
+            biot=float(np.exp(rng.uniform(np.log(0.3), np.log(5.0)))),
+            a_per_s=float(np.exp(rng.uniform(np.log(1 / 40000), np.log(1 / 8000)))),
+            t_i=float(rng.uniform(1.0, 4.0)),
+            ambient=air0,
+            threshold=8.0,
+            seen_fraction=float(rng.uniform(0.35, 0.65)),
+            dt_s=60.0,
+            corruption=Corruption(noise=float(rng.uniform(0.05, 0.2)), quantum=0.1),
+            ambient_rise=float(rng.uniform(22.0, 30.0)) - air0,
+            ambient_k_per_s=1.0 / float(rng.uniform(3600, 10800)),
+        )
         fit = fit_conduction(s.t, s.y, "slab", ambient_t=s.ambient_t, ambient_y=s.ambient_y)
         _, lo, hi = fit.time_to_threshold(8.0)
         hits += lo is not None and lo <= s.eta_true_s <= (math.inf if hi is None else hi)
@@ -260,8 +302,14 @@ def test_geometry_selection_rate():
     for i in range(n):
         g = ("slab", "cylinder", "sphere")[i % 3]
         bi = float(np.exp(rng.uniform(np.log(1.0), np.log(5.0))))
-        s = _chill(200 + i, g, bi, seen_fraction=0.6, dt_s=30.0,
-                   corruption=Corruption(noise=0.05, quantum=0.1))
+        s = _chill(
+            200 + i,
+            g,
+            bi,
+            seen_fraction=0.6,
+            dt_s=30.0,
+            corruption=Corruption(noise=0.05, quantum=0.1),
+        )
         best, _ = select_geometry(s.t, s.y, ambient=2.0)
         right += best.geometry == g
     assert right / n >= 0.8
@@ -309,11 +357,18 @@ def test_centre_interval_coverage_early_with_an_air_probe():
         bi = float(np.exp(rng.uniform(np.log(0.3), np.log(5.0))))
         a = rng.uniform(1.2e-7, 1.6e-7) / rng.uniform(0.02, 0.08) ** 2
         amb = float(rng.uniform(-5.0, 3.0))
-        s = core_probe(1000 + i, geometry=g, biot=bi, a_per_s=a, t_i=float(rng.uniform(60, 75)),
-                       ambient=amb, threshold=21.0, seen_fraction=0.25,
-                       dt_s=float(rng.uniform(30, 120)),
-                       corruption=Corruption(noise=float(rng.uniform(0.05, 0.2)), quantum=0.1,
-                                             irregular=0.1))
+        s = core_probe(
+            1000 + i,
+            geometry=g,
+            biot=bi,
+            a_per_s=a,
+            t_i=float(rng.uniform(60, 75)),
+            ambient=amb,
+            threshold=21.0,
+            seen_fraction=0.25,
+            dt_s=float(rng.uniform(30, 120)),
+            corruption=Corruption(noise=float(rng.uniform(0.05, 0.2)), quantum=0.1, irregular=0.1),
+        )
         at, ay = _air_probe(2000 + i, amb, s.t)
         fc = forecast(s.t, s.y, 21.0, model=g, ambient_t=at, ambient_y=ay, limit="lower")
         lo = 0.0 if fc.eta_lo_s is None else fc.eta_lo_s

@@ -45,14 +45,18 @@ def test_first_term_matches_incropera_table_5_1(key, expected):
 def _brentq_roots(geometry: str, bi: float, n: int) -> np.ndarray:
     """Roots of the textbook eigen-equations, each bracketed by a sign change found by scanning."""
     if geometry == "slab":
+
         def f(z):  # z tan z = Bi, multiplied through by cos z
             return z * np.sin(z) - bi * np.cos(z)
     elif geometry == "sphere":
+
         def f(z):  # 1 - z cot z = Bi, multiplied through by sin z
             return (1 - bi) * np.sin(z) - z * np.cos(z)
     else:
+
         def f(z):  # z J1(z) / J0(z) = Bi, multiplied through by J0
             return z * j1(z) - bi * j0(z)
+
     xs = np.linspace(1e-9, (n + 1) * np.pi, 40000 * (n + 1))
     fs = f(xs)
     idx = np.nonzero(np.sign(fs[:-1]) * np.sign(fs[1:]) < 0)[0]
@@ -109,8 +113,10 @@ def test_early_lag_centre_has_not_moved(geometry, bi):
     assert np.all(np.abs(theta_centre_series(fo, bi, geometry, 400) - 1.0) < 1e-9)
     fo_all = np.concatenate([[0.0], np.geomspace(1e-4, 5.0, 200)])
     np.testing.assert_allclose(
-        theta_centre(fo_all, bi, geometry), theta_centre_series(np.maximum(fo_all, 1e-3), bi,
-                                                                geometry, 400), atol=1e-9)
+        theta_centre(fo_all, bi, geometry),
+        theta_centre_series(np.maximum(fo_all, 1e-3), bi, geometry, 400),
+        atol=1e-9,
+    )
 
 
 @pytest.mark.parametrize("geometry", GEOMETRIES)

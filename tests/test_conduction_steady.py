@@ -20,9 +20,18 @@ from thermeta.predictors.synth_conduction import core_probe
 
 def _sphere(seed: int) -> synth.Synth:
     """A sphere's centre at 3 degC in 25 degC air, Bi 2, seen half-way in time to 8 degC."""
-    return core_probe(seed, geometry="sphere", biot=2.0, a_per_s=4e-5, t_i=3.0, ambient=25.0,
-                      threshold=8.0, seen_fraction=0.5, dt_s=60.0,
-                      corruption=Corruption(noise=0.1, quantum=0.1))
+    return core_probe(
+        seed,
+        geometry="sphere",
+        biot=2.0,
+        a_per_s=4e-5,
+        t_i=3.0,
+        ambient=25.0,
+        threshold=8.0,
+        seen_fraction=0.5,
+        dt_s=60.0,
+        corruption=Corruption(noise=0.1, quantum=0.1),
+    )
 
 
 def test_steady_test_false_alarm_rate_and_power():
@@ -79,9 +88,18 @@ def test_profile_ends_are_roots_of_the_profile_statistic():
     checked by refits from 24 starting points over the (Bi, a) plane
     (scipy least_squares), so the warm-started search has not stopped in a stale basin and the
     refinement has not fallen back to the outer end of its bracket."""
-    s = core_probe(12, geometry="sphere", biot=2.33, a_per_s=4.72e-5, t_i=3.58, ambient=23.9,
-                   threshold=8.0, seen_fraction=0.4265, dt_s=60.0,
-                   corruption=Corruption(noise=0.135, quantum=0.1))
+    s = core_probe(
+        12,
+        geometry="sphere",
+        biot=2.33,
+        a_per_s=4.72e-5,
+        t_i=3.58,
+        ambient=23.9,
+        threshold=8.0,
+        seen_fraction=0.4265,
+        dt_s=60.0,
+        corruption=Corruption(noise=0.135, quantum=0.1),
+    )
     fit = fit_conduction(s.t, s.y, "sphere", ambient=23.9)
     eta, lo, hi = fit.time_to_threshold(8.0)
     assert fit.ok and fit.interval_kind == "profile" and lo is not None and lo < eta
@@ -95,12 +113,17 @@ def test_profile_ends_are_roots_of_the_profile_statistic():
     def d_stat(eta_s: float) -> float:
         tau = fit.t_last + eta_s
         best = np.inf
-        for q0 in [q_hat] + [np.array([math.log(b), math.log(a)])
-                             for b in (0.01, 0.3, 1.0, 3.0, 10.0, 50.0)
-                             for a in (1e-5, 3e-5, 1e-4, 3e-4)]:
+        for q0 in [q_hat] + [
+            np.array([math.log(b), math.log(a)])
+            for b in (0.01, 0.3, 1.0, 3.0, 10.0, 50.0)
+            for a in (1e-5, 3e-5, 1e-4, 3e-4)
+        ]:
             sol = least_squares(
                 lambda q: _constrained_residual(curve, q, t, y, tau, 8.0)[0],
-                np.clip(q0, lo_b, hi_b), bounds=(lo_b, hi_b), method="trf")
+                np.clip(q0, lo_b, hi_b),
+                bounds=(lo_b, hi_b),
+                method="trf",
+            )
             best = min(best, float(sol.fun @ sol.fun))
         return dof * (best / fit.rss - 1.0)
 

@@ -7,7 +7,6 @@ import sys
 import textwrap
 
 import pytest
-
 from thermeta.daemon.config import load_config
 from thermeta.daemon.errors import ConfigError
 
@@ -52,7 +51,11 @@ def test_minimal_config_from_the_issue_loads_as_written(tmp_path):
     assert cfg.fit.refit_every_s == 30 and cfg.fit.window_s == 7200
     (item,) = cfg.items
     assert (item.name, item.topic, item.threshold, item.ambient) == (
-        "reefer-07", "yard/reefer-07/load", 8.0, 27.0)
+        "reefer-07",
+        "yard/reefer-07/load",
+        8.0,
+        27.0,
+    )
     assert item.unit == "C" and item.ambient_topic is None and not item.is_pattern
 
 
@@ -81,7 +84,9 @@ def test_every_problem_is_reported_with_its_line(tmp_path):
     f = str(tmp_path / "site.toml")
     assert f'{f}:2: broker.port: must be an integer, got "eighteen"' in got
     assert f"{f}:5: fit.refit_every: must be > 0, got -5" in got
-    assert any(p.startswith(f"{f}:9: item.topic: '#' must be a whole level and the last one") for p in got)
+    assert any(
+        p.startswith(f"{f}:9: item.topic: '#' must be a whole level and the last one") for p in got
+    )
     assert f'{f}:10: item.threshold: must be a number, got "eight"' in got
     assert f'{f}:16: item.unit: must be one of C, F, K, got "R"' in got
     assert f"{f}:17: item.tresh: unknown key" in got
@@ -105,21 +110,35 @@ def test_missing_required_item_keys(tmp_path):
 def test_secret_comes_from_the_named_environment_variable(tmp_path, monkeypatch):
     """The broker password is read from the env var named in the config and kept out of repr."""
     monkeypatch.setenv("H3_TEST_BROKER_PW", "s3cret-value")
-    cfg = load_config(write(tmp_path, MINIMAL.replace(
-        'port = 1883', 'port = 1883\nusername = "ops"\npassword_env = "H3_TEST_BROKER_PW"')))
+    cfg = load_config(
+        write(
+            tmp_path,
+            MINIMAL.replace(
+                "port = 1883", 'port = 1883\nusername = "ops"\npassword_env = "H3_TEST_BROKER_PW"'
+            ),
+        )
+    )
     assert cfg.broker.password == "s3cret-value"
     assert "s3cret-value" not in repr(cfg)
     monkeypatch.delenv("H3_TEST_BROKER_PW")
-    got = problems(tmp_path, MINIMAL.replace(
-        'port = 1883', 'port = 1883\nusername = "ops"\npassword_env = "H3_TEST_BROKER_PW"'))
-    assert got == [f"{tmp_path / 'site.toml'}:5: broker.password_env: "
-                   "environment variable H3_TEST_BROKER_PW is not set"]
+    got = problems(
+        tmp_path,
+        MINIMAL.replace(
+            "port = 1883", 'port = 1883\nusername = "ops"\npassword_env = "H3_TEST_BROKER_PW"'
+        ),
+    )
+    assert got == [
+        f"{tmp_path / 'site.toml'}:5: broker.password_env: "
+        "environment variable H3_TEST_BROKER_PW is not set"
+    ]
 
 
 def test_literal_password_is_refused(tmp_path):
     """A password written into the file is refused, pointing to password_env instead."""
-    got = problems(tmp_path, MINIMAL.replace('port = 1883', 'port = 1883\npassword = "hunter2"'))
-    assert len(got) == 1 and "broker.password: put the password in an environment variable" in got[0]
+    got = problems(tmp_path, MINIMAL.replace("port = 1883", 'port = 1883\npassword = "hunter2"'))
+    assert (
+        len(got) == 1 and "broker.password: put the password in an environment variable" in got[0]
+    )
     assert "hunter2" not in got[0]
 
 
@@ -127,14 +146,21 @@ def test_wildcard_items_need_a_name_template(tmp_path):
     """A wildcard topic with a fixed name would merge probes: it must use a {N} level."""
     got = problems(tmp_path, '[[item]]\nname = "probe"\ntopic = "site/+/t"\nthreshold = 5\n')
     assert len(got) == 1 and "item.name: a wildcard topic needs a name template" in got[0]
-    cfg = load_config(write(tmp_path, '[[item]]\nname = "probe-{2}"\ntopic = "site/+/t"\nthreshold = 5\n'))
+    cfg = load_config(
+        write(tmp_path, '[[item]]\nname = "probe-{2}"\ntopic = "site/+/t"\nthreshold = 5\n')
+    )
     assert cfg.items[0].is_pattern
 
 
 def test_units_are_converted_to_celsius(tmp_path):
     """A Fahrenheit item's threshold and ambient convert to degC: (F - 32) * 5/9 (the definition)."""
-    cfg = load_config(write(tmp_path, '[[item]]\nname = "walkin"\ntopic = "k/w"\nunit = "F"\n'
-                                       'threshold = 41\nambient = 75.2\n'))
+    cfg = load_config(
+        write(
+            tmp_path,
+            '[[item]]\nname = "walkin"\ntopic = "k/w"\nunit = "F"\n'
+            "threshold = 41\nambient = 75.2\n",
+        )
+    )
     it = cfg.items[0]
     assert it.threshold_c == pytest.approx(5.0)
     assert it.ambient_c == pytest.approx(24.0)
@@ -145,12 +171,18 @@ def test_ambient_within_is_a_difference_in_the_items_unit(tmp_path):
     """ambient_within = 5.4 degF is 3 degC (a step, 5/9 as big, no offset), read as a bound:
     sd = 3 / sqrt 3 (the rectangular distribution, GUM JCGM 100:2008 4.3.7, from memory);
     without ambient it is a problem on its line."""
-    cfg = load_config(write(tmp_path, '[[item]]\nname = "walkin"\ntopic = "k/w"\nunit = "F"\n'
-                                       'threshold = 41\nambient = 75.2\nambient_within = 5.4\n'))
-    assert cfg.items[0].ambient_sd_c == pytest.approx(3.0 / 3 ** 0.5, rel=1e-9)
+    cfg = load_config(
+        write(
+            tmp_path,
+            '[[item]]\nname = "walkin"\ntopic = "k/w"\nunit = "F"\n'
+            "threshold = 41\nambient = 75.2\nambient_within = 5.4\n",
+        )
+    )
+    assert cfg.items[0].ambient_sd_c == pytest.approx(3.0 / 3**0.5, rel=1e-9)
     assert load_config(write(tmp_path, MINIMAL)).items[0].ambient_sd_c is None
-    got = problems(tmp_path, '[[item]]\nname = "w"\ntopic = "k/w"\nthreshold = 8\n'
-                             'ambient_within = 2\n')
+    got = problems(
+        tmp_path, '[[item]]\nname = "w"\ntopic = "k/w"\nthreshold = 8\nambient_within = 2\n'
+    )
     assert any(":5: item.ambient_within: " in line and "give ambient too" in line for line in got)
     got = problems(tmp_path, MINIMAL + "ambient_within = -1\n")
     assert any("item.ambient_within" in line for line in got)
@@ -209,7 +241,9 @@ def test_alert_and_hook_keys_are_validated(tmp_path, monkeypatch):
     f = str(tmp_path / "site.toml")
     assert f'{f}:7: hook.kind: must be one of webhook, email, exec, mqtt, got "pager"' in got
     assert any(p.startswith(f"{f}:11: hook.command: must be a list") for p in got)
-    assert any(p.startswith(f'{f}:16: hook.tls: must be one of starttls, implicit, none') for p in got)
+    assert any(
+        p.startswith(f"{f}:16: hook.tls: must be one of starttls, implicit, none") for p in got
+    )
     assert f"{f}:13: hook.from: missing (required)" in got
     assert len(got) == 4
 
@@ -243,13 +277,21 @@ def test_delay_defaults_to_zero_and_is_not_negative(tmp_path):
 def test_check_config_command_exit_codes(tmp_path):
     """`thermeta check-config` exits 0 on a good file and 2 with the problem lines on a bad one."""
     good = write(tmp_path, MINIMAL, "good.toml")
-    r = subprocess.run([sys.executable, "-m", "thermeta.daemon.cli", "check-config", str(good)],
-                       capture_output=True, text=True, timeout=60)
+    r = subprocess.run(
+        [sys.executable, "-m", "thermeta.daemon.cli", "check-config", str(good)],
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
     assert r.returncode == 0, r.stderr
     assert "1 item" in r.stdout
     bad = write(tmp_path, MINIMAL.replace("threshold = 8.0", 'threshold = "eight"'), "bad.toml")
-    r = subprocess.run([sys.executable, "-m", "thermeta.daemon.cli", "check-config", str(bad)],
-                       capture_output=True, text=True, timeout=60)
+    r = subprocess.run(
+        [sys.executable, "-m", "thermeta.daemon.cli", "check-config", str(bad)],
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
     assert r.returncode == 2
     assert r.stderr.strip() == f'{bad}:15: item.threshold: must be a number, got "eight"'
 
@@ -269,8 +311,12 @@ def test_shipped_example_configs_are_valid(name):
 def test_run_refuses_a_bad_config_with_exit_2(tmp_path):
     """`thermeta run` validates the whole config before starting: problems on stderr, exit 2."""
     bad = write(tmp_path, MINIMAL.replace("refit_every = 30", "refit_every = 0"), "bad.toml")
-    r = subprocess.run([sys.executable, "-m", "thermeta.daemon.cli", "run", "--config", str(bad)],
-                       capture_output=True, text=True, timeout=60)
+    r = subprocess.run(
+        [sys.executable, "-m", "thermeta.daemon.cli", "run", "--config", str(bad)],
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
     assert r.returncode == 2
     assert r.stderr.strip() == f"{bad}:9: fit.refit_every: must be > 0, got 0"
 
@@ -286,4 +332,6 @@ def test_hook_levels_must_be_known(tmp_path):
     )
     with pytest.raises(ConfigError) as err:
         load_config(p)
-    assert any(line.startswith(f"{p}:13: hook.levels: unknown level") for line in err.value.problems)
+    assert any(
+        line.startswith(f"{p}:13: hook.levels: unknown level") for line in err.value.problems
+    )

@@ -8,7 +8,6 @@ import math
 
 import numpy as np
 import pytest
-
 from thermeta.daemon.clock import ManualClock
 from thermeta.daemon.config import parse_config
 from thermeta.daemon.refit import Refitter
@@ -20,8 +19,10 @@ T0 = 1_800_000_000.0
 
 
 def config(tmp_path, items: str, extra: str = ""):
-    text = f'[storage]\nurl = "sqlite:///{tmp_path / "s.db"}"\nbatch_size = 50\nbatch_ms = 20\n' \
-           f"{extra}\n{items}"
+    text = (
+        f'[storage]\nurl = "sqlite:///{tmp_path / "s.db"}"\nbatch_size = 50\nbatch_ms = 20\n'
+        f"{extra}\n{items}"
+    )
     return parse_config(__import__("tomllib").loads(text), "t.toml", text)
 
 
@@ -35,7 +36,9 @@ def test_topic_filters_match_like_mqtt():
 
 def test_router_resolves_exact_then_patterns_with_ambient(tmp_path):
     """Exact topics win; wildcard items get concrete names; ambient topics route to their item."""
-    cfg = config(tmp_path, '''
+    cfg = config(
+        tmp_path,
+        """
 [[item]]
 name = "reefer-07"
 topic = "yard/07/load"
@@ -46,13 +49,18 @@ name = "reefer-{2}"
 topic = "yard/+/load"
 ambient_topic = "yard/+/air"
 threshold = 8.0
-''')
+""",
+    )
     r = Router(cfg.items)
     assert r.resolve("yard/07/load").item.name == "reefer-07"
     got = r.resolve("yard/11/load")
     assert (got.item.name, got.kind, got.item.ambient_topic) == ("reefer-11", "load", "yard/11/air")
     amb = r.resolve("yard/11/air")
-    assert (amb.item.name, amb.kind, amb.store_name) == ("reefer-11", "ambient", "reefer-11.ambient")
+    assert (amb.item.name, amb.kind, amb.store_name) == (
+        "reefer-11",
+        "ambient",
+        "reefer-11.ambient",
+    )
     assert r.resolve("elsewhere/x") is None
     assert set(r.filters()) == {"yard/07/load", "yard/+/load", "yard/+/air"}
 
@@ -60,15 +68,24 @@ threshold = 8.0
 def test_one_air_probe_is_the_ambient_of_several_loads(tmp_path):
     """Pallet probes sharing one return-air probe each get its readings as their ambient, and
     the air probe can be an item of its own too."""
-    items = "".join(
-        f'[[item]]\nname = "{n}"\ntopic = "r9/{n}"\nambient_topic = "r9/air"\nthreshold = 8.0\n'
-        for n in ("pallet-1", "pallet-2")) + '[[item]]\nname = "air"\ntopic = "r9/air"\nthreshold = 12.0\n'
+    items = (
+        "".join(
+            f'[[item]]\nname = "{n}"\ntopic = "r9/{n}"\nambient_topic = "r9/air"\nthreshold = 8.0\n'
+            for n in ("pallet-1", "pallet-2")
+        )
+        + '[[item]]\nname = "air"\ntopic = "r9/air"\nthreshold = 12.0\n'
+    )
     w, store, acked, act = make_writer(tmp_path, items)
     w.start()
-    w.submit(Inbound("r9/air", json.dumps({"ts": T0 - 10, "value": 6.5}).encode(), T0, mid=1, qos=1))
+    w.submit(
+        Inbound("r9/air", json.dumps({"ts": T0 - 10, "value": 6.5}).encode(), T0, mid=1, qos=1)
+    )
     w.stop()
     assert [(rt.store_name, rt.kind) for rt in w.router.resolve_all("r9/air")] == [
-        ("air", "load"), ("pallet-1.ambient", "ambient"), ("pallet-2.ambient", "ambient")]
+        ("air", "load"),
+        ("pallet-1.ambient", "ambient"),
+        ("pallet-2.ambient", "ambient"),
+    ]
     for name in ("air", "pallet-1.ambient", "pallet-2.ambient"):
         assert store.recent_readings(name) == [(T0 - 10, 6.5)]
     assert act.take_dirty() == {"air", "pallet-1", "pallet-2"}
@@ -81,19 +98,31 @@ def make_writer(tmp_path, items: str):
     store.create_all()
     acked: list[list[int]] = []
     act = Activity()
-    w = Writer(store, Router(cfg.items), cfg, ManualClock(T0), lambda b: acked.append(
-        [m.mid for m in b]), act)
+    w = Writer(
+        store,
+        Router(cfg.items),
+        cfg,
+        ManualClock(T0),
+        lambda b: acked.append([m.mid for m in b]),
+        act,
+    )
     return w, store, acked, act
 
 
 def test_writer_commits_then_acks_in_arrival_order(tmp_path):
     """Every message is acknowledged after its batch commits, in the order received; bad ones are
     dead letters (acknowledged too), duplicates are stored once."""
-    w, store, acked, act = make_writer(tmp_path, '[[item]]\nname = "p-{2}"\ntopic = "s/+/t"\nthreshold = 5\n')
+    w, store, acked, act = make_writer(
+        tmp_path, '[[item]]\nname = "p-{2}"\ntopic = "s/+/t"\nthreshold = 5\n'
+    )
     w.start()
     mids = []
     for i in range(120):
-        payload = b"garbage" if i % 10 == 0 else json.dumps({"ts": T0 - 1000 + i // 2, "value": 3.0}).encode()
+        payload = (
+            b"garbage"
+            if i % 10 == 0
+            else json.dumps({"ts": T0 - 1000 + i // 2, "value": 3.0}).encode()
+        )
         w.submit(Inbound("s/a/t", payload, T0, mid=i + 1, qos=1))
         mids.append(i + 1)
     w.submit(Inbound("nowhere", b"1", T0, mid=999, qos=1))
@@ -120,13 +149,17 @@ def seeded_store(tmp_path, items: str, series: dict[str, tuple[np.ndarray, np.nd
     for name, (t, y) in series.items():
         it = router.by_name[name]
         iid = store.ensure_item(name, unit=it.unit, topic=it.topic, now=T0)
-        store.write_batch([dict(item_id=iid, ts=float(a), value_c=float(b), flags=0, received_at=T0)
-                           for a, b in zip(t, y)])
+        store.write_batch(
+            [
+                dict(item_id=iid, ts=float(a), value_c=float(b), flags=0, received_at=T0)
+                for a, b in zip(t, y)
+            ]
+        )
         act.note(name, it, float(t.max()))
     return cfg, store, act
 
 
-ITEMS = '''
+ITEMS = """
 [[item]]
 name = "warm"
 topic = "a/warm"
@@ -152,7 +185,7 @@ topic = "a/past"
 threshold = 8.0
 ambient = 25.0
 limit = "upper"
-'''
+"""
 
 
 def test_refit_states_and_publishing(tmp_path):
@@ -162,12 +195,18 @@ def test_refit_states_and_publishing(tmp_path):
     t_rel = np.arange(0, 1800, 30.0)
     t = T0 - 1800 + t_rel
     noisy = warming(t_rel) + rng.normal(0, 0.02, t_rel.size)
-    series = {"warm": (t, noisy), "far": (t, noisy), "new": (t[-3:], noisy[-3:]),
-              "past": (t, warming(t_rel, t_start=9.0) + rng.normal(0, 0.02, t_rel.size))}
+    series = {
+        "warm": (t, noisy),
+        "far": (t, noisy),
+        "new": (t[-3:], noisy[-3:]),
+        "past": (t, warming(t_rel, t_start=9.0) + rng.normal(0, 0.02, t_rel.size)),
+    }
     cfg, store, act = seeded_store(tmp_path, ITEMS, series)
     published: dict[str, dict] = {}
     heard = []
-    rf = Refitter(store, cfg, ManualClock(T0), act, publish=lambda n, p: published.update({n: json.loads(p)}))
+    rf = Refitter(
+        store, cfg, ManualClock(T0), act, publish=lambda n, p: published.update({n: json.loads(p)})
+    )
     rf.listeners.append(lambda it, body, prev: heard.append((it.name, body["state"], prev)))
     states = rf.run_once()
     assert states == {"warm": "approaching", "far": "steady", "new": "learning", "past": "crossed"}
@@ -186,12 +225,17 @@ def test_refit_states_and_publishing(tmp_path):
 def test_item_goes_stale_after_its_silence_limit(tmp_path):
     """With no new reading for longer than `silence`, the item is republished as stale."""
     t_rel = np.arange(0, 600, 30.0)
-    cfg, store, act = seeded_store(tmp_path, ITEMS.replace("horizon = 7200", "horizon = 7200\nsilence = 300"),
-                                   {"warm": (T0 - 600 + t_rel, warming(t_rel) + 0.01 * np.sin(t_rel))})
+    cfg, store, act = seeded_store(
+        tmp_path,
+        ITEMS.replace("horizon = 7200", "horizon = 7200\nsilence = 300"),
+        {"warm": (T0 - 600 + t_rel, warming(t_rel) + 0.01 * np.sin(t_rel))},
+    )
     clock = ManualClock(T0)
     heard = []
     rf = Refitter(store, cfg, clock, act)
-    rf.listeners.append(lambda it, body, prev: heard.append((body["state"], prev and prev["state"])))
+    rf.listeners.append(
+        lambda it, body, prev: heard.append((body["state"], prev and prev["state"]))
+    )
     rf.run_once()
     clock.advance(200)
     assert rf.run_once() == {}
@@ -221,7 +265,9 @@ def test_one_failing_item_does_not_stop_the_others(tmp_path, monkeypatch):
     states = rf.run_once()
     assert states["warm"] == "approaching"
     far = {f["item"]: f["forecast"] for f in store.latest_forecasts()}["far"]
-    assert far["fit_ok"] is False and far["reason"].startswith("fit error: FloatingPointError: boom")
+    assert far["fit_ok"] is False and far["reason"].startswith(
+        "fit error: FloatingPointError: boom"
+    )
     assert far["value_now"] == pytest.approx(y[-1])
     store.close()
 
@@ -232,13 +278,16 @@ def test_fahrenheit_item_is_fitted_in_celsius_and_published_in_fahrenheit(tmp_pa
     t_rel = np.arange(0, 1800, 30.0)
     rng = np.random.default_rng(9)
     y_c = warming(t_rel) + rng.normal(0, 0.02, t_rel.size)
-    items = ('[[item]]\nname = "walkin-f"\ntopic = "k/f"\nunit = "F"\nthreshold = 46.4\nambient = 77.0\n'
-             '[[item]]\nname = "walkin-c"\ntopic = "k/c"\nunit = "C"\nthreshold = 8.0\nambient = 25.0\n')
+    items = (
+        '[[item]]\nname = "walkin-f"\ntopic = "k/f"\nunit = "F"\nthreshold = 46.4\nambient = 77.0\n'
+        '[[item]]\nname = "walkin-c"\ntopic = "k/c"\nunit = "C"\nthreshold = 8.0\nambient = 25.0\n'
+    )
     t = T0 - 1800 + t_rel
     cfg, store, act = seeded_store(tmp_path, items, {"walkin-f": (t, y_c), "walkin-c": (t, y_c)})
     got: dict[str, dict] = {}
-    rf = Refitter(store, cfg, ManualClock(T0), act,
-                  publish=lambda n, p: got.update({n: json.loads(p)}))
+    rf = Refitter(
+        store, cfg, ManualClock(T0), act, publish=lambda n, p: got.update({n: json.loads(p)})
+    )
     rf.run_once()
     f, c = got["walkin-f"], got["walkin-c"]
     assert f["unit"] == "F" and f["threshold"] == pytest.approx(46.4)
@@ -264,18 +313,22 @@ def test_refit_warnings_show_the_item_unit(tmp_path):
     K = degC + 273.15: NIST SP 811 App. B, from memory); a degC item's note reads 25 °C and
     2.5 °C."""
     t, y_c = _half_hour_warming()
-    items = ('[[item]]\nname = "f"\ntopic = "k/f"\nunit = "F"\nthreshold = 46.4\nambient = 77.0\n'
-             '[[item]]\nname = "fw"\ntopic = "k/fw"\nunit = "F"\nthreshold = 46.4\n'
-             'ambient = 77.0\nambient_within = 1.8\n'
-             '[[item]]\nname = "k"\ntopic = "k/k"\nunit = "K"\nthreshold = 281.15\n'
-             'ambient = 298.15\n'
-             '[[item]]\nname = "c"\ntopic = "k/c"\nthreshold = 8.0\nambient = 25.0\n')
+    items = (
+        '[[item]]\nname = "f"\ntopic = "k/f"\nunit = "F"\nthreshold = 46.4\nambient = 77.0\n'
+        '[[item]]\nname = "fw"\ntopic = "k/fw"\nunit = "F"\nthreshold = 46.4\n'
+        "ambient = 77.0\nambient_within = 1.8\n"
+        '[[item]]\nname = "k"\ntopic = "k/k"\nunit = "K"\nthreshold = 281.15\n'
+        "ambient = 298.15\n"
+        '[[item]]\nname = "c"\ntopic = "k/c"\nthreshold = 8.0\nambient = 25.0\n'
+    )
     cfg, store, act = seeded_store(tmp_path, items, {n: (t, y_c) for n in ("f", "fw", "k", "c")})
     got: dict[str, dict] = {}
-    Refitter(store, cfg, ManualClock(T0), act,
-             publish=lambda n, p: got.update({n: json.loads(p)})).run_once()
-    note = ("the given ambient {} is taken as uncertain by about {} (1 sd); "
-            "the intervals include that")
+    Refitter(
+        store, cfg, ManualClock(T0), act, publish=lambda n, p: got.update({n: json.loads(p)})
+    ).run_once()
+    note = (
+        "the given ambient {} is taken as uncertain by about {} (1 sd); the intervals include that"
+    )
     assert note.format("77 °F", "4.5 °F") in got["f"]["warnings"]
     assert note.format("77 °F", f"{1.8 / math.sqrt(3):g} °F") in got["fw"]["warnings"]
     assert note.format("298.15 K", "2.5 K") in got["k"]["warnings"]
@@ -289,15 +342,18 @@ def test_ambient_within_reaches_the_refit(tmp_path):
     on a degF item fits like 1 degC on a degC item (a band 9/5 as wide in degF), and both are
     narrower than the same items without it (the default doubt, 2.5 degC sd)."""
     t, y_c = _half_hour_warming()
-    items = ('[[item]]\nname = "f"\ntopic = "k/f"\nunit = "F"\nthreshold = 46.4\nambient = 77.0\n'
-             'ambient_within = 1.8\n'
-             '[[item]]\nname = "c"\ntopic = "k/c"\nthreshold = 8.0\nambient = 25.0\n'
-             'ambient_within = 1.0\n'
-             '[[item]]\nname = "plain"\ntopic = "k/p"\nthreshold = 8.0\nambient = 25.0\n')
+    items = (
+        '[[item]]\nname = "f"\ntopic = "k/f"\nunit = "F"\nthreshold = 46.4\nambient = 77.0\n'
+        "ambient_within = 1.8\n"
+        '[[item]]\nname = "c"\ntopic = "k/c"\nthreshold = 8.0\nambient = 25.0\n'
+        "ambient_within = 1.0\n"
+        '[[item]]\nname = "plain"\ntopic = "k/p"\nthreshold = 8.0\nambient = 25.0\n'
+    )
     cfg, store, act = seeded_store(tmp_path, items, {n: (t, y_c) for n in ("f", "c", "plain")})
     got: dict[str, dict] = {}
-    Refitter(store, cfg, ManualClock(T0), act,
-             publish=lambda n, p: got.update({n: json.loads(p)})).run_once()
+    Refitter(
+        store, cfg, ManualClock(T0), act, publish=lambda n, p: got.update({n: json.loads(p)})
+    ).run_once()
     band = {n: got[n]["ambient_hi"] - got[n]["ambient_lo"] for n in got}
     assert band["f"] == pytest.approx(band["c"] * 9 / 5, rel=1e-3)
     assert band["c"] < 0.8 * band["plain"]
@@ -312,7 +368,6 @@ def test_auto_protocol_falls_back_to_mqtt_311(tmp_path):
     import tomllib
 
     import paho.mqtt.client as mqtt
-
     from thermeta.daemon.embedded_broker import EmbeddedBroker
     from thermeta.daemon.service import Service
 
@@ -322,9 +377,11 @@ def test_auto_protocol_falls_back_to_mqtt_311(tmp_path):
     logging.getLogger("thermeta.mqtt").addHandler(handler)
     logging.getLogger("thermeta.mqtt").setLevel(logging.INFO)
     with EmbeddedBroker() as b:
-        text = (f'[broker]\nport = {b.port}\nclient_id = "fallback-test"\n'
-                f'[storage]\nurl = "sqlite:///{tmp_path / "s.db"}"\nbatch_ms = 20\n'
-                '[[item]]\nname = "x"\ntopic = "a/x"\nthreshold = 5\n')
+        text = (
+            f'[broker]\nport = {b.port}\nclient_id = "fallback-test"\n'
+            f'[storage]\nurl = "sqlite:///{tmp_path / "s.db"}"\nbatch_ms = 20\n'
+            '[[item]]\nname = "x"\ntopic = "a/x"\nthreshold = 5\n'
+        )
         svc = Service(parse_config(tomllib.loads(text), "t.toml", text))
         svc.start()
         try:
@@ -333,7 +390,9 @@ def test_auto_protocol_falls_back_to_mqtt_311(tmp_path):
             c.loop_start()
             now = time.time()
             for i in range(20):
-                c.publish("a/x", json.dumps({"ts": now - 100 + i, "value": 3.0}), qos=1).wait_for_publish(5)
+                c.publish(
+                    "a/x", json.dumps({"ts": now - 100 + i, "value": 3.0}), qos=1
+                ).wait_for_publish(5)
             c.disconnect()
             c.loop_stop()
             deadline = time.monotonic() + 10
@@ -355,31 +414,63 @@ def test_readings_export_is_read_back_by_thermeta_forecast(tmp_path):
 
     t_rel = np.arange(0, 1800, 30.0)
     y_c = warming(t_rel) + np.random.default_rng(2).normal(0, 0.02, t_rel.size)
-    items = '[[item]]\nname = "walkin"\ntopic = "k/w"\nunit = "F"\nthreshold = 46.4\nambient = 77.0\n'
+    items = (
+        '[[item]]\nname = "walkin"\ntopic = "k/w"\nunit = "F"\nthreshold = 46.4\nambient = 77.0\n'
+    )
     cfg, store, act = seeded_store(tmp_path, items, {"walkin": (T0 - 1800 + t_rel, y_c)})
     store.close()
     cfg_path = tmp_path / "c.toml"
     cfg_path.write_text(f'[storage]\nurl = "{cfg.storage.url}"\n{items}')
     cli = [sys.executable, "-m", "thermeta.daemon.cli"]
-    r = subprocess.run(cli + ["readings", "walkin", "--config", str(cfg_path)], capture_output=True,
-                       text=True, timeout=60)
+    r = subprocess.run(
+        cli + ["readings", "walkin", "--config", str(cfg_path)],
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
     assert r.returncode == 0, r.stderr
     lines = r.stdout.splitlines()
     assert lines[0] == "time,value" and len(lines) == 61
     assert lines[1] == f"2027-01-15T07:30:00Z,{y_c[0] * 9 / 5 + 32:.10g}"
     csv_path = tmp_path / "trip.csv"
     csv_path.write_text(r.stdout)
-    f = subprocess.run(cli + ["forecast", str(csv_path), "--threshold", "46.4", "--ambient", "77",
-                              "--unit", "F", "--json"], capture_output=True, text=True, timeout=60)
+    f = subprocess.run(
+        cli
+        + [
+            "forecast",
+            str(csv_path),
+            "--threshold",
+            "46.4",
+            "--ambient",
+            "77",
+            "--unit",
+            "F",
+            "--json",
+        ],
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
     assert f.returncode == 0, f.stderr
     assert json.loads(f.stdout)["n_points"] + json.loads(f.stdout)["n_outliers"] == 60
-    since = subprocess.run(cli + ["readings", "walkin", "--config", str(cfg_path), "--since",
-                                  "2027-01-15T07:55:00Z"], capture_output=True, text=True, timeout=60)
+    since = subprocess.run(
+        cli + ["readings", "walkin", "--config", str(cfg_path), "--since", "2027-01-15T07:55:00Z"],
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
     assert len(since.stdout.splitlines()) == 1 + 10
-    bad = subprocess.run(cli + ["readings", "nobody", "--config", str(cfg_path)],
-                         capture_output=True, text=True, timeout=60)
+    bad = subprocess.run(
+        cli + ["readings", "nobody", "--config", str(cfg_path)],
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
     assert bad.returncode == 2
-    assert bad.stderr.strip() == "thermeta readings: no item named 'nobody' in the store (items: walkin)"
+    assert (
+        bad.stderr.strip()
+        == "thermeta readings: no item named 'nobody' in the store (items: walkin)"
+    )
 
 
 def test_limit_side_decides_crossed(tmp_path):
@@ -392,11 +483,15 @@ def test_limit_side_decides_crossed(tmp_path):
     # Newton's law, closed form, cooling toward the air: T = Ta + (T0 - Ta) e^(-k t)
     crate = 2.0 + (2.9 - 2.0) * np.exp(-t_rel / 3000) + rng.normal(0, 0.02, t_rel.size)
     tray = -18.0 + (60.0 - -18.0) * np.exp(-t_rel / 900) + rng.normal(0, 0.05, t_rel.size)
-    items = ('[[item]]\nname = "crate"\ntopic = "c/crate"\nthreshold = 5.0\nambient = 2.0\n'
-             '[[item]]\nname = "tray"\ntopic = "c/tray"\nthreshold = 5.0\nambient = -18.0\n')
+    items = (
+        '[[item]]\nname = "crate"\ntopic = "c/crate"\nthreshold = 5.0\nambient = 2.0\n'
+        '[[item]]\nname = "tray"\ntopic = "c/tray"\nthreshold = 5.0\nambient = -18.0\n'
+    )
     cfg, store, act = seeded_store(tmp_path, items, {"crate": (t, crate), "tray": (t, tray)})
     got: dict[str, dict] = {}
-    rf = Refitter(store, cfg, ManualClock(T0), act, publish=lambda n, p: got.update({n: json.loads(p)}))
+    rf = Refitter(
+        store, cfg, ManualClock(T0), act, publish=lambda n, p: got.update({n: json.loads(p)})
+    )
     assert rf.run_once() == {"crate": "steady", "tray": "crossed"}
     assert (got["crate"]["limit"], got["tray"]["limit"]) == ("upper", "lower")
     store.close()
@@ -416,16 +511,33 @@ def test_status_text_reads_the_store(tmp_path):
     store.close()
     cfg_path = tmp_path / "c.toml"
     cfg_path.write_text(f'[storage]\nurl = "{cfg.storage.url}"\n{ITEMS}')
-    r = subprocess.run([sys.executable, "-m", "thermeta.daemon.cli", "status", "--config",
-                        str(cfg_path)], capture_output=True, text=True, timeout=60)
+    r = subprocess.run(
+        [sys.executable, "-m", "thermeta.daemon.cli", "status", "--config", str(cfg_path)],
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
     assert r.returncode == 0, r.stderr
     lines = r.stdout.splitlines()
     assert lines[0] == "daemon not running (last heartbeat never)"
-    assert lines[1].startswith("items 1, readings 60, dead letters 0, last refit 2027-01-15T08:00:00Z (")
+    assert lines[1].startswith(
+        "items 1, readings 60, dead letters 0, last refit 2027-01-15T08:00:00Z ("
+    )
     rows = {ln.split()[0]: ln.split()[1] for ln in lines[3:-1]}
     assert rows == {"warm": "approaching", "far": "-", "new": "-", "past": "-"}
-    missing = subprocess.run([sys.executable, "-m", "thermeta.daemon.cli", "status", "--config",
-                              str(tmp_path / "nowhere.toml")], capture_output=True, text=True, timeout=60)
+    missing = subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "thermeta.daemon.cli",
+            "status",
+            "--config",
+            str(tmp_path / "nowhere.toml"),
+        ],
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
     assert missing.returncode == 2
 
 
@@ -438,22 +550,31 @@ def test_the_picture_shows_the_forecast_the_refit_made(tmp_path):
     from thermeta.predictors import forecast
 
     t, y = _half_hour_warming()
-    items = ('[[item]]\nname = "w"\ntopic = "k/w"\nthreshold = 8.0\nambient = 25.0\n'
-             'ambient_within = 0.5\n')
+    items = (
+        '[[item]]\nname = "w"\ntopic = "k/w"\nthreshold = 8.0\nambient = 25.0\n'
+        "ambient_within = 0.5\n"
+    )
     cfg, store, act = seeded_store(tmp_path, items, {"w": (t, y)})
     item = cfg.items[0]
     series = plotting.item_series(store, item)
     limit, prior = plotting._limit_and_prior(store, item, measured=False)
     drawn = plotting.item_forecast(series, item, limit=limit, prior=prior)
     got: dict[str, dict] = {}
-    Refitter(store, cfg, ManualClock(T0), act,
-             publish=lambda n, p: got.update({n: json.loads(p)})).run_once()
+    Refitter(
+        store, cfg, ManualClock(T0), act, publish=lambda n, p: got.update({n: json.loads(p)})
+    ).run_once()
     made = got["w"]
     assert limit == "upper" and made["limit"] == "upper"
     for key in ("eta_s", "eta_lo_s", "eta_hi_s"):
         assert getattr(drawn, key) == pytest.approx(made[key], rel=1e-9), key
-    old = forecast(series.t, series.y, item.threshold_c, ambient=item.ambient_c,
-                   window_s=item.window_s, min_points=item.min_points)
+    old = forecast(
+        series.t,
+        series.y,
+        item.threshold_c,
+        ambient=item.ambient_c,
+        window_s=item.window_s,
+        min_points=item.min_points,
+    )
     assert abs(old.eta_hi_s - made["eta_hi_s"]) > 0.01 * made["eta_s"]
     store.close()
 
@@ -465,8 +586,14 @@ def test_status_line_counts_point_and_interval_from_now():
     from thermeta.predictors.result import rfc3339
 
     t_last = T0 - 120.0
-    r = {"state": "approaching", "eta_s": 1980.0, "eta_lo_s": 1920.0, "eta_hi_s": 2100.0,
-         "crossing_at": rfc3339(t_last + 1980.0), "last_reading_at": rfc3339(t_last)}
+    r = {
+        "state": "approaching",
+        "eta_s": 1980.0,
+        "eta_lo_s": 1920.0,
+        "eta_hi_s": 2100.0,
+        "crossing_at": rfc3339(t_last + 1980.0),
+        "last_reading_at": rfc3339(t_last),
+    }
     assert _eta_text(r, T0 + 0.0) == "in 31 min (90 %: 30 min to 33 min)"
     assert _eta_text(dict(r, eta_hi_s=None), T0 + 0.0) == "in 31 min (90 %: 30 min to open)"
 

@@ -23,7 +23,7 @@ K = 1 / (15 * 60)  # wort through a plate chiller, tau 15 min (common practice: 
 COOLANT = 11.0
 THR = 20.0
 
-ITEMS = '''
+ITEMS = """
 [[item]]
 name = "tank-{n}"
 topic = "cellar/tank-{n}/wort"
@@ -31,12 +31,13 @@ threshold = 20.0
 limit = "lower"
 window = 3600
 {extra}
-'''
+"""
 
 
 def config(tmp_path, items: list[tuple[int, str]]):
     text = f'[storage]\nurl = "sqlite:///{tmp_path / "s.db"}"\n' + "".join(
-        ITEMS.format(n=n, extra=extra) for n, extra in items)
+        ITEMS.format(n=n, extra=extra) for n, extra in items
+    )
     return parse_config(tomllib.loads(text), "t.toml", text)
 
 
@@ -52,8 +53,18 @@ def wort(seed: int, t_end: float, duration_s: float) -> tuple[np.ndarray, np.nda
 def feed(store: Store, act: Activity, cfg, name: str, t: np.ndarray, y: np.ndarray) -> None:
     it = next(i for i in cfg.items if i.name == name)
     iid = store.ensure_item(name, unit="C", topic=it.topic, now=float(t[0]))
-    store.write_batch([{"item_id": iid, "ts": float(a), "value_c": float(b), "flags": 0,
-                        "received_at": float(a)} for a, b in zip(t, y)])
+    store.write_batch(
+        [
+            {
+                "item_id": iid,
+                "ts": float(a),
+                "value_c": float(b),
+                "flags": 0,
+                "received_at": float(a),
+            }
+            for a, b in zip(t, y)
+        ]
+    )
     act.note(name, it, float(t.max()))
 
 
@@ -110,7 +121,7 @@ def test_a_prior_stored_after_one_episode_is_used_by_the_next(tmp_path):
 
 def test_prior_class_is_validated(tmp_path):
     """prior_class must be a string of 1-200 characters; the problem names the key."""
-    for bad in ('prior_class = 5', f'prior_class = "{"x" * 201}"', 'prior_class = "  "'):
+    for bad in ("prior_class = 5", f'prior_class = "{"x" * 201}"', 'prior_class = "  "'):
         with pytest.raises(ConfigError) as info:
             config(tmp_path, [(1, bad)])
         assert any("prior_class" in p for p in info.value.problems)
@@ -131,13 +142,16 @@ def learn_twice(url: str, cls: str, item: str) -> None:
         def update(body):
             seen.append(body)
             return (Prior.from_dict(body) if body else Prior()).updated(k, COOLANT).to_dict()
+
         return update
 
     ps.learn(cls, item, T0, T0, step(K))
     ps.learn(cls, item, T0 + 60, T0 + 60, step(2 * K))
     assert seen[0] is None and seen[1]["n_episodes"] == 1
     body = ps.get(cls)
-    assert body["n_episodes"] == 2 and math.exp(body["logk_mean"]) == pytest.approx(math.sqrt(2) * K)
+    assert body["n_episodes"] == 2 and math.exp(body["logk_mean"]) == pytest.approx(
+        math.sqrt(2) * K
+    )
     assert ps.learned_until(item) == T0 + 60 and cls in ps.all()
     store.close()
 

@@ -35,20 +35,43 @@ def fill_store(url: str, n_extra: int = 0) -> Store:
         ("cellar-b", "stale", 11.0, 14.0, None, None, None, "cellar"),
         ("trailer-9", "approaching", -17.0, -15.0, 9000.0, 7000.0, 11000.0, "north-yard"),
     ]
-    items += [(f"crate-{i:02d}", "steady", 2.0 + 0.1 * i, 8.0, None, None, None, f"room-{i % 3}")
-              for i in range(n_extra)]
+    items += [
+        (f"crate-{i:02d}", "steady", 2.0 + 0.1 * i, 8.0, None, None, None, f"room-{i % 3}")
+        for i in range(n_extra)
+    ]
     for name, state, v, thr, eta, lo, hi, site in items:
         iid = store.ensure_item(name, now=NOW)
         rows = [(iid, NOW - 3 * 3600 + 60 * k, v - 0.002 * (180 - k), 0, NOW) for k in range(181)]
         store.write_batch(rows)
-        body = {"item": name, "state": state, "value_now": v, "threshold": thr, "unit": "C",
-                "eta_s": eta, "eta_lo_s": lo, "eta_hi_s": hi, "ambient": 12.0,
-                "time_constant_s": 36000.0, "last_reading_at": rfc3339(NOW), "site": site,
-                "direction": "rising", "fit_ok": True, "warnings": []}
+        body = {
+            "item": name,
+            "state": state,
+            "value_now": v,
+            "threshold": thr,
+            "unit": "C",
+            "eta_s": eta,
+            "eta_lo_s": lo,
+            "eta_hi_s": hi,
+            "ambient": 12.0,
+            "time_constant_s": 36000.0,
+            "last_reading_at": rfc3339(NOW),
+            "site": site,
+            "direction": "rising",
+            "fit_ok": True,
+            "warnings": [],
+        }
         store.save_forecast(iid, NOW, state, body, NOW)
-    store.set_meta("daemon", {"state": "running", "heartbeat_at": NOW - 2, "connected": True,
-                              "broker": "127.0.0.1:1883", "readings_per_s": 12.5,
-                              "dead_letters": 3})
+    store.set_meta(
+        "daemon",
+        {
+            "state": "running",
+            "heartbeat_at": NOW - 2,
+            "connected": True,
+            "broker": "127.0.0.1:1883",
+            "readings_per_s": 12.5,
+            "dead_letters": 3,
+        },
+    )
     store.set_meta("last_refit_at", NOW - 8)
     return store
 
@@ -68,8 +91,12 @@ def test_render_shows_items_in_urgency_order_with_words(tmp_path, width, height)
     lines = out.splitlines()
     assert len(lines) <= height
     assert all(len(line) <= width for line in lines)
-    order = [name for line in lines for name in
-             ("blast-2", "trailer-4", "trailer-9", "cellar-b", "reefer-07") if name in line]
+    order = [
+        name
+        for line in lines
+        for name in ("blast-2", "trailer-4", "trailer-9", "cellar-b", "reefer-07")
+        if name in line
+    ]
     assert order == ["blast-2", "trailer-4", "trailer-9", "cellar-b", "reefer-07"]
     # a name too long for the column keeps its telling end
     assert ("…tchen/blast-2" if width == 80 else "kitchen/blast-2") in out
@@ -87,8 +114,11 @@ def test_many_items_are_grouped_by_site_most_urgent_group_first(tmp_path):
     item first; rows that do not fit are counted, not silently dropped."""
     store = fill_store(f"sqlite:///{tmp_path / 's.db'}", n_extra=12)
     out = text_of(store, 80, 24)
-    heads = [line.split(" (")[0] for line in map(str.strip, out.splitlines())
-             if line.endswith(")") and line[0].isalpha() and "items" not in line]
+    heads = [
+        line.split(" (")[0]
+        for line in map(str.strip, out.splitlines())
+        if line.endswith(")") and line[0].isalpha() and "items" not in line
+    ]
     assert heads[:2] == ["kitchen", "north-yard"]
     assert "more (filter with / or a)" in out
     wide = text_of(store, 120, 60)
@@ -118,8 +148,13 @@ def test_sparkline_and_countdown_formats():
     """Eight levels from low to high, blanks where no reading; compact countdowns."""
     assert sparkline([0, 1, 2, 3, 4, 5, 6, 7], None, 8) == "▁▂▃▄▅▆▇█"
     assert sparkline([math.nan, 1.0], None, 2)[0] == " "
-    assert [short_duration(s) for s in (45, 2520, 11100, 200000, None)] == \
-        ["45s", "42m", "3h05", "2d7h", "∞"]
+    assert [short_duration(s) for s in (45, 2520, 11100, 200000, None)] == [
+        "45s",
+        "42m",
+        "3h05",
+        "2d7h",
+        "∞",
+    ]
 
 
 def test_watch_prints_plain_lines_when_not_a_terminal(tmp_path):
@@ -127,17 +162,24 @@ def test_watch_prints_plain_lines_when_not_a_terminal(tmp_path):
     url = f"sqlite:///{tmp_path / 's.db'}"
     fill_store(url).close()
     cfg = tmp_path / "c.toml"
-    cfg.write_text(f'[storage]\nurl = "{url}"\n[[item]]\nname = "trailer-4"\n'
-                   'topic = "fleet/trailer-4/load"\nthreshold = -15.0\n')
-    out = subprocess.run([sys.executable, "-m", "thermeta.daemon.cli", "watch", "--config",
-                          str(cfg), "--once"], capture_output=True, text=True, timeout=60,
-                         check=False)
+    cfg.write_text(
+        f'[storage]\nurl = "{url}"\n[[item]]\nname = "trailer-4"\n'
+        'topic = "fleet/trailer-4/load"\nthreshold = -15.0\n'
+    )
+    out = subprocess.run(
+        [sys.executable, "-m", "thermeta.daemon.cli", "watch", "--config", str(cfg), "--once"],
+        capture_output=True,
+        text=True,
+        timeout=60,
+        check=False,
+    )
     assert out.returncode == 0, out.stderr
     lines = out.stdout.splitlines()
     assert "\x1b[" not in out.stdout
     assert lines[1].startswith("kitchen/blast-2 crossed now 22.5 C limit 21.0")
-    assert any(line.startswith("trailer-4 approaching") and "eta 42m [27m-68m]" in line
-               for line in lines)
+    assert any(
+        line.startswith("trailer-4 approaching") and "eta 42m [27m-68m]" in line for line in lines
+    )
 
 
 # -- a real terminal -------------------------------------------------------------------------
@@ -151,8 +193,9 @@ def _daemon_meta(store: Store) -> dict:
 
 
 def _tmux(sock: str, *args: str) -> str:
-    return subprocess.run(["tmux", "-L", sock, *args], capture_output=True, text=True,
-                          timeout=20, check=False).stdout
+    return subprocess.run(
+        ["tmux", "-L", sock, *args], capture_output=True, text=True, timeout=20, check=False
+    ).stdout
 
 
 def _wait_pane(sock: str, needle: str, timeout: float = 20.0) -> str:
@@ -178,7 +221,7 @@ def test_watch_in_tmux_beside_a_running_daemon(broker, tmp_path):
 port = {broker.port}
 client_id = "thermeta-dash-test"
 [storage]
-url = "sqlite:///{tmp_path / 'd.db'}"
+url = "sqlite:///{tmp_path / "d.db"}"
 batch_ms = 20
 [fit]
 refit_every = 1
@@ -194,8 +237,12 @@ threshold = 8.0
 ambient = 27.0
 """)
     log = open(tmp_path / "daemon.log", "w")
-    daemon = subprocess.Popen([sys.executable, "-m", "thermeta.daemon.cli", "run", "--config",
-                               str(cfg)], stdout=log, stderr=subprocess.STDOUT, cwd=tmp_path)
+    daemon = subprocess.Popen(
+        [sys.executable, "-m", "thermeta.daemon.cli", "run", "--config", str(cfg)],
+        stdout=log,
+        stderr=subprocess.STDOUT,
+        cwd=tmp_path,
+    )
     sock = f"thermeta-test-{uuid.uuid4().hex[:8]}"
     try:
         # A new client id has no session yet: publish only once the daemon has subscribed.
@@ -214,15 +261,48 @@ ambient = 27.0
         for i in range(40):
             t = now - (40 - i) * 60
             # T = Ta + (T0 - Ta) e^(-k t), Newton's law (invented demo numbers)
-            lines.append(("fleet/trailer-4/load", {"ts": t, "value": 12 - 32 * math.exp(-i * 60 / 9000)}))
-            lines.append(("yard/reefer-07/load", {"ts": t, "value": 27 - 25 * math.exp(-i * 60 / 400000)}))
+            lines.append(
+                ("fleet/trailer-4/load", {"ts": t, "value": 12 - 32 * math.exp(-i * 60 / 9000)})
+            )
+            lines.append(
+                ("yard/reefer-07/load", {"ts": t, "value": 27 - 25 * math.exp(-i * 60 / 400000)})
+            )
         for topic, body in lines:
-            subprocess.run(["mosquitto_pub", "-p", str(broker.port), "-q", "1", "-t", topic,
-                            "-m", json.dumps(body)], check=True, timeout=10)
+            subprocess.run(
+                [
+                    "mosquitto_pub",
+                    "-p",
+                    str(broker.port),
+                    "-q",
+                    "1",
+                    "-t",
+                    topic,
+                    "-m",
+                    json.dumps(body),
+                ],
+                check=True,
+                timeout=10,
+            )
         env = dict(os.environ, TERM="xterm-256color")
-        subprocess.run(["tmux", "-L", sock, "new-session", "-d", "-s", "dash", "-x", "80", "-y",
-                        "24", f"{sys.executable} -m thermeta.daemon.cli watch --config {cfg} "
-                        "--interval 0.5"], check=True, env=env, timeout=20)
+        subprocess.run(
+            [
+                "tmux",
+                "-L",
+                sock,
+                "new-session",
+                "-d",
+                "-s",
+                "dash",
+                "-x",
+                "80",
+                "-y",
+                "24",
+                f"{sys.executable} -m thermeta.daemon.cli watch --config {cfg} --interval 0.5",
+            ],
+            check=True,
+            env=env,
+            timeout=20,
+        )
         text = _wait_pane(sock, "trailer-4")
         text = _wait_pane(sock, "connected")
         assert "reefer-07" in text
@@ -239,8 +319,9 @@ ambient = 27.0
         assert "dash" not in _tmux(sock, "list-sessions")
         assert daemon.poll() is None  # the dashboard never disturbed the daemon
     finally:
-        subprocess.run(["tmux", "-L", sock, "kill-server"], capture_output=True, timeout=10,
-                       check=False)
+        subprocess.run(
+            ["tmux", "-L", sock, "kill-server"], capture_output=True, timeout=10, check=False
+        )
         daemon.terminate()
         daemon.wait(20)
         log.close()
@@ -256,11 +337,22 @@ def test_an_item_in_defrost_says_so(tmp_path):
     store = fill_store(f"sqlite:///{tmp_path / 'd.db'}")
     iid = store.ensure_item("cold-room-a/air", now=NOW)
     store.write_batch([(iid, NOW - 60 * k, 5.0 + 0.01 * k, 0, NOW) for k in range(30)])
-    body = {"item": "cold-room-a/air", "state": "approaching", "value_now": 5.0, "threshold": 8.0,
-            "unit": "C", "eta_s": 2400.0, "eta_lo_s": 1500.0, "eta_hi_s": 4000.0, "ambient": 9.0,
-            "time_constant_s": 3000.0, "last_reading_at": rfc3339(NOW), "fit_ok": True,
-            "warnings": [], "defrost": {"on": True, "started_at": rfc3339(NOW - 900),
-                                        "ended_at": None}}
+    body = {
+        "item": "cold-room-a/air",
+        "state": "approaching",
+        "value_now": 5.0,
+        "threshold": 8.0,
+        "unit": "C",
+        "eta_s": 2400.0,
+        "eta_lo_s": 1500.0,
+        "eta_hi_s": 4000.0,
+        "ambient": 9.0,
+        "time_constant_s": 3000.0,
+        "last_reading_at": rfc3339(NOW),
+        "fit_ok": True,
+        "warnings": [],
+        "defrost": {"on": True, "started_at": rfc3339(NOW - 900), "ended_at": None},
+    }
     store.save_forecast(iid, NOW, "approaching", body, NOW)
     board = collect(store, NOW)
     lines = [ln for ln in text_of(store, 120, 40).splitlines() if "cold-room-a/air" in ln]

@@ -29,11 +29,21 @@ T0 = 1_800_000_000.0
 
 
 # -- payloads ---------------------------------------------------------------------------------
-@pytest.mark.parametrize("payload, state", [
-    (b"on", 1.0), (b"OFF", 0.0), (b" true\n", 1.0), (b"false", 0.0), (b"1", 1.0), (b"0", 0.0),
-    (b'"on"', 1.0), (b'{"defrost": true}', 1.0), (b'{"defrost": "off"}', 0.0),
-    (b'{"value": 1}', 1.0),
-])
+@pytest.mark.parametrize(
+    "payload, state",
+    [
+        (b"on", 1.0),
+        (b"OFF", 0.0),
+        (b" true\n", 1.0),
+        (b"false", 0.0),
+        (b"1", 1.0),
+        (b"0", 0.0),
+        (b'"on"', 1.0),
+        (b'{"defrost": true}', 1.0),
+        (b'{"defrost": "off"}', 0.0),
+        (b'{"value": 1}', 1.0),
+    ],
+)
 def test_defrost_payload_forms(payload, state):
     (r,) = parse_defrost(payload, T0)
     assert (r.ts, r.value_c, r.receipt_ts) == (T0, state, True)
@@ -46,13 +56,18 @@ def test_defrost_payload_with_its_own_time():
     assert (r.ts, r.value_c) == (T0 - 5, 0.0)
 
 
-@pytest.mark.parametrize("payload, reason", [
-    (b"maybe", "defrost state must be"), (b"2", "defrost state must be"),
-    (b'{"state": 1}', r'needs a "defrost" \(or "value"\) key'), (b"{oops", "not valid JSON"),
-    (b'{"defrost": 1, "ts": "yesterday"}', "not a time"),
-    (json.dumps({"defrost": 1, "ts": T0 + 3600}).encode(), "in the future"),
-    (b"\xff\xfe", "not UTF-8"),
-])
+@pytest.mark.parametrize(
+    "payload, reason",
+    [
+        (b"maybe", "defrost state must be"),
+        (b"2", "defrost state must be"),
+        (b'{"state": 1}', r'needs a "defrost" \(or "value"\) key'),
+        (b"{oops", "not valid JSON"),
+        (b'{"defrost": 1, "ts": "yesterday"}', "not a time"),
+        (json.dumps({"defrost": 1, "ts": T0 + 3600}).encode(), "in the future"),
+        (b"\xff\xfe", "not UTF-8"),
+    ],
+)
 def test_bad_defrost_payloads_say_why(payload, reason):
     with pytest.raises(PayloadError, match=reason):
         parse_defrost(payload, T0, Limits(max_future_s=300))
@@ -64,30 +79,50 @@ def test_defrost_status_is_the_newest_defrost():
     assert defrost_status([(T0, 0.0), (T0 + 60, 0.0)]) is None
     # on, repeated on (a controller repeating its state), off: one defrost from the first on
     rows = [(T0 - 9000, 1.0), (T0 - 8000, 0.0), (T0, 1.0), (T0 + 60, 1.0), (T0 + 1500, 0.0)]
-    assert defrost_status(rows) == {"on": False, "started_at": rfc3339(T0),
-                                    "ended_at": rfc3339(T0 + 1500)}
+    assert defrost_status(rows) == {
+        "on": False,
+        "started_at": rfc3339(T0),
+        "ended_at": rfc3339(T0 + 1500),
+    }
     assert defrost_status(rows[:4]) == {"on": True, "started_at": rfc3339(T0), "ended_at": None}
 
 
 # -- the rules --------------------------------------------------------------------------------
 THR = 8.0
-P = RuleParams(threshold=THR, lead_s=2700, hysteresis=0.5, hold_s=300, remind_every_s=1800,
-               defrost_recovery_s=1800, defrost_max_s=3600)
+P = RuleParams(
+    threshold=THR,
+    lead_s=2700,
+    hysteresis=0.5,
+    hold_s=300,
+    remind_every_s=1800,
+    defrost_recovery_s=1800,
+    defrost_max_s=3600,
+)
 
 
 def fc(t_s: float, value: float, eta_s: float | None, defrost: dict | None) -> dict:
     """A refit's forecast dict: an air probe at ``value``, a crossing forecast in ``eta_s``."""
-    return {"item": "room/air", "state": "crossed" if value >= THR else
-            ("approaching" if eta_s is not None else "steady"),
-            "value_now": value, "threshold": THR, "eta_s": eta_s,
-            "eta_lo_s": None if eta_s is None else 0.6 * eta_s, "fit_ok": True,
-            "last_reading_at": rfc3339(T0 + t_s), "limit": "upper", "warnings": [],
-            "defrost": defrost}
+    return {
+        "item": "room/air",
+        "state": "crossed" if value >= THR else ("approaching" if eta_s is not None else "steady"),
+        "value_now": value,
+        "threshold": THR,
+        "eta_s": eta_s,
+        "eta_lo_s": None if eta_s is None else 0.6 * eta_s,
+        "fit_ok": True,
+        "last_reading_at": rfc3339(T0 + t_s),
+        "limit": "upper",
+        "warnings": [],
+        "defrost": defrost,
+    }
 
 
 def on(start_s: float, end_s: float | None = None) -> dict:
-    return {"on": end_s is None, "started_at": rfc3339(T0 + start_s),
-            "ended_at": None if end_s is None else rfc3339(T0 + end_s)}
+    return {
+        "on": end_s is None,
+        "started_at": rfc3339(T0 + start_s),
+        "ended_at": None if end_s is None else rfc3339(T0 + end_s),
+    }
 
 
 def levels(seq) -> list[tuple[float, str]]:
@@ -118,20 +153,34 @@ def test_defrost_rise_raises_nothing_and_the_same_rise_untold_does():
 def test_a_crossing_during_the_hold_is_raised_when_the_hold_ends_if_it_persists():
     """Past the threshold from 20 min into the defrost and staying there: `crossed` at the first
     refit after the recovery delay (1500 s + 1800 s), not before, and not missed."""
-    seq = [(t, fc(t, 6.0 if t < 1200 else 9.0, 600.0 if t < 1200 else 0.0,
-                  on(0) if t < 1500 else on(0, 1500))) for t in range(0, 4201, 300)]
+    seq = [
+        (
+            t,
+            fc(
+                t,
+                6.0 if t < 1200 else 9.0,
+                600.0 if t < 1200 else 0.0,
+                on(0) if t < 1500 else on(0, 1500),
+            ),
+        )
+        for t in range(0, 4201, 300)
+    ]
     assert levels(seq) == [(3300, "crossed")]
 
 
 def test_a_crossing_that_ends_within_the_hold_raises_nothing():
-    seq = [(t, fc(t, 8.3 if 900 <= t <= 1800 else 6.0, None, on(0) if t < 1500 else on(0, 1500)))
-           for t in range(0, 4201, 300)]
+    seq = [
+        (t, fc(t, 8.3 if 900 <= t <= 1800 else 6.0, None, on(0) if t < 1500 else on(0, 1500)))
+        for t in range(0, 4201, 300)
+    ]
     assert levels(seq) == []
 
 
 def test_an_approach_raised_before_the_defrost_crosses_only_after_the_hold():
-    seq = [(0, fc(0, 6.0, 1200.0, None)),
-           *[(t, fc(t, 8.6, 0.0, on(300))) for t in range(300, 7201, 300)]]
+    seq = [
+        (0, fc(0, 6.0, 1200.0, None)),
+        *[(t, fc(t, 8.6, 0.0, on(300))) for t in range(300, 7201, 300)],
+    ]
     got = levels(seq)
     assert got[0] == (0, "approaching")
     assert got[1:] == [(300 + 3600 + 1800, "crossed")]  # the signal never ended: max + recovery
@@ -154,30 +203,52 @@ ITEM = '[[item]]\nname = "room/air"\ntopic = "room/air"\nthreshold = 8.0\n'
 
 
 def test_defrost_keys_load(tmp_path):
-    cfg = load_config(write(tmp_path, ITEM + 'defrost_topic = "room/defrost"\n'
-                                             "defrost_recovery = 900\ndefrost_max = 2700\n"))
+    cfg = load_config(
+        write(
+            tmp_path,
+            ITEM + 'defrost_topic = "room/defrost"\ndefrost_recovery = 900\ndefrost_max = 2700\n',
+        )
+    )
     (item,) = cfg.items
     assert (item.defrost_topic, item.defrost_recovery_s, item.defrost_max_s) == (
-        "room/defrost", 900.0, 2700.0)
+        "room/defrost",
+        900.0,
+        2700.0,
+    )
     assert RuleParams.of(item).defrost_recovery_s == 900.0
     (plain,) = load_config(write(tmp_path, ITEM, "plain.toml")).items
     assert plain.defrost_topic is None
 
 
 def test_defrost_keys_are_validated_with_their_lines(tmp_path):
-    got = problems(tmp_path, ITEM + 'defrost_topic = "room/air"\n'  # line 5
-                   + ITEM.replace("room/air", "room/b") + "defrost_recovery = 60\n"  # line 10
-                   + ITEM.replace("room/air", "room/c")
-                   + 'defrost_topic = "room/+/x"\ndefrost_max = -5\ndefrost_recovery = "10m"\n')
-    assert any(p.endswith(":5: item.defrost_topic: must differ from topic and ambient_topic "
-                          "(it carries on/off, not readings)") for p in got), got
-    assert any(p.endswith(":10: item.defrost_recovery: needs defrost_topic (the controller's "
-                          "signal)") for p in got), got
-    assert any(p.endswith(":15: item.defrost_topic: must use wildcards exactly when topic does")
-               for p in got), got
+    got = problems(
+        tmp_path,
+        ITEM
+        + 'defrost_topic = "room/air"\n'  # line 5
+        + ITEM.replace("room/air", "room/b")
+        + "defrost_recovery = 60\n"  # line 10
+        + ITEM.replace("room/air", "room/c")
+        + 'defrost_topic = "room/+/x"\ndefrost_max = -5\ndefrost_recovery = "10m"\n',
+    )
+    assert any(
+        p.endswith(
+            ":5: item.defrost_topic: must differ from topic and ambient_topic "
+            "(it carries on/off, not readings)"
+        )
+        for p in got
+    ), got
+    assert any(
+        p.endswith(":10: item.defrost_recovery: needs defrost_topic (the controller's signal)")
+        for p in got
+    ), got
+    assert any(
+        p.endswith(":15: item.defrost_topic: must use wildcards exactly when topic does")
+        for p in got
+    ), got
     assert any(p.endswith(":16: item.defrost_max: must be > 0, got -5") for p in got), got
-    assert any(p.endswith(':17: item.defrost_recovery: must be a number, got "10m"')
-               for p in got), got
+    assert any(
+        p.endswith(':17: item.defrost_recovery: must be a number, got "10m"') for p in got
+    ), got
 
 
 def test_item_names_ending_in_defrost_are_refused(tmp_path):
@@ -190,15 +261,23 @@ def test_router_sends_a_room_defrost_topic_to_each_of_its_items(tmp_path):
     own concrete defrost topic."""
     from thermeta.daemon.topics import Router
 
-    cfg = load_config(write(tmp_path, ITEM + 'defrost_topic = "room/defrost"\n'
-                            + ITEM.replace('"room/air"', '"room/load"')
-                            + 'defrost_topic = "room/defrost"\n'
-                            + '[[item]]\nname = "cell-{2}"\ntopic = "cells/+/air"\n'
-                            + 'threshold = 8.0\ndefrost_topic = "cells/+/defrost"\n'))
+    cfg = load_config(
+        write(
+            tmp_path,
+            ITEM
+            + 'defrost_topic = "room/defrost"\n'
+            + ITEM.replace('"room/air"', '"room/load"')
+            + 'defrost_topic = "room/defrost"\n'
+            + '[[item]]\nname = "cell-{2}"\ntopic = "cells/+/air"\n'
+            + 'threshold = 8.0\ndefrost_topic = "cells/+/defrost"\n',
+        )
+    )
     r = Router(cfg.items)
     got = sorted((x.item.name, x.kind, x.store_name) for x in r.resolve_all("room/defrost"))
-    assert got == [("room/air", "defrost", "room/air.defrost"),
-                   ("room/load", "defrost", "room/load.defrost")]
+    assert got == [
+        ("room/air", "defrost", "room/air.defrost"),
+        ("room/load", "defrost", "room/load.defrost"),
+    ]
     (cell,) = r.resolve_all("cells/4/defrost")
     assert (cell.item.name, cell.kind, cell.store_name) == ("cell-4", "defrost", "cell-4.defrost")
     assert r.resolve("cells/4/air").item.defrost_topic == "cells/4/defrost"
@@ -238,7 +317,7 @@ port = {broker.port}
 client_id = "thermeta-defrost"
 
 [storage]
-url = "sqlite:///{tmp_path / 'defrost.db'}"
+url = "sqlite:///{tmp_path / "defrost.db"}"
 batch_ms = 20
 
 [fit]
@@ -291,11 +370,18 @@ url = "{receiver.url}"
                     send(f"walkin/{item}/air", json.dumps({"ts": T0 + t, "value": round(v, 2)}))
                 n += 1
                 t += DT_S
-            assert _wait(lambda n=n: len(svc.store.recent_readings("told")) == n
-                         and len(svc.store.recent_readings("untold")) == n)
+            assert _wait(
+                lambda n=n: (
+                    len(svc.store.recent_readings("told")) == n
+                    and len(svc.store.recent_readings("untold")) == n
+                )
+            )
             if t > D_ON:
-                assert _wait(lambda: len(svc.store.recent_readings("told.defrost"))
-                             == (1 if t <= D_OFF else 2))
+                assert _wait(
+                    lambda: (
+                        len(svc.store.recent_readings("told.defrost")) == (1 if t <= D_OFF else 2)
+                    )
+                )
             svc.refit_now()
         assert _wait(lambda: svc.alerts.astore.outbox_counts()["pending"] == 0)
         time.sleep(0.3)
@@ -308,16 +394,26 @@ url = "{receiver.url}"
     alerts = [json.loads(b) for _, _, b in receiver.posts]
     # from the defrost on (the first cycles, before the fit has seen enough of them, are the
     # same on both probes and not what this test is about)
-    got = {name: [(a["level"], a["at_s"] - T0) for a in alerts if a["item"] == name
-                  and a["level"] in ("approaching", "crossed") and a["at_s"] >= T0 + D_ON]
-           for name in ("told", "untold")}
+    got = {
+        name: [
+            (a["level"], a["at_s"] - T0)
+            for a in alerts
+            if a["item"] == name
+            and a["level"] in ("approaching", "crossed")
+            and a["at_s"] >= T0 + D_ON
+        ]
+        for name in ("told", "untold")
+    }
     assert got["untold"][0][0] == "approaching" and D_ON <= got["untold"][0][1] < WARM, got
     for name in ("told", "untold"):  # the door: approaching, then crossed, both after it opened
         door = [(lv, s) for lv, s in got[name] if s >= WARM]
         assert [lv for lv, _ in door] == ["approaching", "crossed"], got
     assert all(s >= WARM for _, s in got["told"]), got  # nothing from the defrost
-    assert told_fc["defrost"] == {"on": False, "started_at": rfc3339(T0 + D_ON),
-                                  "ended_at": rfc3339(T0 + D_OFF)}
+    assert told_fc["defrost"] == {
+        "on": False,
+        "started_at": rfc3339(T0 + D_ON),
+        "ended_at": rfc3339(T0 + D_OFF),
+    }
 
 
 def _wait(cond, timeout: float = 10.0) -> bool:

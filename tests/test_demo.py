@@ -22,13 +22,17 @@ def test_embedded_broker_serves_paho_and_stops():
     b = EmbeddedBroker().start()
     got = []
     try:
-        pub = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id="t-pub", protocol=mqtt.MQTTv311)
+        pub = mqtt.Client(
+            mqtt.CallbackAPIVersion.VERSION2, client_id="t-pub", protocol=mqtt.MQTTv311
+        )
         pub.connect(b.host, b.port)
         pub.loop_start()
         info = pub.publish("site/probe", b'{"value": 4.2}', qos=1, retain=True)
         info.wait_for_publish(5)
         assert info.is_published()
-        sub = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id="t-sub", protocol=mqtt.MQTTv311)
+        sub = mqtt.Client(
+            mqtt.CallbackAPIVersion.VERSION2, client_id="t-sub", protocol=mqtt.MQTTv311
+        )
         sub.on_message = lambda c, u, m: got.append((m.topic, m.payload, m.retain))
         sub.on_connect = lambda c, u, f, rc, p: c.subscribe("site/#", qos=1)
         sub.connect(b.host, b.port)
@@ -72,9 +76,22 @@ def headless_run(tmp_path_factory):
     """One `thermeta demo --embedded --headless --duration 30 --speed 320` run for the tests below."""
     summary_path = tmp_path_factory.mktemp("demo") / "summary.json"
     t0 = time.monotonic()
-    r = subprocess.run(DEMO + ["--embedded", "--headless", "--duration", "30", "--speed", "320",
-                               "--summary-json", str(summary_path)],
-                       capture_output=True, text=True, timeout=120)
+    r = subprocess.run(
+        DEMO
+        + [
+            "--embedded",
+            "--headless",
+            "--duration",
+            "30",
+            "--speed",
+            "320",
+            "--summary-json",
+            str(summary_path),
+        ],
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
     wall = time.monotonic() - t0
     summary = json.loads(summary_path.read_text()) if summary_path.exists() else None
     return r, wall, summary
@@ -122,15 +139,43 @@ def test_healthy_cold_room_raises_no_alert(headless_run):
 def test_demo_uses_a_reachable_broker(broker):
     """With a broker answering at --host/--port the demo uses it instead of starting its own, and
     leaves none of its retained forecasts behind there (read with the standard mosquitto_sub)."""
-    r = subprocess.run(DEMO + ["--headless", "--duration", "2", "--speed", "600", "--host",
-                               broker.host, "--port", str(broker.port)],
-                       capture_output=True, text=True, timeout=60)
+    r = subprocess.run(
+        DEMO
+        + [
+            "--headless",
+            "--duration",
+            "2",
+            "--speed",
+            "600",
+            "--host",
+            broker.host,
+            "--port",
+            str(broker.port),
+        ],
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
     assert r.returncode == 0, r.stderr[-2000:]
     assert f"using the broker at {broker.host}:{broker.port}" in r.stdout
     assert "forecast " in r.stdout
-    left = subprocess.run(["mosquitto_sub", "-h", broker.host, "-p", str(broker.port), "-t",
-                           "thermeta-demo/#", "-v", "-W", "2"], capture_output=True, text=True,
-                          timeout=30)
+    left = subprocess.run(
+        [
+            "mosquitto_sub",
+            "-h",
+            broker.host,
+            "-p",
+            str(broker.port),
+            "-t",
+            "thermeta-demo/#",
+            "-v",
+            "-W",
+            "2",
+        ],
+        capture_output=True,
+        text=True,
+        timeout=30,
+    )
     assert left.stdout.strip() == ""
 
 
@@ -140,22 +185,28 @@ def test_demo_starts_its_own_broker_when_the_one_there_refuses(tmp_path):
     import shutil
 
     from conftest import _need_mosquitto, free_port
-
     from thermeta.daemon.embedded_broker import broker_accepts
 
     _need_mosquitto()
     port = free_port()
     conf = tmp_path / "closed.conf"
     conf.write_text(f"listener {port} 127.0.0.1\nallow_anonymous false\n")
-    proc = subprocess.Popen([shutil.which("mosquitto"), "-c", str(conf)],
-                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    proc = subprocess.Popen(
+        [shutil.which("mosquitto"), "-c", str(conf)],
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+    )
     try:
         deadline = time.monotonic() + 10
         while not broker_reachable("127.0.0.1", port) and time.monotonic() < deadline:
             time.sleep(0.05)
         assert broker_reachable("127.0.0.1", port) and not broker_accepts("127.0.0.1", port)
-        r = subprocess.run(DEMO + ["--headless", "--duration", "2", "--speed", "600", "--port",
-                                   str(port)], capture_output=True, text=True, timeout=60)
+        r = subprocess.run(
+            DEMO + ["--headless", "--duration", "2", "--speed", "600", "--port", str(port)],
+            capture_output=True,
+            text=True,
+            timeout=60,
+        )
     finally:
         proc.terminate()
         proc.wait(10)
@@ -169,8 +220,11 @@ def test_demo_bad_arguments(tmp_path, capsys):
     from thermeta.daemon.cli import main
 
     (tmp_path / "demo.db").write_text("")
-    for args, word in ((["--speed", "-3"], "--speed"), (["--duration", "0"], "--duration"),
-                       (["--keep", str(tmp_path)], "--keep")):
+    for args, word in (
+        (["--speed", "-3"], "--speed"),
+        (["--duration", "0"], "--duration"),
+        (["--keep", str(tmp_path)], "--keep"),
+    ):
         assert main(["demo", *args]) == 2
         err = capsys.readouterr().err
         assert word in err and len(err.strip().splitlines()) == 1
@@ -185,10 +239,18 @@ def test_forecast_line_counts_point_and_interval_from_now():
     from thermeta.predictors.result import rfc3339
 
     t_last = 1_764_600_000.0
-    rec = _Recorder(SimpleNamespace(loads=[], t_start=t_last - 3600.0), clock=None, out=None,
-                    echo=False)
-    d = {"state": "approaching", "value_now": -16.0, "threshold": -15.0, "eta_s": 1980.0,
-         "eta_lo_s": 1920.0, "eta_hi_s": 2100.0, "last_reading_at": rfc3339(t_last)}
+    rec = _Recorder(
+        SimpleNamespace(loads=[], t_start=t_last - 3600.0), clock=None, out=None, echo=False
+    )
+    d = {
+        "state": "approaching",
+        "value_now": -16.0,
+        "threshold": -15.0,
+        "eta_s": 1980.0,
+        "eta_lo_s": 1920.0,
+        "eta_hi_s": 2100.0,
+        "last_reading_at": rfc3339(t_last),
+    }
     line = rec._forecast_line(SimpleNamespace(name="yard/box", unit="C"), d, t_last + 120.0)
     assert "(in 31 min; 90 %: 30 min to 33 min)" in line
 
@@ -214,9 +276,10 @@ def test_lines_from_two_threads_stay_whole():
 
     out = Out()
     rec = _Recorder(SimpleNamespace(loads=[], t_start=0.0), clock=None, out=out, echo=True)
-    threads = [threading.Thread(target=lambda tag=tag: [rec._print(f"{tag} line {i}")
-                                                         for i in range(200)])
-               for tag in ("forecast", "ALERT")]
+    threads = [
+        threading.Thread(target=lambda tag=tag: [rec._print(f"{tag} line {i}") for i in range(200)])
+        for tag in ("forecast", "ALERT")
+    ]
     for th in threads:
         th.start()
     for th in threads:
@@ -234,14 +297,26 @@ def test_summary_says_what_the_forecasts_missed():
     from thermeta.daemon.cmd_demo import _print_summary
 
     def item(crossing, n, n_app, ahead=()):
-        return {"true_crossing_t": crossing, "n_forecasts": n, "n_approaching": n_app,
-                "alerts": [], "ahead": list(ahead)}
+        return {
+            "true_crossing_t": crossing,
+            "n_forecasts": n,
+            "n_approaching": n_app,
+            "alerts": [],
+            "ahead": list(ahead),
+        }
 
     one = {"rel_error": 0.05, "inside_90": True}
-    summary = {"sim_end": 5000.0, "n_alerts": 0, "items": {
-        "never-quiet": item(None, 22, 0), "never-loud": item(None, 22, 9),
-        "missed": item(4000.0, 10, 0), "later": item(9000.0, 10, 0),
-        "caught": item(4000.0, 3, 1, [one])}}
+    summary = {
+        "sim_end": 5000.0,
+        "n_alerts": 0,
+        "items": {
+            "never-quiet": item(None, 22, 0),
+            "never-loud": item(None, 22, 9),
+            "missed": item(4000.0, 10, 0),
+            "later": item(9000.0, 10, 0),
+            "caught": item(4000.0, 3, 1, [one]),
+        },
+    }
     out = io.StringIO()
     _print_summary(summary, out)
     lines = {ln.split(":")[0].strip(): ln for ln in out.getvalue().splitlines()}

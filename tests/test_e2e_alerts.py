@@ -47,7 +47,8 @@ def wait_for(cond, timeout: float = 10.0) -> bool:
 
 
 def test_warming_load_warns_at_least_lead_before_crossing_once_then_crossed_then_recovered(
-        broker, tmp_path):
+    broker, tmp_path
+):
     """`approaching` arrives exactly once and at least `lead` (3600 s) before the true crossing,
     then `crossed`, then `recovered`, each posted to the webhook once."""
     receiver = Receiver()
@@ -59,7 +60,7 @@ port = {broker.port}
 client_id = "thermeta-e2e-alerts"
 
 [storage]
-url = "sqlite:///{tmp_path / 'e2e.db'}"
+url = "sqlite:///{tmp_path / "e2e.db"}"
 batch_ms = 20
 
 [fit]
@@ -88,9 +89,24 @@ levels = ["approaching"]
     pub = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id="e2e-sensor")
     pub.connect(broker.host, broker.port)
     pub.loop_start()
-    sub = subprocess.Popen(["mosquitto_sub", "-h", broker.host, "-p", str(broker.port), "-q", "1",
-                            "-t", "thermeta/alert/#", "-v", "-W", "60"],
-                           stdout=subprocess.PIPE, text=True)
+    sub = subprocess.Popen(
+        [
+            "mosquitto_sub",
+            "-h",
+            broker.host,
+            "-p",
+            str(broker.port),
+            "-q",
+            "1",
+            "-t",
+            "thermeta/alert/#",
+            "-v",
+            "-W",
+            "60",
+        ],
+        stdout=subprocess.PIPE,
+        text=True,
+    )
     try:
         svc.start()
         assert wait_for(svc.link.connected.is_set)
@@ -101,8 +117,9 @@ levels = ["approaching"]
             chunk_end = t + STEP_S
             while t < chunk_end:
                 v = truth(t) + rng.normal(0, 0.05)
-                info = pub.publish("fleet/trailer-4/load", json.dumps({"ts": T0 + t, "value": v}),
-                                   qos=1)
+                info = pub.publish(
+                    "fleet/trailer-4/load", json.dumps({"ts": T0 + t, "value": v}), qos=1
+                )
                 info.wait_for_publish(5)
                 n_sent += 1
                 t += DT_S

@@ -20,9 +20,18 @@ from thermeta.daemon.errors import DeliveryError
 from thermeta.daemon.hooks.base import hook_key, make_hook
 
 ALERT = {
-    "id": "trailer-4:1:approaching:1", "item": "trailer-4", "level": "approaching",
-    "reminder": False, "episode": 1, "value_now": -16.4, "threshold": -15.0, "unit": "C",
-    "eta_s": 2520.0, "ambient": 12.0, "time_constant_s": 36000.0, "state": "approaching",
+    "id": "trailer-4:1:approaching:1",
+    "item": "trailer-4",
+    "level": "approaching",
+    "reminder": False,
+    "episode": 1,
+    "value_now": -16.4,
+    "threshold": -15.0,
+    "unit": "C",
+    "eta_s": 2520.0,
+    "ambient": 12.0,
+    "time_constant_s": 36000.0,
+    "state": "approaching",
     "sentence": 'trailer-4 is approaching its limit: "quoted" -16.4 °C now, in 42 min.',
     "caution": "Forecasts support decisions.",
 }
@@ -77,8 +86,9 @@ def test_webhook_posts_the_alert_json_with_token_from_env(receiver, monkeypatch)
     """The default body is the alert as JSON; token_env becomes a Bearer header; the alert id
     rides along for receivers that deduplicate."""
     monkeypatch.setenv("T_HOOK_TOKEN", "s3cret")
-    h = hook(kind="webhook", url=receiver.url, token_env="T_HOOK_TOKEN",
-             headers={"X-Site": "north-yard"})
+    h = hook(
+        kind="webhook", url=receiver.url, token_env="T_HOOK_TOKEN", headers={"X-Site": "north-yard"}
+    )
     h.deliver(ALERT)
     assert len(receiver.posts) == 1
     path, headers, body = receiver.posts[0]
@@ -94,8 +104,13 @@ def test_webhook_body_template_for_a_single_text_field(receiver, monkeypatch):
     """A chat-style template gets the sentence JSON-escaped into one text field, and $token is
     placed where a header asks for it."""
     monkeypatch.setenv("T_CHAT", "abc")
-    h = hook(kind="webhook", url=receiver.url, body_template='{"text": "$item: $sentence"}',
-             token_env="T_CHAT", headers={"Authorization": "Token $token"})
+    h = hook(
+        kind="webhook",
+        url=receiver.url,
+        body_template='{"text": "$item: $sentence"}',
+        token_env="T_CHAT",
+        headers={"Authorization": "Token $token"},
+    )
     h.deliver(ALERT)
     _, headers, body = receiver.posts[0]
     assert json.loads(body) == {"text": f"trailer-4: {ALERT['sentence']}"}
@@ -139,14 +154,21 @@ def test_exec_gets_json_on_stdin_and_env_without_a_shell(tmp_path):
 
 def test_exec_timeout_and_failure_are_delivery_errors(tmp_path):
     """A program past its timeout is stopped; a non-zero exit reports its last stderr line."""
-    slow = hook(kind="exec", command=(sys.executable, "-c", "import time; time.sleep(30)"),
-                timeout_s=0.5)
+    slow = hook(
+        kind="exec", command=(sys.executable, "-c", "import time; time.sleep(30)"), timeout_s=0.5
+    )
     t0 = time.monotonic()
     with pytest.raises(DeliveryError, match="timeout"):
         slow.deliver(ALERT)
     assert time.monotonic() - t0 < 5
-    bad = hook(kind="exec", command=(sys.executable, "-c",
-                                     "import sys; sys.stderr.write('no ticket system\\n'); sys.exit(3)"))
+    bad = hook(
+        kind="exec",
+        command=(
+            sys.executable,
+            "-c",
+            "import sys; sys.stderr.write('no ticket system\\n'); sys.exit(3)",
+        ),
+    )
     with pytest.raises(DeliveryError, match="exited with 3: no ticket system"):
         bad.deliver(ALERT)
     with pytest.raises(DeliveryError, match="cannot run"):
@@ -157,9 +179,26 @@ def test_mqtt_hook_publishes_to_thermeta_alert_item(broker):
     """mosquitto_sub on thermeta/alert/trailer-4 receives the alert JSON."""
     import paho.mqtt.client as mqtt
 
-    sub = subprocess.Popen(["mosquitto_sub", "-h", broker.host, "-p", str(broker.port), "-q", "1",
-                            "-t", "thermeta/alert/#", "-C", "1", "-W", "10", "-v"],
-                           stdout=subprocess.PIPE, text=True)
+    sub = subprocess.Popen(
+        [
+            "mosquitto_sub",
+            "-h",
+            broker.host,
+            "-p",
+            str(broker.port),
+            "-q",
+            "1",
+            "-t",
+            "thermeta/alert/#",
+            "-C",
+            "1",
+            "-W",
+            "10",
+            "-v",
+        ],
+        stdout=subprocess.PIPE,
+        text=True,
+    )
     client = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id="t-hook")
     client.connect(broker.host, broker.port)
     client.loop_start()
@@ -180,8 +219,9 @@ def test_mqtt_hook_publishes_to_thermeta_alert_item(broker):
 
 def test_hook_filters_and_keys():
     """items (with * patterns) and levels limit a hook; keys are the name or kind-position."""
-    h = make_hook(2, HookConfig(kind="webhook", url="http://x", items=("trailer-*",),
-                                levels=("crossed",)))
+    h = make_hook(
+        2, HookConfig(kind="webhook", url="http://x", items=("trailer-*",), levels=("crossed",))
+    )
     assert h.key == "webhook-3"
     assert h.wants(dict(ALERT, level="crossed"))
     assert not h.wants(ALERT)
@@ -192,10 +232,28 @@ def test_hook_filters_and_keys():
 # -- email ------------------------------------------------------------------------------------
 def _cert(tmp_path: Path) -> tuple[Path, Path]:
     key, crt = tmp_path / "key.pem", tmp_path / "cert.pem"
-    subprocess.run(["openssl", "req", "-x509", "-newkey", "rsa:2048", "-nodes", "-keyout", str(key),
-                    "-out", str(crt), "-days", "1", "-subj", "/CN=localhost",
-                    "-addext", "subjectAltName=DNS:localhost,IP:127.0.0.1"],
-                   check=True, capture_output=True)
+    subprocess.run(
+        [
+            "openssl",
+            "req",
+            "-x509",
+            "-newkey",
+            "rsa:2048",
+            "-nodes",
+            "-keyout",
+            str(key),
+            "-out",
+            str(crt),
+            "-days",
+            "1",
+            "-subj",
+            "/CN=localhost",
+            "-addext",
+            "subjectAltName=DNS:localhost,IP:127.0.0.1",
+        ],
+        check=True,
+        capture_output=True,
+    )
     return key, crt
 
 
@@ -256,15 +314,29 @@ def test_email_starttls_login_and_png_attachment(tmp_path, monkeypatch):
     tls.load_cert_chain(crt, key)
     inbox = Inbox()
     port = free_port()
-    ctl = Controller(inbox, hostname="127.0.0.1", port=port, tls_context=tls, require_starttls=True,
-                     authenticator=_auth(inbox), auth_require_tls=True)
+    ctl = Controller(
+        inbox,
+        hostname="127.0.0.1",
+        port=port,
+        tls_context=tls,
+        require_starttls=True,
+        authenticator=_auth(inbox),
+        auth_require_tls=True,
+    )
     ctl.start()
     try:
         png = _png_of_a_real_forecast(tmp_path)
         assert png[:8] == b"\x89PNG\r\n\x1a\n"
-        cfg = HookConfig(kind="email", host="127.0.0.1", port=port, tls="starttls",
-                         username_env="T_SMTP_USER", password_env="T_SMTP_PASS",
-                         from_addr="thermeta@yard.example", to=("ops@yard.example",))
+        cfg = HookConfig(
+            kind="email",
+            host="127.0.0.1",
+            port=port,
+            tls="starttls",
+            username_env="T_SMTP_USER",
+            password_env="T_SMTP_PASS",
+            from_addr="thermeta@yard.example",
+            to=("ops@yard.example",),
+        )
         make_hook(0, cfg, png_for=lambda a: png).deliver(ALERT)
     finally:
         ctl.stop()
@@ -295,8 +367,14 @@ def test_email_implicit_tls(tmp_path, monkeypatch):
     ctl = Controller(inbox, hostname="127.0.0.1", port=port, ssl_context=tls)
     ctl.start()
     try:
-        cfg = HookConfig(kind="email", host="127.0.0.1", port=port, tls="implicit",
-                         from_addr="thermeta@yard.example", to=("a@x.example", "b@x.example"))
+        cfg = HookConfig(
+            kind="email",
+            host="127.0.0.1",
+            port=port,
+            tls="implicit",
+            from_addr="thermeta@yard.example",
+            to=("a@x.example", "b@x.example"),
+        )
         make_hook(0, cfg).deliver(ALERT)
     finally:
         ctl.stop()
@@ -319,8 +397,11 @@ def test_email_through_the_alert_service_attaches_the_items_curve(tmp_path):
     port = free_port()
     ctl = Controller(inbox, hostname="127.0.0.1", port=port)
     ctl.start()
-    path = write_config(tmp_path, f'[[hook]]\nkind = "email"\nhost = "127.0.0.1"\nport = {port}\n'
-                                  'tls = "none"\nfrom = "t@yard.example"\nto = "ops@yard.example"\n')
+    path = write_config(
+        tmp_path,
+        f'[[hook]]\nkind = "email"\nhost = "127.0.0.1"\nport = {port}\n'
+        'tls = "none"\nfrom = "t@yard.example"\nto = "ops@yard.example"\n',
+    )
     cfg = load_config(path)
     png = _png_of_a_real_forecast(tmp_path)  # same readings, written to this store below
     store = Store(cfg.storage.url)
@@ -334,8 +415,14 @@ def test_email_through_the_alert_service_attaches_the_items_curve(tmp_path):
     svc = AlertService(cfg, store, clock, poll_s=0.05)
     svc.start()
     try:
-        base = {"item": "trailer-4", "threshold": -15.0, "unit": "C", "fit_ok": True,
-                "last_reading_at": t_last, "warnings": []}
+        base = {
+            "item": "trailer-4",
+            "threshold": -15.0,
+            "unit": "C",
+            "fit_ok": True,
+            "last_reading_at": t_last,
+            "warnings": [],
+        }
         svc.on_forecast(cfg.items[0], dict(base, state="steady", value_now=-16.0), None)
         svc.on_forecast(cfg.items[0], dict(base, state="crossed", value_now=-14.5), None)
         assert wait_for(lambda: len(inbox.messages) == 1, 20)

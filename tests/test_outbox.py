@@ -72,11 +72,17 @@ def test_outbox_on_postgresql(tmp_path, pg_url):
     queue_then_deliver_once(tmp_path, url=pg_url, item=f"trailer-{tag}", hook=f"hook-{tag}")
 
 
-def queue_then_deliver_once(tmp_path, url: str | None = None, item: str = "trailer-4",
-                            hook: str = "webhook-1") -> None:
+def queue_then_deliver_once(
+    tmp_path, url: str | None = None, item: str = "trailer-4", hook: str = "webhook-1"
+) -> None:
     port = free_port()
-    path = write_config(tmp_path, f'[[hook]]\nkind = "webhook"\nname = "{hook}"\n'
-                                  f'url = "http://127.0.0.1:{port}/a"\ntimeout = 2\n', url, item)
+    path = write_config(
+        tmp_path,
+        f'[[hook]]\nkind = "webhook"\nname = "{hook}"\n'
+        f'url = "http://127.0.0.1:{port}/a"\ntimeout = 2\n',
+        url,
+        item,
+    )
     cfg = load_config(path)
     item_cfg = cfg.items[0]
     store = Store(cfg.storage.url)
@@ -85,9 +91,16 @@ def queue_then_deliver_once(tmp_path, url: str | None = None, item: str = "trail
     opts = {"base_s": 0.05, "max_s": 0.2, "poll_s": 0.05, "attach_png": False}
     svc = AlertService(cfg, store, clock, **opts)
     svc.start()
-    feed(svc, clock, item_cfg, [(3000, fc_at(3000))]
-         + [(3600, fc_at(3600, value=THR + 1, state="crossed")),
-            (4300, fc_at(4300, value=THR + 1, state="crossed"))])
+    feed(
+        svc,
+        clock,
+        item_cfg,
+        [(3000, fc_at(3000))]
+        + [
+            (3600, fc_at(3600, value=THR + 1, state="crossed")),
+            (4300, fc_at(4300, value=THR + 1, state="crossed")),
+        ],
+    )
     astore = AlertStore(store)
     assert [e["level"] for e in astore.events(item)] == ["approaching", "crossed", "crossed"]
     mine = lambda: [r for r in astore.outbox_rows() if r["hook"] == hook]
@@ -127,8 +140,10 @@ def test_a_slow_hook_never_delays_the_refit_thread(tmp_path):
     and the alert is still delivered by the hook's own worker."""
     out = tmp_path / "done"
     # Written aside and renamed, so the test never reads a file the program is still writing.
-    prog = (f"import os, sys, time; time.sleep(3); data = sys.stdin.read(); "
-            f"open({str(out) + '.part'!r}, 'w').write(data); os.replace({str(out) + '.part'!r}, {str(out)!r})")
+    prog = (
+        f"import os, sys, time; time.sleep(3); data = sys.stdin.read(); "
+        f"open({str(out) + '.part'!r}, 'w').write(data); os.replace({str(out) + '.part'!r}, {str(out)!r})"
+    )
     cmd = json.dumps([sys.executable, "-c", prog])
     path = write_config(tmp_path, f'[[hook]]\nkind = "exec"\ncommand = {cmd}\ntimeout = 20\n')
     cfg = load_config(path)
@@ -139,8 +154,15 @@ def test_a_slow_hook_never_delays_the_refit_thread(tmp_path):
     svc.start()
     try:
         t0 = time.monotonic()
-        feed(svc, clock, cfg.items[0], [(-60, fc_at(0, value=THR - 2, state="steady")),
-                                         (0, fc_at(0, value=THR + 1, state="crossed"))])
+        feed(
+            svc,
+            clock,
+            cfg.items[0],
+            [
+                (-60, fc_at(0, value=THR - 2, state="steady")),
+                (0, fc_at(0, value=THR + 1, state="crossed")),
+            ],
+        )
         took = time.monotonic() - t0
         assert took < 0.5
         assert wait_for(out.exists, 15)

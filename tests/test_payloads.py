@@ -5,7 +5,6 @@ from __future__ import annotations
 import json
 
 import pytest
-
 from thermeta.daemon.payloads import Limits, PayloadError, excerpt, parse_payload
 
 NOW = 1_800_000_000.0  # 2027-01-15T08:00:00Z
@@ -17,7 +16,9 @@ def test_json_object_with_epoch_and_rfc3339_times():
     assert (r.ts, r.value_c, r.receipt_ts) == (1799999990.0, 4.25, False)
     (r,) = parse_payload(b'{"ts": "2027-01-15T07:59:00Z", "value": 41, "unit": "F"}', NOW)
     assert r.ts == NOW - 60
-    assert r.value_c == pytest.approx(5.0)  # 41 F = 5 C (FDA Food Code cold holding pair, from memory)
+    assert r.value_c == pytest.approx(
+        5.0
+    )  # 41 F = 5 C (FDA Food Code cold holding pair, from memory)
     (r,) = parse_payload(b'{"value": 278.15, "unit": "K"}', NOW)
     assert r.value_c == pytest.approx(5.0) and r.receipt_ts and r.ts == NOW
 
@@ -63,8 +64,14 @@ def test_senml_pack_base_fields_and_relative_time():
         (b'{"value": 1, "unit": "R"}', "unit must be C, F or K, got 'R'"),
         (b'{"value": 999}', "value 999 degC outside the plausible range [-100, 200]"),
         (b'{"ts": 1800003600, "value": 1}', "timestamp 3600 s in the future"),
-        (b'{"ts": 1800000000000, "value": 1}', "timestamp 1800000000000 is not plausible epoch seconds"),
-        (b'{"ts": "yesterday", "value": 1}', "ts: unparseable time 'yesterday' (want epoch seconds or RFC 3339)"),
+        (
+            b'{"ts": 1800000000000, "value": 1}',
+            "timestamp 1800000000000 is not plausible epoch seconds",
+        ),
+        (
+            b'{"ts": "yesterday", "value": 1}',
+            "ts: unparseable time 'yesterday' (want epoch seconds or RFC 3339)",
+        ),
         (b'{"value": 1', "invalid JSON: Expecting ',' delimiter"),
         (b'[{"u": "%RH", "v": 50}]', "SenML pack has no temperature record (unit Cel or K)"),
         (b"[3]", "SenML record 0 is not an object"),

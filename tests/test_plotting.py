@@ -41,8 +41,14 @@ def _case(name, probe, hours, mode="measured"):
     elif mode == "known":
         kw = dict(ambient=p.spec.ambient_known)
     series = P._Series(p.t[sel], p.y[sel], amb_t, amb_y)
-    fc = forecast(series.t, series.y, p.spec.threshold, model=p.spec.model,
-                  window_s=p.spec.window_s or 7200.0, **kw)
+    fc = forecast(
+        series.t,
+        series.y,
+        p.spec.threshold,
+        model=p.spec.model,
+        window_s=p.spec.window_s or 7200.0,
+        **kw,
+    )
     return sc, p, series, fc
 
 
@@ -70,12 +76,15 @@ def test_png_size_and_the_parts_of_the_figure():
     assert "°C" in ax.get_ylabel() and "local time" in ax.get_xlabel()
 
 
-@pytest.mark.parametrize("case", [
-    ("wort-chill", "copperbeck/brewhouse/batch-0417/wort", 0.3, "known"),
-    ("reefer-power-loss", "eastpier/reefer-12/load-top", 1.0, "measured"),
-    ("blast-chill-rice", "riverside-canteen/blast-1/tray-c", 1.0, "measured"),
-    ("frozen-trailer", "route9/trailer-4/carton-large", 3.0, "measured"),
-])
+@pytest.mark.parametrize(
+    "case",
+    [
+        ("wort-chill", "copperbeck/brewhouse/batch-0417/wort", 0.3, "known"),
+        ("reefer-power-loss", "eastpier/reefer-12/load-top", 1.0, "measured"),
+        ("blast-chill-rice", "riverside-canteen/blast-1/tray-c", 1.0, "measured"),
+        ("frozen-trailer", "route9/trailer-4/carton-large", 3.0, "measured"),
+    ],
+)
 def test_drawn_curve_crosses_the_threshold_at_the_forecast_eta(case):
     """The drawn forecast curve (lumped known, measured air, and the slab centre probe) meets the
     threshold within 2 % of the forecast's ETA, and the band meets it at the interval's ends."""
@@ -120,8 +129,11 @@ def test_times_are_local_time():
     try:
         _, _, series, fc = _case("wort-chill", "copperbeck/brewhouse/batch-0417/wort", 0.3, "known")
         fig = P.forecast_figure(series, fc)
-        want = datetime.fromtimestamp(fc.crossing_t, tz=UTC).astimezone(
-            ZoneInfo("Asia/Kolkata")).strftime("%H:%M")
+        want = (
+            datetime.fromtimestamp(fc.crossing_t, tz=UTC)
+            .astimezone(ZoneInfo("Asia/Kolkata"))
+            .strftime("%H:%M")
+        )
         (mark,) = _by_gid(fig, "crossing")
         assert want in mark.get_label()
         assert "IST" in fig.axes[0].get_xlabel()
@@ -144,9 +156,24 @@ def test_forecast_cli_writes_the_plot(tmp_path):
     csv = tmp_path / "tray.csv"
     csv.write_text("time,value\n" + "".join(f"{t},{y}\n" for t, y in zip(p.t[sel], p.y[sel])))
     out = tmp_path / "tray.png"
-    r = subprocess.run([sys.executable, "-m", "thermeta.daemon.cli", "forecast", str(csv),
-                        "--threshold", "21", "--ambient", "-6", "--plot", str(out)],
-                       capture_output=True, text=True, timeout=120)
+    r = subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "thermeta.daemon.cli",
+            "forecast",
+            str(csv),
+            "--threshold",
+            "21",
+            "--ambient",
+            "-6",
+            "--plot",
+            str(out),
+        ],
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
     assert r.returncode == 0, r.stderr
     assert _png_size(out.read_bytes()) == (P.WIDTH_PX, P.HEIGHT_PX)
 
@@ -165,14 +192,30 @@ def _store_with_reefer(tmp_path, unit="C"):
     store = Store(url)
     store.create_all()
     cut = sc.t_start + 1.5 * 3600
-    for name, stored in (("eastpier/reefer-12/load-top", "eastpier/reefer-12/load-top"),
-                         ("eastpier/reefer-12/air", "eastpier/reefer-12/load-top.ambient")):
+    for name, stored in (
+        ("eastpier/reefer-12/load-top", "eastpier/reefer-12/load-top"),
+        ("eastpier/reefer-12/air", "eastpier/reefer-12/load-top.ambient"),
+    ):
         pr = sc.probe(name)
-        iid = store.ensure_item(stored, kind="ambient" if "ambient" in stored else "load",
-                                unit=unit, topic=pr.spec.topic)
+        iid = store.ensure_item(
+            stored,
+            kind="ambient" if "ambient" in stored else "load",
+            unit=unit,
+            topic=pr.spec.topic,
+        )
         sel = pr.t <= cut
-        store.write_batch([{"item_id": iid, "ts": float(t), "value_c": float(v), "flags": 0,
-                            "received_at": float(t)} for t, v in zip(pr.t[sel], pr.y[sel])])
+        store.write_batch(
+            [
+                {
+                    "item_id": iid,
+                    "ts": float(t),
+                    "value_c": float(v),
+                    "flags": 0,
+                    "received_at": float(t),
+                }
+                for t, v in zip(pr.t[sel], pr.y[sel])
+            ]
+        )
     return store, cfg_path
 
 
@@ -201,12 +244,20 @@ def test_plot_command(tmp_path):
     store.close()
     out = tmp_path / "item.png"
     run = [sys.executable, "-m", "thermeta.daemon.cli", "plot"]
-    r = subprocess.run(run + ["eastpier/reefer-12/load-top", "--config", str(cfg_path), "--out",
-                              str(out)], capture_output=True, text=True, timeout=120)
+    r = subprocess.run(
+        run + ["eastpier/reefer-12/load-top", "--config", str(cfg_path), "--out", str(out)],
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
     assert r.returncode == 0, r.stderr
     assert _png_size(out.read_bytes()) == (P.WIDTH_PX, P.HEIGHT_PX)
-    bad = subprocess.run(run + ["no-such-item", "--config", str(cfg_path), "--out", str(out)],
-                         capture_output=True, text=True, timeout=120)
+    bad = subprocess.run(
+        run + ["no-such-item", "--config", str(cfg_path), "--out", str(out)],
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
     assert bad.returncode == 2 and "no-such-item" in bad.stderr
     assert len(bad.stderr.strip().splitlines()) == 1
 

@@ -26,20 +26,29 @@ def ivp_crossing(now: float, amb: float, k: float, thr: float) -> float:
     """Seconds until dT/dt = -k (T - Ta), T(0) = now, reaches thr (solve_ivp with an event)."""
     event = lambda s, T: T[0] - thr  # noqa: E731
     event.terminal = True
-    sol = solve_ivp(lambda s, T: -k * (T - amb), (0.0, 50.0 / k), [now], events=event,
-                    rtol=1e-10, atol=1e-12, method="DOP853")
+    sol = solve_ivp(
+        lambda s, T: -k * (T - amb),
+        (0.0, 50.0 / k),
+        [now],
+        events=event,
+        rtol=1e-10,
+        atol=1e-12,
+        method="DOP853",
+    )
     return float(sol.t_events[0][0])
 
 
-@pytest.mark.parametrize("now,slope,k,thr", [(3.0, 8e-4, 1 / 18000, 8.0),
-                                             (60.0, -0.05, 1 / 900, 20.0),
-                                             (2.0, 1e-3, 1 / 3000, 4.5)])
+@pytest.mark.parametrize(
+    "now,slope,k,thr",
+    [(3.0, 8e-4, 1 / 18000, 8.0), (60.0, -0.05, 1 / 900, 20.0), (2.0, 1e-3, 1 / 3000, 4.5)],
+)
 def test_shrunk_eta_is_the_lumped_crossing_of_the_present_state(now, slope, k, thr):
     """The curve through the present value and slope with rate k (ambient now + slope / k)
     crosses thr when the solve_ivp trajectory does; k = 0 is the tangent."""
     amb = now + slope / k
-    assert shrunk_eta(now, slope, k, thr, None) == pytest.approx(ivp_crossing(now, amb, k, thr),
-                                                                 rel=1e-7)
+    assert shrunk_eta(now, slope, k, thr, None) == pytest.approx(
+        ivp_crossing(now, amb, k, thr), rel=1e-7
+    )
     assert shrunk_eta(now, slope, 0.0, thr, None) == pytest.approx((thr - now) / slope)
 
 
@@ -93,8 +102,9 @@ def test_shrinking_brings_weak_crossings_forward_and_closer_to_the_truth():
         y = np.round((newton(x, T0, k, amb) + rng.normal(0, 0.15, x.size)) / 0.1) * 0.1
         fc = forecast(x + T0_EPOCH, y, thr, limit="upper")
         # the forecast's own fit (after cleaning and the robust refit), unshrunk
-        raw = crossing_eta(fc.params["value_fit_now"], fc.ambient, fc.k_per_s, thr,
-                           limit="upper")[0]
+        raw = crossing_eta(fc.params["value_fit_now"], fc.ambient, fc.k_per_s, thr, limit="upper")[
+            0
+        ]
         if fc.eta_s is not None:
             assert raw is not None and fc.eta_s <= raw * (1 + 1e-9)
             assert fc.eta_lo_s <= fc.eta_s and (fc.eta_hi_s is None or fc.eta_s <= fc.eta_hi_s)

@@ -15,9 +15,18 @@ from thermeta.predictors.synth import Corruption
 def _sphere_case(seed: int = 3):
     from thermeta.predictors.synth_conduction import core_probe
 
-    return core_probe(seed, geometry="sphere", biot=2.0, a_per_s=6e-5, t_i=3.0, ambient=25.0,
-                      threshold=8.0, seen_fraction=0.8, dt_s=60.0,
-                      corruption=Corruption(noise=0.05, quantum=0.1))
+    return core_probe(
+        seed,
+        geometry="sphere",
+        biot=2.0,
+        a_per_s=6e-5,
+        t_i=3.0,
+        ambient=25.0,
+        threshold=8.0,
+        seen_fraction=0.8,
+        dt_s=60.0,
+        corruption=Corruption(noise=0.05, quantum=0.1),
+    )
 
 
 def test_sphere_model_reports_biot_and_lag():
@@ -38,8 +47,16 @@ def test_sphere_model_reports_biot_and_lag():
 def test_auto_prefers_lumped_on_a_newton_curve_and_conduction_on_a_lagging_probe():
     """model="auto" keeps the lumped model for a plain exponential and picks a core model for a
     centre probe whose early readings lag (lower AICc)."""
-    s = synth.lumped(2, T0=3, ambient=25, k_per_s=1 / 9000, threshold=8, duration_s=1800,
-                     dt_s=60, corruption=Corruption(noise=0.05, quantum=0.1))
+    s = synth.lumped(
+        2,
+        T0=3,
+        ambient=25,
+        k_per_s=1 / 9000,
+        threshold=8,
+        duration_s=1800,
+        dt_s=60,
+        corruption=Corruption(noise=0.05, quantum=0.1),
+    )
     fa = forecast(s.t, s.y, 8.0, model="auto", ambient=25.0)
     assert fa.model == "lumped"
     sp = _sphere_case()
@@ -65,9 +82,18 @@ def test_auto_picks_the_true_shape_late_in_a_clear_curve(geometry):
     differ; every other model's AICc is then higher, and the ETA lands on the truth."""
     from thermeta.predictors.synth_conduction import core_probe
 
-    s = core_probe(11, geometry=geometry, biot=4.0, a_per_s=1e-4, t_i=70.0, ambient=0.0,
-                   threshold=21.0, seen_fraction=0.8, dt_s=30.0,
-                   corruption=Corruption(noise=0.05, quantum=0.1))
+    s = core_probe(
+        11,
+        geometry=geometry,
+        biot=4.0,
+        a_per_s=1e-4,
+        t_i=70.0,
+        ambient=0.0,
+        threshold=21.0,
+        seen_fraction=0.8,
+        dt_s=30.0,
+        corruption=Corruption(noise=0.05, quantum=0.1),
+    )
     fc = forecast(s.t, s.y, 21.0, model="auto", ambient=0.0, limit="lower")
     assert fc.ok and fc.model == geometry
     note = next(w for w in fc.warnings if w.startswith("model chosen by AICc"))

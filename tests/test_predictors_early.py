@@ -14,13 +14,28 @@ T0_EPOCH = 1_764_600_000.0
 
 def newton(t_rel: np.ndarray, T0: float, k: float, ambient: float) -> np.ndarray:
     """dT/dt = -k (T - Ta) integrated by scipy.integrate.solve_ivp (rtol 1e-10)."""
-    sol = solve_ivp(lambda s, T: -k * (T - ambient), (0.0, float(t_rel[-1])), [T0], t_eval=t_rel,
-                    rtol=1e-10, atol=1e-12, method="DOP853")
+    sol = solve_ivp(
+        lambda s, T: -k * (T - ambient),
+        (0.0, float(t_rel[-1])),
+        [T0],
+        t_eval=t_rel,
+        rtol=1e-10,
+        atol=1e-12,
+        method="DOP853",
+    )
     return sol.y[0]
 
 
-def thermostat(duration_s: float, dt_s: float, low: float, high: float, warm: float, coil: float,
-               k: float, drift_per_s: float = 0.0) -> tuple[np.ndarray, np.ndarray]:
+def thermostat(
+    duration_s: float,
+    dt_s: float,
+    low: float,
+    high: float,
+    warm: float,
+    coil: float,
+    k: float,
+    drift_per_s: float = 0.0,
+) -> tuple[np.ndarray, np.ndarray]:
     """A cold room's air under an on/off thermostat: dT/dt = -k (T - coil) with the compressor on
     until T <= low, -k (T - warm) off until T >= high, integrated piecewise by solve_ivp with its
     terminal events at the set points; sampled every dt_s.  drift_per_s moves both set points
@@ -36,8 +51,16 @@ def thermostat(duration_s: float, dt_s: float, low: float, high: float, warm: fl
             return y[0] - edge
 
         hit.terminal = True
-        sol = solve_ivp(lambda s, y, ta=ta: -k * (y - ta), (t, duration_s), [T], events=hit,
-                        dense_output=True, rtol=1e-9, atol=1e-11, max_step=60.0)
+        sol = solve_ivp(
+            lambda s, y, ta=ta: -k * (y - ta),
+            (t, duration_s),
+            [T],
+            events=hit,
+            dense_output=True,
+            rtol=1e-9,
+            atol=1e-11,
+            max_step=60.0,
+        )
         end = sol.t_events[0][0] if sol.t_events[0].size else duration_s
         sel = (t_out >= t) & (t_out < end)
         ts.append(t_out[sel])
@@ -96,7 +119,9 @@ def test_healthy_thermostat_sawtooth_forecasts_no_crossing(period_hint_k):
             assert fc.ok, fc.reason
             etas.append(fc.eta_s)
     assert all(e is None for e in etas)
-    assert fc.model == "lumped" and fc.pattern == "cycling" and any("cycle" in w for w in fc.warnings)
+    assert (
+        fc.model == "lumped" and fc.pattern == "cycling" and any("cycle" in w for w in fc.warnings)
+    )
 
 
 def test_thermostat_losing_ground_gets_a_crossing():
@@ -125,8 +150,15 @@ def test_power_loss_with_the_air_heading_unclear_is_forecast_from_the_middle():
         return u[1] - thr
 
     crossed.terminal = True
-    sol = solve_ivp(lambda s, u: [-ka * (u[0] - out), -k * (u[1] - u[0])], (0.0, 1e6), [T0, T0],
-                    events=crossed, rtol=1e-10, atol=1e-12, dense_output=True)
+    sol = solve_ivp(
+        lambda s, u: [-ka * (u[0] - out), -k * (u[1] - u[0])],
+        (0.0, 1e6),
+        [T0, T0],
+        events=crossed,
+        rtol=1e-10,
+        atol=1e-12,
+        dense_output=True,
+    )
     t_cross = float(sol.t_events[0][0])
     x = np.arange(0, 0.25 * t_cross, 180.0)
     air_true, load_true = sol.sol(x)
@@ -135,8 +167,7 @@ def test_power_loss_with_the_air_heading_unclear_is_forecast_from_the_middle():
         rng = np.random.default_rng(seed)
         air = np.round((air_true + rng.normal(0, 0.1, x.size)) / 0.1) * 0.1
         load = np.round((load_true + rng.normal(0, 0.1, x.size)) / 0.1) * 0.1
-        fc = forecast(x + T0_EPOCH, load, thr, ambient_t=x + T0_EPOCH, ambient_y=air,
-                      limit="upper")
+        fc = forecast(x + T0_EPOCH, load, thr, ambient_t=x + T0_EPOCH, ambient_y=air, limit="upper")
         if not any("not clear yet" in w for w in fc.warnings):
             continue
         unclear += 1

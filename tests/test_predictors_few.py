@@ -17,8 +17,15 @@ T0_EPOCH = 1_764_600_000.0
 
 def newton(t_rel: np.ndarray, T0: float, k: float, ambient: float) -> np.ndarray:
     """dT/dt = -k (T - Ta) integrated by scipy.integrate.solve_ivp (rtol 1e-10)."""
-    sol = solve_ivp(lambda s, T: -k * (T - ambient), (0.0, float(t_rel[-1])), [T0], t_eval=t_rel,
-                    rtol=1e-10, atol=1e-12, method="DOP853")
+    sol = solve_ivp(
+        lambda s, T: -k * (T - ambient),
+        (0.0, float(t_rel[-1])),
+        [T0],
+        t_eval=t_rel,
+        rtol=1e-10,
+        atol=1e-12,
+        method="DOP853",
+    )
     return sol.y[0]
 
 
@@ -29,8 +36,9 @@ def newton_crossing(T0: float, k: float, ambient: float, thr: float) -> float:
         return T[0] - thr
 
     hit.terminal = True
-    sol = solve_ivp(lambda s, T: -k * (T - ambient), (0.0, 1e7), [T0], events=hit, rtol=1e-10,
-                    atol=1e-12)
+    sol = solve_ivp(
+        lambda s, T: -k * (T - ambient), (0.0, 1e7), [T0], events=hit, rtol=1e-10, atol=1e-12
+    )
     return float(sol.t_events[0][0])
 
 
@@ -117,16 +125,24 @@ def test_assumed_scatter_is_the_floor_and_the_quantisation():
     assert few_quantum(np.array([2.0, 4.0])) == 1.0
     assert few_quantum(np.array([2.33, 4.17])) == 0.01
     assert assumed_scatter(np.array([2.3, 4.1])) == pytest.approx(
-        math.sqrt(PROBE_SCATTER_SD**2 + 0.01 / 12))
+        math.sqrt(PROBE_SCATTER_SD**2 + 0.01 / 12)
+    )
     assert assumed_scatter(np.array([2.3, 4.1]), noise_sd=0.4) == pytest.approx(
-        math.sqrt(0.16 + 0.01 / 12))
+        math.sqrt(0.16 + 0.01 / 12)
+    )
 
 
 def reefer(x: np.ndarray, ka: float, k: float, out: float, T0: float, A0: float):
     """The air toward the outside and the load toward the air, dA/dt = -ka (A - Tout),
     dT/dt = -k (T - A), by solve_ivp; returns the air, the load and a crossing finder."""
-    sol = solve_ivp(lambda s, u: [-ka * (u[0] - out), -k * (u[1] - u[0])], (0.0, 1e6), [A0, T0],
-                    rtol=1e-10, atol=1e-12, dense_output=True)
+    sol = solve_ivp(
+        lambda s, u: [-ka * (u[0] - out), -k * (u[1] - u[0])],
+        (0.0, 1e6),
+        [A0, T0],
+        rtol=1e-10,
+        atol=1e-12,
+        dense_output=True,
+    )
     air, load = sol.sol(x)
     return air, load, sol
 
@@ -152,8 +168,9 @@ def test_measured_air_with_few_readings_covers_the_crossing(n_readings):
         x -= x[0]
         air, load, sol = reefer(x, ka, k, out, T0, T0)
         q = lambda v: np.round((v + rng.normal(0, 0.1, v.size)) / 0.1) * 0.1  # noqa: E731
-        fc = forecast(x + T0_EPOCH, q(load), 8.0, ambient_t=x + T0_EPOCH, ambient_y=q(air),
-                      limit="upper")
+        fc = forecast(
+            x + T0_EPOCH, q(load), 8.0, ambient_t=x + T0_EPOCH, ambient_y=q(air), limit="upper"
+        )
         assert fc.ok and fc.eta_lo_s is not None and fc.eta_lo_s > 0, fc.warnings
         true_eta = reefer_crossing(sol, 8.0) - x[-1]
         hi = math.inf if fc.eta_hi_s is None else fc.eta_hi_s
@@ -223,15 +240,34 @@ def test_four_readings_of_a_core_probe_get_a_core_curve_with_an_honest_interval(
     for seed in range(n):
         L, bi = rng.uniform(0.03, 0.05), rng.uniform(1.0, 3.0)
         a = 1.4e-7 / L**2
-        probe = core_probe(seed, geometry="slab", biot=bi, a_per_s=a, t_i=70.0, ambient=-3.0,
-                           threshold=21.0, seen_fraction=1.0, dt_s=60.0)
+        probe = core_probe(
+            seed,
+            geometry="slab",
+            biot=bi,
+            a_per_s=a,
+            t_i=70.0,
+            ambient=-3.0,
+            threshold=21.0,
+            seen_fraction=1.0,
+            dt_s=60.0,
+        )
         cross = probe.crossing_t_true - probe.t.min()
-        s = core_probe(seed, geometry="slab", biot=bi, a_per_s=a, t_i=70.0, ambient=-3.0,
-                       threshold=21.0, seen_fraction=0.3, dt_s=0.3 * cross / 3.5,
-                       corruption=Corruption(noise=0.1, quantum=0.1))
+        s = core_probe(
+            seed,
+            geometry="slab",
+            biot=bi,
+            a_per_s=a,
+            t_i=70.0,
+            ambient=-3.0,
+            threshold=21.0,
+            seen_fraction=0.3,
+            dt_s=0.3 * cross / 3.5,
+            corruption=Corruption(noise=0.1, quantum=0.1),
+        )
         t, y = np.sort(s.t)[:4], s.y[np.argsort(s.t)][:4]
-        fc = forecast(t, y, 21.0, ambient_t=t, ambient_y=np.full(4, -3.0), model="slab",
-                      limit="lower")
+        fc = forecast(
+            t, y, 21.0, ambient_t=t, ambient_y=np.full(4, -3.0), model="slab", limit="lower"
+        )
         assert fc.ok and fc.model == "slab" and fc.eta_s is not None, fc.reason
         true_eta = s.crossing_t_true - t.max()
         hi = math.inf if fc.eta_hi_s is None else fc.eta_hi_s

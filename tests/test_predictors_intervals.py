@@ -35,8 +35,16 @@ def _case(seed: int):
         kw = {"ambient": amb, "ambient_uncertainty": 0.0}
     k = 1 / tau
     dur = r.uniform(0.35, 0.65) * synth.lumped_crossing_s(T0, amb, k, thr)
-    s = synth.lumped(seed, T0=T0, ambient=amb, k_per_s=k, threshold=thr, duration_s=dur,
-                     dt_s=r.uniform(10, 60), corruption=Corruption(noise=r.uniform(0.05, 0.3)))
+    s = synth.lumped(
+        seed,
+        T0=T0,
+        ambient=amb,
+        k_per_s=k,
+        threshold=thr,
+        duration_s=dur,
+        dt_s=r.uniform(10, 60),
+        corruption=Corruption(noise=r.uniform(0.05, 0.3)),
+    )
     return s, kw
 
 
@@ -66,8 +74,16 @@ def test_known_ambient_off_by_two_is_covered():
         r = np.random.default_rng(900 + seed)
         T0, amb, tau = r.uniform(0.5, 4.5), r.uniform(21, 33), r.uniform(2.5, 9) * 3600
         dur = r.uniform(0.35, 0.65) * synth.lumped_crossing_s(T0, amb, 1 / tau, 8.0)
-        s = synth.lumped(seed, T0=T0, ambient=amb, k_per_s=1 / tau, threshold=8.0, duration_s=dur,
-                         dt_s=60, corruption=Corruption(noise=0.1, quantum=0.1))
+        s = synth.lumped(
+            seed,
+            T0=T0,
+            ambient=amb,
+            k_per_s=1 / tau,
+            threshold=8.0,
+            duration_s=dur,
+            dt_s=60,
+            corruption=Corruption(noise=0.1, quantum=0.1),
+        )
         given = amb + (2.0 if seed % 2 else -2.0)
         for out, sd in ((cov, 2.5), (cov_exact, 0.0)):
             fc = forecast(s.t, s.y, 8.0, ambient=given, ambient_uncertainty=sd)
@@ -87,8 +103,15 @@ def test_measured_response_matches_solve_ivp():
     k, T0 = 1 / 15000, 3.0
     P, G = response(np.array([k]), s, air(s))
     ours = T0 * P[0] + G[0]
-    ref = solve_ivp(lambda x, T: -k * (T - air(x)), (0, s[-1]), [T0], t_eval=s, rtol=1e-10,
-                    atol=1e-12, method="DOP853").y[0]
+    ref = solve_ivp(
+        lambda x, T: -k * (T - air(x)),
+        (0, s[-1]),
+        [T0],
+        t_eval=s,
+        rtol=1e-10,
+        atol=1e-12,
+        method="DOP853",
+    ).y[0]
     # linear interpolation of the air between readings is the only approximation
     assert np.max(np.abs(ours - ref)) < 2e-3
 
@@ -96,14 +119,27 @@ def test_measured_response_matches_solve_ivp():
 def test_measured_air_forecast():
     """The reefer case (air toward outside, load toward air): the closed form of the generator
     matches solve_ivp, and the forecast recovers k and the crossing time, inside its interval."""
-    kw = {"load_T0": 3.0, "air_T0": 3.0, "outside": 30.0, "k_air_per_s": 1 / 3600, "k_load_per_s": 1 / 18000}
+    kw = {
+        "load_T0": 3.0,
+        "air_T0": 3.0,
+        "outside": 30.0,
+        "k_air_per_s": 1 / 3600,
+        "k_load_per_s": 1 / 18000,
+    }
     x = np.linspace(0, 20000, 101)
     air, load = synth.air_load_curves(x, **kw)
-    ref = solve_ivp(lambda s, y: [-kw["k_air_per_s"] * (y[0] - 30.0),
-                                  -kw["k_load_per_s"] * (y[1] - y[0])], (0, x[-1]), [3.0, 3.0],
-                    t_eval=x, rtol=1e-10, atol=1e-12).y
+    ref = solve_ivp(
+        lambda s, y: [-kw["k_air_per_s"] * (y[0] - 30.0), -kw["k_load_per_s"] * (y[1] - y[0])],
+        (0, x[-1]),
+        [3.0, 3.0],
+        t_eval=x,
+        rtol=1e-10,
+        atol=1e-12,
+    ).y
     assert np.allclose(air, ref[0], atol=1e-6) and np.allclose(load, ref[1], atol=1e-6)
-    s = synth.measured_air(4, **kw, threshold=8.0, duration_s=3600, corruption=Corruption(noise=0.1))
+    s = synth.measured_air(
+        4, **kw, threshold=8.0, duration_s=3600, corruption=Corruption(noise=0.1)
+    )
     fc = forecast(s.t, s.y, 8.0, ambient_t=s.ambient_t, ambient_y=s.ambient_y)
     assert fc.ok and fc.ambient_mode == "measured" and fc.direction == "rising"
     assert fc.eta_s == pytest.approx(s.eta_true_s, rel=0.08)
@@ -126,10 +162,15 @@ def test_crb_matches_fisher_of_a_numerical_jacobian():
 
     p = np.array([T_now, k, amb])
     h = np.array([1e-5, 1e-9, 1e-5])
-    G = np.column_stack([(f(p + np.eye(3)[i] * h[i]) - f(p - np.eye(3)[i] * h[i])) / (2 * h[i])
-                         for i in range(3)])
-    g = np.array([(eta(p + np.eye(3)[i] * h[i]) - eta(p - np.eye(3)[i] * h[i])) / (2 * h[i])
-                  for i in range(3)])
+    G = np.column_stack(
+        [(f(p + np.eye(3)[i] * h[i]) - f(p - np.eye(3)[i] * h[i])) / (2 * h[i]) for i in range(3)]
+    )
+    g = np.array(
+        [
+            (eta(p + np.eye(3)[i] * h[i]) - eta(p - np.eye(3)[i] * h[i])) / (2 * h[i])
+            for i in range(3)
+        ]
+    )
     num = math.sqrt(g @ np.linalg.solve(G.T @ G / sig**2, g))
     assert crb_eta_sd(t, T_now, k, amb, thr, sig) == pytest.approx(num, rel=1e-4)
     assert crb_eta_sd_known(t, T_now, k, amb, thr, sig) < num
@@ -156,13 +197,23 @@ def test_measured_ambient_coverage_200_cases():
     for seed in range(200):
         r = np.random.default_rng(5000 + seed)
         T0 = r.uniform(2, 5)
-        kw = {"load_T0": T0, "air_T0": T0, "outside": r.uniform(25, 35),
-                  "k_air_per_s": 1 / (r.uniform(0.5, 2) * 3600), "k_load_per_s": 1 / (r.uniform(3, 8) * 3600)}
+        kw = {
+            "load_T0": T0,
+            "air_T0": T0,
+            "outside": r.uniform(25, 35),
+            "k_air_per_s": 1 / (r.uniform(0.5, 2) * 3600),
+            "k_load_per_s": 1 / (r.uniform(3, 8) * 3600),
+        }
         full = synth.measured_air(seed, threshold=8.0, duration_s=1e6, dt_s=600.0, **kw)
         cross = full.crossing_t_true - full.truth["t0"]
-        s = synth.measured_air(seed, threshold=8.0, duration_s=r.uniform(0.35, 0.65) * cross,
-                               dt_s=60.0, corruption=Corruption(noise=r.uniform(0.05, 0.2),
-                                                                quantum=0.1), **kw)
+        s = synth.measured_air(
+            seed,
+            threshold=8.0,
+            duration_s=r.uniform(0.35, 0.65) * cross,
+            dt_s=60.0,
+            corruption=Corruption(noise=r.uniform(0.05, 0.2), quantum=0.1),
+            **kw,
+        )
         fc = forecast(s.t, s.y, 8.0, ambient_t=s.ambient_t, ambient_y=s.ambient_y)
         hi = math.inf if fc.eta_hi_s is None else fc.eta_hi_s
         hits.append(fc.eta_lo_s <= s.eta_true_s <= hi)
@@ -172,9 +223,17 @@ def test_measured_ambient_coverage_200_cases():
 def test_air_probe_that_stopped_reporting():
     """The air probe's last 20 minutes are missing: the air's own fit bridges the gap, a
     warning says so, and the ETA stays within 8 % of the truth."""
-    s = synth.measured_air(4, load_T0=3, air_T0=3, outside=30, k_air_per_s=1 / 3600,
-                           k_load_per_s=1 / 18000, threshold=8.0, duration_s=3600,
-                           corruption=Corruption(noise=0.1, quantum=0.1))
+    s = synth.measured_air(
+        4,
+        load_T0=3,
+        air_T0=3,
+        outside=30,
+        k_air_per_s=1 / 3600,
+        k_load_per_s=1 / 18000,
+        threshold=8.0,
+        duration_s=3600,
+        corruption=Corruption(noise=0.1, quantum=0.1),
+    )
     q = s.ambient_t <= s.ambient_t.min() + 2400
     fc = forecast(s.t, s.y, 8.0, ambient_t=s.ambient_t[q], ambient_y=s.ambient_y[q])
     assert any("older than the item's" in w for w in fc.warnings)
@@ -203,9 +262,14 @@ def test_air_load_curves_match_solve_ivp():
     da/dt = -ka (a - O), dT/dt = -kl (T - a)."""
     p = AIR_TRUTH
     x = np.linspace(0, 8 * 3600, 60)
-    sol = solve_ivp(lambda _t, u: [-p["k_air"] * (u[0] - p["outside"]),
-                                   -p["k_load"] * (u[1] - u[0])],
-                    (0, x[-1]), [p["air0"], p["load0"]], t_eval=x, rtol=1e-10, atol=1e-10)
+    sol = solve_ivp(
+        lambda _t, u: [-p["k_air"] * (u[0] - p["outside"]), -p["k_load"] * (u[1] - u[0])],
+        (0, x[-1]),
+        [p["air0"], p["load0"]],
+        t_eval=x,
+        rtol=1e-10,
+        atol=1e-10,
+    )
     air, load = air_load(x, **p)
     assert np.max(np.abs(air - sol.y[0])) < 1e-6
     assert np.max(np.abs(load - sol.y[1])) < 1e-6

@@ -15,8 +15,15 @@ from thermeta.predictors.synth import Corruption
 def newton_reference(t_rel: np.ndarray, T0: float, k: float, ambient) -> np.ndarray:
     """dT/dt = -k (T - Ta(t)) integrated by scipy.integrate.solve_ivp (rtol 1e-10)."""
     amb = ambient if callable(ambient) else (lambda s: ambient)
-    sol = solve_ivp(lambda s, T: -k * (T - amb(s)), (0.0, float(t_rel[-1])), [T0],
-                    t_eval=t_rel, rtol=1e-10, atol=1e-12, method="DOP853")
+    sol = solve_ivp(
+        lambda s, T: -k * (T - amb(s)),
+        (0.0, float(t_rel[-1])),
+        [T0],
+        t_eval=t_rel,
+        rtol=1e-10,
+        atol=1e-12,
+        method="DOP853",
+    )
     return sol.y[0]
 
 
@@ -46,8 +53,16 @@ def test_agrees_with_lmfit():
     """lmfit (PyPI, an independent Levenberg-Marquardt fit) on the same noisy readings agrees
     with our k and Ta within a small fraction of their standard errors."""
     lmfit = pytest.importorskip("lmfit")
-    s = synth.lumped(3, T0=90, ambient=14, k_per_s=1 / 1200, threshold=20, duration_s=2400,
-                     dt_s=10, corruption=Corruption(noise=0.2))
+    s = synth.lumped(
+        3,
+        T0=90,
+        ambient=14,
+        k_per_s=1 / 1200,
+        threshold=20,
+        duration_s=2400,
+        dt_s=10,
+        corruption=Corruption(noise=0.2),
+    )
     x = s.t - s.t[0]
     model = lmfit.Model(lambda x, a, b, k: a + b * np.exp(-k * x))
     params = model.make_params(a=10, b=80, k=1e-3)
@@ -63,8 +78,16 @@ def test_agrees_with_lmfit():
 def test_seven_eighths_is_three_half_cooling_times():
     """ASHRAE Handbook - Refrigeration (from memory): for a pure exponential the seven-eighths
     cooling time is three half-cooling times; lag factor j = 1 for the lumped model."""
-    s = synth.lumped(1, T0=60, ambient=3, k_per_s=1 / 2000, threshold=5, duration_s=3000, dt_s=30,
-                     corruption=Corruption(noise=0.1))
+    s = synth.lumped(
+        1,
+        T0=60,
+        ambient=3,
+        k_per_s=1 / 2000,
+        threshold=5,
+        duration_s=3000,
+        dt_s=30,
+        corruption=Corruption(noise=0.1),
+    )
     d = forecast(s.t, s.y, 5.0).to_dict()
     assert d["seven_eighths_cooling_s"] == pytest.approx(3 * d["half_cooling_s"], rel=1e-12)
     assert d["half_cooling_s"] == pytest.approx(math.log(2) * d["time_constant_s"], rel=1e-12)
@@ -73,8 +96,16 @@ def test_seven_eighths_is_three_half_cooling_times():
 
 def test_never_reaching_asymptote_gives_no_eta():
     """A curve levelling off short of the threshold: eta None, and no upper bound."""
-    s = synth.lumped(2, T0=60, ambient=26, k_per_s=1 / 1800, threshold=21, duration_s=3600, dt_s=30,
-                     corruption=Corruption(noise=0.1, quantum=0.1))
+    s = synth.lumped(
+        2,
+        T0=60,
+        ambient=26,
+        k_per_s=1 / 1800,
+        threshold=21,
+        duration_s=3600,
+        dt_s=30,
+        corruption=Corruption(noise=0.1, quantum=0.1),
+    )
     fc = forecast(s.t, s.y, 21.0)
     assert fc.ok and fc.eta_s is None and fc.eta_hi_s is None
     assert fc.to_dict()["crossing_at"] is None
@@ -83,8 +114,16 @@ def test_never_reaching_asymptote_gives_no_eta():
 def test_already_past_gives_zero():
     """The curve crossed the threshold within the data: eta 0; an upper limit already exceeded
     counts as past too."""
-    s = synth.lumped(4, T0=2, ambient=27, k_per_s=1 / 9000, threshold=8, duration_s=5000, dt_s=60,
-                     corruption=Corruption(noise=0.05))
+    s = synth.lumped(
+        4,
+        T0=2,
+        ambient=27,
+        k_per_s=1 / 9000,
+        threshold=8,
+        duration_s=5000,
+        dt_s=60,
+        corruption=Corruption(noise=0.05),
+    )
     assert s.eta_true_s == 0.0
     assert forecast(s.t, s.y, 8.0).eta_s == 0.0
     flat = np.full(40, 9.0) + np.random.default_rng(0).normal(0, 0.05, 40)
@@ -95,15 +134,31 @@ def test_already_past_gives_zero():
 def test_rising_and_falling_both_forecast():
     """Warming toward a known ambient and chilling toward a fitted one both give an ETA near
     the truth, with the right direction, counted from the newest reading."""
-    up = synth.lumped(5, T0=3, ambient=25, k_per_s=1 / 14400, threshold=8, duration_s=3000,
-                      dt_s=60, corruption=Corruption(noise=0.05, quantum=0.1))
+    up = synth.lumped(
+        5,
+        T0=3,
+        ambient=25,
+        k_per_s=1 / 14400,
+        threshold=8,
+        duration_s=3000,
+        dt_s=60,
+        corruption=Corruption(noise=0.05, quantum=0.1),
+    )
     fc = forecast(up.t, up.y, 8.0, ambient=25.0)
     assert fc.direction == "rising" and fc.ambient_mode == "known"
     assert fc.eta_s == pytest.approx(up.eta_true_s, rel=0.05)
     assert fc.eta_lo_s <= up.eta_true_s <= fc.eta_hi_s
     assert any("uncertain" in w for w in fc.warnings)
-    down = synth.lumped(6, T0=95, ambient=12, k_per_s=1 / 600, threshold=20, duration_s=700,
-                        dt_s=10, corruption=Corruption(noise=0.2, quantum=0.1))
+    down = synth.lumped(
+        6,
+        T0=95,
+        ambient=12,
+        k_per_s=1 / 600,
+        threshold=20,
+        duration_s=700,
+        dt_s=10,
+        corruption=Corruption(noise=0.2, quantum=0.1),
+    )
     fd = forecast(down.t, down.y, 20.0)
     assert fd.direction == "falling"
     assert fd.eta_s == pytest.approx(down.eta_true_s, rel=0.05)
@@ -113,8 +168,16 @@ def test_rising_and_falling_both_forecast():
 def test_free_ambient_with_little_curvature_is_wide():
     """Honest intervals: a cold load early in its warming, ambient free, gets a much wider
     interval than the same readings with the ambient known."""
-    s = synth.lumped(7, T0=2, ambient=27, k_per_s=1 / 18000, threshold=8, duration_s=2400,
-                     dt_s=60, corruption=Corruption(noise=0.1, quantum=0.1))
+    s = synth.lumped(
+        7,
+        T0=2,
+        ambient=27,
+        k_per_s=1 / 18000,
+        threshold=8,
+        duration_s=2400,
+        dt_s=60,
+        corruption=Corruption(noise=0.1, quantum=0.1),
+    )
     free = forecast(s.t, s.y, 8.0)
     known = forecast(s.t, s.y, 8.0, ambient=27.0, ambient_uncertainty=0.0)
     width = lambda f: (f.eta_hi_s if f.eta_hi_s is not None else math.inf) - f.eta_lo_s
@@ -142,14 +205,30 @@ def test_predict_draws_the_fitted_curve():
     and the measured model's forecast curve from the newest reading on."""
     from thermeta.predictors import predict
 
-    s = synth.lumped(9, T0=60, ambient=3, k_per_s=1 / 2000, threshold=5, duration_s=3000, dt_s=30,
-                     corruption=Corruption(noise=0.05))
+    s = synth.lumped(
+        9,
+        T0=60,
+        ambient=3,
+        k_per_s=1 / 2000,
+        threshold=5,
+        duration_s=3000,
+        dt_s=30,
+        corruption=Corruption(noise=0.05),
+    )
     fc = forecast(s.t, s.y, 5.0)
     assert predict(fc, np.array([fc.t_last]))[0] == pytest.approx(fc.params["value_fit_now"])
     assert predict(fc, np.array([fc.crossing_t]))[0] == pytest.approx(5.0, abs=1e-6)
-    m = synth.measured_air(4, load_T0=3, air_T0=3, outside=30, k_air_per_s=1 / 3600,
-                           k_load_per_s=1 / 18000, threshold=8, duration_s=3600,
-                           corruption=Corruption(noise=0.1))
+    m = synth.measured_air(
+        4,
+        load_T0=3,
+        air_T0=3,
+        outside=30,
+        k_air_per_s=1 / 3600,
+        k_load_per_s=1 / 18000,
+        threshold=8,
+        duration_s=3600,
+        corruption=Corruption(noise=0.1),
+    )
     fm = forecast(m.t, m.y, 8.0, ambient_t=m.ambient_t, ambient_y=m.ambient_y)
     assert predict(fm, np.array([fm.crossing_t]))[0] == pytest.approx(8.0, abs=1e-2)
 
@@ -157,8 +236,16 @@ def test_predict_draws_the_fitted_curve():
 def test_limit_side_and_window():
     """limit="lower": a chill already below the target is past (0) while an upper limit on the
     same readings is not; window_s keeps only the newest stretch of history."""
-    s = synth.lumped(10, T0=95, ambient=10, k_per_s=1 / 600, threshold=20, duration_s=1800,
-                     dt_s=10, corruption=Corruption(noise=0.2, quantum=0.1))
+    s = synth.lumped(
+        10,
+        T0=95,
+        ambient=10,
+        k_per_s=1 / 600,
+        threshold=20,
+        duration_s=1800,
+        dt_s=10,
+        corruption=Corruption(noise=0.2, quantum=0.1),
+    )
     assert forecast(s.t, s.y, 20.0, limit="lower").eta_s == 0.0
     assert forecast(s.t, s.y, 20.0, limit="upper").eta_s is None
     fw = forecast(s.t, s.y, 20.0, window_s=600.0)

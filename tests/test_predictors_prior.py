@@ -20,20 +20,30 @@ K_WORT = 1 / (15 * 60)  # wort through a plate chiller: tau 15 min (common pract
 COOLANT_C = 11.0
 
 
-def class_prior(k_per_s: float = K_WORT, ambient_c: float = COOLANT_C, n: int = 8,
-                seed: int = 5) -> Prior:
+def class_prior(
+    k_per_s: float = K_WORT, ambient_c: float = COOLANT_C, n: int = 8, seed: int = 5
+) -> Prior:
     """A prior learned from n episodes of one class: k within ~12 %, the coolant within ~1 degC."""
     rng = np.random.default_rng(seed)
     p = Prior()
     for _ in range(n):
-        p = p.updated(k_per_s * math.exp(0.12 * rng.standard_normal()),
-                      ambient_c + rng.normal(0.0, 1.0))
+        p = p.updated(
+            k_per_s * math.exp(0.12 * rng.standard_normal()), ambient_c + rng.normal(0.0, 1.0)
+        )
     return p
 
 
 def wort(seed: int, duration_s: float, k_per_s: float = K_WORT) -> synth.Synth:
-    return synth.lumped(seed, T0=95.0, ambient=COOLANT_C, k_per_s=k_per_s, threshold=20.0,
-                        duration_s=duration_s, dt_s=10.0, corruption=Corruption(noise=0.2))
+    return synth.lumped(
+        seed,
+        T0=95.0,
+        ambient=COOLANT_C,
+        k_per_s=k_per_s,
+        threshold=20.0,
+        duration_s=duration_s,
+        dt_s=10.0,
+        corruption=Corruption(noise=0.2),
+    )
 
 
 def rel_err(fc, s) -> float:

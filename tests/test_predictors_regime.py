@@ -16,8 +16,15 @@ C = Corruption(noise=0.1, quantum=0.1)
 def test_compressor_restart_is_found():
     """A warming load whose compressor restarts: the regime starts at the restart (within two
     readings) and the ETA matches the truth of the new regime."""
-    s = synth.regime_change(6, T0=4, k_per_s=1 / 5000, steps=[(0, 25), (3600, -5)], threshold=0,
-                            duration_s=6000, corruption=C)
+    s = synth.regime_change(
+        6,
+        T0=4,
+        k_per_s=1 / 5000,
+        steps=[(0, 25), (3600, -5)],
+        threshold=0,
+        duration_s=6000,
+        corruption=C,
+    )
     fc = forecast(s.t, s.y, 0.0)
     assert fc.regime_start == pytest.approx(s.truth["regime_start"], abs=61)
     assert fc.eta_lo_s <= s.eta_true_s <= fc.eta_hi_s
@@ -28,8 +35,15 @@ def test_compressor_restart_is_found():
 
 def test_door_opened_then_closed():
     """A door opened for 15 minutes then closed: the fit starts after the door closed."""
-    s = synth.regime_change(5, T0=2, k_per_s=1 / 3600, steps=[(0, 3), (3600, 18), (4500, 3)],
-                            threshold=8, duration_s=8000, corruption=C)
+    s = synth.regime_change(
+        5,
+        T0=2,
+        k_per_s=1 / 3600,
+        steps=[(0, 3), (3600, 18), (4500, 3)],
+        threshold=8,
+        duration_s=8000,
+        corruption=C,
+    )
     fc = forecast(s.t, s.y, 8.0)
     assert s.truth["regime_start"] - 120 <= fc.regime_start <= s.truth["regime_start"] + 120
     assert fc.eta_s is None  # after the door closed it settles back toward 3 degC
@@ -38,8 +52,16 @@ def test_door_opened_then_closed():
 @pytest.mark.parametrize("seed", range(6))
 def test_no_change_on_noise(seed):
     """Plain noisy warming or chilling curves: no regime cut (the whole window is fitted)."""
-    s = synth.lumped(seed, T0=2, ambient=27, k_per_s=1 / 12000, threshold=8, duration_s=3000,
-                     dt_s=30, corruption=Corruption(noise=0.2, quantum=0.1, spike_frac=0.01))
+    s = synth.lumped(
+        seed,
+        T0=2,
+        ambient=27,
+        k_per_s=1 / 12000,
+        threshold=8,
+        duration_s=3000,
+        dt_s=30,
+        corruption=Corruption(noise=0.2, quantum=0.1, spike_frac=0.01),
+    )
     fc = forecast(s.t, s.y, 8.0)
     assert fc.regime_start == pytest.approx(s.t.min())
 
@@ -56,8 +78,16 @@ def test_sawtooth_makes_no_nonsense_forecast(seed):
 def test_chiller_water_switched():
     """Wort chilled with tap water (toward 15 degC), then switched to glycol (toward 2 degC):
     the forecast to 10 degC uses the glycol regime only and lands near the truth."""
-    s = synth.regime_change(11, T0=95, k_per_s=1 / 700, steps=[(0, 15), (900, 2)], threshold=10,
-                            duration_s=1400, dt_s=10, corruption=Corruption(noise=0.2, quantum=0.1))
+    s = synth.regime_change(
+        11,
+        T0=95,
+        k_per_s=1 / 700,
+        steps=[(0, 15), (900, 2)],
+        threshold=10,
+        duration_s=1400,
+        dt_s=10,
+        corruption=Corruption(noise=0.2, quantum=0.1),
+    )
     fc = forecast(s.t, s.y, 10.0)
     assert abs(fc.regime_start - s.truth["regime_start"]) <= 30
     assert fc.eta_s == pytest.approx(s.eta_true_s, rel=0.05)
@@ -71,10 +101,16 @@ def test_no_false_regime_over_many_clean_chills():
     fired = 0
     for seed in range(80):
         tau = rng.uniform(480, 1500)
-        s = synth.lumped(seed, T0=rng.uniform(90, 98), ambient=rng.uniform(8, 15), k_per_s=1 / tau,
-                         threshold=20, duration_s=rng.uniform(0.4, 1.2) * tau,
-                         dt_s=rng.uniform(5, 15),
-                         corruption=Corruption(noise=rng.uniform(0.05, 0.3), quantum=0.1))
+        s = synth.lumped(
+            seed,
+            T0=rng.uniform(90, 98),
+            ambient=rng.uniform(8, 15),
+            k_per_s=1 / tau,
+            threshold=20,
+            duration_s=rng.uniform(0.4, 1.2) * tau,
+            dt_s=rng.uniform(5, 15),
+            corruption=Corruption(noise=rng.uniform(0.05, 0.3), quantum=0.1),
+        )
         fired += forecast(s.t, s.y, 20.0).regime_start != pytest.approx(s.t.min())
     assert fired == 0
 
@@ -88,8 +124,15 @@ def test_load_beside_cycling_air_gets_no_crossing():
     air = synth.compressor_sawtooth(3, duration_s=4 * 3600, corruption=Corruption(noise=0.05))
     o = np.argsort(air.t)
     at, clean_air = air.t[o], air.y_clean[o]
-    sol = solve_ivp(lambda s, T: -(1 / 20000) * (T - np.interp(s, at, clean_air)), (at[0], at[-1]),
-                    [3.4], t_eval=at, rtol=1e-10, atol=1e-12, max_step=30)
+    sol = solve_ivp(
+        lambda s, T: -(1 / 20000) * (T - np.interp(s, at, clean_air)),
+        (at[0], at[-1]),
+        [3.4],
+        t_eval=at,
+        rtol=1e-10,
+        atol=1e-12,
+        max_step=30,
+    )
     rng = np.random.default_rng(3)
     load = np.round((sol.y[0] + rng.normal(0, 0.05, at.size)) / 0.1) * 0.1
     fc = forecast(at, load, 8.0, ambient_t=at, ambient_y=air.y[o])
@@ -124,7 +167,8 @@ def test_short_warm_stretch_of_air_is_not_extrapolated():
     t = synth.T_START + np.arange(0, 2400, 60.0)
     air = 2.0 + 1.5 * (1 - np.exp(-(t - t[0]) / 3000)) + rng.normal(0, 0.1, t.size)
     crate = 2.9 + rng.normal(0, 0.05, t.size)
-    fc = forecast(t, np.round(crate, 1), 5.0, ambient_t=t, ambient_y=np.round(air, 1),
-                  limit="upper")
+    fc = forecast(
+        t, np.round(crate, 1), 5.0, ambient_t=t, ambient_y=np.round(air, 1), limit="upper"
+    )
     assert fc.ok and fc.eta_s is None
     assert any("not clear yet" in w for w in fc.warnings)

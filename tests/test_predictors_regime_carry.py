@@ -21,6 +21,7 @@ DOOR = [(0.0, 0.0), (1500.0, 25.0), (1800.0, 0.0)]  # a chiller at 0 degC, door 
 
 def solve_ivp_eta(T0: float, k: float, steps, threshold: float, t_last_s: float) -> float:
     """Seconds from t_last_s until the exact solution crosses threshold (solve_ivp event)."""
+
     def ambient(x):
         return [ta for start, ta in steps if x >= start][-1]
 
@@ -28,15 +29,29 @@ def solve_ivp_eta(T0: float, k: float, steps, threshold: float, t_last_s: float)
         return T[0] - threshold
 
     cross.terminal = True
-    sol = solve_ivp(lambda x, T: -k * (T[0] - ambient(x)), (0.0, 1e6), [T0], events=cross,
-                    rtol=1e-10, atol=1e-10, max_step=10.0)
+    sol = solve_ivp(
+        lambda x, T: -k * (T[0] - ambient(x)),
+        (0.0, 1e6),
+        [T0],
+        events=cross,
+        rtol=1e-10,
+        atol=1e-10,
+        max_step=10.0,
+    )
     return float(sol.t_events[0][0]) - t_last_s
 
 
 def door_case(seed: int, after_s: float, dt_s: float = 30.0):
-    s = synth.regime_change(seed, T0=70.0, k_per_s=K, steps=DOOR, threshold=21.0,
-                            duration_s=DOOR[-1][0] + after_s, dt_s=dt_s,
-                            corruption=Corruption(noise=0.1, quantum=0.1))
+    s = synth.regime_change(
+        seed,
+        T0=70.0,
+        k_per_s=K,
+        steps=DOOR,
+        threshold=21.0,
+        duration_s=DOOR[-1][0] + after_s,
+        dt_s=dt_s,
+        corruption=Corruption(noise=0.1, quantum=0.1),
+    )
     truth = solve_ivp_eta(70.0, K, DOOR, 21.0, float(s.t.max()) - synth.T_START)
     return s, truth
 
@@ -83,8 +98,16 @@ def test_chiller_water_switch_does_not_carry():
     """Wort chilled toward tap water (15 degC), then glycol (2 degC): a real change of ambient,
     so the older readings are not used and the forecast is the newest regime's alone (the same
     as fitting exactly those readings with the regime search off)."""
-    s = synth.regime_change(11, T0=95, k_per_s=1 / 700, steps=[(0, 15), (900, 2)], threshold=10,
-                            duration_s=1400, dt_s=10, corruption=Corruption(noise=0.2, quantum=0.1))
+    s = synth.regime_change(
+        11,
+        T0=95,
+        k_per_s=1 / 700,
+        steps=[(0, 15), (900, 2)],
+        threshold=10,
+        duration_s=1400,
+        dt_s=10,
+        corruption=Corruption(noise=0.2, quantum=0.1),
+    )
     fc = forecast(s.t, s.y, 10.0)
     assert any("not used" in w for w in fc.warnings)
     assert not any("came back" in w for w in fc.warnings)
@@ -100,8 +123,15 @@ def test_compressor_restart_with_given_ambient_does_not_carry():
     covers the solve_ivp crossing of 0 degC."""
     steps = [(0.0, 25.0), (3600.0, -5.0)]
     k = 1 / 5000
-    s = synth.regime_change(6, T0=4, k_per_s=k, steps=steps, threshold=0, duration_s=6000,
-                            corruption=Corruption(noise=0.1, quantum=0.1))
+    s = synth.regime_change(
+        6,
+        T0=4,
+        k_per_s=k,
+        steps=steps,
+        threshold=0,
+        duration_s=6000,
+        corruption=Corruption(noise=0.1, quantum=0.1),
+    )
     truth = solve_ivp_eta(4.0, k, steps, 0.0, float(s.t.max()) - synth.T_START)
     fc = forecast(s.t, s.y, 0.0, ambient=-5.0)
     assert any("not used" in w for w in fc.warnings)
@@ -128,10 +158,16 @@ def test_find_door_quiet_on_plain_curves():
     for seed in range(60):
         tau = rng.uniform(900, 9000)
         warm = seed % 2 == 0
-        s = synth.lumped(seed, T0=2.0 if warm else 70.0, ambient=25.0 if warm else 0.0,
-                         k_per_s=1 / tau, threshold=8.0 if warm else 21.0,
-                         duration_s=rng.uniform(0.3, 1.0) * tau, dt_s=rng.uniform(0.01, 0.03) * tau,
-                         corruption=Corruption(noise=rng.uniform(0.05, 0.3), quantum=0.1))
+        s = synth.lumped(
+            seed,
+            T0=2.0 if warm else 70.0,
+            ambient=25.0 if warm else 0.0,
+            k_per_s=1 / tau,
+            threshold=8.0 if warm else 21.0,
+            duration_s=rng.uniform(0.3, 1.0) * tau,
+            dt_s=rng.uniform(0.01, 0.03) * tau,
+            corruption=Corruption(noise=rng.uniform(0.05, 0.3), quantum=0.1),
+        )
         o = np.argsort(s.t)
         t, y = s.t[o], s.y[o]
         whole = fit_lumped(t, y, float(y[-1]), intervals=False)
@@ -142,9 +178,16 @@ def test_find_door_sees_a_short_door():
     """A 3-minute door, 15 min before the newest reading (too short for the regime search's
     dozen readings a side): the door model is kept."""
     steps = [(0.0, 0.0), (1500.0, 25.0), (1680.0, 0.0)]
-    s = synth.regime_change(3, T0=70.0, k_per_s=K, steps=steps, threshold=21.0,
-                            duration_s=1680 + 900, dt_s=30,
-                            corruption=Corruption(noise=0.1, quantum=0.1))
+    s = synth.regime_change(
+        3,
+        T0=70.0,
+        k_per_s=K,
+        steps=steps,
+        threshold=21.0,
+        duration_s=1680 + 900,
+        dt_s=30,
+        corruption=Corruption(noise=0.1, quantum=0.1),
+    )
     o = np.argsort(s.t)
     t, y = s.t[o], s.y[o]
     whole = fit_lumped(t, y, float(y[-1]), intervals=False)
@@ -162,8 +205,11 @@ def test_a_compressor_pulling_the_load_back_is_not_carried(minutes_after):
     v_cool = ta + (t_load - ta) * math.exp(-k * t_cool)
     rng = np.random.default_rng(7)
     t = np.arange(0.0, t_cool + 60 * minutes_after, 60.0)
-    y = np.where(t <= t_cool, ta + (t_load - ta) * np.exp(-k * t),
-                 -30.0 + (v_cool + 30.0) * np.exp(-(t - t_cool) / 3600.0))
+    y = np.where(
+        t <= t_cool,
+        ta + (t_load - ta) * np.exp(-k * t),
+        -30.0 + (v_cool + 30.0) * np.exp(-(t - t_cool) / 3600.0),
+    )
     y = y + rng.normal(0, 0.05, t.size)
     fc = forecast(t, y, thr, ambient=ta, limit="upper", min_points=8)
     assert not any(w.startswith("the surroundings changed and came back") for w in fc.warnings)

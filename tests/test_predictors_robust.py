@@ -8,8 +8,14 @@ from thermeta.predictors import forecast, synth
 from thermeta.predictors.cleaning import clean, order_and_dedupe, reading_step
 from thermeta.predictors.synth import Corruption
 
-WORT = {"T0": 95.0, "ambient": 12.0, "k_per_s": 1 / 900, "threshold": 20.0,
-        "duration_s": 1000.0, "dt_s": 10.0}
+WORT = {
+    "T0": 95.0,
+    "ambient": 12.0,
+    "k_per_s": 1 / 900,
+    "threshold": 20.0,
+    "duration_s": 1000.0,
+    "dt_s": 10.0,
+}
 
 
 def test_order_and_dedupe():
@@ -44,8 +50,9 @@ def test_hampel_flags_the_spikes():
 def _eta_errors(spike_frac: float, n: int = 40) -> np.ndarray:
     errs = []
     for seed in range(n):
-        s = synth.lumped(seed, **WORT, corruption=Corruption(noise=0.3, quantum=0.1,
-                                                              spike_frac=spike_frac))
+        s = synth.lumped(
+            seed, **WORT, corruption=Corruption(noise=0.3, quantum=0.1, spike_frac=spike_frac)
+        )
         fc = forecast(s.t, s.y, s.threshold)
         errs.append(abs(fc.eta_s - s.eta_true_s) / s.eta_true_s)
     return np.array(errs)
@@ -62,12 +69,28 @@ def test_spikes_move_eta_no_more_than_noise():
 def test_duplicates_out_of_order_gaps_quantised():
     """Duplicated and shuffled timestamps, two gaps, jittered sampling and 0.1 steps give the
     same forecast (to 2 %) as the clean series of the same curve."""
-    kw = {"T0": 3.0, "ambient": 25.0, "k_per_s": 1 / 14400, "threshold": 8.0,
-          "duration_s": 4000.0, "dt_s": 30.0}
+    kw = {
+        "T0": 3.0,
+        "ambient": 25.0,
+        "k_per_s": 1 / 14400,
+        "threshold": 8.0,
+        "duration_s": 4000.0,
+        "dt_s": 30.0,
+    }
     base = synth.lumped(5, **kw, corruption=Corruption(noise=0.05))
-    messy = synth.lumped(5, **kw, corruption=Corruption(noise=0.05, quantum=0.1, dup_frac=0.05,
-                                                        shuffle_frac=0.05, n_gaps=2, gap_frac=0.2,
-                                                        irregular=0.5))
+    messy = synth.lumped(
+        5,
+        **kw,
+        corruption=Corruption(
+            noise=0.05,
+            quantum=0.1,
+            dup_frac=0.05,
+            shuffle_frac=0.05,
+            n_gaps=2,
+            gap_frac=0.2,
+            irregular=0.5,
+        ),
+    )
     a = forecast(base.t, base.y, 8.0, ambient=25.0)
     b = forecast(messy.t, messy.y, 8.0, ambient=25.0)
     assert b.ok and any("shared a timestamp" in w for w in b.warnings)
@@ -133,23 +156,42 @@ def test_readings_after_a_dropout_are_not_spikes():
     run after the pause is still caught."""
     from thermeta.predictors.synth_conduction import core_probe
 
-    s = core_probe(3, geometry="slab", biot=2.1, a_per_s=1.95e-4, t_i=73.0, ambient=1.5,
-                   threshold=21.0, seen_fraction=0.25, dt_s=100.0,
-                   corruption=Corruption(noise=0.1, quantum=0.1))
+    s = core_probe(
+        3,
+        geometry="slab",
+        biot=2.1,
+        a_per_s=1.95e-4,
+        t_i=73.0,
+        ambient=1.5,
+        threshold=21.0,
+        seen_fraction=0.25,
+        dt_s=100.0,
+        corruption=Corruption(noise=0.1, quantum=0.1),
+    )
     rel = s.t - s.t[0]
     keep = (rel < 700.0) | (rel > 1390.0)
     t, y = s.t[keep], s.y[keep]
     assert np.diff(t).max() > 4 * np.median(np.diff(t))  # the pause is in the readings
     assert clean(t, y).n_outliers == 0
     air_t = np.unique(t)
-    fc = forecast(t, y, 21.0, model="slab", ambient_t=air_t, ambient_y=np.full(air_t.size, 1.5),
-                  limit="lower")
+    fc = forecast(
+        t, y, 21.0, model="slab", ambient_t=air_t, ambient_y=np.full(air_t.size, 1.5), limit="lower"
+    )
     assert fc.n_points == t.size
     assert fc.eta_s == pytest.approx(s.eta_true_s, rel=0.10)
     # the same pause, seen longer, with a +15 degC spike in the run after it
-    s = core_probe(3, geometry="slab", biot=2.1, a_per_s=1.95e-4, t_i=73.0, ambient=1.5,
-                   threshold=21.0, seen_fraction=0.5, dt_s=100.0,
-                   corruption=Corruption(noise=0.1, quantum=0.1))
+    s = core_probe(
+        3,
+        geometry="slab",
+        biot=2.1,
+        a_per_s=1.95e-4,
+        t_i=73.0,
+        ambient=1.5,
+        threshold=21.0,
+        seen_fraction=0.5,
+        dt_s=100.0,
+        corruption=Corruption(noise=0.1, quantum=0.1),
+    )
     rel = s.t - s.t[0]
     keep = (rel < 700.0) | (rel > 1390.0)
     t, y = s.t[keep], s.y[keep].copy()

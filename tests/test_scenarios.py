@@ -17,14 +17,17 @@ def _ode_reference(pieces, air0, load0, kl, t_eval):
     y = [air0, load0]
     bounds = [p[0] for p in pieces[1:]] + [t_eval[-1] + 1.0]
     for (s, u, ka), end in zip(pieces, bounds):
+
         def rhs(t, z, u=u, ka=ka):
             return [-ka * (z[0] - u), -kl * (z[1] - z[0])]
 
         sel = t_eval[(t_eval >= s) & (t_eval < end)]
         sol = solve_ivp(rhs, (s, end), y, t_eval=sel, rtol=1e-10, atol=1e-10, method="DOP853")
         out.append(sol.y)
-        y = [float(v) for v in solve_ivp(rhs, (s, end), y, rtol=1e-10, atol=1e-10,
-                                         method="DOP853").y[:, -1]]
+        y = [
+            float(v)
+            for v in solve_ivp(rhs, (s, end), y, rtol=1e-10, atol=1e-10, method="DOP853").y[:, -1]
+        ]
     return np.concatenate(out, axis=1)
 
 
@@ -91,8 +94,9 @@ def test_centre_probe_matches_method_of_lines_heat_equation():
         return a * d
 
     t_eval = np.linspace(0, 8 * 3600, 49)
-    sol = solve_ivp(rhs, (0, t_eval[-1]), np.full(n, Ti), t_eval=t_eval, method="BDF",
-                    rtol=1e-8, atol=1e-8)
+    sol = solve_ivp(
+        rhs, (0, t_eval[-1]), np.full(n, Ti), t_eval=t_eval, method="BDF", rtol=1e-8, atol=1e-8
+    )
     got = S.centre_probe(t_eval, air, Ti, bi, a, "slab", step_s=10.0)
     assert np.max(np.abs(got - sol.y[0])) < 0.01
 
@@ -173,8 +177,11 @@ def test_readings_look_like_a_real_probe():
 def test_seeded_and_validated():
     """The same seed gives the same readings, another seed others; bad names and durations raise
     ValueError."""
-    a, b, c = S.build("walkin-door-ajar", seed=1), S.build("walkin-door-ajar", seed=1), S.build(
-        "walkin-door-ajar", seed=2)
+    a, b, c = (
+        S.build("walkin-door-ajar", seed=1),
+        S.build("walkin-door-ajar", seed=1),
+        S.build("walkin-door-ajar", seed=2),
+    )
     assert np.array_equal(a.probes[1].y, b.probes[1].y)
     assert not np.array_equal(a.probes[1].y, c.probes[1].y)
     with pytest.raises(ValueError, match="unknown scenario"):

@@ -61,8 +61,9 @@ def test_config_text_is_accepted_by_the_daemon_config(tmp_path):
     site's ambient probe as ambient_topic, the model and lead carried over."""
     sc = S.build("all")
     path = tmp_path / "sim.toml"
-    path.write_text(sim.config_text(sc, host="127.0.0.1", port=1883,
-                                    storage_url=f"sqlite:///{tmp_path}/t.db"))
+    path.write_text(
+        sim.config_text(sc, host="127.0.0.1", port=1883, storage_url=f"sqlite:///{tmp_path}/t.db")
+    )
     cfg = load_config(path)
     assert [i.name for i in cfg.items] == [p.name for p in sc.loads]
     by = {i.name: i for i in cfg.items}
@@ -78,8 +79,21 @@ def test_publishes_through_a_real_broker_at_speed(broker):
     standard mosquitto_sub client receives exactly those payloads, in order per topic."""
     sc = S.build("wort-chill", seed=2, duration_s=1200.0)
     out = subprocess.Popen(
-        [shutil.which("mosquitto_sub"), "-h", broker.host, "-p", str(broker.port), "-t", "#",
-         "-v", "-q", "1"], stdout=subprocess.PIPE, text=True)
+        [
+            shutil.which("mosquitto_sub"),
+            "-h",
+            broker.host,
+            "-p",
+            str(broker.port),
+            "-t",
+            "#",
+            "-v",
+            "-q",
+            "1",
+        ],
+        stdout=subprocess.PIPE,
+        text=True,
+    )
     try:
         time.sleep(0.5)
         clock = ScaledClock(sc.t_start, 3000.0)
@@ -104,8 +118,12 @@ def test_cli_print_config_and_bad_arguments(tmp_path):
     """`thermeta simulate --print-config` prints a loadable config and the truth; a bad speed is
     exit 2, an unreachable broker exit 1 with one line saying so."""
     run = [sys.executable, "-m", "thermeta.daemon.cli", "simulate"]
-    ok = subprocess.run(run + ["--scenario", "wort-chill", "--print-config"], capture_output=True,
-                        text=True, timeout=60)
+    ok = subprocess.run(
+        run + ["--scenario", "wort-chill", "--print-config"],
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
     assert ok.returncode == 0
     assert "crosses 20 degC" in ok.stdout
     (tmp_path / "c.toml").write_text(ok.stdout)
@@ -115,7 +133,8 @@ def test_cli_print_config_and_bad_arguments(tmp_path):
     with socket.socket() as sock:
         sock.bind(("127.0.0.1", 0))
         port = sock.getsockname()[1]
-    down = subprocess.run(run + ["--port", str(port), "--quiet"], capture_output=True,
-                          text=True, timeout=60)
+    down = subprocess.run(
+        run + ["--port", str(port), "--quiet"], capture_output=True, text=True, timeout=60
+    )
     assert down.returncode == 1
     assert "no MQTT broker answered" in down.stderr

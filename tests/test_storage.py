@@ -7,7 +7,6 @@ import uuid
 
 import pytest
 from sqlalchemy import create_engine, text
-
 from thermeta.storage.store import Store, safe_url
 
 
@@ -36,8 +35,10 @@ def store(request, tmp_path):
 
 
 def rows(item_id, ts_values, value=1.0):
-    return [dict(item_id=item_id, ts=float(t), value_c=value + t / 1000, flags=0, received_at=float(t))
-            for t in ts_values]
+    return [
+        dict(item_id=item_id, ts=float(t), value_c=value + t / 1000, flags=0, received_at=float(t))
+        for t in ts_values
+    ]
 
 
 def test_duplicates_are_absorbed_by_the_item_time_key(store):
@@ -63,8 +64,11 @@ def test_readings_since_and_ordering(store):
 def test_batch_with_dead_letters_is_one_transaction(store):
     """Readings and dead letters of a batch commit together and are counted."""
     a = store.ensure_item("a", now=1.0)
-    store.write_batch(rows(a, [1, 2]), [dict(received_at=5.0, topic="t/x", item=None,
-                                              reason="not UTF-8 text", payload="\\xff")] * 3)
+    store.write_batch(
+        rows(a, [1, 2]),
+        [dict(received_at=5.0, topic="t/x", item=None, reason="not UTF-8 text", payload="\\xff")]
+        * 3,
+    )
     assert store.counts()["dead_letters"] == 3
     assert store.recent_dead_letters(1)[0]["reason"] == "not UTF-8 text"
 
@@ -80,15 +84,20 @@ def test_forecast_history_and_latest(store):
     assert latest["a"]["state"] == "approaching" and latest["a"]["forecast"]["eta_s"] == 600.0
     assert latest["b"]["made_at"] == 15.0
     assert [h["state"] for h in store.forecast_history("a")] == ["approaching", "learning"]
-    assert {i["name"]: i["state"] for i in store.list_items()} == {"a": "approaching", "b": "steady"}
+    assert {i["name"]: i["state"] for i in store.list_items()} == {
+        "a": "approaching",
+        "b": "steady",
+    }
 
 
 def test_retention_prunes_old_rows_but_keeps_each_items_newest_forecast(store):
     """prune() deletes readings, dead letters and forecast history older than the cut-off, except
     the newest forecast of each item (status must still show it)."""
     a = store.ensure_item("a", now=1.0)
-    store.write_batch(rows(a, [100, 200, 300]), [dict(received_at=50.0, topic="t", item="a",
-                                                      reason="r", payload="p")])
+    store.write_batch(
+        rows(a, [100, 200, 300]),
+        [dict(received_at=50.0, topic="t", item="a", reason="r", payload="p")],
+    )
     store.save_forecast(a, 100.0, "steady", {"eta_s": None}, 100.0)
     store.save_forecast(a, 150.0, "steady", {"eta_s": None}, 150.0)
     gone = store.prune(250.0)

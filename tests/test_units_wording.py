@@ -118,10 +118,14 @@ def test_given_ambient_and_its_doubt():
     """The known-ambient note: the given 25 degC is 77 degF and 298.15 K; its default doubt,
     2.5 degC (1 sd), is 4.5 degF and 2.5 K; in degC the text is the one it always was."""
     t, y = _known_load()
-    note = ("the given ambient {} is taken as uncertain by about {} (1 sd); "
-            "the intervals include that")
-    expected = {None: note.format("25", "2.5"), F: note.format("77 °F", "4.5 °F"),
-                K: note.format("298.15 K", "2.5 K")}
+    note = (
+        "the given ambient {} is taken as uncertain by about {} (1 sd); the intervals include that"
+    )
+    expected = {
+        None: note.format("25", "2.5"),
+        F: note.format("77 °F", "4.5 °F"),
+        K: note.format("298.15 K", "2.5 K"),
+    }
     for unit, text in expected.items():
         fc = forecast(t, y, 12.0, ambient=25.0, shown=unit)
         assert text in fc.warnings, (unit, fc.warnings)
@@ -164,10 +168,14 @@ def test_few_readings_note():
     c = forecast(t[:3], y[:3], 12.0, ambient=25.0)
     f = forecast(t[:3], y[:3], 12.0, ambient=25.0, shown=F)
     assert c.rmse == pytest.approx(0.15)
-    assert ("scatter taken as 0.15 (1 sd, not measured) and the ambient as uncertain by 2.5;"
-            in only(c.warnings, "only 3 readings"))
-    assert ("scatter taken as 0.27 °F (1 sd, not measured) and the ambient as uncertain by "
-            "4.5 °F;" in only(f.warnings, "only 3 readings"))
+    assert (
+        "scatter taken as 0.15 (1 sd, not measured) and the ambient as uncertain by 2.5;"
+        in only(c.warnings, "only 3 readings")
+    )
+    assert (
+        "scatter taken as 0.27 °F (1 sd, not measured) and the ambient as uncertain by "
+        "4.5 °F;" in only(f.warnings, "only 3 readings")
+    )
 
 
 def test_learned_prior_note():
@@ -175,11 +183,20 @@ def test_learned_prior_note():
     rng = np.random.default_rng(5)
     prior = Prior()
     for _ in range(8):
-        prior = prior.updated(math.exp(0.12 * rng.standard_normal()) / 900.0,
-                              11.0 + rng.normal(0.0, 1.0))
+        prior = prior.updated(
+            math.exp(0.12 * rng.standard_normal()) / 900.0, 11.0 + rng.normal(0.0, 1.0)
+        )
     mu, sd = prior.ambient_prior()
-    s = synth.lumped(3, T0=95.0, ambient=11.0, k_per_s=1 / 900, threshold=20.0,
-                     duration_s=240.0, dt_s=10.0, corruption=Corruption(noise=0.2))
+    s = synth.lumped(
+        3,
+        T0=95.0,
+        ambient=11.0,
+        k_per_s=1 / 900,
+        threshold=20.0,
+        duration_s=240.0,
+        dt_s=10.0,
+        corruption=Corruption(noise=0.2),
+    )
     wc = only(forecast(s.t, s.y, 20.0, prior=prior).warnings, "prior learned")
     wk = only(forecast(s.t, s.y, 20.0, prior=prior, shown=K).warnings, "prior learned")
     assert f"ambient about {mu:.3g} +- {sd:.2g})" in wc
@@ -190,9 +207,18 @@ def test_learned_prior_note():
 
 def _sphere():
     """A sphere's centre at 3 degC in 25 degC air, Bi 2, seen half-way in time to 8 degC."""
-    return core_probe(3, geometry="sphere", biot=2.0, a_per_s=4e-5, t_i=3.0, ambient=25.0,
-                      threshold=8.0, seen_fraction=0.5, dt_s=60.0,
-                      corruption=Corruption(noise=0.1, quantum=0.1))
+    return core_probe(
+        3,
+        geometry="sphere",
+        biot=2.0,
+        a_per_s=4e-5,
+        t_i=3.0,
+        ambient=25.0,
+        threshold=8.0,
+        seen_fraction=0.5,
+        dt_s=60.0,
+        corruption=Corruption(noise=0.1, quantum=0.1),
+    )
 
 
 def test_conduction_steady_air_note():

@@ -18,8 +18,10 @@ from thermeta.daemon.timefmt import human_duration
 from thermeta.daemon.units import UNIT_SIGN
 from thermeta.predictors.result import rfc3339
 
-CAUTION = ("Forecasts support decisions; local codes and the site's own procedures decide "
-           "limits and actions.")
+CAUTION = (
+    "Forecasts support decisions; local codes and the site's own procedures decide "
+    "limits and actions."
+)
 
 
 def clock(epoch_s: float | None) -> str:
@@ -50,8 +52,10 @@ def eta_clause(a: dict[str, Any]) -> str:
     if lo is not None:
         hi_clock = clock(a["crossing_hi_at_s"]) if hi is not None else "no later bound"
         hi_in = human_duration(hi) if hi is not None else "open-ended"
-        text += (f"; 90 % interval {clock(a['crossing_lo_at_s'])} to {hi_clock}, "
-                 f"in {human_duration(lo)} to {hi_in}")
+        text += (
+            f"; 90 % interval {clock(a['crossing_lo_at_s'])} to {hi_clock}, "
+            f"in {human_duration(lo)} to {hi_in}"
+        )
     return text + ")"
 
 
@@ -62,8 +66,11 @@ def fit_clause(a: dict[str, Any]) -> str:
     # air is heading, not a reading), or the fit
     mode = a.get("ambient_mode")
     if mode == "measured":
-        where = (f"air probe heading for {amb}" if a.get("ambient") is not None
-                 else "ambient from the air probe")
+        where = (
+            f"air probe heading for {amb}"
+            if a.get("ambient") is not None
+            else "ambient from the air probe"
+        )
     else:
         where = f"{'given' if mode == 'known' else 'fitted'} ambient {amb}"
     return f"{where}, time constant {tau}"
@@ -71,45 +78,70 @@ def fit_clause(a: dict[str, Any]) -> str:
 
 def sentence(a: dict[str, Any]) -> str:
     item, level, unit = a["item"], a["level"], a["unit"]
-    now_thr = f"{temp(a.get('value_now'), unit)} now against a threshold of {temp(a['threshold'], unit)}"
+    now_thr = (
+        f"{temp(a.get('value_now'), unit)} now against a threshold of {temp(a['threshold'], unit)}"
+    )
     if level == "approaching":
         return f"{item} is approaching its threshold: {now_thr}, {eta_clause(a)}; {fit_clause(a)}."
     if level == "crossed":
         since = a.get("crossed_at_s")
-        ago = (f" since {clock(since)} ({human_duration(a['at_s'] - since)} ago)"
-               if since and a.get("reminder") else "")
+        ago = (
+            f" since {clock(since)} ({human_duration(a['at_s'] - since)} ago)"
+            if since and a.get("reminder")
+            else ""
+        )
         # a cooling batch reaching its pitching or holding temperature has "fallen below" it
-        went = {"upper": "risen above", "lower": "fallen below"}.get(a.get("side") or "",
-                                                                     "crossed")
-        head = (f"Reminder: {item} is still past its threshold" if a.get("reminder")
-                else f"{item} has {went} its threshold")
+        went = {"upper": "risen above", "lower": "fallen below"}.get(a.get("side") or "", "crossed")
+        head = (
+            f"Reminder: {item} is still past its threshold"
+            if a.get("reminder")
+            else f"{item} has {went} its threshold"
+        )
         return f"{head}{ago}: {now_thr}; {fit_clause(a)}."
     if level == "recovered":
         if a.get("from_level") == "approaching":
-            return (f"{item} is no longer expected to cross within {human_duration(a['lead_s'])}: "
-                    f"{now_thr}, {eta_clause(a)}; {fit_clause(a)}.")
+            return (
+                f"{item} is no longer expected to cross within {human_duration(a['lead_s'])}: "
+                f"{now_thr}, {eta_clause(a)}; {fit_clause(a)}."
+            )
         band = f"{a['hysteresis']:g} {UNIT_SIGN.get(unit, unit)}"
-        how = (f"by more than the {band} band" if a.get("by") == "band"
-               else f"for {human_duration(a['hold_s'])}")
+        how = (
+            f"by more than the {band} band"
+            if a.get("by") == "band"
+            else f"for {human_duration(a['hold_s'])}"
+        )
         where = {"upper": "below", "lower": "above"}.get(a.get("side") or "", "back across")
         return f"{item} is back {where} its threshold {how}: {now_thr}; {fit_clause(a)}."
     if level == "stale":
         last = a.get("last_reading_at_s")
         quiet = human_duration(a["at_s"] - last) if last else "a while"
-        return (f"{item} has sent no reading for {quiet} (silence limit "
-                f"{human_duration(a['silence_s'])}): last value {temp(a.get('value_now'), unit)} "
-                f"at {clock(last)}, threshold {temp(a['threshold'], unit)}.")
+        return (
+            f"{item} has sent no reading for {quiet} (silence limit "
+            f"{human_duration(a['silence_s'])}): last value {temp(a.get('value_now'), unit)} "
+            f"at {clock(last)}, threshold {temp(a['threshold'], unit)}."
+        )
     if level == "resumed":
         return f"{item} is reporting again: {now_thr}, {eta_clause(a)}."
     if level == "regime":
-        return (f"{item}'s surroundings changed at {clock(a.get('regime_start_s'))} (door, power or "
-                f"coolant?): the fit now starts there, {fit_clause(a)}; {now_thr}, {eta_clause(a)}.")
+        return (
+            f"{item}'s surroundings changed at {clock(a.get('regime_start_s'))} (door, power or "
+            f"coolant?): the fit now starts there, {fit_clause(a)}; {now_thr}, {eta_clause(a)}."
+        )
     raise ValueError(f"unknown alert level {level!r}")
 
 
-def build_alert(item: str, fc: dict[str, Any], ev: Event, st: ItemAlertState, p: RuleParams,
-                now: float, *, unit: str = "C", silence_s: float | None = None,
-                site: str | None = None) -> dict[str, Any]:
+def build_alert(
+    item: str,
+    fc: dict[str, Any],
+    ev: Event,
+    st: ItemAlertState,
+    p: RuleParams,
+    now: float,
+    *,
+    unit: str = "C",
+    silence_s: float | None = None,
+    site: str | None = None,
+) -> dict[str, Any]:
     """The alert's JSON body (numbers in the item's unit, times as RFC 3339 and epoch s)."""
     st.seq += 1
     eta = remaining_s(fc, "eta_s", now)
@@ -118,18 +150,34 @@ def build_alert(item: str, fc: dict[str, Any], ev: Event, st: ItemAlertState, p:
     last = fc.get("last_reading_at")
     a: dict[str, Any] = {
         "id": f"{item}:{st.episode}:{ev.level}:{st.seq}",
-        "item": item, "level": ev.level, "reminder": ev.reminder, "episode": st.episode,
-        "at": rfc3339(now), "at_s": now, "state": fc.get("state"),
-        "value_now": fc.get("value_now"), "threshold": p.threshold, "unit": unit,
-        "direction": fc.get("direction"), "side": st.side,
-        "eta_s": eta, "eta_lo_s": lo, "eta_hi_s": hi,
+        "item": item,
+        "level": ev.level,
+        "reminder": ev.reminder,
+        "episode": st.episode,
+        "at": rfc3339(now),
+        "at_s": now,
+        "state": fc.get("state"),
+        "value_now": fc.get("value_now"),
+        "threshold": p.threshold,
+        "unit": unit,
+        "direction": fc.get("direction"),
+        "side": st.side,
+        "eta_s": eta,
+        "eta_lo_s": lo,
+        "eta_hi_s": hi,
         "crossing_at_s": None if eta is None else now + eta,
         "crossing_lo_at_s": None if lo is None else now + lo,
         "crossing_hi_at_s": None if hi is None else now + hi,
-        "ambient": fc.get("ambient"), "ambient_mode": fc.get("ambient_mode"),
-        "time_constant_s": fc.get("time_constant_s"), "k_per_s": fc.get("k_per_s"),
-        "last_reading_at_s": _t(last), "lead_s": p.lead_s, "hysteresis": p.hysteresis,
-        "hold_s": p.hold_s, "silence_s": silence_s, "crossed_at_s": st.crossed_at,
+        "ambient": fc.get("ambient"),
+        "ambient_mode": fc.get("ambient_mode"),
+        "time_constant_s": fc.get("time_constant_s"),
+        "k_per_s": fc.get("k_per_s"),
+        "last_reading_at_s": _t(last),
+        "lead_s": p.lead_s,
+        "hysteresis": p.hysteresis,
+        "hold_s": p.hold_s,
+        "silence_s": silence_s,
+        "crossed_at_s": st.crossed_at,
     }
     if site:
         a["site"] = site

@@ -32,8 +32,16 @@ def backoff_s(failures: int, base_s: float, max_s: float) -> float:
 
 
 class OutboxWorker(threading.Thread):
-    def __init__(self, hook: Any, astore: Any, *, base_s: float = 5.0, max_s: float = 300.0,
-                 max_age_s: float = 7 * 86400.0, poll_s: float = POLL_S):
+    def __init__(
+        self,
+        hook: Any,
+        astore: Any,
+        *,
+        base_s: float = 5.0,
+        max_s: float = 300.0,
+        max_age_s: float = 7 * 86400.0,
+        poll_s: float = POLL_S,
+    ):
         super().__init__(name=f"outbox-{hook.key}", daemon=True)
         self.hook = hook
         self.astore = astore
@@ -76,10 +84,15 @@ class OutboxWorker(threading.Thread):
                 if self.halt.is_set():
                     return 0.0
                 if now - row["created_at"] > self.max_age_s:
-                    self.astore.mark_failed_try(row["id"], now, "given up: too old", give_up=True,
-                                                now=now)
-                    log.error("outbox of %s: gave up alert %s after %s", self.hook.key,
-                              row["alert"]["id"], f"{self.max_age_s:g} s")
+                    self.astore.mark_failed_try(
+                        row["id"], now, "given up: too old", give_up=True, now=now
+                    )
+                    log.error(
+                        "outbox of %s: gave up alert %s after %s",
+                        self.hook.key,
+                        row["alert"]["id"],
+                        f"{self.max_age_s:g} s",
+                    )
                     continue
                 try:
                     self.hook.deliver(row["alert"])
@@ -96,8 +109,9 @@ class OutboxWorker(threading.Thread):
                 self.astore.mark_delivered(row["id"], time.time())
                 self.delivered += 1
                 if self.failures:
-                    log.info("hook %s delivers again after %d failed tries", self.hook.key,
-                             self.failures)
+                    log.info(
+                        "hook %s delivers again after %d failed tries", self.hook.key, self.failures
+                    )
                 self.failures = 0
                 self.last_error = None
         return 0.0
@@ -106,5 +120,6 @@ class OutboxWorker(threading.Thread):
         now = time.monotonic()
         if now - self._warned_at >= WARN_EVERY_S or self.failures == 1:
             self._warned_at = now
-            log.warning("%s (try %d; next in %.0f s; alerts wait in the outbox)", exc,
-                        self.failures, delay)
+            log.warning(
+                "%s (try %d; next in %.0f s; alerts wait in the outbox)", exc, self.failures, delay
+            )

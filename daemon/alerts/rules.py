@@ -78,12 +78,17 @@ class RuleParams:
 
     @classmethod
     def of(cls, item_cfg: Any, check_every_s: float = 0.0) -> RuleParams:
-        return cls(threshold=item_cfg.threshold, lead_s=item_cfg.lead_s,
-                   hysteresis=item_cfg.hysteresis, hold_s=item_cfg.hold_s,
-                   remind_every_s=item_cfg.remind_every_s, check_every_s=check_every_s,
-                   defrost_recovery_s=getattr(item_cfg, "defrost_recovery_s", 1800.0),
-                   defrost_max_s=getattr(item_cfg, "defrost_max_s", 3600.0),
-                   delay_s=getattr(item_cfg, "delay_s", 0.0))
+        return cls(
+            threshold=item_cfg.threshold,
+            lead_s=item_cfg.lead_s,
+            hysteresis=item_cfg.hysteresis,
+            hold_s=item_cfg.hold_s,
+            remind_every_s=item_cfg.remind_every_s,
+            check_every_s=check_every_s,
+            defrost_recovery_s=getattr(item_cfg, "defrost_recovery_s", 1800.0),
+            defrost_max_s=getattr(item_cfg, "defrost_max_s", 3600.0),
+            delay_s=getattr(item_cfg, "delay_s", 0.0),
+        )
 
 
 @dataclass
@@ -206,8 +211,9 @@ def in_defrost_hold(fc: dict[str, Any], p: RuleParams, now: float) -> bool:
     return span is not None and span[0] <= now < span[1]
 
 
-def step(st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float,
-         acked: bool = False) -> list[Event]:
+def step(
+    st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float, acked: bool = False
+) -> list[Event]:
     """Advance ``st`` by one forecast; return the alerts it raises (often none)."""
     events: list[Event] = []
     state = fc.get("state")
@@ -227,8 +233,9 @@ def step(st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float,
     return events + _regime(st, fc, p, now, held) + levels
 
 
-def _levels(st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float, held: bool,
-            acked: bool) -> list[Event]:
+def _levels(
+    st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float, held: bool, acked: bool
+) -> list[Event]:
     """The episode's levels: approaching, crossed (with reminders) and recovered."""
     events: list[Event] = []
     v = fc.get("value_now")
@@ -248,8 +255,13 @@ def _levels(st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float, h
         if held:
             st.pending_since = None
             return events  # a defrost and its recovery delay raise nothing new
-        want = ("crossed" if is_past(v, side, thr) else
-                "approaching" if approach_due(fc, p, now) else None)
+        want = (
+            "crossed"
+            if is_past(v, side, thr)
+            else "approaching"
+            if approach_due(fc, p, now)
+            else None
+        )
         if want is None:
             st.pending_since = None
         elif _delay_over(st, p, now):
@@ -276,14 +288,22 @@ def _levels(st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float, h
         return events
     # crossed
     if is_inside(v, side, thr, p.hysteresis):
-        events.append(Event("recovered", context={"from_level": "crossed", "by": "band",
-                                                  "crossed_at_s": st.crossed_at}))
+        events.append(
+            Event(
+                "recovered",
+                context={"from_level": "crossed", "by": "band", "crossed_at_s": st.crossed_at},
+            )
+        )
         _clear(st)
     elif is_inside(v, side, thr):
         st.off_since = st.off_since if st.off_since is not None else now
         if now - st.off_since >= p.hold_s:
-            events.append(Event("recovered", context={"from_level": "crossed", "by": "hold",
-                                                      "crossed_at_s": st.crossed_at}))
+            events.append(
+                Event(
+                    "recovered",
+                    context={"from_level": "crossed", "by": "hold", "crossed_at_s": st.crossed_at},
+                )
+            )
             _clear(st)
     else:
         st.off_since = None
@@ -301,8 +321,9 @@ def _delay_over(st: ItemAlertState, p: RuleParams, now: float) -> bool:
     return now - st.pending_since >= p.delay_s
 
 
-def _regime(st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float,
-            held: bool = False) -> list[Event]:
+def _regime(
+    st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float, held: bool = False
+) -> list[Event]:
     # The fit notes a change of the surroundings and starts its window there; the estimate of
     # that moment wanders as readings arrive, so only a start later than the last one alerted on
     # by more than REGIME_GAP_S (or the hold time) counts as new.  A change inside a defrost
@@ -326,7 +347,9 @@ def _regime(st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float,
     return [Event("regime", context={"regime_start": start})]
 
 
-def _enter(st: ItemAlertState, level: str, side: str, now: float, new_episode: bool = False) -> None:
+def _enter(
+    st: ItemAlertState, level: str, side: str, now: float, new_episode: bool = False
+) -> None:
     if new_episode:
         st.episode += 1
     st.level, st.side, st.since, st.off_since, st.pending_since = level, side, now, None, None

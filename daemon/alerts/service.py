@@ -28,17 +28,27 @@ PNG_HISTORY_S = 4 * 3600.0
 
 
 class AlertService:
-    def __init__(self, config: Any, store: Any, clock: Clock | None = None,
-                 publish: Callable[..., Any] | None = None, *, base_s: float = 5.0,
-                 max_s: float = 300.0, poll_s: float = 2.0, attach_png: bool = True):
+    def __init__(
+        self,
+        config: Any,
+        store: Any,
+        clock: Clock | None = None,
+        publish: Callable[..., Any] | None = None,
+        *,
+        base_s: float = 5.0,
+        max_s: float = 300.0,
+        poll_s: float = 2.0,
+        attach_png: bool = True,
+    ):
         self.config = config
         self.store = store
         self.clock = clock or SystemClock()
         self.astore = AlertStore(store)
         self.items: dict[str, Any] = {it.name: it for it in config.items if not it.is_pattern}
         png = self.png_for if attach_png else None
-        self.hooks: list[Hook] = [make_hook(i, h, publish=publish, png_for=png)
-                                  for i, h in enumerate(config.hooks)]
+        self.hooks: list[Hook] = [
+            make_hook(i, h, publish=publish, png_for=png) for i, h in enumerate(config.hooks)
+        ]
         self.worker_opts = {"base_s": base_s, "max_s": max_s, "poll_s": poll_s}
         self.workers: list[OutboxWorker] = []
         self.states: dict[str, ItemAlertState] = {}
@@ -76,8 +86,20 @@ class AlertService:
             st = ItemAlertState.from_json(old.to_json())
             acked = st.level == "crossed" and self.astore.ack_of(name, st.episode) is not None
             events = step(st, body, params, now, acked)
-            alerts = [build_alert(name, body, ev, st, params, now, unit=cfg.unit,
-                                  silence_s=cfg.silence_s, site=cfg.site) for ev in events]
+            alerts = [
+                build_alert(
+                    name,
+                    body,
+                    ev,
+                    st,
+                    params,
+                    now,
+                    unit=cfg.unit,
+                    silence_s=cfg.silence_s,
+                    site=cfg.site,
+                )
+                for ev in events
+            ]
             if alerts or st.to_json() != old.to_json():
                 # Raises on a store failure: the old state stays and the next refit decides again.
                 self.astore.commit_step(name, st.to_json(), alerts, self.hooks_for, now)

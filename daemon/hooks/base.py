@@ -48,8 +48,13 @@ def hook_key(index: int, cfg: Any) -> str:
     return cfg.name or f"{cfg.kind}-{index + 1}"
 
 
-def make_hook(index: int, cfg: Any, *, publish: Callable[..., Any] | None = None,
-              png_for: Callable[[dict[str, Any]], bytes | None] | None = None) -> Hook:
+def make_hook(
+    index: int,
+    cfg: Any,
+    *,
+    publish: Callable[..., Any] | None = None,
+    png_for: Callable[[dict[str, Any]], bytes | None] | None = None,
+) -> Hook:
     key = hook_key(index, cfg)
     if cfg.kind == "webhook":
         from thermeta.daemon.hooks.webhook import WebhookHook

@@ -19,11 +19,19 @@ from typing import Any
 from thermeta.daemon.errors import DeliveryError
 from thermeta.daemon.hooks.base import Hook
 
-FIELDS = (("value_now", "value now"), ("threshold", "threshold"), ("eta_s", "ETA (s)"),
-          ("crossing_at", "crossing at"), ("crossing_lo_at", "interval from"),
-          ("crossing_hi_at", "interval to"), ("ambient", "ambient"),
-          ("ambient_mode", "ambient mode"),
-          ("time_constant_s", "time constant (s)"), ("state", "state"), ("at", "alert time"))
+FIELDS = (
+    ("value_now", "value now"),
+    ("threshold", "threshold"),
+    ("eta_s", "ETA (s)"),
+    ("crossing_at", "crossing at"),
+    ("crossing_lo_at", "interval from"),
+    ("crossing_hi_at", "interval to"),
+    ("ambient", "ambient"),
+    ("ambient_mode", "ambient mode"),
+    ("time_constant_s", "time constant (s)"),
+    ("state", "state"),
+    ("at", "alert time"),
+)
 
 
 def subject(alert: dict[str, Any]) -> str:
@@ -44,8 +52,9 @@ def body_text(alert: dict[str, Any]) -> str:
 class EmailHook(Hook):
     kind = "email"
 
-    def __init__(self, cfg: Any, key: str,
-                 png_for: Callable[[dict[str, Any]], bytes | None] | None = None):
+    def __init__(
+        self, cfg: Any, key: str, png_for: Callable[[dict[str, Any]], bytes | None] | None = None
+    ):
         super().__init__(cfg, key)
         self.png_for = png_for
 
@@ -65,8 +74,12 @@ class EmailHook(Hook):
             except Exception:  # noqa: BLE001 - a failed picture never stops the mail
                 png = None
         if png:
-            msg.add_attachment(png, maintype="image", subtype="png",
-                               filename=f"{alert['item'].replace('/', '_')}-forecast.png")
+            msg.add_attachment(
+                png,
+                maintype="image",
+                subtype="png",
+                filename=f"{alert['item'].replace('/', '_')}-forecast.png",
+            )
         return msg
 
     def deliver(self, alert: dict[str, Any]) -> None:
@@ -77,8 +90,9 @@ class EmailHook(Hook):
         ctx = ssl.create_default_context()
         try:
             if cfg.tls == "implicit":
-                smtp: smtplib.SMTP = smtplib.SMTP_SSL(cfg.host, cfg.port, timeout=cfg.timeout_s,
-                                                      context=ctx)
+                smtp: smtplib.SMTP = smtplib.SMTP_SSL(
+                    cfg.host, cfg.port, timeout=cfg.timeout_s, context=ctx
+                )
             else:
                 smtp = smtplib.SMTP(cfg.host, cfg.port, timeout=cfg.timeout_s)
             with smtp:
@@ -88,5 +102,7 @@ class EmailHook(Hook):
                     smtp.login(user, password or "")
                 smtp.send_message(msg)
         except (smtplib.SMTPException, OSError, ssl.SSLError) as exc:
-            raise DeliveryError(f"{self.key}: mail via {cfg.host}:{cfg.port} failed: "
-                                f"{exc.__class__.__name__}: {exc}") from exc
+            raise DeliveryError(
+                f"{self.key}: mail via {cfg.host}:{cfg.port} failed: "
+                f"{exc.__class__.__name__}: {exc}"
+            ) from exc

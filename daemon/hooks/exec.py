@@ -33,15 +33,25 @@ class ExecHook(Hook):
         env.update(alert_env(alert))
         cmd = list(self.cfg.command)
         try:
-            proc = subprocess.run(cmd, input=json.dumps(alert).encode(), env=env, shell=False,
-                                  capture_output=True,
-                                  timeout=self.cfg.timeout_s, check=False)
+            proc = subprocess.run(
+                cmd,
+                input=json.dumps(alert).encode(),
+                env=env,
+                shell=False,
+                capture_output=True,
+                timeout=self.cfg.timeout_s,
+                check=False,
+            )
         except subprocess.TimeoutExpired as exc:
-            raise DeliveryError(f"{self.key}: {cmd[0]} ran past its {self.cfg.timeout_s:g} s "
-                                "timeout and was stopped") from exc
+            raise DeliveryError(
+                f"{self.key}: {cmd[0]} ran past its {self.cfg.timeout_s:g} s "
+                "timeout and was stopped"
+            ) from exc
         except OSError as exc:
             raise DeliveryError(f"{self.key}: cannot run {cmd[0]}: {exc.strerror or exc}") from exc
         if proc.returncode != 0:
             err = proc.stderr.decode(errors="replace").strip().splitlines()
-            raise DeliveryError(f"{self.key}: {cmd[0]} exited with {proc.returncode}"
-                                + (f": {err[-1][:200]}" if err else ""))
+            raise DeliveryError(
+                f"{self.key}: {cmd[0]} exited with {proc.returncode}"
+                + (f": {err[-1][:200]}" if err else "")
+            )

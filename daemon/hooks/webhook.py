@@ -47,8 +47,11 @@ class WebhookHook(Hook):
         else:
             body, ctype = json.dumps(alert).encode(), "application/json"
         token = os.environ.get(self.cfg.token_env) if self.cfg.token_env else None
-        headers = {"Content-Type": ctype, "User-Agent": "thermeta-alerts",
-                   "Idempotency-Key": alert["id"]}
+        headers = {
+            "Content-Type": ctype,
+            "User-Agent": "thermeta-alerts",
+            "Idempotency-Key": alert["id"],
+        }
         used_token = False
         for name, value in (self.cfg.headers or {}).items():
             if token is not None and "$token" in value:
