@@ -365,7 +365,10 @@ def _run(args: argparse.Namespace, workdir: Path) -> int:
         else:
             # someone else's broker: leave no week-long session behind
             text = text.replace("[broker]\n", "[broker]\nsession_expiry = 60\n", 1)
-        text += f'\n[publish]\ntopic_prefix = "{DEMO_PREFIX}/forecast"\nstatus_topic = "{DEMO_PREFIX}/status"\n'
+        text += (
+            f'\n[publish]\ntopic_prefix = "{DEMO_PREFIX}/forecast"\n'
+            f'status_topic = "{DEMO_PREFIX}/status"\n'
+        )
         cfg_path.write_text(text, encoding="utf-8")
         config = load_config(cfg_path)
         print(

@@ -727,7 +727,8 @@ def _defrost(
     c: _Checker, t: dict, w: tuple, topic: str | None, ambient_topic: str | None
 ) -> dict[str, Any]:
     """defrost_topic (a topic of its own, with wildcards exactly when topic has them),
-    defrost_recovery (seconds, >= 0) and defrost_max (seconds, > 0); the delays only with a topic."""
+    defrost_recovery (seconds, >= 0) and defrost_max (seconds, > 0); the delays only with a
+    topic."""
     dtopic = c.get(t, w, "defrost_topic", "str")
     if dtopic is not None:
         err = check_filter(dtopic)

@@ -18,7 +18,14 @@ import math
 from collections.abc import Sequence
 from typing import Any
 
-from thermeta.daemon.payloads import EPOCH_MAX_S, EPOCH_MIN_S, Limits, PayloadError, Reading
+from thermeta.daemon.payloads import (
+    DEFAULT_LIMITS,
+    EPOCH_MAX_S,
+    EPOCH_MIN_S,
+    Limits,
+    PayloadError,
+    Reading,
+)
 from thermeta.daemon.timefmt import parse_time
 from thermeta.predictors.result import rfc3339
 
@@ -54,7 +61,7 @@ def _ts(v: Any, now: float, limits: Limits) -> tuple[float, bool]:
     return ts, False
 
 
-def parse_defrost(payload: bytes, now: float, limits: Limits = Limits()) -> list[Reading]:
+def parse_defrost(payload: bytes, now: float, limits: Limits = DEFAULT_LIMITS) -> list[Reading]:
     """The defrost state in ``payload`` (received at ``now``) as one reading of 1 or 0.
 
     Raises PayloadError with a short reason (the dead-letter reason) when it holds no state."""

@@ -67,7 +67,8 @@ def broker_accepts(host: str, port: int, timeout_s: float = 3.0) -> bool:
 
 
 class EmbeddedBroker:
-    """amqtt on 127.0.0.1:``port`` (a free one when 0), started and stopped from ordinary threads."""
+    """amqtt on 127.0.0.1:``port`` (a free one when 0), started and stopped from ordinary
+    threads."""
 
     def __init__(self, port: int = 0, host: str = "127.0.0.1") -> None:
         if not 0 <= port <= 65535:
@@ -88,7 +89,8 @@ class EmbeddedBroker:
         }
 
     def start(self, timeout_s: float = 10.0) -> EmbeddedBroker:
-        """Start the broker thread; return once it accepts connections (raise RuntimeError if not)."""
+        """Start the broker thread; return once it accepts connections (raise RuntimeError if
+        not)."""
         if self._thread is not None:
             raise RuntimeError("embedded broker already started")
         ready: Future = Future()

@@ -7,8 +7,8 @@ Accepted forms (values in degrees Celsius out, times in epoch seconds UTC):
 - a bare number such as ``21.4`` (timestamped on receipt and flagged so);
 - a SenML pack (RFC 8428): a JSON array of records with ``bn``, ``bt``, ``bu``, ``n``, ``u``,
   ``v``, ``t``; temperature units ``Cel`` and ``K`` (a record with no unit is taken in the item's
-  unit; records in other units, such as ``%RH``, are skipped).  Per RFC 8428 sec. 4.5.3, a resolved time
-  below 2**28 is relative to now.
+  unit; records in other units, such as ``%RH``, are skipped).  Per RFC 8428 sec. 4.5.3, a
+  resolved time below 2**28 is relative to now.
 """
 
 from __future__ import annotations
@@ -49,11 +49,15 @@ class Limits:
     max_bytes: int = 16384
 
 
+# Frozen, so one shared instance is a safe default for every parser.
+DEFAULT_LIMITS = Limits()
+
+
 def parse_payload(
     payload: bytes,
     now: float,
     unit: str = "C",
-    limits: Limits = Limits(),
+    limits: Limits = DEFAULT_LIMITS,
     senml_name: str | None = None,
 ) -> list[Reading]:
     """Readings in ``payload`` (received at ``now``; ``unit`` is the item's default unit).
@@ -219,7 +223,8 @@ def _check(r: Reading, now: float, limits: Limits) -> None:
         raise PayloadError(f"timestamp {r.ts - now:.0f} s in the future")
     if not limits.low_c <= r.value_c <= limits.high_c:
         raise PayloadError(
-            f"value {r.value_c:.6g} degC outside the plausible range [{limits.low_c:g}, {limits.high_c:g}]"
+            f"value {r.value_c:.6g} degC outside the plausible range "
+            f"[{limits.low_c:g}, {limits.high_c:g}]"
         )
 
 

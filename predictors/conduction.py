@@ -1,4 +1,4 @@
-"""Core-probe model: a probe at the centre of a slab, long cylinder or sphere with surface convection.
+"""Core-probe model: a probe at the centre of a slab, long cylinder or sphere, surface convection.
 
     T(t) = Ta + (Ti - Ta) theta_centre(Fo, Bi),   Fo = a (t - t0),   a = alpha / L^2  [1/s]
 

@@ -5,7 +5,8 @@ the body's uniform Ti to Ta(t0) at t0 and then varies continuously gives
 
     T(t) = Ti + (Ta(t0) - Ti) S(t - t0) + int_t0^t S(t - tau) Ta'(tau) dtau
          = Ti theta(t) + Ta(t0) (1 - theta(t)) + R(t)
-    R(t) = (Ta(t) - Ta(t0)) - sum_n C_n v_n(t),   v_n(t) = int_t0^t exp(-lam_n (t - tau)) Ta'(tau) dtau
+    R(t) = (Ta(t) - Ta(t0)) - sum_n C_n v_n(t),
+    v_n(t) = int_t0^t exp(-lam_n (t - tau)) Ta'(tau) dtau
 
 with lam_n = zeta_n^2 a.  The initial step uses the exact (clamped) centre series; the ramp part R
 takes the ambient as piecewise linear on a uniform grid, for which each mode's recursion is exact:

@@ -23,10 +23,11 @@ readings, 12 % with 40-80 and 10-11 % above 80 (at 25 % of the way to the crossi
 14 % with the ambient known exactly and the readings unquantised: the curve, not the ambient or
 the rounding).  A parametric bootstrap of D at the fitted curve did not reproduce the excess
 (its 90th percentile stayed near the F one; perhaps the fitted curve is better determined than
-the true one where they miss), so the level is corrected empirically, alpha' = alpha (n - p) / (n - p + SMALL_SAMPLE_DOF): 0.94 at 10
-degrees of freedom, 0.92 at 30, 0.904 at 150, and 0.90 as n grows (an O(1 / (n - p))
-correction, as a Bartlett factor is; the scale 6 is half what the figures above ask for alone,
-as an independent seed covered 89.5 % before the correction).
+the true one where they miss), so the level is corrected empirically,
+alpha' = alpha (n - p) / (n - p + SMALL_SAMPLE_DOF): 0.94 at 10 degrees of freedom, 0.92 at
+30, 0.904 at 150, and 0.90 as n grows (an O(1 / (n - p)) correction, as a Bartlett factor is;
+the scale 6 is half what the figures above ask for alone, as an independent seed covered 89.5 %
+before the correction).
 """
 
 from __future__ import annotations

@@ -20,7 +20,8 @@ Ambient modes:
 - fitted: a free within ``bounds`` (a plausible range);
 - known: a Gaussian prior a ~ N(a0, ambient_sd^2), folded into the objective as
   lam (a - a0)^2 with lam = sigma^2 / ambient_sd^2 (sigma: reading noise), so a given ambient that
-  is a couple of degrees off widens the interval instead of biasing it unseen; ambient_sd = 0 fixes a.
+  is a couple of degrees off widens the interval instead of biasing it unseen; ambient_sd = 0
+  fixes a.
 
 Point forecast with the ambient fitted and no prior: a fit that crosses keeps its present value
 and slope, and its bend ahead only in the measure the readings show it (``bend_weight``: k shrunk by
@@ -108,8 +109,8 @@ def eta_sets(
     """Per k, the crossing times eta >= 0 of curves inside {RSS(k, a, b) <= RSS_k + delta}.
 
     For fixed k the objective is quadratic in (a, b) with Hessian/2 M, so the constrained minimum
-    on the line a + b c = thr (c = e^(-k (D + eta))) exceeds RSS_k by (a_k + b_k c - thr)^2 / g'M^-1 g,
-    g = (1, c).  Hence eta is inside iff
+    on the line a + b c = thr (c = e^(-k (D + eta))) exceeds RSS_k by
+    (a_k + b_k c - thr)^2 / g'M^-1 g, g = (1, c).  Hence eta is inside iff
         (b_k c + a_k - thr)^2 <= delta (m11 + 2 m12 c + m22 c^2),
     a quadratic inequality in c.  c <= 0 means a curve levelling off short of the threshold
     (eta = inf); c >= e^(-k D) means already past (eta = 0).  Returns (lo, hi), NaN where empty.

@@ -42,10 +42,10 @@ class Corruption:
 
     noise: Gaussian sd; quantum: round to this step (0.1 for most probes); spike_frac / spike_size:
     fraction of readings hit by +-spike_size (size drawn from 0.5-1.5 x spike_size, random sign);
-    n_gaps / gap_frac: that many dropouts removing gap_frac of the span in total; irregular: relative
-    jitter of the sampling interval (0.5 = each step drawn from 0.5-1.5 x dt); dup_frac: fraction
-    of readings repeated with the same timestamp; shuffle_frac: fraction of readings moved out of
-    order (arrival order, not time order).
+    n_gaps / gap_frac: that many dropouts removing gap_frac of the span in total; irregular:
+    relative jitter of the sampling interval (0.5 = each step drawn from 0.5-1.5 x dt); dup_frac:
+    fraction of readings repeated with the same timestamp; shuffle_frac: fraction of readings
+    moved out of order (arrival order, not time order).
     """
 
     noise: float = 0.0

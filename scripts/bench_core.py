@@ -102,7 +102,8 @@ def reefer_air(seed: int):
 
 
 def sphere_measured(seed: int):
-    """Centre of a sphere, Bi 0.8-4, 2-4 degC in 20-30 degC air (measured), to 8 degC, seen 35-65 %."""
+    """Centre of a sphere, Bi 0.8-4, 2-4 degC in 20-30 degC air (measured), to 8 degC, seen
+    35-65 %."""
     from thermeta.predictors.synth_conduction import core_probe
 
     r = np.random.default_rng(40_000 + seed)

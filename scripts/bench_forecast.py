@@ -27,6 +27,8 @@ Figures per family, variant and point of progress:
 - CRB-limited figures: the median and p90 an efficient unbiased estimator would reach on the same
   cases; a target that fails where the CRB-limited figure fails too is marked "at the limit":
   the readings alone cannot meet it there (a prior can, section 4 of the issue).
+- ratios to the clean figures (spikes, dropouts): a failed one is shown beside the same ratio of
+  the CRB-limited figures and its own 5-95 % range over a paired bootstrap of the cases.
 """
 
 from __future__ import annotations
@@ -586,7 +588,8 @@ def run_regime_case(index: int, seed: int) -> list[dict]:
 
 
 def sawtooth_k(p: dict) -> float:
-    """k giving the drawn period: off  t = ln((W - low)/(W - high))/k, on  t = ln((high - C)/(low - C))/k."""
+    """k giving the drawn period:
+    off t = ln((W - low)/(W - high))/k, on t = ln((high - C)/(low - C))/k."""
     low, high = p["mid"] - p["half_swing"], p["mid"] + p["half_swing"]
     logs = math.log((p["warm"] - low) / (p["warm"] - high)) + math.log(
         (high - p["coil"]) / (low - p["coil"])
@@ -717,7 +720,7 @@ def coverage(recs: list[dict]) -> float:
 
 
 def crb_ratio(recs: list[dict]) -> float:
-    """median(|z|) / 0.6745, z = (eta - eta_true) / sd_CRB: 1 for an efficient unbiased estimator."""
+    """median(|z|) / 0.6745, z = (eta - eta_true) / sd_CRB: 1 for an efficient, unbiased one."""
     z = [
         (r["eta"] - r["eta_true"]) / r["crb_sd"]
         for r in recs
@@ -745,6 +748,47 @@ def crb_limited(recs: list[dict], draws: int = 400) -> tuple[float, float] | Non
     z = np.abs(np.random.default_rng(0).standard_normal((len(rel), draws)))
     e = np.minimum(z * np.asarray(rel)[:, None], MISSING_ERR).ravel()
     return float(np.median(e)), float(np.percentile(e, 90))
+
+
+def ratio_ranges(records: list[dict], boot: int = 2000) -> dict:
+    """Per (family, variant, progress) of the spikes and dropouts variants: the 5-95 % range of
+    the median and p90 ratios to the clean figures over a paired bootstrap of the cases (the same
+    case drawn for both), seeded.  A p90 over 200 cases is itself uncertain; this says by how much
+    the ratio would move with another 200."""
+    errs: dict[tuple, dict[int, float]] = {}
+    for r in records:
+        if "skipped" in r or (r.get("eta_true") or 0) <= 0 or "index" not in r:
+            continue
+        est = r.get("eta")
+        e = (
+            MISSING_ERR
+            if est is None
+            else min(abs(est - r["eta_true"]) / r["eta_true"], MISSING_ERR)
+        )
+        errs.setdefault((r["family"], r["variant"], r["progress"]), {})[r["index"]] = e
+    rng = np.random.default_rng(0)
+    out = {}
+    for (fam, var, prog), dirty in sorted(errs.items()):
+        clean = errs.get((fam, "clean", prog))
+        if var == "clean" or clean is None:
+            continue
+        idx = sorted(set(dirty) & set(clean))
+        if len(idx) < 20:
+            continue
+        c = np.array([clean[i] for i in idx])
+        d = np.array([dirty[i] for i in idx])
+        draw = rng.integers(0, len(idx), (boot, len(idx)))
+        out[(fam, var, prog)] = {
+            stat: tuple(
+                np.percentile(
+                    np.percentile(d[draw], q, axis=1)
+                    / np.maximum(np.percentile(c[draw], q, axis=1), RATIO_FLOOR),
+                    [5, 95],
+                )
+            )
+            for stat, q in (("median", 50), ("p90", 90))
+        }
+    return out
 
 
 def summarise(records: list[dict]) -> dict:
@@ -789,6 +833,8 @@ def summarise(records: list[dict]) -> dict:
             row["eta_12h"] = sum(1 for x in etas if x <= 12 * H)
             row["eta_45min"] = sum(1 for x in etas if x <= 45 * MIN)
         out[key] = row
+    for key, ranges in ratio_ranges(records).items():
+        out[key]["ratio_range"] = ranges
     return out
 
 
@@ -855,6 +901,19 @@ def _series(summary: dict, fam: str, var: str, key: str, idx: int | None = None)
         v = row.get(key, math.nan)
         out.append(v[idx] if idx is not None and isinstance(v, tuple) else v)
     return out
+
+
+def ratio_note(summary: dict, fam: str, var: str, stat: str, lim: list[float]) -> str | None:
+    """What a failed ratio is measured against: the same ratio at the Cramer-Rao bound and this
+    ratio's own spread over the cases (paired bootstrap), at each point of progress."""
+    ranges = [summary.get((fam, var, f), {}).get("ratio_range", {}).get(stat) for f in PROGRESS]
+    if not all(ranges):
+        return None
+    spread = " / ".join(f"{lo:.2f}-{hi:.2f}" for lo, hi in ranges)
+    return (
+        f"CRB-limited ratio {' / '.join(_fmt(v, 'ratio') for v in lim)}; "
+        f"this ratio's bootstrap 5-95 % range over the cases {spread}"
+    )
 
 
 def checks(summary: dict, families: tuple[str, ...]) -> list[Check]:
@@ -930,6 +989,7 @@ def checks(summary: dict, families: tuple[str, ...]) -> list[Check]:
                     "ratio",
                     limited=lim,
                 )
+                out[-1].note = ratio_note(summary, fam, var, stat, lim)
     if "warm_known" in families:
         t = T["warm_known"]
         add(
@@ -1154,7 +1214,8 @@ def detail_table(summary: dict) -> list[str]:
                     f"| {fam} | {var} | {100 * frac:.0f} % | {r['n']} | {_fmt(r['median'])} | "
                     f"{_fmt(r['p90'])} | {r['no_eta']} | {_fmt(r['cover'])} | "
                     f"{_fmt(r['crb'], 'ratio') if math.isfinite(r['crb']) else '-'} | "
-                    f"{_mp(r.get('crb_limited'))} | {_mp(r.get('linear'))} | {_mp(r.get('lsq3'))} | {_mp(r.get('two_reading'))} |"
+                    f"{_mp(r.get('crb_limited'))} | {_mp(r.get('linear'))} | "
+                    f"{_mp(r.get('lsq3'))} | {_mp(r.get('two_reading'))} |"
                 )
     return lines
 
@@ -1250,7 +1311,8 @@ def markdown(summary: dict, cs: list[Check], meta: dict) -> str:
         f"Produced by `{meta['command']}` ({meta['elapsed_s']:.0f} s on this machine, seed "
         f"{meta['seed']}, {meta['cases']}, tree {meta['commit']}).",
         "",
-        "Relative ETA error = |ETA - true ETA| / true ETA, the ETA counted from the newest reading, "
+        "Relative ETA error = |ETA - true ETA| / true ETA, the ETA counted from the newest "
+        "reading, "
         "at 25 / 50 / 75 % of the time from the start to the true crossing. A missing ETA where "
         "the truth crosses counts as 1000 %. Spread/CRB = median(|z|)/0.6745 with "
         "z = (ETA - true) / (Cramer-Rao sd of the ETA); 1 is the statistical limit. "
@@ -1262,7 +1324,9 @@ def markdown(summary: dict, cs: list[Check], meta: dict) -> str:
         "both probes observed; for the centre probes, of (Ti, Ta, ln Bi, ln a) with the episode's "
         "start known and the set point measured by the air probe. For spikes and dropouts the "
         "ratio to the clean figures is marked at the limit where the same ratio of the "
-        "CRB-limited figures fails too (the gaps alone cost that much information).",
+        "CRB-limited figures fails too (the gaps alone cost that much information); a failed "
+        "ratio also shows its 5-95 % range over a paired bootstrap of the cases (one p90 of "
+        "200 cases is itself uncertain by that much).",
         "Baselines: linear = straight line through the last 30 min; LSQ-3 = plain unweighted "
         "3-parameter least squares; two-reading = the textbook solve for k from the first and "
         "last reading with the given ambient.",
@@ -1286,10 +1350,13 @@ def markdown(summary: dict, cs: list[Check], meta: dict) -> str:
         + params_table()
         + [
             "",
-            f"All readings quantised to {QUANTUM:g} degC, sampling jitter +-{100 * IRREGULAR:.0f} %. "
-            f"Spikes: {100 * SPIKES['spike_frac']:g} % of readings, +-{SPIKES['spike_size']:g} degC "
+            f"All readings quantised to {QUANTUM:g} degC, "
+            f"sampling jitter +-{100 * IRREGULAR:.0f} %. "
+            f"Spikes: {100 * SPIKES['spike_frac']:g} % of readings, "
+            f"+-{SPIKES['spike_size']:g} degC "
             "(0.5-1.5 x). Dropouts: 1 gap (windows under 3 h) or 2, each 10-30 min, capped at "
-            f"{100 * GAP_CAP:g} % of the window / number of gaps, inside 10-90 % of the window. In the ratios to the clean figures, clean figures under "
+            f"{100 * GAP_CAP:g} % of the window / number of gaps, inside 10-90 % of the window. "
+            "In the ratios to the clean figures, clean figures under "
             f"{100 * RATIO_FLOOR:g} % count as {100 * RATIO_FLOOR:g} %.",
             "",
         ]

@@ -1,5 +1,7 @@
 #!/usr/bin/env python3
-"""End-to-end ingest throughput of `thermeta run` beside a bare paho subscriber, same broker, same run.
+# The backslash lets the first line, which is the --help description, run to the margin.
+"""\
+End-to-end ingest throughput of `thermeta run` beside a bare paho subscriber, same broker, same run.
 
     python scripts/bench_ingest.py [--messages 100000] [--items 1000] [--repeat 3]
 
@@ -96,7 +98,9 @@ else:
     c.connect("127.0.0.1", port)
 c.loop_start()
 deadline = time.time() + 600
-while time.time() < deadline and (state["got"] < n if mode != "register" else not state["subscribed"]):
+while time.time() < deadline and (
+    state["got"] < n if mode != "register" else not state["subscribed"]
+):
     time.sleep(0.005)
 c.disconnect()
 c.loop_stop()

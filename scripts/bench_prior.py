@@ -178,7 +178,8 @@ def summarise(fam: str, cases: list[dict]) -> list[str]:
     ratio = b_med / w_med if w_med > 0 else math.inf
     gain_min = float(np.median(base * cross_min) - np.median(with_ * cross_min))
     rows.append(
-        f"| {fam} | right prior earlier by (difference of medians) | {_pct(gain)} | {_min(gain_min)} | | ratio {ratio:.1f}x |"
+        f"| {fam} | right prior earlier by (difference of medians) | {_pct(gain)} | "
+        f"{_min(gain_min)} | | ratio {ratio:.1f}x |"
         " | | | | |"
     )
     return rows

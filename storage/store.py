@@ -238,7 +238,8 @@ class Store:
         reading_rows: Sequence[tuple | dict[str, Any]],
         dead_rows: Sequence[dict[str, Any]] = (),
     ) -> int:
-        """Insert readings (duplicates of (item_id, ts) ignored) and dead letters in ONE transaction.
+        """Insert readings (duplicates of (item_id, ts) ignored) and dead letters in ONE
+        transaction.
 
         reading_rows: tuples (item_id, ts, value_c, flags, received_at), or dicts with those keys.
         dead_rows: dicts with received_at, topic, item, reason, payload.
@@ -382,7 +383,8 @@ class Store:
                 )
 
     def latest_forecasts(self) -> list[dict[str, Any]]:
-        """The current forecast of each item: dicts with item, state, made_at, forecast (the JSON)."""
+        """The current forecast of each item: dicts with item, state, made_at, forecast (the
+        JSON)."""
         newest = select(func.max(forecasts.c.id)).group_by(forecasts.c.item_id).scalar_subquery()
         q = (
             select(items.c.name, forecasts.c.state, forecasts.c.made_at, forecasts.c.body)

@@ -87,7 +87,10 @@ class Broker:
 
 def _need_mosquitto() -> None:
     if shutil.which("mosquitto") is None or shutil.which("mosquitto_pub") is None:
-        msg = "mosquitto / mosquitto-clients not installed (apt-get install mosquitto mosquitto-clients)"
+        msg = (
+            "mosquitto / mosquitto-clients not installed "
+            "(apt-get install mosquitto mosquitto-clients)"
+        )
         if IN_CI:
             pytest.fail(f"CI=true but {msg}")
         pytest.skip(msg)

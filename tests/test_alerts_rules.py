@@ -372,8 +372,8 @@ def _excursion(
 def test_delay_lets_a_short_excursion_pass_and_raises_a_long_one_when_it_is_over():
     """The alarm delay (common practice for air probes by a door): with delay 15 min, 10 minutes
     past the threshold raise nothing, not even the change of surroundings; 20 minutes raise the
-    regime change and `crossed` 15 min after the value went past (the order as without a delay).  Without a
-    delay the short excursion raises regime, crossed and recovered."""
+    regime change and `crossed` 15 min after the value went past (the order as without a delay).
+    Without a delay the short excursion raises regime, crossed and recovered."""
     d15 = RuleParams(threshold=THR, lead_s=1800, hold_s=300, delay_s=900)
     _, out = run([FIRST] + _excursion(3600, 10), d15)
     assert out == []

@@ -123,7 +123,8 @@ def test_already_past_upper_limit_gives_zero(tmp_path):
 
 
 def test_never_reaching_threshold_gives_null(tmp_path):
-    """A load levelling off toward 27 degC never reaches 40 degC: eta_s is null, no crossing time."""
+    """A load levelling off toward 27 degC never reaches 40 degC: eta_s is null, no crossing
+    time."""
     p = tmp_path / "load.csv"
     write_warming_csv(p)
     out = json.loads(

@@ -1,4 +1,5 @@
-"""The core-probe fit: recovery of Bi and the crossing time, edge cases, and its independent checks."""
+"""The core-probe fit: recovery of Bi and the crossing time, edge cases, and its independent
+checks."""
 
 from __future__ import annotations
 
@@ -250,7 +251,8 @@ def test_fit_agrees_with_lmfit():
 
 def test_interval_coverage_known_ambient():
     """Over 60 seeded sphere/slab/cylinder cases (Bi 0.3-5) with the ambient known, the 90 %
-    interval covers the true crossing in 80-98 % of them (profile likelihood; measured 93 % when written)."""
+    interval covers the true crossing in 80-98 % of them (profile likelihood; measured 93 % when
+    written)."""
     rng = np.random.default_rng(7)
     hits = 0
     n = 60

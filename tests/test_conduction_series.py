@@ -1,4 +1,5 @@
-"""The conduction eigen-solver and centre series against published tables and scipy's own solvers."""
+"""The conduction eigen-solver and centre series against published tables and scipy's own
+solvers."""
 
 from __future__ import annotations
 

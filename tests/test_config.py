@@ -1,4 +1,5 @@
-"""The TOML config: the issue's minimal config as written, every problem as FILE:LINE: key: problem."""
+"""The TOML config: the issue's minimal config as written, every problem as FILE:LINE: key:
+problem."""
 
 from __future__ import annotations
 
@@ -60,7 +61,8 @@ def test_minimal_config_from_the_issue_loads_as_written(tmp_path):
 
 
 def test_every_problem_is_reported_with_its_line(tmp_path):
-    """All problems come at once, each as FILE:LINE: key: problem, pointing at the offending line."""
+    """All problems come at once, each as FILE:LINE: key: problem, pointing at the offending
+    line."""
     text = """\
     [broker]
     port = "eighteen"
@@ -153,7 +155,8 @@ def test_wildcard_items_need_a_name_template(tmp_path):
 
 
 def test_units_are_converted_to_celsius(tmp_path):
-    """A Fahrenheit item's threshold and ambient convert to degC: (F - 32) * 5/9 (the definition)."""
+    """A Fahrenheit item's threshold and ambient convert to degC: (F - 32) * 5/9 (the
+    definition)."""
     cfg = load_config(
         write(
             tmp_path,

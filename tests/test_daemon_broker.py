@@ -96,7 +96,8 @@ def count_readings(db_url: str, item: str) -> int:
         with eng.connect() as conn:
             return conn.execute(
                 text(
-                    "SELECT count(*) FROM readings r JOIN items i ON i.id = r.item_id WHERE i.name = :n"
+                    "SELECT count(*) FROM readings r JOIN items i ON i.id = r.item_id "
+                    "WHERE i.name = :n"
                 ),
                 {"n": item},
             ).scalar_one()
@@ -112,8 +113,8 @@ def stored_times(db_url: str, item: str) -> list[float]:
                 r[0]
                 for r in conn.execute(
                     text(
-                        "SELECT r.ts FROM readings r JOIN items i ON i.id = r.item_id WHERE i.name = :n "
-                        "ORDER BY r.ts"
+                        "SELECT r.ts FROM readings r JOIN items i ON i.id = r.item_id "
+                        "WHERE i.name = :n ORDER BY r.ts"
                     ),
                     {"n": item},
                 )

@@ -330,8 +330,8 @@ ambient = 27.0
 
 def test_an_item_in_defrost_says_so(tmp_path):
     """While the controller's defrost signal is on, new alerts are held (daemon/alerts/rules.py):
-    the board says "(defrost)" after the item's name, so an approaching air probe without an alert is
-    explained, and the plain lines say it too."""
+    the board says "(defrost)" after the item's name, so an approaching air probe without an alert
+    is explained, and the plain lines say it too."""
     from thermeta.daemon.dashboard import plain_lines
 
     store = fill_store(f"sqlite:///{tmp_path / 'd.db'}")

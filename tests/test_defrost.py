@@ -378,7 +378,7 @@ url = "{receiver.url}"
             )
             if t > D_ON:
                 assert _wait(
-                    lambda: (
+                    lambda t=t: (
                         len(svc.store.recent_readings("told.defrost")) == (1 if t <= D_OFF else 2)
                     )
                 )

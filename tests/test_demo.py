@@ -73,7 +73,8 @@ TOLERANCE = {
 
 @pytest.fixture(scope="module")
 def headless_run(tmp_path_factory):
-    """One `thermeta demo --embedded --headless --duration 30 --speed 320` run for the tests below."""
+    """One `thermeta demo --embedded --headless --duration 30 --speed 320` run for the tests
+    below."""
     summary_path = tmp_path_factory.mktemp("demo") / "summary.json"
     t0 = time.monotonic()
     r = subprocess.run(

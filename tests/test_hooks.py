@@ -138,7 +138,8 @@ def test_exec_gets_json_on_stdin_and_env_without_a_shell(tmp_path):
         "import json, os, sys\n"
         "data = json.load(sys.stdin)\n"
         "env = {k: v for k, v in os.environ.items() if k.startswith('THERMETA_')}\n"
-        "open(sys.argv[1], 'w').write(json.dumps({'stdin': data, 'env': env, 'argv': sys.argv[2:]}))\n"
+        "open(sys.argv[1], 'w')"
+        ".write(json.dumps({'stdin': data, 'env': env, 'argv': sys.argv[2:]}))\n"
     )
     h = hook(kind="exec", command=(sys.executable, str(prog), str(out), "$(touch x); ls"))
     h.deliver(ALERT)

@@ -142,7 +142,8 @@ def test_a_slow_hook_never_delays_the_refit_thread(tmp_path):
     # Written aside and renamed, so the test never reads a file the program is still writing.
     prog = (
         f"import os, sys, time; time.sleep(3); data = sys.stdin.read(); "
-        f"open({str(out) + '.part'!r}, 'w').write(data); os.replace({str(out) + '.part'!r}, {str(out)!r})"
+        f"open({str(out) + '.part'!r}, 'w').write(data); "
+        f"os.replace({str(out) + '.part'!r}, {str(out)!r})"
     )
     cmd = json.dumps([sys.executable, "-c", prog])
     path = write_config(tmp_path, f'[[hook]]\nkind = "exec"\ncommand = {cmd}\ntimeout = 20\n')

@@ -1,4 +1,5 @@
-"""Payload parsing: JSON objects, bare numbers, SenML packs (RFC 8428), and the dead-letter reasons."""
+"""Payload parsing: JSON objects, bare numbers, SenML packs (RFC 8428), and the dead-letter
+reasons."""
 
 from __future__ import annotations
 

@@ -1,4 +1,5 @@
-"""Early and cycling forecasts against solve_ivp trajectories: few readings, no bend, a thermostat."""
+"""Early and cycling forecasts against solve_ivp trajectories: few readings, no bend, a
+thermostat."""
 
 from __future__ import annotations
 

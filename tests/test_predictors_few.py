@@ -209,10 +209,10 @@ def test_a_gap_in_the_air_follows_the_air_curve():
 
 def test_four_readings_against_a_steady_air_probe():
     """A blast chiller's air probe holding its set point (-3.2 degC, flat to its 0.1 degC step)
-    and four readings of a tray cooling toward it, 100 s apart: the air's rate cannot be told from a flat
-    line, which is no reason to fail (it once overflowed): the air is held at its mean, and the
-    forecast has an interval whose
-    early end is above 0 and that holds the solve_ivp crossing."""
+    and four readings of a tray cooling toward it, 100 s apart: the air's rate cannot be told from
+    a flat line, which is no reason to fail (it once overflowed): the air is held at its mean, and
+    the forecast has an interval whose early end is above 0 and that holds the solve_ivp
+    crossing."""
     k, T0, air_c = 1 / 2400, 70.0, -3.2
     x = np.array([0.0, 105.1, 203.1, 295.2])
     load = np.round(newton(x, T0, k, air_c) / 0.1) * 0.1

@@ -285,17 +285,17 @@ def test_air_crb_matches_the_spread_of_a_maximum_likelihood_fit():
     keys = tuple(p)
     scale = np.array([abs(p[k]) for k in keys])
     air_true, load_true = air_load(t, **p)
+
+    def resid(u, ya, yl):
+        a, ld = air_load(t, **dict(zip(keys, u * scale)))
+        return np.concatenate([a - ya, ld - yl])
+
     rng = np.random.default_rng(7)
     etas = []
     for _ in range(200):
         ya = air_true + rng.normal(0, sig, t.size)
         yl = load_true + rng.normal(0, sig, t.size)
-
-        def resid(u):
-            a, ld = air_load(t, **dict(zip(keys, u * scale)))
-            return np.concatenate([a - ya, ld - yl])
-
-        u = least_squares(resid, np.ones(len(keys)), x_scale="jac").x * scale
+        u = least_squares(resid, np.ones(len(keys)), x_scale="jac", args=(ya, yl)).x * scale
         fit = dict(zip(keys, u))
         grid = t[-1] + np.linspace(0, 20 * 3600, 20001)
         above = np.flatnonzero(air_load(grid, **fit)[1] >= thr)

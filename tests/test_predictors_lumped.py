@@ -1,4 +1,5 @@
-"""The lumped (Newton) forecast against outside references: solve_ivp, lmfit, the trade's figures."""
+"""The lumped (Newton) forecast against outside references: solve_ivp, lmfit, the trade's
+figures."""
 
 from __future__ import annotations
 

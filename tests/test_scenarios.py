@@ -43,7 +43,8 @@ def test_two_stage_matches_solve_ivp_across_pieces():
 
 
 def test_two_stage_equal_rates_limit():
-    """With the air and load rates equal, the t e^(-kt) limit is used and still matches solve_ivp."""
+    """With the air and load rates equal, the t e^(-kt) limit is used and still matches
+    solve_ivp."""
     pieces = [(0.0, 30.0, 1 / 3600)]
     t = np.linspace(0, 5 * 3600, 50)
     _, load = S.two_stage(t, pieces, 2.0, 2.0, 1 / 3600)
@@ -127,7 +128,8 @@ def test_cooling_schedule_verdicts():
 
 def test_healthy_cold_room_air_cycles_and_crates_never_cross():
     """The thermostat keeps the cold room's air between its switch points (1.5 and 4 degC) and the
-    crates never reach the 5 degC limit (cold holding: FDA Food Code 2022, 3-501.16, from memory)."""
+    crates never reach the 5 degC limit (cold holding: FDA Food Code 2022, 3-501.16, from
+    memory)."""
     sc = S.build("cold-room-healthy")
     air = sc.probe("hillside-dairy/cold-room-b/air").y_clean
     assert air.min() > 1.5 - 1e-6 and air.max() < 4.0 + 1e-6

@@ -1,8 +1,8 @@
 """An alert as data (the JSON every hook gets) and as one plain sentence with the numbers.
 
-    trailer-4 is approaching its threshold: -16.4 °C now against a threshold of -15.0 °C, forecast to
-    cross at 14:05 UTC (in 42 min; 90 % interval 13:50 UTC to 14:31 UTC, in 27 min to 68 min);
-    fitted ambient 12.0 °C, time constant 9 h 58 min.
+    trailer-4 is approaching its threshold: -16.4 °C now against a threshold of -15.0 °C,
+    forecast to cross at 14:05 UTC (in 42 min; 90 % interval 13:50 UTC to 14:31 UTC, in 27 min
+    to 68 min); fitted ambient 12.0 °C, time constant 9 h 58 min.
 
 Clock times are the host's local zone with its name, durations counted from the alert's time.
 """

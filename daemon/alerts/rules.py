@@ -12,8 +12,8 @@ again), and ``regime`` when the fit reports that the surroundings changed at a n
 
 No flapping: a level is raised once and then holds; a crossing clears by the hysteresis band (or
 inside but not yet by the band, for ``hold_s``); an approach clears only when the early end of
-the interval has stayed beyond a band of one more lead (2 x lead) for ``hold_s``.  While crossed, a reminder goes out every
-``remind_every_s`` unless the episode was acknowledged.
+the interval has stayed beyond a band of one more lead (2 x lead) for ``hold_s``.  While crossed,
+a reminder goes out every ``remind_every_s`` unless the episode was acknowledged.
 
 Defrost hold (common practice in the trade: temperature alarms wait through a defrost and a
 recovery delay after it, because the room air swings up while the coil is heated).  When the

@@ -38,6 +38,7 @@ class Hook(ABC):
 
     def close(self) -> None:
         """Release what the hook holds (nothing by default)."""
+        return None
 
     def __repr__(self) -> str:
         return f"<{self.__class__.__name__} {self.key}>"
