@@ -757,16 +757,9 @@ def ratio_ranges(records: list[dict], boot: int = 2000) -> dict:
     the ratio would move with another 200."""
     errs: dict[tuple, dict[int, float]] = {}
     for r in records:
-        if "skipped" in r or (r.get("eta_true") or 0) <= 0 or "index" not in r:
-            continue
-        est = r.get("eta")
-        e = (
-            MISSING_ERR
-            if est is None
-            else min(abs(est - r["eta_true"]) / r["eta_true"], MISSING_ERR)
-        )
-        errs.setdefault((r["family"], r["variant"], r["progress"]), {})[r["index"]] = e
-    rng = np.random.default_rng(0)
+        e = rel_errors([r]) if "skipped" not in r and "index" in r else ()
+        if len(e):
+            errs.setdefault((r["family"], r["variant"], r["progress"]), {})[r["index"]] = e[0]
     out = {}
     for (fam, var, prog), dirty in sorted(errs.items()):
         clean = errs.get((fam, "clean", prog))
@@ -777,6 +770,8 @@ def ratio_ranges(records: list[dict], boot: int = 2000) -> dict:
             continue
         c = np.array([clean[i] for i in idx])
         d = np.array([dirty[i] for i in idx])
+        # seeded per figure, so that a figure does not depend on which families ran with it
+        rng = np.random.default_rng([FAMILIES.index(fam), VARIANTS.index(var), round(100 * prog)])
         draw = rng.integers(0, len(idx), (boot, len(idx)))
         out[(fam, var, prog)] = {
             stat: tuple(
