@@ -147,3 +147,50 @@ def test_readme_block_is_replaced_between_its_markers(tmp_path):
     q.write_text("no markers here\n")
     err = update_readme(q, f"{begin}\nx\n{end}", begin, end)
     assert err is not None and str(q) in err and q.read_text() == "no markers here\n"
+
+
+def _paired_records(family: str, n: int, dirty_scale: float, seed: int) -> list[dict]:
+    """Clean and dropouts records of n cases at 50 %: relative errors |N(0, 0.02)|, the dirty
+    ones dirty_scale times larger, paired by case index."""
+    rng = np.random.default_rng(seed)
+    recs = []
+    for i in range(n):
+        e = abs(rng.normal(0.0, 0.02))
+        for variant, scale in (("clean", 1.0), ("dropouts", dirty_scale)):
+            recs.append(
+                {
+                    "family": family,
+                    "variant": variant,
+                    "progress": 0.5,
+                    "index": i,
+                    "eta_true": 3600.0,
+                    "eta": 3600.0 * (1.0 + scale * e),
+                }
+            )
+    return recs
+
+
+def test_ratio_range_brackets_the_ratio_and_stands_alone(bench):
+    """The bootstrap range of a ratio to the clean figures holds the ratio itself (here exactly
+    1.6, every dirty error being 1.6 times its clean one), and it is the same whether or not
+    other families ran in the same bench (each figure draws from its own seed)."""
+    cyl = _paired_records("centre_cylinder", 200, 1.6, seed=3)
+    alone = bench.ratio_ranges(cyl)[("centre_cylinder", "dropouts", 0.5)]
+    lo, hi = alone["p90"]
+    assert lo == pytest.approx(1.6) and hi == pytest.approx(1.6)
+    # errors independent between the variants: the range widens and still holds the ratio
+    mixed = _paired_records("centre_sphere", 200, 1.0, seed=4)
+    rng = np.random.default_rng(5)
+    for r in mixed:
+        if r["variant"] == "dropouts":
+            r["eta"] = 3600.0 * (1.0 + abs(rng.normal(0.0, 0.03)))
+    both = bench.ratio_ranges(cyl + mixed)
+    # the sphere's figure comes after the cylinder's: it must not depend on it having run
+    key = ("centre_sphere", "dropouts", 0.5)
+    assert both[key] == bench.ratio_ranges(mixed)[key]
+    assert both[("centre_cylinder", "dropouts", 0.5)] == alone
+    clean = bench.rel_errors([r for r in mixed if r["variant"] == "clean"])
+    dirty = bench.rel_errors([r for r in mixed if r["variant"] == "dropouts"])
+    ratio = np.percentile(dirty, 90) / np.percentile(clean, 90)
+    lo, hi = both[("centre_sphere", "dropouts", 0.5)]["p90"]
+    assert lo < ratio < hi and hi - lo > 0.2
