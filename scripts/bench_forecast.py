@@ -44,7 +44,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-from thermeta.predictors import baselines, synth
+from thermeta.predictors import baselines, lumped, synth
 from thermeta.predictors import forecast as forecast_fn
 from thermeta.predictors.forecast import ambient_sd_within
 from thermeta.predictors.synth import Corruption, Synth
@@ -530,8 +530,32 @@ def run_curve_case(family: str, index: int, seed: int) -> list[dict]:
             rec.update(family=family, variant=variant, progress=frac, index=index)
             if family.startswith("centre_") and variant == "clean":
                 rec.update(auto_pick(case))
+            if family == "warm_fitted" and variant == "clean" and rec.get("eta") is None:
+                rec.update(straight_trend(case.s.t, case.s.y, case.s.threshold, p["limit"]))
             recs.append(rec)
     return recs
+
+
+TREND_RULES = (1.0, 2.0, 3.0, 4.0, 6.0, math.inf)  # reaches (spans watched) tried in the what-if
+
+
+def straight_trend(t: np.ndarray, y: np.ndarray, thr: float, limit: str) -> dict:
+    """For a forecast without a point ETA: whether the readings show a bend (the lumped fit's own
+    F test against a straight line, ``lumped.bend_weight``) and, where they do not, when their
+    straight trend reaches the threshold, from the newest reading, and how many spans of readings
+    watched that is ahead.  The predictor takes that trend as its point forecast only up to
+    ``lumped.TREND_REACH`` spans; the bench's what-if table tries longer reaches."""
+    fit = lumped.fit_lumped(t, y, thr, limit=limit, intervals=False)
+    if not fit.ok:
+        return {}
+    d = t - t[0]
+    ybar = float(y.mean())
+    if lumped.bend_weight(d, y - ybar, fit.rss, fit.dof) > 0:
+        return {"bent": True}
+    span = float(d[-1])
+    slope, icpt = np.polyfit(d, y - ybar, 1)
+    eta = lumped.shrunk_eta(float(icpt + slope * span), float(slope), 0.0, thr - ybar, limit)
+    return {"bent": False, "trend_eta": eta, "trend_reach": None if eta is None else eta / span}
 
 
 def auto_pick(case: Case) -> dict:
@@ -542,7 +566,7 @@ def auto_pick(case: Case) -> dict:
         fc = forecast_fn(case.s.t, case.s.y, case.s.threshold, **dict(case.kwargs, model="auto"))
     except Exception:  # noqa: BLE001 - a crash is a figure: no pick
         return {"auto_model": None}
-    out = {"auto_model": fc.model if fc.ok else None}
+    out = {"auto_model": fc.model if fc.ok else None, "auto_eta": fc.eta_s if fc.ok else None}
     fit = fc.model_fit
     data = getattr(fit, "_data", None)
     truth = case.s.y_clean
@@ -662,6 +686,8 @@ def run_asymptote_case(index: int, seed: int) -> list[dict]:
             corruption=corruption(q, "clean"),
         )
         rec = run_predictor(s.t, s.y, s.threshold, {"limit": q["limit"]})
+        if rec.get("eta") is None:
+            rec.update(straight_trend(s.t, s.y, s.threshold, q["limit"]))
         rec.update(family=family, variant=kind, progress=frac, index=index, eta_true=None)
         recs.append(rec)
     return recs
@@ -821,6 +847,13 @@ def summarise(records: list[dict]) -> dict:
             row["pick"] = float(np.mean([m == geometry for m in picks]))
             row["pick_misses"] = sum(1 for m in picks if m != geometry)
             row["misses_beaten"] = sum(1 for r in done if r.get("wrong_beats_truth"))
+            row["auto"] = med_p90(rel_errors([r for r in done if "auto_model" in r], "auto_eta"))
+        if key[:2] in (("warm_fitted", "clean"), ("asymptote", "warm"), ("asymptote", "chill")):
+            # what a longer straight-trend reach would have done (the what-if table)
+            row["trend"] = [
+                (r.get("eta"), r.get("trend_eta"), r.get("trend_reach"), r.get("eta_true"))
+                for r in done
+            ]
         if key[0] == "cycling":
             etas = [r["eta"] for r in done if r.get("eta") is not None]
             row["windows"] = len(done)
@@ -871,6 +904,15 @@ class Check:
         return " / ".join(_fmt(v, self.fmt) for v in self.values)
 
 
+def _signed(v: float) -> str:
+    """A difference of two errors, in points."""
+    return f"{100 * v:+.1f} %" if math.isfinite(v) else "n/a"
+
+
+def _reach(rule: float) -> str:
+    return "any" if math.isinf(rule) else f"{rule:g}"
+
+
 def _fmt(v: float, kind: str = "pct") -> str:
     if v is None or not math.isfinite(v):
         return "n/a"
@@ -908,6 +950,63 @@ def ratio_note(summary: dict, fam: str, var: str, stat: str, lim: list[float]) -
     return (
         f"CRB-limited ratio {' / '.join(_fmt(v, 'ratio') for v in lim)}; "
         f"this ratio's bootstrap 5-95 % range over the cases {spread}"
+    )
+
+
+def trend_what_if(summary: dict) -> list[tuple[float, list[float], list[float], list[float]]]:
+    """What a straight-trend point forecast up to ``reach`` spans ahead would have given, where
+    the predictor gave none and the readings show no bend: per reach, at each point of progress,
+    warm_fitted's median and p90 minus linear's, and the never-crossing asymptotes' share with
+    no ETA.  Empty unless both families ran."""
+    wf = [summary.get(("warm_fitted", "clean", f)) for f in PROGRESS]
+    asy = [[summary.get(("asymptote", kind, f)) for kind in ("warm", "chill")] for f in PROGRESS]
+    if not all(r and "trend" in r for r in wf) or not all(
+        r and "trend" in r for a in asy for r in a
+    ):
+        return []
+
+    def taken(eta, trend_eta, reach, rule):
+        if eta is not None:
+            return eta
+        return trend_eta if reach is not None and reach <= rule else None
+
+    out = []
+    for rule in TREND_RULES:
+        med, p90, share = [], [], []
+        for row, pair in zip(wf, asy):
+            recs = [
+                {"eta": taken(e, te, rr, rule), "eta_true": tr} for e, te, rr, tr in row["trend"]
+            ]
+            m, q = med_p90(rel_errors(recs))
+            med.append(m - row["linear"][0])
+            p90.append(q - row["linear"][1])
+            recs = [x for r in pair for x in r["trend"]]
+            share.append(
+                sum(1 for e, te, rr, _ in recs if taken(e, te, rr, rule) is None) / len(recs)
+            )
+        out.append((rule, med, p90, share))
+    return out
+
+
+def rules_keeping_both(what_if: list, stats: tuple[int, ...] = (0, 1)) -> list[float]:
+    """The reaches of the what-if that keep warm_fitted level with linear (in the stats given:
+    0 median, 1 p90) and the asymptotes' share with no ETA on target, at every point."""
+    return [
+        rule
+        for rule, *diffs, share in what_if
+        if all(v <= 0 for i in stats for v in diffs[i])
+        and all(v >= TARGETS["asymptote_no_eta"] for v in share)
+    ]
+
+
+def trend_verdict(what_if: list) -> str:
+    both = rules_keeping_both(what_if)
+    if both:
+        return f"a reach of {', '.join(_reach(r) for r in both)} spans keeps both targets."
+    return (
+        "no reach tried keeps both the warming load's early forecasts level with linear "
+        "extrapolation and the asymptotes free of forecast crossings, as the readings of the "
+        "two look alike."
     )
 
 
@@ -1024,6 +1123,20 @@ def checks(summary: dict, families: tuple[str, ...]) -> list[Check]:
                     f"of {rows[0]['n']} cases: no point ETA; of these, an interval "
                     f"with an early end; intervals with an open late end: {said}"
                 )
+                what_if = trend_what_if(summary)
+                if what_if:
+                    both = rules_keeping_both(what_if, (i,))
+                    tried = ", ".join(_reach(rule) for rule, *_ in what_if)
+                    out[-1].note += (
+                        f"; a straight-trend ETA up to {tried} spans ahead: "
+                        + (
+                            "none of these also keeps the asymptotes' target"
+                            if not both
+                            else f"{', '.join(_reach(r) for r in both)} also keeps the "
+                            "asymptotes' target"
+                        )
+                        + " (table below)"
+                    )
     if "air_probe" in families:
         t = T["air_probe"]
         add(
@@ -1077,6 +1190,10 @@ def checks(summary: dict, families: tuple[str, ...]) -> list[Check]:
                 f"wrong picks where that shape fits the readings better than the true "
                 f"curve itself: {beaten}"
             )
+            if all("auto" in r for r in rows):
+                med = " / ".join(_fmt(r["auto"][0]) for r in rows)
+                q90 = " / ".join(_fmt(r["auto"][1]) for r in rows)
+                out[-1].note += f"; the ETA with the picked shape: median {med}, p90 {q90}"
     if "regime_door" in families:
         row = summary.get(("regime_door", "clean", T["regime_after_s"]))
         vals = [row["p90"]] if row else []
@@ -1251,6 +1368,28 @@ def other_tables(summary: dict) -> list[str]:
             lines.append(
                 f"| {100 * k[2]:.0f} % | {r['n']} | {r['open_hi']} | {r['no_eta']} | "
                 f"{r['never_allowed']} | {_fmt(r['cover'])} |"
+            )
+    what_if = trend_what_if(summary)
+    if what_if:
+        lines += [
+            "",
+            "Where the readings show no bend (the F test at 99 %) the predictor takes their "
+            f"straight trend as the point forecast only if it reaches the threshold within "
+            f"{lumped.TREND_REACH:g} span(s) of the readings watched. What a longer reach would "
+            "have given, on the same cases (warm_fitted clean, and the never-crossing "
+            "asymptotes): " + trend_verdict(what_if),
+            "",
+            "| straight trend taken up to (spans ahead) | warm_fitted median minus linear's, "
+            "25 / 50 / 75 % | p90 minus linear's | asymptotes with no ETA (target >= "
+            f"{100 * TARGETS['asymptote_no_eta']:g} %) |",
+            "|---|---|---|---|",
+        ]
+        for rule, med, p90, share in what_if:
+            own = " (the predictor's)" if rule == lumped.TREND_REACH else ""
+            lines.append(
+                f"| {_reach(rule)}{own} | {' / '.join(_signed(v) for v in med)} | "
+                f"{' / '.join(_signed(v) for v in p90)} | "
+                f"{' / '.join(_fmt(v) for v in share)} |"
             )
     asy = sorted(k for k in summary if k[0] == "asymptote")
     if asy:

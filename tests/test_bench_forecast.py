@@ -76,6 +76,10 @@ def test_quick_figures_are_finite(bench, quick):
     assert summary[("cycling", "clean", 0.0)]["windows"] > 0
     assert {k[1] for k in summary if k[0] == "asymptote"} == {"warm", "chill"}
     assert checks and all(c.ok in (True, False, None) for c in checks)
+    # the centre families also measure the ETA with the shape the predictor picked itself
+    for fam in ("centre_slab", "centre_cylinder", "centre_sphere"):
+        med, p90 = summary[(fam, "clean", 0.5)]["auto"]
+        assert 0.0 <= med <= p90 <= bench.MISSING_ERR
 
 
 def test_draws_stay_inside_the_fixed_ranges(bench):
@@ -194,3 +198,61 @@ def test_ratio_range_brackets_the_ratio_and_stands_alone(bench):
     ratio = np.percentile(dirty, 90) / np.percentile(clean, 90)
     lo, hi = both[("centre_sphere", "dropouts", 0.5)]["p90"]
     assert lo < ratio < hi and hi - lo > 0.2
+
+
+def test_straight_trend_tells_a_bend_from_a_straight_rise(bench):
+    """straight_trend says "bent" for readings that level off clearly, and for a straight rise
+    gives the reach of its line: here 0.5 degC/h from 4 degC watched for 2 h, so 8 degC is
+    reached 6 h after the newest reading, 3 spans of readings watched."""
+    t = np.arange(0.0, 7200.0 + 1.0, 120.0)
+    rng = np.random.default_rng(11)
+    straight = 4.0 + 0.5 * t / 3600.0 + rng.normal(0.0, 0.02, t.size)
+    out = bench.straight_trend(t, straight, 8.0, "upper")
+    assert out["bent"] is False
+    assert out["trend_reach"] == pytest.approx(3.0, rel=0.05)
+    assert out["trend_eta"] == pytest.approx(6 * 3600.0, rel=0.05)
+    bent = 6.0 - 5.0 * np.exp(-t / 1800.0) + rng.normal(0.0, 0.02, t.size)
+    assert bench.straight_trend(t, bent, 8.0, "upper") == {"bent": True}
+
+
+def _what_if_summary(bench, asym_reach: float) -> dict:
+    """Nine warming cases forecast 0-8 % off and one without an ETA whose straight trend reaches
+    3 spans ahead (3.3 h against a true 3 h); twenty asymptotes, two of them straight with a
+    trend that reaches ``asym_reach`` spans ahead; linear's median and p90 both 50 %."""
+    warm = [(3600.0 * (1 + 0.01 * i), None, None, 3600.0) for i in range(9)]
+    warm.append((None, 3.3 * 3600.0, 3.0, 3.0 * 3600.0))
+    asym_warm = [(None, None, None, None)] * 8 + [(None, 7200.0, asym_reach, None)] * 2
+    asym_chill = [(None, None, None, None)] * 10
+    summary = {}
+    for f in bench.PROGRESS:
+        summary[("warm_fitted", "clean", f)] = {"trend": warm, "linear": (0.5, 0.5)}
+        summary[("asymptote", "warm", f)] = {"trend": asym_warm}
+        summary[("asymptote", "chill", f)] = {"trend": asym_chill}
+    return summary
+
+
+def test_trend_what_if_trades_the_warming_load_against_the_asymptotes(bench):
+    """The what-if takes the straight trend only where the predictor gave no ETA and the trend
+    reaches the threshold within the rule; it counts the asymptotes that then get an ETA."""
+    rows = {
+        r: (med, p90, sh) for r, med, p90, sh in bench.trend_what_if(_what_if_summary(bench, 2))
+    }
+    errs_none = [0.01 * i for i in range(9)] + [bench.MISSING_ERR]
+    errs_taken = [0.01 * i for i in range(9)] + [0.1]
+    # reach 1: the warming case keeps no ETA (1000 %), every asymptote keeps "never"
+    assert rows[1.0][1][0] == pytest.approx(np.percentile(errs_none, 90) - 0.5)
+    assert rows[1.0][2] == [1.0, 1.0, 1.0]
+    # reach 2: two asymptotes of twenty get an ETA; the warming case still has none
+    assert rows[2.0][2][0] == pytest.approx(0.9)
+    assert rows[2.0][1][0] == rows[1.0][1][0]
+    # reach 3: the warming case's ETA is 10 % off: median and p90 now below linear's
+    assert rows[3.0][0][0] == pytest.approx(np.median(errs_taken) - 0.5)
+    assert rows[3.0][1][0] == pytest.approx(np.percentile(errs_taken, 90) - 0.5)
+    assert bench.rules_keeping_both(bench.trend_what_if(_what_if_summary(bench, 2))) == []
+    assert bench.trend_verdict(bench.trend_what_if(_what_if_summary(bench, 2))).startswith(
+        "no reach tried"
+    )
+    # asymptotes whose trend reaches 5 spans: a reach of 3 or 4 keeps both targets
+    what_if = bench.trend_what_if(_what_if_summary(bench, 5))
+    assert bench.rules_keeping_both(what_if) == [3.0, 4.0]
+    assert bench.trend_verdict(what_if) == "a reach of 3, 4 spans keeps both targets."
