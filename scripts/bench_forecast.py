@@ -745,6 +745,20 @@ def coverage(recs: list[dict]) -> float:
     return float(np.mean(hits)) if hits else math.nan
 
 
+def misses(recs: list[dict]) -> tuple[int, int]:
+    """Crossings the 90 % interval missed: (before its early end, after its late end)."""
+    early = late = 0
+    for r in recs:
+        true = r.get("eta_true")
+        if true is None or true <= 0 or not r.get("ok"):
+            continue
+        if r.get("lo") is not None and true < r["lo"]:
+            early += 1
+        elif r.get("hi") is not None and true > r["hi"]:
+            late += 1
+    return early, late
+
+
 def crb_ratio(recs: list[dict]) -> float:
     """median(|z|) / 0.6745, z = (eta - eta_true) / sd_CRB: 1 for an efficient, unbiased one."""
     z = [
@@ -828,6 +842,7 @@ def summarise(records: list[dict]) -> dict:
             "no_eta": sum(1 for r in done if r.get("eta") is None),
             "failed": sum(1 for r in done if not r.get("ok")),
             "cover": coverage(done),
+            "misses": misses(done),
             "crb": crb_ratio(done),
             "crb_limited": crb_limited(done),
         }
@@ -1240,6 +1255,17 @@ def checks(summary: dict, families: tuple[str, ...]) -> list[Check]:
                 f"{100 * lo:g}-{100 * hi:g} %",
                 lambda v: lo <= v <= hi,
             )
+            rows = [summary.get((fam, var, f)) for f in PROGRESS]
+            if out[-1].ok is False and all(r and "misses" in r for r in rows):
+                # an interval whose late end is open can miss only early: where most are open,
+                # a right early end covers 95 %, not 90 %
+                said = " / ".join(
+                    f"{r['misses'][0]}, {r['misses'][1]}, {r['open_hi']}" for r in rows
+                )
+                out[-1].note = (
+                    f"of {rows[0]['n']} cases: crossings before the early end; after the late "
+                    f"end; intervals with an open late end: {said}"
+                )
     return out
 
 

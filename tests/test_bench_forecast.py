@@ -256,3 +256,19 @@ def test_trend_what_if_trades_the_warming_load_against_the_asymptotes(bench):
     what_if = bench.trend_what_if(_what_if_summary(bench, 5))
     assert bench.rules_keeping_both(what_if) == [3.0, 4.0]
     assert bench.trend_verdict(what_if) == "a reach of 3, 4 spans keeps both targets."
+
+
+def test_misses_split_early_and_late(bench):
+    """A crossing before the interval's early end is an early miss, after its late end a late
+    miss; an open end cannot be missed, and a failed fit is neither (coverage counts it)."""
+    recs = [
+        {"ok": True, "eta_true": 100.0, "lo": 150.0, "hi": 300.0},  # early
+        {"ok": True, "eta_true": 400.0, "lo": 150.0, "hi": 300.0},  # late
+        {"ok": True, "eta_true": 9e9, "lo": 150.0, "hi": None},  # open late end: covered
+        {"ok": True, "eta_true": 1.0, "lo": None, "hi": 300.0},  # open early end: covered
+        {"ok": True, "eta_true": 200.0, "lo": 150.0, "hi": 300.0},  # inside
+        {"ok": False, "eta_true": 200.0, "lo": None, "hi": None},  # failed
+        {"ok": True, "eta_true": None, "lo": 150.0, "hi": 300.0},  # never crosses
+    ]
+    assert bench.misses(recs) == (1, 1)
+    assert bench.coverage(recs) == pytest.approx(3 / 6)
