@@ -272,3 +272,49 @@ def test_misses_split_early_and_late(bench):
     ]
     assert bench.misses(recs) == (1, 1)
     assert bench.coverage(recs) == pytest.approx(3 / 6)
+
+
+def test_replays_of_an_efficient_estimator(bench):
+    """Replays draw one |N(0, sd_CRB)| per case: with every case's bound at 2 % of its ETA, the
+    replayed median and p90 centre on the half-normal's 0.674 and 1.645 times 2 % (from memory:
+    the standard normal's 75th and 95th percentiles), and an rms z of exactly 1 reads 1."""
+    recs = [{"eta_true": 3600.0, "crb_sd": 72.0} for _ in range(200)]
+    reps = bench.efficient_replays(recs)
+    assert reps.shape == (2000, 2)
+    assert np.median(reps[:, 0]) == pytest.approx(0.6745 * 0.02, rel=0.03)
+    assert np.median(reps[:, 1]) == pytest.approx(1.645 * 0.02, rel=0.03)
+    assert np.percentile(reps[:, 1], 5) < 1.645 * 0.02 < np.percentile(reps[:, 1], 95)
+    signed = [dict(r, eta=3600.0 + (72.0 if i % 2 else -72.0)) for i, r in enumerate(recs)]
+    assert bench.z_rms(signed) == pytest.approx(1.0)
+    assert bench.z_rms([dict(r, eta=3600.0 + 144.0) for r in recs]) == pytest.approx(2.0)
+
+
+def test_a_reachable_failure_says_how_often_an_efficient_one_fails(bench):
+    """A failed p90 at a point an efficient estimator meets on average (50 % here) gets the
+    replays' range and how often they fail; a point at the limit (25 %) keeps its own mark and
+    is not repeated; a point that passes (75 %) is not named."""
+    bound = 0.04
+    sizes = (0.05, bound / 1.645, 0.001)  # crb_sd / eta_true at 25, 50, 75 %
+    summary = {}
+    for frac, rel, p90 in zip(bench.PROGRESS, sizes, (0.2, 0.045, 0.01)):
+        recs = [
+            {"eta_true": 1000.0, "crb_sd": 1000.0 * rel, "eta": 1000.0 + 1000.0 * rel}
+            for _ in range(200)
+        ]
+        summary[("chill_fitted", "clean", frac)] = {
+            "median": 0.01,
+            "p90": p90,
+            "crb": 1.0,
+            "crb_limited": bench.crb_limited(recs),
+            "efficient": bench.efficient_replays(recs),
+            "z_rms": bench.z_rms(recs),
+            "cover": 0.9,
+        }
+    (c,) = [c for c in bench.checks(summary, ("chill_fitted",)) if c.figure == "p90"]
+    assert c.ok is False and c.beyond_limit() == [0]
+    text = c.result()
+    assert text.startswith("FAIL (at the limit at 25 %: CRB-limited")
+    assert "at 50 %: an efficient unbiased estimator's p90 on these cases is" in text
+    assert "at 75 %" not in text and "rms z 1.00" in text
+    share = float(text.split("over 4 % in ")[1].split(" %")[0])
+    assert 30 <= share <= 70  # the bound sits at the replays' centre
