@@ -47,6 +47,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+from scipy.stats import binom
 from thermeta.predictors import baselines, lumped, synth
 from thermeta.predictors import forecast as forecast_fn
 from thermeta.predictors.forecast import ambient_sd_within
@@ -1284,9 +1285,32 @@ def checks(summary: dict, families: tuple[str, ...]) -> list[Check]:
                 )
                 out[-1].note = (
                     f"of {rows[0]['n']} cases: crossings before the early end; after the late "
-                    f"end; intervals with an open late end: {said}"
+                    f"end; intervals with an open late end: {said}; "
+                    + calibrated_note(rows, out[-1].values)
                 )
     return out
+
+
+def calibrated_note(rows: list[dict], covers: list[float]) -> str:
+    """What a calibrated 90 % interval would give on the same cases: each interval misses with
+    probability 10 %, less the 5 % upper tail where its late end is open (it can then miss only
+    early), so the expected misses are 0.10 n - 0.05 open; and how often a binomial draw of
+    misses lands as far out as the one seen (at or below it when fewer than expected, at or
+    above it when more)."""
+    expect, seen, chance = [], [], []
+    for row, cover in zip(rows, covers):
+        n = row["n"]
+        p_miss = max(0.10 - 0.05 * row["open_hi"] / n, 0.0)
+        k = round((1.0 - cover) * n)
+        expect.append(f"{p_miss * n:.1f}")
+        seen.append(str(k))
+        tail = binom.cdf(k, n, p_miss) if k <= p_miss * n else binom.sf(k - 1, n, p_miss)
+        chance.append(f"{100 * tail:.0f} %")
+    return (
+        f"a calibrated 90 % interval with these open ends misses {' / '.join(expect)} on "
+        f"average, against {' / '.join(seen)} seen; a count as far out in "
+        f"{' / '.join(chance)} of runs (binomial)"
+    )
 
 
 # ---------------------------------------------------------------------------------------------

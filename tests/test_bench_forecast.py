@@ -318,3 +318,16 @@ def test_a_reachable_failure_says_how_often_an_efficient_one_fails(bench):
     assert "at 75 %" not in text and "rms z 1.00" in text
     share = float(text.split("over 4 % in ")[1].split(" %")[0])
     assert 30 <= share <= 70  # the bound sits at the replays' centre
+
+
+def test_calibrated_coverage_note(bench):
+    """With every late end open, a calibrated 90 % interval can miss only its lower 5 % tail:
+    10 of 200 on average; 5 misses or fewer then happen in 6 % of runs (the binomial sum,
+    worked here with math.comb); with no end open it misses 20, and 30 or more happen in 1.6 %."""
+    rows = [{"n": 200, "open_hi": 200}, {"n": 200, "open_hi": 0}]
+    text = bench.calibrated_note(rows, [0.975, 0.85])
+    assert "misses 10.0 / 20.0 on average, against 5 / 30 seen" in text
+    low = sum(math.comb(200, i) * 0.05**i * 0.95 ** (200 - i) for i in range(6))
+    high = sum(math.comb(200, i) * 0.1**i * 0.9 ** (200 - i) for i in range(30, 201))
+    assert f"{100 * low:.0f} % / {100 * high:.0f} % of runs" in text
+    assert round(100 * low) == 6 and round(100 * high, 1) == 1.6
