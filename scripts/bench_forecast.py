@@ -776,17 +776,22 @@ def crb_ratio(recs: list[dict]) -> float:
     return float(np.median(np.abs(z)) / 0.6745) if z else math.nan
 
 
+def crb_rel(recs: list[dict]) -> list[float]:
+    """sd_CRB / eta_true of the cases whose truth crosses (inf where the bound is), sorted: the
+    pool's order (the workers finish in any order) must not change the draws."""
+    return sorted(
+        r["crb_sd"] / r["eta_true"]
+        for r in recs
+        if (r.get("eta_true") or 0) > 0 and not math.isnan(r.get("crb_sd", math.nan))
+    )
+
+
 def crb_limited(recs: list[dict], draws: int = 400) -> tuple[float, float] | None:
     """Median and p90 of the relative error an efficient unbiased estimator would have:
     |N(0, sd_CRB)| / eta_true pooled over the cases (seeded draws).  An infinite bound (the
     readings cannot determine the parameters, e.g. two readings of a three-parameter curve)
     counts as a missing ETA, as the predictor's "too few readings" does."""
-    # sorted: the pool's order (the workers finish in any order) must not change the draws
-    rel = sorted(
-        r["crb_sd"] / r["eta_true"]
-        for r in recs
-        if (r.get("eta_true") or 0) > 0 and not math.isnan(r.get("crb_sd", math.nan))
-    )
+    rel = crb_rel(recs)
     if not rel:
         return None
     z = np.abs(np.random.default_rng(0).standard_normal((len(rel), draws)))
@@ -798,11 +803,7 @@ def efficient_replays(recs: list[dict], reps: int = 2000) -> np.ndarray | None:
     """The median and p90 an efficient unbiased estimator would show in each of ``reps`` replays
     of this bench on the same cases, one draw |N(0, sd_CRB)| / eta_true per case and replay
     (seeded): an array (reps, 2).  Its spread is how much one run's figure moves by chance."""
-    rel = sorted(
-        r["crb_sd"] / r["eta_true"]
-        for r in recs
-        if (r.get("eta_true") or 0) > 0 and not math.isnan(r.get("crb_sd", math.nan))
-    )
+    rel = crb_rel(recs)
     if not rel:
         return None
     z = np.abs(np.random.default_rng(1).standard_normal((reps, len(rel))))
