@@ -763,9 +763,10 @@ def misses(recs: list[dict]) -> tuple[int, int]:
     return early, late
 
 
-def crb_ratio(recs: list[dict]) -> float:
-    """median(|z|) / 0.6745, z = (eta - eta_true) / sd_CRB: 1 for an efficient, unbiased one."""
-    z = [
+def crb_z(recs: list[dict]) -> list[float]:
+    """z = (eta - eta_true) / sd_CRB of the cases with an ETA, a truth that crosses and a finite
+    bound."""
+    return [
         (r["eta"] - r["eta_true"]) / r["crb_sd"]
         for r in recs
         if r.get("eta") is not None
@@ -773,11 +774,16 @@ def crb_ratio(recs: list[dict]) -> float:
         and math.isfinite(r.get("crb_sd", math.nan))
         and r["crb_sd"] > 0
     ]
+
+
+def crb_ratio(recs: list[dict]) -> float:
+    """median(|z|) / 0.6745, z = (eta - eta_true) / sd_CRB: 1 for an efficient, unbiased one."""
+    z = crb_z(recs)
     return float(np.median(np.abs(z)) / 0.6745) if z else math.nan
 
 
 def crb_rel(recs: list[dict]) -> list[float]:
-    """sd_CRB / eta_true of the cases whose truth crosses (inf where the bound is), sorted: the
+    """sd_CRB / eta_true of the cases whose truth crosses (inf for an infinite bound), sorted: the
     pool's order (the workers finish in any order) must not change the draws."""
     return sorted(
         r["crb_sd"] / r["eta_true"]
@@ -814,14 +820,7 @@ def efficient_replays(recs: list[dict], reps: int = 2000) -> np.ndarray | None:
 def z_rms(recs: list[dict]) -> float:
     """The root mean square of z = (eta - eta_true) / sd_CRB over the cases with an ETA: 1 for
     an efficient unbiased estimator (the spread/CRB column is a robust median(|z|) form)."""
-    z = [
-        (r["eta"] - r["eta_true"]) / r["crb_sd"]
-        for r in recs
-        if r.get("eta") is not None
-        and r.get("eta_true")
-        and math.isfinite(r.get("crb_sd", math.nan))
-        and r["crb_sd"] > 0
-    ]
+    z = crb_z(recs)
     return float(np.sqrt(np.mean(np.square(z)))) if len(z) > 1 else math.nan
 
 
