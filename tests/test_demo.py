@@ -73,8 +73,10 @@ TOLERANCE = {
 
 @pytest.fixture(scope="module")
 def headless_run(tmp_path_factory):
-    """One `thermeta demo --embedded --headless --duration 30 --speed 320` run for the tests
-    below."""
+    """One `thermeta demo --embedded --headless --duration 60 --speed 160` run for the tests
+    below: the same simulated span as 30 s at 320, with twice the real time per refit round, so
+    a slow machine still fits the forecasts of a fast approach (at 320 a loaded CI machine
+    skipped rounds and the wort's median error rose to 5.9 %)."""
     summary_path = tmp_path_factory.mktemp("demo") / "summary.json"
     t0 = time.monotonic()
     r = subprocess.run(
@@ -83,9 +85,9 @@ def headless_run(tmp_path_factory):
             "--embedded",
             "--headless",
             "--duration",
-            "30",
+            "60",
             "--speed",
-            "320",
+            "160",
             "--summary-json",
             str(summary_path),
         ],
@@ -100,21 +102,21 @@ def headless_run(tmp_path_factory):
 
 def test_demo_headless_forecasts_against_truth(headless_run):
     """The headless demo exits 0, prints forecast lines and the comparison with the truth, plays
-    320 simulated seconds per real second, and lands its forecasts within the stated tolerance of
+    160 simulated seconds per real second, and lands its forecasts within the stated tolerance of
     the simulator's truth."""
     r, wall, s = headless_run
     assert r.returncode == 0, r.stderr[-2000:]
-    assert wall < 80
+    assert wall < 110
     assert "using an embedded broker" in r.stdout
     assert "forecast eastpier/reefer-12/load-top: approaching" in r.stdout
     assert "forecasts against the simulated truth" in r.stdout
     played = s["sim_end"] - s["t_start"]
-    assert 0.85 * 30 * 320 < played < 1.15 * 30 * 320
+    assert 0.85 * 60 * 160 < played < 1.15 * 60 * 160
     items = s["items"]
     for name, tol in TOLERANCE.items():
         ahead = items[name]["ahead"]
-        # at --speed 320 a refit round comes every 320 simulated s: the wort, chilled in minutes,
-        # is forecast two or three times between its approach and its crossing
+        # at --speed 160 a refit round comes every 160 simulated s: the wort, chilled in minutes,
+        # is forecast several times between its approach and its crossing
         assert len(ahead) >= 2, (name, items[name])
         med = _median([abs(a["rel_error"]) for a in ahead])
         assert med <= tol, (name, med)
