@@ -1,1 +1,16 @@
-"""thermeta's service: MQTT ingest, scheduled refits, alerts, the dashboard and the command line."""
+"""thermeta's service and command line. A reading's way through it, one sub-package a step:
+
+    broker -> ingest/ -> store (thermeta.storage) -> refit/ -> forecast (thermeta.predictors)
+           -> store + retained MQTT topic + alerts/ (rules, outbox, hooks/) + views/ (dashboard)
+
+    ingest/      MQTT subscriber, payload parsing, topic mapping, the batched writer that acks
+    refit/       the scheduled refit rounds: stored readings -> forecast -> listeners
+    alerts/      rules over each forecast, messages, the outbox and the delivery hooks
+    views/       the terminal dashboard and the pictures of one item
+    cli/         the ``thermeta`` command line, one module per sub-command
+    simulation/  readings with known truth: scenarios, generators, the simulator, a demo broker
+
+Beside them: ``service.py`` wires the running service, ``config.py`` reads the TOML config,
+``errors.py`` holds the one exception tree, ``clock.py`` the injectable "now", ``units.py`` and
+``timefmt.py`` the temperatures and times people read, ``logsetup.py`` the log format.
+"""

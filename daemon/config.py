@@ -21,7 +21,7 @@ from pathlib import Path
 from typing import Any
 
 from thermeta.daemon.errors import ConfigError
-from thermeta.daemon.topics import check_filter, is_wildcard, placeholders
+from thermeta.daemon.ingest.topics import check_filter, is_wildcard, placeholders
 from thermeta.daemon.units import UNITS, to_celsius
 
 MODELS = ("lumped", "slab", "cylinder", "sphere", "auto")
@@ -30,7 +30,8 @@ TLS_MODES = ("starttls", "implicit", "none")
 PROTOCOLS = ("auto", "5", "3.1.1")
 NAME_RE = re.compile(r"^[A-Za-z0-9._:/{}-]+$")
 AMBIENT_SUFFIX = ".ambient"
-DEFROST_SUFFIX = ".defrost"  # the stored series of an item's defrost signal (daemon/defrost.py)
+# the stored series of an item's defrost signal (daemon/ingest/defrost.py)
+DEFROST_SUFFIX = ".defrost"
 
 
 @dataclass(frozen=True)
@@ -125,7 +126,7 @@ class ItemConfig:
     # A new approaching or crossed waits until its condition has held this long (an alarm delay:
     # an air probe by a busy door passes its limit for minutes at a time); 0: at once.
     delay_s: float = 0.0
-    # The controller's defrost signal (daemon/defrost.py) and how long alerts wait after it.
+    # The controller's defrost signal (daemon/ingest/defrost.py) and how long alerts wait after it.
     defrost_topic: str | None = None
     defrost_recovery_s: float = 1800.0
     defrost_max_s: float = 3600.0

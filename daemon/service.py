@@ -23,10 +23,10 @@ from typing import Any
 
 from thermeta.daemon.clock import Clock, SystemClock
 from thermeta.daemon.config import Config
-from thermeta.daemon.ingest import MqttLink
-from thermeta.daemon.refit import Listener, Refitter
-from thermeta.daemon.topics import Router
-from thermeta.daemon.writer import Activity, Writer
+from thermeta.daemon.ingest.mqtt import MqttLink
+from thermeta.daemon.ingest.topics import Router
+from thermeta.daemon.ingest.writer import Activity, Writer
+from thermeta.daemon.refit.rounds import Listener, Refitter
 from thermeta.storage.store import Store, safe_url
 
 log = logging.getLogger("thermeta.service")

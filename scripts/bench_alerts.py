@@ -37,11 +37,12 @@ from pathlib import Path
 import numpy as np
 from thermeta.daemon.alerts.rules import ItemAlertState, RuleParams, step
 from thermeta.daemon.config import ItemConfig
-from thermeta.daemon.defrost import defrost_status
-from thermeta.daemon.refit import DEFROST_LOOKBACK_S, classify, forecast_kwargs, limit_side
-from thermeta.predictors import forecast, synth
-from thermeta.predictors.scenarios import first_crossing, thermostat_pieces, two_stage
-from thermeta.predictors.synth import Corruption
+from thermeta.daemon.ingest.defrost import defrost_status
+from thermeta.daemon.refit.rounds import DEFROST_LOOKBACK_S, classify, forecast_kwargs, limit_side
+from thermeta.daemon.simulation import synth
+from thermeta.daemon.simulation.scenarios import first_crossing, thermostat_pieces, two_stage
+from thermeta.daemon.simulation.synth import Corruption
+from thermeta.predictors import forecast
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from readme_block import update_readme  # noqa: E402 - the scripts folder, put on the path above
@@ -218,7 +219,7 @@ def replay(
 ) -> list[tuple[float, str]]:
     """The alerts (time, level) of ``levels`` one item raises over the refit instants ``times``
     (reminders left out); ``defrost`` is the controller's signal (epoch seconds, 1|0), read as
-    daemon/refit.py reads the stored one."""
+    daemon/refit/rounds.py reads the stored one."""
     st, params = ItemAlertState(), RuleParams.of(cfg)
     out: list[tuple[float, str]] = []
     w = cfg.window_s

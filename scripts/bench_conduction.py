@@ -21,9 +21,9 @@ import argparse
 import time
 
 import numpy as np
+from thermeta.daemon.simulation.synth import Corruption
+from thermeta.daemon.simulation.synth_conduction import core_probe
 from thermeta.predictors.conduction import GEOMETRIES, fit_conduction, select_geometry
-from thermeta.predictors.synth import Corruption
-from thermeta.predictors.synth_conduction import core_probe
 
 
 def chill_case(seed: int, geometry: str):

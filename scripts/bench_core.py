@@ -17,9 +17,10 @@ import sys
 import time
 
 import numpy as np
-from thermeta.predictors import forecast, synth
+from thermeta.daemon.simulation import synth
+from thermeta.daemon.simulation.synth import Corruption
+from thermeta.predictors import forecast
 from thermeta.predictors.baselines import crb_eta_sd, crb_eta_sd_known, curve_fit_eta, linear_eta
-from thermeta.predictors.synth import Corruption
 
 SEEN = {"mode": "time"}
 
@@ -104,7 +105,7 @@ def reefer_air(seed: int):
 def sphere_measured(seed: int):
     """Centre of a sphere, Bi 0.8-4, 2-4 degC in 20-30 degC air (measured), to 8 degC, seen
     35-65 %."""
-    from thermeta.predictors.synth_conduction import core_probe
+    from thermeta.daemon.simulation.synth_conduction import core_probe
 
     r = np.random.default_rng(40_000 + seed)
     bi, a = r.uniform(0.8, 4.0), r.uniform(3e-5, 1e-4)
@@ -135,7 +136,7 @@ def sphere_chiller(seed: int):
     nearly flat: the Cramer-Rao bound there allows no better than about 56 % median spread
     (scripts/bench_conduction.py --only crb).  A cooling from far above the limit, the kitchen's
     use of a centre probe, shows the curve's bend before the crossing."""
-    from thermeta.predictors.synth_conduction import core_probe
+    from thermeta.daemon.simulation.synth_conduction import core_probe
 
     r = np.random.default_rng(45_000 + seed)
     bi, alpha, radius = r.uniform(0.8, 4.0), r.uniform(1.2e-7, 1.6e-7), r.uniform(0.02, 0.08)

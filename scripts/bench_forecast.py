@@ -48,10 +48,11 @@ from pathlib import Path
 
 import numpy as np
 from scipy.stats import binom
-from thermeta.predictors import baselines, lumped, synth
+from thermeta.daemon.simulation import synth
+from thermeta.daemon.simulation.synth import Corruption, Synth
+from thermeta.predictors import baselines, lumped
 from thermeta.predictors import forecast as forecast_fn
 from thermeta.predictors.forecast import ambient_sd_within
-from thermeta.predictors.synth import Corruption, Synth
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from readme_block import update_readme  # noqa: E402 - the scripts folder, put on the path above
@@ -350,7 +351,7 @@ def air_case(p: dict, frac: float, variant: str, seed: int) -> Case:
 
 
 def centre_case(p: dict, frac: float, variant: str, seed: int, model: str | None = None) -> Case:
-    from thermeta.predictors.synth_conduction import core_probe
+    from thermeta.daemon.simulation.synth_conduction import core_probe
 
     a = p["alpha"] / p["L_m"] ** 2
     s = core_probe(

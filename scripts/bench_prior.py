@@ -33,9 +33,10 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from bench_forecast import IRREGULAR, MIN, PARAMS, QUANTUM, draw
-from thermeta.predictors import forecast, synth
+from thermeta.daemon.simulation import synth
+from thermeta.daemon.simulation.synth import Corruption
+from thermeta.predictors import forecast
 from thermeta.predictors.prior import Prior, learn, learnable
-from thermeta.predictors.synth import Corruption
 
 FAMILIES = ("chill_fitted", "warm_fitted", "warm_known")
 N_PAST = 8

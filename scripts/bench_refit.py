@@ -30,10 +30,10 @@ from pathlib import Path
 import numpy as np
 from thermeta.daemon.clock import ManualClock
 from thermeta.daemon.config import AMBIENT_SUFFIX, parse_config
-from thermeta.daemon.refit import Refitter
-from thermeta.daemon.writer import Activity
-from thermeta.predictors import synth, synth_conduction
-from thermeta.predictors.synth import Corruption
+from thermeta.daemon.ingest.writer import Activity
+from thermeta.daemon.refit.rounds import Refitter
+from thermeta.daemon.simulation import synth, synth_conduction
+from thermeta.daemon.simulation.synth import Corruption
 from thermeta.storage.store import Store
 
 HISTORY_S = 2 * 3600.0

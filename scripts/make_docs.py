@@ -65,9 +65,9 @@ def capture_dashboard(seconds: float, speed: float, width: int, height: int) -> 
 
 def reefer_plot() -> Path:
     import numpy as np
-    from thermeta.daemon.plotting import _Series, plot_forecast
+    from thermeta.daemon.simulation import scenarios as S
+    from thermeta.daemon.views.plotting import _Series, plot_forecast
     from thermeta.predictors import forecast
-    from thermeta.predictors import scenarios as S
 
     sc = S.build("reefer-power-loss", seed=0)
     load = sc.probe("eastpier/reefer-12/load-top")

@@ -6,10 +6,10 @@ import math
 
 import numpy as np
 import pytest
+from thermeta.daemon.simulation.synth import Corruption
+from thermeta.daemon.simulation.synth_conduction import core_probe
 from thermeta.predictors.conduction import fit_conduction
 from thermeta.predictors.conduction_crb import crb_eta_sd
-from thermeta.predictors.synth import Corruption
-from thermeta.predictors.synth_conduction import core_probe
 
 TRUTH = {"t_i": 70.0, "ambient": 2.0, "biot": 2.0, "a_per_s": 1 / 30000, "threshold": 21.0}
 

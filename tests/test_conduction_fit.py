@@ -7,12 +7,12 @@ import math
 
 import numpy as np
 import pytest
-from thermeta.predictors import synth
+from thermeta.daemon.simulation import synth
+from thermeta.daemon.simulation.synth import Corruption
+from thermeta.daemon.simulation.synth_conduction import centre_mol, core_probe
 from thermeta.predictors.conduction import SHAPE_FACTOR, _Curve, fit_conduction, select_geometry
 from thermeta.predictors.conduction_ambient import make_ambient_fn
 from thermeta.predictors.conduction_series import theta_centre
-from thermeta.predictors.synth import Corruption
-from thermeta.predictors.synth_conduction import centre_mol, core_probe
 
 NOISY = Corruption(noise=0.1, quantum=0.1)
 

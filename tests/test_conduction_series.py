@@ -7,6 +7,7 @@ import numpy as np
 import pytest
 from scipy.optimize import brentq
 from scipy.special import j0, j1
+from thermeta.daemon.simulation.synth_conduction import centre_mol
 from thermeta.predictors.conduction_series import (
     FO_CUT,
     GEOMETRIES,
@@ -17,7 +18,6 @@ from thermeta.predictors.conduction_series import (
     theta_centre,
     theta_centre_series,
 )
-from thermeta.predictors.synth_conduction import centre_mol
 
 # Incropera & DeWitt, Fundamentals of Heat and Mass Transfer, Table 5.1 (from memory):
 # (geometry, Bi) -> (zeta_1, C_1), four decimals.

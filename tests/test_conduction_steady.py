@@ -10,12 +10,12 @@ import pytest
 from scipy.optimize import least_squares
 from scipy.stats import f as f_dist
 from scipy.stats import linregress
-from thermeta.predictors import synth
+from thermeta.daemon.simulation import synth
+from thermeta.daemon.simulation.synth import Corruption
+from thermeta.daemon.simulation.synth_conduction import core_probe
 from thermeta.predictors.conduction import fit_conduction
 from thermeta.predictors.conduction_ambient import steady_level
 from thermeta.predictors.conduction_profile import _constrained_residual, cut_off
-from thermeta.predictors.synth import Corruption
-from thermeta.predictors.synth_conduction import core_probe
 
 
 def _sphere(seed: int) -> synth.Synth:

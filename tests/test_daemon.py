@@ -10,9 +10,9 @@ import numpy as np
 import pytest
 from thermeta.daemon.clock import ManualClock
 from thermeta.daemon.config import parse_config
-from thermeta.daemon.refit import Refitter
-from thermeta.daemon.topics import Router, match, render
-from thermeta.daemon.writer import Activity, Inbound, Writer
+from thermeta.daemon.ingest.topics import Router, match, render
+from thermeta.daemon.ingest.writer import Activity, Inbound, Writer
+from thermeta.daemon.refit.rounds import Refitter
 from thermeta.storage.store import Store
 
 T0 = 1_800_000_000.0
@@ -368,8 +368,8 @@ def test_auto_protocol_falls_back_to_mqtt_311(tmp_path):
     import tomllib
 
     import paho.mqtt.client as mqtt
-    from thermeta.daemon.embedded_broker import EmbeddedBroker
     from thermeta.daemon.service import Service
+    from thermeta.daemon.simulation.broker import EmbeddedBroker
 
     records: list[str] = []
     handler = logging.Handler()
@@ -546,7 +546,7 @@ def test_the_picture_shows_the_forecast_the_refit_made(tmp_path):
     own arguments, so an item's given ambient doubt (`ambient_within`) and its limit side give
     the same point and interval as the forecast the alerts were judged by.  (The picture used to
     drop `ambient_within`: its interval is shown to differ without it.)"""
-    from thermeta.daemon import plotting
+    from thermeta.daemon.views import plotting
     from thermeta.predictors import forecast
 
     t, y = _half_hour_warming()
@@ -582,7 +582,7 @@ def test_the_picture_shows_the_forecast_the_refit_made(tmp_path):
 def test_status_line_counts_point_and_interval_from_now():
     """The forecast's times count from its newest reading; `thermeta status` two minutes later
     counts the point and both ends of the interval from the moment it prints."""
-    from thermeta.daemon.cmd_status import _eta_text
+    from thermeta.daemon.cli.status import _eta_text
     from thermeta.predictors.result import rfc3339
 
     t_last = T0 - 120.0

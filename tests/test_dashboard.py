@@ -16,7 +16,7 @@ import uuid
 
 import pytest
 from rich.console import Console
-from thermeta.daemon.dashboard import _on_key, collect, render, short_duration, sparkline
+from thermeta.daemon.views.dashboard import _on_key, collect, render, short_duration, sparkline
 from thermeta.predictors.result import rfc3339
 from thermeta.storage.store import Store
 
@@ -332,7 +332,7 @@ def test_an_item_in_defrost_says_so(tmp_path):
     """While the controller's defrost signal is on, new alerts are held (daemon/alerts/rules.py):
     the board says "(defrost)" after the item's name, so an approaching air probe without an alert
     is explained, and the plain lines say it too."""
-    from thermeta.daemon.dashboard import plain_lines
+    from thermeta.daemon.views.dashboard import plain_lines
 
     store = fill_store(f"sqlite:///{tmp_path / 'd.db'}")
     iid = store.ensure_item("cold-room-a/air", now=NOW)

@@ -20,8 +20,8 @@ from test_hooks import Receiver
 from thermeta.daemon.alerts.rules import ItemAlertState, RuleParams, defrost_hold_until, step
 from thermeta.daemon.clock import ManualClock
 from thermeta.daemon.config import load_config
-from thermeta.daemon.defrost import defrost_status, parse_defrost
-from thermeta.daemon.payloads import Limits, PayloadError
+from thermeta.daemon.ingest.defrost import defrost_status, parse_defrost
+from thermeta.daemon.ingest.payloads import Limits, PayloadError
 from thermeta.daemon.service import Service
 from thermeta.predictors.result import rfc3339
 
@@ -259,7 +259,7 @@ def test_item_names_ending_in_defrost_are_refused(tmp_path):
 def test_router_sends_a_room_defrost_topic_to_each_of_its_items(tmp_path):
     """One controller's topic shared by the room's air and load probes; wildcard items get their
     own concrete defrost topic."""
-    from thermeta.daemon.topics import Router
+    from thermeta.daemon.ingest.topics import Router
 
     cfg = load_config(
         write(

@@ -11,7 +11,7 @@ import time
 
 import paho.mqtt.client as mqtt
 import pytest
-from thermeta.daemon.embedded_broker import EmbeddedBroker, broker_reachable
+from thermeta.daemon.simulation.broker import EmbeddedBroker, broker_reachable
 
 DEMO = [sys.executable, "-m", "thermeta.daemon.cli", "demo"]
 
@@ -188,7 +188,7 @@ def test_demo_starts_its_own_broker_when_the_one_there_refuses(tmp_path):
     import shutil
 
     from conftest import _need_mosquitto, free_port
-    from thermeta.daemon.embedded_broker import broker_accepts
+    from thermeta.daemon.simulation.broker import broker_accepts
 
     _need_mosquitto()
     port = free_port()
@@ -238,7 +238,7 @@ def test_forecast_line_counts_point_and_interval_from_now():
     counts the point and both ends of the interval from the moment it is printed."""
     from types import SimpleNamespace
 
-    from thermeta.daemon.cmd_demo import _Recorder
+    from thermeta.daemon.cli.demo import _Recorder
     from thermeta.predictors.result import rfc3339
 
     t_last = 1_764_600_000.0
@@ -264,7 +264,7 @@ def test_lines_from_two_threads_stay_whole():
     import threading
     from types import SimpleNamespace
 
-    from thermeta.daemon.cmd_demo import _Recorder
+    from thermeta.daemon.cli.demo import _Recorder
 
     class Out:
         def __init__(self):
@@ -297,7 +297,7 @@ def test_summary_says_what_the_forecasts_missed():
     lies beyond the run says 'yet'; counts of one are singular."""
     import io
 
-    from thermeta.daemon.cmd_demo import _print_summary
+    from thermeta.daemon.cli.demo import _print_summary
 
     def item(crossing, n, n_app, ahead=()):
         return {

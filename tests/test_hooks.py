@@ -15,9 +15,9 @@ from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from pathlib import Path
 
 import pytest
+from thermeta.daemon.alerts.hooks.base import hook_key, make_hook
 from thermeta.daemon.config import HookConfig
 from thermeta.daemon.errors import DeliveryError
-from thermeta.daemon.hooks.base import hook_key, make_hook
 
 ALERT = {
     "id": "trailer-4:1:approaching:1",
@@ -283,8 +283,8 @@ def _auth(inbox: Inbox):
 def _png_of_a_real_forecast(tmp_path: Path) -> bytes:
     """The plotting module's PNG of a warming load stored in a real SQLite file."""
     import numpy as np
-    from thermeta.daemon import plotting
     from thermeta.daemon.config import ItemConfig
+    from thermeta.daemon.views import plotting
     from thermeta.storage.store import Store
 
     store = Store(f"sqlite:///{tmp_path / 'png.db'}")

@@ -106,7 +106,7 @@ def queue_then_deliver_once(
     mine = lambda: [r for r in astore.outbox_rows() if r["hook"] == hook]
     assert wait_for(lambda: mine()[0]["attempts"] >= 2)
     assert [r["status"] for r in mine()] == ["pending"] * 3
-    from thermeta.daemon.dashboard import collect
+    from thermeta.daemon.views.dashboard import collect
 
     waiting = collect(store, clock.now()).alerts_waiting  # the dashboard's header shows them
     assert waiting == 3 if url is None else waiting >= 3

@@ -6,7 +6,7 @@ from __future__ import annotations
 import json
 
 import pytest
-from thermeta.daemon.payloads import Limits, PayloadError, excerpt, parse_payload
+from thermeta.daemon.ingest.payloads import Limits, PayloadError, excerpt, parse_payload
 
 NOW = 1_800_000_000.0  # 2027-01-15T08:00:00Z
 

@@ -15,9 +15,9 @@ import numpy as np
 import pytest
 from matplotlib.collections import PolyCollection
 from matplotlib.lines import Line2D
-from thermeta.daemon import plotting as P
+from thermeta.daemon.simulation import scenarios as S
+from thermeta.daemon.views import plotting as P
 from thermeta.predictors import forecast
-from thermeta.predictors import scenarios as S
 
 
 def _png_size(data: bytes) -> tuple[int, int]:
@@ -179,7 +179,7 @@ def test_forecast_cli_writes_the_plot(tmp_path):
 
 
 def _store_with_reefer(tmp_path, unit="C"):
-    from thermeta.daemon.simulator import config_text
+    from thermeta.daemon.simulation.simulator import config_text
     from thermeta.storage.store import Store
 
     sc = S.build("reefer-power-loss", seed=6)

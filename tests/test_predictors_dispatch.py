@@ -8,12 +8,13 @@ import sys
 
 import numpy as np
 import pytest
-from thermeta.predictors import forecast, predict, synth
-from thermeta.predictors.synth import Corruption
+from thermeta.daemon.simulation import synth
+from thermeta.daemon.simulation.synth import Corruption
+from thermeta.predictors import forecast, predict
 
 
 def _sphere_case(seed: int = 3):
-    from thermeta.predictors.synth_conduction import core_probe
+    from thermeta.daemon.simulation.synth_conduction import core_probe
 
     return core_probe(
         seed,
@@ -80,7 +81,7 @@ def test_auto_picks_the_true_shape_late_in_a_clear_curve(geometry):
     curve.  Readings: the centre series (checked against Incropera & DeWitt Table 5.1, from
     memory, in test_conduction_series), Bi 4, seen 80 % of the way, where the shapes' lags
     differ; every other model's AICc is then higher, and the ETA lands on the truth."""
-    from thermeta.predictors.synth_conduction import core_probe
+    from thermeta.daemon.simulation.synth_conduction import core_probe
 
     s = core_probe(
         11,

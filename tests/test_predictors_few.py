@@ -232,8 +232,8 @@ def test_four_readings_of_a_core_probe_get_a_core_curve_with_an_honest_interval(
     the 90 % interval holds the true crossing (the series solution of
     predictors.synth_conduction) in at least 80 % of them, and no interval is narrower than
     1 % of its ETA (a near-exact fit of four points must not look certain)."""
-    from thermeta.predictors.synth import Corruption
-    from thermeta.predictors.synth_conduction import core_probe
+    from thermeta.daemon.simulation.synth import Corruption
+    from thermeta.daemon.simulation.synth_conduction import core_probe
 
     hits, n = 0, 30
     rng = np.random.default_rng(11)

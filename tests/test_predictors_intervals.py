@@ -9,7 +9,9 @@ import numpy as np
 import pytest
 from scipy.integrate import solve_ivp
 from scipy.optimize import least_squares
-from thermeta.predictors import forecast, synth
+from thermeta.daemon.simulation import synth
+from thermeta.daemon.simulation.synth import Corruption
+from thermeta.predictors import forecast
 from thermeta.predictors.baselines import (
     air_load,
     crb_eta_sd,
@@ -22,7 +24,6 @@ from thermeta.predictors.baselines import (
     two_reading_k,
 )
 from thermeta.predictors.measured import response
-from thermeta.predictors.synth import Corruption
 
 
 def _case(seed: int):

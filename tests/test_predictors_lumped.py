@@ -8,9 +8,10 @@ import math
 import numpy as np
 import pytest
 from scipy.integrate import solve_ivp
-from thermeta.predictors import forecast, synth
+from thermeta.daemon.simulation import synth
+from thermeta.daemon.simulation.synth import Corruption
+from thermeta.predictors import forecast
 from thermeta.predictors.lumped import fit_lumped
-from thermeta.predictors.synth import Corruption
 
 
 def newton_reference(t_rel: np.ndarray, T0: float, k: float, ambient) -> np.ndarray:

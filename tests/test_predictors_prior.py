@@ -11,10 +11,11 @@ import math
 import numpy as np
 import pytest
 from scipy.optimize import least_squares
-from thermeta.predictors import forecast, synth
+from thermeta.daemon.simulation import synth
+from thermeta.daemon.simulation.synth import Corruption
+from thermeta.predictors import forecast
 from thermeta.predictors.lumped import fit_lumped
 from thermeta.predictors.prior import SD_LOGK_FLOOR, Prior, learn, learnable
-from thermeta.predictors.synth import Corruption
 
 K_WORT = 1 / (15 * 60)  # wort through a plate chiller: tau 15 min (common practice: well under 1 h)
 COOLANT_C = 11.0

@@ -7,8 +7,9 @@ import math
 
 import numpy as np
 import pytest
-from thermeta.predictors import forecast, synth
-from thermeta.predictors.synth import Corruption
+from thermeta.daemon.simulation import synth
+from thermeta.daemon.simulation.synth import Corruption
+from thermeta.predictors import forecast
 
 C = Corruption(noise=0.1, quantum=0.1)
 

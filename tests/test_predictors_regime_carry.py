@@ -10,10 +10,11 @@ import math
 import numpy as np
 import pytest
 from scipy.integrate import solve_ivp
-from thermeta.predictors import forecast, synth
+from thermeta.daemon.simulation import synth
+from thermeta.daemon.simulation.synth import Corruption
+from thermeta.predictors import forecast
 from thermeta.predictors.lumped import fit_lumped
 from thermeta.predictors.regime import find_door, split_disturbance
-from thermeta.predictors.synth import Corruption
 
 K = 1 / 4000
 DOOR = [(0.0, 0.0), (1500.0, 25.0), (1800.0, 0.0)]  # a chiller at 0 degC, door open 5 min

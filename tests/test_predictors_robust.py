@@ -4,9 +4,10 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from thermeta.predictors import forecast, synth
+from thermeta.daemon.simulation import synth
+from thermeta.daemon.simulation.synth import Corruption
+from thermeta.predictors import forecast
 from thermeta.predictors.cleaning import clean, order_and_dedupe, reading_step
-from thermeta.predictors.synth import Corruption
 
 WORT = {
     "T0": 95.0,
@@ -154,7 +155,7 @@ def test_readings_after_a_dropout_are_not_spikes():
     the curve, and the forecast must use them.  Truth: the slab's centre series solution
     (checked against scipy's method of lines in test_conduction_fit.py).  A spike inside the
     run after the pause is still caught."""
-    from thermeta.predictors.synth_conduction import core_probe
+    from thermeta.daemon.simulation.synth_conduction import core_probe
 
     s = core_probe(
         3,

@@ -7,7 +7,7 @@ import math
 import numpy as np
 import pytest
 from scipy.integrate import solve_ivp
-from thermeta.predictors import scenarios as S
+from thermeta.daemon.simulation import scenarios as S
 from thermeta.predictors.conduction_series import theta_centre
 
 

@@ -12,11 +12,11 @@ import time
 
 import numpy as np
 import pytest
-from thermeta.daemon import simulator as sim
 from thermeta.daemon.clock import ScaledClock
 from thermeta.daemon.config import load_config
-from thermeta.daemon.payloads import parse_payload
-from thermeta.predictors import scenarios as S
+from thermeta.daemon.ingest.payloads import parse_payload
+from thermeta.daemon.simulation import scenarios as S
+from thermeta.daemon.simulation import simulator as sim
 
 
 def _parse_all(msgs, now):

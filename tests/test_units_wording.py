@@ -12,11 +12,12 @@ import re
 
 import numpy as np
 import pytest
-from thermeta.predictors import forecast, synth
+from thermeta.daemon.simulation import synth
+from thermeta.daemon.simulation.synth import Corruption
+from thermeta.daemon.simulation.synth_conduction import core_probe
+from thermeta.predictors import forecast
 from thermeta.predictors.conduction import fit_conduction
 from thermeta.predictors.prior import Prior
-from thermeta.predictors.synth import Corruption
-from thermeta.predictors.synth_conduction import core_probe
 from thermeta.predictors.wording import DisplayUnit, point, showing, step
 
 F = DisplayUnit(scale=9 / 5, offset=32.0, symbol="°F")  # NIST SP 811 App. B (from memory)

@@ -4,6 +4,7 @@
     message.py  an alert as JSON and as one plain sentence with the numbers
     outbox.py   one worker thread per hook, retries with exponential backoff
     service.py  the plug-in the daemon attaches (listener + workers)
+    hooks/      one module per delivery kind (webhook, email, exec, mqtt) beside their base
 
 The daemon calls :func:`attach` once its store is open (see thermeta.daemon.service).
 """

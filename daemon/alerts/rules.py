@@ -15,15 +15,15 @@ inside but not yet by the band, for ``hold_s``); an approach clears only when th
 the interval has stayed beyond a band of one more lead (2 x lead) for ``hold_s``.  While crossed,
 a reminder goes out every ``remind_every_s`` unless the episode was acknowledged.
 
-Defrost hold (common practice in the trade: temperature alarms wait through a defrost and a
-recovery delay after it, because the room air swings up while the coil is heated).  When the
-forecast carries the item's newest defrost (``"defrost": {"started_at", "ended_at"}``, from the
-controller's defrost signal, see ``daemon/defrost.py``), no new level is raised from its start
-until ``defrost_recovery_s`` after its end: no ``approaching``, no ``crossed``.  A value still past
-the threshold when the hold ends raises ``crossed`` then.  A signal that never ends holds at most
+Defrost hold (common practice in the trade: temperature alarms wait through a defrost and a recovery
+delay after it, because the room air swings up while the coil is heated). When the forecast carries
+the item's newest defrost (``"defrost": {"started_at", "ended_at"}``, from the controller's defrost
+signal, see ``daemon/ingest/defrost.py``), no new level is raised from its start until
+``defrost_recovery_s`` after its end: no ``approaching``, no ``crossed``. A value still past the
+threshold when the hold ends raises ``crossed`` then. A signal that never ends holds at most
 ``defrost_max_s`` (plus the recovery delay), so a stuck defrost signal cannot silence an item.
-Levels already raised go on as before (reminders, recoveries).  A change of the surroundings
-that the fit finds inside the hold is the defrost itself: noted, not alerted.
+Levels already raised go on as before (reminders, recoveries). A change of the surroundings that the
+fit finds inside the hold is the defrost itself: noted, not alerted.
 
 Alarm delay (``delay_s``; common practice for air probes, which pass their limit for minutes at
 every long door opening while the product barely moves): a new ``approaching`` or ``crossed`` is

@@ -15,11 +15,11 @@ import threading
 from collections.abc import Callable
 from typing import Any
 
+from thermeta.daemon.alerts.hooks.base import Hook, make_hook
 from thermeta.daemon.alerts.message import build_alert
 from thermeta.daemon.alerts.outbox import OutboxWorker
 from thermeta.daemon.alerts.rules import ItemAlertState, RuleParams, step
 from thermeta.daemon.clock import Clock, SystemClock
-from thermeta.daemon.hooks.base import Hook, make_hook
 from thermeta.storage.alerts import AlertStore
 
 log = logging.getLogger("thermeta.alerts")
@@ -120,7 +120,7 @@ class AlertService:
         cfg = self.items.get(alert["item"])
         if cfg is None:
             return None
-        from thermeta.daemon import plotting
+        from thermeta.daemon.views import plotting
 
         title = f"{alert['item']}: {alert['level']}"
         return plotting.item_png(self.store, cfg, history_s=PNG_HISTORY_S, title=title)

@@ -23,7 +23,7 @@ def run(args: argparse.Namespace) -> int:
     import signal
     import threading
 
-    from thermeta.daemon.cmdutil import load_config_or_report
+    from thermeta.daemon.cli.common import load_config_or_report
     from thermeta.daemon.logsetup import configure
     from thermeta.storage.store import StoreError
 
@@ -55,7 +55,7 @@ def run(args: argparse.Namespace) -> int:
     try:
         if args.dashboard:
             try:
-                from thermeta.daemon.dashboard import run_foreground
+                from thermeta.daemon.views.dashboard import run_foreground
             except ModuleNotFoundError:
                 log.error("the dashboard is not available in this build; running without it")
             else:

@@ -450,7 +450,7 @@ def watch(
             else:
                 time.sleep(refresh_s)
     from rich.live import Live
-    from thermeta.daemon.dashboard_keys import KeyReader
+    from thermeta.daemon.views.keys import KeyReader
 
     state = {"filter": "", "attention": False, "typing": False}
     with (

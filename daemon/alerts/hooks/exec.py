@@ -12,8 +12,8 @@ import os
 import subprocess
 from typing import Any
 
+from thermeta.daemon.alerts.hooks.base import Hook
 from thermeta.daemon.errors import DeliveryError
-from thermeta.daemon.hooks.base import Hook
 
 
 def alert_env(alert: dict[str, Any]) -> dict[str, str]:

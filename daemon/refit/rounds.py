@@ -14,7 +14,8 @@ One item's failed fit (an exception, or a result with ``ok=False``) is logged an
 such; the other items go on.
 
 An item with a ``defrost_topic`` gets its newest defrost in the forecast (``"defrost"``:
-``on``, ``started_at``, ``ended_at``; ``daemon/defrost.py``) for the alert rules' defrost hold.
+``on``, ``started_at``, ``ended_at``; ``daemon/ingest/defrost.py``) for the alert rules'
+defrost hold.
 
 Priors (``predictors/prior.py``, stored in ``storage/priors.py``): each item teaches its prior
 class (item key ``prior_class``, default its own name) and its lumped fits (fitted or given
@@ -39,9 +40,9 @@ from typing import Any
 import numpy as np
 from thermeta.daemon.clock import Clock
 from thermeta.daemon.config import AMBIENT_SUFFIX, DEFROST_SUFFIX, Config, ItemConfig
-from thermeta.daemon.defrost import defrost_status
+from thermeta.daemon.ingest.defrost import defrost_status
+from thermeta.daemon.ingest.writer import Activity
 from thermeta.daemon.units import shown_in, to_item_units
-from thermeta.daemon.writer import Activity
 from thermeta.predictors.prior import Prior, learn, learnable
 from thermeta.predictors.result import Forecast, rfc3339
 from thermeta.storage.priors import PriorStore

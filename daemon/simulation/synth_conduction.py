@@ -15,8 +15,8 @@ from numpy.typing import NDArray
 from scipy.integrate import solve_ivp
 from scipy.optimize import brentq
 from scipy.sparse import csr_matrix
+from thermeta.daemon.simulation.synth import T_START, Corruption, Synth, corrupt, sample_times
 from thermeta.predictors.conduction_series import GEOMETRIES, theta_centre
-from thermeta.predictors.synth import T_START, Corruption, Synth, corrupt, sample_times
 
 Float = NDArray[np.float64]
 

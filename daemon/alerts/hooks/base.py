@@ -58,19 +58,19 @@ def make_hook(
 ) -> Hook:
     key = hook_key(index, cfg)
     if cfg.kind == "webhook":
-        from thermeta.daemon.hooks.webhook import WebhookHook
+        from thermeta.daemon.alerts.hooks.webhook import WebhookHook
 
         return WebhookHook(cfg, key)
     if cfg.kind == "email":
-        from thermeta.daemon.hooks.email import EmailHook
+        from thermeta.daemon.alerts.hooks.email import EmailHook
 
         return EmailHook(cfg, key, png_for=png_for)
     if cfg.kind == "exec":
-        from thermeta.daemon.hooks.exec import ExecHook
+        from thermeta.daemon.alerts.hooks.exec import ExecHook
 
         return ExecHook(cfg, key)
     if cfg.kind == "mqtt":
-        from thermeta.daemon.hooks.mqtt import MqttHook
+        from thermeta.daemon.alerts.hooks.mqtt import MqttHook
 
         return MqttHook(cfg, key, publish=publish)
     raise ValueError(f"unknown hook kind {cfg.kind!r}")

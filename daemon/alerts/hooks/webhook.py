@@ -16,8 +16,8 @@ import urllib.error
 import urllib.request
 from typing import Any
 
+from thermeta.daemon.alerts.hooks.base import Hook
 from thermeta.daemon.errors import DeliveryError
-from thermeta.daemon.hooks.base import Hook
 
 
 def render_template(template: str, alert: dict[str, Any]) -> tuple[bytes, str]:

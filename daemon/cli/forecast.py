@@ -118,7 +118,7 @@ def _celsius(values, unit: str):
 
 def run(args: argparse.Namespace) -> int:
     import numpy as np
-    from thermeta.daemon.csvio import read_series
+    from thermeta.daemon.ingest.csvio import read_series
     from thermeta.daemon.units import from_celsius, shown_in, to_celsius, to_item_units
     from thermeta.predictors import forecast
 
@@ -163,7 +163,7 @@ def run(args: argparse.Namespace) -> int:
         return 2
     if args.plot:
         try:
-            from thermeta.daemon.plotting import plot_forecast
+            from thermeta.daemon.views.plotting import plot_forecast
         except ModuleNotFoundError:
             print("thermeta forecast: --plot is not available in this build", file=sys.stderr)
             return 2

@@ -19,7 +19,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def run(args: argparse.Namespace) -> int:
     from thermeta.daemon.alerts.message import clock
-    from thermeta.daemon.cmdutil import load_config_or_report, open_store
+    from thermeta.daemon.cli.common import load_config_or_report, open_store
     from thermeta.storage.alerts import AlertStore
 
     cfg = load_config_or_report(args.config)

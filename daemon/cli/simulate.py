@@ -14,7 +14,7 @@ import time
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
-    from thermeta.predictors.scenarios import NAMES
+    from thermeta.daemon.simulation.scenarios import NAMES
 
     p.add_argument(
         "--scenario",
@@ -53,9 +53,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def run(args: argparse.Namespace) -> int:
     from thermeta.daemon.clock import ScaledClock
-    from thermeta.daemon.simulator import Simulator, config_text, truth_lines
+    from thermeta.daemon.simulation.scenarios import build
+    from thermeta.daemon.simulation.simulator import Simulator, config_text, truth_lines
     from thermeta.daemon.timefmt import human_duration
-    from thermeta.predictors.scenarios import build
 
     if not args.speed > 0 or args.speed > 100_000:
         print(

@@ -10,7 +10,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from thermeta.daemon.cmdutil import load_config_or_report
+    from thermeta.daemon.cli.common import load_config_or_report
 
     cfg = load_config_or_report(args.config)
     if cfg is None:

@@ -20,9 +20,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from thermeta.daemon.cmdutil import load_config_or_report, open_store
-    from thermeta.daemon.plotting import figure_png, item_figure
-    from thermeta.daemon.topics import Router
+    from thermeta.daemon.cli.common import load_config_or_report, open_store
+    from thermeta.daemon.ingest.topics import Router
+    from thermeta.daemon.views.plotting import figure_png, item_figure
 
     if args.hours is not None and not args.hours > 0:
         print(f"thermeta plot: --hours must be positive, got {args.hours:g}", file=sys.stderr)

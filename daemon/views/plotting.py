@@ -494,7 +494,7 @@ def item_series(store, cfg, *, history_s: float | None = None):
 def item_forecast(series, cfg, *, limit: str | None = None, prior=None) -> Forecast:
     """Refit the item as the service does (the refit's own arguments: model, ambient mode and
     its doubt, window, limit side, the learned prior), in degC."""
-    from thermeta.daemon.refit import forecast_kwargs
+    from thermeta.daemon.refit.rounds import forecast_kwargs
     from thermeta.predictors import forecast
 
     return forecast(
@@ -508,7 +508,7 @@ def item_forecast(series, cfg, *, limit: str | None = None, prior=None) -> Forec
 
 def _limit_and_prior(store, cfg, measured: bool):
     """The limit side and learned prior the refit would use for the item, read from the store."""
-    from thermeta.daemon.refit import limit_side, uses_prior
+    from thermeta.daemon.refit.rounds import limit_side, uses_prior
     from thermeta.predictors.prior import Prior
     from thermeta.storage.priors import PriorStore
 

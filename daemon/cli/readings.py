@@ -19,7 +19,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from thermeta.daemon.cmdutil import load_config_or_report, open_store
+    from thermeta.daemon.cli.common import load_config_or_report, open_store
     from thermeta.daemon.timefmt import parse_time
     from thermeta.daemon.units import from_celsius
     from thermeta.predictors.result import rfc3339

@@ -1,6 +1,6 @@
 """Publish a scenario's readings over MQTT in real or sped-up time, and the config to watch them.
 
-The readings come from :mod:`thermeta.predictors.scenarios` (physics with known truth).  Each
+The readings come from :mod:`thermeta.daemon.simulation.scenarios` (physics with known truth).  Each
 reading is published when the clock passes its timestamp (a logger sending a SenML pack of several
 readings publishes when the newest is due), QoS 1, on one topic per probe.  Payload forms in use:
 
@@ -21,8 +21,8 @@ import time
 from dataclasses import dataclass
 from typing import Protocol
 
+from thermeta.daemon.simulation.scenarios import Scenario
 from thermeta.predictors.result import rfc3339
-from thermeta.predictors.scenarios import Scenario
 
 MAX_PENDING = 2000  # unacknowledged QoS 1 publishes before we wait (paho's ids wrap at 65,535)
 
@@ -143,7 +143,7 @@ class Simulator:
         """Publish until the scenario ends or :meth:`stop` is called."""
         msgs = messages(self.scenario)
         self.stats.total = len(msgs)
-        from thermeta.daemon.embedded_broker import broker_reachable
+        from thermeta.daemon.simulation.broker import broker_reachable
 
         if not broker_reachable(self.host, self.port, timeout_s=2.0):
             self.stats.error = f"no MQTT broker answered at {self.host}:{self.port}"

@@ -13,16 +13,16 @@ import sys
 
 # name -> (module, one-line help)
 COMMANDS: dict[str, tuple[str, str]] = {
-    "forecast": ("thermeta.daemon.cmd_forecast", "forecast a threshold crossing from a CSV file"),
-    "run": ("thermeta.daemon.cmd_run", "run the service: MQTT ingest, refits, forecasts, alerts"),
-    "check-config": ("thermeta.daemon.cmd_check_config", "validate a config file and exit"),
-    "status": ("thermeta.daemon.cmd_status", "counts and health read from the store"),
-    "readings": ("thermeta.daemon.cmd_readings", "export an item's stored readings as CSV"),
-    "ack": ("thermeta.daemon.cmd_ack", "acknowledge an item's alert episode (stops reminders)"),
-    "watch": ("thermeta.daemon.cmd_watch", "live terminal dashboard beside a running service"),
-    "plot": ("thermeta.daemon.cmd_plot", "draw an item's readings and forecast to a PNG"),
-    "simulate": ("thermeta.daemon.cmd_simulate", "publish a simulated scenario over MQTT"),
-    "demo": ("thermeta.daemon.cmd_demo", "the whole product on simulated data, in one command"),
+    "forecast": ("thermeta.daemon.cli.forecast", "forecast a threshold crossing from a CSV file"),
+    "run": ("thermeta.daemon.cli.run", "run the service: MQTT ingest, refits, forecasts, alerts"),
+    "check-config": ("thermeta.daemon.cli.check_config", "validate a config file and exit"),
+    "status": ("thermeta.daemon.cli.status", "counts and health read from the store"),
+    "readings": ("thermeta.daemon.cli.readings", "export an item's stored readings as CSV"),
+    "ack": ("thermeta.daemon.cli.ack", "acknowledge an item's alert episode (stops reminders)"),
+    "watch": ("thermeta.daemon.cli.watch", "live terminal dashboard beside a running service"),
+    "plot": ("thermeta.daemon.cli.plot", "draw an item's readings and forecast to a PNG"),
+    "simulate": ("thermeta.daemon.cli.simulate", "publish a simulated scenario over MQTT"),
+    "demo": ("thermeta.daemon.cli.demo", "the whole product on simulated data, in one command"),
 }
 
 

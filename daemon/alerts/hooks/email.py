@@ -16,8 +16,8 @@ from email.message import EmailMessage
 from email.utils import formatdate, make_msgid
 from typing import Any
 
+from thermeta.daemon.alerts.hooks.base import Hook
 from thermeta.daemon.errors import DeliveryError
-from thermeta.daemon.hooks.base import Hook
 
 FIELDS = (
     ("value_now", "value now"),

@@ -105,7 +105,7 @@ def _eta_text(r: dict[str, Any], now: float) -> str:
 def run(args: argparse.Namespace) -> int:
     import time
 
-    from thermeta.daemon.cmdutil import load_config_or_report, open_store
+    from thermeta.daemon.cli.common import load_config_or_report, open_store
     from thermeta.daemon.timefmt import human_duration, parse_time
     from thermeta.daemon.units import UNIT_SIGN
 

@@ -22,8 +22,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def run(args: argparse.Namespace) -> int:
     from rich.console import Console
-    from thermeta.daemon.cmdutil import load_config_or_report, open_store
-    from thermeta.daemon.dashboard import watch
+    from thermeta.daemon.cli.common import load_config_or_report, open_store
+    from thermeta.daemon.views.dashboard import watch
 
     if not args.interval > 0:
         print(f"thermeta watch: --interval must be > 0, got {args.interval:g}", file=sys.stderr)

@@ -27,7 +27,7 @@ from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 from thermeta.daemon.clock import Clock
 from thermeta.daemon.config import BrokerConfig
-from thermeta.daemon.writer import Inbound
+from thermeta.daemon.ingest.writer import Inbound
 
 log = logging.getLogger("thermeta.mqtt")
 

@@ -3,8 +3,8 @@
 Pure numerics (no I/O, no clock): :func:`build` returns a :class:`Scenario` holding, per probe,
 the readings as a sensor would send them (noise, 0.1 degC steps, a few spikes, dropouts) and the
 noise-free curve, and per load probe the truth (the true crossing time, k, the ambient, the
-regime start).  The simulator (``daemon/simulator.py``) publishes them over MQTT; tests and the
-demo compare forecasts against the truth.
+regime start).  The simulator (``daemon/simulation/simulator.py``) publishes them over MQTT;
+tests and the demo compare forecasts against the truth.
 
 Physics, in degC and seconds:
 
@@ -28,9 +28,9 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
-from thermeta.predictors import synth
+from thermeta.daemon.simulation import synth
+from thermeta.daemon.simulation.synth import Corruption
 from thermeta.predictors.conduction_series import theta_centre
-from thermeta.predictors.synth import Corruption
 
 T_START = synth.T_START
 H = 3600.0

@@ -26,7 +26,7 @@ DEMO_PREFIX = "thermeta-demo"
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
-    from thermeta.predictors.scenarios import NAMES
+    from thermeta.daemon.simulation.scenarios import NAMES
 
     p.add_argument(
         "--scenario",
@@ -311,10 +311,10 @@ def run(args: argparse.Namespace) -> int:
 
 def _run(args: argparse.Namespace, workdir: Path) -> int:
     from thermeta.daemon.config import load_config
-    from thermeta.daemon.embedded_broker import EmbeddedBroker, broker_accepts
     from thermeta.daemon.service import Service
-    from thermeta.daemon.simulator import Simulator, config_text, truth_lines
-    from thermeta.predictors.scenarios import build
+    from thermeta.daemon.simulation.broker import EmbeddedBroker, broker_accepts
+    from thermeta.daemon.simulation.scenarios import build
+    from thermeta.daemon.simulation.simulator import Simulator, config_text, truth_lines
 
     log_path = workdir / "thermeta-demo.log"
     handler = logging.FileHandler(log_path, encoding="utf-8")
@@ -466,13 +466,13 @@ def _wait(stop: threading.Event, end_at: float | None, sim) -> None:
 def _have_dashboard() -> bool:
     import importlib.util
 
-    return importlib.util.find_spec("thermeta.daemon.dashboard") is not None
+    return importlib.util.find_spec("thermeta.daemon.views.dashboard") is not None
 
 
 def _dashboard(service, stop: threading.Event, end_at: float | None, sim, out) -> None:
     import inspect
 
-    from thermeta.daemon.dashboard import run_foreground
+    from thermeta.daemon.views.dashboard import run_foreground
 
     takes_stop = "stop" in inspect.signature(run_foreground).parameters
     running = threading.Event()

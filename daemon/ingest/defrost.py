@@ -18,7 +18,7 @@ import math
 from collections.abc import Sequence
 from typing import Any
 
-from thermeta.daemon.payloads import (
+from thermeta.daemon.ingest.payloads import (
     DEFAULT_LIMITS,
     EPOCH_MAX_S,
     EPOCH_MIN_S,

@@ -7,8 +7,8 @@ import json
 from collections.abc import Callable
 from typing import Any
 
+from thermeta.daemon.alerts.hooks.base import Hook
 from thermeta.daemon.errors import DeliveryError
-from thermeta.daemon.hooks.base import Hook
 
 PUBLISH_WAIT_S = 10.0
 
