@@ -11,6 +11,6 @@
     simulation/  readings with known truth: scenarios, generators, the simulator, a demo broker
 
 Beside them: ``service.py`` wires the running service, ``config.py`` reads the TOML config,
-``errors.py`` holds the one exception tree, ``clock.py`` the injectable "now", ``units.py`` and
+``clock.py`` the injectable "now", ``units.py`` and
 ``timefmt.py`` the temperatures and times people read, ``logsetup.py`` the log format.
 """

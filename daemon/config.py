@@ -1,7 +1,7 @@
 """The TOML config: parsed, validated as a whole, and turned into typed dataclasses.
 
 Every problem found is reported as ``FILE:LINE: key: problem`` (all of them at once, not just the
-first) in a :class:`~thermeta.daemon.errors.ConfigError`.  Python's ``tomllib`` keeps no line
+first) in a :class:`~thermeta.storage.errors.ConfigError`.  Python's ``tomllib`` keeps no line
 numbers, so :class:`_LineIndex` finds each table and key in the raw text.
 
 Secrets never sit in the file: the config names environment variables (``password_env``,
@@ -20,9 +20,9 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from thermeta.daemon.errors import ConfigError
 from thermeta.daemon.ingest.topics import check_filter, is_wildcard, placeholders
 from thermeta.daemon.units import UNITS, to_celsius
+from thermeta.storage.errors import ConfigError
 
 MODELS = ("lumped", "slab", "cylinder", "sphere", "auto")
 HOOK_KINDS = ("webhook", "email", "exec", "mqtt")

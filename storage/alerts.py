@@ -32,6 +32,7 @@ from sqlalchemy import (
     update,
 )
 from thermeta.storage.schema import _Id, metadata
+from thermeta.storage.store import Store
 
 alert_state = Table(
     "alert_state",
@@ -87,17 +88,16 @@ alert_acks = Table(
 class AlertStore:
     """The alert queries over a :class:`thermeta.storage.store.Store` (same engine, same locks)."""
 
-    def __init__(self, store: Any):
+    def __init__(self, store: Store):
         self.store = store
-        self.engine = store.engine
 
     # -- rule state ---------------------------------------------------------------------------
     def load_states(self) -> dict[str, dict[str, Any]]:
-        with self.engine.connect() as conn:
+        with self.store.reading() as conn:
             return {r.item: json.loads(r.body) for r in conn.execute(select(alert_state))}
 
     def get_state(self, item: str) -> dict[str, Any] | None:
-        with self.engine.connect() as conn:
+        with self.store.reading() as conn:
             text = conn.execute(
                 select(alert_state.c.body).where(alert_state.c.item == item)
             ).scalar()
@@ -117,7 +117,7 @@ class AlertStore:
         of the new outbox rows.
         """
         new_rows: list[int] = []
-        with self.store._write() as conn, conn.begin():
+        with self.store.transaction() as conn:
             text = json.dumps(state)
             done = conn.execute(
                 update(alert_state)
@@ -173,7 +173,7 @@ class AlertStore:
         )
         if now is not None:
             q = q.where(outbox.c.next_at <= now)
-        with self.engine.connect() as conn:
+        with self.store.reading() as conn:
             return [
                 {
                     "id": int(r.id),
@@ -188,12 +188,12 @@ class AlertStore:
         q = select(func.min(outbox.c.next_at)).where(
             outbox.c.hook == hook, outbox.c.status == "pending"
         )
-        with self.engine.connect() as conn:
+        with self.store.reading() as conn:
             v = conn.execute(q).scalar()
         return None if v is None else float(v)
 
     def mark_delivered(self, row_id: int, now: float) -> None:
-        with self.store._write() as conn, conn.begin():
+        with self.store.transaction() as conn:
             conn.execute(
                 update(outbox)
                 .where(outbox.c.id == row_id)
@@ -218,18 +218,18 @@ class AlertStore:
         }
         if give_up:
             values.update(status="failed", done_at=time.time() if now is None else now)
-        with self.store._write() as conn, conn.begin():
+        with self.store.transaction() as conn:
             conn.execute(update(outbox).where(outbox.c.id == row_id).values(**values))
 
     def outbox_counts(self) -> dict[str, int]:
         q = select(outbox.c.status, func.count()).group_by(outbox.c.status)
-        with self.engine.connect() as conn:
+        with self.store.reading() as conn:
             out = {"pending": 0, "delivered": 0, "failed": 0}
             out.update({s: int(n) for s, n in conn.execute(q)})
             return out
 
     def outbox_rows(self) -> list[dict[str, Any]]:
-        with self.engine.connect() as conn:
+        with self.store.reading() as conn:
             return [dict(r._mapping) for r in conn.execute(select(outbox).order_by(outbox.c.id))]
 
     # -- events and acks ----------------------------------------------------------------------
@@ -237,7 +237,7 @@ class AlertStore:
         q = select(alert_events).order_by(alert_events.c.id.desc()).limit(limit)
         if item is not None:
             q = q.where(alert_events.c.item == item)
-        with self.engine.connect() as conn:
+        with self.store.reading() as conn:
             rows = [dict(r._mapping) for r in conn.execute(q)]
         for r in rows:
             r["body"] = json.loads(r["body"])
@@ -246,7 +246,7 @@ class AlertStore:
     def add_ack(
         self, item: str, episode: int, now: float, by: str | None, note: str | None
     ) -> None:
-        with self.store._write() as conn, conn.begin():
+        with self.store.transaction() as conn:
             conn.execute(
                 insert(alert_acks).values(
                     item=item, episode=episode, acked_at=now, by=by, note=note
@@ -260,6 +260,6 @@ class AlertStore:
             .order_by(alert_acks.c.id)
             .limit(1)
         )
-        with self.engine.connect() as conn:
+        with self.store.reading() as conn:
             r = conn.execute(q).first()
         return None if r is None else dict(r._mapping)

@@ -12,9 +12,9 @@ import pytest
 from sqlalchemy import func, select
 from thermeta.daemon.clock import ManualClock
 from thermeta.daemon.config import parse_config
-from thermeta.daemon.errors import ConfigError
 from thermeta.daemon.ingest.writer import Activity
 from thermeta.daemon.refit.rounds import Refitter
+from thermeta.storage.errors import ConfigError
 from thermeta.storage.priors import PriorStore, priors
 from thermeta.storage.store import Store
 

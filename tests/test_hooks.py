@@ -17,7 +17,7 @@ from pathlib import Path
 import pytest
 from thermeta.daemon.alerts.hooks.base import hook_key, make_hook
 from thermeta.daemon.config import HookConfig
-from thermeta.daemon.errors import DeliveryError
+from thermeta.storage.errors import DeliveryError
 
 ALERT = {
     "id": "trailer-4:1:approaching:1",

@@ -16,7 +16,7 @@ import threading
 import time
 from typing import Any
 
-from thermeta.daemon.errors import DeliveryError
+from thermeta.storage.errors import DeliveryError
 
 log = logging.getLogger("thermeta.alerts.outbox")
 

@@ -9,7 +9,7 @@ from typing import Any
 def load_config_or_report(path: str) -> Any:
     """The validated config, or None after printing each problem as ``FILE:LINE: key: problem``."""
     from thermeta.daemon.config import load_config
-    from thermeta.daemon.errors import ConfigError
+    from thermeta.storage.errors import ConfigError
 
     try:
         return load_config(path)
@@ -21,8 +21,8 @@ def load_config_or_report(path: str) -> Any:
 
 def open_store(cfg: Any, command: str):
     """The config's store, or None after printing why it cannot be read."""
-    from sqlalchemy import inspect
-    from thermeta.storage.store import Store, StoreError, safe_url
+    from thermeta.storage.errors import StoreError
+    from thermeta.storage.store import Store, safe_url
 
     url = cfg.storage.url
     if url.startswith("sqlite:///") and url != "sqlite:///:memory:":
@@ -37,12 +37,13 @@ def open_store(cfg: Any, command: str):
             return None
     try:
         store = Store(url)
-        if not inspect(store.engine).has_table("readings"):
+        if not store.has_tables():
             print(f"thermeta {command}: {safe_url(url)} holds no thermeta tables", file=sys.stderr)
             return None
-    except (StoreError, Exception) as exc:  # noqa: BLE001 - driver errors vary by database
+    except StoreError as exc:
+        why = exc.__cause__ or exc  # the database's own words, as they came
         print(
-            f"thermeta {command}: cannot open {safe_url(url)}: {str(exc).splitlines()[0]}",
+            f"thermeta {command}: cannot open {safe_url(url)}: {str(why).splitlines()[0]}",
             file=sys.stderr,
         )
         return None

@@ -6,8 +6,8 @@ import argparse
 import json
 import sys
 
-from thermeta.daemon.errors import InputError
 from thermeta.daemon.units import UNIT_SIGN
+from thermeta.storage.errors import InputError
 
 CAUTION = (
     "Forecasts support decisions; they are not a food-safety plan or a regulatory record. "

@@ -9,8 +9,8 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-from thermeta.daemon.errors import InputError
 from thermeta.daemon.timefmt import parse_time
+from thermeta.storage.errors import InputError
 
 MAX_BYTES = 512 * 1024 * 1024
 

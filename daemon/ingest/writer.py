@@ -21,10 +21,11 @@ from typing import Any, NamedTuple
 from thermeta.daemon.clock import Clock
 from thermeta.daemon.config import Config, ItemConfig
 from thermeta.daemon.ingest.defrost import parse_defrost
-from thermeta.daemon.ingest.payloads import Limits, PayloadError, excerpt, parse_payload
+from thermeta.daemon.ingest.payloads import Limits, excerpt, parse_payload
 from thermeta.daemon.ingest.topics import Route, Router
+from thermeta.storage.errors import PayloadError, StoreError
 from thermeta.storage.schema import FLAG_RECEIPT_TS
-from thermeta.storage.store import Store, StoreError
+from thermeta.storage.store import Store
 
 log = logging.getLogger("thermeta.writer")
 

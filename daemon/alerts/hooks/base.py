@@ -1,7 +1,7 @@
 """The one base of every alert hook, and the factory from ``[[hook]]`` tables.
 
 A hook takes one alert (the JSON dict of :mod:`thermeta.daemon.alerts.message`) and delivers it,
-or raises :class:`~thermeta.daemon.errors.DeliveryError`; the outbox worker retries it later.
+or raises :class:`~thermeta.storage.errors.DeliveryError`; the outbox worker retries it later.
 Hooks never run on the ingest or refit threads: each has its own outbox worker.
 """
 
@@ -12,7 +12,7 @@ from abc import ABC, abstractmethod
 from collections.abc import Callable
 from typing import Any
 
-from thermeta.daemon.errors import DeliveryError
+from thermeta.storage.errors import DeliveryError
 
 __all__ = ["DeliveryError", "Hook", "hook_key", "make_hook"]
 

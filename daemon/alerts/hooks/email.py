@@ -17,7 +17,7 @@ from email.utils import formatdate, make_msgid
 from typing import Any
 
 from thermeta.daemon.alerts.hooks.base import Hook
-from thermeta.daemon.errors import DeliveryError
+from thermeta.storage.errors import DeliveryError
 
 FIELDS = (
     ("value_now", "value now"),

@@ -13,7 +13,7 @@ import subprocess
 from typing import Any
 
 from thermeta.daemon.alerts.hooks.base import Hook
-from thermeta.daemon.errors import DeliveryError
+from thermeta.storage.errors import DeliveryError
 
 
 def alert_env(alert: dict[str, Any]) -> dict[str, str]:

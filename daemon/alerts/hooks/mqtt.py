@@ -8,7 +8,7 @@ from collections.abc import Callable
 from typing import Any
 
 from thermeta.daemon.alerts.hooks.base import Hook
-from thermeta.daemon.errors import DeliveryError
+from thermeta.storage.errors import DeliveryError
 
 PUBLISH_WAIT_S = 10.0
 

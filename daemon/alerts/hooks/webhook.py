@@ -17,7 +17,7 @@ import urllib.request
 from typing import Any
 
 from thermeta.daemon.alerts.hooks.base import Hook
-from thermeta.daemon.errors import DeliveryError
+from thermeta.storage.errors import DeliveryError
 
 
 def render_template(template: str, alert: dict[str, Any]) -> tuple[bytes, str]:
