@@ -21,8 +21,11 @@ from pathlib import Path
 from typing import Any
 
 from thermeta.daemon.ingest.topics import check_filter, is_wildcard, placeholders
+from thermeta.daemon.states import AlertLevel
 from thermeta.daemon.units import UNITS, to_celsius
 from thermeta.storage.errors import ConfigError
+
+ALERT_LEVELS = tuple(AlertLevel)
 
 MODELS = ("lumped", "slab", "cylinder", "sphere", "auto")
 HOOK_KINDS = ("webhook", "email", "exec", "mqtt")
@@ -853,8 +856,6 @@ def _hooks(c: _Checker, raw: Any) -> list[HookConfig]:
         c.unknown(t, w, {"kind", "name", "items", "levels"} | HOOK_KEYS[kind])
         items = c.get(t, w, "items", "strlist")
         levels = c.get(t, w, "levels", "strlist")
-        from thermeta.daemon.alerts.rules import LEVELS as ALERT_LEVELS
-
         for lv in levels or ():
             if lv not in ALERT_LEVELS:
                 c.problem(

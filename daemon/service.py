@@ -56,7 +56,8 @@ class Service:
 
     # -- what plug-ins use --------------------------------------------------------------------
     def add_forecast_listener(self, cb: Listener) -> None:
-        """``cb(item_config, forecast_dict, previous_dict_or_None)`` after each item's refit."""
+        """``cb(update)`` with a :class:`~thermeta.daemon.refit.rounds.ForecastUpdate` after each
+        item's refit."""
         self.refitter.listeners.append(cb)
 
     def publish(self, topic: str, payload: str | bytes, qos: int = 1, retain: bool = False):

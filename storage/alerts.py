@@ -15,6 +15,9 @@ from __future__ import annotations
 
 import json
 import time
+from collections.abc import Callable
+from dataclasses import dataclass
+from enum import StrEnum
 from typing import Any
 
 from sqlalchemy import (
@@ -33,6 +36,25 @@ from sqlalchemy import (
 )
 from thermeta.storage.schema import _Id, metadata
 from thermeta.storage.store import Store
+
+
+class OutboxStatus(StrEnum):
+    """Where an outbox row stands."""
+
+    PENDING = "pending"  # not yet taken by its hook
+    DELIVERED = "delivered"
+    FAILED = "failed"  # given up (too old)
+
+
+@dataclass(frozen=True)
+class OutboxRow:
+    """A pending delivery: the row's id, the tries so far, when it was queued and the alert."""
+
+    id: int
+    attempts: int
+    created_at: float
+    alert: dict[str, Any]
+
 
 alert_state = Table(
     "alert_state",
@@ -62,7 +84,7 @@ outbox = Table(
     Column("id", _Id, primary_key=True, autoincrement=True),
     Column("event_id", Integer, nullable=False),
     Column("hook", String(200), nullable=False),
-    Column("status", String(16), nullable=False, default="pending"),  # pending|delivered|failed
+    Column("status", String(16), nullable=False, default=OutboxStatus.PENDING),
     Column("attempts", Integer, nullable=False, default=0),
     Column("created_at", Double, nullable=False),
     Column("next_at", Double, nullable=False),
@@ -108,7 +130,7 @@ class AlertStore:
         item: str,
         state: dict[str, Any],
         alerts: list[dict[str, Any]],
-        hooks_for: Any,
+        hooks_for: Callable[[dict[str, Any]], list[str]],
         now: float,
     ) -> list[int]:
         """Save ``state`` and insert ``alerts`` with one outbox row per hook, in one transaction.
@@ -151,7 +173,7 @@ class AlertStore:
                         .values(
                             event_id=event_id,
                             hook=hook,
-                            status="pending",
+                            status=OutboxStatus.PENDING,
                             attempts=0,
                             created_at=now,
                             next_at=now,
@@ -162,12 +184,12 @@ class AlertStore:
         return new_rows
 
     # -- outbox -------------------------------------------------------------------------------
-    def due(self, hook: str, now: float | None = None, limit: int = 20) -> list[dict[str, Any]]:
+    def due(self, hook: str, now: float | None = None, limit: int = 20) -> list[OutboxRow]:
         """Pending rows of ``hook`` (whose next try is due by ``now`` if given), oldest first."""
         q = (
             select(outbox.c.id, outbox.c.attempts, outbox.c.created_at, alert_events.c.body)
             .join(alert_events, alert_events.c.id == outbox.c.event_id)
-            .where(outbox.c.hook == hook, outbox.c.status == "pending")
+            .where(outbox.c.hook == hook, outbox.c.status == OutboxStatus.PENDING)
             .order_by(outbox.c.id)
             .limit(limit)
         )
@@ -175,22 +197,9 @@ class AlertStore:
             q = q.where(outbox.c.next_at <= now)
         with self.store.reading() as conn:
             return [
-                {
-                    "id": int(r.id),
-                    "attempts": int(r.attempts),
-                    "created_at": float(r.created_at),
-                    "alert": json.loads(r.body),
-                }
+                OutboxRow(int(r.id), int(r.attempts), float(r.created_at), json.loads(r.body))
                 for r in conn.execute(q)
             ]
-
-    def next_due_at(self, hook: str) -> float | None:
-        q = select(func.min(outbox.c.next_at)).where(
-            outbox.c.hook == hook, outbox.c.status == "pending"
-        )
-        with self.store.reading() as conn:
-            v = conn.execute(q).scalar()
-        return None if v is None else float(v)
 
     def mark_delivered(self, row_id: int, now: float) -> None:
         with self.store.transaction() as conn:
@@ -198,7 +207,10 @@ class AlertStore:
                 update(outbox)
                 .where(outbox.c.id == row_id)
                 .values(
-                    status="delivered", done_at=now, attempts=outbox.c.attempts + 1, last_error=None
+                    status=OutboxStatus.DELIVERED,
+                    done_at=now,
+                    attempts=outbox.c.attempts + 1,
+                    last_error=None,
                 )
             )
 
@@ -217,14 +229,14 @@ class AlertStore:
             "last_error": error[:500],
         }
         if give_up:
-            values.update(status="failed", done_at=time.time() if now is None else now)
+            values.update(status=OutboxStatus.FAILED, done_at=time.time() if now is None else now)
         with self.store.transaction() as conn:
             conn.execute(update(outbox).where(outbox.c.id == row_id).values(**values))
 
     def outbox_counts(self) -> dict[str, int]:
         q = select(outbox.c.status, func.count()).group_by(outbox.c.status)
         with self.store.reading() as conn:
-            out = {"pending": 0, "delivered": 0, "failed": 0}
+            out = {str(s): 0 for s in OutboxStatus}
             out.update({s: int(n) for s, n in conn.execute(q)})
             return out
 

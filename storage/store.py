@@ -13,6 +13,7 @@ import json
 import time
 from collections.abc import Iterable, Iterator, Sequence
 from contextlib import contextmanager
+from dataclasses import asdict, dataclass
 from typing import Any
 
 from sqlalchemy import (
@@ -45,6 +46,28 @@ SQLITE_INSERT_READINGS = (
     f"INSERT INTO readings ({', '.join(READING_COLUMNS)}) VALUES (?, ?, ?, ?, ?) "
     "ON CONFLICT (item_id, ts) DO NOTHING"
 )
+
+
+@dataclass(frozen=True)
+class DeadLetter:
+    """A message set aside: when it came, on which topic, for which item (if known), why, and an
+    excerpt of its payload (undecodable bytes escaped)."""
+
+    received_at: float
+    topic: str
+    item: str | None
+    reason: str
+    payload: str
+
+
+@dataclass(frozen=True)
+class StoredForecast:
+    """A stored forecast: the item, its state then, when it was made (epoch s) and its JSON."""
+
+    item: str
+    state: str
+    made_at: float
+    forecast: dict[str, Any]
 
 
 def safe_url(url: str) -> str:
@@ -120,10 +143,11 @@ class Store:
         with store_errors(f"cannot create tables in {safe_url(self.url)}"):
             schema.metadata.create_all(self.engine)
 
-    def has_tables(self) -> bool:
-        """Whether the store holds thermeta's tables (an existing store, not an empty database)."""
+    def has_table(self, name: str = "readings") -> bool:
+        """Whether the store holds table ``name`` (by default: whether it is a thermeta store at
+        all, not an empty database)."""
         with store_errors(f"cannot read {safe_url(self.url)}"):
-            return inspect(self.engine).has_table("readings")
+            return inspect(self.engine).has_table(name)
 
     def close(self) -> None:
         self.engine.dispose()
@@ -259,13 +283,12 @@ class Store:
     def write_batch(
         self,
         reading_rows: Sequence[tuple | dict[str, Any]],
-        dead_rows: Sequence[dict[str, Any]] = (),
+        dead: Sequence[DeadLetter] = (),
     ) -> int:
         """Insert readings (duplicates of (item_id, ts) ignored) and dead letters in ONE
         transaction.
 
         reading_rows: tuples (item_id, ts, value_c, flags, received_at), or dicts with those keys.
-        dead_rows: dicts with received_at, topic, item, reason, payload.
         Returns the number of readings newly stored where the driver reports it, else -1.
         Raises StoreError; nothing of the batch is stored then.
         """
@@ -288,8 +311,8 @@ class Store:
                     stored = res.rowcount if res.rowcount is not None else -1
                 else:
                     stored = self._insert_one_by_one(conn, rows)
-            if dead_rows:
-                conn.execute(insert(dead_letters), list(dead_rows))
+            if dead:
+                conn.execute(insert(dead_letters), [asdict(d) for d in dead])
         return stored
 
     @staticmethod
@@ -400,9 +423,8 @@ class Store:
                     update(items).where(items.c.id == i).values(state=s, last_reading_at=last)
                 )
 
-    def latest_forecasts(self) -> list[dict[str, Any]]:
-        """The current forecast of each item: dicts with item, state, made_at, forecast (the
-        JSON)."""
+    def latest_forecasts(self) -> list[StoredForecast]:
+        """The current forecast of each item, by item name."""
         newest = select(func.max(forecasts.c.id)).group_by(forecasts.c.item_id).scalar_subquery()
         q = (
             select(items.c.name, forecasts.c.state, forecasts.c.made_at, forecasts.c.body)
@@ -411,12 +433,10 @@ class Store:
             .order_by(items.c.name)
         )
         with self.reading() as conn:
-            return [
-                {"item": n, "state": s, "made_at": float(m), "forecast": json.loads(b)}
-                for n, s, m, b in conn.execute(q)
-            ]
+            return [StoredForecast(n, s, float(m), json.loads(b)) for n, s, m, b in conn.execute(q)]
 
-    def forecast_history(self, item: str, limit: int = 100) -> list[dict[str, Any]]:
+    def forecast_history(self, item: str, limit: int = 100) -> list[StoredForecast]:
+        """The item's stored forecasts, newest first."""
         item_id = self.item_id(item)
         if item_id is None:
             return []
@@ -427,10 +447,7 @@ class Store:
             .limit(limit)
         )
         with self.reading() as conn:
-            return [
-                {"made_at": float(m), "state": s, "forecast": json.loads(b)}
-                for m, s, b in conn.execute(q)
-            ]
+            return [StoredForecast(item, s, float(m), json.loads(b)) for m, s, b in conn.execute(q)]
 
     # -- meta ---------------------------------------------------------------------------------
     def set_meta(self, key: str, value: Any) -> None:

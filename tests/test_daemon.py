@@ -207,7 +207,7 @@ def test_refit_states_and_publishing(tmp_path):
     rf = Refitter(
         store, cfg, ManualClock(T0), act, publish=lambda n, p: published.update({n: json.loads(p)})
     )
-    rf.listeners.append(lambda it, body, prev: heard.append((it.name, body["state"], prev)))
+    rf.listeners.append(lambda u: heard.append((u.item.name, u.state, u.previous)))
     states = rf.run_once()
     assert states == {"warm": "approaching", "far": "steady", "new": "learning", "past": "crossed"}
     w = published["warm"]
@@ -215,7 +215,7 @@ def test_refit_states_and_publishing(tmp_path):
     # truth: t* = -ln((thr - Ta)/(T0 - Ta)) / k from the closed form, counted from the last reading
     true_eta = -math.log((8.0 - 25.0) / (2.0 - 25.0)) * 7200 - t_rel[-1]
     assert w["eta_s"] == pytest.approx(true_eta, rel=0.05)
-    assert {f["item"]: f["state"] for f in store.latest_forecasts()} == states
+    assert {f.item: f.state for f in store.latest_forecasts()} == states
     assert store.last_refit_at() == T0
     assert all(prev is None for _, _, prev in heard)
     assert rf.run_once() == {}  # nothing new: no refit, nothing published again
@@ -233,9 +233,7 @@ def test_item_goes_stale_after_its_silence_limit(tmp_path):
     clock = ManualClock(T0)
     heard = []
     rf = Refitter(store, cfg, clock, act)
-    rf.listeners.append(
-        lambda it, body, prev: heard.append((body["state"], prev and prev["state"]))
-    )
+    rf.listeners.append(lambda u: heard.append((u.state, u.previous and u.previous["state"])))
     rf.run_once()
     clock.advance(200)
     assert rf.run_once() == {}
@@ -264,7 +262,7 @@ def test_one_failing_item_does_not_stop_the_others(tmp_path, monkeypatch):
     rf._predict = flaky
     states = rf.run_once()
     assert states["warm"] == "approaching"
-    far = {f["item"]: f["forecast"] for f in store.latest_forecasts()}["far"]
+    far = {f.item: f.forecast for f in store.latest_forecasts()}["far"]
     assert far["fit_ok"] is False and far["reason"].startswith(
         "fit error: FloatingPointError: boom"
     )

@@ -17,6 +17,8 @@ from pathlib import Path
 import pytest
 from thermeta.daemon.alerts.hooks.base import hook_key, make_hook
 from thermeta.daemon.config import HookConfig
+from thermeta.daemon.refit.rounds import ForecastUpdate
+from thermeta.daemon.states import ItemState
 from thermeta.storage.errors import DeliveryError
 
 ALERT = {
@@ -424,8 +426,9 @@ def test_email_through_the_alert_service_attaches_the_items_curve(tmp_path):
             "last_reading_at": t_last,
             "warnings": [],
         }
-        svc.on_forecast(cfg.items[0], dict(base, state="steady", value_now=-16.0), None)
-        svc.on_forecast(cfg.items[0], dict(base, state="crossed", value_now=-14.5), None)
+        for state, value in ((ItemState.STEADY, -16.0), (ItemState.CROSSED, -14.5)):
+            body = dict(base, state=state, value_now=value)
+            svc.on_forecast(ForecastUpdate(cfg.items[0], state, body, None))
         assert wait_for(lambda: len(inbox.messages) == 1, 20)
     finally:
         svc.stop()

@@ -37,7 +37,7 @@ def open_store(cfg: Any, command: str):
             return None
     try:
         store = Store(url)
-        if not store.has_tables():
+        if not store.has_table():
             print(f"thermeta {command}: {safe_url(url)} holds no thermeta tables", file=sys.stderr)
             return None
     except StoreError as exc:

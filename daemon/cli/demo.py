@@ -20,7 +20,12 @@ import tempfile
 import threading
 import time
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
+
+from thermeta.daemon.states import ItemState
+
+if TYPE_CHECKING:
+    from thermeta.daemon.refit.rounds import ForecastUpdate
 
 DEMO_PREFIX = "thermeta-demo"
 
@@ -105,7 +110,8 @@ class _Recorder:
         self._lock = threading.Lock()
         self._print_lock = threading.Lock()
 
-    def on_forecast(self, item_cfg, body: dict[str, Any], prev: dict[str, Any] | None) -> None:
+    def on_forecast(self, update: ForecastUpdate) -> None:
+        item_cfg, body = update.item, update.body
         now = self.clock.now()
         rec = {
             "made_at": now,
@@ -135,7 +141,7 @@ class _Recorder:
             parts.append(f"now {d['value_now']:.1f} {unit}")
         eta = d.get("eta_s")
         t_last = _epoch(d.get("last_reading_at"))
-        if eta and t_last is not None and d.get("state") != "crossed":
+        if eta and t_last is not None and d.get("state") != ItemState.CROSSED:
             # the forecast counts from its newest reading; the line counts from now
             ahead = t_last - now
             lo, hi = d.get("eta_lo_s"), d.get("eta_hi_s")
@@ -150,10 +156,10 @@ class _Recorder:
                 f"crosses {d.get('threshold'):g} {unit} at {local_clock(t_last + eta)} "
                 f"(in {human_duration(t_last + eta - now)}; 90 %: {band})"
             )
-        elif d.get("state") == "steady":
+        elif d.get("state") == ItemState.STEADY:
             parts.append("no crossing ahead")
         truth = self.truth.get(item_cfg.name)
-        if truth is not None and d.get("state") in ("approaching", "steady"):
+        if truth is not None and d.get("state") in (ItemState.APPROACHING, ItemState.STEADY):
             c = truth.crossing_t_true
             parts.append(
                 "truth: "
@@ -210,7 +216,7 @@ class _Recorder:
                     c is None
                     or f["eta_s"] is None
                     or f["t_last"] is None
-                    or f["state"] != "approaching"
+                    or f["state"] != ItemState.APPROACHING
                 ):
                     continue
                 true_left = c - f["t_last"]
@@ -229,7 +235,7 @@ class _Recorder:
             items[name] = {
                 "true_crossing_t": c,
                 "n_forecasts": len(fcs),
-                "n_approaching": sum(f["state"] == "approaching" for f in fcs),
+                "n_approaching": sum(f["state"] == ItemState.APPROACHING for f in fcs),
                 "states": sorted({f["state"] for f in fcs if f["state"]}),
                 "alerts": [a["level"] for a in self.alerts if a["item"] == name],
                 "ahead": errors,

@@ -27,13 +27,13 @@ def collect(cfg: Any, store: Any, now: float) -> dict[str, Any]:
     per_item = []
     seen = set()
     for f in store.latest_forecasts():
-        d = f["forecast"]
-        seen.add(f["item"])
+        d = f.forecast
+        seen.add(f.item)
         crossing = d.get("crossing_at")
         per_item.append(
             {
-                "item": f["item"],
-                "state": f["state"],
+                "item": f.item,
+                "state": f.state,
                 "value_now": d.get("value_now"),
                 "threshold": d.get("threshold"),
                 "unit": d.get("unit", "C"),
@@ -86,9 +86,10 @@ def collect(cfg: Any, store: Any, now: float) -> dict[str, Any]:
 
 def _eta_text(r: dict[str, Any], now: float) -> str:
     from thermeta.daemon.alerts.rules import remaining_s
+    from thermeta.daemon.states import ItemState
     from thermeta.daemon.timefmt import human_duration, parse_time
 
-    if r["state"] == "crossed":
+    if r["state"] == ItemState.CROSSED:
         return "past the threshold"
     if r["crossing_at"] is None:
         return "-"

@@ -16,7 +16,7 @@ import threading
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
-from typing import Any, NamedTuple
+from typing import NamedTuple
 
 from thermeta.daemon.clock import Clock
 from thermeta.daemon.config import Config, ItemConfig
@@ -25,7 +25,7 @@ from thermeta.daemon.ingest.payloads import Limits, excerpt, parse_payload
 from thermeta.daemon.ingest.topics import Route, Router
 from thermeta.storage.errors import PayloadError, StoreError
 from thermeta.storage.schema import FLAG_RECEIPT_TS
-from thermeta.storage.store import Store
+from thermeta.storage.store import DeadLetter, Store
 
 log = logging.getLogger("thermeta.writer")
 
@@ -183,7 +183,7 @@ class Writer(threading.Thread):
 
     def _write(self, batch: list[Inbound]) -> None:
         readings: list[tuple] = []
-        dead: list[dict[str, Any]] = []
+        dead: list[DeadLetter] = []
         seen: list[tuple[str, ItemConfig, float | None]] = []
         self._prepare_topics(batch)
         for msg in batch:
@@ -315,19 +315,19 @@ class Writer(threading.Thread):
             self._limits[key] = lim
         return lim
 
-    def _dead(self, msg: Inbound, item: str | None, reason: str) -> dict[str, Any]:
-        return {
-            "received_at": msg.received_at,
-            "topic": msg.topic[:1024],
-            "item": item,
-            "reason": reason[:300],
-            "payload": excerpt(msg.payload, self.config.ingest.dead_letter_chars),
-        }
+    def _dead(self, msg: Inbound, item: str | None, reason: str) -> DeadLetter:
+        return DeadLetter(
+            received_at=msg.received_at,
+            topic=msg.topic[:1024],
+            item=item,
+            reason=reason[:300],
+            payload=excerpt(msg.payload, self.config.ingest.dead_letter_chars),
+        )
 
-    def _log_dead(self, n: int, latest: dict[str, Any]) -> None:
+    def _log_dead(self, n: int, latest: DeadLetter) -> None:
         # Rate-limited: a flood of bad payloads gives one line per interval, not one per message.
         self._dead_since_log += n
-        self._dead_latest = f"{latest['topic']}: {latest['reason']}"
+        self._dead_latest = f"{latest.topic}: {latest.reason}"
         now = time.monotonic()
         if now - self._dead_last_log >= DEAD_LOG_EVERY_S:
             log.warning(

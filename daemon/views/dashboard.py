@@ -21,16 +21,18 @@ from rich.table import Table
 from rich.text import Text
 from thermeta.daemon.alerts.message import CAUTION, UNIT_SIGN
 from thermeta.daemon.alerts.rules import remaining_s
+from thermeta.daemon.states import EpisodeLevel, ItemState
 from thermeta.daemon.timefmt import human_duration
 
-STATE_LOOK = {  # symbol, word, style (colours of our own; the word always carries the meaning)
-    "crossed": ("✖", "crossed", "bold #ff6b6b"),
-    "approaching": ("▲", "approaching", "bold #ffb347"),
-    "stale": ("?", "stale", "#a0a0d0"),
-    "learning": ("…", "learning", "#9a9a9a"),
-    "steady": ("●", "steady", "#6fcf97"),
+STATE_LOOK = {  # symbol, style (colours of our own; the state's word always carries the meaning)
+    ItemState.CROSSED: ("✖", "bold #ff6b6b"),
+    ItemState.APPROACHING: ("▲", "bold #ffb347"),
+    ItemState.STALE: ("?", "#a0a0d0"),
+    ItemState.LEARNING: ("…", "#9a9a9a"),
+    ItemState.STEADY: ("●", "#6fcf97"),
 }
-RANK = {"crossed": 0, "approaching": 1, "stale": 2, "learning": 3, "steady": 4}
+RANK = {state: rank for rank, state in enumerate(STATE_LOOK)}  # most urgent first
+ATTENTION = (ItemState.CROSSED, ItemState.APPROACHING, ItemState.STALE)
 SPARK = "▁▂▃▄▅▆▇█"
 HEARTBEAT_LATE_S = 20.0
 GROUP_WHEN_MORE_THAN = 10
@@ -105,7 +107,7 @@ def collect(
     alert_levels, waiting = _alert_levels(store)
     rows = []
     for f in store.latest_forecasts():
-        d, name = f["forecast"], f["item"]
+        d, name = f.forecast, f.item
         series = store.recent_readings(name, since_ts=now - history_s)
         unit = d.get("unit", "C")
         if unit != "C":
@@ -115,7 +117,7 @@ def collect(
         rows.append(
             Row(
                 item=name,
-                state=f["state"],
+                state=f.state,
                 unit=unit,
                 value=d.get("value_now"),
                 threshold=d.get("threshold"),
@@ -147,18 +149,17 @@ def collect(
 
 def _alert_levels(store: Any) -> tuple[dict[str, str], int]:
     """Open alert levels per item ("+ack" when acknowledged) and the outbox rows waiting."""
-    from sqlalchemy import inspect
-    from thermeta.storage.alerts import AlertStore
+    from thermeta.storage.alerts import AlertStore, OutboxStatus
 
-    if not inspect(store.engine).has_table("alert_state"):
+    if not store.has_table("alert_state"):
         return {}, 0  # a store from before alerts: the board still shows forecasts
     a = AlertStore(store)
     out = {}
     for item, st in a.load_states().items():
-        if st.get("level", "clear") != "clear":
+        if st.get("level", EpisodeLevel.CLEAR) != EpisodeLevel.CLEAR:
             acked = a.ack_of(item, int(st.get("episode", 0))) is not None
             out[item] = st["level"] + ("+ack" if acked else "")
-    return out, a.outbox_counts()["pending"]
+    return out, a.outbox_counts()[OutboxStatus.PENDING]
 
 
 def _trend_per_h(series: list[tuple[float, float]], span_s: float = 1800.0) -> float | None:
@@ -227,10 +228,10 @@ def short_duration(s: float | None) -> str:
 
 
 def eta_text(r: Row) -> str:
-    if r.state == "crossed":
+    if r.state == ItemState.CROSSED:
         return "past limit"
     if r.eta_s is None:
-        return "none" if r.state == "steady" else "-"
+        return "none" if r.state == ItemState.STEADY else "-"
     text = short_duration(r.eta_s)
     if r.eta_lo_s is not None or r.eta_hi_s is not None:
         text += f" [{short_duration(r.eta_lo_s)}-{short_duration(r.eta_hi_s)}]"
@@ -250,7 +251,7 @@ def _arrow(trend: float | None) -> str:
 def visible(board: Board, text_filter: str = "", attention_only: bool = False) -> list[Row]:
     rows = [r for r in board.rows if text_filter.lower() in r.item.lower()]
     if attention_only:
-        rows = [r for r in rows if r.state in ("crossed", "approaching", "stale") or r.alert]
+        rows = [r for r in rows if r.state in ATTENTION or r.alert]
     return sorted(rows, key=lambda r: r.urgency)
 
 
@@ -364,7 +365,8 @@ def render(
             )
             table = _table(w, show_header=False)
             lines_used += 1
-        sym, word, style = STATE_LOOK.get(r.state, ("·", r.state, ""))
+        sym, style = STATE_LOOK.get(r.state, ("·", ""))
+        word = str(r.state)
         label = Text(f"{sym} {word}", style=style)
         if r.alert and r.alert.endswith("+ack"):
             label.append(" ack", style="dim")
@@ -374,7 +376,7 @@ def render(
         if r.defrost:
             name += " (defrost)"  # at the end, which fit_name keeps: new alerts are held
         sign = UNIT_SIGN.get(r.unit, r.unit) if wide else ""
-        hot = style if r.state in ("crossed", "approaching") else ""
+        hot = style if r.state in (ItemState.CROSSED, ItemState.APPROACHING) else ""
         table.add_row(
             label,
             fit_name(name, w["item"]),
