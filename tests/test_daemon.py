@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import json
 import math
+import time
 
 import numpy as np
 import pytest
@@ -132,6 +133,31 @@ def test_writer_commits_then_acks_in_arrival_order(tmp_path):
     assert counts["dead_letters"] == 13  # 12 garbage + 1 unmapped topic
     assert counts["readings"] == len({(i // 2) for i in range(120) if i % 10})
     assert act.take_dirty() == {"p-a"} and act.last_ts["p-a"] == T0 - 1000 + 59
+    store.close()
+
+
+def test_stop_during_a_store_outage_returns_promptly(tmp_path):
+    """While the store fails the writer backs off between tries; stop() ends the wait at once and
+    leaves the batch unacknowledged (the broker sends it again), instead of retrying for ever."""
+    w, store, acked, _ = make_writer(
+        tmp_path, '[[item]]\nname = "p"\ntopic = "s/p"\nthreshold = 5\n'
+    )
+    w.store_retry_first_s = w.store_retry_max_s = 60.0  # only an honoured stop ends it early
+    with store.transaction() as conn:
+        conn.exec_driver_sql("DROP TABLE readings")  # every write of a reading now fails
+    w.start()
+    w.submit(Inbound("s/p", b'{"value": 3.0}', T0, mid=1, qos=1))
+    deadline = time.monotonic() + 30.0
+    while w.counts["store_errors"] == 0 and time.monotonic() < deadline:
+        time.sleep(0.01)
+    assert w.counts["store_errors"] >= 1  # the first write failed; the writer now waits 60 s
+    started = time.monotonic()
+    w.stop(timeout=30.0)
+    took = time.monotonic() - started
+    assert not w.is_alive()
+    assert took < 30.0  # before the fix the thread kept retrying and join() timed out
+    assert took < w.store_retry_first_s / 2
+    assert acked == [] and store.recent_dead_letters() == []
     store.close()
 
 
