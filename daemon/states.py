@@ -7,6 +7,7 @@
     Side          which side of the threshold is past the limit (``upper``: a ceiling)
     LimitSetting  an item's ``limit`` key: a side, or ``auto`` (judged from its first reading)
     AmbientMode   where a forecast's ambient came from
+    Model         the forecast models an item can name (``model``)
 
 Members are ``StrEnum``: each equals its word, so JSON, the store and the messages carry the
 words unchanged.
@@ -15,7 +16,7 @@ words unchanged.
 from __future__ import annotations
 
 from enum import StrEnum
-from typing import Literal
+from typing import Literal, get_args
 
 
 class ItemState(StrEnum):
@@ -50,3 +51,5 @@ class EpisodeLevel(StrEnum):
 Side = Literal["upper", "lower"]
 LimitSetting = Literal["upper", "lower", "auto"]
 AmbientMode = Literal["known", "fitted", "measured"]
+Model = Literal["lumped", "slab", "cylinder", "sphere", "auto"]
+MODELS: tuple[Model, ...] = get_args(Model)

@@ -5,8 +5,10 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+from typing import get_args
 
-from thermeta.daemon.units import UNIT_SIGN
+from thermeta.daemon.states import MODELS, LimitSetting
+from thermeta.daemon.units import UNIT_SIGN, UNITS
 from thermeta.storage.errors import InputError
 
 CAUTION = (
@@ -28,14 +30,14 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     )
     p.add_argument(
         "--model",
-        choices=["lumped", "slab", "cylinder", "sphere", "auto"],
+        choices=MODELS,
         default="lumped",
         help="lumped (Newton) or a centre probe in a slab, long cylinder or sphere",
     )
-    p.add_argument("--unit", choices=["C", "F", "K"], default="C", help="unit of the values")
+    p.add_argument("--unit", choices=UNITS, default="C", help="unit of the values")
     p.add_argument(
         "--limit",
-        choices=["upper", "lower", "auto"],
+        choices=get_args(LimitSetting),
         default="auto",
         help="which side of the threshold is unsafe; auto: the side the first reading is not on",
     )
