@@ -12,8 +12,6 @@ import numpy as np
 from thermeta.daemon.timefmt import parse_time
 from thermeta.storage.errors import InputError
 
-MAX_BYTES = 512 * 1024 * 1024
-
 
 @dataclass
 class Series:

@@ -250,10 +250,6 @@ class Scenario:
     def loads(self) -> list[ProbeSeries]:
         return [p for p in self.probes if p.spec.role == "load"]
 
-    def true_value(self, name: str, t_abs: np.ndarray) -> np.ndarray:
-        """The noise-free value of probe ``name`` at epoch times ``t_abs``."""
-        return self.probe(name).spec.curve(np.asarray(t_abs, float) - self.t_start)
-
     def n_readings(self) -> int:
         return int(sum(p.t.size for p in self.probes))
 

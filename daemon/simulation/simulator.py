@@ -17,7 +17,6 @@ from __future__ import annotations
 
 import json
 import threading
-import time
 from dataclasses import dataclass
 from typing import Protocol
 
@@ -288,16 +287,3 @@ def truth_lines(scenario: Scenario) -> list[str]:
                 f"    cooling schedule: 57->21 degC within 2 h {ok1}; ->5 degC within 6 h {ok2}"
             )
     return out
-
-
-def sleep_until(clock: Clock, t: float, stop: threading.Event | None = None) -> None:
-    """Sleep (in real time) until ``clock`` reads ``t``."""
-    while True:
-        ahead = t - clock.now()
-        if ahead <= 0:
-            return
-        if stop is not None:
-            if stop.wait(min(ahead / clock.rate, 0.25)):
-                return
-        else:
-            time.sleep(min(ahead / clock.rate, 0.25))
