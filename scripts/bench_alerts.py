@@ -40,7 +40,7 @@ from thermeta.daemon.config import ItemConfig
 from thermeta.daemon.ingest.defrost import defrost_status
 from thermeta.daemon.refit.rounds import DEFROST_LOOKBACK_S, classify, forecast_kwargs, limit_side
 from thermeta.daemon.simulation import synth
-from thermeta.daemon.simulation.scenarios import first_crossing, thermostat_pieces, two_stage
+from thermeta.daemon.simulation.physics import first_crossing, thermostat_pieces, two_stage
 from thermeta.daemon.simulation.synth import Corruption
 from thermeta.predictors import forecast
 

@@ -31,7 +31,7 @@ DEMO_PREFIX = "thermeta-demo"
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
-    from thermeta.daemon.simulation.scenarios import NAMES
+    from thermeta.daemon.simulation import NAMES
 
     p.add_argument(
         "--scenario",
