@@ -27,6 +27,7 @@ from thermeta.daemon.ingest.mqtt import MqttLink
 from thermeta.daemon.ingest.topics import Router
 from thermeta.daemon.ingest.writer import Activity, Writer
 from thermeta.daemon.refit.rounds import Listener, Refitter
+from thermeta.daemon.states import ItemState
 from thermeta.storage.store import Store, safe_url
 
 log = logging.getLogger("thermeta.service")
@@ -186,7 +187,7 @@ class Service:
         sched.start()
         self.scheduler = sched
 
-    def refit_now(self) -> dict[str, str]:
+    def refit_now(self) -> dict[str, ItemState]:
         """Run one refit round at once (tests, the demo)."""
         return self.refitter.run_once()
 

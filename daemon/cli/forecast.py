@@ -123,6 +123,7 @@ def run(args: argparse.Namespace) -> int:
     from thermeta.daemon.ingest.csvio import read_series
     from thermeta.daemon.units import from_celsius, shown_in, to_celsius, to_item_units
     from thermeta.predictors import forecast
+    from thermeta.predictors.forecast import AMBIENT_UNCERTAINTY
 
     try:
         amb_sd = _ambient_sd_c(args)
@@ -156,7 +157,7 @@ def run(args: argparse.Namespace) -> int:
             ambient_y=series.ambient_y if args.ambient is None else None,
             limit=limit,
             shown=shown_in(args.unit),
-            **({} if amb_sd is None else {"ambient_uncertainty": amb_sd}),
+            ambient_uncertainty=AMBIENT_UNCERTAINTY if amb_sd is None else amb_sd,
         )
         if not fc.ok and fc.reason and fc.reason.startswith("too few"):
             raise InputError(f"{args.csv}:{series.last_line}: {fc.reason}")

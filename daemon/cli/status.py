@@ -7,8 +7,6 @@ import argparse
 import json
 from typing import Any
 
-HEARTBEAT_LATE_S = 20.0  # the daemon writes one every 5 s
-
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--config", required=True, metavar="FILE", help="the TOML config")
@@ -16,14 +14,12 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def collect(cfg: Any, store: Any, now: float) -> dict[str, Any]:
+    from thermeta.daemon.views.board import service_running
     from thermeta.predictors.result import rfc3339
 
     counts = store.counts()
     daemon = store.get_meta("daemon") or {}
-    beat = daemon.get("heartbeat_at")
-    running = (
-        daemon.get("state") == "running" and beat is not None and now - beat < HEARTBEAT_LATE_S
-    )
+    running = service_running(daemon, now)
     per_item = []
     seen = set()
     for f in store.latest_forecasts():
@@ -75,7 +71,7 @@ def collect(cfg: Any, store: Any, now: float) -> dict[str, Any]:
         "daemon": {
             "running": running,
             "state": daemon.get("state"),
-            "heartbeat_at": rfc3339(beat),
+            "heartbeat_at": rfc3339(daemon.get("heartbeat_at")),
             "pid": daemon.get("pid"),
             "connected": daemon.get("connected"),
             "readings_per_s": daemon.get("readings_per_s"),

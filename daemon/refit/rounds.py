@@ -184,7 +184,7 @@ class Refitter:
         for f in self.store.latest_forecasts():
             self.previous[f.item] = f.forecast
 
-    def run_once(self, force: bool = False) -> dict[str, str]:
+    def run_once(self, force: bool = False) -> dict[str, ItemState]:
         """One round; returns {item: state} for the items published.  Never raises."""
         with self._lock:  # the scheduler never overlaps runs; this guards manual calls too
             t0 = time.monotonic()
@@ -333,19 +333,20 @@ class Refitter:
         if fc.regime_start <= self.learned_until[name]:
             return
         plain = fc if prior is None or not prior.n_episodes else refit_plain()
-        if not learnable(plain):
+        if not learnable(plain) or plain.t_last is None:
             return
+        until = plain.t_last
 
         def update(body: dict[str, Any] | None) -> dict[str, Any]:
             return learn(None if body is None else Prior.from_dict(body), plain).to_dict()
 
         try:
-            body = self.prior_store.learn(cls, name, float(plain.t_last), now, update)
+            body = self.prior_store.learn(cls, name, until, now, update)
         except Exception:  # noqa: BLE001 - the next episode teaches again
             log.exception("storing the prior of %s failed", cls)
             return
         self.priors[cls] = Prior.from_dict(body)
-        self.learned_until[name] = float(plain.t_last)
+        self.learned_until[name] = until
         self.lessons += 1
         log.info(
             "prior %s learned from %s: %d episode(s), time constant about %.3g h",

@@ -57,7 +57,10 @@ class ItemConfig(FitRules, AlertRules):
     ambient_within: NonNegative | None = None
     ambient_topic: Text | None = None
     plausible: Annotated[tuple[float, float], BeforeValidator(_low_high)] = Field(
-        default_factory=lambda d: tuple(from_celsius(v, d["unit"]) for v in PLAUSIBLE_C)
+        default_factory=lambda d: (
+            from_celsius(PLAUSIBLE_C[0], d["unit"]),
+            from_celsius(PLAUSIBLE_C[1], d["unit"]),
+        )
     )  # in the item's unit
     senml_name: Text | None = None
     site: Text | None = None

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 from thermeta.daemon.simulation import SITE_NAMES
@@ -90,7 +91,7 @@ def _reefer() -> Site:
     def load(kl):
         return lambda x: two_stage(x, pieces, 2.0, 2.0, kl)[1]
 
-    common = dict(
+    common: dict[str, Any] = dict(
         threshold=8.0,
         direction="rising",
         ambient_probe=f"{base}/air",
@@ -152,7 +153,7 @@ def _walkin() -> Site:
     def load(l0, kl):
         return lambda x: two_stage(x, pieces, 3.0, l0, kl)[1]
 
-    common = dict(
+    common: dict[str, Any] = dict(
         threshold=5.0,
         direction="rising",
         ambient_probe=f"{base}/air",
@@ -211,7 +212,7 @@ def _wort() -> Site:
 
     # The coolant probe reads 9 degC steadily also before the pump starts, so it cannot tell the
     # forecast when chilling began: the items use the coolant setpoint as a known ambient.
-    common = dict(
+    common: dict[str, Any] = dict(
         threshold=20.0,
         direction="falling",
         ambient_known=coolant,
@@ -265,7 +266,7 @@ def _blast_chiller() -> Site:
     def tray(kl):
         return lambda x: two_stage(x, pieces, 20.0, 74.0, kl)[1]
 
-    common = dict(
+    common: dict[str, Any] = dict(
         threshold=21.0,
         direction="falling",
         ambient_probe=f"{base}/air",
@@ -316,7 +317,7 @@ def _trailer() -> Site:
     small, a_small = carton(0.06, 0.6)
     # Quick-frozen food: -18 degC, brief rises of at most 3 degC in transport, so -15 degC is the
     # limit: Council Directive 89/108/EEC (from memory).
-    common = dict(
+    common: dict[str, Any] = dict(
         threshold=-15.0,
         direction="rising",
         ambient_probe=f"{base}/air",
@@ -384,7 +385,7 @@ def _cold_room() -> Site:
     def crate(l0, kl):
         return lambda x: two_stage(x, pieces, 4.0, l0, kl)[1]
 
-    common = dict(
+    common: dict[str, Any] = dict(
         threshold=5.0,
         direction="rising",
         ambient_probe=f"{base}/air",
