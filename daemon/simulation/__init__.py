@@ -9,6 +9,7 @@ benchmarks and ``thermeta simulate``.
     sites.py             six invented sites: their probes, curves and events
     scenarios.py         a site's readings as sensors send them, with the truth kept
     simulator.py         plays a scenario over MQTT, paced by an injected clock; writes its config
+    recorder.py          listens to a service playing one: forecasts and alerts against the truth
     broker.py            an MQTT broker inside the process (amqtt), for the demo when none answers
 """
 
