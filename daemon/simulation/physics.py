@@ -15,12 +15,14 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable
+from typing import Literal
 
 import numpy as np
 from thermeta.daemon.simulation import synth
 from thermeta.predictors.conduction_series import theta_centre
 
 Piece = tuple[float, float, float]  # (start_s, driving temperature U, ka_per_s)
+Direction = Literal["rising", "falling"]
 
 
 def _piece_states(
@@ -140,7 +142,7 @@ def centre_probe(
 def first_crossing(
     curve: Callable[[np.ndarray], np.ndarray],
     threshold: float,
-    direction: str,
+    direction: Direction,
     start_s: float,
     end_s: float,
     step_s: float = 10.0,

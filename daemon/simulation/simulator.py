@@ -21,6 +21,7 @@ from dataclasses import dataclass
 from typing import Protocol
 
 from thermeta.daemon.simulation.scenarios import Scenario
+from thermeta.daemon.simulation.sites import PayloadForm
 from thermeta.predictors.result import rfc3339
 
 MAX_PENDING = 2000  # unacknowledged QoS 1 publishes before we wait (paho's ids wrap at 65,535)
@@ -45,7 +46,7 @@ def _round(v: float) -> float:
     return round(float(v), 2)
 
 
-def encode(form: str, name: str, ts: list[float], values: list[float]) -> bytes:
+def encode(form: PayloadForm, name: str, ts: list[float], values: list[float]) -> bytes:
     """One payload carrying the readings ``(ts, values)`` of probe ``name`` in ``form``."""
     if form == "senml":
         recs: list[dict] = []

@@ -9,11 +9,12 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 from thermeta.daemon.simulation import SITE_NAMES
 from thermeta.daemon.simulation.physics import (
+    Direction,
     centre_probe,
     thermostat_pieces,
     time_to_reach,
@@ -21,6 +22,7 @@ from thermeta.daemon.simulation.physics import (
 )
 from thermeta.daemon.simulation.synth import Corruption
 
+PayloadForm = Literal["json", "json-rfc3339", "senml"]
 H = 3600.0
 MIN = 60.0
 
@@ -32,12 +34,12 @@ class ProbeSpec:
     name: str
     topic: str
     curve: Callable[[np.ndarray], np.ndarray]
-    role: str = "load"  # "load" (an item with a threshold) | "ambient" (an air or coolant probe)
-    form: str = "json"  # "json" | "json-rfc3339" | "senml"
+    role: Literal["load", "ambient"] = "load"  # ambient: an air or coolant probe
+    form: PayloadForm = "json"
     dt_s: float = 60.0
     batch: int = 1  # SenML: readings per pack (a logger that sends every few readings)
     threshold: float | None = None
-    direction: str | None = None  # where the load is heading: "rising" | "falling"
+    direction: Direction | None = None  # where the load is heading
     model: str = "lumped"
     ambient_probe: str | None = None  # the site's air/coolant probe (measured ambient)
     ambient_known: float | None = None  # or a known constant ambient (a setpoint)
