@@ -3,10 +3,14 @@
 from __future__ import annotations
 
 import sys
-from typing import Any
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:  # the commands import these only when they run
+    from thermeta.daemon.config import Config
+    from thermeta.storage.store import Store
 
 
-def load_config_or_report(path: str) -> Any:
+def load_config_or_report(path: str) -> Config | None:
     """The validated config, or None after printing each problem as ``FILE:LINE: key: problem``."""
     from thermeta.daemon.config import load_config
     from thermeta.storage.errors import ConfigError
@@ -19,7 +23,7 @@ def load_config_or_report(path: str) -> Any:
         return None
 
 
-def open_store(cfg: Any, command: str):
+def open_store(cfg: Config, command: str) -> Store | None:
     """The config's store, or None after printing why it cannot be read."""
     from thermeta.storage.errors import StoreError
     from thermeta.storage.store import Store, safe_url

@@ -275,8 +275,8 @@ class Table(BaseModel):
         checks = info.context if isinstance(info.context, Checks) else None
         if value is _MISSING:
             return None
-        assert info.field_name is not None
-        field = cls.model_fields[info.field_name]
+        name = str(info.field_name)  # always set for a field's validator
+        field = cls.model_fields[name]
         choices = choices_of(field.annotation)
         why = None if choices is None else choice_problem(value, choices)
         if why is None:
@@ -289,7 +289,7 @@ class Table(BaseModel):
         if checks is None or checks.path is None:
             raise ValueError(why)
         key = field.validation_alias if isinstance(field.validation_alias, str) else None
-        checks.add(key or info.field_name, why)
+        checks.add(key or name, why)
         if field.is_required():
             return None
         return field.get_default(call_default_factory=True, validated_data=info.data)
