@@ -27,6 +27,7 @@ from thermeta.daemon.ingest.mqtt import MqttLink
 from thermeta.daemon.ingest.topics import Router
 from thermeta.daemon.ingest.writer import Activity, Writer
 from thermeta.daemon.refit.rounds import Listener, Refitter
+from thermeta.daemon.states import ItemState
 from thermeta.storage.store import Store, safe_url
 
 log = logging.getLogger("thermeta.service")
@@ -56,7 +57,8 @@ class Service:
 
     # -- what plug-ins use --------------------------------------------------------------------
     def add_forecast_listener(self, cb: Listener) -> None:
-        """``cb(item_config, forecast_dict, previous_dict_or_None)`` after each item's refit."""
+        """``cb(update)`` with a :class:`~thermeta.daemon.refit.rounds.ForecastUpdate` after each
+        item's refit."""
         self.refitter.listeners.append(cb)
 
     def publish(self, topic: str, payload: str | bytes, qos: int = 1, retain: bool = False):
@@ -185,7 +187,7 @@ class Service:
         sched.start()
         self.scheduler = sched
 
-    def refit_now(self) -> dict[str, str]:
+    def refit_now(self) -> dict[str, ItemState]:
         """Run one refit round at once (tests, the demo)."""
         return self.refitter.run_once()
 

@@ -2,12 +2,13 @@
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, Literal, get_args
 
 if TYPE_CHECKING:  # the predictors (numpy, scipy) load only when a forecast is made
     from thermeta.predictors.wording import DisplayUnit
 
-UNITS = ("C", "F", "K")
+Unit = Literal["C", "F", "K"]
+UNITS: tuple[Unit, ...] = get_args(Unit)
 UNIT_SIGN = {"C": "°C", "F": "°F", "K": "K"}  # as the command line, alerts and dashboard print
 # temperatures in a forecast's dict: points (converted with the offset) and differences (scaled)
 POINT_KEYS = ("threshold", "ambient", "ambient_lo", "ambient_hi", "value_now")

@@ -400,7 +400,7 @@ def fit_conduction(
         fit = _fit_curve(curve, t, yy)
         fit.ambient_mode = "fitted"
         fit.warnings.append(f"ambient not identifiable from the curvature; held at {point(ta)}")
-    if fit.ok and mode == "known" and ambient_sd > 0.0:
+    if fit.ok and mode == "known" and ambient is not None and ambient_sd > 0.0:
         # Weight the prior row by noise sd / ambient sd (noise sd from the exact-ambient fit).
         w = max(fit.rmse, 1e-9) / ambient_sd
         curve = _Curve(

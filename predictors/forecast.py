@@ -644,6 +644,7 @@ def _fill_lumped(fc: Forecast, fit: LumpedFit, ambient, amb_sd) -> None:
         fc.ambient_mode == "fitted"
         and fc.ambient_lo is not None
         and fc.ambient_hi is not None
+        and fc.value_now is not None
         and fc.ambient_hi - fc.ambient_lo > max(10.0, abs(fc.ambient - fc.value_now))
     ):
         fc.warnings.append(
@@ -756,7 +757,7 @@ def _measured(
                 fc.ok, fc.reason = False, fit.reason
                 return fc
     out = residual_outliers(
-        fit.residuals, 4.0, floor=max(air.quantum, 1e-3 * float(np.ptp(yy)), 1e-9)
+        np.asarray(fit.residuals), 4.0, floor=max(air.quantum, 1e-3 * float(np.ptp(yy)), 1e-9)
     )
     # (a refit needs readings to spare: not with fewer than a curve through a measured air needs)
     if 0 < out.sum() <= max(1, int(0.1 * tt.size)) and tt.size - out.sum() >= MIN_POINTS_KNOWN:

@@ -40,7 +40,7 @@ from thermeta.daemon.config import ItemConfig
 from thermeta.daemon.ingest.defrost import defrost_status
 from thermeta.daemon.refit.rounds import DEFROST_LOOKBACK_S, classify, forecast_kwargs, limit_side
 from thermeta.daemon.simulation import synth
-from thermeta.daemon.simulation.scenarios import first_crossing, thermostat_pieces, two_stage
+from thermeta.daemon.simulation.physics import first_crossing, thermostat_pieces, two_stage
 from thermeta.daemon.simulation.synth import Corruption
 from thermeta.predictors import forecast
 
@@ -303,7 +303,6 @@ def run_busy(index: int, seed: int, days: float) -> dict:
     """A busy walk-in's air probe, replayed without and with the alarm delay; counts the
     approaching, crossed and regime alerts of each (the openings that pass the threshold are
     real excursions of the air, so no alert here is 'false' by n_false's rule)."""
-    import dataclasses
 
     rng = np.random.default_rng([seed, 9, index])
     p = draw(ROOM, rng)
@@ -351,7 +350,7 @@ def run_busy(index: int, seed: int, days: float) -> dict:
         ),
     }
     for tag, delay in (("plain", 0.0), ("delayed", BUSY_DELAY_S)):
-        cfg = dataclasses.replace(air_cfg, delay_s=delay)
+        cfg = air_cfg.model_copy(update={"delay_s": delay})
         got = replay(ta, ya, cfg, times, defrost=sig, levels=levels)
         out[tag] = {lv: sum(1 for _, x in got if x == lv) for lv in levels}
     return out

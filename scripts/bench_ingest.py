@@ -29,7 +29,6 @@ import argparse
 import json
 import os
 import shutil
-import socket
 import sqlite3
 import statistics
 import subprocess
@@ -37,6 +36,8 @@ import sys
 import tempfile
 import time
 from pathlib import Path
+
+from thermeta.daemon.testing import Mosquitto
 
 PUBLISHER = r"""
 import json, sys, time
@@ -108,40 +109,6 @@ rss_kb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
 print(json.dumps({"got": state["got"], "first": state["first"], "last": state["last"],
                   "rss_kb": rss_kb}), flush=True)
 """
-
-
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
-def wait_port(port: int, timeout: float = 10.0) -> None:
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        try:
-            with socket.create_connection(("127.0.0.1", port), timeout=0.2):
-                return
-        except OSError:
-            time.sleep(0.05)
-    raise SystemExit(f"broker did not open port {port}")
-
-
-def start_broker(workdir: Path, port: int, inflight: int) -> subprocess.Popen:
-    conf = workdir / "mosquitto.conf"
-    os.chmod(workdir, 0o777)  # mosquitto started as root runs as the `mosquitto` user
-    conf.write_text(
-        f"listener {port} 127.0.0.1\nallow_anonymous true\npersistence true\n"
-        f"persistence_location {workdir}/\nautosave_interval 60\n"
-        f"max_queued_messages 0\nmax_inflight_messages {inflight}\n"
-    )
-    proc = subprocess.Popen(
-        [shutil.which("mosquitto") or "mosquitto", "-c", str(conf)],
-        stdout=subprocess.DEVNULL,
-        stderr=subprocess.DEVNULL,
-    )
-    wait_port(port)
-    return proc
 
 
 def publish(port: int, n: int, items: int, t0: float) -> dict:
@@ -330,8 +297,8 @@ def main() -> int:
     ours: list[dict] = []
     with tempfile.TemporaryDirectory(prefix="thermeta-bench-") as tmp:
         work = Path(tmp)
-        port = free_port()
-        broker = start_broker(work, port, args.inflight)
+        broker = Mosquitto(work, max_inflight_messages=args.inflight, autosave_interval_s=60)
+        port = broker.start().port
         try:
             for r in range(args.repeat):
                 t0 = 1_790_000_000.0 + r * 10 * args.messages
@@ -344,8 +311,7 @@ def main() -> int:
                     file=sys.stderr,
                 )
         finally:
-            broker.terminate()
-            broker.wait(10)
+            broker.stop()
     med = lambda rows, k: statistics.median(x[k] for x in rows)  # noqa: E731
     proto = {"auto": "MQTT 5", "5": "MQTT 5", "3.1.1": "MQTT 3.1.1"}[args.protocol]
     print(

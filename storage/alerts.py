@@ -15,6 +15,9 @@ from __future__ import annotations
 
 import json
 import time
+from collections.abc import Callable
+from dataclasses import dataclass
+from enum import StrEnum
 from typing import Any
 
 from sqlalchemy import (
@@ -32,6 +35,26 @@ from sqlalchemy import (
     update,
 )
 from thermeta.storage.schema import _Id, metadata
+from thermeta.storage.store import Store
+
+
+class OutboxStatus(StrEnum):
+    """Where an outbox row stands."""
+
+    PENDING = "pending"  # not yet taken by its hook
+    DELIVERED = "delivered"
+    FAILED = "failed"  # given up (too old)
+
+
+@dataclass(frozen=True)
+class OutboxRow:
+    """A pending delivery: the row's id, the tries so far, when it was queued and the alert."""
+
+    id: int
+    attempts: int
+    created_at: float
+    alert: dict[str, Any]
+
 
 alert_state = Table(
     "alert_state",
@@ -61,7 +84,7 @@ outbox = Table(
     Column("id", _Id, primary_key=True, autoincrement=True),
     Column("event_id", Integer, nullable=False),
     Column("hook", String(200), nullable=False),
-    Column("status", String(16), nullable=False, default="pending"),  # pending|delivered|failed
+    Column("status", String(16), nullable=False, default=OutboxStatus.PENDING),
     Column("attempts", Integer, nullable=False, default=0),
     Column("created_at", Double, nullable=False),
     Column("next_at", Double, nullable=False),
@@ -87,17 +110,16 @@ alert_acks = Table(
 class AlertStore:
     """The alert queries over a :class:`thermeta.storage.store.Store` (same engine, same locks)."""
 
-    def __init__(self, store: Any):
+    def __init__(self, store: Store):
         self.store = store
-        self.engine = store.engine
 
     # -- rule state ---------------------------------------------------------------------------
     def load_states(self) -> dict[str, dict[str, Any]]:
-        with self.engine.connect() as conn:
+        with self.store.reading() as conn:
             return {r.item: json.loads(r.body) for r in conn.execute(select(alert_state))}
 
     def get_state(self, item: str) -> dict[str, Any] | None:
-        with self.engine.connect() as conn:
+        with self.store.reading() as conn:
             text = conn.execute(
                 select(alert_state.c.body).where(alert_state.c.item == item)
             ).scalar()
@@ -108,7 +130,7 @@ class AlertStore:
         item: str,
         state: dict[str, Any],
         alerts: list[dict[str, Any]],
-        hooks_for: Any,
+        hooks_for: Callable[[dict[str, Any]], list[str]],
         now: float,
     ) -> list[int]:
         """Save ``state`` and insert ``alerts`` with one outbox row per hook, in one transaction.
@@ -117,7 +139,7 @@ class AlertStore:
         of the new outbox rows.
         """
         new_rows: list[int] = []
-        with self.store._write() as conn, conn.begin():
+        with self.store.transaction() as conn:
             text = json.dumps(state)
             done = conn.execute(
                 update(alert_state)
@@ -151,7 +173,7 @@ class AlertStore:
                         .values(
                             event_id=event_id,
                             hook=hook,
-                            status="pending",
+                            status=OutboxStatus.PENDING,
                             attempts=0,
                             created_at=now,
                             next_at=now,
@@ -162,43 +184,33 @@ class AlertStore:
         return new_rows
 
     # -- outbox -------------------------------------------------------------------------------
-    def due(self, hook: str, now: float | None = None, limit: int = 20) -> list[dict[str, Any]]:
+    def due(self, hook: str, now: float | None = None, limit: int = 20) -> list[OutboxRow]:
         """Pending rows of ``hook`` (whose next try is due by ``now`` if given), oldest first."""
         q = (
             select(outbox.c.id, outbox.c.attempts, outbox.c.created_at, alert_events.c.body)
             .join(alert_events, alert_events.c.id == outbox.c.event_id)
-            .where(outbox.c.hook == hook, outbox.c.status == "pending")
+            .where(outbox.c.hook == hook, outbox.c.status == OutboxStatus.PENDING)
             .order_by(outbox.c.id)
             .limit(limit)
         )
         if now is not None:
             q = q.where(outbox.c.next_at <= now)
-        with self.engine.connect() as conn:
+        with self.store.reading() as conn:
             return [
-                {
-                    "id": int(r.id),
-                    "attempts": int(r.attempts),
-                    "created_at": float(r.created_at),
-                    "alert": json.loads(r.body),
-                }
+                OutboxRow(int(r.id), int(r.attempts), float(r.created_at), json.loads(r.body))
                 for r in conn.execute(q)
             ]
 
-    def next_due_at(self, hook: str) -> float | None:
-        q = select(func.min(outbox.c.next_at)).where(
-            outbox.c.hook == hook, outbox.c.status == "pending"
-        )
-        with self.engine.connect() as conn:
-            v = conn.execute(q).scalar()
-        return None if v is None else float(v)
-
     def mark_delivered(self, row_id: int, now: float) -> None:
-        with self.store._write() as conn, conn.begin():
+        with self.store.transaction() as conn:
             conn.execute(
                 update(outbox)
                 .where(outbox.c.id == row_id)
                 .values(
-                    status="delivered", done_at=now, attempts=outbox.c.attempts + 1, last_error=None
+                    status=OutboxStatus.DELIVERED,
+                    done_at=now,
+                    attempts=outbox.c.attempts + 1,
+                    last_error=None,
                 )
             )
 
@@ -217,19 +229,19 @@ class AlertStore:
             "last_error": error[:500],
         }
         if give_up:
-            values.update(status="failed", done_at=time.time() if now is None else now)
-        with self.store._write() as conn, conn.begin():
+            values.update(status=OutboxStatus.FAILED, done_at=time.time() if now is None else now)
+        with self.store.transaction() as conn:
             conn.execute(update(outbox).where(outbox.c.id == row_id).values(**values))
 
     def outbox_counts(self) -> dict[str, int]:
         q = select(outbox.c.status, func.count()).group_by(outbox.c.status)
-        with self.engine.connect() as conn:
-            out = {"pending": 0, "delivered": 0, "failed": 0}
+        with self.store.reading() as conn:
+            out = {str(s): 0 for s in OutboxStatus}
             out.update({s: int(n) for s, n in conn.execute(q)})
             return out
 
     def outbox_rows(self) -> list[dict[str, Any]]:
-        with self.engine.connect() as conn:
+        with self.store.reading() as conn:
             return [dict(r._mapping) for r in conn.execute(select(outbox).order_by(outbox.c.id))]
 
     # -- events and acks ----------------------------------------------------------------------
@@ -237,7 +249,7 @@ class AlertStore:
         q = select(alert_events).order_by(alert_events.c.id.desc()).limit(limit)
         if item is not None:
             q = q.where(alert_events.c.item == item)
-        with self.engine.connect() as conn:
+        with self.store.reading() as conn:
             rows = [dict(r._mapping) for r in conn.execute(q)]
         for r in rows:
             r["body"] = json.loads(r["body"])
@@ -246,7 +258,7 @@ class AlertStore:
     def add_ack(
         self, item: str, episode: int, now: float, by: str | None, note: str | None
     ) -> None:
-        with self.store._write() as conn, conn.begin():
+        with self.store.transaction() as conn:
             conn.execute(
                 insert(alert_acks).values(
                     item=item, episode=episode, acked_at=now, by=by, note=note
@@ -260,6 +272,6 @@ class AlertStore:
             .order_by(alert_acks.c.id)
             .limit(1)
         )
-        with self.engine.connect() as conn:
+        with self.store.reading() as conn:
             r = conn.execute(q).first()
         return None if r is None else dict(r._mapping)

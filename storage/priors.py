@@ -18,6 +18,7 @@ from typing import Any
 
 from sqlalchemy import Column, Double, Integer, String, Table, Text, insert, select, update
 from thermeta.storage.schema import metadata
+from thermeta.storage.store import Store
 
 priors = Table(
     "priors",
@@ -41,26 +42,25 @@ prior_items = Table(
 class PriorStore:
     """Prior queries over a :class:`thermeta.storage.store.Store` (same engine, same locks)."""
 
-    def __init__(self, store: Any):
+    def __init__(self, store: Store):
         self.store = store
-        self.engine = store.engine
 
     def get(self, prior_class: str) -> dict[str, Any] | None:
-        with self.engine.connect() as conn:
+        with self.store.reading() as conn:
             text = conn.execute(
                 select(priors.c.body).where(priors.c.prior_class == prior_class)
             ).scalar()
         return None if text is None else json.loads(text)
 
     def all(self) -> dict[str, dict[str, Any]]:
-        with self.engine.connect() as conn:
+        with self.store.reading() as conn:
             return {
                 c: json.loads(b)
                 for c, b in conn.execute(select(priors.c.prior_class, priors.c.body))
             }
 
     def learned_until(self, item: str) -> float | None:
-        with self.engine.connect() as conn:
+        with self.store.reading() as conn:
             v = conn.execute(
                 select(prior_items.c.learned_until).where(prior_items.c.item == item)
             ).scalar()
@@ -76,7 +76,7 @@ class PriorStore:
     ) -> dict[str, Any]:
         """body' = update_fn(body or None) for the class, and the item's mark set to until_ts,
         in one transaction; returns body'."""
-        with self.store._write() as conn, conn.begin():
+        with self.store.transaction() as conn:
             text = conn.execute(
                 select(priors.c.body).where(priors.c.prior_class == prior_class)
             ).scalar()

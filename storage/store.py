@@ -11,7 +11,9 @@ from __future__ import annotations
 import importlib
 import json
 import time
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Iterator, Sequence
+from contextlib import contextmanager
+from dataclasses import asdict, dataclass
 from typing import Any
 
 from sqlalchemy import (
@@ -22,12 +24,14 @@ from sqlalchemy import (
     event,
     func,
     insert,
+    inspect,
     select,
     update,
 )
 from sqlalchemy.engine import make_url
 from sqlalchemy.exc import IntegrityError, SQLAlchemyError
 from thermeta.storage import schema
+from thermeta.storage.errors import StoreError
 from thermeta.storage.schema import dead_letters, forecasts, items, meta, readings
 
 BUSY_TIMEOUT_MS = 15000
@@ -44,8 +48,26 @@ SQLITE_INSERT_READINGS = (
 )
 
 
-class StoreError(Exception):
-    """The store could not be opened, created or written; the message is safe to show."""
+@dataclass(frozen=True)
+class DeadLetter:
+    """A message set aside: when it came, on which topic, for which item (if known), why, and an
+    excerpt of its payload (undecodable bytes escaped)."""
+
+    received_at: float
+    topic: str
+    item: str | None
+    reason: str
+    payload: str
+
+
+@dataclass(frozen=True)
+class StoredForecast:
+    """A stored forecast: the item, its state then, when it was made (epoch s) and its JSON."""
+
+    item: str
+    state: str
+    made_at: float
+    forecast: dict[str, Any]
 
 
 def safe_url(url: str) -> str:
@@ -54,6 +76,19 @@ def safe_url(url: str) -> str:
         return make_url(url).render_as_string(hide_password=True)
     except Exception:  # noqa: BLE001 - an unparseable URL is shown without its tail
         return url.split("@")[-1]
+
+
+@contextmanager
+def store_errors(what: str) -> Iterator[None]:
+    """Raise SQLAlchemy's errors (the driver's wrapped in them) as :class:`StoreError`.
+
+    The one place where the database library's errors become thermeta's: every query runs inside
+    it (through :meth:`Store.transaction` and :meth:`Store.reading`).
+    """
+    try:
+        yield
+    except SQLAlchemyError as exc:
+        raise StoreError(f"{what}: {exc.__class__.__name__}: {str(exc).splitlines()[0]}") from exc
 
 
 def _sqlite_pragmas(engine: Engine) -> None:
@@ -81,7 +116,7 @@ class Store:
         try:
             u = make_url(url)
         except Exception as exc:  # noqa: BLE001 - SQLAlchemy raises ArgumentError and others
-            raise StoreError(f"not a database URL: {safe_url(url)!r} ({exc})") from None
+            raise StoreError(f"not a database URL: {safe_url(url)!r} ({exc})") from exc
         self.dialect = u.get_backend_name()
         kwargs: dict[str, Any] = {"echo": echo, "future": True}
         if self.dialect == "sqlite":
@@ -91,7 +126,7 @@ class Store:
         try:
             self.engine = create_engine(url, **kwargs)
         except Exception as exc:  # noqa: BLE001 - missing driver, bad options
-            raise StoreError(f"cannot open store {safe_url(url)}: {exc}") from None
+            raise StoreError(f"cannot open store {safe_url(url)}: {exc}") from exc
         if self.dialect == "sqlite":
             _sqlite_pragmas(self.engine)
         self._item_ids: dict[str, int] = {}
@@ -105,20 +140,32 @@ class Store:
             except ModuleNotFoundError as exc:
                 if exc.name != name:
                     raise
-        try:
+        with store_errors(f"cannot create tables in {safe_url(self.url)}"):
             schema.metadata.create_all(self.engine)
-        except SQLAlchemyError as exc:
-            raise StoreError(
-                f"cannot create tables in {safe_url(self.url)}: {exc.__class__.__name__}: "
-                f"{str(exc).splitlines()[0]}"
-            ) from None
+
+    def has_table(self, name: str = "readings") -> bool:
+        """Whether the store holds table ``name`` (by default: whether it is a thermeta store at
+        all, not an empty database)."""
+        with store_errors(f"cannot read {safe_url(self.url)}"):
+            return inspect(self.engine).has_table(name)
 
     def close(self) -> None:
         self.engine.dispose()
 
-    def _write(self) -> Connection:
-        """A connection whose transactions take the write lock up front (SQLite)."""
-        return self.engine.connect().execution_options(sqlite_immediate=True)
+    @contextmanager
+    def transaction(self) -> Iterator[Connection]:
+        """A connection inside one write transaction, committed when the block ends (SQLite: the
+        write lock taken up front); database errors come out as :class:`StoreError`."""
+        with store_errors("write failed"):
+            conn = self.engine.connect().execution_options(sqlite_immediate=True)
+            with conn, conn.begin():
+                yield conn
+
+    @contextmanager
+    def reading(self) -> Iterator[Connection]:
+        """A connection for reads; database errors come out as :class:`StoreError`."""
+        with store_errors("read failed"), self.engine.connect() as conn:
+            yield conn
 
     def _insert_ignore(self, table: Any) -> Any:
         if self.dialect == "sqlite":
@@ -151,7 +198,7 @@ class Store:
             "topic": topic,
             "created_at": time.time() if now is None else now,
         }
-        with self._write() as conn, conn.begin():
+        with self.transaction() as conn:
             found = conn.execute(select(items.c.id).where(items.c.name == name)).scalar()
             if found is None:
                 found = conn.execute(insert(items).values(**row).returning(items.c.id)).scalar_one()
@@ -177,7 +224,7 @@ class Store:
         names = list(want)
         for i in range(0, len(names), 500):
             chunk = names[i : i + 500]
-            with self._write() as conn, conn.begin():
+            with self.transaction() as conn:
                 found: dict[str, int] = dict(
                     conn.execute(
                         select(items.c.name, items.c.id).where(items.c.name.in_(chunk))
@@ -209,7 +256,7 @@ class Store:
     def item_id(self, name: str) -> int | None:
         if name in self._item_ids:
             return self._item_ids[name]
-        with self.engine.connect() as conn:
+        with self.reading() as conn:
             found = conn.execute(select(items.c.id).where(items.c.name == name)).scalar()
         if found is not None:
             self._item_ids[name] = int(found)
@@ -219,7 +266,7 @@ class Store:
         q = select(items).order_by(items.c.name)
         if kind is not None:
             q = q.where(items.c.kind == kind)
-        with self.engine.connect() as conn:
+        with self.reading() as conn:
             return [dict(r._mapping) for r in conn.execute(q)]
 
     def last_reading_times(self) -> dict[str, float]:
@@ -229,20 +276,19 @@ class Store:
             .join(readings, readings.c.item_id == items.c.id)
             .group_by(items.c.name)
         )
-        with self.engine.connect() as conn:
+        with self.reading() as conn:
             return {name: float(ts) for name, ts in conn.execute(q) if ts is not None}
 
     # -- the ingest batch ---------------------------------------------------------------------
     def write_batch(
         self,
         reading_rows: Sequence[tuple | dict[str, Any]],
-        dead_rows: Sequence[dict[str, Any]] = (),
+        dead: Sequence[DeadLetter] = (),
     ) -> int:
         """Insert readings (duplicates of (item_id, ts) ignored) and dead letters in ONE
         transaction.
 
         reading_rows: tuples (item_id, ts, value_c, flags, received_at), or dicts with those keys.
-        dead_rows: dicts with received_at, topic, item, reason, payload.
         Returns the number of readings newly stored where the driver reports it, else -1.
         Raises StoreError; nothing of the batch is stored then.
         """
@@ -253,25 +299,20 @@ class Store:
                 rows = [dict(zip(READING_COLUMNS, r)) for r in rows]
         elif rows and self.dialect == "sqlite":
             rows = [tuple(r[c] for c in READING_COLUMNS) for r in rows]
-        try:
-            with self._write() as conn, conn.begin():
-                if rows and self.dialect == "sqlite":
-                    # The hot path: the driver's executemany, no per-row SQL compilation.
-                    res = conn.exec_driver_sql(SQLITE_INSERT_READINGS, rows)
-                    stored = res.rowcount
-                elif rows:
-                    stmt = self._insert_ignore(readings)
-                    if stmt is not None:
-                        res = conn.execute(stmt, rows)
-                        stored = res.rowcount if res.rowcount is not None else -1
-                    else:
-                        stored = self._insert_one_by_one(conn, rows)
-                if dead_rows:
-                    conn.execute(insert(dead_letters), list(dead_rows))
-        except SQLAlchemyError as exc:
-            raise StoreError(
-                f"write failed: {exc.__class__.__name__}: {str(exc).splitlines()[0]}"
-            ) from exc
+        with self.transaction() as conn:
+            if rows and self.dialect == "sqlite":
+                # The hot path: the driver's executemany, no per-row SQL compilation.
+                res = conn.exec_driver_sql(SQLITE_INSERT_READINGS, rows)
+                stored = res.rowcount
+            elif rows:
+                stmt = self._insert_ignore(readings)
+                if stmt is not None:
+                    res = conn.execute(stmt, rows)
+                    stored = res.rowcount if res.rowcount is not None else -1
+                else:
+                    stored = self._insert_one_by_one(conn, rows)
+            if dead:
+                conn.execute(insert(dead_letters), [asdict(d) for d in dead])
         return stored
 
     @staticmethod
@@ -300,7 +341,7 @@ class Store:
             q = q.where(readings.c.ts >= since_ts)
         if until_ts is not None:
             q = q.where(readings.c.ts <= until_ts)
-        with self.engine.connect() as conn:
+        with self.reading() as conn:
             return [(float(t), float(v)) for t, v in conn.execute(q.order_by(readings.c.ts))]
 
     def first_reading(self, item: str | int) -> tuple[float, float] | None:
@@ -314,12 +355,12 @@ class Store:
             .order_by(readings.c.ts)
             .limit(1)
         )
-        with self.engine.connect() as conn:
+        with self.reading() as conn:
             row = conn.execute(q).first()
         return None if row is None else (float(row[0]), float(row[1]))
 
     def counts(self) -> dict[str, int]:
-        with self.engine.connect() as conn:
+        with self.reading() as conn:
             return {
                 "items": conn.execute(
                     select(func.count()).select_from(items).where(items.c.kind == "load")
@@ -332,7 +373,7 @@ class Store:
 
     def recent_dead_letters(self, limit: int = 20) -> list[dict[str, Any]]:
         q = select(dead_letters).order_by(dead_letters.c.id.desc()).limit(limit)
-        with self.engine.connect() as conn:
+        with self.reading() as conn:
             return [dict(r._mapping) for r in conn.execute(q)]
 
     # -- forecasts ----------------------------------------------------------------------------
@@ -345,7 +386,7 @@ class Store:
         last_reading_at: float | None,
     ) -> None:
         eta = body.get("eta_s")
-        with self._write() as conn, conn.begin():
+        with self.transaction() as conn:
             conn.execute(
                 insert(forecasts).values(
                     item_id=item_id, made_at=made_at, state=state, eta_s=eta, body=json.dumps(body)
@@ -363,7 +404,7 @@ class Store:
         """Many (item_id, made_at, state, body, last_reading_at) in one transaction."""
         if not rows:
             return
-        with self._write() as conn, conn.begin():
+        with self.transaction() as conn:
             conn.execute(
                 insert(forecasts),
                 [
@@ -382,9 +423,8 @@ class Store:
                     update(items).where(items.c.id == i).values(state=s, last_reading_at=last)
                 )
 
-    def latest_forecasts(self) -> list[dict[str, Any]]:
-        """The current forecast of each item: dicts with item, state, made_at, forecast (the
-        JSON)."""
+    def latest_forecasts(self) -> list[StoredForecast]:
+        """The current forecast of each item, by item name."""
         newest = select(func.max(forecasts.c.id)).group_by(forecasts.c.item_id).scalar_subquery()
         q = (
             select(items.c.name, forecasts.c.state, forecasts.c.made_at, forecasts.c.body)
@@ -392,13 +432,11 @@ class Store:
             .where(forecasts.c.id.in_(newest))
             .order_by(items.c.name)
         )
-        with self.engine.connect() as conn:
-            return [
-                {"item": n, "state": s, "made_at": float(m), "forecast": json.loads(b)}
-                for n, s, m, b in conn.execute(q)
-            ]
+        with self.reading() as conn:
+            return [StoredForecast(n, s, float(m), json.loads(b)) for n, s, m, b in conn.execute(q)]
 
-    def forecast_history(self, item: str, limit: int = 100) -> list[dict[str, Any]]:
+    def forecast_history(self, item: str, limit: int = 100) -> list[StoredForecast]:
+        """The item's stored forecasts, newest first."""
         item_id = self.item_id(item)
         if item_id is None:
             return []
@@ -408,22 +446,19 @@ class Store:
             .order_by(forecasts.c.id.desc())
             .limit(limit)
         )
-        with self.engine.connect() as conn:
-            return [
-                {"made_at": float(m), "state": s, "forecast": json.loads(b)}
-                for m, s, b in conn.execute(q)
-            ]
+        with self.reading() as conn:
+            return [StoredForecast(item, s, float(m), json.loads(b)) for m, s, b in conn.execute(q)]
 
     # -- meta ---------------------------------------------------------------------------------
     def set_meta(self, key: str, value: Any) -> None:
         text = json.dumps(value)
-        with self._write() as conn, conn.begin():
+        with self.transaction() as conn:
             done = conn.execute(update(meta).where(meta.c.key == key).values(value=text)).rowcount
             if not done:
                 conn.execute(insert(meta).values(key=key, value=text))
 
     def get_meta(self, key: str, default: Any = None) -> Any:
-        with self.engine.connect() as conn:
+        with self.reading() as conn:
             text = conn.execute(select(meta.c.value).where(meta.c.key == key)).scalar()
         return default if text is None else json.loads(text)
 
@@ -436,7 +471,7 @@ class Store:
         """Delete readings and dead letters older than ``before_ts``, and forecast history older
         than it except each item's newest forecast."""
         newest = select(func.max(forecasts.c.id)).group_by(forecasts.c.item_id).scalar_subquery()
-        with self._write() as conn, conn.begin():
+        with self.transaction() as conn:
             r = conn.execute(delete(readings).where(readings.c.ts < before_ts)).rowcount
             f = conn.execute(
                 delete(forecasts)

@@ -10,6 +10,7 @@ from test_outbox import write_config
 from thermeta.daemon.alerts.service import AlertService
 from thermeta.daemon.clock import ManualClock
 from thermeta.daemon.config import load_config
+from thermeta.daemon.refit.rounds import ForecastUpdate
 from thermeta.storage.alerts import AlertStore
 from thermeta.storage.store import Store
 
@@ -37,7 +38,7 @@ def test_ack_stops_reminders_for_the_episode_and_is_recorded(tmp_path, capsys):
 
     def at(t_s, value, state):
         clock.set(T0_EPOCH + t_s)
-        svc.on_forecast(item, fc_at(0, value=value, state=state), None)
+        svc.on_forecast(ForecastUpdate(item, state, fc_at(0, value=value, state=state), None))
 
     r = ack(capsys, path, "trailer-4")
     assert r.returncode == 2 and "no alerts recorded for item 'trailer-4'" in r.stderr

@@ -9,7 +9,7 @@ import textwrap
 
 import pytest
 from thermeta.daemon.config import load_config
-from thermeta.daemon.errors import ConfigError
+from thermeta.storage.errors import ConfigError
 
 MINIMAL = """\
 [broker]

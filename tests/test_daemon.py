@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import json
 import math
+import time
 
 import numpy as np
 import pytest
@@ -135,6 +136,31 @@ def test_writer_commits_then_acks_in_arrival_order(tmp_path):
     store.close()
 
 
+def test_stop_during_a_store_outage_returns_promptly(tmp_path):
+    """While the store fails the writer backs off between tries; stop() ends the wait at once and
+    leaves the batch unacknowledged (the broker sends it again), instead of retrying for ever."""
+    w, store, acked, _ = make_writer(
+        tmp_path, '[[item]]\nname = "p"\ntopic = "s/p"\nthreshold = 5\n'
+    )
+    w.store_retry_first_s = w.store_retry_max_s = 60.0  # only an honoured stop ends it early
+    with store.transaction() as conn:
+        conn.exec_driver_sql("DROP TABLE readings")  # every write of a reading now fails
+    w.start()
+    w.submit(Inbound("s/p", b'{"value": 3.0}', T0, mid=1, qos=1))
+    deadline = time.monotonic() + 30.0
+    while w.counts["store_errors"] == 0 and time.monotonic() < deadline:
+        time.sleep(0.01)
+    assert w.counts["store_errors"] >= 1  # the first write failed; the writer now waits 60 s
+    started = time.monotonic()
+    w.stop(timeout=30.0)
+    took = time.monotonic() - started
+    assert not w.is_alive()
+    assert took < 30.0  # before the fix the thread kept retrying and join() timed out
+    assert took < w.store_retry_first_s / 2
+    assert acked == [] and store.recent_dead_letters() == []
+    store.close()
+
+
 def warming(t_rel, k=1 / 7200, t_start=2.0, amb=25.0):
     # Newton's law of cooling, closed form: T = Ta + (T0 - Ta) e^(-k t)
     return amb + (t_start - amb) * np.exp(-k * t_rel)
@@ -207,7 +233,7 @@ def test_refit_states_and_publishing(tmp_path):
     rf = Refitter(
         store, cfg, ManualClock(T0), act, publish=lambda n, p: published.update({n: json.loads(p)})
     )
-    rf.listeners.append(lambda it, body, prev: heard.append((it.name, body["state"], prev)))
+    rf.listeners.append(lambda u: heard.append((u.item.name, u.state, u.previous)))
     states = rf.run_once()
     assert states == {"warm": "approaching", "far": "steady", "new": "learning", "past": "crossed"}
     w = published["warm"]
@@ -215,7 +241,7 @@ def test_refit_states_and_publishing(tmp_path):
     # truth: t* = -ln((thr - Ta)/(T0 - Ta)) / k from the closed form, counted from the last reading
     true_eta = -math.log((8.0 - 25.0) / (2.0 - 25.0)) * 7200 - t_rel[-1]
     assert w["eta_s"] == pytest.approx(true_eta, rel=0.05)
-    assert {f["item"]: f["state"] for f in store.latest_forecasts()} == states
+    assert {f.item: f.state for f in store.latest_forecasts()} == states
     assert store.last_refit_at() == T0
     assert all(prev is None for _, _, prev in heard)
     assert rf.run_once() == {}  # nothing new: no refit, nothing published again
@@ -233,9 +259,7 @@ def test_item_goes_stale_after_its_silence_limit(tmp_path):
     clock = ManualClock(T0)
     heard = []
     rf = Refitter(store, cfg, clock, act)
-    rf.listeners.append(
-        lambda it, body, prev: heard.append((body["state"], prev and prev["state"]))
-    )
+    rf.listeners.append(lambda u: heard.append((u.state, u.previous and u.previous["state"])))
     rf.run_once()
     clock.advance(200)
     assert rf.run_once() == {}
@@ -264,7 +288,7 @@ def test_one_failing_item_does_not_stop_the_others(tmp_path, monkeypatch):
     rf._predict = flaky
     states = rf.run_once()
     assert states["warm"] == "approaching"
-    far = {f["item"]: f["forecast"] for f in store.latest_forecasts()}["far"]
+    far = {f.item: f.forecast for f in store.latest_forecasts()}["far"]
     assert far["fit_ok"] is False and far["reason"].startswith(
         "fit error: FloatingPointError: boom"
     )

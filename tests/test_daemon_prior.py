@@ -12,9 +12,9 @@ import pytest
 from sqlalchemy import func, select
 from thermeta.daemon.clock import ManualClock
 from thermeta.daemon.config import parse_config
-from thermeta.daemon.errors import ConfigError
 from thermeta.daemon.ingest.writer import Activity
 from thermeta.daemon.refit.rounds import Refitter
+from thermeta.storage.errors import ConfigError
 from thermeta.storage.priors import PriorStore, priors
 from thermeta.storage.store import Store
 
@@ -105,7 +105,7 @@ def test_a_prior_stored_after_one_episode_is_used_by_the_next(tmp_path):
     feed(store, act, cfg, "tank-3", t, y)
     got: dict[str, dict] = {}
     rf = Refitter(store, cfg, ManualClock(t1), act)
-    rf.listeners.append(lambda it, b, prev: got.update({it.name: b}))
+    rf.listeners.append(lambda u: got.update({u.item.name: u.body}))
     rf.run_once()
     eta = true_eta(120.0)
     two, three = got["tank-2"], got["tank-3"]

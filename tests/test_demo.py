@@ -238,11 +238,11 @@ def test_forecast_line_counts_point_and_interval_from_now():
     counts the point and both ends of the interval from the moment it is printed."""
     from types import SimpleNamespace
 
-    from thermeta.daemon.cli.demo import _Recorder
+    from thermeta.daemon.simulation.recorder import Recorder
     from thermeta.predictors.result import rfc3339
 
     t_last = 1_764_600_000.0
-    rec = _Recorder(
+    rec = Recorder(
         SimpleNamespace(loads=[], t_start=t_last - 3600.0), clock=None, out=None, echo=False
     )
     d = {
@@ -264,7 +264,7 @@ def test_lines_from_two_threads_stay_whole():
     import threading
     from types import SimpleNamespace
 
-    from thermeta.daemon.cli.demo import _Recorder
+    from thermeta.daemon.simulation.recorder import Recorder
 
     class Out:
         def __init__(self):
@@ -278,7 +278,7 @@ def test_lines_from_two_threads_stay_whole():
             pass
 
     out = Out()
-    rec = _Recorder(SimpleNamespace(loads=[], t_start=0.0), clock=None, out=out, echo=True)
+    rec = Recorder(SimpleNamespace(loads=[], t_start=0.0), clock=None, out=out, echo=True)
     threads = [
         threading.Thread(target=lambda tag=tag: [rec._print(f"{tag} line {i}") for i in range(200)])
         for tag in ("forecast", "ALERT")
@@ -297,7 +297,7 @@ def test_summary_says_what_the_forecasts_missed():
     lies beyond the run says 'yet'; counts of one are singular."""
     import io
 
-    from thermeta.daemon.cli.demo import _print_summary
+    from thermeta.daemon.simulation.recorder import print_summary
 
     def item(crossing, n, n_app, ahead=()):
         return {
@@ -321,7 +321,7 @@ def test_summary_says_what_the_forecasts_missed():
         },
     }
     out = io.StringIO()
-    _print_summary(summary, out)
+    print_summary(summary, out)
     lines = {ln.split(":")[0].strip(): ln for ln in out.getvalue().splitlines()}
     assert "22 forecasts, none approaching;" in lines["never-quiet"]
     assert "22 forecasts, 9 of them approaching a crossing that never comes" in lines["never-loud"]

@@ -15,9 +15,11 @@ from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from pathlib import Path
 
 import pytest
+from thermeta.daemon.alerts.hooks import KINDS
 from thermeta.daemon.alerts.hooks.base import hook_key, make_hook
-from thermeta.daemon.config import HookConfig
-from thermeta.daemon.errors import DeliveryError
+from thermeta.daemon.refit.rounds import ForecastUpdate
+from thermeta.daemon.states import ItemState
+from thermeta.storage.errors import DeliveryError
 
 ALERT = {
     "id": "trailer-4:1:approaching:1",
@@ -77,8 +79,13 @@ def receiver():
     r.close()
 
 
+def hook_config(**kw):
+    """The config of a [[hook]] of ``kind``, built in code."""
+    return KINDS[kw["kind"]].config(**kw)
+
+
 def hook(**kw):
-    cfg = HookConfig(**kw)
+    cfg = hook_config(**kw)
     return make_hook(0, cfg)
 
 
@@ -205,7 +212,7 @@ def test_mqtt_hook_publishes_to_thermeta_alert_item(broker):
     client.loop_start()
     try:
         time.sleep(0.5)  # let mosquitto_sub subscribe
-        h = make_hook(0, HookConfig(kind="mqtt"), publish=client.publish)
+        h = make_hook(0, hook_config(kind="mqtt"), publish=client.publish)
         h.deliver(ALERT)
         out, _ = sub.communicate(timeout=15)
     finally:
@@ -215,19 +222,19 @@ def test_mqtt_hook_publishes_to_thermeta_alert_item(broker):
     assert topic == "thermeta/alert/trailer-4"
     assert json.loads(payload) == ALERT
     with pytest.raises(DeliveryError, match="no broker"):
-        make_hook(0, HookConfig(kind="mqtt")).deliver(ALERT)
+        make_hook(0, hook_config(kind="mqtt")).deliver(ALERT)
 
 
 def test_hook_filters_and_keys():
     """items (with * patterns) and levels limit a hook; keys are the name or kind-position."""
     h = make_hook(
-        2, HookConfig(kind="webhook", url="http://x", items=("trailer-*",), levels=("crossed",))
+        2, hook_config(kind="webhook", url="http://x", items=("trailer-*",), levels=("crossed",))
     )
     assert h.key == "webhook-3"
     assert h.wants(dict(ALERT, level="crossed"))
     assert not h.wants(ALERT)
     assert not h.wants(dict(ALERT, item="room-1", level="crossed"))
-    assert hook_key(0, HookConfig(kind="exec", name="pager")) == "pager"
+    assert hook_key(0, hook_config(kind="exec", name="pager", command=("/bin/true",))) == "pager"
 
 
 # -- email ------------------------------------------------------------------------------------
@@ -328,7 +335,7 @@ def test_email_starttls_login_and_png_attachment(tmp_path, monkeypatch):
     try:
         png = _png_of_a_real_forecast(tmp_path)
         assert png[:8] == b"\x89PNG\r\n\x1a\n"
-        cfg = HookConfig(
+        cfg = hook_config(
             kind="email",
             host="127.0.0.1",
             port=port,
@@ -368,7 +375,7 @@ def test_email_implicit_tls(tmp_path, monkeypatch):
     ctl = Controller(inbox, hostname="127.0.0.1", port=port, ssl_context=tls)
     ctl.start()
     try:
-        cfg = HookConfig(
+        cfg = hook_config(
             kind="email",
             host="127.0.0.1",
             port=port,
@@ -424,8 +431,9 @@ def test_email_through_the_alert_service_attaches_the_items_curve(tmp_path):
             "last_reading_at": t_last,
             "warnings": [],
         }
-        svc.on_forecast(cfg.items[0], dict(base, state="steady", value_now=-16.0), None)
-        svc.on_forecast(cfg.items[0], dict(base, state="crossed", value_now=-14.5), None)
+        for state, value in ((ItemState.STEADY, -16.0), (ItemState.CROSSED, -14.5)):
+            body = dict(base, state=state, value_now=value)
+            svc.on_forecast(ForecastUpdate(cfg.items[0], state, body, None))
         assert wait_for(lambda: len(inbox.messages) == 1, 20)
     finally:
         svc.stop()

@@ -16,6 +16,8 @@ from thermeta.daemon.alerts.outbox import backoff_s
 from thermeta.daemon.alerts.service import AlertService
 from thermeta.daemon.clock import ManualClock
 from thermeta.daemon.config import load_config
+from thermeta.daemon.refit.rounds import ForecastUpdate
+from thermeta.daemon.states import ItemState
 from thermeta.storage.alerts import AlertStore
 from thermeta.storage.store import Store
 
@@ -51,7 +53,8 @@ def wait_for(cond, timeout: float = 10.0) -> bool:
 def feed(svc: AlertService, clock: ManualClock, cfg, steps) -> None:
     for t_s, fc in steps:
         clock.set(T0_EPOCH + t_s)
-        svc.on_forecast(cfg, dict(fc, item=cfg.name), None)
+        body = dict(fc, item=cfg.name)
+        svc.on_forecast(ForecastUpdate(cfg, ItemState(body["state"]), body, None))
 
 
 def test_backoff_doubles_and_caps():

@@ -96,7 +96,7 @@ def test_drawn_curve_crosses_the_threshold_at_the_forecast_eta(case):
     cross = S.first_crossing(lambda x: np.interp(x, t, y), thr, p.spec.direction, t[0], t[-1], 5.0)
     assert cross is not None
     assert cross - fc.t_last == pytest.approx(fc.eta_s, rel=0.02, abs=30)
-    lo, hi = P._band(fc, t, series)
+    lo, hi = P.band(fc, t, series)
     assert np.all(lo <= y + 1e-9) and np.all(y <= hi + 1e-9)
     if fc.eta_lo_s and fc.eta_hi_s and fc.eta_hi_s > fc.eta_lo_s + 60:
         edge_lo = np.interp(fc.t_last + fc.eta_lo_s, t, lo if p.spec.direction == "falling" else hi)

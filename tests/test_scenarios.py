@@ -7,6 +7,7 @@ import math
 import numpy as np
 import pytest
 from scipy.integrate import solve_ivp
+from thermeta.daemon.simulation import physics as P
 from thermeta.daemon.simulation import scenarios as S
 from thermeta.predictors.conduction_series import theta_centre
 
@@ -36,7 +37,7 @@ def test_two_stage_matches_solve_ivp_across_pieces():
     door-ajar drive of three pieces."""
     pieces = [(0.0, 3.0, 1 / 900), (1800.0, 16.0, 1 / 480), (3000.0, -6.0, 1 / 900)]
     t = np.linspace(0, 3 * 3600, 400)
-    air, load = S.two_stage(t, pieces, 3.0, 3.0, 1 / 9000)
+    air, load = P.two_stage(t, pieces, 3.0, 3.0, 1 / 9000)
     ref = _ode_reference(pieces, 3.0, 3.0, 1 / 9000, t)
     assert np.allclose(air, ref[0], atol=1e-7)
     assert np.allclose(load, ref[1], atol=1e-7)
@@ -47,7 +48,7 @@ def test_two_stage_equal_rates_limit():
     solve_ivp."""
     pieces = [(0.0, 30.0, 1 / 3600)]
     t = np.linspace(0, 5 * 3600, 50)
-    _, load = S.two_stage(t, pieces, 2.0, 2.0, 1 / 3600)
+    _, load = P.two_stage(t, pieces, 2.0, 2.0, 1 / 3600)
     ref = _ode_reference(pieces, 2.0, 2.0, 1 / 3600, t)
     assert np.allclose(load, ref[1], atol=1e-7)
 
@@ -68,7 +69,7 @@ def test_centre_probe_step_is_the_series_solution():
     """A single step of the air gives exactly Ta + (Ti - Ta) theta_centre(Fo, Bi)."""
     a, bi = 5e-5, 1.5
     x = np.linspace(0, 10 * 3600, 200)
-    got = S.centre_probe(x, lambda g: np.full(g.shape, 4.0), -22.0, bi, a, "slab")
+    got = P.centre_probe(x, lambda g: np.full(g.shape, 4.0), -22.0, bi, a, "slab")
     want = 4.0 + (-22.0 - 4.0) * theta_centre(a * x, bi, "slab")
     assert np.allclose(got, want, atol=1e-9)
 
@@ -81,7 +82,7 @@ def test_centre_probe_matches_method_of_lines_heat_equation():
     pieces = [(0.0, -22.0, 1 / 3600), (1800.0, 4.0, 1 / 5400)]
 
     def air(g):
-        return S.two_stage(np.asarray(g, float), pieces, -22.0)[0]
+        return P.two_stage(np.asarray(g, float), pieces, -22.0)[0]
 
     n = 60
     dx = 1.0 / (n - 1)
@@ -98,7 +99,7 @@ def test_centre_probe_matches_method_of_lines_heat_equation():
     sol = solve_ivp(
         rhs, (0, t_eval[-1]), np.full(n, Ti), t_eval=t_eval, method="BDF", rtol=1e-8, atol=1e-8
     )
-    got = S.centre_probe(t_eval, air, Ti, bi, a, "slab", step_s=10.0)
+    got = P.centre_probe(t_eval, air, Ti, bi, a, "slab", step_s=10.0)
     assert np.max(np.abs(got - sol.y[0])) < 0.01
 
 

@@ -7,7 +7,7 @@ import uuid
 
 import pytest
 from sqlalchemy import create_engine, text
-from thermeta.storage.store import Store, safe_url
+from thermeta.storage.store import DeadLetter, Store, safe_url
 
 
 @pytest.fixture(params=["sqlite", "postgresql"])
@@ -66,7 +66,11 @@ def test_batch_with_dead_letters_is_one_transaction(store):
     a = store.ensure_item("a", now=1.0)
     store.write_batch(
         rows(a, [1, 2]),
-        [dict(received_at=5.0, topic="t/x", item=None, reason="not UTF-8 text", payload="\\xff")]
+        [
+            DeadLetter(
+                received_at=5.0, topic="t/x", item=None, reason="not UTF-8 text", payload="\\xff"
+            )
+        ]
         * 3,
     )
     assert store.counts()["dead_letters"] == 3
@@ -80,10 +84,10 @@ def test_forecast_history_and_latest(store):
     store.save_forecast(a, 10.0, "learning", {"eta_s": None, "state": "learning"}, 9.0)
     store.save_forecast(a, 20.0, "approaching", {"eta_s": 600.0, "state": "approaching"}, 19.0)
     store.save_forecast(b, 15.0, "steady", {"eta_s": None, "state": "steady"}, 14.0)
-    latest = {f["item"]: f for f in store.latest_forecasts()}
-    assert latest["a"]["state"] == "approaching" and latest["a"]["forecast"]["eta_s"] == 600.0
-    assert latest["b"]["made_at"] == 15.0
-    assert [h["state"] for h in store.forecast_history("a")] == ["approaching", "learning"]
+    latest = {f.item: f for f in store.latest_forecasts()}
+    assert latest["a"].state == "approaching" and latest["a"].forecast["eta_s"] == 600.0
+    assert latest["b"].made_at == 15.0
+    assert [h.state for h in store.forecast_history("a")] == ["approaching", "learning"]
     assert {i["name"]: i["state"] for i in store.list_items()} == {
         "a": "approaching",
         "b": "steady",
@@ -96,14 +100,14 @@ def test_retention_prunes_old_rows_but_keeps_each_items_newest_forecast(store):
     a = store.ensure_item("a", now=1.0)
     store.write_batch(
         rows(a, [100, 200, 300]),
-        [dict(received_at=50.0, topic="t", item="a", reason="r", payload="p")],
+        [DeadLetter(received_at=50.0, topic="t", item="a", reason="r", payload="p")],
     )
     store.save_forecast(a, 100.0, "steady", {"eta_s": None}, 100.0)
     store.save_forecast(a, 150.0, "steady", {"eta_s": None}, 150.0)
     gone = store.prune(250.0)
     assert gone == {"readings": 2, "forecasts": 1, "dead_letters": 1}
     assert [t for t, _ in store.recent_readings("a")] == [300.0]
-    assert store.latest_forecasts()[0]["made_at"] == 150.0
+    assert store.latest_forecasts()[0].made_at == 150.0
 
 
 def test_meta_values_round_trip(store):

@@ -14,6 +14,7 @@ from datetime import UTC, datetime
 from typing import Any
 
 from thermeta.daemon.alerts.rules import Event, ItemAlertState, RuleParams, _t, remaining_s
+from thermeta.daemon.states import AlertLevel, EpisodeLevel
 from thermeta.daemon.timefmt import human_duration
 from thermeta.daemon.units import UNIT_SIGN
 from thermeta.predictors.result import rfc3339
@@ -81,9 +82,9 @@ def sentence(a: dict[str, Any]) -> str:
     now_thr = (
         f"{temp(a.get('value_now'), unit)} now against a threshold of {temp(a['threshold'], unit)}"
     )
-    if level == "approaching":
+    if level == AlertLevel.APPROACHING:
         return f"{item} is approaching its threshold: {now_thr}, {eta_clause(a)}; {fit_clause(a)}."
-    if level == "crossed":
+    if level == AlertLevel.CROSSED:
         since = a.get("crossed_at_s")
         ago = (
             f" since {clock(since)} ({human_duration(a['at_s'] - since)} ago)"
@@ -98,8 +99,8 @@ def sentence(a: dict[str, Any]) -> str:
             else f"{item} has {went} its threshold"
         )
         return f"{head}{ago}: {now_thr}; {fit_clause(a)}."
-    if level == "recovered":
-        if a.get("from_level") == "approaching":
+    if level == AlertLevel.RECOVERED:
+        if a.get("from_level") == EpisodeLevel.APPROACHING:
             return (
                 f"{item} is no longer expected to cross within {human_duration(a['lead_s'])}: "
                 f"{now_thr}, {eta_clause(a)}; {fit_clause(a)}."
@@ -112,7 +113,7 @@ def sentence(a: dict[str, Any]) -> str:
         )
         where = {"upper": "below", "lower": "above"}.get(a.get("side") or "", "back across")
         return f"{item} is back {where} its threshold {how}: {now_thr}; {fit_clause(a)}."
-    if level == "stale":
+    if level == AlertLevel.STALE:
         last = a.get("last_reading_at_s")
         quiet = human_duration(a["at_s"] - last) if last else "a while"
         return (
@@ -120,9 +121,9 @@ def sentence(a: dict[str, Any]) -> str:
             f"{human_duration(a['silence_s'])}): last value {temp(a.get('value_now'), unit)} "
             f"at {clock(last)}, threshold {temp(a['threshold'], unit)}."
         )
-    if level == "resumed":
+    if level == AlertLevel.RESUMED:
         return f"{item} is reporting again: {now_thr}, {eta_clause(a)}."
-    if level == "regime":
+    if level == AlertLevel.REGIME:
         return (
             f"{item}'s surroundings changed at {clock(a.get('regime_start_s'))} (door, power or "
             f"coolant?): the fit now starts there, {fit_clause(a)}; {now_thr}, {eta_clause(a)}."

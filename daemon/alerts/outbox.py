@@ -16,7 +16,7 @@ import threading
 import time
 from typing import Any
 
-from thermeta.daemon.errors import DeliveryError
+from thermeta.storage.errors import DeliveryError
 
 log = logging.getLogger("thermeta.alerts.outbox")
 
@@ -83,19 +83,19 @@ class OutboxWorker(threading.Thread):
             for row in rows:
                 if self.halt.is_set():
                     return 0.0
-                if now - row["created_at"] > self.max_age_s:
+                if now - row.created_at > self.max_age_s:
                     self.astore.mark_failed_try(
-                        row["id"], now, "given up: too old", give_up=True, now=now
+                        row.id, now, "given up: too old", give_up=True, now=now
                     )
                     log.error(
                         "outbox of %s: gave up alert %s after %s",
                         self.hook.key,
-                        row["alert"]["id"],
+                        row.alert["id"],
                         f"{self.max_age_s:g} s",
                     )
                     continue
                 try:
-                    self.hook.deliver(row["alert"])
+                    self.hook.deliver(row.alert)
                 except Exception as exc:
                     if not isinstance(exc, DeliveryError):
                         log.exception("hook %s raised unexpectedly", self.hook.key)
@@ -103,10 +103,10 @@ class OutboxWorker(threading.Thread):
                     delay = backoff_s(self.failures, self.base_s, self.max_s)
                     delay *= 1.0 + 0.1 * random.random()  # spread retries of many hooks
                     self.last_error = str(exc)
-                    self.astore.mark_failed_try(row["id"], time.time() + delay, str(exc))
+                    self.astore.mark_failed_try(row.id, time.time() + delay, str(exc))
                     self._warn(exc, delay)
                     return delay
-                self.astore.mark_delivered(row["id"], time.time())
+                self.astore.mark_delivered(row.id, time.time())
                 self.delivered += 1
                 if self.failures:
                     log.info(

@@ -41,9 +41,9 @@ from __future__ import annotations
 from dataclasses import asdict, dataclass, field
 from typing import Any
 
+from thermeta.daemon.states import AlertLevel, EpisodeLevel, ItemState, Side
 from thermeta.daemon.timefmt import parse_time
 
-LEVELS = ("approaching", "crossed", "recovered", "stale", "resumed", "regime")
 REGIME_NOTE = "the surroundings changed"
 REGIME_GAP_S = 1800.0  # a change found within this of the last one is the same change, re-estimated
 
@@ -95,9 +95,11 @@ class RuleParams:
 class ItemAlertState:
     """What the rules remember about one item (stored as JSON between refits and restarts)."""
 
-    level: str = "clear"  # clear | approaching | crossed
+    level: EpisodeLevel = EpisodeLevel.CLEAR
     episode: int = 0
-    side: str | None = None  # "upper": the limit is a ceiling (warming toward it); "lower": a floor
+    side: Side | None = (
+        None  # "upper": the limit is a ceiling (warming toward it); "lower": a floor
+    )
     since: float | None = None  # when the current level was entered
     crossed_at: float | None = None
     last_sent: float | None = None  # the last crossed alert or reminder
@@ -115,14 +117,16 @@ class ItemAlertState:
         if not d:
             return cls()
         known = set(cls.__dataclass_fields__)
-        return cls(**{k: v for k, v in d.items() if k in known})
+        st = cls(**{k: v for k, v in d.items() if k in known})
+        st.level = EpisodeLevel(st.level)
+        return st
 
 
 @dataclass
 class Event:
     """One alert to send: its level, whether it repeats an open crossing, and context."""
 
-    level: str
+    level: AlertLevel
     reminder: bool = False
     context: dict[str, Any] = field(default_factory=dict)
 
@@ -148,7 +152,7 @@ def remaining_s(fc: dict[str, Any], key: str, now: float) -> float | None:
     return max(0.0, float(eta) - elapsed)
 
 
-def side_of(fc: dict[str, Any], threshold: float) -> str | None:
+def side_of(fc: dict[str, Any], threshold: float) -> Side | None:
     """Which side of the threshold is unsafe, judged when the item is first seen: an item starts
     inside its limit, so below the threshold the limit is a ceiling ("upper"), above it a floor.
     (The fitted direction alone is not trusted: an early fit on a few noisy readings can point
@@ -159,11 +163,11 @@ def side_of(fc: dict[str, Any], threshold: float) -> str | None:
     return "upper" if v < threshold else "lower"
 
 
-def is_past(v: float, side: str, threshold: float) -> bool:
+def is_past(v: float, side: Side, threshold: float) -> bool:
     return v >= threshold if side == "upper" else v <= threshold
 
 
-def is_inside(v: float, side: str, threshold: float, band: float = 0.0) -> bool:
+def is_inside(v: float, side: Side, threshold: float, band: float = 0.0) -> bool:
     # upper limit: back inside when v <= threshold - band; lower: v >= threshold + band
     return v <= threshold - band if side == "upper" else v >= threshold + band
 
@@ -171,7 +175,7 @@ def is_inside(v: float, side: str, threshold: float, band: float = 0.0) -> bool:
 def approach_due(fc: dict[str, Any], p: RuleParams, now: float) -> bool:
     """A crossing is forecast within the horizon and the EARLY end of its interval within lead
     (plus the time to the next look)."""
-    if fc.get("state") != "approaching" or not fc.get("fit_ok", True):
+    if fc.get("state") != ItemState.APPROACHING or not fc.get("fit_ok", True):
         return False
     early = remaining_s(fc, "eta_lo_s", now)
     if early is None:
@@ -182,8 +186,8 @@ def approach_due(fc: dict[str, Any], p: RuleParams, now: float) -> bool:
 def approach_eased(fc: dict[str, Any], p: RuleParams, now: float) -> bool:
     """The approach no longer holds: no crossing forecast, or its early end beyond a band of one
     more lead (lead + lead), so an estimate wandering about the lead does not flap."""
-    if fc.get("state") not in ("approaching", "crossed"):
-        return fc.get("state") != "learning"  # no fit yet is no news: hold the level
+    if fc.get("state") not in (ItemState.APPROACHING, ItemState.CROSSED):
+        return fc.get("state") != ItemState.LEARNING  # no fit yet is no news: hold the level
     early = remaining_s(fc, "eta_lo_s", now)
     if early is None:
         early = remaining_s(fc, "eta_s", now)
@@ -217,14 +221,14 @@ def step(
     """Advance ``st`` by one forecast; return the alerts it raises (often none)."""
     events: list[Event] = []
     state = fc.get("state")
-    if state == "stale":
+    if state == ItemState.STALE:
         if not st.stale:
             st.stale = True
-            events.append(Event("stale"))
+            events.append(Event(AlertLevel.STALE))
         return events  # no readings: nothing else can be judged
     if st.stale:
         st.stale = False
-        events.append(Event("resumed"))
+        events.append(Event(AlertLevel.RESUMED))
     held = in_defrost_hold(fc, p, now)
     if p.delay_s <= 0:
         return events + _regime(st, fc, p, now, held) + _levels(st, fc, p, now, held, acked)
@@ -243,11 +247,12 @@ def _levels(
         return events
     v = float(v)
     thr = p.threshold
-    if st.level == "clear":
+    if st.level == EpisodeLevel.CLEAR:
         # The unsafe side is learnt from the first travel toward the limit and then kept: a load
         # cooling back down after a crossing is recovering, not heading for a floor.
         # The daemon's own judgement (``limit``: configured, or from the first reading) wins.
-        side = fc.get("limit") if fc.get("limit") in ("upper", "lower") else None
+        limit = fc.get("limit")
+        side: Side | None = limit if limit in ("upper", "lower") else None
         side = side or st.side or side_of(fc, thr)
         if side is None:
             return events
@@ -256,9 +261,9 @@ def _levels(
             st.pending_since = None
             return events  # a defrost and its recovery delay raise nothing new
         want = (
-            "crossed"
+            EpisodeLevel.CROSSED
             if is_past(v, side, thr)
-            else "approaching"
+            else EpisodeLevel.APPROACHING
             if approach_due(fc, p, now)
             else None
         )
@@ -266,32 +271,38 @@ def _levels(
             st.pending_since = None
         elif _delay_over(st, p, now):
             _enter(st, want, side, now, new_episode=True)
-            events.append(Event(want))
+            events.append(Event(AlertLevel(want)))
         return events
     side = st.side or side_of(fc, thr) or "upper"
-    if st.level == "approaching":
+    if st.level == EpisodeLevel.APPROACHING:
         if is_past(v, side, thr) and held:
             st.off_since = st.pending_since = None  # the crossing waits for the end of the hold
         elif is_past(v, side, thr):
             st.off_since = None
             if _delay_over(st, p, now):
-                _enter(st, "crossed", side, now)
-                events.append(Event("crossed"))
+                _enter(st, EpisodeLevel.CROSSED, side, now)
+                events.append(Event(AlertLevel.CROSSED))
         elif not approach_eased(fc, p, now):
             st.off_since = st.pending_since = None
         else:
             st.pending_since = None
             st.off_since = st.off_since if st.off_since is not None else now
             if now - st.off_since >= p.hold_s:
-                events.append(Event("recovered", context={"from_level": "approaching"}))
+                events.append(
+                    Event(AlertLevel.RECOVERED, context={"from_level": EpisodeLevel.APPROACHING})
+                )
                 _clear(st)
         return events
     # crossed
     if is_inside(v, side, thr, p.hysteresis):
         events.append(
             Event(
-                "recovered",
-                context={"from_level": "crossed", "by": "band", "crossed_at_s": st.crossed_at},
+                AlertLevel.RECOVERED,
+                context={
+                    "from_level": EpisodeLevel.CROSSED,
+                    "by": "band",
+                    "crossed_at_s": st.crossed_at,
+                },
             )
         )
         _clear(st)
@@ -300,8 +311,12 @@ def _levels(
         if now - st.off_since >= p.hold_s:
             events.append(
                 Event(
-                    "recovered",
-                    context={"from_level": "crossed", "by": "hold", "crossed_at_s": st.crossed_at},
+                    AlertLevel.RECOVERED,
+                    context={
+                        "from_level": EpisodeLevel.CROSSED,
+                        "by": "hold",
+                        "crossed_at_s": st.crossed_at,
+                    },
                 )
             )
             _clear(st)
@@ -309,7 +324,7 @@ def _levels(
         st.off_since = None
         if not acked and st.last_sent is not None and now - st.last_sent >= p.remind_every_s:
             st.last_sent = now
-            events.append(Event("crossed", reminder=True))
+            events.append(Event(AlertLevel.CROSSED, reminder=True))
     return events
 
 
@@ -341,23 +356,24 @@ def _regime(
     if held:
         st.regime_start = start
         return []
-    if p.delay_s > 0 and st.level == "clear":
+    if p.delay_s > 0 and st.level == EpisodeLevel.CLEAR:
         return []  # nothing at stake (yet): judged again at the next refit
     st.regime_start = start
-    return [Event("regime", context={"regime_start": start})]
+    return [Event(AlertLevel.REGIME, context={"regime_start": start})]
 
 
 def _enter(
-    st: ItemAlertState, level: str, side: str, now: float, new_episode: bool = False
+    st: ItemAlertState, level: EpisodeLevel, side: Side, now: float, new_episode: bool = False
 ) -> None:
     if new_episode:
         st.episode += 1
     st.level, st.side, st.since, st.off_since, st.pending_since = level, side, now, None, None
-    if level == "crossed":
+    if level == EpisodeLevel.CROSSED:
         st.crossed_at = now
         st.last_sent = now
 
 
 def _clear(st: ItemAlertState) -> None:
-    st.level, st.since, st.off_since, st.last_sent, st.crossed_at = "clear", None, None, None, None
+    st.level, st.since, st.off_since = EpisodeLevel.CLEAR, None, None
+    st.last_sent, st.crossed_at = None, None
     st.pending_since = None

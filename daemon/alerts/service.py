@@ -2,7 +2,7 @@
 one worker per hook delivering them.
 
     svc = AlertService(config, store, clock, publish)   # attach() builds it from a Service
-    svc.start(); ...; svc.on_forecast(item_cfg, body, prev); ...; svc.stop()
+    svc.start(); ...; svc.on_forecast(update); ...; svc.stop()
 
 ``on_forecast`` runs on the refit thread and only touches the store (one short transaction when
 something changed); every network call happens on the hooks' own threads.
@@ -20,6 +20,8 @@ from thermeta.daemon.alerts.message import build_alert
 from thermeta.daemon.alerts.outbox import OutboxWorker
 from thermeta.daemon.alerts.rules import ItemAlertState, RuleParams, step
 from thermeta.daemon.clock import Clock, SystemClock
+from thermeta.daemon.refit.rounds import ForecastUpdate
+from thermeta.daemon.states import EpisodeLevel
 from thermeta.storage.alerts import AlertStore
 
 log = logging.getLogger("thermeta.alerts")
@@ -76,15 +78,19 @@ class AlertService:
         self.workers = []
 
     # -- the listener -------------------------------------------------------------------------
-    def on_forecast(self, cfg: Any, body: dict[str, Any], prev: dict[str, Any] | None) -> None:
-        name = body.get("item") or cfg.name
+    def on_forecast(self, update: ForecastUpdate) -> None:
+        """Apply the rules to one item's new forecast (the refitter's listener)."""
+        cfg, body, name = update.item, update.body, update.name
         self.items.setdefault(name, cfg)
         now = self.clock.now()
         params = RuleParams.of(cfg, self.config.fit.refit_every_s)
         with self._lock:
             old = self.states.get(name) or ItemAlertState()
             st = ItemAlertState.from_json(old.to_json())
-            acked = st.level == "crossed" and self.astore.ack_of(name, st.episode) is not None
+            acked = (
+                st.level == EpisodeLevel.CROSSED
+                and self.astore.ack_of(name, st.episode) is not None
+            )
             events = step(st, body, params, now, acked)
             alerts = [
                 build_alert(

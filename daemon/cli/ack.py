@@ -20,6 +20,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace) -> int:
     from thermeta.daemon.alerts.message import clock
     from thermeta.daemon.cli.common import load_config_or_report, open_store
+    from thermeta.daemon.states import EpisodeLevel
     from thermeta.storage.alerts import AlertStore
 
     cfg = load_config_or_report(args.config)
@@ -37,7 +38,7 @@ def run(args: argparse.Namespace) -> int:
             hint = f" (items with alert history: {', '.join(known[:10])})" if known else ""
             print(f"thermeta ack: no alerts recorded for item {args.item!r}{hint}", file=sys.stderr)
             return 2
-        if st.get("level", "clear") == "clear" or not st.get("episode"):
+        if st.get("level", EpisodeLevel.CLEAR) == EpisodeLevel.CLEAR or not st.get("episode"):
             print(
                 f"thermeta ack: {args.item} has no open alert episode; nothing to acknowledge",
                 file=sys.stderr,

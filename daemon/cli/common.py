@@ -3,13 +3,17 @@
 from __future__ import annotations
 
 import sys
-from typing import Any
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:  # the commands import these only when they run
+    from thermeta.daemon.config import Config
+    from thermeta.storage.store import Store
 
 
-def load_config_or_report(path: str) -> Any:
+def load_config_or_report(path: str) -> Config | None:
     """The validated config, or None after printing each problem as ``FILE:LINE: key: problem``."""
     from thermeta.daemon.config import load_config
-    from thermeta.daemon.errors import ConfigError
+    from thermeta.storage.errors import ConfigError
 
     try:
         return load_config(path)
@@ -19,10 +23,10 @@ def load_config_or_report(path: str) -> Any:
         return None
 
 
-def open_store(cfg: Any, command: str):
+def open_store(cfg: Config, command: str) -> Store | None:
     """The config's store, or None after printing why it cannot be read."""
-    from sqlalchemy import inspect
-    from thermeta.storage.store import Store, StoreError, safe_url
+    from thermeta.storage.errors import StoreError
+    from thermeta.storage.store import Store, safe_url
 
     url = cfg.storage.url
     if url.startswith("sqlite:///") and url != "sqlite:///:memory:":
@@ -37,12 +41,13 @@ def open_store(cfg: Any, command: str):
             return None
     try:
         store = Store(url)
-        if not inspect(store.engine).has_table("readings"):
+        if not store.has_table():
             print(f"thermeta {command}: {safe_url(url)} holds no thermeta tables", file=sys.stderr)
             return None
-    except (StoreError, Exception) as exc:  # noqa: BLE001 - driver errors vary by database
+    except StoreError as exc:
+        why = exc.__cause__ or exc  # the database's own words, as they came
         print(
-            f"thermeta {command}: cannot open {safe_url(url)}: {str(exc).splitlines()[0]}",
+            f"thermeta {command}: cannot open {safe_url(url)}: {str(why).splitlines()[0]}",
             file=sys.stderr,
         )
         return None

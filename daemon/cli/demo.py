@@ -12,7 +12,6 @@ from __future__ import annotations
 import argparse
 import json
 import logging
-import math
 import shutil
 import signal
 import sys
@@ -20,13 +19,12 @@ import tempfile
 import threading
 import time
 from pathlib import Path
-from typing import Any
 
 DEMO_PREFIX = "thermeta-demo"
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
-    from thermeta.daemon.simulation.scenarios import NAMES
+    from thermeta.daemon.simulation import NAMES
 
     p.add_argument(
         "--scenario",
@@ -93,192 +91,6 @@ class _HeldClock:
         return self._start if m0 is None else self._start + (time.monotonic() - m0) * self.rate
 
 
-class _Recorder:
-    """Collects every forecast (listener of the service) and every alert (MQTT), prints lines."""
-
-    def __init__(self, scenario, clock, out, echo: bool):
-        self.scenario, self.clock, self.out, self.echo = scenario, clock, out, echo
-        self.truth = {p.name: p for p in scenario.loads}
-        self.forecasts: dict[str, list[dict[str, Any]]] = {}
-        self.alerts: list[dict[str, Any]] = []
-        self._last_print: dict[str, tuple[str, float]] = {}
-        self._lock = threading.Lock()
-        self._print_lock = threading.Lock()
-
-    def on_forecast(self, item_cfg, body: dict[str, Any], prev: dict[str, Any] | None) -> None:
-        now = self.clock.now()
-        rec = {
-            "made_at": now,
-            "state": body.get("state"),
-            "eta_s": body.get("eta_s"),
-            "eta_lo_s": body.get("eta_lo_s"),
-            "eta_hi_s": body.get("eta_hi_s"),
-            "t_last": _epoch(body.get("last_reading_at")),
-            "value_now": body.get("value_now"),
-        }
-        with self._lock:
-            self.forecasts.setdefault(item_cfg.name, []).append(rec)
-            state_then, printed_at = self._last_print.get(item_cfg.name, ("", -math.inf))
-            due = rec["state"] != state_then or now - printed_at >= 1800.0
-            if due:
-                self._last_print[item_cfg.name] = (rec["state"], now)
-        if due and self.echo:
-            self._print(self._forecast_line(item_cfg, body, now))
-
-    def _forecast_line(self, item_cfg, d: dict[str, Any], now: float) -> str:
-        from thermeta.daemon.timefmt import human_duration, local_clock
-        from thermeta.daemon.units import UNIT_SIGN
-
-        unit = UNIT_SIGN.get(item_cfg.unit, item_cfg.unit)
-        parts = [f"{self._stamp(now)} forecast {item_cfg.name}: {d.get('state')}"]
-        if d.get("value_now") is not None:
-            parts.append(f"now {d['value_now']:.1f} {unit}")
-        eta = d.get("eta_s")
-        t_last = _epoch(d.get("last_reading_at"))
-        if eta and t_last is not None and d.get("state") != "crossed":
-            # the forecast counts from its newest reading; the line counts from now
-            ahead = t_last - now
-            lo, hi = d.get("eta_lo_s"), d.get("eta_hi_s")
-            if hi is None:
-                hi_text = "no upper bound"
-            elif hi > 30 * 86400:
-                hi_text = "beyond 30 d"
-            else:
-                hi_text = human_duration(hi + ahead)
-            band = f"{human_duration(None if lo is None else lo + ahead)} to {hi_text}"
-            parts.append(
-                f"crosses {d.get('threshold'):g} {unit} at {local_clock(t_last + eta)} "
-                f"(in {human_duration(t_last + eta - now)}; 90 %: {band})"
-            )
-        elif d.get("state") == "steady":
-            parts.append("no crossing ahead")
-        truth = self.truth.get(item_cfg.name)
-        if truth is not None and d.get("state") in ("approaching", "steady"):
-            c = truth.crossing_t_true
-            parts.append(
-                "truth: "
-                + (
-                    "never crosses"
-                    if c is None
-                    else f"crosses at {local_clock(c)}"
-                    if c > now
-                    else "already crossed"
-                )
-            )
-        return "; ".join(parts)
-
-    def on_alert(self, topic: str, payload: bytes) -> None:
-        try:
-            doc = json.loads(payload)
-        except ValueError:
-            doc = {"text": payload.decode("utf-8", "replace")}
-        if not isinstance(doc, dict):
-            doc = {"text": str(doc)}
-        item = doc.get("item") or topic.rsplit("/", 1)[-1]
-        now = self.clock.now()
-        with self._lock:
-            self.alerts.append(
-                {"at": now, "topic": topic, "item": item, "level": doc.get("level"), "body": doc}
-            )
-        if self.echo:
-            text = doc.get("sentence") or doc.get("text") or doc.get("message") or json.dumps(doc)
-            self._print(f"{self._stamp(now)} ALERT {doc.get('level') or ''} {item}: {text}")
-
-    def _stamp(self, now: float) -> str:
-        from thermeta.daemon.timefmt import local_clock
-
-        return f"[{local_clock(now)} +{(now - self.scenario.t_start) / 60:5.0f} min]"
-
-    def _print(self, line: str) -> None:
-        # forecasts (the refit thread) and alerts (the MQTT thread) print: one write per line
-        try:
-            with self._print_lock:
-                self.out.write(line + "\n")
-                self.out.flush()
-        except BrokenPipeError:  # the reader went away (e.g. `| head`): stop printing
-            self.echo = False
-
-    def summary(self) -> dict[str, Any]:
-        """Per item: how the forecasts made ahead of the true crossing compare with it."""
-        items = {}
-        for name, p in self.truth.items():
-            fcs = self.forecasts.get(name, [])
-            c = p.crossing_t_true
-            errors = []
-            for f in fcs:
-                if (
-                    c is None
-                    or f["eta_s"] is None
-                    or f["t_last"] is None
-                    or f["state"] != "approaching"
-                ):
-                    continue
-                true_left = c - f["t_last"]
-                if true_left <= 0:
-                    continue
-                errors.append(
-                    {
-                        "made_at": f["made_at"],
-                        "true_eta_s": true_left,
-                        "eta_s": f["eta_s"],
-                        "rel_error": (f["eta_s"] - true_left) / true_left,
-                        "inside_90": (f["eta_lo_s"] is None or f["eta_lo_s"] <= true_left)
-                        and (f["eta_hi_s"] is None or true_left <= f["eta_hi_s"]),
-                    }
-                )
-            items[name] = {
-                "true_crossing_t": c,
-                "n_forecasts": len(fcs),
-                "n_approaching": sum(f["state"] == "approaching" for f in fcs),
-                "states": sorted({f["state"] for f in fcs if f["state"]}),
-                "alerts": [a["level"] for a in self.alerts if a["item"] == name],
-                "ahead": errors,
-            }
-        return {
-            "scenario": self.scenario.name,
-            "t_start": self.scenario.t_start,
-            "sim_end": self.clock.now(),
-            "items": items,
-            "n_alerts": len(self.alerts),
-        }
-
-
-def _epoch(text: str | None) -> float | None:
-    if not text:
-        return None
-    from thermeta.daemon.timefmt import parse_time
-
-    try:
-        return parse_time(text)
-    except ValueError:
-        return None
-
-
-def _alert_subscriber(host: str, port: int, prefix: str, recorder: _Recorder):
-    import paho.mqtt.client as mqtt
-
-    c = mqtt.Client(
-        mqtt.CallbackAPIVersion.VERSION2,
-        client_id=f"{DEMO_PREFIX}-alerts-{id(recorder)}",
-        protocol=mqtt.MQTTv311,
-        clean_session=True,
-    )
-
-    def on_connect(client, userdata, flags, reason_code, properties):
-        client.subscribe(f"{prefix}/#", qos=1)
-
-    def on_message(client, userdata, msg):
-        try:
-            recorder.on_alert(msg.topic, msg.payload)
-        except Exception:
-            logging.getLogger("thermeta.demo").exception("alert line failed")
-
-    c.on_connect, c.on_message = on_connect, on_message
-    c.connect_async(host, port)
-    c.loop_start()
-    return c
-
-
 def run(args: argparse.Namespace) -> int:
     if not 0 < args.speed <= 100_000:
         print(f"thermeta demo: --speed must be in (0, 100000], got {args.speed:g}", file=sys.stderr)
@@ -313,6 +125,7 @@ def _run(args: argparse.Namespace, workdir: Path) -> int:
     from thermeta.daemon.config import load_config
     from thermeta.daemon.service import Service
     from thermeta.daemon.simulation.broker import EmbeddedBroker, broker_accepts
+    from thermeta.daemon.simulation.recorder import Recorder, alert_subscriber, print_summary
     from thermeta.daemon.simulation.scenarios import build
     from thermeta.daemon.simulation.simulator import Simulator, config_text, truth_lines
 
@@ -387,11 +200,17 @@ def _run(args: argparse.Namespace, workdir: Path) -> int:
         if lines:
             for line in truth_lines(scenario):
                 print(line, file=out, flush=True)
-        recorder = _Recorder(scenario, clock, out, echo=lines)
+        recorder = Recorder(scenario, clock, out, echo=lines)
         service = Service(config, clock=clock)
         service.add_forecast_listener(recorder.on_forecast)
         service.start()
-        alerts_client = _alert_subscriber(host, port, f"{DEMO_PREFIX}/alert", recorder)
+        alerts_client = alert_subscriber(
+            host,
+            port,
+            f"{DEMO_PREFIX}/alert",
+            recorder,
+            client_id=f"{DEMO_PREFIX}-alerts-{id(recorder)}",
+        )
         deadline = time.monotonic() + 10.0
         while not (service.stats["connected"] or time.monotonic() > deadline):
             time.sleep(0.05)
@@ -421,7 +240,7 @@ def _run(args: argparse.Namespace, workdir: Path) -> int:
             return 1
         summary = recorder.summary()
         if lines:
-            _print_summary(summary, out)
+            print_summary(summary, out)
         if args.summary_json:
             Path(args.summary_json).write_text(json.dumps(summary, indent=1), encoding="utf-8")
         return 0
@@ -502,46 +321,3 @@ def _dashboard(service, stop: threading.Event, end_at: float | None, sim, out) -
     finally:
         running.clear()
     stop.set()
-
-
-def _count(n: int, noun: str) -> str:
-    return f"{n} {noun}" if n == 1 else f"{n} {noun}s"
-
-
-def _print_summary(summary: dict[str, Any], out) -> None:
-    from thermeta.daemon.timefmt import local_clock
-
-    print(
-        "forecasts against the simulated truth (remaining time to the crossing, forecasts made "
-        "while approaching):",
-        file=out,
-    )
-    for name, it in summary["items"].items():
-        ahead = it["ahead"]
-        truth = (
-            "never crosses"
-            if it["true_crossing_t"] is None
-            else f"crosses at {local_clock(it['true_crossing_t'])}"
-        )
-        if ahead:
-            errs = sorted(abs(a["rel_error"]) for a in ahead)
-            med = errs[len(errs) // 2]
-            inside = sum(a["inside_90"] for a in ahead) / len(ahead)
-            how = (
-                f"{_count(len(ahead), 'forecast')} ahead, median error {100 * med:.1f} %, "
-                f"truth inside the 90 % interval in {100 * inside:.0f} %"
-            )
-        elif it["true_crossing_t"] is None:
-            n_app = it["n_approaching"]
-            how = f"{_count(it['n_forecasts'], 'forecast')}, " + (
-                f"{n_app} of them approaching a crossing that never comes"
-                if n_app
-                else "none approaching"
-            )
-        elif it["true_crossing_t"] > summary["sim_end"]:
-            how = f"{_count(it['n_forecasts'], 'forecast')}, none approaching it yet"
-        else:
-            how = f"{_count(it['n_forecasts'], 'forecast')}, none approaching it before it came"
-        alerts = ", ".join(str(a) for a in it["alerts"]) or "no alerts"
-        print(f"  {name}: {truth}; {how}; {alerts}", file=out)
-    print(f"{summary['n_alerts']} alerts in all", file=out, flush=True)

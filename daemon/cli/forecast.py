@@ -5,9 +5,11 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+from typing import get_args
 
-from thermeta.daemon.errors import InputError
-from thermeta.daemon.units import UNIT_SIGN
+from thermeta.daemon.states import MODELS, LimitSetting
+from thermeta.daemon.units import UNIT_SIGN, UNITS
+from thermeta.storage.errors import InputError
 
 CAUTION = (
     "Forecasts support decisions; they are not a food-safety plan or a regulatory record. "
@@ -28,14 +30,14 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     )
     p.add_argument(
         "--model",
-        choices=["lumped", "slab", "cylinder", "sphere", "auto"],
+        choices=MODELS,
         default="lumped",
         help="lumped (Newton) or a centre probe in a slab, long cylinder or sphere",
     )
-    p.add_argument("--unit", choices=["C", "F", "K"], default="C", help="unit of the values")
+    p.add_argument("--unit", choices=UNITS, default="C", help="unit of the values")
     p.add_argument(
         "--limit",
-        choices=["upper", "lower", "auto"],
+        choices=get_args(LimitSetting),
         default="auto",
         help="which side of the threshold is unsafe; auto: the side the first reading is not on",
     )
@@ -121,6 +123,7 @@ def run(args: argparse.Namespace) -> int:
     from thermeta.daemon.ingest.csvio import read_series
     from thermeta.daemon.units import from_celsius, shown_in, to_celsius, to_item_units
     from thermeta.predictors import forecast
+    from thermeta.predictors.forecast import AMBIENT_UNCERTAINTY
 
     try:
         amb_sd = _ambient_sd_c(args)
@@ -154,7 +157,7 @@ def run(args: argparse.Namespace) -> int:
             ambient_y=series.ambient_y if args.ambient is None else None,
             limit=limit,
             shown=shown_in(args.unit),
-            **({} if amb_sd is None else {"ambient_uncertainty": amb_sd}),
+            ambient_uncertainty=AMBIENT_UNCERTAINTY if amb_sd is None else amb_sd,
         )
         if not fc.ok and fc.reason and fc.reason.startswith("too few"):
             raise InputError(f"{args.csv}:{series.last_line}: {fc.reason}")

@@ -25,7 +25,7 @@ def run(args: argparse.Namespace) -> int:
 
     from thermeta.daemon.cli.common import load_config_or_report
     from thermeta.daemon.logsetup import configure
-    from thermeta.storage.store import StoreError
+    from thermeta.storage.errors import StoreError
 
     cfg = load_config_or_report(args.config)
     if cfg is None:

@@ -14,7 +14,7 @@ import time
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
-    from thermeta.daemon.simulation.scenarios import NAMES
+    from thermeta.daemon.simulation import NAMES
 
     p.add_argument(
         "--scenario",

@@ -7,8 +7,6 @@ import argparse
 import json
 from typing import Any
 
-HEARTBEAT_LATE_S = 20.0  # the daemon writes one every 5 s
-
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--config", required=True, metavar="FILE", help="the TOML config")
@@ -16,24 +14,22 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def collect(cfg: Any, store: Any, now: float) -> dict[str, Any]:
+    from thermeta.daemon.views.board import service_running
     from thermeta.predictors.result import rfc3339
 
     counts = store.counts()
     daemon = store.get_meta("daemon") or {}
-    beat = daemon.get("heartbeat_at")
-    running = (
-        daemon.get("state") == "running" and beat is not None and now - beat < HEARTBEAT_LATE_S
-    )
+    running = service_running(daemon, now)
     per_item = []
     seen = set()
     for f in store.latest_forecasts():
-        d = f["forecast"]
-        seen.add(f["item"])
+        d = f.forecast
+        seen.add(f.item)
         crossing = d.get("crossing_at")
         per_item.append(
             {
-                "item": f["item"],
-                "state": f["state"],
+                "item": f.item,
+                "state": f.state,
                 "value_now": d.get("value_now"),
                 "threshold": d.get("threshold"),
                 "unit": d.get("unit", "C"),
@@ -75,7 +71,7 @@ def collect(cfg: Any, store: Any, now: float) -> dict[str, Any]:
         "daemon": {
             "running": running,
             "state": daemon.get("state"),
-            "heartbeat_at": rfc3339(beat),
+            "heartbeat_at": rfc3339(daemon.get("heartbeat_at")),
             "pid": daemon.get("pid"),
             "connected": daemon.get("connected"),
             "readings_per_s": daemon.get("readings_per_s"),
@@ -86,9 +82,10 @@ def collect(cfg: Any, store: Any, now: float) -> dict[str, Any]:
 
 def _eta_text(r: dict[str, Any], now: float) -> str:
     from thermeta.daemon.alerts.rules import remaining_s
+    from thermeta.daemon.states import ItemState
     from thermeta.daemon.timefmt import human_duration, parse_time
 
-    if r["state"] == "crossed":
+    if r["state"] == ItemState.CROSSED:
         return "past the threshold"
     if r["crossing_at"] is None:
         return "-"

@@ -9,10 +9,8 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-from thermeta.daemon.errors import InputError
 from thermeta.daemon.timefmt import parse_time
-
-MAX_BYTES = 512 * 1024 * 1024
+from thermeta.storage.errors import InputError
 
 
 @dataclass

@@ -23,11 +23,11 @@ from thermeta.daemon.ingest.payloads import (
     EPOCH_MAX_S,
     EPOCH_MIN_S,
     Limits,
-    PayloadError,
     Reading,
 )
 from thermeta.daemon.timefmt import parse_time
 from thermeta.predictors.result import rfc3339
+from thermeta.storage.errors import PayloadError
 
 ON_WORDS = {"on": 1.0, "true": 1.0, "1": 1.0, "off": 0.0, "false": 0.0, "0": 0.0}
 

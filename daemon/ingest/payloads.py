@@ -20,16 +20,13 @@ from typing import Any
 
 from thermeta.daemon.timefmt import parse_time
 from thermeta.daemon.units import to_celsius
+from thermeta.storage.errors import PayloadError
 
 SENML_UNITS = {"Cel": "C", "K": "K"}
 SENML_RELATIVE_LIMIT = 2**28  # RFC 8428 sec. 4.5.3
 # Reasonable epoch bounds: before 2000 or after 2200 is a unit mix-up (ms vs s), not a reading.
 EPOCH_MIN_S = 946_684_800.0
 EPOCH_MAX_S = 7_258_118_400.0
-
-
-class PayloadError(ValueError):
-    """The payload cannot be taken; ``str(exc)`` is the dead-letter reason."""
 
 
 @dataclass(frozen=True)
@@ -115,7 +112,7 @@ def _fast_object(payload: bytes, now: float, unit: str, limits: Limits) -> Readi
     """
     try:
         doc = _DECODE(payload.decode("utf-8"))
-    except (ValueError, RecursionError):  # UnicodeDecodeError, JSONDecodeError, PayloadError
+    except (ValueError, PayloadError, RecursionError):  # UnicodeDecodeError, JSONDecodeError
         return None
     if type(doc) is not dict:
         return None

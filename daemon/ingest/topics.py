@@ -4,13 +4,18 @@ name templates such as ``reefer-{2}`` that take topic level 2, counting from 1).
 from __future__ import annotations
 
 import re
-from dataclasses import dataclass, replace
-from typing import TYPE_CHECKING
+from dataclasses import dataclass
+from typing import TYPE_CHECKING, Literal
 
 if TYPE_CHECKING:
-    from thermeta.daemon.config import ItemConfig
+    from thermeta.daemon.settings.items import ItemConfig
 
 PLACEHOLDER = re.compile(r"\{(\d+)\}")
+# The stored series beside an item's own: its ambient probe's and its defrost signal's
+# (daemon/ingest/defrost.py).  Item names may not end in them.
+AMBIENT_SUFFIX = ".ambient"
+DEFROST_SUFFIX = ".defrost"
+RouteKind = Literal["load", "ambient", "defrost"]
 
 
 def is_wildcard(topic_filter: str) -> bool:
@@ -86,12 +91,10 @@ class Route:
     topic carries the item's own readings ("load") or its ambient probe ("ambient")."""
 
     item: ItemConfig
-    kind: str  # "load" | "ambient" | "defrost" (the controller's defrost signal)
+    kind: RouteKind  # "defrost": the controller's defrost signal
 
     @property
     def store_name(self) -> str:
-        from thermeta.daemon.config import AMBIENT_SUFFIX, DEFROST_SUFFIX
-
         suffix = {"ambient": AMBIENT_SUFFIX, "defrost": DEFROST_SUFFIX}.get(self.kind, "")
         return self.item.name + suffix
 
@@ -112,7 +115,7 @@ class Router:
 
     def __init__(self, items: tuple[ItemConfig, ...] | list[ItemConfig]):
         self.exact: dict[str, list[Route]] = {}
-        self.patterns: list[tuple[str, ItemConfig, str]] = []
+        self.patterns: list[tuple[str, ItemConfig, RouteKind]] = []
         self.by_name: dict[str, ItemConfig] = {}
         for it in items:
             if it.is_pattern:
@@ -159,16 +162,17 @@ class Router:
             concrete = self.by_name.get(name)
             if concrete is None:
                 load_topic = topic if kind == "load" else render_filter(it.topic, topic)
-                concrete = replace(
-                    it,
-                    name=name,
-                    topic=load_topic,
-                    ambient_topic=(
-                        render_filter(it.ambient_topic, topic) if it.ambient_topic else None
-                    ),
-                    defrost_topic=(
-                        render_filter(it.defrost_topic, topic) if it.defrost_topic else None
-                    ),
+                concrete = it.model_copy(
+                    update={
+                        "name": name,
+                        "topic": load_topic,
+                        "ambient_topic": (
+                            render_filter(it.ambient_topic, topic) if it.ambient_topic else None
+                        ),
+                        "defrost_topic": (
+                            render_filter(it.defrost_topic, topic) if it.defrost_topic else None
+                        ),
+                    }
                 )
                 if kind == "load":
                     self.by_name[name] = concrete

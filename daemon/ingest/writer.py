@@ -5,7 +5,13 @@ items and written in batches: a batch is committed when it holds ``batch_size`` 
 ``batch_ms`` has passed since its first message, or when the queue has been quiet for a moment
 (the broker stops sending when its in-flight window is full of unacknowledged messages, so
 waiting longer would only stall).  Only after the commit are the messages acknowledged; if the
-commit fails the batch is retried, unacknowledged, until the store takes it.
+commit fails the batch is retried, unacknowledged, until the store takes it or :meth:`stop` is
+called (then it stays unacknowledged and the broker sends it again to the next run).
+
+Retries (tenacity): while the store fails, a call is tried again after 0.5 s, 1 s, 2 s ... at
+most 30 s apart; the waits end at once when the writer stops.  Anything else going wrong with a
+batch is tried three times, then its messages are set aside as dead letters, so one poisoned batch
+cannot stop ingest.
 """
 
 from __future__ import annotations
@@ -16,20 +22,36 @@ import threading
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
-from typing import Any, NamedTuple
+from typing import Any, NamedTuple, TypeVar
 
+from tenacity import (
+    RetryCallState,
+    Retrying,
+    retry_if_exception_type,
+    retry_if_not_exception_type,
+    stop_after_attempt,
+    wait_exponential,
+    wait_fixed,
+)
 from thermeta.daemon.clock import Clock
 from thermeta.daemon.config import Config, ItemConfig
 from thermeta.daemon.ingest.defrost import parse_defrost
-from thermeta.daemon.ingest.payloads import Limits, PayloadError, excerpt, parse_payload
+from thermeta.daemon.ingest.payloads import Limits, excerpt, parse_payload
 from thermeta.daemon.ingest.topics import Route, Router
+from thermeta.storage.errors import PayloadError, StoreError
 from thermeta.storage.schema import FLAG_RECEIPT_TS
-from thermeta.storage.store import Store, StoreError
+from thermeta.storage.store import DeadLetter, Store
 
 log = logging.getLogger("thermeta.writer")
 
 IDLE_FLUSH_S = 0.005
 DEAD_LOG_EVERY_S = 10.0
+GUARD_ATTEMPTS = 3  # tries of a batch that fails for any other reason than the store
+T = TypeVar("T")
+
+
+class _Stopped(Exception):
+    """stop() was called while the store was failing: the batch stays unacknowledged."""
 
 
 class Inbound(NamedTuple):
@@ -85,6 +107,10 @@ class Activity:
 class Writer(threading.Thread):
     """Consumes :class:`Inbound` messages; call :meth:`submit` from any thread."""
 
+    # the store's retry waits: first, then doubling up to the longest (seconds)
+    store_retry_first_s = 0.5
+    store_retry_max_s = 30.0
+
     def __init__(
         self,
         store: Store,
@@ -133,6 +159,10 @@ class Writer(threading.Thread):
     def backlog(self) -> int:
         return self._q.qsize()
 
+    def _pause(self, seconds: float) -> None:
+        """Wait between retries; :meth:`stop` ends the wait at once."""
+        self._stopping.wait(seconds)
+
     # -- the thread ---------------------------------------------------------------------------
     def run(self) -> None:
         while True:
@@ -145,13 +175,35 @@ class Writer(threading.Thread):
     def _write_guarded(self, batch: list[Inbound]) -> None:
         # The writer thread must not die: unacknowledged messages would fill the broker's
         # in-flight window and stop ingest.  After a few failures the batch is set aside.
-        for attempt in range(3):
-            try:
-                self._write(batch)
-                return
-            except Exception:  # noqa: BLE001
-                log.exception("writing a batch of %d failed (attempt %d)", len(batch), attempt + 1)
-                time.sleep(0.5)
+        def failed(rs: RetryCallState) -> None:
+            exc = rs.outcome.exception() if rs.outcome else None
+            log.error(
+                "writing a batch of %d failed (attempt %d)",
+                len(batch),
+                rs.attempt_number,
+                exc_info=exc,
+            )
+
+        guarded = Retrying(
+            retry=retry_if_not_exception_type(_Stopped),
+            stop=stop_after_attempt(GUARD_ATTEMPTS),
+            wait=wait_fixed(0.5),
+            sleep=self._pause,
+            after=failed,
+            reraise=True,
+        )
+        try:
+            guarded(self._write, batch)
+            return
+        except _Stopped:
+            log.warning(
+                "stopping while the store fails: %d message(s) left unacknowledged "
+                "(the broker sends them again)",
+                len(batch),
+            )
+            return
+        except Exception:  # noqa: BLE001 - set aside below
+            pass
         try:
             self.store.write_batch(
                 [], [self._dead(m, None, "internal error while storing") for m in batch]
@@ -182,7 +234,7 @@ class Writer(threading.Thread):
 
     def _write(self, batch: list[Inbound]) -> None:
         readings: list[tuple] = []
-        dead: list[dict[str, Any]] = []
+        dead: list[DeadLetter] = []
         seen: list[tuple[str, ItemConfig, float | None]] = []
         self._prepare_topics(batch)
         for msg in batch:
@@ -193,18 +245,12 @@ class Writer(threading.Thread):
             except Exception as exc:  # noqa: BLE001 - one odd message must not stop ingest
                 dead.append(self._dead(msg, None, f"internal error: {exc.__class__.__name__}"))
                 log.exception("unexpected error handling a message on %s", msg.topic)
-        delay = 0.5
-        while True:
-            try:
-                self.store.write_batch(readings, dead)
-                break
-            except StoreError as exc:
-                self.counts["store_errors"] += 1
-                log.error(
-                    "store write failed (%s); retrying in %.1f s, nothing acknowledged", exc, delay
-                )
-                time.sleep(delay)
-                delay = min(delay * 2, 30.0)
+        self._until_stored(
+            "store write failed (%s); retrying in %.1f s, nothing acknowledged",
+            self.store.write_batch,
+            readings,
+            dead,
+        )
         self.counts["batches"] += 1
         self.counts["messages"] += len(batch)
         self.counts["readings"] += len(readings)
@@ -223,6 +269,31 @@ class Writer(threading.Thread):
         if dead:
             self._log_dead(len(dead), dead[-1])
 
+    def _until_stored(self, message: str, call: Callable[..., T], *args: Any, **kw: Any) -> T:
+        """``call(*args, **kw)``, tried again while the store fails (see the module docstring);
+        raises :class:`_Stopped` when :meth:`stop` ends the waiting."""
+
+        def count(_: RetryCallState) -> None:
+            self.counts["store_errors"] += 1
+
+        def tell(rs: RetryCallState) -> None:
+            wait_s = rs.next_action.sleep if rs.next_action else 0.0
+            log.error(message, rs.outcome.exception() if rs.outcome else "?", wait_s)
+
+        policy = Retrying(
+            retry=retry_if_exception_type(StoreError),
+            wait=wait_exponential(multiplier=self.store_retry_first_s, max=self.store_retry_max_s),
+            stop=lambda _: self._stopping.is_set(),
+            sleep=self._pause,
+            after=count,
+            before_sleep=tell,
+            reraise=True,
+        )
+        try:
+            return policy(call, *args, **kw)
+        except StoreError as exc:  # only once stopping: every other failure is retried
+            raise _Stopped from exc
+
     def _prepare_topics(self, batch: list[Inbound]) -> None:
         """Resolve the batch's new topics and register their new items in one go."""
         routes: dict[str, list[Route]] = {}
@@ -238,15 +309,14 @@ class Writer(threading.Thread):
             for rs in routes.values()
             for r in rs
         ]
-        delay = 0.5
-        while True:
-            try:
-                ids = self.store.ensure_items(specs, now=self.clock.now()) if specs else {}
-                break
-            except Exception as exc:  # noqa: BLE001 - the store may be briefly unavailable
-                log.error("cannot register new items (%s); retrying in %.1f s", exc, delay)
-                time.sleep(delay)
-                delay = min(delay * 2, 30.0)
+        ids: dict[str, int] = {}
+        if specs:
+            ids = self._until_stored(
+                "cannot register new items (%s); retrying in %.1f s",
+                self.store.ensure_items,
+                specs,
+                now=self.clock.now(),
+            )
         for topic, rs in routes.items():
             hits: list[tuple] = []
             for route in rs:
@@ -314,19 +384,19 @@ class Writer(threading.Thread):
             self._limits[key] = lim
         return lim
 
-    def _dead(self, msg: Inbound, item: str | None, reason: str) -> dict[str, Any]:
-        return {
-            "received_at": msg.received_at,
-            "topic": msg.topic[:1024],
-            "item": item,
-            "reason": reason[:300],
-            "payload": excerpt(msg.payload, self.config.ingest.dead_letter_chars),
-        }
+    def _dead(self, msg: Inbound, item: str | None, reason: str) -> DeadLetter:
+        return DeadLetter(
+            received_at=msg.received_at,
+            topic=msg.topic[:1024],
+            item=item,
+            reason=reason[:300],
+            payload=excerpt(msg.payload, self.config.ingest.dead_letter_chars),
+        )
 
-    def _log_dead(self, n: int, latest: dict[str, Any]) -> None:
+    def _log_dead(self, n: int, latest: DeadLetter) -> None:
         # Rate-limited: a flood of bad payloads gives one line per interval, not one per message.
         self._dead_since_log += n
-        self._dead_latest = f"{latest['topic']}: {latest['reason']}"
+        self._dead_latest = f"{latest.topic}: {latest.reason}"
         now = time.monotonic()
         if now - self._dead_last_log >= DEAD_LOG_EVERY_S:
             log.warning(

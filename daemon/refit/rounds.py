@@ -28,13 +28,13 @@ slid past).  So lessons never share readings, and the prior never learns from it
 
 from __future__ import annotations
 
-import inspect
 import json
 import logging
 import math
 import threading
 import time
 from collections.abc import Callable
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -42,7 +42,9 @@ from thermeta.daemon.clock import Clock
 from thermeta.daemon.config import AMBIENT_SUFFIX, DEFROST_SUFFIX, Config, ItemConfig
 from thermeta.daemon.ingest.defrost import defrost_status
 from thermeta.daemon.ingest.writer import Activity
+from thermeta.daemon.states import AmbientMode, ItemState, Side
 from thermeta.daemon.units import shown_in, to_item_units
+from thermeta.predictors import forecast
 from thermeta.predictors.prior import Prior, learn, learnable
 from thermeta.predictors.result import Forecast, rfc3339
 from thermeta.storage.priors import PriorStore
@@ -50,19 +52,32 @@ from thermeta.storage.store import Store
 
 log = logging.getLogger("thermeta.refit")
 
-STATES = ("learning", "steady", "approaching", "crossed", "stale")
 ERROR_LOG_EVERY_S = 300.0
 SAVE_EVERY = 50  # forecasts per store transaction
 # How far back a defrost signal is read beyond the longest hold (max + recovery): a start older
 # than that holds nothing any more, and a signal repeated at least this often is read right.
 DEFROST_LOOKBACK_S = 3600.0
 
-# A listener gets (item config, forecast dict with state, previous forecast dict or None).
-Listener = Callable[[ItemConfig, dict[str, Any], "dict[str, Any] | None"], None]
+
+@dataclass(frozen=True)
+class ForecastUpdate:
+    """One item's refit, as listeners (the alerts, the demo) get it."""
+
+    item: ItemConfig  # the item's config (a wildcard item's: made concrete for this item)
+    state: ItemState
+    body: dict[str, Any]  # the forecast JSON as published (the item's unit), with "state"
+    previous: dict[str, Any] | None  # the item's forecast JSON before this one
+
+    @property
+    def name(self) -> str:
+        return str(self.body.get("item") or self.item.name)
+
+
+Listener = Callable[[ForecastUpdate], None]
 Publish = Callable[[str, str], None]
 
 
-def limit_side(cfg: ItemConfig, first_value_c: float | None) -> str | None:
+def limit_side(cfg: ItemConfig, first_value_c: float | None) -> Side | None:
     """Which side of the threshold is past the limit: the configured one, or else the side the
     item's first stored reading was NOT on (a probe starting below its threshold has an upper
     limit; a hot tray starting above its target, a lower one)."""
@@ -75,7 +90,7 @@ def limit_side(cfg: ItemConfig, first_value_c: float | None) -> str | None:
 
 def forecast_kwargs(
     cfg: ItemConfig,
-    limit: str | None,
+    limit: Side | None,
     ambient_t: np.ndarray | None = None,
     ambient_y: np.ndarray | None = None,
 ) -> dict[str, Any]:
@@ -102,26 +117,38 @@ def uses_prior(cfg: ItemConfig, measured: bool) -> bool:
 
 
 def classify(
-    fc: Forecast, now: float, last_ts: float | None, cfg: ItemConfig, limit: str | None
-) -> str:
+    fc: Forecast, now: float, last_ts: float | None, cfg: ItemConfig, limit: Side | None
+) -> ItemState:
     """The item's state from its forecast (see the module docstring for the order)."""
     if last_ts is None or (fc.n_points == 0 and fc.value_now is None):
-        return "learning"
+        return ItemState.LEARNING
     if now - last_ts > cfg.silence_s:
-        return "stale"
+        return ItemState.STALE
     thr = cfg.threshold_c
     v = fc.value_now
     if v is not None and ((limit == "upper" and v >= thr) or (limit == "lower" and v <= thr)):
-        return "crossed"
+        return ItemState.CROSSED
     if limit is None and fc.ok and fc.eta_s == 0:
-        return "crossed"
+        return ItemState.CROSSED
     if not fc.ok:
-        return "learning"
+        return ItemState.LEARNING
     if fc.eta_s is not None and fc.eta_s > 0:
         remaining_s = fc.eta_s - max(0.0, now - (fc.t_last or now))
         if remaining_s <= cfg.horizon_s:
-            return "approaching"
-    return "steady"
+            return ItemState.APPROACHING
+    return ItemState.STEADY
+
+
+@dataclass(frozen=True)
+class _Refitted:
+    """One item's refit, between the fit and the store (saved in chunks) and the listeners."""
+
+    name: str
+    cfg: ItemConfig
+    item_id: int
+    state: ItemState
+    body: dict[str, Any]
+    last_ts: float | None
 
 
 class Refitter:
@@ -146,7 +173,7 @@ class Refitter:
         self._error_logged: dict[str, float] = {}
         self.runs = 0
         self.last_run_s = 0.0
-        self._predict = _load_forecast()
+        self._predict: Callable[..., Forecast] = forecast  # a seam for tests
         self.prior_store = PriorStore(store)
         self.priors: dict[str, Prior] = {}  # by prior class, loaded on first use
         self.learned_until: dict[str, float] = {}  # by item
@@ -155,31 +182,30 @@ class Refitter:
     def load_previous(self) -> None:
         """Pick up each item's last forecast from the store (after a restart)."""
         for f in self.store.latest_forecasts():
-            self.previous[f["item"]] = f["forecast"]
+            self.previous[f.item] = f.forecast
 
-    def run_once(self, force: bool = False) -> dict[str, str]:
+    def run_once(self, force: bool = False) -> dict[str, ItemState]:
         """One round; returns {item: state} for the items published.  Never raises."""
         with self._lock:  # the scheduler never overlaps runs; this guards manual calls too
             t0 = time.monotonic()
             now = self.clock.now()
             dirty = self.activity.take_dirty()
             items, last = self.activity.snapshot()
-            done: dict[str, str] = {}
-            pending: list[tuple[str, ItemConfig, int, str, dict[str, Any], float | None]] = []
+            done: dict[str, ItemState] = {}
+            pending: list[_Refitted] = []
             for name, cfg in items.items():
                 prev = self.previous.get(name)
                 due = force or name in dirty or prev is None
                 going_stale = (
                     prev is not None
-                    and prev.get("state") != "stale"
+                    and prev.get("state") != ItemState.STALE
                     and name in last
                     and now - last[name] > cfg.silence_s
                 )
                 if not (due or going_stale):
                     continue
                 try:
-                    item_id, state, body = self._refit(name, cfg, now, last.get(name))
-                    pending.append((name, cfg, item_id, state, body, last.get(name)))
+                    pending.append(self._refit(name, cfg, now, last.get(name)))
                 except Exception:  # noqa: BLE001 - one item never stops the others
                     self._log_error(name, "refit of %s failed", name)
                 if len(pending) >= SAVE_EVERY:
@@ -194,29 +220,24 @@ class Refitter:
             self.last_run_s = time.monotonic() - t0
             return done
 
-    def _flush(self, pending: list, now: float, done: dict[str, str]) -> None:
+    def _flush(self, pending: list[_Refitted], now: float, done: dict[str, ItemState]) -> None:
         """Store a chunk of forecasts in one transaction, then publish them (one commit per item
         would cost an fsync each and hold the writer's lock as often)."""
         if not pending:
             return
         try:
             self.store.save_forecasts(
-                [
-                    (item_id, now, state, body, last_ts)
-                    for _, _, item_id, state, body, last_ts in pending
-                ]
+                [(r.item_id, now, r.state, r.body, r.last_ts) for r in pending]
             )
         except Exception:  # noqa: BLE001 - published anyway; the next refit stores again
             log.exception("storing %d forecasts failed", len(pending))
-        for name, cfg, _, state, body, _ in pending:
-            self._deliver(name, cfg, body)
-            done[name] = state
+        for r in pending:
+            self._deliver(r)
+            done[r.name] = r.state
         pending.clear()
 
-    def _refit(
-        self, name: str, cfg: ItemConfig, now: float, last_ts: float | None
-    ) -> tuple[int, str, dict[str, Any]]:
-        """Fit one item; returns (item id, state, forecast body) for storing and publishing."""
+    def _refit(self, name: str, cfg: ItemConfig, now: float, last_ts: float | None) -> _Refitted:
+        """Fit one item; returns what to store and publish."""
         item_id = self.item_ids.get(name) or self.store.item_id(name)
         if item_id is None:
             item_id = self.store.ensure_item(name, unit=cfg.unit, topic=cfg.topic, now=now)
@@ -231,7 +252,7 @@ class Refitter:
             if arows:
                 amb_t = np.array([r[0] for r in arows])
                 amb_y = np.array([r[1] for r in arows])
-        mode = (
+        mode: AmbientMode = (
             "measured" if amb_y is not None else ("known" if cfg.ambient is not None else "fitted")
         )
         if name not in self.first_values:
@@ -271,7 +292,7 @@ class Refitter:
             body["defrost"] = self._defrost(name, cfg, now)
         if prior is not None and prior.n_episodes:
             body["prior_class"] = cls
-        return item_id, state, body
+        return _Refitted(name, cfg, item_id, state, body, last_ts)
 
     def _defrost(self, name: str, cfg: ItemConfig, now: float) -> dict[str, Any] | None:
         """The item's newest defrost from its stored signal (None: none lately), for the rules'
@@ -312,19 +333,20 @@ class Refitter:
         if fc.regime_start <= self.learned_until[name]:
             return
         plain = fc if prior is None or not prior.n_episodes else refit_plain()
-        if not learnable(plain):
+        if not learnable(plain) or plain.t_last is None:
             return
+        until = plain.t_last
 
         def update(body: dict[str, Any] | None) -> dict[str, Any]:
             return learn(None if body is None else Prior.from_dict(body), plain).to_dict()
 
         try:
-            body = self.prior_store.learn(cls, name, float(plain.t_last), now, update)
+            body = self.prior_store.learn(cls, name, until, now, update)
         except Exception:  # noqa: BLE001 - the next episode teaches again
             log.exception("storing the prior of %s failed", cls)
             return
         self.priors[cls] = Prior.from_dict(body)
-        self.learned_until[name] = float(plain.t_last)
+        self.learned_until[name] = until
         self.lessons += 1
         log.info(
             "prior %s learned from %s: %d episode(s), time constant about %.3g h",
@@ -334,18 +356,19 @@ class Refitter:
             1.0 / (plain.k_per_s or math.inf) / 3600.0,
         )
 
-    def _deliver(self, name: str, cfg: ItemConfig, body: dict[str, Any]) -> None:
+    def _deliver(self, r: _Refitted) -> None:
         """Publish a stored forecast and hand it to the listeners."""
+        name = r.name
         if self.publish is not None:
             try:
-                self.publish(name, json.dumps(body))
+                self.publish(name, json.dumps(r.body))
             except Exception:  # noqa: BLE001 - the store has it; the next refit republishes
                 self._log_error(name, "publishing the forecast of %s failed", name)
-        prev = self.previous.get(name)
-        self.previous[name] = body
+        update = ForecastUpdate(r.cfg, r.state, r.body, self.previous.get(name))
+        self.previous[name] = r.body
         for listener in list(self.listeners):
             try:
-                listener(cfg, body, prev)
+                listener(update)
             except Exception:  # noqa: BLE001 - a listener's failure is its own
                 log.exception("forecast listener %r failed on %s", listener, name)
 
@@ -355,21 +378,3 @@ class Refitter:
         if now - self._error_logged.get(name, -1e9) >= ERROR_LOG_EVERY_S:
             self._error_logged[name] = now
             log.warning(msg, *args, exc_info=log.isEnabledFor(logging.DEBUG))
-
-
-def _load_forecast() -> Callable[..., Forecast]:
-    """The predictors' forecast(), passing only the keywords its signature accepts."""
-    from thermeta.predictors import forecast
-
-    params = inspect.signature(forecast).parameters
-    optional = {"min_points", "limit", "prior", "shown"}
-    dropped = {k for k in optional if k not in params}
-    if not dropped:
-        return forecast
-
-    def call(*args: Any, **kw: Any) -> Forecast:
-        for k in dropped:
-            kw.pop(k, None)
-        return forecast(*args, **kw)
-
-    return call

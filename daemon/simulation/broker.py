@@ -14,6 +14,7 @@ import logging
 import socket
 import threading
 from concurrent.futures import Future
+from typing import Any
 
 log = logging.getLogger(__name__)
 
@@ -77,7 +78,7 @@ class EmbeddedBroker:
         self.port = port or free_loopback_port()
         self._loop: asyncio.AbstractEventLoop | None = None
         self._thread: threading.Thread | None = None
-        self._broker = None
+        self._broker: Any = None  # amqtt's Broker, once started
         self._stopped = threading.Event()
 
     def _config(self) -> dict:
@@ -103,8 +104,9 @@ class EmbeddedBroker:
                 from amqtt.broker import Broker
 
                 async def boot() -> None:
-                    self._broker = Broker(self._config())
-                    await self._broker.start()
+                    broker = Broker(self._config())
+                    self._broker = broker
+                    await broker.start()
 
                 loop.run_until_complete(boot())
             except Exception as exc:  # noqa: BLE001 - reported to the starting thread, which raises it

@@ -17,11 +17,11 @@ from __future__ import annotations
 
 import json
 import threading
-import time
 from dataclasses import dataclass
 from typing import Protocol
 
 from thermeta.daemon.simulation.scenarios import Scenario
+from thermeta.daemon.simulation.sites import PayloadForm
 from thermeta.predictors.result import rfc3339
 
 MAX_PENDING = 2000  # unacknowledged QoS 1 publishes before we wait (paho's ids wrap at 65,535)
@@ -46,7 +46,7 @@ def _round(v: float) -> float:
     return round(float(v), 2)
 
 
-def encode(form: str, name: str, ts: list[float], values: list[float]) -> bytes:
+def encode(form: PayloadForm, name: str, ts: list[float], values: list[float]) -> bytes:
     """One payload carrying the readings ``(ts, values)`` of probe ``name`` in ``form``."""
     if form == "senml":
         recs: list[dict] = []
@@ -288,16 +288,3 @@ def truth_lines(scenario: Scenario) -> list[str]:
                 f"    cooling schedule: 57->21 degC within 2 h {ok1}; ->5 degC within 6 h {ok2}"
             )
     return out
-
-
-def sleep_until(clock: Clock, t: float, stop: threading.Event | None = None) -> None:
-    """Sleep (in real time) until ``clock`` reads ``t``."""
-    while True:
-        ahead = t - clock.now()
-        if ahead <= 0:
-            return
-        if stop is not None:
-            if stop.wait(min(ahead / clock.rate, 0.25)):
-                return
-        else:
-            time.sleep(min(ahead / clock.rate, 0.25))

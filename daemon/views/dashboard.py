@@ -1,6 +1,6 @@
 """The terminal dashboard: every item's forecast at a glance, read from the store.
 
-    collect(store, now)            -> Board (header facts + one Row per item)
+    collect(store, now)            -> Board (header facts + one Row per item; board.py)
     render(board, width, height)   -> a rich renderable (fresh each frame)
     watch(store, console, ...)     the loop behind ``thermeta watch`` (and ``run --dashboard``)
 
@@ -13,180 +13,38 @@ from __future__ import annotations
 
 import math
 import time
-from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, TypedDict
 
-from rich.console import Console, Group
+from rich.console import Console, Group, JustifyMethod
 from rich.table import Table
 from rich.text import Text
 from thermeta.daemon.alerts.message import CAUTION, UNIT_SIGN
-from thermeta.daemon.alerts.rules import remaining_s
+from thermeta.daemon.states import ItemState
 from thermeta.daemon.timefmt import human_duration
+from thermeta.daemon.views.board import RANK, Board, Row, collect
 
-STATE_LOOK = {  # symbol, word, style (colours of our own; the word always carries the meaning)
-    "crossed": ("✖", "crossed", "bold #ff6b6b"),
-    "approaching": ("▲", "approaching", "bold #ffb347"),
-    "stale": ("?", "stale", "#a0a0d0"),
-    "learning": ("…", "learning", "#9a9a9a"),
-    "steady": ("●", "steady", "#6fcf97"),
+STATE_LOOK: dict[
+    str, tuple[str, str]
+] = {  # symbol, style (colours of our own; the state's word always carries the meaning)
+    ItemState.CROSSED: ("✖", "bold #ff6b6b"),
+    ItemState.APPROACHING: ("▲", "bold #ffb347"),
+    ItemState.STALE: ("?", "#a0a0d0"),
+    ItemState.LEARNING: ("…", "#9a9a9a"),
+    ItemState.STEADY: ("●", "#6fcf97"),
 }
-RANK = {"crossed": 0, "approaching": 1, "stale": 2, "learning": 3, "steady": 4}
+
+
+class ViewState(TypedDict):
+    """What the keys have chosen to show."""
+
+    filter: str  # only items whose name holds this
+    attention: bool  # only items that need attention
+    typing: bool  # the filter is being typed
+
+
+ATTENTION = (ItemState.CROSSED, ItemState.APPROACHING, ItemState.STALE)
 SPARK = "▁▂▃▄▅▆▇█"
-HEARTBEAT_LATE_S = 20.0
 GROUP_WHEN_MORE_THAN = 10
-
-
-@dataclass
-class Row:
-    item: str
-    state: str
-    unit: str = "C"
-    value: float | None = None
-    threshold: float | None = None
-    eta_s: float | None = None
-    eta_lo_s: float | None = None
-    eta_hi_s: float | None = None
-    ambient: float | None = None
-    tau_s: float | None = None
-    trend_per_h: float | None = None
-    spark: list[float] = field(default_factory=list)
-    group: str = ""
-    alert: str | None = None  # the open alert level, "+ack" when acknowledged
-    defrost: bool = False  # the controller's defrost signal is on: new alerts are held
-
-    @property
-    def urgency(self) -> tuple:
-        soon = self.eta_lo_s if self.eta_lo_s is not None else self.eta_s
-        return (RANK.get(self.state, 5), math.inf if soon is None else soon, self.item)
-
-
-@dataclass
-class Board:
-    rows: list[Row]
-    connected: bool | None = None
-    running: bool = False
-    broker: str = "?"
-    readings_per_s: float | None = None
-    dead_letters: int | None = None
-    last_refit_at: float | None = None
-    heartbeat_at: float | None = None
-    now: float = 0.0
-    alerts_waiting: int = 0  # outbox rows not yet taken by their hook
-
-
-def _group_of(item: str, body: dict[str, Any], topic: str | None) -> str:
-    if body.get("site"):
-        return str(body["site"])
-    if "/" in item:
-        return item.split("/", 1)[0]
-    if topic and "/" in topic:
-        return topic.split("/", 1)[0]
-    return item.split("-", 1)[0]
-
-
-def collect(
-    store: Any,
-    now: float | None = None,
-    *,
-    history_s: float = 3 * 3600.0,
-    spark_n: int = 48,
-    stats: dict[str, Any] | None = None,
-) -> Board:
-    """Everything one frame shows, read from the store (and the live stats when in-process)."""
-    now = time.time() if now is None else now
-    daemon = dict(store.get_meta("daemon") or {})
-    if stats:
-        daemon.update(stats, heartbeat_at=now, state="running")
-    beat = daemon.get("heartbeat_at")
-    running = (
-        daemon.get("state") == "running" and beat is not None and now - beat < HEARTBEAT_LATE_S
-    )
-    topics = {r["name"]: r.get("topic") for r in store.list_items(None)}
-    alert_levels, waiting = _alert_levels(store)
-    rows = []
-    for f in store.latest_forecasts():
-        d, name = f["forecast"], f["item"]
-        series = store.recent_readings(name, since_ts=now - history_s)
-        unit = d.get("unit", "C")
-        if unit != "C":
-            from thermeta.daemon.units import from_celsius
-
-            series = [(t, from_celsius(v, unit)) for t, v in series]
-        rows.append(
-            Row(
-                item=name,
-                state=f["state"],
-                unit=unit,
-                value=d.get("value_now"),
-                threshold=d.get("threshold"),
-                eta_s=remaining_s(d, "eta_s", now),
-                eta_lo_s=remaining_s(d, "eta_lo_s", now),
-                eta_hi_s=remaining_s(d, "eta_hi_s", now),
-                ambient=d.get("ambient"),
-                tau_s=d.get("time_constant_s"),
-                trend_per_h=_trend_per_h(series),
-                spark=_buckets(series, now - history_s, now, spark_n),
-                group=_group_of(name, d, topics.get(name)),
-                alert=alert_levels.get(name),
-                defrost=bool((d.get("defrost") or {}).get("on")),
-            )
-        )
-    return Board(
-        rows=rows,
-        connected=daemon.get("connected"),
-        running=running,
-        broker=str(daemon.get("broker", "?")),
-        readings_per_s=daemon.get("readings_per_s"),
-        dead_letters=daemon.get("dead_letters"),
-        last_refit_at=store.last_refit_at(),
-        heartbeat_at=beat,
-        now=now,
-        alerts_waiting=waiting,
-    )
-
-
-def _alert_levels(store: Any) -> tuple[dict[str, str], int]:
-    """Open alert levels per item ("+ack" when acknowledged) and the outbox rows waiting."""
-    from sqlalchemy import inspect
-    from thermeta.storage.alerts import AlertStore
-
-    if not inspect(store.engine).has_table("alert_state"):
-        return {}, 0  # a store from before alerts: the board still shows forecasts
-    a = AlertStore(store)
-    out = {}
-    for item, st in a.load_states().items():
-        if st.get("level", "clear") != "clear":
-            acked = a.ack_of(item, int(st.get("episode", 0))) is not None
-            out[item] = st["level"] + ("+ack" if acked else "")
-    return out, a.outbox_counts()["pending"]
-
-
-def _trend_per_h(series: list[tuple[float, float]], span_s: float = 1800.0) -> float | None:
-    """Least-squares slope of the last ``span_s`` of readings, in degrees per hour."""
-    if len(series) < 3:
-        return None
-    t_end = series[-1][0]
-    pts = [(t, v) for t, v in series if t >= t_end - span_s]
-    if len(pts) < 3:
-        return None
-    n = len(pts)
-    mt = sum(t for t, _ in pts) / n
-    mv = sum(v for _, v in pts) / n
-    sxx = sum((t - mt) ** 2 for t, _ in pts)
-    if sxx <= 0:
-        return None
-    # slope = sum((t - mean t)(v - mean v)) / sum((t - mean t)^2)
-    return 3600.0 * sum((t - mt) * (v - mv) for t, v in pts) / sxx
-
-
-def _buckets(series: list[tuple[float, float]], t0: float, t1: float, n: int) -> list[float]:
-    """Mean value per time bucket (NaN where empty), for the sparkline."""
-    sums, counts = [0.0] * n, [0] * n
-    for t, v in series:
-        i = min(n - 1, max(0, int((t - t0) / (t1 - t0) * n)))
-        sums[i] += v
-        counts[i] += 1
-    return [s / c if c else math.nan for s, c in zip(sums, counts)]
 
 
 def sparkline(values: list[float], threshold: float | None, width: int) -> str:
@@ -227,10 +85,10 @@ def short_duration(s: float | None) -> str:
 
 
 def eta_text(r: Row) -> str:
-    if r.state == "crossed":
+    if r.state == ItemState.CROSSED:
         return "past limit"
     if r.eta_s is None:
-        return "none" if r.state == "steady" else "-"
+        return "none" if r.state == ItemState.STEADY else "-"
     text = short_duration(r.eta_s)
     if r.eta_lo_s is not None or r.eta_hi_s is not None:
         text += f" [{short_duration(r.eta_lo_s)}-{short_duration(r.eta_hi_s)}]"
@@ -250,7 +108,7 @@ def _arrow(trend: float | None) -> str:
 def visible(board: Board, text_filter: str = "", attention_only: bool = False) -> list[Row]:
     rows = [r for r in board.rows if text_filter.lower() in r.item.lower()]
     if attention_only:
-        rows = [r for r in rows if r.state in ("crossed", "approaching", "stale") or r.alert]
+        rows = [r for r in rows if r.state in ATTENTION or r.alert]
     return sorted(rows, key=lambda r: r.urgency)
 
 
@@ -311,7 +169,7 @@ def _table(w: dict[str, int], show_header: bool) -> Table:
         header_style="bold",
         show_header=show_header,
     )
-    for key, title, justify in (
+    columns: tuple[tuple[str, str, JustifyMethod], ...] = (
         ("state", "state", "left"),
         ("item", "item", "left"),
         ("now", "now", "right"),
@@ -320,7 +178,8 @@ def _table(w: dict[str, int], show_header: bool) -> Table:
         ("amb", "amb", "right"),
         ("tau", "tau", "right"),
         ("spark", "last 3h", "left"),
-    ):
+    )
+    for key, title, justify in columns:
         table.add_column(title, width=w[key], justify=justify, no_wrap=True, overflow="crop")
     return table
 
@@ -364,17 +223,18 @@ def render(
             )
             table = _table(w, show_header=False)
             lines_used += 1
-        sym, word, style = STATE_LOOK.get(r.state, ("·", r.state, ""))
+        sym, style = STATE_LOOK.get(r.state, ("·", ""))
+        word = str(r.state)
         label = Text(f"{sym} {word}", style=style)
         if r.alert and r.alert.endswith("+ack"):
             label.append(" ack", style="dim")
         name = r.item
-        if grouped and name.startswith(current + "/"):
+        if grouped and current is not None and name.startswith(current + "/"):
             name = name[len(current) + 1 :]
         if r.defrost:
             name += " (defrost)"  # at the end, which fit_name keeps: new alerts are held
         sign = UNIT_SIGN.get(r.unit, r.unit) if wide else ""
-        hot = style if r.state in ("crossed", "approaching") else ""
+        hot = style if r.state in (ItemState.CROSSED, ItemState.APPROACHING) else ""
         table.add_row(
             label,
             fit_name(name, w["item"]),
@@ -452,7 +312,7 @@ def watch(
     from rich.live import Live
     from thermeta.daemon.views.keys import KeyReader
 
-    state = {"filter": "", "attention": False, "typing": False}
+    state: ViewState = {"filter": "", "attention": False, "typing": False}
     with (
         KeyReader(sys.stdin) as keys,
         Live(console=console, screen=True, auto_refresh=False) as live,
@@ -482,13 +342,13 @@ def watch(
     return 0
 
 
-def _on_key(state: dict[str, Any], key: str) -> bool:
+def _on_key(state: ViewState, key: str) -> bool:
     """Apply one key press; True means quit."""
     if state["typing"]:
         if key in ("\r", "\n"):
             state["typing"] = False
         elif key == "\x1b":
-            state.update(typing=False, filter="")
+            state["typing"], state["filter"] = False, ""
         elif key in ("\x7f", "\b"):
             state["filter"] = state["filter"][:-1]
         elif key.isprintable():
@@ -499,9 +359,9 @@ def _on_key(state: dict[str, Any], key: str) -> bool:
     if key == "a":
         state["attention"] = not state["attention"]
     elif key == "/":
-        state.update(typing=True, filter="")
+        state["typing"], state["filter"] = True, ""
     elif key == "\x1b":
-        state.update(filter="", attention=False)
+        state["filter"], state["attention"] = "", False
     return False
 
 

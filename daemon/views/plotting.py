@@ -6,23 +6,19 @@ the machine's local time zone; temperatures in the item's unit.  Key artists car
 ("readings", "ambient", "fit", "forecast", "band", "threshold", "crossing", "crossing-interval",
 "regime-start", "truth") so tests and tools can find them.
 
-The band: the forecast curve stretched in time about the newest reading so that it meets the
-threshold exactly at the ends of the forecast's 90 % crossing interval (eta_lo_s, eta_hi_s),
-T_band(t) = T(t_last + (t - t_last) * eta / eta_bound); where the interval has no upper end the
-band reaches the value now (it may never get there).  It is the crossing interval drawn as a
-region, consistent with the numbers printed beside it.
+The curves drawn (the fit, the forecast and its band) are rebuilt in ``curves.py``.
 """
 
 from __future__ import annotations
 
 import io
 import logging
-import math
 from datetime import UTC, datetime
-from typing import Any, Protocol
 
 import numpy as np
+from thermeta.daemon.states import Side
 from thermeta.daemon.units import UNIT_SIGN
+from thermeta.daemon.views.curves import SeriesLike, band, model_curve
 from thermeta.predictors.result import Forecast
 
 log = logging.getLogger("thermeta.plot")
@@ -44,118 +40,6 @@ C_READ, C_FIT, C_BAND, C_THR, C_AMB, C_REG, C_TRUTH = (
 )
 
 
-class SeriesLike(Protocol):
-    t: np.ndarray
-    y: np.ndarray
-
-
-# ---------------------------------------------------------------------------------------------
-# the model curve
-# ---------------------------------------------------------------------------------------------
-
-
-def _air_curve(p: dict[str, float], t_last: float, amb_t, amb_y):
-    """The ambient over time: the measured series up to its end, its own fit beyond."""
-
-    def air(t: np.ndarray) -> np.ndarray:
-        t = np.asarray(t, float)
-        future = p["air_ambient"] + (p["air_value_now"] - p["air_ambient"]) * np.exp(
-            -p["air_k_per_s"] * np.clip(t - t_last, 0.0, None)
-        )
-        if amb_t is None or len(amb_t) == 0:
-            return future
-        from thermeta.predictors.cleaning import clean
-
-        cl = clean(np.asarray(amb_t, float), np.asarray(amb_y, float))  # as the forecast did
-        at, ay = cl.t, cl.y
-        past = np.interp(t, at, ay)
-        return np.where(t <= at[-1], past, future)
-
-    return air
-
-
-def model_curve(fc: Forecast, t: np.ndarray, series: Any = None) -> np.ndarray | None:
-    """The fitted and forecast curve of ``fc`` at epoch times ``t`` (None if it cannot be drawn).
-
-    Uses the predictors' own ``predict`` when available; otherwise rebuilds the curve from
-    ``fc.params`` (see the board note of the forecast core for the keys).
-    """
-    t = np.asarray(t, float)
-    mine = _rebuilt_curve(fc, t, series)
-    try:
-        from thermeta.predictors import predict  # type: ignore[attr-defined]
-    except ImportError:
-        return mine
-    try:
-        theirs = np.asarray(predict(fc, t), float)
-    except (TypeError, ValueError, KeyError):
-        return mine
-    if theirs.shape != t.shape:
-        return mine
-    if mine is None:
-        return theirs if np.isfinite(theirs).any() else None
-    # the predictors' own values where they give one (NaN where the curve needs the fit object)
-    return np.where(np.isfinite(theirs), theirs, mine)
-
-
-def _rebuilt_curve(fc: Forecast, t: np.ndarray, series: Any) -> np.ndarray | None:
-    """The curve rebuilt from ``fc.params`` (and the series, for a measured ambient)."""
-    p = fc.params or {}
-    if not fc.ok:
-        return None
-    if "amplitude" in p:
-        # T(t) = Ta + A e^(-k (t - t_first))
-        return p["ambient"] + p["amplitude"] * np.exp(-p["k_per_s"] * (t - p["t_first"]))
-    if "T0" in p and "air_ambient" in p and fc.t_last is not None:
-        # dT/dt = -k (T - Ta(t)), stepped exactly on a fine grid from the fitted start T0
-        air = _air_curve(
-            p, fc.t_last, getattr(series, "ambient_t", None), getattr(series, "ambient_y", None)
-        )
-        k = p["k_per_s"]
-        t0 = p["t_first"]
-        grid = np.linspace(t0, max(float(t.max()), t0 + 1.0), 2000)
-        h = grid[1] - grid[0]
-        ta = air(grid[:-1] + 0.5 * h)
-        decay = math.exp(-k * h)
-        T = np.empty(grid.size)
-        T[0] = p["T0"]
-        for i in range(grid.size - 1):
-            # T_{i+1} = Ta + (T_i - Ta) e^(-k h), Ta held at the step's midpoint value
-            T[i + 1] = ta[i] + (T[i] - ta[i]) * decay
-        return np.interp(t, grid, T, left=np.nan)
-    if "biot" in p and fc.model in ("slab", "cylinder", "sphere"):
-        return _conduction_curve(fc, t, series)
-    if fc.k_per_s and fc.ambient is not None and fc.value_now is not None and fc.t_last is not None:
-        return fc.ambient + (fc.value_now - fc.ambient) * np.exp(-fc.k_per_s * (t - fc.t_last))
-    return None
-
-
-def _conduction_curve(fc: Forecast, t: np.ndarray, series: Any) -> np.ndarray | None:
-    amb_t, amb_y = getattr(series, "ambient_t", None), getattr(series, "ambient_y", None)
-    if fc.ambient_mode != "measured" or amb_t is None:
-        from thermeta.predictors.conduction_series import theta_centre
-
-        if fc.ambient is None:
-            return None
-        # T = Ta + (Ti - Ta) theta_centre(a (t - t0), Bi), constant ambient
-        fo = np.clip(fc.params["a_per_s"] * (t - fc.params["t0_s"]), 0.0, None)
-        return fc.ambient + (fc.params["Ti"] - fc.ambient) * theta_centre(
-            fo, fc.params["biot"], fc.model
-        )
-    # A measured ambient enters through a superposition over its history: refit the same cleaned
-    # readings with the conduction model (what the forecast did) to get its curve.
-    from thermeta.predictors.cleaning import clean
-    from thermeta.predictors.conduction import fit_conduction
-
-    cl = clean(np.asarray(series.t, float), np.asarray(series.y, float))
-    air = clean(np.asarray(amb_t, float), np.asarray(amb_y, float))
-    sel = cl.t >= (fc.regime_start if fc.regime_start is not None else -np.inf)
-    fit = fit_conduction(cl.t[sel], cl.y[sel], fc.model, ambient_t=air.t, ambient_y=air.y)
-    if not fit.ok:
-        return None
-    return fit.predict(t)
-
-
 # ---------------------------------------------------------------------------------------------
 # the figure
 # ---------------------------------------------------------------------------------------------
@@ -170,6 +54,11 @@ def _to_dates(t: np.ndarray) -> np.ndarray:
     import matplotlib.dates as mdates
 
     return np.asarray(t, float) / 86400.0 + mdates.date2num(datetime(1970, 1, 1, tzinfo=UTC))
+
+
+def _to_date(t: float) -> float:
+    """One epoch time as a matplotlib date number."""
+    return float(_to_dates(np.asarray(t, float)))
 
 
 def _span_end(fc: Forecast, t_last: float, span_s: float) -> float:
@@ -253,12 +142,12 @@ def forecast_figure(
         ax.plot(D(t_fit), conv(fit_y), "-", lw=2.0, color=C_FIT, label="fitted curve", gid="fit")
     if fc_y is not None:
         ax.plot(D(t_fc), conv(fc_y), "--", lw=2.0, color=C_FIT, label="forecast", gid="forecast")
-        band = _band(fc, t_fc, series)
-        if band is not None:
+        region = band(fc, t_fc, series)
+        if region is not None:
             ax.fill_between(
                 D(t_fc),
-                conv(band[0]),
-                conv(band[1]),
+                conv(region[0]),
+                conv(region[1]),
                 color=C_BAND,
                 alpha=0.35,
                 lw=0,
@@ -275,7 +164,7 @@ def forecast_figure(
     )
     if fc.regime_start is not None and fc.regime_start > t_first:
         ax.axvline(
-            D(fc.regime_start),
+            _to_date(fc.regime_start),
             color=C_REG,
             lw=1.0,
             ls=":",
@@ -285,7 +174,7 @@ def forecast_figure(
     cross = fc.crossing_t
     if cross is not None and fc.eta_s and fc.eta_s > 0:
         ax.plot(
-            [D(cross)],
+            [_to_date(cross)],
             [conv(fc.threshold)],
             "X",
             ms=11,
@@ -296,7 +185,7 @@ def forecast_figure(
         )
         ax.annotate(
             f"crosses {local_clock(cross)}\nin {human_duration(fc.eta_s)}",
-            (D(cross), conv(fc.threshold)),
+            (_to_date(cross), conv(fc.threshold)),
             textcoords="offset points",
             xytext=(-10, 10),
             ha="right",
@@ -306,7 +195,7 @@ def forecast_figure(
         if fc.eta_lo_s is not None:
             hi = t_last + fc.eta_hi_s if fc.eta_hi_s is not None else t_end
             ax.plot(
-                [D(t_last + fc.eta_lo_s), D(hi)],
+                [_to_date(t_last + fc.eta_lo_s), _to_date(hi)],
                 [conv(fc.threshold)] * 2,
                 "-",
                 lw=5,
@@ -323,7 +212,7 @@ def forecast_figure(
     ax.set_xlabel(f"local time ({day})")
     ax.set_ylabel(f"temperature ({sign})")
     ax.grid(True, alpha=0.3)
-    ax.set_xlim(D(t_first), D(t_end))
+    ax.set_xlim(_to_date(t_first), _to_date(t_end))
     context = [c for c in (fit_y, fc_y) if c is not None]
     if amb_t is not None and amb_y is not None and len(amb_y) >= 7:
         context.append(np.percentile(np.asarray(amb_y, float), [2.0, 98.0]))
@@ -338,8 +227,8 @@ def forecast_figure(
 def _robust_ylim(ax, readings: np.ndarray, keep: list) -> None:
     """Scale the y axis to the bulk of the readings and the curves, so one spike (a probe lifted
     out, a loose contact) does not flatten the picture; say how many readings fall outside."""
-    vals = [np.asarray(v, float).ravel() for v in keep]
-    vals = np.concatenate(vals) if vals else np.zeros(0)
+    parts = [np.asarray(v, float).ravel() for v in keep]
+    vals = np.concatenate(parts) if parts else np.zeros(0)
     vals = vals[np.isfinite(vals)]
     r = np.asarray(readings, float)
     r = r[np.isfinite(r)]
@@ -375,27 +264,6 @@ def _robust_ylim(ax, readings: np.ndarray, keep: list) -> None:
             fontsize=8,
             color="#555555",
         )
-
-
-def _band(fc: Forecast, t_fc: np.ndarray, series: Any) -> tuple[np.ndarray, np.ndarray] | None:
-    """Forecast curve stretched in time so it meets the threshold at eta_lo_s and eta_hi_s."""
-    if not fc.eta_s or fc.eta_s <= 0 or fc.t_last is None or fc.eta_lo_s is None:
-        return None
-    t_last = fc.t_last
-
-    def stretched(bound_s: float | None) -> np.ndarray | None:
-        if bound_s is None:  # unbounded: it may stay where it is
-            return np.full(t_fc.shape, float(model_curve(fc, np.array([t_last]), series)[0]))
-        if bound_s <= 0:
-            return None
-        out = model_curve(fc, t_last + (t_fc - t_last) * fc.eta_s / bound_s, series)
-        return out
-
-    fast = stretched(max(fc.eta_lo_s, 1e-6))
-    slow = stretched(fc.eta_hi_s)
-    if fast is None or slow is None:
-        return None
-    return np.minimum(fast, slow), np.maximum(fast, slow)
 
 
 def _summary(fc: Forecast, sign: str, conv) -> str:
@@ -491,7 +359,7 @@ def item_series(store, cfg, *, history_s: float | None = None):
     return _Series(t, y, at, ay)
 
 
-def item_forecast(series, cfg, *, limit: str | None = None, prior=None) -> Forecast:
+def item_forecast(series, cfg, *, limit: Side | None = None, prior=None) -> Forecast:
     """Refit the item as the service does (the refit's own arguments: model, ambient mode and
     its doubt, window, limit side, the learned prior), in degC."""
     from thermeta.daemon.refit.rounds import forecast_kwargs

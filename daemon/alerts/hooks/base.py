@@ -1,8 +1,12 @@
-"""The one base of every alert hook, and the factory from ``[[hook]]`` tables.
+"""The one base of every alert hook and of its ``[[hook]]`` table, and the table of kinds.
 
 A hook takes one alert (the JSON dict of :mod:`thermeta.daemon.alerts.message`) and delivers it,
-or raises :class:`~thermeta.daemon.errors.DeliveryError`; the outbox worker retries it later.
+or raises :class:`~thermeta.storage.errors.DeliveryError`; the outbox worker retries it later.
 Hooks never run on the ingest or refit threads: each has its own outbox worker.
+
+Each kind is one module beside this one: its config model (a :class:`HookConfig` with the
+kind's own keys) and its :class:`Hook`, which names that model.  ``hooks/__init__.py`` puts every
+kind in :data:`KINDS`, where the config loader and :func:`make_hook` find them.
 """
 
 from __future__ import annotations
@@ -10,24 +14,59 @@ from __future__ import annotations
 import fnmatch
 from abc import ABC, abstractmethod
 from collections.abc import Callable
-from typing import Any
+from typing import Any, ClassVar, Generic, TypeVar
 
-from thermeta.daemon.errors import DeliveryError
+from pydantic import Field
+from thermeta.daemon.settings.checks import Checks, Positive, Table, Text, Texts, show
+from thermeta.daemon.states import AlertLevel
 
-__all__ = ["DeliveryError", "Hook", "hook_key", "make_hook"]
+Publish = Callable[..., Any]
+PngFor = Callable[[dict[str, Any]], bytes | None]
 
 
-class Hook(ABC):
-    kind = "hook"
+class HookConfig(Table):
+    """What every ``[[hook]]`` has: its kind, a name, and filters by item and level."""
 
-    def __init__(self, cfg: Any, key: str):
+    kind: str
+    name: Text | None = None  # the hook's name in the outbox; default kind-position
+    items: Texts | None = None  # item names, * and ? allowed; None: every item
+    levels: Texts | None = None  # alert levels; None: every level
+
+    def check(self, checks: Checks) -> None:
+        for lv in self.levels or ():
+            if lv not in tuple(AlertLevel):
+                checks.add("levels", f"unknown level {show(lv)} (one of {', '.join(AlertLevel)})")
+
+
+class TimedHookConfig(HookConfig):
+    """A hook that waits for its receiver: at most ``timeout`` seconds a delivery."""
+
+    timeout_s: Positive = Field(10.0, validation_alias="timeout")
+
+
+C = TypeVar("C", bound=HookConfig)
+
+
+class Hook(ABC, Generic[C]):
+    kind: ClassVar[str]
+    config: ClassVar[type[HookConfig]]  # the kind's [[hook]] table
+
+    def __init__(
+        self,
+        cfg: C,
+        key: str,
+        *,
+        publish: Publish | None = None,
+        png_for: PngFor | None = None,
+    ):
         self.cfg = cfg
         self.key = key
+        self.publish = publish  # the service's MQTT publish (the mqtt kind uses it)
+        self.png_for = png_for  # the item's picture for an alert (the email kind attaches it)
 
     def wants(self, alert: dict[str, Any]) -> bool:
         """Whether this hook is limited to other items or levels (item names may use * and ?)."""
-        items = getattr(self.cfg, "items", None)
-        levels = getattr(self.cfg, "levels", None)
+        items, levels = self.cfg.items, self.cfg.levels
         if items is not None and not any(fnmatch.fnmatchcase(alert["item"], pat) for pat in items):
             return False
         return levels is None or alert["level"] in levels
@@ -44,33 +83,21 @@ class Hook(ABC):
         return f"<{self.__class__.__name__} {self.key}>"
 
 
-def hook_key(index: int, cfg: Any) -> str:
+# kind -> its Hook class, in the order the config's messages list them (hooks/__init__.py)
+KINDS: dict[str, type[Hook[Any]]] = {}
+
+
+def hook_key(index: int, cfg: HookConfig) -> str:
     """The hook's name in the outbox: its ``name`` or kind and position, e.g. ``webhook-1``."""
     return cfg.name or f"{cfg.kind}-{index + 1}"
 
 
 def make_hook(
     index: int,
-    cfg: Any,
+    cfg: HookConfig,
     *,
-    publish: Callable[..., Any] | None = None,
-    png_for: Callable[[dict[str, Any]], bytes | None] | None = None,
-) -> Hook:
-    key = hook_key(index, cfg)
-    if cfg.kind == "webhook":
-        from thermeta.daemon.alerts.hooks.webhook import WebhookHook
-
-        return WebhookHook(cfg, key)
-    if cfg.kind == "email":
-        from thermeta.daemon.alerts.hooks.email import EmailHook
-
-        return EmailHook(cfg, key, png_for=png_for)
-    if cfg.kind == "exec":
-        from thermeta.daemon.alerts.hooks.exec import ExecHook
-
-        return ExecHook(cfg, key)
-    if cfg.kind == "mqtt":
-        from thermeta.daemon.alerts.hooks.mqtt import MqttHook
-
-        return MqttHook(cfg, key, publish=publish)
-    raise ValueError(f"unknown hook kind {cfg.kind!r}")
+    publish: Publish | None = None,
+    png_for: PngFor | None = None,
+) -> Hook[Any]:
+    """The hook of the ``index``-th ``[[hook]]`` table."""
+    return KINDS[cfg.kind](cfg, hook_key(index, cfg), publish=publish, png_for=png_for)

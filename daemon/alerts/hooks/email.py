@@ -11,13 +11,45 @@ from __future__ import annotations
 import os
 import smtplib
 import ssl
-from collections.abc import Callable
 from email.message import EmailMessage
 from email.utils import formatdate, make_msgid
-from typing import Any
+from typing import Annotated, Any, Literal
 
-from thermeta.daemon.alerts.hooks.base import Hook
-from thermeta.daemon.errors import DeliveryError
+from pydantic import AfterValidator, BeforeValidator, Field
+from thermeta.daemon.alerts.hooks.base import Hook, TimedHookConfig
+from thermeta.daemon.settings.checks import EnvName, PositiveInt, Text, problem, show
+from thermeta.storage.errors import DeliveryError
+
+TlsMode = Literal["starttls", "implicit", "none"]
+PORTS = {"starttls": 587, "implicit": 465, "none": 25}  # each TLS mode's usual port
+
+
+def _address(v: str) -> str:
+    if "@" not in v:
+        raise problem(f"not an email address: {show(v)}")
+    return v
+
+
+def _recipients(v: Any) -> tuple[str, ...]:
+    if isinstance(v, str) and v.strip():
+        return (v,)
+    if isinstance(v, (list, tuple)) and v and all(isinstance(s, str) and s.strip() for s in v):
+        return tuple(v)
+    raise problem("must be an address or a list of them")
+
+
+class EmailConfig(TimedHookConfig):
+    """``[[hook]]`` with ``kind = "email"``."""
+
+    kind: Literal["email"] = "email"
+    host: Text
+    tls: TlsMode = "starttls"
+    port: PositiveInt = Field(default_factory=lambda d: PORTS.get(d["tls"], 587))
+    username_env: EnvName | None = None
+    password_env: EnvName | None = None
+    from_addr: Annotated[Text, AfterValidator(_address)] = Field(validation_alias="from")
+    to: Annotated[tuple[str, ...], BeforeValidator(_recipients)]
+
 
 FIELDS = (
     ("value_now", "value now"),
@@ -49,14 +81,9 @@ def body_text(alert: dict[str, Any]) -> str:
     return "\n".join(lines)
 
 
-class EmailHook(Hook):
+class EmailHook(Hook[EmailConfig]):
     kind = "email"
-
-    def __init__(
-        self, cfg: Any, key: str, png_for: Callable[[dict[str, Any]], bytes | None] | None = None
-    ):
-        super().__init__(cfg, key)
-        self.png_for = png_for
+    config = EmailConfig
 
     def message(self, alert: dict[str, Any]) -> EmailMessage:
         msg = EmailMessage()

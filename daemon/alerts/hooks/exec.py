@@ -10,10 +10,31 @@ from __future__ import annotations
 import json
 import os
 import subprocess
-from typing import Any
+from typing import Annotated, Any, Literal
 
-from thermeta.daemon.alerts.hooks.base import Hook
-from thermeta.daemon.errors import DeliveryError
+from pydantic import AfterValidator, BeforeValidator
+from thermeta.daemon.alerts.hooks.base import Hook, TimedHookConfig
+from thermeta.daemon.settings.checks import Texts, problem
+from thermeta.storage.errors import DeliveryError
+
+
+def _no_shell(v: Any) -> Any:
+    if isinstance(v, str):
+        raise problem('must be a list such as ["/usr/local/bin/prog", "arg"] (no shell is used)')
+    return v
+
+
+def _not_empty(v: tuple[str, ...]) -> tuple[str, ...]:
+    if not v:
+        raise problem("must not be empty")
+    return v
+
+
+class ExecConfig(TimedHookConfig):
+    """``[[hook]]`` with ``kind = "exec"``."""
+
+    kind: Literal["exec"] = "exec"
+    command: Annotated[Texts, BeforeValidator(_no_shell), AfterValidator(_not_empty)]
 
 
 def alert_env(alert: dict[str, Any]) -> dict[str, str]:
@@ -25,8 +46,9 @@ def alert_env(alert: dict[str, Any]) -> dict[str, str]:
     return out
 
 
-class ExecHook(Hook):
+class ExecHook(Hook[ExecConfig]):
     kind = "exec"
+    config = ExecConfig
 
     def deliver(self, alert: dict[str, Any]) -> None:
         env = dict(os.environ)

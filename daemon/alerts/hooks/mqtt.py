@@ -4,21 +4,33 @@ through the daemon's own broker connection."""
 from __future__ import annotations
 
 import json
-from collections.abc import Callable
-from typing import Any
+from typing import Annotated, Any, Literal
 
-from thermeta.daemon.alerts.hooks.base import Hook
-from thermeta.daemon.errors import DeliveryError
+from pydantic import AfterValidator
+from thermeta.daemon.alerts.hooks.base import Hook, HookConfig
+from thermeta.daemon.settings.checks import Text, problem
+from thermeta.storage.errors import DeliveryError
+
+
+def _no_wildcards(prefix: str) -> str:
+    if any(ch in prefix for ch in "+#"):
+        raise problem("must not contain + or #")
+    return prefix.rstrip("/")
+
+
+class MqttConfig(HookConfig):
+    """``[[hook]]`` with ``kind = "mqtt"``."""
+
+    kind: Literal["mqtt"] = "mqtt"
+    topic_prefix: Annotated[Text, AfterValidator(_no_wildcards)] = "thermeta/alert"
+
 
 PUBLISH_WAIT_S = 10.0
 
 
-class MqttHook(Hook):
+class MqttHook(Hook[MqttConfig]):
     kind = "mqtt"
-
-    def __init__(self, cfg: Any, key: str, publish: Callable[..., Any] | None = None):
-        super().__init__(cfg, key)
-        self.publish = publish
+    config = MqttConfig
 
     def topic(self, alert: dict[str, Any]) -> str:
         return f"{self.cfg.topic_prefix}/{alert['item']}"

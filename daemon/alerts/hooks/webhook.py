@@ -11,13 +11,38 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import string
 import urllib.error
 import urllib.request
-from typing import Any
+from typing import Annotated, Any, Literal
 
-from thermeta.daemon.alerts.hooks.base import Hook
-from thermeta.daemon.errors import DeliveryError
+from pydantic import AfterValidator, BeforeValidator, Field
+from thermeta.daemon.alerts.hooks.base import Hook, TimedHookConfig
+from thermeta.daemon.settings.checks import EnvName, Text, problem, show
+from thermeta.storage.errors import DeliveryError
+
+
+def _http_url(url: str) -> str:
+    if not re.match(r"^https?://[^/\s]+", url):
+        raise problem(f"must be an http:// or https:// URL, got {show(url)}")
+    return url
+
+
+def _string_table(v: Any) -> Any:
+    if not (isinstance(v, dict) and all(isinstance(x, str) for x in v.values())):
+        raise problem("must be a table of strings")
+    return v
+
+
+class WebhookConfig(TimedHookConfig):
+    """``[[hook]]`` with ``kind = "webhook"``."""
+
+    kind: Literal["webhook"] = "webhook"
+    url: Annotated[Text, AfterValidator(_http_url)]
+    headers: Annotated[dict[str, str], BeforeValidator(_string_table)] = Field(default_factory=dict)
+    body_template: Text | None = None
+    token_env: EnvName | None = None
 
 
 def render_template(template: str, alert: dict[str, Any]) -> tuple[bytes, str]:
@@ -38,8 +63,9 @@ def render_template(template: str, alert: dict[str, Any]) -> tuple[bytes, str]:
     return body.encode(), "text/plain; charset=utf-8"
 
 
-class WebhookHook(Hook):
+class WebhookHook(Hook[WebhookConfig]):
     kind = "webhook"
+    config = WebhookConfig
 
     def request(self, alert: dict[str, Any]) -> urllib.request.Request:
         if self.cfg.body_template:
