@@ -1,14 +1,23 @@
-"""Rolling refits: each item with new readings is refitted on its recent window, its forecast
-stored, published (retained) and handed to listeners (alerts).
+"""Rolling refits: each item with new readings is refitted on its recent window, its levels
+judged, its forecast stored, published (retained) and handed to listeners.
 
-States, judged in this order:
+One probe, one stored series, one window of readings; each of the item's levels (its limits,
+targets and a schedule's stages, ``daemon/levels/``) gets the forecast of its own threshold from
+that window, and is judged from it (``judging.py``: the states and their order).  Judges (the
+alert rules) run before the forecast is stored and published and write the states they hold
+into it, so what is shown and what is alerted are one decision.
 
-    stale        no reading for longer than the item's silence limit
-    crossed      the value is already past the threshold, on the limit's side (``limit``: upper,
-                 lower, or by default the side opposite the item's first stored reading)
-    learning     too few readings to fit (or the fit gave no answer yet)
-    approaching  a crossing is forecast within the item's horizon
-    steady       no crossing within the horizon
+Sides: a level's configured ``side``, or (``auto``) the side opposite the live value when the
+level is first judged, recorded in the store (``level_sides``) and never changed afterwards: an
+old reading backfilled later cannot flip it.
+
+Episodes (``storage/episodes.py``): opened by a start message or ``thermeta start``, or, for an
+item with a ``start`` temperature (a schedule sets one), when the probe passes it heading for
+its targets; closed by an end message or ``thermeta end``, when every target is reached, or when
+the probe goes back past the start by :data:`START_BAND_C` (the next batch).  An episode's
+``Tally`` (readings since its start) keeps when each target was reached, the time and
+degree-minutes beyond each limit and the mean kinetic temperature; its summary is the episode's
+record.
 
 One item's failed fit (an exception, or a result with ``ok=False``) is logged and published as
 such; the other items go on.
@@ -18,12 +27,14 @@ An item with a ``defrost_topic`` gets its newest defrost in the forecast (``"def
 defrost hold.
 
 Priors (``predictors/prior.py``, stored in ``storage/priors.py``): each item teaches its prior
-class (item key ``prior_class``, default its own name) and its lumped fits (fitted or given
-ambient) use the class's prior.  The rule for an episode: a stretch of readings counts once, at
-the first refit whose fit WITHOUT the prior pins k (and a fitted ambient) down
+class (the open episode's class, else the item key ``prior_class``, default its own name) and
+its lumped fits (fitted or given ambient) use the class's prior.  A stretch of readings counts
+once, at the first refit whose fit WITHOUT the prior pins k (and a fitted ambient) down
 (``prior.learnable``); the item's next lesson can only come from a fit whose readings all start
-after that one's newest reading (a change of the surroundings cut the window, or the window
-slid past).  So lessons never share readings, and the prior never learns from itself.
+after that one's newest reading, and within an open episode only once.  A prior is never used on
+the episode it learned from: after a lesson, the item's fits keep the prior as it was before it
+until their window no longer holds the taught readings and the episode (if one is open) has
+ended.
 """
 
 from __future__ import annotations
@@ -42,11 +53,15 @@ from thermeta.daemon.clock import Clock
 from thermeta.daemon.config import AMBIENT_SUFFIX, DEFROST_SUFFIX, Config, ItemConfig
 from thermeta.daemon.ingest.defrost import defrost_status
 from thermeta.daemon.ingest.writer import Activity
-from thermeta.daemon.states import AmbientMode, ItemState, Side
-from thermeta.daemon.units import shown_in, to_item_units
+from thermeta.daemon.levels.spec import Level, auto_side, levels_of
+from thermeta.daemon.levels.tally import Excursion, Tally
+from thermeta.daemon.refit.judging import judge_item
+from thermeta.daemon.states import AmbientMode, EpisodeSource, ItemState, Side, predictor_side
+from thermeta.daemon.units import from_celsius, shown_in, to_celsius
 from thermeta.predictors import forecast
 from thermeta.predictors.prior import Prior, learn, learnable
-from thermeta.predictors.result import Forecast, rfc3339
+from thermeta.predictors.result import Forecast
+from thermeta.storage.episodes import Episode, EpisodeStore
 from thermeta.storage.priors import PriorStore
 from thermeta.storage.store import Store
 
@@ -57,11 +72,14 @@ SAVE_EVERY = 50  # forecasts per store transaction
 # How far back a defrost signal is read beyond the longest hold (max + recovery): a start older
 # than that holds nothing any more, and a signal repeated at least this often is read right.
 DEFROST_LOOKBACK_S = 3600.0
+# An episode opened by the probe passing its start closes when the probe goes back past the
+# start by this much (the next batch), so readings wandering about the start do not flap.
+START_BAND_C = 3.0
 
 
 @dataclass(frozen=True)
 class ForecastUpdate:
-    """One item's refit, as listeners (the alerts, the demo) get it."""
+    """One item's refit, as judges (the alert rules) and listeners (the demo) get it."""
 
     item: ItemConfig  # the item's config (a wildcard item's: made concrete for this item)
     state: ItemState
@@ -77,25 +95,15 @@ Listener = Callable[[ForecastUpdate], None]
 Publish = Callable[[str, str], None]
 
 
-def limit_side(cfg: ItemConfig, first_value_c: float | None) -> Side | None:
-    """Which side of the threshold is past the limit: the configured one, or else the side the
-    item's first stored reading was NOT on (a probe starting below its threshold has an upper
-    limit; a hot tray starting above its target, a lower one)."""
-    if cfg.limit in ("upper", "lower"):
-        return cfg.limit
-    if first_value_c is None or first_value_c == cfg.threshold_c:
-        return None
-    return "upper" if first_value_c < cfg.threshold_c else "lower"
-
-
 def forecast_kwargs(
     cfg: ItemConfig,
-    limit: Side | None,
+    side: Side | None,
     ambient_t: np.ndarray | None = None,
     ambient_y: np.ndarray | None = None,
 ) -> dict[str, Any]:
-    """The forecast's arguments for one item, as the refit passes them (the picture of the item
-    passes the same, so it shows the forecast the alerts were made from); the prior apart."""
+    """The forecast's arguments for one item and side, as the refit passes them (the picture of
+    the item passes the same, so it shows the forecast the alerts were made from); the prior
+    apart."""
     kw: dict[str, Any] = {
         "model": cfg.model,
         "ambient": cfg.ambient_c,
@@ -103,7 +111,7 @@ def forecast_kwargs(
         "ambient_y": ambient_y,
         "window_s": cfg.window_s,
         "min_points": cfg.min_points,
-        "limit": limit,
+        "limit": predictor_side(side),
         "shown": shown_in(cfg.unit),
     }  # the warnings' temperatures
     if cfg.ambient is not None and cfg.ambient_sd_c is not None:
@@ -116,30 +124,23 @@ def uses_prior(cfg: ItemConfig, measured: bool) -> bool:
     return not measured and cfg.model in ("lumped", "auto")
 
 
-def classify(
-    fc: Forecast, now: float, last_ts: float | None, cfg: ItemConfig, limit: Side | None
-) -> ItemState:
-    """The item's state from its forecast (see the module docstring for the order)."""
-    if last_ts is None or (fc.n_points == 0 and fc.value_now is None):
-        return ItemState.LEARNING
-    if now - last_ts > cfg.silence_s:
-        return ItemState.STALE
-    thr = cfg.threshold_c
-    v = fc.value_now
-    if v is not None and ((limit == "upper" and v >= thr) or (limit == "lower" and v <= thr)):
-        return ItemState.CROSSED
-    if limit is None and fc.ok and fc.eta_s == 0:
-        return ItemState.CROSSED
-    if not fc.ok:
-        return ItemState.LEARNING
-    if fc.eta_s is not None and fc.eta_s > 0:
-        remaining_s = fc.eta_s - max(0.0, now - (fc.t_last or now))
-        if remaining_s <= cfg.horizon_s:
-            return ItemState.APPROACHING
-    return ItemState.STEADY
+def new_tally(
+    levels: tuple[Level, ...], sides: dict[str, Side | None], since: float | None
+) -> Tally:
+    """A tally watching each limit (time beyond) and target (when reached) whose side is known."""
+    tl = Tally(since_s=since)
+    for lv in levels:
+        side = sides.get(lv.name)
+        if side is None:
+            continue
+        if lv.is_target:
+            tl.targets[lv.name] = (lv.threshold_c, side)
+        else:
+            tl.excursions[lv.name] = Excursion(lv.threshold_c, side)
+    return tl
 
 
-@dataclass(frozen=True)
+@dataclass
 class _Refitted:
     """One item's refit, between the fit and the store (saved in chunks) and the listeners."""
 
@@ -165,10 +166,10 @@ class Refitter:
         self.clock = clock
         self.activity = activity
         self.publish = publish
-        self.listeners: list[Listener] = []
+        self.judges: list[Listener] = []  # before storing and publishing; may hold the states
+        self.listeners: list[Listener] = []  # after publishing
         self.previous: dict[str, dict[str, Any]] = {}
         self.item_ids: dict[str, int] = {}
-        self.first_values: dict[str, float] = {}  # degC of each item's oldest stored reading
         self._lock = threading.Lock()
         self._error_logged: dict[str, float] = {}
         self.runs = 0
@@ -177,7 +178,15 @@ class Refitter:
         self.prior_store = PriorStore(store)
         self.priors: dict[str, Prior] = {}  # by prior class, loaded on first use
         self.learned_until: dict[str, float] = {}  # by item
+        self.held: dict[str, tuple[Prior, float, int | None]] = {}  # by item (module docstring)
         self.lessons = 0
+        self.episodes = EpisodeStore(store)
+        self.open_eps: dict[str, Episode] = {}
+        self.last_eps: dict[str, Episode | None] = {}  # each item's newest closed episode
+        self.tallies: dict[str, tuple[int, Tally]] = {}  # by item: (episode id, its tally)
+        self.sides: dict[str, dict[str, Side]] = {}  # by item: the recorded sides
+        self.scanned: dict[str, tuple[float, float]] = {}  # by item: the last reading scanned
+        self.fits = 0  # forecasts made (one per distinct threshold and side of an item)
 
     def load_previous(self) -> None:
         """Pick up each item's last forecast from the store (after a restart)."""
@@ -191,6 +200,7 @@ class Refitter:
             now = self.clock.now()
             dirty = self.activity.take_dirty()
             items, last = self.activity.snapshot()
+            self._load_episodes()
             done: dict[str, ItemState] = {}
             pending: list[_Refitted] = []
             for name, cfg in items.items():
@@ -220,11 +230,31 @@ class Refitter:
             self.last_run_s = time.monotonic() - t0
             return done
 
+    def _load_episodes(self) -> None:
+        """The open episodes (``thermeta start`` and messages change them beside the refit)."""
+        try:
+            opened = self.episodes.open_episodes()
+        except Exception:  # noqa: BLE001 - judged with the episodes known so far
+            log.exception("reading the open episodes failed")
+            return
+        for name, ep in self.open_eps.items():
+            if name not in opened or opened[name].id != ep.id:
+                self.last_eps.pop(name, None)  # closed beside us: read it again when needed
+        self.open_eps = opened
+
     def _flush(self, pending: list[_Refitted], now: float, done: dict[str, ItemState]) -> None:
-        """Store a chunk of forecasts in one transaction, then publish them (one commit per item
-        would cost an fsync each and hold the writer's lock as often)."""
+        """Judge, then store a chunk of forecasts in one transaction, then publish them (one
+        commit per item would cost an fsync each and hold the writer's lock as often)."""
         if not pending:
             return
+        for r in pending:
+            update = ForecastUpdate(r.cfg, r.state, r.body, self.previous.get(r.name))
+            for judge in list(self.judges):
+                try:
+                    judge(update)
+                except Exception:  # noqa: BLE001 - published as judged; the next refit retries
+                    log.exception("judging %s failed", r.name)
+            r.state = ItemState(r.body.get("state") or r.state)
         try:
             self.store.save_forecasts(
                 [(r.item_id, now, r.state, r.body, r.last_ts) for r in pending]
@@ -237,7 +267,7 @@ class Refitter:
         pending.clear()
 
     def _refit(self, name: str, cfg: ItemConfig, now: float, last_ts: float | None) -> _Refitted:
-        """Fit one item; returns what to store and publish."""
+        """Fit one item's levels and judge them; returns what to store and publish."""
         item_id = self.item_ids.get(name) or self.store.item_id(name)
         if item_id is None:
             item_id = self.store.ensure_item(name, unit=cfg.unit, topic=cfg.topic, now=now)
@@ -255,26 +285,81 @@ class Refitter:
         mode: AmbientMode = (
             "measured" if amb_y is not None else ("known" if cfg.ambient is not None else "fitted")
         )
-        if name not in self.first_values:
-            first = self.store.first_reading(item_id)
-            if first is not None:
-                self.first_values[name] = first[1]
-        limit = limit_side(cfg, self.first_values.get(name))
-        cls = cfg.prior_class or name
-        prior = self._prior(cls) if uses_prior(cfg, mode == "measured") else None
-        kw = forecast_kwargs(cfg, limit, amb_t, amb_y)
+        levels = levels_of(cfg)
+        value_c = float(y[np.argmax(t)]) if len(rows) else None
+        sides = self._sides(name, cfg, levels, value_c, now)
+        episode = self._episode(name, cfg, levels, t, y, now)
+        cls = (episode.cls if episode is not None and episode.cls else None) or cfg.prior_class
+        cls = cls or name
+        prior = (
+            self._prior_for(name, cls, since, episode)
+            if uses_prior(cfg, mode == "measured")
+            else None
+        )
+        fcs: list[Forecast | None] = []
+        made: dict[tuple[float, Side | None], Forecast] = {}
+        for i, lv in enumerate(levels):
+            key = (lv.threshold_c, sides.get(lv.name))
+            if key not in made:
+                kw = forecast_kwargs(cfg, key[1], amb_t, amb_y)
+                made[key] = self._fit(name, cfg, mode, t, y, rows, lv.threshold_c, prior, kw)
+                if i == 0 and mode != "measured":
+                    self._learn_from(name, cls, made[key], prior, now, episode, t, y, lv, kw)
+            fcs.append(made[key])
+        tally = (
+            None
+            if episode is None
+            else self._episode_tally(name, levels, sides, episode, item_id, t)
+        )
+        period = None
+        if any(lv.budget_s is not None for lv in levels) and (
+            episode is None or episode.closed_at is not None
+        ):
+            period = self._period_tally(name, cfg, levels, sides, item_id, now)
+        state, body = judge_item(
+            name,
+            cfg,
+            levels,
+            fcs,
+            sides,
+            now,
+            last_ts,
+            check_every_s=self.config.fit.refit_every_s,
+            episode=episode,
+            tally=tally,
+            period_tally=period,
+        )
+        if episode is not None and tally is not None:
+            self._keep_record(name, cfg, levels, episode, tally, body)
+        if cfg.defrost_topic:
+            body["defrost"] = self._defrost(name, cfg, now)
+        if prior is not None and prior.n_episodes:
+            body["prior_class"] = cls
+        return _Refitted(name, cfg, item_id, state, body, last_ts)
+
+    def _fit(
+        self,
+        name: str,
+        cfg: ItemConfig,
+        mode: AmbientMode,
+        t: np.ndarray,
+        y: np.ndarray,
+        rows: list,
+        threshold_c: float,
+        prior: Prior | None,
+        kw: dict[str, Any],
+    ) -> Forecast:
+        """One forecast of the item's window for one threshold; a failure is a result."""
+        self.fits += 1
         try:
-            fc = self._predict(t, y, cfg.threshold_c, prior=prior, **kw)
+            fc = self._predict(t, y, threshold_c, prior=prior, **kw)
             if not fc.ok and len(rows) >= cfg.min_points:
                 self._log_error(name, "no forecast for %s: %s", name, fc.reason)
-            if mode != "measured":
-                self._maybe_learn(
-                    name, cls, fc, prior, now, lambda: self._predict(t, y, cfg.threshold_c, **kw)
-                )
+            return fc
         except Exception as exc:  # noqa: BLE001 - a failed fit is a result, not a crash
             self._log_error(name, "fit of %s raised %s: %s", name, exc.__class__.__name__, exc)
             fc = Forecast(
-                threshold=cfg.threshold_c,
+                threshold=threshold_c,
                 model=cfg.model,
                 ambient_mode=mode,
                 n_points=len(rows),
@@ -283,17 +368,219 @@ class Refitter:
             )
             if len(rows):
                 fc.t_last, fc.value_now = float(t.max()), float(y[np.argmax(t)])
-        state = classify(fc, now, last_ts, cfg, limit)
-        body = to_item_units(fc.to_dict(), cfg.unit)
-        body.update(item=name, state=state, updated_at=rfc3339(now), unit=cfg.unit, limit=limit)
-        if cfg.site:
-            body["site"] = cfg.site
-        if cfg.defrost_topic:
-            body["defrost"] = self._defrost(name, cfg, now)
-        if prior is not None and prior.n_episodes:
-            body["prior_class"] = cls
-        return _Refitted(name, cfg, item_id, state, body, last_ts)
+            return fc
 
+    # -- sides -----------------------------------------------------------------------------------
+    def _sides(
+        self,
+        name: str,
+        cfg: ItemConfig,
+        levels: tuple[Level, ...],
+        value_c: float | None,
+        now: float,
+    ) -> dict[str, Side | None]:
+        """Each level's side: configured, or recorded, or (first judged now) decided from the
+        live value and recorded; never re-derived from stored history."""
+        if name not in self.sides:
+            try:
+                self.sides[name] = {k: v for k, v in self.episodes.sides(name).items()}  # type: ignore[misc]
+            except Exception:  # noqa: BLE001 - decided again below, recorded when the store is back
+                log.exception("reading the sides of %s failed", name)
+                self.sides[name] = {}
+        known = self.sides[name]
+        out: dict[str, Side | None] = {}
+        for lv in levels:
+            if lv.side != "auto":
+                out[lv.name] = lv.side
+                continue
+            if lv.name not in known and value_c is not None:
+                side = auto_side(lv, from_celsius(value_c, cfg.unit))
+                if side is not None:
+                    try:
+                        side = self.episodes.decide_side(name, lv.name, side, now, value_c)  # type: ignore[assignment]
+                    except Exception:  # noqa: BLE001 - judged with it; recorded next time
+                        log.exception("recording the side of %s/%s failed", name, lv.name)
+                        out[lv.name] = side
+                        continue
+                    known[lv.name] = side  # type: ignore[assignment]
+            out[lv.name] = known.get(lv.name)
+        return out
+
+    # -- episodes --------------------------------------------------------------------------------
+    def _episode(
+        self,
+        name: str,
+        cfg: ItemConfig,
+        levels: tuple[Level, ...],
+        t: np.ndarray,
+        y: np.ndarray,
+        now: float,
+    ) -> Episode | None:
+        """The item's open episode (opened or closed here by its start temperature), else its
+        newest closed one (shown until the next starts), else None."""
+        ep = self.open_eps.get(name)
+        if cfg.start is not None and len(t):
+            try:
+                ep = self._by_probe(name, cfg, levels, t, y, ep)
+            except Exception:  # noqa: BLE001 - the episode waits for the next refit
+                log.exception("opening or closing an episode of %s failed", name)
+        if ep is not None:
+            return ep
+        if name not in self.last_eps:
+            try:
+                past = self.episodes.of_item(name)
+            except Exception:  # noqa: BLE001
+                log.exception("reading the episodes of %s failed", name)
+                return None
+            self.last_eps[name] = past[-1] if past else None
+        return self.last_eps[name]
+
+    def _by_probe(
+        self,
+        name: str,
+        cfg: ItemConfig,
+        levels: tuple[Level, ...],
+        t: np.ndarray,
+        y: np.ndarray,
+        ep: Episode | None,
+    ) -> Episode | None:
+        """Open an episode when the probe passes the start heading for the targets; close the
+        open one when it goes back past the start by START_BAND_C."""
+        start_c = to_celsius(float(cfg.start or 0.0), cfg.unit)
+        falling = any(lv.threshold_c < start_c for lv in levels if lv.is_target)
+        sign = 1.0 if falling else -1.0  # > 0: on the start's near side
+        last = self.episodes_floor(name, ep)
+        prev = self.scanned.get(name)
+        order = np.argsort(t, kind="stable")
+        for ti, vi in zip(t[order], y[order]):
+            ti, vi = float(ti), float(vi)
+            if prev is not None and ti <= prev[0]:
+                continue
+            if ep is not None and ep.closed_at is None:
+                if sign * (vi - start_c) >= START_BAND_C:
+                    self.episodes.end(name, ti, EpisodeSource.PROBE)
+                    ep.closed_at, ep.closed_by = ti, EpisodeSource.PROBE
+                    self.open_eps.pop(name, None)
+                    self.last_eps[name] = ep
+                    ep, last = None, ti
+            elif prev is not None and sign * (prev[1] - start_c) > 0 >= sign * (vi - start_c):
+                # t = t0 + (start - v0) / (v1 - v0) (t1 - t0)
+                at = prev[0] + (start_c - prev[1]) / (vi - prev[1]) * (ti - prev[0])
+                if at > last:
+                    eid = self.episodes.start(name, at, EpisodeSource.PROBE)
+                    ep = Episode(eid, name, None, None, at, EpisodeSource.PROBE)
+                    self.open_eps[name] = ep
+                    last = at
+                    log.info("%s: episode %d started at %.1f degC", name, eid, start_c)
+            prev = (ti, vi)
+        if prev is not None:
+            self.scanned[name] = prev
+        return ep
+
+    def episodes_floor(self, name: str, ep: Episode | None) -> float:
+        """The newest episode's start: a crossing of the start before it was already counted."""
+        if ep is not None:
+            return ep.opened_at
+        closed = self.last_eps.get(name)
+        if closed is None and name not in self.last_eps:
+            past = self.episodes.of_item(name)
+            closed = self.last_eps[name] = past[-1] if past else None
+        return -math.inf if closed is None else max(closed.opened_at, closed.closed_at or 0.0)
+
+    def _episode_tally(
+        self,
+        name: str,
+        levels: tuple[Level, ...],
+        sides: dict[str, Side | None],
+        ep: Episode,
+        item_id: int,
+        t: np.ndarray,
+    ) -> Tally:
+        """The episode's tally, folded forward from the readings since it was last brought up to
+        date (built from the store at its first use, e.g. after a restart)."""
+        kept = self.tallies.get(name)
+        want = {lv.name for lv in levels if sides.get(lv.name) is not None}
+        tl = kept[1] if kept is not None and kept[0] == ep.id else None
+        if tl is not None and set(tl.excursions) | set(tl.targets) != want:
+            tl = None  # a side was decided since: count again with it
+        if tl is None:
+            tl = new_tally(levels, sides, ep.opened_at)
+            self.tallies[name] = (ep.id, tl)
+        start = tl.last_t if tl.last_t is not None else ep.opened_at
+        if ep.closed_at is not None and tl.last_t is not None and tl.last_t >= ep.closed_at:
+            return tl
+        rows = self.store.recent_readings(item_id, since_ts=start, until_ts=ep.closed_at)
+        tl.add([r[0] for r in rows], [r[1] for r in rows])
+        return tl
+
+    def _period_tally(
+        self,
+        name: str,
+        cfg: ItemConfig,
+        levels: tuple[Level, ...],
+        sides: dict[str, Side | None],
+        item_id: int,
+        now: float,
+    ) -> Tally:
+        """The rolling period's tally (for budgets when no episode is open)."""
+        tl = new_tally(levels, sides, now - cfg.period_s)
+        rows = self.store.recent_readings(item_id, since_ts=now - cfg.period_s, until_ts=now)
+        tl.add([r[0] for r in rows], [r[1] for r in rows])
+        return tl
+
+    def _keep_record(
+        self,
+        name: str,
+        cfg: ItemConfig,
+        levels: tuple[Level, ...],
+        ep: Episode,
+        tally: Tally,
+        body: dict[str, Any],
+    ) -> None:
+        """Keep the episode's record (its stages and tally) in the store when it changed, and
+        close it when every target has been reached."""
+        stages = {
+            d["name"]: {
+                "threshold": d["threshold"],
+                "stage": d.get("stage"),
+                "deadline_at": d.get("deadline_at"),
+                "reached_at": d.get("reached_at"),
+                "made": None
+                if d.get("deadline_at_s") is None
+                else (
+                    d.get("reached_at_s") is not None and d["reached_at_s"] <= d["deadline_at_s"]
+                ),
+            }
+            for d in body.get("levels", [])
+            if d["kind"] == "target"
+        }
+        targets = [lv.name for lv in levels if lv.is_target]
+        done = ep.closed_at is None and targets and all(n in tally.reached for n in targets)
+        record = {"stages": stages, "tally": tally.to_json(cfg.unit)}
+        reached_before = {
+            k: v.get("reached_at") for k, v in (ep.record.get("stages") or {}).items()
+        }
+        changed = reached_before != {k: v["reached_at"] for k, v in stages.items()}
+        if not (changed or done) and ep.record:
+            if ep.closed_at is not None or tally.last_t is None:
+                return
+            if tally.last_t - float(ep.record.get("saved_t") or 0.0) < 600.0:
+                return  # the figures move each reading; kept every 10 min, and at each change
+        record["saved_t"] = tally.last_t
+        try:
+            self.episodes.save_record(ep.id, record)
+            ep.record = record
+            if done:
+                at = max(tally.reached[n] for n in targets)
+                self.episodes.end(name, at, EpisodeSource.DONE)
+                ep.closed_at, ep.closed_by = at, EpisodeSource.DONE
+                self.open_eps.pop(name, None)
+                self.last_eps[name] = ep
+                body["episode"].update(ended_at=ep.to_json()["ended_at"], ended_by=ep.closed_by)
+        except Exception:  # noqa: BLE001 - kept at the next refit
+            log.exception("keeping the record of episode %d of %s failed", ep.id, name)
+
+    # -- defrost and priors ---------------------------------------------------------------------
     def _defrost(self, name: str, cfg: ItemConfig, now: float) -> dict[str, Any] | None:
         """The item's newest defrost from its stored signal (None: none lately), for the rules'
         defrost hold."""
@@ -312,6 +599,48 @@ class Refitter:
             self.priors[cls] = Prior() if body is None else Prior.from_dict(body)
         return self.priors[cls]
 
+    def _prior_for(
+        self, name: str, cls: str, window_from: float | None, episode: Episode | None
+    ) -> Prior:
+        """The prior for the item's fit now: the class's, or the one it had before the item's
+        own lesson while the fit could still see the taught readings (module docstring)."""
+        held = self.held.get(name)
+        if held is not None:
+            before, until, ep_id = held
+            same = episode is not None and episode.closed_at is None and episode.id == ep_id
+            if same or window_from is None or window_from <= until:
+                return before
+            del self.held[name]
+        return self._prior(cls)
+
+    def _learn_from(
+        self,
+        name: str,
+        cls: str,
+        fc: Forecast,
+        prior: Prior | None,
+        now: float,
+        episode: Episode | None,
+        t: np.ndarray,
+        y: np.ndarray,
+        lv: Level,
+        kw: dict[str, Any],
+    ) -> None:
+        """Teach the class from this fit (per the module's rule)."""
+        ep_id = episode.id if episode is not None and episode.closed_at is None else None
+        held = self.held.get(name)
+        if ep_id is not None and held is not None and held[2] == ep_id:
+            return  # this episode has taught its class already
+        self._maybe_learn(
+            name,
+            cls,
+            fc,
+            prior,
+            now,
+            lambda: self._predict(t, y, lv.threshold_c, **kw),
+            ep_id,
+        )
+
     def _maybe_learn(
         self,
         name: str,
@@ -320,8 +649,9 @@ class Refitter:
         prior: Prior | None,
         now: float,
         refit_plain: Callable[[], Forecast],
+        episode_id: int | None = None,
     ) -> None:
-        """Teach the class this episode's k (and fitted ambient) per the module's rule."""
+        """Teach the class this stretch's k (and fitted ambient) per the module's rule."""
         if not learnable(fc) or fc.regime_start is None or fc.t_last is None:
             return
         if name not in self.learned_until:
@@ -340,6 +670,7 @@ class Refitter:
         def update(body: dict[str, Any] | None) -> dict[str, Any]:
             return learn(None if body is None else Prior.from_dict(body), plain).to_dict()
 
+        before = prior if prior is not None else self._prior(cls)
         try:
             body = self.prior_store.learn(cls, name, until, now, update)
         except Exception:  # noqa: BLE001 - the next episode teaches again
@@ -347,6 +678,8 @@ class Refitter:
             return
         self.priors[cls] = Prior.from_dict(body)
         self.learned_until[name] = until
+        # this item's own fits keep the prior as it was, while they can see what it taught
+        self.held[name] = (before, until, episode_id)
         self.lessons += 1
         log.info(
             "prior %s learned from %s: %d episode(s), time constant about %.3g h",

@@ -68,7 +68,7 @@ FIELDS = (
 
 def subject(alert: dict[str, Any]) -> str:
     tag = "reminder: " if alert.get("reminder") else ""
-    return f"[thermeta] {alert['item']} {tag}{alert['level']}"
+    return f"[thermeta] {alert['item']} {tag}{alert['event']}"
 
 
 def body_text(alert: dict[str, Any]) -> str:
