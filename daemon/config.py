@@ -32,6 +32,7 @@ from thermeta.daemon.settings.sections import (
     PublishConfig,
     StorageConfig,
 )
+from thermeta.daemon.states import Side
 from thermeta.storage.errors import ConfigError
 
 __all__ = [
@@ -221,7 +222,7 @@ def _with_schedule(
     def conv(x: float) -> float:
         return round(from_celsius(to_celsius(x, sched.unit), item.unit), 6)
 
-    side = "below" if sched.direction == "falling" else "above"
+    side: Side = "below" if sched.direction == "falling" else "above"
     stages = tuple(
         LevelConfig(
             name=f"stage-{n}",
@@ -230,6 +231,7 @@ def _with_schedule(
             side=side,
             lead_s=sched.lead_s,
             within_s=within,
+            budget_s=None,
             stage=n,
         )
         for n, (temp, within) in enumerate(sched.stages, start=1)

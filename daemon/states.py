@@ -133,7 +133,7 @@ MODELS: tuple[Model, ...] = get_args(Model)
 def rank(state: str | None) -> int:
     """Where ``state`` stands in :data:`RANK` (unknown words last)."""
     try:
-        return RANK.index(ItemState(state))
+        return RANK.index(ItemState(state or ""))
     except ValueError:
         return len(RANK)
 

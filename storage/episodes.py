@@ -83,7 +83,7 @@ class Episode:
 
         return {
             "id": self.id,
-            "name": self.name,
+            "batch": self.name,
             "class": self.cls,
             "started_at": rfc3339(self.opened_at),
             "started_by": self.opened_by,

@@ -15,6 +15,7 @@ The words of the events are those of ``daemon/states.py``.
 from __future__ import annotations
 
 import math
+import re
 from datetime import UTC, datetime
 from typing import Any
 
@@ -29,6 +30,7 @@ CAUTION = (
     "Forecasts support decisions; local codes and the site's own procedures decide "
     "limits and actions."
 )
+DEFAULT_NAME = re.compile(r"^(limit|target)(-\d+)?$")  # a level's name when none was given
 # The whole caution, where there is room for it (the record, the README, the mail).
 CAUTION_FULL = (
     "Forecasts support decisions; they are not a food-safety plan or a regulatory record. "
@@ -98,7 +100,7 @@ def what(a: dict[str, Any]) -> str:
         return f"stage {a['stage']} ({thr}{by})"
     kind = a.get("kind") or "limit"
     name = a.get("level") or ""
-    named = f" '{name}'" if name and not name.startswith(f"{kind}-") else ""
+    named = "" if not name or DEFAULT_NAME.match(name) else f" '{name}'"
     return f"its {kind}{named} of {thr}{by}"
 
 

@@ -99,6 +99,7 @@ class RuleParams:
     # has held this long; 0 raises it at the first refit that sees it.
     delay_s: float = 0.0
     side: Side | None = None  # a forecast without levels: its configured side (None: auto)
+    horizon_s: float = 86400.0  # crossings further away are not forecasts worth acting on
 
     def __post_init__(self) -> None:
         for name in ("lead_s", "hold_s", "remind_every_s", "defrost_max_s"):
@@ -110,7 +111,7 @@ class RuleParams:
 
     @classmethod
     def of(cls, item_cfg: Any, check_every_s: float = 0.0) -> RuleParams:
-        side = getattr(item_cfg, "side", "auto")
+        side: Side | None = getattr(item_cfg, "side", None)
         return cls(
             threshold=getattr(item_cfg, "threshold", None),
             lead_s=item_cfg.lead_s,
@@ -121,7 +122,8 @@ class RuleParams:
             defrost_recovery_s=getattr(item_cfg, "defrost_recovery_s", 1800.0),
             defrost_max_s=getattr(item_cfg, "defrost_max_s", 3600.0),
             delay_s=getattr(item_cfg, "delay_s", 0.0),
-            side=None if side == "auto" else side,
+            side=side if side in ("above", "below") else None,
+            horizon_s=getattr(item_cfg, "horizon_s", 86400.0),
         )
 
 
@@ -289,12 +291,12 @@ def _item_state(
 def _views(st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float):
     """Each level's judgement and its JSON in ``fc`` (made here for a forecast without levels)."""
     docs = fc.get("levels")
-    if isinstance(docs, list) and docs:
+    if isinstance(docs, list) and docs and fc.get("levels_from") != "rules":
         return [(_view_of(d), d) for d in docs]
     if p.threshold is None:
         return []
     level = Level(
-        name=f"limit-{p.threshold:g}",
+        name="limit",
         kind="limit",
         threshold=float(p.threshold),
         threshold_c=float(p.threshold),
@@ -307,9 +309,17 @@ def _views(st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float):
     side = fc.get("side") if fc.get("side") in ("above", "below") else None
     # the side, once decided, is kept: a load cooling back after a crossing is recovering
     mem.side = side or mem.side or auto_side(level, fc.get("value_now"))
-    view = judge(level, fc, mem.side, now, hysteresis=p.hysteresis, check_every_s=p.check_every_s)
+    view = judge(
+        level,
+        fc,
+        mem.side,
+        now,
+        hysteresis=p.hysteresis,
+        check_every_s=p.check_every_s,
+        horizon_s=p.horizon_s,
+    )
     doc = view.to_json(now)
-    fc["levels"] = [doc]
+    fc["levels"], fc["levels_from"] = [doc], "rules"  # judged here: judged afresh next time
     return [(view, doc)]
 
 

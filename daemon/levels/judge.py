@@ -2,7 +2,8 @@
 
     limit   crossed      the value is past the threshold (strictly: at the threshold is inside)
             approaching  the EARLY end of the 90 % crossing interval is within ``lead`` (plus
-                         the time to the next refit, so a warning is never later than lead)
+                         the time to the next refit, so a warning is never later than lead),
+                         and the crossing itself within the item's ``horizon``
             steady       otherwise (learning while there is no fit)
     target  reached      the value got to it (at or beyond); in an episode, from the record
             waiting      its deadline counts from an episode that has not started
@@ -136,6 +137,7 @@ def judge(
     *,
     hysteresis: float,
     check_every_s: float = 0.0,
+    horizon_s: float = math.inf,
     episode_start_s: float | None = None,
     reached_at_s: float | None = None,
     tracked: bool = False,
@@ -172,15 +174,17 @@ def judge(
     if level.is_target:
         _target(view, level, now, fit_ok, tracked, episode_start_s)
     else:
-        _limit(view, fit_ok, check_every_s)
+        _limit(view, fit_ok, check_every_s, horizon_s)
     return view
 
 
-def _limit(view: LevelView, fit_ok: bool, check_every_s: float) -> None:
+def _limit(view: LevelView, fit_ok: bool, check_every_s: float, horizon_s: float) -> None:
     early = view.eta_lo_s if view.eta_lo_s is not None else view.eta_s
+    # a crossing further away than the horizon is not a forecast worth acting on
+    far = view.eta_s is None or view.eta_s > horizon_s
     if fit_ok:
-        view.due = early is not None and early <= view.lead_s + check_every_s
-        view.eased = early is None or early > 2.0 * view.lead_s + check_every_s
+        view.due = not far and early is not None and early <= view.lead_s + check_every_s
+        view.eased = far or early is None or early > 2.0 * view.lead_s + check_every_s
     if view.past:
         view.state = ItemState.CROSSED
     elif not fit_ok:

@@ -55,6 +55,7 @@ def judge_item(
             now,
             hysteresis=cfg.hysteresis,
             check_every_s=check_every_s,
+            horizon_s=cfg.horizon_s,
             episode_start_s=start,
             reached_at_s=None if tally is None else tally.reached.get(lv.name),
             tracked=episode is not None,

@@ -556,7 +556,7 @@ class Refitter:
         }
         targets = [lv.name for lv in levels if lv.is_target]
         done = ep.closed_at is None and targets and all(n in tally.reached for n in targets)
-        record = {"stages": stages, "tally": tally.to_json(cfg.unit)}
+        record: dict[str, Any] = {"stages": stages, "tally": tally.to_json(cfg.unit)}
         reached_before = {
             k: v.get("reached_at") for k, v in (ep.record.get("stages") or {}).items()
         }

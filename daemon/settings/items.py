@@ -58,9 +58,9 @@ class ItemConfig(FitRules, AlertRules):
     threshold: Num | None = None
     kind: Kind = "limit"
     side: SideSetting = "auto"  # auto: the side opposite the live value when first judged
-    within_s: Positive | None = Field(None, validation_alias="within")
+    within_s: Positive | None = Field(default=None, validation_alias="within")
     by: Text | None = None
-    budget_s: Positive | None = Field(None, validation_alias="budget")
+    budget_s: Positive | None = Field(default=None, validation_alias="budget")
     levels: tuple[LevelConfig, ...] = Field((), validation_alias="level")
     schedule: Text | None = None
     # the temperature whose passing (toward the targets) opens an episode; a schedule sets it
@@ -107,6 +107,7 @@ class ItemConfig(FitRules, AlertRules):
         if self.threshold is not None:
             own = (
                 LevelConfig(
+                    name=self.kind,
                     kind=self.kind,
                     threshold=self.threshold,
                     side=self.side,
@@ -115,7 +116,17 @@ class ItemConfig(FitRules, AlertRules):
                     budget_s=self.budget_s,
                 ),
             )
-        return own + self.levels + self.stages
+        tables = tuple(
+            lv if lv.name else lv.model_copy(update={"name": f"{lv.kind}-{j}"})
+            for j, lv in enumerate(self.levels, start=1)
+        )
+        return own + tables + self.stages
+
+    @property
+    def threshold_c(self) -> float:
+        """The first level's threshold in degC."""
+        first = self.all_levels()[0]
+        return to_celsius(first.threshold, self.unit)
 
     @property
     def ambient_c(self) -> float | None:

@@ -43,15 +43,19 @@ def deadline_problem(by: str) -> str | None:
 class LevelConfig(Table):
     """One level of an item: a threshold with its kind, side and what is asked of it."""
 
-    name: Text | None = None  # default: "<kind>-<threshold>", e.g. "limit-8"
+    name: Text | None = None  # default: "<kind>-<n>", n its place among the item's tables
     kind: Kind = "limit"
     threshold: Num
     side: SideSetting = "auto"  # auto: the side opposite the live value when first judged
-    lead_s: Positive | None = Field(None, validation_alias="lead")  # None: the item's lead
-    within_s: Positive | None = Field(None, validation_alias="within")  # a target's deadline
+    lead_s: Positive | None = Field(default=None, validation_alias="lead")  # None: the item's lead
+    within_s: Positive | None = Field(
+        default=None, validation_alias="within"
+    )  # a target's deadline
     by: Text | None = None  # ... or a clock time: "16:30" (local) or RFC 3339
-    budget_s: Positive | None = Field(None, validation_alias="budget")  # a limit's allowance
-    stage: int | None = Field(None, exclude=True)  # set for a schedule's stages, not a key
+    budget_s: Positive | None = Field(
+        default=None, validation_alias="budget"
+    )  # a limit's allowance
+    stage: int | None = Field(default=None, exclude=True)  # set for a schedule's stages, not a key
 
     refused: ClassVar[dict[str, str]] = {
         "stage": "stages come from a [[schedule]]; name it with the item's schedule key"
@@ -62,7 +66,7 @@ class LevelConfig(Table):
 
     @property
     def label(self) -> str:
-        return self.name or f"{self.kind}-{self.threshold:g}"
+        return self.name or self.kind
 
 
 def check_kind(level: Any, checks: Checks) -> None:
@@ -125,7 +129,7 @@ class ScheduleConfig(Table):
     start: Num
     stages: Stages
     unit: Unit = "C"
-    lead_s: Positive | None = Field(None, validation_alias="lead")  # None: the item's lead
+    lead_s: Positive | None = Field(default=None, validation_alias="lead")  # None: the item's lead
 
     def check(self, checks: Checks) -> None:
         if self.start is None or not self.stages:
@@ -165,6 +169,10 @@ def schedule_problem(start: float, stages: tuple[tuple[float, float], ...]) -> s
 # US FDA Food Code 2022, 3-501.14 (from memory).
 BUILT_IN: dict[str, ScheduleConfig] = {
     "food-code-cooling": ScheduleConfig(
-        name="food-code-cooling", start=57.0, stages=((21.0, 2 * H), (5.0, 6 * H)), unit="C"
+        name="food-code-cooling",
+        start=57.0,
+        stages=((21.0, 2 * H), (5.0, 6 * H)),
+        unit="C",
+        lead_s=None,
     ),
 }

@@ -244,8 +244,9 @@ def config_text(
             f"name = {_toml_str(s.name)}",
             f"topic = {_toml_str(s.topic)}",
             f"threshold = {s.threshold:g}",
-            # the side of the limit: rising loads must stay below it, cooling ones get below it
-            f'limit = "{"upper" if s.direction == "rising" else "lower"}"',
+            # the side that counts: a rising load must stay below (past when above), a cooling
+            # one gets below it
+            f'side = "{"above" if s.direction == "rising" else "below"}"',
         ]
         if s.ambient_known is not None:
             lines.append(f"ambient = {s.ambient_known:g}")
