@@ -247,6 +247,18 @@ class AlertStore:
         with self.store.reading() as conn:
             return [dict(r._mapping) for r in conn.execute(select(outbox).order_by(outbox.c.id))]
 
+    def deliveries(self, event_ids: list[int]) -> dict[int, list[tuple[str, str]]]:
+        """(hook, status) of each of the events' outbox rows, by event id."""
+        out: dict[int, list[tuple[str, str]]] = {}
+        for i in range(0, len(event_ids), 500):
+            q = select(outbox.c.event_id, outbox.c.hook, outbox.c.status).where(
+                outbox.c.event_id.in_(event_ids[i : i + 500])
+            )
+            with self.store.reading() as conn:
+                for eid, hook, status in conn.execute(q):
+                    out.setdefault(int(eid), []).append((str(hook), str(status)))
+        return out
+
     # -- events and acks ----------------------------------------------------------------------
     def events(self, item: str | None = None, limit: int = 200) -> list[dict[str, Any]]:
         q = select(alert_events).order_by(alert_events.c.id.desc()).limit(limit)

@@ -441,8 +441,14 @@ class Store:
         with self.reading() as conn:
             return [StoredForecast(n, s, float(m), json.loads(b)) for n, s, m, b in conn.execute(q)]
 
-    def forecast_history(self, item: str, limit: int = 100) -> list[StoredForecast]:
-        """The item's stored forecasts, newest first."""
+    def forecast_history(
+        self,
+        item: str,
+        limit: int = 100,
+        since: float | None = None,
+        until: float | None = None,
+    ) -> list[StoredForecast]:
+        """The item's stored forecasts (made within [since, until] when given), newest first."""
         item_id = self.item_id(item)
         if item_id is None:
             return []
@@ -452,6 +458,10 @@ class Store:
             .order_by(forecasts.c.id.desc())
             .limit(limit)
         )
+        if since is not None:
+            q = q.where(forecasts.c.made_at >= since)
+        if until is not None:
+            q = q.where(forecasts.c.made_at <= until)
         with self.reading() as conn:
             return [StoredForecast(item, s, float(m), json.loads(b)) for m, s, b in conn.execute(q)]
 

@@ -224,8 +224,10 @@ def _detail_lines(r: dict[str, Any], now: float) -> list[str]:
                 head += f" (90 %: {lo} to {hi_t})"
         if lv.get("deadline_at_s") is not None:
             head += f", deadline {local_clock(lv['deadline_at_s'], True)}"
-            if lv.get("chance") is not None:
-                head += f", chance {100 * lv['chance']:.0f} %"
+            if lv["state"] == "reached":
+                head += ", made" if lv.get("chance") == 1.0 else ", missed the deadline"
+            elif lv.get("chance") is not None:
+                head += f", chance of making it {100 * lv['chance']:.0f} %"
         if lv.get("reached_at"):
             head += f", reached {local_clock(parse_time(lv['reached_at']), True)}"
         b = lv.get("budget")
