@@ -15,8 +15,8 @@ A limit (per level):
 While crossed, a reminder goes out every ``remind_every`` unless the incident was acknowledged.
 
 A target (per level): ``heading`` (or ``waiting``, ``learning``) is calm; ``late`` and ``short``
-are raised once and held until the forecast has been on course again for ``hold``
-("recovered"); ``missed`` is raised when the deadline passes; ``reached`` is raised once, never
+are raised once and held until the forecast has been on course again, with half a lead to spare,
+for ``hold`` ("recovered"); ``missed`` is raised when the deadline passes; ``reached`` is raised once, never
 repeated, and holds until the next episode (or, with no episode kept, until the value has stayed
 back on the far side by the hysteresis band for ``hold``).  A limit's budget raises
 ``running_out`` and ``used_up`` once each.
@@ -25,7 +25,8 @@ An *incident* (what ``thermeta ack`` acknowledges) opens with the first warning 
 open and closes when no level needs attention any more.
 
 Beside the levels: ``stale`` once when the sensor falls silent (``resumed`` when it speaks
-again), and ``regime`` when the fit reports that the surroundings changed at a new time.
+again), and ``regime`` when the fit reports that the surroundings changed at a new time (not
+once every target of the item is reached: nothing is at stake then).
 
 Defrost hold (common practice in the trade: temperature alarms wait through a defrost and a recovery
 delay after it, because the room air swings up while the coil is heated). When the forecast carries
@@ -269,7 +270,10 @@ def step(
     for gone in set(st.levels) - names:
         del st.levels[gone]  # a level no longer configured
     _item_state(fc, st, views)
-    regime = _regime(st, fc, p, now, held)
+    # every target reached and nothing else asked: a change of the surroundings now (the
+    # chilling stopped, the tray moved to holding) puts nothing at stake
+    done = bool(views) and all(st.levels[v.name].state == ItemState.REACHED for v, _ in views)
+    regime = _regime(st, fc, p, now, held or done)
     return raised + regime + level_events
 
 
@@ -471,8 +475,9 @@ def _target(mem: LevelMemory, v: LevelView, p: RuleParams, now: float, held: boo
         return [Raised(Event(j), name, context=ctx)]
     # calm judgement
     if mem.state in (ItemState.LATE, ItemState.SHORT):
-        if j == ItemState.LEARNING:
-            return []  # no fit is no news: hold the warning
+        if j == ItemState.LEARNING or not v.eased:
+            mem.off_since = None
+            return []  # no fit is no news, and on course by a hair is not yet: hold it
         mem.off_since = mem.off_since if mem.off_since is not None else now
         if now - mem.off_since >= p.hold_s:
             was = mem.state

@@ -10,7 +10,7 @@
             missed       the deadline passed before it was reached
             short        the forecast levels off short of it: never reached
             late         the LATE end of the interval (an open end included) falls after the
-                         deadline
+                         deadline; it has eased once the late end comes half a lead before it
             heading      otherwise (learning while there is no fit)
 
 The forecast's ETAs count from its newest reading; everything here counts from ``now``.  The
@@ -221,6 +221,12 @@ def _target(
         return
     if deadline is not None:
         view.chance = chance_by(deadline - now, view.eta_s, view.eta_lo_s, view.eta_hi_s)
+    # a warning eases only with room to spare, so an estimate wandering about the deadline
+    # does not flap between late and on course
+    view.eased = view.eta_s is not None and (
+        deadline is None
+        or (view.eta_hi_s is not None and now + view.eta_hi_s <= deadline - 0.5 * level.lead_s)
+    )
     if view.eta_s is None:
         view.state = ItemState.SHORT
     elif deadline is not None and (view.eta_hi_s is None or now + view.eta_hi_s > deadline):

@@ -81,6 +81,7 @@ class Tally:
     gap_s: float = 0.0
     mkt_sum: float = 0.0  # sum over stretches of dt x mean of e^(-dH/(R T))
     n: int = 0
+    last_dt: float = 0.0  # the newest stretch between readings
 
     def add(self, t: Sequence[float], v: Sequence[float]) -> None:
         """Readings (degC) in time order; those not newer than the last one are skipped."""
@@ -112,6 +113,7 @@ class Tally:
 
     def _stretch(self, t0: float, v0: float, t1: float, v1: float) -> None:
         dt = t1 - t0
+        self.last_dt = dt
         if dt > self.max_gap_s:
             self.gap_s += dt
             return
@@ -200,21 +202,26 @@ def budget(
     over: str,
     since_s: float | None,
     check_every_s: float = 0.0,
+    slack_s: float = 0.0,
 ) -> Budget:
     """The budget's state and when it runs out at the present course: beyond the limit now, it
     runs out when what is left has passed; inside, when what is left has passed after the
     forecast crossing (its interval's ends give the early and late ends); with no crossing
-    forecast it does not run out.  ``running_out`` when the early end is within lead."""
+    forecast it does not run out.  The time used is measured between readings, so it may be
+    short by up to ``slack_s`` (the readings' spacing): the early end allows for that.
+    ``running_out`` when the early end is within lead."""
     b = Budget(level, allowed_s, used_s, over, since_s)
     left = b.left_s
     if left <= 0:
         b.state = BudgetState.USED_UP
         return b
     if past:
-        b.runs_out_at_s = b.runs_out_lo_s = b.runs_out_hi_s = now + left
+        b.runs_out_at_s = b.runs_out_hi_s = now + left
+        b.runs_out_lo_s = now + max(0.0, left - slack_s)
     elif eta_s is not None:
         b.runs_out_at_s = now + eta_s + left
-        b.runs_out_lo_s = now + (eta_lo_s if eta_lo_s is not None else eta_s) + left
+        early = eta_lo_s if eta_lo_s is not None else eta_s
+        b.runs_out_lo_s = now + early + max(0.0, left - slack_s)
         b.runs_out_hi_s = None if eta_hi_s is None else now + eta_hi_s + left
     if b.runs_out_lo_s is not None and b.runs_out_lo_s - now <= lead_s + check_every_s:
         b.state = BudgetState.RUNNING_OUT

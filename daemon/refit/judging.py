@@ -65,10 +65,13 @@ def judge_item(
         if lv.budget_s is not None:
             over = tally if is_open else period_tally
             ex = None if over is None else over.excursions.get(lv.name)
+            used = 0.0 if ex is None else ex.beyond_s
+            if view.past and over is not None and over.last_t is not None:
+                used += max(0.0, now - over.last_t)  # beyond since the newest reading, too
             doc["budget"] = tally_.budget(
                 lv.name,
                 lv.budget_s,
-                0.0 if ex is None else ex.beyond_s,
+                used,
                 now,
                 past=view.past,
                 eta_s=view.eta_s,
@@ -78,6 +81,7 @@ def judge_item(
                 over="episode" if is_open else "period",
                 since_s=None if over is None else over.since_s,
                 check_every_s=check_every_s,
+                slack_s=0.0 if over is None else over.last_dt,
             ).to_json()
         docs.append(doc)
     focus = min(range(len(docs)), key=lambda i: (rank(docs[i]["state"]), i)) if docs else None
