@@ -16,9 +16,9 @@ While crossed, a reminder goes out every ``remind_every`` unless the incident wa
 
 A target (per level): ``heading`` (or ``waiting``, ``learning``) is calm; ``late`` and ``short``
 are raised once and held until the forecast has been on course again, with half a lead to spare,
-for ``hold`` ("recovered"); ``missed`` is raised when the deadline passes; ``reached`` is raised once, never
-repeated, and holds until the next episode (or, with no episode kept, until the value has stayed
-back on the far side by the hysteresis band for ``hold``).  A limit's budget raises
+for ``hold`` ("recovered"); ``missed`` is raised when the deadline passes; ``reached`` is raised
+once, never repeated, and holds until the next episode (or, with no episode kept, until the value
+has stayed back on the far side by the hysteresis band for ``hold``).  A limit's budget raises
 ``running_out`` and ``used_up`` once each.
 
 An *incident* (what ``thermeta ack`` acknowledges) opens with the first warning while none is
