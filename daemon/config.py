@@ -183,10 +183,12 @@ def _items(
         if "level" in t:
             levels, n_levels = _levels(checks, i, t["level"], n_levels)
             t["level"] = levels
+        before = len(checks.problems)
         item = ItemConfig.model_validate(t, context=checks.table("item", i))
         if item.schedule is not None:
             item = _with_schedule(checks.table("item", i), item, schedules)
-        _check_levels(checks.table("item", i), item)
+        if len(checks.problems) == before:  # a stand-in of a bad item has no levels to judge
+            _check_levels(checks.table("item", i), item)
         out.append(item)
     _check_overlaps(checks, out)
     return out

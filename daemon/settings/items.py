@@ -218,7 +218,9 @@ class ItemConfig(FitRules, AlertRules):
                 checks.add(key, "describes the item's own level: give threshold too")
             return
         check_kind(self, checks)
-        names = [lv.label for lv in self.all_levels()]
+        names = [self.kind] + [
+            lv.name or f"{lv.kind}-{j}" for j, lv in enumerate(self.levels, start=1)
+        ]
         for name in sorted({n for n in names if names.count(n) > 1}):
             checks.add("level", f"two levels are named {name!r}: give each a name of its own")
 
