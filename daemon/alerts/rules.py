@@ -25,8 +25,8 @@ An *incident* (what ``thermeta ack`` acknowledges) opens with the first warning 
 open and closes when no level needs attention any more.
 
 Beside the levels: ``stale`` once when the sensor falls silent (``resumed`` when it speaks
-again), and ``regime`` when the fit reports that the surroundings changed at a new time (not
-once every target of the item is reached: nothing is at stake then).
+again), and ``regime`` when the fit reports that the surroundings changed at a new time (not for
+an item whose levels are all targets on course or reached: nothing is at stake then).
 
 Defrost hold (common practice in the trade: temperature alarms wait through a defrost and a recovery
 delay after it, because the room air swings up while the coil is heated). When the forecast carries
@@ -270,10 +270,12 @@ def step(
     for gone in set(st.levels) - names:
         del st.levels[gone]  # a level no longer configured
     _item_state(fc, st, views)
-    # every target reached and nothing else asked: a change of the surroundings now (the
-    # chilling stopped, the tray moved to holding) puts nothing at stake
-    done = bool(views) and all(st.levels[v.name].state == ItemState.REACHED for v, _ in views)
-    regime = _regime(st, fc, p, now, held or done)
+    # targets only, none in trouble: a change of the surroundings (the chilling started or
+    # stopped, the tray moved to holding) is the process itself and puts nothing at stake
+    calm = bool(views) and all(
+        v.kind == "target" and st.levels[v.name].state not in ATTENTION for v, _ in views
+    )
+    regime = _regime(st, fc, p, now, held or calm)
     return raised + regime + level_events
 
 

@@ -11,7 +11,6 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def run(args: argparse.Namespace) -> int:
     from thermeta.daemon.cli.common import load_config_or_report
-
     from thermeta.daemon.config import overrides
 
     cfg = load_config_or_report(args.config)

@@ -75,6 +75,8 @@ class Tally:
     # targets watched for the first time they are reached: name -> (threshold degC, side)
     targets: dict[str, tuple[float, Side]] = field(default_factory=dict)
     reached: dict[str, float] = field(default_factory=dict)  # name -> when (interpolated)
+    # a pass seen at one reading, confirmed by the next (one spike does not reach a target)
+    pending: dict[str, float] = field(default_factory=dict)
     last_t: float | None = None
     last_v: float | None = None
     covered_s: float = 0.0
@@ -98,18 +100,25 @@ class Tally:
             self.n += 1
 
     def _reach(self, t1: float, v1: float) -> None:
-        """Targets first reached at the reading (t1, v1): when the line from the reading before
-        got to them (interpolated), or at t1 when it is the first reading of the span."""
+        """Targets first reached: when the line from the reading before got to them
+        (interpolated; at t1 for the span's first reading), once the next reading is there too,
+        so one stray reading (a spike) does not reach a target."""
         for name, (thr, side) in self.targets.items():
-            if name in self.reached or (v1 > thr if side == "below" else v1 < thr):
+            if name in self.reached:
+                continue
+            if v1 > thr if side == "below" else v1 < thr:
+                self.pending.pop(name, None)  # back on the near side: it was a stray reading
+                continue
+            if name in self.pending:
+                self.reached[name] = self.pending.pop(name)
                 continue
             t0, v0 = self.last_t, self.last_v
             if t0 is None or v0 is None or v0 == v1:
-                self.reached[name] = t1
+                self.pending[name] = t1
             else:
                 # linear: t = t0 + (thr - v0) / (v1 - v0) * (t1 - t0), clipped to the stretch
                 f = min(1.0, max(0.0, (thr - v0) / (v1 - v0)))
-                self.reached[name] = t0 + f * (t1 - t0)
+                self.pending[name] = t0 + f * (t1 - t0)
 
     def _stretch(self, t0: float, v0: float, t1: float, v1: float) -> None:
         dt = t1 - t0

@@ -185,7 +185,8 @@ class Refitter:
         self.last_eps: dict[str, Episode | None] = {}  # each item's newest closed episode
         self.tallies: dict[str, tuple[int, Tally]] = {}  # by item: (episode id, its tally)
         self.sides: dict[str, dict[str, Side]] = {}  # by item: the recorded sides
-        self.scanned: dict[str, tuple[float, float]] = {}  # by item: the last reading scanned
+        # by item: the last reading scanned for a start, and a pass of it waiting to be confirmed
+        self.scanned: dict[str, tuple[tuple[float, float], float | None]] = {}
         self.fits = 0  # forecasts made (one per distinct threshold and side of an item)
 
     def load_previous(self) -> None:
@@ -450,7 +451,7 @@ class Refitter:
         falling = any(lv.threshold_c < start_c for lv in levels if lv.is_target)
         sign = 1.0 if falling else -1.0  # > 0: on the start's near side
         last = self.episodes_floor(name, ep)
-        prev = self.scanned.get(name)
+        prev, crossed_at = self.scanned.get(name, (None, None))
         order = np.argsort(t, kind="stable")
         for ti, vi in zip(t[order], y[order]):
             ti, vi = float(ti), float(vi)
@@ -463,18 +464,23 @@ class Refitter:
                     self.open_eps.pop(name, None)
                     self.last_eps[name] = ep
                     ep, last = None, ti
-            elif prev is not None and sign * (prev[1] - start_c) > 0 >= sign * (vi - start_c):
-                # t = t0 + (start - v0) / (v1 - v0) (t1 - t0)
-                at = prev[0] + (start_c - prev[1]) / (vi - prev[1]) * (ti - prev[0])
-                if at > last:
-                    eid = self.episodes.start(name, at, EpisodeSource.PROBE)
-                    ep = Episode(eid, name, None, None, at, EpisodeSource.PROBE)
+            elif sign * (vi - start_c) > 0:
+                crossed_at = None  # on the near side (again): a pass before was a stray reading
+            elif crossed_at is not None:
+                # the pass is confirmed by this reading, also past the start: open the episode
+                if crossed_at > last:
+                    eid = self.episodes.start(name, crossed_at, EpisodeSource.PROBE)
+                    ep = Episode(eid, name, None, None, crossed_at, EpisodeSource.PROBE)
                     self.open_eps[name] = ep
-                    last = at
+                    last = crossed_at
                     log.info("%s: episode %d started at %.1f degC", name, eid, start_c)
+                crossed_at = None
+            elif prev is not None and sign * (prev[1] - start_c) > 0:
+                # t = t0 + (start - v0) / (v1 - v0) (t1 - t0)
+                crossed_at = prev[0] + (start_c - prev[1]) / (vi - prev[1]) * (ti - prev[0])
             prev = (ti, vi)
         if prev is not None:
-            self.scanned[name] = prev
+            self.scanned[name] = (prev, crossed_at)
         return ep
 
     def episodes_floor(self, name: str, ep: Episode | None) -> float:

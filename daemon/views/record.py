@@ -158,9 +158,9 @@ def _passes_at_the_end(store: Any, name: str, tl: Tally, until: float) -> None:
     after = store.recent_readings(name, since_ts=tl.last_t + 1e-6, until_ts=until + MAX_GAP_S)
     if not after:
         return
-    probe = Tally(targets=dict(tl.targets), reached=dict(tl.reached))
+    probe = Tally(targets=dict(tl.targets), reached=dict(tl.reached), pending=dict(tl.pending))
     probe.last_t, probe.last_v = tl.last_t, tl.last_v
-    probe.add([after[0][0]], [after[0][1]])
+    probe.add([r[0] for r in after[:2]], [r[1] for r in after[:2]])  # a pass and its confirmation
     for k, t in probe.reached.items():
         if k not in tl.reached and t <= until + 1.0:
             tl.reached[k] = min(t, until)
