@@ -242,9 +242,10 @@ def _detail_lines(r: dict[str, Any], now: float) -> list[str]:
     ep = r.get("episode")
     if ep:
         text = f"episode {ep['id']}" + (f" ({ep['batch']})" if ep.get("batch") else "")
-        text += f" started {ep['started_at']} by {ep['started_by']}"
+        text += f" started {local_clock(parse_time(ep['started_at']), True)} by {ep['started_by']}"
         if ep.get("ended_at"):
-            text += f", ended {ep['ended_at']} by {ep['ended_by']}"
+            when = local_clock(parse_time(ep["ended_at"]), True)
+            text += f", ended {when} by {ep['ended_by']}"
         mkt = (ep.get("tally") or {}).get("mkt")
         if mkt is not None:
             text += f", mean kinetic temperature {mkt:.2f} {u}"
