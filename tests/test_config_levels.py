@@ -213,3 +213,27 @@ def test_old_keys_say_what_they_became(tmp_path):
     )
     assert r.returncode == 2
     assert f'{p}:5: item.limit: renamed: a level\'s side is side = "above"' in r.stderr
+
+
+def test_the_readmes_recipes_load_as_written(tmp_path):
+    """Each trade's recipe in the README (the brewer's, the kitchen's, the cold-chain
+    operator's) is a valid config once the README's broker and storage tables are added, and
+    asks what the recipe says; the README carries the caution."""
+    import re
+    from pathlib import Path
+
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text()
+    blocks = dict(re.findall(r"<!-- recipe: (\S+) -->\n```toml\n(.*?)```", readme, re.S))
+    assert set(blocks) == {"brewer", "kitchen", "cold-chain"}
+    head = '[broker]\nhost = "127.0.0.1"\nport = 1883\n[storage]\nurl = "sqlite:///x.db"\n'
+    kinds = {}
+    for name, text in blocks.items():
+        p = tmp_path / f"{name}.toml"
+        p.write_text(head + text)
+        (item,) = load_config(p).items
+        kinds[name] = [(lv.label, lv.kind, lv.side) for lv in item.all_levels()]
+    assert kinds["brewer"] == [("target", "target", "below"), ("overchilled", "limit", "below")]
+    assert kinds["kitchen"] == [("stage-1", "target", "below"), ("stage-2", "target", "below")]
+    assert kinds["cold-chain"] == [("high", "limit", "above"), ("low", "limit", "below")]
+    flat = " ".join(readme.split())
+    assert "they are not a food-safety plan or a regulatory record" in flat
