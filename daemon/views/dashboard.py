@@ -124,6 +124,21 @@ def level_note(lv: LevelLine, now: float) -> str:
     return " ".join(parts)
 
 
+def narrow_level(lv: LevelLine, now: float) -> tuple[str, str]:
+    """A level's ETA cell and note on a narrow screen: "2h20 by 19:33" and "3 %", or the ETA
+    and "32m left" of a budget."""
+    eta = eta_text(lv)
+    if lv.deadline_s is not None:
+        when = eta if lv.state in (ItemState.REACHED, ItemState.MISSED) else eta.split(" [")[0]
+        eta = f"{when} by {local_clock(now + lv.deadline_s)}"
+    note = ""
+    if lv.chance is not None and lv.state not in (ItemState.REACHED, ItemState.MISSED):
+        note = f"{100 * lv.chance:.0f} %"
+    elif lv.budget_left_s is not None:
+        note = f"{short_duration(lv.budget_left_s)} left"
+    return eta, note
+
+
 def _num(v: float | None, fmt: str = "{:.1f}") -> str:
     return "-" if v is None else fmt.format(v)
 
@@ -262,8 +277,6 @@ def render(
             name = name[len(current) + 1 :]
         if r.defrost:
             name += " (defrost)"  # at the end, which fit_name keeps: new alerts are held
-        if r.episode:
-            name += f" [{r.episode}]"
         sign = UNIT_SIGN.get(r.unit, r.unit) if wide else ""
         hot = style if r.state in HOT else ""
         table.add_row(
@@ -282,15 +295,18 @@ def render(
             if lines_used >= room:
                 break
             lsym, lstyle = STATE_LOOK.get(lv.state, ("·", ""))
+            eta, note = eta_text(lv), level_note(lv, board.now)
+            if not wide:  # the deadline beside the ETA, the chance or budget in the last column
+                eta, note = narrow_level(lv, board.now)
             table.add_row(
                 Text(f"  {lsym} {lv.state}", style=lstyle if lv.state in HOT else "dim"),
                 fit_name(f"└ {lv.name}", w["item"]),
                 "",
                 _num(lv.threshold),
-                Text(eta_text(lv), style=lstyle if lv.state in HOT else "dim"),
+                Text(eta, style=lstyle if lv.state in HOT else "dim"),
                 "",
                 "",
-                Text(level_note(lv, board.now), style="dim", no_wrap=True, overflow="crop"),
+                Text(note, style="dim", no_wrap=True, overflow="crop"),
             )
             lines_used += 1
     body.append(table)

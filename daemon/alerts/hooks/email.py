@@ -52,8 +52,13 @@ class EmailConfig(TimedHookConfig):
 
 
 FIELDS = (
+    ("event", "event"),
+    ("level", "level"),
     ("value_now", "value now"),
     ("threshold", "threshold"),
+    ("deadline_at", "deadline"),
+    ("chance", "chance of making it"),
+    ("reached_at", "reached at"),
     ("eta_s", "ETA (s)"),
     ("crossing_at", "crossing at"),
     ("crossing_lo_at", "interval from"),
