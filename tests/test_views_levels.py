@@ -43,9 +43,9 @@ side = "below"
 
 
 def filled_store(tmp_path):
-    """Two and a half hours of a deep tray cooling (tau 170 min from 74 degC in -6 degC air: the food-code
-    schedule's first stage will be missed) and of a fridge warming toward 20 degC from 5 degC
-    after a failure, refitted every 5 minutes up to now."""
+    """Two and a half hours of a deep tray cooling (tau 170 min from 74 degC in -6 degC air: the
+    food-code schedule's first stage will be missed) and of a fridge warming toward 20 degC from
+    5 degC after a failure, refitted every 5 minutes up to now."""
     import time
 
     text = f'[storage]\nurl = "sqlite:///{tmp_path / "s.db"}"\n[fit]\nrefit_every = 300\n{ITEMS}'
