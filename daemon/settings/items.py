@@ -13,6 +13,7 @@ from pydantic import AfterValidator, BeforeValidator, Field
 from thermeta.daemon.ingest.topics import (
     AMBIENT_SUFFIX,
     DEFROST_SUFFIX,
+    EPISODE_SUFFIX,
     check_filter,
     is_wildcard,
     placeholders,
@@ -232,6 +233,7 @@ class ItemConfig(FitRules, AlertRules):
         for suffix, kept in (
             (AMBIENT_SUFFIX, "ambient probes"),
             (DEFROST_SUFFIX, "defrost signals"),
+            (EPISODE_SUFFIX, "episode messages"),
         ):
             if name.endswith(suffix):
                 checks.add("name", f"must not end in '{suffix}' (kept for {kept})")

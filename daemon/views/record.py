@@ -95,6 +95,8 @@ def gather(
     item = item_config(cfg, store, name)
     eps = EpisodeStore(store)
     ep: Episode | None = None
+    newest = store.last_reading_times().get(name)
+    now = now if newest is None else max(now, newest)  # an open episode runs to its newest reading
     if episode_id is not None:
         ep = eps.get(episode_id)
         if ep is None or ep.item != name:
