@@ -114,8 +114,8 @@ def test_start_and_end_commands(record_site):
 
 def test_the_record_as_json_and_csv(record_site, tmp_path):
     """The episode's record: the stages (stage 1 reached late, at the true moment of Newton's
-    law; stage 2 still ahead), the forecasts made along the way, each reading, the caution; the CSV holds the same facts a row
-    each.  Bad requests exit 2 with the reason."""
+    law; stage 2 still ahead), the forecasts made along the way, each reading, the caution; the
+    CSV holds the same facts a row each.  Bad requests exit 2 with the reason."""
 
     def report(*args):
         return subprocess.run(
