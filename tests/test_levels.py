@@ -193,3 +193,24 @@ def test_episode_messages():
     ):
         with pytest.raises(PayloadError, match=why):
             parse_mark("tray-c", bad, T0)
+
+
+def test_deadlines_within_and_by():
+    """`within` counts from the episode's start (none without one); `by` "HH:MM" is the first
+    such local time at or after the start (today's without an episode); `by` RFC 3339 is that
+    moment."""
+    from datetime import datetime
+
+    lv = Level("t", "target", 20.0, 20.0, "below", 600.0, within_s=2700.0)
+    assert lv.deadline(T0, T0 + 60) == T0 + 2700 and lv.deadline(None, T0) is None
+    start = datetime(2027, 3, 1, 17, 0).astimezone().timestamp()  # 17:00 local
+    by = Level("t", "target", 20.0, 20.0, "below", 600.0, by="16:30")
+    due = datetime.fromtimestamp(by.deadline(start, start)).astimezone()
+    assert (due.day, due.hour, due.minute) == (2, 16, 30)  # the next 16:30 after the start
+    same_day = datetime.fromtimestamp(by.deadline(None, start)).astimezone()
+    assert (same_day.day, same_day.hour) == (1, 16)  # no episode: today's
+    exact = Level("t", "target", 20.0, 20.0, "below", 600.0, by="2027-03-01T18:00:00Z")
+    assert (
+        exact.deadline(start, start)
+        == datetime.fromisoformat("2027-03-01T18:00:00+00:00").timestamp()
+    )

@@ -244,6 +244,8 @@ def step(
         st.stale = False
         raised.append(Raised(Event.RESUMED))
     views = _views(st, fc, p, now)
+    if "*" in st.levels and views and views[0][0].name not in st.levels:
+        st.levels[views[0][0].name] = st.levels.pop("*")  # an older version's one level
     held = in_defrost_hold(fc, p, now)
     level_events: list[Raised] = []
     for view, doc in views:
