@@ -153,3 +153,37 @@ def _lesson_at(store) -> bool:
 
     body = PriorStore(store).get("cellar-chillers")
     return body is not None and body["n_episodes"] >= 1
+
+
+def test_wort_that_cannot_reach_its_target_is_told_short(tmp_path):
+    """Wort chilled with coolant at 23 degC can never reach its 20 degC pitching target (ales
+    pitch at about 18-20 degC: common practice): it is `short`, told once with the reason, not
+    left `steady` in silence."""
+    cfg = config(
+        tmp_path,
+        '[[item]]\nname = "wort"\ntopic = "b/wort"\nthreshold = 20.0\nkind = "target"\n'
+        'side = "below"\nambient = 23.0\n',
+    )
+    (item,) = cfg.items
+    clock = ManualClock(T0)
+    svc = Service(cfg, clock=clock)
+    svc.store.create_all()
+    plugin = attach(svc)
+    plugin.start()
+    try:
+        rng = np.random.default_rng(17)
+        for m in range(40):
+            x = np.arange(m * 60.0, (m + 1) * 60.0, 10.0)
+            # Newton's law toward the coolant: T = 23 + (95 - 23) e^(-t / 15 min)
+            y = 23.0 + 72.0 * np.exp(-x / 900.0) + rng.normal(0, 0.1, x.size)
+            write(svc.store, svc.activity, item, T0 + x, y)
+            clock.set(T0 + x[-1])
+            svc.refitter.run_once()
+        state = {f.item: f.state for f in svc.store.latest_forecasts()}["wort"]
+        told = AlertStore(svc.store).events("wort")
+    finally:
+        plugin.stop()
+        svc.store.close()
+    assert state == "short"
+    assert [e["level"] for e in told] == ["short"]
+    assert "is not forecast to reach its target of 20.0 °C" in told[0]["sentence"]
