@@ -18,7 +18,7 @@ def period_figures(cfg: Any, store: Any, name: str, topic: str | None, now: floa
     the mean kinetic temperature (None when its config is not known)."""
     from thermeta.daemon.ingest.topics import Router
     from thermeta.daemon.levels.spec import levels_of
-    from thermeta.daemon.refit.rounds import new_tally
+    from thermeta.daemon.levels.tally import new_tally
     from thermeta.storage.episodes import EpisodeStore
 
     item = Router(cfg.items).item_for(name, topic)

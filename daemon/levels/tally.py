@@ -162,6 +162,21 @@ class Tally:
         }
 
 
+def new_tally(levels: Any, sides: dict[str, Any], since: float | None) -> Tally:
+    """A tally watching each limit (time beyond) and target (when reached) of ``levels``
+    (``spec.Level``) whose side is known."""
+    tl = Tally(since_s=since)
+    for lv in levels:
+        side = sides.get(lv.name)
+        if side is None:
+            continue
+        if lv.is_target:
+            tl.targets[lv.name] = (lv.threshold_c, side)
+        else:
+            tl.excursions[lv.name] = Excursion(lv.threshold_c, side)
+    return tl
+
+
 @dataclass
 class Budget:
     """A limit's allowance of time beyond it, over an episode or the rolling period."""

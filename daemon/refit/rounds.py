@@ -54,7 +54,7 @@ from thermeta.daemon.config import AMBIENT_SUFFIX, DEFROST_SUFFIX, Config, ItemC
 from thermeta.daemon.ingest.defrost import defrost_status
 from thermeta.daemon.ingest.writer import Activity
 from thermeta.daemon.levels.spec import Level, auto_side, levels_of
-from thermeta.daemon.levels.tally import Excursion, Tally
+from thermeta.daemon.levels.tally import Tally, new_tally
 from thermeta.daemon.refit.judging import judge_item
 from thermeta.daemon.states import AmbientMode, EpisodeSource, ItemState, Side, predictor_side
 from thermeta.daemon.units import from_celsius, shown_in, to_celsius
@@ -122,22 +122,6 @@ def forecast_kwargs(
 def uses_prior(cfg: ItemConfig, measured: bool) -> bool:
     """A learned prior serves the lumped model with a given or fitted ambient only."""
     return not measured and cfg.model in ("lumped", "auto")
-
-
-def new_tally(
-    levels: tuple[Level, ...], sides: dict[str, Side | None], since: float | None
-) -> Tally:
-    """A tally watching each limit (time beyond) and target (when reached) whose side is known."""
-    tl = Tally(since_s=since)
-    for lv in levels:
-        side = sides.get(lv.name)
-        if side is None:
-            continue
-        if lv.is_target:
-            tl.targets[lv.name] = (lv.threshold_c, side)
-        else:
-            tl.excursions[lv.name] = Excursion(lv.threshold_c, side)
-    return tl
 
 
 @dataclass
