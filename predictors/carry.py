@@ -21,7 +21,12 @@ import numpy as np
 from thermeta.predictors.context import Before
 from thermeta.predictors.lumped import LumpedFit, fit_lumped
 from thermeta.predictors.outcome import NoteCode
-from thermeta.predictors.regime import MIN_REGIME_POINTS, find_door, split_disturbance
+from thermeta.predictors.regime import (
+    MIN_REGIME_POINTS,
+    find_door,
+    smooth_rss,
+    split_disturbance,
+)
 from thermeta.predictors.result import Forecast
 
 Z90 = 1.6449  # the two-sided 90 % point of the normal: a 90 % interval spans 2 Z90 sd
@@ -38,21 +43,32 @@ class Carried:
     y: np.ndarray
 
 
-def short_door(tt: np.ndarray, yy: np.ndarray, min_points: int, margin: int = 2) -> int:
+def short_door(
+    tt: np.ndarray, yy: np.ndarray, min_points: int, margin: int = 2, inflation: float = 1.0
+) -> int:
     """End of the readings before a short disturbance (regime.find_door) that the regime search
     cannot see, or 0.  The door is first placed with the whole window's k and ambient, which it
     biases, then again with those of the readings before it."""
     whole = fit_lumped(tt, yy, float(yy[-1]), intervals=False)
     if not whole.ok:
         return 0
-    door = find_door(tt, yy, whole.k_per_s, whole.ambient, whole.rss, min_side=min_points)
+    door = find_door(
+        tt, yy, whole.k_per_s, whole.ambient, whole.rss, min_side=min_points, inflation=inflation
+    )
     if not door.found:
         return 0
     pre = fit_lumped(tt[: door.c1], yy[: door.c1], float(yy[-1]), intervals=False)
     if pre.ok:
-        again = find_door(tt, yy, pre.k_per_s, pre.ambient, whole.rss, min_side=min_points)
+        again = find_door(
+            tt, yy, pre.k_per_s, pre.ambient, whole.rss, min_side=min_points, inflation=inflation
+        )
         if again.found:
             door = again
+    # a smooth curve with two time constants (three parameters fewer than the door) may explain
+    # the readings as well: a second time constant is not a door
+    gain = (smooth_rss(tt, yy) - door.rss) / door.scale
+    if gain < 3 * math.log(tt.size) + 12.0:
+        return 0
     end = door.c1 - margin
     return end if end >= min_points else 0
 

@@ -13,7 +13,8 @@ import importlib
 import math
 
 from thermeta.predictors.context import Context
-from thermeta.predictors.lumped_forecast import LumpedModel, note_given_ambient
+from thermeta.predictors.lumped import fit_lumped
+from thermeta.predictors.lumped_forecast import LumpedModel, fit_kwargs, note_given_ambient
 from thermeta.predictors.model import Model
 from thermeta.predictors.outcome import NoteCode, Reason
 from thermeta.predictors.result import Forecast
@@ -109,28 +110,38 @@ class AutoModel(Model):
     def forecast(self, ctx: Context, fc: Forecast) -> Forecast:
         base = copy.deepcopy(fc)
         lumped = LumpedModel().forecast(ctx, copy.deepcopy(fc))
-        lumped.model = "lumped"
-        if not lumped.ok or "rss" not in lumped.params:
+        if lumped.model == "auto":
+            lumped.model = "lumped"
+        if not lumped.ok:
             return lumped
-        p = lumped.params
-        lumped_ic = aicc(p["rss"], int(p["n_fit"]), int(p["n_params"]))
+        # the shapes are compared by fit: one exponential's own (the lumped forecast may be a
+        # combination of curves chosen by their forecasts)
+        if ctx.air is None:
+            one = fit_lumped(ctx.t, ctx.y, ctx.threshold, intervals=False, **fit_kwargs(ctx))
+            lumped_ic = aicc(one.rss, one.n, one.n_par) if one.ok else math.inf
+        elif "rss" in lumped.params:
+            p = lumped.params
+            lumped_ic = aicc(p["rss"], int(p["n_fit"]), int(p["n_params"]))
+        else:
+            return lumped
         conduction = _conduction_module()
         if conduction is None:
             return lumped
         fit, scores = conduction.select_geometry(ctx.t, ctx.y, **conduction_kwargs(ctx))
-        best = lumped
+        best, shape = lumped, "lumped"
         if fit.ok and fit.aicc < lumped_ic - AUTO_MARGIN:
-            best = ConductionModel(fit.geometry).forecast(ctx, copy.deepcopy(base), fit=fit)
-            if not best.ok:
-                best = lumped
+            core = ConductionModel(fit.geometry).forecast(ctx, copy.deepcopy(base), fit=fit)
+            if core.ok:
+                best, shape = core, fit.geometry
         scores["lumped"] = lumped_ic
-        ref = scores[best.model]
+        ref = scores[shape]
         others = ", ".join(
-            f"{m} {v - ref:+.1f}" for m, v in scores.items() if m != best.model and math.isfinite(v)
+            f"{m} {v - ref:+.1f}" for m, v in scores.items() if m != shape and math.isfinite(v)
         )
         best.note(
             NoteCode.MODEL_CHOICE,
-            f"model chosen by AICc: {best.model}" + (f" (others: {others})" if others else ""),
+            f"model chosen by AICc: {shape}" + (f" (others: {others})" if others else ""),
         )
-        best.model_basis = "AICc"
+        if shape != "lumped":
+            best.model_basis = "AICc"
         return best

@@ -209,7 +209,7 @@ def _regime(ctx: Context, fc: Forecast, cl: Cleaned) -> Context:
     "cycling" when a thermostat's sawtooth fills the window."""
     tt, yy = ctx.t, ctx.y
     side = max(REGIME_MIN, ctx.min_points)
-    reg = find_regime(tt, yy, cl.noise_sd, min_points=side)
+    reg = find_regime(tt, yy, cl.noise_sd, min_points=side, inflation=cl.noise_inflation)
     if reg.cycling and reg.start_index == 0:
         # a thermostat's sawtooth: a curve through it extrapolates the window's ends
         fc.pattern = "cycling"
@@ -223,12 +223,14 @@ def _regime(ctx: Context, fc: Forecast, cl: Cleaned) -> Context:
             f"the surroundings changed {reg.n_changes} time(s); fitted the newest "
             f"{tt.size - reg.start_index} readings only",
         )
-        end = oldest_regime_end(tt, yy, cl.noise_sd, reg, min_points=side)
+        end = oldest_regime_end(
+            tt, yy, cl.noise_sd, reg, min_points=side, inflation=cl.noise_inflation
+        )
         before = Before(tt, yy, end, True) if end else None
         fc.regime_start = float(tt[reg.start_index])
         return ctx.with_readings(tt[reg.start_index :], yy[reg.start_index :], before=before)
     if not reg.cycling:
-        end = short_door(tt, yy, side)
+        end = short_door(tt, yy, side, inflation=cl.noise_inflation)
         if end:
             return ctx.with_readings(tt, yy, before=Before(tt, yy, end, False))
     return ctx

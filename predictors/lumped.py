@@ -84,6 +84,7 @@ class LumpedFit:
     # set when an unbent straight trend overrides a fitted level-off: its value and slope (per s)
     # at the newest reading, which the point ETA and the curve ahead follow
     trend_now: tuple[float, float] | None = None
+    inflate: float = 1.0  # the profile cut's margin times this (n / n_eff, correlated residuals)
 
     def curve(self, t: np.ndarray) -> np.ndarray:
         """T(t) = a + b e^(-k (t - t_first))."""
@@ -162,10 +163,12 @@ def fit_lumped(
     intervals: bool = True,
     limit: str | None = None,
     k_prior: tuple[float, float] | None = None,
+    inflate: float = 1.0,
 ) -> LumpedFit:
     """Fit T(t) = a + b e^(-k (t - t_first)) to sorted, cleaned readings; never raises on data.
 
     k_prior: (mean, sd) of ln(k_per_s), a Gaussian prior (see the module docstring).
+    inflate: >= 1, the intervals' cut margin times this (n / n_eff for correlated residuals).
     """
     if k_prior is not None and not (math.isfinite(k_prior[0]) and k_prior[1] > 0):
         raise ValueError(f"k_prior must be (finite mean, sd > 0) of ln k, got {k_prior!r}")
@@ -283,6 +286,7 @@ def fit_lumped(
                 fit.direction = "rising" if slope > 0 else "falling"
                 fit.trend_now = (float(icpt + slope * D + ybar), float(slope))
     if intervals:
+        fit.inflate = max(float(inflate), 1.0)
         add_intervals(fit, d, yc, thr, lam, a0, lo, hi, ybar, k_grid, pen)
     return fit
 

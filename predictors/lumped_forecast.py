@@ -13,6 +13,16 @@ import math
 import numpy as np
 from thermeta.predictors.carry import carry_before
 from thermeta.predictors.cleaning import residual_outliers
+from thermeta.predictors.combine import combine
+from thermeta.predictors.combined_forecast import (
+    RICH_MIN,
+    combined_forecast,
+    inflation,
+    note_ambient_agreement,
+    self_check,
+    shape_test,
+    spec_of,
+)
 from thermeta.predictors.context import AmbientMode, Context
 from thermeta.predictors.lumped import LumpedFit, fit_lumped
 from thermeta.predictors.model import Model
@@ -81,13 +91,57 @@ def lumped_forecast(ctx: Context, fc: Forecast) -> Forecast:
             fit = fit_lumped(tt, yy, thr, **kw)
     if not fit.ok:
         return fc.fail(fit.code or Reason.FIT_FAILED, fit.reason or "fit failed")
+    learned = "k_prior" in kw or (ctx.ambient is None and kw.get("ambient") is not None)
+    if not learned and tt.size >= RICH_MIN:
+        # (after a door that came back, the carried k is the model: only a "never" is judged)
+        F = shape_test(tt, yy, spec_of(kw)) if carried is None else 0.0
+        # a "never" of one exponential is judged by forecast skill too: the level-off it sees
+        # may be a second time constant, and a given ambient the readings contradict says the
+        # one-exponential account of them is in doubt
+        doubt = F > 1.0 or _contradicts(ctx, fit) or _never_against_given(ctx, fit)
+        if not doubt and carried is None:
+            doubt = self_check(tt, yy, kw)
+        comb = None
+        if doubt:
+            comb = combine(tt, yy, spec_of(kw), thr, ctx.limit)
+        if comb is not None and comb.weights:
+            fc.params = {}
+            note_given_ambient(fc, ctx)
+            combined_forecast(fc, comb, fit)
+            note_ambient_agreement(fc, ctx, fit.ambient)
+            return fc
+        infl = inflation(fit.residuals)
+        if infl > 1.0:
+            fit = fit_lumped(tt, yy, thr, **kw, inflate=infl)
+            fc.note(
+                NoteCode.CORRELATED_SCATTER,
+                f"the readings' scatter is correlated from one reading to the next: they count "
+                f"as about {tt.size / infl:.0f} independent ones, and the interval is that wide",
+            )
     fill_lumped(fc, fit, ctx)
+    note_ambient_agreement(fc, ctx, fit.ambient)
     k_prior = kw.get("k_prior")
     if ctx.prior is not None and k_prior is not None and carried is None:
         # (carried: the older readings' fit already folded the learned prior into its k)
         a_prior = ctx.prior.ambient_prior() if ctx.ambient is None else None
         note_prior(fc, ctx.prior, k_prior, a_prior)
     return fc
+
+
+def _never_against_given(ctx: Context, fit: LumpedFit) -> bool:
+    """A "never" that needs a given ambient pulled more than 1 sd toward the readings' level-off
+    rests on overriding the user's value: the one-exponential account of the readings is then
+    in doubt too."""
+    if fit.eta_s is not None or ctx.mode != AmbientMode.KNOWN or ctx.ambient is None:
+        return False
+    return ctx.ambient_sd > 0 and abs(fit.ambient - ctx.ambient) > ctx.ambient_sd
+
+
+def _contradicts(ctx: Context, fit: LumpedFit) -> bool:
+    """Whether the fit pulls a given ambient more than 2 sd away from the given value."""
+    if ctx.mode != AmbientMode.KNOWN or ctx.ambient is None or ctx.ambient_sd <= 0:
+        return False
+    return abs(fit.ambient - ctx.ambient) > 2.0 * ctx.ambient_sd
 
 
 def fill_lumped(fc: Forecast, fit: LumpedFit, ctx: Context) -> None:

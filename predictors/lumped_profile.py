@@ -181,11 +181,12 @@ def add_intervals(
 
     k: the varpro profile RSS_k on a grid, refined near k_hat.  Ambient and crossing time: the
     projection of the joint region {RSS <= cut}, exact for each k (an ellipse in (a, b)), taken
-    over the k grid.
+    over the k grid.  The cut's margin is widened by ``fit.inflate`` (n / n_eff for correlated
+    residuals: each reading then carries less than one reading's worth of information).
     """
     D = float(d[-1])
     pen = pen or KPenalty(None)
-    cut = fit.rss * (1.0 + f_dist.ppf(CONF, 1, fit.dof) / fit.dof)
+    cut = fit.rss * (1.0 + fit.inflate * f_dist.ppf(CONF, 1, fit.dof) / fit.dof)
     k_hat, lk = fit.k_per_s, math.log(fit.k_per_s)
     # curvature of RSS in log k sets a fine grid around k_hat
     s3 = sums(d, yc, np.exp(lk + np.array([-0.01, 0.0, 0.01])))

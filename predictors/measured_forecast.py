@@ -8,8 +8,8 @@ holds it, or its present level while its trend is unclear -> the load against th
 from __future__ import annotations
 
 import numpy as np
-from thermeta.predictors.context import Context
 from thermeta.predictors.cleaning import residual_outliers
+from thermeta.predictors.context import Context
 from thermeta.predictors.measured import fit_measured, measured_rss
 from thermeta.predictors.measured_air import (
     FewAir,
