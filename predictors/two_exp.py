@@ -298,18 +298,47 @@ def crossing(
     return float(brentq(f, x[i], x[i + 1], xtol=1e-6 * max(x[i + 1], 1.0)))
 
 
-def _local_pairs(fit: TwoExpFit, d: np.ndarray, yc: np.ndarray, width: float, m: int):
-    """The (fast, slow) pairs of an m x m grid within +-width in ln k around the fit's pair."""
-    u = np.linspace(-width, width, m)
-    kf = np.exp(math.log(fit.k1) + u)
-    ks = np.exp(math.log(fit.k2) + u)
-    kk = np.concatenate([kf, ks])
-    E = np.exp(-np.outer(kk, d))
-    Se, See, Sye = _gram(E, yc)
-    i, j = np.meshgrid(np.arange(m), m + np.arange(m), indexing="ij")
-    i, j = i.ravel(), j.ravel()
-    ok = kk[i] / kk[j] >= MIN_RATIO
-    return kk, Se, See, Sye, i[ok], j[ok]
+def _pair_rss(fit: TwoExpFit, v: np.ndarray) -> tuple:
+    """Sums and best (a, b1, b2), RSS and M for the (fast, slow) pairs exp(v) (rows of v)."""
+    s = fit._state
+    kk = np.exp(np.asarray(v, float))
+    ks = kk.ravel()
+    E = np.exp(-np.outer(ks, s["d"]))
+    Se, See, Sye = _gram(E, s["yc"])
+    m = kk.shape[0]
+    i, j = 2 * np.arange(m), 2 * np.arange(m) + 1
+    th, rr, M = solve_pairs(
+        fit.n, s["Sy"], s["Syy"], Se, See, Sye, i, j, s["lam"], s["a0"], -np.inf, np.inf
+    )
+    rr = np.where(kk[:, 0] / kk[:, 1] >= MIN_RATIO, rr, np.inf)
+    return kk[:, 0], kk[:, 1], th, rr, M
+
+
+def _region_pairs(fit: TwoExpFit, margin: float, m: int = 15):
+    """Pairs of ln k spread over the region {RSS <= RSS_min + margin}: a grid along the
+    principal axes of the RSS's curvature in (ln k1, ln k2) at the fit (the region is a thin
+    tilted ellipse when the two rates trade off), scaled to the region's half-widths and
+    widened while its edge is still inside."""
+    v0 = np.log([fit.k1, fit.k2])
+    h = 1e-3
+    steps = np.array([[0, 0], [h, 0], [-h, 0], [0, h], [0, -h], [h, h], [-h, -h]])
+    r = _pair_rss(fit, v0 + steps)[3]
+    H = np.empty((2, 2))
+    H[0, 0] = (r[1] + r[2] - 2 * r[0]) / h**2
+    H[1, 1] = (r[3] + r[4] - 2 * r[0]) / h**2
+    H[0, 1] = H[1, 0] = (r[5] + r[6] - 2 * r[0]) / (2 * h**2) - 0.5 * (H[0, 0] + H[1, 1])
+    lam, Q = np.linalg.eigh(H if np.all(np.isfinite(H)) else np.eye(2))
+    half = np.sqrt(2.0 * margin / np.maximum(lam, 1e-12 * max(abs(lam).max(), 1e-300)))
+    half = np.minimum(half, 4.0)
+    u = np.linspace(-1.0, 1.0, m)
+    grid = np.stack(np.meshgrid(u, u, indexing="ij"), -1).reshape(-1, 2)
+    for scale in (1.5, 3.0, 6.0):
+        v = v0 + (grid * half * scale) @ Q.T
+        out = _pair_rss(fit, v)
+        edge = np.abs(grid).max(1) >= 0.999
+        if not (out[3][edge] <= fit.rss + margin).any():
+            break
+    return out
 
 
 def eta_interval(
@@ -326,7 +355,6 @@ def eta_interval(
         return None, None
     D = s["D"]
     cut = fit.rss + fit.rss * f_dist.ppf(CONF, 1, fit.dof) / fit.dof * max(inflate, 1.0)
-    d, yc = s["d"], s["yc"]
     n = fit.n
     lam, a0 = s["lam"], s["a0"]
     parts = []
@@ -338,17 +366,7 @@ def eta_interval(
                 *solve_pairs(n, s["Sy"], s["Syy"], Se, See, Sye, i, j, lam, a0, -np.inf, np.inf),
             )
         )
-    width = 0.25
-    while True:
-        kk, Se, See, Sye, i, j = _local_pairs(fit, d, yc, width, 17)
-        th, rr, M = solve_pairs(n, s["Sy"], s["Syy"], Se, See, Sye, i, j, lam, a0, -np.inf, np.inf)
-        edge = (np.abs(np.log(kk[i]) - math.log(fit.k1)) >= width * 0.999) | (
-            np.abs(np.log(kk[j]) - math.log(fit.k2)) >= width * 0.999
-        )
-        if not (rr[edge] <= cut).any() or width >= 4.0:
-            break
-        width *= 2
-    parts.append((kk[i], kk[j], th, rr, M))
+    parts.append(_region_pairs(fit, cut - fit.rss))
     kf = np.concatenate([p[0] for p in parts])
     ks = np.concatenate([p[1] for p in parts])
     theta = np.concatenate([p[2] for p in parts])
@@ -369,14 +387,34 @@ def eta_interval(
         [np.ones((kf.size, x.size)), np.exp(-np.outer(kf, D + x)), np.exp(-np.outer(ks, D + x))],
         -1,
     )  # (P, X, 3)
-    pred = np.einsum("pxi,pi->px", g, theta)
-    var = np.einsum("pxi,pij,pxj->px", g, Minv, g)
-    extra = (pred - (thr - s["ybar"])) ** 2 / np.maximum(var, 1e-300)
-    ok = (rss[:, None] + extra) <= cut
+    pred = np.einsum("pxi,pi->px", g, theta) - (thr - s["ybar"])
+    var = np.maximum(np.einsum("pxi,pij,pxj->px", g, Minv, g), 1e-300)
+    delta = (cut - rss)[:, None]
+    ok = pred**2 <= delta * var  # grid instants some curve of the pair's ellipsoid crosses at
+    # between grid instants: each pair's own crossing x*, widened by the band its ellipsoid
+    # allows there, |pred| <= sqrt(delta var), i.e. +- sqrt(delta var) / |slope| in time
+    flip = np.sign(pred[:, 1:]) != np.sign(pred[:, :1])
+    crosses = flip.any(1)
+    i = np.argmax(flip, 1)
+    rows = np.arange(pred.shape[0])
+    p0, p1 = pred[rows, i], pred[rows, i + 1]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        w = np.where(p0 != p1, p0 / (p0 - p1), 0.0)
+        xs = x[i] + w * (x[i + 1] - x[i])
+        slope = np.abs(p1 - p0) / np.maximum(x[i + 1] - x[i], 1e-300)
+        band = np.sqrt(delta[:, 0] * var[rows, i]) / np.maximum(slope, 1e-300)
+    lo_p = np.where(crosses, np.maximum(xs - band, 0.0), np.inf)
+    hi_p = np.where(crosses, xs + band, -np.inf)
     cols = ok.any(0)
-    if not cols.any():
+    if cols.any():
+        lo_p = np.append(lo_p, x[np.argmax(cols)])
+        hi_p = np.append(hi_p, x[x.size - 1 - int(np.argmax(cols[::-1]))])
+    if not np.isfinite(lo_p).any():
         return None, None  # no curve the readings allow reaches the threshold within reach
-    early = float(x[np.argmax(cols)])
-    late_i = x.size - 1 - int(np.argmax(cols[::-1]))
-    late = None if late_i == x.size - 1 else float(x[late_i])
+    early = float(np.min(lo_p))
+    late = float(np.max(hi_p))
+    # a curve the readings allow that does not get there (levels off short, or only beyond
+    # the reach) means crossings without a late bound
+    if not crosses.all() or (cols.any() and cols[-1]) or late >= x[-1]:
+        return early, None
     return early, late
