@@ -24,6 +24,7 @@ from thermeta.predictors.outcome import NoteCode
 from thermeta.predictors.regime import (
     MIN_REGIME_POINTS,
     find_door,
+    lag_inflation,
     smooth_rss,
     split_disturbance,
 )
@@ -174,6 +175,9 @@ def moves_away(t: np.ndarray, y: np.ndarray, ambient: float) -> bool:
     if sxx <= 0:
         return False
     se = math.sqrt(max(float(resid @ resid) / max(t.size - 2, 1), 1e-12) / sxx)
+    # residuals correlated from one reading to the next (a fast logger, coarse steps, a wobbling
+    # room) carry fewer independent readings than they number: the slope's se grows with that
+    se *= math.sqrt(lag_inflation(resid))
     return abs(slope) > 3 * se and slope * (ambient - y[-1]) < 0
 
 

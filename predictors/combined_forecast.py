@@ -24,6 +24,7 @@ import math
 import numpy as np
 from scipy.stats import f as f_dist
 from thermeta.predictors.candidates import Spec
+from thermeta.predictors.cleaning import scatter_inflation
 from thermeta.predictors.combine import Combined, binned
 from thermeta.predictors.context import AmbientMode, Context
 from thermeta.predictors.lumped import LumpedFit, fit_lumped
@@ -66,7 +67,10 @@ def shape_test(t: np.ndarray, y: np.ndarray, spec: Spec) -> float:
     two = fit_two_exp(tb, yb, **spec.kwargs())
     if not (one.ok and two.ok) or two.rss <= 0:
         return 0.0
-    share = effective_share(two.residuals)
+    # the readings' correlation, as the lesser of two estimates: the two-time-constant fit's
+    # residuals' (which a misfit inflates) and the binned readings' residuals from a local
+    # line (which coarse steps inflate)
+    share = max(effective_share(two.residuals), 1.0 / scatter_inflation(tb, yb))
     dof = max(two.dof * share, 1.0)
     F = (one.rss - two.rss) / 2.0 / (two.rss / two.dof) * share
     return float(F / f_dist.ppf(SHAPE_CONF, 2, dof))

@@ -119,6 +119,15 @@ def lumped_forecast(ctx: Context, fc: Forecast) -> Forecast:
                 f"as about {tt.size / infl:.0f} independent ones, and the interval is that wide",
             )
     fill_lumped(fc, fit, ctx)
+    if fc.eta_s and no_trend(tt, yy, ctx):
+        # a rate taken from the edge of the fit's own grid, not from the readings
+        fc.eta_s, fc.eta_hi_s = None, None
+        fc.note(
+            NoteCode.NO_TREND,
+            "the readings do not move yet (their change is within their scatter and steps), "
+            "so they tell no rate and no crossing time: the interval's early end is the "
+            "earliest crossing they allow, its late end open",
+        )
     note_ambient_agreement(fc, ctx, fit.ambient)
     k_prior = kw.get("k_prior")
     if ctx.prior is not None and k_prior is not None and carried is None:
@@ -126,6 +135,22 @@ def lumped_forecast(ctx: Context, fc: Forecast) -> Forecast:
         a_prior = ctx.prior.ambient_prior() if ctx.ambient is None else None
         note_prior(fc, ctx.prior, k_prior, a_prior)
     return fc
+
+
+def no_trend(t: np.ndarray, y: np.ndarray, ctx: Context) -> bool:
+    """Whether the readings' straight trend changes them by less than twice its own standard
+    error over their span (and by less than one reading step): readings that do not move."""
+    if t.size < 3:
+        return False
+    d = t - t[0]
+    slope, icpt = np.polyfit(d, y, 1)
+    resid = y - (icpt + slope * d)
+    sxx = float(np.sum((d - d.mean()) ** 2))
+    if sxx <= 0:
+        return True
+    s2 = max(float(resid @ resid) / max(t.size - 2, 1), ctx.noise_sd**2, ctx.quantum**2 / 12)
+    rise = abs(float(slope)) * float(d[-1])
+    return rise < max(2.0 * math.sqrt(s2 / sxx) * float(d[-1]), ctx.quantum)
 
 
 def _never_against_given(ctx: Context, fit: LumpedFit) -> bool:

@@ -51,6 +51,7 @@ class NoteCode(StrEnum):
     AMBIENT_FIT_FAILED = "ambient_fit_failed"
     FEW_AMBIENT = "few_ambient_readings"
     # the shape and the crossing
+    NO_TREND = "no_trend"  # the readings do not move yet: no rate, so no point ETA
     NO_BEND = "no_bend"
     WEAK_BEND = "weak_bend"
     TREND_OVER_LEVEL_OFF = "trend_over_level_off"

@@ -52,7 +52,7 @@ def split_inflation(t: np.ndarray, y: np.ndarray, i0: int, j: int, i1: int) -> f
         if not f.ok:
             return 1.0
         parts.append(f.residuals - f.residuals.mean())
-    return _lag_inflation(np.concatenate(parts))
+    return lag_inflation(np.concatenate(parts))
 
 
 def smooth_rss(t: np.ndarray, y: np.ndarray) -> float:
@@ -108,15 +108,20 @@ def slope_runs(
     return runs
 
 
+SWING_RANGE = 0.25  # ... and at least this share of the readings' whole range
 SWING_NOISE = 4.0  # a thermostat's swing spans at least this many sd of the readings' scatter
 
 
 def swings_clear(y: np.ndarray, runs: list[tuple[int, int, int]], noise_sd: float) -> bool:
     """Whether the rises and falls of the slope runs are a thermostat's swings: their median
     height at least SWING_NOISE sd of the scatter (a cold room swings by a degree or more
-    against a tenth of a degree of scatter; correlated scatter wanders by a few sd)."""
+    against a tenth of a degree of scatter; correlated scatter wanders by a few sd) and
+    SWING_RANGE of the readings' range."""
     heights = [abs(float(y[b]) - float(y[a])) for a, b, _ in runs]
-    return float(np.median(heights)) >= SWING_NOISE * max(noise_sd, 1e-9)
+    swing = float(np.median(heights))
+    # and the readings stay near their band: a load warming by several swings with wobbles on
+    # the way is not cycling (a room losing ground drifts by a swing or so over the window)
+    return swing >= SWING_NOISE * max(noise_sd, 1e-9) and swing >= SWING_RANGE * float(np.ptp(y))
 
 
 def find_regime(
@@ -398,7 +403,7 @@ def find_door(
     )
     s2 = max(best / max(m - 7, 1), 1e-18)
     # correlated scatter inflates the gain: judged against the door model's own residuals
-    infl = max(inflation, _lag_inflation(_door_residuals(y, r, e, ci, ji)))
+    infl = max(inflation, lag_inflation(_door_residuals(y, r, e, ci, ji)))
     stat = (rss_single - best) / s2 / infl
     return Door(bool(stat >= 5 * math.log(m) + 12.0), ci, ji, float(stat), best, s2 * infl)
 
@@ -418,7 +423,7 @@ def _door_residuals(y: np.ndarray, r: np.ndarray, e: np.ndarray, c: int, j: int)
     return np.concatenate(out)
 
 
-def _lag_inflation(res: np.ndarray) -> float:
+def lag_inflation(res: np.ndarray) -> float:
     """(1 + rho) / (1 - rho) of residuals with lag-one correlation rho beyond the white-noise
     band (2 / sqrt(n)); 1 otherwise."""
     if res.size < 8:

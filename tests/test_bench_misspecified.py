@@ -19,7 +19,7 @@ def test_one_exponential_families_follow_newtons_law():
     Ta + (T0 - Ta) e^(-t / tau) (the published law) to 1e-6 degC, and the case's crossing is the
     closed form ln((T0 - Ta) / (thr - Ta)) tau."""
     for family in ("ar1_noise", "quantised"):
-        rng = np.random.default_rng([2026, ms.FAMILIES.index(family), 0, 21])
+        rng = np.random.default_rng([2026, ms.FAMILIES.index(family), 0, 21, 0])
         p = ms.draw(ms.PARAMS[family], rng)
         tr = ms.build(family, p)
         x = np.linspace(0.0, 3 * p["tau_s"], 50)
@@ -35,7 +35,7 @@ def test_one_exponential_families_follow_newtons_law():
 def test_two_node_rates_are_the_systems_eigenvalues():
     """A two-node case's content relaxes with the two rates of its system matrix (numpy's
     eigenvalues): ln|T1 - Ta| late in the episode falls at the slow rate."""
-    rng = np.random.default_rng([2026, ms.FAMILIES.index("two_node"), 1, 21])
+    rng = np.random.default_rng([2026, ms.FAMILIES.index("two_node"), 1, 21, 0])
     p = ms.draw(ms.PARAMS["two_node"], rng)
     tr = ms.build("two_node", p)
     tau, share = p["tau_s"], p["container_share"]
