@@ -210,6 +210,7 @@ def fit_conduction(
     interval: str = "auto",
     min_points: int | None = None,
     hold_steady: bool = True,
+    ambient_within: float | None = None,
 ) -> ConductionFit:
     """Fit the centre-probe curve to cleaned readings ``y`` at epoch seconds ``t_s``.
 
@@ -218,9 +219,10 @@ def fit_conduction(
     the series); neither: fitted.  start_s: the episode start when the body was uniform (default
     the first reading); fit_start also fits an offset to it.  ambient_sd > 0 (known mode) says
     the given ambient is only known to that sd: the ambient is then fitted with a Gaussian prior
-    centred on it, so the intervals carry that doubt.  interval: "profile" (profile likelihood
-    of the crossing time; slower, better coverage), "draws" (simulated delta method, also used
-    for the Bi, k and ambient intervals) or "auto" (the profile, with a measured, drifting
+    centred on it, so the intervals carry that doubt; ambient_within, a stated bound on how far
+    off it may be: beyond it the ambient is held at the bound.  interval: "profile" (profile
+    likelihood of the crossing time; slower, better coverage), "draws" (simulated delta method,
+    also used for the Bi, k and ambient intervals) or "auto" (the profile, with a measured, drifting
     ambient too: there the draws covered the true crossing in only 60-83 % of
     scripts/bench_conduction.py's warm cases, the profile in 93-100 %, for about 4x the CPU
     time, 0.23-0.27 s instead of 0.055 s per fit and interval when measured).  hold_steady: a
@@ -309,6 +311,15 @@ def fit_conduction(
             geometry, "fitted", start, span, None, None, fit_start, prior=(float(ambient), w)
         )  # type: ignore[arg-type]
         soft = _fit_curve(curve, t, yy)
+        if soft.ok and ambient_within is not None and abs(soft.Ta - ambient) > ambient_within:
+            # a stated bound holds: the ambient at the bound's nearer edge
+            edge = float(ambient) + math.copysign(ambient_within, soft.Ta - float(ambient))
+            held = _fit_curve(_Curve(geometry, "known", start, span, edge, None, fit_start), t, yy)
+            if held.ok:
+                held.warnings.append(
+                    f"the readings pull the ambient beyond the stated bound; held at {point(edge)}"
+                )
+                soft = held
         if soft.ok:
             soft.ambient_mode = "known"
             fit = soft

@@ -12,6 +12,7 @@ import copy
 import importlib
 import math
 
+from thermeta.predictors.combined_forecast import note_ambient_agreement
 from thermeta.predictors.context import Context
 from thermeta.predictors.lumped import fit_lumped
 from thermeta.predictors.lumped_forecast import LumpedModel, fit_kwargs, note_given_ambient
@@ -37,7 +38,9 @@ def conduction_kwargs(ctx: Context) -> dict:
     if ctx.air is not None:
         return {**kw, "ambient_t": ctx.air.t, "ambient_y": ctx.air.y}
     if ctx.ambient is not None:
-        return {**kw, "ambient": float(ctx.ambient), "ambient_sd": float(ctx.ambient_sd)}
+        kw.update(ambient=float(ctx.ambient), ambient_sd=float(ctx.ambient_sd))
+        if ctx.ambient_within is not None:
+            kw["ambient_within"] = float(ctx.ambient_within)
     return kw
 
 
@@ -91,6 +94,7 @@ class ConductionModel(Model):
             "n_params": float(fit.n_params),
         }
         note_given_ambient(fc, ctx)
+        note_ambient_agreement(fc, ctx, fit.Ta)
         return fc
 
 
