@@ -9,13 +9,15 @@ the error is |ln(forecast time / actual time)|, a forecast that never gets there
 ln 10.  A candidate's score is the mean of its squared errors; its weight 1 / (score + 0.01).
 
     point forecast   the weighted median of the candidates' ln ETA (a "never" counts as +inf);
-                     "never" only when most of the weight says so and the curves that say it
+                     "never" only when most of the weight says so, the curves that say it
                      level off clearly short of the threshold (by NEVER_MARGIN of the way left)
+                     and, with a given ambient beyond the threshold, the readings contradict it
     interval         conformal from the same backtest: the combined forecast's own errors at
                      the origins, their root mean square (with a floor) scaled up with how much
                      further ahead the forecast reaches than the backtest did, as a band in ln
-                     ETA at the normal's 90 % point; it spans the credible candidates too, and
-                     its late end is open when a credible share of the weight says "never"
+                     ETA at Student's 90 % point for that many errors; it spans the credible
+                     candidates too, and its late end is open when OPEN_SHARE of the weight
+                     says "never"
 
 The local curve's share of bend kept ahead is chosen by the same backtest (the lowest score).
 """
@@ -26,6 +28,7 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
+from scipy.stats import t as t_dist
 from thermeta.predictors.candidates import BENDS, Candidate, Local, Spec, fit_all
 
 ORIGINS = (0.25, 0.35, 0.5, 0.65, 0.8)  # backtest origins, as shares of the readings' span
@@ -36,6 +39,7 @@ MISS = math.log(10.0)  # the error of a forecast that never gets there (and the 
 EPS = 0.01  # weights 1 / (score + EPS)
 NEVER_MARGIN = 0.2  # a level-off counts as clear when short of the threshold by this share
 CREDIBLE = 0.1  # a candidate with this share of the weight is credible
+OPEN_SHARE = 0.3  # the late end is open when candidates with this share of the weight say "never"
 Z90 = 1.6448536269514722
 FLOOR = 0.05  # the least rms of ln ETA errors the interval assumes (the backtest is short)
 MAX_BINS = 240  # longer regimes are averaged into this many bins for the fits
@@ -151,7 +155,9 @@ def combine(
     total = sum(raw.values())
     weights = {m: raw[m] / total for m in names}
     etas = {m: final[m].eta(threshold, limit) for m in names}
-    eta, never_clear = _point(etas, weights, final, threshold)
+    eta, never_clear = _point(
+        etas, weights, final, threshold, _overrides_given(spec, final, threshold)
+    )
     if eta and _moving_away(t, y, threshold):
         # the newest readings clearly move away from the threshold: a curve that crosses it
         # would have to turn back, which nothing in the readings shows
@@ -182,14 +188,35 @@ def _wmedian(values: list[float], weights: list[float]) -> float:
     return float(v[int(np.searchsorted(c, 0.5 * c[-1]))])
 
 
+def _overrides_given(spec: Spec, cands: dict[str, Candidate], thr: float) -> bool:
+    """Whether a "never" would override a given ambient that lies beyond the threshold without
+    the readings contradicting it (the one-exponential fit's ambient within 2 sd of it): the
+    user says the item is heading past the threshold, and the readings do not say otherwise."""
+    lumped = cands.get("lumped")
+    if spec.ambient is None or spec.ambient_sd <= 0 or lumped is None or not lumped.ok:
+        return False
+    now = float(lumped.fit.value_fit_now)
+    beyond = (spec.ambient - thr) * (thr - now) > 0
+    return beyond and abs(float(lumped.fit.ambient) - spec.ambient) <= 2.0 * spec.ambient_sd
+
+
 def _point(
-    etas: dict[str, float | None], weights: dict[str, float], cands, thr: float
+    etas: dict[str, float | None],
+    weights: dict[str, float],
+    cands,
+    thr: float,
+    keep_given: bool = False,
 ) -> tuple[float | None, bool]:
-    """The weighted median of ln ETA; "never" only when clear (module docstring)."""
+    """The weighted median of ln ETA; "never" only when clear (module docstring), and not
+    against a given ambient the readings do not contradict (``keep_given``)."""
     never = [m for m, e in etas.items() if e is None]
     finite = [m for m, e in etas.items() if e is not None]
     w_never = sum(weights[m] for m in never)
-    clear = w_never > 0.5 and all(_clear_level_off(cands[m], thr) for m in never)
+    clear = (
+        w_never > 0.5
+        and all(_clear_level_off(cands[m], thr) for m in never)
+        and not (keep_given and finite)
+    )
     if clear:
         return None, clear
     if not finite:
@@ -269,11 +296,13 @@ def _interval(eta, etas, weights, ests, points) -> tuple[float | None, float | N
         errs.append(min(max(err, -MISS), MISS))
         horizons.append(p.actual)
     rms = math.sqrt(float(np.mean(np.square(errs))) + FLOOR**2) if errs else 1.0
+    # the rms of a handful of backtest errors is itself uncertain: Student's t, not the normal
+    q = float(t_dist.ppf(0.95, len(errs) - 1)) if len(errs) > 1 else 2 * Z90
     # errors grow with the reach: scale by the forecast's reach over the backtest's typical one
     if horizons:
         rms *= max(1.0, math.sqrt(eta / float(np.median(horizons))))
-    lo, hi = eta * math.exp(-Z90 * rms), eta * math.exp(Z90 * rms)
+    lo, hi = eta * math.exp(-q * rms), eta * math.exp(q * rms)
     credible = [e for m, e in etas.items() if e is not None and weights[m] >= CREDIBLE]
     if credible:
         lo, hi = min(lo, min(credible)), max(hi, max(credible))
-    return lo, (None if never_w >= CREDIBLE else hi)
+    return lo, (None if never_w >= OPEN_SHARE else hi)
