@@ -24,7 +24,7 @@ from thermeta.predictors.combined_forecast import (
     spec_of,
 )
 from thermeta.predictors.context import AmbientMode, Context
-from thermeta.predictors.lumped import LumpedFit, fit_lumped
+from thermeta.predictors.lumped import LumpedFit, fit_lumped, shrunk_eta
 from thermeta.predictors.model import Model
 from thermeta.predictors.outcome import NoteCode, Reason
 from thermeta.predictors.prior import Prior
@@ -120,13 +120,14 @@ def lumped_forecast(ctx: Context, fc: Forecast) -> Forecast:
             )
     fill_lumped(fc, fit, ctx)
     if fc.eta_s and no_trend(tt, yy, ctx):
-        # a rate taken from the edge of the fit's own grid, not from the readings
-        fc.eta_s, fc.eta_hi_s = None, None
+        # not a rate taken from the edge of the fit's own grid: the readings' own straight
+        # trend, with the interval's late end open
+        fc.eta_s, fc.eta_hi_s = trend_eta(tt, yy, ctx), None
         fc.note(
             NoteCode.NO_TREND,
-            "the readings do not move yet (their change is within their scatter and steps), "
-            "so they tell no rate and no crossing time: the interval's early end is the "
-            "earliest crossing they allow, its late end open",
+            "the readings hardly move yet (their change is within their scatter and steps), so "
+            "they tell no rate: the ETA follows their straight trend, the interval's early end "
+            "is the earliest crossing they allow and its late end is open",
         )
     note_ambient_agreement(fc, ctx, fit.ambient)
     k_prior = kw.get("k_prior")
@@ -151,6 +152,16 @@ def no_trend(t: np.ndarray, y: np.ndarray, ctx: Context) -> bool:
     s2 = max(float(resid @ resid) / max(t.size - 2, 1), ctx.noise_sd**2, ctx.quantum**2 / 12)
     rise = abs(float(slope)) * float(d[-1])
     return rise < max(2.0 * math.sqrt(s2 / sxx) * float(d[-1]), ctx.quantum)
+
+
+def trend_eta(t: np.ndarray, y: np.ndarray, ctx: Context) -> float | None:
+    """Seconds until the readings' straight trend reaches the threshold (None: it does not
+    head there)."""
+    d = t - t[0]
+    slope, icpt = np.polyfit(d, y, 1)
+    if abs(slope) * d[-1] <= 1e-9 * max(1.0, float(np.max(np.abs(y)))):
+        return None  # flat to rounding: no trend at all
+    return shrunk_eta(float(icpt + slope * d[-1]), float(slope), 0.0, ctx.threshold, ctx.limit)
 
 
 def _never_against_given(ctx: Context, fit: LumpedFit) -> bool:

@@ -114,9 +114,9 @@ def test_a_flat_start_is_not_dressed_as_a_curve(bench):
     """Failure 4.  The jar logged by a clock chip in 0.25 degC steps (walkerjeffd/riffle-ito-apps,
     MIT): its first five readings are all 30.00.  Toward the given kitchen (23.78 degC) a fit
     took a time constant from the edge of its own grid and forecast the 28.12 degC crossing
-    at 7.8 h with an interval.  Readings that do not move give no rate: no point ETA, the
-    earliest crossing they allow as the interval's early end, its late end open, and a note
-    saying why."""
+    at 7.8 h with an interval.  Readings that do not move give no rate: the ETA follows their
+    straight trend (flat: none), the earliest crossing they allow is the interval's early end,
+    its late end is open, and a note says why."""
     rec = bench.read_record(bench.DATA / "riffle_jar_cooling_rtc_quantised.csv")
     fc = forecast(rec.t[:5], rec.y[:5], 28.12, ambient=23.78, limit="lower")
     assert fc.ok and fc.eta_s is None and fc.eta_hi_s is None
