@@ -43,18 +43,6 @@ def _rss(t: np.ndarray, y: np.ndarray) -> float:
     return quick_rss(t, y)
 
 
-def split_inflation(t: np.ndarray, y: np.ndarray, i0: int, j: int, i1: int) -> float:
-    """n / n_eff of the residuals of lumped curves fitted on either side of a split (1 when
-    their lag-one correlation is within the white-noise band, 2 / sqrt(n))."""
-    parts = []
-    for a, b in ((i0, j), (j, i1)):
-        f = fit_lumped(t[a:b], y[a:b], float(y[b - 1]), intervals=False)
-        if not f.ok:
-            return 1.0
-        parts.append(f.residuals - f.residuals.mean())
-    return lag_inflation(np.concatenate(parts))
-
-
 def smooth_rss(t: np.ndarray, y: np.ndarray) -> float:
     """RSS of two time constants toward one ambient on the readings, when that curve is
     monotone over them (inf otherwise, or when it cannot be fitted): the smooth shape of a
@@ -147,14 +135,11 @@ def find_regime(
     constants toward one ambient, monotone over the slice): a change is declared only when no
     single smooth curve of the family explains both sides (a second time constant is not a
     change of the surroundings).  inflation: n / n_eff of the readings' scatter (correlated
-    scatter, see cleaning.Cleaned): local slopes and the split's gain are judged against a
-    scatter that large.  With the default lumped curves the split's gain is judged against the
-    correlation left in the split fits' own residuals too.
+    scatter, see cleaning.Cleaned), for the caller's doors (find_door) and cycles.
     """
     n = t.size
     if n < 2 * min_points:
         return Regime(0, 0, False)
-    own = rss is None and exact is None
     if smooth is None and rss is None:
         smooth = lambda i0, i1: smooth_rss(t[i0:i1], y[i0:i1])
     rss = rss or (lambda i0, i1: _rss(t[i0:i1], y[i0:i1]))
@@ -208,9 +193,6 @@ def find_regime(
         rss1 = exact(start, n)
         rss2 = exact(start, j_best) + exact(j_best, n)
         s2 = max(rss2 / max(m - 2 * n_params - 1, 1), sig * sig)
-        if own:
-            # correlated scatter inflates the split's gain as much as it shrinks n_eff
-            s2 *= split_inflation(t, y, start, j_best, n)
         # n_params + 1 more parameters (a second curve and the split): BIC-style, with margin
         if (rss1 - rss2) / s2 < (n_params + 1) * math.log(m) + 12.0:
             break
