@@ -43,8 +43,8 @@ from typing import Any
 
 from thermeta.daemon.states import AlertLevel, EpisodeLevel, ItemState, Side
 from thermeta.daemon.timefmt import parse_time
+from thermeta.predictors.outcome import REGIME_CODES
 
-REGIME_NOTE = "the surroundings changed"
 REGIME_GAP_S = 1800.0  # a change found within this of the last one is the same change, re-estimated
 
 
@@ -345,8 +345,8 @@ def _regime(
     # hold is taken note of without an alert (the defrost is the change).  With an alarm delay,
     # a change waits until an episode is open (approaching or crossed, each past its delay):
     # a door opened for a minute and shut again, which puts nothing at stake, is never told.
-    warnings = fc.get("warnings") or []
-    if not any(str(w).startswith(REGIME_NOTE) for w in warnings):
+    notes = fc.get("notes") or []
+    if not any(n.get("code") in REGIME_CODES for n in notes):
         return []
     start = _t(fc.get("regime_start"))
     if start is None:

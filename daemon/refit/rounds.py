@@ -43,8 +43,9 @@ from thermeta.daemon.config import AMBIENT_SUFFIX, DEFROST_SUFFIX, Config, ItemC
 from thermeta.daemon.ingest.defrost import defrost_status
 from thermeta.daemon.ingest.writer import Activity
 from thermeta.daemon.states import AmbientMode, ItemState, Side
-from thermeta.daemon.units import shown_in, to_item_units
+from thermeta.daemon.units import scale_to_celsius, shown_in, to_item_units
 from thermeta.predictors import forecast
+from thermeta.predictors.outcome import Reason
 from thermeta.predictors.prior import Prior, learn, learnable
 from thermeta.predictors.result import Forecast, rfc3339
 from thermeta.storage.priors import PriorStore
@@ -106,8 +107,8 @@ def forecast_kwargs(
         "limit": limit,
         "shown": shown_in(cfg.unit),
     }  # the warnings' temperatures
-    if cfg.ambient is not None and cfg.ambient_sd_c is not None:
-        kw["ambient_uncertainty"] = cfg.ambient_sd_c
+    if cfg.ambient is not None and cfg.ambient_within is not None:
+        kw["ambient_within"] = scale_to_celsius(cfg.ambient_within, cfg.unit)
     return kw
 
 
@@ -280,6 +281,7 @@ class Refitter:
                 n_points=len(rows),
                 ok=False,
                 reason=f"fit error: {exc.__class__.__name__}: {exc}"[:300],
+                reason_code=Reason.FIT_FAILED,
             )
             if len(rows):
                 fc.t_last, fc.value_now = float(t.max()), float(y[np.argmax(t)])
