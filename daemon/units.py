@@ -11,7 +11,7 @@ Unit = Literal["C", "F", "K"]
 UNITS: tuple[Unit, ...] = get_args(Unit)
 UNIT_SIGN = {"C": "°C", "F": "°F", "K": "K"}  # as the command line, alerts and dashboard print
 # temperatures in a forecast's dict: points (converted with the offset) and differences (scaled)
-POINT_KEYS = ("threshold", "ambient", "ambient_lo", "ambient_hi", "value_now")
+POINT_KEYS = ("threshold", "ambient", "ambient_lo", "ambient_hi", "value_now", "ambient_given")
 DELTA_KEYS = ("rmse",)
 
 

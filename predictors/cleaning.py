@@ -11,6 +11,7 @@ robust loss alone did not hold the ETA with 2 % of readings hit by +-15 degC spi
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -36,6 +37,10 @@ class Cleaned:
     n_outliers: int
     noise_sd: float  # robust estimate of the reading noise (quantisation included)
     quantum: float  # the reading step if the values sit on a grid (0.1), else 0
+    # n / n_eff of the scatter: > 1 when it is correlated from one reading to the next (a fast
+    # logger, a sensor's own lag, a room's small swings), from the local residuals' lag-one
+    # correlation (see scatter_inflation)
+    noise_inflation: float = 1.0
 
 
 def order_and_dedupe(t: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray, int, int, int]:
@@ -171,7 +176,32 @@ def clean(t: np.ndarray, y: np.ndarray, *, n_sigma: float = 6.0) -> Cleaned:
         n_outliers=int((~keep).sum()),
         noise_sd=float(sd),
         quantum=q,
+        noise_inflation=scatter_inflation(t2[keep], y2[keep]),
     )
+
+
+# the lag-one correlation of local_line_residuals of white scatter (measured on 2,000 seeded
+# Gaussian readings: -0.10; a moving line through 11 readings makes its residuals so)
+WHITE_LAG_ONE = -0.10
+
+
+def scatter_inflation(t: np.ndarray, y: np.ndarray) -> float:
+    """n / n_eff = (1 + r) / (1 - r) of the readings' scatter, r the lag-one correlation of the
+    residuals from a local robust line, rescaled so that white scatter gives 1 (its local
+    residuals' own correlation, WHITE_LAG_ONE, is taken off).  The local line follows any
+    smooth curve, so this is a property of the scatter, not of the shape."""
+    if t.size < 16:
+        return 1.0
+    r = local_line_residuals(t, y)
+    r = r - np.median(r)
+    den = float(r @ r)
+    if den <= 0:
+        return 1.0
+    lag = float(r[1:] @ r[:-1]) / den
+    rho = min(max((lag - WHITE_LAG_ONE) / (1.0 - WHITE_LAG_ONE), 0.0), 0.95)
+    if rho <= 2.0 / math.sqrt(t.size):
+        return 1.0
+    return (1.0 + rho) / (1.0 - rho)
 
 
 def residual_outliers(

@@ -25,9 +25,10 @@ from thermeta.predictors import conduction_eta as ceta
 from thermeta.predictors.conduction_ambient import (
     AmbientFn,
     make_ambient_fn,
-    ramp_part,
     steady_level,
 )
+from thermeta.predictors.conduction_curve import Curve as _Curve
+from thermeta.predictors.conduction_curve import covariance, projected, start_grid
 from thermeta.predictors.conduction_profile import profile_interval
 from thermeta.predictors.conduction_series import (
     BIOT_MAX,
@@ -35,8 +36,6 @@ from thermeta.predictors.conduction_series import (
     GEOMETRIES,
     SHAPE_FACTOR,
     first_term,
-    modes,
-    theta_centre,
 )
 from thermeta.predictors.wording import point, step
 
@@ -47,8 +46,6 @@ FIT_BIOT_MAX = 100.0
 AMBIENT_BOUNDS = (-100.0, 300.0)
 N_DRAWS = 400
 MIN_DOF = 2  # degrees of freedom left for the noise by the fewest readings fitted by default
-_BI_GRID = (0.01, 0.06, 0.3, 1.0, 3.0, 10.0, 40.0)
-_K_SPAN_GRID = tuple(np.geomspace(0.03, 30.0, 11))
 PROFILE_METHOD = (
     "profile likelihood: refits constrained to cross at each trial time, "
     "(n - p) (RSS/RSS_min - 1) <= F(1, n - p; 0.90)"
@@ -75,72 +72,6 @@ def aicc(rss: float, n: int, n_params: int) -> float:
         return math.inf
     p = n_params
     return n * math.log(rss / n) + 2 * p + 2 * p * (p + 1) / (n - p - 1)
-
-
-class _Curve:
-    """The model as a function of the parameters for one data set.
-
-    Full parameter vector: linear (Ti[, Ta]) then nonlinear (log Bi, log a[, dt0]), with the
-    episode start t0 = start_s + dt0 * span_s (dt0 in units of the data's span).
-    """
-
-    def __init__(
-        self,
-        geometry: str,
-        mode: str,
-        start_s: float,
-        span_s: float,
-        ambient: float | None,
-        ambient_fn: AmbientFn | None,
-        fit_start: bool,
-        prior: tuple[float, float] | None = None,
-    ) -> None:
-        self.geometry, self.mode, self.start_s, self.span_s = geometry, mode, start_s, span_s
-        self.ambient, self.ambient_fn, self.fit_start = ambient, ambient_fn, fit_start
-        # (Ta_given, weight): a Gaussian prior on a fitted ambient, as one extra residual row
-        # weight * (Ta - Ta_given) with weight = noise sd / ambient sd.
-        self.prior = prior
-
-    @property
-    def linear_names(self) -> tuple[str, ...]:
-        return ("Ti", "Ta") if self.mode == "fitted" else ("Ti",)
-
-    @property
-    def nonlinear_names(self) -> tuple[str, ...]:
-        return ("log_bi", "log_a", "dt0") if self.fit_start else ("log_bi", "log_a")
-
-    @property
-    def names(self) -> tuple[str, ...]:
-        return self.linear_names + self.nonlinear_names
-
-    def t0(self, q: Float) -> float:
-        return self.start_s + (float(q[2]) * self.span_s if self.fit_start else 0.0)
-
-    def basis(self, q: Float, t_abs: Float, step_s: float | None = None) -> tuple[Float, Float]:
-        """(A, r0) with  T = A @ (linear params) + r0  for nonlinear params q."""
-        bi, a = math.exp(q[0]), math.exp(q[1])
-        t0 = self.t0(q)
-        tr = t_abs - t0
-        th = theta_centre(a * tr, bi, self.geometry)
-        if self.mode == "fitted":
-            # T = Ti theta + Ta (1 - theta)
-            return np.column_stack([th, 1.0 - th]), np.zeros_like(th)
-        if self.mode == "known":
-            # T = Ti theta + Ta (1 - theta), Ta given
-            return th[:, None], float(self.ambient) * (1.0 - th)  # type: ignore[arg-type]
-        fn = self.ambient_fn
-        if fn is None:
-            raise ValueError("measured mode needs an ambient series")
-        ta0 = float(fn(np.array([t0]))[0])
-        z, c = modes(self.geometry, bi)
-        # T = Ti theta + Ta(t0) (1 - theta) + R(t)
-        r = ramp_part(tr, fn, t0, a, z, c, step_s=step_s or self.span_s / 256)
-        return th[:, None], ta0 * (1.0 - th) + r
-
-    def full(self, p: Float, t_abs: Float, step_s: float | None = None) -> Float:
-        n_lin = len(self.linear_names)
-        a_mat, r0 = self.basis(p[n_lin:], t_abs, step_s)
-        return a_mat @ p[:n_lin] + r0
 
 
 @dataclass
@@ -263,35 +194,6 @@ def _failed(geometry: str, mode: str, n: int, reason: str) -> ConductionFit:
     return ConductionFit(geometry=geometry, ambient_mode=mode, ok=False, reason=reason, n_points=n)
 
 
-def _projected(curve: _Curve, q: Float, t: Float, y: Float) -> tuple[Float, Float]:
-    """Residual after the best linear parameters for q, and those parameters."""
-    a_mat, r0 = curve.basis(q, t)
-    target = y - r0
-    if curve.prior is not None:
-        a_mat = np.vstack([a_mat, [0.0, curve.prior[1]]])
-        target = np.append(target, curve.prior[0] * curve.prior[1])
-    # Normal equations for the 1-2 linear parameters (lstsq if they are degenerate).
-    ata = a_mat.T @ a_mat
-    atb = a_mat.T @ target
-    if ata.shape == (1, 1):
-        coef = atb / ata[0] if ata[0, 0] > 0 else np.zeros(1)
-    else:
-        det = ata[0, 0] * ata[1, 1] - ata[0, 1] ** 2
-        if det > 1e-10 * ata[0, 0] * ata[1, 1]:
-            coef = (
-                np.array(
-                    [
-                        ata[1, 1] * atb[0] - ata[0, 1] * atb[1],
-                        ata[0, 0] * atb[1] - ata[0, 1] * atb[0],
-                    ]
-                )
-                / det
-            )
-        else:
-            coef, *_ = np.linalg.lstsq(a_mat, target, rcond=None)
-    return target - a_mat @ coef, coef
-
-
 def fit_conduction(
     t_s: ArrayLike,
     y: ArrayLike,
@@ -308,6 +210,7 @@ def fit_conduction(
     interval: str = "auto",
     min_points: int | None = None,
     hold_steady: bool = True,
+    ambient_within: float | None = None,
 ) -> ConductionFit:
     """Fit the centre-probe curve to cleaned readings ``y`` at epoch seconds ``t_s``.
 
@@ -316,9 +219,10 @@ def fit_conduction(
     the series); neither: fitted.  start_s: the episode start when the body was uniform (default
     the first reading); fit_start also fits an offset to it.  ambient_sd > 0 (known mode) says
     the given ambient is only known to that sd: the ambient is then fitted with a Gaussian prior
-    centred on it, so the intervals carry that doubt.  interval: "profile" (profile likelihood
-    of the crossing time; slower, better coverage), "draws" (simulated delta method, also used
-    for the Bi, k and ambient intervals) or "auto" (the profile, with a measured, drifting
+    centred on it, so the intervals carry that doubt; ambient_within, a stated bound on how far
+    off it may be: beyond it the ambient is held at the bound.  interval: "profile" (profile
+    likelihood of the crossing time; slower, better coverage), "draws" (simulated delta method,
+    also used for the Bi, k and ambient intervals) or "auto" (the profile, with a measured, drifting
     ambient too: there the draws covered the true crossing in only 60-83 % of
     scripts/bench_conduction.py's warm cases, the profile in 93-100 %, for about 4x the CPU
     time, 0.23-0.27 s instead of 0.055 s per fit and interval when measured).  hold_steady: a
@@ -407,6 +311,15 @@ def fit_conduction(
             geometry, "fitted", start, span, None, None, fit_start, prior=(float(ambient), w)
         )  # type: ignore[arg-type]
         soft = _fit_curve(curve, t, yy)
+        if soft.ok and ambient_within is not None and abs(soft.Ta - ambient) > ambient_within:
+            # a stated bound holds: the ambient at the bound's nearer edge
+            edge = float(ambient) + math.copysign(ambient_within, soft.Ta - float(ambient))
+            held = _fit_curve(_Curve(geometry, "known", start, span, edge, None, fit_start), t, yy)
+            if held.ok:
+                held.warnings.append(
+                    f"the readings pull the ambient beyond the stated bound; held at {point(edge)}"
+                )
+                soft = held
         if soft.ok:
             soft.ambient_mode = "known"
             fit = soft
@@ -431,23 +344,6 @@ def _steady_ambient(
     return steady_level(at, ay)
 
 
-def _start_grid(curve: _Curve, t: Float, y: Float) -> Float:
-    best, best_q = math.inf, None
-    for bi in _BI_GRID:
-        z1 = float(first_term(curve.geometry, bi)[0])
-        for k_span in _K_SPAN_GRID:
-            q = [math.log(bi), math.log(k_span / curve.span_s / z1**2)]
-            for dt0 in (0.0, -0.1, -0.4) if curve.fit_start else (None,):
-                qq = np.array(q if dt0 is None else q + [dt0])
-                r, _ = _projected(curve, qq, t, y)
-                s = float(r @ r)
-                if s < best:
-                    best, best_q = s, qq
-    if best_q is None:
-        raise ValueError("no finite starting point")
-    return best_q
-
-
 def _fit_curve(curve: _Curve, t: Float, y: Float) -> ConductionFit:
     """The fit, with any numerical failure turned into a failed result (never raised)."""
     try:
@@ -468,9 +364,9 @@ def _fit_curve_raw(curve: _Curve, t: Float, y: Float) -> ConductionFit:
         hi.append(float(t[0] - curve.start_s) / span + 0.5)
         scale.append(0.05)
     try:
-        q0 = np.clip(_start_grid(curve, t, y), lo, hi)
+        q0 = np.clip(start_grid(curve, t, y), lo, hi)
         sol = least_squares(
-            lambda q: _projected(curve, q, t, y)[0],
+            lambda q: projected(curve, q, t, y)[0],
             q0,
             bounds=(lo, hi),
             x_scale=np.array(scale),
@@ -481,7 +377,7 @@ def _fit_curve_raw(curve: _Curve, t: Float, y: Float) -> ConductionFit:
     except (ValueError, np.linalg.LinAlgError, FloatingPointError) as exc:
         return _failed(curve.geometry, curve.mode, n, f"fit failed: {exc}")
     q = sol.x
-    res, coef = _projected(curve, q, t, y)
+    res, coef = projected(curve, q, t, y)
     p = np.concatenate([coef, q])
     rss = float(res[:n] @ res[:n])
     n_par = p.size - (1 if curve.prior is not None else 0)
@@ -512,7 +408,7 @@ def _fit_curve_raw(curve: _Curve, t: Float, y: Float) -> ConductionFit:
     fit.k_per_s = float(z1) ** 2 * fit.a_per_s
     fit.lag_factor_j = float(c1)
     fit.value_at_last = float(curve.full(p, t[-1:])[0])
-    fit.cov = _covariance(curve, p, t, rss, n, y)
+    fit.cov = covariance(curve, p, t, rss, n, y)
     fit._data, fit._bounds = (t, y), (lo, hi)
     fit._draws = (
         ceta.draw_params(p, fit.cov, N_DRAWS, dof=n - p.size) if fit.cov is not None else None
@@ -533,34 +429,6 @@ def _fit_curve_raw(curve: _Curve, t: Float, y: Float) -> ConductionFit:
     if not sol.success:
         fit.warnings.append(f"least squares stopped early: {sol.message}")
     return fit
-
-
-def _covariance(
-    curve: _Curve, p: Float, t: Float, rss: float, n: int, y: Float | None = None
-) -> Float | None:
-    """s^2 (J'J)^-1 with J by central differences of the full model (pseudo-inverse if singular)."""
-    if n <= p.size:
-        return None
-    steps = np.maximum(np.abs(p), 1.0) * 1e-6
-    jac = np.empty((t.size, p.size))
-    for i, h in enumerate(steps):
-        dp = np.zeros_like(p)
-        dp[i] = h
-        jac[:, i] = (curve.full(p + dp, t) - curve.full(p - dp, t)) / (2 * h)
-    s2 = rss / (n - p.size)
-    if n - p.size < 2 and y is not None:
-        # one degree of freedom cannot measure the scatter: at least the assumed one
-        from thermeta.predictors.few import assumed_scatter
-
-        s2 = max(s2, assumed_scatter(np.asarray(y, float)) ** 2)
-    info = jac.T @ jac
-    if curve.prior is not None:
-        info[1, 1] += curve.prior[1] ** 2
-    try:
-        cov = np.asarray(s2 * np.linalg.pinv(info, rcond=1e-12, hermitian=True), dtype=np.float64)
-        return cov
-    except np.linalg.LinAlgError:
-        return None
 
 
 def _parameter_intervals(fit: ConductionFit, n_lin: int) -> None:

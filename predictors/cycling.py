@@ -24,7 +24,11 @@ from itertools import pairwise
 
 import numpy as np
 from scipy.stats import t as t_dist
+from thermeta.predictors.context import Context
+from thermeta.predictors.outcome import NoteCode
 from thermeta.predictors.regime import slope_runs
+from thermeta.predictors.result import Forecast
+from thermeta.predictors.wording import point, step
 
 CONF = 0.90
 DRIFT_CONF = 0.995  # one-sided: evidence of a drift, strict against a healthy room's false alerts
@@ -104,3 +108,45 @@ def cycle_trend(
     out.eta_lo_s = abs(gap) / fast
     out.eta_hi_s = abs(gap) / slow if slow > 0 else None
     return out
+
+
+def cycling_forecast(ctx: Context, fc: Forecast) -> Forecast:
+    """The readings cycle: forecast from the drift of the cycle means (see the module
+    docstring)."""
+    tt, yy = ctx.t, ctx.y
+    tr = cycle_trend(tt, yy, ctx.threshold, ctx.noise_sd, ctx.limit)
+    fc.pattern = "cycling"
+    fc.eta_s, fc.eta_lo_s, fc.eta_hi_s = tr.eta_s, tr.eta_lo_s, tr.eta_hi_s
+    fc.direction = "rising" if tr.drift_per_s > 0 else "falling"
+    fc.interval_method = "t interval of the drift of the cycle means"
+    fc.model_weights = {"cycle_means": 1.0}
+    fc.params = {
+        "n_cycles": float(tr.n_cycles),
+        "cycle_mean": tr.mean_now,
+        "half_swing": tr.half_swing,
+        "drift_per_s": tr.drift_per_s,
+        "drift_se_per_s": tr.drift_se,
+        "n_fit": float(tt.size),
+    }
+    text = (
+        f"the readings cycle (a thermostat?) around {point(tr.mean_now, '.3g')} +- "
+        f"{step(tr.half_swing, '.2g')} over {tr.n_cycles} full cycle(s)"
+    )
+    if tr.beyond_horizon:
+        text += (
+            f"; their mean drifts by {step(tr.drift_per_s * 3600, '+.2g')} "
+            "per hour toward the threshold, too slowly to forecast a crossing "
+            "from these readings (it would lie beyond twice their span)"
+        )
+    elif tr.significant:
+        text += (
+            f"; their mean drifts by {step(tr.drift_per_s * 3600, '+.2g')} "
+            "per hour, so the swing's edge is extrapolated to the threshold"
+        )
+    else:
+        text += (
+            "; no drift toward the threshold that the cycles can tell "
+            "from zero, so no crossing is forecast while they hold"
+        )
+    fc.note(NoteCode.CYCLING, text)
+    return fc

@@ -23,7 +23,14 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
+from scipy.stats import t as t_dist
+from thermeta.predictors.context import Context
 from thermeta.predictors.lumped import crossing_eta
+from thermeta.predictors.outcome import NoteCode
+from thermeta.predictors.result import Forecast, never_reason
+from thermeta.predictors.wording import step
+
+Z90 = 1.6448536269514722  # the standard normal's 95th percentile (two-sided 90 %)
 
 # A food or air probe's short-term scatter (common practice: thermistor and RTD loggers read to
 # 0.1 degC and wander by about 0.1-0.2 between readings): the middle of that range, 1 sd, in
@@ -158,3 +165,90 @@ def draw_etas(
     elif limit == "lower":
         eta = np.where(value_now <= thr, 0.0, eta)
     return np.where(np.isnan(eta), np.inf, eta)
+
+
+def few_forecast(ctx: Context, fc: Forecast) -> Forecast:
+    """Fewer readings than a curve fit needs: with the ambient given, the lumped curve through
+    them (two readings determine T0 and k); with it fitted, the straight trend."""
+    tt, yy, thr, limit = ctx.t, ctx.y, ctx.threshold, ctx.limit
+    sigma = assumed_scatter(yy, ctx.noise_sd, ctx.quantum)
+    ambient, amb_sd = ctx.ambient, ctx.ambient_sd
+    if ambient is None:
+        return few_trend(fc, tt, yy, thr, limit, sigma)
+    fit = known_few(tt, yy, thr, float(ambient), amb_sd, sigma, limit)
+    if not fit.ok:
+        return few_trend(fc, tt, yy, thr, limit, sigma)
+    fc.model, fc.lag_factor_j = "lumped", 1.0
+    fc.model_weights = {"lumped": 1.0}
+    fc.ambient_given = float(ambient)
+    fc.k_per_s, fc.k_lo_per_s, fc.k_hi_per_s = fit.k_per_s, fit.k_lo, fit.k_hi
+    fc.ambient = float(ambient)
+    fc.ambient_lo, fc.ambient_hi = ambient - Z90 * amb_sd, ambient + Z90 * amb_sd
+    fc.eta_s, fc.eta_lo_s, fc.eta_hi_s = fit.eta_s, fit.eta_lo_s, fit.eta_hi_s
+    fc.direction, fc.rmse = fit.direction, sigma
+    fc.interval_method = (
+        "parametric draws over the assumed reading scatter and the given ambient's uncertainty"
+    )
+    fc.params = {
+        "t_first": float(tt[0]),
+        "amplitude": fit.value_start - float(ambient),
+        "ambient": float(ambient),
+        "k_per_s": fit.k_per_s,
+        "value_fit_now": fit.value_fit_now,
+        "n_fit": float(tt.size),
+        "n_params": 2.0,
+    }
+    fc.note(
+        NoteCode.FEW_READINGS,
+        f"only {tt.size} readings: the curve toward the given ambient through them, with their "
+        f"scatter taken as {step(sigma, '.2g')} (1 sd, not measured) and the ambient as uncertain "
+        f"by {step(amb_sd)}; the interval is wide for that",
+    )
+    if fc.eta_s is None:
+        fc.note(*never_reason(fc))
+    return fc
+
+
+def few_trend(fc: Forecast, tt, yy, thr: float, limit, sigma: float) -> Forecast:
+    """Too few readings for a curve with the ambient fitted: the straight trend through them,
+    T(x) = T_now + s x, with the slope's one-sided 95 % bound as the early end and an open late
+    end (the curve may level off; nothing here says where).  The scatter is at least ``sigma``
+    (the assumed scatter of :func:`assumed_scatter`), which a line through two or three readings
+    cannot measure; with two readings it is all there is (a normal bound), with more a t bound
+    on the larger of it and the residuals' scatter."""
+    d = tt - tt[0]
+    slope, icpt = np.polyfit(d, yy, 1)
+    dof = tt.size - 2
+    resid = yy - (icpt + slope * d)
+    s2 = max(float(resid @ resid) / dof, sigma**2) if dof > 0 else sigma**2
+    sxx = float(np.sum((d - d.mean()) ** 2))
+    se = math.sqrt(s2 / sxx) if sxx > 0 else math.inf
+    now = float(icpt + slope * d[-1])
+    fc.model, fc.interval_method = "lumped", "one-sided bound of a straight trend's slope"
+    fc.model_weights = {"trend": 1.0}
+    fc.direction = "rising" if slope > 0 else "falling"
+    fc.rmse = math.sqrt(s2)
+    fc.params = {
+        "slope_per_s": float(slope),
+        "slope_se_per_s": se,
+        "value_fit_now": now,
+        "n_fit": float(tt.size),
+        "n_params": 2.0,
+    }
+    fc.note(
+        NoteCode.FEW_READINGS,
+        f"only {tt.size} readings: a straight trend, not a curve, and the "
+        "interval's late end is open (the curve may level off)",
+    )
+    toward = 1.0 if (thr > now if limit is None else limit == "upper") else -1.0
+    if (thr - now) * toward <= 0:
+        fc.eta_s = fc.eta_lo_s = fc.eta_hi_s = 0.0
+        return fc
+    if slope * toward <= 0:
+        fc.note(*never_reason(fc))
+        return fc
+    q95 = float(t_dist.ppf(0.95, dof)) if dof > 0 else Z90
+    fast = slope * toward + q95 * se
+    fc.eta_s = (thr - now) / slope  # T_now + s eta = thr
+    fc.eta_lo_s, fc.eta_hi_s = abs(thr - now) / fast, None
+    return fc

@@ -43,6 +43,28 @@ def _rss(t: np.ndarray, y: np.ndarray) -> float:
     return quick_rss(t, y)
 
 
+def smooth_rss(t: np.ndarray, y: np.ndarray) -> float:
+    """RSS of two time constants toward one ambient on the readings, when that curve is
+    monotone over them (inf otherwise, or when it cannot be fitted): the smooth shape of a
+    two-node body, which a change of the surroundings that reverses the curve is not."""
+    from thermeta.predictors.combine import binned
+    from thermeta.predictors.two_exp import fit_two_exp
+
+    tb, yb = binned(t, y)
+    f = fit_two_exp(tb, yb)
+    if not f.ok:
+        return math.inf
+    x = np.linspace(t[0], t[-1], 64)
+    d = x - f.t_first
+    slope = -f.k1 * f.b1 * np.exp(-f.k1 * d) - f.k2 * f.b2 * np.exp(-f.k2 * d)
+    if np.any(slope > 0) and np.any(slope < 0):
+        return math.inf
+    if tb.size == t.size:
+        return f.rss
+    r = y - f.curve(t)
+    return float(r @ r)
+
+
 def _exact_rss(t: np.ndarray, y: np.ndarray) -> float:
     f = fit_lumped(t, y, float(y[-1]), intervals=False)
     return f.rss if f.ok else math.inf
@@ -74,6 +96,22 @@ def slope_runs(
     return runs
 
 
+SWING_RANGE = 0.25  # ... and at least this share of the readings' whole range
+SWING_NOISE = 4.0  # a thermostat's swing spans at least this many sd of the readings' scatter
+
+
+def swings_clear(y: np.ndarray, runs: list[tuple[int, int, int]], noise_sd: float) -> bool:
+    """Whether the rises and falls of the slope runs are a thermostat's swings: their median
+    height at least SWING_NOISE sd of the scatter (a cold room swings by a degree or more
+    against a tenth of a degree of scatter; correlated scatter wanders by a few sd) and
+    SWING_RANGE of the readings' range."""
+    heights = [abs(float(y[b]) - float(y[a])) for a, b, _ in runs]
+    swing = float(np.median(heights))
+    # and the readings stay near their band: a load warming by several swings with wobbles on
+    # the way is not cycling (a room losing ground drifts by a swing or so over the window)
+    return swing >= SWING_NOISE * max(noise_sd, 1e-9) and swing >= SWING_RANGE * float(np.ptp(y))
+
+
 def find_regime(
     t: np.ndarray,
     y: np.ndarray,
@@ -85,16 +123,25 @@ def find_regime(
     exact: RssFn | None = None,
     fit_sigma: float | None = None,
     n_params: int = 3,
+    smooth: RssFn | None = None,
+    inflation: float = 1.0,
 ) -> Regime:
     """Index where the current regime starts (0 = the whole window).
 
     rss / exact: RSS of the model on a slice (i0, i1) of the readings, a quick one to rank the
     splits and an exact one to test the best (default: the fitted-ambient lumped curve);
     fit_sigma: the residual sd of the model on the whole window (default: computed here).
+    smooth: RSS of the richer single model on a slice, (default for the lumped curve: two time
+    constants toward one ambient, monotone over the slice): a change is declared only when no
+    single smooth curve of the family explains both sides (a second time constant is not a
+    change of the surroundings).  inflation: n / n_eff of the readings' scatter (correlated
+    scatter, see cleaning.Cleaned), for the caller's doors (find_door) and cycles.
     """
     n = t.size
     if n < 2 * min_points:
         return Regime(0, 0, False)
+    if smooth is None and rss is None:
+        smooth = lambda i0, i1: smooth_rss(t[i0:i1], y[i0:i1])
     rss = rss or (lambda i0, i1: _rss(t[i0:i1], y[i0:i1]))
     exact = exact or (lambda i0, i1: _exact_rss(t[i0:i1], y[i0:i1]))
     if fit_sigma is None:
@@ -106,6 +153,8 @@ def find_regime(
     if fit_sigma <= 1.5 * sig:
         return Regime(0, 0, False)
     runs = slope_runs(t, y, sig)
+    if len(runs) >= 4 and not swings_clear(y, runs, sig):
+        runs = []  # wanderings of correlated scatter, not a thermostat's swings
     if len(runs) >= 4:
         # cycling: keep the window whole unless the newest run outlasts the usual ones
         last = runs[-1]
@@ -147,6 +196,9 @@ def find_regime(
         # n_params + 1 more parameters (a second curve and the split): BIC-style, with margin
         if (rss1 - rss2) / s2 < (n_params + 1) * math.log(m) + 12.0:
             break
+        # the split has two parameters more than one smooth two-time-constant curve
+        if smooth is not None and (smooth(start, n) - rss2) / s2 < 2 * math.log(m) + 12.0:
+            break
         start = j_best
         changes += 1
         cuts.append(j_best)
@@ -161,6 +213,7 @@ def oldest_regime_end(
     *,
     min_points: int = MIN_REGIME_POINTS,
     margin: int = 2,
+    inflation: float = 1.0,
 ) -> int:
     """End index (exclusive) of the readings before the first change, or 0 if too few.
 
@@ -173,7 +226,7 @@ def oldest_regime_end(
         return 0
     end = reg.changes[0]
     for _ in range(4):
-        inner = find_regime(t[:end], y[:end], noise_sd, min_points=min_points)
+        inner = find_regime(t[:end], y[:end], noise_sd, min_points=min_points, inflation=inflation)
         if inner.cycling:
             return 0
         if not inner.changes:
@@ -296,6 +349,8 @@ class Door:
     c1: int
     j: int
     stat: float
+    rss: float = math.inf  # of the door model
+    scale: float = 1.0  # the residual variance (times the inflation) the gain was judged by
 
 
 def find_door(
@@ -307,6 +362,7 @@ def find_door(
     *,
     min_side: int = 8,
     min_tail: int = 4,
+    inflation: float = 1.0,
 ) -> Door:
     """A short disturbance (a door opened, then closed) inside the window, too short for the
     regime search (whose pieces need a dozen readings each).
@@ -328,5 +384,38 @@ def find_door(
         lambda c, j: r_pre[c] + door(c, j) + r_suf[j], min_side, m - min_tail, m - min_tail
     )
     s2 = max(best / max(m - 7, 1), 1e-18)
-    stat = (rss_single - best) / s2
-    return Door(bool(stat >= 5 * math.log(m) + 12.0), ci, ji, float(stat))
+    # correlated scatter inflates the gain: judged against the door model's own residuals
+    infl = max(inflation, lag_inflation(_door_residuals(y, r, e, ci, ji)))
+    stat = (rss_single - best) / s2 / infl
+    return Door(bool(stat >= 5 * math.log(m) + 12.0), ci, ji, float(stat), best, s2 * infl)
+
+
+def _door_residuals(y: np.ndarray, r: np.ndarray, e: np.ndarray, c: int, j: int) -> np.ndarray:
+    """Residuals of find_door's three pieces: b e before c, p + q e from c to j, b' e after."""
+    out = []
+    for a, b in ((0, c), (j, r.size)):
+        rr, ee = r[a:b], e[a:b]
+        den = float(ee @ ee)
+        out.append(rr - (float(rr @ ee) / den if den > 0 else 0.0) * ee)
+    yy, ee = y[c:j], e[c:j]
+    if yy.size >= 3:
+        X = np.column_stack([np.ones_like(ee), ee])
+        coef, *_ = np.linalg.lstsq(X, yy, rcond=None)
+        out.insert(1, yy - X @ coef)
+    return np.concatenate(out)
+
+
+def lag_inflation(res: np.ndarray) -> float:
+    """(1 + rho) / (1 - rho) of residuals with lag-one correlation rho beyond the white-noise
+    band (2 / sqrt(n)); 1 otherwise."""
+    if res.size < 8:
+        return 1.0
+    res = res - res.mean()
+    den = float(res @ res)
+    if den <= 0:
+        return 1.0
+    rho = float(res[1:] @ res[:-1]) / den
+    if rho <= 2.0 / math.sqrt(res.size):
+        return 1.0
+    rho = min(rho, 0.98)
+    return (1.0 + rho) / (1.0 - rho)

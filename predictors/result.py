@@ -12,6 +12,8 @@ from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from typing import Any
 
+from thermeta.predictors.outcome import Note, NoteCode, Reason
+
 
 def rfc3339(epoch_s: float | None) -> str | None:
     """Epoch seconds to an RFC 3339 UTC string with a ``Z`` (None stays None)."""
@@ -39,7 +41,10 @@ class Forecast:
     Units: seconds, and the temperature unit of the values passed in.
     ``eta_s`` counts from the newest reading (``t_last``); None means the fitted curve never
     reaches the threshold (or no fit could be made: see ``ok`` and ``reason``); 0 means already
-    past it.  ``eta_lo_s``/``eta_hi_s`` bound the 90 % interval; None where it is unbounded.
+    past it.  ``eta_lo_s``/``eta_hi_s`` bound the 90 % interval; None where it is unbounded
+    (``eta_lo_s`` is inf when no curve the readings allow reaches the threshold).
+    Outcomes are codes: ``reason_code`` (a :class:`Reason`) when there is no forecast, and
+    ``notes`` (each a :class:`Note`: a code and its sentence); ``warnings`` are the sentences.
     """
 
     threshold: float
@@ -69,11 +74,40 @@ class Forecast:
     n_outliers: int = 0
     ok: bool = True
     reason: str | None = None
-    warnings: list[str] = field(default_factory=list)
+    reason_code: Reason | None = None
+    notes: list[Note] = field(default_factory=list)
+    # which model made the forecast and why: the weights of the candidates that were scored
+    # (a single model: {model: 1.0}) and how they were judged
+    model_weights: dict[str, float] = field(default_factory=dict)
+    model_basis: str | None = None
+    # a given ambient: its value, and whether the readings contradict it (more than 2 sd away)
+    ambient_given: float | None = None
+    ambient_contradicted: bool = False
     # Model parameters needed to draw the curve (t0, T0, ...), model-specific.
     params: dict[str, float] = field(default_factory=dict)
     # The model's own fit object where it can draw its curve (core models); not part of the JSON.
     model_fit: Any = field(default=None, repr=False, compare=False)
+
+    @property
+    def warnings(self) -> list[str]:
+        """The notes' sentences, in order (a copy: add notes with :meth:`note`)."""
+        return [n.text for n in self.notes]
+
+    def note(self, code: NoteCode, text: str) -> None:
+        """Add a remark (its code and the sentence a person reads)."""
+        self.notes.append(Note(code, text))
+
+    def drop_notes(self, *codes: NoteCode) -> None:
+        """Remove the notes with these codes."""
+        self.notes[:] = [n for n in self.notes if n.code not in codes]
+
+    def has_note(self, *codes: NoteCode) -> bool:
+        return any(n.code in codes for n in self.notes)
+
+    def fail(self, code: Reason, text: str) -> Forecast:
+        """No forecast: mark it failed with a reason (code and sentence); returns itself."""
+        self.ok, self.reason_code, self.reason = False, code, text
+        return self
 
     @property
     def crossing_t(self) -> float | None:
@@ -128,5 +162,24 @@ class Forecast:
             "interval_method": self.interval_method,
             "fit_ok": self.ok,
             "reason": self.reason,
-            "warnings": list(self.warnings),
+            "reason_code": None if self.reason_code is None else str(self.reason_code),
+            "warnings": self.warnings,
+            "notes": [n.to_dict() for n in self.notes],
+            "model_weights": {k: round(float(v), 4) for k, v in self.model_weights.items()},
+            "model_basis": self.model_basis,
+            "ambient_given": _num(self.ambient_given),
+            "ambient_contradicted": bool(self.ambient_contradicted),
         }
+
+
+def never_reason(fc: Forecast) -> tuple[NoteCode, str]:
+    """Why there is no crossing: moving away from the threshold, or levelling off short of it."""
+    if fc.value_now is not None and fc.direction is not None:
+        away = (fc.direction == "rising") == (fc.value_now > fc.threshold)
+        if away:
+            return (
+                NoteCode.NEVER_AWAY,
+                "the readings move away from the threshold without having crossed it; "
+                "give the limit's side (upper/lower) if being beyond it already counts",
+            )
+    return NoteCode.NEVER_LEVELS_OFF, "the fitted curve levels off before the threshold"

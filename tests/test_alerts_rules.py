@@ -36,7 +36,7 @@ def fc_at(
     state: str | None = None,
     spread: float = 0.15,
     horizon_s: float = 86400.0,
-    warnings: list[str] | None = None,
+    notes: list[dict] | None = None,
     regime_start: float | None = None,
     direction: str = "rising",
 ) -> dict:
@@ -64,7 +64,8 @@ def fc_at(
         "k_per_s": K,
         "fit_ok": True,
         "last_reading_at": rfc3339(T0_EPOCH + t_s),
-        "warnings": warnings or [],
+        "warnings": [n["text"] for n in notes or []],
+        "notes": notes or [],
         "regime_start": rfc3339(regime_start),
         "ambient_mode": "known",
     }
@@ -190,12 +191,12 @@ def test_stale_once_and_resumed_once():
 def test_regime_change_alerts_once_per_new_change_not_for_jitter():
     """A change of surroundings at t=1000 s alerts once; the estimate wandering by a reading
     does not alert again; a later change (t=5000 s) does."""
-    note = ["the surroundings changed 1 time(s); fitted the newest 40 readings only"]
+    note = [{"code": "regime_change", "text": "the surroundings changed 1 time(s); fitted ..."}]
     seq = [
-        (1200, fc_at(1200, warnings=note, regime_start=T0_EPOCH + 1000)),
-        (1500, fc_at(1500, warnings=note, regime_start=T0_EPOCH + 1060)),
+        (1200, fc_at(1200, notes=note, regime_start=T0_EPOCH + 1000)),
+        (1500, fc_at(1500, notes=note, regime_start=T0_EPOCH + 1060)),
         (1800, fc_at(1800, regime_start=T0_EPOCH + 1060)),
-        (5400, fc_at(5400, warnings=note, regime_start=T0_EPOCH + 5000)),
+        (5400, fc_at(5400, notes=note, regime_start=T0_EPOCH + 5000)),
     ]
     _, out = run(seq, RuleParams(threshold=THR, lead_s=60))
     assert [(t, e.event) for t, e in out] == [(1200, "regime"), (5400, "regime")]
@@ -340,7 +341,7 @@ def test_the_daemons_side_is_used_when_given():
     assert out == []
 
 
-NOTE = ["the surroundings changed 1 time(s); fitted the newest 40 readings only"]
+NOTE = [{"code": "regime_change", "text": "the surroundings changed 1 time(s); fitted ..."}]
 
 
 def _excursion(
@@ -363,7 +364,7 @@ def _excursion(
                     t,
                     value=past if is_past else inside,
                     state="crossed" if is_past else "steady",
-                    warnings=NOTE if t >= start_s else None,
+                    notes=NOTE if t >= start_s else None,
                     regime_start=T0_EPOCH + start_s if t >= start_s else None,
                     direction="rising" if is_past else "falling",  # no crossing ahead inside
                 ),
@@ -422,7 +423,7 @@ def test_a_change_inside_a_defrost_hold_is_not_told():
                     t,
                     value=THR - 3,
                     state="steady",
-                    warnings=NOTE,
+                    notes=NOTE,
                     regime_start=T0_EPOCH + start,
                     direction="falling",
                 ),

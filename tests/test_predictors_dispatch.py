@@ -125,3 +125,20 @@ def test_auto_does_not_prefer_the_first_shape_on_a_near_tie(monkeypatch):
     assert fc.model == "sphere"
     note = next(w for w in fc.warnings if w.startswith("model chosen by AICc"))
     assert "slab +1.0" in note and "cylinder +6.0" in note
+
+
+def test_a_centre_probe_keeps_a_stated_bound_on_the_given_ambient():
+    """A sphere's centre warming toward 25 degC (the series solution, synth_conduction), told a
+    wrong ambient of 40 degC: the given value is kept in ``ambient_given`` and the forecast
+    flags a contradiction exactly when the fit pulls the ambient more than 2 sd (5 degC) from
+    it; with ``ambient_within`` = 1 the fit's ambient stays within 39-41 degC."""
+    from thermeta.predictors.outcome import NoteCode
+
+    s = _sphere_case()
+    free = forecast(s.t, s.y, 8.0, model="sphere", ambient=40.0)
+    assert free.ok and free.ambient_given == 40.0
+    pulled = abs(free.ambient - 40.0) > 2 * 2.5
+    assert free.ambient_contradicted == pulled == free.has_note(NoteCode.AMBIENT_CONTRADICTED)
+    bounded = forecast(s.t, s.y, 8.0, model="sphere", ambient=40.0, ambient_within=1.0)
+    assert bounded.ok and 39.0 - 1e-6 <= bounded.ambient <= 41.0 + 1e-6
+    assert bounded.to_dict()["ambient_given"] == 40.0

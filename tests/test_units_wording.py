@@ -106,12 +106,14 @@ def _known_load(seed: int = 4):
 
 
 def test_the_display_unit_changes_no_number():
-    """The same forecast with and without a display unit: every field but the warnings equal,
-    and as many warnings."""
+    """The same forecast with and without a display unit: every field but the warnings' words
+    equal, and as many warnings with the same codes."""
     t, y = _known_load()
     plain = forecast(t, y, 12.0, ambient=25.0).to_dict()
     shown = forecast(t, y, 12.0, ambient=25.0, shown=F).to_dict()
     assert len(plain.pop("warnings")) == len(shown.pop("warnings"))
+    codes = [n["code"] for n in plain.pop("notes")]
+    assert codes and codes == [n["code"] for n in shown.pop("notes")]
     assert shown == plain
 
 

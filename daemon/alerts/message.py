@@ -85,6 +85,14 @@ def fit_clause(a: dict[str, Any]) -> str:
             if a.get("ambient") is not None
             else "ambient from the air probe"
         )
+    elif mode == "known" and a.get("ambient_given") is not None:
+        # the item's own value, never the fit's; and said plainly when the readings disagree
+        given = temp(a["ambient_given"], a["unit"])
+        where = (
+            f"the readings disagree with the given ambient {given} (they point to {amb})"
+            if a.get("ambient_contradicted")
+            else f"given ambient {given}"
+        )
     else:
         where = f"{'given' if mode == 'known' else 'fitted'} ambient {amb}"
     return f"{where}, time constant {tau}"
@@ -278,6 +286,8 @@ def build_alert(
         "episode": (fc.get("episode") or {}).get("id"),
         "ambient": fc.get("ambient"),
         "ambient_mode": fc.get("ambient_mode"),
+        "ambient_given": fc.get("ambient_given"),
+        "ambient_contradicted": bool(fc.get("ambient_contradicted")),
         "time_constant_s": fc.get("time_constant_s"),
         "k_per_s": fc.get("k_per_s"),
         "last_reading_at_s": epoch(last),

@@ -64,6 +64,7 @@ from thermeta.daemon.states import (
     Side,
     rank,
 )
+from thermeta.predictors.outcome import REGIME_CODES
 
 __all__ = [
     "ItemAlertState",
@@ -75,7 +76,6 @@ __all__ = [
     "step",
 ]
 
-REGIME_NOTE = "the surroundings changed"
 REGIME_GAP_S = 1800.0  # a change found within this of the last one is the same change, re-estimated
 CALM_TARGET = (ItemState.HEADING, ItemState.WAITING, ItemState.LEARNING)
 
@@ -514,8 +514,8 @@ def _regime(
     # hold is taken note of without an alert (the defrost is the change).  With an alarm delay,
     # a change waits until an incident is open (a warning raised, past its delay): a door opened
     # for a minute and shut again, which puts nothing at stake, is never told.
-    warnings = fc.get("warnings") or []
-    if not any(str(w).startswith(REGIME_NOTE) for w in warnings):
+    notes = fc.get("notes") or []
+    if not any(n.get("code") in REGIME_CODES for n in notes):
         return []
     start = epoch(fc.get("regime_start"))
     if start is None:

@@ -25,8 +25,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
         "--ambient-within",
         type=float,
         metavar="W",
-        help="the known ambient is right to within +-W (sd W / sqrt 3; default a 2.5 degC sd), "
-        "in the unit of the values",
+        help="the known ambient is right to within +-W: a hard bound on the fitted ambient "
+        "(sd W / sqrt 3; default a 2.5 degC sd, no bound), in the unit of the values",
     )
     p.add_argument(
         "--model",
@@ -93,10 +93,11 @@ def summary(fc, unit: str, source: str) -> str:
     return "\n".join(lines)
 
 
-def _ambient_sd_c(args: argparse.Namespace) -> float | None:
-    """The given ambient's doubt as a sd in degC (None: no ambient given)."""
+def _ambient_doubt(args: argparse.Namespace) -> dict:
+    """How far off the given ambient may be, as the forecast's keyword (degC): a stated bound
+    (--ambient-within, a hard bound on the fitted ambient) or the default doubt."""
     from thermeta.daemon.units import scale_to_celsius
-    from thermeta.predictors.forecast import AMBIENT_UNCERTAINTY, ambient_sd_within
+    from thermeta.predictors.forecast import AMBIENT_UNCERTAINTY
 
     if args.ambient_within is not None:
         if args.ambient is None:
@@ -105,8 +106,8 @@ def _ambient_sd_c(args: argparse.Namespace) -> float | None:
             )
         if not args.ambient_within >= 0 or args.ambient_within == float("inf"):
             raise InputError(f"--ambient-within must be a number >= 0, got {args.ambient_within:g}")
-        return ambient_sd_within(scale_to_celsius(args.ambient_within, args.unit))
-    return None if args.ambient is None else AMBIENT_UNCERTAINTY
+        return {"ambient_within": scale_to_celsius(args.ambient_within, args.unit)}
+    return {} if args.ambient is None else {"ambient_uncertainty": AMBIENT_UNCERTAINTY}
 
 
 def _celsius(values, unit: str):
@@ -124,10 +125,10 @@ def run(args: argparse.Namespace) -> int:
     from thermeta.daemon.ingest.csvio import read_series
     from thermeta.daemon.units import from_celsius, shown_in, to_celsius, to_item_units
     from thermeta.predictors import forecast
-    from thermeta.predictors.forecast import AMBIENT_UNCERTAINTY
+    from thermeta.predictors.outcome import Reason
 
     try:
-        amb_sd = _ambient_sd_c(args)
+        doubt = _ambient_doubt(args)
         series = read_series(args.csv)
         if series.t.size < 2:
             raise InputError(
@@ -158,9 +159,9 @@ def run(args: argparse.Namespace) -> int:
             ambient_y=series.ambient_y if args.ambient is None else None,
             limit=predictor_side(side),
             shown=shown_in(args.unit),
-            ambient_uncertainty=AMBIENT_UNCERTAINTY if amb_sd is None else amb_sd,
+            **doubt,
         )
-        if not fc.ok and fc.reason and fc.reason.startswith("too few"):
+        if not fc.ok and fc.reason_code == Reason.TOO_FEW_READINGS:
             raise InputError(f"{args.csv}:{series.last_line}: {fc.reason}")
     except InputError as exc:
         print(f"thermeta forecast: {exc}", file=sys.stderr)

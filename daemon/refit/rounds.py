@@ -57,8 +57,9 @@ from thermeta.daemon.levels.spec import Level, levels_of
 from thermeta.daemon.refit.episodes import EpisodeKeeper
 from thermeta.daemon.refit.judging import judge_item
 from thermeta.daemon.states import AmbientMode, ItemState, Side, predictor_side
-from thermeta.daemon.units import shown_in
+from thermeta.daemon.units import scale_to_celsius, shown_in
 from thermeta.predictors import forecast
+from thermeta.predictors.outcome import Reason
 from thermeta.predictors.prior import Prior, learn, learnable
 from thermeta.predictors.result import Forecast
 from thermeta.storage.episodes import Episode
@@ -111,8 +112,8 @@ def forecast_kwargs(
         "limit": predictor_side(side),
         "shown": shown_in(cfg.unit),
     }  # the warnings' temperatures
-    if cfg.ambient is not None and cfg.ambient_sd_c is not None:
-        kw["ambient_uncertainty"] = cfg.ambient_sd_c
+    if cfg.ambient is not None and cfg.ambient_within is not None:
+        kw["ambient_within"] = scale_to_celsius(cfg.ambient_within, cfg.unit)
     return kw
 
 
@@ -327,6 +328,7 @@ class Refitter:
                 n_points=len(rows),
                 ok=False,
                 reason=f"fit error: {exc.__class__.__name__}: {exc}"[:300],
+                reason_code=Reason.FIT_FAILED,
             )
             if len(rows):
                 fc.t_last, fc.value_now = float(t.max()), float(y[np.argmax(t)])
