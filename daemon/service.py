@@ -7,8 +7,8 @@ APScheduler's worker (refits, retention, heartbeat), and any plug-in's own (the 
 
 Plug-in seam: if a module ``thermeta.daemon.alerts`` exists with ``attach(service)``, it is called
 once the store is open; an object it returns gets ``start()`` before ingest starts and ``stop()``
-at shutdown.  Plug-ins use ``add_forecast_listener``, ``publish``, ``store``, ``config``,
-``clock`` and ``stats``.
+at shutdown.  Plug-ins use ``add_judge``, ``add_forecast_listener``, ``publish``, ``store``,
+``config``, ``clock`` and ``stats``.
 """
 
 from __future__ import annotations
@@ -61,6 +61,11 @@ class Service:
         item's refit."""
         self.refitter.listeners.append(cb)
 
+    def add_judge(self, cb: Listener) -> None:
+        """``cb(update)`` after each item's refit, BEFORE its forecast is stored and published:
+        it may change the states in ``update.body`` (the alert rules hold them there)."""
+        self.refitter.judges.append(cb)
+
     def publish(self, topic: str, payload: str | bytes, qos: int = 1, retain: bool = False):
         if self.link is None:
             raise RuntimeError("the service is not connected yet")
@@ -84,6 +89,10 @@ class Service:
     def start(self) -> None:
         cfg = self.config
         log.info("store %s", safe_url(cfg.storage.url))
+        from thermeta.daemon.config import overrides
+
+        for note in overrides(cfg):
+            log.info("%s", note)
         self.store.create_all()
         self._load_items()
         self.refitter.load_previous()

@@ -3,8 +3,9 @@
 
 Long simulated traces of a cold room (an air probe and a load probe that follows the air) are
 replayed through the daemon's own pure logic, refit by refit: ``predictors.forecast`` on the
-item's sliding window (as the refitter calls it), ``daemon.refit.classify`` for the state, and
-``daemon.alerts.rules.step`` for the alerts.  No broker, no store, no clock: time is passed in.
+item's sliding window (as the refitter calls it), ``daemon.refit.judging.judge_item`` for the
+states, and ``daemon.alerts.rules.step`` for the alerts.  No broker, no store, no clock: time is
+passed in.
 
     python scripts/bench_alerts.py                 # about 3-5 minutes on one core
     python scripts/bench_alerts.py --quick         # a smoke run
@@ -38,7 +39,9 @@ import numpy as np
 from thermeta.daemon.alerts.rules import ItemAlertState, RuleParams, step
 from thermeta.daemon.config import ItemConfig
 from thermeta.daemon.ingest.defrost import defrost_status
-from thermeta.daemon.refit.rounds import DEFROST_LOOKBACK_S, classify, forecast_kwargs, limit_side
+from thermeta.daemon.levels.spec import auto_side, levels_of
+from thermeta.daemon.refit.judging import judge_item
+from thermeta.daemon.refit.rounds import DEFROST_LOOKBACK_S, forecast_kwargs
 from thermeta.daemon.simulation import synth
 from thermeta.daemon.simulation.physics import first_crossing, thermostat_pieces, two_stage
 from thermeta.daemon.simulation.synth import Corruption
@@ -223,7 +226,8 @@ def replay(
     st, params = ItemAlertState(), RuleParams.of(cfg)
     out: list[tuple[float, str]] = []
     w = cfg.window_s
-    limit = limit_side(cfg, float(y[0]))  # the refitter's rule: from the first stored reading
+    (level,) = levels_of(cfg)
+    side = auto_side(level, float(y[0]))  # the refitter's rule: decided once, when first judged
     for now in times:
         lo, hi = np.searchsorted(t, now - w, "right"), np.searchsorted(t, now, "right")
         if hi == 0:
@@ -237,16 +241,16 @@ def replay(
             )
             kw = dict(ambient_t=air[0][alo:ahi], ambient_y=air[1][alo:ahi])
         # with the refit's own arguments (no learned prior: each trace is a new item)
-        fc = forecast(tw, yw, cfg.threshold_c, **dict(forecast_kwargs(cfg, limit), **kw))
-        state = classify(fc, float(now), float(tw[-1]), cfg, limit)
-        body = fc.to_dict()
-        body.update(state=state, limit=limit)
+        fc = forecast(tw, yw, level.threshold_c, **dict(forecast_kwargs(cfg, side), **kw))
+        _state, body = judge_item(
+            cfg.name, cfg, (level,), [fc], {level.name: side}, float(now), float(tw[-1])
+        )
         if cfg.defrost_topic:
             since = now - cfg.defrost_max_s - cfg.defrost_recovery_s - DEFROST_LOOKBACK_S
             body["defrost"] = defrost_status([r for r in defrost if since <= r[0] <= now])
         for ev in step(st, body, params, float(now)):
-            if ev.level in levels and not ev.reminder:
-                out.append((float(now), ev.level))
+            if ev.event in levels and not ev.reminder:
+                out.append((float(now), ev.event))
     return out
 
 

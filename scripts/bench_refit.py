@@ -51,7 +51,7 @@ def _series(
     The ranges keep most items short of their threshold (approaching or steady), as on a site."""
     rng = np.random.default_rng([seed, i])
     span = HISTORY_S + 30 * DT_S
-    if family in ("known", "fitted"):
+    if family in ("known", "fitted", "levels"):
         s = synth.lumped(
             seed * 100_000 + i,
             T0=rng.uniform(1, 4),
@@ -102,6 +102,12 @@ def _item_toml(family: str, name: str) -> str:
     base = f'[[item]]\nname = "{name}"\ntopic = "bench/{name}"\n'
     if family == "known":
         return base + "threshold = 8.0\nambient = 25.0\n"
+    if family == "levels":  # the same probes asked three questions: a fit per threshold
+        return (
+            base + "threshold = 8.0\nambient = 25.0\n"
+            '[[item.level]]\nname = "warning"\nthreshold = 6.0\nside = "above"\n'
+            '[[item.level]]\nname = "floor"\nthreshold = 0.0\nside = "below"\n'
+        )
     if family == "fitted":
         return base + "threshold = 8.0\n"
     if family == "cycling":
@@ -194,6 +200,7 @@ def run_case(family: str, n_items: int, rounds: int, seed: int, folder: Path) ->
 
 DESCRIBE = {
     "known": "lumped, ambient given",
+    "levels": "lumped, ambient given, 3 levels",
     "fitted": "lumped, ambient fitted",
     "cycling": "cold room, compressor cycling",
     "measured": "lumped, air probe measured",

@@ -5,7 +5,10 @@
     alert_events  every alert raised, with its one-sentence message and full JSON body
     outbox        one row per (alert, hook): pending until the hook took it, with attempts,
                   the next try and the last error; delivered rows are never sent again
-    alert_acks    ``thermeta ack``: who silenced which item's episode, and when
+    alert_acks    ``thermeta ack``: who acknowledged which item's incident, and when
+
+(The columns ``level`` and ``episode`` of ``alert_events`` and ``alert_acks`` hold an alert's
+event and incident number: their names are those of stores made by earlier versions.)
 
 A raised alert, its outbox rows and the new rule state are written in ONE transaction: either the
 alert exists and every hook will get it, or nothing happened and the next refit decides again.
@@ -159,8 +162,8 @@ class AlertStore:
                     .values(
                         key=a["id"],
                         item=a["item"],
-                        level=a["level"],
-                        episode=a["episode"],
+                        level=a["event"],
+                        episode=a["incident"],
                         made_at=now,
                         sentence=a["sentence"],
                         body=json.dumps(a),
@@ -244,6 +247,18 @@ class AlertStore:
         with self.store.reading() as conn:
             return [dict(r._mapping) for r in conn.execute(select(outbox).order_by(outbox.c.id))]
 
+    def deliveries(self, event_ids: list[int]) -> dict[int, list[tuple[str, str]]]:
+        """(hook, status) of each of the events' outbox rows, by event id."""
+        out: dict[int, list[tuple[str, str]]] = {}
+        for i in range(0, len(event_ids), 500):
+            q = select(outbox.c.event_id, outbox.c.hook, outbox.c.status).where(
+                outbox.c.event_id.in_(event_ids[i : i + 500])
+            )
+            with self.store.reading() as conn:
+                for eid, hook, status in conn.execute(q):
+                    out.setdefault(int(eid), []).append((str(hook), str(status)))
+        return out
+
     # -- events and acks ----------------------------------------------------------------------
     def events(self, item: str | None = None, limit: int = 200) -> list[dict[str, Any]]:
         q = select(alert_events).order_by(alert_events.c.id.desc()).limit(limit)
@@ -256,19 +271,28 @@ class AlertStore:
         return rows[::-1]
 
     def add_ack(
-        self, item: str, episode: int, now: float, by: str | None, note: str | None
+        self, item: str, incident: int, now: float, by: str | None, note: str | None
     ) -> None:
         with self.store.transaction() as conn:
             conn.execute(
                 insert(alert_acks).values(
-                    item=item, episode=episode, acked_at=now, by=by, note=note
+                    item=item, episode=incident, acked_at=now, by=by, note=note
                 )
             )
 
-    def ack_of(self, item: str, episode: int) -> dict[str, Any] | None:
+    def acks(self, item: str) -> list[dict[str, Any]]:
+        """Every acknowledgement of the item, oldest first (``incident`` for the column)."""
+        q = select(alert_acks).where(alert_acks.c.item == item).order_by(alert_acks.c.id)
+        with self.store.reading() as conn:
+            rows = [dict(r._mapping) for r in conn.execute(q)]
+        for r in rows:
+            r["incident"] = r.pop("episode")
+        return rows
+
+    def ack_of(self, item: str, incident: int) -> dict[str, Any] | None:
         q = (
             select(alert_acks)
-            .where(alert_acks.c.item == item, alert_acks.c.episode == episode)
+            .where(alert_acks.c.item == item, alert_acks.c.episode == incident)
             .order_by(alert_acks.c.id)
             .limit(1)
         )

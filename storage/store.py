@@ -38,6 +38,7 @@ BUSY_TIMEOUT_MS = 15000
 PLUGIN_MODULES = (
     "thermeta.storage.alerts",
     "thermeta.storage.priors",
+    "thermeta.storage.episodes",
 )  # other parts' tables, joined to schema.metadata
 
 
@@ -284,9 +285,10 @@ class Store:
         self,
         reading_rows: Sequence[tuple | dict[str, Any]],
         dead: Sequence[DeadLetter] = (),
+        marks: Sequence[Any] = (),
     ) -> int:
-        """Insert readings (duplicates of (item_id, ts) ignored) and dead letters in ONE
-        transaction.
+        """Insert readings (duplicates of (item_id, ts) ignored) and dead letters, and apply
+        episode marks (starts and ends from MQTT, ``storage/episodes.py``), in ONE transaction.
 
         reading_rows: tuples (item_id, ts, value_c, flags, received_at), or dicts with those keys.
         Returns the number of readings newly stored where the driver reports it, else -1.
@@ -313,6 +315,10 @@ class Store:
                     stored = self._insert_one_by_one(conn, rows)
             if dead:
                 conn.execute(insert(dead_letters), [asdict(d) for d in dead])
+            if marks:
+                from thermeta.storage.episodes import apply_marks
+
+                apply_marks(conn, list(marks))
         return stored
 
     @staticmethod
@@ -435,8 +441,14 @@ class Store:
         with self.reading() as conn:
             return [StoredForecast(n, s, float(m), json.loads(b)) for n, s, m, b in conn.execute(q)]
 
-    def forecast_history(self, item: str, limit: int = 100) -> list[StoredForecast]:
-        """The item's stored forecasts, newest first."""
+    def forecast_history(
+        self,
+        item: str,
+        limit: int = 100,
+        since: float | None = None,
+        until: float | None = None,
+    ) -> list[StoredForecast]:
+        """The item's stored forecasts (made within [since, until] when given), newest first."""
         item_id = self.item_id(item)
         if item_id is None:
             return []
@@ -446,6 +458,10 @@ class Store:
             .order_by(forecasts.c.id.desc())
             .limit(limit)
         )
+        if since is not None:
+            q = q.where(forecasts.c.made_at >= since)
+        if until is not None:
+            q = q.where(forecasts.c.made_at <= until)
         with self.reading() as conn:
             return [StoredForecast(item, s, float(m), json.loads(b)) for m, s, b in conn.execute(q)]
 

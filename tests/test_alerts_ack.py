@@ -1,4 +1,4 @@
-"""``thermeta ack``: silences the reminders of the open episode (and only that one), is recorded
+"""``thermeta ack``: silences the reminders of the open incident (and only that one), is recorded
 with who and when, and says clearly when there is nothing to acknowledge."""
 
 from __future__ import annotations
@@ -24,7 +24,7 @@ def ack(capsys, cfg_path: str, *args: str) -> SimpleNamespace:
     return SimpleNamespace(returncode=code, stdout=out.out, stderr=out.err)
 
 
-def test_ack_stops_reminders_for_the_episode_and_is_recorded(tmp_path, capsys):
+def test_ack_stops_reminders_for_the_incident_and_is_recorded(tmp_path, capsys):
     """Crossed with reminders every 10 min; after `thermeta ack trailer-4 --by ana` no more
     reminders; after recovery a new crossing alerts and reminds again."""
     path = write_config(tmp_path, "")
@@ -44,16 +44,16 @@ def test_ack_stops_reminders_for_the_episode_and_is_recorded(tmp_path, capsys):
     assert r.returncode == 2 and "no alerts recorded for item 'trailer-4'" in r.stderr
     at(0, THR - 2, "steady")
     r = ack(capsys, path, "trailer-4")
-    assert r.returncode == 1 and "no open alert episode" in r.stderr
+    assert r.returncode == 1 and "no open incident" in r.stderr
     at(60, THR + 1, "crossed")
     at(700, THR + 1, "crossed")  # a reminder (remind_every = 600 s)
     r = ack(capsys, path, "trailer-4", "--by", "ana", "--note", "door shut, compressor reset")
     assert r.returncode == 0, r.stderr
-    assert "episode 1 (crossed) acknowledged by ana" in r.stdout
+    assert "incident 1 (limit crossed) acknowledged by ana" in r.stdout
     for t in (1400, 2100, 2800):
         at(t, THR + 1, "crossed")
-    levels = [(e["level"], e["body"]["reminder"]) for e in AlertStore(store).events()]
-    assert levels == [("crossed", False), ("crossed", True)]
+    events = [(e["body"]["event"], e["body"]["reminder"]) for e in AlertStore(store).events()]
+    assert events == [("crossed", False), ("crossed", True)]
     rec = AlertStore(store).ack_of("trailer-4", 1)
     assert rec["by"] == "ana" and rec["note"] == "door shut, compressor reset"
     r = ack(capsys, path, "trailer-4")
@@ -61,7 +61,10 @@ def test_ack_stops_reminders_for_the_episode_and_is_recorded(tmp_path, capsys):
     at(3000, THR - 1, "steady")  # back inside by more than the 0.5 degC band
     at(4000, THR + 1, "crossed")
     at(4700, THR + 1, "crossed")
-    levels = [(e["level"], e["episode"], e["body"]["reminder"]) for e in AlertStore(store).events()]
-    assert levels[2:] == [("recovered", 1, False), ("crossed", 2, False), ("crossed", 2, True)]
+    events = [
+        (e["body"]["event"], e["body"]["incident"], e["body"]["reminder"])
+        for e in AlertStore(store).events()
+    ]
+    assert events[2:] == [("recovered", 1, False), ("crossed", 2, False), ("crossed", 2, True)]
     svc.stop()
     store.close()

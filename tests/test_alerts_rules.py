@@ -101,14 +101,14 @@ def test_approaching_once_at_least_lead_before_the_true_crossing_then_crossed_th
         fc["last_reading_at"] = rfc3339(T0_EPOCH + t)
     st, out = run(seq + cool, P)
     assert not any(ev.reminder for _, ev in out)  # crossed for less than remind_every_s
-    levels = [ev.level for _, ev in out]
+    levels = [ev.event for _, ev in out]
     assert levels == ["approaching", "crossed", "recovered"]
     t_app, t_crossed, _t_rec = (t for t, _ in out)
     assert t_cross - t_app >= P.lead_s
     assert t_crossed >= t_cross and t_crossed - t_cross < 300 + 1e-9
     assert newton(0) < THR  # the start is inside the limit
     assert out[2][1].context["by"] == "band"
-    assert st.level == "clear" and st.episode == 1
+    assert st.levels["limit"].state == "steady" and st.incident == 1 and not st.incident_open
 
 
 def test_early_end_of_the_interval_decides_not_the_middle():
@@ -116,7 +116,7 @@ def test_early_end_of_the_interval_decides_not_the_middle():
     fc = fc_at(0)
     fc.update(eta_s=4200.0, eta_lo_s=3000.0, eta_hi_s=6000.0, state="approaching")
     _, out = run([(0, fc)], P)
-    assert [e.level for _, e in out] == ["approaching"]
+    assert [e.event for _, e in out] == ["approaching"]
     fc2 = dict(fc, eta_lo_s=3700.0)
     _, out2 = run([(0, fc2)], P)
     assert out2 == []
@@ -142,7 +142,7 @@ def test_no_flapping_around_the_threshold():
         fc.update(eta_s=60.0, eta_lo_s=30.0, eta_hi_s=90.0)
         seq.append((i * 60.0, fc))
     _, out = run(seq, P)
-    assert [e.level for _, e in out if not e.reminder] == ["approaching", "crossed"]
+    assert [e.event for _, e in out if not e.reminder] == ["approaching", "crossed"]
 
 
 def test_inside_but_not_by_the_band_recovers_after_the_hold_time():
@@ -150,7 +150,7 @@ def test_inside_but_not_by_the_band_recovers_after_the_hold_time():
     seq = [FIRST, (0, fc_at(0, value=THR + 1, state="crossed"))]
     seq += [(60.0 * i, fc_at(0, value=THR - 0.2, state="steady")) for i in range(1, 8)]
     _, out = run(seq, P)
-    rec = [(t, e) for t, e in out if e.level == "recovered"]
+    rec = [(t, e) for t, e in out if e.event == "recovered"]
     assert len(rec) == 1
     assert rec[0][0] == pytest.approx(60 + 300)
     assert rec[0][1].context["by"] == "hold"
@@ -164,8 +164,8 @@ def test_approach_that_eases_clears_only_after_hold():
     far = dict(near, eta_s=9000.0, eta_lo_s=8000.0, eta_hi_s=10000.0)
     seq = [(0, near), (100, far), (200, near), (300, far), (500, far), (700, far)]
     _, out = run(seq, P)
-    assert [(t, e.level) for t, e in out] == [(0, "approaching"), (700, "recovered")]
-    assert out[1][1].context["from_level"] == "approaching"
+    assert [(t, e.event) for t, e in out] == [(0, "approaching"), (700, "recovered")]
+    assert out[1][1].context["from_state"] == "approaching"
 
 
 def test_reminders_while_crossed_and_ack_silences_them():
@@ -185,7 +185,7 @@ def test_stale_once_and_resumed_once():
     seq = [(0, fc_at(0))] + [(300.0 * i, dict(fc_at(0), state="stale")) for i in range(1, 5)]
     seq.append((1800, fc_at(0)))
     _, out = run(seq, RuleParams(threshold=THR, lead_s=60))
-    assert [e.level for _, e in out] == ["stale", "resumed"]
+    assert [e.event for _, e in out] == ["stale", "resumed"]
 
 
 def test_regime_change_alerts_once_per_new_change_not_for_jitter():
@@ -199,7 +199,7 @@ def test_regime_change_alerts_once_per_new_change_not_for_jitter():
         (5400, fc_at(5400, notes=note, regime_start=T0_EPOCH + 5000)),
     ]
     _, out = run(seq, RuleParams(threshold=THR, lead_s=60))
-    assert [(t, e.level) for t, e in out] == [(1200, "regime"), (5400, "regime")]
+    assert [(t, e.event) for t, e in out] == [(1200, "regime"), (5400, "regime")]
 
 
 def test_lower_limit_falling_toward_a_floor():
@@ -252,7 +252,7 @@ def test_lower_limit_falling_toward_a_floor():
         ),
     ]
     _, out = run(seq, p)
-    assert [(t, e.level) for t, e in out] == [
+    assert [(t, e.event) for t, e in out] == [
         (0, "approaching"),
         (3000, "crossed"),
         (4100, "recovered"),
@@ -291,8 +291,8 @@ def test_the_sentence_carries_the_numbers():
     a = build_alert("trailer-4", fc, evs[0], st, P, now, unit="C", silence_s=900)
     s = a["sentence"]
     assert remaining_s(fc, "eta_s", now) == pytest.approx(2520.0)
-    assert s.startswith("trailer-4 is approaching its threshold: ")
-    assert f"{newton(600):.1f} °C now" in s and "threshold of -15.0 °C" in s
+    assert s.startswith("trailer-4 is approaching its limit of -15.0 °C: ")
+    assert f"{newton(600):.1f} °C now" in s
     assert "(in 42 min; 90 % interval" in s and "in 27 min to 68 min" in s
     # the ambient says where it came from: the item's config (here), its air probe, or the fit
     assert "; given ambient 12.0 °C, time constant 10 h 00 min" in s
@@ -304,25 +304,27 @@ def test_the_sentence_carries_the_numbers():
     assert s.count(". ") == 0 and s.endswith(".")
     assert a["crossing_at"] == rfc3339(now + 2520.0)
     assert a["id"] == "trailer-4:1:approaching:1"
-    rec = sentence(dict(a, level="recovered", from_level="crossed", by="band"))
-    assert rec.startswith("trailer-4 is back below its threshold by more than the 0.5 °C band: ")
-    for level in ("crossed", "recovered", "stale", "resumed", "regime"):
-        b = dict(a, level=level, from_level="crossed", by="band", regime_start_s=now)
+    rec = sentence(dict(a, event="recovered", from_state="crossed", by="band"))
+    assert rec.startswith(
+        "trailer-4 is back below its limit of -15.0 °C by more than the 0.5 °C band: "
+    )
+    for event in ("crossed", "recovered", "stale", "resumed", "regime"):
+        b = dict(a, event=event, from_state="crossed", by="band", regime_start_s=now)
         assert b["item"] in sentence(b)
     # the crossing says which way: a warming load rose above, a chilled batch fell below
-    assert sentence(dict(a, level="crossed", side="upper")).startswith(
-        "trailer-4 has risen above its threshold: "
+    assert sentence(dict(a, event="crossed", side="above")).startswith(
+        "trailer-4 has risen above its limit of -15.0 °C: "
     )
-    assert sentence(dict(a, level="crossed", side="lower")).startswith(
-        "trailer-4 has fallen below its threshold: "
+    assert sentence(dict(a, event="crossed", side="below")).startswith(
+        "trailer-4 has fallen below its limit of -15.0 °C: "
     )
-    assert sentence(dict(a, level="crossed", side=None)).startswith(
-        "trailer-4 has crossed its threshold: "
+    assert sentence(dict(a, event="crossed", side=None)).startswith(
+        "trailer-4 has crossed its limit of -15.0 °C: "
     )
 
 
-def test_the_daemons_limit_side_is_used_when_given():
-    """A forecast saying limit = "lower" (a floor, configured) makes a value under the threshold
+def test_the_daemons_side_is_used_when_given():
+    """A forecast saying side = "below" (a floor, configured) makes a value under the threshold
     a crossing even on first sight, and one above it safe."""
     p = RuleParams(threshold=10.0, lead_s=600)
     base = {
@@ -330,12 +332,12 @@ def test_the_daemons_limit_side_is_used_when_given():
         "unit": "C",
         "fit_ok": True,
         "warnings": [],
-        "limit": "lower",
+        "side": "below",
         "last_reading_at": rfc3339(T0_EPOCH),
     }
     _, out = run([(0, dict(base, state="crossed", value_now=9.0))], p)
-    assert [e.level for _, e in out] == ["crossed"]
-    _, out = run([(0, dict(base, state="steady", value_now=11.0, limit="lower"))], p)
+    assert [e.event for _, e in out] == ["crossed"]
+    _, out = run([(0, dict(base, state="steady", value_now=11.0, side="below"))], p)
     assert out == []
 
 
@@ -364,6 +366,7 @@ def _excursion(
                     state="crossed" if is_past else "steady",
                     notes=NOTE if t >= start_s else None,
                     regime_start=T0_EPOCH + start_s if t >= start_s else None,
+                    direction="rising" if is_past else "falling",  # no crossing ahead inside
                 ),
             )
         )
@@ -379,9 +382,9 @@ def test_delay_lets_a_short_excursion_pass_and_raises_a_long_one_when_it_is_over
     _, out = run([FIRST] + _excursion(3600, 10), d15)
     assert out == []
     _, out = run([FIRST] + _excursion(3600, 20), d15)
-    assert [(t, e.level) for t, e in out][:2] == [(3600 + 900, "regime"), (3600 + 900, "crossed")]
+    assert [(t, e.event) for t, e in out][:2] == [(3600 + 900, "regime"), (3600 + 900, "crossed")]
     _, out = run([FIRST] + _excursion(3600, 10), RuleParams(threshold=THR, lead_s=1800, hold_s=300))
-    assert [e.level for _, e in out] == ["regime", "crossed", "recovered"]
+    assert [e.event for _, e in out] == ["regime", "crossed", "recovered"]
     assert [t for t, e in out][:2] == [3600, 3600]
 
 
@@ -392,7 +395,7 @@ def test_delay_holds_an_approach_until_it_has_lasted():
     lead = RuleParams(threshold=THR, lead_s=3600)
     first = run(seq, lead)[1][0]
     delayed = run(seq, RuleParams(threshold=THR, lead_s=3600, delay_s=600))[1][0]
-    assert first[1].level == delayed[1].level == "approaching"
+    assert first[1].event == delayed[1].event == "approaching"
     assert delayed[0] - first[0] == 600
     # the condition lapses (no crossing forecast) for one refit after 5 minutes: counted again
     t0 = seq[0][0]
@@ -416,7 +419,14 @@ def test_a_change_inside_a_defrost_hold_is_not_told():
         (
             t,
             dict(
-                fc_at(t, value=THR - 3, state="steady", notes=NOTE, regime_start=T0_EPOCH + start),
+                fc_at(
+                    t,
+                    value=THR - 3,
+                    state="steady",
+                    notes=NOTE,
+                    regime_start=T0_EPOCH + start,
+                    direction="falling",
+                ),
                 defrost=defrost,
             ),
         )
@@ -425,6 +435,6 @@ def test_a_change_inside_a_defrost_hold_is_not_told():
     _, out = run(seq, RuleParams(threshold=THR, lead_s=60))
     assert out == []
     no_defrost = [(t, {k: v for k, v in fc.items() if k != "defrost"}) for t, fc in seq]
-    assert [e.level for _, e in run(no_defrost, RuleParams(threshold=THR, lead_s=60))[1]] == [
+    assert [e.event for _, e in run(no_defrost, RuleParams(threshold=THR, lead_s=60))[1]] == [
         "regime"
     ]

@@ -25,7 +25,8 @@ def test_every_item_is_refitted_in_each_round(tmp_path):
     the series' last."""
     b = load()
     r = b.run_case("known", 3, 2, seed=1, folder=tmp_path)
-    assert r["states"] == {"approaching": 3}
+    # not crossed: steady, or approaching where the early end of the interval is within lead
+    assert set(r["states"]) <= {"steady", "approaching"} and sum(r["states"].values()) == 3
     assert r["live_s"] > 0 and r["ms_per_item"] == 1000 * r["live_s"] / 3
     assert b.run_case("cycling", 2, 1, seed=1, folder=tmp_path)["states"] == {"steady": 2}
 

@@ -110,14 +110,15 @@ def test_missing_file(tmp_path):
     assert r.returncode == 2 and "no such file" in r.stderr
 
 
-def test_already_past_upper_limit_gives_zero(tmp_path):
-    """A load whose newest reading is above its (upper) threshold: eta_s is 0, crossing now."""
+def test_already_past_a_ceiling_gives_zero(tmp_path):
+    """A load whose newest reading is above its threshold (side above, judged from the first
+    reading): eta_s is 0, crossing now."""
     p = tmp_path / "load.csv"
     write_warming_csv(p)  # 2 -> about 10 degC over two hours
     out = json.loads(
         run_cli("forecast", str(p), "--threshold", "6", "--ambient", "27", "--json").stdout
     )
-    assert out["limit"] == "upper"
+    assert out["side"] == "above"
     assert out["eta_s"] == 0
     assert out["value_now"] > 6
 

@@ -106,7 +106,10 @@ def test_missing_required_item_keys(tmp_path):
     got = problems(tmp_path, '[[item]]\nname = "x"\n')
     f = str(tmp_path / "site.toml")
     assert f"{f}:1: item.topic: missing (required)" in got
-    assert f"{f}:1: item.threshold: missing (required)" in got
+    assert (
+        f"{f}:1: item.threshold: missing (required): give threshold, [[item.level]] tables or "
+        "a schedule"
+    ) in got
 
 
 def test_secret_comes_from_the_named_environment_variable(tmp_path, monkeypatch):
@@ -324,17 +327,19 @@ def test_run_refuses_a_bad_config_with_exit_2(tmp_path):
     assert r.stderr.strip() == f"{bad}:9: fit.refit_every: must be > 0, got 0"
 
 
-def test_hook_levels_must_be_known(tmp_path):
-    """A misspelt level in a hook's `levels` is reported at its line instead of matching nothing."""
+def test_hook_events_must_be_known(tmp_path):
+    """A misspelt event in a hook's `events` is reported at its line instead of matching nothing,
+    and the old key `levels` says what it became."""
     p = tmp_path / "c.toml"
     p.write_text(
         '[broker]\nhost = "127.0.0.1"\nport = 1883\n[storage]\nurl = "sqlite:///x.db"\n'
         '[[item]]\nname = "trailer-4"\ntopic = "fleet/trailer-4/load"\nthreshold = -15.0\n'
         '[[hook]]\nkind = "webhook"\nurl = "http://127.0.0.1:8080/alerts"\n'
-        'levels = ["approaching", "crosed"]\n'
+        'events = ["approaching", "crosed"]\nlevels = ["crossed"]\n'
     )
     with pytest.raises(ConfigError) as err:
         load_config(p)
     assert any(
-        line.startswith(f"{p}:13: hook.levels: unknown level") for line in err.value.problems
+        line.startswith(f"{p}:13: hook.events: unknown event") for line in err.value.problems
     )
+    assert f"{p}:14: hook.levels: renamed to events" in " ".join(err.value.problems)

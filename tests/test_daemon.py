@@ -210,7 +210,7 @@ name = "past"
 topic = "a/past"
 threshold = 8.0
 ambient = 25.0
-limit = "upper"
+side = "above"
 """
 
 
@@ -497,10 +497,10 @@ def test_readings_export_is_read_back_by_thermeta_forecast(tmp_path):
     )
 
 
-def test_limit_side_decides_crossed(tmp_path):
-    """A healthy cold crate below its upper limit and drifting down is not "crossed"; a tray
-    chilled below its target is (the limit's side comes from the first stored reading unless
-    configured)."""
+def test_side_decides_crossed_and_reached(tmp_path):
+    """A healthy cold crate below its limit and drifting down is "steady" (an ``auto`` side is
+    the one the live value is not on: above); a tray chilled below its target, configured as a
+    target reached below, is "reached", not "crossed"."""
     rng = np.random.default_rng(21)
     t_rel = np.arange(0, 3600, 60.0)
     t = T0 - 3600 + t_rel
@@ -510,14 +510,16 @@ def test_limit_side_decides_crossed(tmp_path):
     items = (
         '[[item]]\nname = "crate"\ntopic = "c/crate"\nthreshold = 5.0\nambient = 2.0\n'
         '[[item]]\nname = "tray"\ntopic = "c/tray"\nthreshold = 5.0\nambient = -18.0\n'
+        'kind = "target"\nside = "below"\n'
     )
     cfg, store, act = seeded_store(tmp_path, items, {"crate": (t, crate), "tray": (t, tray)})
     got: dict[str, dict] = {}
     rf = Refitter(
         store, cfg, ManualClock(T0), act, publish=lambda n, p: got.update({n: json.loads(p)})
     )
-    assert rf.run_once() == {"crate": "steady", "tray": "crossed"}
-    assert (got["crate"]["limit"], got["tray"]["limit"]) == ("upper", "lower")
+    assert rf.run_once() == {"crate": "steady", "tray": "reached"}
+    assert (got["crate"]["side"], got["tray"]["side"]) == ("above", "below")
+    assert (got["crate"]["kind"], got["tray"]["kind"]) == ("limit", "target")
     store.close()
 
 
@@ -547,7 +549,7 @@ def test_status_text_reads_the_store(tmp_path):
     assert lines[1].startswith(
         "items 1, readings 60, dead letters 0, last refit 2027-01-15T08:00:00Z ("
     )
-    rows = {ln.split()[0]: ln.split()[1] for ln in lines[3:-1]}
+    rows = {ln.split()[0]: ln.split()[1] for ln in lines[3:-1] if not ln.startswith(" ")}
     assert rows == {"warm": "approaching", "far": "-", "new": "-", "past": "-"}
     missing = subprocess.run(
         [
@@ -581,14 +583,16 @@ def test_the_picture_shows_the_forecast_the_refit_made(tmp_path):
     cfg, store, act = seeded_store(tmp_path, items, {"w": (t, y)})
     item = cfg.items[0]
     series = plotting.item_series(store, item)
-    limit, prior = plotting._limit_and_prior(store, item, measured=False)
-    drawn = plotting.item_forecast(series, item, limit=limit, prior=prior)
+    level, side, prior = plotting._limit_and_prior(store, item, measured=False)
+    drawn = plotting.item_forecast(
+        series, item, side=side, prior=prior, threshold_c=level.threshold_c
+    )
     got: dict[str, dict] = {}
     Refitter(
         store, cfg, ManualClock(T0), act, publish=lambda n, p: got.update({n: json.loads(p)})
     ).run_once()
     made = got["w"]
-    assert limit == "upper" and made["limit"] == "upper"
+    assert side == "above" and made["side"] == "above"
     for key in ("eta_s", "eta_lo_s", "eta_hi_s"):
         assert getattr(drawn, key) == pytest.approx(made[key], rel=1e-9), key
     old = forecast(

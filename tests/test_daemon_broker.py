@@ -414,7 +414,9 @@ def test_thousand_malformed_payloads_are_dead_lettered_and_forecasting_goes_on(b
     assert info["dead_letters"] == 1000 and info["readings"] == 120
     assert info["daemon"]["running"] is True
     assert info["per_item"][0]["item"] == "chiller"
-    assert fc["state"] in ("approaching", "crossed") and fc["fit_ok"] is True
+    # still forecast: the fit is good and the crossing ahead (steady, or approaching within lead)
+    assert fc["state"] in ("steady", "approaching", "crossed") and fc["fit_ok"] is True
+    assert fc["eta_s"] is not None
     eng = create_engine(db)
     with eng.connect() as conn:
         reasons = dict(

@@ -28,7 +28,7 @@ ITEMS = """
 name = "tank-{n}"
 topic = "cellar/tank-{n}/wort"
 threshold = 20.0
-limit = "lower"
+side = "below"
 window = 3600
 {extra}
 """

@@ -111,7 +111,7 @@ def fc(t_s: float, value: float, eta_s: float | None, defrost: dict | None) -> d
         "eta_lo_s": None if eta_s is None else 0.6 * eta_s,
         "fit_ok": True,
         "last_reading_at": rfc3339(T0 + t_s),
-        "limit": "upper",
+        "side": "above",
         "warnings": [],
         "defrost": defrost,
     }
@@ -128,7 +128,7 @@ def on(start_s: float, end_s: float | None = None) -> dict:
 def levels(seq) -> list[tuple[float, str]]:
     st, out = ItemAlertState(), []
     for t_s, f in seq:
-        out += [(t_s, ev.level) for ev in step(st, f, P, T0 + t_s)]
+        out += [(t_s, ev.event) for ev in step(st, f, P, T0 + t_s)]
     return out
 
 
@@ -232,8 +232,7 @@ def test_defrost_keys_are_validated_with_their_lines(tmp_path):
     )
     assert any(
         p.endswith(
-            ":5: item.defrost_topic: must differ from topic and ambient_topic "
-            "(it carries on/off, not readings)"
+            ":5: item.defrost_topic: must differ from the item's other topics (it carries on/off)"
         )
         for p in got
     ), got
@@ -396,10 +395,10 @@ url = "{receiver.url}"
     # same on both probes and not what this test is about)
     got = {
         name: [
-            (a["level"], a["at_s"] - T0)
+            (a["event"], a["at_s"] - T0)
             for a in alerts
             if a["item"] == name
-            and a["level"] in ("approaching", "crossed")
+            and a["event"] in ("approaching", "crossed")
             and a["at_s"] >= T0 + D_ON
         ]
         for name in ("told", "untold")

@@ -139,6 +139,29 @@ def test_healthy_cold_room_raises_no_alert(headless_run):
         assert items["eastpier/reefer-12/load-top"]["alerts"], items["eastpier/reefer-12/load-top"]
 
 
+def test_demo_tells_each_trade_its_own_news(headless_run):
+    """The brewhouse's wort reaches its pitching target calmly (only `reached`, and made before
+    its deadline); the blast chiller warns that tray C will be late for the first stage of the
+    food-code cooling schedule (57 to 21 degC within 2 h: US FDA Food Code 2022, 3-501.14, from
+    memory) at least its lead before that stage's deadline, while trays A and B make it; the
+    reefer whose power fails shows its allowance above 8 degC running out."""
+    r, _, s = headless_run
+    assert r.returncode == 0, r.stderr[-2000:]
+    items = s["items"]
+    for name in ("wort", "wort-top"):
+        told = items[f"copperbeck/brewhouse/batch-0417/{name}"]["told"]
+        assert [a["event"] for a in told] == ["reached"], told
+        assert told[0]["at"] <= told[0]["deadline_at_s"]
+    tray_c = items["riverside-canteen/blast-1/tray-c"]["told"]
+    late = [a for a in tray_c if a["event"] == "late" and a["level"] == "stage-1"]
+    assert late and late[0]["at"] <= late[0]["deadline_at_s"] - late[0]["lead_s"], tray_c
+    for tray in ("tray-a", "tray-b"):
+        told = items[f"riverside-canteen/blast-1/{tray}"]["told"]
+        assert {a["event"] for a in told} <= {"reached"}, told
+        assert "stage-1" in {a["level"] for a in told}, told
+    assert "running_out" in items["eastpier/reefer-12/load-top"]["alerts"]
+
+
 def test_demo_uses_a_reachable_broker(broker):
     """With a broker answering at --host/--port the demo uses it instead of starting its own, and
     leaves none of its retained forecasts behind there (read with the standard mosquitto_sub)."""

@@ -80,7 +80,7 @@ url = "{receiver.url}"
 
 [[hook]]
 kind = "mqtt"
-levels = ["approaching"]
+events = ["approaching"]
 """)
     cfg = load_config(cfg_path)
     clock = ManualClock(T0)
@@ -136,13 +136,13 @@ levels = ["approaching"]
         pub.disconnect()
         receiver.close()
     alerts = [json.loads(b) for _, _, b in receiver.posts]
-    main = [a for a in alerts if a["level"] in ("approaching", "crossed", "recovered")]
-    assert [a["level"] for a in main] == ["approaching", "crossed", "recovered"]
+    main = [a for a in alerts if a["event"] in ("approaching", "crossed", "recovered")]
+    assert [a["event"] for a in main] == ["approaching", "crossed", "recovered"]
     approach, crossed, recovered = main
     assert T0 + T_CROSS - approach["at_s"] >= LEAD
     assert crossed["at_s"] >= T0 + T_CROSS - 2 * STEP_S  # noise 0.05 may show it a step early
     assert recovered["at_s"] > T0 + T_COOL
-    assert "trailer-4 is approaching its threshold" in approach["sentence"]
+    assert "trailer-4 is approaching its limit of -15.0 °C" in approach["sentence"]
     assert len({a["id"] for a in alerts}) == len(alerts)  # each alert posted once
     # the mqtt hook, limited to `approaching`, published exactly that one alert
     assert len(mqtt_lines) == 1

@@ -24,9 +24,10 @@ from thermeta.storage.errors import DeliveryError
 ALERT = {
     "id": "trailer-4:1:approaching:1",
     "item": "trailer-4",
-    "level": "approaching",
+    "event": "approaching",
+    "level": "limit",
     "reminder": False,
-    "episode": 1,
+    "incident": 1,
     "value_now": -16.4,
     "threshold": -15.0,
     "unit": "C",
@@ -153,7 +154,8 @@ def test_exec_gets_json_on_stdin_and_env_without_a_shell(tmp_path):
     got = json.loads(out.read_text())
     assert got["stdin"] == ALERT
     assert got["env"]["THERMETA_ITEM"] == "trailer-4"
-    assert got["env"]["THERMETA_LEVEL"] == "approaching"
+    assert got["env"]["THERMETA_EVENT"] == "approaching"
+    assert got["env"]["THERMETA_LEVEL"] == "limit"
     assert got["env"]["THERMETA_REMINDER"] == "false"
     assert got["env"]["THERMETA_SENTENCE"] == ALERT["sentence"]
     assert got["argv"] == ["$(touch x); ls"]
@@ -226,14 +228,14 @@ def test_mqtt_hook_publishes_to_thermeta_alert_item(broker):
 
 
 def test_hook_filters_and_keys():
-    """items (with * patterns) and levels limit a hook; keys are the name or kind-position."""
+    """items (with * patterns) and events limit a hook; keys are the name or kind-position."""
     h = make_hook(
-        2, hook_config(kind="webhook", url="http://x", items=("trailer-*",), levels=("crossed",))
+        2, hook_config(kind="webhook", url="http://x", items=("trailer-*",), events=("crossed",))
     )
     assert h.key == "webhook-3"
-    assert h.wants(dict(ALERT, level="crossed"))
+    assert h.wants(dict(ALERT, event="crossed"))
     assert not h.wants(ALERT)
-    assert not h.wants(dict(ALERT, item="room-1", level="crossed"))
+    assert not h.wants(dict(ALERT, item="room-1", event="crossed"))
     assert hook_key(0, hook_config(kind="exec", name="pager", command=("/bin/true",))) == "pager"
 
 

@@ -170,7 +170,7 @@ def test_a_slow_hook_never_delays_the_refit_thread(tmp_path):
         took = time.monotonic() - t0
         assert took < 0.5
         assert wait_for(out.exists, 15)
-        assert json.loads(out.read_text())["level"] == "crossed"
+        assert json.loads(out.read_text())["event"] == "crossed"
     finally:
         svc.stop()
         store.close()

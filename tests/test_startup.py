@@ -55,6 +55,9 @@ def test_store_reading_commands_load_no_numerics(tmp_path, command):
     store.create_all()
     item = store.ensure_item("a", now=1.8e9)
     store.write_batch([(item, 1.8e9, 3.25, 0, 1.8e9)])
+    # a forecast with a level, as the refit stores it: status reads its levels and the period
+    body = {"item": "a", "value_now": 3.25, "threshold": 8.0, "unit": "C", "levels": []}
+    store.save_forecasts([(item, 1.8e9, "steady", body, 1.8e9)])
     store.close()
     got = run_cli(command[0], "--config", str(cfg), *command[1:])
     assert got["code"] == 0

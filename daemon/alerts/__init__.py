@@ -19,6 +19,6 @@ def attach(service: Any):
     from thermeta.daemon.alerts.service import AlertService
 
     plugin = AlertService(service.config, service.store, service.clock, publish=service.publish)
-    service.add_forecast_listener(plugin.on_forecast)
+    service.add_judge(plugin.on_forecast)  # before the forecast is stored and published
     service.alerts = plugin
     return plugin

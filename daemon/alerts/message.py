@@ -1,20 +1,27 @@
 """An alert as data (the JSON every hook gets) and as one plain sentence with the numbers.
 
-    trailer-4 is approaching its threshold: -16.4 °C now against a threshold of -15.0 °C,
-    forecast to cross at 14:05 UTC (in 42 min; 90 % interval 13:50 UTC to 14:31 UTC, in 27 min
-    to 68 min); fitted ambient 12.0 °C, time constant 9 h 58 min.
+    trailer-4 is approaching its limit of -15.0 °C: -16.4 °C now, forecast to cross at 14:05 UTC
+    (in 42 min; 90 % interval 13:50 UTC to 14:31 UTC, in 27 min to 68 min); fitted ambient
+    12.0 °C, time constant 9 h 58 min.
+
+    tray-c may be late for stage 1 (21.0 °C by 14:05 UTC): forecast to get there at 14:50 UTC
+    (in 1 h 10 min; 90 % interval 14:30 UTC to 15:15 UTC, in 50 min to 1 h 35 min), chance of
+    making it 3 %; 38.2 °C now; air probe heading for -6.0 °C, time constant 2 h 50 min.
 
 Clock times are the host's local zone with its name, durations counted from the alert's time.
+The words of the events are those of ``daemon/states.py``.
 """
 
 from __future__ import annotations
 
 import math
+import re
 from datetime import UTC, datetime
 from typing import Any
 
-from thermeta.daemon.alerts.rules import Event, ItemAlertState, RuleParams, _t, remaining_s
-from thermeta.daemon.states import AlertLevel, EpisodeLevel
+from thermeta.daemon.alerts.rules import ItemAlertState, Raised, RuleParams, remaining_s
+from thermeta.daemon.levels.judge import epoch
+from thermeta.daemon.states import Event, ItemState
 from thermeta.daemon.timefmt import human_duration
 from thermeta.daemon.units import UNIT_SIGN
 from thermeta.predictors.result import rfc3339
@@ -22,6 +29,12 @@ from thermeta.predictors.result import rfc3339
 CAUTION = (
     "Forecasts support decisions; local codes and the site's own procedures decide "
     "limits and actions."
+)
+DEFAULT_NAME = re.compile(r"^(limit|target)(-\d+)?$")  # a level's name when none was given
+# The whole caution, where there is room for it (the record, the README, the mail).
+CAUTION_FULL = (
+    "Forecasts support decisions; they are not a food-safety plan or a regulatory record. "
+    "Local codes and licensed practice decide the limits and the actions."
 )
 
 
@@ -40,13 +53,13 @@ def temp(v: float | None, unit: str) -> str:
     return f"{v:.1f} {UNIT_SIGN.get(unit, unit)}"
 
 
-def eta_clause(a: dict[str, Any]) -> str:
+def eta_clause(a: dict[str, Any], verb: str = "cross") -> str:
     """'forecast to cross at 14:05 UTC (in 42 min; 90 % interval ...)' or why there is none."""
     if a.get("eta_s") is None:
-        return "no crossing forecast"
+        return "no crossing forecast" if verb == "cross" else "not forecast to get there"
     if a["eta_s"] == 0:
         return "the fitted curve is already past the threshold"
-    text = f"forecast to cross at {clock(a['crossing_at_s'])} (in {human_duration(a['eta_s'])}"
+    text = f"forecast to {verb} at {clock(a['crossing_at_s'])} (in {human_duration(a['eta_s'])}"
     lo, hi = a.get("eta_lo_s"), a.get("eta_hi_s")
     if lo is not None and hi is not None and hi - lo < 60:
         return text + "; 90 % interval under a minute wide)"
@@ -85,33 +98,59 @@ def fit_clause(a: dict[str, Any]) -> str:
     return f"{where}, time constant {tau}"
 
 
+def what(a: dict[str, Any]) -> str:
+    """The level in words: 'its limit of 8.0 °C', 'stage 1 (21.0 °C by 14:05 UTC)',
+    "its target 'pitch' of 20.0 °C"."""
+    thr = temp(a.get("threshold"), a["unit"])
+    deadline = a.get("deadline_at_s")
+    by = f" by {clock(deadline)}" if deadline is not None else ""
+    if a.get("stage"):
+        return f"stage {a['stage']} ({thr}{by})"
+    kind = a.get("kind") or "limit"
+    name = a.get("level") or ""
+    named = "" if not name or DEFAULT_NAME.match(name) else f" '{name}'"
+    return f"its {kind}{named} of {thr}{by}"
+
+
+def _now(a: dict[str, Any]) -> str:
+    return f"{temp(a.get('value_now'), a['unit'])} now"
+
+
+def _chance(a: dict[str, Any]) -> str:
+    c = a.get("chance")
+    return "" if c is None else f", chance of making it {100 * c:.0f} %"
+
+
 def sentence(a: dict[str, Any]) -> str:
-    item, level, unit = a["item"], a["level"], a["unit"]
-    now_thr = (
-        f"{temp(a.get('value_now'), unit)} now against a threshold of {temp(a['threshold'], unit)}"
-    )
-    if level == AlertLevel.APPROACHING:
-        return f"{item} is approaching its threshold: {now_thr}, {eta_clause(a)}; {fit_clause(a)}."
-    if level == AlertLevel.CROSSED:
+    item, event, unit = a["item"], a["event"], a["unit"]
+    lv = what(a)
+    if event == Event.APPROACHING:
+        return f"{item} is approaching {lv}: {_now(a)}, {eta_clause(a)}; {fit_clause(a)}."
+    if event == Event.CROSSED:
         since = a.get("crossed_at_s")
         ago = (
             f" since {clock(since)} ({human_duration(a['at_s'] - since)} ago)"
             if since and a.get("reminder")
             else ""
         )
-        # a cooling batch reaching its pitching or holding temperature has "fallen below" it
-        went = {"upper": "risen above", "lower": "fallen below"}.get(a.get("side") or "", "crossed")
+        went = {"above": "risen above", "below": "fallen below"}.get(a.get("side") or "", "crossed")
         head = (
-            f"Reminder: {item} is still past its threshold"
+            f"Reminder: {item} is still past {lv}"
             if a.get("reminder")
-            else f"{item} has {went} its threshold"
+            else f"{item} has {went} {lv}"
         )
-        return f"{head}{ago}: {now_thr}; {fit_clause(a)}."
-    if level == AlertLevel.RECOVERED:
-        if a.get("from_level") == EpisodeLevel.APPROACHING:
+        return f"{head}{ago}: {_now(a)}; {fit_clause(a)}."
+    if event == Event.RECOVERED:
+        was = a.get("from_state")
+        if was == ItemState.APPROACHING:
             return (
-                f"{item} is no longer expected to cross within {human_duration(a['lead_s'])}: "
-                f"{now_thr}, {eta_clause(a)}; {fit_clause(a)}."
+                f"{item} is no longer expected to cross {lv} within "
+                f"{human_duration(a['lead_s'])}: {_now(a)}, {eta_clause(a)}; {fit_clause(a)}."
+            )
+        if was in (ItemState.LATE, ItemState.SHORT):
+            return (
+                f"{item} is back on course for {lv}: {eta_clause(a, 'get there')}{_chance(a)}; "
+                f"{_now(a)}."
             )
         band = f"{a['hysteresis']:g} {UNIT_SIGN.get(unit, unit)}"
         how = (
@@ -119,30 +158,85 @@ def sentence(a: dict[str, Any]) -> str:
             if a.get("by") == "band"
             else f"for {human_duration(a['hold_s'])}"
         )
-        where = {"upper": "below", "lower": "above"}.get(a.get("side") or "", "back across")
-        return f"{item} is back {where} its threshold {how}: {now_thr}; {fit_clause(a)}."
-    if level == AlertLevel.STALE:
+        where = {"above": "below", "below": "above"}.get(a.get("side") or "", "back across")
+        return f"{item} is back {where} {lv} {how}: {_now(a)}; {fit_clause(a)}."
+    if event == Event.LATE:
+        return (
+            f"{item} may be late for {lv}: {eta_clause(a, 'get there')}{_chance(a)}; "
+            f"{_now(a)}; {fit_clause(a)}."
+        )
+    if event == Event.SHORT:
+        return (
+            f"{item} is not forecast to reach {lv}: the fitted curve levels off short of it; "
+            f"{_now(a)}; {fit_clause(a)}."
+        )
+    if event == Event.MISSED:
+        return f"{item} missed {lv}: {_now(a)}, {eta_clause(a, 'get there')}."
+    if event == Event.REACHED:
+        at = a.get("reached_at_s")
+        deadline = a.get("deadline_at_s")
+        verb = "made" if a.get("stage") and a.get("made") else "reached"
+        text = f"{item} {verb} {lv} at {clock(at)}"
+        if deadline is not None and at is not None:
+            gap = human_duration(abs(deadline - at))
+            text += (
+                f", {gap} before its deadline" if at <= deadline else f", {gap} after its deadline"
+            )
+        return text + f": {_now(a)}."
+    if event in (Event.RUNNING_OUT, Event.USED_UP):
+        b = a.get("budget") or {}
+        over = "in this episode" if b.get("over") == "episode" else "in the rolling period"
+        used = human_duration(b.get("used_s"))
+        allowed = human_duration(b.get("allowed_s"))
+        beyond = f"{'above' if a.get('side') == 'above' else 'below'} {temp(a['threshold'], unit)}"
+        if event == Event.USED_UP:
+            return (
+                f"{item}'s allowance {beyond} is used up: {used} {over} (allowed {allowed}); "
+                f"{_now(a)}."
+            )
+        out = epoch(b.get("runs_out_at"))
+        when = (
+            f"at the present course it is used up at {clock(out)} (in "
+            f"{human_duration(out - a['at_s'])})"
+            if out is not None
+            else "it is being used"
+        )
+        return (
+            f"{item}'s allowance {beyond} is running out: {used} of {allowed} used {over}; "
+            f"{when}; {_now(a)}."
+        )
+    if event == Event.STALE:
         last = a.get("last_reading_at_s")
         quiet = human_duration(a["at_s"] - last) if last else "a while"
         return (
             f"{item} has sent no reading for {quiet} (silence limit "
             f"{human_duration(a['silence_s'])}): last value {temp(a.get('value_now'), unit)} "
-            f"at {clock(last)}, threshold {temp(a['threshold'], unit)}."
+            f"at {clock(last)}, {lv}."
         )
-    if level == AlertLevel.RESUMED:
-        return f"{item} is reporting again: {now_thr}, {eta_clause(a)}."
-    if level == AlertLevel.REGIME:
+    if event == Event.RESUMED:
+        return f"{item} is reporting again: {_now(a)}, {eta_clause(a)}."
+    if event == Event.REGIME:
         return (
             f"{item}'s surroundings changed at {clock(a.get('regime_start_s'))} (door, power or "
-            f"coolant?): the fit now starts there, {fit_clause(a)}; {now_thr}, {eta_clause(a)}."
+            f"coolant?): the fit now starts there, {fit_clause(a)}; {_now(a)}, {eta_clause(a)}."
         )
-    raise ValueError(f"unknown alert level {level!r}")
+    raise ValueError(f"unknown alert event {event!r}")
+
+
+def _level_doc(fc: dict[str, Any], name: str | None) -> dict[str, Any]:
+    """The level the alert is about (its JSON in the forecast), else the item's focus."""
+    docs = fc.get("levels") or []
+    want = name or fc.get("focus")
+    for d in docs:
+        if d.get("name") == want:
+            return d
+    return docs[0] if docs else {}
 
 
 def build_alert(
     item: str,
     fc: dict[str, Any],
-    ev: Event,
+    ev: Raised,
     st: ItemAlertState,
     p: RuleParams,
     now: float,
@@ -153,42 +247,55 @@ def build_alert(
 ) -> dict[str, Any]:
     """The alert's JSON body (numbers in the item's unit, times as RFC 3339 and epoch s)."""
     st.seq += 1
-    eta = remaining_s(fc, "eta_s", now)
-    lo = remaining_s(fc, "eta_lo_s", now)
-    hi = remaining_s(fc, "eta_hi_s", now)
+    lv = _level_doc(fc, ev.level)
+    src = lv if lv else fc
+    if lv:
+        eta, lo, hi = lv.get("eta_s"), lv.get("eta_lo_s"), lv.get("eta_hi_s")  # from now
+    else:
+        eta, lo, hi = (remaining_s(fc, k, now) for k in ("eta_s", "eta_lo_s", "eta_hi_s"))
     last = fc.get("last_reading_at")
+    mem = st.levels.get(str(lv.get("name"))) if lv else None
     a: dict[str, Any] = {
-        "id": f"{item}:{st.episode}:{ev.level}:{st.seq}",
+        "id": f"{item}:{st.incident}:{ev.event}:{st.seq}",
         "item": item,
-        "level": ev.level,
+        "event": ev.event,
+        "level": lv.get("name"),
+        "kind": lv.get("kind", "limit"),
+        "stage": lv.get("stage"),
         "reminder": ev.reminder,
-        "episode": st.episode,
+        "incident": st.incident,
         "at": rfc3339(now),
         "at_s": now,
         "state": fc.get("state"),
+        "level_state": lv.get("state"),
         "value_now": fc.get("value_now"),
-        "threshold": p.threshold,
+        "threshold": src.get("threshold", p.threshold),
         "unit": unit,
         "direction": fc.get("direction"),
-        "side": st.side,
+        "side": lv.get("side"),
         "eta_s": eta,
         "eta_lo_s": lo,
         "eta_hi_s": hi,
         "crossing_at_s": None if eta is None else now + eta,
         "crossing_lo_at_s": None if lo is None else now + lo,
         "crossing_hi_at_s": None if hi is None else now + hi,
+        "deadline_at_s": lv.get("deadline_at_s"),
+        "chance": lv.get("chance"),
+        "reached_at_s": lv.get("reached_at_s"),
+        "budget": lv.get("budget"),
+        "episode": (fc.get("episode") or {}).get("id"),
         "ambient": fc.get("ambient"),
         "ambient_mode": fc.get("ambient_mode"),
         "ambient_given": fc.get("ambient_given"),
         "ambient_contradicted": bool(fc.get("ambient_contradicted")),
         "time_constant_s": fc.get("time_constant_s"),
         "k_per_s": fc.get("k_per_s"),
-        "last_reading_at_s": _t(last),
-        "lead_s": p.lead_s,
+        "last_reading_at_s": epoch(last),
+        "lead_s": lv.get("lead_s", p.lead_s),
         "hysteresis": p.hysteresis,
         "hold_s": p.hold_s,
         "silence_s": silence_s,
-        "crossed_at_s": st.crossed_at,
+        "crossed_at_s": None if mem is None else mem.crossed_at,
     }
     if site:
         a["site"] = site
@@ -196,7 +303,15 @@ def build_alert(
     if "regime_start" in ev.context:
         a["regime_start_s"] = ev.context["regime_start"]
         a["regime_start"] = rfc3339(ev.context["regime_start"])
-    for k in ("crossing_at", "crossing_lo_at", "crossing_hi_at", "crossed_at", "last_reading_at"):
+    for k in (
+        "crossing_at",
+        "crossing_lo_at",
+        "crossing_hi_at",
+        "crossed_at",
+        "last_reading_at",
+        "deadline_at",
+        "reached_at",
+    ):
         a[k] = rfc3339(a.get(k + "_s"))
     a["sentence"] = sentence(a)
     a["caution"] = CAUTION

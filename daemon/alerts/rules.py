@@ -1,39 +1,51 @@
 """The alert rules: pure logic over one item's sequence of forecast dicts, with the time passed in.
 
-Levels an item's episode goes through (an *episode* starts when an item leaves ``clear``):
+Each level's state is judged at each refit (``daemon/levels/judge.py``: the one test behind each
+word); the rules HOLD those judgements so nothing flaps, raise an event when a held state changes,
+and write the held states back into the forecast, which the refit then stores and publishes: the
+state shown and the alert sent are one decision.
 
-    clear --(early end of the ETA interval within lead)--> approaching --(value past)--> crossed
-      ^                                                        |                          |
-      +---- early end beyond 2 x lead for hold_s ("recovered") +                          |
-      +---- value inside by the hysteresis band, or inside for hold_s ("recovered") ------+
+A limit (per level):
 
-Beside the episode: ``stale`` once when the sensor falls silent (``resumed`` when it speaks
-again), and ``regime`` when the fit reports that the surroundings changed at a new time.
+    steady --(approaching: early end within lead)--> approaching --(value past)--> crossed
+      ^                                                  |                            |
+      +--- early end beyond 2 x lead for hold ("recovered")                           |
+      +--- value back inside by the hysteresis band, or inside for hold ("recovered") +
 
-No flapping: a level is raised once and then holds; a crossing clears by the hysteresis band (or
-inside but not yet by the band, for ``hold_s``); an approach clears only when the early end of
-the interval has stayed beyond a band of one more lead (2 x lead) for ``hold_s``.  While crossed,
-a reminder goes out every ``remind_every_s`` unless the episode was acknowledged.
+While crossed, a reminder goes out every ``remind_every`` unless the incident was acknowledged.
+
+A target (per level): ``heading`` (or ``waiting``, ``learning``) is calm; ``late`` and ``short``
+are raised once and held until the forecast has been on course again, with half a lead to spare,
+for ``hold`` ("recovered"); ``missed`` is raised when the deadline passes; ``reached`` is raised
+once, never repeated, and holds until the next episode (or, with no episode kept, until the value
+has stayed back on the far side by the hysteresis band for ``hold``).  A limit's budget raises
+``running_out`` and ``used_up`` once each.
+
+An *incident* (what ``thermeta ack`` acknowledges) opens with the first warning while none is
+open and closes when no level needs attention any more.
+
+Beside the levels: ``stale`` once when the sensor falls silent (``resumed`` when it speaks
+again), and ``regime`` when the fit reports that the surroundings changed at a new time (not for
+an item whose levels are all targets on course or reached: nothing is at stake then).
 
 Defrost hold (common practice in the trade: temperature alarms wait through a defrost and a recovery
 delay after it, because the room air swings up while the coil is heated). When the forecast carries
 the item's newest defrost (``"defrost": {"started_at", "ended_at"}``, from the controller's defrost
-signal, see ``daemon/ingest/defrost.py``), no new level is raised from its start until
-``defrost_recovery_s`` after its end: no ``approaching``, no ``crossed``. A value still past the
-threshold when the hold ends raises ``crossed`` then. A signal that never ends holds at most
-``defrost_max_s`` (plus the recovery delay), so a stuck defrost signal cannot silence an item.
-Levels already raised go on as before (reminders, recoveries). A change of the surroundings that the
-fit finds inside the hold is the defrost itself: noted, not alerted.
+signal, see ``daemon/ingest/defrost.py``), no new warning is raised from its start until
+``defrost_recovery_s`` after its end.  A value still past the threshold when the hold ends raises
+``crossed`` then.  A signal that never ends holds at most ``defrost_max_s`` (plus the recovery
+delay), so a stuck defrost signal cannot silence an item.  Warnings already raised go on as before
+(reminders, recoveries).  A change of the surroundings that the fit finds inside the hold is the
+defrost itself: noted, not alerted.
 
 Alarm delay (``delay_s``; common practice for air probes, which pass their limit for minutes at
-every long door opening while the product barely moves): a new ``approaching`` or ``crossed`` is
-raised only once its condition (the approach due, or the value past) has held that long, counted
-from the first refit that saw it; a refit without it starts the count again.  With a delay, a
-``regime`` change is told only once an episode is open, so a door opened and shut again, which
-put nothing at stake, is never told.
+every long door opening while the product barely moves): a new warning is raised only once its
+condition has held that long, counted from the first refit that saw it; a refit without it starts
+the count again.  With a delay, a ``regime`` change is told only once an incident is open, so a
+door opened and shut again, which put nothing at stake, is never told.
 
-:func:`step` is the whole engine: ``step(state, forecast, params, now, acked) -> events``; it
-mutates ``state`` (a JSON-able :class:`ItemAlertState`) and returns what to send.
+:func:`step` is the whole engine: ``step(state, forecast, params, now, acked) -> raised``; it
+mutates ``state`` (a JSON-able :class:`ItemAlertState`) and the forecast's states.
 """
 
 from __future__ import annotations
@@ -41,18 +53,38 @@ from __future__ import annotations
 from dataclasses import asdict, dataclass, field
 from typing import Any
 
-from thermeta.daemon.states import AlertLevel, EpisodeLevel, ItemState, Side
-from thermeta.daemon.timefmt import parse_time
+from thermeta.daemon.levels.judge import LevelView, epoch, judge, remaining_s
+from thermeta.daemon.levels.spec import Level, auto_side
+from thermeta.daemon.states import (
+    ATTENTION,
+    INCIDENT_EVENTS,
+    BudgetState,
+    Event,
+    ItemState,
+    Side,
+    rank,
+)
 from thermeta.predictors.outcome import REGIME_CODES
 
+__all__ = [
+    "ItemAlertState",
+    "LevelMemory",
+    "Raised",
+    "RuleParams",
+    "defrost_hold_until",
+    "remaining_s",
+    "step",
+]
+
 REGIME_GAP_S = 1800.0  # a change found within this of the last one is the same change, re-estimated
+CALM_TARGET = (ItemState.HEADING, ItemState.WAITING, ItemState.LEARNING)
 
 
 @dataclass(frozen=True)
 class RuleParams:
     """An item's alert settings, temperatures in the item's unit, times in seconds."""
 
-    threshold: float
+    threshold: float | None = None  # a forecast without levels: its one limit's threshold
     lead_s: float = 1800.0
     hysteresis: float = 0.5
     hold_s: float = 300.0
@@ -64,9 +96,11 @@ class RuleParams:
     # longest a defrost may hold alerts however long its signal stays on.
     defrost_recovery_s: float = 1800.0
     defrost_max_s: float = 3600.0
-    # The alarm delay: a new approaching or crossed (and a regime change) is raised only once its
-    # condition has held this long; 0 raises it at the first refit that sees it.
+    # The alarm delay: a new warning (and a regime change) is raised only once its condition
+    # has held this long; 0 raises it at the first refit that sees it.
     delay_s: float = 0.0
+    side: Side | None = None  # a forecast without levels: its configured side (None: auto)
+    horizon_s: float = 86400.0  # crossings further away are not forecasts worth acting on
 
     def __post_init__(self) -> None:
         for name in ("lead_s", "hold_s", "remind_every_s", "defrost_max_s"):
@@ -78,8 +112,9 @@ class RuleParams:
 
     @classmethod
     def of(cls, item_cfg: Any, check_every_s: float = 0.0) -> RuleParams:
+        side: Side | None = getattr(item_cfg, "side", None)
         return cls(
-            threshold=item_cfg.threshold,
+            threshold=getattr(item_cfg, "threshold", None),
             lead_s=item_cfg.lead_s,
             hysteresis=item_cfg.hysteresis,
             hold_s=item_cfg.hold_s,
@@ -88,26 +123,44 @@ class RuleParams:
             defrost_recovery_s=getattr(item_cfg, "defrost_recovery_s", 1800.0),
             defrost_max_s=getattr(item_cfg, "defrost_max_s", 3600.0),
             delay_s=getattr(item_cfg, "delay_s", 0.0),
+            side=side if side in ("above", "below") else None,
+            horizon_s=getattr(item_cfg, "horizon_s", 86400.0),
         )
+
+
+@dataclass
+class LevelMemory:
+    """What the rules remember about one level."""
+
+    state: ItemState | None = None  # the held state (None: never judged)
+    side: Side | None = None  # decided once when the forecast does not say (rules alone)
+    episode: int | None = None  # the episode the state belongs to (a new one starts afresh)
+    since: float | None = None  # when the held state was entered
+    crossed_at: float | None = None
+    last_sent: float | None = None  # the last crossed alert or reminder
+    off_since: float | None = None  # since when the held warning's condition has been false
+    pending_since: float | None = None  # since when a new warning's condition has held (delay)
+    budget: BudgetState = BudgetState.OK
+
+    @classmethod
+    def from_json(cls, d: dict[str, Any]) -> LevelMemory:
+        known = set(cls.__dataclass_fields__)
+        m = cls(**{k: v for k, v in d.items() if k in known})
+        m.state = None if m.state is None else ItemState(m.state)
+        m.budget = BudgetState(m.budget)
+        return m
 
 
 @dataclass
 class ItemAlertState:
     """What the rules remember about one item (stored as JSON between refits and restarts)."""
 
-    level: EpisodeLevel = EpisodeLevel.CLEAR
-    episode: int = 0
-    side: Side | None = (
-        None  # "upper": the limit is a ceiling (warming toward it); "lower": a floor
-    )
-    since: float | None = None  # when the current level was entered
-    crossed_at: float | None = None
-    last_sent: float | None = None  # the last crossed alert or reminder
-    off_since: float | None = None  # since when the current level's condition has been false
+    incident: int = 0  # counts incidents; the open one is what `thermeta ack` acknowledges
+    incident_open: bool = False
     stale: bool = False
     regime_start: float | None = None  # the newest change of the surroundings alerted on
-    pending_since: float | None = None  # since when a new level's condition has held (delay)
-    seq: int = 0  # counts events, so each alert has its own key
+    seq: int = 0  # counts alerts, so each has its own key
+    levels: dict[str, LevelMemory] = field(default_factory=dict)
 
     def to_json(self) -> dict[str, Any]:
         return asdict(self)
@@ -116,82 +169,39 @@ class ItemAlertState:
     def from_json(cls, d: dict[str, Any] | None) -> ItemAlertState:
         if not d:
             return cls()
-        known = set(cls.__dataclass_fields__)
+        known = set(cls.__dataclass_fields__) - {"levels"}
         st = cls(**{k: v for k, v in d.items() if k in known})
-        st.level = EpisodeLevel(st.level)
+        st.levels = {k: LevelMemory.from_json(v) for k, v in (d.get("levels") or {}).items()}
+        if "levels" not in d and d.get("level") not in (None, "clear"):
+            # the single-level memory of an older version: kept for the item's first level
+            st.incident, st.incident_open = int(d.get("episode") or 0), True
+            st.levels["*"] = LevelMemory(
+                state=ItemState(d["level"]),
+                side={"upper": "above", "lower": "below"}.get(d.get("side") or ""),  # type: ignore[arg-type]
+                since=d.get("since"),
+                crossed_at=d.get("crossed_at"),
+                last_sent=d.get("last_sent"),
+            )
         return st
+
+    @property
+    def open_states(self) -> dict[str, ItemState]:
+        """The held states that need attention, by level."""
+        return {
+            k: m.state
+            for k, m in self.levels.items()
+            if m.state is not None and m.state in ATTENTION
+        }
 
 
 @dataclass
-class Event:
-    """One alert to send: its level, whether it repeats an open crossing, and context."""
+class Raised:
+    """One alert to send: its event, the level it is about, whether it repeats, and context."""
 
-    level: AlertLevel
+    event: Event
+    level: str | None = None
     reminder: bool = False
     context: dict[str, Any] = field(default_factory=dict)
-
-
-def _t(text: Any) -> float | None:
-    if text is None:
-        return None
-    if isinstance(text, (int, float)):
-        return float(text)
-    try:
-        return parse_time(str(text))
-    except ValueError:
-        return None
-
-
-def remaining_s(fc: dict[str, Any], key: str, now: float) -> float | None:
-    """An ETA of the forecast counted from ``now`` instead of from its newest reading."""
-    eta = fc.get(key)
-    if eta is None:
-        return None
-    t_last = _t(fc.get("last_reading_at"))
-    elapsed = 0.0 if t_last is None else max(0.0, now - t_last)
-    return max(0.0, float(eta) - elapsed)
-
-
-def side_of(fc: dict[str, Any], threshold: float) -> Side | None:
-    """Which side of the threshold is unsafe, judged when the item is first seen: an item starts
-    inside its limit, so below the threshold the limit is a ceiling ("upper"), above it a floor.
-    (The fitted direction alone is not trusted: an early fit on a few noisy readings can point
-    either way.)"""
-    v = fc.get("value_now")
-    if v is None or v == threshold:
-        return None
-    return "upper" if v < threshold else "lower"
-
-
-def is_past(v: float, side: Side, threshold: float) -> bool:
-    return v >= threshold if side == "upper" else v <= threshold
-
-
-def is_inside(v: float, side: Side, threshold: float, band: float = 0.0) -> bool:
-    # upper limit: back inside when v <= threshold - band; lower: v >= threshold + band
-    return v <= threshold - band if side == "upper" else v >= threshold + band
-
-
-def approach_due(fc: dict[str, Any], p: RuleParams, now: float) -> bool:
-    """A crossing is forecast within the horizon and the EARLY end of its interval within lead
-    (plus the time to the next look)."""
-    if fc.get("state") != ItemState.APPROACHING or not fc.get("fit_ok", True):
-        return False
-    early = remaining_s(fc, "eta_lo_s", now)
-    if early is None:
-        early = remaining_s(fc, "eta_s", now)
-    return early is not None and early <= p.lead_s + p.check_every_s
-
-
-def approach_eased(fc: dict[str, Any], p: RuleParams, now: float) -> bool:
-    """The approach no longer holds: no crossing forecast, or its early end beyond a band of one
-    more lead (lead + lead), so an estimate wandering about the lead does not flap."""
-    if fc.get("state") not in (ItemState.APPROACHING, ItemState.CROSSED):
-        return fc.get("state") != ItemState.LEARNING  # no fit yet is no news: hold the level
-    early = remaining_s(fc, "eta_lo_s", now)
-    if early is None:
-        early = remaining_s(fc, "eta_s", now)
-    return early is None or early > 2.0 * p.lead_s + p.check_every_s
 
 
 def defrost_hold_until(fc: dict[str, Any], p: RuleParams) -> tuple[float, float] | None:
@@ -201,10 +211,10 @@ def defrost_hold_until(fc: dict[str, Any], p: RuleParams) -> tuple[float, float]
     d = fc.get("defrost")
     if not isinstance(d, dict):
         return None
-    start = _t(d.get("started_at"))
+    start = epoch(d.get("started_at"))
     if start is None:
         return None
-    end = _t(d.get("ended_at"))
+    end = epoch(d.get("ended_at"))
     cut = start + p.defrost_max_s
     end = cut if end is None else min(max(end, start), cut)
     return start, end + p.defrost_recovery_s
@@ -215,140 +225,299 @@ def in_defrost_hold(fc: dict[str, Any], p: RuleParams, now: float) -> bool:
     return span is not None and span[0] <= now < span[1]
 
 
+# -- the engine ---------------------------------------------------------------------------------
 def step(
     st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float, acked: bool = False
-) -> list[Event]:
-    """Advance ``st`` by one forecast; return the alerts it raises (often none)."""
-    events: list[Event] = []
-    state = fc.get("state")
-    if state == ItemState.STALE:
+) -> list[Raised]:
+    """Advance ``st`` by one forecast; return the alerts it raises (often none).
+
+    ``fc`` is the item's forecast JSON: its ``levels`` as judged by the refit (a forecast without
+    them is judged here as one limit at ``p.threshold``).  The held states are written back into
+    ``fc`` (each level's ``state``, and the item's ``state``: its most pressing level's)."""
+    raised: list[Raised] = []
+    if fc.get("state") == ItemState.STALE:
         if not st.stale:
             st.stale = True
-            events.append(Event(AlertLevel.STALE))
-        return events  # no readings: nothing else can be judged
+            raised.append(Raised(Event.STALE))
+        return raised  # no readings: nothing else can be judged
     if st.stale:
         st.stale = False
-        events.append(Event(AlertLevel.RESUMED))
+        raised.append(Raised(Event.RESUMED))
+    views = _views(st, fc, p, now)
+    if "*" in st.levels and views and views[0][0].name not in st.levels:
+        st.levels[views[0][0].name] = st.levels.pop("*")  # an older version's one level
     held = in_defrost_hold(fc, p, now)
-    if p.delay_s <= 0:
-        return events + _regime(st, fc, p, now, held) + _levels(st, fc, p, now, held, acked)
-    # with an alarm delay, a change of the surroundings is told once it has opened an episode
-    levels = _levels(st, fc, p, now, held, acked)
-    return events + _regime(st, fc, p, now, held) + levels
-
-
-def _levels(
-    st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float, held: bool, acked: bool
-) -> list[Event]:
-    """The episode's levels: approaching, crossed (with reminders) and recovered."""
-    events: list[Event] = []
-    v = fc.get("value_now")
-    if v is None:
-        return events
-    v = float(v)
-    thr = p.threshold
-    if st.level == EpisodeLevel.CLEAR:
-        # The unsafe side is learnt from the first travel toward the limit and then kept: a load
-        # cooling back down after a crossing is recovering, not heading for a floor.
-        # The daemon's own judgement (``limit``: configured, or from the first reading) wins.
-        limit = fc.get("limit")
-        side: Side | None = limit if limit in ("upper", "lower") else None
-        side = side or st.side or side_of(fc, thr)
-        if side is None:
-            return events
-        st.side = side
-        if held:
-            st.pending_since = None
-            return events  # a defrost and its recovery delay raise nothing new
-        want = (
-            EpisodeLevel.CROSSED
-            if is_past(v, side, thr)
-            else EpisodeLevel.APPROACHING
-            if approach_due(fc, p, now)
-            else None
-        )
-        if want is None:
-            st.pending_since = None
-        elif _delay_over(st, p, now):
-            _enter(st, want, side, now, new_episode=True)
-            events.append(Event(AlertLevel(want)))
-        return events
-    side = st.side or side_of(fc, thr) or "upper"
-    if st.level == EpisodeLevel.APPROACHING:
-        if is_past(v, side, thr) and held:
-            st.off_since = st.pending_since = None  # the crossing waits for the end of the hold
-        elif is_past(v, side, thr):
-            st.off_since = None
-            if _delay_over(st, p, now):
-                _enter(st, EpisodeLevel.CROSSED, side, now)
-                events.append(Event(AlertLevel.CROSSED))
-        elif not approach_eased(fc, p, now):
-            st.off_since = st.pending_since = None
+    level_events: list[Raised] = []
+    for view, doc in views:
+        mem = st.levels.setdefault(view.name, LevelMemory())
+        episode = doc.get("episode")
+        if mem.episode != episode and view.kind == "target":
+            # a new episode: the target is asked afresh
+            st.levels[view.name] = mem = LevelMemory(episode=episode)
+        mem.episode = episode
+        if view.kind == "target":
+            level_events += _target(mem, view, p, now, held)
         else:
-            st.pending_since = None
-            st.off_since = st.off_since if st.off_since is not None else now
-            if now - st.off_since >= p.hold_s:
-                events.append(
-                    Event(AlertLevel.RECOVERED, context={"from_level": EpisodeLevel.APPROACHING})
-                )
-                _clear(st)
-        return events
+            level_events += _limit(mem, view, p, now, held, acked)
+        level_events += _budget(mem, view, doc)
+        doc["judged"] = view.state
+        doc["state"] = mem.state
+    for ev in level_events:
+        if ev.event in INCIDENT_EVENTS and not ev.reminder and not st.incident_open:
+            st.incident += 1
+            st.incident_open = True
+    if st.incident_open and not st.open_states and not _budget_open(st):
+        st.incident_open = False
+    names = {v.name for v, _ in views}
+    for gone in set(st.levels) - names:
+        del st.levels[gone]  # a level no longer configured
+    _item_state(fc, st, views)
+    # targets only, none in trouble: a change of the surroundings (the chilling started or
+    # stopped, the tray moved to holding) is the process itself and puts nothing at stake
+    calm = bool(views) and all(
+        v.kind == "target" and st.levels[v.name].state not in ATTENTION for v, _ in views
+    )
+    regime = _regime(st, fc, p, now, held or calm)
+    return raised + regime + level_events
+
+
+def _budget_open(st: ItemAlertState) -> bool:
+    return any(m.budget == BudgetState.USED_UP for m in st.levels.values())
+
+
+def _item_state(
+    fc: dict[str, Any], st: ItemAlertState, views: list[tuple[LevelView, dict]]
+) -> None:
+    """The item's state is its most pressing level's held state; its focus is that level."""
+    if not views:
+        return
+    best = min(range(len(views)), key=lambda i: (rank(views[i][1]["state"]), i))
+    fc["state"] = views[best][1]["state"]
+    fc["focus"] = views[best][0].name
+
+
+def _views(st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float):
+    """Each level's judgement and its JSON in ``fc`` (made here for a forecast without levels)."""
+    docs = fc.get("levels")
+    if isinstance(docs, list) and docs and fc.get("levels_from") != "rules":
+        return [(_view_of(d), d) for d in docs]
+    if p.threshold is None:
+        return []
+    level = Level(
+        name="limit",
+        kind="limit",
+        threshold=float(p.threshold),
+        threshold_c=float(p.threshold),
+        side=p.side or "auto",
+        lead_s=p.lead_s,
+    )
+    if "*" in st.levels and level.name not in st.levels:
+        st.levels[level.name] = st.levels.pop("*")
+    mem = st.levels.setdefault(level.name, LevelMemory())
+    side = fc.get("side") if fc.get("side") in ("above", "below") else None
+    # the side, once decided, is kept: a load cooling back after a crossing is recovering
+    mem.side = side or mem.side or auto_side(level, fc.get("value_now"))
+    view = judge(
+        level,
+        fc,
+        mem.side,
+        now,
+        hysteresis=p.hysteresis,
+        check_every_s=p.check_every_s,
+        horizon_s=p.horizon_s,
+    )
+    doc = view.to_json(now)
+    fc["levels"], fc["levels_from"] = [doc], "rules"  # judged here: judged afresh next time
+    return [(view, doc)]
+
+
+def _view_of(d: dict[str, Any]) -> LevelView:
+    known = set(LevelView.__dataclass_fields__)
+    v = LevelView(**{k: d[k] for k in known if k in d})
+    v.state = ItemState(v.judged if v.judged else v.state)
+    return v
+
+
+def _delay_over(mem: LevelMemory, p: RuleParams, now: float) -> bool:
+    """The alarm delay: True once a new warning's condition has held ``delay_s`` (counted from
+    the first refit that saw it; any refit without it starts the count again)."""
+    if mem.pending_since is None:
+        mem.pending_since = now
+    return now - mem.pending_since >= p.delay_s
+
+
+def _enter(mem: LevelMemory, state: ItemState, now: float) -> None:
+    mem.state, mem.since, mem.off_since, mem.pending_since = state, now, None, None
+    if state == ItemState.CROSSED:
+        mem.crossed_at = mem.last_sent = now
+
+
+def _calm(mem: LevelMemory, judged: ItemState, calm: ItemState) -> None:
+    mem.state = judged if judged in (calm, ItemState.LEARNING, ItemState.WAITING) else calm
+    mem.since = mem.off_since = mem.pending_since = None
+    mem.last_sent = mem.crossed_at = None
+
+
+def _limit(
+    mem: LevelMemory, v: LevelView, p: RuleParams, now: float, held: bool, acked: bool
+) -> list[Raised]:
+    name = v.name
+    if mem.state not in (ItemState.APPROACHING, ItemState.CROSSED):
+        if held:
+            mem.pending_since = None
+            _calm(mem, v.state, ItemState.STEADY)
+            return []  # a defrost and its recovery delay raise nothing new
+        want = ItemState.CROSSED if v.past else ItemState.APPROACHING if v.due else None
+        if want is None:
+            _calm(mem, v.state, ItemState.STEADY)
+            return []
+        if not _delay_over(mem, p, now):
+            pending = mem.pending_since
+            _calm(mem, v.state, ItemState.STEADY)
+            mem.pending_since = pending
+            return []
+        _enter(mem, want, now)
+        return [Raised(Event(want), name)]
+    if mem.state == ItemState.APPROACHING:
+        if v.past and held:
+            mem.off_since = mem.pending_since = None  # the crossing waits for the end of the hold
+        elif v.past:
+            mem.off_since = None
+            if _delay_over(mem, p, now):
+                _enter(mem, ItemState.CROSSED, now)
+                return [Raised(Event.CROSSED, name)]
+        elif not v.eased:
+            mem.off_since = mem.pending_since = None
+        else:
+            mem.pending_since = None
+            mem.off_since = mem.off_since if mem.off_since is not None else now
+            if now - mem.off_since >= p.hold_s:
+                _calm(mem, v.state, ItemState.STEADY)
+                return [
+                    Raised(Event.RECOVERED, name, context={"from_state": ItemState.APPROACHING})
+                ]
+        return []
     # crossed
-    if is_inside(v, side, thr, p.hysteresis):
-        events.append(
-            Event(
-                AlertLevel.RECOVERED,
-                context={
-                    "from_level": EpisodeLevel.CROSSED,
-                    "by": "band",
-                    "crossed_at_s": st.crossed_at,
-                },
+    if v.back:
+        crossed_at = mem.crossed_at
+        _calm(mem, v.state, ItemState.STEADY)
+        return [
+            Raised(
+                Event.RECOVERED,
+                name,
+                context={"from_state": ItemState.CROSSED, "by": "band", "crossed_at_s": crossed_at},
             )
-        )
-        _clear(st)
-    elif is_inside(v, side, thr):
-        st.off_since = st.off_since if st.off_since is not None else now
-        if now - st.off_since >= p.hold_s:
-            events.append(
-                Event(
-                    AlertLevel.RECOVERED,
+        ]
+    if not v.past:
+        mem.off_since = mem.off_since if mem.off_since is not None else now
+        if now - mem.off_since >= p.hold_s:
+            crossed_at = mem.crossed_at
+            _calm(mem, v.state, ItemState.STEADY)
+            return [
+                Raised(
+                    Event.RECOVERED,
+                    name,
                     context={
-                        "from_level": EpisodeLevel.CROSSED,
+                        "from_state": ItemState.CROSSED,
                         "by": "hold",
-                        "crossed_at_s": st.crossed_at,
+                        "crossed_at_s": crossed_at,
                     },
                 )
-            )
-            _clear(st)
-    else:
-        st.off_since = None
-        if not acked and st.last_sent is not None and now - st.last_sent >= p.remind_every_s:
-            st.last_sent = now
-            events.append(Event(AlertLevel.CROSSED, reminder=True))
-    return events
+            ]
+        return []
+    mem.off_since = None
+    if not acked and mem.last_sent is not None and now - mem.last_sent >= p.remind_every_s:
+        mem.last_sent = now
+        return [
+            Raised(Event.CROSSED, name, reminder=True, context={"crossed_at_s": mem.crossed_at})
+        ]
+    return []
 
 
-def _delay_over(st: ItemAlertState, p: RuleParams, now: float) -> bool:
-    """The alarm delay: True once a new level's condition has held ``delay_s`` (counted from the
-    first refit that saw it; any refit without it starts the count again)."""
-    if st.pending_since is None:
-        st.pending_since = now
-    return now - st.pending_since >= p.delay_s
+def _target(mem: LevelMemory, v: LevelView, p: RuleParams, now: float, held: bool) -> list[Raised]:
+    name, j = v.name, v.state
+    ctx = {"deadline_at_s": v.deadline_at_s, "stage": v.stage}
+    if mem.state == ItemState.REACHED:
+        if v.reached_at_s is not None or v.past or not v.back:
+            mem.off_since = None
+            return []  # reached stays reached (until the next episode, or back for hold)
+        mem.off_since = mem.off_since if mem.off_since is not None else now
+        if now - mem.off_since >= p.hold_s:
+            _calm(mem, j, ItemState.HEADING)  # re-armed: the value went back for good
+        return []
+    if j == ItemState.REACHED:
+        late = v.deadline_at_s is not None and (v.reached_at_s or now) > v.deadline_at_s
+        _enter(mem, ItemState.REACHED, now)
+        ctx.update(
+            reached_at_s=v.reached_at_s or now, made=None if v.deadline_at_s is None else not late
+        )
+        return [Raised(Event.REACHED, name, context=ctx)]
+    if mem.state == ItemState.MISSED:
+        return []  # the deadline is gone: the next news is the target reached
+    if j == ItemState.MISSED:
+        _enter(mem, ItemState.MISSED, now)
+        return [Raised(Event.MISSED, name, context=ctx)]
+    if j in (ItemState.LATE, ItemState.SHORT):
+        mem.off_since = None
+        if mem.state in (ItemState.LATE, ItemState.SHORT):
+            if j == ItemState.SHORT and mem.state == ItemState.LATE:
+                mem.state = ItemState.SHORT  # worse news: it will not get there at all
+                return [Raised(Event.SHORT, name, context=ctx)]
+            if j == ItemState.LATE and mem.state == ItemState.SHORT:
+                mem.state = ItemState.LATE  # better, still a warning: no alert
+            return []
+        if held:
+            mem.pending_since = None
+            _calm(mem, j, ItemState.HEADING)
+            return []
+        if not _delay_over(mem, p, now):
+            pending = mem.pending_since
+            _calm(mem, j, ItemState.HEADING)
+            mem.pending_since = pending
+            return []
+        _enter(mem, j, now)
+        return [Raised(Event(j), name, context=ctx)]
+    # calm judgement
+    if mem.state in (ItemState.LATE, ItemState.SHORT):
+        if j == ItemState.LEARNING or not v.eased:
+            mem.off_since = None
+            return []  # no fit is no news, and on course by a hair is not yet: hold it
+        mem.off_since = mem.off_since if mem.off_since is not None else now
+        if now - mem.off_since >= p.hold_s:
+            was = mem.state
+            _calm(mem, j, ItemState.HEADING)
+            return [Raised(Event.RECOVERED, name, context={**ctx, "from_state": was})]
+        return []
+    _calm(mem, j, ItemState.HEADING)
+    return []
+
+
+def _budget(mem: LevelMemory, v: LevelView, doc: dict[str, Any]) -> list[Raised]:
+    b = doc.get("budget")
+    if not isinstance(b, dict):
+        return []
+    now_state = BudgetState(b.get("state", BudgetState.OK))
+    was, mem.budget = mem.budget, now_state
+    if now_state == was or now_state == BudgetState.OK:
+        return []
+    if now_state == BudgetState.RUNNING_OUT and was == BudgetState.USED_UP:
+        return []
+    return [Raised(Event(now_state), v.name, context={"budget": b})]
 
 
 def _regime(
     st: ItemAlertState, fc: dict[str, Any], p: RuleParams, now: float, held: bool = False
-) -> list[Event]:
+) -> list[Raised]:
     # The fit notes a change of the surroundings and starts its window there; the estimate of
     # that moment wanders as readings arrive, so only a start later than the last one alerted on
     # by more than REGIME_GAP_S (or the hold time) counts as new.  A change inside a defrost
     # hold is taken note of without an alert (the defrost is the change).  With an alarm delay,
-    # a change waits until an episode is open (approaching or crossed, each past its delay):
-    # a door opened for a minute and shut again, which puts nothing at stake, is never told.
+    # a change waits until an incident is open (a warning raised, past its delay): a door opened
+    # for a minute and shut again, which puts nothing at stake, is never told.
     notes = fc.get("notes") or []
     if not any(n.get("code") in REGIME_CODES for n in notes):
         return []
-    start = _t(fc.get("regime_start"))
+    start = epoch(fc.get("regime_start"))
     if start is None:
         return []
     if st.regime_start is not None and start <= st.regime_start + max(p.hold_s, REGIME_GAP_S):
@@ -356,24 +525,7 @@ def _regime(
     if held:
         st.regime_start = start
         return []
-    if p.delay_s > 0 and st.level == EpisodeLevel.CLEAR:
+    if p.delay_s > 0 and not st.incident_open:
         return []  # nothing at stake (yet): judged again at the next refit
     st.regime_start = start
-    return [Event(AlertLevel.REGIME, context={"regime_start": start})]
-
-
-def _enter(
-    st: ItemAlertState, level: EpisodeLevel, side: Side, now: float, new_episode: bool = False
-) -> None:
-    if new_episode:
-        st.episode += 1
-    st.level, st.side, st.since, st.off_since, st.pending_since = level, side, now, None, None
-    if level == EpisodeLevel.CROSSED:
-        st.crossed_at = now
-        st.last_sent = now
-
-
-def _clear(st: ItemAlertState) -> None:
-    st.level, st.since, st.off_since = EpisodeLevel.CLEAR, None, None
-    st.last_sent, st.crossed_at = None, None
-    st.pending_since = None
+    return [Raised(Event.REGIME, context={"regime_start": start})]

@@ -4,8 +4,10 @@ one worker per hook delivering them.
     svc = AlertService(config, store, clock, publish)   # attach() builds it from a Service
     svc.start(); ...; svc.on_forecast(update); ...; svc.stop()
 
-``on_forecast`` runs on the refit thread and only touches the store (one short transaction when
-something changed); every network call happens on the hooks' own threads.
+``on_forecast`` runs on the refit thread BEFORE the forecast is stored and published: the rules
+write the states they hold into it, so the state everyone sees and the alerts sent are one
+decision (see ``rules.py``).  It only touches the store (one short transaction when something
+changed); every network call happens on the hooks' own threads.
 """
 
 from __future__ import annotations
@@ -21,7 +23,6 @@ from thermeta.daemon.alerts.outbox import OutboxWorker
 from thermeta.daemon.alerts.rules import ItemAlertState, RuleParams, step
 from thermeta.daemon.clock import Clock, SystemClock
 from thermeta.daemon.refit.rounds import ForecastUpdate
-from thermeta.daemon.states import EpisodeLevel
 from thermeta.storage.alerts import AlertStore
 
 log = logging.getLogger("thermeta.alerts")
@@ -87,33 +88,38 @@ class AlertService:
         with self._lock:
             old = self.states.get(name) or ItemAlertState()
             st = ItemAlertState.from_json(old.to_json())
-            acked = (
-                st.level == EpisodeLevel.CROSSED
-                and self.astore.ack_of(name, st.episode) is not None
-            )
-            events = step(st, body, params, now, acked)
-            alerts = [
-                build_alert(
-                    name,
-                    body,
-                    ev,
-                    st,
-                    params,
-                    now,
-                    unit=cfg.unit,
-                    silence_s=cfg.silence_s,
-                    site=cfg.site,
-                )
-                for ev in events
-            ]
-            if alerts or st.to_json() != old.to_json():
-                # Raises on a store failure: the old state stays and the next refit decides again.
-                self.astore.commit_step(name, st.to_json(), alerts, self.hooks_for, now)
+            acked = st.incident_open and self.astore.ack_of(name, st.incident) is not None
+            before = {k: body.get(k) for k in ("state", "focus", "levels")}
+            shown = [dict(d) for d in body.get("levels") or []]
+            try:
+                events = step(st, body, params, now, acked)
+                alerts = [
+                    build_alert(
+                        name,
+                        body,
+                        ev,
+                        st,
+                        params,
+                        now,
+                        unit=cfg.unit,
+                        silence_s=cfg.silence_s,
+                        site=cfg.site,
+                    )
+                    for ev in events
+                ]
+                if alerts or st.to_json() != old.to_json():
+                    # On a store failure the old state stays and the next refit decides again.
+                    self.astore.commit_step(name, st.to_json(), alerts, self.hooks_for, now)
+            except Exception:
+                # the forecast goes out with its states as judged, not as held
+                body.update(before)
+                body["levels"] = shown
+                raise
             self.states[name] = st
             self.raised.extend(alerts)
             del self.raised[:-1000]
         for a in alerts:
-            log.warning("alert %s: %s", a["level"], a["sentence"])
+            log.warning("alert %s: %s", a["event"], a["sentence"])
         if alerts:
             for w in self.workers:
                 w.wake.set()

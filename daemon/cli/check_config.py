@@ -11,10 +11,13 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def run(args: argparse.Namespace) -> int:
     from thermeta.daemon.cli.common import load_config_or_report
+    from thermeta.daemon.config import overrides
 
     cfg = load_config_or_report(args.config)
     if cfg is None:
         return 2
+    for note in overrides(cfg):
+        print(note)
     patterns = sum(1 for it in cfg.items if it.is_pattern)
     n = len(cfg.items)
     print(

@@ -7,7 +7,7 @@ import json
 import sys
 from typing import get_args
 
-from thermeta.daemon.states import MODELS, LimitSetting
+from thermeta.daemon.states import MODELS, SideSetting, predictor_side
 from thermeta.daemon.units import UNIT_SIGN, UNITS
 from thermeta.storage.errors import InputError
 
@@ -36,10 +36,11 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     )
     p.add_argument("--unit", choices=UNITS, default="C", help="unit of the values")
     p.add_argument(
-        "--limit",
-        choices=get_args(LimitSetting),
+        "--side",
+        choices=get_args(SideSetting),
         default="auto",
-        help="which side of the threshold is unsafe; auto: the side the first reading is not on",
+        help="the side of the threshold that counts (past a limit, at a target); auto: the side "
+        "the first reading is not on",
     )
     p.add_argument("--json", action="store_true", help="one JSON object on stdout")
     p.add_argument("--plot", metavar="OUT.png", help="also draw readings and forecast to a PNG")
@@ -134,14 +135,14 @@ def run(args: argparse.Namespace) -> int:
                 f"{args.csv}:{series.last_line}: too few readings to fit "
                 f"({series.t.size}; want at least 2)"
             )
-        limit = args.limit
-        if limit == "auto":
-            # As the daemon does: a probe that starts below its threshold has an upper limit.
+        side = args.side
+        if side == "auto":
+            # a probe that starts below its threshold is asked about the side above it
             first = float(series.y[series.t.argmin()])
-            limit = (
+            side = (
                 None
                 if first == args.threshold
-                else ("upper" if first < args.threshold else "lower")
+                else ("above" if first < args.threshold else "below")
             )
         # as the daemon does, the forecast is made in degC (its defaults are stated in degC)
         series.y = _celsius(series.y, args.unit)
@@ -156,7 +157,7 @@ def run(args: argparse.Namespace) -> int:
             ambient=ambient_c,
             ambient_t=series.ambient_t if args.ambient is None else None,
             ambient_y=series.ambient_y if args.ambient is None else None,
-            limit=limit,
+            limit=predictor_side(side),
             shown=shown_in(args.unit),
             **doubt,
         )
@@ -176,7 +177,7 @@ def run(args: argparse.Namespace) -> int:
     if args.json:
         out = to_item_units(fc.to_dict(), args.unit)
         out["unit"] = args.unit
-        out["limit"] = limit
+        out["side"] = side
         print(json.dumps(out))
     else:
         print(summary(fc, args.unit, str(args.csv)))

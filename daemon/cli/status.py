@@ -13,6 +13,29 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--json", action="store_true", help="one JSON object on stdout")
 
 
+def period_figures(cfg: Any, store: Any, name: str, topic: str | None, now: float) -> Any:
+    """The item's rolling period from the store: time and degree-minutes beyond each limit, and
+    the mean kinetic temperature (None when its config is not known)."""
+    from thermeta.daemon.ingest.topics import Router
+    from thermeta.daemon.levels.spec import levels_of
+    from thermeta.daemon.levels.tally import new_tally
+    from thermeta.storage.episodes import EpisodeStore
+
+    item = Router(cfg.items).item_for(name, topic)
+    if item is None:
+        return None
+    levels = levels_of(item)
+    recorded = EpisodeStore(store).sides(name) if store.has_table("level_sides") else {}
+    sides = {lv.name: (lv.side if lv.side != "auto" else recorded.get(lv.name)) for lv in levels}
+    tl = new_tally(levels, sides, now - item.period_s)  # type: ignore[arg-type]
+    rows = store.recent_readings(name, since_ts=now - item.period_s, until_ts=now)
+    tl.add([r[0] for r in rows], [r[1] for r in rows])
+    out = tl.to_json(item.unit)
+    out.pop("reached", None)
+    out["period_s"] = item.period_s
+    return out
+
+
 def collect(cfg: Any, store: Any, now: float) -> dict[str, Any]:
     from thermeta.daemon.views.board import service_running
     from thermeta.predictors.result import rfc3339
@@ -20,6 +43,7 @@ def collect(cfg: Any, store: Any, now: float) -> dict[str, Any]:
     counts = store.counts()
     daemon = store.get_meta("daemon") or {}
     running = service_running(daemon, now)
+    topics = {r["name"]: r.get("topic") for r in store.list_items("load")}
     per_item = []
     seen = set()
     for f in store.latest_forecasts():
@@ -30,6 +54,9 @@ def collect(cfg: Any, store: Any, now: float) -> dict[str, Any]:
             {
                 "item": f.item,
                 "state": f.state,
+                "kind": d.get("kind"),
+                "side": d.get("side"),
+                "focus": d.get("focus"),
                 "value_now": d.get("value_now"),
                 "threshold": d.get("threshold"),
                 "unit": d.get("unit", "C"),
@@ -41,6 +68,9 @@ def collect(cfg: Any, store: Any, now: float) -> dict[str, Any]:
                 "updated_at": d.get("updated_at"),
                 "fit_ok": d.get("fit_ok"),
                 "reason": d.get("reason"),
+                "levels": d.get("levels") or [],
+                "episode": d.get("episode"),
+                "period": period_figures(cfg, store, f.item, topics.get(f.item), now),
             }
         )
     for it in cfg.items:
@@ -49,6 +79,12 @@ def collect(cfg: Any, store: Any, now: float) -> dict[str, Any]:
                 {
                     "item": it.name,
                     "state": None,
+                    "kind": None,
+                    "side": None,
+                    "focus": None,
+                    "levels": [],
+                    "episode": None,
+                    "period": None,
                     "value_now": None,
                     "threshold": it.threshold,
                     "unit": it.unit,
@@ -87,6 +123,8 @@ def _eta_text(r: dict[str, Any], now: float) -> str:
 
     if r["state"] == ItemState.CROSSED:
         return "past the threshold"
+    if r["state"] in (ItemState.REACHED, ItemState.MISSED, ItemState.WAITING):
+        return str(r["state"])
     if r["crossing_at"] is None:
         return "-"
     left = parse_time(r["crossing_at"]) - now
@@ -149,10 +187,75 @@ def run(args: argparse.Namespace) -> int:
             )
         )
     widths = [max(len(row[i]) for row in rows) for i in range(4)]
-    for row in rows:
+    details = {r["item"]: _detail_lines(r, now) for r in info["per_item"]}
+    for i, row in enumerate(rows):
         print("  ".join(c.ljust(w) for c, w in zip(row[:4], widths)) + "  " + row[4])
-    print(
-        "Forecasts support decisions; local codes and the site's own procedures decide limits "
-        "and actions."
-    )
+        for line in details.get(row[0], []) if i else []:
+            print("    " + line)
+    from thermeta.daemon.alerts.message import CAUTION_FULL
+
+    print(CAUTION_FULL)
     return 0
+
+
+def _detail_lines(r: dict[str, Any], now: float) -> list[str]:
+    """Under an item: each level with more than a plain limit to tell, the open episode, the
+    rolling period's figures."""
+    from thermeta.daemon.timefmt import human_duration, local_clock, parse_time
+    from thermeta.daemon.units import UNIT_SIGN
+
+    u = UNIT_SIGN.get(r["unit"], r["unit"])
+    out = []
+    levels = r.get("levels") or []
+    made = parse_time(r["updated_at"]) if r.get("updated_at") else now
+    for lv in levels:
+        if len(levels) == 1 and lv.get("kind") == "limit" and not lv.get("budget"):
+            break
+        side = lv.get("side") or "side not yet known"
+        head = f"{lv['name']}: {lv['kind']} {lv['threshold']:g} {u} ({side}), {lv['state']}"
+        eta = lv.get("eta_s")
+        if eta is not None and lv["state"] not in ("reached", "missed", "crossed"):
+            left = eta - (now - made)
+            hi = lv.get("eta_hi_s")
+            head += f", forecast in {human_duration(left)}"
+            if lv.get("eta_lo_s") is not None or hi is not None:
+                lo = human_duration((lv.get("eta_lo_s") or 0) - (now - made))
+                hi_t = "open" if hi is None else human_duration(hi - (now - made))
+                head += f" (90 %: {lo} to {hi_t})"
+        if lv.get("deadline_at_s") is not None:
+            head += f", deadline {local_clock(lv['deadline_at_s'], True)}"
+            if lv["state"] == "reached":
+                head += ", made" if lv.get("chance") == 1.0 else ", missed the deadline"
+            elif lv.get("chance") is not None:
+                head += f", chance of making it {100 * lv['chance']:.0f} %"
+        if lv.get("reached_at"):
+            head += f", reached {local_clock(parse_time(lv['reached_at']), True)}"
+        b = lv.get("budget")
+        if b:
+            head += (
+                f"; budget {human_duration(b['used_s'])} of {human_duration(b['allowed_s'])} "
+                f"used ({b['over']}), {b['state']}"
+            )
+            if b.get("runs_out_at") and b["state"] != "used_up":
+                head += f", runs out {local_clock(parse_time(b['runs_out_at']), True)}"
+        out.append(head)
+    ep = r.get("episode")
+    if ep:
+        text = f"episode {ep['id']}" + (f" ({ep['batch']})" if ep.get("batch") else "")
+        text += f" started {local_clock(parse_time(ep['started_at']), True)} by {ep['started_by']}"
+        if ep.get("ended_at"):
+            when = local_clock(parse_time(ep["ended_at"]), True)
+            text += f", ended {when} by {ep['ended_by']}"
+        mkt = (ep.get("tally") or {}).get("mkt")
+        if mkt is not None:
+            text += f", mean kinetic temperature {mkt:.2f} {u}"
+        out.append(text)
+    p = r.get("period")
+    if p and any(v["beyond_s"] > 0 for v in (p.get("beyond") or {}).values()):
+        parts = [
+            f"{k}: {human_duration(v['beyond_s'])} beyond, {v['degree_minutes']:.1f} {u}·min"
+            for k, v in p["beyond"].items()
+        ]
+        mkt = "" if p.get("mkt") is None else f"; mean kinetic temperature {p['mkt']:.2f} {u}"
+        out.append(f"last {human_duration(p['period_s'])}: " + "; ".join(parts) + mkt)
+    return out

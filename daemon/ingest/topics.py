@@ -15,7 +15,8 @@ PLACEHOLDER = re.compile(r"\{(\d+)\}")
 # (daemon/ingest/defrost.py).  Item names may not end in them.
 AMBIENT_SUFFIX = ".ambient"
 DEFROST_SUFFIX = ".defrost"
-RouteKind = Literal["load", "ambient", "defrost"]
+EPISODE_SUFFIX = ".episode"  # an episode topic's route (its messages are not stored as readings)
+RouteKind = Literal["load", "ambient", "defrost", "episode"]
 
 
 def is_wildcard(topic_filter: str) -> bool:
@@ -39,6 +40,21 @@ def check_filter(topic_filter: str) -> str | None:
     if topic_filter.startswith("$"):
         return "topics starting with '$' are the broker's own"
     return None
+
+
+def filters_overlap(a: str, b: str) -> bool:
+    """Whether some topic matches both MQTT filters ``a`` and ``b``."""
+    fa, fb = a.split("/"), b.split("/")
+    for i in range(max(len(fa), len(fb))):
+        la = fa[i] if i < len(fa) else None
+        lb = fb[i] if i < len(fb) else None
+        if la == "#" or lb == "#":
+            return True  # '#' also matches its parent level, so a shorter topic fits too
+        if la is None or lb is None:
+            return False
+        if la != lb and "+" not in (la, lb):
+            return False
+    return True
 
 
 def placeholders(template: str) -> set[int] | None:
@@ -95,7 +111,11 @@ class Route:
 
     @property
     def store_name(self) -> str:
-        suffix = {"ambient": AMBIENT_SUFFIX, "defrost": DEFROST_SUFFIX}.get(self.kind, "")
+        suffix = {
+            "ambient": AMBIENT_SUFFIX,
+            "defrost": DEFROST_SUFFIX,
+            "episode": EPISODE_SUFFIX,
+        }.get(self.kind, "")
         return self.item.name + suffix
 
     @property
@@ -105,6 +125,7 @@ class Route:
             "load": self.item.topic,
             "ambient": self.item.ambient_topic,
             "defrost": self.item.defrost_topic,
+            "episode": self.item.episode_topic,
         }[self.kind]
 
 
@@ -124,6 +145,8 @@ class Router:
                     self.patterns.append((it.ambient_topic, it, "ambient"))
                 if it.defrost_topic:
                     self.patterns.append((it.defrost_topic, it, "defrost"))
+                if it.episode_topic:
+                    self.patterns.append((it.episode_topic, it, "episode"))
             else:
                 self.exact.setdefault(it.topic, []).insert(0, Route(it, "load"))
                 self.by_name[it.name] = it
@@ -131,6 +154,8 @@ class Router:
                     self.exact.setdefault(it.ambient_topic, []).append(Route(it, "ambient"))
                 if it.defrost_topic:
                     self.exact.setdefault(it.defrost_topic, []).append(Route(it, "defrost"))
+                if it.episode_topic:
+                    self.exact.setdefault(it.episode_topic, []).append(Route(it, "episode"))
         self._cache: dict[str, list[Route]] = {}
 
     def filters(self) -> list[str]:
@@ -171,6 +196,9 @@ class Router:
                         ),
                         "defrost_topic": (
                             render_filter(it.defrost_topic, topic) if it.defrost_topic else None
+                        ),
+                        "episode_topic": (
+                            render_filter(it.episode_topic, topic) if it.episode_topic else None
                         ),
                     }
                 )

@@ -36,6 +36,7 @@ from tenacity import (
 from thermeta.daemon.clock import Clock
 from thermeta.daemon.config import Config, ItemConfig
 from thermeta.daemon.ingest.defrost import parse_defrost
+from thermeta.daemon.ingest.marks import parse_mark
 from thermeta.daemon.ingest.payloads import Limits, excerpt, parse_payload
 from thermeta.daemon.ingest.topics import Route, Router
 from thermeta.storage.errors import PayloadError, StoreError
@@ -236,10 +237,11 @@ class Writer(threading.Thread):
         readings: list[tuple] = []
         dead: list[DeadLetter] = []
         seen: list[tuple[str, ItemConfig, float | None]] = []
+        marks: list = []  # episode starts and ends
         self._prepare_topics(batch)
         for msg in batch:
             try:
-                self._convert(msg, readings, dead, seen)
+                self._convert(msg, readings, dead, seen, marks)
             except StoreError:
                 raise
             except Exception as exc:  # noqa: BLE001 - one odd message must not stop ingest
@@ -250,6 +252,7 @@ class Writer(threading.Thread):
             self.store.write_batch,
             readings,
             dead,
+            marks,
         )
         self.counts["batches"] += 1
         self.counts["messages"] += len(batch)
@@ -308,6 +311,7 @@ class Writer(threading.Thread):
             (r.store_name, r.kind, r.item.unit, r.source_topic)
             for rs in routes.values()
             for r in rs
+            if r.kind != "episode"  # its messages are marks, not readings
         ]
         ids: dict[str, int] = {}
         if specs:
@@ -323,20 +327,20 @@ class Writer(threading.Thread):
                 name = route.store_name
                 if route.kind == "load" and name not in self._item_ids:
                     log.info("new item %s on %s", name, topic)
-                self._item_ids[name] = ids[name]
+                self._item_ids[name] = ids.get(name, 0)
                 hits.append(
                     (
                         route,
                         name,
                         self._limits_for(route),
-                        ids[name],
+                        ids.get(name, 0),
                         name if route.kind == "load" else route.item.name,
                     )
                 )
             if hits and len(self._topics) < 1_000_000:
                 self._topics[topic] = hits
 
-    def _convert(self, msg: Inbound, readings: list, dead: list, seen: list) -> None:
+    def _convert(self, msg: Inbound, readings: list, dead: list, seen: list, marks: list) -> None:
         hits = self._topics.get(msg.topic)
         if not hits:
             dead.append(self._dead(msg, None, "no item is mapped to this topic"))
@@ -344,6 +348,9 @@ class Writer(threading.Thread):
         failed: tuple[str, str] | None = None
         for route, name, limits, item_id, load_name in hits:
             try:
+                if route.kind == "episode":
+                    marks.append(parse_mark(load_name, msg.payload, msg.received_at, limits))
+                    continue
                 if route.kind == "defrost":
                     parsed = parse_defrost(msg.payload, msg.received_at, limits)
                 else:

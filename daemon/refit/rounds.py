@@ -1,14 +1,23 @@
-"""Rolling refits: each item with new readings is refitted on its recent window, its forecast
-stored, published (retained) and handed to listeners (alerts).
+"""Rolling refits: each item with new readings is refitted on its recent window, its levels
+judged, its forecast stored, published (retained) and handed to listeners.
 
-States, judged in this order:
+One probe, one stored series, one window of readings; each of the item's levels (its limits,
+targets and a schedule's stages, ``daemon/levels/``) gets the forecast of its own threshold from
+that window, and is judged from it (``judging.py``: the states and their order).  Judges (the
+alert rules) run before the forecast is stored and published and write the states they hold
+into it, so what is shown and what is alerted are one decision.
 
-    stale        no reading for longer than the item's silence limit
-    crossed      the value is already past the threshold, on the limit's side (``limit``: upper,
-                 lower, or by default the side opposite the item's first stored reading)
-    learning     too few readings to fit (or the fit gave no answer yet)
-    approaching  a crossing is forecast within the item's horizon
-    steady       no crossing within the horizon
+Sides: a level's configured ``side``, or (``auto``) the side opposite the live value when the
+level is first judged, recorded in the store (``level_sides``) and never changed afterwards: an
+old reading backfilled later cannot flip it.
+
+Episodes (``storage/episodes.py``): opened by a start message or ``thermeta start``, or, for an
+item with a ``start`` temperature (a schedule sets one), when the probe passes it heading for
+its targets; closed by an end message or ``thermeta end``, when every target is reached, or when
+the probe goes back past the start by :data:`START_BAND_C` (the next batch).  An episode's
+``Tally`` (readings since its start) keeps when each target was reached, the time and
+degree-minutes beyond each limit and the mean kinetic temperature; its summary is the episode's
+record.
 
 One item's failed fit (an exception, or a result with ``ok=False``) is logged and published as
 such; the other items go on.
@@ -18,12 +27,14 @@ An item with a ``defrost_topic`` gets its newest defrost in the forecast (``"def
 defrost hold.
 
 Priors (``predictors/prior.py``, stored in ``storage/priors.py``): each item teaches its prior
-class (item key ``prior_class``, default its own name) and its lumped fits (fitted or given
-ambient) use the class's prior.  The rule for an episode: a stretch of readings counts once, at
-the first refit whose fit WITHOUT the prior pins k (and a fitted ambient) down
+class (the open episode's class, else the item key ``prior_class``, default its own name) and
+its lumped fits (fitted or given ambient) use the class's prior.  A stretch of readings counts
+once, at the first refit whose fit WITHOUT the prior pins k (and a fitted ambient) down
 (``prior.learnable``); the item's next lesson can only come from a fit whose readings all start
-after that one's newest reading (a change of the surroundings cut the window, or the window
-slid past).  So lessons never share readings, and the prior never learns from itself.
+after that one's newest reading, and within an open episode only once.  A prior is never used on
+the episode it learned from: after a lesson, the item's fits keep the prior as it was before it
+until their window no longer holds the taught readings and the episode (if one is open) has
+ended.
 """
 
 from __future__ import annotations
@@ -42,12 +53,16 @@ from thermeta.daemon.clock import Clock
 from thermeta.daemon.config import AMBIENT_SUFFIX, DEFROST_SUFFIX, Config, ItemConfig
 from thermeta.daemon.ingest.defrost import defrost_status
 from thermeta.daemon.ingest.writer import Activity
-from thermeta.daemon.states import AmbientMode, ItemState, Side
-from thermeta.daemon.units import scale_to_celsius, shown_in, to_item_units
+from thermeta.daemon.levels.spec import Level, levels_of
+from thermeta.daemon.refit.episodes import EpisodeKeeper
+from thermeta.daemon.refit.judging import judge_item
+from thermeta.daemon.states import AmbientMode, ItemState, Side, predictor_side
+from thermeta.daemon.units import scale_to_celsius, shown_in
 from thermeta.predictors import forecast
 from thermeta.predictors.outcome import Reason
 from thermeta.predictors.prior import Prior, learn, learnable
-from thermeta.predictors.result import Forecast, rfc3339
+from thermeta.predictors.result import Forecast
+from thermeta.storage.episodes import Episode
 from thermeta.storage.priors import PriorStore
 from thermeta.storage.store import Store
 
@@ -62,7 +77,7 @@ DEFROST_LOOKBACK_S = 3600.0
 
 @dataclass(frozen=True)
 class ForecastUpdate:
-    """One item's refit, as listeners (the alerts, the demo) get it."""
+    """One item's refit, as judges (the alert rules) and listeners (the demo) get it."""
 
     item: ItemConfig  # the item's config (a wildcard item's: made concrete for this item)
     state: ItemState
@@ -78,25 +93,15 @@ Listener = Callable[[ForecastUpdate], None]
 Publish = Callable[[str, str], None]
 
 
-def limit_side(cfg: ItemConfig, first_value_c: float | None) -> Side | None:
-    """Which side of the threshold is past the limit: the configured one, or else the side the
-    item's first stored reading was NOT on (a probe starting below its threshold has an upper
-    limit; a hot tray starting above its target, a lower one)."""
-    if cfg.limit in ("upper", "lower"):
-        return cfg.limit
-    if first_value_c is None or first_value_c == cfg.threshold_c:
-        return None
-    return "upper" if first_value_c < cfg.threshold_c else "lower"
-
-
 def forecast_kwargs(
     cfg: ItemConfig,
-    limit: Side | None,
+    side: Side | None,
     ambient_t: np.ndarray | None = None,
     ambient_y: np.ndarray | None = None,
 ) -> dict[str, Any]:
-    """The forecast's arguments for one item, as the refit passes them (the picture of the item
-    passes the same, so it shows the forecast the alerts were made from); the prior apart."""
+    """The forecast's arguments for one item and side, as the refit passes them (the picture of
+    the item passes the same, so it shows the forecast the alerts were made from); the prior
+    apart."""
     kw: dict[str, Any] = {
         "model": cfg.model,
         "ambient": cfg.ambient_c,
@@ -104,7 +109,7 @@ def forecast_kwargs(
         "ambient_y": ambient_y,
         "window_s": cfg.window_s,
         "min_points": cfg.min_points,
-        "limit": limit,
+        "limit": predictor_side(side),
         "shown": shown_in(cfg.unit),
     }  # the warnings' temperatures
     if cfg.ambient is not None and cfg.ambient_within is not None:
@@ -117,30 +122,7 @@ def uses_prior(cfg: ItemConfig, measured: bool) -> bool:
     return not measured and cfg.model in ("lumped", "auto")
 
 
-def classify(
-    fc: Forecast, now: float, last_ts: float | None, cfg: ItemConfig, limit: Side | None
-) -> ItemState:
-    """The item's state from its forecast (see the module docstring for the order)."""
-    if last_ts is None or (fc.n_points == 0 and fc.value_now is None):
-        return ItemState.LEARNING
-    if now - last_ts > cfg.silence_s:
-        return ItemState.STALE
-    thr = cfg.threshold_c
-    v = fc.value_now
-    if v is not None and ((limit == "upper" and v >= thr) or (limit == "lower" and v <= thr)):
-        return ItemState.CROSSED
-    if limit is None and fc.ok and fc.eta_s == 0:
-        return ItemState.CROSSED
-    if not fc.ok:
-        return ItemState.LEARNING
-    if fc.eta_s is not None and fc.eta_s > 0:
-        remaining_s = fc.eta_s - max(0.0, now - (fc.t_last or now))
-        if remaining_s <= cfg.horizon_s:
-            return ItemState.APPROACHING
-    return ItemState.STEADY
-
-
-@dataclass(frozen=True)
+@dataclass
 class _Refitted:
     """One item's refit, between the fit and the store (saved in chunks) and the listeners."""
 
@@ -166,10 +148,10 @@ class Refitter:
         self.clock = clock
         self.activity = activity
         self.publish = publish
-        self.listeners: list[Listener] = []
+        self.judges: list[Listener] = []  # before storing and publishing; may hold the states
+        self.listeners: list[Listener] = []  # after publishing
         self.previous: dict[str, dict[str, Any]] = {}
         self.item_ids: dict[str, int] = {}
-        self.first_values: dict[str, float] = {}  # degC of each item's oldest stored reading
         self._lock = threading.Lock()
         self._error_logged: dict[str, float] = {}
         self.runs = 0
@@ -178,7 +160,10 @@ class Refitter:
         self.prior_store = PriorStore(store)
         self.priors: dict[str, Prior] = {}  # by prior class, loaded on first use
         self.learned_until: dict[str, float] = {}  # by item
+        self.held: dict[str, tuple[Prior, float, int | None]] = {}  # by item (module docstring)
         self.lessons = 0
+        self.keeper = EpisodeKeeper(store)  # episodes, their tallies, the levels' sides
+        self.fits = 0  # forecasts made (one per distinct threshold and side of an item)
 
     def load_previous(self) -> None:
         """Pick up each item's last forecast from the store (after a restart)."""
@@ -192,6 +177,7 @@ class Refitter:
             now = self.clock.now()
             dirty = self.activity.take_dirty()
             items, last = self.activity.snapshot()
+            self.keeper.load()
             done: dict[str, ItemState] = {}
             pending: list[_Refitted] = []
             for name, cfg in items.items():
@@ -222,10 +208,18 @@ class Refitter:
             return done
 
     def _flush(self, pending: list[_Refitted], now: float, done: dict[str, ItemState]) -> None:
-        """Store a chunk of forecasts in one transaction, then publish them (one commit per item
-        would cost an fsync each and hold the writer's lock as often)."""
+        """Judge, then store a chunk of forecasts in one transaction, then publish them (one
+        commit per item would cost an fsync each and hold the writer's lock as often)."""
         if not pending:
             return
+        for r in pending:
+            update = ForecastUpdate(r.cfg, r.state, r.body, self.previous.get(r.name))
+            for judge in list(self.judges):
+                try:
+                    judge(update)
+                except Exception:  # noqa: BLE001 - published as judged; the next refit retries
+                    log.exception("judging %s failed", r.name)
+            r.state = ItemState(r.body.get("state") or r.state)
         try:
             self.store.save_forecasts(
                 [(r.item_id, now, r.state, r.body, r.last_ts) for r in pending]
@@ -238,7 +232,7 @@ class Refitter:
         pending.clear()
 
     def _refit(self, name: str, cfg: ItemConfig, now: float, last_ts: float | None) -> _Refitted:
-        """Fit one item; returns what to store and publish."""
+        """Fit one item's levels and judge them; returns what to store and publish."""
         item_id = self.item_ids.get(name) or self.store.item_id(name)
         if item_id is None:
             item_id = self.store.ensure_item(name, unit=cfg.unit, topic=cfg.topic, now=now)
@@ -256,26 +250,79 @@ class Refitter:
         mode: AmbientMode = (
             "measured" if amb_y is not None else ("known" if cfg.ambient is not None else "fitted")
         )
-        if name not in self.first_values:
-            first = self.store.first_reading(item_id)
-            if first is not None:
-                self.first_values[name] = first[1]
-        limit = limit_side(cfg, self.first_values.get(name))
-        cls = cfg.prior_class or name
-        prior = self._prior(cls) if uses_prior(cfg, mode == "measured") else None
-        kw = forecast_kwargs(cfg, limit, amb_t, amb_y)
+        levels = levels_of(cfg)
+        value_c = float(y[np.argmax(t)]) if len(rows) else None
+        sides = self.keeper.sides(name, cfg, levels, value_c, now)
+        episode = self.keeper.episode(name, cfg, levels, t, y, now)
+        cls = (episode.cls if episode is not None and episode.cls else None) or cfg.prior_class
+        cls = cls or name
+        prior = (
+            self._prior_for(name, cls, since, episode)
+            if uses_prior(cfg, mode == "measured")
+            else None
+        )
+        fcs: list[Forecast | None] = []
+        made: dict[tuple[float, Side | None], Forecast] = {}
+        for i, lv in enumerate(levels):
+            key = (lv.threshold_c, sides.get(lv.name))
+            if key not in made:
+                kw = forecast_kwargs(cfg, key[1], amb_t, amb_y)
+                made[key] = self._fit(name, cfg, mode, t, y, rows, lv.threshold_c, prior, kw)
+                if i == 0 and mode != "measured":
+                    self._learn_from(name, cls, made[key], prior, now, episode, t, y, lv, kw)
+            fcs.append(made[key])
+        tally = (
+            None if episode is None else self.keeper.tally(name, levels, sides, episode, item_id, t)
+        )
+        period = None
+        if any(lv.budget_s is not None for lv in levels) and (
+            episode is None or episode.closed_at is not None
+        ):
+            period = self.keeper.period(name, cfg, levels, sides, item_id, now)
+        state, body = judge_item(
+            name,
+            cfg,
+            levels,
+            fcs,
+            sides,
+            now,
+            last_ts,
+            check_every_s=self.config.fit.refit_every_s,
+            episode=episode,
+            tally=tally,
+            period_tally=period,
+        )
+        if episode is not None and tally is not None:
+            self.keeper.keep_record(name, cfg, levels, episode, tally, body)
+        if cfg.defrost_topic:
+            body["defrost"] = self._defrost(name, cfg, now)
+        if prior is not None and prior.n_episodes:
+            body["prior_class"] = cls
+        return _Refitted(name, cfg, item_id, state, body, last_ts)
+
+    def _fit(
+        self,
+        name: str,
+        cfg: ItemConfig,
+        mode: AmbientMode,
+        t: np.ndarray,
+        y: np.ndarray,
+        rows: list,
+        threshold_c: float,
+        prior: Prior | None,
+        kw: dict[str, Any],
+    ) -> Forecast:
+        """One forecast of the item's window for one threshold; a failure is a result."""
+        self.fits += 1
         try:
-            fc = self._predict(t, y, cfg.threshold_c, prior=prior, **kw)
+            fc = self._predict(t, y, threshold_c, prior=prior, **kw)
             if not fc.ok and len(rows) >= cfg.min_points:
                 self._log_error(name, "no forecast for %s: %s", name, fc.reason)
-            if mode != "measured":
-                self._maybe_learn(
-                    name, cls, fc, prior, now, lambda: self._predict(t, y, cfg.threshold_c, **kw)
-                )
+            return fc
         except Exception as exc:  # noqa: BLE001 - a failed fit is a result, not a crash
             self._log_error(name, "fit of %s raised %s: %s", name, exc.__class__.__name__, exc)
             fc = Forecast(
-                threshold=cfg.threshold_c,
+                threshold=threshold_c,
                 model=cfg.model,
                 ambient_mode=mode,
                 n_points=len(rows),
@@ -285,17 +332,9 @@ class Refitter:
             )
             if len(rows):
                 fc.t_last, fc.value_now = float(t.max()), float(y[np.argmax(t)])
-        state = classify(fc, now, last_ts, cfg, limit)
-        body = to_item_units(fc.to_dict(), cfg.unit)
-        body.update(item=name, state=state, updated_at=rfc3339(now), unit=cfg.unit, limit=limit)
-        if cfg.site:
-            body["site"] = cfg.site
-        if cfg.defrost_topic:
-            body["defrost"] = self._defrost(name, cfg, now)
-        if prior is not None and prior.n_episodes:
-            body["prior_class"] = cls
-        return _Refitted(name, cfg, item_id, state, body, last_ts)
+            return fc
 
+    # -- defrost and priors ---------------------------------------------------------------------
     def _defrost(self, name: str, cfg: ItemConfig, now: float) -> dict[str, Any] | None:
         """The item's newest defrost from its stored signal (None: none lately), for the rules'
         defrost hold."""
@@ -314,6 +353,48 @@ class Refitter:
             self.priors[cls] = Prior() if body is None else Prior.from_dict(body)
         return self.priors[cls]
 
+    def _prior_for(
+        self, name: str, cls: str, window_from: float | None, episode: Episode | None
+    ) -> Prior:
+        """The prior for the item's fit now: the class's, or the one it had before the item's
+        own lesson while the fit could still see the taught readings (module docstring)."""
+        held = self.held.get(name)
+        if held is not None:
+            before, until, ep_id = held
+            same = episode is not None and episode.closed_at is None and episode.id == ep_id
+            if same or window_from is None or window_from <= until:
+                return before
+            del self.held[name]
+        return self._prior(cls)
+
+    def _learn_from(
+        self,
+        name: str,
+        cls: str,
+        fc: Forecast,
+        prior: Prior | None,
+        now: float,
+        episode: Episode | None,
+        t: np.ndarray,
+        y: np.ndarray,
+        lv: Level,
+        kw: dict[str, Any],
+    ) -> None:
+        """Teach the class from this fit (per the module's rule)."""
+        ep_id = episode.id if episode is not None and episode.closed_at is None else None
+        held = self.held.get(name)
+        if ep_id is not None and held is not None and held[2] == ep_id:
+            return  # this episode has taught its class already
+        self._maybe_learn(
+            name,
+            cls,
+            fc,
+            prior,
+            now,
+            lambda: self._predict(t, y, lv.threshold_c, **kw),
+            ep_id,
+        )
+
     def _maybe_learn(
         self,
         name: str,
@@ -322,8 +403,9 @@ class Refitter:
         prior: Prior | None,
         now: float,
         refit_plain: Callable[[], Forecast],
+        episode_id: int | None = None,
     ) -> None:
-        """Teach the class this episode's k (and fitted ambient) per the module's rule."""
+        """Teach the class this stretch's k (and fitted ambient) per the module's rule."""
         if not learnable(fc) or fc.regime_start is None or fc.t_last is None:
             return
         if name not in self.learned_until:
@@ -342,6 +424,7 @@ class Refitter:
         def update(body: dict[str, Any] | None) -> dict[str, Any]:
             return learn(None if body is None else Prior.from_dict(body), plain).to_dict()
 
+        before = prior if prior is not None else self._prior(cls)
         try:
             body = self.prior_store.learn(cls, name, until, now, update)
         except Exception:  # noqa: BLE001 - the next episode teaches again
@@ -349,6 +432,8 @@ class Refitter:
             return
         self.priors[cls] = Prior.from_dict(body)
         self.learned_until[name] = until
+        # this item's own fits keep the prior as it was, while they can see what it taught
+        self.held[name] = (before, until, episode_id)
         self.lessons += 1
         log.info(
             "prior %s learned from %s: %d episode(s), time constant about %.3g h",

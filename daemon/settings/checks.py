@@ -173,12 +173,15 @@ class Checks:
         hits = difflib.get_close_matches(key, sorted(allowed), n=1, cutoff=0.75)
         self.add(key, "unknown key" + (f" (did you mean '{hits[0]}'?)" if hits else ""))
 
-    def first_use(self, kind: str, key: str, value: str) -> None:
+    def first_use(self, kind: str, key: str, value: str, hint: str = "") -> None:
         """``value`` of ``key`` must be unique across the file's tables: a second use is a
-        problem naming the line of the first."""
+        problem naming the line of the first (and ``hint``, what to do instead)."""
         seen = self._seen.setdefault(kind, {})
         if value in seen:
-            self.add(key, f"already used by the item on line {seen[value]}")
+            self.add(
+                key,
+                f"already used by the item on line {seen[value]}" + (f": {hint}" if hint else ""),
+            )
         else:
             seen[value] = self.line(key)
 

@@ -10,10 +10,14 @@ import threading
 from typing import Any
 
 import paho.mqtt.client as mqtt
+from thermeta.daemon.levels.judge import remaining_s
 from thermeta.daemon.refit.rounds import ForecastUpdate
 from thermeta.daemon.states import ItemState
 from thermeta.daemon.timefmt import human_duration, local_clock, parse_time
 from thermeta.daemon.units import UNIT_SIGN
+
+HORIZON_S = 86400.0  # forecasts further out than the items' horizon are not counted as ahead
+PAST = (ItemState.CROSSED, ItemState.REACHED, ItemState.MISSED)
 
 
 class Recorder:
@@ -31,12 +35,23 @@ class Recorder:
     def on_forecast(self, update: ForecastUpdate) -> None:
         item_cfg, body = update.item, update.body
         now = self.clock.now()
+        # the level the simulated truth is about: the one at the probe's threshold
+        truth = self.truth.get(item_cfg.name)
+        thr = None if truth is None else truth.spec.threshold
+        level = next(
+            (d for d in body.get("levels") or [] if thr is not None and d.get("threshold") == thr),
+            None,
+        )
+        made = _epoch(body.get("updated_at")) or now
+        if level is not None:  # a level's ETAs count from when the forecast was made
+            etas = {k: level.get(k) for k in ("eta_s", "eta_lo_s", "eta_hi_s")}
+        else:
+            etas = {k: remaining_s(body, k, made) for k in ("eta_s", "eta_lo_s", "eta_hi_s")}
         rec = {
-            "made_at": now,
+            "made_at": made,
             "state": body.get("state"),
-            "eta_s": body.get("eta_s"),
-            "eta_lo_s": body.get("eta_lo_s"),
-            "eta_hi_s": body.get("eta_hi_s"),
+            "level_state": None if level is None else level.get("state"),
+            **etas,
             "t_last": _epoch(body.get("last_reading_at")),
             "value_now": body.get("value_now"),
         }
@@ -67,8 +82,9 @@ class Recorder:
             else:
                 hi_text = human_duration(hi + ahead)
             band = f"{human_duration(None if lo is None else lo + ahead)} to {hi_text}"
+            verb = "reaches" if d.get("kind") == "target" else "crosses"
             parts.append(
-                f"crosses {d.get('threshold'):g} {unit} at {local_clock(t_last + eta)} "
+                f"{verb} {d.get('threshold'):g} {unit} at {local_clock(t_last + eta)} "
                 f"(in {human_duration(t_last + eta - now)}; 90 %: {band})"
             )
         elif d.get("state") == ItemState.STEADY:
@@ -99,11 +115,11 @@ class Recorder:
         now = self.clock.now()
         with self._lock:
             self.alerts.append(
-                {"at": now, "topic": topic, "item": item, "level": doc.get("level"), "body": doc}
+                {"at": now, "topic": topic, "item": item, "event": doc.get("event"), "body": doc}
             )
         if self.echo:
             text = doc.get("sentence") or doc.get("text") or doc.get("message") or json.dumps(doc)
-            self._print(f"{self._stamp(now)} ALERT {doc.get('level') or ''} {item}: {text}")
+            self._print(f"{self._stamp(now)} ALERT {doc.get('event') or ''} {item}: {text}")
 
     def _stamp(self, now: float) -> str:
         return f"[{local_clock(now)} +{(now - self.scenario.t_start) / 60:5.0f} min]"
@@ -125,14 +141,16 @@ class Recorder:
             c = p.crossing_t_true
             errors = []
             for f in fcs:
+                # made while a crossing was forecast within the horizon and not yet come
                 if (
                     c is None
                     or f["eta_s"] is None
-                    or f["t_last"] is None
-                    or f["state"] != ItemState.APPROACHING
+                    or f["eta_s"] > HORIZON_S
+                    or f["level_state"] in PAST
+                    or f["state"] in (ItemState.STALE, ItemState.LEARNING)
                 ):
                     continue
-                true_left = c - f["t_last"]
+                true_left = c - f["made_at"]
                 if true_left <= 0:
                     continue
                 errors.append(
@@ -148,9 +166,23 @@ class Recorder:
             items[name] = {
                 "true_crossing_t": c,
                 "n_forecasts": len(fcs),
-                "n_approaching": sum(f["state"] == ItemState.APPROACHING for f in fcs),
+                "n_approaching": sum(
+                    f["level_state"] in (ItemState.APPROACHING, ItemState.LATE) for f in fcs
+                ),
                 "states": sorted({f["state"] for f in fcs if f["state"]}),
-                "alerts": [a["level"] for a in self.alerts if a["item"] == name],
+                "level_states": sorted({f["level_state"] for f in fcs if f["level_state"]}),
+                "alerts": [a["event"] for a in self.alerts if a["item"] == name],
+                "told": [
+                    {
+                        "event": a["event"],
+                        "level": a["body"].get("level"),
+                        "at": a["at"],
+                        "deadline_at_s": a["body"].get("deadline_at_s"),
+                        "lead_s": a["body"].get("lead_s"),
+                    }
+                    for a in self.alerts
+                    if a["item"] == name
+                ],
                 "ahead": errors,
             }
         return {

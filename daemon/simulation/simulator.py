@@ -239,14 +239,23 @@ def config_text(
     for p in scenario.loads:
         s = p.spec
         site = s.name.rsplit("/", 1)[0]
-        lines += [
-            "[[item]]",
-            f"name = {_toml_str(s.name)}",
-            f"topic = {_toml_str(s.topic)}",
-            f"threshold = {s.threshold:g}",
-            # the side of the limit: rising loads must stay below it, cooling ones get below it
-            f'limit = "{"upper" if s.direction == "rising" else "lower"}"',
-        ]
+        lines += ["[[item]]", f"name = {_toml_str(s.name)}", f"topic = {_toml_str(s.topic)}"]
+        if s.schedule:
+            lines.append(f"schedule = {_toml_str(s.schedule)}")  # its stages are targets
+        else:
+            lines += [
+                f"threshold = {s.threshold:g}",
+                f'kind = "{s.kind}"',
+                # the side that counts: a rising load must stay below (past when above), a
+                # cooling batch gets below its target
+                f'side = "{"above" if s.direction == "rising" else "below"}"',
+            ]
+            if s.within_s:
+                lines.append(f"within = {s.within_s:g}")
+            if s.budget_s:
+                lines.append(f"budget = {s.budget_s:g}")
+            if s.start is not None:
+                lines.append(f"start = {s.start:g}")
         if s.ambient_known is not None:
             lines.append(f"ambient = {s.ambient_known:g}")
         elif s.ambient_probe:

@@ -45,6 +45,11 @@ class ProbeSpec:
     ambient_known: float | None = None  # or a known constant ambient (a setpoint)
     lead_s: float | None = None
     window_s: float | None = None  # history a fit may use, when the default 2 h is too short
+    kind: Literal["limit", "target"] = "limit"  # the threshold is a limit, or a target to reach
+    schedule: str | None = None  # a named schedule of stages (its first stage is the threshold)
+    within_s: float | None = None  # a target's deadline, from its episode's start
+    start: float | None = None  # the temperature whose passing opens an episode
+    budget_s: float | None = None  # a limit's allowance of time beyond it
     corruption: Corruption = field(default_factory=Corruption)
     truth: dict[str, float] = field(default_factory=dict)
 
@@ -117,6 +122,8 @@ def _reefer() -> Site:
             f"{base}/load-top",
             load(1 / (4.5 * H)),
             truth={"k_per_s": 1 / (4.5 * H), "ambient": outside},
+            # the cargo may spend 45 minutes in all above 8 degC (an invented allowance)
+            budget_s=45 * MIN,
             **common,
         ),
         ProbeSpec(
@@ -214,9 +221,14 @@ def _wort() -> Site:
 
     # The coolant probe reads 9 degC steadily also before the pump starts, so it cannot tell the
     # forecast when chilling began: the items use the coolant setpoint as a known ambient.
+    # pitching temperature is the goal of the chill: a target, reached calmly, within 50 minutes
+    # of the wort passing 90 degC on its way down (the episode's start)
     common: dict[str, Any] = dict(
         threshold=20.0,
         direction="falling",
+        kind="target",
+        within_s=50 * MIN,
+        start=90.0,
         ambient_known=coolant,
         dt_s=10.0,
         lead_s=15 * MIN,
@@ -268,9 +280,12 @@ def _blast_chiller() -> Site:
     def tray(kl):
         return lambda x: two_stage(x, pieces, 20.0, 74.0, kl)[1]
 
+    # the trays are watched against the food-code cooling schedule (its first stage: 21 degC)
     common: dict[str, Any] = dict(
         threshold=21.0,
         direction="falling",
+        kind="target",
+        schedule="food-code-cooling",
         ambient_probe=f"{base}/air",
         dt_s=30.0,
         lead_s=30 * MIN,

@@ -1,6 +1,7 @@
 """One frame of the dashboard, read from the store: a :class:`Board` of header facts and a
-:class:`Row` per item, most urgent first (crossed, then the soonest early end of the ETA
-interval).  No drawing here: ``dashboard.py`` renders it."""
+:class:`Row` per item, most urgent first (by state, ``states.RANK``, then the soonest early end of
+the ETA interval).  An item with several levels, a deadline or a budget carries a
+:class:`LevelLine` per level.  No drawing here: ``dashboard.py`` renders it."""
 
 from __future__ import annotations
 
@@ -9,18 +10,31 @@ import time
 from dataclasses import dataclass, field
 from typing import Any
 
-from thermeta.daemon.alerts.rules import remaining_s
-from thermeta.daemon.states import EpisodeLevel, ItemState
+from thermeta.daemon.levels.judge import epoch, remaining_s
+from thermeta.daemon.states import RANK as URGENCY
+from thermeta.daemon.states import rank
 
-URGENCY = (  # most urgent first
-    ItemState.CROSSED,
-    ItemState.APPROACHING,
-    ItemState.STALE,
-    ItemState.LEARNING,
-    ItemState.STEADY,
-)
-RANK: dict[str, int] = {state: rank for rank, state in enumerate(URGENCY)}
+RANK: dict[str, int] = {state: i for i, state in enumerate(URGENCY)}
 HEARTBEAT_LATE_S = 20.0  # the service writes one every 5 s; older than this, it is not running
+
+
+@dataclass
+class LevelLine:
+    """One level of an item: its state and what it waits for (times counted from now)."""
+
+    name: str
+    kind: str
+    state: str
+    threshold: float | None
+    stage: int | None = None
+    eta_s: float | None = None
+    eta_lo_s: float | None = None
+    eta_hi_s: float | None = None
+    deadline_s: float | None = None  # time left to the deadline (negative: passed)
+    chance: float | None = None
+    budget_left_s: float | None = None
+    budget_state: str | None = None
+    budget_out_s: float | None = None  # until the budget runs out at the present course
 
 
 @dataclass
@@ -38,13 +52,16 @@ class Row:
     trend_per_h: float | None = None
     spark: list[float] = field(default_factory=list)
     group: str = ""
-    alert: str | None = None  # the open alert level, "+ack" when acknowledged
+    alert: str | None = None  # the open incident's state, "+ack" when acknowledged
     defrost: bool = False  # the controller's defrost signal is on: new alerts are held
+    kind: str = "limit"  # the focus level's
+    levels: list[LevelLine] = field(default_factory=list)  # when there is more than one question
+    episode: str | None = None  # the open episode: its batch name or number
 
     @property
     def urgency(self) -> tuple:
         soon = self.eta_lo_s if self.eta_lo_s is not None else self.eta_s
-        return (RANK.get(self.state, 5), math.inf if soon is None else soon, self.item)
+        return (rank(self.state), math.inf if soon is None else soon, self.item)
 
 
 @dataclass
@@ -121,6 +138,9 @@ def collect(
                 group=_group_of(name, d, topics.get(name)),
                 alert=alert_levels.get(name),
                 defrost=bool((d.get("defrost") or {}).get("on")),
+                kind=str(d.get("kind") or "limit"),
+                levels=level_lines(d, now),
+                episode=_episode_label(d),
             )
         )
     return Board(
@@ -137,18 +157,68 @@ def collect(
     )
 
 
+def level_lines(d: dict[str, Any], now: float) -> list[LevelLine]:
+    """The item's levels as lines, when it asks more than one plain limit question."""
+    docs = d.get("levels") or []
+    plain = len(docs) == 1 and docs[0].get("kind") == "limit" and "budget" not in docs[0]
+    if not docs or plain:
+        return []
+    out = []
+    for lv in docs:
+        b = lv.get("budget") or {}
+        out_at = epoch(b.get("runs_out_at"))
+        deadline = lv.get("deadline_at_s")
+        out.append(
+            LevelLine(
+                name=str(lv.get("name")),
+                kind=str(lv.get("kind")),
+                state=str(lv.get("state")),
+                threshold=lv.get("threshold"),
+                stage=lv.get("stage"),
+                # a level's ETAs count from when the forecast was made
+                eta_s=_since_made(lv.get("eta_s"), d, now),
+                eta_lo_s=_since_made(lv.get("eta_lo_s"), d, now),
+                eta_hi_s=_since_made(lv.get("eta_hi_s"), d, now),
+                deadline_s=None if deadline is None else deadline - now,
+                chance=lv.get("chance"),
+                budget_left_s=b.get("left_s"),
+                budget_state=b.get("state"),
+                budget_out_s=None if out_at is None else out_at - now,
+            )
+        )
+    return out
+
+
+def _since_made(left: float | None, d: dict[str, Any], now: float) -> float | None:
+    made = epoch(d.get("updated_at"))
+    if left is None:
+        return None
+    return max(0.0, left - (0.0 if made is None else max(0.0, now - made)))
+
+
+def _episode_label(d: dict[str, Any]) -> str | None:
+    ep = d.get("episode") or {}
+    if not ep or ep.get("ended_at"):
+        return None
+    return str(ep.get("batch") or f"#{ep.get('id')}")
+
+
 def _alert_levels(store: Any) -> tuple[dict[str, str], int]:
-    """Open alert levels per item ("+ack" when acknowledged) and the outbox rows waiting."""
+    """The open incident's most pressing state per item ("+ack" when acknowledged) and the
+    outbox rows waiting."""
+    from thermeta.daemon.alerts.rules import ItemAlertState
     from thermeta.storage.alerts import AlertStore, OutboxStatus
 
     if not store.has_table("alert_state"):
         return {}, 0  # a store from before alerts: the board still shows forecasts
     a = AlertStore(store)
     out = {}
-    for item, st in a.load_states().items():
-        if st.get("level", EpisodeLevel.CLEAR) != EpisodeLevel.CLEAR:
-            acked = a.ack_of(item, int(st.get("episode", 0))) is not None
-            out[item] = st["level"] + ("+ack" if acked else "")
+    for item, raw in a.load_states().items():
+        st = ItemAlertState.from_json(raw)
+        if st.incident_open and st.open_states:
+            worst = min(st.open_states.values(), key=rank)
+            acked = a.ack_of(item, st.incident) is not None
+            out[item] = str(worst) + ("+ack" if acked else "")
     return out, a.outbox_counts()[OutboxStatus.PENDING]
 
 

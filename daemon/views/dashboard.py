@@ -19,19 +19,32 @@ from rich.console import Console, Group, JustifyMethod
 from rich.table import Table
 from rich.text import Text
 from thermeta.daemon.alerts.message import CAUTION, UNIT_SIGN
-from thermeta.daemon.states import ItemState
-from thermeta.daemon.timefmt import human_duration
-from thermeta.daemon.views.board import RANK, Board, Row, collect
+from thermeta.daemon.states import ATTENTION, ItemState
+from thermeta.daemon.timefmt import human_duration, local_clock
+from thermeta.daemon.views.board import RANK, Board, LevelLine, Row, collect
 
 STATE_LOOK: dict[
     str, tuple[str, str]
 ] = {  # symbol, style (colours of our own; the state's word always carries the meaning)
     ItemState.CROSSED: ("✖", "bold #ff6b6b"),
+    ItemState.MISSED: ("✖", "bold #ff6b6b"),
     ItemState.APPROACHING: ("▲", "bold #ffb347"),
+    ItemState.LATE: ("▲", "bold #ffb347"),
+    ItemState.SHORT: ("▼", "bold #ffb347"),
     ItemState.STALE: ("?", "#a0a0d0"),
     ItemState.LEARNING: ("…", "#9a9a9a"),
+    ItemState.WAITING: ("○", "#9a9a9a"),
+    ItemState.HEADING: ("●", "#6fcf97"),
     ItemState.STEADY: ("●", "#6fcf97"),
+    ItemState.REACHED: ("✔", "#6fcf97"),
 }
+HOT = (
+    ItemState.CROSSED,
+    ItemState.MISSED,
+    ItemState.APPROACHING,
+    ItemState.LATE,
+    ItemState.SHORT,
+)
 
 
 class ViewState(TypedDict):
@@ -42,7 +55,6 @@ class ViewState(TypedDict):
     typing: bool  # the filter is being typed
 
 
-ATTENTION = (ItemState.CROSSED, ItemState.APPROACHING, ItemState.STALE)
 SPARK = "▁▂▃▄▅▆▇█"
 GROUP_WHEN_MORE_THAN = 10
 
@@ -84,15 +96,47 @@ def short_duration(s: float | None) -> str:
     return f"{d}d{h}h"
 
 
-def eta_text(r: Row) -> str:
+def eta_text(r: Row | LevelLine) -> str:
     if r.state == ItemState.CROSSED:
         return "past limit"
+    if r.state in (ItemState.REACHED, ItemState.MISSED, ItemState.WAITING):
+        return str(r.state)
     if r.eta_s is None:
-        return "none" if r.state == ItemState.STEADY else "-"
+        return "none" if r.state in (ItemState.STEADY, ItemState.SHORT) else "-"
     text = short_duration(r.eta_s)
     if r.eta_lo_s is not None or r.eta_hi_s is not None:
         text += f" [{short_duration(r.eta_lo_s)}-{short_duration(r.eta_hi_s)}]"
     return text
+
+
+def level_note(lv: LevelLine, now: float) -> str:
+    """What a level waits for besides its ETA: its deadline and chance, or its budget."""
+    parts = []
+    if lv.deadline_s is not None:
+        parts.append(f"by {local_clock(now + lv.deadline_s)}")
+        if lv.chance is not None and lv.state not in (ItemState.REACHED, ItemState.MISSED):
+            parts.append(f"{100 * lv.chance:.0f} %")
+    if lv.budget_left_s is not None:
+        text = f"budget {short_duration(lv.budget_left_s)} left"
+        if lv.budget_out_s is not None and lv.budget_left_s > 0:
+            text += f", out in {short_duration(lv.budget_out_s)}"
+        parts.append(text)
+    return " ".join(parts)
+
+
+def narrow_level(lv: LevelLine, now: float) -> tuple[str, str]:
+    """A level's ETA cell and note on a narrow screen: "2h20 by 19:33" and "3 %", or the ETA
+    and "32m left" of a budget."""
+    eta = eta_text(lv)
+    if lv.deadline_s is not None:
+        when = eta if lv.state in (ItemState.REACHED, ItemState.MISSED) else eta.split(" [")[0]
+        eta = f"{when} by {local_clock(now + lv.deadline_s)}"
+    note = ""
+    if lv.chance is not None and lv.state not in (ItemState.REACHED, ItemState.MISSED):
+        note = f"{100 * lv.chance:.0f} %"
+    elif lv.budget_left_s is not None:
+        note = f"{short_duration(lv.budget_left_s)} left"
+    return eta, note
 
 
 def _num(v: float | None, fmt: str = "{:.1f}") -> str:
@@ -234,7 +278,7 @@ def render(
         if r.defrost:
             name += " (defrost)"  # at the end, which fit_name keeps: new alerts are held
         sign = UNIT_SIGN.get(r.unit, r.unit) if wide else ""
-        hot = style if r.state in (ItemState.CROSSED, ItemState.APPROACHING) else ""
+        hot = style if r.state in HOT else ""
         table.add_row(
             label,
             fit_name(name, w["item"]),
@@ -247,6 +291,24 @@ def render(
         )
         shown += 1
         lines_used += 1
+        for lv in r.levels:
+            if lines_used >= room:
+                break
+            lsym, lstyle = STATE_LOOK.get(lv.state, ("·", ""))
+            eta, note = eta_text(lv), level_note(lv, board.now)
+            if not wide:  # the deadline beside the ETA, the chance or budget in the last column
+                eta, note = narrow_level(lv, board.now)
+            table.add_row(
+                Text(f"  {lsym} {lv.state}", style=lstyle if lv.state in HOT else "dim"),
+                fit_name(f"└ {lv.name}", w["item"]),
+                "",
+                _num(lv.threshold),
+                Text(eta, style=lstyle if lv.state in HOT else "dim"),
+                "",
+                "",
+                Text(note, style="dim", no_wrap=True, overflow="crop"),
+            )
+            lines_used += 1
     body.append(table)
     parts: list[Any] = [header_text(board)]
     counts = {s: sum(1 for r in board.rows if r.state == s) for s in RANK}
@@ -270,11 +332,18 @@ def plain_lines(board: Board) -> list[str]:
     out = [header_text(board).plain]
     for r in visible(board):
         out.append(
-            f"{r.item} {r.state} now {_num(r.value)} {r.unit} limit {_num(r.threshold)} "
+            f"{r.item} {r.state} now {_num(r.value)} {r.unit} {r.kind} {_num(r.threshold)} "
             f"eta {eta_text(r)} ambient {_num(r.ambient)} tau {human_duration(r.tau_s)}"
             + (f" alert {r.alert}" if r.alert else "")
             + (" defrost" if r.defrost else "")
+            + (f" episode {r.episode}" if r.episode else "")
         )
+        for lv in r.levels:
+            note = level_note(lv, board.now)
+            out.append(
+                f"  {lv.name} {lv.kind} {_num(lv.threshold)} {lv.state} eta {eta_text(lv)}"
+                + (f" {note}" if note else "")
+            )
     return out
 
 

@@ -359,30 +359,55 @@ def item_series(store, cfg, *, history_s: float | None = None):
     return _Series(t, y, at, ay)
 
 
-def item_forecast(series, cfg, *, limit: Side | None = None, prior=None) -> Forecast:
+def item_forecast(
+    series, cfg, *, side: Side | None = None, prior=None, threshold_c: float | None = None
+) -> Forecast:
     """Refit the item as the service does (the refit's own arguments: model, ambient mode and
-    its doubt, window, limit side, the learned prior), in degC."""
+    its doubt, window, side, the learned prior) for one of its levels (default its first), in
+    degC."""
+    from thermeta.daemon.levels.spec import levels_of
     from thermeta.daemon.refit.rounds import forecast_kwargs
     from thermeta.predictors import forecast
 
+    thr = levels_of(cfg)[0].threshold_c if threshold_c is None else threshold_c
     return forecast(
         series.t,
         series.y,
-        cfg.threshold_c,
+        thr,
         prior=prior,
-        **forecast_kwargs(cfg, limit, series.ambient_t, series.ambient_y),
+        **forecast_kwargs(cfg, side, series.ambient_t, series.ambient_y),
     )
 
 
+def focus_level(store, cfg):
+    """The level the item's newest forecast is about (its focus) and its side as the refit
+    decides it: configured, recorded, or (not yet recorded) from the newest reading."""
+    from thermeta.daemon.levels.spec import auto_side, levels_of
+    from thermeta.daemon.units import from_celsius
+    from thermeta.storage.episodes import EpisodeStore
+
+    levels = levels_of(cfg)
+    latest = {f.item: f.forecast for f in store.latest_forecasts()}.get(cfg.name) or {}
+    lv = next((x for x in levels if x.name == latest.get("focus")), levels[0])
+    if lv.side != "auto":
+        return lv, lv.side
+    recorded = EpisodeStore(store).sides(cfg.name) if store.has_table("level_sides") else {}
+    if lv.name in recorded:
+        return lv, recorded[lv.name]
+    last = store.last_reading_times().get(cfg.name)
+    rows = [] if last is None else store.recent_readings(cfg.name, since_ts=last)
+    value = from_celsius(rows[-1][1], cfg.unit) if rows else None
+    return lv, auto_side(lv, value)
+
+
 def _limit_and_prior(store, cfg, measured: bool):
-    """The limit side and learned prior the refit would use for the item, read from the store."""
-    from thermeta.daemon.refit.rounds import limit_side, uses_prior
+    """The focus level, its side and the learned prior the refit would use for the item, read
+    from the store."""
+    from thermeta.daemon.refit.rounds import uses_prior
     from thermeta.predictors.prior import Prior
     from thermeta.storage.priors import PriorStore
 
-    item_id = store.item_id(cfg.name)
-    first = store.first_reading(item_id) if item_id is not None else None
-    limit = limit_side(cfg, None if first is None else first[1])
+    level, limit = focus_level(store, cfg)
     prior = None
     if uses_prior(cfg, measured):
         try:
@@ -391,7 +416,7 @@ def _limit_and_prior(store, cfg, measured: bool):
             log.exception("reading the prior of %s failed", cfg.name)
             body = None
         prior = Prior() if body is None else Prior.from_dict(body)
-    return limit, prior
+    return level, limit, prior
 
 
 def item_png(
@@ -408,8 +433,8 @@ def item_figure(store, cfg, *, history_s: float | None = None, title: str | None
     series = item_series(store, cfg, history_s=history_s)
     if series is None:
         return None
-    limit, prior = _limit_and_prior(store, cfg, series.ambient_y is not None)
-    fc = item_forecast(series, cfg, limit=limit, prior=prior)
+    level, side, prior = _limit_and_prior(store, cfg, series.ambient_y is not None)
+    fc = item_forecast(series, cfg, side=side, prior=prior, threshold_c=level.threshold_c)
     return forecast_figure(
         series,
         fc,

@@ -18,24 +18,28 @@ from typing import Any, ClassVar, Generic, TypeVar
 
 from pydantic import Field
 from thermeta.daemon.settings.checks import Checks, Positive, Table, Text, Texts, show
-from thermeta.daemon.states import AlertLevel
+from thermeta.daemon.states import Event
 
 Publish = Callable[..., Any]
 PngFor = Callable[[dict[str, Any]], bytes | None]
 
 
 class HookConfig(Table):
-    """What every ``[[hook]]`` has: its kind, a name, and filters by item and level."""
+    """What every ``[[hook]]`` has: its kind, a name, and filters by item and event."""
 
     kind: str
     name: Text | None = None  # the hook's name in the outbox; default kind-position
     items: Texts | None = None  # item names, * and ? allowed; None: every item
-    levels: Texts | None = None  # alert levels; None: every level
+    events: Texts | None = None  # alert events; None: every event
+
+    refused: ClassVar[dict[str, str]] = {
+        "levels": "renamed to events (an alert's event: approaching, crossed, late, ...)"
+    }
 
     def check(self, checks: Checks) -> None:
-        for lv in self.levels or ():
-            if lv not in tuple(AlertLevel):
-                checks.add("levels", f"unknown level {show(lv)} (one of {', '.join(AlertLevel)})")
+        for ev in self.events or ():
+            if ev not in tuple(Event):
+                checks.add("events", f"unknown event {show(ev)} (one of {', '.join(Event)})")
 
 
 class TimedHookConfig(HookConfig):
@@ -65,11 +69,11 @@ class Hook(ABC, Generic[C]):
         self.png_for = png_for  # the item's picture for an alert (the email kind attaches it)
 
     def wants(self, alert: dict[str, Any]) -> bool:
-        """Whether this hook is limited to other items or levels (item names may use * and ?)."""
-        items, levels = self.cfg.items, self.cfg.levels
+        """Whether this hook is limited to other items or events (item names may use * and ?)."""
+        items, events = self.cfg.items, self.cfg.events
         if items is not None and not any(fnmatch.fnmatchcase(alert["item"], pat) for pat in items):
             return False
-        return levels is None or alert["level"] in levels
+        return events is None or alert["event"] in events
 
     @abstractmethod
     def deliver(self, alert: dict[str, Any]) -> None:

@@ -52,8 +52,13 @@ class EmailConfig(TimedHookConfig):
 
 
 FIELDS = (
+    ("event", "event"),
+    ("level", "level"),
     ("value_now", "value now"),
     ("threshold", "threshold"),
+    ("deadline_at", "deadline"),
+    ("chance", "chance of making it"),
+    ("reached_at", "reached at"),
     ("eta_s", "ETA (s)"),
     ("crossing_at", "crossing at"),
     ("crossing_lo_at", "interval from"),
@@ -68,7 +73,7 @@ FIELDS = (
 
 def subject(alert: dict[str, Any]) -> str:
     tag = "reminder: " if alert.get("reminder") else ""
-    return f"[thermeta] {alert['item']} {tag}{alert['level']}"
+    return f"[thermeta] {alert['item']} {tag}{alert['event']}"
 
 
 def body_text(alert: dict[str, Any]) -> str:

@@ -1,7 +1,7 @@
 """``kind = "exec"``: run a program with the alert as JSON on stdin and as environment variables.
 
 The command is a list, run directly (never through a shell).  Each scalar field of the alert is
-also in the environment as ``THERMETA_<FIELD>`` (e.g. ``THERMETA_ITEM``, ``THERMETA_LEVEL``,
+also in the environment as ``THERMETA_<FIELD>`` (e.g. ``THERMETA_ITEM``, ``THERMETA_EVENT``,
 ``THERMETA_SENTENCE``).  A non-zero exit or running past ``timeout`` is a failed delivery.
 """
 
