@@ -27,6 +27,7 @@ from thermeta.daemon.ingest.mqtt import MqttLink
 from thermeta.daemon.ingest.topics import Router
 from thermeta.daemon.ingest.writer import Activity, Writer
 from thermeta.daemon.refit.rounds import Listener, Refitter
+from thermeta.daemon.scheduling import StepWatch
 from thermeta.daemon.states import ItemState
 from thermeta.storage.store import Store, safe_url
 
@@ -50,6 +51,7 @@ class Service:
         self.writer = Writer(self.store, self.router, config, self.clock, self._ack, self.activity)
         self.link: MqttLink | None = None
         self.scheduler: Any = None
+        self.step_watch: StepWatch | None = None
         self.plugins: list[Any] = []
         self.started_at: float | None = None
         self.stopped = threading.Event()
@@ -195,6 +197,8 @@ class Service:
         sched.add_listener(on_event, EVENT_JOB_ERROR | EVENT_JOB_MISSED | EVENT_JOB_MAX_INSTANCES)
         sched.start()
         self.scheduler = sched
+        self.step_watch = StepWatch(sched)  # APScheduler times by the wall clock, even in a demo
+        self.step_watch.start()
 
     def refit_now(self) -> dict[str, ItemState]:
         """Run one refit round at once (tests, the demo)."""
@@ -236,6 +240,8 @@ class Service:
         if self.link is not None:
             self.link.stop_receiving()
         self.writer.stop()
+        if self.step_watch is not None:
+            self.step_watch.stop()
         if self.scheduler is not None:
             self.scheduler.shutdown(wait=True)
         for plugin in self.plugins:

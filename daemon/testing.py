@@ -221,6 +221,32 @@ class RunningDaemon:
         self.stop()
 
 
+FAKETIME_LIBS = (
+    "/usr/lib/x86_64-linux-gnu/faketime/libfaketimeMT.so.1",
+    "/usr/lib/aarch64-linux-gnu/faketime/libfaketimeMT.so.1",
+    "/usr/lib/faketime/libfaketimeMT.so.1",
+)
+
+
+def faketime_env(offset_file: Path) -> dict[str, str] | None:
+    """An environment in which a process's wall clock is shifted by the offset written in
+    ``offset_file`` (libfaketime: "+0", "-3600", "+1h"; read afresh on every call, so writing
+    the file steps the clock of the running process); its monotonic clock stays true.  None when
+    libfaketime is not installed (Debian: ``apt-get install libfaketime``)."""
+    lib = next((p for p in FAKETIME_LIBS if Path(p).exists()), None)
+    if lib is None:
+        return None
+    if not Path(offset_file).exists():
+        Path(offset_file).write_text("+0\n")
+    return dict(
+        os.environ,
+        LD_PRELOAD=lib,
+        FAKETIME_TIMESTAMP_FILE=str(offset_file),
+        FAKETIME_NO_CACHE="1",
+        FAKETIME_DONT_FAKE_MONOTONIC="1",
+    )
+
+
 # -- publishing ------------------------------------------------------------------------------------
 def readings(topic: str, t0: float, n: int, start: int = 0, step_s: float = 1.0) -> list[tuple]:
     """``n`` JSON readings ``{"ts", "value"}`` on ``topic``, ``step_s`` apart from ``t0``."""

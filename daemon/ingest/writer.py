@@ -33,7 +33,7 @@ from tenacity import (
     wait_exponential,
     wait_fixed,
 )
-from thermeta.daemon.clock import Clock
+from thermeta.daemon.clock import Clock, monotonic_of
 from thermeta.daemon.config import Config, ItemConfig
 from thermeta.daemon.ingest.defrost import parse_defrost
 from thermeta.daemon.ingest.marks import parse_mark
@@ -89,14 +89,21 @@ class Activity:
 
     last_ts: dict[str, float] = field(default_factory=dict)
     items: dict[str, ItemConfig] = field(default_factory=dict)
+    # when each item's newest reading arrived, on the clock's monotonic scale (clock.monotonic_of)
+    arrived: dict[str, float] = field(default_factory=dict)
     _dirty: set[str] = field(default_factory=set)
     _lock: threading.Lock = field(default_factory=threading.Lock)
 
-    def note(self, name: str, cfg: ItemConfig, ts: float | None) -> None:
-        """New readings stored for ``name`` (ts None: only its ambient probe's)."""
+    def note(
+        self, name: str, cfg: ItemConfig, ts: float | None, arrived: float | None = None
+    ) -> None:
+        """New readings stored for ``name`` (ts None: only its ambient probe's), which arrived at
+        ``arrived`` (monotonic; None when unknown: silence is then judged by ``ts``)."""
         with self._lock:
             if ts is not None:
                 self.items.setdefault(name, cfg)
+                if arrived is not None:
+                    self.arrived[name] = arrived
             if ts is not None and ts > self.last_ts.get(name, float("-inf")):
                 self.last_ts[name] = ts
             self._dirty.add(name)
@@ -115,6 +122,14 @@ class Activity:
     def snapshot(self) -> tuple[dict[str, ItemConfig], dict[str, float]]:
         with self._lock:
             return dict(self.items), dict(self.last_ts)
+
+    def silences(self, now: float, mono_now: float) -> dict[str, float]:
+        """Seconds since each item last spoke: since its newest reading arrived where known (a
+        step of the wall clock changes nothing), else since its newest reading's time."""
+        with self._lock:
+            out = {name: now - ts for name, ts in self.last_ts.items()}
+            out.update({name: mono_now - at for name, at in self.arrived.items()})
+            return out
 
 
 class Writer(threading.Thread):
@@ -283,8 +298,9 @@ class Writer(threading.Thread):
             prev = newest.get(name)
             if prev is None or (ts is not None and (prev[1] is None or ts > prev[1])):
                 newest[name] = (cfg, ts)
+        arrived = monotonic_of(self.clock)
         for name, (cfg, ts) in newest.items():
-            self.activity.note(name, cfg, ts)
+            self.activity.note(name, cfg, ts, arrived)
         try:
             self.ack(batch)
         except Exception:  # noqa: BLE001 - unacked messages come back and are absorbed

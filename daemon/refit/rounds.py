@@ -49,7 +49,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from thermeta.daemon.clock import Clock
+from thermeta.daemon.clock import Clock, monotonic_of
 from thermeta.daemon.config import AMBIENT_SUFFIX, DEFROST_SUFFIX, Config, ItemConfig
 from thermeta.daemon.ingest.defrost import defrost_status
 from thermeta.daemon.ingest.writer import Activity
@@ -177,6 +177,7 @@ class Refitter:
             now = self.clock.now()
             dirty = self.activity.take_dirty()
             items, last = self.activity.snapshot()
+            silent = self.activity.silences(now, monotonic_of(self.clock))
             self.keeper.load()
             done: dict[str, ItemState] = {}
             pending: list[_Refitted] = []
@@ -186,13 +187,13 @@ class Refitter:
                 going_stale = (
                     prev is not None
                     and prev.get("state") != ItemState.STALE
-                    and name in last
-                    and now - last[name] > cfg.silence_s
+                    and name in silent
+                    and silent[name] > cfg.silence_s
                 )
                 if not (due or going_stale):
                     continue
                 try:
-                    pending.append(self._refit(name, cfg, now, last.get(name)))
+                    pending.append(self._refit(name, cfg, now, last.get(name), silent.get(name)))
                 except Exception:  # noqa: BLE001 - one item never stops the others
                     self._log_error(name, "refit of %s failed", name)
                 if len(pending) >= SAVE_EVERY:
@@ -231,8 +232,16 @@ class Refitter:
             done[r.name] = r.state
         pending.clear()
 
-    def _refit(self, name: str, cfg: ItemConfig, now: float, last_ts: float | None) -> _Refitted:
-        """Fit one item's levels and judge them; returns what to store and publish."""
+    def _refit(
+        self,
+        name: str,
+        cfg: ItemConfig,
+        now: float,
+        last_ts: float | None,
+        silent_s: float | None = None,
+    ) -> _Refitted:
+        """Fit one item's levels and judge them; returns what to store and publish (``silent_s``:
+        how long the item has been silent, by arrival; None: judged from ``last_ts``)."""
         item_id = self.item_ids.get(name) or self.store.item_id(name)
         if item_id is None:
             item_id = self.store.ensure_item(name, unit=cfg.unit, topic=cfg.topic, now=now)
@@ -288,6 +297,7 @@ class Refitter:
             now,
             last_ts,
             check_every_s=self.config.fit.refit_every_s,
+            silent_s=silent_s,
             episode=episode,
             tally=tally,
             period_tally=period,

@@ -5,6 +5,8 @@ Each test runs `thermeta run` as a process against a real Mosquitto and a real s
 from __future__ import annotations
 
 import json
+import os
+import threading
 import time
 
 import pytest
@@ -20,6 +22,7 @@ from thermeta.daemon.testing import (
 )
 
 pytestmark = pytest.mark.broker
+IN_CI = os.environ.get("CI", "").lower() in ("1", "true", "yes")
 
 CELLAR = '[[item]]\nname = "{2}"\ntopic = "cellar/+/core"\nthreshold = 8.0\nambient = 20.0\n'
 
@@ -91,3 +94,113 @@ def test_fault01_a_reading_the_store_refuses_does_not_block_its_batch(broker, tm
         assert len(reasons) == 1 and "refused" in reasons[0], reasons
         publish(broker, readings("cellar/tank-1/core", t0, 10, start=41))
         wait_for(lambda: count_readings(url, "tank-1") == 50, 10, d.log)
+
+
+def _faketime(tmp_path):
+    from thermeta.daemon.testing import faketime_env
+
+    env = faketime_env(tmp_path / "clock-offset")
+    if env is None:
+        if IN_CI:
+            pytest.fail("CI=true but libfaketime is not installed (apt-get install libfaketime)")
+        pytest.skip("libfaketime not installed (apt-get install libfaketime)")
+    return env
+
+
+class Sensors(threading.Thread):
+    """Publishes a reading for each topic every ``every_s`` until stopped; ``stamped``: with the
+    sensor's own time (the true clock), else without (the daemon stamps it on receipt)."""
+
+    def __init__(self, broker, topics, every_s=0.5, stamped=True):
+        super().__init__(daemon=True)
+        import paho.mqtt.client as mqtt
+
+        self.c = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id="fault-sensors")
+        self.c.connect(broker.host, broker.port)
+        self.c.loop_start()
+        self.topics, self.every_s, self.stamped = topics, every_s, stamped
+        self.halt = threading.Event()
+
+    def run(self):
+        i = 0
+        while not self.halt.wait(self.every_s):
+            for topic in self.topics:
+                body = {"value": 4.0 + 0.001 * i}
+                if self.stamped:
+                    body["ts"] = time.time()
+                self.c.publish(topic, json.dumps(body), qos=1)
+            i += 1
+
+    def stop(self):
+        self.halt.set()
+        self.join(5)
+        self.c.disconnect()
+        self.c.loop_stop()
+
+
+def _forecasts(url: str) -> list[tuple[str, str]]:
+    eng = create_engine(url)
+    try:
+        with eng.connect() as conn:
+            q = (
+                "SELECT i.name, f.state FROM forecasts f JOIN items i ON i.id = f.item_id "
+                "ORDER BY f.id"
+            )
+            return [tuple(r) for r in conn.execute(text(q))]
+    finally:
+        eng.dispose()
+
+
+def _heartbeat(url: str) -> dict:
+    eng = create_engine(url)
+    try:
+        with eng.connect() as conn:
+            row = conn.execute(text("SELECT value FROM meta WHERE key = 'daemon'")).scalar()
+            return json.loads(row) if row else {}
+    finally:
+        eng.dispose()
+
+
+def test_fault02_a_backward_clock_step_stops_no_scheduled_work(broker, tmp_path):
+    """The daemon's wall clock stepped back an hour (libfaketime): refits and the heartbeat go
+    on at their pace (APScheduler alone waited the hour out)."""
+    env = _faketime(tmp_path)
+    url = f"sqlite:///{tmp_path / 'store.db'}"
+    cfg = write_config(tmp_path, broker, db_url=url, items=CELLAR, refit_every=1)
+    sensors = Sensors(broker, ["cellar/tank-1/core"], stamped=False)
+    with RunningDaemon(cfg, env=env) as d:
+        sensors.start()
+        try:
+            wait_for(lambda: len(_forecasts(url)) >= 2, 15, d.log)
+            (tmp_path / "clock-offset").write_text("-3600\n")
+            time.sleep(1.5)
+            before, beat = len(_forecasts(url)), _heartbeat(url)["heartbeat_at"]
+            wait_for(lambda: len(_forecasts(url)) >= before + 2, 15, d.log)
+            wait_for(lambda: _heartbeat(url)["heartbeat_at"] != beat, 12, d.log)
+        finally:
+            sensors.stop()
+    assert "stepped back by 3600 s" in d.text()
+
+
+def test_fault02_a_forward_clock_step_raises_no_stale(broker, tmp_path):
+    """The daemon's wall clock stepped forward an hour while its sensors (true clocks) report
+    every 0.5 s: no item is judged silent, since silence is measured by arrival."""
+    env = _faketime(tmp_path)
+    url = f"sqlite:///{tmp_path / 'store.db'}"
+    items = CELLAR.replace("ambient = 20.0", "ambient = 20.0\nsilence = 60")
+    cfg = write_config(tmp_path, broker, db_url=url, items=items, refit_every=1)
+    topics = [f"cellar/tank-{i}/core" for i in range(5)]
+    sensors = Sensors(broker, topics, stamped=True)
+    with RunningDaemon(cfg, env=env) as d:
+        sensors.start()
+        try:
+            wait_for(lambda: len({n for n, _ in _forecasts(url)}) == 5, 15, d.log)
+            (tmp_path / "clock-offset").write_text("+3600\n")
+            time.sleep(1.5)
+            before = len(_forecasts(url))
+            wait_for(lambda: len(_forecasts(url)) >= before + 10, 15, d.log)
+        finally:
+            sensors.stop()
+    after = _forecasts(url)[before:]
+    assert [s for _, s in after if s == "stale"] == [], after
+    assert "stepped forward by 3600 s" in d.text()
