@@ -29,6 +29,11 @@ def check_rendered_name(name: str) -> str | None:
         return f"item name from the topic is too long ({len(name)} > {NAME_MAX} characters)"
     if not RENDERED_NAME_RE.fullmatch(name):
         return "item name from the topic may hold only letters, digits and . _ - :"
+    # An item's own series and its companions' are separate name spaces: no topic may name an
+    # item "tank-1.defrost" and so write into tank-1's defrost signal.
+    for suffix in (AMBIENT_SUFFIX, DEFROST_SUFFIX, EPISODE_SUFFIX):
+        if name.endswith(suffix):
+            return f"item name from the topic may not end in {suffix!r} (kept for companions)"
     return None
 
 
