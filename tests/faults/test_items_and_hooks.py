@@ -89,7 +89,8 @@ def _exec_hook(**kw):
 
 def test_fault04_an_exec_hook_gets_a_minimal_environment(tmp_path, monkeypatch):
     """The daemon's secrets (the broker password, the webhook token) stay in the daemon: the
-    program sees PATH, LANG (LC_ALL, TZ, HOME), the alert's THERMETA_* fields and the variables its `env` names."""
+    program sees PATH, LANG (LC_ALL, TZ, HOME), the alert's THERMETA_* fields and the variables
+    its `env` names."""
     import sys
 
     monkeypatch.setenv("THERMETA_MQTT_PASSWORD", "mqtt-s3cret")
