@@ -107,6 +107,7 @@ class Service:
             self.clock,
             cfg.publish.status_topic,
             {"pid": os.getpid()},
+            max_payload_bytes=cfg.ingest.max_payload_bytes,
         )
         self.link.start()
         self._start_scheduler()

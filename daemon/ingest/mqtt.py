@@ -11,6 +11,11 @@ Durability, from paho's own behaviour:
 - ``on_message`` only hands the message on, inside a try/except: an exception there would kill
   paho's network thread;
 - subscriptions are made in ``on_connect`` so every reconnect renews them.
+
+Oversized payloads: under MQTT 5 the daemon announces a Maximum Packet Size (the largest
+payload it keeps, ``[ingest] max_payload_bytes``, plus room for topic and properties), so the
+broker never sends it a bigger one; under 3.1.1 a bigger one is cut to its first bytes on
+arrival and goes on only as a dead letter, so a huge payload is not copied through the writer.
 """
 
 from __future__ import annotations
@@ -32,6 +37,7 @@ from thermeta.daemon.ingest.writer import Inbound
 log = logging.getLogger("thermeta.mqtt")
 
 UNSUPPORTED_PROTOCOL = (1, 132)  # 3.1.1 CONNACK code 1; MQTT 5 reason 0x84
+PACKET_OVERHEAD = 8192  # bytes beside the payload in a PUBLISH: the topic, properties, header
 FALLBACK_WAIT_S = 3.0
 
 
@@ -46,6 +52,7 @@ class MqttLink:
         clock: Clock,
         status_topic: str,
         status_extra: dict[str, Any] | None = None,
+        max_payload_bytes: int | None = None,
     ):
         self.cfg = cfg
         self.filters = list(filters)
@@ -53,6 +60,7 @@ class MqttLink:
         self.clock = clock
         self.status_topic = status_topic
         self.status_extra = dict(status_extra or {})
+        self.max_payload_bytes = max_payload_bytes
         self.generation = 0
         self.connected = threading.Event()
         self.accepting = True
@@ -140,6 +148,8 @@ class MqttLink:
             # Unacknowledged messages the broker may send ahead (MQTT 5 Receive Maximum); for
             # 3.1.1 the broker's max_inflight_messages plays this part.
             props.ReceiveMaximum = int(self.cfg.receive_maximum)
+            if self.max_payload_bytes:
+                props.MaximumPacketSize = int(self.max_payload_bytes) + PACKET_OVERHEAD
             self.client.connect_async(
                 self.cfg.host,
                 self.cfg.port,
@@ -210,8 +220,20 @@ class MqttLink:
                 self.counts["dropped"] += 1
                 return
             self.counts["received"] += 1
+            payload, size = msg.payload, 0
+            cap = self.max_payload_bytes
+            if cap and len(payload) > cap:  # kept only as a dead letter's excerpt
+                payload, size = payload[: min(cap, 4096)], len(payload)
             self.deliver(
-                Inbound(msg.topic, msg.payload, self.clock.now(), msg.mid, msg.qos, self.generation)
+                Inbound(
+                    msg.topic,
+                    payload,
+                    self.clock.now(),
+                    msg.mid,
+                    msg.qos,
+                    self.generation,
+                    size,
+                )
             )
         except Exception:  # noqa: BLE001 - never let one message stop the network thread
             log.exception("error handing on a message from %s", getattr(msg, "topic", "?"))

@@ -65,6 +65,7 @@ class Inbound(NamedTuple):
     mid: int = 0
     qos: int = 0
     generation: int = 0  # which broker connection delivered it
+    size: int = 0  # the payload's size when it was cut on arrival (too big to keep), else 0
 
 
 Ack = Callable[[list[Inbound]], None]
@@ -437,6 +438,9 @@ class Writer(threading.Thread):
             return
         failed: tuple[str, str] | None = None
         for route, name, limits, item_id, load_name in hits:
+            if msg.size:
+                failed = (name, f"oversized payload ({msg.size} bytes > {limits.max_bytes})")
+                break
             try:
                 if route.kind == "episode":
                     marks.append(parse_mark(load_name, msg.payload, msg.received_at, limits))
