@@ -78,14 +78,21 @@ def parse_payload(
             doc = json.loads(text, parse_constant=_reject_constant)
         except PayloadError:
             raise
-        except (json.JSONDecodeError, RecursionError) as exc:
-            raise PayloadError(
-                f"invalid JSON: {getattr(exc, 'msg', 'too deeply nested')}"
-            ) from None
-        if isinstance(doc, list):
-            out = _senml(doc, now, unit, senml_name)
-        else:
-            out = [_object(doc, now, unit)]
+        except json.JSONDecodeError as exc:
+            raise PayloadError(f"invalid JSON: {exc.msg}") from None
+        except RecursionError:
+            raise PayloadError("invalid JSON: too deeply nested") from None
+        except ValueError as exc:  # e.g. an integer of more digits than Python converts
+            raise PayloadError(f"invalid JSON: {str(exc)[:80]}") from None
+        try:
+            if isinstance(doc, list):
+                out = _senml(doc, now, unit, senml_name)
+            else:
+                out = [_object(doc, now, unit)]
+        except OverflowError:
+            raise PayloadError("a number is out of range (beyond a float's)") from None
+        except (TypeError, ValueError) as exc:  # a list or object where a name or number goes
+            raise PayloadError(f"a field has the wrong type ({str(exc)[:80]})") from None
     else:
         try:
             value = float(text)

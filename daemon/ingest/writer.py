@@ -174,6 +174,8 @@ class Writer(threading.Thread):
         self._dead_since_log = 0
         self._dead_last_log = 0.0
         self._dead_latest = ""
+        self._internal_since_log = 0
+        self._internal_last_log = float("-inf")
 
     # -- called from other threads ------------------------------------------------------------
     def submit(self, msg: Inbound) -> None:
@@ -273,7 +275,7 @@ class Writer(threading.Thread):
             except Exception as exc:  # noqa: BLE001 - one odd message must not stop ingest
                 part = _Part(msg)
                 part.dead.append(self._dead(msg, None, f"internal error: {exc.__class__.__name__}"))
-                log.exception("unexpected error handling a message on %s", msg.topic[:200])
+                self._log_internal(msg)
             parts.append(part)
         try:
             self._until_stored(
@@ -493,6 +495,20 @@ class Writer(threading.Thread):
             reason=reason[:300],
             payload=excerpt(msg.payload, self.config.ingest.dead_letter_chars),
         )
+
+    def _log_internal(self, msg: Inbound) -> None:
+        """A traceback for an unexpected error, at most one per DEAD_LOG_EVERY_S (with a count of
+        the others): a flood of one kind of bad message must not flood the log."""
+        self._internal_since_log += 1
+        now = time.monotonic()
+        if now - self._internal_last_log >= DEAD_LOG_EVERY_S:
+            log.exception(
+                "unexpected error handling a message on %s (%d such error(s) since the last line)",
+                msg.topic[:200],
+                self._internal_since_log,
+            )
+            self._internal_since_log = 0
+            self._internal_last_log = now
 
     def _log_dead(self, n: int, latest: DeadLetter) -> None:
         # Rate-limited: a flood of bad payloads gives one line per interval, not one per message.

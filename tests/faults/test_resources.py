@@ -43,3 +43,57 @@ def test_fault09_a_huge_payload_costs_the_daemon_no_memory(broker, tmp_path):
         wait_for(lambda: count_readings(url, "tank-1") == 10, 15, d.log)
         grown = _peak_rss_mb(d.proc.pid) - before
     assert grown < 15, f"peak RSS grew {grown:.0f} MB for one 40 MB payload"
+
+
+HOSTILE = [
+    '{"ts": 1' + "0" * 400 + ', "value": 4.0}',  # an integer beyond float range
+    '{"t": 1' + "0" * 400 + ', "v": 4.0}',
+    '[{"bn": "p", "bt": 1' + "0" * 400 + ', "v": 4.0}]',
+    '{"value": 1' + "0" * 5000 + "}",  # more digits than Python converts
+    '[{"n": "p", "u": [], "v": 4.0}]',  # a list where SenML has a unit name
+    '[{"n": "p", "u": {}, "v": 4.0}]',
+    "[" * 100_00 + "]" * 100_00,  # nested deeper than the decoder's recursion
+]
+
+
+def test_fault10_hostile_payloads_are_dead_letters_with_reasons_and_no_tracebacks(broker, tmp_path):
+    """200 copies of each hostile payload: every one a dead letter with its own reason (not an
+    'internal error'), the log holds no traceback and stays small, and ingest goes on."""
+    from thermeta.daemon.testing import dead_letter_reasons
+
+    url = f"sqlite:///{tmp_path / 'store.db'}"
+    cfg = write_config(tmp_path, broker, db_url=url, items=CELLAR, refit_every=60)
+    t0 = time.time() - 600
+    with RunningDaemon(cfg) as d:
+        publish(broker, [("cellar/tank-1/core", p) for p in HOSTILE * 200])
+        publish(broker, readings("cellar/tank-1/core", t0, 5))
+        wait_for(lambda: count_readings(url, "tank-1") == 5, 20, d.log)
+        reasons = wait_for(
+            lambda: (
+                len(dead_letter_reasons(url)) == 200 * len(HOSTILE) and dead_letter_reasons(url)
+            ),
+            10,
+            d.log,
+        )
+        log = d.text()
+    assert not [r for r in reasons if "internal" in r], {r for r in reasons if "internal" in r}
+    assert "Traceback" not in log, log[-2000:]
+    assert len(log) < 20_000, len(log)
+
+
+@pytest.mark.parametrize(
+    "payload",
+    ['{"defrost": "on", "ts": 1' + "0" * 400 + "}", "[" * 10_000 + "]" * 10_000],
+)
+def test_fault10_hostile_defrost_and_episode_payloads_are_payload_errors(payload):
+    """The defrost and episode parsers give a reason too (an exception of another kind was an
+    'internal error' with a traceback)."""
+    from thermeta.daemon.ingest.defrost import parse_defrost
+    from thermeta.daemon.ingest.marks import parse_mark
+    from thermeta.storage.errors import PayloadError
+
+    big = type("L", (), {"max_bytes": 10**6, "max_future_s": 300.0})()
+    with pytest.raises(PayloadError):
+        parse_defrost(payload.encode(), time.time(), big)
+    with pytest.raises(PayloadError):
+        parse_mark("tank-1", payload.replace("defrost", "episode").encode(), time.time(), big)
