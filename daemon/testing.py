@@ -282,6 +282,59 @@ def publish(
         c.loop_stop()
 
 
+class Sensors:
+    """Probes reporting live: a reading on each of ``topics`` every ``every_s`` s from a thread
+    (QoS 1), stamped with the true time (``stamped=False``: no time, the daemon stamps it)."""
+
+    def __init__(
+        self,
+        broker: Mosquitto,
+        topics: Iterable[str],
+        every_s: float = 0.5,
+        stamped: bool = True,
+        client_id: str = "thermeta-test-sensors",
+    ):
+        import threading
+
+        import paho.mqtt.client as mqtt
+
+        self.topics, self.every_s, self.stamped = list(topics), every_s, stamped
+        self.sent = 0
+        self.client = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=client_id)
+        self.client.connect(broker.host, broker.port)
+        self.client.loop_start()
+        self._halt = threading.Event()
+        self._thread = threading.Thread(target=self._run, name="test-sensors", daemon=True)
+
+    def _run(self) -> None:
+        i = 0
+        while not self._halt.wait(self.every_s):
+            for topic in self.topics:
+                body: dict[str, float] = {"value": round(4.0 + 0.001 * i, 4)}
+                if self.stamped:
+                    body["ts"] = time.time()
+                self.client.publish(topic, json.dumps(body), qos=1)
+                self.sent += 1
+            i += 1
+
+    def start(self) -> Sensors:
+        self._thread.start()
+        return self
+
+    def stop(self) -> None:
+        self._halt.set()
+        if self._thread.is_alive():
+            self._thread.join(5)
+        self.client.disconnect()
+        self.client.loop_stop()
+
+    def __enter__(self) -> Sensors:
+        return self.start()
+
+    def __exit__(self, *exc: object) -> None:
+        self.stop()
+
+
 def count_readings(db_url: str, item: str) -> int:
     """How many readings the store at ``db_url`` holds for ``item``."""
     from sqlalchemy import create_engine, text

@@ -194,8 +194,8 @@ class Refitter:
                     continue
                 try:
                     pending.append(self._refit(name, cfg, now, last.get(name), silent.get(name)))
-                except Exception:  # noqa: BLE001 - one item never stops the others
-                    self._log_error(name, "refit of %s failed", name)
+                except Exception as exc:  # noqa: BLE001 - one item never stops the others
+                    self._log_error(name, "refit of %s failed: %s", name, exc)
                 if len(pending) >= SAVE_EVERY:
                     self._flush(pending, now, done)
             self._flush(pending, now, done)

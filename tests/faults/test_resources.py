@@ -8,6 +8,7 @@ import time
 import pytest
 from thermeta.daemon.testing import (
     RunningDaemon,
+    Sensors,
     count_readings,
     publish,
     readings,
@@ -97,3 +98,43 @@ def test_fault10_hostile_defrost_and_episode_payloads_are_payload_errors(payload
         parse_defrost(payload.encode(), time.time(), big)
     with pytest.raises(PayloadError):
         parse_mark("tank-1", payload.replace("defrost", "episode").encode(), time.time(), big)
+
+
+@pytest.mark.postgres
+def test_fault11_an_unavailable_store_gives_one_line_per_condition(broker, tmp_path, pg_url):
+    """The store's tables vanish under a running daemon (its PostgreSQL schema renamed) while 10
+    items report: refits, the heartbeat and the writer all fail, and the log says so in a few
+    lines, not a traceback per item per round; once the store is back, ingest resumes."""
+    import uuid
+
+    from sqlalchemy import create_engine, text
+
+    schema = f"fault_{uuid.uuid4().hex[:10]}"
+    admin = create_engine(pg_url)
+    with admin.begin() as conn:
+        conn.execute(text(f"CREATE SCHEMA {schema}"))
+    url = f"{pg_url}{'&' if '?' in pg_url else '?'}options=-csearch_path%3D{schema}"
+    cfg = write_config(tmp_path, broker, db_url=url, items=CELLAR, refit_every=1)
+    sensors = Sensors(broker, [f"cellar/tank-{i}/core" for i in range(10)])
+    try:
+        with RunningDaemon(cfg) as d:
+            sensors.start()
+            wait_for(lambda: count_readings(url, "tank-9") >= 4, 15, d.log)
+            mark = len(d.text())
+            with admin.begin() as conn:
+                conn.execute(text(f"ALTER SCHEMA {schema} RENAME TO {schema}_away"))
+            time.sleep(8)
+            during = d.text()[mark:]
+            with admin.begin() as conn:
+                conn.execute(text(f"ALTER SCHEMA {schema}_away RENAME TO {schema}"))
+            n = count_readings(url, "tank-9")
+            wait_for(lambda: count_readings(url, "tank-9") > n + 2, 40, d.log)
+    finally:
+        sensors.stop()
+        with admin.begin() as conn:
+            conn.execute(text(f"DROP SCHEMA IF EXISTS {schema} CASCADE"))
+            conn.execute(text(f"DROP SCHEMA IF EXISTS {schema}_away CASCADE"))
+        admin.dispose()
+    lines = [ln for ln in during.splitlines() if " ERROR " in ln or " WARNING " in ln]
+    assert during.count("Traceback") <= 1, during[-3000:]
+    assert len(lines) <= 4, "\n".join(lines)
