@@ -70,6 +70,9 @@ log = logging.getLogger("thermeta.refit")
 
 ERROR_LOG_EVERY_S = 300.0
 SAVE_EVERY = 50  # forecasts per store transaction
+# The most readings one fit sees: a denser window is thinned evenly (its newest reading kept), so
+# a round's cost stays bounded however fast a probe reports (60,000 readings cost a fit ~2 s).
+MAX_FIT_POINTS = 1500
 # How far back a defrost signal is read beyond the longest hold (max + recovery): a start older
 # than that holds nothing any more, and a signal repeated at least this often is read right.
 DEFROST_LOOKBACK_S = 3600.0
@@ -250,12 +253,14 @@ class Refitter:
         rows = self.store.recent_readings(item_id, since_ts=since)
         t = np.fromiter((r[0] for r in rows), float, len(rows))
         y = np.fromiter((r[1] for r in rows), float, len(rows))
+        t_fit, y_fit = thin(t, y, MAX_FIT_POINTS)
         amb_t = amb_y = None
         if cfg.ambient_topic:
             arows = self.store.recent_readings(name + AMBIENT_SUFFIX, since_ts=since)
             if arows:
-                amb_t = np.array([r[0] for r in arows])
-                amb_y = np.array([r[1] for r in arows])
+                amb_t, amb_y = thin(
+                    np.array([r[0] for r in arows]), np.array([r[1] for r in arows]), MAX_FIT_POINTS
+                )
         mode: AmbientMode = (
             "measured" if amb_y is not None else ("known" if cfg.ambient is not None else "fitted")
         )
@@ -276,9 +281,13 @@ class Refitter:
             key = (lv.threshold_c, sides.get(lv.name))
             if key not in made:
                 kw = forecast_kwargs(cfg, key[1], amb_t, amb_y)
-                made[key] = self._fit(name, cfg, mode, t, y, rows, lv.threshold_c, prior, kw)
+                made[key] = self._fit(
+                    name, cfg, mode, t_fit, y_fit, rows, lv.threshold_c, prior, kw
+                )
                 if i == 0 and mode != "measured":
-                    self._learn_from(name, cls, made[key], prior, now, episode, t, y, lv, kw)
+                    self._learn_from(
+                        name, cls, made[key], prior, now, episode, t_fit, y_fit, lv, kw
+                    )
             fcs.append(made[key])
         tally = (
             None if episode is None else self.keeper.tally(name, levels, sides, episode, item_id, t)
@@ -475,3 +484,11 @@ class Refitter:
         if now - self._error_logged.get(name, -1e9) >= ERROR_LOG_EVERY_S:
             self._error_logged[name] = now
             log.warning(msg, *args, exc_info=log.isEnabledFor(logging.DEBUG))
+
+
+def thin(t: np.ndarray, y: np.ndarray, most: int) -> tuple[np.ndarray, np.ndarray]:
+    """At most ``most`` of the readings (t ascending), evenly spread, the first and newest kept."""
+    if len(t) <= most:
+        return t, y
+    keep = np.unique(np.linspace(0, len(t) - 1, most).round().astype(int))
+    return t[keep], y[keep]

@@ -138,3 +138,51 @@ def test_fault11_an_unavailable_store_gives_one_line_per_condition(broker, tmp_p
     lines = [ln for ln in during.splitlines() if " ERROR " in ln or " WARNING " in ln]
     assert during.count("Traceback") <= 1, during[-3000:]
     assert len(lines) <= 4, "\n".join(lines)
+
+
+def test_fault12_a_fit_sees_a_bounded_number_of_readings_however_dense_the_history(tmp_path):
+    """Three items at 10 readings a second for 100 minutes (60,000 readings each, a real SQLite
+    store): each fit gets at most MAX_FIT_POINTS readings spread over the whole window (so a
+    round's cost no longer grows with the reading rate), and the forecast is still right: the
+    crossing of Newton's curve T = 20 - 16 exp(-t / 5000 s) with 18 degC at t = 5000 ln 8 s."""
+    import math
+    import tomllib
+
+    import numpy as np
+    from thermeta.daemon.clock import ManualClock
+    from thermeta.daemon.config import parse_config
+    from thermeta.daemon.ingest.writer import Activity
+    from thermeta.daemon.refit.rounds import MAX_FIT_POINTS, Refitter
+    from thermeta.predictors import forecast
+    from thermeta.storage.store import Store
+
+    text = f'[storage]\nurl = "sqlite:///{tmp_path / "s.db"}"\n[fit]\nwindow = 7200\n' + "".join(
+        f'[[item]]\nname = "tank-{i}"\ntopic = "cellar/tank-{i}/core"\nthreshold = 18.0\n'
+        "ambient = 20.0\n"
+        for i in range(3)
+    )
+    cfg = parse_config(tomllib.loads(text), "t.toml", text)
+    store = Store(cfg.storage.url)
+    store.create_all()
+    t0 = 1_800_000_000.0
+    t = np.arange(0.0, 6000.0, 0.1)
+    y = 20.0 - 16.0 * np.exp(-t / 5000.0) + np.random.default_rng(12).normal(0, 0.02, t.size)
+    act = Activity()
+    for it in cfg.items:
+        iid = store.ensure_item(it.name, topic=it.topic, now=t0)
+        store.write_batch([(iid, t0 + a, b, 0, t0 + a) for a, b in zip(t, y)])
+        act.note(it.name, it, t0 + float(t[-1]))
+    seen = []
+
+    def counting(tt, yy, *a, **kw):
+        seen.append(len(tt))
+        return forecast(tt, yy, *a, **kw)
+
+    rf = Refitter(store, cfg, ManualClock(t0 + 6000.0), act)
+    rf._predict = counting
+    rf.run_once()
+    store.close()
+    assert seen and max(seen) <= MAX_FIT_POINTS, seen
+    body = rf.previous["tank-0"]
+    ahead_s = 5000.0 * math.log(8.0) - 6000.0  # from the newest reading to the crossing
+    assert body["eta_s"] == pytest.approx(ahead_s, rel=0.05), (body["eta_s"], ahead_s)
