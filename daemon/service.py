@@ -35,6 +35,11 @@ log = logging.getLogger("thermeta.service")
 
 PLUGINS = ("thermeta.daemon.alerts",)
 HEARTBEAT_S = 5.0
+# Shutdown: each step waits at most this long (the writer: for its last commit), so SIGTERM ends
+# the service within seconds even with the store locked or a refit round under way; nothing
+# unacknowledged is lost (the broker sends it again to the next run).
+STOP_WRITER_S = 3.0
+STOP_STEP_S = 1.0
 RETENTION_EVERY_S = 3600.0
 
 
@@ -234,32 +239,45 @@ class Service:
             log.exception("could not write the heartbeat")
 
     def stop(self) -> None:
-        """Stop taking messages, write and acknowledge what is queued, publish offline, close."""
+        """Stop taking messages, write and acknowledge what is queued, publish offline, close;
+        every step bounded (see STOP_WRITER_S), the refit round left between two items."""
         if self.stopped.is_set():
             return
         log.info("stopping: flushing queued readings")
+        self.refitter.stopping.set()
         if self.link is not None:
             self.link.stop_receiving()
-        self.writer.stop()
+        self.writer.stop(timeout=STOP_WRITER_S)
+        if self.writer.is_alive():
+            log.warning(
+                "the store did not take the last batch within %g s; leaving it unacknowledged "
+                "(the broker sends it again)",
+                STOP_WRITER_S,
+            )
         if self.step_watch is not None:
             self.step_watch.stop()
         if self.scheduler is not None:
-            self.scheduler.shutdown(wait=True)
+            _bounded(lambda: self.scheduler.shutdown(wait=True), "the refit round")
         for plugin in self.plugins:
-            try:
-                plugin.stop()
-            except Exception:  # noqa: BLE001
-                log.exception("plug-in %r did not stop cleanly", plugin)
-        self._heartbeat("stopped")
+            _bounded(plugin.stop, f"plug-in {plugin!r}")
+        _bounded(lambda: self._heartbeat("stopped"), "the last heartbeat")
         if self.link is not None:
-            self.link.close()
-        self.store.close()
+            _bounded(self.link.close, "the broker connection", STOP_STEP_S + 2.0)
+        _bounded(self.store.close, "the store")
         self.stopped.set()
         log.info(
             "stopped: %d readings and %d dead letters written this run",
             self.writer.counts["readings"],
             self.writer.counts["dead_letters"],
         )
+
+    def busy(self) -> str | None:
+        """What is still running after :meth:`stop` gave up waiting (None: nothing)."""
+        if self.writer.is_alive():
+            return "the writer"
+        if self.refitter.busy():
+            return "the refit round"
+        return None
 
     # -- internals ----------------------------------------------------------------------------
     def _ack(self, batch) -> None:
@@ -271,3 +289,20 @@ class Service:
             return
         pub = self.config.publish
         self.link.publish(f"{pub.topic_prefix}/{item}", payload, qos=pub.qos, retain=pub.retain)
+
+
+def _bounded(step: Any, what: str, seconds: float = STOP_STEP_S) -> None:
+    """Run a shutdown step, waiting for it at most ``seconds`` (it goes on in the background;
+    the process ends soon anyway)."""
+
+    def run() -> None:
+        try:
+            step()
+        except Exception:  # noqa: BLE001 - shutdown goes on
+            log.exception("stopping %s failed", what)
+
+    t = threading.Thread(target=run, name=f"thermeta-stop-{what[:20]}", daemon=True)
+    t.start()
+    t.join(seconds)
+    if t.is_alive():
+        log.warning("gave up waiting for %s after %g s", what, seconds)

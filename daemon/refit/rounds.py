@@ -156,6 +156,7 @@ class Refitter:
         self.previous: dict[str, dict[str, Any]] = {}
         self.item_ids: dict[str, int] = {}
         self._lock = threading.Lock()
+        self.stopping = threading.Event()  # set at shutdown: the round ends after its item
         self._error_logged: dict[str, float] = {}
         self.runs = 0
         self.last_run_s = 0.0
@@ -173,6 +174,10 @@ class Refitter:
         for f in self.store.latest_forecasts():
             self.previous[f.item] = f.forecast
 
+    def busy(self) -> bool:
+        """Whether a round is running now."""
+        return self._lock.locked()
+
     def run_once(self, force: bool = False) -> dict[str, ItemState]:
         """One round; returns {item: state} for the items published.  Never raises."""
         with self._lock:  # the scheduler never overlaps runs; this guards manual calls too
@@ -185,6 +190,8 @@ class Refitter:
             done: dict[str, ItemState] = {}
             pending: list[_Refitted] = []
             for name, cfg in items.items():
+                if self.stopping.is_set():
+                    break
                 prev = self.previous.get(name)
                 due = force or name in dirty or prev is None
                 going_stale = (

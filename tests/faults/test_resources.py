@@ -186,3 +186,75 @@ def test_fault12_a_fit_sees_a_bounded_number_of_readings_however_dense_the_histo
     body = rf.previous["tank-0"]
     ahead_s = 5000.0 * math.log(8.0) - 6000.0  # from the newest reading to the crossing
     assert body["eta_s"] == pytest.approx(ahead_s, rel=0.05), (body["eta_s"], ahead_s)
+
+
+def _seed(url: str, names: list[str], n: int, t0: float) -> None:
+    from thermeta.storage.store import Store
+
+    store = Store(url)
+    store.create_all()
+    ids = store.ensure_items([(nm, "load", "C", f"cellar/{nm}/core") for nm in names], now=t0)
+    rows = [
+        (ids[nm], t0 + 30.0 * i, 20.0 - 16.0 * 0.999**i, 0, t0) for nm in names for i in range(n)
+    ]
+    store.write_batch(rows)
+    store.close()
+
+
+def test_fault13_sigterm_with_the_store_locked_stops_within_seconds_and_loses_nothing(
+    broker, tmp_path
+):
+    """Another process holds the SQLite store's write lock while readings arrive: SIGTERM ends
+    the daemon within 8 s (it waited out every store timeout, 45 s), and after the lock is let
+    go a new run stores every reading exactly once (none was acknowledged unstored)."""
+    import sqlite3
+
+    db = tmp_path / "store.db"
+    url = f"sqlite:///{db}"
+    cfg = write_config(tmp_path, broker, db_url=url, items=CELLAR, refit_every=1)
+    t0 = time.time() - 600
+    d = RunningDaemon(cfg).start()
+    publish(broker, readings("cellar/tank-1/core", t0, 5))
+    wait_for(lambda: count_readings(url, "tank-1") == 5, 10, d.log)
+    lock = sqlite3.connect(db, timeout=1, isolation_level=None)
+    lock.execute("BEGIN IMMEDIATE")
+    try:
+        publish(broker, readings("cellar/tank-1/core", t0, 20, start=5))
+        time.sleep(2.0)  # the writer now waits for the lock
+        began = time.monotonic()
+        d.stop(timeout=60)
+        took = time.monotonic() - began
+    finally:
+        lock.execute("ROLLBACK")
+        lock.close()
+    assert took < 8, f"SIGTERM took {took:.1f} s"
+    with RunningDaemon(cfg) as d2:
+        wait_for(lambda: count_readings(url, "tank-1") == 25, 15, d2.log)
+
+
+def test_fault13_sigterm_during_a_long_refit_round_stops_between_items(broker, tmp_path):
+    """600 items in the store make a first refit round of several seconds: SIGTERM in the
+    middle of it ends the daemon within 4 s (it finished the round first)."""
+    url = f"sqlite:///{tmp_path / 'store.db'}"
+    names = [f"tank-{i}" for i in range(600)]
+    _seed(url, names, 40, time.time() - 1800)
+    cfg = write_config(tmp_path, broker, db_url=url, items=CELLAR, refit_every=1)
+    d = RunningDaemon(cfg).start()
+    from sqlalchemy import create_engine, text
+
+    eng = create_engine(url)
+
+    def forecasts() -> int:
+        with eng.connect() as conn:
+            return int(conn.execute(text("SELECT count(*) FROM forecasts")).scalar_one())
+
+    try:
+        wait_for(lambda: forecasts() >= 50, 30, d.log)  # the round is under way
+        began = time.monotonic()
+        d.stop(timeout=60)
+        took = time.monotonic() - began
+        done = forecasts()
+    finally:
+        eng.dispose()
+    assert took < 4, f"SIGTERM took {took:.1f} s"
+    assert done < len(names), done  # the round was left between items
