@@ -16,6 +16,7 @@ from __future__ import annotations
 import importlib
 import logging
 import os
+import socket
 import threading
 import time
 from datetime import UTC
@@ -29,6 +30,7 @@ from thermeta.daemon.ingest.writer import Activity, Writer
 from thermeta.daemon.refit.rounds import Listener, Refitter
 from thermeta.daemon.scheduling import StepWatch
 from thermeta.daemon.states import ItemState
+from thermeta.storage.errors import ThermetaError
 from thermeta.storage.store import Store, safe_url
 
 log = logging.getLogger("thermeta.service")
@@ -41,6 +43,31 @@ HEARTBEAT_S = 5.0
 STOP_WRITER_S = 3.0
 STOP_STEP_S = 1.0
 RETENTION_EVERY_S = 3600.0
+
+
+class AlreadyRunning(ThermetaError):
+    """Another thermeta is running on the same store."""
+
+
+def status_topic_of(config: Config) -> str:
+    """This instance's retained status topic: ``<status_topic>/<client id>`` (one per daemon, so
+    stopping one never marks another offline)."""
+    return f"{config.publish.status_topic}/{config.broker.client_id}"
+
+
+def _process_alive(pid: int) -> bool:
+    """Whether process ``pid`` on this host is running a thermeta."""
+    try:
+        with open(f"/proc/{pid}/cmdline", "rb") as f:
+            return b"thermeta" in f.read()
+    except OSError:
+        try:
+            os.kill(pid, 0)
+        except ProcessLookupError:
+            return False
+        except PermissionError:
+            return True
+        return True
 
 
 class Service:
@@ -101,6 +128,7 @@ class Service:
         for note in overrides(cfg):
             log.info("%s", note)
         self.store.create_all()
+        self._check_alone()
         self._load_items()
         self.refitter.load_previous()
         self.writer.start()
@@ -110,8 +138,8 @@ class Service:
             self.router.filters(),
             self.writer.submit,
             self.clock,
-            cfg.publish.status_topic,
-            {"pid": os.getpid()},
+            status_topic_of(cfg),
+            {"pid": os.getpid(), "host": socket.gethostname()},
             max_payload_bytes=cfg.ingest.max_payload_bytes,
         )
         self.link.start()
@@ -121,6 +149,30 @@ class Service:
             "watching %d topic filter(s); forecasts on %s/<item>",
             len(self.router.filters()),
             cfg.publish.topic_prefix,
+        )
+
+    def _check_alone(self) -> None:
+        """Refuse to start beside another thermeta on this store: the two would share the
+        broker session and the forecasts.  The last heartbeat names its process: on this host it
+        counts while that process lives; on another, while its heartbeat still moves."""
+        hb = self.store.get_meta("daemon") or {}
+        pid, host = hb.get("pid"), hb.get("host")
+        if hb.get("state") != "running" or not isinstance(pid, int) or not host:
+            return
+        me = socket.gethostname()
+        if host == me:
+            if pid == os.getpid() or not _process_alive(pid):
+                return
+        else:
+            beat = hb.get("heartbeat_wall")
+            if not isinstance(beat, (int, float)) or time.time() - beat > 3 * HEARTBEAT_S:
+                return
+            time.sleep(HEARTBEAT_S + 1.0)
+            if (self.store.get_meta("daemon") or {}).get("heartbeat_wall") == beat:
+                return
+        raise AlreadyRunning(
+            f"another thermeta is already running on this store (pid {pid} on host {host}); "
+            "stop it first, or give this one its own [storage] url and [broker] client_id"
         )
 
     def _load_items(self) -> None:
@@ -231,6 +283,8 @@ class Service:
             state=state,
             pid=os.getpid(),
             heartbeat_at=self.clock.now(),
+            heartbeat_wall=time.time(),
+            host=socket.gethostname(),
             started_at=self.started_at,
         )
         try:

@@ -169,18 +169,20 @@ class RunningDaemon:
         log: Path | None = None,
         env: dict[str, str] | None = None,
         args: Iterable[str] = (),
+        wait_connected: bool = True,
     ):
         self.config = Path(config)
         self.log = log or self.config.parent / "daemon.log"
         self.env = env
         self.args = list(args)
+        self.wait_connected = wait_connected
         self.proc: subprocess.Popen[bytes] | None = None
         self._connects = 0
 
     def text(self) -> str:
         return self.log.read_text(errors="replace") if self.log.exists() else ""
 
-    def start(self, wait_connected: bool = True, timeout: float = 20.0) -> RunningDaemon:
+    def start(self, wait_connected: bool | None = None, timeout: float = 20.0) -> RunningDaemon:
         self._connects = self.text().count("connected to ")
         with open(self.log, "ab") as out:
             self.proc = subprocess.Popen(
@@ -191,7 +193,7 @@ class RunningDaemon:
                 cwd=self.config.parent,
                 env=self.env,
             )
-        if wait_connected:
+        if self.wait_connected if wait_connected is None else wait_connected:
             wait_for(lambda: self.text().count("connected to ") > self._connects, timeout, self.log)
         return self
 

@@ -34,7 +34,7 @@ def run(args: argparse.Namespace) -> int:
     configure(args.log_level or cfg.log_level, json_lines=args.log_json)
     log = logging.getLogger("thermeta.run")
 
-    from thermeta.daemon.service import Service
+    from thermeta.daemon.service import AlreadyRunning, Service
 
     stop = threading.Event()
     in_dashboard = threading.Event()
@@ -50,7 +50,7 @@ def run(args: argparse.Namespace) -> int:
     try:
         service = Service(cfg)
         service.start()
-    except StoreError as exc:
+    except (StoreError, AlreadyRunning) as exc:
         log.error("%s", exc)
         return 1
     try:

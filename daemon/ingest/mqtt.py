@@ -24,6 +24,7 @@ import json
 import logging
 import ssl
 import threading
+import time
 from collections.abc import Callable
 from typing import Any
 
@@ -36,6 +37,9 @@ from thermeta.daemon.ingest.writer import Inbound
 
 log = logging.getLogger("thermeta.mqtt")
 
+FLAP_WINDOW_S = 30.0  # this many seconds ...
+FLAP_SHORT_S = 5.0  # ... holding connections closed within this long after they opened ...
+FLAP_COUNT = 3  # ... this often: someone else is using our client id
 UNSUPPORTED_PROTOCOL = (1, 132)  # 3.1.1 CONNACK code 1; MQTT 5 reason 0x84
 PACKET_OVERHEAD = 8192  # bytes beside the payload in a PUBLISH: the topic, properties, header
 FALLBACK_WAIT_S = 3.0
@@ -70,6 +74,9 @@ class MqttLink:
         self._outcome: str | None = None  # first answer: connected | refused | closed | unreachable
         self._first_connack = threading.Event()
         self._lock = threading.Lock()
+        self._connected_at = 0.0
+        self._short_drops: list[float] = []
+        self._flap_told = False
         self.client = self._make_client()
 
     # -- set-up -------------------------------------------------------------------------------
@@ -177,6 +184,7 @@ class MqttLink:
             with self._lock:
                 self.generation += 1
             self.counts["connects"] += 1
+            self._connected_at = time.monotonic()
             resumed = bool(getattr(flags, "session_present", False))
             log.info(
                 "connected to %s:%s (MQTT %s, session %s)",
@@ -206,12 +214,34 @@ class MqttLink:
             if not self.connected.is_set() and self._outcome is None:
                 self._outcome = "closed"  # closed before any CONNACK: maybe the version
                 self._first_connack.set()
+            was_connected = self.connected.is_set()
             self.connected.clear()
             self.counts["disconnects"] += 1
             if reason_code != 0:
+                if was_connected:
+                    self._note_drop()
                 log.warning("disconnected from broker (%s); reconnecting", reason_code)
         except Exception:  # noqa: BLE001
             log.exception("error in on_disconnect")
+
+    def _note_drop(self) -> None:
+        """The broker closed a connection of ours: closed again and again right after it opened,
+        the likely cause is another client with our client id (each connect throws the other
+        off), which the broker does not say.  Say it once, naming the id."""
+        now = time.monotonic()
+        if now - self._connected_at > FLAP_SHORT_S:
+            return
+        self._short_drops = [t for t in self._short_drops if now - t < FLAP_WINDOW_S] + [now]
+        if len(self._short_drops) >= FLAP_COUNT and not self._flap_told:
+            self._flap_told = True
+            log.error(
+                "the broker keeps closing our connection right after it opens (%d times in %g s): "
+                "another client took over client id %s? Two daemons must not share a "
+                "[broker] client_id",
+                len(self._short_drops),
+                FLAP_WINDOW_S,
+                self.cfg.client_id,
+            )
 
     def _on_message(self, client, userdata, msg) -> None:
         try:
