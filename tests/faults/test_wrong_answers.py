@@ -89,3 +89,55 @@ def test_fault16_a_second_daemon_with_the_same_client_id_is_named(broker, tmp_pa
             time.sleep(2)
         text = first.text()
     assert text.count("took over client id") == 1, text[-3000:]
+
+
+@pytest.mark.parametrize("text", ["1_0", "４２", "٤٢", " 4\u00a0", "0x10", "4.", "-.5e1x"])
+def test_fault17_a_bare_number_payload_is_ascii_decimal_only(text):
+    """Python's float() takes `1_0` (10.0) and other scripts' digits (42.0); a bare payload is
+    a decimal number in ASCII (as JSON's numbers are) or a dead letter."""
+    from thermeta.daemon.ingest.payloads import parse_payload
+    from thermeta.storage.errors import PayloadError
+
+    if text == "4.":  # a trailing point is still a plain decimal number
+        assert parse_payload(text.encode(), time.time())[0].value_c == 4.0
+        return
+    with pytest.raises(PayloadError, match="number"):
+        parse_payload(text.encode(), time.time())
+
+
+def test_fault17_plain_bare_numbers_still_pass():
+    from thermeta.daemon.ingest.payloads import parse_payload
+
+    for text, want in (("4", 4.0), ("-3.25", -3.25), ("+1e1", 10.0), (" 7.5\n", 7.5), (".5", 0.5)):
+        assert parse_payload(text.encode(), time.time())[0].value_c == want
+
+
+def _forecast_csv(tmp_path, body: str):
+    path = tmp_path / "probe.csv"
+    path.write_text(body)
+    return subprocess.run(
+        [sys.executable, "-m", "thermeta.daemon.cli", "forecast", str(path), "--threshold", "8"]
+        + ["--ambient", "20"],
+        capture_output=True,
+        text=True,
+    )
+
+
+def test_fault18_a_decimal_comma_csv_is_refused_naming_the_line(tmp_path):
+    """`2026-12-01T08:00:00Z,3,1` under a `time,value` header was read as 3: a row with more
+    fields than the header is refused with its line and the likely cause."""
+    rows = "".join(f"2026-12-01T08:{m:02d}:00Z,{3 + m // 10},{m % 10}\n" for m in range(0, 40, 5))
+    out = _forecast_csv(tmp_path, "time,value\n" + rows)
+    assert out.returncode == 2, out.stdout + out.stderr
+    assert "probe.csv:2:" in out.stderr and "decimal comma" in out.stderr, out.stderr
+
+
+def test_fault18_blank_values_are_counted_in_a_warning(tmp_path):
+    """A blank value was dropped without a word: the forecast goes on, and says how many lines
+    it skipped and where the first was."""
+    rows = [f"2026-12-01T08:{m:02d}:00Z,{4 + 0.1 * m:.2f}" for m in range(0, 40, 2)]
+    rows[3] = rows[3].split(",")[0] + ","
+    rows[7] = rows[7].split(",")[0] + ","
+    out = _forecast_csv(tmp_path, "time,value\n" + "\n".join(rows) + "\n")
+    assert out.returncode == 0, out.stderr
+    assert "2 line(s)" in out.stderr and "probe.csv:5" in out.stderr, out.stderr
