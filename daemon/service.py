@@ -145,11 +145,7 @@ class Service:
         self.link.start()
         self._start_scheduler()
         self.started_at = self.clock.now()
-        log.info(
-            "watching %d topic filter(s); forecasts on %s/<item>",
-            len(self.router.filters()),
-            cfg.publish.topic_prefix,
-        )
+        log.info("forecasts go to %s/<item>", cfg.publish.topic_prefix)
 
     def _check_alone(self) -> None:
         """Refuse to start beside another thermeta on this store: the two would share the

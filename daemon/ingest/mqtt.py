@@ -36,6 +36,18 @@ from thermeta.daemon.config import BrokerConfig
 from thermeta.daemon.ingest.writer import Inbound
 
 log = logging.getLogger("thermeta.mqtt")
+PAHO_LOG = logging.getLogger("thermeta.mqtt.paho")
+
+
+class _LostConnectionEcho(logging.Filter):
+    """paho logs a dropped connection once more at ERROR from its network loop ("... Client is
+    not connected"); ``on_disconnect`` has said it already, as a warning."""
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        return not (record.levelno >= logging.ERROR and "not connected" in record.getMessage())
+
+
+PAHO_LOG.addFilter(_LostConnectionEcho())
 
 FLAP_WINDOW_S = 30.0  # this many seconds ...
 FLAP_SHORT_S = 5.0  # ... holding connections closed within this long after they opened ...
@@ -89,7 +101,7 @@ class MqttLink:
         if self.protocol == mqtt.MQTTv311:
             kw["clean_session"] = False
         c = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, **kw)
-        c.enable_logger(logging.getLogger("thermeta.mqtt.paho"))
+        c.enable_logger(PAHO_LOG)
         if self.cfg.username:
             c.username_pw_set(self.cfg.username, self.cfg.password)
         if self.cfg.tls:
@@ -194,6 +206,7 @@ class MqttLink:
                 "resumed" if resumed else "new",
             )
             client.subscribe([(f, self.cfg.qos) for f in self.filters])
+            log.info("watching %d topic filter(s)", len(self.filters))
             client.publish(self.status_topic, self._status("online"), qos=1, retain=True)
             self.connected.set()
             self._outcome = self._outcome or "connected"

@@ -141,3 +141,32 @@ def test_fault18_blank_values_are_counted_in_a_warning(tmp_path):
     out = _forecast_csv(tmp_path, "time,value\n" + "\n".join(rows) + "\n")
     assert out.returncode == 0, out.stderr
     assert "2 line(s)" in out.stderr and "probe.csv:5" in out.stderr, out.stderr
+
+
+@pytest.mark.broker
+def test_fault20_a_broker_restart_logs_no_error_and_nothing_before_it_is_true(broker, tmp_path):
+    """Each reconnect logged `ERROR ... Client is not connected` (paho's last loop), and the
+    start said "watching N topic filter(s)" with no broker there.  Now: started with the broker
+    down, the daemon says it is watching only once subscribed; a broker restart logs no ERROR;
+    readings still arrive exactly once."""
+
+    url = f"sqlite:///{tmp_path / 'store.db'}"
+    cfg = write_config(tmp_path, broker, db_url=url, items=CELLAR, refit_every=60)
+    broker.stop()
+    d = RunningDaemon(cfg, wait_connected=False).start()
+    try:
+        wait_for(lambda: "cannot reach broker" in d.text(), 15, d.log)
+        assert "watching" not in d.text()
+        broker.start()
+        wait_for(lambda: "connected to" in d.text() and "watching 1" in d.text(), 20, d.log)
+        assert d.text().index("watching 1") > d.text().index("connected to")
+        mark = len(d.text())
+        broker.restart()
+        wait_for(lambda: d.text().count("connected to") >= 2, 20, d.log)
+        t0 = time.time() - 600
+        publish(broker, readings("cellar/tank-1/core", t0, 10))
+        wait_for(lambda: count_readings(url, "tank-1") == 10, 10, d.log)
+        after = d.text()[mark:]
+    finally:
+        d.stop()
+    assert " ERROR " not in after and "not connected" not in after, after
