@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import json
 import logging
+import socket
 import ssl
 import threading
 import time
@@ -57,6 +58,46 @@ PACKET_OVERHEAD = 8192  # bytes beside the payload in a PUBLISH: the topic, prop
 FALLBACK_WAIT_S = 3.0
 
 
+def tls_problem(cfg: BrokerConfig, timeout_s: float = 3.0) -> str | None:
+    """Why a TLS session with the broker fails, in one line, or None (no TLS problem found).
+
+    paho reports a failed handshake only as a failed connection, so this shakes hands itself
+    with the same settings: the broker's certificate (CA, host name) is checked in the
+    handshake; a refused client certificate shows as the broker's alert just after it."""
+    try:
+        ctx = ssl.SSLContext(ssl.PROTOCOL_TLS_CLIENT)
+        if cfg.ca_file:
+            ctx.load_verify_locations(cfg.ca_file)
+        else:
+            ctx.load_default_certs()
+        if cfg.cert_file:
+            ctx.load_cert_chain(cfg.cert_file, cfg.key_file)
+        if cfg.tls_insecure:
+            ctx.check_hostname = False
+            ctx.verify_mode = ssl.CERT_NONE
+    except (OSError, ssl.SSLError) as exc:
+        return f"cannot load the TLS files: {exc}"
+    try:
+        with (
+            socket.create_connection((cfg.host, cfg.port), timeout_s) as raw,
+            ctx.wrap_socket(raw, server_hostname=cfg.host) as tls,
+        ):
+            tls.settimeout(1.0)
+            try:
+                tls.recv(1)
+            except ssl.SSLError as exc:
+                return f"the broker refused our client certificate ({exc.reason or exc})"
+            except OSError:
+                pass
+            return None
+    except ssl.SSLCertVerificationError as exc:
+        return f"the broker's certificate is not trusted: {exc.verify_message or exc}"
+    except ssl.SSLError as exc:
+        return f"the TLS handshake failed: {exc.reason or exc}"
+    except OSError:
+        return None  # not reachable: not a TLS problem
+
+
 class MqttLink:
     """One broker connection: subscribe to ``filters``, hand messages to ``deliver``."""
 
@@ -89,6 +130,7 @@ class MqttLink:
         self._connected_at = 0.0
         self._short_drops: list[float] = []
         self._flap_told = False
+        self._tls_told: str | None = None
         self.client = self._make_client()
 
     # -- set-up -------------------------------------------------------------------------------
@@ -216,16 +258,20 @@ class MqttLink:
 
     def _on_connect_fail(self, client, userdata) -> None:
         try:
-            self._outcome = self._outcome or "unreachable"
+            if self._tell_tls():
+                self._outcome = self._outcome or "refused"
+            else:
+                self._outcome = self._outcome or "unreachable"
+                log.warning("cannot reach broker %s:%s; retrying", self.cfg.host, self.cfg.port)
             self._first_connack.set()
-            log.warning("cannot reach broker %s:%s; retrying", self.cfg.host, self.cfg.port)
         except Exception:  # noqa: BLE001
             log.exception("error in on_connect_fail")
 
     def _on_disconnect(self, client, userdata, flags, reason_code, properties) -> None:
         try:
             if not self.connected.is_set() and self._outcome is None:
-                self._outcome = "closed"  # closed before any CONNACK: maybe the version
+                # closed before any CONNACK: maybe the version, maybe our TLS certificate
+                self._outcome = "refused" if self._tell_tls() else "closed"
                 self._first_connack.set()
             was_connected = self.connected.is_set()
             self.connected.clear()
@@ -236,6 +282,18 @@ class MqttLink:
                 log.warning("disconnected from broker (%s); reconnecting", reason_code)
         except Exception:  # noqa: BLE001
             log.exception("error in on_disconnect")
+
+    def _tell_tls(self) -> bool:
+        """With TLS on, find and log (once per cause) why the TLS session fails; True if so."""
+        if not self.cfg.tls:
+            return False
+        why = tls_problem(self.cfg)
+        if why is None:
+            return False
+        if why != self._tls_told:
+            self._tls_told = why
+            log.error("TLS with broker %s:%s fails: %s", self.cfg.host, self.cfg.port, why)
+        return True
 
     def _note_drop(self) -> None:
         """The broker closed a connection of ours: closed again and again right after it opened,

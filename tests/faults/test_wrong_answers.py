@@ -170,3 +170,69 @@ def test_fault20_a_broker_restart_logs_no_error_and_nothing_before_it_is_true(br
     finally:
         d.stop()
     assert " ERROR " not in after and "not connected" not in after, after
+
+
+@pytest.fixture
+def tls_broker(tmp_path):
+    """A Mosquitto TLS listener (server certificate for 127.0.0.1, client certificates
+    required) with certificates from one CA, and a second CA with its own client certificate."""
+    import os
+    import shutil
+
+    from test_daemon_broker import _make_certs
+    from thermeta.daemon.testing import free_port, wait_port
+
+    if shutil.which("openssl") is None or shutil.which("mosquitto") is None:
+        pytest.skip("openssl and mosquitto are needed")
+    good, other = tmp_path / "good", tmp_path / "other"
+    for d in (good, other):
+        d.mkdir()
+        _make_certs(d)
+    port = free_port()
+    conf = tmp_path / "m.conf"
+    conf.write_text(
+        f"listener {port} 127.0.0.1\nallow_anonymous true\ncafile {good / 'ca.pem'}\n"
+        f"certfile {good / 'server.pem'}\nkeyfile {good / 'server.key'}\n"
+        "require_certificate true\n" + ("user root\n" if os.geteuid() == 0 else "")
+    )
+    mq = subprocess.Popen(["mosquitto", "-c", str(conf)], stderr=subprocess.DEVNULL)
+    wait_port(port)
+    yield port, good, other
+    mq.terminate()
+    mq.wait(10)
+
+
+@pytest.mark.broker
+@pytest.mark.parametrize(
+    "case, said",
+    [
+        ("wrong CA", "certificate is not trusted"),
+        ("wrong host name", "certificate is not trusted"),
+        ("wrong client certificate", "refused our client certificate"),
+    ],
+)
+def test_fault19_a_tls_failure_says_which_certificate(tls_broker, tmp_path, case, said):
+    """A wrong CA or host name was only "cannot reach broker; retrying", a refused client
+    certificate "broker did not accept MQTT 5": each now says the certificate problem."""
+    port, good, other = tls_broker
+    ca, host, client = good, "127.0.0.1", good
+    if case == "wrong CA":
+        ca = other
+    elif case == "wrong host name":
+        host = "localhost"  # the server's certificate names 127.0.0.1 only
+    else:
+        client = other
+    cfg = tmp_path / "tls.toml"
+    cfg.write_text(
+        f'[broker]\nhost = "{host}"\nport = {port}\nclient_id = "tls-fault"\n'
+        f'ca_file = "{ca / "ca.pem"}"\ncert_file = "{client / "client.pem"}"\n'
+        f'key_file = "{client / "client.key"}"\n\n'
+        f'[storage]\nurl = "sqlite:///{tmp_path / "store.db"}"\n\n' + CELLAR
+    )
+    with RunningDaemon(cfg, wait_connected=False) as d:
+        wait_for(lambda: "TLS with broker" in d.text(), 20, d.log)
+        time.sleep(1.0)
+        text = d.text()
+    assert said in text, text
+    assert "did not accept MQTT 5" not in text
+    assert text.count("TLS with broker") == 1, text
