@@ -112,6 +112,6 @@ def configure(level: str = "info", json_lines: bool = False, stream=None) -> Non
     logging.getLogger("thermeta.mqtt.paho").setLevel(
         logging.DEBUG if level == "debug" else logging.WARNING
     )
-    logging.getLogger("apscheduler").setLevel(
-        logging.WARNING if level != "debug" else logging.DEBUG
-    )
+    # APScheduler's own warnings (a run skipped while the last goes on) are said by the service
+    # once per few minutes with a count; its errors still come through.
+    logging.getLogger("apscheduler").setLevel(logging.ERROR if level != "debug" else logging.DEBUG)

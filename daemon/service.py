@@ -43,6 +43,7 @@ HEARTBEAT_S = 5.0
 STOP_WRITER_S = 3.0
 STOP_STEP_S = 1.0
 RETENTION_EVERY_S = 3600.0
+SKIP_LOG_EVERY_S = 300.0
 
 
 class AlreadyRunning(ThermetaError):
@@ -240,13 +241,26 @@ class Service:
                 **opts,
             )
 
+        skipped: dict[str, list[float]] = {}  # job id -> [last line's time, runs skipped since]
+
         def on_event(event) -> None:
             if event.code == EVENT_JOB_ERROR:
                 log.error("scheduled job %s failed: %r", event.job_id, event.exception)
-            else:
+                return
+            # One line per job every SKIP_LOG_EVERY_S, with a count: a round that outlasts its
+            # interval would otherwise say so at every tick.
+            last = skipped.setdefault(event.job_id, [float("-inf"), 0])
+            last[1] += 1
+            now = time.monotonic()
+            if now - last[0] >= SKIP_LOG_EVERY_S:
                 log.warning(
-                    "scheduled job %s skipped: the previous run is still going", event.job_id
+                    "scheduled job %s skipped %d time(s): the previous run is still going "
+                    "(said at most every %g s)",
+                    event.job_id,
+                    last[1],
+                    SKIP_LOG_EVERY_S,
                 )
+                last[0], last[1] = now, 0
 
         sched.add_listener(on_event, EVENT_JOB_ERROR | EVENT_JOB_MISSED | EVENT_JOB_MAX_INSTANCES)
         sched.start()
