@@ -1,8 +1,13 @@
 """The daemon's sense of "now", injectable so tests and the demo can run simulated time.
 
-Every part of the service that needs the time (receipt stamps, staleness, refit times, the
-future-timestamp check) asks the one clock it was given.  ``rate`` is simulated seconds per real
-second: the scheduler divides its intervals by it.
+Every part of the service that needs the time (receipt stamps, refit times, the future-timestamp
+check) asks the one clock it was given.  ``rate`` is simulated seconds per real second: the
+scheduler divides its intervals by it.
+
+Durations the service measures itself (how long an item has been silent) use the clock's
+``monotonic()`` instead (:func:`monotonic_of`): the wall clock may be stepped (NTP, an operator,
+a VM resumed) and a step must neither freeze nor fire anything.  A simulated clock runs on
+``time.monotonic`` already, so its ``now()`` serves.
 """
 
 from __future__ import annotations
@@ -27,6 +32,16 @@ class SystemClock:
 
     def now(self) -> float:
         return time.time()
+
+    def monotonic(self) -> float:
+        return time.monotonic()
+
+
+def monotonic_of(clock: Clock) -> float:
+    """Seconds on ``clock``'s monotonic scale (its ``monotonic()``, else its ``now()``, which a
+    simulated clock keeps monotonic)."""
+    mono = getattr(clock, "monotonic", None)
+    return float(mono()) if mono is not None else float(clock.now())
 
 
 class ScaledClock:

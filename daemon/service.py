@@ -16,6 +16,7 @@ from __future__ import annotations
 import importlib
 import logging
 import os
+import socket
 import threading
 import time
 from datetime import UTC
@@ -27,14 +28,47 @@ from thermeta.daemon.ingest.mqtt import MqttLink
 from thermeta.daemon.ingest.topics import Router
 from thermeta.daemon.ingest.writer import Activity, Writer
 from thermeta.daemon.refit.rounds import Listener, Refitter
+from thermeta.daemon.scheduling import StepWatch
 from thermeta.daemon.states import ItemState
+from thermeta.storage.errors import ThermetaError
 from thermeta.storage.store import Store, safe_url
 
 log = logging.getLogger("thermeta.service")
 
 PLUGINS = ("thermeta.daemon.alerts",)
 HEARTBEAT_S = 5.0
+# Shutdown: each step waits at most this long (the writer: for its last commit), so SIGTERM ends
+# the service within seconds even with the store locked or a refit round under way; nothing
+# unacknowledged is lost (the broker sends it again to the next run).
+STOP_WRITER_S = 3.0
+STOP_STEP_S = 1.0
 RETENTION_EVERY_S = 3600.0
+SKIP_LOG_EVERY_S = 300.0
+
+
+class AlreadyRunning(ThermetaError):
+    """Another thermeta is running on the same store."""
+
+
+def status_topic_of(config: Config) -> str:
+    """This instance's retained status topic: ``<status_topic>/<client id>`` (one per daemon, so
+    stopping one never marks another offline)."""
+    return f"{config.publish.status_topic}/{config.broker.client_id}"
+
+
+def _process_alive(pid: int) -> bool:
+    """Whether process ``pid`` on this host is running a thermeta."""
+    try:
+        with open(f"/proc/{pid}/cmdline", "rb") as f:
+            return b"thermeta" in f.read()
+    except OSError:
+        try:
+            os.kill(pid, 0)
+        except ProcessLookupError:
+            return False
+        except PermissionError:
+            return True
+        return True
 
 
 class Service:
@@ -50,6 +84,7 @@ class Service:
         self.writer = Writer(self.store, self.router, config, self.clock, self._ack, self.activity)
         self.link: MqttLink | None = None
         self.scheduler: Any = None
+        self.step_watch: StepWatch | None = None
         self.plugins: list[Any] = []
         self.started_at: float | None = None
         self.stopped = threading.Event()
@@ -94,6 +129,7 @@ class Service:
         for note in overrides(cfg):
             log.info("%s", note)
         self.store.create_all()
+        self._check_alone()
         self._load_items()
         self.refitter.load_previous()
         self.writer.start()
@@ -103,16 +139,37 @@ class Service:
             self.router.filters(),
             self.writer.submit,
             self.clock,
-            cfg.publish.status_topic,
-            {"pid": os.getpid()},
+            status_topic_of(cfg),
+            {"pid": os.getpid(), "host": socket.gethostname()},
+            max_payload_bytes=cfg.ingest.max_payload_bytes,
         )
         self.link.start()
         self._start_scheduler()
         self.started_at = self.clock.now()
-        log.info(
-            "watching %d topic filter(s); forecasts on %s/<item>",
-            len(self.router.filters()),
-            cfg.publish.topic_prefix,
+        log.info("forecasts go to %s/<item>", cfg.publish.topic_prefix)
+
+    def _check_alone(self) -> None:
+        """Refuse to start beside another thermeta on this store: the two would share the
+        broker session and the forecasts.  The last heartbeat names its process: on this host it
+        counts while that process lives; on another, while its heartbeat still moves."""
+        hb = self.store.get_meta("daemon") or {}
+        pid, host = hb.get("pid"), hb.get("host")
+        if hb.get("state") != "running" or not isinstance(pid, int) or not host:
+            return
+        me = socket.gethostname()
+        if host == me:
+            if pid == os.getpid() or not _process_alive(pid):
+                return
+        else:
+            beat = hb.get("heartbeat_wall")
+            if not isinstance(beat, (int, float)) or time.time() - beat > 3 * HEARTBEAT_S:
+                return
+            time.sleep(HEARTBEAT_S + 1.0)
+            if (self.store.get_meta("daemon") or {}).get("heartbeat_wall") == beat:
+                return
+        raise AlreadyRunning(
+            f"another thermeta is already running on this store (pid {pid} on host {host}); "
+            "stop it first, or give this one its own [storage] url and [broker] client_id"
         )
 
     def _load_items(self) -> None:
@@ -184,17 +241,32 @@ class Service:
                 **opts,
             )
 
+        skipped: dict[str, list[float]] = {}  # job id -> [last line's time, runs skipped since]
+
         def on_event(event) -> None:
             if event.code == EVENT_JOB_ERROR:
                 log.error("scheduled job %s failed: %r", event.job_id, event.exception)
-            else:
+                return
+            # One line per job every SKIP_LOG_EVERY_S, with a count: a round that outlasts its
+            # interval would otherwise say so at every tick.
+            last = skipped.setdefault(event.job_id, [float("-inf"), 0])
+            last[1] += 1
+            now = time.monotonic()
+            if now - last[0] >= SKIP_LOG_EVERY_S:
                 log.warning(
-                    "scheduled job %s skipped: the previous run is still going", event.job_id
+                    "scheduled job %s skipped %d time(s): the previous run is still going "
+                    "(said at most every %g s)",
+                    event.job_id,
+                    last[1],
+                    SKIP_LOG_EVERY_S,
                 )
+                last[0], last[1] = now, 0
 
         sched.add_listener(on_event, EVENT_JOB_ERROR | EVENT_JOB_MISSED | EVENT_JOB_MAX_INSTANCES)
         sched.start()
         self.scheduler = sched
+        self.step_watch = StepWatch(sched)  # APScheduler times by the wall clock, even in a demo
+        self.step_watch.start()
 
     def refit_now(self) -> dict[str, ItemState]:
         """Run one refit round at once (tests, the demo)."""
@@ -221,6 +293,8 @@ class Service:
             state=state,
             pid=os.getpid(),
             heartbeat_at=self.clock.now(),
+            heartbeat_wall=time.time(),
+            host=socket.gethostname(),
             started_at=self.started_at,
         )
         try:
@@ -229,30 +303,45 @@ class Service:
             log.exception("could not write the heartbeat")
 
     def stop(self) -> None:
-        """Stop taking messages, write and acknowledge what is queued, publish offline, close."""
+        """Stop taking messages, write and acknowledge what is queued, publish offline, close;
+        every step bounded (see STOP_WRITER_S), the refit round left between two items."""
         if self.stopped.is_set():
             return
         log.info("stopping: flushing queued readings")
+        self.refitter.stopping.set()
         if self.link is not None:
             self.link.stop_receiving()
-        self.writer.stop()
+        self.writer.stop(timeout=STOP_WRITER_S)
+        if self.writer.is_alive():
+            log.warning(
+                "the store did not take the last batch within %g s; leaving it unacknowledged "
+                "(the broker sends it again)",
+                STOP_WRITER_S,
+            )
+        if self.step_watch is not None:
+            self.step_watch.stop()
         if self.scheduler is not None:
-            self.scheduler.shutdown(wait=True)
+            _bounded(lambda: self.scheduler.shutdown(wait=True), "the refit round")
         for plugin in self.plugins:
-            try:
-                plugin.stop()
-            except Exception:  # noqa: BLE001
-                log.exception("plug-in %r did not stop cleanly", plugin)
-        self._heartbeat("stopped")
+            _bounded(plugin.stop, f"plug-in {plugin!r}")
+        _bounded(lambda: self._heartbeat("stopped"), "the last heartbeat")
         if self.link is not None:
-            self.link.close()
-        self.store.close()
+            _bounded(self.link.close, "the broker connection", STOP_STEP_S + 2.0)
+        _bounded(self.store.close, "the store")
         self.stopped.set()
         log.info(
             "stopped: %d readings and %d dead letters written this run",
             self.writer.counts["readings"],
             self.writer.counts["dead_letters"],
         )
+
+    def busy(self) -> str | None:
+        """What is still running after :meth:`stop` gave up waiting (None: nothing)."""
+        if self.writer.is_alive():
+            return "the writer"
+        if self.refitter.busy():
+            return "the refit round"
+        return None
 
     # -- internals ----------------------------------------------------------------------------
     def _ack(self, batch) -> None:
@@ -264,3 +353,20 @@ class Service:
             return
         pub = self.config.publish
         self.link.publish(f"{pub.topic_prefix}/{item}", payload, qos=pub.qos, retain=pub.retain)
+
+
+def _bounded(step: Any, what: str, seconds: float = STOP_STEP_S) -> None:
+    """Run a shutdown step, waiting for it at most ``seconds`` (it goes on in the background;
+    the process ends soon anyway)."""
+
+    def run() -> None:
+        try:
+            step()
+        except Exception:  # noqa: BLE001 - shutdown goes on
+            log.exception("stopping %s failed", what)
+
+    t = threading.Thread(target=run, name=f"thermeta-stop-{what[:20]}", daemon=True)
+    t.start()
+    t.join(seconds)
+    if t.is_alive():
+        log.warning("gave up waiting for %s after %g s", what, seconds)

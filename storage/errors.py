@@ -5,6 +5,8 @@
     │   ├── ConfigError   config problems, each as FILE:LINE: key: problem
     │   └── PayloadError  a message that holds no storable reading (it becomes a dead letter)
     ├── StoreError        the store could not be opened, created, read or written
+    │   └── StoreRefused  the store refused the data itself (too long, a constraint): retrying
+    │                     the same rows cannot help, so the writer sets them aside
     └── DeliveryError     an alert hook could not deliver (the outbox tries again later)
 
 Library errors are translated where they happen, with ``raise ... from exc``: SQLAlchemy's in
@@ -42,6 +44,11 @@ class PayloadError(InputError):
 
 class StoreError(ThermetaError):
     """The store failed; the message is safe to show (passwords masked)."""
+
+
+class StoreRefused(StoreError):
+    """The store refused the data (a value too long, a constraint, a trigger): the same
+    statement fails again however often it is tried, unlike a lost connection or a lock."""
 
 
 class DeliveryError(ThermetaError):

@@ -29,9 +29,9 @@ from sqlalchemy import (
     update,
 )
 from sqlalchemy.engine import make_url
-from sqlalchemy.exc import IntegrityError, SQLAlchemyError
+from sqlalchemy.exc import DataError, IntegrityError, SQLAlchemyError
 from thermeta.storage import schema
-from thermeta.storage.errors import StoreError
+from thermeta.storage.errors import StoreError, StoreRefused
 from thermeta.storage.schema import dead_letters, forecasts, items, meta, readings
 
 BUSY_TIMEOUT_MS = 15000
@@ -88,6 +88,8 @@ def store_errors(what: str) -> Iterator[None]:
     """
     try:
         yield
+    except (DataError, IntegrityError) as exc:  # the rows themselves: trying again cannot help
+        raise StoreRefused(f"{what}: {exc.__class__.__name__}: {str(exc).splitlines()[0]}") from exc
     except SQLAlchemyError as exc:
         raise StoreError(f"{what}: {exc.__class__.__name__}: {str(exc).splitlines()[0]}") from exc
 

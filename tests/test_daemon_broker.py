@@ -243,7 +243,7 @@ def test_warming_curve_forecast_is_retained_and_matches_the_truth(broker, tmp_pa
             20,
             daemon.log,
         )
-        status = retained(broker, "thermeta/status")
+        status = retained(broker, "thermeta/status/thermeta-test")
     finally:
         assert daemon.stop() == 0
     assert fc["item"] == "reefer-07" and fc["state"] == "approaching"
@@ -256,7 +256,9 @@ def test_warming_curve_forecast_is_retained_and_matches_the_truth(broker, tmp_pa
         t0 + true_crossing_rel, abs=0.05 * true_eta_s
     )
     assert status["state"] == "online"
-    assert retained(broker, "thermeta/status")["state"] == "offline"  # clean stop says so
+    assert (
+        retained(broker, "thermeta/status/thermeta-test")["state"] == "offline"
+    )  # clean stop says so
     # a clean run and stop log nothing at ERROR (paho's own last-loop complaint included)
     assert " ERROR " not in (tmp_path / "daemon.log").read_text()
 

@@ -270,7 +270,9 @@ def _clear_retained(client, config) -> None:
         client.publish(f"{config.publish.topic_prefix}/{it.name}", b"", qos=1, retain=True)
         for it in config.items
     ]
-    infos.append(client.publish(config.publish.status_topic, b"", qos=1, retain=True))
+    from thermeta.daemon.service import status_topic_of
+
+    infos.append(client.publish(status_topic_of(config), b"", qos=1, retain=True))
     for info in infos:
         info.wait_for_publish(2.0)
 

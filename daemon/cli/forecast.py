@@ -130,6 +130,9 @@ def run(args: argparse.Namespace) -> int:
     try:
         doubt = _ambient_doubt(args)
         series = read_series(args.csv)
+        note = series.skipped_note(str(args.csv))
+        if note:
+            print(f"thermeta forecast: warning: {note}", file=sys.stderr)
         if series.t.size < 2:
             raise InputError(
                 f"{args.csv}:{series.last_line}: too few readings to fit "

@@ -9,6 +9,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+from thermeta.daemon.ingest.payloads import ASCII_DECIMAL, ASCII_SPACE, NOT_FINITE
 from thermeta.daemon.timefmt import parse_time
 from thermeta.storage.errors import InputError
 
@@ -20,13 +21,25 @@ class Series:
     ambient_t: np.ndarray | None
     ambient_y: np.ndarray | None
     last_line: int = 0  # the file's last line read, for messages about the readings as a whole
+    skipped: tuple[int, ...] = ()  # lines with a time but no value (blank), skipped
+
+    def skipped_note(self, name: str) -> str | None:
+        """The warning about skipped lines, or None."""
+        if not self.skipped:
+            return None
+        return (
+            f"{name}:{self.skipped[0]}: {len(self.skipped)} line(s) with a blank value skipped "
+            f"(the first here)"
+        )
 
 
 def _number(text: str, where: str, column: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        raise InputError(f"{where}: {column}: not a number: {text.strip()!r}") from None
+    bare = text.strip(ASCII_SPACE)
+    if bare.lstrip("+-").lower() in NOT_FINITE:
+        raise InputError(f"{where}: {column}: not a finite number: {text.strip()!r}")
+    if not ASCII_DECIMAL.fullmatch(bare):
+        raise InputError(f"{where}: {column}: not a number: {text.strip()!r}")
+    value = float(text)
     if not math.isfinite(value):
         raise InputError(f"{where}: {column}: not a finite number: {text.strip()!r}")
     return value
@@ -69,6 +82,7 @@ def read_series(path: str | Path) -> Series:
     y: list[float] = []
     at: list[float] = []
     ay: list[float] = []
+    skipped: list[int] = []
     try:
         for row in reader:
             where = f"{name}:{reader.line_num}"
@@ -76,6 +90,11 @@ def read_series(path: str | Path) -> Series:
                 continue
             if len(row) <= max(i_t, i_v):
                 raise InputError(f"{where}: expected {len(cols)} columns, got {len(row)}")
+            if len(row) > len(cols):
+                raise InputError(
+                    f"{where}: {len(row)} fields where the header has {len(cols)} (a decimal "
+                    "comma? write 3.1 with a point, or quote the field)"
+                )
             try:
                 ts = parse_time(row[i_t])
             except ValueError as exc:
@@ -83,6 +102,8 @@ def read_series(path: str | Path) -> Series:
             if row[i_v].strip():
                 t.append(ts)
                 y.append(_number(row[i_v], where, "value"))
+            else:
+                skipped.append(reader.line_num)
             if i_a is not None and len(row) > i_a and row[i_a].strip():
                 at.append(ts)
                 ay.append(_number(row[i_a], where, "ambient"))
@@ -97,4 +118,5 @@ def read_series(path: str | Path) -> Series:
         ambient_t=np.asarray(at) if has_amb else None,
         ambient_y=np.asarray(ay) if has_amb else None,
         last_line=reader.line_num,
+        skipped=tuple(skipped),
     )

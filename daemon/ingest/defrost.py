@@ -46,7 +46,10 @@ def _ts(v: Any, now: float, limits: Limits) -> tuple[float, bool]:
     if v is None:
         return now, True
     if isinstance(v, (int, float)) and not isinstance(v, bool):
-        ts = float(v)
+        try:
+            ts = float(v)
+        except OverflowError:
+            raise PayloadError("defrost ts out of range") from None
     elif isinstance(v, str):
         try:
             ts = parse_time(v)
@@ -75,7 +78,7 @@ def parse_defrost(payload: bytes, now: float, limits: Limits = DEFAULT_LIMITS) -
     if text[:1] in ("{", "[", '"') or text in ("true", "false"):
         try:
             doc = json.loads(text)
-        except ValueError:
+        except (ValueError, RecursionError):
             raise PayloadError("defrost payload is not valid JSON") from None
     ts_raw = None
     if isinstance(doc, dict):

@@ -41,7 +41,7 @@ def parse_mark(item: str, payload: bytes, now: float, limits: Limits = DEFAULT_L
     if text.startswith("{"):
         try:
             doc = json.loads(text)
-        except ValueError:
+        except (ValueError, RecursionError):
             raise PayloadError("episode payload is not valid JSON") from None
         if not isinstance(doc, dict):
             raise PayloadError("episode payload must be a JSON object")

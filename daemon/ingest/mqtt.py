@@ -11,14 +11,21 @@ Durability, from paho's own behaviour:
 - ``on_message`` only hands the message on, inside a try/except: an exception there would kill
   paho's network thread;
 - subscriptions are made in ``on_connect`` so every reconnect renews them.
+
+Oversized payloads: under MQTT 5 the daemon announces a Maximum Packet Size (the largest
+payload it keeps, ``[ingest] max_payload_bytes``, plus room for topic and properties), so the
+broker never sends it a bigger one; under 3.1.1 a bigger one is cut to its first bytes on
+arrival and goes on only as a dead letter, so a huge payload is not copied through the writer.
 """
 
 from __future__ import annotations
 
 import json
 import logging
+import socket
 import ssl
 import threading
+import time
 from collections.abc import Callable
 from typing import Any
 
@@ -30,9 +37,65 @@ from thermeta.daemon.config import BrokerConfig
 from thermeta.daemon.ingest.writer import Inbound
 
 log = logging.getLogger("thermeta.mqtt")
+PAHO_LOG = logging.getLogger("thermeta.mqtt.paho")
 
+
+class _LostConnectionEcho(logging.Filter):
+    """paho logs a dropped connection once more at ERROR from its network loop ("... Client is
+    not connected"); ``on_disconnect`` has said it already, as a warning."""
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        return not (record.levelno >= logging.ERROR and "not connected" in record.getMessage())
+
+
+PAHO_LOG.addFilter(_LostConnectionEcho())
+
+FLAP_WINDOW_S = 30.0  # this many seconds ...
+FLAP_SHORT_S = 5.0  # ... holding connections closed within this long after they opened ...
+FLAP_COUNT = 3  # ... this often: someone else is using our client id
 UNSUPPORTED_PROTOCOL = (1, 132)  # 3.1.1 CONNACK code 1; MQTT 5 reason 0x84
+PACKET_OVERHEAD = 8192  # bytes beside the payload in a PUBLISH: the topic, properties, header
 FALLBACK_WAIT_S = 3.0
+
+
+def tls_problem(cfg: BrokerConfig, timeout_s: float = 3.0) -> str | None:
+    """Why a TLS session with the broker fails, in one line, or None (no TLS problem found).
+
+    paho reports a failed handshake only as a failed connection, so this shakes hands itself
+    with the same settings: the broker's certificate (CA, host name) is checked in the
+    handshake; a refused client certificate shows as the broker's alert just after it."""
+    try:
+        ctx = ssl.SSLContext(ssl.PROTOCOL_TLS_CLIENT)
+        if cfg.ca_file:
+            ctx.load_verify_locations(cfg.ca_file)
+        else:
+            ctx.load_default_certs()
+        if cfg.cert_file:
+            ctx.load_cert_chain(cfg.cert_file, cfg.key_file)
+        if cfg.tls_insecure:
+            ctx.check_hostname = False
+            ctx.verify_mode = ssl.CERT_NONE
+    except (OSError, ssl.SSLError) as exc:
+        return f"cannot load the TLS files: {exc}"
+    try:
+        with (
+            socket.create_connection((cfg.host, cfg.port), timeout_s) as raw,
+            ctx.wrap_socket(raw, server_hostname=cfg.host) as tls,
+        ):
+            tls.settimeout(1.0)
+            try:
+                tls.recv(1)
+            except ssl.SSLError as exc:
+                return f"the broker refused our client certificate ({exc.reason or exc})"
+            except OSError:
+                pass
+            return None
+    except ssl.SSLCertVerificationError as exc:
+        return f"the broker's certificate is not trusted: {exc.verify_message or exc}"
+    except ssl.SSLError as exc:
+        return f"the TLS handshake failed: {exc.reason or exc}"
+    except OSError:
+        return None  # not reachable: not a TLS problem
 
 
 class MqttLink:
@@ -46,6 +109,7 @@ class MqttLink:
         clock: Clock,
         status_topic: str,
         status_extra: dict[str, Any] | None = None,
+        max_payload_bytes: int | None = None,
     ):
         self.cfg = cfg
         self.filters = list(filters)
@@ -53,6 +117,7 @@ class MqttLink:
         self.clock = clock
         self.status_topic = status_topic
         self.status_extra = dict(status_extra or {})
+        self.max_payload_bytes = max_payload_bytes
         self.generation = 0
         self.connected = threading.Event()
         self.accepting = True
@@ -62,6 +127,10 @@ class MqttLink:
         self._outcome: str | None = None  # first answer: connected | refused | closed | unreachable
         self._first_connack = threading.Event()
         self._lock = threading.Lock()
+        self._connected_at = 0.0
+        self._short_drops: list[float] = []
+        self._flap_told = False
+        self._tls_told: str | None = None
         self.client = self._make_client()
 
     # -- set-up -------------------------------------------------------------------------------
@@ -74,7 +143,7 @@ class MqttLink:
         if self.protocol == mqtt.MQTTv311:
             kw["clean_session"] = False
         c = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, **kw)
-        c.enable_logger(logging.getLogger("thermeta.mqtt.paho"))
+        c.enable_logger(PAHO_LOG)
         if self.cfg.username:
             c.username_pw_set(self.cfg.username, self.cfg.password)
         if self.cfg.tls:
@@ -140,6 +209,8 @@ class MqttLink:
             # Unacknowledged messages the broker may send ahead (MQTT 5 Receive Maximum); for
             # 3.1.1 the broker's max_inflight_messages plays this part.
             props.ReceiveMaximum = int(self.cfg.receive_maximum)
+            if self.max_payload_bytes:
+                props.MaximumPacketSize = int(self.max_payload_bytes) + PACKET_OVERHEAD
             self.client.connect_async(
                 self.cfg.host,
                 self.cfg.port,
@@ -167,6 +238,7 @@ class MqttLink:
             with self._lock:
                 self.generation += 1
             self.counts["connects"] += 1
+            self._connected_at = time.monotonic()
             resumed = bool(getattr(flags, "session_present", False))
             log.info(
                 "connected to %s:%s (MQTT %s, session %s)",
@@ -176,6 +248,7 @@ class MqttLink:
                 "resumed" if resumed else "new",
             )
             client.subscribe([(f, self.cfg.qos) for f in self.filters])
+            log.info("watching %d topic filter(s)", len(self.filters))
             client.publish(self.status_topic, self._status("online"), qos=1, retain=True)
             self.connected.set()
             self._outcome = self._outcome or "connected"
@@ -185,23 +258,61 @@ class MqttLink:
 
     def _on_connect_fail(self, client, userdata) -> None:
         try:
-            self._outcome = self._outcome or "unreachable"
+            if self._tell_tls():
+                self._outcome = self._outcome or "refused"
+            else:
+                self._outcome = self._outcome or "unreachable"
+                log.warning("cannot reach broker %s:%s; retrying", self.cfg.host, self.cfg.port)
             self._first_connack.set()
-            log.warning("cannot reach broker %s:%s; retrying", self.cfg.host, self.cfg.port)
         except Exception:  # noqa: BLE001
             log.exception("error in on_connect_fail")
 
     def _on_disconnect(self, client, userdata, flags, reason_code, properties) -> None:
         try:
             if not self.connected.is_set() and self._outcome is None:
-                self._outcome = "closed"  # closed before any CONNACK: maybe the version
+                # closed before any CONNACK: maybe the version, maybe our TLS certificate
+                self._outcome = "refused" if self._tell_tls() else "closed"
                 self._first_connack.set()
+            was_connected = self.connected.is_set()
             self.connected.clear()
             self.counts["disconnects"] += 1
             if reason_code != 0:
+                if was_connected:
+                    self._note_drop()
                 log.warning("disconnected from broker (%s); reconnecting", reason_code)
         except Exception:  # noqa: BLE001
             log.exception("error in on_disconnect")
+
+    def _tell_tls(self) -> bool:
+        """With TLS on, find and log (once per cause) why the TLS session fails; True if so."""
+        if not self.cfg.tls:
+            return False
+        why = tls_problem(self.cfg)
+        if why is None:
+            return False
+        if why != self._tls_told:
+            self._tls_told = why
+            log.error("TLS with broker %s:%s fails: %s", self.cfg.host, self.cfg.port, why)
+        return True
+
+    def _note_drop(self) -> None:
+        """The broker closed a connection of ours: closed again and again right after it opened,
+        the likely cause is another client with our client id (each connect throws the other
+        off), which the broker does not say.  Say it once, naming the id."""
+        now = time.monotonic()
+        if now - self._connected_at > FLAP_SHORT_S:
+            return
+        self._short_drops = [t for t in self._short_drops if now - t < FLAP_WINDOW_S] + [now]
+        if len(self._short_drops) >= FLAP_COUNT and not self._flap_told:
+            self._flap_told = True
+            log.error(
+                "the broker keeps closing our connection right after it opens (%d times in %g s): "
+                "another client took over client id %s? Two daemons must not share a "
+                "[broker] client_id",
+                len(self._short_drops),
+                FLAP_WINDOW_S,
+                self.cfg.client_id,
+            )
 
     def _on_message(self, client, userdata, msg) -> None:
         try:
@@ -210,8 +321,20 @@ class MqttLink:
                 self.counts["dropped"] += 1
                 return
             self.counts["received"] += 1
+            payload, size = msg.payload, 0
+            cap = self.max_payload_bytes
+            if cap and len(payload) > cap:  # kept only as a dead letter's excerpt
+                payload, size = payload[: min(cap, 4096)], len(payload)
             self.deliver(
-                Inbound(msg.topic, msg.payload, self.clock.now(), msg.mid, msg.qos, self.generation)
+                Inbound(
+                    msg.topic,
+                    payload,
+                    self.clock.now(),
+                    msg.mid,
+                    msg.qos,
+                    self.generation,
+                    size,
+                )
             )
         except Exception:  # noqa: BLE001 - never let one message stop the network thread
             log.exception("error handing on a message from %s", getattr(msg, "topic", "?"))

@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import json
 import math
+import re
 from dataclasses import dataclass
 from typing import Any
 
@@ -50,6 +51,13 @@ class Limits:
 DEFAULT_LIMITS = Limits()
 
 
+# A bare number: ASCII decimal digits, as JSON writes numbers (a leading + or a trailing point is
+# allowed); Python's float() would also take 1_0, ４２ and ٤٢.
+ASCII_DECIMAL = re.compile(r"[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?", re.ASCII)
+ASCII_SPACE = " \t\r\n\f\v"
+NOT_FINITE = ("nan", "inf", "infinity")
+
+
 def parse_payload(
     payload: bytes,
     now: float,
@@ -68,7 +76,7 @@ def parse_payload(
         if fast is not None:
             return [fast]
     try:
-        text = payload.decode("utf-8").strip()
+        text = payload.decode("utf-8").strip(ASCII_SPACE)
     except UnicodeDecodeError:
         raise PayloadError("not UTF-8 text") from None
     if not text:
@@ -78,19 +86,27 @@ def parse_payload(
             doc = json.loads(text, parse_constant=_reject_constant)
         except PayloadError:
             raise
-        except (json.JSONDecodeError, RecursionError) as exc:
-            raise PayloadError(
-                f"invalid JSON: {getattr(exc, 'msg', 'too deeply nested')}"
-            ) from None
-        if isinstance(doc, list):
-            out = _senml(doc, now, unit, senml_name)
-        else:
-            out = [_object(doc, now, unit)]
-    else:
+        except json.JSONDecodeError as exc:
+            raise PayloadError(f"invalid JSON: {exc.msg}") from None
+        except RecursionError:
+            raise PayloadError("invalid JSON: too deeply nested") from None
+        except ValueError as exc:  # e.g. an integer of more digits than Python converts
+            raise PayloadError(f"invalid JSON: {str(exc)[:80]}") from None
         try:
-            value = float(text)
-        except ValueError:
-            raise PayloadError("not a number, JSON object or SenML pack") from None
+            if isinstance(doc, list):
+                out = _senml(doc, now, unit, senml_name)
+            else:
+                out = [_object(doc, now, unit)]
+        except OverflowError:
+            raise PayloadError("a number is out of range (beyond a float's)") from None
+        except (TypeError, ValueError) as exc:  # a list or object where a name or number goes
+            raise PayloadError(f"a field has the wrong type ({str(exc)[:80]})") from None
+    else:
+        if not ASCII_DECIMAL.fullmatch(text):  # float() also takes 1_0 and other scripts' digits
+            if text.lstrip("+-").lower() in NOT_FINITE:
+                raise PayloadError("value is not a finite number")
+            raise PayloadError("not a number, JSON object or SenML pack")
+        value = float(text)
         out = [Reading(now, _finite(value, "value", unit), True)]
     for r in out:
         _check(r, now, limits)

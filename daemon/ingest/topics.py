@@ -17,6 +17,24 @@ AMBIENT_SUFFIX = ".ambient"
 DEFROST_SUFFIX = ".defrost"
 EPISODE_SUFFIX = ".episode"  # an episode topic's route (its messages are not stored as readings)
 RouteKind = Literal["load", "ambient", "defrost", "episode"]
+# A name built from a topic holds what a configured name may (ASCII letters, digits, . _ - :, and
+# the template's own /) and fits the store's 200 characters with the longest suffix after it.
+NAME_MAX = 200 - max(len(AMBIENT_SUFFIX), len(DEFROST_SUFFIX), len(EPISODE_SUFFIX))
+RENDERED_NAME_RE = re.compile(r"[A-Za-z0-9._:/-]+")
+
+
+def check_rendered_name(name: str) -> str | None:
+    """Why ``name``, built from a topic, cannot name an item (None when it can)."""
+    if len(name) > NAME_MAX:
+        return f"item name from the topic is too long ({len(name)} > {NAME_MAX} characters)"
+    if not RENDERED_NAME_RE.fullmatch(name):
+        return "item name from the topic may hold only letters, digits and . _ - :"
+    # An item's own series and its companions' are separate name spaces: no topic may name an
+    # item "tank-1.defrost" and so write into tank-1's defrost signal.
+    for suffix in (AMBIENT_SUFFIX, DEFROST_SUFFIX, EPISODE_SUFFIX):
+        if name.endswith(suffix):
+            return f"item name from the topic may not end in {suffix!r} (kept for companions)"
+    return None
 
 
 def is_wildcard(topic_filter: str) -> bool:
@@ -157,6 +175,7 @@ class Router:
                 if it.episode_topic:
                     self.exact.setdefault(it.episode_topic, []).append(Route(it, "episode"))
         self._cache: dict[str, list[Route]] = {}
+        self._refused: dict[str, str] = {}  # topic -> why it names no item
 
     def filters(self) -> list[str]:
         """Topic filters to subscribe to."""
@@ -184,6 +203,11 @@ class Router:
             name = render(it.name, topic)
             if name is None:
                 continue
+            why = check_rendered_name(name)
+            if why is not None:
+                if len(self._refused) < 10_000:
+                    self._refused[topic] = why
+                continue
             concrete = self.by_name.get(name)
             if concrete is None:
                 load_topic = topic if kind == "load" else render_filter(it.topic, topic)
@@ -210,6 +234,16 @@ class Router:
         if len(self._cache) < 1_000_000:
             self._cache[topic] = routes
         return routes
+
+    def refuse(self, topic: str, why: str) -> None:
+        """Note that ``topic`` names no item (the store refused its name)."""
+        self._cache.pop(topic, None)
+        if len(self._refused) < 10_000:
+            self._refused[topic] = why
+
+    def refusal(self, topic: str) -> str | None:
+        """Why a topic matching a pattern named no item (its name failed the checks), if known."""
+        return self._refused.get(topic)
 
     def item_for(self, name: str, topic: str | None = None) -> ItemConfig | None:
         """The concrete config of a stored item (re-resolved from its topic after a restart)."""

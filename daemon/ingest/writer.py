@@ -33,13 +33,13 @@ from tenacity import (
     wait_exponential,
     wait_fixed,
 )
-from thermeta.daemon.clock import Clock
+from thermeta.daemon.clock import Clock, monotonic_of
 from thermeta.daemon.config import Config, ItemConfig
 from thermeta.daemon.ingest.defrost import parse_defrost
 from thermeta.daemon.ingest.marks import parse_mark
 from thermeta.daemon.ingest.payloads import Limits, excerpt, parse_payload
 from thermeta.daemon.ingest.topics import Route, Router
-from thermeta.storage.errors import PayloadError, StoreError
+from thermeta.storage.errors import PayloadError, StoreError, StoreRefused
 from thermeta.storage.schema import FLAG_RECEIPT_TS
 from thermeta.storage.store import DeadLetter, Store
 
@@ -65,9 +65,22 @@ class Inbound(NamedTuple):
     mid: int = 0
     qos: int = 0
     generation: int = 0  # which broker connection delivered it
+    size: int = 0  # the payload's size when it was cut on arrival (too big to keep), else 0
 
 
 Ack = Callable[[list[Inbound]], None]
+
+
+@dataclass
+class _Part:
+    """What one message becomes: reading rows, dead letters, episode marks, and the items it
+    brought news of (name, config, newest reading time or None)."""
+
+    msg: Inbound
+    readings: list[tuple] = field(default_factory=list)
+    dead: list[DeadLetter] = field(default_factory=list)
+    marks: list[Any] = field(default_factory=list)
+    seen: list[tuple[str, ItemConfig, float | None]] = field(default_factory=list)
 
 
 @dataclass
@@ -77,14 +90,21 @@ class Activity:
 
     last_ts: dict[str, float] = field(default_factory=dict)
     items: dict[str, ItemConfig] = field(default_factory=dict)
+    # when each item's newest reading arrived, on the clock's monotonic scale (clock.monotonic_of)
+    arrived: dict[str, float] = field(default_factory=dict)
     _dirty: set[str] = field(default_factory=set)
     _lock: threading.Lock = field(default_factory=threading.Lock)
 
-    def note(self, name: str, cfg: ItemConfig, ts: float | None) -> None:
-        """New readings stored for ``name`` (ts None: only its ambient probe's)."""
+    def note(
+        self, name: str, cfg: ItemConfig, ts: float | None, arrived: float | None = None
+    ) -> None:
+        """New readings stored for ``name`` (ts None: only its ambient probe's), which arrived at
+        ``arrived`` (monotonic; None when unknown: silence is then judged by ``ts``)."""
         with self._lock:
             if ts is not None:
                 self.items.setdefault(name, cfg)
+                if arrived is not None:
+                    self.arrived[name] = arrived
             if ts is not None and ts > self.last_ts.get(name, float("-inf")):
                 self.last_ts[name] = ts
             self._dirty.add(name)
@@ -103,6 +123,14 @@ class Activity:
     def snapshot(self) -> tuple[dict[str, ItemConfig], dict[str, float]]:
         with self._lock:
             return dict(self.items), dict(self.last_ts)
+
+    def silences(self, now: float, mono_now: float) -> dict[str, float]:
+        """Seconds since each item last spoke: since its newest reading arrived where known (a
+        step of the wall clock changes nothing), else since its newest reading's time."""
+        with self._lock:
+            out = {name: now - ts for name, ts in self.last_ts.items()}
+            out.update({name: mono_now - at for name, at in self.arrived.items()})
+            return out
 
 
 class Writer(threading.Thread):
@@ -146,6 +174,8 @@ class Writer(threading.Thread):
         self._dead_since_log = 0
         self._dead_last_log = 0.0
         self._dead_latest = ""
+        self._internal_since_log = 0
+        self._internal_last_log = float("-inf")
 
     # -- called from other threads ------------------------------------------------------------
     def submit(self, msg: Inbound) -> None:
@@ -234,37 +264,46 @@ class Writer(threading.Thread):
         return batch, False
 
     def _write(self, batch: list[Inbound]) -> None:
-        readings: list[tuple] = []
-        dead: list[DeadLetter] = []
-        seen: list[tuple[str, ItemConfig, float | None]] = []
-        marks: list = []  # episode starts and ends
         self._prepare_topics(batch)
+        parts: list[_Part] = []
         for msg in batch:
+            part = _Part(msg)
             try:
-                self._convert(msg, readings, dead, seen, marks)
+                self._convert(msg, part)
             except StoreError:
                 raise
             except Exception as exc:  # noqa: BLE001 - one odd message must not stop ingest
-                dead.append(self._dead(msg, None, f"internal error: {exc.__class__.__name__}"))
-                log.exception("unexpected error handling a message on %s", msg.topic)
-        self._until_stored(
-            "store write failed (%s); retrying in %.1f s, nothing acknowledged",
-            self.store.write_batch,
-            readings,
-            dead,
-            marks,
-        )
+                part = _Part(msg)
+                part.dead.append(self._dead(msg, None, f"internal error: {exc.__class__.__name__}"))
+                self._log_internal(msg)
+            parts.append(part)
+        try:
+            self._until_stored(
+                "store write failed (%s); retrying in %.1f s, nothing acknowledged",
+                self.store.write_batch,
+                [r for p in parts for r in p.readings],
+                [d for p in parts for d in p.dead],
+                [m for p in parts for m in p.marks],
+            )
+        except StoreRefused as exc:
+            # Something in the batch is refused by the store itself: store it message by message,
+            # so only what is refused is set aside and the rest goes in.
+            log.warning("the store refused part of a batch (%s); writing it one by one", exc)
+            parts = [self._write_one(p) for p in parts]
+        readings = sum(len(p.readings) for p in parts)
+        dead = [d for p in parts for d in p.dead]
         self.counts["batches"] += 1
         self.counts["messages"] += len(batch)
-        self.counts["readings"] += len(readings)
+        self.counts["readings"] += readings
         self.counts["dead_letters"] += len(dead)
         newest: dict[str, tuple[ItemConfig, float | None]] = {}
-        for name, cfg, ts in seen:
+        for name, cfg, ts in (s for p in parts for s in p.seen):
             prev = newest.get(name)
             if prev is None or (ts is not None and (prev[1] is None or ts > prev[1])):
                 newest[name] = (cfg, ts)
+        arrived = monotonic_of(self.clock)
         for name, (cfg, ts) in newest.items():
-            self.activity.note(name, cfg, ts)
+            self.activity.note(name, cfg, ts, arrived)
         try:
             self.ack(batch)
         except Exception:  # noqa: BLE001 - unacked messages come back and are absorbed
@@ -272,9 +311,41 @@ class Writer(threading.Thread):
         if dead:
             self._log_dead(len(dead), dead[-1])
 
-    def _until_stored(self, message: str, call: Callable[..., T], *args: Any, **kw: Any) -> T:
+    def _write_one(self, part: _Part) -> _Part:
+        """Store one message's readings, dead letters and marks on their own; if the store refuses
+        them, the message becomes a dead letter with the store's reason."""
+        try:
+            self._until_stored(
+                "store write failed (%s); retrying in %.1f s, nothing acknowledged",
+                self.store.write_batch,
+                part.readings,
+                part.dead,
+                part.marks,
+            )
+            return part
+        except StoreRefused as exc:
+            item = part.seen[0][0] if part.seen else None
+            gone = _Part(part.msg)
+            gone.dead.append(self._dead(part.msg, item, f"the store refused it: {exc}"))
+            self._until_stored(
+                "store write failed (%s); retrying in %.1f s, nothing acknowledged",
+                self.store.write_batch,
+                [],
+                gone.dead,
+            )
+            return gone
+
+    def _until_stored(
+        self,
+        message: str,
+        call: Callable[..., T],
+        *args: Any,
+        **kw: Any,
+    ) -> T:
         """``call(*args, **kw)``, tried again while the store fails (see the module docstring);
-        raises :class:`_Stopped` when :meth:`stop` ends the waiting."""
+        raises :class:`_Stopped` when :meth:`stop` ends the waiting.  :class:`StoreRefused` (the
+        store refuses the rows themselves) is not retried: it is raised for the caller to set the
+        rows aside."""
 
         def count(_: RetryCallState) -> None:
             self.counts["store_errors"] += 1
@@ -284,7 +355,7 @@ class Writer(threading.Thread):
             log.error(message, rs.outcome.exception() if rs.outcome else "?", wait_s)
 
         policy = Retrying(
-            retry=retry_if_exception_type(StoreError),
+            retry=retry_if_exception_type(StoreError) & retry_if_not_exception_type(StoreRefused),
             wait=wait_exponential(multiplier=self.store_retry_first_s, max=self.store_retry_max_s),
             stop=lambda _: self._stopping.is_set(),
             sleep=self._pause,
@@ -294,6 +365,8 @@ class Writer(threading.Thread):
         )
         try:
             return policy(call, *args, **kw)
+        except StoreRefused:
+            raise
         except StoreError as exc:  # only once stopping: every other failure is retried
             raise _Stopped from exc
 
@@ -314,17 +387,16 @@ class Writer(threading.Thread):
             if r.kind != "episode"  # its messages are marks, not readings
         ]
         ids: dict[str, int] = {}
+        refused: dict[str, str] = {}
         if specs:
-            ids = self._until_stored(
-                "cannot register new items (%s); retrying in %.1f s",
-                self.store.ensure_items,
-                specs,
-                now=self.clock.now(),
-            )
+            ids, refused = self._register(specs)
         for topic, rs in routes.items():
             hits: list[tuple] = []
             for route in rs:
                 name = route.store_name
+                if name in refused:
+                    self.router.refuse(topic, f"the store refused item {name[:60]!r}")
+                    continue
                 if route.kind == "load" and name not in self._item_ids:
                     log.info("new item %s on %s", name, topic)
                 self._item_ids[name] = ids.get(name, 0)
@@ -337,16 +409,40 @@ class Writer(threading.Thread):
                         name if route.kind == "load" else route.item.name,
                     )
                 )
-            if hits and len(self._topics) < 1_000_000:
+            if len(self._topics) < 1_000_000:
                 self._topics[topic] = hits
 
-    def _convert(self, msg: Inbound, readings: list, dead: list, seen: list, marks: list) -> None:
+    def _register(self, specs: list[tuple]) -> tuple[dict[str, int], dict[str, str]]:
+        """Ids of new items, registered together; if the store refuses one, each on its own, so
+        only the refused ones are left out (name -> the store's reason)."""
+        now = self.clock.now()
+        message = "cannot register new items (%s); retrying in %.1f s"
+        try:
+            return self._until_stored(message, self.store.ensure_items, specs, now=now), {}
+        except StoreRefused:
+            pass
+        ids: dict[str, int] = {}
+        refused: dict[str, str] = {}
+        for spec in specs:
+            try:
+                ids.update(self._until_stored(message, self.store.ensure_items, [spec], now=now))
+            except StoreRefused as exc:
+                refused[spec[0]] = str(exc)
+                log.warning("the store refused item %r: %s", spec[0][:60], exc)
+        return ids, refused
+
+    def _convert(self, msg: Inbound, part: _Part) -> None:
+        readings, dead, seen, marks = part.readings, part.dead, part.seen, part.marks
         hits = self._topics.get(msg.topic)
         if not hits:
-            dead.append(self._dead(msg, None, "no item is mapped to this topic"))
+            why = self.router.refusal(msg.topic) or "no item is mapped to this topic"
+            dead.append(self._dead(msg, None, why))
             return
         failed: tuple[str, str] | None = None
         for route, name, limits, item_id, load_name in hits:
+            if msg.size:
+                failed = (name, f"oversized payload ({msg.size} bytes > {limits.max_bytes})")
+                break
             try:
                 if route.kind == "episode":
                     marks.append(parse_mark(load_name, msg.payload, msg.received_at, limits))
@@ -395,10 +491,24 @@ class Writer(threading.Thread):
         return DeadLetter(
             received_at=msg.received_at,
             topic=msg.topic[:1024],
-            item=item,
+            item=None if item is None else item[:200],
             reason=reason[:300],
             payload=excerpt(msg.payload, self.config.ingest.dead_letter_chars),
         )
+
+    def _log_internal(self, msg: Inbound) -> None:
+        """A traceback for an unexpected error, at most one per DEAD_LOG_EVERY_S (with a count of
+        the others): a flood of one kind of bad message must not flood the log."""
+        self._internal_since_log += 1
+        now = time.monotonic()
+        if now - self._internal_last_log >= DEAD_LOG_EVERY_S:
+            log.exception(
+                "unexpected error handling a message on %s (%d such error(s) since the last line)",
+                msg.topic[:200],
+                self._internal_since_log,
+            )
+            self._internal_since_log = 0
+            self._internal_last_log = now
 
     def _log_dead(self, n: int, latest: DeadLetter) -> None:
         # Rate-limited: a flood of bad payloads gives one line per interval, not one per message.

@@ -33,6 +33,7 @@ def judge_item(
     last_ts: float | None,
     *,
     check_every_s: float = 0.0,
+    silent_s: float | None = None,
     episode: Any = None,
     tally: tally_.Tally | None = None,
     period_tally: tally_.Tally | None = None,
@@ -42,7 +43,8 @@ def judge_item(
     ``fcs``: each level's forecast (degC; None where none was made); ``sides``: each level's
     side as decided; ``episode``: the open (or the last) episode, whose ``tally`` (readings since
     its start) keeps when each target was reached; ``period_tally``: the rolling period's, for
-    the budgets when no episode is open."""
+    the budgets when no episode is open; ``silent_s``: how long the item has been silent (by
+    the readings' arrival; None: ``now`` minus the newest reading's time)."""
     docs: list[dict[str, Any]] = []
     start = None if episode is None else episode.opened_at
     is_open = episode is not None and episode.closed_at is None
@@ -91,7 +93,7 @@ def judge_item(
         top_fc is not None and top_fc.n_points == 0 and top_fc.value_now is None
     ):
         state = ItemState.LEARNING
-    elif now - last_ts > cfg.silence_s:
+    elif (now - last_ts if silent_s is None else silent_s) > cfg.silence_s:
         state = ItemState.STALE
     elif focus is None:
         state = ItemState.LEARNING

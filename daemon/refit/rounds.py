@@ -49,7 +49,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from thermeta.daemon.clock import Clock
+from thermeta.daemon.clock import Clock, monotonic_of
 from thermeta.daemon.config import AMBIENT_SUFFIX, DEFROST_SUFFIX, Config, ItemConfig
 from thermeta.daemon.ingest.defrost import defrost_status
 from thermeta.daemon.ingest.writer import Activity
@@ -70,6 +70,9 @@ log = logging.getLogger("thermeta.refit")
 
 ERROR_LOG_EVERY_S = 300.0
 SAVE_EVERY = 50  # forecasts per store transaction
+# The most readings one fit sees: a denser window is thinned evenly (its newest reading kept), so
+# a round's cost stays bounded however fast a probe reports (60,000 readings cost a fit ~2 s).
+MAX_FIT_POINTS = 1500
 # How far back a defrost signal is read beyond the longest hold (max + recovery): a start older
 # than that holds nothing any more, and a signal repeated at least this often is read right.
 DEFROST_LOOKBACK_S = 3600.0
@@ -153,6 +156,7 @@ class Refitter:
         self.previous: dict[str, dict[str, Any]] = {}
         self.item_ids: dict[str, int] = {}
         self._lock = threading.Lock()
+        self.stopping = threading.Event()  # set at shutdown: the round ends after its item
         self._error_logged: dict[str, float] = {}
         self.runs = 0
         self.last_run_s = 0.0
@@ -170,6 +174,10 @@ class Refitter:
         for f in self.store.latest_forecasts():
             self.previous[f.item] = f.forecast
 
+    def busy(self) -> bool:
+        """Whether a round is running now."""
+        return self._lock.locked()
+
     def run_once(self, force: bool = False) -> dict[str, ItemState]:
         """One round; returns {item: state} for the items published.  Never raises."""
         with self._lock:  # the scheduler never overlaps runs; this guards manual calls too
@@ -177,24 +185,27 @@ class Refitter:
             now = self.clock.now()
             dirty = self.activity.take_dirty()
             items, last = self.activity.snapshot()
+            silent = self.activity.silences(now, monotonic_of(self.clock))
             self.keeper.load()
             done: dict[str, ItemState] = {}
             pending: list[_Refitted] = []
             for name, cfg in items.items():
+                if self.stopping.is_set():
+                    break
                 prev = self.previous.get(name)
                 due = force or name in dirty or prev is None
                 going_stale = (
                     prev is not None
                     and prev.get("state") != ItemState.STALE
-                    and name in last
-                    and now - last[name] > cfg.silence_s
+                    and name in silent
+                    and silent[name] > cfg.silence_s
                 )
                 if not (due or going_stale):
                     continue
                 try:
-                    pending.append(self._refit(name, cfg, now, last.get(name)))
-                except Exception:  # noqa: BLE001 - one item never stops the others
-                    self._log_error(name, "refit of %s failed", name)
+                    pending.append(self._refit(name, cfg, now, last.get(name), silent.get(name)))
+                except Exception as exc:  # noqa: BLE001 - one item never stops the others
+                    self._log_error(name, "refit of %s failed: %s", name, exc)
                 if len(pending) >= SAVE_EVERY:
                     self._flush(pending, now, done)
             self._flush(pending, now, done)
@@ -231,8 +242,16 @@ class Refitter:
             done[r.name] = r.state
         pending.clear()
 
-    def _refit(self, name: str, cfg: ItemConfig, now: float, last_ts: float | None) -> _Refitted:
-        """Fit one item's levels and judge them; returns what to store and publish."""
+    def _refit(
+        self,
+        name: str,
+        cfg: ItemConfig,
+        now: float,
+        last_ts: float | None,
+        silent_s: float | None = None,
+    ) -> _Refitted:
+        """Fit one item's levels and judge them; returns what to store and publish (``silent_s``:
+        how long the item has been silent, by arrival; None: judged from ``last_ts``)."""
         item_id = self.item_ids.get(name) or self.store.item_id(name)
         if item_id is None:
             item_id = self.store.ensure_item(name, unit=cfg.unit, topic=cfg.topic, now=now)
@@ -241,12 +260,14 @@ class Refitter:
         rows = self.store.recent_readings(item_id, since_ts=since)
         t = np.fromiter((r[0] for r in rows), float, len(rows))
         y = np.fromiter((r[1] for r in rows), float, len(rows))
+        t_fit, y_fit = thin(t, y, MAX_FIT_POINTS)
         amb_t = amb_y = None
         if cfg.ambient_topic:
             arows = self.store.recent_readings(name + AMBIENT_SUFFIX, since_ts=since)
             if arows:
-                amb_t = np.array([r[0] for r in arows])
-                amb_y = np.array([r[1] for r in arows])
+                amb_t, amb_y = thin(
+                    np.array([r[0] for r in arows]), np.array([r[1] for r in arows]), MAX_FIT_POINTS
+                )
         mode: AmbientMode = (
             "measured" if amb_y is not None else ("known" if cfg.ambient is not None else "fitted")
         )
@@ -267,9 +288,13 @@ class Refitter:
             key = (lv.threshold_c, sides.get(lv.name))
             if key not in made:
                 kw = forecast_kwargs(cfg, key[1], amb_t, amb_y)
-                made[key] = self._fit(name, cfg, mode, t, y, rows, lv.threshold_c, prior, kw)
+                made[key] = self._fit(
+                    name, cfg, mode, t_fit, y_fit, rows, lv.threshold_c, prior, kw
+                )
                 if i == 0 and mode != "measured":
-                    self._learn_from(name, cls, made[key], prior, now, episode, t, y, lv, kw)
+                    self._learn_from(
+                        name, cls, made[key], prior, now, episode, t_fit, y_fit, lv, kw
+                    )
             fcs.append(made[key])
         tally = (
             None if episode is None else self.keeper.tally(name, levels, sides, episode, item_id, t)
@@ -288,6 +313,7 @@ class Refitter:
             now,
             last_ts,
             check_every_s=self.config.fit.refit_every_s,
+            silent_s=silent_s,
             episode=episode,
             tally=tally,
             period_tally=period,
@@ -465,3 +491,11 @@ class Refitter:
         if now - self._error_logged.get(name, -1e9) >= ERROR_LOG_EVERY_S:
             self._error_logged[name] = now
             log.warning(msg, *args, exc_info=log.isEnabledFor(logging.DEBUG))
+
+
+def thin(t: np.ndarray, y: np.ndarray, most: int) -> tuple[np.ndarray, np.ndarray]:
+    """At most ``most`` of the readings (t ascending), evenly spread, the first and newest kept."""
+    if len(t) <= most:
+        return t, y
+    keep = np.unique(np.linspace(0, len(t) - 1, most).round().astype(int))
+    return t[keep], y[keep]

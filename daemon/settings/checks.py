@@ -67,9 +67,27 @@ def _not_blank(v: str) -> str:
     return v
 
 
+ENV_NAME_RE = re.compile(r"[A-Z_][A-Z0-9_]*")
+
+
+def env_problem(name: str) -> str | None:
+    """Why ``name`` (a key such as ``password_env``) names no set environment variable, or None.
+    A value that does not look like a variable's name (upper-case letters, digits, _) may be the
+    secret itself, typed in by mistake: it is not repeated."""
+    if name in os.environ:
+        return None
+    if not ENV_NAME_RE.fullmatch(name):
+        return (
+            "must name an environment variable such as SECRET_MQTT_PASSWORD; the value given "
+            "is not set and looks like it may be a secret itself, so it is not shown"
+        )
+    return f"environment variable {name} is not set"
+
+
 def _env_is_set(name: str) -> str:
-    if name not in os.environ:
-        raise problem(f"environment variable {name} is not set")
+    why = env_problem(name)
+    if why is not None:
+        raise problem(why)
     return name
 
 

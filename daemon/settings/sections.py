@@ -23,6 +23,7 @@ from thermeta.daemon.settings.checks import (
     PositiveInt,
     Table,
     Text,
+    env_problem,
     problem,
 )
 from thermeta.daemon.states import Model
@@ -98,8 +99,9 @@ class BrokerConfig(Table):
         if self.key_file and not self.cert_file:
             checks.add("key_file", "needs broker.cert_file too")
         if self.password_env:
-            if self.password_env not in os.environ:
-                checks.add("password_env", f"environment variable {self.password_env} is not set")
+            why = env_problem(self.password_env)
+            if why is not None:
+                checks.add("password_env", why)
             if not self.username:
                 checks.add(
                     "username", "missing (a password needs a username)", at=("password_env",)
@@ -125,8 +127,9 @@ class StorageConfig(Table):
         if self.url_env:
             if "url" in self.model_fields_set:
                 checks.add("url_env", "give url or url_env, not both")
-            if self.url_env not in os.environ:
-                checks.add("url_env", f"environment variable {self.url_env} is not set")
+            why = env_problem(self.url_env)
+            if why is not None:
+                checks.add("url_env", why)
 
 
 class FitRules(Table):
