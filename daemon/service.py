@@ -28,6 +28,7 @@ from thermeta.daemon.ingest.topics import Router
 from thermeta.daemon.ingest.writer import Activity, Writer
 from thermeta.daemon.refit.rounds import Listener, Refitter
 from thermeta.daemon.states import ItemState
+from thermeta.daemon.timefmt import use_zone
 from thermeta.storage.store import Store, safe_url
 
 log = logging.getLogger("thermeta.service")
@@ -40,6 +41,7 @@ RETENTION_EVERY_S = 3600.0
 class Service:
     def __init__(self, config: Config, clock: Clock | None = None, store: Store | None = None):
         self.config = config
+        use_zone(config.timezone)  # clock times in alerts, deadlines and logs: the site's zone
         self.clock: Clock = clock or SystemClock()
         self.store = store or Store(config.storage.url)
         self.router = Router(config.items)

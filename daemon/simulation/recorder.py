@@ -13,7 +13,7 @@ import paho.mqtt.client as mqtt
 from thermeta.daemon.levels.judge import remaining_s
 from thermeta.daemon.refit.rounds import ForecastUpdate
 from thermeta.daemon.states import ItemState
-from thermeta.daemon.timefmt import human_duration, local_clock, parse_time
+from thermeta.daemon.timefmt import duration, local_clock, parse_time
 from thermeta.daemon.units import UNIT_SIGN
 
 HORIZON_S = 86400.0  # forecasts further out than the items' horizon are not counted as ahead
@@ -80,12 +80,12 @@ class Recorder:
             elif hi > 30 * 86400:
                 hi_text = "beyond 30 d"
             else:
-                hi_text = human_duration(hi + ahead)
-            band = f"{human_duration(None if lo is None else lo + ahead)} to {hi_text}"
+                hi_text = duration(hi + ahead)
+            band = f"{duration(None if lo is None else lo + ahead)} to {hi_text}"
             verb = "reaches" if d.get("kind") == "target" else "crosses"
             parts.append(
                 f"{verb} {d.get('threshold'):g} {unit} at {local_clock(t_last + eta)} "
-                f"(in {human_duration(t_last + eta - now)}; 90 %: {band})"
+                f"(in {duration(t_last + eta - now)}; 90 %: {band})"
             )
         elif d.get("state") == ItemState.STEADY:
             parts.append("no crossing ahead")

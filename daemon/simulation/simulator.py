@@ -274,19 +274,19 @@ def config_text(
 
 def truth_lines(scenario: Scenario) -> list[str]:
     """What really happens, in words: for people comparing forecasts with the truth."""
-    from thermeta.daemon.timefmt import human_duration, local_clock
+    from thermeta.daemon.timefmt import duration, local_clock
 
     out = [
         f"scenario {scenario.name}: {scenario.title}; starts {local_clock(scenario.t_start, True)}"
     ]
     for t, text in scenario.events:
-        out.append(f"  event at +{human_duration(t - scenario.t_start)}: {text}")
+        out.append(f"  event at +{duration(t - scenario.t_start)}: {text}")
     for p in scenario.loads:
         c = p.crossing_t_true
         when = (
             "never crosses"
             if c is None
-            else f"crosses {p.spec.threshold:g} degC at +{human_duration(c - scenario.t_start)} "
+            else f"crosses {p.spec.threshold:g} degC at +{duration(c - scenario.t_start)} "
             f"({local_clock(c)})"
         )
         out.append(f"  {p.name}: {when}")

@@ -20,7 +20,7 @@ from rich.table import Table
 from rich.text import Text
 from thermeta.daemon.alerts.message import CAUTION, UNIT_SIGN
 from thermeta.daemon.states import ATTENTION, ItemState
-from thermeta.daemon.timefmt import human_duration, local_clock
+from thermeta.daemon.timefmt import duration, local_clock
 from thermeta.daemon.views.board import RANK, Board, LevelLine, Row, collect
 
 STATE_LOOK: dict[
@@ -160,7 +160,7 @@ def header_text(board: Board) -> Text:
     t = Text()
     if not board.running:
         ago = (
-            f", last heartbeat {human_duration(board.now - board.heartbeat_at)} ago"
+            f", last heartbeat {duration(board.now - board.heartbeat_at)} ago"
             if board.heartbeat_at
             else ""
         )
@@ -333,7 +333,7 @@ def plain_lines(board: Board) -> list[str]:
     for r in visible(board):
         out.append(
             f"{r.item} {r.state} now {_num(r.value)} {r.unit} {r.kind} {_num(r.threshold)} "
-            f"eta {eta_text(r)} ambient {_num(r.ambient)} tau {human_duration(r.tau_s)}"
+            f"eta {eta_text(r)} ambient {_num(r.ambient)} tau {duration(r.tau_s)}"
             + (f" alert {r.alert}" if r.alert else "")
             + (" defrost" if r.defrost else "")
             + (f" episode {r.episode}" if r.episode else "")

@@ -84,7 +84,7 @@ def forecast_figure(
     import matplotlib.dates as mdates
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
-    from thermeta.daemon.timefmt import human_duration, local_clock
+    from thermeta.daemon.timefmt import duration, local_clock
 
     conv = convert or (lambda v: v)
     sign = UNIT_SIGN.get(unit, unit)
@@ -184,7 +184,7 @@ def forecast_figure(
             gid="crossing",
         )
         ax.annotate(
-            f"crosses {local_clock(cross)}\nin {human_duration(fc.eta_s)}",
+            f"crosses {local_clock(cross)}\nin {duration(fc.eta_s)}",
             (_to_date(cross), conv(fc.threshold)),
             textcoords="offset points",
             xytext=(-10, 10),
@@ -267,7 +267,7 @@ def _robust_ylim(ax, readings: np.ndarray, keep: list) -> None:
 
 
 def _summary(fc: Forecast, sign: str, conv) -> str:
-    from thermeta.daemon.timefmt import human_duration
+    from thermeta.daemon.timefmt import duration
 
     if not fc.ok:
         return f"no forecast: {fc.reason}"
@@ -275,7 +275,7 @@ def _summary(fc: Forecast, sign: str, conv) -> str:
     if fc.ambient is not None:
         bits.append(f"ambient {conv(fc.ambient):.1f} {sign}")
     if fc.time_constant_s:
-        bits.append(f"time constant {human_duration(fc.time_constant_s)}")
+        bits.append(f"time constant {duration(fc.time_constant_s)}")
     if fc.biot is not None:
         bits.append(f"Biot {fc.biot:.2f}")
     if fc.eta_s is None:
@@ -283,8 +283,8 @@ def _summary(fc: Forecast, sign: str, conv) -> str:
     elif fc.eta_s == 0:
         bits.append("already past the threshold")
     else:
-        hi = human_duration(fc.eta_hi_s) if fc.eta_hi_s is not None else "no upper bound"
-        bits.append(f"ETA {human_duration(fc.eta_s)} (90 %: {human_duration(fc.eta_lo_s)} to {hi})")
+        hi = duration(fc.eta_hi_s) if fc.eta_hi_s is not None else "no upper bound"
+        bits.append(f"ETA {duration(fc.eta_s)} (90 %: {duration(fc.eta_lo_s)} to {hi})")
     return "; ".join(bits)
 
 
