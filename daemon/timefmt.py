@@ -57,6 +57,12 @@ def local(epoch_s: float) -> datetime:
     return datetime.fromtimestamp(epoch_s, tz=UTC).astimezone(zone())
 
 
+def _minute(epoch_s: float) -> datetime:
+    """``epoch_s`` to the nearest minute, in the site's zone: a clock time agrees with the
+    duration beside it, which is rounded to whole minutes too."""
+    return local(round(epoch_s / 60.0) * 60.0)
+
+
 def parse_time(text: str) -> float:
     """Epoch seconds from epoch seconds or ISO 8601 / RFC 3339 with a zone (or ``Z``).
 
@@ -133,7 +139,7 @@ def clock(epoch_s: float | None, now_s: float | None = None) -> str:
     (default: the wall clock's)."""
     if epoch_s is None or not math.isfinite(epoch_s):
         return "-"
-    dt = local(epoch_s)
+    dt = _minute(epoch_s)
     today = local(now_s if now_s is not None else datetime.now(UTC).timestamp()).date()
     return dt.strftime("%H:%M %Z" if dt.date() == today else "%Y-%m-%d %H:%M %Z")
 
@@ -159,4 +165,4 @@ def local_clock(epoch_s: float | None, with_date: bool = False) -> str:
     """A wall-clock time in the site's zone: '14:05' or '2026-12-01 14:05 CET'."""
     if epoch_s is None or not math.isfinite(epoch_s):
         return "-"
-    return local(epoch_s).strftime("%Y-%m-%d %H:%M %Z" if with_date else "%H:%M")
+    return _minute(epoch_s).strftime("%Y-%m-%d %H:%M %Z" if with_date else "%H:%M")
