@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import importlib
 import logging
+import math
 import os
 import threading
 import time
@@ -31,6 +32,7 @@ from thermeta.daemon.states import ItemState
 from thermeta.daemon.timefmt import use_zone
 from thermeta.storage.store import Store, safe_url
 
+RATE_TAU_S = 60.0  # the readings rate's averaging time
 log = logging.getLogger("thermeta.service")
 
 PLUGINS = ("thermeta.daemon.alerts",)
@@ -217,7 +219,13 @@ class Service:
         n = self.writer.counts["readings"]
         dt = now_m - self._rate["t"]
         if dt > 0:
-            self._rate.update(per_s=(n - self._rate["n"]) / dt, t=now_m, n=n)
+            # a moving average over about a minute: a slow feed (a reading a probe a minute)
+            # reads as its rate, not as 0.0 between its readings
+            # avg += (1 - e^(-dt/tau)) (now - avg)
+            share = 1.0 - math.exp(-dt / RATE_TAU_S)
+            inst = (n - self._rate["n"]) / dt
+            self._rate.update(per_s=self._rate["per_s"] + share * (inst - self._rate["per_s"]))
+            self._rate.update(t=now_m, n=n)
         body = dict(
             self.stats,
             state=state,
