@@ -278,7 +278,7 @@ def test_forecast_line_counts_point_and_interval_from_now():
         "last_reading_at": rfc3339(t_last),
     }
     line = rec._forecast_line(SimpleNamespace(name="yard/box", unit="C"), d, t_last + 120.0)
-    assert "(in 31 min; 90 %: 30 min to 33 min)" in line
+    assert "(in 31 min; 90 %: 30 to 33 min)" in line
 
 
 def test_lines_from_two_threads_stay_whole():
