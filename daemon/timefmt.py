@@ -16,7 +16,7 @@ machine's.  A ``by`` deadline such as "16:30" is read in the same zone (``zone()
 from __future__ import annotations
 
 import math
-from datetime import UTC, datetime, tzinfo
+from datetime import UTC, datetime, timedelta, tzinfo
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 _ZONE: tzinfo | None = None  # None: the machine's own zone
@@ -88,15 +88,17 @@ def parse_time(text: str) -> float:
     return dt.timestamp()
 
 
-def parse_since(text: str) -> float:
+def parse_since(text: str, *, end: bool = False) -> float:
     """Like :func:`parse_time`, and a bare date ('2026-12-03') is the start of that day in the
-    site's zone."""
+    site's zone (with ``end``, the end of it: the next day's start)."""
     s = text.strip()
     if len(s) == 10 and s[4] == "-" and s[7] == "-":
         try:
             day = datetime.strptime(s, "%Y-%m-%d")
         except ValueError:
             raise ValueError(f"unparseable date {s!r} (want YYYY-MM-DD)") from None
+        if end:
+            day += timedelta(days=1)
         return day.replace(tzinfo=zone()).timestamp()
     return parse_time(s)
 
