@@ -110,7 +110,8 @@ def test_the_mail_reads_right(smtp):
     assert lines[0] == alert["sentence"]
     assert "at 14:42 CET, in 42 min (90 %: 14:31 to 15:05 CET, in 31 min to 1 h 05 min)" in body
     assert f"What to do: {TODO}" in body
-    assert "value: 6.4 °C now" in body and "level: limit limit 8.0 °C, past it above" in body
+    assert "value: 6.4 °C now" in body and "level: limit 8.0 °C (crossed once above it)" in body
+    assert "site: north-yard" in body
     assert "fit: given ambient 27.0 °C, time constant 9 h 58 min" in body
     assert "alert time: 2026-12-04 14:00 CET" in body or "alert time: 14:00 CET" in body
     # every temperature-like number carries its unit; no seconds; no raw RFC 3339

@@ -8,9 +8,10 @@ unit, each duration in hours and minutes, each clock time in the site's zone.
 
     What to do: check the unit's power; move the load if it is not back within 20 min
 
-              item: reefer-07 (north-yard)
-             value: 6.4 °C now
-             level: limit 'limit', past it above 8.0 °C
+         item: reefer-07
+         site: north-yard
+        value: 6.4 °C now
+        level: limit 8.0 °C (crossed once above it) 8.0 °C
           forecast: 14:47 CET, in 42 min
      90 % interval: 14:32 CET or later, in 27 min or later
           ...
@@ -20,7 +21,7 @@ from __future__ import annotations
 
 from typing import Any
 
-from thermeta.daemon.alerts.message import CAUTION_FULL, headline, temp
+from thermeta.daemon.alerts.message import CAUTION_FULL, DEFAULT_NAME, headline, temp
 from thermeta.daemon.timefmt import clock, clock_span, duration, span
 
 
@@ -33,16 +34,20 @@ def subject(alert: dict[str, Any]) -> str:
 def _figures(a: dict[str, Any]) -> list[tuple[str, str]]:
     unit, at = a.get("unit", "C"), a.get("at_s")
     rows: list[tuple[str, str]] = []
-    rows.append(("item", a["item"] + (f" ({a['site']})" if a.get("site") else "")))
+    rows.append(("item", a["item"]))
+    if a.get("site"):
+        rows.append(("site", a["site"]))
     rows.append(("event", str(a["event"]) + (" (reminder)" if a.get("reminder") else "")))
     if a.get("value_now") is not None:
         rows.append(("value", f"{temp(a['value_now'], unit)} now"))
     if a.get("threshold") is not None:
         kind = a.get("kind") or "limit"
         side = a.get("side")
-        where = f", {'past it' if kind == 'limit' else 'at it'} {side}" if side else ""
-        name = f" {a['level']}" if a.get("level") else ""
-        rows.append(("level", f"{kind}{name} {temp(a['threshold'], unit)}{where}"))
+        verb = "crossed" if kind == "limit" else "reached"
+        where = f" ({verb} once {side} it)" if side else ""
+        name = a.get("level") or ""
+        named = "" if not name or DEFAULT_NAME.match(name) else f" '{name}'"
+        rows.append(("level", f"{kind}{named} {temp(a['threshold'], unit)}{where}"))
     if a.get("crossing_at_s") is not None and a.get("eta_s"):
         rows.append(("forecast", f"{clock(a['crossing_at_s'], at)}, in {duration(a['eta_s'])}"))
         if a.get("eta_lo_s") is not None:

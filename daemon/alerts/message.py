@@ -244,7 +244,9 @@ def _sentence(a: dict[str, Any]) -> str:
 def headline(a: dict[str, Any]) -> str:
     """The alert in a few words, as a mail's subject or a pager's line:
     'reefer-07 (north-yard): may cross 8.0 °C in about 42 min'."""
-    item = a["item"] + (f" ({a['site']})" if a.get("site") else "")
+    site = a.get("site")
+    named = site and not a["item"].startswith(f"{site}/")  # not when the name says it already
+    item = a["item"] + (f" ({site})" if named else "")
     event, unit = a["event"], a["unit"]
     thr = temp(a.get("threshold"), unit)
     at = a.get("at_s")

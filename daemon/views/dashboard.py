@@ -75,7 +75,8 @@ def look(r: Row | LevelLine, lead_s: float | None = None) -> Look:
     if r.state in NO_DATA_STATES:
         return Look.NO_DATA
     lead = lead_s if lead_s is not None else getattr(r, "lead_s", None)
-    if r.eta_lo_s is not None and lead is not None and r.eta_lo_s <= lead:
+    near = r.eta_lo_s is not None and lead is not None and r.eta_lo_s <= lead
+    if near and r.kind == "limit" and r.state == ItemState.STEADY:
         return Look.SOON  # a crossing past the horizon whose early end is near
     return Look.CALM
 
@@ -283,7 +284,7 @@ def column_widths(width: int) -> dict[str, int]:
         w["item"] = min(36, max(16, rest - 12))
         w["spark"] = max(0, rest - w["item"])
     else:
-        w = {"state": 13, "now": 11, "level": 9, "due": 24}
+        w = {"state": 15, "now": 11, "level": 9, "due": 24}
         w["item"] = max(8, width - sum(w.values()) - len(w))
     return w
 
