@@ -1,7 +1,7 @@
 """The dashboard's look in a real terminal: ``thermeta watch`` in tmux panes of 80x24 and 120x40,
 captured with their escape codes (``capture-pane -e``), with colour and with ``NO_COLOR``.
 
-The look follows the time left: the crossed row in reverse video, the approaching rows in the
+The look follows the time left: the crossed row in reversed colours, the approaching rows in the
 one accent colour, the stale row dim, the steady row plain; without colour the reverse and the
 bold stay and every row still says its state in a symbol and a word.  Layout facts: every line
 fits, temperatures keep their unit at 80 columns, no '[0s-∞]' and no '0s' anywhere."""
@@ -92,6 +92,6 @@ def test_the_look_follows_the_time_left_in_a_real_terminal(tmp_path, width, heig
     # SGR 30-38 and 90-97 set a foreground colour, 40-48 and 100-107 a background (ECMA-48)
     colours = {c for c in _codes(bare) if 30 <= int(c) <= 38 or 40 <= int(c) <= 48 or int(c) >= 90}
     assert not colours, colours
-    assert "7" in _codes(_line(bare, "blast-2"))  # reverse video needs no colour
+    assert "7" in _codes(_line(bare, "blast-2"))  # reversed colours need no colour
     for word in ("✖ crossed", "▲ approaching", "? stale", "● steady"):
         assert word in SGR.sub("", bare)

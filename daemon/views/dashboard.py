@@ -5,7 +5,7 @@
     watch(store, console, ...)     the loop behind ``thermeta watch`` (and ``run --dashboard``)
 
 The look follows the time left, not a ladder of states: a row is plain while the early end of
-its interval is beyond ``lead``; one accent inside ``lead``; reverse video once past (a limit
+its interval is beyond ``lead``; one accent inside ``lead``; reversed colours once past (a limit
 crossed, a target missed); dim when there is no data to judge by (stale, learning, waiting).
 Rows come in that order, soonest first.  The colour never carries meaning alone: every row has
 its state as a symbol and a word, and the time left in words, so the board reads the same on a
