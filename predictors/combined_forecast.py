@@ -97,6 +97,9 @@ def self_check(t: np.ndarray, y: np.ndarray, kw: dict) -> bool:
     fit = fit_lumped(t[:n], y[:n], level, **check_kw)
     if not fit.ok or actual <= 0 or abs(level - fit.value_fit_now) < 1e-12:
         return False
+    if fit.eta_s is not None and abs(actual - fit.eta_s) <= half:
+        # the level is a mean over 2 * half: its time is not known more finely than that
+        return False
     if fit.eta_s is None:
         # it saw the curve levelling off short of a level the item then reached
         return fit.eta_lo_s is None or not math.isfinite(fit.eta_lo_s) or fit.eta_lo_s > actual

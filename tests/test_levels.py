@@ -128,8 +128,11 @@ def test_a_limits_state_has_one_test(fc, state):
     [
         (_fc(T0, 40.0, 3000, 2500, 3500), None, None, T0, "waiting"),  # no episode: no deadline
         (_fc(T0, 40.0, 3000, 2500, 3500), T0, None, T0, "heading"),
-        (_fc(T0, 40.0, 6000, 5000, 7300), T0, None, T0, "late"),  # the LATE end decides
-        (_fc(T0, 40.0, 6000, 5000, None), T0, None, T0, "late"),  # an open end counts as late
+        (_fc(T0, 40.0, 7300, 7000, 9000), T0, None, T0, "late"),  # the point past: told at once
+        # only the LATE end past the deadline: told once the deadline is within lead (1800 s)
+        (_fc(T0, 40.0, 6000, 5000, 7300), T0, None, T0, "heading"),
+        (_fc(T0 + 5500, 30.0, 500, 400, 1800), T0, None, T0 + 5500, "late"),  # the LATE end decides
+        (_fc(T0 + 5500, 30.0, 500, 400, None), T0, None, T0 + 5500, "late"),  # an open end counts
         (_fc(T0, 40.0, None), T0, None, T0, "short"),
         (_fc(T0 + 7300, 24.0, 600, 500, 700), T0, None, T0 + 7300, "missed"),
         (_fc(T0 + 7300, 20.0, 0, 0, 0), T0, T0 + 7000, T0 + 7300, "reached"),

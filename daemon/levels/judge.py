@@ -9,8 +9,10 @@
             waiting      its deadline counts from an episode that has not started
             missed       the deadline passed before it was reached
             short        the forecast levels off short of it: never reached
-            late         the LATE end of the interval (an open end included) falls after the
-                         deadline; it has eased once the late end comes half a lead before it
+            late         the point forecast falls after the deadline; or the LATE end of the
+                         interval (an open end included) does and the deadline is within lead
+                         (plus the time to the next refit); it has eased once the late end
+                         comes half a lead before it
             heading      otherwise (learning while there is no fit)
 
 The forecast's ETAs count from its newest reading; everything here counts from ``now``.  The
@@ -172,7 +174,7 @@ def judge(
     view.past = is_past(v, side, level.threshold, level.kind)
     view.back = is_back(v, side, level.threshold, hysteresis)
     if level.is_target:
-        _target(view, level, now, fit_ok, tracked, episode_start_s)
+        _target(view, level, now, fit_ok, tracked, episode_start_s, check_every_s)
     else:
         _limit(view, fit_ok, check_every_s, horizon_s)
     return view
@@ -200,6 +202,7 @@ def _target(
     fit_ok: bool,
     tracked: bool,
     episode_start_s: float | None,
+    check_every_s: float = 0.0,
 ) -> None:
     deadline = view.deadline_at_s
     reached = view.reached_at_s is not None if tracked else view.past
@@ -229,7 +232,20 @@ def _target(
     )
     if view.eta_s is None:
         view.state = ItemState.SHORT
-    elif deadline is not None and (view.eta_hi_s is None or now + view.eta_hi_s > deadline):
+    elif deadline is not None and _late(view, deadline - now, check_every_s):
         view.state = ItemState.LATE
     else:
         view.state = ItemState.HEADING
+
+
+def _late(view: LevelView, left_s: float, check_every_s: float) -> bool:
+    """Late by the LATE end of the interval, told while there is still ``lead`` to act: at once
+    when the point forecast itself is past the deadline (more likely late than not), and when
+    only the late end is past it (an open end included), once the deadline is within lead (plus
+    the time to the next refit); before that the forecast still has time to firm up, and a
+    warning that far ahead of the deadline would mostly be withdrawn."""
+    assert view.eta_s is not None
+    if view.eta_s > left_s:
+        return True
+    hi_past = view.eta_hi_s is None or view.eta_hi_s > left_s
+    return hi_past and left_s <= view.lead_s + check_every_s
