@@ -46,7 +46,9 @@ C_READ, C_FIT, C_BAND, C_THR, C_AMB, C_REG, C_TRUTH = (
 
 
 def _local_tz():
-    return datetime.now(UTC).astimezone().tzinfo
+    from thermeta.daemon.timefmt import zone
+
+    return zone()  # the site's zone (the config's timezone), else the machine's
 
 
 def _to_dates(t: np.ndarray) -> np.ndarray:
@@ -267,7 +269,7 @@ def _robust_ylim(ax, readings: np.ndarray, keep: list) -> None:
 
 
 def _summary(fc: Forecast, sign: str, conv) -> str:
-    from thermeta.daemon.timefmt import duration
+    from thermeta.daemon.timefmt import duration, span
 
     if not fc.ok:
         return f"no forecast: {fc.reason}"
@@ -283,8 +285,7 @@ def _summary(fc: Forecast, sign: str, conv) -> str:
     elif fc.eta_s == 0:
         bits.append("already past the threshold")
     else:
-        hi = duration(fc.eta_hi_s) if fc.eta_hi_s is not None else "no upper bound"
-        bits.append(f"ETA {duration(fc.eta_s)} (90 %: {duration(fc.eta_lo_s)} to {hi})")
+        bits.append(f"crosses in {duration(fc.eta_s)} (90 %: {span(fc.eta_lo_s, fc.eta_hi_s)})")
     return "; ".join(bits)
 
 

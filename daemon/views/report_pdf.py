@@ -103,7 +103,7 @@ def forecast_lines(rec: Record) -> list[str]:
         out.append(
             f"{_t(r['made_at_s']):<22} {str(r['level'])[:10]:<10} {str(r['state'])[:11]:<11} "
             f"{_t(r['forecast_at_s']):<22} {local_clock(r['lo_at_s']):<11} "
-            f"{local_clock(r['hi_at_s']) if r['hi_at_s'] else 'open':<11} "
+            f"{local_clock(r['hi_at_s']) if r['hi_at_s'] else 'no bound':<11} "
             f"{local_clock(r['actual_at_s']):<11} {err_t:>9}"
         )
     if step > 1:
