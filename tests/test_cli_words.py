@@ -59,3 +59,15 @@ def test_since_and_until_as_dates_are_the_sites_days(tmp_path):
     assert len(r.stdout.splitlines()) == 1 + 4
     bad = cli("readings", "reefer-07", "--config", str(cfg), "--since", "2026-13-40")
     assert bad.returncode == 2 and "YYYY-MM-DD" in bad.stderr
+
+
+def test_a_zone_that_does_not_exist_is_named_at_its_line(tmp_path):
+    """`timezone` is checked like every key: FILE:LINE: key: problem, exit 2."""
+    cfg = tmp_path / "c.toml"
+    cfg.write_text(
+        '# site\ntimezone = "Europe/Amsterdm"\n'
+        '[[item]]\nname = "reefer-07"\ntopic = "yard/reefer-07/load"\nthreshold = 8.0\n'
+    )
+    r = cli("check-config", str(cfg))
+    assert r.returncode == 2
+    assert r.stderr.startswith(f"{cfg}:2: timezone: unknown time zone 'Europe/Amsterdm'")

@@ -178,7 +178,7 @@ def run(args: argparse.Namespace) -> int:
         f"items {info['items']}, readings {info['readings']}, dead letters {info['dead_letters']}, "
         f"last refit {ago or 'never'}"
     )
-    rows = [("ITEM", "STATE", "NOW", "THRESHOLD", "CROSSING")]
+    rows = [("ITEM", "STATE", "NOW", "LEVEL", "DUE")]
     for r in info["per_item"]:
         u = UNIT_SIGN.get(r["unit"], r["unit"])
         rows.append(
