@@ -26,7 +26,7 @@ from rich.table import Table
 from rich.text import Text
 from thermeta.daemon.alerts.message import CAUTION, UNIT_SIGN
 from thermeta.daemon.states import ATTENTION, ItemState
-from thermeta.daemon.timefmt import clock, duration, local_clock, span
+from thermeta.daemon.timefmt import clock, duration, local, local_clock, span
 from thermeta.daemon.views.board import Board, LevelLine, Row, collect
 
 # each state's symbol: its shape says the same as its word
@@ -75,7 +75,8 @@ def look(r: Row | LevelLine, lead_s: float | None = None) -> Look:
     if r.state in NO_DATA_STATES:
         return Look.NO_DATA
     lead = lead_s if lead_s is not None else getattr(r, "lead_s", None)
-    near = r.eta_lo_s is not None and lead is not None and r.eta_lo_s <= lead
+    near = r.eta_s is not None and r.eta_lo_s is not None and lead is not None
+    near = near and r.eta_lo_s <= (lead or 0.0)
     if near and r.kind == "limit" and r.state == ItemState.STEADY:
         return Look.SOON  # a crossing past the horizon whose early end is near
     return Look.CALM
@@ -92,6 +93,7 @@ class ViewState(TypedDict):
 SPARK = "▁▂▃▄▅▆▇█"
 GROUP_WHEN_MORE_THAN = 10
 ALERT_LINES = 3  # the newest alerts under the items, when there is room
+NOTE_ROOM = 27  # a wide screen's interval column, where a level's deadline or allowance goes
 
 
 def sparkline(values: list[float], threshold: float | None, width: int) -> str:
@@ -146,18 +148,25 @@ def when_text(r: Row | LevelLine) -> str:
     return range_text(r) or due_text(r)
 
 
+def deadline_clock(at: float, now: float) -> str:
+    """A deadline in few characters: '16:30' today, 'Sat 02:11' on another day (the site's zone)."""
+    same_day = local(at).date() == local(now).date()
+    return local_clock(at) if same_day else local(at).strftime("%a ") + local_clock(at)
+
+
 def level_note(lv: LevelLine, now: float) -> str:
     """What a level waits for besides its time: its deadline and chance, or its budget."""
     parts = []
     if lv.deadline_s is not None:
-        text = f"by {clock(now + lv.deadline_s, now)}"
+        text = f"by {deadline_clock(now + lv.deadline_s, now)}"
         if lv.chance is not None and lv.state not in (ItemState.REACHED, ItemState.MISSED):
             text += f", {100 * lv.chance:.0f} % chance"
         parts.append(text)
     if lv.budget_left_s is not None:
         text = f"allowance {duration(lv.budget_left_s)} left"
-        if lv.budget_out_s is not None and lv.budget_left_s > 0:
-            text += f", out in {duration(lv.budget_out_s)}"
+        out = f", out in {duration(lv.budget_out_s)}" if lv.budget_out_s is not None else ""
+        if lv.budget_left_s > 0 and len(text + out) <= NOTE_ROOM:
+            text += out
         parts.append(text)
     return "; ".join(parts)
 
@@ -166,7 +175,7 @@ def narrow_level(lv: LevelLine, now: float) -> str:
     """A level's one cell on a narrow screen: its deadline and chance ('by 16:30, 3 % chance'),
     its allowance ('allowance 32 min left', 'allowance used up'), or its time left."""
     if lv.deadline_s is not None:
-        text = f"by {local_clock(now + lv.deadline_s)}"
+        text = f"by {deadline_clock(now + lv.deadline_s, now)}"
         if lv.chance is not None and lv.state not in (ItemState.REACHED, ItemState.MISSED):
             text += f", {100 * lv.chance:.0f} % chance"
         return text
@@ -200,7 +209,7 @@ def now_text(r: Row) -> str:
 
 
 def order_key(r: Row) -> tuple:
-    soon = r.eta_lo_s if r.eta_lo_s is not None else r.eta_s
+    soon = r.eta_lo_s if r.eta_lo_s is not None and r.eta_s is not None else r.eta_s
     return (look(r), math.inf if soon is None else soon, r.item)
 
 
@@ -277,7 +286,7 @@ def column_widths(width: int) -> dict[str, int]:
     on a wide screen, the sparkline take what is left.  A narrow screen shows the interval in
     the "due in" column and leaves the technical figures out."""
     if width >= 110:
-        w = {"state": 15, "now": 12, "level": 10, "due": 11, "range": 24}
+        w = {"state": 15, "now": 12, "level": 10, "due": 11, "range": NOTE_ROOM}
         if width >= 150:
             w.update(ambient=9, tau=13)
         rest = width - sum(w.values()) - len(w) - 1
@@ -353,8 +362,9 @@ def _level_cells(lv: LevelLine, r: Row, w: dict[str, int], now: float) -> list[A
         item=Text(fit_name(f"└ {lv.name}", w["item"]), style="dim"),
         level=level_text(lv.threshold, r.unit, lv.kind),
         due=Text(due, style=style),
-        range=Text(range_text(lv), style=style),
-        spark=Text(note, style="dim", no_wrap=True, overflow="crop"),
+        # on a wide screen the deadline or allowance takes the interval's place (the item's own
+        # row shows its focus level's interval)
+        range=Text(note or range_text(lv), style=style if not note else "dim"),
     )
 
 
