@@ -93,6 +93,7 @@ class ViewState(TypedDict):
 SPARK = "▁▂▃▄▅▆▇█"
 GROUP_WHEN_MORE_THAN = 10
 ALERT_LINES = 3  # the newest alerts under the items, when there is room
+NARROW_DUE = 24  # a narrow screen's one time column
 NOTE_ROOM = 27  # a wide screen's interval column, where a level's deadline or allowance goes
 
 
@@ -178,7 +179,7 @@ def narrow_level(lv: LevelLine, now: float) -> str:
         text = f"by {deadline_clock(now + lv.deadline_s, now)}"
         if lv.chance is not None and lv.state not in (ItemState.REACHED, ItemState.MISSED):
             text += f", {100 * lv.chance:.0f} % chance"
-        return text
+        return text if len(text) <= NARROW_DUE else text[: -len(" chance")]
     if lv.budget_left_s is not None:
         if lv.budget_state == "used_up" or lv.budget_left_s <= 0:
             return "allowance used up"
@@ -293,7 +294,7 @@ def column_widths(width: int) -> dict[str, int]:
         w["item"] = min(36, max(16, rest - 12))
         w["spark"] = max(0, rest - w["item"])
     else:
-        w = {"state": 15, "now": 11, "level": 9, "due": 24}
+        w = {"state": 15, "now": 11, "level": 9, "due": NARROW_DUE}
         w["item"] = max(8, width - sum(w.values()) - len(w))
     return w
 
