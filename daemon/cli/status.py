@@ -131,7 +131,9 @@ def _eta_text(r: dict[str, Any], now: float) -> str:
     if due <= now:
         # the forecast's time has come without a reading saying what happened
         return f"was due at {clock(due, now)}, no reading since"
-    text = f"in {duration(due - now)}"
+    # the point and both ends count from now the same way (from the newest reading, less the
+    # time since it), so the point always lies inside its interval
+    text = f"in {duration(remaining_s(r, 'eta_s', now))}"
     if r["eta_lo_s"] is not None or r["eta_hi_s"] is not None:
         # the forecast's interval counts from its newest reading; the line counts from now
         lo, hi = remaining_s(r, "eta_lo_s", now), remaining_s(r, "eta_hi_s", now)
@@ -212,6 +214,7 @@ def _detail_lines(r: dict[str, Any], now: float) -> list[str]:
     out = []
     levels = r.get("levels") or []
     made = parse_time(r["updated_at"]) if r.get("updated_at") else now
+    since = max(0.0, now - made)  # a level's times count from its refit (never from the future)
     for lv in levels:
         if len(levels) == 1 and lv.get("kind") == "limit" and not lv.get("budget"):
             break
@@ -219,12 +222,12 @@ def _detail_lines(r: dict[str, Any], now: float) -> list[str]:
         head = f"{lv['name']}: {lv['kind']} {lv['threshold']:g} {u} ({side}), {lv['state']}"
         eta = lv.get("eta_s")
         if eta is not None and lv["state"] not in ("reached", "missed", "crossed"):
-            left = eta - (now - made)
+            left = max(0.0, eta - since)
             hi = lv.get("eta_hi_s")
             head += f", forecast in {duration(left)}"
             if lv.get("eta_lo_s") is not None or hi is not None:
-                lo = max(0.0, (lv.get("eta_lo_s") or 0) - (now - made))
-                hi_left = None if hi is None else max(0.0, hi - (now - made))
+                lo = max(0.0, (lv.get("eta_lo_s") or 0) - since)
+                hi_left = None if hi is None else max(0.0, hi - since)
                 head += f" (90 %: {span(lo, hi_left)})"
         if lv.get("deadline_at_s") is not None:
             head += f", deadline {local_clock(lv['deadline_at_s'], True)}"
