@@ -21,6 +21,7 @@ from thermeta.daemon.views.dashboard import (
     collect,
     due_text,
     range_text,
+    rate_text,
     render,
     sparkline,
 )
@@ -167,6 +168,12 @@ def test_sparkline_and_time_left_formats():
     r = Row(item="x", state="approaching", eta_s=600.0, eta_lo_s=0.0, eta_hi_s=None)
     assert range_text(r) == "under 1 min or later"
     assert due_text(Row(item="x", state="crossed", eta_s=0.0)) == "past it"
+    # a slow feed reads as its rate per minute, never "0.0 readings/s"
+    assert [rate_text(v) for v in (12.5, 0.05, None)] == [
+        "12.5 readings/s",
+        "3.0 readings/min",
+        "- readings/s",
+    ]
 
 
 def test_watch_prints_plain_lines_when_not_a_terminal(tmp_path):

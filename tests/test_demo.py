@@ -110,6 +110,9 @@ def test_demo_headless_forecasts_against_truth(headless_run):
     assert "using an embedded broker" in r.stdout
     assert "forecast eastpier/reefer-12/load-top: approaching" in r.stdout
     assert "forecasts against the simulated truth" in r.stdout
+    # the closing summary is the last thing printed, and the banner names no folder it removes
+    assert r.stdout.rstrip().splitlines()[-1].endswith("alerts in all")
+    assert "removed at the end" in r.stdout.splitlines()[0]
     played = s["sim_end"] - s["t_start"]
     assert 0.85 * 60 * 160 < played < 1.15 * 60 * 160
     items = s["items"]
