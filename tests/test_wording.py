@@ -134,3 +134,24 @@ def test_what_to_do_is_one_line_for_warnings_or_one_per_event():
     table = {"crossed": "move the load", "stale": "check the probe's battery"}
     assert todo_for(table, "stale") == "check the probe's battery"
     assert todo_for(table, "approaching") is None
+
+
+def test_log_lines_are_stamped_in_the_sites_zone(amsterdam):
+    """The text log's time carries the site's zone and its name, like the alerts in it."""
+    import io
+    import logging
+
+    from thermeta.daemon.logsetup import configure
+
+    buf = io.StringIO()
+    root = logging.getLogger()
+    saved = (list(root.handlers), root.level)
+    try:
+        configure("info", stream=buf)
+        record = logging.LogRecord("thermeta.t", logging.WARNING, __file__, 1, "hello", None, None)
+        record.created = T
+        root.handlers[0].handle(record)
+    finally:
+        root.handlers[:] = saved[0]
+        root.setLevel(saved[1])
+    assert buf.getvalue().startswith("2026-12-04 14:05:00 CET WARNING thermeta.t: hello")
