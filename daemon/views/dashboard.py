@@ -75,8 +75,8 @@ def look(r: Row | LevelLine, lead_s: float | None = None) -> Look:
     if r.state in NO_DATA_STATES:
         return Look.NO_DATA
     lead = lead_s if lead_s is not None else getattr(r, "lead_s", None)
-    near = r.eta_s is not None and r.eta_lo_s is not None and lead is not None
-    near = near and r.eta_lo_s <= (lead or 0.0)
+    early = r.eta_lo_s if r.eta_s is not None else None
+    near = early is not None and lead is not None and early <= lead
     if near and r.kind == "limit" and r.state == ItemState.STEADY:
         return Look.SOON  # a crossing past the horizon whose early end is near
     return Look.CALM
