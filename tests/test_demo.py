@@ -173,7 +173,7 @@ def test_demo_uses_a_reachable_broker(broker):
         + [
             "--headless",
             "--duration",
-            "2",
+            "4",  # room for the first refit round on a loaded machine (2 s missed it at times)
             "--speed",
             "600",
             "--host",
