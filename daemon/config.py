@@ -62,7 +62,7 @@ SECTIONS: dict[str, type[Table]] = {
     "alerts": AlertDefaults,
     "log": LogConfig,
 }
-TOP_KEYS = (*SECTIONS, "item", "hook", "schedule")
+TOP_KEYS = (*SECTIONS, "item", "hook", "schedule", "timezone")
 
 
 @dataclass(frozen=True)
@@ -80,6 +80,8 @@ class Config:
     hooks: tuple[HookConfig, ...]
     log_level: str = "info"
     schedules: tuple[ScheduleConfig, ...] = ()
+    # the IANA zone of the clock times people read (and of a "by" deadline); None: the machine's
+    timezone: str | None = None
 
 
 def load_config(path: str | Path) -> Config:
@@ -125,6 +127,7 @@ def parse_config(data: dict[str, Any], name: str, text: str) -> Config:
         {s.name: s for s in schedules},
     )
     hooks = _hooks(checks, data.get("hook", []))
+    zone = _timezone(checks, data.get("timezone"))
     if checks.problems:
         raise ConfigError(checks.problems)
     return Config(
@@ -139,7 +142,25 @@ def parse_config(data: dict[str, Any], name: str, text: str) -> Config:
         hooks=tuple(hooks),
         log_level=tables["log"].level,
         schedules=tuple(schedules),
+        timezone=zone,
     )
+
+
+def _timezone(checks: Checks, raw: Any) -> str | None:
+    """The top-level ``timezone``: an IANA zone name, or None for the machine's own zone."""
+    from thermeta.daemon.timefmt import zone_named
+
+    if raw is None:
+        return None
+    if not isinstance(raw, str) or not raw.strip():
+        checks.table().add("timezone", 'must be a time zone name such as "Europe/Amsterdam"')
+        return None
+    try:
+        zone_named(raw.strip())
+    except ValueError as exc:
+        checks.table().add("timezone", str(exc))
+        return None
+    return raw.strip()
 
 
 def _table(checks: Checks, data: dict[str, Any], key: str, model: type[Table]) -> Table:

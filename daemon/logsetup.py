@@ -91,17 +91,23 @@ class ConditionThrottle(logging.Filter):
         return True
 
 
+class SiteFormatter(logging.Formatter):
+    """Text lines stamped in the site's zone (the config's ``timezone``), with its name, as the
+    alerts and the dashboard show their clock times."""
+
+    def formatTime(self, record: logging.LogRecord, datefmt: str | None = None) -> str:
+        from thermeta.daemon.timefmt import local
+
+        return local(record.created).strftime("%Y-%m-%d %H:%M:%S %Z")
+
+
 def configure(level: str = "info", json_lines: bool = False, stream=None) -> None:
     """Route thermeta's (and paho's, APScheduler's) logs to ``stream`` (stderr by default)."""
     handler = logging.StreamHandler(stream or sys.stderr)
     if json_lines:
         handler.setFormatter(JsonFormatter())
     else:
-        handler.setFormatter(
-            logging.Formatter(
-                "%(asctime)s %(levelname)-7s %(name)s: %(message)s", datefmt="%Y-%m-%d %H:%M:%S"
-            )
-        )
+        handler.setFormatter(SiteFormatter("%(asctime)s %(levelname)-7s %(name)s: %(message)s"))
     handler.addFilter(ConditionThrottle())
     root = logging.getLogger()
     for h in list(root.handlers):

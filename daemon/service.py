@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import importlib
 import logging
+import math
 import os
 import socket
 import threading
@@ -31,8 +32,10 @@ from thermeta.daemon.refit.rounds import Listener, Refitter
 from thermeta.daemon.scheduling import StepWatch
 from thermeta.daemon.states import ItemState
 from thermeta.storage.errors import ThermetaError
+from thermeta.daemon.timefmt import use_zone
 from thermeta.storage.store import Store, safe_url
 
+RATE_TAU_S = 60.0  # the readings rate's averaging time
 log = logging.getLogger("thermeta.service")
 
 PLUGINS = ("thermeta.daemon.alerts",)
@@ -74,6 +77,7 @@ def _process_alive(pid: int) -> bool:
 class Service:
     def __init__(self, config: Config, clock: Clock | None = None, store: Store | None = None):
         self.config = config
+        use_zone(config.timezone)  # clock times in alerts, deadlines and logs: the site's zone
         self.clock: Clock = clock or SystemClock()
         self.store = store or Store(config.storage.url)
         self.router = Router(config.items)
@@ -287,7 +291,13 @@ class Service:
         n = self.writer.counts["readings"]
         dt = now_m - self._rate["t"]
         if dt > 0:
-            self._rate.update(per_s=(n - self._rate["n"]) / dt, t=now_m, n=n)
+            # a moving average over about a minute: a slow feed (a reading a probe a minute)
+            # reads as its rate, not as 0.0 between its readings
+            # avg += (1 - e^(-dt/tau)) (now - avg)
+            share = 1.0 - math.exp(-dt / RATE_TAU_S)
+            inst = (n - self._rate["n"]) / dt
+            self._rate.update(per_s=self._rate["per_s"] + share * (inst - self._rate["per_s"]))
+            self._rate.update(t=now_m, n=n)
         body = dict(
             self.stats,
             state=state,

@@ -10,7 +10,7 @@ from __future__ import annotations
 import math
 
 import pytest
-from thermeta.daemon.alerts.message import build_alert, sentence
+from thermeta.daemon.alerts.message import build_alert, fit_clause, headline, sentence
 from thermeta.daemon.alerts.rules import ItemAlertState, RuleParams, remaining_s, step
 from thermeta.predictors.result import rfc3339
 
@@ -277,7 +277,8 @@ def test_bad_params_are_value_errors():
 
 def test_the_sentence_carries_the_numbers():
     """One sentence: item, level, value now, threshold, crossing clock time and 'in N min' with
-    the interval, the ambient (given, measured or fitted) and time constant."""
+    the interval; the technical figures (the ambient, given, measured or fitted, and the time
+    constant) in the details, never "not known"; a headline in a few words."""
     now = T0_EPOCH + 600
     fc = fc_at(600)
     fc.update(
@@ -288,19 +289,23 @@ def test_the_sentence_carries_the_numbers():
     )
     st = ItemAlertState()
     evs = step(st, fc, P, now)
-    a = build_alert("trailer-4", fc, evs[0], st, P, now, unit="C", silence_s=900)
+    a = build_alert("trailer-4", fc, evs[0], st, P, now, unit="C", silence_s=900, site="yard")
     s = a["sentence"]
     assert remaining_s(fc, "eta_s", now) == pytest.approx(2520.0)
     assert s.startswith("trailer-4 is approaching its limit of -15.0 °C: ")
     assert f"{newton(600):.1f} °C now" in s
-    assert "(in 42 min; 90 % interval" in s and "in 27 min to 68 min" in s
+    assert ", in 42 min (90 %: " in s and ", in 27 min to 1 h 08 min)" in s
+    assert "time constant" not in s and "ambient" not in s
+    assert a["headline"] == "trailer-4 (yard): may cross -15.0 °C in about 42 min"
     # the ambient says where it came from: the item's config (here), its air probe, or the fit
-    assert "; given ambient 12.0 °C, time constant 10 h 00 min" in s
-    assert "; fitted ambient 12.0 °C," in sentence(dict(a, ambient_mode="fitted"))
-    assert "; air probe heading for 12.0 °C," in sentence(dict(a, ambient_mode="measured"))
-    assert "; ambient from the air probe, time" in sentence(
-        dict(a, ambient_mode="measured", ambient=None)
+    assert a["details"] == "given ambient 12.0 °C, time constant 10 h 00 min"
+    assert fit_clause(dict(a, ambient_mode="fitted")).startswith("fitted ambient 12.0 °C,")
+    assert fit_clause(dict(a, ambient_mode="measured")).startswith("air probe heading for 12.0")
+    assert fit_clause(dict(a, ambient_mode="measured", ambient=None)).startswith(
+        "ambient from the air probe, time"
     )
+    # nothing known: nothing said (not "not known, time constant not known")
+    assert fit_clause(dict(a, ambient=None, ambient_given=None, time_constant_s=None)) == ""
     assert s.count(". ") == 0 and s.endswith(".")
     assert a["crossing_at"] == rfc3339(now + 2520.0)
     assert a["id"] == "trailer-4:1:approaching:1"
@@ -310,7 +315,7 @@ def test_the_sentence_carries_the_numbers():
     )
     for event in ("crossed", "recovered", "stale", "resumed", "regime"):
         b = dict(a, event=event, from_state="crossed", by="band", regime_start_s=now)
-        assert b["item"] in sentence(b)
+        assert b["item"] in sentence(b) and headline(b).startswith("trailer-4 (yard): ")
     # the crossing says which way: a warming load rose above, a chilled batch fell below
     assert sentence(dict(a, event="crossed", side="above")).startswith(
         "trailer-4 has risen above its limit of -15.0 °C: "

@@ -536,7 +536,8 @@ def test_status_text_reads_the_store(tmp_path):
     Refitter(store, cfg, ManualClock(T0), act).run_once()
     store.close()
     cfg_path = tmp_path / "c.toml"
-    cfg_path.write_text(f'[storage]\nurl = "{cfg.storage.url}"\n{ITEMS}')
+    # the site's zone (config `timezone`) is the zone of every clock time the command prints
+    cfg_path.write_text(f'timezone = "Asia/Kolkata"\n[storage]\nurl = "{cfg.storage.url}"\n{ITEMS}')
     r = subprocess.run(
         [sys.executable, "-m", "thermeta.daemon.cli", "status", "--config", str(cfg_path)],
         capture_output=True,
@@ -547,7 +548,7 @@ def test_status_text_reads_the_store(tmp_path):
     lines = r.stdout.splitlines()
     assert lines[0] == "daemon not running (last heartbeat never)"
     assert lines[1].startswith(
-        "items 1, readings 60, dead letters 0, last refit 2027-01-15T08:00:00Z ("
+        "items 1, readings 60, dead letters 0, last refit 2027-01-15 13:30 IST ("
     )
     rows = {ln.split()[0]: ln.split()[1] for ln in lines[3:-1] if not ln.startswith(" ")}
     assert rows == {"warm": "approaching", "far": "-", "new": "-", "past": "-"}
@@ -622,8 +623,10 @@ def test_status_line_counts_point_and_interval_from_now():
         "crossing_at": rfc3339(t_last + 1980.0),
         "last_reading_at": rfc3339(t_last),
     }
-    assert _eta_text(r, T0 + 0.0) == "in 31 min (90 %: 30 min to 33 min)"
-    assert _eta_text(dict(r, eta_hi_s=None), T0 + 0.0) == "in 31 min (90 %: 30 min to open)"
+    assert _eta_text(r, T0 + 0.0) == "in 31 min (90 %: 30 to 33 min)"
+    assert _eta_text(dict(r, eta_hi_s=None), T0 + 0.0) == "in 31 min (90 %: 30 min or later)"
+    # its time come and gone without a reading: said so, not "due now (90 %: 0 s to 0 s)"
+    assert _eta_text(r, T0 + 3600.0).startswith("was due at ")
 
 
 def test_retention_keeps_the_configured_days(tmp_path):

@@ -16,7 +16,15 @@ import uuid
 
 import pytest
 from rich.console import Console
-from thermeta.daemon.views.dashboard import _on_key, collect, render, short_duration, sparkline
+from thermeta.daemon.views.dashboard import (
+    _on_key,
+    collect,
+    due_text,
+    range_text,
+    rate_text,
+    render,
+    sparkline,
+)
 from thermeta.predictors.result import rfc3339
 from thermeta.storage.store import Store
 
@@ -98,12 +106,13 @@ def test_render_shows_items_in_urgency_order_with_words(tmp_path, width, height)
         if name in line
     ]
     assert order == ["blast-2", "trailer-4", "trailer-9", "cellar-b", "reefer-07"]
-    # a name too long for the column keeps its telling end
-    assert ("…tchen/blast-2" if width == 80 else "kitchen/blast-2") in out
+    assert "kitchen/blast-2" in out
     for word in ("✖ crossed", "▲ approaching", "? stale", "● steady"):
         assert word in out
-    assert "42m [27m-68m]" in out  # the countdown with its interval
-    assert "12.5 readings/s" in out and "3 dead letters" in out and "refit 8s ago" in out
+    # the time left with its interval, in the one format; temperatures with their unit
+    assert "27 min to 1 h 08 min" in out and "-16.4 °C" in out and "-15 °C" in out
+    assert "12.5 readings/s" in out and "3 set aside" in out and "refit 8 min ago" not in out
+    assert "refit under 1 min ago" in out
     assert "connected" in lines[0]
     assert CAUTION_START in out
     store.close()
@@ -117,7 +126,10 @@ def test_many_items_are_grouped_by_site_most_urgent_group_first(tmp_path):
     heads = [
         line.split(" (")[0]
         for line in map(str.strip, out.splitlines())
-        if line.endswith(")") and line[0].isalpha() and "items" not in line
+        if line.endswith(")")
+        and line[0].isalpha()
+        and "items" not in line
+        and not line.startswith("state ")
     ]
     assert heads[:2] == ["kitchen", "north-yard"]
     assert "more (filter with / or a)" in out
@@ -144,16 +156,23 @@ def test_filter_keys_and_attention_view(tmp_path):
     store.close()
 
 
-def test_sparkline_and_countdown_formats():
-    """Eight levels from low to high, blanks where no reading; compact countdowns."""
+def test_sparkline_and_time_left_formats():
+    """Eight levels from low to high, blanks where no reading; the time left in the one format
+    of the alerts, an interval that rounds to one value shown once, an open end in words."""
+    from thermeta.daemon.views.board import Row
+
     assert sparkline([0, 1, 2, 3, 4, 5, 6, 7], None, 8) == "▁▂▃▄▅▆▇█"
     assert sparkline([math.nan, 1.0], None, 2)[0] == " "
-    assert [short_duration(s) for s in (45, 2520, 11100, 200000, None)] == [
-        "45s",
-        "42m",
-        "3h05",
-        "2d7h",
-        "∞",
+    r = Row(item="x", state="approaching", eta_s=4500.0, eta_lo_s=4490.0, eta_hi_s=4510.0)
+    assert (due_text(r), range_text(r)) == ("1 h 15 min", "1 h 15 min")
+    r = Row(item="x", state="approaching", eta_s=600.0, eta_lo_s=0.0, eta_hi_s=None)
+    assert range_text(r) == "under 1 min or later"
+    assert due_text(Row(item="x", state="crossed", eta_s=0.0)) == "past it"
+    # a slow feed reads as its rate per minute, never "0.0 readings/s"
+    assert [rate_text(v) for v in (12.5, 0.05, None)] == [
+        "12.5 readings/s",
+        "3.0 readings/min",
+        "- readings/s",
     ]
 
 
@@ -176,10 +195,13 @@ def test_watch_prints_plain_lines_when_not_a_terminal(tmp_path):
     assert out.returncode == 0, out.stderr
     lines = out.stdout.splitlines()
     assert "\x1b[" not in out.stdout
-    assert lines[1].startswith("kitchen/blast-2 crossed now 22.5 C limit 21.0")
+    assert lines[2].startswith("kitchen/blast-2 ✖ crossed now 22.5 °C")
     assert any(
-        line.startswith("trailer-4 approaching") and "eta 42m [27m-68m]" in line for line in lines
+        line.startswith("trailer-4 ▲ approaching")
+        and "due 42 min (90 %: 27 min to 1 h 08 min)" in line
+        for line in lines
     )
+    assert not any(" C " in line for line in lines)
 
 
 # -- a real terminal -------------------------------------------------------------------------

@@ -5,6 +5,7 @@ with STARTTLS and with implicit TLS, a real program for exec, and Mosquitto read
 from __future__ import annotations
 
 import email
+import email.header
 import json
 import ssl
 import subprocess
@@ -353,7 +354,8 @@ def test_email_starttls_login_and_png_attachment(tmp_path, monkeypatch):
     assert inbox.logins[0] == ("ops", "pw-123")
     assert len(inbox.messages) == 1
     msg = inbox.messages[0]
-    assert msg["Subject"] == "[thermeta] trailer-4 approaching"
+    subject = str(email.header.make_header(email.header.decode_header(msg["Subject"])))
+    assert subject == "trailer-4: may cross -15.0 °C in about 42 min"
     assert msg["To"] == "ops@yard.example"
     parts = list(msg.walk())
     text = [p for p in parts if p.get_content_type() == "text/plain"][0]
@@ -442,7 +444,8 @@ def test_email_through_the_alert_service_attaches_the_items_curve(tmp_path):
         ctl.stop()
         store.close()
     msg = inbox.messages[0]
-    assert msg["Subject"] == "[thermeta] trailer-4 crossed"
+    subject = str(email.header.make_header(email.header.decode_header(msg["Subject"])))
+    assert subject.startswith("trailer-4: above -15.0 °C, ")
     att = [p for p in msg.walk() if p.get_content_type() == "image/png"]
     assert len(att) == 1
     got = att[0].get_payload(decode=True)

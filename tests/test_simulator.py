@@ -125,7 +125,7 @@ def test_cli_print_config_and_bad_arguments(tmp_path):
         timeout=60,
     )
     assert ok.returncode == 0
-    assert "crosses 20 degC" in ok.stdout
+    assert "crosses 20 °C" in ok.stdout
     (tmp_path / "c.toml").write_text(ok.stdout)
     assert load_config(tmp_path / "c.toml").items[0].name.endswith("/wort")
     bad = subprocess.run(run + ["--speed", "0"], capture_output=True, text=True, timeout=60)

@@ -112,7 +112,8 @@ def test_status_and_the_dashboard_show_each_level(tmp_path):
     console.print(render(board, 80, 24))
     frame = console.file.getvalue()
     assert "▲ late" in frame and "└ stage-1" in frame and "└ high" in frame
-    assert " by " in frame and "left" in frame  # a deadline beside the ETA; the budget left
+    # a target's deadline with the chance of making it; a limit's allowance
+    assert " by " in frame and "% chance" in frame and "allowance used up" in frame
     lines = plain_lines(board)
-    assert any(ln.startswith("  stage-2 target 5.0 ") for ln in lines), lines
+    assert any(ln.startswith("  stage-2 target 5 °C heading due ") for ln in lines), lines
     store.close()

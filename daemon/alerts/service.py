@@ -104,6 +104,7 @@ class AlertService:
                         unit=cfg.unit,
                         silence_s=cfg.silence_s,
                         site=cfg.site,
+                        what_to_do=cfg.what_to_do,
                     )
                     for ev in events
                 ]

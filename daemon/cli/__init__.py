@@ -1,7 +1,7 @@
 """The ``thermeta`` command line: one sub-command per module, imported only when used.
 
-Each command module exposes ``add_arguments(parser)`` and ``run(args) -> int`` (the exit code).
-Exit codes: 0 success, 1 runtime failure, 2 bad input or bad configuration.
+Each command module exposes ``add_arguments(parser)`` and ``run(args) -> int`` (the exit code,
+one of :data:`EXIT_CODES`).
 """
 
 from __future__ import annotations
@@ -9,6 +9,7 @@ from __future__ import annotations
 import argparse
 import importlib
 import os
+import re
 import sys
 
 # name -> (module, one-line help)
@@ -32,11 +33,36 @@ COMMANDS: dict[str, tuple[str, str]] = {
 }
 
 
+# Every exit code a command returns, and what it means (the README's table is this one).
+EXIT_CODES: dict[int, str] = {
+    0: "done",
+    1: "could not be done as things stand: the store could not be opened or holds nothing "
+    "for it yet, the service could not start, nothing to act on (ack with no open incident, "
+    "end with no open episode, plot with no readings)",
+    2: "a bad config, argument or input file (each problem named as FILE:LINE: key: problem)",
+    130: "interrupted (Ctrl-C)",
+    141: "the output was closed early (a pipe into head)",
+}
+
+
+def version() -> str:
+    from importlib.metadata import PackageNotFoundError
+    from importlib.metadata import version as dist_version
+
+    try:
+        return dist_version("thermeta")
+    except PackageNotFoundError:
+        return "unknown (not installed)"
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="thermeta",
         description="Forecast when warming or cooling items will cross their temperature limits.",
+        epilog="exit codes: "
+        + "; ".join(f"{code} {re.split(r': | [(]', text)[0]}" for code, text in EXIT_CODES.items()),
     )
+    parser.add_argument("--version", action="version", version=f"thermeta {version()}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     for name, (module_name, help_text) in COMMANDS.items():
         p = sub.add_parser(name, help=help_text, description=help_text)

@@ -13,14 +13,17 @@ if TYPE_CHECKING:  # the commands import these only when they run
 def load_config_or_report(path: str) -> Config | None:
     """The validated config, or None after printing each problem as ``FILE:LINE: key: problem``."""
     from thermeta.daemon.config import load_config
+    from thermeta.daemon.timefmt import use_zone
     from thermeta.storage.errors import ConfigError
 
     try:
-        return load_config(path)
+        cfg = load_config(path)
     except ConfigError as exc:
         for line in exc.problems:
             print(line, file=sys.stderr)
         return None
+    use_zone(cfg.timezone)  # every clock time the command prints is in the site's zone
+    return cfg
 
 
 def open_store(cfg: Config, command: str) -> Store | None:

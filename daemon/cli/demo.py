@@ -186,7 +186,12 @@ def _run(args: argparse.Namespace, workdir: Path) -> int:
         config = load_config(cfg_path)
         print(
             f"thermeta demo: {scenario.title}, {len(scenario.loads)} items, at {args.speed:g}x, "
-            f"using {where}; store, config and log in {workdir}",
+            f"using {where}; "
+            + (
+                f"store, config and log in {workdir}"
+                if args.keep
+                else "a temporary store, config and log, removed at the end (--keep DIR keeps them)"
+            ),
             file=out,
             flush=True,
         )
@@ -238,6 +243,7 @@ def _run(args: argparse.Namespace, workdir: Path) -> int:
         if sim.stats.error:
             print(f"thermeta demo: simulator: {sim.stats.error}", file=sys.stderr)
             return 1
+        recorder.echo = False  # the closing summary is the last thing printed
         summary = recorder.summary()
         if lines:
             print_summary(summary, out)

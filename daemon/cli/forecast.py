@@ -48,23 +48,22 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def summary(fc, unit: str, source: str) -> str:
     """The forecast in words; ``fc`` is in degC, shown in ``unit``."""
-    from thermeta.daemon.timefmt import human_duration, local_clock
+    from thermeta.daemon.timefmt import clock, duration, span
     from thermeta.daemon.units import to_item_units
 
     u = UNIT_SIGN[unit]
     d = to_item_units(fc.to_dict(), unit)
+    now = None  # clock times carry their date unless they fall on today
     lines = [f"{source}: {d['n_points']} readings, {d['model']} model, ambient {d['ambient_mode']}"]
     if d["value_now"] is not None:
-        lines.append(
-            f"  now {d['value_now']:.1f} {u} (last reading {local_clock(fc.t_last, True)})"
-        )
+        lines.append(f"  now {d['value_now']:.1f} {u} (last reading {clock(fc.t_last, now)})")
     if not fc.ok:
         lines.append(f"  no forecast: {fc.reason}")
     else:
         if d["ambient"] is not None:
             band = ""
             if d["ambient_lo"] is not None and d["ambient_hi"] is not None:
-                band = f" (90 %: {d['ambient_lo']:.1f} to {d['ambient_hi']:.1f})"
+                band = f" (90 %: {d['ambient_lo']:.1f} to {d['ambient_hi']:.1f} {u})"
             lines.append(
                 f"  {fc.direction or 'moving'} toward an ambient of {d['ambient']:.1f} {u}{band}"
             )
@@ -74,17 +73,18 @@ def summary(fc, unit: str, source: str) -> str:
         elif d["eta_s"] == 0:
             lines.append(f"  already past {thr}")
         else:
-            lo, hi = human_duration(d["eta_lo_s"]), d["eta_hi_s"]
-            hi_text = human_duration(hi) if hi is not None else "no upper bound"
             lines.append(
-                f"  crosses {thr} in {human_duration(d['eta_s'])} "
-                f"(90 %: {lo} to {hi_text}), at {local_clock(fc.crossing_t, True)}"
+                f"  crosses {thr} in {duration(d['eta_s'])} "
+                f"(90 %: {span(d['eta_lo_s'], d['eta_hi_s'])}), at {clock(fc.crossing_t, now)}"
             )
         if d["time_constant_s"]:
+            # the half-cooling time is the trade's word for a cooling item; a warming one
+            # closes half its gap to the ambient in the same time
+            half = "half-cooling time" if fc.direction == "falling" else "half the gap closes in"
             lines.append(
-                f"  time constant {human_duration(d['time_constant_s'])}, half-cooling time "
-                f"{human_duration(d['half_cooling_s'])}, seven-eighths "
-                f"{human_duration(d['seven_eighths_cooling_s'])}"
+                f"  time constant {duration(d['time_constant_s'])}, {half} "
+                f"{duration(d['half_cooling_s'])}, seven-eighths in "
+                f"{duration(d['seven_eighths_cooling_s'])}"
                 + (f", Biot number {d['biot']:.2f}" if d["biot"] is not None else "")
             )
     for w in d["warnings"]:

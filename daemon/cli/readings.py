@@ -10,8 +10,15 @@ import sys
 def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("item", metavar="ITEM", help="the item's name (as in thermeta status)")
     p.add_argument("--config", required=True, metavar="FILE", help="the TOML config")
-    p.add_argument("--since", metavar="RFC3339", help="only readings at or after this time")
-    p.add_argument("--until", metavar="RFC3339", help="only readings at or before this time")
+    p.add_argument(
+        "--since",
+        metavar="TIME",
+        help="only readings at or after this time: RFC 3339, epoch seconds, or a date "
+        "(YYYY-MM-DD: that day's start in the site's zone)",
+    )
+    p.add_argument(
+        "--until", metavar="TIME", help="only readings at or before this time (a date: its end)"
+    )
     p.add_argument(
         "--unit", choices=["C", "F", "K"], help="unit of the values (default: the item's)"
     )
@@ -20,7 +27,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def run(args: argparse.Namespace) -> int:
     from thermeta.daemon.cli.common import load_config_or_report, open_store
-    from thermeta.daemon.timefmt import parse_time
+    from thermeta.daemon.timefmt import parse_since
     from thermeta.daemon.units import from_celsius
     from thermeta.predictors.result import rfc3339
 
@@ -32,7 +39,7 @@ def run(args: argparse.Namespace) -> int:
         text = getattr(args, key)
         if text is not None:
             try:
-                bounds[key] = parse_time(text)
+                bounds[key] = parse_since(text, end=key == "until")
             except ValueError as exc:
                 print(f"thermeta readings: --{key}: {exc}", file=sys.stderr)
                 return 2

@@ -23,8 +23,15 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("item", metavar="ITEM", help="the item")
     p.add_argument("--config", required=True, metavar="FILE", help="the TOML config")
     p.add_argument("--episode", type=int, metavar="ID", help="one episode (see thermeta status)")
-    p.add_argument("--since", metavar="TIME", help="start of the span: RFC 3339 or epoch seconds")
-    p.add_argument("--until", metavar="TIME", help="end of the span (default: now)")
+    p.add_argument(
+        "--since",
+        metavar="TIME",
+        help="start of the span: RFC 3339, epoch seconds, or a date (YYYY-MM-DD: that day's "
+        "start in the site's zone)",
+    )
+    p.add_argument(
+        "--until", metavar="TIME", help="end of the span (a date: its end; default: now)"
+    )
     p.add_argument("--out", required=True, metavar="FILE", help="FILE.pdf, FILE.csv or FILE.json")
 
 
@@ -80,7 +87,7 @@ def run(args: argparse.Namespace) -> int:
     import time
 
     from thermeta.daemon.cli.common import load_config_or_report, open_store
-    from thermeta.daemon.timefmt import parse_time
+    from thermeta.daemon.timefmt import parse_since
     from thermeta.daemon.views.record import gather
     from thermeta.storage.errors import InputError
 
@@ -94,17 +101,17 @@ def run(args: argparse.Namespace) -> int:
     if args.episode is not None and (args.since or args.until):
         print("thermeta report: give --episode or --since/--until, not both", file=sys.stderr)
         return 2
+    cfg = load_config_or_report(args.config)  # first: a date in --since is in the site's zone
+    if cfg is None:
+        return 2
     span: dict[str, float | None] = {}
     for key in ("since", "until"):
         text = getattr(args, key)
         try:
-            span[key] = None if text is None else parse_time(text)
+            span[key] = None if text is None else parse_since(text, end=key == "until")
         except ValueError as exc:
             print(f"thermeta report: --{key}: {exc}", file=sys.stderr)
             return 2
-    cfg = load_config_or_report(args.config)
-    if cfg is None:
-        return 2
     store = open_store(cfg, "report")
     if store is None:
         return 1

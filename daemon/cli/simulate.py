@@ -55,7 +55,7 @@ def run(args: argparse.Namespace) -> int:
     from thermeta.daemon.clock import ScaledClock
     from thermeta.daemon.simulation.scenarios import build
     from thermeta.daemon.simulation.simulator import Simulator, config_text, truth_lines
-    from thermeta.daemon.timefmt import human_duration
+    from thermeta.daemon.timefmt import duration
 
     if not args.speed > 0 or args.speed > 100_000:
         print(
@@ -118,7 +118,7 @@ def run(args: argparse.Namespace) -> int:
                 st = sim.stats
                 print(
                     f"published {st.published}/{st.total} payloads ({st.readings} readings), "
-                    f"simulated +{human_duration(clock.now() - start)}",
+                    f"simulated +{duration(clock.now() - start)}",
                     flush=True,
                 )
     except KeyboardInterrupt:

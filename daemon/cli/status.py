@@ -119,7 +119,7 @@ def collect(cfg: Any, store: Any, now: float) -> dict[str, Any]:
 def _eta_text(r: dict[str, Any], now: float) -> str:
     from thermeta.daemon.alerts.rules import remaining_s
     from thermeta.daemon.states import ItemState
-    from thermeta.daemon.timefmt import human_duration, parse_time
+    from thermeta.daemon.timefmt import clock, duration, parse_time, span
 
     if r["state"] == ItemState.CROSSED:
         return "past the threshold"
@@ -127,13 +127,17 @@ def _eta_text(r: dict[str, Any], now: float) -> str:
         return str(r["state"])
     if r["crossing_at"] is None:
         return "-"
-    left = parse_time(r["crossing_at"]) - now
-    text = f"in {human_duration(left)}" if left > 0 else "due now"
+    due = parse_time(r["crossing_at"])
+    if due <= now:
+        # the forecast's time has come without a reading saying what happened
+        return f"was due at {clock(due, now)}, no reading since"
+    # the point and both ends count from now the same way (from the newest reading, less the
+    # time since it), so the point always lies inside its interval
+    text = f"in {duration(remaining_s(r, 'eta_s', now))}"
     if r["eta_lo_s"] is not None or r["eta_hi_s"] is not None:
         # the forecast's interval counts from its newest reading; the line counts from now
         lo, hi = remaining_s(r, "eta_lo_s", now), remaining_s(r, "eta_hi_s", now)
-        hi_text = human_duration(hi) if hi is not None else "open"
-        text += f" (90 %: {human_duration(lo)} to {hi_text})"
+        text += f" (90 %: {span(lo, hi)})"
     return text
 
 
@@ -141,7 +145,7 @@ def run(args: argparse.Namespace) -> int:
     import time
 
     from thermeta.daemon.cli.common import load_config_or_report, open_store
-    from thermeta.daemon.timefmt import human_duration, parse_time
+    from thermeta.daemon.timefmt import clock, duration, parse_time
     from thermeta.daemon.units import UNIT_SIGN
 
     cfg = load_config_or_report(args.config)
@@ -166,15 +170,17 @@ def run(args: argparse.Namespace) -> int:
             f"{d['readings_per_s'] or 0:.1f} readings/s"
         )
     else:
-        head = f"daemon not running (last heartbeat {d['heartbeat_at'] or 'never'})"
+        beat = d["heartbeat_at"]
+        seen = clock(parse_time(beat), now) if beat else "never"
+        head = f"daemon not running (last heartbeat {seen})"
     last = info["last_refit_at"]
-    ago = f" ({human_duration(now - parse_time(last))} ago)" if last else ""
+    ago = f"{clock(parse_time(last), now)} ({duration(now - parse_time(last))} ago)" if last else ""
     print(head)
     print(
         f"items {info['items']}, readings {info['readings']}, dead letters {info['dead_letters']}, "
-        f"last refit {last or 'never'}{ago}"
+        f"last refit {ago or 'never'}"
     )
-    rows = [("ITEM", "STATE", "NOW", "THRESHOLD", "CROSSING")]
+    rows = [("ITEM", "STATE", "NOW", "LEVEL", "DUE")]
     for r in info["per_item"]:
         u = UNIT_SIGN.get(r["unit"], r["unit"])
         rows.append(
@@ -201,13 +207,14 @@ def run(args: argparse.Namespace) -> int:
 def _detail_lines(r: dict[str, Any], now: float) -> list[str]:
     """Under an item: each level with more than a plain limit to tell, the open episode, the
     rolling period's figures."""
-    from thermeta.daemon.timefmt import human_duration, local_clock, parse_time
+    from thermeta.daemon.timefmt import duration, local_clock, parse_time, span
     from thermeta.daemon.units import UNIT_SIGN
 
     u = UNIT_SIGN.get(r["unit"], r["unit"])
     out = []
     levels = r.get("levels") or []
     made = parse_time(r["updated_at"]) if r.get("updated_at") else now
+    since = max(0.0, now - made)  # a level's times count from its refit (never from the future)
     for lv in levels:
         if len(levels) == 1 and lv.get("kind") == "limit" and not lv.get("budget"):
             break
@@ -215,13 +222,13 @@ def _detail_lines(r: dict[str, Any], now: float) -> list[str]:
         head = f"{lv['name']}: {lv['kind']} {lv['threshold']:g} {u} ({side}), {lv['state']}"
         eta = lv.get("eta_s")
         if eta is not None and lv["state"] not in ("reached", "missed", "crossed"):
-            left = eta - (now - made)
+            left = max(0.0, eta - since)
             hi = lv.get("eta_hi_s")
-            head += f", forecast in {human_duration(left)}"
+            head += f", forecast in {duration(left)}"
             if lv.get("eta_lo_s") is not None or hi is not None:
-                lo = human_duration((lv.get("eta_lo_s") or 0) - (now - made))
-                hi_t = "open" if hi is None else human_duration(hi - (now - made))
-                head += f" (90 %: {lo} to {hi_t})"
+                lo = max(0.0, (lv.get("eta_lo_s") or 0) - since)
+                hi_left = None if hi is None else max(0.0, hi - since)
+                head += f" (90 %: {span(lo, hi_left)})"
         if lv.get("deadline_at_s") is not None:
             head += f", deadline {local_clock(lv['deadline_at_s'], True)}"
             if lv["state"] == "reached":
@@ -233,7 +240,7 @@ def _detail_lines(r: dict[str, Any], now: float) -> list[str]:
         b = lv.get("budget")
         if b:
             head += (
-                f"; budget {human_duration(b['used_s'])} of {human_duration(b['allowed_s'])} "
+                f"; budget {duration(b['used_s'])} of {duration(b['allowed_s'])} "
                 f"used ({b['over']}), {b['state']}"
             )
             if b.get("runs_out_at") and b["state"] != "used_up":
@@ -253,9 +260,9 @@ def _detail_lines(r: dict[str, Any], now: float) -> list[str]:
     p = r.get("period")
     if p and any(v["beyond_s"] > 0 for v in (p.get("beyond") or {}).values()):
         parts = [
-            f"{k}: {human_duration(v['beyond_s'])} beyond, {v['degree_minutes']:.1f} {u}·min"
+            f"{k}: {duration(v['beyond_s'])} beyond, {v['degree_minutes']:.1f} {u}·min"
             for k, v in p["beyond"].items()
         ]
         mkt = "" if p.get("mkt") is None else f"; mean kinetic temperature {p['mkt']:.2f} {u}"
-        out.append(f"last {human_duration(p['period_s'])}: " + "; ".join(parts) + mkt)
+        out.append(f"last {duration(p['period_s'])}: " + "; ".join(parts) + mkt)
     return out

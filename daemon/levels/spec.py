@@ -37,8 +37,9 @@ class Level:
 
     def deadline(self, episode_start_s: float | None, now_s: float) -> float | None:
         """The deadline (epoch s) in this episode, or None: ``within`` counts from the episode's
-        start (none open: no deadline yet); ``by`` "HH:MM" is the first such local time at or
-        after the episode's start (none open: today's), an RFC 3339 ``by`` is that moment."""
+        start (none open: no deadline yet); ``by`` "HH:MM" is the first such time (in the site's
+        zone) at or after the episode's start (none open: today's), an RFC 3339 ``by`` is that
+        moment."""
         if self.within_s is not None:
             return None if episode_start_s is None else episode_start_s + self.within_s
         if self.by is None:
@@ -47,7 +48,9 @@ class Level:
         if ":" in text and len(text) <= 5:
             hh, mm = (int(x) for x in text.split(":"))
             anchor = now_s if episode_start_s is None else episode_start_s
-            local = datetime.fromtimestamp(anchor, tz=UTC).astimezone()
+            from thermeta.daemon.timefmt import zone
+
+            local = datetime.fromtimestamp(anchor, tz=UTC).astimezone(zone())
             due = local.replace(hour=hh, minute=mm, second=0, microsecond=0)
             if episode_start_s is not None and due.timestamp() < episode_start_s:
                 due += timedelta(days=1)

@@ -13,7 +13,7 @@ import socket
 from pathlib import Path
 from typing import Annotated, ClassVar, Literal
 
-from pydantic import AfterValidator, Field, ValidationInfo, field_validator
+from pydantic import AfterValidator, BeforeValidator, Field, ValidationInfo, field_validator
 from thermeta.daemon.settings.checks import (
     Bool,
     Checks,
@@ -25,8 +25,9 @@ from thermeta.daemon.settings.checks import (
     Text,
     env_problem,
     problem,
+    show,
 )
-from thermeta.daemon.states import Model
+from thermeta.daemon.states import Event, Model
 
 DEFAULT_STORE_URL = "sqlite:///thermeta.db"
 
@@ -50,6 +51,23 @@ def _no_wildcards(topic: str) -> str:
     if any(ch in topic for ch in "+#"):
         raise problem("must not contain the wildcards + or #")
     return topic
+
+
+def _what_to_do(v: object) -> str | dict[str, str]:
+    """One line for every warning, or a table of lines by event (``crossed = "..."``)."""
+    if isinstance(v, str):
+        if not v.strip():
+            raise problem("must not be empty")
+        return v.strip()
+    if isinstance(v, dict) and v:
+        events = [str(e) for e in Event]
+        for key, text in v.items():
+            if key not in events:
+                raise problem(f"unknown event {show(key)} (events: {', '.join(events)})")
+            if not isinstance(text, str) or not text.strip():
+                raise problem(f"{key}: must be a line of text")
+        return {k: t.strip() for k, t in v.items()}
+    raise problem('must be a line of text, or a table of lines by event (crossed = "...")')
 
 
 Port = Annotated[Int, AfterValidator(_port)]
@@ -178,6 +196,8 @@ class AlertRules(Table):
     # A new approaching or crossed waits until its condition has held this long (an alarm delay:
     # an air probe by a busy door passes its limit for minutes at a time); 0: at once.
     delay_s: NonNegative = Field(0.0, validation_alias="delay")
+    # What the operator should do, as the alert's last line: one line, or lines by event.
+    what_to_do: Annotated[str | dict[str, str], BeforeValidator(_what_to_do)] | None = None
 
 
 class AlertDefaults(AlertRules):

@@ -13,7 +13,7 @@ import paho.mqtt.client as mqtt
 from thermeta.daemon.levels.judge import remaining_s
 from thermeta.daemon.refit.rounds import ForecastUpdate
 from thermeta.daemon.states import ItemState
-from thermeta.daemon.timefmt import human_duration, local_clock, parse_time
+from thermeta.daemon.timefmt import clock, duration, local_clock, parse_time, span
 from thermeta.daemon.units import UNIT_SIGN
 
 HORIZON_S = 86400.0  # forecasts further out than the items' horizon are not counted as ahead
@@ -75,17 +75,14 @@ class Recorder:
             # the forecast counts from its newest reading; the line counts from now
             ahead = t_last - now
             lo, hi = d.get("eta_lo_s"), d.get("eta_hi_s")
-            if hi is None:
-                hi_text = "no upper bound"
-            elif hi > 30 * 86400:
-                hi_text = "beyond 30 d"
-            else:
-                hi_text = human_duration(hi + ahead)
-            band = f"{human_duration(None if lo is None else lo + ahead)} to {hi_text}"
+            band = span(
+                None if lo is None else max(0.0, lo + ahead),
+                None if hi is None or hi > 30 * 86400 else max(0.0, hi + ahead),
+            )
             verb = "reaches" if d.get("kind") == "target" else "crosses"
             parts.append(
-                f"{verb} {d.get('threshold'):g} {unit} at {local_clock(t_last + eta)} "
-                f"(in {human_duration(t_last + eta - now)}; 90 %: {band})"
+                f"{verb} {d.get('threshold'):g} {unit} at {clock(t_last + eta, now)} "
+                f"(in {duration(t_last + eta - now)}; 90 %: {band})"
             )
         elif d.get("state") == ItemState.STEADY:
             parts.append("no crossing ahead")

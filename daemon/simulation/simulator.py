@@ -274,26 +274,32 @@ def config_text(
 
 def truth_lines(scenario: Scenario) -> list[str]:
     """What really happens, in words: for people comparing forecasts with the truth."""
-    from thermeta.daemon.timefmt import human_duration, local_clock
+    from thermeta.daemon.timefmt import duration, local_clock
+
+    def after(t: float) -> str:
+        return (
+            "at the start"
+            if t - scenario.t_start < 30
+            else f"after {duration(t - scenario.t_start)}"
+        )
 
     out = [
         f"scenario {scenario.name}: {scenario.title}; starts {local_clock(scenario.t_start, True)}"
     ]
     for t, text in scenario.events:
-        out.append(f"  event at +{human_duration(t - scenario.t_start)}: {text}")
+        out.append(f"  event {after(t)}: {text.replace(' degC', ' °C')}")
     for p in scenario.loads:
         c = p.crossing_t_true
         when = (
             "never crosses"
             if c is None
-            else f"crosses {p.spec.threshold:g} degC at +{human_duration(c - scenario.t_start)} "
-            f"({local_clock(c)})"
+            else f"crosses {p.spec.threshold:g} °C {after(c)} ({local_clock(c)})"
         )
         out.append(f"  {p.name}: {when}")
         if "stage1_met" in p.truth:
             ok1 = "met" if p.truth["stage1_met"] else "MISSED"
             ok2 = "met" if p.truth["stage2_met"] else "MISSED"
             out.append(
-                f"    cooling schedule: 57->21 degC within 2 h {ok1}; ->5 degC within 6 h {ok2}"
+                f"    cooling schedule: 57 to 21 °C within 2 h {ok1}; to 5 °C within 6 h {ok2}"
             )
     return out

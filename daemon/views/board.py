@@ -38,6 +38,17 @@ class LevelLine:
 
 
 @dataclass
+class AlertLine:
+    """One of the newest alerts, and how its delivery stands."""
+
+    at: float
+    item: str
+    event: str
+    headline: str
+    delivery: str  # "sent", "waiting", "not sent" (given up), "no hook"
+
+
+@dataclass
 class Row:
     item: str
     state: str
@@ -57,6 +68,8 @@ class Row:
     kind: str = "limit"  # the focus level's
     levels: list[LevelLine] = field(default_factory=list)  # when there is more than one question
     episode: str | None = None  # the open episode: its batch name or number
+    lead_s: float | None = None  # the focus level's lead: inside it, time is short
+    due_passed: bool = False  # the forecast's crossing time has come without a reading
 
     @property
     def urgency(self) -> tuple:
@@ -76,6 +89,7 @@ class Board:
     heartbeat_at: float | None = None
     now: float = 0.0
     alerts_waiting: int = 0  # outbox rows not yet taken by their hook
+    alerts: list[AlertLine] = field(default_factory=list)  # the newest, newest first
 
 
 def service_running(heartbeat: dict[str, Any], now: float) -> bool:
@@ -141,6 +155,8 @@ def collect(
                 kind=str(d.get("kind") or "limit"),
                 levels=level_lines(d, now),
                 episode=_episode_label(d),
+                lead_s=_focus_lead(d),
+                due_passed=_due_passed(d, now),
             )
         )
     return Board(
@@ -154,7 +170,55 @@ def collect(
         heartbeat_at=daemon.get("heartbeat_at"),
         now=now,
         alerts_waiting=waiting,
+        alerts=newest_alerts(store),
     )
+
+
+def _focus_lead(d: dict[str, Any]) -> float | None:
+    for lv in d.get("levels") or []:
+        if lv.get("name") == d.get("focus") and lv.get("lead_s") is not None:
+            return float(lv["lead_s"])
+    return None
+
+
+def _due_passed(d: dict[str, Any], now: float) -> bool:
+    """The forecast crossing time is behind us while no newer reading came."""
+    eta, last = d.get("eta_s"), epoch(d.get("last_reading_at"))
+    return eta is not None and eta > 0 and last is not None and last + eta < now
+
+
+def newest_alerts(store: Any, n: int = 4) -> list[AlertLine]:
+    """The newest ``n`` alerts with their delivery: every hook took it ("sent"), one still
+    trying ("waiting"), one gave up ("not sent"), or no hook wanted it ("no hook")."""
+    from thermeta.storage.alerts import AlertStore, OutboxStatus
+
+    if not store.has_table("alert_events"):
+        return []
+    a = AlertStore(store)
+    events = a.events(limit=n)[::-1]
+    sent = a.deliveries([int(e["id"]) for e in events])
+    out = []
+    for e in events:
+        body = e["body"]
+        states = {status for _, status in sent.get(int(e["id"]), [])}
+        if not states:
+            delivery = "no hook"
+        elif OutboxStatus.FAILED in states:
+            delivery = "not sent"
+        elif OutboxStatus.PENDING in states:
+            delivery = "waiting"
+        else:
+            delivery = "sent"
+        out.append(
+            AlertLine(
+                at=float(e["made_at"]),
+                item=str(e["item"]),
+                event=str(body.get("event", e["level"])),
+                headline=str(body.get("headline") or e["sentence"]),
+                delivery=delivery,
+            )
+        )
+    return out
 
 
 def level_lines(d: dict[str, Any], now: float) -> list[LevelLine]:

@@ -4,15 +4,21 @@
     render(board, width, height)   -> a rich renderable (fresh each frame)
     watch(store, console, ...)     the loop behind ``thermeta watch`` (and ``run --dashboard``)
 
-Items are sorted by urgency (crossed, then the soonest early end of the ETA interval), grouped by
-site or first name/topic level when there are many.  Every state is shown as a symbol and a word;
-colour only repeats it.  When stdout is not a terminal, plain lines are printed instead.
+The look follows the time left, not a ladder of states: a row is plain while the early end of
+its interval is beyond ``lead``; one accent inside ``lead``; reversed colours once past (a limit
+crossed, a target missed); dim when there is no data to judge by (stale, learning, waiting).
+Rows come in that order, soonest first.  The colour never carries meaning alone: every row has
+its state as a symbol and a word, and the time left in words, so the board reads the same on a
+light or a dark terminal and without colour (``NO_COLOR``, which rich honours).  Under the items,
+the newest alerts and whether their hooks took them.  When stdout is not a terminal, plain lines
+are printed instead.
 """
 
 from __future__ import annotations
 
 import math
 import time
+from enum import IntEnum
 from typing import Any, TypedDict
 
 from rich.console import Console, Group, JustifyMethod
@@ -20,31 +26,60 @@ from rich.table import Table
 from rich.text import Text
 from thermeta.daemon.alerts.message import CAUTION, UNIT_SIGN
 from thermeta.daemon.states import ATTENTION, ItemState
-from thermeta.daemon.timefmt import human_duration, local_clock
-from thermeta.daemon.views.board import RANK, Board, LevelLine, Row, collect
+from thermeta.daemon.timefmt import clock, duration, local, local_clock, span
+from thermeta.daemon.views.board import Board, LevelLine, Row, collect
 
-STATE_LOOK: dict[
-    str, tuple[str, str]
-] = {  # symbol, style (colours of our own; the state's word always carries the meaning)
-    ItemState.CROSSED: ("✖", "bold #ff6b6b"),
-    ItemState.MISSED: ("✖", "bold #ff6b6b"),
-    ItemState.APPROACHING: ("▲", "bold #ffb347"),
-    ItemState.LATE: ("▲", "bold #ffb347"),
-    ItemState.SHORT: ("▼", "bold #ffb347"),
-    ItemState.STALE: ("?", "#a0a0d0"),
-    ItemState.LEARNING: ("…", "#9a9a9a"),
-    ItemState.WAITING: ("○", "#9a9a9a"),
-    ItemState.HEADING: ("●", "#6fcf97"),
-    ItemState.STEADY: ("●", "#6fcf97"),
-    ItemState.REACHED: ("✔", "#6fcf97"),
+# each state's symbol: its shape says the same as its word
+SYMBOL: dict[str, str] = {
+    ItemState.CROSSED: "✖",
+    ItemState.MISSED: "✖",
+    ItemState.APPROACHING: "▲",
+    ItemState.LATE: "▲",
+    ItemState.SHORT: "▼",
+    ItemState.STALE: "?",
+    ItemState.LEARNING: "…",
+    ItemState.WAITING: "○",
+    ItemState.HEADING: "●",
+    ItemState.STEADY: "●",
+    ItemState.REACHED: "✔",
 }
-HOT = (
-    ItemState.CROSSED,
-    ItemState.MISSED,
-    ItemState.APPROACHING,
-    ItemState.LATE,
-    ItemState.SHORT,
-)
+
+
+class Look(IntEnum):
+    """How much a row asks of the operator now, by the time left (the board's order)."""
+
+    PAST = 0  # a limit crossed, a target missed, an allowance used up
+    SOON = 1  # the early end of the interval (or the deadline's risk) inside lead
+    NO_DATA = 2  # nothing to judge by: stale, learning, waiting
+    CALM = 3  # plenty of time, or good news
+
+
+ACCENT = "magenta"  # the one colour: readable on light and dark terminals
+STYLE = {
+    Look.PAST: "reverse bold",
+    Look.SOON: f"bold {ACCENT}",
+    Look.NO_DATA: "dim",
+    Look.CALM: "",
+}
+PAST_STATES = (ItemState.CROSSED, ItemState.MISSED)
+SOON_STATES = (ItemState.APPROACHING, ItemState.LATE, ItemState.SHORT)
+NO_DATA_STATES = (ItemState.STALE, ItemState.LEARNING, ItemState.WAITING)
+
+
+def look(r: Row | LevelLine, lead_s: float | None = None) -> Look:
+    """The row's look from its time left (its state is decided by the same tests)."""
+    if r.state in PAST_STATES or getattr(r, "budget_state", None) == "used_up":
+        return Look.PAST
+    if r.state in SOON_STATES or getattr(r, "budget_state", None) == "running_out":
+        return Look.SOON
+    if r.state in NO_DATA_STATES:
+        return Look.NO_DATA
+    lead = lead_s if lead_s is not None else getattr(r, "lead_s", None)
+    early = r.eta_lo_s if r.eta_s is not None else None
+    near = early is not None and lead is not None and early <= lead
+    if near and r.kind == "limit" and r.state == ItemState.STEADY:
+        return Look.SOON  # a crossing past the horizon whose early end is near
+    return Look.CALM
 
 
 class ViewState(TypedDict):
@@ -57,6 +92,9 @@ class ViewState(TypedDict):
 
 SPARK = "▁▂▃▄▅▆▇█"
 GROUP_WHEN_MORE_THAN = 10
+ALERT_LINES = 3  # the newest alerts under the items, when there is room
+NARROW_DUE = 24  # a narrow screen's one time column
+NOTE_ROOM = 27  # a wide screen's interval column, where a level's deadline or allowance goes
 
 
 def sparkline(values: list[float], threshold: float | None, width: int) -> str:
@@ -74,133 +112,199 @@ def sparkline(values: list[float], threshold: float | None, width: int) -> str:
     lo, hi = min(finite), max(finite)
     if threshold is not None and abs(threshold - hi) < 3 * (hi - lo + 1e-9):
         lo, hi = min(lo, threshold), max(hi, threshold)
-    span = hi - lo or 1.0
+    span_ = hi - lo or 1.0
     return "".join(
-        " " if not math.isfinite(v) else SPARK[min(7, int((v - lo) / span * 7.999))] for v in vals
+        " " if not math.isfinite(v) else SPARK[min(7, int((v - lo) / span_ * 7.999))] for v in vals
     )
 
 
-def short_duration(s: float | None) -> str:
-    """Compact countdown: 45s, 42m, 3h05, 2d4h; '∞' for unbounded."""
-    if s is None or not math.isfinite(s):
-        return "∞"
-    s = max(0.0, s)
-    if s < 90:
-        return f"{s:.0f}s"
-    if s < 5400:
-        return f"{s / 60:.0f}m"
-    h, m = divmod(int(round(s / 60)), 60)
-    if h < 48:
-        return f"{h}h{m:02d}"
-    d, h = divmod(h, 24)
-    return f"{d}d{h}h"
-
-
-def eta_text(r: Row | LevelLine) -> str:
+def due_text(r: Row | LevelLine) -> str:
+    """When the level is due, in words: the point forecast, or why there is none."""
     if r.state == ItemState.CROSSED:
-        return "past limit"
-    if r.state in (ItemState.REACHED, ItemState.MISSED, ItemState.WAITING):
-        return str(r.state)
+        return "past it"
+    if r.state == ItemState.MISSED:
+        return "missed"
+    if r.state == ItemState.REACHED:
+        return "reached"
+    if r.state == ItemState.WAITING:
+        return "not started"
+    if getattr(r, "due_passed", False):
+        return "was due"
+    if r.state == ItemState.SHORT:
+        return "never"
     if r.eta_s is None:
-        return "none" if r.state in (ItemState.STEADY, ItemState.SHORT) else "-"
-    text = short_duration(r.eta_s)
-    if r.eta_lo_s is not None or r.eta_hi_s is not None:
-        text += f" [{short_duration(r.eta_lo_s)}-{short_duration(r.eta_hi_s)}]"
-    return text
+        return "no crossing" if r.state == ItemState.STEADY else "-"
+    return duration(r.eta_s)
+
+
+def range_text(r: Row | LevelLine) -> str:
+    """The 90 % interval of the time left ('35 to 50 min', '4 min or later'), where one is."""
+    if due_text(r) != duration(r.eta_s) or r.eta_lo_s is None:
+        return ""
+    return span(r.eta_lo_s, r.eta_hi_s)
+
+
+def when_text(r: Row | LevelLine) -> str:
+    """The narrow screen's one cell: the interval when there is one, else the point or word."""
+    return range_text(r) or due_text(r)
+
+
+def deadline_clock(at: float, now: float) -> str:
+    """A deadline in few characters: '16:30' today, 'Sat 02:11' on another day (the site's zone)."""
+    same_day = local(at).date() == local(now).date()
+    return local_clock(at) if same_day else local(at).strftime("%a ") + local_clock(at)
 
 
 def level_note(lv: LevelLine, now: float) -> str:
-    """What a level waits for besides its ETA: its deadline and chance, or its budget."""
+    """What a level waits for besides its time: its deadline and chance, or its budget."""
     parts = []
     if lv.deadline_s is not None:
-        parts.append(f"by {local_clock(now + lv.deadline_s)}")
+        text = f"by {deadline_clock(now + lv.deadline_s, now)}"
         if lv.chance is not None and lv.state not in (ItemState.REACHED, ItemState.MISSED):
-            parts.append(f"{100 * lv.chance:.0f} %")
-    if lv.budget_left_s is not None:
-        text = f"budget {short_duration(lv.budget_left_s)} left"
-        if lv.budget_out_s is not None and lv.budget_left_s > 0:
-            text += f", out in {short_duration(lv.budget_out_s)}"
+            text += f", {100 * lv.chance:.0f} % chance"
         parts.append(text)
-    return " ".join(parts)
+    if lv.budget_left_s is not None:
+        text = f"allowance {duration(lv.budget_left_s)} left"
+        out = f", out in {duration(lv.budget_out_s)}" if lv.budget_out_s is not None else ""
+        if lv.budget_left_s > 0 and len(text + out) <= NOTE_ROOM:
+            text += out
+        parts.append(text)
+    return "; ".join(parts)
 
 
-def narrow_level(lv: LevelLine, now: float) -> tuple[str, str]:
-    """A level's ETA cell and note on a narrow screen: "2h20 by 19:33" and "3 %", or the ETA
-    and "32m left" of a budget."""
-    eta = eta_text(lv)
+def narrow_level(lv: LevelLine, now: float) -> str:
+    """A level's one cell on a narrow screen: its deadline and chance ('by 16:30, 3 % chance'),
+    its allowance ('allowance 32 min left', 'allowance used up'), or its time left."""
     if lv.deadline_s is not None:
-        when = eta if lv.state in (ItemState.REACHED, ItemState.MISSED) else eta.split(" [")[0]
-        eta = f"{when} by {local_clock(now + lv.deadline_s)}"
-    note = ""
-    if lv.chance is not None and lv.state not in (ItemState.REACHED, ItemState.MISSED):
-        note = f"{100 * lv.chance:.0f} %"
-    elif lv.budget_left_s is not None:
-        note = f"{short_duration(lv.budget_left_s)} left"
-    return eta, note
+        text = f"by {deadline_clock(now + lv.deadline_s, now)}"
+        if lv.chance is not None and lv.state not in (ItemState.REACHED, ItemState.MISSED):
+            text += f", {100 * lv.chance:.0f} % chance"
+        return text if len(text) <= NARROW_DUE else text[: -len(" chance")]
+    if lv.budget_left_s is not None:
+        if lv.budget_state == "used_up" or lv.budget_left_s <= 0:
+            return "allowance used up"
+        return f"allowance {duration(lv.budget_left_s)} left"
+    return when_text(lv)
 
 
-def _num(v: float | None, fmt: str = "{:.1f}") -> str:
-    return "-" if v is None else fmt.format(v)
+def temp(v: float | None, unit: str, fmt: str = "{:.1f}") -> str:
+    """A temperature with its unit sign, '-' when unknown."""
+    return "-" if v is None else f"{fmt.format(v)} {UNIT_SIGN.get(unit, unit)}"
+
+
+def level_text(threshold: float | None, unit: str, kind: str) -> str:
+    """'8 °C' for a limit, 'to 22 °C' for a target."""
+    if threshold is None:
+        return "-"
+    return ("to " if kind == "target" else "") + temp(threshold, unit, "{:g}")
 
 
 def _arrow(trend: float | None) -> str:
     if trend is None:
-        return "·"
-    return "↑" if trend > 0.05 else ("↓" if trend < -0.05 else "→")
+        return ""
+    return " ↑" if trend > 0.05 else (" ↓" if trend < -0.05 else " →")
+
+
+def now_text(r: Row) -> str:
+    return "no data" if r.value is None else temp(r.value, r.unit) + _arrow(r.trend_per_h)
+
+
+def order_key(r: Row) -> tuple:
+    soon = r.eta_lo_s if r.eta_lo_s is not None and r.eta_s is not None else r.eta_s
+    return (look(r), math.inf if soon is None else soon, r.item)
 
 
 def visible(board: Board, text_filter: str = "", attention_only: bool = False) -> list[Row]:
     rows = [r for r in board.rows if text_filter.lower() in r.item.lower()]
     if attention_only:
-        rows = [r for r in rows if r.state in ATTENTION or r.alert]
-    return sorted(rows, key=lambda r: r.urgency)
+        rows = [r for r in rows if r.state in ATTENTION or r.alert or look(r) <= Look.SOON]
+    return sorted(rows, key=order_key)
+
+
+def rate_text(per_s: float | None) -> str:
+    """Readings per second, or per minute on a slow feed (never a bare 0.0)."""
+    if per_s is None:
+        return "- readings/s"
+    if per_s >= 1.0:
+        return f"{per_s:.1f} readings/s"
+    return f"{per_s * 60:.1f} readings/min"
 
 
 def header_text(board: Board) -> Text:
     t = Text()
     if not board.running:
         ago = (
-            f", last heartbeat {human_duration(board.now - board.heartbeat_at)} ago"
+            f", last heartbeat {duration(board.now - board.heartbeat_at)} ago"
             if board.heartbeat_at
             else ""
         )
-        t.append(f"✖ daemon not running{ago}", style="bold #ff6b6b")
+        t.append(f"✖ service not running{ago}", style=STYLE[Look.PAST])
+    elif board.connected:
+        t.append(f"● broker {board.broker} connected")
     else:
-        up = "connected" if board.connected else "DISCONNECTED"
-        t.append(
-            f"{'●' if board.connected else '✖'} {board.broker} {up}",
-            style="#6fcf97" if board.connected else "bold #ff6b6b",
-        )
-    rate = "-" if board.readings_per_s is None else f"{board.readings_per_s:.1f}"
+        t.append(f"✖ broker {board.broker} not connected", style=STYLE[Look.PAST])
+    t.append(f" · {rate_text(board.readings_per_s)}")
+    if board.alerts_waiting:
+        t.append(f" · {board.alerts_waiting} alerts waiting for hooks", style=STYLE[Look.SOON])
+    t.no_wrap, t.overflow = True, "ellipsis"
+    return t
+
+
+def summary_text(board: Board) -> Text:
+    """The second line: the items by look, the last refit, the readings set aside."""
+    counts = {lk: sum(1 for r in board.rows if look(r) == lk) for lk in Look}
+    words = {Look.PAST: "past", Look.SOON: "soon", Look.NO_DATA: "no data", Look.CALM: "calm"}
+    summary = ", ".join(f"{n} {words[lk]}" for lk, n in counts.items() if n)
     refit = (
         "never"
         if board.last_refit_at is None
-        else f"{short_duration(board.now - board.last_refit_at)} ago"
+        else f"{duration(board.now - board.last_refit_at)} ago"
     )
     dead = "-" if board.dead_letters is None else board.dead_letters
-    t.append(f" · {rate} readings/s · {dead} dead letters · refit {refit}")
-    if board.alerts_waiting:
-        t.append(f" · {board.alerts_waiting} alerts waiting for hooks", style="bold #ffb347")
-    return t
+    return Text(
+        f"{len(board.rows)} items: {summary or 'none yet'} · refit {refit} · {dead} set aside",
+        style="dim",
+        no_wrap=True,
+        overflow="ellipsis",
+    )
+
+
+COLUMNS: tuple[tuple[str, str, JustifyMethod], ...] = (
+    ("state", "state", "left"),
+    ("item", "item", "left"),
+    ("now", "now", "right"),
+    ("level", "level", "right"),
+    ("due", "due in", "right"),
+    ("range", "90 % range", "left"),
+    ("ambient", "ambient", "right"),
+    ("tau", "time constant", "right"),
+    ("spark", "last 3 h", "left"),
+)
 
 
 def column_widths(width: int) -> dict[str, int]:
     """Fixed widths, the same for every group's table so the columns line up; the item name and,
-    on a wide screen, the sparkline take what is left."""
+    on a wide screen, the sparkline take what is left.  A narrow screen shows the interval in
+    the "due in" column and leaves the technical figures out."""
     if width >= 110:
-        w = {"state": 15, "now": 9, "limit": 7, "eta": 20, "amb": 6, "tau": 6}
-        rest = width - sum(w.values()) - 7
-        w["item"] = min(40, max(16, rest - 24))
-        w["spark"] = max(8, min(48, rest - w["item"]))
+        w = {"state": 15, "now": 12, "level": 10, "due": 11, "range": NOTE_ROOM}
+        if width >= 150:
+            w.update(ambient=9, tau=13)
+        rest = width - sum(w.values()) - len(w) - 1
+        w["item"] = min(36, max(16, rest - 12))
+        w["spark"] = max(0, rest - w["item"])
     else:
-        w = {"state": 13, "now": 7, "limit": 6, "eta": 16, "amb": 4, "tau": 5, "spark": 8}
-        w["item"] = max(8, width - sum(w.values()) - 7)
+        w = {"state": 15, "now": 11, "level": 9, "due": NARROW_DUE}
+        w["item"] = max(8, width - sum(w.values()) - len(w))
     return w
 
 
 def fit_name(name: str, width: int) -> str:
-    """The name, or its end (the most telling part of a long topic-like name) with a leading '…'."""
-    return name if len(name) <= width else "…" + name[-(width - 1) :]
+    """The name, or its start and end (the telling parts of a topic-like name) around a '…'."""
+    if len(name) <= width:
+        return name
+    head = (width - 1) // 2
+    return name[:head] + "…" + name[-(width - 1 - head) :]
 
 
 def _table(w: dict[str, int], show_header: bool) -> Table:
@@ -210,22 +314,73 @@ def _table(w: dict[str, int], show_header: bool) -> Table:
         pad_edge=False,
         expand=False,
         show_edge=False,
-        header_style="bold",
+        header_style="bold underline",
         show_header=show_header,
     )
-    columns: tuple[tuple[str, str, JustifyMethod], ...] = (
-        ("state", "state", "left"),
-        ("item", "item", "left"),
-        ("now", "now", "right"),
-        ("limit", "limit", "right"),
-        ("eta", "ETA [90 %]", "left"),
-        ("amb", "amb", "right"),
-        ("tau", "tau", "right"),
-        ("spark", "last 3h", "left"),
-    )
-    for key, title, justify in columns:
-        table.add_column(title, width=w[key], justify=justify, no_wrap=True, overflow="crop")
+    for key, title, justify in COLUMNS:
+        if w.get(key):
+            if key == "due" and "range" not in w:
+                title = "due in (90 %)"
+            table.add_column(title, width=w[key], justify=justify, no_wrap=True, overflow="crop")
     return table
+
+
+def _cells(w: dict[str, int], **cells: Any) -> list[Any]:
+    return [cells.get(key, "") for key, _, _ in COLUMNS if w.get(key)]
+
+
+def _row_cells(r: Row, w: dict[str, int], name: str) -> list[Any]:
+    lk = look(r)
+    style = STYLE[lk]
+    label = Text(f"{SYMBOL.get(r.state, '·')} {r.state}", style=style)
+    if r.alert and r.alert.endswith("+ack"):
+        label.append(" ack")
+    wide = "range" in w
+    due = due_text(r) if wide else when_text(r)
+    return _cells(
+        w,
+        state=label,
+        item=Text(fit_name(name, w["item"]), style="dim" if lk == Look.NO_DATA else ""),
+        now=Text(now_text(r), style="dim" if r.value is None or lk == Look.NO_DATA else ""),
+        level=level_text(r.threshold, r.unit, r.kind),
+        due=Text(due, style=style),
+        range=Text(range_text(r), style=style if lk == Look.SOON else ""),
+        ambient=temp(r.ambient, r.unit),
+        tau=duration(r.tau_s) if r.tau_s and r.tau_s >= 1.0 else "-",
+        spark=Text(sparkline(r.spark, r.threshold, w.get("spark", 0)), style="dim"),
+    )
+
+
+def _level_cells(lv: LevelLine, r: Row, w: dict[str, int], now: float) -> list[Any]:
+    lk = look(lv, r.lead_s)
+    style = STYLE[lk] if lk <= Look.SOON else "dim"
+    wide = "range" in w
+    note = level_note(lv, now)
+    due = due_text(lv) if wide else narrow_level(lv, now)
+    return _cells(
+        w,
+        state=Text(f"  {SYMBOL.get(lv.state, '·')} {lv.state}", style=style),
+        item=Text(fit_name(f"└ {lv.name}", w["item"]), style="dim"),
+        level=level_text(lv.threshold, r.unit, lv.kind),
+        due=Text(due, style=style),
+        # on a wide screen the deadline or allowance takes the interval's place (the item's own
+        # row shows its focus level's interval)
+        range=Text(note or range_text(lv), style=style if not note else "dim"),
+    )
+
+
+def alert_lines(board: Board, width: int, n: int) -> list[Text]:
+    """The newest alerts, newest first: clock time, headline, and whether the hooks took it."""
+    out = []
+    for a in board.alerts[:n]:
+        tail = f"  [{a.delivery}]"
+        head = f"{clock(a.at, board.now)}  "
+        room = max(10, width - len(head) - len(tail) - 2)
+        text = a.headline if len(a.headline) <= room else a.headline[: room - 1] + "…"
+        line = Text("  " + head + text)
+        line.append(tail, style=STYLE[Look.SOON] if a.delivery != "sent" else "dim")
+        out.append(line)
+    return out
 
 
 def render(
@@ -237,18 +392,21 @@ def render(
     attention_only: bool = False,
     typing: bool = False,
 ) -> Group:
-    """One frame: header, the items (grouped when many), key help and the caution line."""
+    """One frame: header, the items (grouped when many), the newest alerts, key help and the
+    caution line."""
     rows = visible(board, text_filter, attention_only)
-    wide = width >= 110
     w = column_widths(width)
-    room = max(1, height - 6 - (1 if width < len(CAUTION) else 0))
+    n_alerts = min(ALERT_LINES, len(board.alerts)) if height >= 20 else 0
+    room = max(
+        1, height - 6 - (1 if width < len(CAUTION) else 0) - (n_alerts + 1 if n_alerts else 0)
+    )
     grouped = len(rows) > GROUP_WHEN_MORE_THAN and len({r.group for r in rows}) > 1
     ordered = rows
     if grouped:
         first: dict[str, tuple] = {}
         for r in rows:
-            first.setdefault(r.group, r.urgency)
-        ordered = sorted(rows, key=lambda r: (first[r.group], r.urgency))
+            first.setdefault(r.group, order_key(r))
+        ordered = sorted(rows, key=lambda r: (first[r.group], order_key(r)))
     body: list[Any] = []
     table = _table(w, show_header=True)
     shown, current, lines_used = 0, None, 1
@@ -262,61 +420,34 @@ def render(
                 body.append(table)
             current = r.group
             n = sum(1 for x in rows if x.group == current)
-            body.append(
-                Text(f"{current} ({n})", style="bold underline", no_wrap=True, overflow="ellipsis")
-            )
+            body.append(Text(f"{current} ({n})", style="bold", no_wrap=True, overflow="ellipsis"))
             table = _table(w, show_header=False)
             lines_used += 1
-        sym, style = STATE_LOOK.get(r.state, ("·", ""))
-        word = str(r.state)
-        label = Text(f"{sym} {word}", style=style)
-        if r.alert and r.alert.endswith("+ack"):
-            label.append(" ack", style="dim")
         name = r.item
         if grouped and current is not None and name.startswith(current + "/"):
             name = name[len(current) + 1 :]
+        if r.episode:
+            name += f" [{r.episode}]"
         if r.defrost:
-            name += " (defrost)"  # at the end, which fit_name keeps: new alerts are held
-        sign = UNIT_SIGN.get(r.unit, r.unit) if wide else ""
-        hot = style if r.state in HOT else ""
-        table.add_row(
-            label,
-            fit_name(name, w["item"]),
-            f"{_num(r.value)}{sign}{_arrow(r.trend_per_h)}",
-            _num(r.threshold),
-            Text(eta_text(r), style=hot),
-            _num(r.ambient, "{:.1f}" if wide else "{:.0f}"),
-            short_duration(r.tau_s) if r.tau_s else "-",
-            Text(sparkline(r.spark, r.threshold, w["spark"]), style="#7fb3d5"),
-        )
+            name += " (defrost)"  # new alerts are held
+        if len(name) > w["item"] and r.defrost:
+            name = fit_name(name[: -len(" (defrost)")], w["item"] - 10) + " (defrost)"
+        table.add_row(*_row_cells(r, w, name))
         shown += 1
         lines_used += 1
         for lv in r.levels:
             if lines_used >= room:
                 break
-            lsym, lstyle = STATE_LOOK.get(lv.state, ("·", ""))
-            eta, note = eta_text(lv), level_note(lv, board.now)
-            if not wide:  # the deadline beside the ETA, the chance or budget in the last column
-                eta, note = narrow_level(lv, board.now)
-            table.add_row(
-                Text(f"  {lsym} {lv.state}", style=lstyle if lv.state in HOT else "dim"),
-                fit_name(f"└ {lv.name}", w["item"]),
-                "",
-                _num(lv.threshold),
-                Text(eta, style=lstyle if lv.state in HOT else "dim"),
-                "",
-                "",
-                Text(note, style="dim", no_wrap=True, overflow="crop"),
-            )
+            table.add_row(*_level_cells(lv, r, w, board.now))
             lines_used += 1
     body.append(table)
-    parts: list[Any] = [header_text(board)]
-    counts = {s: sum(1 for r in board.rows if r.state == s) for s in RANK}
-    summary = ", ".join(f"{n} {s}" for s, n in counts.items() if n)
-    parts.append(Text(f"{len(board.rows)} items: {summary or 'none yet'}", style="dim"))
+    parts: list[Any] = [header_text(board), summary_text(board)]
     parts += body
     if shown < len(rows):
         parts.append(Text(f"… {len(rows) - shown} more (filter with / or a)", style="dim"))
+    if n_alerts:
+        parts.append(Text("newest alerts", style="bold"))
+        parts += alert_lines(board, width, n_alerts)
     keys = "keys: q quit · a attention only · / filter · esc clear"
     if typing:
         keys = f"filter: {text_filter}_  (enter to keep, esc to clear)"
@@ -328,22 +459,32 @@ def render(
 
 
 def plain_lines(board: Board) -> list[str]:
-    """The frame as plain lines (stdout not a terminal): one for the daemon, one per item."""
-    out = [header_text(board).plain]
+    """The frame as plain lines (stdout not a terminal): one for the service, one per item, one
+    per level, the newest alerts; the same words and units as the screen."""
+    out = [header_text(board).plain, summary_text(board).plain]
     for r in visible(board):
+        rng = range_text(r)
         out.append(
-            f"{r.item} {r.state} now {_num(r.value)} {r.unit} {r.kind} {_num(r.threshold)} "
-            f"eta {eta_text(r)} ambient {_num(r.ambient)} tau {human_duration(r.tau_s)}"
+            f"{r.item} {SYMBOL.get(r.state, '·')} {r.state} now {now_text(r)} {r.kind} "
+            f"{level_text(r.threshold, r.unit, 'limit')} due {due_text(r)}"
+            + (f" (90 %: {rng})" if rng else "")
+            + (f" ambient {temp(r.ambient, r.unit)}" if r.ambient is not None else "")
+            + (f" time constant {duration(r.tau_s)}" if r.tau_s and r.tau_s >= 1.0 else "")
             + (f" alert {r.alert}" if r.alert else "")
             + (" defrost" if r.defrost else "")
             + (f" episode {r.episode}" if r.episode else "")
         )
         for lv in r.levels:
             note = level_note(lv, board.now)
+            rng = range_text(lv)
             out.append(
-                f"  {lv.name} {lv.kind} {_num(lv.threshold)} {lv.state} eta {eta_text(lv)}"
-                + (f" {note}" if note else "")
+                f"  {lv.name} {lv.kind} {level_text(lv.threshold, r.unit, 'limit')} {lv.state} "
+                f"due {due_text(lv)}"
+                + (f" (90 %: {rng})" if rng else "")
+                + (f"; {note}" if note else "")
             )
+    for a in board.alerts:
+        out.append(f"alert {clock(a.at, board.now)} {a.headline} [{a.delivery}]")
     return out
 
 

@@ -46,7 +46,9 @@ C_READ, C_FIT, C_BAND, C_THR, C_AMB, C_REG, C_TRUTH = (
 
 
 def _local_tz():
-    return datetime.now(UTC).astimezone().tzinfo
+    from thermeta.daemon.timefmt import zone
+
+    return zone()  # the site's zone (the config's timezone), else the machine's
 
 
 def _to_dates(t: np.ndarray) -> np.ndarray:
@@ -84,7 +86,7 @@ def forecast_figure(
     import matplotlib.dates as mdates
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
-    from thermeta.daemon.timefmt import human_duration, local_clock
+    from thermeta.daemon.timefmt import duration, local_clock
 
     conv = convert or (lambda v: v)
     sign = UNIT_SIGN.get(unit, unit)
@@ -184,7 +186,7 @@ def forecast_figure(
             gid="crossing",
         )
         ax.annotate(
-            f"crosses {local_clock(cross)}\nin {human_duration(fc.eta_s)}",
+            f"crosses {local_clock(cross)}\nin {duration(fc.eta_s)}",
             (_to_date(cross), conv(fc.threshold)),
             textcoords="offset points",
             xytext=(-10, 10),
@@ -267,7 +269,7 @@ def _robust_ylim(ax, readings: np.ndarray, keep: list) -> None:
 
 
 def _summary(fc: Forecast, sign: str, conv) -> str:
-    from thermeta.daemon.timefmt import human_duration
+    from thermeta.daemon.timefmt import duration, span
 
     if not fc.ok:
         return f"no forecast: {fc.reason}"
@@ -275,7 +277,7 @@ def _summary(fc: Forecast, sign: str, conv) -> str:
     if fc.ambient is not None:
         bits.append(f"ambient {conv(fc.ambient):.1f} {sign}")
     if fc.time_constant_s:
-        bits.append(f"time constant {human_duration(fc.time_constant_s)}")
+        bits.append(f"time constant {duration(fc.time_constant_s)}")
     if fc.biot is not None:
         bits.append(f"Biot {fc.biot:.2f}")
     if fc.eta_s is None:
@@ -283,8 +285,7 @@ def _summary(fc: Forecast, sign: str, conv) -> str:
     elif fc.eta_s == 0:
         bits.append("already past the threshold")
     else:
-        hi = human_duration(fc.eta_hi_s) if fc.eta_hi_s is not None else "no upper bound"
-        bits.append(f"ETA {human_duration(fc.eta_s)} (90 %: {human_duration(fc.eta_lo_s)} to {hi})")
+        bits.append(f"crosses in {duration(fc.eta_s)} (90 %: {span(fc.eta_lo_s, fc.eta_hi_s)})")
     return "; ".join(bits)
 
 

@@ -16,7 +16,7 @@ import math
 from typing import Any
 
 import numpy as np
-from thermeta.daemon.timefmt import human_duration, local_clock
+from thermeta.daemon.timefmt import duration, local_clock
 from thermeta.daemon.units import UNIT_SIGN
 from thermeta.daemon.views.record import Record
 
@@ -63,20 +63,20 @@ def summary_lines(rec: Record) -> list[str]:
         if "beyond_s" in d:
             line = (
                 f"beyond {d['name']} ({d['side']} {_temp(d['threshold'], sign)}): "
-                f"{human_duration(d['beyond_s'])}, {d['degree_minutes']:.1f} {sign}·min"
+                f"{duration(d['beyond_s'])}, {d['degree_minutes']:.1f} {sign}·min"
             )
             b = d.get("budget")
             if b:
                 line += (
-                    f"; budget {human_duration(b['allowed_s'])}: used "
-                    f"{human_duration(b['used_s'])}, left {human_duration(b['left_s'])}"
+                    f"; budget {duration(b['allowed_s'])}: used "
+                    f"{duration(b['used_s'])}, left {duration(b['left_s'])}"
                 )
             out.append(line)
     mkt = "-" if rec.mkt is None else f"{rec.mkt:.2f} {sign}"
     out.append(
         f"mean kinetic temperature {mkt} (USP <1079.2>, dH/R = 10,000 K); "
-        f"readings {len(rec.readings)}, covering {human_duration(rec.covered_s)}"
-        + (f", gaps {human_duration(rec.gap_s)}" if rec.gap_s else "")
+        f"readings {len(rec.readings)}, covering {duration(rec.covered_s)}"
+        + (f", gaps {duration(rec.gap_s)}" if rec.gap_s else "")
     )
     return out
 
@@ -99,11 +99,11 @@ def forecast_lines(rec: Record) -> list[str]:
     ]
     for r in rows:
         err = r.get("error_s")
-        err_t = "" if err is None else ("-" if err < 0 else "+") + human_duration(abs(err))
+        err_t = "" if err is None else ("-" if err < 0 else "+") + duration(abs(err))
         out.append(
             f"{_t(r['made_at_s']):<22} {str(r['level'])[:10]:<10} {str(r['state'])[:11]:<11} "
             f"{_t(r['forecast_at_s']):<22} {local_clock(r['lo_at_s']):<11} "
-            f"{local_clock(r['hi_at_s']) if r['hi_at_s'] else 'open':<11} "
+            f"{local_clock(r['hi_at_s']) if r['hi_at_s'] else 'no bound':<11} "
             f"{local_clock(r['actual_at_s']):<11} {err_t:>9}"
         )
     if step > 1:

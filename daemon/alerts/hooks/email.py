@@ -2,7 +2,8 @@
 (``"implicit"``, port 465) or none (``"none"``, a relay on the local network); login from the
 environment variables named by ``username_env`` / ``password_env``.
 
-The mail is plain text (the sentence, then the numbers), with a PNG of the item's recent readings,
+The mail is plain text (``daemon/alerts/mail.py``: the headline as its subject, the sentence,
+the site's "what to do" line, then the figures), with a PNG of the item's recent readings,
 fitted curve and forecast band attached when one can be drawn.
 """
 
@@ -17,6 +18,7 @@ from typing import Annotated, Any, Literal
 
 from pydantic import AfterValidator, BeforeValidator, Field
 from thermeta.daemon.alerts.hooks.base import Hook, TimedHookConfig
+from thermeta.daemon.alerts.mail import body_text, subject
 from thermeta.daemon.settings.checks import EnvName, PositiveInt, Text, problem, show
 from thermeta.storage.errors import DeliveryError
 
@@ -49,41 +51,6 @@ class EmailConfig(TimedHookConfig):
     password_env: EnvName | None = None
     from_addr: Annotated[Text, AfterValidator(_address)] = Field(validation_alias="from")
     to: Annotated[tuple[str, ...], BeforeValidator(_recipients)]
-
-
-FIELDS = (
-    ("event", "event"),
-    ("level", "level"),
-    ("value_now", "value now"),
-    ("threshold", "threshold"),
-    ("deadline_at", "deadline"),
-    ("chance", "chance of making it"),
-    ("reached_at", "reached at"),
-    ("eta_s", "ETA (s)"),
-    ("crossing_at", "crossing at"),
-    ("crossing_lo_at", "interval from"),
-    ("crossing_hi_at", "interval to"),
-    ("ambient", "ambient"),
-    ("ambient_mode", "ambient mode"),
-    ("time_constant_s", "time constant (s)"),
-    ("state", "state"),
-    ("at", "alert time"),
-)
-
-
-def subject(alert: dict[str, Any]) -> str:
-    tag = "reminder: " if alert.get("reminder") else ""
-    return f"[thermeta] {alert['item']} {tag}{alert['event']}"
-
-
-def body_text(alert: dict[str, Any]) -> str:
-    lines = [alert["sentence"], ""]
-    for key, label in FIELDS:
-        v = alert.get(key)
-        if v is not None:
-            lines.append(f"{label:>18}: {v:.2f}" if isinstance(v, float) else f"{label:>18}: {v}")
-    lines += ["", alert.get("caution", ""), ""]
-    return "\n".join(lines)
 
 
 class EmailHook(Hook[EmailConfig]):
