@@ -31,8 +31,8 @@ from thermeta.daemon.ingest.writer import Activity, Writer
 from thermeta.daemon.refit.rounds import Listener, Refitter
 from thermeta.daemon.scheduling import StepWatch
 from thermeta.daemon.states import ItemState
-from thermeta.storage.errors import ThermetaError
 from thermeta.daemon.timefmt import use_zone
+from thermeta.storage.errors import ThermetaError
 from thermeta.storage.store import Store, safe_url
 
 RATE_TAU_S = 60.0  # the readings rate's averaging time

@@ -130,6 +130,7 @@ def write_config(
     client_id: str = "thermeta-test",
     refit_every: float = 1.0,
     extra: str = "",
+    protocol: str = "auto",
 ) -> Path:
     """A config file ``workdir/thermeta.toml`` for ``broker``: the store (SQLite in ``workdir``
     unless ``db_url``), small batches, a refit every ``refit_every`` s, then ``extra`` tables
@@ -137,7 +138,8 @@ def write_config(
     db_url = db_url or f"sqlite:///{Path(workdir) / 'store.db'}"
     path = Path(workdir) / "thermeta.toml"
     path.write_text(
-        f'[broker]\nhost = "{broker.host}"\nport = {broker.port}\nclient_id = "{client_id}"\n\n'
+        f'[broker]\nhost = "{broker.host}"\nport = {broker.port}\nclient_id = "{client_id}"\n'
+        f'protocol = "{protocol}"\n\n'
         f'[storage]\nurl = "{db_url}"\nbatch_size = 200\nbatch_ms = 50\n\n'
         f"[fit]\nrefit_every = {refit_every}\nwindow = 7200\n\n{extra}\n\n{items}\n"
     )

@@ -261,3 +261,19 @@ def test_fault13_sigterm_during_a_long_refit_round_stops_between_items(broker, t
     assert done < len(names), done  # the round was left between items
     # fault 11: the runs skipped meanwhile are one line, not one (or two) per second
     assert d.text().count("skipped") == 1, d.text()[-3000:]
+
+
+def test_fault09_under_mqtt_3_1_1_a_huge_payload_is_cut_on_arrival(broker, tmp_path):
+    """MQTT 3.1.1 has no Maximum Packet Size: the payload reaches the daemon, is cut to its
+    first bytes on arrival and set aside with its true size; the readings behind it are kept."""
+    from thermeta.daemon.testing import dead_letter_reasons
+
+    url = f"sqlite:///{tmp_path / 'store.db'}"
+    cfg = write_config(tmp_path, broker, db_url=url, items=CELLAR, refit_every=60, protocol="3.1.1")
+    t0 = time.time() - 600
+    with RunningDaemon(cfg) as d:
+        publish(broker, [("cellar/tank-1/core", b"[" + b" " * 5_000_000 + b"]")])
+        publish(broker, readings("cellar/tank-1/core", t0, 5))
+        wait_for(lambda: count_readings(url, "tank-1") == 5, 15, d.log)
+        reasons = wait_for(lambda: dead_letter_reasons(url), 5, d.log)
+    assert reasons == ["oversized payload (5000002 bytes > 16384)"], reasons
