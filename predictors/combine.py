@@ -30,6 +30,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy.stats import t as t_dist
 from thermeta.predictors.candidates import BENDS, Candidate, Local, Lumped, Spec, fit_all
+from thermeta.predictors.shared import shared
 
 ORIGINS = (0.25, 0.35, 0.5, 0.65, 0.8)  # backtest origins, as shares of the readings' span
 ENDS = (0.5, 1.0)  # levels reached halfway from the origin to the newest reading, and at it
@@ -115,10 +116,24 @@ def log_error(est: float | None, actual: float) -> float:
     return min(abs(math.log(est / actual)), MISS)
 
 
-def combine(
-    t: np.ndarray, y: np.ndarray, spec: Spec, threshold: float, limit: str | None
-) -> Combined:
-    """Fit the candidates to (t, y), score them by backtest, and combine (module docstring)."""
+@dataclass
+class Scored:
+    """The candidates fitted to the (binned) readings and scored by their backtest: everything of
+    the combination that does not depend on the threshold."""
+
+    t: np.ndarray
+    y: np.ndarray
+    points: list[Point]
+    final: dict[str, Candidate]
+    ests: dict[str, list[float | None]]
+    scores: dict[str, float]
+    weights: dict[str, float]
+
+
+@shared
+def score(t: np.ndarray, y: np.ndarray, spec: Spec) -> Scored:
+    """Fit the candidates to (t, y) and score them by backtest (module docstring); the local
+    curve's share of bend is set here."""
     t, y = binned(t, y)
     points = backtest_points(t, y)
     final = fit_all(t, y, spec)
@@ -141,7 +156,7 @@ def combine(
         if m == "local" and points:
             by_bend = {c: _score(local_ests[c], points) for c in BENDS}
             best_c = min(by_bend, key=lambda c: by_bend[c])
-            final[m].bend = best_c  # type: ignore[attr-defined]
+            final[m].bend = best_c
             ests[m] = local_ests[best_c]
             scores[m] = by_bend[best_c]
         else:
@@ -149,11 +164,21 @@ def combine(
     if not points:
         # too few readings to look back on: every candidate counts alike
         scores = {m: 0.0 for m in names}
-    if not names:
-        return Combined(None, None, None, {}, {}, "lumped", 0, final)
     raw = {m: 1.0 / (scores[m] + EPS) for m in names}
     total = sum(raw.values())
     weights = {m: raw[m] / total for m in names}
+    return Scored(t, y, points, final, ests, scores, weights)
+
+
+def combine(
+    t: np.ndarray, y: np.ndarray, spec: Spec, threshold: float, limit: str | None
+) -> Combined:
+    """Fit the candidates to (t, y), score them by backtest, and combine (module docstring)."""
+    s = score(t, y, spec)
+    t, y, final, weights = s.t, s.y, s.final, s.weights
+    names = list(weights)
+    if not names:
+        return Combined(None, None, None, {}, {}, "lumped", 0, final)
     etas = {m: final[m].eta(threshold, limit) for m in names}
     eta, never_clear = _point(
         etas, weights, final, threshold, _overrides_given(spec, final, threshold)
@@ -164,8 +189,10 @@ def combine(
         eta, never_clear = None, True
         etas = {m: None for m in names}
     best = max(weights, key=lambda m: weights[m])
-    lo, hi = _interval(eta, etas, weights, ests, points)
-    return Combined(eta, lo, hi, weights, scores, best, len(points), final, never_clear)
+    lo, hi = _interval(eta, etas, weights, s.ests, s.points)
+    return Combined(
+        eta, lo, hi, dict(weights), dict(s.scores), best, len(s.points), final, never_clear
+    )
 
 
 def _moving_away(t: np.ndarray, y: np.ndarray, threshold: float) -> bool:

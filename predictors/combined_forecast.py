@@ -30,6 +30,7 @@ from thermeta.predictors.context import AmbientMode, Context
 from thermeta.predictors.lumped import LumpedFit, fit_lumped
 from thermeta.predictors.outcome import NoteCode
 from thermeta.predictors.result import Forecast, never_reason
+from thermeta.predictors.shared import shared
 from thermeta.predictors.two_exp import effective_share, fit_two_exp
 from thermeta.predictors.wording import point, step
 
@@ -58,6 +59,7 @@ def inflation(residuals: np.ndarray) -> float:
     return 1.0 / effective_share(r)
 
 
+@shared
 def shape_test(t: np.ndarray, y: np.ndarray, spec: Spec) -> float:
     """The F statistic of two time constants over one (correlation allowed for) divided by its
     SHAPE_CONF point: > 1 means one exponential does not explain the readings."""
@@ -85,6 +87,7 @@ CHECK_FLOOR = 0.05  # a miss by less than 5 % in time is no evidence against the
 CHECK_WIDEN = 3.2905 / 1.6449  # from the 90 % interval to about the 99.9 % one (normal points)
 
 
+@shared
 def self_check(t: np.ndarray, y: np.ndarray, kw: dict) -> bool:
     """Whether one exponential fitted to the first half of the readings forecast when the
     newest level would be reached outside its own interval widened to about 99.9 %: the readings

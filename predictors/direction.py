@@ -36,6 +36,7 @@ from thermeta.predictors.result import Forecast
 NEWEST_SHARE = 0.5  # the parabola's readings: the newest half of the regime's span ...
 MIN_READINGS = 5  # ... at least this many (three parameters, two to judge the scatter)
 CONF = 0.95  # one-sided: the bend counts when beyond this Student's t point
+LINE_CONF = 0.95  # the early end's steepest line: Student's one-sided point of its slope
 BENDS = (1.0, 0.75, 0.5, 0.25, 0.0)  # shares of the fitted bend tried, most first
 NEVER_CODES = (NoteCode.NEVER_LEVELS_OFF, NoteCode.EARLIEST_CROSSING)
 
@@ -105,11 +106,16 @@ def newest_tangent(
 
 
 def newest_line_eta(
-    t: np.ndarray, y: np.ndarray, threshold: float, limit: str | None, floor_sd: float = 0.0
+    t: np.ndarray,
+    y: np.ndarray,
+    threshold: float,
+    limit: str | None,
+    floor_sd: float = 0.0,
+    conf: float | None = LINE_CONF,
 ) -> float | None:
-    """Seconds until the steepest straight line the newest half of the readings allows (its
-    slope toward the threshold at Student's one-sided 95 % point) reaches the threshold from the
-    newest reading (None: it heads away)."""
+    """Seconds until the straight line through the newest half of the readings reaches the
+    threshold from the newest reading (None: it heads away); with ``conf``, the steepest line
+    they allow (its slope toward the threshold at Student's one-sided ``conf`` point)."""
     sel = t >= t[-1] - NEWEST_SHARE * float(t[-1] - t[0])
     if sel.sum() < 4:
         sel = np.ones(t.size, bool)
@@ -121,7 +127,9 @@ def newest_line_eta(
     dof = x.size - 2
     s2 = max(float(resid @ resid) / dof, floor_sd**2)
     se = math.sqrt(s2 / float(np.sum((x - x.mean()) ** 2)))
-    steep = float(slope) + math.copysign(float(stdtrit(dof, 0.95)) * se, threshold - icpt)
+    steep = float(slope)
+    if conf is not None:
+        steep += math.copysign(float(stdtrit(dof, conf)) * se, threshold - icpt)
     return shrunk_eta(float(icpt), steep, 0.0, threshold, limit)
 
 

@@ -24,7 +24,10 @@ from thermeta.predictors.combined_forecast import (
     spec_of,
 )
 from thermeta.predictors.context import AmbientMode, Context
-from thermeta.predictors.direction import hold_acceleration, open_untested_never
+from thermeta.predictors.direction import (
+    hold_acceleration,
+    open_untested_never,
+)
 from thermeta.predictors.lumped import LumpedFit, fit_lumped, shrunk_eta
 from thermeta.predictors.model import Model
 from thermeta.predictors.outcome import NoteCode, Reason
