@@ -17,7 +17,8 @@ Two facts of any smooth approach that hold without knowing the model:
 
 The bend is the quadratic term of a least-squares parabola through the newest half of the
 readings (at least ``MIN_READINGS``), judged against its standard error (the scatter taken as at
-least the readings' own floor) at Student's one-sided ``CONF`` point (scipy.special.stdtrit).
+least the readings' own floor, and widened by n / n_eff where its residuals are correlated) at
+Student's one-sided ``CONF`` point (scipy.special.stdtrit).
 """
 
 from __future__ import annotations
@@ -27,7 +28,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy.special import stdtrit
-from thermeta.predictors.combined_forecast import RICH_MIN
+from thermeta.predictors.combined_forecast import RICH_MIN, inflation
 from thermeta.predictors.context import Context
 from thermeta.predictors.lumped import LumpedFit, shrunk_eta
 from thermeta.predictors.outcome import NoteCode
@@ -35,7 +36,7 @@ from thermeta.predictors.result import Forecast
 
 NEWEST_SHARE = 0.5  # the parabola's readings: the newest half of the regime's span ...
 MIN_READINGS = 5  # ... at least this many (three parameters, two to judge the scatter)
-CONF = 0.95  # one-sided: the bend counts when beyond this Student's t point
+CONF = 0.99  # one-sided: the bend counts when beyond this Student's t point
 LINE_CONF = 0.95  # the early end's steepest line: Student's one-sided point of its slope
 BENDS = (1.0, 0.75, 0.5, 0.25, 0.0)  # shares of the fitted bend tried, most first
 NEVER_CODES = (NoteCode.NEVER_LEVELS_OFF, NoteCode.EARLIEST_CROSSING)
@@ -92,7 +93,8 @@ def newest_tangent(
     coef, *_ = np.linalg.lstsq(design, v, rcond=None)
     resid = v - design @ coef
     dof = x.size - 3
-    s2 = max(float(resid @ resid) / dof, noise_sd**2, quantum**2 / 12.0)
+    # correlated scatter (a fast logger) bends a parabola more than white scatter would
+    s2 = max(float(resid @ resid) / dof, noise_sd**2, quantum**2 / 12.0) * inflation(resid)
     cov = s2 * np.linalg.inv(design.T @ design)
     se = math.sqrt(max(float(cov[2, 2]), 0.0))
     t_stat = float(coef[2]) / se if se > 0 else 0.0
@@ -218,4 +220,19 @@ def hold_acceleration(fc: Forecast, ctx: Context) -> bool:
         "cannot do: the ETA follows their present slope in a straight line, the early end their "
         "bend kept up, the late end the fitted curve's",
     )
+    return True
+
+
+def widen_untested_early_end(fc: Forecast, ctx: Context, n: int) -> bool:
+    """With fewer readings than the shape test needs, one exponential is assumed, not tested: the
+    interval's early end is then no later than the steepest straight line the newest readings
+    allow (a curve that slows down crosses after its tangent, whatever its time constants).
+    Whether it moved."""
+    if n >= RICH_MIN or not fc.eta_s or fc.eta_lo_s is None or not math.isfinite(fc.eta_lo_s):
+        return False
+    floor = math.hypot(ctx.noise_sd, ctx.quantum / math.sqrt(12.0))
+    line = newest_line_eta(ctx.t, ctx.y, ctx.threshold, ctx.limit, floor)
+    if line is None or line >= fc.eta_lo_s:
+        return False
+    fc.eta_lo_s = line
     return True

@@ -27,6 +27,7 @@ from thermeta.predictors.context import AmbientMode, Context
 from thermeta.predictors.direction import (
     hold_acceleration,
     open_untested_never,
+    widen_untested_early_end,
 )
 from thermeta.predictors.lumped import LumpedFit, fit_lumped, shrunk_eta
 from thermeta.predictors.model import Model
@@ -124,7 +125,7 @@ def lumped_forecast(ctx: Context, fc: Forecast) -> Forecast:
                 f"as about {tt.size / infl:.0f} independent ones, and the interval is that wide",
             )
     fill_lumped(fc, fit, ctx)
-    open_untested_never(fc, ctx, fit, tt.size)
+    open_untested_never(fc, ctx, fit, tt.size) or widen_untested_early_end(fc, ctx, tt.size)
     hold_acceleration(fc, ctx)
     if fc.eta_s and no_trend(tt, yy, ctx):
         # not a rate taken from the edge of the fit's own grid: the readings' own straight

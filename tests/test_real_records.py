@@ -152,3 +152,14 @@ def test_a_never_too_few_readings_can_test_becomes_an_open_late_end(bench):
     assert NoteCode.NEVER_UNTESTED in codes and NoteCode.NEVER_LEVELS_OFF not in codes
     assert fc.eta_s is not None and fc.eta_hi_s is None and 0 < fc.eta_lo_s < fc.eta_s
     assert _holds(fc, task.eta_true_s)
+
+
+def test_few_readings_widen_the_early_end_to_the_steepest_line(bench):
+    """The jar in its hot bath from nine readings (walkerjeffd/riffle-ito-apps, MIT): too few to
+    test one exponential against two, so the interval's early end is no later than the steepest
+    straight line the newest readings allow; the profile interval alone began at 249 s and
+    missed the true 237 s."""
+    rec, task = _task(bench, "riffle_jar_warming_hotbath", 0.5, 0.75)
+    fc = _run(rec, task)
+    assert fc.eta_s is not None and fc.eta_lo_s is not None
+    assert fc.eta_lo_s < 237 and _holds(fc, task.eta_true_s)
