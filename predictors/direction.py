@@ -236,3 +236,20 @@ def widen_untested_early_end(fc: Forecast, ctx: Context, n: int) -> bool:
         return False
     fc.eta_lo_s = line
     return True
+
+
+def note_slowing(fc: Forecast, ctx: Context) -> None:
+    """Curves that level off short of the threshold were overruled because the readings' rate
+    falls beyond one exponential (predictors.combine.slowing): say so, and keep the early end no
+    later than the steepest line the newest readings allow (the curve slows down, so it crosses
+    after its tangent)."""
+    floor = math.hypot(ctx.noise_sd, ctx.quantum / math.sqrt(12.0))
+    line = newest_line_eta(ctx.t, ctx.y, ctx.threshold, ctx.limit, floor)
+    if fc.eta_s and line is not None and (fc.eta_lo_s is None or line < fc.eta_lo_s):
+        fc.eta_lo_s = line
+    fc.note(
+        NoteCode.SLOWING,
+        "some curves level off short of the threshold, but the readings' rate falls faster than "
+        "one time constant allows (a second, slower one): their level-off is only a lower bound "
+        "on the change to come, so the forecast keeps the crossing, with an open late end",
+    )

@@ -26,6 +26,7 @@ from thermeta.predictors.combined_forecast import (
 from thermeta.predictors.context import AmbientMode, Context
 from thermeta.predictors.direction import (
     hold_acceleration,
+    note_slowing,
     open_untested_never,
     widen_untested_early_end,
 )
@@ -113,6 +114,8 @@ def lumped_forecast(ctx: Context, fc: Forecast) -> Forecast:
             fc.params = {}
             note_given_ambient(fc, ctx)
             combined_forecast(fc, comb, fit)
+            if comb.overruled:
+                note_slowing(fc, ctx)
             hold_acceleration(fc, ctx)
             note_ambient_agreement(fc, ctx, fit.ambient)
             return fc

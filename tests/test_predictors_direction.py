@@ -52,3 +52,24 @@ def test_a_lagging_sensor_speeding_up_is_not_given_a_slowing_answer():
     slope_now = float(sol.sol(x[-1:])[1][0] - sol.sol(x[-1:] - 1.0)[1][0])
     assert fc.eta_s is not None and fc.eta_s <= (20.0 - y[-1]) / slope_now * 1.2
     assert fc.eta_lo_s is not None and fc.eta_lo_s <= fc.eta_s
+
+
+def test_a_falling_rate_tells_two_time_constants_from_one():
+    """combine.slowing: a two-node body (air and walls; solve_ivp) warming toward 30 degC slows
+    faster than one exponential, one exponential with the same scatter does not (the rate of
+    each half's fit compared at a one-sided 99 % point)."""
+    from thermeta.predictors.candidates import Spec
+    from thermeta.predictors.combine import slowing
+
+    def rhs(_t, s):
+        air, wall = s
+        return [-(air - wall) / 200.0 - (air - 30.0) / 2000.0, -(wall - air) / 3000.0]
+
+    x = np.arange(0.0, 3000.1, 15.0)
+    sol = solve_ivp(rhs, (0, 3100), [10.0, 10.0], dense_output=True, rtol=1e-10, atol=1e-10)
+    noise = np.random.default_rng(8).normal(0, 0.02, x.size)
+    two = sol.sol(x)[0] + noise
+    one = 30.0 - 20.0 * np.exp(-x / 900.0) + noise
+    spec = Spec(noise_sd=0.02)
+    assert slowing(x + T0_EPOCH, two, spec)
+    assert not slowing(x + T0_EPOCH, one, spec)

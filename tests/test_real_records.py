@@ -163,3 +163,17 @@ def test_few_readings_widen_the_early_end_to_the_steepest_line(bench):
     fc = _run(rec, task)
     assert fc.eta_s is not None and fc.eta_lo_s is not None
     assert fc.eta_lo_s < 237 and _holds(fc, task.eta_true_s)
+
+
+def test_a_rate_that_falls_beyond_one_exponential_is_no_never(bench):
+    """A sensor in a closed chest warmed by a meter's own heat (cellularmitosis/logs, MIT):
+    halfway to the 27.5 degC threshold its air rises ever more slowly and every curve fitted
+    levels off near 26 degC; but the rate falls faster than one time constant lets it (the
+    chest's walls warm behind the air), so that level-off is only a lower bound on the change
+    to come.  The forecast keeps a crossing, says why by its code, leaves the late end open and
+    its early end (the steepest line of the newest readings) holds the truth."""
+    rec, task = _task(bench, "cm_chest_selfheating_warming", 0.5, 0.5)
+    fc = _run(rec, task)
+    assert NoteCode.SLOWING in [n.code for n in fc.notes]
+    assert fc.eta_s is not None and fc.eta_hi_s is None
+    assert _holds(fc, task.eta_true_s)
