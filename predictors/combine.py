@@ -202,8 +202,10 @@ def slowing(t: np.ndarray, y: np.ndarray, spec: Spec) -> bool:
             return False
         width = math.log(f.k_hi / f.k_lo) / (2.0 * Z90)
         se.append(width / math.sqrt(effective_share(f.residuals)))
-    z = math.log(fits[0].k_per_s / fits[1].k_per_s) / math.hypot(*se)
-    return z > SLOWING_Z
+    spread = math.hypot(*se)
+    if not spread > 0:
+        return False  # a rate pinned at the edge of its range: nothing to compare
+    return math.log(fits[0].k_per_s / fits[1].k_per_s) / spread > SLOWING_Z
 
 
 def combine(

@@ -107,7 +107,7 @@ def self_check(t: np.ndarray, y: np.ndarray, kw: dict) -> bool:
     if fit.eta_s is None:
         # it saw the curve levelling off short of a level the item then reached
         return fit.eta_lo_s is None or not math.isfinite(fit.eta_lo_s) or fit.eta_lo_s > actual
-    if abs(math.log(actual / fit.eta_s)) <= CHECK_FLOOR:
+    if fit.eta_s > 0 and abs(math.log(actual / fit.eta_s)) <= CHECK_FLOOR:
         return False  # within what averaging the newest level over a window does to its time
     lo, hi = fit.eta_lo_s, fit.eta_hi_s
     if lo is None or not lo > 0:

@@ -73,3 +73,15 @@ def test_a_falling_rate_tells_two_time_constants_from_one():
     spec = Spec(noise_sd=0.02)
     assert slowing(x + T0_EPOCH, two, spec)
     assert not slowing(x + T0_EPOCH, one, spec)
+
+
+def test_a_load_holding_steady_is_a_forecast_not_a_failure():
+    """A walk-in holding 4.5 degC with 0.2 degC scatter for an hour, limit 8 degC: the
+    self-check's first-half fit sees the level already reached (ETA 0), which is an answer,
+    not a division by zero; the forecast is made, with the ambient given and fitted."""
+    rng = np.random.default_rng(14)
+    t = T0_EPOCH + np.arange(0, 3600, 60.0)
+    y = 4.5 + rng.normal(0, 0.2, t.size)
+    for kw in ({"ambient": 4.5}, {}):
+        fc = forecast(t, y, 8.0, limit="upper", **kw)
+        assert fc.ok, fc.reason
