@@ -1,6 +1,7 @@
 """Pure numerics of thermeta: arrays in, numbers out; no I/O, no clock.
 
-The public entry point is :func:`forecast`, which returns a :class:`Forecast`.
+The public entry point is :func:`forecast`, which returns a :class:`Forecast`;
+:func:`forecast_levels` asks several thresholds of one series, its threshold-free fits done once.
 
 The public names load on first use (numpy and scipy with them), so a module that needs only a
 light part, such as ``predictors.result``, does not pay for the fits.
@@ -15,10 +16,15 @@ from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:
     from thermeta.predictors.curve import predict
-    from thermeta.predictors.forecast import Forecast, forecast
+    from thermeta.predictors.forecast import Forecast, forecast, forecast_levels
 
-__all__ = ["Forecast", "forecast", "predict"]
-_HOME = {"Forecast": "forecast", "forecast": "forecast", "predict": "curve"}
+__all__ = ["Forecast", "forecast", "forecast_levels", "predict"]
+_HOME = {
+    "Forecast": "forecast",
+    "forecast": "forecast",
+    "forecast_levels": "forecast",
+    "predict": "curve",
+}
 
 
 def __getattr__(name: str) -> Any:

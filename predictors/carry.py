@@ -29,6 +29,7 @@ from thermeta.predictors.regime import (
     split_disturbance,
 )
 from thermeta.predictors.result import Forecast
+from thermeta.predictors.shared import shared
 
 Z90 = 1.6449  # the two-sided 90 % point of the normal: a 90 % interval spans 2 Z90 sd
 CARRY_Z = 3.0  # |z| beyond this: the newest readings contradict the older regime's value
@@ -44,6 +45,7 @@ class Carried:
     y: np.ndarray
 
 
+@shared
 def short_door(
     tt: np.ndarray, yy: np.ndarray, min_points: int, margin: int = 2, inflation: float = 1.0
 ) -> int:

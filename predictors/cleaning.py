@@ -16,6 +16,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
+from thermeta.predictors.shared import shared
 
 MAD_TO_SD = 1.4826  # sd of a Gaussian = 1.4826 x its median absolute deviation
 # a pause of more than GAP_STEPS typical sampling steps (a logger's dropout) ends a run: a line
@@ -156,6 +157,7 @@ def gap_hampel_mask(
     return keep, sd
 
 
+@shared
 def clean(t: np.ndarray, y: np.ndarray, *, n_sigma: float = 6.0) -> Cleaned:
     """Order, dedupe and de-spike readings.  Never raises on bad values (only on bad shapes)."""
     t0 = np.asarray(t, dtype=float).ravel()

@@ -28,8 +28,12 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
+from scipy.special import ndtri
 from scipy.stats import t as t_dist
 from thermeta.predictors.candidates import BENDS, Candidate, Local, Lumped, Spec, fit_all
+from thermeta.predictors.lumped import fit_lumped
+from thermeta.predictors.shared import shared
+from thermeta.predictors.two_exp import effective_share
 
 ORIGINS = (0.25, 0.35, 0.5, 0.65, 0.8)  # backtest origins, as shares of the readings' span
 ENDS = (0.5, 1.0)  # levels reached halfway from the origin to the newest reading, and at it
@@ -41,6 +45,7 @@ NEVER_MARGIN = 0.2  # a level-off counts as clear when short of the threshold by
 CREDIBLE = 0.1  # a candidate with this share of the weight is credible
 OPEN_SHARE = 0.3  # the late end is open when candidates with this share of the weight say "never"
 Z90 = 1.6448536269514722
+SLOWING_Z = float(ndtri(0.99))  # one-sided 99 % normal point (scipy.special)
 FLOOR = 0.05  # the least rms of ln ETA errors the interval assumes (the backtest is short)
 MAX_BINS = 240  # longer regimes are averaged into this many bins for the fits
 
@@ -69,6 +74,9 @@ class Combined:
     n_points: int
     candidates: dict[str, Candidate] = field(default_factory=dict)
     never_clear: bool = False
+    # curves that level off short were overruled: the readings' rate falls beyond one
+    # exponential, so a level-off is only a lower bound on the change to come (slowing())
+    overruled: bool = False
 
 
 def binned(t: np.ndarray, y: np.ndarray, max_bins: int = MAX_BINS):
@@ -115,10 +123,25 @@ def log_error(est: float | None, actual: float) -> float:
     return min(abs(math.log(est / actual)), MISS)
 
 
-def combine(
-    t: np.ndarray, y: np.ndarray, spec: Spec, threshold: float, limit: str | None
-) -> Combined:
-    """Fit the candidates to (t, y), score them by backtest, and combine (module docstring)."""
+@dataclass
+class Scored:
+    """The candidates fitted to the (binned) readings and scored by their backtest: everything of
+    the combination that does not depend on the threshold."""
+
+    t: np.ndarray
+    y: np.ndarray
+    points: list[Point]
+    final: dict[str, Candidate]
+    ests: dict[str, list[float | None]]
+    scores: dict[str, float]
+    weights: dict[str, float]
+    slowing: bool = False  # the rate falls beyond one exponential (see slowing())
+
+
+@shared
+def score(t: np.ndarray, y: np.ndarray, spec: Spec) -> Scored:
+    """Fit the candidates to (t, y) and score them by backtest (module docstring); the local
+    curve's share of bend is set here."""
     t, y = binned(t, y)
     points = backtest_points(t, y)
     final = fit_all(t, y, spec)
@@ -141,7 +164,7 @@ def combine(
         if m == "local" and points:
             by_bend = {c: _score(local_ests[c], points) for c in BENDS}
             best_c = min(by_bend, key=lambda c: by_bend[c])
-            final[m].bend = best_c  # type: ignore[attr-defined]
+            final[m].bend = best_c
             ests[m] = local_ests[best_c]
             scores[m] = by_bend[best_c]
         else:
@@ -149,14 +172,54 @@ def combine(
     if not points:
         # too few readings to look back on: every candidate counts alike
         scores = {m: 0.0 for m in names}
-    if not names:
-        return Combined(None, None, None, {}, {}, "lumped", 0, final)
     raw = {m: 1.0 / (scores[m] + EPS) for m in names}
     total = sum(raw.values())
     weights = {m: raw[m] / total for m in names}
+    return Scored(t, y, points, final, ests, scores, weights, slowing(t, y, spec))
+
+
+def slowing(t: np.ndarray, y: np.ndarray, spec: Spec) -> bool:
+    """Whether the readings' rate falls over them beyond what one exponential allows: ln k of
+    one exponential through the newer half of the readings below the older half's by more than
+    SLOWING_Z of their combined standard errors (from the profile intervals, widened by n / n_eff
+    for correlated residuals).
+
+    A passive body relaxing toward one ambient is a sum of decaying modes of one sign, whose
+    apparent rate -T''/T' only falls as the fast modes die out; and the level-off of the newest
+    curve, now + T'/k_apparent = sum(k_i a_i)^2 / sum(k_i^2 a_i) (a_i the modes' amplitudes
+    now), is then no more than the change to come, sum(a_i) (Cauchy-Schwarz).  A rate seen to
+    fall says such modes are there: a level-off short of the threshold is a lower bound on how
+    far the item goes, not a "never"."""
+    mid = float(t[0]) + 0.5 * float(t[-1] - t[0])
+    old = t <= mid
+    if old.sum() < MIN_ORIGIN or (~old).sum() < MIN_ORIGIN:
+        return False
+    kw = spec.kwargs()
+    fits = [fit_lumped(t[sel], y[sel], float(y[-1]), **kw) for sel in (old, ~old)]
+    se = []
+    for f in fits:
+        if not f.ok or not f.k_lo or not f.k_hi or not f.k_per_s > 0:
+            return False
+        width = math.log(f.k_hi / f.k_lo) / (2.0 * Z90)
+        se.append(width / math.sqrt(effective_share(f.residuals)))
+    spread = math.hypot(*se)
+    if not spread > 0:
+        return False  # a rate pinned at the edge of its range: nothing to compare
+    return math.log(fits[0].k_per_s / fits[1].k_per_s) / spread > SLOWING_Z
+
+
+def combine(
+    t: np.ndarray, y: np.ndarray, spec: Spec, threshold: float, limit: str | None
+) -> Combined:
+    """Fit the candidates to (t, y), score them by backtest, and combine (module docstring)."""
+    s = score(t, y, spec)
+    t, y, final, weights = s.t, s.y, s.final, s.weights
+    names = list(weights)
+    if not names:
+        return Combined(None, None, None, {}, {}, "lumped", 0, final)
     etas = {m: final[m].eta(threshold, limit) for m in names}
     eta, never_clear = _point(
-        etas, weights, final, threshold, _overrides_given(spec, final, threshold)
+        etas, weights, final, threshold, _overrides_given(spec, final, threshold), s.slowing
     )
     if eta and _moving_away(t, y, threshold):
         # the newest readings clearly move away from the threshold: a curve that crosses it
@@ -164,8 +227,21 @@ def combine(
         eta, never_clear = None, True
         etas = {m: None for m in names}
     best = max(weights, key=lambda m: weights[m])
-    lo, hi = _interval(eta, etas, weights, ests, points)
-    return Combined(eta, lo, hi, weights, scores, best, len(points), final, never_clear)
+    lo, hi = _interval(eta, etas, weights, s.ests, s.points)
+    never_w = sum(weights[m] for m, e in etas.items() if e is None)
+    overruled = s.slowing and eta is not None and never_w > 0.5
+    return Combined(
+        eta,
+        lo,
+        hi,
+        dict(weights),
+        dict(s.scores),
+        best,
+        len(s.points),
+        final,
+        never_clear,
+        overruled,
+    )
 
 
 def _moving_away(t: np.ndarray, y: np.ndarray, threshold: float) -> bool:
@@ -208,14 +284,17 @@ def _point(
     cands,
     thr: float,
     keep_given: bool = False,
+    slows: bool = False,
 ) -> tuple[float | None, bool]:
-    """The weighted median of ln ETA; "never" only when clear (module docstring), and not
-    against a given ambient the readings do not contradict (``keep_given``)."""
+    """The weighted median of ln ETA; "never" only when clear (module docstring), not against
+    a given ambient the readings do not contradict (``keep_given``), and not when the readings'
+    rate falls beyond one exponential (``slows``: a level-off is then a lower bound)."""
     never = [m for m, e in etas.items() if e is None]
     finite = [m for m, e in etas.items() if e is not None]
     w_never = sum(weights[m] for m in never)
     clear = (
         w_never > 0.5
+        and not slows
         and all(_clear_level_off(cands[m], thr) for m in never)
         and not (keep_given and finite)
     )

@@ -30,11 +30,13 @@ from thermeta.predictors.context import AmbientMode, Context
 from thermeta.predictors.lumped import LumpedFit, fit_lumped
 from thermeta.predictors.outcome import NoteCode
 from thermeta.predictors.result import Forecast, never_reason
+from thermeta.predictors.shared import shared
 from thermeta.predictors.two_exp import effective_share, fit_two_exp
 from thermeta.predictors.wording import point, step
 
 RICH_MIN = 12  # the fewest readings the two-time-constant test is made on
 SHAPE_CONF = 0.999  # one exponential is rejected only on clear evidence
+RSS_FLOOR = 1e-7  # residuals below this share of the readings' range are rounding, not misfit
 METHOD = (
     "conformal: the combined forecast's own errors in a rolling-origin backtest on the item's "
     "readings, widened with its reach"
@@ -57,6 +59,7 @@ def inflation(residuals: np.ndarray) -> float:
     return 1.0 / effective_share(r)
 
 
+@shared
 def shape_test(t: np.ndarray, y: np.ndarray, spec: Spec) -> float:
     """The F statistic of two time constants over one (correlation allowed for) divided by its
     SHAPE_CONF point: > 1 means one exponential does not explain the readings."""
@@ -67,6 +70,8 @@ def shape_test(t: np.ndarray, y: np.ndarray, spec: Spec) -> float:
     two = fit_two_exp(tb, yb, **spec.kwargs())
     if not (one.ok and two.ok) or two.rss <= 0:
         return 0.0
+    if one.rss <= tb.size * (RSS_FLOOR * float(np.ptp(yb))) ** 2:
+        return 0.0  # one exponential explains the readings to rounding: nothing to test
     # the readings' correlation, as the lesser of two estimates: the two-time-constant fit's
     # residuals' (which a misfit inflates) and the binned readings' residuals from a local
     # line (which coarse steps inflate)
@@ -78,9 +83,11 @@ def shape_test(t: np.ndarray, y: np.ndarray, spec: Spec) -> float:
 
 CHECK_ORIGIN = 0.5  # the self-check forecasts the newest level from the first half's fit
 CHECK_MIN = 20  # readings the first half needs (fewer: its interval is too rough a yardstick)
+CHECK_FLOOR = 0.05  # a miss by less than 5 % in time is no evidence against the model
 CHECK_WIDEN = 3.2905 / 1.6449  # from the 90 % interval to about the 99.9 % one (normal points)
 
 
+@shared
 def self_check(t: np.ndarray, y: np.ndarray, kw: dict) -> bool:
     """Whether one exponential fitted to the first half of the readings forecast when the
     newest level would be reached outside its own interval widened to about 99.9 %: the readings
@@ -103,6 +110,8 @@ def self_check(t: np.ndarray, y: np.ndarray, kw: dict) -> bool:
     if fit.eta_s is None:
         # it saw the curve levelling off short of a level the item then reached
         return fit.eta_lo_s is None or not math.isfinite(fit.eta_lo_s) or fit.eta_lo_s > actual
+    if fit.eta_s > 0 and abs(math.log(actual / fit.eta_s)) <= CHECK_FLOOR:
+        return False  # within what averaging the newest level over a window does to its time
     lo, hi = fit.eta_lo_s, fit.eta_hi_s
     if lo is None or not lo > 0:
         return hi is not None and actual > hi * math.exp(_widen(fit.eta_s, hi))

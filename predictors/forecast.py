@@ -12,6 +12,8 @@ and its code.  Bad arguments (an unknown model, mismatched lengths) raise ValueE
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
+from typing import Any
 
 import numpy as np
 from numpy.typing import ArrayLike
@@ -25,6 +27,7 @@ from thermeta.predictors.outcome import NoteCode, Reason
 from thermeta.predictors.prior import Prior
 from thermeta.predictors.regime import find_regime, oldest_regime_end
 from thermeta.predictors.result import Forecast
+from thermeta.predictors.shared import shared_fits
 from thermeta.predictors.wording import DisplayUnit, showing
 
 MODELS = MODEL_NAMES
@@ -250,3 +253,20 @@ def _first_reading(t, y, tt, window_s) -> float | None:
     if window_s is not None:
         raw = raw[raw >= tt[-1] - window_s]
     return float(min(raw.min(), tt[0])) if raw.size else float(tt[0])
+
+
+def forecast_levels(
+    t: ArrayLike,
+    y: ArrayLike,
+    questions: Sequence[tuple[float, str | None]],
+    **kwargs: Any,
+) -> list[Forecast]:
+    """Several questions of one series: one Forecast per ``(threshold, limit)``, each exactly
+    what :func:`forecast` gives for it alone.  The steps that read the readings only (cleaning,
+    the regime search, the shape test, the candidates' backtest) are done once for all of them
+    (:mod:`thermeta.predictors.shared`); ``kwargs`` are :func:`forecast`'s other arguments."""
+    if "threshold" in kwargs or "limit" in kwargs:
+        raise ValueError("forecast_levels takes each threshold and limit in its questions")
+    ta, ya = np.asarray(t, dtype=float), np.asarray(y, dtype=float)
+    with shared_fits():
+        return [forecast(ta, ya, thr, limit=limit, **kwargs) for thr, limit in questions]

@@ -24,6 +24,12 @@ from thermeta.predictors.combined_forecast import (
     spec_of,
 )
 from thermeta.predictors.context import AmbientMode, Context
+from thermeta.predictors.direction import (
+    hold_acceleration,
+    note_slowing,
+    open_untested_never,
+    widen_untested_early_end,
+)
 from thermeta.predictors.lumped import LumpedFit, fit_lumped, shrunk_eta
 from thermeta.predictors.model import Model
 from thermeta.predictors.outcome import NoteCode, Reason
@@ -108,6 +114,9 @@ def lumped_forecast(ctx: Context, fc: Forecast) -> Forecast:
             fc.params = {}
             note_given_ambient(fc, ctx)
             combined_forecast(fc, comb, fit)
+            if comb.overruled:
+                note_slowing(fc, ctx)
+            hold_acceleration(fc, ctx)
             note_ambient_agreement(fc, ctx, fit.ambient)
             return fc
         infl = inflation(fit.residuals)
@@ -119,10 +128,14 @@ def lumped_forecast(ctx: Context, fc: Forecast) -> Forecast:
                 f"as about {tt.size / infl:.0f} independent ones, and the interval is that wide",
             )
     fill_lumped(fc, fit, ctx)
+    open_untested_never(fc, ctx, fit, tt.size) or widen_untested_early_end(fc, ctx, tt.size)
+    hold_acceleration(fc, ctx)
     if fc.eta_s and no_trend(tt, yy, ctx):
         # not a rate taken from the edge of the fit's own grid: the readings' own straight
         # trend, with the interval's late end open
         fc.eta_s, fc.eta_hi_s = trend_eta(tt, yy, ctx), None
+        if fc.eta_s is not None and fc.eta_lo_s is not None:
+            fc.eta_lo_s = min(fc.eta_lo_s, fc.eta_s)
         fc.note(
             NoteCode.NO_TREND,
             "the readings hardly move yet (their change is within their scatter and steps), so "

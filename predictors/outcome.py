@@ -57,6 +57,9 @@ class NoteCode(StrEnum):
     TREND_OVER_LEVEL_OFF = "trend_over_level_off"
     NEVER_AWAY = "never_moving_away"
     NEVER_LEVELS_OFF = "never_levels_off"
+    NEVER_UNTESTED = "never_untested"  # a level-off too few readings can test: an open late end
+    SLOWING = "slowing"  # the rate falls beyond one exponential: a level-off is a lower bound
+    ACCELERATING = "accelerating"  # the readings speed up toward the threshold
     EARLIEST_CROSSING = "earliest_crossing"
     MODEL_CHOICE = "model_choice"
     MODEL_NOTE = "model_note"  # a remark of a model's own fit (the core-probe models)

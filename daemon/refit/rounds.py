@@ -62,6 +62,7 @@ from thermeta.predictors import forecast
 from thermeta.predictors.outcome import Reason
 from thermeta.predictors.prior import Prior, learn, learnable
 from thermeta.predictors.result import Forecast
+from thermeta.predictors.shared import shared_fits
 from thermeta.storage.episodes import Episode
 from thermeta.storage.priors import PriorStore
 from thermeta.storage.store import Store
@@ -284,18 +285,19 @@ class Refitter:
         )
         fcs: list[Forecast | None] = []
         made: dict[tuple[float, Side | None], Forecast] = {}
-        for i, lv in enumerate(levels):
-            key = (lv.threshold_c, sides.get(lv.name))
-            if key not in made:
-                kw = forecast_kwargs(cfg, key[1], amb_t, amb_y)
-                made[key] = self._fit(
-                    name, cfg, mode, t_fit, y_fit, rows, lv.threshold_c, prior, kw
-                )
-                if i == 0 and mode != "measured":
-                    self._learn_from(
-                        name, cls, made[key], prior, now, episode, t_fit, y_fit, lv, kw
+        with shared_fits():  # one window, several levels: its threshold-free fits made once
+            for i, lv in enumerate(levels):
+                key = (lv.threshold_c, sides.get(lv.name))
+                if key not in made:
+                    kw = forecast_kwargs(cfg, key[1], amb_t, amb_y)
+                    made[key] = self._fit(
+                        name, cfg, mode, t_fit, y_fit, rows, lv.threshold_c, prior, kw
                     )
-            fcs.append(made[key])
+                    if i == 0 and mode != "measured":
+                        self._learn_from(
+                            name, cls, made[key], prior, now, episode, t_fit, y_fit, lv, kw
+                        )
+                fcs.append(made[key])
         tally = (
             None if episode is None else self.keeper.tally(name, levels, sides, episode, item_id, t)
         )
