@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import importlib
 import logging
+import math
 import os
 import threading
 import time
@@ -201,8 +202,12 @@ class Service:
         return self.refitter.run_once()
 
     def prune(self) -> None:
-        keep_s = self.config.storage.retention_days * 86400.0
-        gone = self.store.prune(self.clock.now() - keep_s)
+        st, now = self.config.storage, self.clock.now()
+        history_s = st.retention_days if st.history_days is None else st.history_days
+        gone = self.store.prune(
+            now - st.retention_days * 86400.0,
+            history_before_ts=now - history_s * 86400.0 if history_s > 0 else -math.inf,
+        )
         if any(gone.values()):
             log.info(
                 "retention removed %(readings)d readings, %(forecasts)d forecasts, "

@@ -118,6 +118,7 @@ class StorageConfig(Table):
         repr=False,
     )
     retention_days: NonNegative = 90.0  # 0 keeps everything
+    history_days: NonNegative | None = None  # forecast history; default retention_days
     batch_size: PositiveInt = 500
     batch_ms: PositiveInt = 200
 
