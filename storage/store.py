@@ -430,6 +430,42 @@ class Store:
         with self.reading() as conn:
             return [(float(t), float(v)) for t, v in conn.execute(q.order_by(readings.c.ts))]
 
+    def windows(
+        self, wanted: Sequence[tuple[int, float | None]]
+    ) -> dict[int, tuple[list[float], list[float]]]:
+        """(ts, value_degC) lists of many items, each from its own ``since`` (None: all), oldest
+        first: one query per :data:`CHUNK` items (the refit round's read)."""
+        out: dict[int, tuple[list[float], list[float]]] = {}
+        for k in range(0, len(wanted), CHUNK):
+            chunk = wanted[k : k + CHUNK]
+            since = dict(chunk)
+            q = select(readings.c.item_id, readings.c.ts, readings.c.value_c).where(
+                readings.c.item_id.in_(list(since))
+            )
+            if all(v is not None for v in since.values()):
+                q = q.where(readings.c.ts >= min(v for v in since.values() if v is not None))
+            q = q.order_by(readings.c.item_id, readings.c.ts)
+            with self.reading() as conn:
+                if self.dialect == "sqlite":  # the driver's rows (see recent_readings)
+                    sql = str(q.compile(conn, compile_kwargs={"literal_binds": True}))
+                    cur = conn.connection.dbapi_connection.cursor()  # type: ignore[union-attr]
+                    try:
+                        rows = cur.execute(sql).fetchall()
+                    finally:
+                        cur.close()
+                else:
+                    rows = list(conn.execute(q))
+            for iid, t, v in rows:
+                low = since[iid]
+                if low is not None and t < low:
+                    continue
+                got = out.get(iid)
+                if got is None:
+                    got = out[iid] = ([], [])
+                got[0].append(float(t))
+                got[1].append(float(v))
+        return out
+
     def recent_series(
         self, since_ts: float, kind: str | None = "load"
     ) -> dict[str, list[tuple[float, float]]]:
