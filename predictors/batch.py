@@ -33,7 +33,7 @@ Not here (the caller sends them the per-item way): a measured ambient, the core-
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from enum import StrEnum
 from typing import Any
 
@@ -107,6 +107,7 @@ class Series:
     ambient_sd: float = 2.5
     ambient_within: float | None = None
     min_points: int | None = None
+    thresholds: tuple[float, ...] = ()  # the crossings' intervals to compute with the batch
 
 
 @dataclass
@@ -126,6 +127,9 @@ class Prepared:
     w: float  # fit_lumped's bend weight (fitted ambient), 1 otherwise
     line: tuple[float, float]  # the straight line through the centred readings: (slope, icpt)
     still: bool  # lumped_forecast.no_trend: the readings do not move
+    # per threshold (degC): the crossing's interval ends over the grid, computed with the batch
+    # (lumped_profile.eta_sets' nanmin of the early ends, nanmax of the late ends; NaN: empty)
+    bounds: dict[float, tuple[float, float]] = field(default_factory=dict)
 
     def forecast(
         self, threshold: float, limit: str | None = None, shown: DisplayUnit | None = None
@@ -164,12 +168,15 @@ class Prepared:
         if fit.eta_s == 0.0:
             fit.eta_lo_s = fit.eta_hi_s = 0.0
             return fit
-        lo, hi = eta_sets(self.sums, self.a_u, self.b_u, self.delta, thr, D, self.lam)
-        if np.all(np.isnan(lo)):
+        ends = self.bounds.get(threshold)
+        if ends is None:
+            lo, hi = eta_sets(self.sums, self.a_u, self.b_u, self.delta, thr, D, self.lam)
+            ends = _ends(lo, hi)
+        if math.isnan(ends[0]):
             fit.eta_lo_s = fit.eta_hi_s = None
             return fit
-        fit.eta_lo_s = float(np.nanmin(lo))
-        top = float(np.nanmax(hi))
+        fit.eta_lo_s = ends[0]
+        top = ends[1]
         fit.eta_hi_s = None if math.isinf(top) else top
         if fit.eta_s is not None:
             fit.eta_lo_s = min(fit.eta_lo_s, fit.eta_s)
@@ -203,6 +210,28 @@ class Prepared:
             return Flag.NO_TREND
         note_ambient_agreement(fc, ctx, fit.ambient)
         return fc
+
+
+def _ends(lo: np.ndarray, hi: np.ndarray) -> tuple[float, float]:
+    if np.all(np.isnan(lo)):
+        return math.nan, math.nan
+    return float(np.nanmin(lo)), float(np.nanmax(hi))
+
+
+def _all_ends(A: dict, rows: np.ndarray, thr_c: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """lumped_profile.eta_sets for many (row, threshold) pairs at once: each pair's earliest and
+    latest crossing over the row's grid (NaN where no curve inside the region crosses)."""
+    s = A["s"]
+    sub = Sums(s.k[rows], A["n"][rows, None], 0.0, 0.0, s.Se[rows], s.See[rows], s.Sye[rows])
+    args: tuple[Any, Any, Any] = (thr_c[:, None], A["D"][rows, None], A["fits"].lam[rows, None])
+    lo, hi = eta_sets(sub, A["a_u"][rows], A["b_u"][rows], A["delta"][rows], *args)
+    empty = np.all(np.isnan(lo), axis=1)
+    with np.errstate(all="ignore"):
+        lo_min, hi_max = (
+            np.nanmin(np.where(empty[:, None], 0.0, lo), axis=1),
+            np.nanmax(np.where(empty[:, None], 0.0, hi), axis=1),
+        )
+    return np.where(empty, np.nan, lo_min), np.where(empty, np.nan, hi_max)
 
 
 _FIT_FIELDS = (
@@ -333,9 +362,10 @@ class _Fits:
     rss: np.ndarray
     lam: np.ndarray
     edge: np.ndarray
+    grid: _Sums  # the sums on the shared grid (kD / D per row), reused by the intervals
 
 
-def _best_k(d, yc, W, D, lam, a0, lo, hi) -> tuple[np.ndarray, np.ndarray]:
+def _best_k(d, yc, W, grid: _Sums, lam, a0, lo, hi) -> tuple[np.ndarray, np.ndarray]:
     """ln k of the least RSS and whether it lies at the grid's edge: the shared grid's best
     point, then golden-section steps within its neighbours to fit_lumped's tolerance, for all
     rows at once (parabolic steps were tried: where the ambient meets its bound the profile has
@@ -345,8 +375,8 @@ def _best_k(d, yc, W, D, lam, a0, lo, hi) -> tuple[np.ndarray, np.ndarray]:
         return _solve(_sums(d, yc, W, np.exp(x[:, None])), lam, a0, lo, hi)[2][:, 0]
 
     N = d.shape[0]
-    lk_grid = np.log(KD_GRID)[None, :] - np.log(D)[:, None]
-    r = _solve(_sums(d, yc, W, np.exp(lk_grid)), lam, a0, lo, hi)[2]
+    lk_grid = np.log(grid.k)
+    r = _solve(grid, lam, a0, lo, hi)[2]
     i = np.argmin(r, axis=1)
     edge = (i == 0) | (i == KD_GRID.size - 1)
     rows = np.arange(N)
@@ -397,15 +427,16 @@ def _fit(T, Y, W, amb, amb_sd, lo_b, hi_b, noise_sd) -> tuple[_Fits, dict]:
     col = lambda v: v[:, None]  # noqa: E731 - one row's scalar against its k row
     lam = np.where(given & (amb_sd <= 0), np.inf, 0.0)
     sig = np.where(noise_sd > 0, noise_sd, 0.1 * spread)
+    grid = _sums(d, yc, W, KD_GRID[None, :] / D[:, None])  # the same for every lam
     for _ in range(2 if prior.any() else 1):
         lam = np.where(prior, sig**2 / np.where(prior, amb_sd, 1.0) ** 2, lam)
-        lk, edge = _best_k(d, yc, W, D, col(lam), col(a0), col(lo), col(hi))
+        lk, edge = _best_k(d, yc, W, grid, col(lam), col(a0), col(lo), col(hi))
         r = _solve(_sums(d, yc, W, np.exp(lk[:, None])), col(lam), col(a0), col(lo), col(hi))[2]
         sig = np.where(prior, np.maximum(np.sqrt(r[:, 0] / dof), 1e-9), sig)
     k = np.exp(lk)
     a, b, r = (v[:, 0] for v in _solve(_sums(d, yc, W, k[:, None]), *map(col, (lam, a0, lo, hi))))
     geo = dict(n=n, D=D, d=d, yc=yc, ybar=ybar, lo=lo, hi=hi, a0=a0, dof=dof, n_par=n_par)
-    return _Fits(k, a, b, r, lam, edge), geo
+    return _Fits(k, a, b, r, lam, edge, grid), geo
 
 
 def _profile_interval(x: np.ndarray, prof: np.ndarray, cut: np.ndarray, x_hat: np.ndarray):
@@ -623,6 +654,13 @@ def _prepare_group(series: list[Series]) -> list[Prepared | Flag]:
     still = np.abs(A["slope"]) * D < np.maximum(2.0 * np.sqrt(s2 / A["sxx"]) * D, q)
     flag(_self_check(T, Y, amb, q), Flag.DOUBT)
     rows = _rows(A, series, T, amb, q, still)
+    pairs = [(i, th) for i, sr in enumerate(series) if flags[i] is None for th in sr.thresholds]
+    if pairs:
+        at = np.array([i for i, _ in pairs])
+        ths = np.array([th for _, th in pairs], float)
+        lo, hi = _all_ends(A, at, ths - A["ybar"][at])
+        for (i, th), a, b in zip(pairs, lo, hi):
+            rows[i].bounds[float(th)] = (float(a), float(b))
     return [fl if fl is not None else r for fl, r in zip(flags, rows)]
 
 
@@ -647,7 +685,7 @@ def _grid(fits: _Fits, g: dict, W: np.ndarray, cut: np.ndarray):
     """lumped_profile.add_intervals's grid per row: the shared coarse grid, a fine one around
     k_hat as wide as the RSS's curvature in ln k says, and k_hat; the sums on it, the profile
     RSS, the unclipped (a, b) per k and the margin to the cut inside the region (-1 outside)."""
-    k, lam, D = fits.k, fits.lam, g["D"]
+    k, lam = fits.k, fits.lam
     d, yc = g["d"], g["yc"]
     ab = (lam[:, None], g["a0"][:, None], g["lo"][:, None], g["hi"][:, None])
     lk = np.log(k)
@@ -655,13 +693,25 @@ def _grid(fits: _Fits, g: dict, W: np.ndarray, cut: np.ndarray):
     curv = (r3[:, 0] + r3[:, 2] - 2 * r3[:, 1]) / 0.01**2
     room = np.maximum(2 * (cut - fits.rss), 0.0) / np.where(curv > 0, curv, 1.0)
     hw = np.clip(np.where(curv > 0, np.sqrt(room), 3.0), 1e-5, 3.0)
-    parts = [
-        KD_GRID[None, :] / D[:, None],
-        np.exp(lk[:, None] + FINE[None, :] * hw[:, None]),
-        k[:, None],
-    ]
-    k_all = np.sort(np.concatenate(parts, axis=1), axis=1)
-    s = _sums(d, yc, W, k_all)
+    fine = _sums(
+        d, yc, W, np.concatenate([np.exp(lk[:, None] + FINE * hw[:, None]), k[:, None]], 1)
+    )
+    g0 = fits.grid
+    order = np.argsort(np.concatenate([g0.k, fine.k], axis=1), axis=1)
+
+    def joined(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+        return np.take_along_axis(np.concatenate([a, b], axis=1), order, axis=1)
+
+    s = _Sums(
+        joined(g0.k, fine.k),
+        g0.n,
+        g0.Sy,
+        g0.Syy,
+        joined(g0.Se, fine.Se),
+        joined(g0.See, fine.See),
+        joined(g0.Sye, fine.Sye),
+    )
+    k_all = s.k
     r_k = _solve(s, *ab)[2]
     inside = r_k <= cut[:, None]
     inside = np.where(inside.any(axis=1, keepdims=True), inside, k_all == k[:, None])
@@ -689,7 +739,11 @@ def _self_check(T: np.ndarray, Y: np.ndarray, amb: _Ambient, q: np.ndarray) -> n
     A = _analyse(T, Y, W, amb)
     dummy = [Series(T[i], Y[i]) for i in range(N)]
     rows = _rows(A, dummy, T, amb, q, np.zeros(N, bool))
-    for i in np.flatnonzero(usable):
+    at = np.flatnonzero(usable)
+    lo, hi = _all_ends(A, at, level[at] - A["ybar"][at])
+    for i, a, b in zip(at, lo, hi):
+        rows[i].bounds[float(level[i])] = (float(a), float(b))
+    for i in at:
         p = rows[i]
         if actual[i] <= 0 or abs(level[i] - p.fit.value_fit_now) < 1e-12:
             continue

@@ -18,6 +18,7 @@ from typing import Any
 
 import numpy as np
 from thermeta.daemon.config import ItemConfig
+from thermeta.daemon.levels.spec import levels_of
 from thermeta.daemon.units import scale_to_celsius
 from thermeta.predictors.batch import Flag, Prepared, Series, prepare
 from thermeta.predictors.prior import Prior
@@ -62,7 +63,12 @@ class Batch:
                 within = scale_to_celsius(cfg.ambient_within, cfg.unit)
             series.append(
                 Series(
-                    ta, ya, ambient=cfg.ambient_c, ambient_within=within, min_points=cfg.min_points
+                    ta,
+                    ya,
+                    ambient=cfg.ambient_c,
+                    ambient_within=within,
+                    min_points=cfg.min_points,
+                    thresholds=tuple(sorted({lv.threshold_c for lv in levels_of(cfg)})),
                 )
             )
             ids.append(iid)
