@@ -53,6 +53,8 @@ class Service:
         self.scheduler: Any = None
         self.plugins: list[Any] = []
         self.started_at: float | None = None
+        self.started_mono: float | None = None  # time.monotonic() at start (daemon/metrics.py)
+        self.http: Any = None  # the [http] figures' server, when listening
         self.stopped = threading.Event()
         self._rate = {"t": time.monotonic(), "n": 0, "per_s": 0.0}
 
@@ -110,6 +112,11 @@ class Service:
         self.link.start()
         self._start_scheduler()
         self.started_at = self.clock.now()
+        self.started_mono = time.monotonic()
+        if cfg.http.listen:
+            from thermeta.daemon.metrics import MetricsServer
+
+            self.http = MetricsServer(self, cfg.http.listen).start()
         log.info(
             "watching %d topic filter(s); forecasts on %s/<item>",
             len(self.router.filters()),
@@ -238,6 +245,8 @@ class Service:
         if self.stopped.is_set():
             return
         log.info("stopping: flushing queued readings")
+        if self.http is not None:
+            self.http.stop()
         if self.link is not None:
             self.link.stop_receiving()
         self.writer.stop()

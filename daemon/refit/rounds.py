@@ -157,6 +157,8 @@ class Refitter:
         self._error_logged: dict[str, float] = {}
         self.runs = 0
         self.last_run_s = 0.0
+        self.total_run_s = 0.0  # all rounds' time, for the service's figures (daemon/metrics.py)
+        self.finished_at: float | None = None  # time.monotonic() at the newest round's end
         self._predict: Callable[..., Forecast] = forecast  # a seam for tests
         self.prior_store = PriorStore(store)
         self.priors: dict[str, Prior] = {}  # by prior class, loaded on first use
@@ -213,7 +215,9 @@ class Refitter:
                 except Exception:  # noqa: BLE001
                     log.exception("could not record the refit time")
             self.runs += 1
-            self.last_run_s = time.monotonic() - t0
+            self.finished_at = time.monotonic()
+            self.last_run_s = self.finished_at - t0
+            self.total_run_s += self.last_run_s
             return done
 
     def _flush(self, pending: list[_Refitted], now: float, done: dict[str, ItemState]) -> None:
