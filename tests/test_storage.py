@@ -276,3 +276,17 @@ def test_a_store_made_before_keeps_working_and_upgrades(tmp_path):
     store.write_batch(rows(a, [300, 400]))
     assert [t for t, _ in store.recent_readings("a")] == [100.0, 200.0, 300.0, 400.0]
     store.close()
+
+
+def test_many_items_windows_in_one_read(store):
+    """windows() gives each item's readings from its own start (None: all), oldest first, the
+    same as one recent_readings() per item; an item without readings is absent."""
+    a = store.ensure_item("a", now=1.0)
+    b = store.ensure_item("b", now=1.0)
+    c = store.ensure_item("c", now=1.0)
+    store.write_batch(rows(a, [100, 200, 300]) + rows(b, [150, 250, 350]))
+    got = store.windows([(a, 150.0), (b, None), (c, 0.0)])
+    assert set(got) == {a, b}
+    for iid, since in ((a, 150.0), (b, None)):
+        t, v = got[iid]
+        assert list(zip(t, v)) == store.recent_readings(iid, since_ts=since)
