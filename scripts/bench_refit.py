@@ -258,6 +258,41 @@ def _agree(batch: dict, item: dict) -> None:
         print(f"bench_refit: {off} items differ between the ways", file=sys.stderr)
 
 
+def estimator(family: str, n_items: int, seed: int, sample: int = 300) -> dict:
+    """The estimator alone, no store: ``predictors.batch`` over ``n_items`` windows in chunks of
+    the refitter's size (prepare and one forecast each), against ``forecast()`` per item on the
+    first ``sample`` of them (the per-item way's cost per item does not depend on N)."""
+    from thermeta.daemon.refit.batched import CHUNK
+    from thermeta.predictors import forecast
+    from thermeta.predictors.batch import Flag, Series, prepare
+
+    ambient = 25.0 if family == "known" else None
+    batch_s, flagged, done = 0.0, 0, 0
+    for at in range(0, n_items, CHUNK):
+        series = []
+        for i in range(at, min(n_items, at + CHUNK)):
+            t, y, _, _ = _series(family, i, seed)
+            t, y = t[:-30], y[:-30]  # the history, as a round sees it (the spare half hour cut)
+            series.append(Series(t, y, ambient=ambient, thresholds=(8.0,)))
+        t0 = time.perf_counter()
+        for p in prepare(series):
+            out = p if isinstance(p, Flag) else p.forecast(8.0, "upper")
+            flagged += isinstance(out, Flag)
+        batch_s += time.perf_counter() - t0
+        done += len(series)
+    t0 = time.perf_counter()
+    for i in range(min(sample, n_items)):
+        t, y, _, _ = _series(family, i, seed)
+        forecast(t[:-30], y[:-30], 8.0, ambient=ambient, limit="upper")
+    item_ms = 1000 * (time.perf_counter() - t0) / min(sample, n_items)
+    return {
+        "batch_us": 1e6 * batch_s / done,
+        "item_ms": item_ms,
+        "flagged": flagged / done,
+        "batch_s": batch_s,
+    }
+
+
 DESCRIBE = {
     "known": "lumped, ambient given",
     "levels": "lumped, ambient given, 3 levels",
@@ -274,6 +309,11 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--rounds", type=int, default=3, help="live rounds after the first")
     ap.add_argument("--seed", type=int, default=1)
     ap.add_argument("--ways", default="batch,item", help="batch, item or both (batch,item)")
+    ap.add_argument(
+        "--estimator",
+        metavar="N,N",
+        help="instead: the batched estimator alone (no store, no round) at these item counts",
+    )
     ap.add_argument(
         "--families", default=",".join(DESCRIBE), help="comma list of: " + ", ".join(DESCRIBE)
     )
@@ -295,6 +335,8 @@ def main(argv: list[str] | None = None) -> int:
             file=sys.stderr,
         )
         return 2
+    if args.estimator:
+        return _estimator_table(args, families)
     ways = [w.strip() for w in args.ways.split(",") if w.strip()]
     if not ways or any(w not in ("batch", "item") for w in ways):
         print(
@@ -338,6 +380,39 @@ def main(argv: list[str] | None = None) -> int:
                 built["db"].unlink()
     peak_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     print(f"\n{time.perf_counter() - started:.0f} s in all; peak RSS {peak_mb:.0f} MB.")
+    return 0
+
+
+def _estimator_table(args: argparse.Namespace, families: list[str]) -> int:
+    try:
+        sizes = [int(x) for x in args.estimator.split(",") if x.strip()]
+    except ValueError:
+        print("bench_refit: --estimator must be a comma list of whole numbers", file=sys.stderr)
+        return 2
+    print(
+        f"Measured by `python scripts/bench_refit.py --estimator {args.estimator} --families "
+        f"{','.join(families)}`: the estimator alone on the windows (2 h of one-minute "
+        "readings), in chunks of the refitter's size; the per-item forecast() timed on 300 of "
+        "them.  Flagged items would go one by one: their time is not in the batch column.\n"
+    )
+    print(
+        "| family | items | batch, µs per item | batch, whole run | flagged | forecast(), ms "
+        "per item | ratio |"
+    )
+    print("|---|---|---|---|---|---|---|")
+    for fam in families:
+        if fam not in ("known", "fitted"):
+            continue
+        for n in sizes:
+            r = estimator(fam, n, args.seed)
+            print(
+                f"| {DESCRIBE[fam]} | {n} | {r['batch_us']:.0f} | {r['batch_s']:.1f} s | "
+                f"{100 * r['flagged']:.0f} % | {r['item_ms']:.2f} | "
+                f"{1000 * r['item_ms'] / r['batch_us']:.0f} x |",
+                flush=True,
+            )
+    peak_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    print(f"\npeak RSS {peak_mb:.0f} MB.")
     return 0
 
 

@@ -55,3 +55,14 @@ def test_table_and_bad_arguments(capsys):
         assert b.main(bad) == 2
         err = capsys.readouterr().err
         assert len(err.strip().splitlines()) == 1
+
+
+def test_estimator_table(capsys):
+    """--estimator times the batched estimator alone against forecast() per item: one row per
+    family and count, the flagged share and the ratio filled."""
+    b = load()
+    assert b.main(["--estimator", "30", "--families", "fitted"]) == 0
+    rows = [ln for ln in capsys.readouterr().out.splitlines() if ln.startswith("| lumped")]
+    assert len(rows) == 1 and rows[0].split("|")[2].strip() == "30"
+    assert rows[0].split("|")[7].strip().endswith(" x")
+    assert b.main(["--estimator", "x"]) == 2
