@@ -112,3 +112,34 @@ def test_a_bad_listen_address_is_named_with_its_line(tmp_path):
     with pytest.raises(ConfigError) as exc:
         load_config(p)
     assert any("c.toml:2: http.listen: must be" in line for line in exc.value.problems)
+
+
+def test_health_says_when_rounds_overrun_or_stop():
+    """/healthz's judgement (daemon/metrics.health) on a service's state: well; a round longer
+    than refit_every; no round finished for more than two refit_every after the last one; the
+    broker gone.  (A stand-in service: the logic only; the real one is scraped above.)"""
+    import threading
+    from types import SimpleNamespace
+
+    from thermeta.daemon.metrics import health
+
+    up = threading.Event()
+    up.set()
+    rf = SimpleNamespace(runs=3, last_run_s=2.0, finished_at=1000.0)
+    svc = SimpleNamespace(
+        link=SimpleNamespace(connected=up),
+        refitter=rf,
+        config=SimpleNamespace(fit=SimpleNamespace(refit_every_s=30.0)),
+        clock=SimpleNamespace(rate=1.0),
+        started_mono=900.0,
+    )
+    assert health(svc, now=1010.0) == []
+    rf.last_run_s = 45.0
+    assert health(svc, now=1010.0) == [
+        "refit: the newest round took 45.0 s, longer than refit_every (30 s)"
+    ]
+    rf.last_run_s = 2.0
+    assert health(svc, now=1000.0 + 3 * 30.0 + 1.0) == []
+    assert health(svc, now=1000.0 + 3 * 30.0 + 3.0) == ["refit: no round finished for 93 s"]
+    up.clear()
+    assert health(svc, now=1010.0) == ["broker: not connected"]
