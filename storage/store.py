@@ -11,6 +11,7 @@ from __future__ import annotations
 import importlib
 import json
 import sqlite3
+import sys
 import time
 from collections.abc import Iterable, Iterator, Sequence
 from contextlib import contextmanager
@@ -19,9 +20,12 @@ from typing import Any
 
 from sqlalchemy import (
     Connection,
+    Double,
     Engine,
+    Integer,
     and_,
     bindparam,
+    column,
     create_engine,
     delete,
     event,
@@ -30,6 +34,7 @@ from sqlalchemy import (
     inspect,
     select,
     update,
+    values,
 )
 from sqlalchemy.engine import make_url
 from sqlalchemy.exc import IntegrityError, SQLAlchemyError
@@ -437,14 +442,23 @@ class Store:
         first: one query per :data:`CHUNK` items (the refit round's read)."""
         out: dict[int, tuple[list[float], list[float]]] = {}
         for k in range(0, len(wanted), CHUNK):
-            chunk = wanted[k : k + CHUNK]
-            since = dict(chunk)
-            q = select(readings.c.item_id, readings.c.ts, readings.c.value_c).where(
-                readings.c.item_id.in_(list(since))
+            # each item from its own start (a silent item's early start reads no one else's)
+            w = (
+                values(column("item_id", Integer), column("since", Double), name="wanted")
+                .data(
+                    [
+                        (iid, -sys.float_info.max if v is None else v)
+                        for iid, v in wanted[k : k + CHUNK]
+                    ]
+                )
+                .cte("wanted")
             )
-            if all(v is not None for v in since.values()):
-                q = q.where(readings.c.ts >= min(v for v in since.values() if v is not None))
-            q = q.order_by(readings.c.item_id, readings.c.ts)
+            q = (
+                select(readings.c.item_id, readings.c.ts, readings.c.value_c)
+                .select_from(w)
+                .join(readings, and_(readings.c.item_id == w.c.item_id, readings.c.ts >= w.c.since))
+                .order_by(readings.c.item_id, readings.c.ts)
+            )
             with self.reading() as conn:
                 if self.dialect == "sqlite":  # the driver's rows (see recent_readings)
                     sql = str(q.compile(conn, compile_kwargs={"literal_binds": True}))
@@ -456,9 +470,6 @@ class Store:
                 else:
                     rows = list(conn.execute(q))
             for iid, t, v in rows:
-                low = since[iid]
-                if low is not None and t < low:
-                    continue
                 got = out.get(iid)
                 if got is None:
                     got = out[iid] = ([], [])
