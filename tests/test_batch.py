@@ -43,23 +43,34 @@ def same(a, b, rel=0.01) -> bool:
 
 
 @pytest.mark.parametrize(
-    ("ambient", "threshold", "limit"),
-    [(25.0, 8.0, "upper"), (None, 8.0, "upper"), (25.0, 0.0, "lower"), (None, 6.0, None)],
+    ("ambient", "threshold", "limit", "within"),
+    [
+        (25.0, 8.0, "upper", None),
+        (None, 8.0, "upper", None),
+        (25.0, 0.0, "lower", None),
+        (None, 6.0, None, None),
+        (20.0, 8.0, "upper", 6.0),
+    ],
 )
-def test_batch_matches_the_per_item_forecast(ambient, threshold, limit):
-    """Given or fitted ambient, a limit above or below, or none: each item the batch keeps has
-    the per-item forecast's ETA (within 1 %), interval, k, ambient, outcome and note codes; an
-    item the per-item way does not fit with one exponential (the given 25 degC is contradicted
-    by the faster items) is flagged; of those it does, at least four in five are kept (the batch
-    is not a filter that passes nothing)."""
+def test_batch_matches_the_per_item_forecast(ambient, threshold, limit, within):
+    """Given (with a stated bound, too) or fitted ambient, a limit above or below, or none: each
+    item the batch keeps has the per-item forecast's ETA (within 1 %), interval, k, ambient,
+    outcome and note codes; an item the per-item way does not fit with one exponential (the
+    given 25 degC is contradicted by the faster items) is flagged; of those it does, at least
+    four in five are kept (the batch is not a filter that passes nothing)."""
     # (half the items name the threshold up front: its interval comes with the batch)
     series = [
-        Series(*warming(i), ambient=ambient, thresholds=(threshold,) if i % 2 else ())
+        Series(
+            *warming(i),
+            ambient=ambient,
+            ambient_within=within,
+            thresholds=(threshold,) if i % 2 else (),
+        )
         for i in range(60)
     ]
     kept = single = 0
     for s, p in zip(series, prepare(series)):
-        ref = forecast(s.t, s.y, threshold, ambient=ambient, limit=limit)
+        ref = forecast(s.t, s.y, threshold, ambient=ambient, limit=limit, ambient_within=within)
         got = p if isinstance(p, Flag) else p.forecast(threshold, limit)
         one = ref.model_weights == {"lumped": 1.0} and ref.interval_method == "profile likelihood"
         single += one
@@ -122,8 +133,8 @@ def test_batch_flags_what_it_must_not_fit_alone():
 def test_a_round_through_the_batch_publishes_what_the_per_item_round_does(tmp_path):
     """The refitter's round with the batch (the windows read in one query, the lumped items
     fitted together) and without it (one forecast() per item): the same state and, within 1 %,
-    the same ETA for every item, a warning level and a floor below included; most items went
-    the batch way, and an item with an ambient probe went the per-item way."""
+    the same ETA for every item, a warning level, a floor below and a bounded ambient included;
+    most items went the batch way, and an item with an ambient probe went the per-item way."""
     from test_daemon import seeded_store
     from thermeta.daemon.clock import ManualClock
     from thermeta.daemon.refit.rounds import Refitter
@@ -132,6 +143,8 @@ def test_a_round_through_the_batch_publishes_what_the_per_item_round_does(tmp_pa
     for i in range(12):
         name = f"load-{i:02d}"
         ambient = "ambient = 25.0\n" if i % 2 else ""
+        if i % 4 == 1:  # a stated bound on the given ambient
+            ambient += "ambient_within = 12.0\n"
         levels = (
             '[[item.level]]\nname = "floor"\nthreshold = 0.0\nside = "below"\n'
             if i % 3 == 0
