@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import re
 import tomllib
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -27,6 +27,7 @@ from thermeta.daemon.settings.sections import (
     BrokerConfig,
     FitConfig,
     FitRules,
+    HttpConfig,
     IngestConfig,
     LogConfig,
     PublishConfig,
@@ -61,6 +62,7 @@ SECTIONS: dict[str, type[Table]] = {
     "ingest": IngestConfig,
     "alerts": AlertDefaults,
     "log": LogConfig,
+    "http": HttpConfig,
 }
 TOP_KEYS = (*SECTIONS, "item", "hook", "schedule", "timezone")
 
@@ -82,6 +84,7 @@ class Config:
     schedules: tuple[ScheduleConfig, ...] = ()
     # the IANA zone of the clock times people read (and of a "by" deadline); None: the machine's
     timezone: str | None = None
+    http: HttpConfig = field(default_factory=HttpConfig)
 
 
 def load_config(path: str | Path) -> Config:
@@ -143,6 +146,7 @@ def parse_config(data: dict[str, Any], name: str, text: str) -> Config:
         log_level=tables["log"].level,
         schedules=tuple(schedules),
         timezone=zone,
+        http=tables["http"],
     )
 
 

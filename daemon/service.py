@@ -91,6 +91,8 @@ class Service:
         self.step_watch: StepWatch | None = None
         self.plugins: list[Any] = []
         self.started_at: float | None = None
+        self.started_mono: float | None = None  # time.monotonic() at start (daemon/metrics.py)
+        self.http: Any = None  # the [http] figures' server, when listening
         self.stopped = threading.Event()
         self._rate = {"t": time.monotonic(), "n": 0, "per_s": 0.0}
 
@@ -150,6 +152,11 @@ class Service:
         self.link.start()
         self._start_scheduler()
         self.started_at = self.clock.now()
+        self.started_mono = time.monotonic()
+        if cfg.http.listen:
+            from thermeta.daemon.metrics import MetricsServer
+
+            self.http = MetricsServer(self, cfg.http.listen).start()
         log.info("forecasts go to %s/<item>", cfg.publish.topic_prefix)
 
     def _check_alone(self) -> None:
@@ -277,8 +284,12 @@ class Service:
         return self.refitter.run_once()
 
     def prune(self) -> None:
-        keep_s = self.config.storage.retention_days * 86400.0
-        gone = self.store.prune(self.clock.now() - keep_s)
+        st, now = self.config.storage, self.clock.now()
+        history_s = st.retention_days if st.history_days is None else st.history_days
+        gone = self.store.prune(
+            now - st.retention_days * 86400.0,
+            history_before_ts=now - history_s * 86400.0 if history_s > 0 else -math.inf,
+        )
         if any(gone.values()):
             log.info(
                 "retention removed %(readings)d readings, %(forecasts)d forecasts, "
@@ -319,6 +330,8 @@ class Service:
             return
         log.info("stopping: flushing queued readings")
         self.refitter.stopping.set()
+        if self.http is not None:
+            self.http.stop()
         if self.link is not None:
             self.link.stop_receiving()
         self.writer.stop(timeout=STOP_WRITER_S)

@@ -73,7 +73,16 @@ def solve_fixed_k(s: Sums, lam: float, a0: float, lo: float, hi: float):
 
 def normal_inverse(s: Sums, lam: float):
     """Entries of M^-1, M = [[n+lam, Se], [Se, See]] the Hessian/2 of the objective in (a, b).
-    With a fixed (lam = inf) only b is free: m11 = m12 = 0, m22 = 1/See."""
+    With a fixed (lam = inf) only b is free: m11 = m12 = 0, m22 = 1/See.  ``lam`` may be an
+    array (one per row of sums, for many items at once: predictors/batch.py)."""
+    if np.ndim(lam):
+        fixed = np.isinf(lam)
+        free = np.where(fixed, 0.0, lam)
+        det = (s.n + free) * s.See - s.Se**2
+        with np.errstate(divide="ignore", invalid="ignore"):
+            m11, m12, m22 = s.See / det, -s.Se / det, (s.n + free) / det
+            m22 = np.where(fixed, 1 / s.See, m22)
+            return np.where(fixed, 0.0, m11), np.where(fixed, 0.0, m12), m22
     if math.isinf(lam):
         z = np.zeros_like(s.See)
         return z, z, 1.0 / s.See

@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import argparse
 import resource
+import shutil
 import statistics
 import sys
 import tempfile
@@ -117,68 +118,107 @@ def _item_toml(family: str, name: str) -> str:
     return base + 'threshold = -15.0\nmodel = "slab"\nambient = 10.0\n'
 
 
-def _write(store: Store, name: str, t: np.ndarray, y: np.ndarray, kind: str = "load") -> None:
-    iid = store.ensure_item(name, kind=kind, unit="C", topic=f"bench/{name}")
-    store.write_batch(
-        [
-            {
-                "item_id": iid,
-                "ts": float(a),
-                "value_c": float(b),
-                "flags": 0,
-                "received_at": float(a),
-            }
-            for a, b in zip(t, y)
-        ]
-    )
+class _Writer:
+    """Readings of many items written in large batches (a store of 100,000 items fills in
+    minutes, not an hour of one transaction per item)."""
+
+    def __init__(self, store: Store):
+        self.store = store
+        self.rows: list[tuple] = []
+
+    def add(self, iid: int, t: np.ndarray, y: np.ndarray) -> None:
+        self.rows.extend((iid, float(a), float(b), 0, float(a)) for a, b in zip(t, y))
+        if len(self.rows) >= 50_000:
+            self.flush()
+
+    def flush(self) -> None:
+        if self.rows:
+            self.store.write_batch(self.rows)
+            self.rows = []
 
 
-def run_case(family: str, n_items: int, rounds: int, seed: int, folder: Path) -> dict:
+def build(family: str, n_items: int, rounds: int, seed: int, folder: Path) -> dict:
+    """A store filled with the family's history (the live rounds' readings held back)."""
     db = folder / f"{family}-{n_items}.db"
     text = f'[storage]\nurl = "sqlite:///{db}"\n[fit]\nrefit_every = {REFIT_EVERY_S:g}\n' + "".join(
-        _item_toml(family, f"{family}-{i:04d}") for i in range(n_items)
+        _item_toml(family, f"{family}-{i:05d}") for i in range(n_items)
     )
     cfg = parse_config(tomllib.loads(text), "bench.toml", text)
     store = Store(cfg.storage.url)
     store.create_all()
-    act = Activity()
-    by_name = {it.name: it for it in cfg.items}
+    names = [f"{family}-{i:05d}" for i in range(n_items)]
+    ids = store.ensure_items([(n, "load", "C", f"bench/{n}") for n in names])
+    amb_ids: dict[str, int] = {}
+    if family == "measured":
+        amb_ids = store.ensure_items(
+            [(n + AMBIENT_SUFFIX, "ambient", "C", f"bench/{n}/air") for n in names]
+        )
+    w = _Writer(store)
     held: dict[str, list[tuple[np.ndarray, np.ndarray, np.ndarray | None, np.ndarray | None]]] = {}
+    last: dict[str, float] = {}
     cut_at = 0.0
-    for i in range(n_items):
-        name = f"{family}-{i:04d}"
+    for i, name in enumerate(names):
         t, y, at, ay = _series(family, i, seed)
         cut = float(t[-1]) - rounds * DT_S  # the newest readings wait for the live rounds
         cut_at = max(cut_at, cut)
         keep = t <= cut
-        _write(store, name, t[keep], y[keep])
-        if at is not None:
-            _write(store, name + AMBIENT_SUFFIX, at[at <= cut], ay[at <= cut], kind="ambient")
+        w.add(ids[name], t[keep], y[keep])
+        if at is not None and ay is not None:
+            w.add(amb_ids[name + AMBIENT_SUFFIX], at[at <= cut], ay[at <= cut])
+
+        def part(a: np.ndarray | None, r: int, ref: np.ndarray, cut: float = cut):
+            if a is None:
+                return None
+            return a[(ref > cut + r * DT_S) & (ref <= cut + (r + 1) * DT_S)]
+
         held[name] = [
             (
-                t[(t > cut + r * DT_S) & (t <= cut + (r + 1) * DT_S)],
-                y[(t > cut + r * DT_S) & (t <= cut + (r + 1) * DT_S)],
-                None if at is None else at[(at > cut + r * DT_S) & (at <= cut + (r + 1) * DT_S)],
-                None if ay is None else ay[(at > cut + r * DT_S) & (at <= cut + (r + 1) * DT_S)],
-            )
+                part(t, r, t),
+                part(y, r, t),
+                part(at, r, at) if at is not None else None,
+                part(ay, r, at) if at is not None else None,
+            )  # fmt: skip
             for r in range(rounds)
         ]
-        act.note(name, by_name[name], float(t[keep].max()))
-    clock = ManualClock(cut_at + 5.0)
+        last[name] = float(t[keep].max())
+    w.flush()
+    store.close()
+    return {"db": db, "cfg": cfg, "held": held, "last": last, "cut_at": cut_at, "ids": ids,
+            "amb_ids": amb_ids}  # fmt: skip
+
+
+def run_case(
+    family: str, n_items: int, rounds: int, seed: int, folder: Path, use_batch: bool = True,
+    built: dict | None = None,
+) -> dict:  # fmt: skip
+    """The first round and ``rounds`` live rounds, the batch on or off, on a copy of the store."""
+    b = built or build(family, n_items, rounds, seed, folder)
+    db = folder / f"{family}-{n_items}-{'batch' if use_batch else 'item'}.db"
+    shutil.copy(b["db"], db)
+    cfg = b["cfg"]
+    store = Store(f"sqlite:///{db}")
+    act = Activity()
+    by_name = {it.name: it for it in cfg.items}
+    for name, ts in b["last"].items():
+        act.note(name, by_name[name], ts)
+    clock = ManualClock(b["cut_at"] + 5.0)
     refitter = Refitter(store, cfg, clock, act)
+    refitter.use_batch = use_batch
     t0 = time.perf_counter()
     done = refitter.run_once()
     first_s = time.perf_counter() - t0
     live: list[float] = []
     for r in range(rounds):
-        for name, chunks in held.items():
+        w = _Writer(store)
+        for name, chunks in b["held"].items():
             t, y, at, ay = chunks[r]
             if t.size:
-                _write(store, name, t, y)
+                w.add(b["ids"][name], t, y)
                 act.note(name, by_name[name], float(t.max()))
             if at is not None and at.size:
-                _write(store, name + AMBIENT_SUFFIX, at, ay, kind="ambient")
-        clock.set(cut_at + (r + 1) * DT_S + 5.0)
+                w.add(b["amb_ids"][name + AMBIENT_SUFFIX], at, ay)
+        w.flush()
+        clock.set(b["cut_at"] + (r + 1) * DT_S + 5.0)
         t0 = time.perf_counter()
         refitter.run_once()
         live.append(time.perf_counter() - t0)
@@ -187,6 +227,7 @@ def run_case(family: str, n_items: int, rounds: int, seed: int, folder: Path) ->
     for s in done.values():
         states[s] = states.get(s, 0) + 1
     med = statistics.median(live)
+    counts = refitter.batch.counts
     return {
         "family": family,
         "items": n_items,
@@ -195,6 +236,60 @@ def run_case(family: str, n_items: int, rounds: int, seed: int, folder: Path) ->
         "ms_per_item": 1000 * med / n_items,
         "per_core": int(REFIT_EVERY_S / (med / n_items)),
         "states": states,
+        "batched": counts["batch"] / max(counts["batch"] + counts["item"], 1),
+        "forecasts": {n: refitter.previous[n] for n in list(refitter.previous)[:2000]},
+        "db": db,
+    }
+
+
+def _agree(batch: dict, item: dict) -> None:
+    """Say on stderr where the two ways disagree: a state, or an ETA by more than 1 %."""
+    off = 0
+    for name, a in batch["forecasts"].items():
+        b = item["forecasts"].get(name)
+        if b is None:
+            continue
+        ea, eb = a.get("eta_s"), b.get("eta_s")
+        if a.get("state") != b.get("state") or (ea is None) != (eb is None):
+            off += 1
+        elif ea is not None and eb and abs(ea / eb - 1) > 0.01:
+            off += 1
+    if off:
+        print(f"bench_refit: {off} items differ between the ways", file=sys.stderr)
+
+
+def estimator(family: str, n_items: int, seed: int, sample: int = 300) -> dict:
+    """The estimator alone, no store: ``predictors.batch`` over ``n_items`` windows in chunks of
+    the refitter's size (prepare and one forecast each), against ``forecast()`` per item on the
+    first ``sample`` of them (the per-item way's cost per item does not depend on N)."""
+    from thermeta.daemon.refit.batched import CHUNK
+    from thermeta.predictors import forecast
+    from thermeta.predictors.batch import Flag, Series, prepare
+
+    ambient = 25.0 if family == "known" else None
+    batch_s, flagged, done = 0.0, 0, 0
+    for at in range(0, n_items, CHUNK):
+        series = []
+        for i in range(at, min(n_items, at + CHUNK)):
+            t, y, _, _ = _series(family, i, seed)
+            t, y = t[:-30], y[:-30]  # the history, as a round sees it (the spare half hour cut)
+            series.append(Series(t, y, ambient=ambient, thresholds=(8.0,)))
+        t0 = time.perf_counter()
+        for p in prepare(series):
+            out = p if isinstance(p, Flag) else p.forecast(8.0, "upper")
+            flagged += isinstance(out, Flag)
+        batch_s += time.perf_counter() - t0
+        done += len(series)
+    t0 = time.perf_counter()
+    for i in range(min(sample, n_items)):
+        t, y, _, _ = _series(family, i, seed)
+        forecast(t[:-30], y[:-30], 8.0, ambient=ambient, limit="upper")
+    item_ms = 1000 * (time.perf_counter() - t0) / min(sample, n_items)
+    return {
+        "batch_us": 1e6 * batch_s / done,
+        "item_ms": item_ms,
+        "flagged": flagged / done,
+        "batch_s": batch_s,
     }
 
 
@@ -213,6 +308,12 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--items", default="10,100,500", help="comma list of item counts")
     ap.add_argument("--rounds", type=int, default=3, help="live rounds after the first")
     ap.add_argument("--seed", type=int, default=1)
+    ap.add_argument("--ways", default="batch,item", help="batch, item or both (batch,item)")
+    ap.add_argument(
+        "--estimator",
+        metavar="N,N",
+        help="instead: the batched estimator alone (no store, no round) at these item counts",
+    )
     ap.add_argument(
         "--families", default=",".join(DESCRIBE), help="comma list of: " + ", ".join(DESCRIBE)
     )
@@ -234,29 +335,84 @@ def main(argv: list[str] | None = None) -> int:
             file=sys.stderr,
         )
         return 2
+    if args.estimator:
+        return _estimator_table(args, families)
+    ways = [w.strip() for w in args.ways.split(",") if w.strip()]
+    if not ways or any(w not in ("batch", "item") for w in ways):
+        print(
+            f"bench_refit: --ways must be batch, item or both, got {args.ways!r}", file=sys.stderr
+        )
+        return 2
     print(
         f"Measured by `python scripts/bench_refit.py --items {args.items} --rounds {args.rounds}"
-        f" --seed {args.seed}`: 2 h of one-minute readings per item, one new reading per item "
-        f"before each live round; wall clock, one thread.\n"
+        f" --seed {args.seed} --ways {args.ways}`: 2 h of one-minute readings per item, one new "
+        "reading per item before each live round; wall clock, one thread.  batch: the round's "
+        "lumped items fitted together (predictors/batch.py), what it flags one by one; item: "
+        "one forecast() per item.\n"
     )
     print(
-        "| family | items | first round | live round (median) | ms per item | items per core "
-        "within 30 s | first round's states |"
+        "| family | items | way | first round | live round (median) | ms per item | items per "
+        "core within 30 s | batched | item / batch | first round's states |"
     )
-    print("|---|---|---|---|---|---|---|")
+    print("|---|---|---|---|---|---|---|---|---|---|")
     started = time.perf_counter()
     with tempfile.TemporaryDirectory(prefix="thermeta-bench-refit-") as d:
         for fam in families:
             for n in counts:
-                r = run_case(fam, n, args.rounds, args.seed, Path(d))
-                states = ", ".join(f"{k} {v}" for k, v in sorted(r["states"].items()))
-                print(
-                    f"| {DESCRIBE[fam]} | {n} | {r['first_s']:.2f} s | {r['live_s']:.2f} s | "
-                    f"{r['ms_per_item']:.1f} | {r['per_core']} | {states} |",
-                    flush=True,
-                )
+                built = build(fam, n, args.rounds, args.seed, Path(d))
+                got = {}
+                for way in ways:
+                    r = got[way] = run_case(
+                        fam, n, args.rounds, args.seed, Path(d), way == "batch", built
+                    )
+                    r["db"].unlink()
+                    states = ", ".join(f"{k} {v}" for k, v in sorted(r["states"].items()))
+                    ratio = ""
+                    if way == "item" and "batch" in got:
+                        ratio = f"{r['live_s'] / got['batch']['live_s']:.1f} x"
+                        _agree(got["batch"], r)
+                    print(
+                        f"| {DESCRIBE[fam]} | {n} | {way} | {r['first_s']:.2f} s | "
+                        f"{r['live_s']:.2f} s | {r['ms_per_item']:.2f} | {r['per_core']} | "
+                        f"{100 * r['batched']:.0f} % | {ratio} | {states} |",
+                        flush=True,
+                    )
+                built["db"].unlink()
     peak_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     print(f"\n{time.perf_counter() - started:.0f} s in all; peak RSS {peak_mb:.0f} MB.")
+    return 0
+
+
+def _estimator_table(args: argparse.Namespace, families: list[str]) -> int:
+    try:
+        sizes = [int(x) for x in args.estimator.split(",") if x.strip()]
+    except ValueError:
+        print("bench_refit: --estimator must be a comma list of whole numbers", file=sys.stderr)
+        return 2
+    print(
+        f"Measured by `python scripts/bench_refit.py --estimator {args.estimator} --families "
+        f"{','.join(families)}`: the estimator alone on the windows (2 h of one-minute "
+        "readings), in chunks of the refitter's size; the per-item forecast() timed on 300 of "
+        "them.  Flagged items would go one by one: their time is not in the batch column.\n"
+    )
+    print(
+        "| family | items | batch, µs per item | batch, whole run | flagged | forecast(), ms "
+        "per item | ratio |"
+    )
+    print("|---|---|---|---|---|---|---|")
+    for fam in families:
+        if fam not in ("known", "fitted"):
+            continue
+        for n in sizes:
+            r = estimator(fam, n, args.seed)
+            print(
+                f"| {DESCRIBE[fam]} | {n} | {r['batch_us']:.0f} | {r['batch_s']:.1f} s | "
+                f"{100 * r['flagged']:.0f} % | {r['item_ms']:.2f} | "
+                f"{1000 * r['item_ms'] / r['batch_us']:.0f} x |",
+                flush=True,
+            )
+    peak_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    print(f"\npeak RSS {peak_mb:.0f} MB.")
     return 0
 
 

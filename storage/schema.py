@@ -4,8 +4,14 @@ add their tables to it so ``Store.create_all()`` makes everything).
 Times are epoch seconds UTC as double precision; temperatures are canonical degrees Celsius.
 
     items         one row per item (load probes; ambient probes are items of kind "ambient")
-    readings      (item_id, ts) is the primary key: redelivered duplicates are absorbed
-    forecasts     history of every refit's forecast; the newest per item is the current one
+    readings      (item_id, ts) is the primary key: redelivered duplicates are absorbed.  On SQLite
+                  a WITHOUT ROWID table: the rows live in the key's own B-tree, about 39 bytes a
+                  reading (a rowid table with a time index took 81); no time index: retention
+                  deletes item by item along the key (``Store.prune``).  Stores made before keep
+                  their rowid table and read the same (``Store.upgrade_readings`` rebuilds it).
+    current_forecasts  each item's newest forecast, overwritten by every refit
+    forecasts     history: a refit's forecast kept only when it says something new
+                  (``storage/forecasts.py``), with its own retention
     dead_letters  payloads set aside, with the reason
     meta          small key/value facts (last_refit_at, readings_per_s, daemon heartbeat)
 """
@@ -55,8 +61,8 @@ readings = Table(
     Column("value_c", Double, nullable=False),
     Column("flags", SmallInteger, nullable=False, default=0),
     Column("received_at", Double, nullable=False),
-    # The primary key (item_id, ts) is the index every read uses; retention deletes by ts.
-    Index("ix_readings_ts", "ts"),
+    # The primary key (item_id, ts) is the only index: every read and retention go along it.
+    sqlite_with_rowid=False,
 )
 
 forecasts = Table(
@@ -69,6 +75,22 @@ forecasts = Table(
     Column("eta_s", Double),
     Column("body", Text, nullable=False),  # the published JSON
     Index("ix_forecasts_item_made", "item_id", "made_at"),
+)
+
+current_forecasts = Table(
+    "current_forecasts",
+    metadata,
+    Column(
+        "item_id",
+        Integer,
+        ForeignKey("items.id", ondelete="CASCADE"),
+        primary_key=True,
+        autoincrement=False,
+    ),
+    Column("made_at", Double, nullable=False),
+    Column("state", String(16), nullable=False),
+    Column("eta_s", Double),
+    Column("body", Text, nullable=False),  # the published JSON
 )
 
 dead_letters = Table(

@@ -10,6 +10,8 @@ from __future__ import annotations
 
 import importlib
 import json
+import sqlite3
+import sys
 import time
 from collections.abc import Iterable, Iterator, Sequence
 from contextlib import contextmanager
@@ -18,7 +20,12 @@ from typing import Any
 
 from sqlalchemy import (
     Connection,
+    Double,
     Engine,
+    Integer,
+    and_,
+    bindparam,
+    column,
     create_engine,
     delete,
     event,
@@ -27,14 +34,24 @@ from sqlalchemy import (
     inspect,
     select,
     update,
+    values,
 )
 from sqlalchemy.engine import make_url
 from sqlalchemy.exc import DataError, IntegrityError, SQLAlchemyError
 from thermeta.storage import schema
 from thermeta.storage.errors import StoreError, StoreRefused
-from thermeta.storage.schema import dead_letters, forecasts, items, meta, readings
+from thermeta.storage.forecasts import Said, said, says_new
+from thermeta.storage.schema import (
+    current_forecasts,
+    dead_letters,
+    forecasts,
+    items,
+    meta,
+    readings,
+)
 
 BUSY_TIMEOUT_MS = 15000
+CHUNK = 500  # ids per IN (...) list
 PLUGIN_MODULES = (
     "thermeta.storage.alerts",
     "thermeta.storage.priors",
@@ -90,7 +107,7 @@ def store_errors(what: str) -> Iterator[None]:
         yield
     except (DataError, IntegrityError) as exc:  # the rows themselves: trying again cannot help
         raise StoreRefused(f"{what}: {exc.__class__.__name__}: {str(exc).splitlines()[0]}") from exc
-    except SQLAlchemyError as exc:
+    except (SQLAlchemyError, sqlite3.Error) as exc:  # sqlite3's: the readings' raw cursor
         raise StoreError(f"{what}: {exc.__class__.__name__}: {str(exc).splitlines()[0]}") from exc
 
 
@@ -133,6 +150,8 @@ class Store:
         if self.dialect == "sqlite":
             _sqlite_pragmas(self.engine)
         self._item_ids: dict[str, int] = {}
+        self._kept: dict[int, Said | None] = {}  # each item's newest forecast in the history
+        self._has_current: bool | None = None  # whether current_forecasts exists (old stores)
 
     # -- life cycle ---------------------------------------------------------------------------
     def create_all(self) -> None:
@@ -144,7 +163,57 @@ class Store:
                 if exc.name != name:
                     raise
         with store_errors(f"cannot create tables in {safe_url(self.url)}"):
+            fresh = not inspect(self.engine).has_table("current_forecasts")
             schema.metadata.create_all(self.engine)
+        self._has_current = True
+        if fresh:
+            # A store made before the table existed: each item's newest forecast becomes current.
+            newest = select(func.max(forecasts.c.id)).group_by(forecasts.c.item_id)
+            cols = ("item_id", "made_at", "state", "eta_s", "body")
+            with self.transaction() as conn:
+                conn.execute(
+                    insert(current_forecasts).from_select(
+                        cols,
+                        select(*(forecasts.c[c] for c in cols)).where(forecasts.c.id.in_(newest)),
+                    )
+                )
+
+    def readings_layout(self) -> str:
+        """``"lean"`` (SQLite WITHOUT ROWID, or PostgreSQL without a time index) or ``"rowid"``
+        (a store made before: a rowid table and a time index; it reads the same)."""
+        with self.reading() as conn:
+            if self.dialect == "sqlite":
+                sql = conn.exec_driver_sql(
+                    "SELECT sql FROM sqlite_master WHERE type = 'table' AND name = 'readings'"
+                ).scalar()
+                return "lean" if sql and "WITHOUT ROWID" in sql.upper() else "rowid"
+        names = {ix["name"] for ix in inspect(self.engine).get_indexes("readings")}
+        return "rowid" if "ix_readings_ts" in names else "lean"
+
+    def upgrade_readings(self) -> bool:
+        """Rebuild a store's readings in the lean layout (one transaction; on SQLite a copy, so
+        it takes the table's size in free disk and some seconds per million readings).
+        Returns whether anything changed."""
+        if self.readings_layout() == "lean":
+            return False
+        with self.transaction() as conn:
+            if self.dialect != "sqlite":
+                conn.exec_driver_sql("DROP INDEX IF EXISTS ix_readings_ts")
+                return True
+            cols = ", ".join(READING_COLUMNS)
+            conn.exec_driver_sql(
+                "CREATE TABLE readings_lean (item_id INTEGER NOT NULL REFERENCES items (id) "
+                "ON DELETE CASCADE, ts DOUBLE NOT NULL, value_c DOUBLE NOT NULL, "
+                "flags SMALLINT NOT NULL, received_at DOUBLE NOT NULL, "
+                "PRIMARY KEY (item_id, ts)) WITHOUT ROWID"
+            )
+            conn.exec_driver_sql(
+                f"INSERT INTO readings_lean ({cols}) SELECT {cols} FROM readings "
+                "ORDER BY item_id, ts"
+            )
+            conn.exec_driver_sql("DROP TABLE readings")
+            conn.exec_driver_sql("ALTER TABLE readings_lean RENAME TO readings")
+        return True
 
     def has_table(self, name: str = "readings") -> bool:
         """Whether the store holds table ``name`` (by default: whether it is a thermeta store at
@@ -273,12 +342,14 @@ class Store:
             return [dict(r._mapping) for r in conn.execute(q)]
 
     def last_reading_times(self) -> dict[str, float]:
-        """Newest reading time per item name (uses the (item_id, ts) key)."""
-        q = (
-            select(items.c.name, func.max(readings.c.ts))
-            .join(readings, readings.c.item_id == items.c.id)
-            .group_by(items.c.name)
+        """Newest reading time per item name (one seek along the (item_id, ts) key per item,
+        not a scan of the readings)."""
+        newest = (
+            select(func.max(readings.c.ts))
+            .where(readings.c.item_id == items.c.id)
+            .scalar_subquery()
         )
+        q = select(items.c.name, newest)
         with self.reading() as conn:
             return {name: float(ts) for name, ts in conn.execute(q) if ts is not None}
 
@@ -344,6 +415,20 @@ class Store:
         item_id = item if isinstance(item, int) else self.item_id(item)
         if item_id is None:
             return []
+        if self.dialect == "sqlite":
+            # The driver's cursor: SQLAlchemy's result rows cost more than the query here.
+            sql = "SELECT ts, value_c FROM readings WHERE item_id = ?"
+            params: tuple[float, ...] = (item_id,)
+            if since_ts is not None:
+                sql, params = sql + " AND ts >= ?", (*params, since_ts)
+            if until_ts is not None:
+                sql, params = sql + " AND ts <= ?", (*params, until_ts)
+            with self.reading() as conn:
+                cur = conn.connection.dbapi_connection.cursor()  # type: ignore[union-attr]
+                try:
+                    return cur.execute(sql + " ORDER BY ts", params).fetchall()
+                finally:
+                    cur.close()
         q = select(readings.c.ts, readings.c.value_c).where(readings.c.item_id == item_id)
         if since_ts is not None:
             q = q.where(readings.c.ts >= since_ts)
@@ -351,6 +436,76 @@ class Store:
             q = q.where(readings.c.ts <= until_ts)
         with self.reading() as conn:
             return [(float(t), float(v)) for t, v in conn.execute(q.order_by(readings.c.ts))]
+
+    def windows(
+        self, wanted: Sequence[tuple[int, float | None]]
+    ) -> dict[int, tuple[list[float], list[float]]]:
+        """(ts, value_degC) lists of many items, each from its own ``since`` (None: all), oldest
+        first: one query per :data:`CHUNK` items (the refit round's read)."""
+        out: dict[int, tuple[list[float], list[float]]] = {}
+        for k in range(0, len(wanted), CHUNK):
+            # each item from its own start (a silent item's early start reads no one else's)
+            w = (
+                values(column("item_id", Integer), column("since", Double), name="wanted")
+                .data(
+                    [
+                        (iid, -sys.float_info.max if v is None else v)
+                        for iid, v in wanted[k : k + CHUNK]
+                    ]
+                )
+                .cte("wanted")
+            )
+            q = (
+                select(readings.c.item_id, readings.c.ts, readings.c.value_c)
+                .select_from(w)
+                .join(readings, and_(readings.c.item_id == w.c.item_id, readings.c.ts >= w.c.since))
+                .order_by(readings.c.item_id, readings.c.ts)
+            )
+            with self.reading() as conn:
+                if self.dialect == "sqlite":  # the driver's rows (see recent_readings)
+                    sql = str(q.compile(conn, compile_kwargs={"literal_binds": True}))
+                    cur = conn.connection.dbapi_connection.cursor()  # type: ignore[union-attr]
+                    try:
+                        rows = cur.execute(sql).fetchall()
+                    finally:
+                        cur.close()
+                else:
+                    rows = list(conn.execute(q))
+            for iid, t, v in rows:
+                got = out.get(iid)
+                if got is None:
+                    got = out[iid] = ([], [])
+                got[0].append(float(t))
+                got[1].append(float(v))
+        return out
+
+    def recent_series(
+        self, since_ts: float, kind: str | None = "load"
+    ) -> dict[str, list[tuple[float, float]]]:
+        """(ts, value_degC) since ``since_ts`` of every item (of ``kind``) by name, oldest first,
+        in ONE query (a seek along the key per item): the dashboard's frame."""
+        on = and_(readings.c.item_id == items.c.id, readings.c.ts >= since_ts)
+        q = select(items.c.name, readings.c.ts, readings.c.value_c).join(readings, on)
+        if kind is not None:
+            q = q.where(items.c.kind == kind)
+        q = q.order_by(items.c.id, readings.c.ts)
+        out: dict[str, list[tuple[float, float]]] = {}
+        with self.reading() as conn:
+            if self.dialect == "sqlite":  # the driver's rows: far cheaper than SQLAlchemy's
+                sql = str(q.compile(conn, compile_kwargs={"literal_binds": True}))
+                cur = conn.connection.dbapi_connection.cursor()  # type: ignore[union-attr]
+                try:
+                    rows = cur.execute(sql).fetchall()
+                finally:
+                    cur.close()
+            else:
+                rows = list(conn.execute(q))
+            for name, t, v in rows:
+                series = out.get(name)
+                if series is None:
+                    series = out[name] = []
+                series.append((float(t), float(v)))
+        return out
 
     def first_reading(self, item: str | int) -> tuple[float, float] | None:
         """(ts, value_degC) of an item's oldest stored reading."""
@@ -393,55 +548,106 @@ class Store:
         body: dict[str, Any],
         last_reading_at: float | None,
     ) -> None:
-        eta = body.get("eta_s")
-        with self.transaction() as conn:
-            conn.execute(
-                insert(forecasts).values(
-                    item_id=item_id, made_at=made_at, state=state, eta_s=eta, body=json.dumps(body)
-                )
-            )
-            conn.execute(
-                update(items)
-                .where(items.c.id == item_id)
-                .values(state=state, last_reading_at=last_reading_at)
-            )
+        self.save_forecasts([(item_id, made_at, state, body, last_reading_at)])
 
     def save_forecasts(
         self, rows: Sequence[tuple[int, float, str, dict[str, Any], float | None]]
-    ) -> None:
-        """Many (item_id, made_at, state, body, last_reading_at) in one transaction."""
+    ) -> int:
+        """Many (item_id, made_at, state, body, last_reading_at) in one transaction: each item's
+        current forecast overwritten, and kept in the history when it says something new
+        (``storage/forecasts.py``).  Returns how many went into the history."""
         if not rows:
-            return
+            return 0
+        self._load_kept([r[0] for r in rows if r[0] not in self._kept])
+        current = [
+            {"item_id": i, "made_at": m, "state": s, "eta_s": b.get("eta_s"), "body": json.dumps(b)}
+            for i, m, s, b, _ in rows
+        ]
+        kept: dict[int, Said] = {}
+        history = []
+        for row, (i, m, _, b, _) in zip(current, rows):
+            now = said(m, b)
+            if says_new(kept.get(i) or self._kept.get(i), now):
+                kept[i] = now
+                history.append(row)
         with self.transaction() as conn:
+            if self._has_current is None:
+                self._has_current = inspect(conn).has_table("current_forecasts")
+            if self._has_current:
+                self._upsert_current(conn, current)
+            else:  # a store made before the table: the history holds every forecast
+                history = current
+            if history:
+                conn.execute(insert(forecasts), history)
             conn.execute(
-                insert(forecasts),
-                [
-                    {
-                        "item_id": i,
-                        "made_at": m,
-                        "state": s,
-                        "eta_s": b.get("eta_s"),
-                        "body": json.dumps(b),
-                    }
-                    for i, m, s, b, _ in rows
-                ],
+                update(items)
+                .where(items.c.id == bindparam("iid"))
+                .values(state=bindparam("st"), last_reading_at=bindparam("last")),
+                [{"iid": i, "st": s, "last": last} for i, _, s, _, last in rows],
             )
-            for i, _, s, _, last in rows:
-                conn.execute(
-                    update(items).where(items.c.id == i).values(state=s, last_reading_at=last)
-                )
+        self._kept.update(kept)
+        return len(history)
+
+    def _upsert_current(self, conn: Connection, rows: list[dict[str, Any]]) -> None:
+        by_item = {r["item_id"]: r for r in rows}  # the newest of an item's rows in the batch
+        values = list(by_item.values())
+        if self.dialect in ("sqlite", "postgresql"):
+            from sqlalchemy.dialects import postgresql, sqlite
+
+            upsert = sqlite if self.dialect == "sqlite" else postgresql
+            stmt: Any = upsert.insert(current_forecasts)
+            conn.execute(
+                stmt.on_conflict_do_update(
+                    index_elements=[current_forecasts.c.item_id],
+                    set_={c: stmt.excluded[c] for c in ("made_at", "state", "eta_s", "body")},
+                ),
+                values,
+            )
+            return
+        conn.execute(delete(current_forecasts).where(current_forecasts.c.item_id.in_(by_item)))
+        conn.execute(insert(current_forecasts), values)
+
+    def _load_kept(self, item_ids: list[int]) -> None:
+        """Each item's newest forecast in the history, what the next one is compared with."""
+        ids = list(dict.fromkeys(item_ids))
+        for k in range(0, len(ids), CHUNK):
+            chunk = ids[k : k + CHUNK]
+            newest = (
+                select(func.max(forecasts.c.id))
+                .where(forecasts.c.item_id.in_(chunk))
+                .group_by(forecasts.c.item_id)
+            )
+            q = select(forecasts.c.item_id, forecasts.c.made_at, forecasts.c.body).where(
+                forecasts.c.id.in_(newest)
+            )
+            with self.reading() as conn:
+                found = {i: said(float(m), json.loads(b)) for i, m, b in conn.execute(q)}
+            self._kept.update({i: found.get(i) for i in chunk})
+
+    def _current_table(self) -> bool:
+        if self._has_current is None:
+            self._has_current = self.has_table("current_forecasts")
+        return self._has_current
 
     def latest_forecasts(self) -> list[StoredForecast]:
         """The current forecast of each item, by item name."""
-        newest = select(func.max(forecasts.c.id)).group_by(forecasts.c.item_id).scalar_subquery()
-        q = (
-            select(items.c.name, forecasts.c.state, forecasts.c.made_at, forecasts.c.body)
-            .join(items, items.c.id == forecasts.c.item_id)
-            .where(forecasts.c.id.in_(newest))
-            .order_by(items.c.name)
-        )
+        if self._current_table():
+            f = current_forecasts
+            q = select(items.c.name, f.c.state, f.c.made_at, f.c.body).join(
+                items, items.c.id == f.c.item_id
+            )
+        else:  # a store made before current_forecasts: the history's newest
+            newest = select(func.max(forecasts.c.id)).group_by(forecasts.c.item_id)
+            q = (
+                select(items.c.name, forecasts.c.state, forecasts.c.made_at, forecasts.c.body)
+                .join(items, items.c.id == forecasts.c.item_id)
+                .where(forecasts.c.id.in_(newest))
+            )
         with self.reading() as conn:
-            return [StoredForecast(n, s, float(m), json.loads(b)) for n, s, m, b in conn.execute(q)]
+            return [
+                StoredForecast(n, s, float(m), json.loads(b))
+                for n, s, m, b in conn.execute(q.order_by(items.c.name))
+            ]
 
     def forecast_history(
         self,
@@ -450,7 +656,9 @@ class Store:
         since: float | None = None,
         until: float | None = None,
     ) -> list[StoredForecast]:
-        """The item's stored forecasts (made within [since, until] when given), newest first."""
+        """The item's forecasts that said something new (made within [since, until] when
+        given), newest first; the current one leads when it is newer than the history's
+        newest."""
         item_id = self.item_id(item)
         if item_id is None:
             return []
@@ -460,12 +668,21 @@ class Store:
             .order_by(forecasts.c.id.desc())
             .limit(limit)
         )
+        cq = select(
+            current_forecasts.c.made_at, current_forecasts.c.state, current_forecasts.c.body
+        ).where(current_forecasts.c.item_id == item_id)
         if since is not None:
             q = q.where(forecasts.c.made_at >= since)
+            cq = cq.where(current_forecasts.c.made_at >= since)
         if until is not None:
             q = q.where(forecasts.c.made_at <= until)
+            cq = cq.where(current_forecasts.c.made_at <= until)
         with self.reading() as conn:
-            return [StoredForecast(item, s, float(m), json.loads(b)) for m, s, b in conn.execute(q)]
+            rows = list(conn.execute(q))
+            now = conn.execute(cq).first() if self._current_table() else None
+        if now is not None and (not rows or float(now[0]) > float(rows[0][0])):
+            rows = [now, *rows][:limit]
+        return [StoredForecast(item, s, float(m), json.loads(b)) for m, s, b in rows]
 
     # -- meta ---------------------------------------------------------------------------------
     def set_meta(self, key: str, value: Any) -> None:
@@ -485,18 +702,29 @@ class Store:
         return None if value is None else float(value)
 
     # -- retention ----------------------------------------------------------------------------
-    def prune(self, before_ts: float) -> dict[str, int]:
+    def prune(self, before_ts: float, history_before_ts: float | None = None) -> dict[str, int]:
         """Delete readings and dead letters older than ``before_ts``, and forecast history older
-        than it except each item's newest forecast."""
-        newest = select(func.max(forecasts.c.id)).group_by(forecasts.c.item_id).scalar_subquery()
+        than ``history_before_ts`` (default: the same); each item's current forecast stays.
+
+        Readings go item by item along the (item_id, ts) key: the lean table has no time index.
+        """
+        history_before = before_ts if history_before_ts is None else history_before_ts
         with self.transaction() as conn:
-            r = conn.execute(delete(readings).where(readings.c.ts < before_ts)).rowcount
-            f = conn.execute(
-                delete(forecasts)
-                .where(forecasts.c.made_at < before_ts)
-                .where(forecasts.c.id.not_in(newest))
-            ).rowcount
+            ids = list(conn.execute(select(items.c.id)).scalars())
+            r = 0
+            for k in range(0, len(ids), CHUNK):
+                r += conn.execute(
+                    delete(readings)
+                    .where(readings.c.item_id.in_(ids[k : k + CHUNK]))
+                    .where(readings.c.ts < before_ts)
+                ).rowcount
+            old = forecasts.c.made_at < history_before
+            if not self._current_table():  # the history's newest is the current one then
+                newest = select(func.max(forecasts.c.id)).group_by(forecasts.c.item_id)
+                old = and_(old, forecasts.c.id.not_in(newest))
+            f = conn.execute(delete(forecasts).where(old)).rowcount
             d = conn.execute(
                 delete(dead_letters).where(dead_letters.c.received_at < before_ts)
             ).rowcount
+        self._kept.clear()  # the history's newest may be gone
         return {"readings": r, "forecasts": f, "dead_letters": d}

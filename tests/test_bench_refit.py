@@ -32,10 +32,10 @@ def test_every_item_is_refitted_in_each_round(tmp_path):
 
     from thermeta.storage.store import Store
 
-    store = Store(f"sqlite:///{tmp_path / 'known-3.db'}")
+    store = Store(f"sqlite:///{tmp_path / 'known-3-batch.db'}")
     last = store.last_reading_times()
     store.close()
-    assert set(last) == {"known-0000", "known-0001", "known-0002"}
+    assert set(last) == {"known-00000", "known-00001", "known-00002"}
     assert all(abs(t - b.END) < 1e-6 for t in last.values())
 
 
@@ -45,9 +45,24 @@ def test_table_and_bad_arguments(capsys):
     assert b.main(["--items", "2", "--rounds", "1", "--families", "fitted,measured"]) == 0
     out = capsys.readouterr().out
     rows = [ln for ln in out.splitlines() if ln.startswith("| lumped")]
-    assert [r.split("|")[1].strip() for r in rows] == [b.DESCRIBE["fitted"], b.DESCRIBE["measured"]]
+    fams = [b.DESCRIBE["fitted"]] * 2 + [b.DESCRIBE["measured"]] * 2
+    assert [r.split("|")[1].strip() for r in rows] == fams
     assert all(r.split("|")[2].strip() == "2" for r in rows)
+    # each family batched, then one by one, with the ratio of their live rounds
+    assert [r.split("|")[3].strip() for r in rows] == ["batch", "item"] * 2
+    assert all(r.split("|")[9].strip().endswith(" x") for r in rows[1::2])
     for bad in (["--families", "nope"], ["--items", "x"], ["--items", "0"]):
         assert b.main(bad) == 2
         err = capsys.readouterr().err
         assert len(err.strip().splitlines()) == 1
+
+
+def test_estimator_table(capsys):
+    """--estimator times the batched estimator alone against forecast() per item: one row per
+    family and count, the flagged share and the ratio filled."""
+    b = load()
+    assert b.main(["--estimator", "30", "--families", "fitted"]) == 0
+    rows = [ln for ln in capsys.readouterr().out.splitlines() if ln.startswith("| lumped")]
+    assert len(rows) == 1 and rows[0].split("|")[2].strip() == "30"
+    assert rows[0].split("|")[7].strip().endswith(" x")
+    assert b.main(["--estimator", "x"]) == 2

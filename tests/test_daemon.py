@@ -595,7 +595,8 @@ def test_the_picture_shows_the_forecast_the_refit_made(tmp_path):
     made = got["w"]
     assert side == "above" and made["side"] == "above"
     for key in ("eta_s", "eta_lo_s", "eta_hi_s"):
-        assert getattr(drawn, key) == pytest.approx(made[key], rel=1e-9), key
+        # (the round's batched fit finds k to the per-item search's tolerance, 1e-6 in ln k)
+        assert getattr(drawn, key) == pytest.approx(made[key], rel=1e-5), key
     old = forecast(
         series.t,
         series.y,

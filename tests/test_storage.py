@@ -156,3 +156,137 @@ def test_sqlite_runs_wal_and_full_sync(tmp_path):
 def test_safe_url_hides_passwords():
     """URLs shown in logs never carry the password."""
     assert "pw" not in safe_url("postgresql+psycopg://u:pw@db.example.org/thermeta")
+
+
+def test_readings_table_is_lean_and_reads_along_its_key(store):
+    """The readings live in their (item_id, ts) key alone (SQLite: WITHOUT ROWID; no time index
+    on either database); the dashboard's frame comes in one query and equals the per-item reads,
+    the newest reading per item is found along the key."""
+    assert store.readings_layout() == "lean"
+    a = store.ensure_item("a", now=1.0)
+    b = store.ensure_item("b", now=1.0)
+    store.ensure_item("a.ambient", kind="ambient", now=1.0)
+    store.write_batch(rows(a, [100, 200, 300]) + rows(b, [150, 250]))
+    series = store.recent_series(since_ts=180.0)
+    assert series == {
+        "a": store.recent_readings("a", since_ts=180.0),
+        "b": store.recent_readings("b", since_ts=180.0),
+    }
+    assert store.last_reading_times() == {"a": 300.0, "b": 250.0}
+
+
+def body(state, eta=None, lo=None, hi=None, levels=()):
+    return {
+        "state": state,
+        "ok": eta is not None,
+        "eta_s": eta,
+        "eta_lo_s": lo,
+        "eta_hi_s": hi,
+        "levels": [{"name": n, "state": s, "eta_s": e} for n, s, e in levels],
+    }
+
+
+def test_forecast_history_keeps_only_what_says_something_new(store):
+    """Every refit overwrites the current forecast; the history keeps a forecast when a state
+    changes, a crossing time moves by more than 2 min or 10 % of the time ahead, or an hour has
+    passed since the newest kept one (storage/forecasts.py)."""
+    a = store.ensure_item("a", now=1.0)
+    t0 = 1000.0
+    kept = []
+    for i in range(90):  # a refit a minute; the crossing stays at t0 + 5400 within seconds
+        m = t0 + 60.0 * i
+        eta = t0 + 5400.0 + (i % 3) - m
+        kept.append(store.save_forecasts([(a, m, "approaching", body("approaching", eta), m)]))
+    assert sum(kept) == 2  # the first, and one an hour later
+    assert [i for i, k in enumerate(kept) if k] == [0, 60]
+    m = t0 + 90 * 60.0
+    assert store.save_forecasts([(a, m, "approaching", body("approaching", 5400.0), m)]) == 1
+    assert store.save_forecasts([(a, m + 60, "crossed", body("crossed", 5340.0), m)]) == 1
+    level = [("warn", "approaching", 600.0)]
+    assert store.save_forecasts([(a, m + 120, "crossed", body("crossed", 5280, levels=level), m)])
+    now = store.latest_forecasts()[0]
+    assert (now.made_at, now.state) == (m + 120, "crossed")
+    history = store.forecast_history("a", limit=1000)
+    assert len(history) == 5 and history[0].made_at == m + 120
+    # the current forecast leads the history even when the history did not keep it
+    store.save_forecasts([(a, m + 180, "crossed", body("crossed", 5220, levels=level), m)])
+    assert [h.made_at for h in store.forecast_history("a", limit=2)] == [m + 180, m + 120]
+    # a restarted service compares with what the store kept, not with nothing
+    again = Store(store.url)
+    row = (a, m + 240, "crossed", body("crossed", 5160, levels=level), m)
+    assert again.save_forecasts([row]) == 0
+    again.close()
+
+
+def test_retention_goes_along_the_key_and_history_has_its_own(store):
+    """prune() removes readings item by item (no time index), and forecast history by its own
+    cut-off; the current forecast stays."""
+    a = store.ensure_item("a", now=1.0)
+    b = store.ensure_item("b.ambient", kind="ambient", now=1.0)
+    store.write_batch(rows(a, [100, 200, 300]) + rows(b, [100, 300]))
+    store.save_forecast(a, 100.0, "steady", body("steady"), 100.0)
+    store.save_forecast(a, 200.0, "approaching", body("approaching", 900.0), 200.0)
+    gone = store.prune(250.0, history_before_ts=150.0)
+    assert gone == {"readings": 3, "forecasts": 1, "dead_letters": 0}
+    assert [t for t, _ in store.recent_readings("a")] == [300.0]
+    assert [t for t, _ in store.recent_readings("b.ambient")] == [300.0]
+    assert store.latest_forecasts()[0].made_at == 200.0
+
+
+OLD_READINGS = (
+    "CREATE TABLE readings (item_id INTEGER NOT NULL REFERENCES items (id) ON DELETE CASCADE, "
+    "ts FLOAT NOT NULL, value_c FLOAT NOT NULL, flags SMALLINT NOT NULL, "
+    "received_at FLOAT NOT NULL, PRIMARY KEY (item_id, ts))"
+)
+
+
+def test_a_store_made_before_keeps_working_and_upgrades(tmp_path):
+    """A store from before the lean layout (a rowid readings table with a time index, no
+    current_forecasts) reads and writes as it is; create_all() makes each item's newest
+    forecast current, and upgrade_readings() rebuilds the readings without losing one."""
+    from thermeta.storage import schema
+
+    url = f"sqlite:///{tmp_path / 'old.db'}"
+    engine = create_engine(url)
+    old = [
+        t for t in schema.metadata.sorted_tables if t.name not in ("readings", "current_forecasts")
+    ]
+    schema.metadata.create_all(engine, tables=old)
+    with engine.begin() as conn:
+        conn.execute(text(OLD_READINGS))
+        conn.execute(text("CREATE INDEX ix_readings_ts ON readings (ts)"))
+    engine.dispose()
+    store = Store(url)
+    assert store.readings_layout() == "rowid"
+    a = store.ensure_item("a", now=1.0)
+    store.write_batch(rows(a, [100, 200, 300]))
+    store.save_forecast(a, 100.0, "steady", body("steady"), 100.0)
+    store.save_forecast(a, 160.0, "steady", body("steady"), 160.0)
+    assert len(store.forecast_history("a")) == 2  # no current table: the history holds all
+    assert store.latest_forecasts()[0].made_at == 160.0
+    before = store.recent_readings("a")
+    store.close()
+    store = Store(url)
+    store.create_all()
+    assert store.latest_forecasts()[0].made_at == 160.0
+    assert store.upgrade_readings() is True
+    assert store.readings_layout() == "lean"
+    assert store.upgrade_readings() is False
+    assert store.recent_readings("a") == before
+    store.write_batch(rows(a, [300, 400]))
+    assert [t for t, _ in store.recent_readings("a")] == [100.0, 200.0, 300.0, 400.0]
+    store.close()
+
+
+def test_many_items_windows_in_one_read(store):
+    """windows() gives each item's readings from its own start (None: all), oldest first, the
+    same as one recent_readings() per item; an item without readings is absent."""
+    a = store.ensure_item("a", now=1.0)
+    b = store.ensure_item("b", now=1.0)
+    c = store.ensure_item("c", now=1.0)
+    store.write_batch(rows(a, [100, 200, 300]) + rows(b, [150, 250, 350]))
+    got = store.windows([(a, 150.0), (b, None), (c, 0.0)])
+    assert set(got) == {a, b}
+    for iid, since in ((a, 150.0), (b, None)):
+        t, v = got[iid]
+        assert list(zip(t, v)) == store.recent_readings(iid, since_ts=since)

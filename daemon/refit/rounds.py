@@ -54,6 +54,7 @@ from thermeta.daemon.config import AMBIENT_SUFFIX, DEFROST_SUFFIX, Config, ItemC
 from thermeta.daemon.ingest.defrost import defrost_status
 from thermeta.daemon.ingest.writer import Activity
 from thermeta.daemon.levels.spec import Level, levels_of
+from thermeta.daemon.refit.batched import CHUNK, Batch
 from thermeta.daemon.refit.episodes import EpisodeKeeper
 from thermeta.daemon.refit.judging import judge_item
 from thermeta.daemon.states import AmbientMode, ItemState, Side, predictor_side
@@ -161,6 +162,8 @@ class Refitter:
         self._error_logged: dict[str, float] = {}
         self.runs = 0
         self.last_run_s = 0.0
+        self.total_run_s = 0.0  # all rounds' time, for the service's figures (daemon/metrics.py)
+        self.finished_at: float | None = None  # time.monotonic() at the newest round's end
         self._predict: Callable[..., Forecast] = forecast  # a seam for tests
         self.prior_store = PriorStore(store)
         self.priors: dict[str, Prior] = {}  # by prior class, loaded on first use
@@ -169,6 +172,8 @@ class Refitter:
         self.lessons = 0
         self.keeper = EpisodeKeeper(store)  # episodes, their tallies, the levels' sides
         self.fits = 0  # forecasts made (one per distinct threshold and side of an item)
+        self.batch = Batch(store)  # the round's batched lumped fits (refit/batched.py)
+        self.use_batch = True
 
     def load_previous(self) -> None:
         """Pick up each item's last forecast from the store (after a restart)."""
@@ -190,6 +195,7 @@ class Refitter:
             self.keeper.load()
             done: dict[str, ItemState] = {}
             pending: list[_Refitted] = []
+            due_items = []
             for name, cfg in items.items():
                 if self.stopping.is_set():
                     break
@@ -201,14 +207,25 @@ class Refitter:
                     and name in silent
                     and silent[name] > cfg.silence_s
                 )
-                if not (due or going_stale):
-                    continue
-                try:
-                    pending.append(self._refit(name, cfg, now, last.get(name), silent.get(name)))
-                except Exception as exc:  # noqa: BLE001 - one item never stops the others
-                    self._log_error(name, "refit of %s failed: %s", name, exc)
-                if len(pending) >= SAVE_EVERY:
-                    self._flush(pending, now, done)
+                if due or going_stale:
+                    due_items.append((name, cfg))
+            for at in range(0, len(due_items), CHUNK):
+                if self.stopping.is_set():
+                    break
+                chunk = due_items[at : at + CHUNK]
+                self._load_batch(chunk, now, last)
+                for name, cfg in chunk:
+                    if self.stopping.is_set():
+                        break
+                    try:
+                        pending.append(
+                            self._refit(name, cfg, now, last.get(name), silent.get(name))
+                        )
+                    except Exception as exc:  # noqa: BLE001 - one item never stops the others
+                        self._log_error(name, "refit of %s failed: %s", name, exc)
+                    if len(pending) >= SAVE_EVERY:
+                        self._flush(pending, now, done)
+                self.batch.clear()
             self._flush(pending, now, done)
             if done:
                 try:
@@ -216,7 +233,9 @@ class Refitter:
                 except Exception:  # noqa: BLE001
                     log.exception("could not record the refit time")
             self.runs += 1
-            self.last_run_s = time.monotonic() - t0
+            self.finished_at = time.monotonic()
+            self.last_run_s = self.finished_at - t0
+            self.total_run_s += self.last_run_s
             return done
 
     def _flush(self, pending: list[_Refitted], now: float, done: dict[str, ItemState]) -> None:
@@ -243,6 +262,31 @@ class Refitter:
             done[r.name] = r.state
         pending.clear()
 
+    def _load_batch(
+        self, chunk: list[tuple[str, ItemConfig]], now: float, last: dict[str, float]
+    ) -> None:
+        """Read the chunk's windows in one query and fit its lumped items together; a failure
+        leaves them to the per-item way."""
+        if not self.use_batch or self._predict is not forecast:  # (a test's own predictor)
+            return
+        try:
+            wanted = []
+            for name, cfg in chunk:
+                item_id = self._item_id(name, cfg, now)
+                last_ts = last.get(name)
+                wanted.append((item_id, cfg, None if last_ts is None else last_ts - cfg.window_s))
+            self.batch.load(wanted)
+        except Exception:  # noqa: BLE001 - the per-item way still works
+            log.exception("the batched fit of %d items failed; fitting them one by one", len(chunk))
+            self.batch.clear()
+
+    def _item_id(self, name: str, cfg: ItemConfig, now: float) -> int:
+        item_id = self.item_ids.get(name) or self.store.item_id(name)
+        if item_id is None:
+            item_id = self.store.ensure_item(name, unit=cfg.unit, topic=cfg.topic, now=now)
+        self.item_ids[name] = item_id
+        return item_id
+
     def _refit(
         self,
         name: str,
@@ -253,14 +297,16 @@ class Refitter:
     ) -> _Refitted:
         """Fit one item's levels and judge them; returns what to store and publish (``silent_s``:
         how long the item has been silent, by arrival; None: judged from ``last_ts``)."""
-        item_id = self.item_ids.get(name) or self.store.item_id(name)
-        if item_id is None:
-            item_id = self.store.ensure_item(name, unit=cfg.unit, topic=cfg.topic, now=now)
-        self.item_ids[name] = item_id
+        item_id = self._item_id(name, cfg, now)
         since = None if last_ts is None else last_ts - cfg.window_s
-        rows = self.store.recent_readings(item_id, since_ts=since)
-        t = np.fromiter((r[0] for r in rows), float, len(rows))
-        y = np.fromiter((r[1] for r in rows), float, len(rows))
+        window = self.batch.readings(item_id)
+        if window is not None:
+            t, y = window
+            rows: Any = t
+        else:
+            rows = self.store.recent_readings(item_id, since_ts=since)
+            t = np.fromiter((r[0] for r in rows), float, len(rows))
+            y = np.fromiter((r[1] for r in rows), float, len(rows))
         t_fit, y_fit = thin(t, y, MAX_FIT_POINTS)
         amb_t = amb_y = None
         if cfg.ambient_topic:
@@ -290,9 +336,14 @@ class Refitter:
                 key = (lv.threshold_c, sides.get(lv.name))
                 if key not in made:
                     kw = forecast_kwargs(cfg, key[1], amb_t, amb_y)
-                    made[key] = self._fit(
-                        name, cfg, mode, t_fit, y_fit, rows, lv.threshold_c, prior, kw
-                    )
+                    quick = self.batch.forecast(item_id, lv.threshold_c, prior, kw)
+                    if quick is not None:
+                        self.fits += 1
+                        made[key] = quick
+                    else:
+                        made[key] = self._fit(
+                            name, cfg, mode, t_fit, y_fit, rows, lv.threshold_c, prior, kw
+                        )
                     if i == 0 and mode != "measured":
                         self._learn_from(
                             name, cls, made[key], prior, now, episode, t_fit, y_fit, lv, kw

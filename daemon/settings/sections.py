@@ -138,6 +138,7 @@ class StorageConfig(Table):
         repr=False,
     )
     retention_days: NonNegative = 90.0  # 0 keeps everything
+    history_days: NonNegative | None = None  # forecast history; default retention_days
     batch_size: PositiveInt = 500
     batch_ms: PositiveInt = 200
 
@@ -202,6 +203,20 @@ class AlertRules(Table):
 
 class AlertDefaults(AlertRules):
     """[alerts]: the alert rules' defaults for every item."""
+
+
+class HttpConfig(Table):
+    """[http]: the service's own figures for the monitoring that watches it, OpenMetrics at
+    /metrics and a health check at /healthz (``daemon/metrics.py``); off unless ``listen``."""
+
+    listen: str | None = None  # "127.0.0.1:9108"
+
+    def check(self, checks: Checks) -> None:
+        if self.listen is None:
+            return
+        host, sep, port = self.listen.rpartition(":")
+        if not sep or not host or not port.isdigit() or int(port) > 65535:
+            checks.add("listen", f'must be "host:port", e.g. "127.0.0.1:9108", got {self.listen!r}')
 
 
 class LogConfig(Table):

@@ -127,9 +127,10 @@ def collect(
     topics = {r["name"]: r.get("topic") for r in store.list_items(None)}
     alert_levels, waiting = _alert_levels(store)
     rows = []
+    recent = store.recent_series(now - history_s)  # one query for every item's sparkline
     for f in store.latest_forecasts():
         d, name = f.forecast, f.item
-        series = store.recent_readings(name, since_ts=now - history_s)
+        series = recent.get(name, [])
         unit = d.get("unit", "C")
         if unit != "C":
             from thermeta.daemon.units import from_celsius
