@@ -120,6 +120,35 @@ def _forecasts(url: str) -> list[tuple[str, str]]:
         eng.dispose()
 
 
+def _made(url: str) -> dict[str, tuple[float, str]]:
+    """Each item's newest forecast: when it was made and its state (the refit overwrites it every
+    round; the history keeps only forecasts that say something new)."""
+    eng = create_engine(url)
+    try:
+        with eng.connect() as conn:
+            q = (
+                "SELECT i.name, c.made_at, c.state FROM current_forecasts c "
+                "JOIN items i ON i.id = c.item_id"
+            )
+            return {r[0]: (r[1], r[2]) for r in conn.execute(text(q))}
+    finally:
+        eng.dispose()
+
+
+def _rounds_after(url: str, n: int, timeout: float, log) -> dict[str, tuple[float, str]]:
+    """Wait until every item's newest forecast has been made anew ``n`` times (refit rounds go
+    on); returns the last seen."""
+
+    def renewed(base: dict[str, tuple[float, str]]) -> dict[str, tuple[float, str]] | None:
+        now = _made(url)
+        return now if base and all(now[k][0] != base[k][0] for k in base) else None
+
+    seen = _made(url)
+    for _ in range(n):
+        seen = wait_for(lambda b=seen: renewed(b), timeout, log)
+    return seen
+
+
 def _heartbeat(url: str) -> dict:
     eng = create_engine(url)
     try:
@@ -143,8 +172,8 @@ def test_fault02_a_backward_clock_step_stops_no_scheduled_work(broker, tmp_path)
             wait_for(lambda: len(_forecasts(url)) >= 2, 15, d.log)
             (tmp_path / "clock-offset").write_text("-3600\n")
             time.sleep(1.5)
-            before, beat = len(_forecasts(url)), _heartbeat(url)["heartbeat_at"]
-            wait_for(lambda: len(_forecasts(url)) >= before + 2, 15, d.log)
+            beat = _heartbeat(url)["heartbeat_at"]
+            _rounds_after(url, 2, 15, d.log)
             wait_for(lambda: _heartbeat(url)["heartbeat_at"] != beat, 12, d.log)
         finally:
             sensors.stop()
@@ -167,9 +196,10 @@ def test_fault02_a_forward_clock_step_raises_no_stale(broker, tmp_path):
             (tmp_path / "clock-offset").write_text("+3600\n")
             time.sleep(1.5)
             before = len(_forecasts(url))
-            wait_for(lambda: len(_forecasts(url)) >= before + 6, 25, d.log)
+            newest = _rounds_after(url, 2, 25, d.log)
         finally:
             sensors.stop()
     after = _forecasts(url)[before:]
     assert [s for _, s in after if s == "stale"] == [], after
+    assert len(newest) == 3 and all(st != "stale" for _, st in newest.values()), newest
     assert "stepped forward by 3600 s" in d.text()
