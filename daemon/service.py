@@ -116,7 +116,10 @@ class Service:
         if cfg.http.listen:
             from thermeta.daemon.metrics import MetricsServer
 
-            self.http = MetricsServer(self, cfg.http.listen).start()
+            try:
+                self.http = MetricsServer(self, cfg.http.listen).start()
+            except OSError as exc:  # the figures are for watching; readings go on without them
+                log.error("[http] listen %s: cannot serve the figures: %s", cfg.http.listen, exc)
         log.info(
             "watching %d topic filter(s); forecasts on %s/<item>",
             len(self.router.filters()),
