@@ -156,7 +156,10 @@ class Service:
         if cfg.http.listen:
             from thermeta.daemon.metrics import MetricsServer
 
-            self.http = MetricsServer(self, cfg.http.listen).start()
+            try:
+                self.http = MetricsServer(self, cfg.http.listen).start()
+            except OSError as exc:  # the figures are for watching; readings go on without them
+                log.error("[http] listen %s: cannot serve the figures: %s", cfg.http.listen, exc)
         log.info("forecasts go to %s/<item>", cfg.publish.topic_prefix)
 
     def _check_alone(self) -> None:

@@ -72,7 +72,7 @@ def test_the_running_service_is_scraped_over_http(broker, tmp_path):
         pub.send(msgs)
         got = wait_for(
             lambda: (
-                (m := scrape(port)).get("thermeta_readings_total", {}).get(()) == 60
+                (m := ready(port)).get("thermeta_readings_total", {}).get(()) == 60
                 and m.get("thermeta_item_eta_seconds")
                 and m
             ),
@@ -143,3 +143,35 @@ def test_health_says_when_rounds_overrun_or_stop():
     assert health(svc, now=1000.0 + 3 * 30.0 + 3.0) == ["refit: no round finished for 93 s"]
     up.clear()
     assert health(svc, now=1010.0) == ["broker: not connected"]
+
+
+def test_a_taken_port_is_logged_and_the_service_goes_on(broker, tmp_path):
+    """[http] listen on a port another program holds: one error line naming the address, and
+    `thermeta run` goes on storing readings without its figures."""
+    import socket
+
+    from test_daemon_broker import count_readings
+
+    with socket.socket() as taken:
+        taken.bind(("127.0.0.1", 0))
+        taken.listen(1)
+        port = taken.getsockname()[1]
+        items = (
+            f'[http]\nlisten = "127.0.0.1:{port}"\n\n'
+            '[[item]]\nname = "w"\ntopic = "site/w"\nthreshold = 8.0\nambient = 25.0\n'
+        )
+        cfg = write_config(tmp_path, broker, items=items)
+        log = tmp_path / "daemon.log"
+        daemon = Daemon(cfg, log)
+        daemon.start()
+        pub = Publisher(broker)
+        try:
+            pub.send(reading_messages("site/w", time.time() - 100, 5))
+            db = f"sqlite:///{tmp_path / 'store.db'}"
+            wait_for(lambda: count_readings(db, "w") == 5, 20, log)
+            wait_for(lambda: "cannot serve the figures" in log.read_text(), 10, log)
+            line = next(ln for ln in log.read_text().splitlines() if "cannot serve" in ln)
+            assert f"[http] listen 127.0.0.1:{port}: cannot serve the figures" in line
+        finally:
+            pub.close()
+            assert daemon.stop() == 0
