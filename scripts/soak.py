@@ -35,9 +35,10 @@ class Probes(threading.Thread):
     """``items`` probes, each publishing one reading every ``every_s`` (QoS 1); counts the
     readings the broker acknowledged."""
 
-    def __init__(self, port: int, items: int, every_s: float):
+    def __init__(self, port: int, items: int, every_s: float, stamp_step_s: float, t0: float):
         super().__init__(daemon=True)
         self.items, self.every_s = items, every_s
+        self.stamp_step_s, self.t0 = stamp_step_s, t0
         self.acked = 0
         self._lock = threading.Lock()
         self.halt = threading.Event()
@@ -52,13 +53,13 @@ class Probes(threading.Thread):
             self.acked += 1
 
     def run(self) -> None:
-        t0 = time.time() - 3600
+        t0 = self.t0
         k = 0
         next_at = time.monotonic()
         while not self.halt.is_set():
             for i in range(self.items):
                 value = 20.0 - 16.0 * 0.9995**k + 0.01 * (i % 7)
-                body = json.dumps({"ts": t0 + k * self.every_s, "value": round(value, 4)})
+                body = json.dumps({"ts": t0 + k * self.stamp_step_s, "value": round(value, 4)})
                 self.c.publish(f"soak/p{i:04d}/t", body, qos=1)
             k += 1
             next_at += self.every_s
@@ -98,6 +99,13 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--kill-every", type=float, default=0.0, help="kill -9 the daemon every S s")
     ap.add_argument("--report-every", type=float, default=10.0, help="seconds between rows")
     ap.add_argument("--refit-every", type=float, default=10.0)
+    ap.add_argument(
+        "--stamp-step",
+        type=float,
+        default=None,
+        help="seconds between a probe's time stamps (default --every); larger fills the fit "
+        "window sooner, to see memory once every window is full",
+    )
     args = ap.parse_args(argv)
 
     work = Path(tempfile.mkdtemp(prefix="thermeta-soak-"))
@@ -118,10 +126,14 @@ def main(argv: list[str] | None = None) -> int:
                 row = conn.execute(text("SELECT value FROM meta WHERE key = 'daemon'")).scalar()
             return json.loads(row).get("last_refit_s") if row else None
 
-        probes = Probes(broker.port, args.items, args.every)
+        step = args.every if args.stamp_step is None else args.stamp_step
+        ticks = args.minutes * 60 / args.every
+        t0 = time.time() - step * ticks - 600  # the newest stamps stay in the past
+        probes = Probes(broker.port, args.items, args.every, step, t0)
         probes.start()
         print(
             f"soak: {args.items} probes every {args.every:g} s for {args.minutes:g} min"
+            + (f", stamps {step:g} s apart" if step != args.every else "")
             + (f", kill -9 every {args.kill_every:g} s" if args.kill_every else "")
             + f"; store {db}"
         )
