@@ -20,12 +20,13 @@ import os
 import socket
 import threading
 import time
+from collections.abc import Callable
 from datetime import UTC
 from typing import Any
 
 from thermeta.daemon.clock import Clock, SystemClock
 from thermeta.daemon.config import Config
-from thermeta.daemon.ingest.mqtt import MqttLink
+from thermeta.daemon.ingest.mqtt import MqttLink, read_retained
 from thermeta.daemon.ingest.topics import Router
 from thermeta.daemon.ingest.writer import Activity, Writer
 from thermeta.daemon.refit.rounds import Listener, Refitter
@@ -72,6 +73,22 @@ def _process_alive(pid: int) -> bool:
         except PermissionError:
             return True
         return True
+
+
+def _holder_alive(seen: dict[str, Any], again: Callable[[], dict[str, Any] | None]) -> bool:
+    """Whether the process a heartbeat or status ``seen`` names (its ``pid`` and ``host``) is
+    another live thermeta: on this host, while that process lives; on another, while its
+    ``heartbeat_wall`` still moves (``again()`` reads it anew after one heartbeat)."""
+    pid, host = seen.get("pid"), seen.get("host")
+    if not isinstance(pid, int) or not host:
+        return False
+    if host == socket.gethostname():
+        return pid != os.getpid() and _process_alive(pid)
+    beat = seen.get("heartbeat_wall")
+    if not isinstance(beat, (int, float)) or time.time() - beat > 3 * HEARTBEAT_S:
+        return False
+    time.sleep(HEARTBEAT_S + 1.0)
+    return (again() or {}).get("heartbeat_wall") != beat
 
 
 class Service:
@@ -136,6 +153,7 @@ class Service:
             log.info("%s", note)
         self.store.create_all()
         self._check_alone()
+        self._check_client_id()
         self._load_items()
         self.refitter.load_previous()
         self.writer.start()
@@ -164,27 +182,35 @@ class Service:
 
     def _check_alone(self) -> None:
         """Refuse to start beside another thermeta on this store: the two would share the
-        broker session and the forecasts.  The last heartbeat names its process: on this host it
-        counts while that process lives; on another, while its heartbeat still moves."""
+        broker session and the forecasts.  The last heartbeat names its process (see
+        :func:`_holder_alive`)."""
         hb = self.store.get_meta("daemon") or {}
-        pid, host = hb.get("pid"), hb.get("host")
-        if hb.get("state") != "running" or not isinstance(pid, int) or not host:
+        if hb.get("state") != "running":
             return
-        me = socket.gethostname()
-        if host == me:
-            if pid == os.getpid() or not _process_alive(pid):
-                return
-        else:
-            beat = hb.get("heartbeat_wall")
-            if not isinstance(beat, (int, float)) or time.time() - beat > 3 * HEARTBEAT_S:
-                return
-            time.sleep(HEARTBEAT_S + 1.0)
-            if (self.store.get_meta("daemon") or {}).get("heartbeat_wall") == beat:
-                return
-        raise AlreadyRunning(
-            f"another thermeta is already running on this store (pid {pid} on host {host}); "
-            "stop it first, or give this one its own [storage] url and [broker] client_id"
-        )
+        pid, host = hb.get("pid"), hb.get("host")
+        if _holder_alive(hb, lambda: self.store.get_meta("daemon")):
+            raise AlreadyRunning(
+                f"another thermeta is already running on this store (pid {pid} on host {host}); "
+                "stop it first, or give this one its own [storage] url and [broker] client_id"
+            )
+
+    def _check_client_id(self) -> None:
+        """Refuse to start while another thermeta holds our client id on the broker: our
+        durable connection would take over its session (and it ours, over and over).  Its
+        retained status, read by a separate short-lived client before we connect, names it:
+        ``online`` with a process that still lives counts (the broker's last will turns a dead
+        one's status ``offline`` after the keepalive; a dead pid on this host never counts)."""
+        b = self.config.broker
+        topic = status_topic_of(self.config)
+        st = read_retained(b, topic)
+        if not st or st.get("state") != "online":
+            return
+        if _holder_alive(st, lambda: read_retained(b, topic)):
+            raise AlreadyRunning(
+                f"another thermeta is already running with client id {b.client_id} on broker "
+                f"{b.host}:{b.port} (pid {st['pid']} on host {st['host']}); stop it first, or "
+                "give this one its own [broker] client_id"
+            )
 
     def _load_items(self) -> None:
         last = self.store.last_reading_times()
@@ -325,6 +351,11 @@ class Service:
             self.store.set_meta("daemon", body)
         except Exception:  # noqa: BLE001 - the heartbeat is best effort
             log.exception("could not write the heartbeat")
+        if state == "running" and self.link is not None:
+            try:
+                self.link.beat()
+            except Exception:  # noqa: BLE001 - the heartbeat is best effort
+                log.exception("could not renew the status")
 
     def stop(self) -> None:
         """Stop taking messages, write and acknowledge what is queued, publish offline, close;

@@ -26,6 +26,7 @@ import socket
 import ssl
 import threading
 import time
+import uuid
 from collections.abc import Callable
 from typing import Any
 
@@ -56,6 +57,7 @@ FLAP_COUNT = 3  # ... this often: someone else is using our client id
 UNSUPPORTED_PROTOCOL = (1, 132)  # 3.1.1 CONNACK code 1; MQTT 5 reason 0x84
 PACKET_OVERHEAD = 8192  # bytes beside the payload in a PUBLISH: the topic, properties, header
 FALLBACK_WAIT_S = 3.0
+RETAINED_GRACE_S = 0.5  # after the SUBACK: how long a retained message may lag it
 
 
 def tls_problem(cfg: BrokerConfig, timeout_s: float = 3.0) -> str | None:
@@ -96,6 +98,67 @@ def tls_problem(cfg: BrokerConfig, timeout_s: float = 3.0) -> str | None:
         return f"the TLS handshake failed: {exc.reason or exc}"
     except OSError:
         return None  # not reachable: not a TLS problem
+
+
+def _credentials(c: mqtt.Client, cfg: BrokerConfig) -> None:
+    """The broker's user name, password and TLS settings, as configured."""
+    if cfg.username:
+        c.username_pw_set(cfg.username, cfg.password)
+    if cfg.tls:
+        c.tls_set(
+            ca_certs=cfg.ca_file,
+            certfile=cfg.cert_file,
+            keyfile=cfg.key_file,
+            tls_version=ssl.PROTOCOL_TLS_CLIENT,
+        )
+        if cfg.tls_insecure:
+            c.tls_insecure_set(True)
+
+
+def read_retained(cfg: BrokerConfig, topic: str, timeout_s: float = 3.0) -> dict[str, Any] | None:
+    """The retained JSON object on ``topic``, read by a short-lived client of its own (a random
+    client id, clean session, no will: it takes over no one's session), or None (none retained,
+    not JSON, or the broker not reachable within ``timeout_s``)."""
+    name = f"thermeta-check-{uuid.uuid4().hex[:12]}"
+    if cfg.protocol == "5":  # MQTT 5 connects with clean_start by default
+        c = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=name, protocol=mqtt.MQTTv5)
+    else:
+        c = mqtt.Client(
+            mqtt.CallbackAPIVersion.VERSION2,
+            client_id=name,
+            protocol=mqtt.MQTTv311,
+            clean_session=True,
+        )
+    c.enable_logger(PAHO_LOG)
+    _credentials(c, cfg)
+    c.connect_timeout = timeout_s
+    subscribed, got = threading.Event(), threading.Event()
+    found: list[bytes] = []
+
+    def on_message(client, userdata, msg) -> None:
+        found.append(msg.payload)  # retained, or a live one just published: both tell
+        got.set()
+
+    c.on_connect = lambda client, *a: client.subscribe(topic, qos=0)
+    c.on_subscribe = lambda *a: subscribed.set()
+    c.on_message = on_message
+    try:
+        c.connect(cfg.host, cfg.port, keepalive=max(5, int(timeout_s) * 2))
+    except (OSError, ValueError, ssl.SSLError):
+        return None  # not reachable here: the durable connection says why, and retries
+    c.loop_start()
+    try:
+        # the broker sends what is retained right after (or just before) the SUBACK
+        if subscribed.wait(timeout_s) and not got.is_set():
+            got.wait(RETAINED_GRACE_S)
+    finally:
+        c.disconnect()
+        c.loop_stop()
+    try:
+        body = json.loads(found[0]) if found else None
+    except ValueError:
+        return None
+    return body if isinstance(body, dict) else None
 
 
 class MqttLink:
@@ -144,17 +207,7 @@ class MqttLink:
             kw["clean_session"] = False
         c = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, **kw)
         c.enable_logger(PAHO_LOG)
-        if self.cfg.username:
-            c.username_pw_set(self.cfg.username, self.cfg.password)
-        if self.cfg.tls:
-            c.tls_set(
-                ca_certs=self.cfg.ca_file,
-                certfile=self.cfg.cert_file,
-                keyfile=self.cfg.key_file,
-                tls_version=ssl.PROTOCOL_TLS_CLIENT,
-            )
-            if self.cfg.tls_insecure:
-                c.tls_insecure_set(True)
+        _credentials(c, self.cfg)
         c.will_set(self.status_topic, self._status("offline"), qos=1, retain=True)
         c.reconnect_delay_set(min_delay=1, max_delay=30)
         c.max_queued_messages_set(0)
@@ -165,9 +218,20 @@ class MqttLink:
         return c
 
     def _status(self, state: str) -> str:
-        body = {"state": state, "at": self.clock.now(), "client_id": self.cfg.client_id}
+        body = {
+            "state": state,
+            "at": self.clock.now(),
+            "heartbeat_wall": time.time(),
+            "client_id": self.cfg.client_id,
+        }
         body.update(self.status_extra)
         return json.dumps(body)
+
+    def beat(self) -> None:
+        """Renew the retained ``online`` status (its ``heartbeat_wall`` moves while we live: how
+        a daemon on another host tells a live holder of this client id from a stale status)."""
+        if self.connected.is_set() and self.accepting:
+            self.client.publish(self.status_topic, self._status("online"), qos=1, retain=True)
 
     def start(self) -> None:
         """Connect in the background (paho retries on its own).  With ``protocol = "auto"`` try

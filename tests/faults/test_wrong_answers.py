@@ -4,6 +4,7 @@
 from __future__ import annotations
 
 import json
+import socket
 import subprocess
 import sys
 import time
@@ -73,22 +74,39 @@ def test_fault16_a_kill_9_does_not_block_the_next_start(broker, tmp_path):
 
 
 @pytest.mark.broker
-def test_fault16_a_second_daemon_with_the_same_client_id_is_named(broker, tmp_path):
-    """Two stores, one client id: each connect throws the other off the broker (Mosquitto closes
-    the older connection without a reason), and each says in one line that another client is
-    using its client id, naming it."""
+def test_fault16_a_second_daemon_with_the_same_client_id_refuses_to_start(broker, tmp_path):
+    """Two stores, one client id: each connect threw the other off the broker (Mosquitto closes
+    the older connection without a reason) and both only warned.  The second now reads the
+    first's retained status with a client of its own before connecting, and refuses with exit
+    code 1, naming the first's pid and host; the first keeps its one connection."""
     a, b = tmp_path / "a", tmp_path / "b"
     a.mkdir()
     b.mkdir()
     cfg_a = write_config(a, broker, items=CELLAR, refit_every=60)
     cfg_b = write_config(b, broker, items=CELLAR, refit_every=60)
     with RunningDaemon(cfg_a) as first:
-        with RunningDaemon(cfg_b, wait_connected=False) as second:
-            wait_for(lambda: "took over client id thermeta-test" in first.text(), 15, first.log)
-            wait_for(lambda: "took over client id thermeta-test" in second.text(), 15, second.log)
-            time.sleep(2)
+        try:
+            second = subprocess.run(
+                [sys.executable, "-m", "thermeta.daemon.cli", "run", "--config", str(cfg_b)],
+                capture_output=True,
+                text=True,
+                timeout=15,
+                cwd=b,
+            )
+        except subprocess.TimeoutExpired as exc:
+            pytest.fail(f"the second daemon did not refuse: {exc.stderr!r}"[-2000:])
+        assert second.returncode == 1, second.stderr[-2000:]
+        said = [ln for ln in second.stderr.splitlines() if "already running" in ln]
+        assert len(said) == 1, second.stderr[-2000:]
+        assert "with client id thermeta-test" in said[0]
+        assert f"pid {first.proc.pid} on host {socket.gethostname()}" in said[0]
+        assert "give this one its own [broker] client_id" in said[0]
+        publish(broker, readings("cellar/tank-1/core", time.time() - 600, 5))
+        url_a = f"sqlite:///{a / 'store.db'}"
+        wait_for(lambda: count_readings(url_a, "tank-1") == 5, 10, first.log)
         text = first.text()
-    assert text.count("took over client id") == 1, text[-3000:]
+    assert text.count("connected to ") == 1, text[-3000:]
+    assert "took over" not in text, text[-3000:]
 
 
 @pytest.mark.parametrize("text", ["1_0", "４２", "٤٢", " 4\u00a0", "0x10", "4.", "-.5e1x"])
