@@ -1,0 +1,287 @@
+"""The batch's estimator: ``fit_lumped`` for many items at once, by variable projection.
+
+For item i with readings y (centred on their mean) at times d since its first, and the curve
+y = a + b e^(-k d), a and b are linear given k: from the sums Se = sum e^(-k d),
+See = sum e^(-2 k d) and Sye = sum y e^(-k d), the best (a, b) and the RSS follow in closed form
+(``lumped_profile.solve_fixed_k``; a given ambient with doubt sd adds lam (a - a0)^2 to the RSS,
+lam = sigma^2 / sd^2; a fixed one holds a = a0).  k is searched on ONE grid of k D shared by all
+items (the same 56 points ``fit_lumped`` scans: e^(-k d) = e^(-kD u), u = d / D_i), so the sums
+for every item and grid point are one (N, K, n) block and Sye one product; golden-section steps
+in ln k then refine each item's best point to ``fit_lumped``'s tolerance.  The 90 % profile
+intervals of k and the ambient come from the RSS on each item's own grid (the shared one plus a
+fine one around k_hat) against the cut RSS (1 + F(CONF; 1, dof) / dof).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.special import fdtri
+from thermeta.predictors.lumped import BEND_CONF, CONF, KD_MAX, KD_MIN
+
+KD_GRID = np.geomspace(KD_MIN, KD_MAX, 56)  # fit_lumped's grid, in units of 1 / span
+LOG_STEP = float(np.log(KD_GRID[1] / KD_GRID[0]))
+GOLDEN_TOL = 1e-6  # in ln k: fit_lumped's xatol
+FINE = np.linspace(-4.0, 4.0, 61)  # the interval's fine grid around ln k_hat, in half-widths
+
+
+@dataclass
+class _Sums:
+    """fit_lumped's sums for N items and K values of k each (weights: 1 a reading, 0 padding)."""
+
+    k: np.ndarray  # (N, K)
+    n: np.ndarray  # (N, 1)
+    Sy: np.ndarray
+    Syy: np.ndarray
+    Se: np.ndarray  # (N, K)
+    See: np.ndarray
+    Sye: np.ndarray
+
+
+def _sums(d: np.ndarray, yc: np.ndarray, W: np.ndarray, k: np.ndarray) -> _Sums:
+    """Se, See, Sye for each item's k row: E = e^(-k d) as an (N, K, n) block, Sye one product."""
+    E = np.exp(-k[:, :, None] * d[:, None, :]) * W[:, None, :]
+    return _Sums(
+        k,
+        W.sum(axis=1, keepdims=True),
+        (W * yc).sum(axis=1, keepdims=True),
+        (W * yc * yc).sum(axis=1, keepdims=True),
+        E.sum(axis=2),
+        (E * E).sum(axis=2),
+        np.einsum("ikn,in->ik", E, yc),
+    )
+
+
+def _solve(s: _Sums, lam: np.ndarray, a0: np.ndarray, lo: np.ndarray | None, hi: np.ndarray | None):
+    """lumped_profile.solve_fixed_k per row: best (a, b) and the RSS for each k; lam = inf holds
+    a at a0; lo, hi = None leaves a unclipped."""
+    fixed = np.isinf(lam)
+    lam_f = np.where(fixed, 0.0, lam)
+    det = (s.n + lam_f) * s.See - s.Se**2
+    a = (s.See * (s.Sy + lam_f * a0) - s.Se * s.Sye) / det
+    a = np.nan_to_num(a, nan=0.0) + np.where(np.isnan(a), a0, 0.0)
+    a = np.where(fixed, a0, a)
+    if lo is not None:
+        a = np.clip(a, lo, hi)
+    b = (s.Sye - a * s.Se) / s.See
+    r = s.Syy - 2 * a * s.Sy - 2 * b * s.Sye + s.n * a * a + 2 * a * b * s.Se + b * b * s.See
+    r = r + np.where(fixed | (lam_f <= 0), 0.0, lam_f * (a - a0) ** 2)
+    r = np.where(np.isnan(r), np.inf, np.maximum(r, 0.0))
+    return a, b, r
+
+
+@dataclass
+class _Fits:
+    k: np.ndarray
+    a: np.ndarray
+    b: np.ndarray
+    rss: np.ndarray
+    lam: np.ndarray
+    edge: np.ndarray
+    grid: _Sums  # the sums on the shared grid (kD / D per row), reused by the intervals
+
+
+def _best_k(d, yc, W, grid: _Sums, lam, a0, lo, hi) -> tuple[np.ndarray, np.ndarray]:
+    """ln k of the least RSS and whether it lies at the grid's edge: the shared grid's best
+    point, then golden-section steps within its neighbours to fit_lumped's tolerance, for all
+    rows at once (parabolic steps were tried: where the ambient meets its bound the profile has
+    a kink, and they stopped up to 1 % off in k there, moving the interval's ends by more)."""
+
+    def rss(x: np.ndarray) -> np.ndarray:
+        return _solve(_sums(d, yc, W, np.exp(x[:, None])), lam, a0, lo, hi)[2][:, 0]
+
+    N = d.shape[0]
+    lk_grid = np.log(grid.k)
+    r = _solve(grid, lam, a0, lo, hi)[2]
+    i = np.argmin(r, axis=1)
+    edge = (i == 0) | (i == KD_GRID.size - 1)
+    rows = np.arange(N)
+    x, best_r = lk_grid[rows, i], r[rows, i]
+    left, right = x - LOG_STEP, x + LOG_STEP
+    # golden section on the best grid point's neighbours
+    lo_x, hi_x = left, right
+    g = (math.sqrt(5.0) - 1.0) / 2.0
+    x1, x2 = hi_x - g * (hi_x - lo_x), lo_x + g * (hi_x - lo_x)
+    f1, f2 = rss(x1), rss(x2)
+    while np.max(hi_x - lo_x) > GOLDEN_TOL:
+        go_left = f1 <= f2
+        hi_x = np.where(go_left, x2, hi_x)
+        lo_x = np.where(go_left, lo_x, x1)
+        x2n = np.where(go_left, x1, lo_x + g * (hi_x - lo_x))
+        x1n = np.where(go_left, hi_x - g * (hi_x - lo_x), x2)
+        f2n = np.where(go_left, f1, np.nan)
+        f1n = np.where(go_left, np.nan, f2)
+        new = np.where(go_left, x1n, x2n)
+        fn = rss(new)
+        x1, x2 = x1n, x2n
+        f1, f2 = np.where(go_left, fn, f1n), np.where(go_left, f2n, fn)
+    xm = 0.5 * (lo_x + hi_x)
+    rm = rss(xm)
+    better = rm <= best_r
+    return np.where(better, xm, x), edge
+
+
+def _fit(T, Y, W, amb, amb_sd, lo_b, hi_b, noise_sd) -> tuple[_Fits, dict]:
+    """fit_lumped for every row (weights W), without the threshold's parts."""
+    n = W.sum(axis=1)
+    t0 = T[:, 0]
+    last = np.maximum((W > 0).cumsum(axis=1).argmax(axis=1), 0)
+    rows = np.arange(T.shape[0])
+    D = T[rows, last] - t0
+    d = (T - t0[:, None]) * W
+    ybar = (W * Y).sum(axis=1) / n
+    yc = (Y - ybar[:, None]) * W
+    Ym = np.where(W > 0, Y, np.nan)
+    spread = np.maximum(np.nanmax(Ym, axis=1) - np.nanmin(Ym, axis=1), 1e-6)
+    lo = np.where(np.isnan(lo_b), np.nanmin(Ym, axis=1) - 10 * spread - 10.0, lo_b) - ybar
+    hi = np.where(np.isnan(hi_b), np.nanmax(Ym, axis=1) + 10 * spread + 10.0, hi_b) - ybar
+    given = ~np.isnan(amb)
+    a0 = np.where(given, amb - ybar, 0.0)
+    prior = given & (amb_sd > 0)
+    n_par = np.where(given & (amb_sd <= 0), 2, 3)
+    dof = np.maximum(n + prior - n_par, 1)
+    col = lambda v: v[:, None]  # noqa: E731 - one row's scalar against its k row
+    lam = np.where(given & (amb_sd <= 0), np.inf, 0.0)
+    sig = np.where(noise_sd > 0, noise_sd, 0.1 * spread)
+    grid = _sums(d, yc, W, KD_GRID[None, :] / D[:, None])  # the same for every lam
+    for _ in range(2 if prior.any() else 1):
+        lam = np.where(prior, sig**2 / np.where(prior, amb_sd, 1.0) ** 2, lam)
+        lk, edge = _best_k(d, yc, W, grid, col(lam), col(a0), col(lo), col(hi))
+        r = _solve(_sums(d, yc, W, np.exp(lk[:, None])), col(lam), col(a0), col(lo), col(hi))[2]
+        sig = np.where(prior, np.maximum(np.sqrt(r[:, 0] / dof), 1e-9), sig)
+    k = np.exp(lk)
+    a, b, r = (v[:, 0] for v in _solve(_sums(d, yc, W, k[:, None]), *map(col, (lam, a0, lo, hi))))
+    geo = dict(n=n, D=D, d=d, yc=yc, ybar=ybar, lo=lo, hi=hi, a0=a0, dof=dof, n_par=n_par)
+    return _Fits(k, a, b, r, lam, edge, grid), geo
+
+
+def _profile_interval(x: np.ndarray, prof: np.ndarray, cut: np.ndarray, x_hat: np.ndarray):
+    """lumped_profile.interval_from_profile per row: the ends of {prof <= cut} around x_hat,
+    NaN for an end at the grid's edge."""
+    N, K = x.shape
+    rows = np.arange(N)
+    ok = prof <= cut[:, None]
+    i0 = np.argmin(np.abs(x - x_hat[:, None]), axis=1)
+    i0 = np.where(ok[rows, i0], i0, np.argmin(prof, axis=1))
+    j = np.arange(K)[None, :]
+    lo_i = np.where(~ok & (j < i0[:, None]), j, -1).max(axis=1) + 1
+    hi_i = np.where(~ok & (j > i0[:, None]), j, K).min(axis=1) - 1
+
+    def cross(i_in, i_out):
+        p_in, p_out = prof[rows, i_in], prof[rows, i_out]
+        w = (cut - p_in) / (p_out - p_in)
+        moved = x[rows, i_in] + w * (x[rows, i_out] - x[rows, i_in])
+        return np.where(~np.isfinite(p_out) | (p_out == p_in), x[rows, i_in], moved)
+
+    lo = np.where(lo_i == 0, np.nan, cross(lo_i, np.maximum(lo_i - 1, 0)))
+    hi = np.where(hi_i == K - 1, np.nan, cross(hi_i, np.minimum(hi_i + 1, K - 1)))
+    none = ~ok.any(axis=1)
+    return np.where(none, x_hat, lo), np.where(none, x_hat, hi)
+
+
+@dataclass
+class _Ambient:
+    """The ambient of each row as forecast() takes it: given (NaN: fitted), its sd, its bounds
+    (NaN: none stated), and the readings' noise sd the fit starts its weights from."""
+
+    value: np.ndarray
+    sd: np.ndarray
+    lo: np.ndarray
+    hi: np.ndarray
+    noise_sd: np.ndarray
+
+
+def _analyse(T: np.ndarray, Y: np.ndarray, W: np.ndarray, amb: _Ambient) -> dict:
+    """fit_lumped's threshold-free part for every row: the fit, the residuals, the bend weight
+    and the straight line, k's and the ambient's intervals and the grid for the crossing's."""
+    fits, g = _fit(T, Y, W, amb.value, amb.sd, amb.lo, amb.hi, amb.noise_sd)
+    k, a, b, rss, lam, dof = fits.k, fits.a, fits.b, fits.rss, fits.lam, g["dof"]
+    d, yc, n = g["d"], g["yc"], g["n"]
+    fit_y = (a[:, None] + b[:, None] * np.exp(-k[:, None] * d)) * W
+    # the bend weight (lumped.bend_weight) against the straight line through the readings
+    dbar = (W * d).sum(axis=1) / n
+    dm = (d - dbar[:, None]) * W
+    sxx = (dm * dm).sum(axis=1)
+    slope = (dm * yc).sum(axis=1) / sxx
+    icpt = -slope * dbar  # the readings are centred on their mean
+    line_res = (yc - icpt[:, None] - slope[:, None] * d) * W
+    rss_line = (line_res * line_res).sum(axis=1)
+    F = (rss_line - rss) / (rss / dof)
+    q99 = fdtri(1.0, np.maximum(dof, 1), BEND_CONF)
+    w = np.where(F > 0, np.maximum(0.0, 1.0 - q99 / F), 0.0)
+    w = np.where((dof < 2) | (rss <= 0) | ~np.isnan(amb.value), 1.0, w)
+    cut = rss * (1.0 + fdtri(1.0, dof, CONF) / dof)
+    s, k_all, r_k, a_u, b_u, delta = _grid(fits, g, W, cut)
+    k_lo, k_hi = _profile_interval(k_all, r_k, cut, k)
+    fixed = np.isinf(lam)
+    lam_f = np.where(fixed, 0.0, lam)[:, None]
+    m11 = s.See / ((s.n + lam_f) * s.See - s.Se**2)
+    wa = np.sqrt(np.maximum(np.nan_to_num(np.maximum(delta, 0.0) * m11, nan=0.0), 0.0))
+    sel = (delta >= 0) & np.isfinite(wa)
+    sel = np.where(sel.any(axis=1, keepdims=True), sel, k_all == k[:, None])
+    ambient = a + g["ybar"]
+    amb_lo = np.maximum(np.where(sel, a_u - wa, np.inf).min(axis=1), g["lo"]) + g["ybar"]
+    amb_hi = np.minimum(np.where(sel, a_u + wa, -np.inf).max(axis=1), g["hi"]) + g["ybar"]
+    return dict(
+        g,
+        fits=fits,
+        fit_y=fit_y,
+        res=(yc - fit_y) * W,
+        sigma=np.sqrt(rss / dof),
+        w=w,
+        slope=slope,
+        icpt=icpt,
+        rss_line=rss_line,
+        sxx=sxx,
+        s=s,
+        k_all=k_all,
+        a_u=a_u,
+        b_u=b_u,
+        delta=delta,
+        k_lo=k_lo,
+        k_hi=k_hi,
+        ambient=ambient,
+        amb_lo=np.where(fixed, ambient, amb_lo),
+        amb_hi=np.where(fixed, ambient, amb_hi),
+    )
+
+
+def _grid(fits: _Fits, g: dict, W: np.ndarray, cut: np.ndarray):
+    """lumped_profile.add_intervals's grid per row: the shared coarse grid, a fine one around
+    k_hat as wide as the RSS's curvature in ln k says, and k_hat; the sums on it, the profile
+    RSS, the unclipped (a, b) per k and the margin to the cut inside the region (-1 outside)."""
+    k, lam = fits.k, fits.lam
+    d, yc = g["d"], g["yc"]
+    ab = (lam[:, None], g["a0"][:, None], g["lo"][:, None], g["hi"][:, None])
+    lk = np.log(k)
+    r3 = _solve(_sums(d, yc, W, np.exp(lk[:, None] + np.array([-0.01, 0.0, 0.01]))), *ab)[2]
+    curv = (r3[:, 0] + r3[:, 2] - 2 * r3[:, 1]) / 0.01**2
+    room = np.maximum(2 * (cut - fits.rss), 0.0) / np.where(curv > 0, curv, 1.0)
+    hw = np.clip(np.where(curv > 0, np.sqrt(room), 3.0), 1e-5, 3.0)
+    fine = _sums(
+        d, yc, W, np.concatenate([np.exp(lk[:, None] + FINE * hw[:, None]), k[:, None]], 1)
+    )
+    g0 = fits.grid
+    order = np.argsort(np.concatenate([g0.k, fine.k], axis=1), axis=1)
+
+    def joined(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+        return np.take_along_axis(np.concatenate([a, b], axis=1), order, axis=1)
+
+    s = _Sums(
+        joined(g0.k, fine.k),
+        g0.n,
+        g0.Sy,
+        g0.Syy,
+        joined(g0.Se, fine.Se),
+        joined(g0.See, fine.See),
+        joined(g0.Sye, fine.Sye),
+    )
+    k_all = s.k
+    r_k = _solve(s, *ab)[2]
+    inside = r_k <= cut[:, None]
+    inside = np.where(inside.any(axis=1, keepdims=True), inside, k_all == k[:, None])
+    a_u, b_u, r_u = _solve(s, ab[0], ab[1], None, None)
+    delta = np.where(inside, cut[:, None] - r_u, -1.0)
+    return s, k_all, r_k, a_u, b_u, delta
