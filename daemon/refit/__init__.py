@@ -2,4 +2,5 @@
 
 rounds.py    the refit round (an APScheduler job): read the window, call the predictors,
              store the forecast, publish it retained, hand it to listeners (the alerts)
+common.py    what the round shares: the update handed on, the predictor's arguments, thinning
 """

@@ -45,7 +45,6 @@ import math
 import threading
 import time
 from collections.abc import Callable
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -55,10 +54,18 @@ from thermeta.daemon.ingest.defrost import defrost_status
 from thermeta.daemon.ingest.writer import Activity
 from thermeta.daemon.levels.spec import Level, levels_of
 from thermeta.daemon.refit.batched import CHUNK, Batch
+from thermeta.daemon.refit.common import (
+    ForecastUpdate,
+    Listener,
+    Publish,
+    Refitted,
+    forecast_kwargs,
+    thin,
+    uses_prior,
+)
 from thermeta.daemon.refit.episodes import EpisodeKeeper
 from thermeta.daemon.refit.judging import judge_item
-from thermeta.daemon.states import AmbientMode, ItemState, Side, predictor_side
-from thermeta.daemon.units import scale_to_celsius, shown_in
+from thermeta.daemon.states import AmbientMode, ItemState, Side
 from thermeta.predictors import forecast
 from thermeta.predictors.outcome import Reason
 from thermeta.predictors.prior import Prior, learn, learnable
@@ -78,65 +85,6 @@ MAX_FIT_POINTS = 1500
 # How far back a defrost signal is read beyond the longest hold (max + recovery): a start older
 # than that holds nothing any more, and a signal repeated at least this often is read right.
 DEFROST_LOOKBACK_S = 3600.0
-
-
-@dataclass(frozen=True)
-class ForecastUpdate:
-    """One item's refit, as judges (the alert rules) and listeners (the demo) get it."""
-
-    item: ItemConfig  # the item's config (a wildcard item's: made concrete for this item)
-    state: ItemState
-    body: dict[str, Any]  # the forecast JSON as published (the item's unit), with "state"
-    previous: dict[str, Any] | None  # the item's forecast JSON before this one
-
-    @property
-    def name(self) -> str:
-        return str(self.body.get("item") or self.item.name)
-
-
-Listener = Callable[[ForecastUpdate], None]
-Publish = Callable[[str, str], None]
-
-
-def forecast_kwargs(
-    cfg: ItemConfig,
-    side: Side | None,
-    ambient_t: np.ndarray | None = None,
-    ambient_y: np.ndarray | None = None,
-) -> dict[str, Any]:
-    """The forecast's arguments for one item and side, as the refit passes them (the picture of
-    the item passes the same, so it shows the forecast the alerts were made from); the prior
-    apart."""
-    kw: dict[str, Any] = {
-        "model": cfg.model,
-        "ambient": cfg.ambient_c,
-        "ambient_t": ambient_t,
-        "ambient_y": ambient_y,
-        "window_s": cfg.window_s,
-        "min_points": cfg.min_points,
-        "limit": predictor_side(side),
-        "shown": shown_in(cfg.unit),
-    }  # the warnings' temperatures
-    if cfg.ambient is not None and cfg.ambient_within is not None:
-        kw["ambient_within"] = scale_to_celsius(cfg.ambient_within, cfg.unit)
-    return kw
-
-
-def uses_prior(cfg: ItemConfig, measured: bool) -> bool:
-    """A learned prior serves the lumped model with a given or fitted ambient only."""
-    return not measured and cfg.model in ("lumped", "auto")
-
-
-@dataclass
-class _Refitted:
-    """One item's refit, between the fit and the store (saved in chunks) and the listeners."""
-
-    name: str
-    cfg: ItemConfig
-    item_id: int
-    state: ItemState
-    body: dict[str, Any]
-    last_ts: float | None
 
 
 class Refitter:
@@ -194,7 +142,7 @@ class Refitter:
             silent = self.activity.silences(now, monotonic_of(self.clock))
             self.keeper.load()
             done: dict[str, ItemState] = {}
-            pending: list[_Refitted] = []
+            pending: list[Refitted] = []
             due_items = []
             for name, cfg in items.items():
                 if self.stopping.is_set():
@@ -238,7 +186,7 @@ class Refitter:
             self.total_run_s += self.last_run_s
             return done
 
-    def _flush(self, pending: list[_Refitted], now: float, done: dict[str, ItemState]) -> None:
+    def _flush(self, pending: list[Refitted], now: float, done: dict[str, ItemState]) -> None:
         """Judge, then store a chunk of forecasts in one transaction, then publish them (one
         commit per item would cost an fsync each and hold the writer's lock as often)."""
         if not pending:
@@ -294,7 +242,7 @@ class Refitter:
         now: float,
         last_ts: float | None,
         silent_s: float | None = None,
-    ) -> _Refitted:
+    ) -> Refitted:
         """Fit one item's levels and judge them; returns what to store and publish (``silent_s``:
         how long the item has been silent, by arrival; None: judged from ``last_ts``)."""
         item_id = self._item_id(name, cfg, now)
@@ -377,7 +325,7 @@ class Refitter:
             body["defrost"] = self._defrost(name, cfg, now)
         if prior is not None and prior.n_episodes:
             body["prior_class"] = cls
-        return _Refitted(name, cfg, item_id, state, body, last_ts)
+        return Refitted(name, cfg, item_id, state, body, last_ts)
 
     def _fit(
         self,
@@ -522,7 +470,7 @@ class Refitter:
             1.0 / (plain.k_per_s or math.inf) / 3600.0,
         )
 
-    def _deliver(self, r: _Refitted) -> None:
+    def _deliver(self, r: Refitted) -> None:
         """Publish a stored forecast and hand it to the listeners."""
         name = r.name
         if self.publish is not None:
@@ -544,11 +492,3 @@ class Refitter:
         if now - self._error_logged.get(name, -1e9) >= ERROR_LOG_EVERY_S:
             self._error_logged[name] = now
             log.warning(msg, *args, exc_info=log.isEnabledFor(logging.DEBUG))
-
-
-def thin(t: np.ndarray, y: np.ndarray, most: int) -> tuple[np.ndarray, np.ndarray]:
-    """At most ``most`` of the readings (t ascending), evenly spread, the first and newest kept."""
-    if len(t) <= most:
-        return t, y
-    keep = np.unique(np.linspace(0, len(t) - 1, most).round().astype(int))
-    return t[keep], y[keep]
