@@ -212,15 +212,7 @@ class ReadingQueries:
                 .order_by(readings.c.item_id, readings.c.ts)
             )
             with self.reading() as conn:
-                if self.dialect == "sqlite":  # the driver's rows (see recent_readings)
-                    sql = str(q.compile(conn, compile_kwargs={"literal_binds": True}))
-                    cur = conn.connection.dbapi_connection.cursor()  # type: ignore[union-attr]
-                    try:
-                        rows = cur.execute(sql).fetchall()
-                    finally:
-                        cur.close()
-                else:
-                    rows = list(conn.execute(q))
+                rows = _rows(conn, q, self.dialect)
             for iid, t, v in rows:
                 got = out.get(iid)
                 if got is None:
@@ -241,15 +233,7 @@ class ReadingQueries:
         q = q.order_by(items.c.id, readings.c.ts)
         out: dict[str, list[tuple[float, float]]] = {}
         with self.reading() as conn:
-            if self.dialect == "sqlite":  # the driver's rows: far cheaper than SQLAlchemy's
-                sql = str(q.compile(conn, compile_kwargs={"literal_binds": True}))
-                cur = conn.connection.dbapi_connection.cursor()  # type: ignore[union-attr]
-                try:
-                    rows = cur.execute(sql).fetchall()
-                finally:
-                    cur.close()
-            else:
-                rows = list(conn.execute(q))
+            rows = _rows(conn, q, self.dialect)
             for name, t, v in rows:
                 series = out.get(name)
                 if series is None:
@@ -300,3 +284,16 @@ class ReadingQueries:
         q = select(dead_letters).order_by(dead_letters.c.id.desc()).limit(limit)
         with self.reading() as conn:
             return [dict(r._mapping) for r in conn.execute(q)]
+
+
+def _rows(conn: Any, q: Any, dialect: str) -> list[Any]:
+    """The rows of a select: on SQLite through the driver's own cursor (SQLAlchemy's result rows
+    cost more than the query itself on these reads), elsewhere through SQLAlchemy."""
+    if dialect != "sqlite":
+        return list(conn.execute(q))
+    sql = str(q.compile(conn, compile_kwargs={"literal_binds": True}))
+    cur = conn.connection.dbapi_connection.cursor()
+    try:
+        return cur.execute(sql).fetchall()
+    finally:
+        cur.close()

@@ -6,6 +6,7 @@ import subprocess
 import time
 
 import pytest
+from conftest import IN_CI
 from sqlalchemy import create_engine, text
 from thermeta.daemon.testing import (
     RunningDaemon,
@@ -30,7 +31,10 @@ def small_disk(tmp_path):
         ["mount", "-t", "tmpfs", "-o", "size=4m", "tmpfs", str(disk)], capture_output=True
     )
     if got.returncode != 0:
-        pytest.skip(f"cannot mount a tmpfs here: {got.stderr.decode().strip()[:100]}")
+        why = got.stderr.decode().strip()[:100]
+        if IN_CI:
+            pytest.fail(f"CI=true but a tmpfs cannot be mounted: {why}")
+        pytest.skip(f"cannot mount a tmpfs here: {why}")
     yield disk
     subprocess.run(["umount", "-l", str(disk)], capture_output=True)
 
