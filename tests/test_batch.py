@@ -82,7 +82,8 @@ def test_batch_matches_the_per_item_forecast(ambient, threshold, limit, within):
         assert [n.code for n in got.notes] == [n.code for n in ref.notes]
         for key in ("eta_s", "eta_lo_s", "eta_hi_s"):
             assert same(getattr(got, key), getattr(ref, key)), key
-        assert got.k_per_s == pytest.approx(ref.k_per_s, rel=1e-4)
+        # two optimisers in a flat valley (fitted ambient): k to about 1e-4, the ETA to 1 %
+        assert got.k_per_s == pytest.approx(ref.k_per_s, rel=1e-3)
         assert got.ambient == pytest.approx(ref.ambient, abs=1e-2)
         assert (got.direction, got.n_points, got.t_last) == (
             ref.direction,
