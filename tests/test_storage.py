@@ -278,6 +278,56 @@ def test_a_store_made_before_keeps_working_and_upgrades(tmp_path):
     store.close()
 
 
+def test_upgrade_store_command_rebuilds_an_old_store_once(tmp_path, capsys):
+    """`thermeta upgrade-store` on a store of the old layout: the readings are rebuilt and all
+    kept; a second run has nothing to do; a store whose heartbeat names a live service is
+    refused with exit 1 and one line."""
+    import socket
+    import subprocess
+    import sys
+
+    from thermeta.daemon.cli import main
+    from thermeta.storage import schema
+
+    url = f"sqlite:///{tmp_path / 'old.db'}"
+    engine = create_engine(url)
+    old = [t for t in schema.metadata.sorted_tables if t.name != "readings"]
+    schema.metadata.create_all(engine, tables=old)
+    with engine.begin() as conn:
+        conn.execute(text(OLD_READINGS))
+    engine.dispose()
+    store = Store(url)
+    a = store.ensure_item("a", now=1.0)
+    store.write_batch(rows(a, range(100, 2100, 100)))
+    before = store.recent_readings("a")
+    store.close()
+    cfg = tmp_path / "site.toml"
+    site = '[[item]]\nname = "a"\ntopic = "site/a"\nthreshold = 8.0\n'
+    cfg.write_text(f'[storage]\nurl = "{url}"\n{site}')
+
+    def upgrade() -> tuple[int, str, str]:
+        code = main(["upgrade-store", "--config", str(cfg)])
+        out = capsys.readouterr()
+        return code, out.out, out.err
+
+    code, out, err = upgrade()
+    assert code == 0 and "rebuilt" in out, err
+    code, out, err = upgrade()
+    assert code == 0 and "nothing to do" in out, err
+    store = Store(url)
+    assert store.readings_layout() == "lean"
+    assert store.recent_readings("a") == before
+    service = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(60)", "thermeta"])
+    store.set_meta("daemon", {"state": "running", "pid": service.pid, "host": socket.gethostname()})
+    store.close()
+    try:
+        code, out, err = upgrade()
+    finally:
+        service.kill()
+        service.wait()
+    assert code == 1 and "stop it first" in err and len(err.strip().splitlines()) == 1, err
+
+
 def test_many_items_windows_in_one_read(store):
     """windows() gives each item's readings from its own start (None: all), oldest first, the
     same as one recent_readings() per item; an item without readings is absent."""

@@ -30,6 +30,10 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "plot": ("thermeta.daemon.cli.plot", "draw an item's readings and forecast to a PNG"),
     "simulate": ("thermeta.daemon.cli.simulate", "publish a simulated scenario over MQTT"),
     "demo": ("thermeta.daemon.cli.demo", "the whole product on simulated data, in one command"),
+    "upgrade-store": (
+        "thermeta.daemon.cli.upgrade_store",
+        "rebuild a store made by an older thermeta in the present layout",
+    ),
 }
 
 
