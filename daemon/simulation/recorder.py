@@ -19,7 +19,6 @@ from thermeta.daemon.units import UNIT_SIGN
 
 HORIZON_S = 86400.0  # forecasts further out than the items' horizon are not counted as ahead
 PAST = (ItemState.CROSSED, ItemState.REACHED, ItemState.MISSED)
-WARNED = (ItemState.APPROACHING, ItemState.LATE)
 
 
 class Recorder:
@@ -215,7 +214,18 @@ class Recorder:
                 elif held is not None and held != c and f["eta_s"] is not None:
                     left = held - f["made_at"]
                     if left > 0:
-                        held_errors.append((f["eta_s"] - left) / left)
+                        held_errors.append(
+                            {
+                                "made_at": f["made_at"],
+                                "eta_s": f["eta_s"],
+                                "eta_lo_s": f["eta_lo_s"],
+                                "eta_hi_s": f["eta_hi_s"],
+                                "true_eta_s": left,
+                                "rel_error": (f["eta_s"] - left) / left,
+                                "inside_90": (f["eta_lo_s"] is None or f["eta_lo_s"] <= left)
+                                and (f["eta_hi_s"] is None or left <= f["eta_hi_s"]),
+                            }
+                        )
             items[name] = {
                 "events": events,
                 "warned_as_things_stood": held_errors,
@@ -234,6 +244,7 @@ class Recorder:
                         "level": a["body"].get("level"),
                         "at": a["at"],
                         "deadline_at_s": a["body"].get("deadline_at_s"),
+                        "reached_at_s": a["body"].get("reached_at_s"),
                         "lead_s": a["body"].get("lead_s"),
                     }
                     for a in self.alerts
@@ -310,7 +321,7 @@ def print_summary(summary: dict[str, Any], out: Any) -> None:
                 f"truth inside the 90 % interval in {100 * inside:.0f} %"
             )
         elif it["true_crossing_t"] is None:
-            held = sorted(abs(e) for e in it.get("warned_as_things_stood") or [])
+            held = sorted(abs(e["rel_error"]) for e in it.get("warned_as_things_stood") or [])
             n_false = len(it.get("false_warnings") or [])
             n_app = it["n_approaching"]
             how = f"{_count(it['n_forecasts'], 'forecast')}, " + (
