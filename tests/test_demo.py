@@ -396,3 +396,26 @@ def test_summary_says_what_the_forecasts_missed():
     assert "10 forecasts, none approaching it before it came" in lines["missed"]
     assert "10 forecasts, none approaching it yet" in lines["later"]
     assert "1 forecast ahead, median error 5.0 %" in lines["caught"]
+
+
+def test_a_kept_warning_says_so():
+    """A line whose state the alert rules keep raised (the forecast alone is steady again: the
+    walk-in's door was closed a few minutes ago) says so, instead of "approaching" beside no
+    crossing at all."""
+    from types import SimpleNamespace
+
+    from thermeta.daemon.simulation.recorder import Recorder
+    from thermeta.predictors.result import rfc3339
+
+    rec = Recorder(SimpleNamespace(loads=[], t_start=0.0), clock=None, out=None, echo=False)
+    d = {
+        "state": "approaching",
+        "value_now": 4.4,
+        "eta_s": None,
+        "last_reading_at": rfc3339(1_764_600_000.0),
+        "levels": [{"name": "limit", "state": "approaching", "judged": "steady"}],
+    }
+    line = rec._forecast_line(SimpleNamespace(name="k/dairy", unit="C"), d, 1_764_600_060.0)
+    assert (
+        "approaching; now 4.4 °C; warning kept until it eases (this forecast alone: steady)" in line
+    )

@@ -110,6 +110,15 @@ class Recorder:
             )
         elif d.get("state") == ItemState.STEADY:
             parts.append("no crossing ahead")
+        kept = [
+            lv
+            for lv in d.get("levels") or []
+            if lv.get("judged") and lv.get("judged") != lv.get("state")
+        ]
+        if kept:
+            # the alert rules keep a raised warning until it has eased: say so, or the line
+            # reads "approaching" beside no crossing at all
+            parts.append(f"warning kept until it eases (this forecast alone: {kept[0]['judged']})")
         truth = self.truth.get(item_cfg.name)
         if truth is not None and d.get("state") in (ItemState.APPROACHING, ItemState.STEADY):
             c = truth.crossing_t_true
