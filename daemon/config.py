@@ -200,11 +200,19 @@ def _items(
     }
     out = []
     n_levels = 0  # [[item.level]] tables are counted across the file, as the line index does
+    classes_used: set[str] = set()
     for i, t in enumerate(tables):
         if not isinstance(t, dict):
             checks.table().add("item", "must be a table", at=("item", i))
             continue
+        own_todo = "what_to_do" in t
+        keys = [str(t[k]).strip() for k in ("prior_class", "site") if isinstance(t.get(k), str)]
+        cls = next((k for k in keys if k in alerts.what_to_do_for), None)
         t = {**inherited, **t}
+        if cls is not None:
+            classes_used.add(cls)
+            if not own_todo:  # the item's own line wins; its class's comes before [alerts]'
+                t["what_to_do"] = alerts.what_to_do_for[cls]
         if "level" in t:
             levels, n_levels = _levels(checks, i, t["level"], n_levels)
             t["level"] = levels
@@ -216,6 +224,13 @@ def _items(
             _check_levels(checks.table("item", i), item)
         out.append(item)
     _check_overlaps(checks, out)
+    for cls in alerts.what_to_do_for:
+        if cls not in classes_used and tables:
+            checks.table("alerts").add(
+                "what_to_do_for",
+                f"{cls!r} is no item's prior_class or site",
+                at=("what_to_do_for", cls),
+            )
     return out
 
 

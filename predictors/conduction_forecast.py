@@ -70,6 +70,10 @@ class ConductionModel(Model):
             code = Reason.TOO_FEW_READINGS if fit.n_points < ctx.min_points else Reason.FIT_FAILED
             return fc.fail(code, fit.reason or "fit failed")
         eta, lo, hi = fit.time_to_threshold(ctx.threshold, t_now=float(ctx.t[-1]))
+        if eta == 0.0 and _on_near_side(ctx, fit.value_at_last):
+            # "past" there means the curve heads (by a hair, when flat) away from a threshold it
+            # is still short of; with the limit's side given that is no crossing, not one passed
+            eta = lo = hi = None
         fc.eta_s, fc.eta_lo_s, fc.eta_hi_s = eta, lo, hi
         fc.k_per_s = fit.k_per_s
         fc.k_lo_per_s = getattr(fit, "k_lo_per_s", None)
@@ -149,3 +153,12 @@ class AutoModel(Model):
         if shape != "lumped":
             best.model_basis = "AICc"
         return best
+
+
+def _on_near_side(ctx: Context, value_now: float) -> bool:
+    """The fitted value now is short of the threshold on the side the limit names."""
+    if ctx.limit == "upper":
+        return value_now < ctx.threshold
+    if ctx.limit == "lower":
+        return value_now > ctx.threshold
+    return False

@@ -128,10 +128,23 @@ def cycling_forecast(ctx: Context, fc: Forecast) -> Forecast:
         "drift_se_per_s": tr.drift_se,
         "n_fit": float(tt.size),
     }
+    # the centre is said only where the readings are: with fewer than MIN_CYCLES cycles it is
+    # the window's mean, and a drifted line of means can end away from the newest readings
+    # (a chill stopped at 18 degC once read "cycle around 29.7")
+    newest = float(np.median(yy[-3:]))
+    at_centre = abs(newest - tr.mean_now) <= tr.half_swing + 3.0 * ctx.noise_sd
+    if tr.n_cycles < MIN_CYCLES:
+        text = (
+            f"the readings swing like a thermostat's, but show {tr.n_cycles} full cycle(s), "
+            f"fewer than the {MIN_CYCLES} a drift needs; no crossing is forecast from them"
+        )
+        fc.note(NoteCode.CYCLING, text)
+        return fc
     text = (
         f"the readings cycle (a thermostat?) around {point(tr.mean_now, '.3g')} +- "
-        f"{step(tr.half_swing, '.2g')} over {tr.n_cycles} full cycle(s)"
-    )
+        if at_centre
+        else "the readings cycle (a thermostat?) by +- "
+    ) + f"{step(tr.half_swing, '.2g')} over {tr.n_cycles} full cycles"
     if tr.beyond_horizon:
         text += (
             f"; their mean drifts by {step(tr.drift_per_s * 3600, '+.2g')} "

@@ -130,3 +130,19 @@ def test_profile_ends_are_roots_of_the_profile_statistic():
     assert d_stat(lo * 1.08) < cut < d_stat(lo * 0.92)
     if hi is not None:
         assert d_stat(hi * 0.92) < cut < d_stat(hi * 1.08)
+
+
+def test_flat_probe_in_flat_air_below_an_upper_limit_is_no_crossing():
+    """A frozen carton's centre and its air both flat at -22 degC, the limit -15 degC above: a
+    body at its surroundings' temperature stays there (Newton's law and the heat equation both
+    have it at rest), so the core-probe forecast is "no crossing", never "already past" because
+    the flat curve leans a hair downward (the first five readings of a trailer once did)."""
+    from thermeta.predictors.forecast import forecast
+
+    rng = np.random.default_rng(0)
+    for n in (5, 8, 12):
+        t = np.arange(n) * 60.0
+        y = np.round(-22.0 + 0.06 * rng.standard_normal(n), 1)
+        air = np.round(-22.0 + 0.1 * rng.standard_normal(n), 1)
+        fc = forecast(t, y, -15.0, model="slab", ambient_t=t, ambient_y=air, limit="upper")
+        assert fc.eta_s is None and fc.eta_hi_s is None, (n, fc.eta_s, fc.eta_lo_s)

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import importlib.util
 import json
+import re
 import subprocess
 import sys
 import time
@@ -71,12 +72,16 @@ TOLERANCE = {
 }
 
 
+DURATION_S, SPEED = 45, 160  # 2 simulated hours: every check below has its events by then
+
+
 @pytest.fixture(scope="module")
 def headless_run(tmp_path_factory):
-    """One `thermeta demo --embedded --headless --duration 60 --speed 160` run for the tests
-    below: the same simulated span as 30 s at 320, with twice the real time per refit round, so
-    a slow machine still fits the forecasts of a fast approach (at 320 a loaded CI machine
-    skipped rounds and the wort's median error rose to 5.9 %)."""
+    """One `thermeta demo --embedded --headless --duration 45 --speed 160` run for the tests
+    below: 2 simulated hours (the checks need 1 h 30 min: the trays' first stage, the walk-in's
+    recovery).  A round of all 13 items takes seconds once the cartons' core-probe fits are in
+    it, so a faster clock leaves the wort, chilled in half an hour, too few rounds (at 320 a
+    loaded CI machine skipped rounds and the wort's median error rose to 5.9 %)."""
     summary_path = tmp_path_factory.mktemp("demo") / "summary.json"
     t0 = time.monotonic()
     r = subprocess.run(
@@ -85,9 +90,9 @@ def headless_run(tmp_path_factory):
             "--embedded",
             "--headless",
             "--duration",
-            "60",
+            str(DURATION_S),
             "--speed",
-            "160",
+            str(SPEED),
             "--summary-json",
             str(summary_path),
         ],
@@ -106,23 +111,55 @@ def test_demo_headless_forecasts_against_truth(headless_run):
     the simulator's truth."""
     r, wall, s = headless_run
     assert r.returncode == 0, r.stderr[-2000:]
-    assert wall < 110
+    assert wall < DURATION_S + 50
     assert "using an embedded broker" in r.stdout
     assert "forecast eastpier/reefer-12/load-top: approaching" in r.stdout
     assert "forecasts against the simulated truth" in r.stdout
     # the closing summary is the last thing printed, and the banner names no folder it removes
     assert r.stdout.rstrip().splitlines()[-1].endswith("alerts in all")
+    assert not [ln for ln in r.stderr.splitlines() if ln.startswith("alert ")], r.stderr
     assert "removed at the end" in r.stdout.splitlines()[0]
     played = s["sim_end"] - s["t_start"]
-    assert 0.85 * 60 * 160 < played < 1.15 * 60 * 160
+    assert 0.85 * DURATION_S * SPEED < played < 1.15 * DURATION_S * SPEED
     items = s["items"]
     for name, tol in TOLERANCE.items():
         ahead = items[name]["ahead"]
-        # at --speed 160 a refit round comes every 160 simulated s: the wort, chilled in minutes,
-        # is forecast several times between its approach and its crossing
+        # at --speed 160 a refit round comes every 160 simulated s or more: the wort, chilled
+        # in minutes, is forecast several times between its approach and its crossing
         assert len(ahead) >= 2, (name, items[name])
         med = _median([abs(a["rel_error"]) for a in ahead])
         assert med <= tol, (name, med)
+
+
+def test_every_warning_has_a_crossing_ahead(headless_run):
+    """A forecast assumes the surroundings keep the course they have: each `approaching` the
+    run judged has a crossing ahead, either the simulator's true one or the one the
+    surroundings as they stood then would bring (the walk-in's door left ajar: had it stayed
+    so, the dairy shelf would cross 5 degC about 33 min later), except in the first 10 minutes
+    after a change the fit has not seen yet (the door just closed).  So the trailer's cartons,
+    flat at -22 degC before their unit fails, are never `approaching`; the walk-in's warnings
+    are (at least 70 % of them) within 25 % of the ajar door's course or hold it in their 90 %
+    interval, and they end in `recovered` once the door
+    is closed; and no forecast line shows a crossing beyond the horizon as a time."""
+    r, _, s = headless_run
+    assert r.returncode == 0, r.stderr[-2000:]
+    for name, it in s["items"].items():
+        for f in it["false_warnings"]:
+            assert f["since_event_s"] is not None and f["since_event_s"] <= 600, (name, f)
+    warnings = []
+    for name in ("dairy-shelf", "meat-rack"):
+        it = s["items"][f"millrace-kitchen/walkin/{name}"]
+        assert it["true_crossing_t"] is None
+        assert it["warned_as_things_stood"], it
+        warnings += it["warned_as_things_stood"]
+        assert it["alerts"][-1] == "recovered", it["alerts"]
+    # a warning is right (within 25 %) or says its doubt (its 90 % interval holds the crossing);
+    # a 90 % interval misses one time in ten by design, and there are only a few warnings
+    honest = [abs(w["rel_error"]) <= 0.25 or w["inside_90"] for w in warnings]
+    assert sum(honest) >= 0.7 * len(honest), warnings
+    assert "truth: never crosses; as things stand it would cross at" in r.stdout
+    lines = [ln for ln in r.stdout.splitlines() if " forecast " in ln]
+    assert not [ln for ln in lines if re.search(r"\(in \d+ d ", ln)]
 
 
 def test_healthy_cold_room_raises_no_alert(headless_run):
@@ -154,7 +191,8 @@ def test_demo_tells_each_trade_its_own_news(headless_run):
     for name in ("wort", "wort-top"):
         told = items[f"copperbeck/brewhouse/batch-0417/{name}"]["told"]
         assert [a["event"] for a in told] == ["reached"], told
-        assert told[0]["at"] <= told[0]["deadline_at_s"]
+        # made before its deadline (the alert itself comes with the next refit round)
+        assert told[0]["reached_at_s"] <= told[0]["deadline_at_s"], told
     tray_c = items["riverside-canteen/blast-1/tray-c"]["told"]
     late = [a for a in tray_c if a["event"] == "late" and a["level"] == "stage-1"]
     assert late and late[0]["at"] <= late[0]["deadline_at_s"] - late[0]["lead_s"], tray_c
@@ -172,6 +210,8 @@ def test_demo_uses_a_reachable_broker(broker):
         DEMO
         + [
             "--headless",
+            "--scenario",
+            "reefer-power-loss",  # the broker is the question: one light site's rounds suffice
             "--duration",
             "4",  # room for the first refit round on a loaded machine (2 s missed it at times)
             "--speed",
@@ -231,7 +271,9 @@ def test_demo_starts_its_own_broker_when_the_one_there_refuses(tmp_path):
             time.sleep(0.05)
         assert broker_reachable("127.0.0.1", port) and not broker_accepts("127.0.0.1", port)
         r = subprocess.run(
-            DEMO + ["--headless", "--duration", "2", "--speed", "600", "--port", str(port)],
+            DEMO
+            + ["--headless", "--scenario", "reefer-power-loss", "--duration", "2"]
+            + ["--speed", "600", "--port", str(port)],
             capture_output=True,
             text=True,
             timeout=60,
@@ -354,3 +396,26 @@ def test_summary_says_what_the_forecasts_missed():
     assert "10 forecasts, none approaching it before it came" in lines["missed"]
     assert "10 forecasts, none approaching it yet" in lines["later"]
     assert "1 forecast ahead, median error 5.0 %" in lines["caught"]
+
+
+def test_a_kept_warning_says_so():
+    """A line whose state the alert rules keep raised (the forecast alone is steady again: the
+    walk-in's door was closed a few minutes ago) says so, instead of "approaching" beside no
+    crossing at all."""
+    from types import SimpleNamespace
+
+    from thermeta.daemon.simulation.recorder import Recorder
+    from thermeta.predictors.result import rfc3339
+
+    rec = Recorder(SimpleNamespace(loads=[], t_start=0.0), clock=None, out=None, echo=False)
+    d = {
+        "state": "approaching",
+        "value_now": 4.4,
+        "eta_s": None,
+        "last_reading_at": rfc3339(1_764_600_000.0),
+        "levels": [{"name": "limit", "state": "approaching", "judged": "steady"}],
+    }
+    line = rec._forecast_line(SimpleNamespace(name="k/dairy", unit="C"), d, 1_764_600_060.0)
+    assert (
+        "approaching; now 4.4 °C; warning kept until it eases (this forecast alone: steady)" in line
+    )

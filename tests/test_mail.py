@@ -131,3 +131,85 @@ def test_a_reminder_subject_says_so_and_good_news_has_no_todo(smtp):
     assert msg["Subject"].startswith("Reminder: reefer-07 (north-yard): ")
     recovered = _alert(Event.RECOVERED)
     assert recovered["what_to_do"] is None
+
+
+CLASS_CONFIG = """
+[alerts]
+what_to_do = "call the duty manager"
+[alerts.what_to_do_for]
+reefer = "check the unit's power; move the load if it is not back within 20 min"
+"millrace-kitchen/walkin" = { approaching = "close the walk-in's door", crossed = "move the dairy" }
+[[item]]
+name = "reefer-07"
+topic = "yard/reefer-07"
+threshold = 8
+prior_class = "reefer"
+[[item]]
+name = "reefer-08"
+topic = "yard/reefer-08"
+threshold = 8
+prior_class = "reefer"
+what_to_do = "reefer-08 has no spare unit: move its load at once"
+[[item]]
+name = "dairy-shelf"
+topic = "kitchen/dairy-shelf"
+threshold = 5
+site = "millrace-kitchen/walkin"
+[[item]]
+name = "fryer-oil"
+topic = "kitchen/fryer-oil"
+threshold = 5
+"""
+
+
+def test_what_to_do_by_class_reaches_the_mail(smtp, tmp_path, capsys):
+    """[alerts.what_to_do_for] gives a class of items (keyed by their prior_class or site) its
+    own line: the mail of a reefer of class "reefer" carries the class's line, an item's own
+    what_to_do wins over its class's, a class's table by event picks the event's line, and an
+    item of no class gets [alerts]' line.  A class key naming no item is a config problem on
+    its own line."""
+    from thermeta.daemon.cli import main
+    from thermeta.daemon.config import load_config
+
+    inbox, port = smtp
+    path = tmp_path / "site.toml"
+    path.write_text(CLASS_CONFIG, encoding="utf-8")
+    cfg = {it.name: it for it in load_config(path).items}
+    hook = make_hook(0, _config(port))
+    want = {
+        "reefer-07": "check the unit's power; move the load if it is not back within 20 min",
+        "reefer-08": "reefer-08 has no spare unit: move its load at once",
+        "dairy-shelf": "close the walk-in's door",
+        "fryer-oil": "call the duty manager",
+    }
+    for name, line in want.items():
+        alert = dict(_alert())
+        fresh = build_alert(
+            name,
+            {"value_now": 6.4, "levels": [], "last_reading_at": rfc3339(NOW)},
+            Raised(Event.APPROACHING),
+            ItemAlertState(),
+            RuleParams(threshold=8.0, lead_s=2700),
+            NOW,
+            what_to_do=cfg[name].what_to_do,
+        )
+        alert.update(item=name, what_to_do=fresh["what_to_do"])
+        hook.deliver(alert)
+        body = inbox.messages[-1].get_body(("plain",)).get_content()
+        assert f"What to do: {line}" in body, (name, body)
+    crossed = build_alert(
+        "dairy-shelf",
+        {"value_now": 5.4, "levels": []},
+        Raised(Event.CROSSED),
+        ItemAlertState(),
+        RuleParams(threshold=5.0, lead_s=2700),
+        NOW,
+        what_to_do=cfg["dairy-shelf"].what_to_do,
+    )
+    assert crossed["what_to_do"] == "move the dairy"
+    # a class no item names (here every reefer's class misspelt) is told on the class's line
+    path.write_text(CLASS_CONFIG.replace('"reefer"', '"reefr"'), encoding="utf-8")
+    capsys.readouterr()
+    assert main(["check-config", str(path)]) == 2
+    err = capsys.readouterr().err
+    assert f"{path}:5: alerts.what_to_do_for: 'reefer' is no item's prior_class or site" in err

@@ -155,3 +155,31 @@ def test_log_lines_are_stamped_in_the_sites_zone(amsterdam):
         root.handlers[:] = saved[0]
         root.setLevel(saved[1])
     assert buf.getvalue().startswith("2026-12-04 14:05:00 CET WARNING thermeta.t: hello")
+
+
+def test_a_cycle_note_says_its_centre_only_where_the_readings_are():
+    """A thermostat's note names the centre of the cycling only when the newest readings lie
+    in its swing: a wort chilled in steps (four falling teeth, means 41 to 31 degC) and then
+    held flat at 18 degC shows no full cycle, and the note says so instead of "the readings
+    cycle around 31.1 +- 11" while they read 18.0 (invented readings)."""
+    from types import SimpleNamespace
+
+    import numpy as np
+    from thermeta.predictors.cycling import cycling_forecast
+    from thermeta.predictors.result import Forecast
+
+    t1 = np.arange(0, 80 * 60, 60.0)
+    y1 = 41.0 - (t1 / 4800) * 10.0 + ((t1 % 1200) / 1200 - 0.5) * 2.0
+    t2 = np.arange(80 * 60, 110 * 60, 60.0)
+    t, y = np.concatenate([t1, t2]), np.concatenate([y1, np.full(t2.size, 18.0)])
+    ctx = SimpleNamespace(t=t, y=y, threshold=20.0, noise_sd=0.05, limit="lower")
+    fc = cycling_forecast(ctx, Forecast(20.0, "lumped", "fitted", int(t.size)))
+    (note,) = [n.text for n in fc.notes]
+    assert "around" not in note and "fewer than the 3" in note, note
+    assert fc.eta_s is None
+    # a steady sawtooth around 3 degC still says where it cycles
+    ts = np.arange(0, 6 * 3600, 60.0)
+    ys = 3.0 + ((ts % 1800) / 1800 - 0.5) * 2.0
+    ctx = SimpleNamespace(t=ts, y=ys, threshold=5.0, noise_sd=0.05, limit="upper")
+    (note,) = [n.text for n in cycling_forecast(ctx, Forecast(5.0, "lumped", "fitted", 360)).notes]
+    assert "around 2.99 +- 0.97 over 11 full cycles" in note, note

@@ -265,6 +265,11 @@ def _run(args: argparse.Namespace, workdir: Path) -> int:
             alerts_client.loop_stop()
         if broker is not None:
             broker.stop()
+        # a refit round still ending after stop() logs its alerts to the log file, not (once the
+        # file's handler is gone) to the terminal below the closing summary
+        deadline = time.monotonic() + 20.0
+        while service is not None and service.busy() and time.monotonic() < deadline:
+            time.sleep(0.1)
         logging.captureWarnings(False)
         root.removeHandler(handler)
         handler.close()

@@ -201,8 +201,15 @@ class AlertRules(Table):
     what_to_do: Annotated[str | dict[str, str], BeforeValidator(_what_to_do)] | None = None
 
 
+WhatToDo = Annotated[str | dict[str, str], BeforeValidator(_what_to_do)]
+
+
 class AlertDefaults(AlertRules):
     """[alerts]: the alert rules' defaults for every item."""
+
+    # A class of items' own line(s), keyed by the items' prior_class or site; an item's own
+    # what_to_do wins, [alerts] what_to_do is the fallback (the loader applies it).
+    what_to_do_for: dict[Text, WhatToDo] = Field(default_factory=dict)
 
 
 class HttpConfig(Table):

@@ -12,6 +12,7 @@ from typing import Any
 import paho.mqtt.client as mqtt
 from thermeta.daemon.levels.judge import remaining_s
 from thermeta.daemon.refit.rounds import ForecastUpdate
+from thermeta.daemon.simulation.physics import first_crossing
 from thermeta.daemon.states import ItemState
 from thermeta.daemon.timefmt import clock, duration, local_clock, parse_time, span
 from thermeta.daemon.units import UNIT_SIGN
@@ -47,13 +48,17 @@ class Recorder:
             etas = {k: level.get(k) for k in ("eta_s", "eta_lo_s", "eta_hi_s")}
         else:
             etas = {k: remaining_s(body, k, made) for k in ("eta_s", "eta_lo_s", "eta_hi_s")}
+        t_last = _epoch(body.get("last_reading_at"))
         rec = {
             "made_at": made,
             "state": body.get("state"),
             "level_state": None if level is None else level.get("state"),
+            # the judgement of this forecast itself, before the alert rules held a warning
+            "judged": None if level is None else level.get("judged") or level.get("state"),
             **etas,
-            "t_last": _epoch(body.get("last_reading_at")),
+            "t_last": t_last,
             "value_now": body.get("value_now"),
+            "held_crossing_t": self.held_crossing(truth, t_last),
         }
         with self._lock:
             self.forecasts.setdefault(item_cfg.name, []).append(rec)
@@ -64,6 +69,21 @@ class Recorder:
         if due and self.echo:
             self._print(self._forecast_line(item_cfg, body, now))
 
+    def held_crossing(self, truth: Any, t_last: float | None) -> float | None:
+        """When the probe would cross had its surroundings kept the course they had at
+        ``t_last`` (what a forecast made from readings up to then can know); the true crossing
+        when no later event changes it."""
+        if truth is None or truth.spec.threshold is None or truth.spec.direction is None:
+            return None
+        held = truth.spec.held
+        if held is None or t_last is None:
+            return truth.crossing_t_true
+        s = t_last - self.scenario.t_start
+        c = first_crossing(
+            held(s), truth.spec.threshold, truth.spec.direction, s, s + HORIZON_S, 30.0
+        )
+        return None if c is None else self.scenario.t_start + c
+
     def _forecast_line(self, item_cfg: Any, d: dict[str, Any], now: float) -> str:
         unit = UNIT_SIGN.get(item_cfg.unit, item_cfg.unit)
         parts = [f"{self._stamp(now)} forecast {item_cfg.name}: {d.get('state')}"]
@@ -71,7 +91,11 @@ class Recorder:
             parts.append(f"now {d['value_now']:.1f} {unit}")
         eta = d.get("eta_s")
         t_last = _epoch(d.get("last_reading_at"))
-        if eta and t_last is not None and d.get("state") != ItemState.CROSSED:
+        horizon = getattr(item_cfg, "horizon_s", HORIZON_S)
+        if eta and eta > horizon and d.get("state") != ItemState.CROSSED:
+            # beyond the horizon a forecast's time is not one to act on (nor is it shown so)
+            parts.append(f"no crossing within {duration(horizon)}")
+        elif eta and t_last is not None and d.get("state") != ItemState.CROSSED:
             # the forecast counts from its newest reading; the line counts from now
             ahead = t_last - now
             lo, hi = d.get("eta_lo_s"), d.get("eta_hi_s")
@@ -86,19 +110,32 @@ class Recorder:
             )
         elif d.get("state") == ItemState.STEADY:
             parts.append("no crossing ahead")
+        kept = [
+            lv
+            for lv in d.get("levels") or []
+            if lv.get("judged") and lv.get("judged") != lv.get("state")
+        ]
+        if kept:
+            # the alert rules keep a raised warning until it has eased: say so, or the line
+            # reads "approaching" beside no crossing at all
+            parts.append(f"warning kept until it eases (this forecast alone: {kept[0]['judged']})")
         truth = self.truth.get(item_cfg.name)
         if truth is not None and d.get("state") in (ItemState.APPROACHING, ItemState.STEADY):
             c = truth.crossing_t_true
-            parts.append(
-                "truth: "
-                + (
-                    "never crosses"
-                    if c is None
-                    else f"crosses at {local_clock(c)}"
-                    if c > now
-                    else "already crossed"
-                )
+            text = (
+                "never crosses"
+                if c is None
+                else f"crosses at {local_clock(c)}"
+                if c > now
+                else "already crossed"
             )
+            held = self.held_crossing(truth, t_last)
+            if held != c and (c is None or c > now):
+                # a later event (a door closed) changes the course the forecast could see
+                text += "; as things stand " + (
+                    f"it would cross at {local_clock(held)}" if held else "it would not cross"
+                )
+            parts.append("truth: " + text)
         return "; ".join(parts)
 
     def on_alert(self, topic: str, payload: bytes) -> None:
@@ -130,6 +167,14 @@ class Recorder:
         except BrokenPipeError:  # the reader went away (e.g. `| head`): stop printing
             self.echo = False
 
+    def _events_of(self, name: str) -> list[float]:
+        """When the surroundings of ``name``'s site changed (epoch s, the scenario's events)."""
+        return [
+            t
+            for t, text in getattr(self.scenario, "events", [])
+            if name.startswith(text.split(":", 1)[0] + "/")
+        ]
+
     def summary(self) -> dict[str, Any]:
         """Per item: how the forecasts made ahead of the true crossing compare with it."""
         items = {}
@@ -160,7 +205,40 @@ class Recorder:
                         and (f["eta_hi_s"] is None or true_left <= f["eta_hi_s"]),
                     }
                 )
+            events = self._events_of(name)
+            held_errors, false_warnings = [], []
+            for f in fcs:
+                if f.get("judged") != ItemState.APPROACHING or f["t_last"] is None:
+                    continue
+                held = f.get("held_crossing_t")
+                ahead = [x for x in (c, held) if x is not None and f["t_last"] < x]
+                if not ahead or min(ahead) - f["t_last"] > HORIZON_S:
+                    seen = [e for e in events if e <= f["t_last"]]
+                    false_warnings.append(
+                        {
+                            "t_last": f["t_last"],
+                            "since_event_s": f["t_last"] - seen[-1] if seen else None,
+                        }
+                    )
+                elif held is not None and held != c and f["eta_s"] is not None:
+                    left = held - f["made_at"]
+                    if left > 0:
+                        held_errors.append(
+                            {
+                                "made_at": f["made_at"],
+                                "eta_s": f["eta_s"],
+                                "eta_lo_s": f["eta_lo_s"],
+                                "eta_hi_s": f["eta_hi_s"],
+                                "true_eta_s": left,
+                                "rel_error": (f["eta_s"] - left) / left,
+                                "inside_90": (f["eta_lo_s"] is None or f["eta_lo_s"] <= left)
+                                and (f["eta_hi_s"] is None or left <= f["eta_hi_s"]),
+                            }
+                        )
             items[name] = {
+                "events": events,
+                "warned_as_things_stood": held_errors,
+                "false_warnings": false_warnings,
                 "true_crossing_t": c,
                 "n_forecasts": len(fcs),
                 "n_approaching": sum(
@@ -175,6 +253,7 @@ class Recorder:
                         "level": a["body"].get("level"),
                         "at": a["at"],
                         "deadline_at_s": a["body"].get("deadline_at_s"),
+                        "reached_at_s": a["body"].get("reached_at_s"),
                         "lead_s": a["body"].get("lead_s"),
                     }
                     for a in self.alerts
@@ -251,11 +330,17 @@ def print_summary(summary: dict[str, Any], out: Any) -> None:
                 f"truth inside the 90 % interval in {100 * inside:.0f} %"
             )
         elif it["true_crossing_t"] is None:
+            held = sorted(abs(e["rel_error"]) for e in it.get("warned_as_things_stood") or [])
+            n_false = len(it.get("false_warnings") or [])
             n_app = it["n_approaching"]
             how = f"{_count(it['n_forecasts'], 'forecast')}, " + (
                 f"{n_app} of them approaching a crossing that never comes"
-                if n_app
+                if n_app and not held
                 else "none approaching"
+                if not n_app
+                else f"{_count(len(held), 'warning')} of a crossing that the surroundings as "
+                f"they stood would bring (median error {100 * held[len(held) // 2]:.1f} % against "
+                f"that), {n_false} of one they would not"
             )
         elif it["true_crossing_t"] > summary["sim_end"]:
             how = f"{_count(it['n_forecasts'], 'forecast')}, none approaching it yet"

@@ -15,6 +15,7 @@ import numpy as np
 from thermeta.daemon.simulation import SITE_NAMES
 from thermeta.daemon.simulation.physics import (
     Direction,
+    Piece,
     centre_probe,
     thermostat_pieces,
     time_to_reach,
@@ -52,6 +53,9 @@ class ProbeSpec:
     budget_s: float | None = None  # a limit's allowance of time beyond it
     corruption: Corruption = field(default_factory=Corruption)
     truth: dict[str, float] = field(default_factory=dict)
+    # the curve if the surroundings kept the course they have at s (relative s): what a forecast
+    # made then can know (a door closed later is not in it); None: no later event changes it
+    held: Callable[[float], Callable[[np.ndarray], np.ndarray]] | None = None
 
 
 # One dropout per probe, under 10 minutes in 12 h: shorter than the daemon's default silence limit
@@ -85,6 +89,11 @@ class Site:
     events: list[tuple[float, str]]
 
 
+def _upto(pieces: list[Piece], s: float) -> list[Piece]:
+    """The pieces begun by relative time ``s``: the surroundings as they stand then, kept."""
+    return [p for p in pieces if p[0] <= s] or pieces[:1]
+
+
 def _reefer() -> Site:
     """A reefer container on a yard stack; its power fails; the return air warms toward a hot
     afternoon outside, the pallets follow the air (measured ambient)."""
@@ -95,8 +104,11 @@ def _reefer() -> Site:
     def air(x):
         return two_stage(x, pieces, 2.0)[0]
 
-    def load(kl):
-        return lambda x: two_stage(x, pieces, 2.0, 2.0, kl)[1]
+    def load(kl, upto=pieces):
+        return lambda x: two_stage(x, upto, 2.0, 2.0, kl)[1]
+
+    def held(kl):
+        return lambda s: load(kl, _upto(pieces, s))
 
     common: dict[str, Any] = dict(
         threshold=8.0,
@@ -122,6 +134,7 @@ def _reefer() -> Site:
             f"{base}/load-top",
             load(1 / (4.5 * H)),
             truth={"k_per_s": 1 / (4.5 * H), "ambient": outside},
+            held=held(1 / (4.5 * H)),
             # the cargo may spend 45 minutes in all above 8 degC (an invented allowance)
             budget_s=45 * MIN,
             **common,
@@ -131,6 +144,7 @@ def _reefer() -> Site:
             f"{base}/load-door",
             load(1 / (7 * H)),
             truth={"k_per_s": 1 / (7 * H), "ambient": outside},
+            held=held(1 / (7 * H)),
             **common,
         ),
     ]
@@ -159,8 +173,11 @@ def _walkin() -> Site:
     def air(x):
         return two_stage(x, pieces, 3.0)[0]
 
-    def load(l0, kl):
-        return lambda x: two_stage(x, pieces, 3.0, l0, kl)[1]
+    def load(l0, kl, upto=pieces):
+        return lambda x: two_stage(x, upto, 3.0, l0, kl)[1]
+
+    def held(l0, kl):
+        return lambda s: load(l0, kl, _upto(pieces, s))
 
     common: dict[str, Any] = dict(
         threshold=5.0,
@@ -186,6 +203,7 @@ def _walkin() -> Site:
             f"{base}/dairy-shelf",
             load(3.0, 1 / (2.5 * H)),
             truth={"k_per_s": 1 / (2.5 * H), "ambient_while_open": 16.0},
+            held=held(3.0, 1 / (2.5 * H)),
             **common,
         ),
         ProbeSpec(
@@ -193,6 +211,7 @@ def _walkin() -> Site:
             f"{base}/meat-rack",
             load(2.8, 1 / (4 * H)),
             truth={"k_per_s": 1 / (4 * H), "ambient_while_open": 16.0},
+            held=held(2.8, 1 / (4 * H)),
             **common,
         ),
     ]
@@ -323,12 +342,15 @@ def _trailer() -> Site:
     pieces = [(0.0, -22.0, 1 / H), (fail, 4.0, 1 / (1.5 * H))]
     base = "route9/trailer-4"
 
-    def air(x):
-        return two_stage(np.asarray(x, float), pieces, -22.0)[0]
+    def air(x, upto=pieces):
+        return two_stage(np.asarray(x, float), upto, -22.0)[0]
 
-    def carton(half_m, biot):
+    def carton(half_m, biot, upto=pieces):
         a = 1.1e-6 / half_m**2
-        return (lambda x: centre_probe(x, air, -22.0, biot, a, "slab")), a
+        return (lambda x: centre_probe(x, lambda z: air(z, upto), -22.0, biot, a, "slab")), a
+
+    def held(half_m, biot):
+        return lambda s: carton(half_m, biot, _upto(pieces, s))[0]
 
     large, a_large = carton(0.15, 1.5)
     small, a_small = carton(0.06, 0.6)
@@ -362,6 +384,7 @@ def _trailer() -> Site:
             f"{base}/carton-large",
             large,
             truth={"biot": 1.5, "a_per_s": a_large, "ambient": 4.0},
+            held=held(0.15, 1.5),
             **common,
         ),
         ProbeSpec(
@@ -369,6 +392,7 @@ def _trailer() -> Site:
             f"{base}/carton-small",
             small,
             truth={"biot": 0.6, "a_per_s": a_small, "ambient": 4.0},
+            held=held(0.06, 0.6),
             **common,
         ),
     ]
