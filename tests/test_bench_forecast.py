@@ -62,6 +62,26 @@ def test_every_family_is_in_the_table(bench, quick):
     assert "nan" not in text.lower()
 
 
+def test_readme_block_is_short_and_names_every_family(quick):
+    """The README's block is a summary (one row per family, no variants' rows, under 40
+    lines) between its markers; every target not met is named in it."""
+    from forecast_bench import misspecified
+    from forecast_bench.params import VARIANT_FAMILIES
+    from forecast_bench.report import README_BEGIN, README_END, readme_block
+
+    _, summary, checks, _ = quick
+    meta = {"command": "x", "elapsed_s": 1.0, "jobs": 1, "seed": 1, "commit": "c"}
+    block = readme_block(summary, checks, meta)
+    lines = block.splitlines()
+    assert lines[0] == README_BEGIN and lines[-1] == README_END and len(lines) < 40
+    for fam in (*VARIANT_FAMILIES, *misspecified.FAMILIES):
+        assert sum(line.startswith(f"| {fam} |") for line in lines) == 1, fam
+    for c in checks:
+        if c.ok is False:
+            assert c.target in block
+    assert "nan" not in block.lower()
+
+
 def test_quick_figures_are_finite(bench, quick):
     """The summary of a quick run has finite errors and coverages in [0, 1] for every curve
     family, variant and point of progress, and each target is judged or marked n/a."""
