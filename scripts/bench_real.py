@@ -416,6 +416,23 @@ def targets_lines(s: dict) -> list[str]:
     return out
 
 
+def tail_line(rows: list[dict]) -> str:
+    """The p90's tail, measured: how many of our forecasts err by more than the straight line's
+    p90, and on how many of those the line errs by more than its own p90 too (the readings then
+    hold too little to say: neither the curve nor the trend gets there)."""
+    if not rows:
+        return ""
+    line_p90 = float(np.percentile([rel_error(r["line"], r["eta_true"]) for r in rows], 90))
+    ours = [r for r in rows if rel_error(r["eta"], r["eta_true"]) > line_p90]
+    both = [r for r in ours if rel_error(r["line"], r["eta_true"]) > line_p90]
+    late = sum(r["eta"] is None or r["eta"] > r["eta_true"] for r in ours)
+    return (
+        f"The p90's tail: {len(ours)} of {len(rows)} forecasts err by more than the straight "
+        f'line\'s p90 ({100 * line_p90:.0f} %), {late} of them late or "never"; the line errs '
+        f"by more than that too on {len(both)} of these {len(ours)}."
+    )
+
+
 def _commit() -> str:
     import subprocess
 
@@ -470,6 +487,8 @@ def markdown(records: list[Record], rows: list[dict], meta: dict, loo: bool) -> 
         "## Targets",
         "",
         *targets_lines(s),
+        "",
+        tail_line(rows),
         "",
         "## Per record",
         "",

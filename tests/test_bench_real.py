@@ -112,3 +112,16 @@ def test_bench_writes_its_table(bench, tmp_path):
     assert md.count("PASS") + md.count("FAIL") == 5
     block = bench.readme_block(rows, {"elapsed_s": 1.0, "commit": "x", "n_records": 2})
     assert block.startswith(bench.README_BEGIN) and block.endswith(bench.README_END)
+
+
+def test_tail_line_counts_the_forecasts_beyond_the_lines_p90(bench):
+    """The p90's tail line counts, from the rows, the forecasts erring beyond the straight line's
+    p90 and those on which the line errs beyond it too (a unit check of the counting on ten
+    hand-made rows: the line errs 10 % on nine and 100 % on one, so its p90 is 19 %)."""
+    rows = [{"eta_true": 100.0, "line": 110.0, "eta": 100.0} for _ in range(9)]
+    rows.append({"eta_true": 100.0, "line": 200.0, "eta": None})
+    rows[0]["eta"] = 150.0
+    text = bench.tail_line(rows)
+    assert "2 of 10 forecasts err by more than the straight line's p90 (19 %)" in text
+    assert "2 of them late" in text
+    assert "on 1 of these 2" in text
