@@ -260,6 +260,7 @@ class Cluster:
             "members": self.members,
             "last_refit_at": self.last_refit_at,
             "rounds": self.service.refitter.runs,
+            "last_round_s": round(self.service.refitter.last_run_s, 3),
             "pid": os.getpid(),
             "host": socket.gethostname(),
         }
