@@ -18,6 +18,7 @@ from sqlalchemy import create_engine, text
 from test_hooks import Receiver
 from thermeta.daemon.cluster.scenario import ITEMS, Stream
 from thermeta.daemon.config import load_config
+from thermeta.daemon.ingest.mqtt import read_retained
 from thermeta.daemon.testing import RunningDaemon, wait_for, write_config
 from thermeta.storage.errors import ConfigError
 
@@ -43,9 +44,10 @@ def test_three_daemons_one_killed_lose_nothing_and_hand_over_within_two_rounds(
     """Three daemons, 1,000 items, one killed with SIGKILL mid-stream and started again after
     the hand-over: every reading stored exactly once, every item forecast again within two
     refit_every of the kill, every alert posted exactly once, and no item refitted by two
-    daemons within one refit_every (the round log, checked against the lease terms)."""
+    daemons within one refit_every (the round log, checked against the lease terms); the
+    daemon's retained status names its group and items held, and turns offline when it dies."""
     receiver = Receiver()
-    daemons = []
+    daemons, cfgs = [], []
     for k in range(3):
         work = tmp_path / f"d{k}"
         work.mkdir()
@@ -60,6 +62,7 @@ def test_three_daemons_one_killed_lose_nothing_and_hand_over_within_two_rounds(
             extra=HOOK.format(url=receiver.url),
         )
         daemons.append(RunningDaemon(cfg))
+        cfgs.append(load_config(cfg))
     try:
         for d in daemons:
             d.start(wait_connected=False)
@@ -79,6 +82,10 @@ def test_three_daemons_one_killed_lose_nothing_and_hand_over_within_two_rounds(
         )
         time.sleep(REFIT_S)
         victim = daemons[2]
+        # each daemon's own retained status names its group, instance and items held
+        status = read_retained(cfgs[2].broker, "thermeta/status/thermeta-node-2")
+        assert status and status["state"] == "online" and status["group"] == "yard"
+        assert status["instance"] == "thermeta-node-2" and status["items_held"] > 0
         victim.kill9()
         killed_at = time.time()
         theirs = {
@@ -105,6 +112,9 @@ def test_three_daemons_one_killed_lose_nothing_and_hand_over_within_two_rounds(
             )
         )
         late = sorted(at - killed_at for at in firsts.values())
+        # the broker's last will: the dead daemon's status says so
+        gone = read_retained(cfgs[2].broker, "thermeta/status/thermeta-node-2")
+        assert gone and gone["state"] == "offline"
         assert len(firsts) == N_ITEMS and late[-1] <= 2 * REFIT_S, (
             len(firsts),
             late[:: max(1, len(late) // 10)],
