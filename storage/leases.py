@@ -287,7 +287,8 @@ class LeaseStore:
 
     # -- the round log ----------------------------------------------------------------------------
     def record_refits(self, rows: list[tuple[str, int, float]], keep_s: float) -> None:
-        """Log (item, term, at) refits of ours; drop log rows older than ``keep_s``."""
+        """Log (item, term, at) refits of ours; drop log rows (anyone's, a dead daemon's too)
+        older than ``keep_s``."""
         with self.store.transaction() as conn:
             if rows:
                 conn.execute(
@@ -298,11 +299,7 @@ class LeaseStore:
                     ],
                 )
             cutoff = float(conn.execute(select(_NOW)).scalar_one()) - keep_s
-            conn.execute(
-                delete(cluster_refits).where(
-                    cluster_refits.c.instance == self.instance, cluster_refits.c.at < cutoff
-                )
-            )
+            conn.execute(delete(cluster_refits).where(cluster_refits.c.at < cutoff))
 
 
 def refit_log(store: Store) -> list[tuple[str, str, int, float]]:
