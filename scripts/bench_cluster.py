@@ -123,7 +123,8 @@ def main(argv: list[str] | None = None) -> int:
             wait_for(
                 lambda: (
                     q(
-                        f"select count(distinct item) from cluster_refits where at > {killed_at} "
+                        "select count(distinct item) from cluster_refits "
+                        f"where done_at > {killed_at} "
                         f"and instance <> '{dead}'"
                     )[0][0]
                     == n
@@ -132,7 +133,10 @@ def main(argv: list[str] | None = None) -> int:
                 daemons[0].log,
             )
             firsts = dict(
-                q(f"select item, min(at) from cluster_refits where at > {killed_at} group by item")
+                q(
+                    "select item, min(done_at) from cluster_refits "
+                    f"where done_at > {killed_at} group by item"
+                )
             )
             took = sorted(firsts[i] - killed_at for i in theirs if i in firsts)
             took_all = max(firsts.values()) - killed_at

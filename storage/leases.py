@@ -78,7 +78,8 @@ cluster_refits = Table(
     Column("item", String(200), nullable=False),
     Column("instance", String(200), nullable=False),
     Column("term", BigInteger, nullable=False),
-    Column("at", Double, nullable=False),  # the refit round's time (epoch s)
+    Column("at", Double, nullable=False),  # the refit round's time (epoch s): made_at
+    Column("done_at", Double, nullable=False),  # when the forecast was out (published, stored)
     Index("ix_cluster_refits_at", "at"),
 )
 
@@ -286,16 +287,16 @@ class LeaseStore:
         return out
 
     # -- the round log ----------------------------------------------------------------------------
-    def record_refits(self, rows: list[tuple[str, int, float]], keep_s: float) -> None:
-        """Log (item, term, at) refits of ours; drop log rows (anyone's, a dead daemon's too)
-        older than ``keep_s``."""
+    def record_refits(self, rows: list[tuple[str, int, float, float]], keep_s: float) -> None:
+        """Log (item, term, at, done_at) refits of ours; drop log rows (anyone's, a dead
+        daemon's too) older than ``keep_s``."""
         with self.store.transaction() as conn:
             if rows:
                 conn.execute(
                     insert(cluster_refits),
                     [
-                        {"item": n, "instance": self.instance, "term": t, "at": at}
-                        for n, t, at in rows
+                        {"item": n, "instance": self.instance, "term": t, "at": at, "done_at": d}
+                        for n, t, at, d in rows
                     ],
                 )
             cutoff = float(conn.execute(select(_NOW)).scalar_one()) - keep_s

@@ -24,7 +24,7 @@ from thermeta.storage.errors import ConfigError
 
 N_ITEMS = 1000
 HISTORY = 12  # rounds of readings whose time stamps lie in the past, sent at once
-REFIT_S = 8.0
+REFIT_S = 12.0
 HOOK = '[cluster]\ngroup = "yard"\n\n[[hook]]\nkind = "webhook"\nurl = "{url}"\n'
 
 
@@ -97,7 +97,8 @@ def test_three_daemons_one_killed_lose_nothing_and_hand_over_within_two_rounds(
         def forecast_again() -> bool:
             rows = _q(
                 pg_schema_url,
-                f"select count(distinct item) from cluster_refits where at > {killed_at} "
+                "select count(distinct item) from cluster_refits "
+                f"where done_at > {killed_at} "
                 "and instance <> 'thermeta-node-2'",
             )
             return rows[0][0] == N_ITEMS
@@ -108,7 +109,8 @@ def test_three_daemons_one_killed_lose_nothing_and_hand_over_within_two_rounds(
         firsts = dict(
             _q(
                 pg_schema_url,
-                f"select item, min(at) from cluster_refits where at > {killed_at} group by item",
+                "select item, min(done_at) from cluster_refits "
+                f"where done_at > {killed_at} group by item",
             )
         )
         late = sorted(at - killed_at for at in firsts.values())
@@ -119,6 +121,12 @@ def test_three_daemons_one_killed_lose_nothing_and_hand_over_within_two_rounds(
             len(firsts),
             late[:: max(1, len(late) // 10)],
             sorted(set(theirs) - set(firsts))[:10],
+            _q(
+                pg_schema_url,
+                f"select item, instance, at - {killed_at}, done_at - {killed_at} "
+                "from cluster_refits order by done_at desc limit 5",
+            ),
+            [(i, i in theirs) for i, at in firsts.items() if at - killed_at > 2 * REFIT_S][:10],
         )
         stream.stop.set()
         stream.join(60)

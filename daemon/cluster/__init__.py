@@ -6,7 +6,7 @@
   a lone daemon does.
 - The store spreads the items: each item's refits and alerts belong to one daemon at a time, by
   a lease row (``storage/leases.py``, :class:`~thermeta.daemon.cluster.keeper.Cluster`), renewed
-  every quarter of a ``refit_every`` and lasting one ``refit_every``; a daemon that stops renewing
+  every eighth of a ``refit_every`` and lasting half of one; a daemon that stops renewing
   (killed, cut off) loses its items to the others, which take them at their next tick.  Each
   daemon claims up to its fair share, ``ceil(items / live daemons)``, and lets the excess expire.
 - The outbox is shared: a worker claims one row at a time (``FOR UPDATE SKIP LOCKED``,

@@ -1,13 +1,14 @@
 """One daemon's part in a group: its leases, what it tells the others, and its refits' log.
 
     cluster = Cluster(service)     # before the store's tables are made (they join its schema)
-    cluster.start()                # after the scheduler: a lease tick every refit_every / 4
+    cluster.start()                # after the scheduler: a lease tick every refit_every / 8
     cluster.stop()                 # a clean stop hands every item over at once
 
 Timing, with ``r = refit_every``: a lease lasts ``LEASE_ROUNDS * r`` from its renewal on the
-database's clock and is renewed every ``r / TICKS_PER_ROUND``.  The holder stops refitting an
-item once less than ``MARGIN_ROUNDS * r`` of its own count of the lease is left (a tick lost to
-a slow database does not cost the item yet; a daemon cut off stops before anyone takes over).
+database's clock and is renewed every ``r / TICKS_PER_ROUND`` (four ticks a lease).  The holder
+stops refitting an item once less than ``MARGIN_LEASE`` of its own count of the lease is left (a
+tick lost to a slow database does not cost the item yet; a daemon cut off stops before anyone
+takes over).
 A daemon killed right after a renewal loses its items ``LEASE_ROUNDS * r`` later; the others
 take them at their next tick and refit them at once: items are forecast again within
 ``(LEASE_ROUNDS + 1 / TICKS_PER_ROUND) * r`` plus a round's time.
@@ -35,10 +36,12 @@ from thermeta.storage.leases import LeaseStore
 
 log = logging.getLogger("thermeta.cluster")
 
-LEASE_ROUNDS = 1.0
-TICKS_PER_ROUND = 4
-MARGIN_ROUNDS = 0.5  # a round starts on an item only with this much of the lease left ...
-OWN_MARGIN_ROUNDS = 0.1  # ... and stores its forecast only with this much left
+# Half a round: the take-over time is the lease plus a tick plus the survivors' round, and the
+# round (with the dead daemon's items added) is what takes long on a busy machine.
+LEASE_ROUNDS = 0.5
+TICKS_PER_ROUND = 8
+MARGIN_LEASE = 0.5  # a round starts on an item only with this share of the lease left ...
+OWN_MARGIN_LEASE = 0.1  # ... and stores its forecast only with this share left
 LOG_KEEP_S = 3600.0  # the round log's own retention
 ERROR_EVERY_S = 60.0
 
@@ -65,7 +68,9 @@ class Cluster:
         self.ticks = 0
         self.members = 1
         self.last_refit_at: float | None = None
-        self._log: list[tuple[str, int, float]] = []  # refits not yet written to the round log
+        self._log: list[
+            tuple[str, int, float, float]
+        ] = []  # refits not yet written to the round log
         self._lock = threading.Lock()
         self._error_at = -math.inf
         self._first = True
@@ -81,7 +86,7 @@ class Cluster:
         with self._lock:
             if name not in self.held:
                 return False
-            if time.monotonic() > self.valid_until - MARGIN_ROUNDS * self.refit_s:
+            if time.monotonic() > self.valid_until - MARGIN_LEASE * self.lease_s:
                 return False
             return self.not_before.get(name, -math.inf) <= now
 
@@ -90,7 +95,7 @@ class Cluster:
         and published (a round that outlasted the lease drops the item)."""
         with self._lock:
             left = self.valid_until - time.monotonic()
-            return name in self.held and left > OWN_MARGIN_ROUNDS * self.refit_s
+            return name in self.held and left > OWN_MARGIN_LEASE * self.lease_s
 
     def held_names(self) -> list[str]:
         with self._lock:
@@ -241,7 +246,7 @@ class Cluster:
         # the round's clock time: what the store keeps as the forecast's made_at
         now = self.view.round_now or self.service.clock.now()
         with self._lock:
-            self._log.append((update.name, self.held.get(update.name, -1), now))
+            self._log.append((update.name, self.held.get(update.name, -1), now, time.time()))
             self.last_refit_at = now
 
     def _flush_log(self) -> None:
