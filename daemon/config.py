@@ -25,6 +25,7 @@ from thermeta.daemon.settings.sections import (
     AlertDefaults,
     AlertRules,
     BrokerConfig,
+    ClusterConfig,
     FitConfig,
     FitRules,
     HttpConfig,
@@ -63,6 +64,7 @@ SECTIONS: dict[str, type[Table]] = {
     "alerts": AlertDefaults,
     "log": LogConfig,
     "http": HttpConfig,
+    "cluster": ClusterConfig,
 }
 TOP_KEYS = (*SECTIONS, "item", "hook", "schedule", "timezone")
 
@@ -85,6 +87,7 @@ class Config:
     # the IANA zone of the clock times people read (and of a "by" deadline); None: the machine's
     timezone: str | None = None
     http: HttpConfig = field(default_factory=HttpConfig)
+    cluster: ClusterConfig = field(default_factory=ClusterConfig)
 
 
 def load_config(path: str | Path) -> Config:
@@ -131,6 +134,7 @@ def parse_config(data: dict[str, Any], name: str, text: str) -> Config:
     )
     hooks = _hooks(checks, data.get("hook", []))
     zone = _timezone(checks, data.get("timezone"))
+    _cluster_store(checks, tables["cluster"], tables["storage"])
     if checks.problems:
         raise ConfigError(checks.problems)
     return Config(
@@ -147,7 +151,19 @@ def parse_config(data: dict[str, Any], name: str, text: str) -> Config:
         schedules=tuple(schedules),
         timezone=zone,
         http=tables["http"],
+        cluster=tables["cluster"],
     )
+
+
+def _cluster_store(checks: Checks, cluster: ClusterConfig, storage: StorageConfig) -> None:
+    """Several daemons share their items through leases in a PostgreSQL store (docs/cluster.md)."""
+    url = storage.url or ""
+    if cluster.group and not url.startswith("postgresql"):
+        checks.table("cluster").add(
+            "group",
+            f"needs a PostgreSQL store: [storage] url is {url.split(':', 1)[0]} "
+            "(e.g. postgresql+psycopg://user@host/db)",
+        )
 
 
 def _timezone(checks: Checks, raw: Any) -> str | None:

@@ -110,6 +110,7 @@ class Service:
         self.started_at: float | None = None
         self.started_mono: float | None = None  # time.monotonic() at start (daemon/metrics.py)
         self.http: Any = None  # the [http] figures' server, when listening
+        self.cluster: Any = None  # [cluster]: this daemon's leases (daemon/cluster/)
         self.stopped = threading.Event()
         self._rate = {"t": time.monotonic(), "n": 0, "per_s": 0.0}
 
@@ -151,8 +152,15 @@ class Service:
 
         for note in overrides(cfg):
             log.info("%s", note)
-        self.store.create_all()
-        self._check_alone()
+        if cfg.cluster.group:
+            from thermeta.daemon.cluster import Cluster
+
+            self.cluster = Cluster(self)  # its tables join the schema
+            self.cluster.create_tables()
+        else:
+            self.store.create_all()
+        if self.cluster is None:  # a group's daemons share the store by design
+            self._check_alone()
         self._check_client_id()
         self._load_items()
         self.refitter.load_previous()
@@ -166,9 +174,12 @@ class Service:
             status_topic_of(cfg),
             {"pid": os.getpid(), "host": socket.gethostname()},
             max_payload_bytes=cfg.ingest.max_payload_bytes,
+            share_group=cfg.cluster.group,
         )
         self.link.start()
         self._start_scheduler()
+        if self.cluster is not None:
+            self.cluster.start()
         self.started_at = self.clock.now()
         self.started_mono = time.monotonic()
         if cfg.http.listen:
@@ -379,6 +390,8 @@ class Service:
             self.step_watch.stop()
         if self.scheduler is not None:
             _bounded(lambda: self.scheduler.shutdown(wait=True), "the refit round")
+        if self.cluster is not None:
+            _bounded(self.cluster.stop, "the cluster's leases")
         for plugin in self.plugins:
             _bounded(plugin.stop, f"plug-in {plugin!r}")
         _bounded(lambda: self._heartbeat("stopped"), "the last heartbeat")

@@ -136,10 +136,15 @@ def span(lo: float | None, hi: float | None) -> str:
     return f"{a} to {b}"
 
 
+# beyond this an epoch time is no clock time (datetime ends in the year 9999; an open end of a
+# forecast's interval can be far past that)
+LATEST_S = 2.5e11
+
+
 def clock(epoch_s: float | None, now_s: float | None = None) -> str:
     """'14:05 CET' in the site's zone; with the date when it is not the day of ``now_s``
     (default: the wall clock's)."""
-    if epoch_s is None or not math.isfinite(epoch_s):
+    if epoch_s is None or not abs(epoch_s) < LATEST_S:
         return "-"
     dt = _minute(epoch_s)
     today = local(now_s if now_s is not None else datetime.now(UTC).timestamp()).date()
@@ -165,6 +170,6 @@ def clock_span(lo_s: float | None, hi_s: float | None, now_s: float | None = Non
 
 def local_clock(epoch_s: float | None, with_date: bool = False) -> str:
     """A wall-clock time in the site's zone: '14:05' or '2026-12-01 14:05 CET'."""
-    if epoch_s is None or not math.isfinite(epoch_s):
+    if epoch_s is None or not abs(epoch_s) < LATEST_S:
         return "-"
     return _minute(epoch_s).strftime("%Y-%m-%d %H:%M %Z" if with_date else "%H:%M")

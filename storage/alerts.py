@@ -204,6 +204,34 @@ class AlertStore:
                 for r in conn.execute(q)
             ]
 
+    def claim(self, hook: str, now: float, hold_s: float) -> OutboxRow | None:
+        """Several daemons sharing the outbox ([cluster]): take the oldest due row of ``hook``
+        that no other daemon is taking (``FOR UPDATE SKIP LOCKED``) and put its next try
+        ``hold_s`` ahead, so nobody else sends it while we do; a daemon that dies sending it
+        leaves it to the others once ``hold_s`` has passed."""
+        pick = (
+            select(outbox.c.id)
+            .where(
+                outbox.c.hook == hook,
+                outbox.c.status == OutboxStatus.PENDING,
+                outbox.c.next_at <= now,
+            )
+            .order_by(outbox.c.id)
+            .limit(1)
+            .with_for_update(skip_locked=True)
+        )
+        with self.store.transaction() as conn:
+            row_id = conn.execute(pick).scalar()
+            if row_id is None:
+                return None
+            conn.execute(update(outbox).where(outbox.c.id == row_id).values(next_at=now + hold_s))
+            r = conn.execute(
+                select(outbox.c.id, outbox.c.attempts, outbox.c.created_at, alert_events.c.body)
+                .join(alert_events, alert_events.c.id == outbox.c.event_id)
+                .where(outbox.c.id == row_id)
+            ).one()
+        return OutboxRow(int(r.id), int(r.attempts), float(r.created_at), json.loads(r.body))
+
     def mark_delivered(self, row_id: int, now: float) -> None:
         with self.store.transaction() as conn:
             conn.execute(

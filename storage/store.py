@@ -271,8 +271,9 @@ class Store(ReadingQueries):
                     for n in chunk
                     if n not in found
                 ]
-                if new:
-                    conn.execute(insert(items), new)
+                if new:  # another daemon of a [cluster] group may add the same item at once
+                    ignore = self._insert_ignore(items)
+                    conn.execute(insert(items) if ignore is None else ignore, new)
                     found.update(
                         conn.execute(
                             select(items.c.name, items.c.id).where(

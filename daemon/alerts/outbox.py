@@ -21,6 +21,9 @@ from thermeta.storage.errors import DeliveryError
 log = logging.getLogger("thermeta.alerts.outbox")
 
 POLL_S = 2.0
+# shared outbox: how long a claimed row waits for its sender before others may take it (longer
+# than any hook's own timeout)
+CLAIM_HOLD_S = 120.0
 WARN_EVERY_S = 300.0
 
 
@@ -41,11 +44,14 @@ class OutboxWorker(threading.Thread):
         max_s: float = 300.0,
         max_age_s: float = 7 * 86400.0,
         poll_s: float = POLL_S,
+        shared: bool = False,
     ):
         super().__init__(name=f"outbox-{hook.key}", daemon=True)
         self.hook = hook
         self.astore = astore
         self.base_s, self.max_s, self.max_age_s, self.poll_s = base_s, max_s, max_age_s, poll_s
+        # [cluster]: other daemons drain the same outbox; each row is claimed before sending
+        self.shared = shared
         self.wake = threading.Event()
         self.halt = threading.Event()
         self.failures = 0
@@ -77,7 +83,7 @@ class OutboxWorker(threading.Thread):
         """Deliver what is due; return how long to wait before looking again."""
         while not self.halt.is_set():
             now = time.time()
-            rows = self.astore.due(self.hook.key)
+            rows = self._next(now)
             if not rows:
                 return self.poll_s
             for row in rows:
@@ -115,6 +121,13 @@ class OutboxWorker(threading.Thread):
                 self.failures = 0
                 self.last_error = None
         return 0.0
+
+    def _next(self, now: float) -> list[Any]:
+        """The rows to send now: the hook's pending ones, or (shared) one claimed row."""
+        if not self.shared:
+            return list(self.astore.due(self.hook.key))
+        row = self.astore.claim(self.hook.key, now, CLAIM_HOLD_S)
+        return [] if row is None else [row]
 
     def _warn(self, exc: Exception, delay: float) -> None:
         now = time.monotonic()

@@ -62,7 +62,8 @@ class AlertService:
     def start(self) -> None:
         self.states = {k: ItemAlertState.from_json(v) for k, v in self.astore.load_states().items()}
         for hook in self.hooks:
-            w = OutboxWorker(hook, self.astore, **self.worker_opts)
+            shared = bool(getattr(getattr(self.config, "cluster", None), "group", None))
+            w = OutboxWorker(hook, self.astore, shared=shared, **self.worker_opts)
             w.start()
             self.workers.append(w)
         if not self.hooks:
@@ -77,6 +78,15 @@ class AlertService:
         for hook in self.hooks:
             hook.close()
         self.workers = []
+
+    def reload_states(self, names: list[str]) -> None:
+        """Read these items' rule memory from the store again ([cluster]: taken over from
+        another daemon, whose alerts must not be raised twice)."""
+        wanted = set(names)
+        stored = {k: v for k, v in self.astore.load_states().items() if k in wanted}
+        with self._lock:
+            for name in wanted:
+                self.states[name] = ItemAlertState.from_json(stored.get(name))
 
     # -- the listener -------------------------------------------------------------------------
     def on_forecast(self, update: ForecastUpdate) -> None:

@@ -173,8 +173,12 @@ class MqttLink:
         status_topic: str,
         status_extra: dict[str, Any] | None = None,
         max_payload_bytes: int | None = None,
+        share_group: str | None = None,
     ):
         self.cfg = cfg
+        # [cluster]: each message goes to one daemon of the group (MQTT 5 shared subscription);
+        # msg.topic stays the plain topic, so nothing else changes
+        self.share_group = share_group
         self.filters = list(filters)
         self.deliver = deliver
         self.clock = clock
@@ -311,7 +315,8 @@ class MqttLink:
                 "5" if self.protocol == mqtt.MQTTv5 else "3.1.1",
                 "resumed" if resumed else "new",
             )
-            client.subscribe([(f, self.cfg.qos) for f in self.filters])
+            share = f"$share/{self.share_group}/" if self.share_group else ""
+            client.subscribe([(share + f, self.cfg.qos) for f in self.filters])
             log.info("watching %d topic filter(s)", len(self.filters))
             client.publish(self.status_topic, self._status("online"), qos=1, retain=True)
             self.connected.set()

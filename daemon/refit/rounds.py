@@ -122,6 +122,7 @@ class Refitter:
         self.fits = 0  # forecasts made (one per distinct threshold and side of an item)
         self.batch = Batch(store)  # the round's batched lumped fits (refit/batched.py)
         self.use_batch = True
+        self.owns: Callable[[str], bool] | None = None  # [cluster]: whether our lease still holds
 
     def load_previous(self) -> None:
         """Pick up each item's last forecast from the store (after a restart)."""
@@ -189,6 +190,8 @@ class Refitter:
     def _flush(self, pending: list[Refitted], now: float, done: dict[str, ItemState]) -> None:
         """Judge, then store a chunk of forecasts in one transaction, then publish them (one
         commit per item would cost an fsync each and hold the writer's lock as often)."""
+        if self.owns is not None:  # a lease lost during the round: its new holder refits it
+            pending[:] = [r for r in pending if self.owns(r.name)]
         if not pending:
             return
         for r in pending:

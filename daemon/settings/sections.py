@@ -1,4 +1,5 @@
-"""The config's one-off tables: [broker] [storage] [fit] [publish] [ingest] [alerts] [log].
+"""The config's one-off tables: [broker] [storage] [fit] [publish] [ingest] [alerts] [log]
+[http] [cluster].
 
 Secrets never sit in the file: it names environment variables (``password_env``, ``url_env``)
 and the values are read from them at load time; fields holding secrets are left out of ``repr``
@@ -224,6 +225,17 @@ class HttpConfig(Table):
         host, sep, port = self.listen.rpartition(":")
         if not sep or not host or not port.isdigit() or int(port) > 65535:
             checks.add("listen", f'must be "host:port", e.g. "127.0.0.1:9108", got {self.listen!r}')
+
+
+class ClusterConfig(Table):
+    """[cluster]: several daemons sharing one site (``daemon/cluster/``, docs/cluster.md): the
+    readings spread over the ``group`` by an MQTT 5 shared subscription, the items' refits and
+    alerts by leases in the shared PostgreSQL store.  Off unless ``group`` is given."""
+
+    group: Annotated[Text, AfterValidator(_no_wildcards)] | None = None
+    # this daemon's name in the group; default its [broker] client_id, which must stay the same
+    # across restarts: the broker keeps a share of the readings for that session while it is down
+    instance: Text | None = None
 
 
 class LogConfig(Table):
