@@ -40,17 +40,50 @@ class _Sums:
     Sye: np.ndarray
 
 
-def _sums(d: np.ndarray, yc: np.ndarray, W: np.ndarray, k: np.ndarray) -> _Sums:
-    """Se, See, Sye for each item's k row: E = e^(-k d) as an (N, K, n) block, Sye one product."""
-    E = np.exp(-k[:, :, None] * d[:, None, :]) * W[:, None, :]
+def _sums(d: np.ndarray, yc: np.ndarray, W: np.ndarray | None, k: np.ndarray) -> _Sums:
+    """Se, See, Sye for each item's k row: E = e^(-k d) as an (N, K, n) block, Sye one product
+    (``W`` None: every reading weighs 1, no padding)."""
+    E = np.multiply(k[:, :, None], d[:, None, :])
+    np.negative(E, out=E)
+    np.exp(E, out=E)
+    if W is not None:
+        E *= W[:, None, :]
+        n = W.sum(axis=1, keepdims=True)
+        Sy, Syy = (W * yc).sum(axis=1, keepdims=True), (W * yc * yc).sum(axis=1, keepdims=True)
+    else:
+        n = np.full((d.shape[0], 1), float(d.shape[1]))
+        Sy, Syy = yc.sum(axis=1, keepdims=True), (yc * yc).sum(axis=1, keepdims=True)
     return _Sums(
         k,
-        W.sum(axis=1, keepdims=True),
-        (W * yc).sum(axis=1, keepdims=True),
-        (W * yc * yc).sum(axis=1, keepdims=True),
+        n,
+        Sy,
+        Syy,
         E.sum(axis=2),
-        (E * E).sum(axis=2),
+        np.einsum("ikn,ikn->ik", E, E),
         np.einsum("ikn,in->ik", E, yc),
+    )
+
+
+def _grid_sums(d: np.ndarray, D: np.ndarray, yc: np.ndarray, W: np.ndarray | None) -> _Sums:
+    """The sums on the shared grid (k = KD_GRID / D per row).  Rows whose readings lie at the
+    same fractions u = d / D of their span (a probe reporting on a fixed cadence) share
+    E = e^(-kD u): it is computed once for them, and Sye is one matrix product."""
+    k = KD_GRID[None, :] / D[:, None]
+    if W is not None or d.shape[0] < 2:
+        return _sums(d, yc, W, k)
+    U = d / D[:, None]
+    if not np.array_equal(U, np.broadcast_to(U[0], U.shape)):
+        return _sums(d, yc, W, k)
+    E = np.exp(-KD_GRID[:, None] * U[0][None, :])  # (K, n), the same for every row
+    N, n = d.shape
+    return _Sums(
+        k,
+        np.full((N, 1), float(n)),
+        yc.sum(axis=1, keepdims=True),
+        (yc * yc).sum(axis=1, keepdims=True),
+        np.broadcast_to(E.sum(axis=1), (N, KD_GRID.size)).copy(),
+        np.broadcast_to((E * E).sum(axis=1), (N, KD_GRID.size)).copy(),
+        yc @ E.T,
     )
 
 
@@ -83,7 +116,9 @@ class _Fits:
     grid: _Sums  # the sums on the shared grid (kD / D per row), reused by the intervals
 
 
-def _best_k(d, yc, W, grid: _Sums, lam, a0, lo, hi) -> tuple[np.ndarray, np.ndarray]:
+def _best_k(
+    d, yc, W: np.ndarray | None, grid: _Sums, lam, a0, lo, hi
+) -> tuple[np.ndarray, np.ndarray]:
     """ln k of the least RSS and whether it lies at the grid's edge: the shared grid's best
     point, then golden-section steps within its neighbours to fit_lumped's tolerance, for all
     rows at once (parabolic steps were tried: where the ambient meets its bound the profile has
@@ -134,6 +169,7 @@ def _fit(T, Y, W, amb, amb_sd, lo_b, hi_b, noise_sd) -> tuple[_Fits, dict]:
     ybar = (W * Y).sum(axis=1) / n
     yc = (Y - ybar[:, None]) * W
     Ym = np.where(W > 0, Y, np.nan)
+    Wp = None if bool(np.all(W == 1.0)) else W  # None: no padding, no weights to apply
     spread = np.maximum(np.nanmax(Ym, axis=1) - np.nanmin(Ym, axis=1), 1e-6)
     lo = np.where(np.isnan(lo_b), np.nanmin(Ym, axis=1) - 10 * spread - 10.0, lo_b) - ybar
     hi = np.where(np.isnan(hi_b), np.nanmax(Ym, axis=1) + 10 * spread + 10.0, hi_b) - ybar
@@ -145,15 +181,15 @@ def _fit(T, Y, W, amb, amb_sd, lo_b, hi_b, noise_sd) -> tuple[_Fits, dict]:
     col = lambda v: v[:, None]  # noqa: E731 - one row's scalar against its k row
     lam = np.where(given & (amb_sd <= 0), np.inf, 0.0)
     sig = np.where(noise_sd > 0, noise_sd, 0.1 * spread)
-    grid = _sums(d, yc, W, KD_GRID[None, :] / D[:, None])  # the same for every lam
+    grid = _grid_sums(d, D, yc, Wp)  # the same for every lam
     for _ in range(2 if prior.any() else 1):
         lam = np.where(prior, sig**2 / np.where(prior, amb_sd, 1.0) ** 2, lam)
-        lk, edge = _best_k(d, yc, W, grid, col(lam), col(a0), col(lo), col(hi))
-        r = _solve(_sums(d, yc, W, np.exp(lk[:, None])), col(lam), col(a0), col(lo), col(hi))[2]
+        lk, edge = _best_k(d, yc, Wp, grid, col(lam), col(a0), col(lo), col(hi))
+        r = _solve(_sums(d, yc, Wp, np.exp(lk[:, None])), col(lam), col(a0), col(lo), col(hi))[2]
         sig = np.where(prior, np.maximum(np.sqrt(r[:, 0] / dof), 1e-9), sig)
     k = np.exp(lk)
-    a, b, r = (v[:, 0] for v in _solve(_sums(d, yc, W, k[:, None]), *map(col, (lam, a0, lo, hi))))
-    geo = dict(n=n, D=D, d=d, yc=yc, ybar=ybar, lo=lo, hi=hi, a0=a0, dof=dof, n_par=n_par)
+    a, b, r = (v[:, 0] for v in _solve(_sums(d, yc, Wp, k[:, None]), *map(col, (lam, a0, lo, hi))))
+    geo = dict(n=n, D=D, d=d, yc=yc, Wp=Wp, ybar=ybar, lo=lo, hi=hi, a0=a0, dof=dof, n_par=n_par)
     return _Fits(k, a, b, r, lam, edge, grid), geo
 
 
@@ -213,7 +249,7 @@ def _analyse(T: np.ndarray, Y: np.ndarray, W: np.ndarray, amb: _Ambient) -> dict
     w = np.where(F > 0, np.maximum(0.0, 1.0 - q99 / F), 0.0)
     w = np.where((dof < 2) | (rss <= 0) | ~np.isnan(amb.value), 1.0, w)
     cut = rss * (1.0 + fdtri(1.0, dof, CONF) / dof)
-    s, k_all, r_k, a_u, b_u, delta = _grid(fits, g, W, cut)
+    s, k_all, r_k, a_u, b_u, delta = _grid(fits, g, cut)
     k_lo, k_hi = _profile_interval(k_all, r_k, cut, k)
     fixed = np.isinf(lam)
     lam_f = np.where(fixed, 0.0, lam)[:, None]
@@ -248,12 +284,12 @@ def _analyse(T: np.ndarray, Y: np.ndarray, W: np.ndarray, amb: _Ambient) -> dict
     )
 
 
-def _grid(fits: _Fits, g: dict, W: np.ndarray, cut: np.ndarray):
+def _grid(fits: _Fits, g: dict, cut: np.ndarray):
     """lumped_profile.add_intervals's grid per row: the shared coarse grid, a fine one around
     k_hat as wide as the RSS's curvature in ln k says, and k_hat; the sums on it, the profile
     RSS, the unclipped (a, b) per k and the margin to the cut inside the region (-1 outside)."""
     k, lam = fits.k, fits.lam
-    d, yc = g["d"], g["yc"]
+    d, yc, W = g["d"], g["yc"], g["Wp"]
     ab = (lam[:, None], g["a0"][:, None], g["lo"][:, None], g["hi"][:, None])
     lk = np.log(k)
     r3 = _solve(_sums(d, yc, W, np.exp(lk[:, None] + np.array([-0.01, 0.0, 0.01]))), *ab)[2]
