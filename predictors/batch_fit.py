@@ -120,12 +120,13 @@ def _best_k(
     d, yc, W: np.ndarray | None, grid: _Sums, lam, a0, lo, hi
 ) -> tuple[np.ndarray, np.ndarray]:
     """ln k of the least RSS and whether it lies at the grid's edge: the shared grid's best
-    point, then golden-section steps within its neighbours to fit_lumped's tolerance, for all
-    rows at once (parabolic steps were tried: where the ambient meets its bound the profile has
-    a kink, and they stopped up to 1 % off in k there, moving the interval's ends by more)."""
+    point, then fit_lumped's bounded Brent search (``minimize_scalar(method="bounded")``,
+    xatol 1e-6) between its neighbours, every row at once (:func:`_brent`); the grid point
+    stays where the search found no less."""
 
-    def rss(x: np.ndarray) -> np.ndarray:
-        return _solve(_sums(d, yc, W, np.exp(x[:, None])), lam, a0, lo, hi)[2][:, 0]
+    def rss(x: np.ndarray, at: np.ndarray) -> np.ndarray:
+        s = _sums(d[at], yc[at], None if W is None else W[at], np.exp(x[:, None]))
+        return _solve(s, lam[at], a0[at], lo[at], hi[at])[2][:, 0]
 
     N = d.shape[0]
     lk_grid = np.log(grid.k)
@@ -134,28 +135,67 @@ def _best_k(
     edge = (i == 0) | (i == KD_GRID.size - 1)
     rows = np.arange(N)
     x, best_r = lk_grid[rows, i], r[rows, i]
-    left, right = x - LOG_STEP, x + LOG_STEP
-    # golden section on the best grid point's neighbours
-    lo_x, hi_x = left, right
-    g = (math.sqrt(5.0) - 1.0) / 2.0
-    x1, x2 = hi_x - g * (hi_x - lo_x), lo_x + g * (hi_x - lo_x)
-    f1, f2 = rss(x1), rss(x2)
-    while np.max(hi_x - lo_x) > GOLDEN_TOL:
-        go_left = f1 <= f2
-        hi_x = np.where(go_left, x2, hi_x)
-        lo_x = np.where(go_left, lo_x, x1)
-        x2n = np.where(go_left, x1, lo_x + g * (hi_x - lo_x))
-        x1n = np.where(go_left, hi_x - g * (hi_x - lo_x), x2)
-        f2n = np.where(go_left, f1, np.nan)
-        f1n = np.where(go_left, np.nan, f2)
-        new = np.where(go_left, x1n, x2n)
-        fn = rss(new)
-        x1, x2 = x1n, x2n
-        f1, f2 = np.where(go_left, fn, f1n), np.where(go_left, f2n, fn)
-    xm = 0.5 * (lo_x + hi_x)
-    rm = rss(xm)
-    better = rm <= best_r
-    return np.where(better, xm, x), edge
+    xf, ff = _brent(rss, x - LOG_STEP, x + LOG_STEP)
+    return np.where(ff <= best_r, xf, x), edge
+
+
+def _brent(f, a: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """scipy's bounded Brent minimiser (golden-section steps, parabolic ones where they are
+    acceptable; xatol GOLDEN_TOL) run for many rows at once: each row keeps its own state, and
+    ``f(x, rows)`` is called on the rows still searching only.  Returns each row's x and f(x)."""
+    sqrt_eps = math.sqrt(2.2e-16)
+    gm = 0.5 * (3.0 - math.sqrt(5.0))
+    a, b = a.astype(float).copy(), b.astype(float).copy()
+    fulc = a + gm * (b - a)
+    nfc, xf = fulc.copy(), fulc.copy()
+    rat = np.zeros_like(a)
+    e = np.zeros_like(a)
+    fx = f(xf, np.arange(a.size))
+    ffulc, fnfc = fx.copy(), fx.copy()
+    for _ in range(500):
+        xm = 0.5 * (a + b)
+        tol1 = sqrt_eps * np.abs(xf) + GOLDEN_TOL / 3.0
+        tol2 = 2.0 * tol1
+        act = np.flatnonzero(np.abs(xf - xm) > (tol2 - 0.5 * (b - a)))
+        if not act.size:
+            break
+        A, B, X, XM, T1, T2 = a[act], b[act], xf[act], xm[act], tol1[act], tol2[act]
+        FX, NFC, FULC, FNFC, FFULC = fx[act], nfc[act], fulc[act], fnfc[act], ffulc[act]
+        E, RAT = e[act], rat[act]
+        try_par = np.abs(E) > T1
+        r_ = (X - NFC) * (FX - FFULC)
+        q_ = (X - FULC) * (FX - FNFC)
+        p_ = (X - FULC) * q_ - (X - NFC) * r_
+        q_ = 2.0 * (q_ - r_)
+        p_ = np.where(q_ > 0.0, -p_, p_)
+        q_ = np.abs(q_)
+        r_old = E
+        E = np.where(try_par, RAT, E)
+        ok = try_par & (np.abs(p_) < np.abs(0.5 * q_ * r_old)) & (p_ > q_ * (A - X))
+        ok &= p_ < q_ * (B - X)
+        with np.errstate(all="ignore"):
+            par = p_ / q_
+        near = ((X + par - A) < T2) | ((B - X - par) < T2)
+        si_m = np.sign(XM - X) + ((XM - X) == 0)
+        par = np.where(near, T1 * si_m, par)
+        E = np.where(ok, E, np.where(X >= XM, A - X, B - X))
+        RAT = np.where(ok, par, gm * E)
+        si = np.sign(RAT) + (RAT == 0)
+        U = X + si * np.maximum(np.abs(RAT), T1)
+        FU = f(U, act)
+        better = FU <= FX
+        A = np.where(better & (U >= X), X, np.where(~better & (U < X), U, A))
+        B = np.where(better & (U < X), X, np.where(~better & (U >= X), U, B))
+        to_nfc = ~better & ((FU <= FNFC) | (NFC == X))
+        to_fulc = ~better & ~to_nfc & ((FU <= FFULC) | (FULC == X) | (FULC == NFC))
+        FULC_n = np.where(better | to_nfc, NFC, np.where(to_fulc, U, FULC))
+        FFULC_n = np.where(better | to_nfc, FNFC, np.where(to_fulc, FU, FFULC))
+        NFC_n = np.where(better, X, np.where(to_nfc, U, NFC))
+        FNFC_n = np.where(better, FX, np.where(to_nfc, FU, FNFC))
+        a[act], b[act], e[act], rat[act] = A, B, E, RAT
+        fulc[act], ffulc[act], nfc[act], fnfc[act] = FULC_n, FFULC_n, NFC_n, FNFC_n
+        xf[act], fx[act] = np.where(better, U, X), np.where(better, FU, FX)
+    return xf, fx
 
 
 def _fit(T, Y, W, amb, amb_sd, lo_b, hi_b, noise_sd) -> tuple[_Fits, dict]:
