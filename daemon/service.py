@@ -379,6 +379,7 @@ class Service:
             self.step_watch.stop()
         if self.scheduler is not None:
             _bounded(lambda: self.scheduler.shutdown(wait=True), "the refit round")
+        _bounded(self.refitter.batch.close, "the refit's worker processes")
         for plugin in self.plugins:
             _bounded(plugin.stop, f"plug-in {plugin!r}")
         _bounded(lambda: self._heartbeat("stopped"), "the last heartbeat")

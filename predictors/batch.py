@@ -92,6 +92,7 @@ class Flag(StrEnum):
     DOUBT = "doubt"
     EDGE = "edge"
     NO_TREND = "no_trend"
+    ERROR = "error"  # the batch raised on the item (prepare_safely): counted, the per-item way
 
 
 @dataclass(frozen=True)
@@ -273,6 +274,19 @@ def prepare(series: list[Series]) -> list[Prepared | Flag]:
             for i, p in zip(part, done):
                 out[i] = p
     return [p if p is not None else Flag.TOO_FEW for p in out]
+
+
+def prepare_safely(series: list[Series]) -> list[Prepared | Flag]:
+    """:func:`prepare`, where an exception on some items costs only them: the chunk is halved
+    until the items that raise stand alone, and they come back as ``Flag.ERROR`` (what the
+    refit's worker processes run, daemon/refit/workers.py)."""
+    try:
+        return prepare(series)
+    except Exception:  # noqa: BLE001 - one item's bad data never costs the others their fit
+        if len(series) <= 1:
+            return [Flag.ERROR] * len(series)
+        h = len(series) // 2
+        return prepare_safely(series[:h]) + prepare_safely(series[h:])
 
 
 # -- the vectorised steps (the estimator: batch_fit; the readings' screens: batch_screen) -------

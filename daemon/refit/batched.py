@@ -7,6 +7,10 @@ a learned prior.  What the batch flags (too few readings, a spike, a possible ch
 surroundings, a poor fit, a doubt about one exponential, readings that do not move) and every
 other item go the per-item way, which stays the reference.  ``counts`` says how many of each
 went where, for the service's figures.
+
+With worker processes (``[fit] workers``, ``workers.py``) the round tells :meth:`Batch.load`
+the chunks that follow: they are read and handed to the workers ahead, so the workers fit the
+next chunks while the service's process judges, stores and publishes this one.
 """
 
 from __future__ import annotations
@@ -19,8 +23,9 @@ from typing import Any
 import numpy as np
 from thermeta.daemon.config import ItemConfig
 from thermeta.daemon.levels.spec import levels_of
+from thermeta.daemon.refit.workers import FitPool
 from thermeta.daemon.units import scale_to_celsius
-from thermeta.predictors.batch import Flag, Prepared, Series, prepare
+from thermeta.predictors.batch import Flag, Prepared, Series, prepare_safely
 from thermeta.predictors.prior import Prior
 from thermeta.predictors.result import Forecast
 from thermeta.storage.store import Store
@@ -35,27 +40,78 @@ def batchable(cfg: ItemConfig) -> bool:
     return cfg.model == "lumped" and not cfg.ambient_topic
 
 
+Wanted = Sequence[tuple[int, ItemConfig, float | None]]  # (item_id, config, since) each
+
+
+class _Job:
+    """A chunk read and handed to a worker: its windows, series and the fits to come."""
+
+    def __init__(self, key: tuple[int, ...], windows: dict, ids: list[int], series: list):
+        self.key, self.windows, self.ids, self.series = key, windows, ids, series
+        self.future: Any = None
+        self.generation = 0
+
+
 class Batch:
     """One chunk of a round: each batchable item's window and its prepared fit."""
 
-    def __init__(self, store: Store):
+    def __init__(self, store: Store, workers: int = 0, timeout_s: float = 60.0):
         self.store = store
         self.windows: dict[int, tuple[np.ndarray, np.ndarray]] = {}
         self.prepared: dict[int, Prepared | Flag] = {}
         self.counts: Counter[str] = Counter()  # "batch", "item" and each flag
+        self.chunk = CHUNK  # items read and fitted together
+        self.pool = FitPool(workers, timeout_s) if workers > 0 else None
+        self.queued: list[_Job] = []  # chunks handed to the workers ahead, in order
+        self.workers = workers
 
-    def load(self, wanted: Sequence[tuple[int, ItemConfig, float | None]]) -> None:
-        """Read and fit the chunk's items: (item_id, config, since) each."""
+    def load(self, wanted: Wanted, ahead: Sequence[Wanted] = ()) -> None:
+        """Read and fit the chunk's items: (item_id, config, since) each.  ``ahead``: the
+        round's next chunks, handed to the worker processes now (when there are any)."""
         self.clear()
         if not wanted:
             return
+        if self.pool is None or not (ahead or self.queued):
+            job = self._read(wanted)  # one chunk in all: fitted here
+            self.windows = job.windows
+            self._keep(job, prepare_safely(job.series) if job.series else [])
+            return
+        key = tuple(iid for iid, _, _ in wanted)
+        found = next((j for j in self.queued if j.key == key), None)
+        job = found if found is not None else self._handed(wanted)
+        self.queued = [j for j in self.queued if j is not job]
+        keys = {j.key for j in self.queued}
+        for w in ahead[: self.pool.workers]:
+            if tuple(iid for iid, _, _ in w) not in keys:
+                self.queued.append(self._handed(w))
+        self.windows = job.windows
+        got = self.pool.result(job.future, job.generation, job.series) if job.series else []
+        if got is None:
+            self.counts["worker_lost"] += len(job.ids)
+            return  # the per-item way for all of them
+        self._keep(job, got)
+
+    def _handed(self, wanted: Wanted) -> _Job:
+        assert self.pool is not None
+        job = self._read(wanted)
+        if job.series:
+            job.future, job.generation = self.pool.submit(job.series)
+        return job
+
+    def _keep(self, job: _Job, got: list[Prepared | Flag]) -> None:
+        for iid, p in zip(job.ids, got):
+            self.prepared[iid] = p
+
+    def _read(self, wanted: Wanted) -> _Job:
+        """The chunk's windows in one query, and the series of its batchable items."""
         got = self.store.windows([(iid, since) for iid, _, since in wanted])
+        windows: dict[int, tuple[np.ndarray, np.ndarray]] = {}
         series: list[Series] = []
         ids: list[int] = []
         for iid, cfg, _ in wanted:
             t, y = got.get(iid, ([], []))
             ta, ya = np.asarray(t, float), np.asarray(y, float)
-            self.windows[iid] = (ta, ya)
+            windows[iid] = (ta, ya)
             if not batchable(cfg):
                 continue
             within = None
@@ -72,12 +128,22 @@ class Batch:
                 )
             )
             ids.append(iid)
-        if series:
-            for iid, p in zip(ids, prepare(series)):
-                self.prepared[iid] = p
+        return _Job(tuple(iid for iid, _, _ in wanted), windows, ids, series)
+
+    def drop_queued(self) -> None:
+        """Forget the chunks handed ahead (the round ended before them)."""
+        for j in self.queued:
+            if j.future is not None:
+                j.future.cancel()
+        self.queued = []
+
+    def close(self) -> None:
+        self.drop_queued()
+        if self.pool is not None:
+            self.pool.close()
 
     def clear(self) -> None:
-        self.windows.clear()
+        self.windows = {}
         self.prepared.clear()
 
     def readings(self, item_id: int) -> tuple[np.ndarray, np.ndarray] | None:
