@@ -212,7 +212,8 @@ def run_case(
     """The first round and ``rounds`` live rounds, the batch on or off (with ``workers`` worker
     processes), on a copy of the store."""
     b = built or build(family, n_items, rounds, seed, folder)
-    db = folder / f"{family}-{n_items}-{'batch' if use_batch else 'item'}-{workers}.db"
+    way = "batch" if use_batch else "item"
+    db = folder / f"{family}-{n_items}-{way}{f'-w{workers}' if workers else ''}.db"
     shutil.copy(b["db"], db)
     cfg = b["cfg"]
     cfg = dataclasses.replace(cfg, fit=cfg.fit.model_copy(update={"workers": workers}))
@@ -392,9 +393,9 @@ def main(argv: list[str] | None = None) -> int:
         f"{os.cpu_count()} cores, load average {os.getloadavg()[0]:.1f} at the start.\n"
     )
     print(
-        "| family | items | way | workers | first round | live round (median) | ms per item | "
-        "CPU ms per item | items within 60 s | batched | item / batch | worker's RSS | first "
-        "round's states |"
+        "| family | items | way | first round | live round (median) | ms per item | items within "
+        "60 s | batched | item / batch | workers | CPU ms per item | worker's RSS | first round's "
+        "states |"
     )
     print("|---|---|---|---|---|---|---|---|---|---|---|---|---|")
     started = time.perf_counter()
@@ -415,12 +416,10 @@ def main(argv: list[str] | None = None) -> int:
                         ratio = f"{r['live_s'] / got['batch']['live_s']:.1f} x"
                         _agree(got["batch"], r)
                     print(
-                        f"| {DESCRIBE[fam]} | {n} | {way} | {nw if way == 'batch' else ''} | "
-                        f"{r['first_s']:.2f} s | {r['live_s']:.2f} s | {r['ms_per_item']:.2f} | "
-                        f"{r['cpu_ms']:.2f} | {int(60.0 / (r['live_s'] / n))} | "
-                        f"{100 * r['batched']:.0f} % | {ratio} | "
-                        f"{wmb} | "
-                        f"{states} |",
+                        f"| {DESCRIBE[fam]} | {n} | {way} | {r['first_s']:.2f} s | "
+                        f"{r['live_s']:.2f} s | {r['ms_per_item']:.2f} | "
+                        f"{int(60.0 / (r['live_s'] / n))} | {100 * r['batched']:.0f} % | {ratio} | "
+                        f"{nw if way == 'batch' else ''} | {r['cpu_ms']:.2f} | {wmb} | {states} |",
                         flush=True,
                     )
                 built["db"].unlink()

@@ -1,5 +1,6 @@
 """The refit round's worker processes (daemon/refit/workers.py, ``[fit] workers``): a round whose
-chunks are fitted in real worker processes publishes what the in-process round does; a worker
+chunks are fitted in real worker processes (the items the batch flags fitted there the per-item
+way) publishes what the in-process round does; a worker
 killed (SIGKILL) costs neither the round nor the service (its chunk goes the per-item way,
 counted, and the next chunk gets a fresh worker); an item the batch raises on comes back
 flagged while the rest of its chunk is fitted."""
@@ -71,6 +72,8 @@ def test_a_round_fitted_in_worker_processes_publishes_what_the_in_process_one_do
         c1,
     )  # the workers' fits were used, not the per-item way
     assert c1["worker_lost"] == 0
+    # what the batch flagged, the worker fitted the per-item way with the round's arguments
+    assert c1["item"] >= 1 and c1["item_in_worker"] == c1["item"] and c0["item_in_worker"] == 0
 
 
 def test_a_killed_worker_costs_neither_the_round_nor_the_service(tmp_path):

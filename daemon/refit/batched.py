@@ -22,9 +22,10 @@ from typing import Any
 
 import numpy as np
 from thermeta.daemon.config import ItemConfig
-from thermeta.daemon.levels.spec import levels_of
+from thermeta.daemon.levels.spec import auto_side, levels_of
+from thermeta.daemon.refit.common import forecast_kwargs
 from thermeta.daemon.refit.workers import FitPool
-from thermeta.daemon.units import scale_to_celsius
+from thermeta.daemon.units import from_celsius, scale_to_celsius
 from thermeta.predictors.batch import Flag, Prepared, Series, prepare_safely
 from thermeta.predictors.prior import Prior
 from thermeta.predictors.result import Forecast
@@ -48,6 +49,7 @@ class _Job:
 
     def __init__(self, key: tuple[int, ...], windows: dict, ids: list[int], series: list):
         self.key, self.windows, self.ids, self.series = key, windows, ids, series
+        self.asks: dict[int, list[dict[str, Any]]] = {}  # per row: the per-item forecasts' args
         self.future: Any = None
         self.generation = 0
 
@@ -63,6 +65,7 @@ class Batch:
         self.chunk = CHUNK  # items read and fitted together
         self.pool = FitPool(workers, timeout_s) if workers > 0 else None
         self.queued: list[_Job] = []  # chunks handed to the workers ahead, in order
+        self.made: dict[int, list[tuple[dict[str, Any], Forecast]]] = {}  # flagged, by a worker
         self.workers = workers
 
     def load(self, wanted: Wanted, ahead: Sequence[Wanted] = ()) -> None:
@@ -85,29 +88,32 @@ class Batch:
             if tuple(iid for iid, _, _ in w) not in keys:
                 self.queued.append(self._handed(w))
         self.windows = job.windows
-        got = self.pool.result(job.future, job.generation, job.series) if job.series else []
+        got = self.pool.result(job.future, job.generation, job.series, job.asks)
         if got is None:
             self.counts["worker_lost"] += len(job.ids)
             return  # the per-item way for all of them
-        self._keep(job, got)
+        prepared, made = got
+        self._keep(job, prepared)
+        self.made = {job.ids[i]: m for i, m in made.items()}
 
     def _handed(self, wanted: Wanted) -> _Job:
         assert self.pool is not None
-        job = self._read(wanted)
-        if job.series:
-            job.future, job.generation = self.pool.submit(job.series)
+        job = self._read(wanted, ask=True)
+        job.future, job.generation = self.pool.submit(job.series, job.asks)
         return job
 
     def _keep(self, job: _Job, got: list[Prepared | Flag]) -> None:
         for iid, p in zip(job.ids, got):
             self.prepared[iid] = p
 
-    def _read(self, wanted: Wanted) -> _Job:
-        """The chunk's windows in one query, and the series of its batchable items."""
+    def _read(self, wanted: Wanted, ask: bool = False) -> _Job:
+        """The chunk's windows in one query, and the series of its batchable items (``ask``:
+        with the per-item forecasts' arguments, for a worker to make where the batch flags)."""
         got = self.store.windows([(iid, since) for iid, _, since in wanted])
         windows: dict[int, tuple[np.ndarray, np.ndarray]] = {}
         series: list[Series] = []
         ids: list[int] = []
+        asks: list[list[dict[str, Any]]] = []
         for iid, cfg, _ in wanted:
             t, y = got.get(iid, ([], []))
             ta, ya = np.asarray(t, float), np.asarray(y, float)
@@ -128,7 +134,13 @@ class Batch:
                 )
             )
             ids.append(iid)
-        return _Job(tuple(iid for iid, _, _ in wanted), windows, ids, series)
+            if ask and ya.size:
+                asks.append(_asks(cfg, float(ya[-1])))
+            else:
+                asks.append([])
+        job = _Job(tuple(iid for iid, _, _ in wanted), windows, ids, series)
+        job.asks = {i: a for i, a in enumerate(asks) if a}
+        return job
 
     def drop_queued(self) -> None:
         """Forget the chunks handed ahead (the round ended before them)."""
@@ -145,6 +157,7 @@ class Batch:
     def clear(self) -> None:
         self.windows = {}
         self.prepared.clear()
+        self.made = {}
 
     def readings(self, item_id: int) -> tuple[np.ndarray, np.ndarray] | None:
         """The item's window as read for the round (None: not in this chunk)."""
@@ -164,6 +177,23 @@ class Batch:
         if isinstance(out, Flag):
             self.counts[str(out)] += 1
             self.counts["item"] += 1
+            want = {**kw, "threshold": threshold_c}
+            for asked, fc in self.made.get(item_id, ()):
+                if asked == want:  # a worker made the per-item forecast with these arguments
+                    self.counts["item_in_worker"] += 1
+                    return fc
             return None
         self.counts["batch"] += 1
         return out
+
+
+def _asks(cfg: ItemConfig, value_c: float) -> list[dict[str, Any]]:
+    """The per-item forecasts a round will ask of a flagged item: forecast()'s arguments for
+    each distinct threshold and side (an ``auto`` side as the live value decides it)."""
+    out: list[dict[str, Any]] = []
+    for lv in levels_of(cfg):
+        side = lv.side if lv.side != "auto" else auto_side(lv, from_celsius(value_c, cfg.unit))
+        kw = {**forecast_kwargs(cfg, side), "threshold": lv.threshold_c}
+        if kw not in out:
+            out.append(kw)
+    return out

@@ -127,6 +127,8 @@ class Refitter:
             default_workers() if workers is None else workers,
             max(config.fit.refit_every_s, 30.0),
         )
+        if self.batch.pool is not None:
+            self.batch.pool.most = MAX_FIT_POINTS
         self.use_batch = True
 
     def load_previous(self) -> None:

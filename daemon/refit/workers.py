@@ -9,6 +9,12 @@ query, and hands them over as numpy arrays; the fits come back the same way.  Pr
 started by ``forkserver`` (``spawn`` where there is none): the service runs threads (the broker
 client, the writer, the scheduler), which a plain fork would copy mid-step.
 
+The workers also make the per-item forecasts of the items the batch flags (``fit_chunk``):
+``forecast()`` with the arguments the round would pass (``asks``: per item, each level's
+threshold and side as configured, an ``auto`` side as the live value would decide it), so the
+service's process takes them as made where its own arguments are the same (no learned prior,
+the side as asked), and makes them itself otherwise.
+
 Faults: an item on which the batch raises comes back flagged (``Flag.ERROR``), the rest of its
 chunk fitted; a worker that dies (``BrokenProcessPool``) or gives no answer within the timeout
 costs its chunk the batch: the chunk's items go the per-item way in the service's process,
@@ -27,8 +33,33 @@ from concurrent.futures.process import BrokenProcessPool
 from typing import Any
 
 from thermeta.predictors.batch import Flag, Prepared, Series, prepare_safely
+from thermeta.predictors.result import Forecast
+
+Asks = dict[int, list[dict[str, Any]]]  # per row of the chunk: forecast()'s arguments, each
+Made = dict[int, list[tuple[dict[str, Any], Forecast]]]  # per row: (arguments, forecast), each
 
 log = logging.getLogger("thermeta.refit")
+
+
+def fit_chunk(series: list[Series], asks: Asks, most: int) -> tuple[list[Prepared | Flag], Made]:
+    """A worker's job: the chunk's batched fits, then the per-item forecasts the round asks for
+    the rows the batch flags, on the readings thinned to ``most`` as the round thins them (a
+    forecast that raises is left to the service's process, which logs it)."""
+    from thermeta.daemon.refit.common import thin
+    from thermeta.predictors import forecast
+
+    got = prepare_safely(series)
+    made: Made = {}
+    for i, p in enumerate(got):
+        if not isinstance(p, Flag) or i not in asks:
+            continue
+        t, y = thin(series[i].t, series[i].y, most)
+        for kw in asks[i]:
+            try:
+                made.setdefault(i, []).append((kw, forecast(t, y, **kw)))
+            except Exception:  # noqa: BLE001 - the service's process fits it and says why
+                continue
+    return got, made
 
 
 def default_workers() -> int:
@@ -40,7 +71,7 @@ def _context() -> Any:
     if "forkserver" not in mp.get_all_start_methods():
         return mp.get_context("spawn")
     ctx = mp.get_context("forkserver")
-    ctx.set_forkserver_preload(["thermeta.predictors.batch"])  # a new worker starts warm
+    ctx.set_forkserver_preload(["thermeta.daemon.refit.workers"])  # a new worker starts warm
     return ctx
 
 
@@ -54,15 +85,18 @@ class FitPool:
         self.generation = 0  # how many pools were started (a dead one is replaced)
         self.crashes = 0
         self.timeouts = 0
+        self.most = 1500  # the readings a per-item fit sees at most (rounds.MAX_FIT_POINTS)
 
-    def submit(self, series: list[Series]) -> tuple[Future | None, int]:
+    def submit(self, series: list[Series], asks: Asks | None = None) -> tuple[Future | None, int]:
         """Hand a chunk's series to a worker: its future (None: no pool to take it) and the
-        pool's generation."""
+        pool's generation; with ``asks``, the flagged rows' forecasts too (:func:`fit_chunk`)."""
         try:
             if self._pool is None:
                 self._pool = ProcessPoolExecutor(self.workers, mp_context=_context())
                 self.generation += 1
-            return self._pool.submit(prepare_safely, series), self.generation
+            if asks is None:
+                return self._pool.submit(prepare_safely, series), self.generation
+            return self._pool.submit(fit_chunk, series, asks, self.most), self.generation
         except (BrokenProcessPool, RuntimeError, OSError):
             self.crashes += 1
             log.exception("the refit's worker processes could not take a chunk")
@@ -70,8 +104,8 @@ class FitPool:
             return None, self.generation
 
     def result(
-        self, fut: Future | None, generation: int, series: list[Series]
-    ) -> list[Prepared | Flag] | None:
+        self, fut: Future | None, generation: int, series: list[Series], asks: Asks | None = None
+    ) -> Any:
         """The chunk's fits, or None (its items go the per-item way).  A chunk whose pool died
         while it waited behind another one is handed to the new pool once."""
         if fut is None:
@@ -80,8 +114,8 @@ class FitPool:
             return fut.result(timeout=self.timeout_s)
         except BrokenProcessPool:
             if generation != self.generation:  # its pool died on an earlier chunk: once more
-                again, gen = self.submit(series)
-                return self.result(again, gen, []) if again is not None and series else None
+                again, gen = self.submit(series, asks)
+                return self.result(again, gen, [], asks) if again is not None and series else None
             self.crashes += 1
             log.error("a refit worker process died; its chunk goes the per-item way")
             self._reset(kill=True)
