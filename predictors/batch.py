@@ -71,7 +71,7 @@ from thermeta.predictors.lumped_profile import Sums, eta_sets
 from thermeta.predictors.result import Forecast
 from thermeta.predictors.wording import DisplayUnit, showing
 
-CHUNK_CELLS = 4_000_000  # items x grid x readings per product (about 32 MB of doubles)
+CHUNK_CELLS = 12_000_000  # items x grid x readings per product (96 MB of doubles; 4M: 18 % slower)
 HAMPEL_SIGMA = 6.0  # cleaning.clean's spike test
 OUTLIER_SIGMA = 4.0  # lumped_forecast's robust-refit test
 GAP_STEPS = 4.0  # cleaning.GAP_STEPS
