@@ -114,6 +114,48 @@ def test_a_killed_worker_costs_neither_the_round_nor_the_service(tmp_path):
     store.close()
 
 
+def test_a_hung_worker_costs_its_chunk_the_batch_not_the_round(tmp_path):
+    """A worker stopped (SIGSTOP: alive, silent) while the round waits on it: after the pool's
+    timeout its chunk goes the per-item way, the stopped process is ended, every item is
+    published, and the next round has a fresh worker."""
+    from test_daemon import seeded_store
+
+    text, series = _items(9)
+    cfg, store, act = seeded_store(tmp_path, text, series)
+    now = max(float(t.max()) for t, _ in series.values()) + 30.0
+    got: dict[str, dict] = {}
+    rf = _refitter(cfg, store, act, now, 1, got)
+    try:
+        assert len(rf.run_once(force=True)) == 9
+        pool = rf.batch.pool
+        assert pool is not None
+        pool.timeout_s = 1.0
+        (pid,) = pool.pids()
+        os.kill(pid, signal.SIGSTOP)
+        got.clear()
+        t0 = time.monotonic()
+        states = rf.run_once(force=True)
+        assert len(states) == 9 and set(got) == set(states)
+        assert time.monotonic() - t0 < 30.0  # not stalled on the silent worker
+        assert pool.timeouts >= 1 and rf.batch.counts["worker_lost"] >= 1
+        deadline = time.monotonic() + 10
+        while time.monotonic() < deadline:
+            try:
+                os.kill(pid, 0)
+                with open(f"/proc/{pid}/stat") as fh:
+                    if fh.read().rsplit(")", 1)[1].split()[0] == "Z":
+                        break  # ended, not yet reaped
+            except (ProcessLookupError, FileNotFoundError):
+                break
+            time.sleep(0.05)
+        else:
+            raise AssertionError("the hung worker was not ended")
+        assert pid not in pool.pids()
+    finally:
+        rf.batch.close()
+    store.close()
+
+
 def test_an_item_the_batch_raises_on_is_flagged_and_its_chunk_fitted():
     """In a real worker: one series whose readings and times differ in length (the batch
     raises on it) comes back Flag.ERROR; the other items' fits are those made in process."""
