@@ -392,6 +392,7 @@ class Service:
             _bounded(lambda: self.scheduler.shutdown(wait=True), "the refit round")
         if self.cluster is not None:
             _bounded(self.cluster.stop, "the cluster's leases")
+        _bounded(self.refitter.batch.close, "the refit's worker processes")
         for plugin in self.plugins:
             _bounded(plugin.stop, f"plug-in {plugin!r}")
         _bounded(lambda: self._heartbeat("stopped"), "the last heartbeat")

@@ -40,17 +40,50 @@ class _Sums:
     Sye: np.ndarray
 
 
-def _sums(d: np.ndarray, yc: np.ndarray, W: np.ndarray, k: np.ndarray) -> _Sums:
-    """Se, See, Sye for each item's k row: E = e^(-k d) as an (N, K, n) block, Sye one product."""
-    E = np.exp(-k[:, :, None] * d[:, None, :]) * W[:, None, :]
+def _sums(d: np.ndarray, yc: np.ndarray, W: np.ndarray | None, k: np.ndarray) -> _Sums:
+    """Se, See, Sye for each item's k row: E = e^(-k d) as an (N, K, n) block, Sye one product
+    (``W`` None: every reading weighs 1, no padding)."""
+    E = np.multiply(k[:, :, None], d[:, None, :])
+    np.negative(E, out=E)
+    np.exp(E, out=E)
+    if W is not None:
+        E *= W[:, None, :]
+        n = W.sum(axis=1, keepdims=True)
+        Sy, Syy = (W * yc).sum(axis=1, keepdims=True), (W * yc * yc).sum(axis=1, keepdims=True)
+    else:
+        n = np.full((d.shape[0], 1), float(d.shape[1]))
+        Sy, Syy = yc.sum(axis=1, keepdims=True), (yc * yc).sum(axis=1, keepdims=True)
     return _Sums(
         k,
-        W.sum(axis=1, keepdims=True),
-        (W * yc).sum(axis=1, keepdims=True),
-        (W * yc * yc).sum(axis=1, keepdims=True),
+        n,
+        Sy,
+        Syy,
         E.sum(axis=2),
-        (E * E).sum(axis=2),
+        np.einsum("ikn,ikn->ik", E, E),
         np.einsum("ikn,in->ik", E, yc),
+    )
+
+
+def _grid_sums(d: np.ndarray, D: np.ndarray, yc: np.ndarray, W: np.ndarray | None) -> _Sums:
+    """The sums on the shared grid (k = KD_GRID / D per row).  Rows whose readings lie at the
+    same fractions u = d / D of their span (a probe reporting on a fixed cadence) share
+    E = e^(-kD u): it is computed once for them, and Sye is one matrix product."""
+    k = KD_GRID[None, :] / D[:, None]
+    if W is not None or d.shape[0] < 2:
+        return _sums(d, yc, W, k)
+    U = d / D[:, None]
+    if not np.array_equal(U, np.broadcast_to(U[0], U.shape)):
+        return _sums(d, yc, W, k)
+    E = np.exp(-KD_GRID[:, None] * U[0][None, :])  # (K, n), the same for every row
+    N, n = d.shape
+    return _Sums(
+        k,
+        np.full((N, 1), float(n)),
+        yc.sum(axis=1, keepdims=True),
+        (yc * yc).sum(axis=1, keepdims=True),
+        np.broadcast_to(E.sum(axis=1), (N, KD_GRID.size)).copy(),
+        np.broadcast_to((E * E).sum(axis=1), (N, KD_GRID.size)).copy(),
+        yc @ E.T,
     )
 
 
@@ -83,14 +116,17 @@ class _Fits:
     grid: _Sums  # the sums on the shared grid (kD / D per row), reused by the intervals
 
 
-def _best_k(d, yc, W, grid: _Sums, lam, a0, lo, hi) -> tuple[np.ndarray, np.ndarray]:
+def _best_k(
+    d, yc, W: np.ndarray | None, grid: _Sums, lam, a0, lo, hi
+) -> tuple[np.ndarray, np.ndarray]:
     """ln k of the least RSS and whether it lies at the grid's edge: the shared grid's best
-    point, then golden-section steps within its neighbours to fit_lumped's tolerance, for all
-    rows at once (parabolic steps were tried: where the ambient meets its bound the profile has
-    a kink, and they stopped up to 1 % off in k there, moving the interval's ends by more)."""
+    point, then fit_lumped's bounded Brent search (``minimize_scalar(method="bounded")``,
+    xatol 1e-6) between its neighbours, every row at once (:func:`_brent`); the grid point
+    stays where the search found no less."""
 
-    def rss(x: np.ndarray) -> np.ndarray:
-        return _solve(_sums(d, yc, W, np.exp(x[:, None])), lam, a0, lo, hi)[2][:, 0]
+    def rss(x: np.ndarray, at: np.ndarray) -> np.ndarray:
+        s = _sums(d[at], yc[at], None if W is None else W[at], np.exp(x[:, None]))
+        return _solve(s, lam[at], a0[at], lo[at], hi[at])[2][:, 0]
 
     N = d.shape[0]
     lk_grid = np.log(grid.k)
@@ -99,28 +135,67 @@ def _best_k(d, yc, W, grid: _Sums, lam, a0, lo, hi) -> tuple[np.ndarray, np.ndar
     edge = (i == 0) | (i == KD_GRID.size - 1)
     rows = np.arange(N)
     x, best_r = lk_grid[rows, i], r[rows, i]
-    left, right = x - LOG_STEP, x + LOG_STEP
-    # golden section on the best grid point's neighbours
-    lo_x, hi_x = left, right
-    g = (math.sqrt(5.0) - 1.0) / 2.0
-    x1, x2 = hi_x - g * (hi_x - lo_x), lo_x + g * (hi_x - lo_x)
-    f1, f2 = rss(x1), rss(x2)
-    while np.max(hi_x - lo_x) > GOLDEN_TOL:
-        go_left = f1 <= f2
-        hi_x = np.where(go_left, x2, hi_x)
-        lo_x = np.where(go_left, lo_x, x1)
-        x2n = np.where(go_left, x1, lo_x + g * (hi_x - lo_x))
-        x1n = np.where(go_left, hi_x - g * (hi_x - lo_x), x2)
-        f2n = np.where(go_left, f1, np.nan)
-        f1n = np.where(go_left, np.nan, f2)
-        new = np.where(go_left, x1n, x2n)
-        fn = rss(new)
-        x1, x2 = x1n, x2n
-        f1, f2 = np.where(go_left, fn, f1n), np.where(go_left, f2n, fn)
-    xm = 0.5 * (lo_x + hi_x)
-    rm = rss(xm)
-    better = rm <= best_r
-    return np.where(better, xm, x), edge
+    xf, ff = _brent(rss, x - LOG_STEP, x + LOG_STEP)
+    return np.where(ff <= best_r, xf, x), edge
+
+
+def _brent(f, a: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """scipy's bounded Brent minimiser (golden-section steps, parabolic ones where they are
+    acceptable; xatol GOLDEN_TOL) run for many rows at once: each row keeps its own state, and
+    ``f(x, rows)`` is called on the rows still searching only.  Returns each row's x and f(x)."""
+    sqrt_eps = math.sqrt(2.2e-16)
+    gm = 0.5 * (3.0 - math.sqrt(5.0))
+    a, b = a.astype(float).copy(), b.astype(float).copy()
+    fulc = a + gm * (b - a)
+    nfc, xf = fulc.copy(), fulc.copy()
+    rat = np.zeros_like(a)
+    e = np.zeros_like(a)
+    fx = f(xf, np.arange(a.size))
+    ffulc, fnfc = fx.copy(), fx.copy()
+    for _ in range(500):
+        xm = 0.5 * (a + b)
+        tol1 = sqrt_eps * np.abs(xf) + GOLDEN_TOL / 3.0
+        tol2 = 2.0 * tol1
+        act = np.flatnonzero(np.abs(xf - xm) > (tol2 - 0.5 * (b - a)))
+        if not act.size:
+            break
+        A, B, X, XM, T1, T2 = a[act], b[act], xf[act], xm[act], tol1[act], tol2[act]
+        FX, NFC, FULC, FNFC, FFULC = fx[act], nfc[act], fulc[act], fnfc[act], ffulc[act]
+        E, RAT = e[act], rat[act]
+        try_par = np.abs(E) > T1
+        r_ = (X - NFC) * (FX - FFULC)
+        q_ = (X - FULC) * (FX - FNFC)
+        p_ = (X - FULC) * q_ - (X - NFC) * r_
+        q_ = 2.0 * (q_ - r_)
+        p_ = np.where(q_ > 0.0, -p_, p_)
+        q_ = np.abs(q_)
+        r_old = E
+        E = np.where(try_par, RAT, E)
+        ok = try_par & (np.abs(p_) < np.abs(0.5 * q_ * r_old)) & (p_ > q_ * (A - X))
+        ok &= p_ < q_ * (B - X)
+        with np.errstate(all="ignore"):
+            par = p_ / q_
+        near = ((X + par - A) < T2) | ((B - X - par) < T2)
+        si_m = np.sign(XM - X) + ((XM - X) == 0)
+        par = np.where(near, T1 * si_m, par)
+        E = np.where(ok, E, np.where(X >= XM, A - X, B - X))
+        RAT = np.where(ok, par, gm * E)
+        si = np.sign(RAT) + (RAT == 0)
+        U = X + si * np.maximum(np.abs(RAT), T1)
+        FU = f(U, act)
+        better = FU <= FX
+        A = np.where(better & (U >= X), X, np.where(~better & (U < X), U, A))
+        B = np.where(better & (U < X), X, np.where(~better & (U >= X), U, B))
+        to_nfc = ~better & ((FU <= FNFC) | (NFC == X))
+        to_fulc = ~better & ~to_nfc & ((FU <= FFULC) | (FULC == X) | (FULC == NFC))
+        FULC_n = np.where(better | to_nfc, NFC, np.where(to_fulc, U, FULC))
+        FFULC_n = np.where(better | to_nfc, FNFC, np.where(to_fulc, FU, FFULC))
+        NFC_n = np.where(better, X, np.where(to_nfc, U, NFC))
+        FNFC_n = np.where(better, FX, np.where(to_nfc, FU, FNFC))
+        a[act], b[act], e[act], rat[act] = A, B, E, RAT
+        fulc[act], ffulc[act], nfc[act], fnfc[act] = FULC_n, FFULC_n, NFC_n, FNFC_n
+        xf[act], fx[act] = np.where(better, U, X), np.where(better, FU, FX)
+    return xf, fx
 
 
 def _fit(T, Y, W, amb, amb_sd, lo_b, hi_b, noise_sd) -> tuple[_Fits, dict]:
@@ -134,6 +209,7 @@ def _fit(T, Y, W, amb, amb_sd, lo_b, hi_b, noise_sd) -> tuple[_Fits, dict]:
     ybar = (W * Y).sum(axis=1) / n
     yc = (Y - ybar[:, None]) * W
     Ym = np.where(W > 0, Y, np.nan)
+    Wp = None if bool(np.all(W == 1.0)) else W  # None: no padding, no weights to apply
     spread = np.maximum(np.nanmax(Ym, axis=1) - np.nanmin(Ym, axis=1), 1e-6)
     lo = np.where(np.isnan(lo_b), np.nanmin(Ym, axis=1) - 10 * spread - 10.0, lo_b) - ybar
     hi = np.where(np.isnan(hi_b), np.nanmax(Ym, axis=1) + 10 * spread + 10.0, hi_b) - ybar
@@ -145,15 +221,15 @@ def _fit(T, Y, W, amb, amb_sd, lo_b, hi_b, noise_sd) -> tuple[_Fits, dict]:
     col = lambda v: v[:, None]  # noqa: E731 - one row's scalar against its k row
     lam = np.where(given & (amb_sd <= 0), np.inf, 0.0)
     sig = np.where(noise_sd > 0, noise_sd, 0.1 * spread)
-    grid = _sums(d, yc, W, KD_GRID[None, :] / D[:, None])  # the same for every lam
+    grid = _grid_sums(d, D, yc, Wp)  # the same for every lam
     for _ in range(2 if prior.any() else 1):
         lam = np.where(prior, sig**2 / np.where(prior, amb_sd, 1.0) ** 2, lam)
-        lk, edge = _best_k(d, yc, W, grid, col(lam), col(a0), col(lo), col(hi))
-        r = _solve(_sums(d, yc, W, np.exp(lk[:, None])), col(lam), col(a0), col(lo), col(hi))[2]
+        lk, edge = _best_k(d, yc, Wp, grid, col(lam), col(a0), col(lo), col(hi))
+        r = _solve(_sums(d, yc, Wp, np.exp(lk[:, None])), col(lam), col(a0), col(lo), col(hi))[2]
         sig = np.where(prior, np.maximum(np.sqrt(r[:, 0] / dof), 1e-9), sig)
     k = np.exp(lk)
-    a, b, r = (v[:, 0] for v in _solve(_sums(d, yc, W, k[:, None]), *map(col, (lam, a0, lo, hi))))
-    geo = dict(n=n, D=D, d=d, yc=yc, ybar=ybar, lo=lo, hi=hi, a0=a0, dof=dof, n_par=n_par)
+    a, b, r = (v[:, 0] for v in _solve(_sums(d, yc, Wp, k[:, None]), *map(col, (lam, a0, lo, hi))))
+    geo = dict(n=n, D=D, d=d, yc=yc, Wp=Wp, ybar=ybar, lo=lo, hi=hi, a0=a0, dof=dof, n_par=n_par)
     return _Fits(k, a, b, r, lam, edge, grid), geo
 
 
@@ -213,7 +289,7 @@ def _analyse(T: np.ndarray, Y: np.ndarray, W: np.ndarray, amb: _Ambient) -> dict
     w = np.where(F > 0, np.maximum(0.0, 1.0 - q99 / F), 0.0)
     w = np.where((dof < 2) | (rss <= 0) | ~np.isnan(amb.value), 1.0, w)
     cut = rss * (1.0 + fdtri(1.0, dof, CONF) / dof)
-    s, k_all, r_k, a_u, b_u, delta = _grid(fits, g, W, cut)
+    s, k_all, r_k, a_u, b_u, delta = _grid(fits, g, cut)
     k_lo, k_hi = _profile_interval(k_all, r_k, cut, k)
     fixed = np.isinf(lam)
     lam_f = np.where(fixed, 0.0, lam)[:, None]
@@ -248,12 +324,12 @@ def _analyse(T: np.ndarray, Y: np.ndarray, W: np.ndarray, amb: _Ambient) -> dict
     )
 
 
-def _grid(fits: _Fits, g: dict, W: np.ndarray, cut: np.ndarray):
+def _grid(fits: _Fits, g: dict, cut: np.ndarray):
     """lumped_profile.add_intervals's grid per row: the shared coarse grid, a fine one around
     k_hat as wide as the RSS's curvature in ln k says, and k_hat; the sums on it, the profile
     RSS, the unclipped (a, b) per k and the margin to the cut inside the region (-1 outside)."""
     k, lam = fits.k, fits.lam
-    d, yc = g["d"], g["yc"]
+    d, yc, W = g["d"], g["yc"], g["Wp"]
     ab = (lam[:, None], g["a0"][:, None], g["lo"][:, None], g["hi"][:, None])
     lk = np.log(k)
     r3 = _solve(_sums(d, yc, W, np.exp(lk[:, None] + np.array([-0.01, 0.0, 0.01]))), *ab)[2]

@@ -19,6 +19,8 @@ alerts and the store use the other.  Times are wall clock on this machine; run i
 from __future__ import annotations
 
 import argparse
+import dataclasses
+import os
 import resource
 import shutil
 import statistics
@@ -187,15 +189,34 @@ def build(family: str, n_items: int, rounds: int, seed: int, folder: Path) -> di
             "amb_ids": amb_ids}  # fmt: skip
 
 
+def _worker_cpu(refitter: Refitter) -> tuple[float, float]:
+    """The worker processes' CPU seconds so far and their largest peak RSS (MB), from /proc."""
+    pool = refitter.batch.pool
+    cpu, peak = 0.0, 0.0
+    for pid in pool.pids() if pool is not None else []:
+        try:
+            stat = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+            cpu += (int(stat[11]) + int(stat[12])) / os.sysconf("SC_CLK_TCK")
+            for line in Path(f"/proc/{pid}/status").read_text().splitlines():
+                if line.startswith("VmHWM:"):
+                    peak = max(peak, int(line.split()[1]) / 1024)
+        except (OSError, IndexError, ValueError):
+            continue
+    return cpu, peak
+
+
 def run_case(
     family: str, n_items: int, rounds: int, seed: int, folder: Path, use_batch: bool = True,
-    built: dict | None = None,
+    built: dict | None = None, workers: int = 0,
 ) -> dict:  # fmt: skip
-    """The first round and ``rounds`` live rounds, the batch on or off, on a copy of the store."""
+    """The first round and ``rounds`` live rounds, the batch on or off (with ``workers`` worker
+    processes), on a copy of the store."""
     b = built or build(family, n_items, rounds, seed, folder)
-    db = folder / f"{family}-{n_items}-{'batch' if use_batch else 'item'}.db"
+    way = "batch" if use_batch else "item"
+    db = folder / f"{family}-{n_items}-{way}{f'-w{workers}' if workers else ''}.db"
     shutil.copy(b["db"], db)
     cfg = b["cfg"]
+    cfg = dataclasses.replace(cfg, fit=cfg.fit.model_copy(update={"workers": workers}))
     store = Store(f"sqlite:///{db}")
     act = Activity()
     by_name = {it.name: it for it in cfg.items}
@@ -208,6 +229,7 @@ def run_case(
     done = refitter.run_once()
     first_s = time.perf_counter() - t0
     live: list[float] = []
+    cpu: list[float] = []  # the service's process and the workers, CPU seconds a live round
     for r in range(rounds):
         w = _Writer(store)
         for name, chunks in b["held"].items():
@@ -219,9 +241,12 @@ def run_case(
                 w.add(b["amb_ids"][name + AMBIENT_SUFFIX], at, ay)
         w.flush()
         clock.set(b["cut_at"] + (r + 1) * DT_S + 5.0)
-        t0 = time.perf_counter()
+        t0, c0, w0 = time.perf_counter(), time.process_time(), _worker_cpu(refitter)[0]
         refitter.run_once()
         live.append(time.perf_counter() - t0)
+        cpu.append(time.process_time() - c0 + _worker_cpu(refitter)[0] - w0)
+    worker_mb = _worker_cpu(refitter)[1]
+    refitter.batch.close()  # the workers end
     store.close()
     states: dict[str, int] = {}
     for s in done.values():
@@ -233,6 +258,8 @@ def run_case(
         "items": n_items,
         "first_s": first_s,
         "live_s": med,
+        "cpu_ms": 1000 * statistics.median(cpu) / n_items,
+        "worker_mb": worker_mb,
         "ms_per_item": 1000 * med / n_items,
         "per_core": int(REFIT_EVERY_S / (med / n_items)),
         "states": states,
@@ -310,6 +337,9 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--seed", type=int, default=1)
     ap.add_argument("--ways", default="batch,item", help="batch, item or both (batch,item)")
     ap.add_argument(
+        "--workers", default="0", help="comma list of worker process counts for the batch way"
+    )
+    ap.add_argument(
         "--estimator",
         metavar="N,N",
         help="instead: the batched estimator alone (no store, no round) at these item counts",
@@ -327,6 +357,16 @@ def main(argv: list[str] | None = None) -> int:
         )
         return 2
     families = [f.strip() for f in args.families.split(",") if f.strip()]
+    try:
+        workers = [int(x) for x in args.workers.split(",") if x.strip()]
+    except ValueError:
+        workers = [-1]
+    if not workers or min(workers) < 0:
+        print(
+            f"bench_refit: --workers must be a comma list of counts, got {args.workers!r}",
+            file=sys.stderr,
+        )
+        return 2
     bad = [f for f in families if f not in DESCRIBE]
     if bad or not counts or min(counts) < 1 or args.rounds < 1:
         print(
@@ -345,41 +385,49 @@ def main(argv: list[str] | None = None) -> int:
         return 2
     print(
         f"Measured by `python scripts/bench_refit.py --items {args.items} --rounds {args.rounds}"
-        f" --seed {args.seed} --ways {args.ways}`: 2 h of one-minute readings per item, one new "
-        "reading per item before each live round; wall clock, one thread.  batch: the round's "
-        "lumped items fitted together (predictors/batch.py), what it flags one by one; item: "
-        "one forecast() per item.\n"
+        f" --seed {args.seed} --ways {args.ways} --workers {args.workers} --families "
+        f"{','.join(families)}`: 2 h of one-minute readings per item, one new "
+        "reading per item before each live round; wall clock.  batch: the round's "
+        "lumped items fitted together (predictors/batch.py) in the service's process (workers "
+        "0) or in worker processes, what it flags one by one; item: one forecast() per item.  "
+        f"{os.cpu_count()} cores, load average {os.getloadavg()[0]:.1f} at the start.\n"
     )
     print(
-        "| family | items | way | first round | live round (median) | ms per item | items per "
-        "core within 30 s | batched | item / batch | first round's states |"
+        "| family | items | way | first round | live round (median) | ms per item | items within "
+        "60 s | batched | item / batch | workers | CPU ms per item | worker's RSS | first round's "
+        "states |"
     )
-    print("|---|---|---|---|---|---|---|---|---|---|")
+    print("|---|---|---|---|---|---|---|---|---|---|---|---|---|")
     started = time.perf_counter()
     with tempfile.TemporaryDirectory(prefix="thermeta-bench-refit-") as d:
         for fam in families:
             for n in counts:
                 built = build(fam, n, args.rounds, args.seed, Path(d))
                 got = {}
-                for way in ways:
+                for way, nw in [(w, c) for w in ways for c in (workers if w == "batch" else [0])]:
                     r = got[way] = run_case(
-                        fam, n, args.rounds, args.seed, Path(d), way == "batch", built
+                        fam, n, args.rounds, args.seed, Path(d), way == "batch", built, nw
                     )
                     r["db"].unlink()
                     states = ", ".join(f"{k} {v}" for k, v in sorted(r["states"].items()))
+                    wmb = f"{r['worker_mb']:.0f} MB" if r["worker_mb"] else ""
                     ratio = ""
                     if way == "item" and "batch" in got:
                         ratio = f"{r['live_s'] / got['batch']['live_s']:.1f} x"
                         _agree(got["batch"], r)
                     print(
                         f"| {DESCRIBE[fam]} | {n} | {way} | {r['first_s']:.2f} s | "
-                        f"{r['live_s']:.2f} s | {r['ms_per_item']:.2f} | {r['per_core']} | "
-                        f"{100 * r['batched']:.0f} % | {ratio} | {states} |",
+                        f"{r['live_s']:.2f} s | {r['ms_per_item']:.2f} | "
+                        f"{int(60.0 / (r['live_s'] / n))} | {100 * r['batched']:.0f} % | {ratio} | "
+                        f"{nw if way == 'batch' else ''} | {r['cpu_ms']:.2f} | {wmb} | {states} |",
                         flush=True,
                     )
                 built["db"].unlink()
     peak_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-    print(f"\n{time.perf_counter() - started:.0f} s in all; peak RSS {peak_mb:.0f} MB.")
+    print(
+        f"\n{time.perf_counter() - started:.0f} s in all; peak RSS {peak_mb:.0f} MB (the bench's "
+        "process: the store's filling, the refitter and the rounds; a worker's is in the table)."
+    )
     return 0
 
 

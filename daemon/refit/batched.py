@@ -7,6 +7,10 @@ a learned prior.  What the batch flags (too few readings, a spike, a possible ch
 surroundings, a poor fit, a doubt about one exponential, readings that do not move) and every
 other item go the per-item way, which stays the reference.  ``counts`` says how many of each
 went where, for the service's figures.
+
+With worker processes (``[fit] workers``, ``workers.py``) the round tells :meth:`Batch.load`
+the chunks that follow: they are read and handed to the workers ahead, so the workers fit the
+next chunks while the service's process judges, stores and publishes this one.
 """
 
 from __future__ import annotations
@@ -18,9 +22,11 @@ from typing import Any
 
 import numpy as np
 from thermeta.daemon.config import ItemConfig
-from thermeta.daemon.levels.spec import levels_of
-from thermeta.daemon.units import scale_to_celsius
-from thermeta.predictors.batch import Flag, Prepared, Series, prepare
+from thermeta.daemon.levels.spec import auto_side, levels_of
+from thermeta.daemon.refit.common import forecast_kwargs
+from thermeta.daemon.refit.workers import FitPool
+from thermeta.daemon.units import from_celsius, scale_to_celsius
+from thermeta.predictors.batch import Flag, Prepared, Series, prepare_safely
 from thermeta.predictors.prior import Prior
 from thermeta.predictors.result import Forecast
 from thermeta.storage.store import Store
@@ -35,27 +41,83 @@ def batchable(cfg: ItemConfig) -> bool:
     return cfg.model == "lumped" and not cfg.ambient_topic
 
 
+Wanted = Sequence[tuple[int, ItemConfig, float | None]]  # (item_id, config, since) each
+
+
+class _Job:
+    """A chunk read and handed to a worker: its windows, series and the fits to come."""
+
+    def __init__(self, key: tuple[int, ...], windows: dict, ids: list[int], series: list):
+        self.key, self.windows, self.ids, self.series = key, windows, ids, series
+        self.asks: dict[int, list[dict[str, Any]]] = {}  # per row: the per-item forecasts' args
+        self.future: Any = None
+        self.generation = 0
+
+
 class Batch:
     """One chunk of a round: each batchable item's window and its prepared fit."""
 
-    def __init__(self, store: Store):
+    def __init__(self, store: Store, workers: int = 0, timeout_s: float = 60.0):
         self.store = store
         self.windows: dict[int, tuple[np.ndarray, np.ndarray]] = {}
         self.prepared: dict[int, Prepared | Flag] = {}
         self.counts: Counter[str] = Counter()  # "batch", "item" and each flag
+        self.chunk = CHUNK  # items read and fitted together
+        self.pool = FitPool(workers, timeout_s) if workers > 0 else None
+        self.queued: list[_Job] = []  # chunks handed to the workers ahead, in order
+        self.made: dict[int, list[tuple[dict[str, Any], Forecast]]] = {}  # flagged, by a worker
+        self.workers = workers
 
-    def load(self, wanted: Sequence[tuple[int, ItemConfig, float | None]]) -> None:
-        """Read and fit the chunk's items: (item_id, config, since) each."""
+    def load(self, wanted: Wanted, ahead: Sequence[Wanted] = ()) -> None:
+        """Read and fit the chunk's items: (item_id, config, since) each.  ``ahead``: the
+        round's next chunks, handed to the worker processes now (when there are any)."""
         self.clear()
         if not wanted:
             return
+        if self.pool is None or not (ahead or self.queued):
+            job = self._read(wanted)  # one chunk in all: fitted here
+            self.windows = job.windows
+            self._keep(job, prepare_safely(job.series) if job.series else [])
+            return
+        key = tuple(iid for iid, _, _ in wanted)
+        found = next((j for j in self.queued if j.key == key), None)
+        job = found if found is not None else self._handed(wanted)
+        self.queued = [j for j in self.queued if j is not job]
+        keys = {j.key for j in self.queued}
+        for w in ahead[: self.pool.workers]:
+            if tuple(iid for iid, _, _ in w) not in keys:
+                self.queued.append(self._handed(w))
+        self.windows = job.windows
+        got = self.pool.result(job.future, job.generation, job.series, job.asks)
+        if got is None:
+            self.counts["worker_lost"] += len(job.ids)
+            return  # the per-item way for all of them
+        prepared, made = got
+        self._keep(job, prepared)
+        self.made = {job.ids[i]: m for i, m in made.items()}
+
+    def _handed(self, wanted: Wanted) -> _Job:
+        assert self.pool is not None
+        job = self._read(wanted, ask=True)
+        job.future, job.generation = self.pool.submit(job.series, job.asks)
+        return job
+
+    def _keep(self, job: _Job, got: list[Prepared | Flag]) -> None:
+        for iid, p in zip(job.ids, got):
+            self.prepared[iid] = p
+
+    def _read(self, wanted: Wanted, ask: bool = False) -> _Job:
+        """The chunk's windows in one query, and the series of its batchable items (``ask``:
+        with the per-item forecasts' arguments, for a worker to make where the batch flags)."""
         got = self.store.windows([(iid, since) for iid, _, since in wanted])
+        windows: dict[int, tuple[np.ndarray, np.ndarray]] = {}
         series: list[Series] = []
         ids: list[int] = []
+        asks: list[list[dict[str, Any]]] = []
         for iid, cfg, _ in wanted:
             t, y = got.get(iid, ([], []))
             ta, ya = np.asarray(t, float), np.asarray(y, float)
-            self.windows[iid] = (ta, ya)
+            windows[iid] = (ta, ya)
             if not batchable(cfg):
                 continue
             within = None
@@ -72,13 +134,30 @@ class Batch:
                 )
             )
             ids.append(iid)
-        if series:
-            for iid, p in zip(ids, prepare(series)):
-                self.prepared[iid] = p
+            if ask and ya.size:
+                asks.append(_asks(cfg, float(ya[-1])))
+            else:
+                asks.append([])
+        job = _Job(tuple(iid for iid, _, _ in wanted), windows, ids, series)
+        job.asks = {i: a for i, a in enumerate(asks) if a}
+        return job
+
+    def drop_queued(self) -> None:
+        """Forget the chunks handed ahead (the round ended before them)."""
+        for j in self.queued:
+            if j.future is not None:
+                j.future.cancel()
+        self.queued = []
+
+    def close(self) -> None:
+        self.drop_queued()
+        if self.pool is not None:
+            self.pool.close()
 
     def clear(self) -> None:
-        self.windows.clear()
+        self.windows = {}
         self.prepared.clear()
+        self.made = {}
 
     def readings(self, item_id: int) -> tuple[np.ndarray, np.ndarray] | None:
         """The item's window as read for the round (None: not in this chunk)."""
@@ -98,6 +177,23 @@ class Batch:
         if isinstance(out, Flag):
             self.counts[str(out)] += 1
             self.counts["item"] += 1
+            want = {**kw, "threshold": threshold_c}
+            for asked, fc in self.made.get(item_id, ()):
+                if asked == want:  # a worker made the per-item forecast with these arguments
+                    self.counts["item_in_worker"] += 1
+                    return fc
             return None
         self.counts["batch"] += 1
         return out
+
+
+def _asks(cfg: ItemConfig, value_c: float) -> list[dict[str, Any]]:
+    """The per-item forecasts a round will ask of a flagged item: forecast()'s arguments for
+    each distinct threshold and side (an ``auto`` side as the live value decides it)."""
+    out: list[dict[str, Any]] = []
+    for lv in levels_of(cfg):
+        side = lv.side if lv.side != "auto" else auto_side(lv, from_celsius(value_c, cfg.unit))
+        kw = {**forecast_kwargs(cfg, side), "threshold": lv.threshold_c}
+        if kw not in out:
+            out.append(kw)
+    return out

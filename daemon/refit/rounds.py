@@ -53,7 +53,7 @@ from thermeta.daemon.config import AMBIENT_SUFFIX, DEFROST_SUFFIX, Config, ItemC
 from thermeta.daemon.ingest.defrost import defrost_status
 from thermeta.daemon.ingest.writer import Activity
 from thermeta.daemon.levels.spec import Level, levels_of
-from thermeta.daemon.refit.batched import CHUNK, Batch
+from thermeta.daemon.refit.batched import Batch
 from thermeta.daemon.refit.common import (
     ForecastUpdate,
     Listener,
@@ -65,6 +65,7 @@ from thermeta.daemon.refit.common import (
 )
 from thermeta.daemon.refit.episodes import EpisodeKeeper
 from thermeta.daemon.refit.judging import judge_item
+from thermeta.daemon.refit.workers import default_workers
 from thermeta.daemon.states import AmbientMode, ItemState, Side
 from thermeta.predictors import forecast
 from thermeta.predictors.outcome import Reason
@@ -120,7 +121,14 @@ class Refitter:
         self.lessons = 0
         self.keeper = EpisodeKeeper(store)  # episodes, their tallies, the levels' sides
         self.fits = 0  # forecasts made (one per distinct threshold and side of an item)
-        self.batch = Batch(store)  # the round's batched lumped fits (refit/batched.py)
+        workers = config.fit.workers
+        self.batch = Batch(  # the round's batched lumped fits (refit/batched.py, workers.py)
+            store,
+            default_workers() if workers is None else workers,
+            max(config.fit.refit_every_s, 30.0),
+        )
+        if self.batch.pool is not None:
+            self.batch.pool.most = MAX_FIT_POINTS
         self.use_batch = True
         self.owns: Callable[[str], bool] | None = None  # [cluster]: whether our lease still holds
 
@@ -158,11 +166,12 @@ class Refitter:
                 )
                 if due or going_stale:
                     due_items.append((name, cfg))
-            for at in range(0, len(due_items), CHUNK):
+            size = self.batch.chunk
+            chunks = [due_items[at : at + size] for at in range(0, len(due_items), size)]
+            for c, chunk in enumerate(chunks):
                 if self.stopping.is_set():
                     break
-                chunk = due_items[at : at + CHUNK]
-                self._load_batch(chunk, now, last)
+                self._load_batch(chunk, now, last, chunks[c + 1 :])
                 for name, cfg in chunk:
                     if self.stopping.is_set():
                         break
@@ -175,6 +184,7 @@ class Refitter:
                     if len(pending) >= SAVE_EVERY:
                         self._flush(pending, now, done)
                 self.batch.clear()
+            self.batch.drop_queued()
             self._flush(pending, now, done)
             if done:
                 try:
@@ -213,20 +223,21 @@ class Refitter:
             done[r.name] = r.state
         pending.clear()
 
-    def _load_batch(
-        self, chunk: list[tuple[str, ItemConfig]], now: float, last: dict[str, float]
-    ) -> None:
-        """Read the chunk's windows in one query and fit its lumped items together; a failure
-        leaves them to the per-item way."""
+    def _load_batch(self, chunk: list, now: float, last: dict[str, float], ahead: list) -> None:
+        """Read the chunk's windows in one query and fit its lumped items together (the next
+        chunks handed to the worker processes meanwhile); a failure leaves them to the per-item
+        way."""
         if not self.use_batch or self._predict is not forecast:  # (a test's own predictor)
             return
+
+        def wanted(part: list[tuple[str, ItemConfig]]) -> list:
+            return [
+                (self._item_id(n, c, now), c, (last[n] - c.window_s) if n in last else None)
+                for n, c in part
+            ]
+
         try:
-            wanted = []
-            for name, cfg in chunk:
-                item_id = self._item_id(name, cfg, now)
-                last_ts = last.get(name)
-                wanted.append((item_id, cfg, None if last_ts is None else last_ts - cfg.window_s))
-            self.batch.load(wanted)
+            self.batch.load(wanted(chunk), [wanted(c) for c in ahead[: self.batch.workers]])
         except Exception:  # noqa: BLE001 - the per-item way still works
             log.exception("the batched fit of %d items failed; fitting them one by one", len(chunk))
             self.batch.clear()

@@ -164,6 +164,8 @@ class FitConfig(FitRules):
     """[fit]: how often items are refitted, and the fit rules' defaults."""
 
     refit_every_s: Positive = Field(30.0, validation_alias="refit_every")
+    # processes fitting a round's chunks (daemon/refit/workers.py); None: the cores less one
+    workers: Annotated[Int, Field(ge=0)] | None = None
 
 
 class PublishConfig(Table):
