@@ -53,6 +53,7 @@ from numpy.typing import NDArray
 from scipy.optimize import least_squares
 from scipy.stats import chi2 as chi2_dist
 from scipy.stats import f as f_dist
+from thermeta.predictors.conduction_curve import projected
 from thermeta.predictors.conduction_eta import etas
 
 if TYPE_CHECKING:
@@ -72,7 +73,7 @@ LSQ_TOL = 1e-6
 ALPHA = 0.10  # 1 - the interval's nominal level
 SMALL_SAMPLE_DOF = 6.0  # the small-sample level's scale (module docstring)
 SCAN_BIOT = 13  # whole-range scan (module docstring): Biot numbers over the fit's range
-SCAN_PER_DECADE_A = 3  # and time scales a, per decade of the fit's range
+SCAN_PER_DECADE_A = 4  # and time scales a, per decade of the fit's range
 
 
 def cut_off(dof: int) -> float:
@@ -134,13 +135,18 @@ def profile_interval(
 ) -> tuple[float | None, float | None]:
     """(lo_s, hi_s) of the 90 % profile-likelihood interval for the crossing, from t_now."""
     curve = fit._curve
-    if curve is None or not math.isfinite(eta_s) or fit.rss <= 0:
+    if curve is None or math.isnan(eta_s) or fit.rss <= 0:
         return None, None
     n = int(t.size)
     n_lin = len(curve.linear_names)
     q_hat = fit.params[n_lin:].copy()
     # The minimum includes the prior row of a softly known ambient, like every refit below.
-    r_hat, _ = _constrained_residual(curve, q_hat, t, y, t_now + eta_s, threshold)
+    # (the scan's own baseline: the readings' residuals alone, on the time steps of the scan's
+    # ambient sum; the search's includes the trial instant, as its refits do)
+    r_hat, _ = projected(curve, q_hat, t, y)
+    rss_scan = max(float(r_hat @ r_hat), 1e-300)
+    if math.isfinite(eta_s):
+        r_hat, _ = _constrained_residual(curve, q_hat, t, y, t_now + eta_s, threshold)
     rss_min = max(float(r_hat @ r_hat), 1e-300)
     lo_b, hi_b = np.array(lo_bounds), np.array(hi_bounds)
     state = {"q": q_hat}
@@ -148,6 +154,11 @@ def profile_interval(
     if dof < 1:
         return None, None
     s2, cut = scale_and_cut(rss_min, dof, y)
+    if math.isinf(eta_s):
+        # the best fit never crosses: no search from it, but other curves that fit about as
+        # well may cross (an early centre probe still flat): the earliest of them
+        scan = scan_range(curve, t, y, threshold, t_now, rss_scan + cut * s2, q_hat, lo_b, hi_b)
+        return (None if scan is None else scan[0]), None
 
     def stat(tau: float) -> float:
         def res(q: Float) -> Float:
@@ -247,7 +258,7 @@ def profile_interval(
 
     hi = search(+1)
     lo = search(-1)
-    scan = scan_range(curve, t, y, threshold, t_now, rss_min + cut * s2, q_hat, lo_b, hi_b)
+    scan = scan_range(curve, t, y, threshold, t_now, rss_scan + cut * s2, q_hat, lo_b, hi_b)
     if scan is not None:
         s_lo, s_hi = scan
         lo = s_lo if lo is None else min(lo, s_lo)
@@ -269,8 +280,6 @@ def scan_range(
     """(earliest, latest) crossing, s from t_now, over the grid points of (log Bi, log a) whose
     residual sum is within ``rss_cut`` (latest None: one of them never crosses); None when no
     grid point passes.  A start offset, when fitted, stays at the best fit's."""
-    from thermeta.predictors.conduction_curve import projected
-
     n_a = max(int(math.ceil((hi_b[1] - lo_b[1]) / math.log(10.0) * SCAN_PER_DECADE_A)) + 1, 2)
     rows = []
     for log_bi in np.linspace(lo_b[0], hi_b[0], SCAN_BIOT):
