@@ -256,9 +256,10 @@ def profile_interval(
         root = b - fb * (b - a) / (fb - fa) if fb != fa else 0.5 * (a + b)
         return float(root) - t_now
 
-    hi = search(+1)
-    lo = search(-1)
     scan = scan_range(curve, t, y, threshold, t_now, rss_scan + cut * s2, q_hat, lo_b, hi_b)
+    # a scanned curve inside the cut-off that never crosses opens the upper end: no search
+    hi = None if scan is not None and scan[1] is None else search(+1)
+    lo = search(-1)
     if scan is not None:
         s_lo, s_hi = scan
         lo = s_lo if lo is None else min(lo, s_lo)
