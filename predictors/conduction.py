@@ -159,7 +159,7 @@ class ConductionFit:
         if eta == 0.0:
             return 0.0, 0.0, 0.0
         lo = hi = None
-        if self.interval_kind == "profile" and math.isfinite(eta) and self._data is not None:
+        if self.interval_kind == "profile" and self._data is not None:
             try:
                 with np.errstate(all="ignore"):
                     lo, hi = profile_interval(
@@ -167,7 +167,7 @@ class ConductionFit:
                     )  # type: ignore[misc]
                 lo = None if lo is None else min(lo, eta)
                 hi = None if hi is None else max(hi, eta)
-                return eta, lo, hi
+                return (eta if math.isfinite(eta) else None), lo, hi
             except (ArithmeticError, ValueError, np.linalg.LinAlgError) as exc:
                 self.warnings.append(f"profile interval failed ({exc}); used draws")
                 self.interval_method = INTERVAL_METHOD

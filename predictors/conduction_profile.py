@@ -28,6 +28,19 @@ alpha' = alpha (n - p) / (n - p + SMALL_SAMPLE_DOF): 0.94 at 10 degrees of freed
 30, 0.904 at 150, and 0.90 as n grows (an O(1 / (n - p)) correction, as a Bartlett factor is;
 the scale 6 is half what the figures above ask for alone, as an independent seed covered 89.5 %
 before the correction).
+
+Whole-range scan.  The constrained refits start from the best fit and can stay in its basin.
+Early on, while the centre has barely moved, curves with very different (Bi, a) fit about as
+well: a lumped-like body at the lowest Biot number with a slow rate, or a thick one at Bi ~ 1
+with a fast one, and the refits from a best fit at one end never reach the other (the demo's
+large carton, an hour after its trailer's unit failed: best fit Bi 0.0012, crossing in 22 days,
+"90 %" from 10 days, the truth 3.6 h away with D = 0.17 at the true parameters).  The interval
+is the projection of the likelihood-ratio region, {eta(theta) : D(theta) <= cut-off}, so every
+point of a (log Bi, log a) grid over the fit's whole range (Bi 0.001-100, a over its 8 decades;
+the linear parameters at their best for each) that passes the cut-off is inside it: the ends
+are widened to the crossings of those points, and the upper end opens when one of them never
+crosses.  (Bi = hL/k of foods in air spans about 0.01-20 for h 5-30 W/m2K, L 1-30 cm,
+k 0.4-1.6 W/mK, from memory: the grid covers it.)
 """
 
 from __future__ import annotations
@@ -40,6 +53,7 @@ from numpy.typing import NDArray
 from scipy.optimize import least_squares
 from scipy.stats import chi2 as chi2_dist
 from scipy.stats import f as f_dist
+from thermeta.predictors.conduction_curve import projected
 from thermeta.predictors.conduction_eta import etas
 
 if TYPE_CHECKING:
@@ -58,6 +72,8 @@ RETRY_NFEV = 40
 LSQ_TOL = 1e-6
 ALPHA = 0.10  # 1 - the interval's nominal level
 SMALL_SAMPLE_DOF = 6.0  # the small-sample level's scale (module docstring)
+SCAN_BIOT = 13  # whole-range scan (module docstring): Biot numbers over the fit's range
+SCAN_PER_DECADE_A = 4  # and time scales a, per decade of the fit's range
 
 
 def cut_off(dof: int) -> float:
@@ -119,13 +135,18 @@ def profile_interval(
 ) -> tuple[float | None, float | None]:
     """(lo_s, hi_s) of the 90 % profile-likelihood interval for the crossing, from t_now."""
     curve = fit._curve
-    if curve is None or not math.isfinite(eta_s) or fit.rss <= 0:
+    if curve is None or math.isnan(eta_s) or fit.rss <= 0:
         return None, None
     n = int(t.size)
     n_lin = len(curve.linear_names)
     q_hat = fit.params[n_lin:].copy()
     # The minimum includes the prior row of a softly known ambient, like every refit below.
-    r_hat, _ = _constrained_residual(curve, q_hat, t, y, t_now + eta_s, threshold)
+    # (the scan's own baseline: the readings' residuals alone, on the time steps of the scan's
+    # ambient sum; the search's includes the trial instant, as its refits do)
+    r_hat, _ = projected(curve, q_hat, t, y)
+    rss_scan = max(float(r_hat @ r_hat), 1e-300)
+    if math.isfinite(eta_s):
+        r_hat, _ = _constrained_residual(curve, q_hat, t, y, t_now + eta_s, threshold)
     rss_min = max(float(r_hat @ r_hat), 1e-300)
     lo_b, hi_b = np.array(lo_bounds), np.array(hi_bounds)
     state = {"q": q_hat}
@@ -133,6 +154,11 @@ def profile_interval(
     if dof < 1:
         return None, None
     s2, cut = scale_and_cut(rss_min, dof, y)
+    if math.isinf(eta_s):
+        # the best fit never crosses: no search from it, but other curves that fit about as
+        # well may cross (an early centre probe still flat): the earliest of them
+        scan = scan_range(curve, t, y, threshold, t_now, rss_scan + cut * s2, q_hat, lo_b, hi_b)
+        return (None if scan is None else scan[0]), None
 
     def stat(tau: float) -> float:
         def res(q: Float) -> Float:
@@ -230,6 +256,44 @@ def profile_interval(
         root = b - fb * (b - a) / (fb - fa) if fb != fa else 0.5 * (a + b)
         return float(root) - t_now
 
-    hi = search(+1)
+    scan = scan_range(curve, t, y, threshold, t_now, rss_scan + cut * s2, q_hat, lo_b, hi_b)
+    # a scanned curve inside the cut-off that never crosses opens the upper end: no search
+    hi = None if scan is not None and scan[1] is None else search(+1)
     lo = search(-1)
+    if scan is not None:
+        s_lo, s_hi = scan
+        lo = s_lo if lo is None else min(lo, s_lo)
+        hi = None if (hi is None or s_hi is None) else max(hi, s_hi)
     return lo, hi
+
+
+def scan_range(
+    curve: _Curve,
+    t: Float,
+    y: Float,
+    threshold: float,
+    t_now: float,
+    rss_cut: float,
+    q_hat: Float,
+    lo_b: Float,
+    hi_b: Float,
+) -> tuple[float, float | None] | None:
+    """(earliest, latest) crossing, s from t_now, over the grid points of (log Bi, log a) whose
+    residual sum is within ``rss_cut`` (latest None: one of them never crosses); None when no
+    grid point passes.  A start offset, when fitted, stays at the best fit's."""
+    n_a = max(int(math.ceil((hi_b[1] - lo_b[1]) / math.log(10.0) * SCAN_PER_DECADE_A)) + 1, 2)
+    rows = []
+    for log_bi in np.linspace(lo_b[0], hi_b[0], SCAN_BIOT):
+        for log_a in np.linspace(lo_b[1], hi_b[1], n_a):
+            q = q_hat.copy()
+            q[0], q[1] = log_bi, log_a
+            r, coef = projected(curve, q, t, y)
+            if np.all(np.isfinite(r)) and float(r @ r) <= rss_cut:
+                rows.append(np.concatenate([coef, q]))
+    if not rows:
+        return None
+    e = etas(curve, np.array(rows), threshold, t_now, curve.span_s)
+    e = e[~np.isnan(e)]
+    if e.size == 0:
+        return None
+    return float(np.min(e)), (None if np.any(np.isinf(e)) else float(np.max(e)))

@@ -168,6 +168,10 @@ def test_sparkline_and_time_left_formats():
     r = Row(item="x", state="approaching", eta_s=600.0, eta_lo_s=0.0, eta_hi_s=None)
     assert range_text(r) == "under 1 min or later"
     assert due_text(Row(item="x", state="crossed", eta_s=0.0)) == "past it"
+    # the best fit never crosses but the interval has an early end: that end, not "no crossing"
+    r = Row(item="x", state="steady", eta_s=None, eta_lo_s=6540.0, eta_hi_s=None)
+    assert (due_text(r), range_text(r)) == ("1 h 49 min or later", "")
+    assert due_text(Row(item="x", state="steady", eta_s=None)) == "no crossing"
     # a slow feed reads as its rate per minute, never "0.0 readings/s"
     assert [rate_text(v) for v in (12.5, 0.05, None)] == [
         "12.5 readings/s",

@@ -108,6 +108,10 @@ class Recorder:
                 f"{verb} {d.get('threshold'):g} {unit} at {clock(t_last + eta, now)} "
                 f"(in {duration(t_last + eta - now)}; 90 %: {band})"
             )
+        elif d.get("state") == ItemState.STEADY and d.get("eta_lo_s") is not None:
+            # the best fit never crosses, but curves the readings allow do: say from when
+            lo = d["eta_lo_s"] + (t_last - now if t_last is not None else 0.0)
+            parts.append(f"no estimate yet; could cross in {duration(max(0.0, lo))} or later")
         elif d.get("state") == ItemState.STEADY:
             parts.append("no crossing ahead")
         kept = [

@@ -107,6 +107,9 @@ def due_text(r: Row | LevelLine) -> str:
         return "was due"
     if r.state == ItemState.SHORT:
         return "never"
+    if r.eta_s is None and r.state == ItemState.STEADY and r.eta_lo_s is not None:
+        # the best fit never crosses, yet the 90 % interval has an early end: show it
+        return span(r.eta_lo_s, r.eta_hi_s)
     if r.eta_s is None:
         return "no crossing" if r.state == ItemState.STEADY else "-"
     return duration(r.eta_s)
