@@ -79,16 +79,20 @@ def centre_mol(
     return (9.0 * sol.y[0] - sol.y[1]) / 8.0
 
 
-def _first_crossing(f: Callable[[float], float], thr: float, t_max: float) -> float | None:
+def _first_crossing(f: Callable[[Float], Float], thr: float, t_max: float) -> float | None:
+    """The first time in [0, t_max] where ``f`` (vectorised) crosses ``thr``: a sign change on a
+    grid of 2001 points, refined by brentq; None when there is none."""
     grid = np.linspace(0.0, t_max, 2001)
-    v = np.array([f(t) for t in grid]) - thr
+    v = np.asarray(f(grid), dtype=float) - thr
     sign_change = np.nonzero(np.sign(v[1:]) != np.sign(v[:-1]))[0]
     if v[0] == 0.0:
         return 0.0
     if sign_change.size == 0:
         return None
     i = int(sign_change[0])
-    return float(brentq(lambda t: f(t) - thr, grid[i], grid[i + 1], xtol=1e-3))
+    return float(
+        brentq(lambda t: float(f(np.array([t]))[0]) - thr, grid[i], grid[i + 1], xtol=1e-3)
+    )
 
 
 def core_probe(
@@ -138,7 +142,7 @@ def core_probe(
                 a_per_s * np.asarray(t_rel), biot, geometry
             )
 
-    cross = _first_crossing(lambda t: float(truth(np.array([t]))[0]), threshold, horizon)
+    cross = _first_crossing(truth, threshold, horizon)
     if cross is None or cross == 0.0:
         raise ValueError("this case never crosses the threshold (or starts past it)")
     duration = seen_fraction * cross
