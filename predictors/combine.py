@@ -29,9 +29,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from scipy.special import ndtri
-from scipy.stats import t as t_dist
 from thermeta.predictors.candidates import BENDS, Candidate, Local, Lumped, Spec, fit_all
 from thermeta.predictors.lumped import fit_lumped
+from thermeta.predictors.quantiles import t_ppf
 from thermeta.predictors.shared import shared
 from thermeta.predictors.two_exp import effective_share
 
@@ -378,7 +378,7 @@ def _interval(eta, etas, weights, ests, points) -> tuple[float | None, float | N
         horizons.append(p.actual)
     rms = math.sqrt(float(np.mean(np.square(errs))) + FLOOR**2) if errs else 1.0
     # the rms of a handful of backtest errors is itself uncertain: Student's t, not the normal
-    q = float(t_dist.ppf(0.95, len(errs) - 1)) if len(errs) > 1 else 2 * Z90
+    q = float(t_ppf(0.95, len(errs) - 1)) if len(errs) > 1 else 2 * Z90
     # errors grow with the reach: scale by the forecast's reach over the backtest's typical one
     if horizons:
         rms *= max(1.0, math.sqrt(eta / float(np.median(horizons))))

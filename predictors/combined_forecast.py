@@ -22,13 +22,13 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy.stats import f as f_dist
 from thermeta.predictors.candidates import Spec
 from thermeta.predictors.cleaning import scatter_inflation
 from thermeta.predictors.combine import Combined, binned
 from thermeta.predictors.context import AmbientMode, Context
 from thermeta.predictors.lumped import LumpedFit, fit_lumped
 from thermeta.predictors.outcome import NoteCode
+from thermeta.predictors.quantiles import f_ppf
 from thermeta.predictors.result import Forecast, never_reason
 from thermeta.predictors.shared import shared
 from thermeta.predictors.two_exp import effective_share, fit_two_exp
@@ -78,7 +78,7 @@ def shape_test(t: np.ndarray, y: np.ndarray, spec: Spec) -> float:
     share = max(effective_share(two.residuals), 1.0 / scatter_inflation(tb, yb))
     dof = max(two.dof * share, 1.0)
     F = (one.rss - two.rss) / 2.0 / (two.rss / two.dof) * share
-    return float(F / f_dist.ppf(SHAPE_CONF, 2, dof))
+    return float(F / f_ppf(SHAPE_CONF, 2, dof))
 
 
 CHECK_ORIGIN = 0.5  # the self-check forecasts the newest level from the first half's fit

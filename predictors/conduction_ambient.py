@@ -25,8 +25,7 @@ from collections.abc import Callable
 
 import numpy as np
 from numpy.typing import NDArray
-from scipy.signal import fftconvolve
-from scipy.stats import f as f_dist
+from thermeta.predictors.quantiles import f_sf
 
 Float = NDArray[np.float64]
 AmbientFn = Callable[[Float], Float]
@@ -61,7 +60,12 @@ def ramp_part(
     # sum_n C_n v_n is linear in the slopes: one convolution with the summed kernel
     #   kappa[m] = sum_n C_n g_n d_n^m
     kappa = (c * -np.expm1(-lam * h) / lam) @ np.exp(-np.outer(lam * h, np.arange(m)))
-    conv = np.convolve(slope, kappa) if m <= 512 else fftconvolve(slope, kappa)
+    if m <= 512:
+        conv = np.convolve(slope, kappa)
+    else:  # scipy.signal costs about 1 s to import: only the long series pay it
+        from scipy.signal import fftconvolve
+
+        conv = fftconvolve(slope, kappa)
     sum_cv = np.concatenate([[0.0], conv[:m]])
     r_grid = (amb - amb[0]) - sum_cv
     return np.interp(t_rel_s, grid, r_grid, left=0.0)
@@ -134,7 +138,7 @@ def steady_level(t_s: Float, y: Float, alpha: float = 0.01) -> tuple[float, floa
     span = float(x[-1] - x[0])
     slope, icept = np.polyfit(x / span, y, 1)
     rss1 = float(np.sum((y - (icept + slope * x / span)) ** 2))
-    p_lin = float(f_dist.sf((rss0 - rss1) / max(rss1 / (n - 2), 1e-300), 1, n - 2))
+    p_lin = float(f_sf((rss0 - rss1) / max(rss1 / (n - 2), 1e-300), 1, n - 2))
     ks = np.geomspace(0.05 / span, 30.0 / span, 40)
     rss2 = rss0
     for k in ks:
@@ -143,7 +147,7 @@ def steady_level(t_s: Float, y: Float, alpha: float = 0.01) -> tuple[float, floa
         coef, *_ = np.linalg.lstsq(a_mat, y, rcond=None)
         rss2 = min(rss2, float(np.sum((y - a_mat @ coef) ** 2)))
     p_exp = min(
-        1.0, ks.size * float(f_dist.sf((rss0 - rss2) / 2.0 / max(rss2 / (n - 3), 1e-300), 2, n - 3))
+        1.0, ks.size * float(f_sf((rss0 - rss2) / 2.0 / max(rss2 / (n - 3), 1e-300), 2, n - 3))
     )
     if min(p_lin, p_exp) < alpha:
         return None

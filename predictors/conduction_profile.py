@@ -51,10 +51,9 @@ from typing import TYPE_CHECKING
 import numpy as np
 from numpy.typing import NDArray
 from scipy.optimize import least_squares
-from scipy.stats import chi2 as chi2_dist
-from scipy.stats import f as f_dist
 from thermeta.predictors.conduction_curve import projected
 from thermeta.predictors.conduction_eta import etas
+from thermeta.predictors.quantiles import chi2_ppf, f_ppf
 
 if TYPE_CHECKING:
     from thermeta.predictors.conduction import ConductionFit, _Curve
@@ -79,7 +78,7 @@ SCAN_PER_DECADE_A = 4  # and time scales a, per decade of the fit's range
 def cut_off(dof: int) -> float:
     """The F(1, dof) cut-off on D at the small-sample corrected level 1 - alpha'."""
     alpha = ALPHA * dof / (dof + SMALL_SAMPLE_DOF)
-    return float(f_dist.ppf(1.0 - alpha, 1, dof))
+    return float(f_ppf(1.0 - alpha, 1, dof))
 
 
 def scale_and_cut(rss_min: float, dof: int, y: Float) -> tuple[float, float]:
@@ -94,7 +93,7 @@ def scale_and_cut(rss_min: float, dof: int, y: Float) -> tuple[float, float]:
 
     alpha = ALPHA * dof / (dof + SMALL_SAMPLE_DOF)
     s2 = max(rss_min / max(dof, 1), assumed_scatter(np.asarray(y, float)) ** 2)
-    return s2, float(chi2_dist.ppf(1.0 - alpha, 1))
+    return s2, float(chi2_ppf(1.0 - alpha, 1))
 
 
 def _constrained_residual(

@@ -23,9 +23,9 @@ from dataclasses import dataclass
 from itertools import pairwise
 
 import numpy as np
-from scipy.stats import t as t_dist
 from thermeta.predictors.context import Context
 from thermeta.predictors.outcome import NoteCode
+from thermeta.predictors.quantiles import t_ppf
 from thermeta.predictors.regime import slope_runs
 from thermeta.predictors.result import Forecast
 from thermeta.predictors.wording import point, step
@@ -90,7 +90,7 @@ def cycle_trend(
     mean_now = float(icpt + slope * (t[-1] - mids[-1]))
     out = CycleTrend(int(means.size), mean_now, half, float(slope), se, False)
     toward = 1.0 if (thr > mean_now if limit is None else limit == "upper") else -1.0
-    if toward * slope <= float(t_dist.ppf(DRIFT_CONF, dof)) * se:
+    if toward * slope <= float(t_ppf(DRIFT_CONF, dof)) * se:
         return out  # no drift toward the threshold that the cycle means can tell from zero
     out.significant = True
     edge = mean_now + toward * half
@@ -103,7 +103,7 @@ def cycle_trend(
         out.beyond_horizon = True
         return out
     out.eta_s = eta
-    q = float(t_dist.ppf(CONF, dof))
+    q = float(t_ppf(CONF, dof))
     fast, slow = toward * slope + q * se, toward * slope - q * se
     out.eta_lo_s = abs(gap) / fast
     out.eta_hi_s = abs(gap) / slow if slow > 0 else None

@@ -23,10 +23,10 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.stats import t as t_dist
 from thermeta.predictors.context import Context
 from thermeta.predictors.lumped import crossing_eta
 from thermeta.predictors.outcome import NoteCode
+from thermeta.predictors.quantiles import t_ppf
 from thermeta.predictors.result import Forecast, never_reason
 from thermeta.predictors.wording import step
 
@@ -247,7 +247,7 @@ def few_trend(fc: Forecast, tt, yy, thr: float, limit, sigma: float) -> Forecast
     if slope * toward <= 0:
         fc.note(*never_reason(fc))
         return fc
-    q95 = float(t_dist.ppf(0.95, dof)) if dof > 0 else Z90
+    q95 = float(t_ppf(0.95, dof)) if dof > 0 else Z90
     fast = slope * toward + q95 * se
     fc.eta_s = (thr - now) / slope  # T_now + s eta = thr
     fc.eta_lo_s, fc.eta_hi_s = abs(thr - now) / fast, None

@@ -39,9 +39,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from scipy.optimize import minimize_scalar
-from scipy.stats import f as f_dist
 from thermeta.predictors.lumped_profile import KPenalty, add_intervals, solve_fixed_k, sums
 from thermeta.predictors.outcome import Reason
+from thermeta.predictors.quantiles import f_ppf
 
 CONF = 0.90
 KD_MIN, KD_MAX = 0.005, 60.0  # k * span: from nearly straight to relaxed in the first 2 %
@@ -316,7 +316,7 @@ def bend_weight(d: np.ndarray, yc: np.ndarray, rss: float, dof: int) -> float:
     s_line, icpt = np.polyfit(d, yc, 1)
     rss_line = float(np.sum((yc - (icpt + s_line * d)) ** 2))
     F = (rss_line - rss) / (rss / dof)
-    q = float(f_dist.ppf(BEND_CONF, 1, dof))
+    q = float(f_ppf(BEND_CONF, 1, dof))
     return max(0.0, 1.0 - q / F) if F > 0 else 0.0
 
 

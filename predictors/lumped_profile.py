@@ -19,7 +19,7 @@ from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
 import numpy as np
-from scipy.stats import f as f_dist
+from thermeta.predictors.quantiles import f_ppf
 
 if TYPE_CHECKING:
     from thermeta.predictors.lumped import LumpedFit
@@ -195,7 +195,7 @@ def add_intervals(
     """
     D = float(d[-1])
     pen = pen or KPenalty(None)
-    cut = fit.rss * (1.0 + fit.inflate * f_dist.ppf(CONF, 1, fit.dof) / fit.dof)
+    cut = fit.rss * (1.0 + fit.inflate * f_ppf(CONF, 1, fit.dof) / fit.dof)
     k_hat, lk = fit.k_per_s, math.log(fit.k_per_s)
     # curvature of RSS in log k sets a fine grid around k_hat
     s3 = sums(d, yc, np.exp(lk + np.array([-0.01, 0.0, 0.01])))

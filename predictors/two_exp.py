@@ -34,7 +34,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from scipy.optimize import brentq
-from scipy.stats import f as f_dist
+from thermeta.predictors.quantiles import f_ppf
 
 CONF = 0.90
 KD_MIN, KD_MAX = 0.02, 60.0  # k * span of the grid: from a slight bend to relaxed in 2 %
@@ -366,7 +366,7 @@ def eta_interval(
     if not s:
         return None, None
     D = s["D"]
-    cut = fit.rss + fit.rss * f_dist.ppf(CONF, 1, fit.dof) / fit.dof * max(inflate, 1.0)
+    cut = fit.rss + fit.rss * f_ppf(CONF, 1, fit.dof) / fit.dof * max(inflate, 1.0)
     n = fit.n
     lam, a0 = s["lam"], s["a0"]
     parts = []
