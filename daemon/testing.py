@@ -234,9 +234,11 @@ FAKETIME_LIBS = (
 
 def faketime_env(offset_file: Path) -> dict[str, str] | None:
     """An environment in which a process's wall clock is shifted by the offset written in
-    ``offset_file`` (libfaketime: "+0", "-3600", "+1h"; read afresh on every call, so writing
-    the file steps the clock of the running process); its monotonic clock stays true.  None when
-    libfaketime is not installed (Debian: ``apt-get install libfaketime``)."""
+    ``offset_file`` (libfaketime: "+0", "-3600", "+1h"; read again at most once a second, so
+    writing the file steps the clock of the running process within a second); its monotonic
+    clock stays true.  None when libfaketime is not installed (Debian: ``apt-get install
+    libfaketime``).  Not FAKETIME_NO_CACHE: reading the file at every clock call (each GIL
+    hand-over between the daemon's threads makes one) kept a round of three items past 60 s."""
     lib = next((p for p in FAKETIME_LIBS if Path(p).exists()), None)
     if lib is None:
         return None
@@ -246,7 +248,7 @@ def faketime_env(offset_file: Path) -> dict[str, str] | None:
         os.environ,
         LD_PRELOAD=lib,
         FAKETIME_TIMESTAMP_FILE=str(offset_file),
-        FAKETIME_NO_CACHE="1",
+        FAKETIME_CACHE_DURATION="1",
         FAKETIME_DONT_FAKE_MONOTONIC="1",
     )
 
