@@ -73,7 +73,7 @@ def test_fault10_hostile_payloads_are_dead_letters_with_reasons_and_no_traceback
             lambda: (
                 len(dead_letter_reasons(url)) == 200 * len(HOSTILE) and dead_letter_reasons(url)
             ),
-            10,
+            30,  # a bound on waiting, not a speed target: 10 s fell short once under load
             d.log,
         )
         log = d.text()
