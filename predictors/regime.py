@@ -66,11 +66,6 @@ def smooth_rss(t: np.ndarray, y: np.ndarray) -> float:
     return float(r @ r)
 
 
-def _exact_rss(t: np.ndarray, y: np.ndarray) -> float:
-    f = fit_lumped(t, y, float(y[-1]), intervals=False)
-    return f.rss if f.ok else math.inf
-
-
 def slope_runs(
     t: np.ndarray, y: np.ndarray, noise_sd: float, half: int = 8
 ) -> list[tuple[int, int, int]]:
@@ -137,7 +132,8 @@ def find_regime(
     constants toward one ambient, monotone over the slice): a change is declared only when no
     single smooth curve of the family explains both sides (a second time constant is not a
     change of the surroundings).  inflation: n / n_eff of the readings' scatter (correlated
-    scatter, see cleaning.Cleaned), for the caller's doors (find_door) and cycles.
+    scatter, see cleaning.Cleaned), for doors and cycles; each split's gain is judged against
+    the residual variance times the split's own n / n_eff (_split_inflation).
     """
     n = t.size
     if n < 2 * min_points:
@@ -145,7 +141,15 @@ def find_regime(
     if smooth is None and rss is None:
         smooth = lambda i0, i1: smooth_rss(t[i0:i1], y[i0:i1])
     rss = rss or (lambda i0, i1: _rss(t[i0:i1], y[i0:i1]))
-    exact = exact or (lambda i0, i1: _exact_rss(t[i0:i1], y[i0:i1]))
+    kept: dict[tuple[int, int], np.ndarray] = {}
+    if exact is None:
+
+        def exact(i0: int, i1: int) -> float:
+            f = fit_lumped(t[i0:i1], y[i0:i1], float(y[i1 - 1]), intervals=False)
+            if f.ok:
+                kept[(i0, i1)] = f.residuals
+            return f.rss if f.ok else math.inf
+
     if fit_sigma is None:
         full = fit_lumped(t, y, float(y[-1]), intervals=False)
         if not full.ok:
@@ -195,6 +199,7 @@ def find_regime(
         rss1 = exact(start, n)
         rss2 = exact(start, j_best) + exact(j_best, n)
         s2 = max(rss2 / max(m - 2 * n_params - 1, 1), sig * sig)
+        s2 *= _split_inflation(kept.get((start, j_best)), kept.get((j_best, n)), inflation)
         # n_params + 1 more parameters (a second curve and the split): BIC-style, with margin
         if (rss1 - rss2) / s2 < (n_params + 1) * math.log(m) + 12.0:
             break
@@ -205,6 +210,21 @@ def find_regime(
         changes += 1
         cuts.append(j_best)
     return Regime(start, changes, False, changes=cuts)
+
+
+def _split_inflation(left: np.ndarray | None, right: np.ndarray | None, scatter: float) -> float:
+    """n / n_eff of the scatter around the two curves of a split: the lag-one inflation of their
+    residuals pooled.  Where the split is a real change each side is one curve and the residuals
+    are white; correlated scatter (a fast logger's AR(1) wander) leaves them correlated, and
+    the split test, which counts readings as independent, would take the wander for changes of
+    the surroundings (the gain of a free split grows with n / n_eff; the variance of a mean of
+    an AR(1) series, Box, Jenkins & Reinsel, Time Series Analysis, from memory).  Without the
+    sides' residuals (a caller's own fits): ``scatter``, the readings' inflation from local
+    lines, which a sharp change among few readings inflates too (a door in 53 readings of white
+    scatter: 3.6), so it is not used where the sides are known."""
+    if left is None or right is None:
+        return scatter
+    return lag_inflation(np.concatenate([left, right]))
 
 
 def oldest_regime_end(
