@@ -213,18 +213,20 @@ def find_regime(
 
 
 def _split_inflation(left: np.ndarray | None, right: np.ndarray | None, scatter: float) -> float:
-    """n / n_eff of the scatter around the two curves of a split: the lag-one inflation of their
-    residuals pooled.  Where the split is a real change each side is one curve and the residuals
-    are white; correlated scatter (a fast logger's AR(1) wander) leaves them correlated, and
-    the split test, which counts readings as independent, would take the wander for changes of
-    the surroundings (the gain of a free split grows with n / n_eff; the variance of a mean of
-    an AR(1) series, Box, Jenkins & Reinsel, Time Series Analysis, from memory).  Without the
-    sides' residuals (a caller's own fits): ``scatter``, the readings' inflation from local
-    lines, which a sharp change among few readings inflates too (a door in 53 readings of white
-    scatter: 3.6), so it is not used where the sides are known."""
+    """n / n_eff of the scatter around the two curves of a split: the smaller of the two sides'
+    lag-one inflations.  Correlated scatter (a fast logger's AR(1) wander) is a property of the
+    sensor and shows on both sides; the misfit of a side that still holds a change (a door
+    opened, then closed minutes ago) shows on that side only, so the side one curve explains
+    best speaks for the scatter.  The split test counts readings as independent; without this
+    it takes the wander of correlated scatter for changes of the surroundings (the gain of a
+    free split grows with n / n_eff; the variance of a mean of an AR(1) series, Box, Jenkins &
+    Reinsel, Time Series Analysis, from memory).  Without the sides' residuals (a caller's own
+    fits): ``scatter``, the readings' inflation from local lines, which a sharp change among few
+    readings inflates too (a door in 53 readings of white scatter: 3.6), so it is not used where
+    the sides are known."""
     if left is None or right is None:
         return scatter
-    return lag_inflation(np.concatenate([left, right]))
+    return min(lag_inflation(left), lag_inflation(right))
 
 
 def oldest_regime_end(
