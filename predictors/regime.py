@@ -24,7 +24,7 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
-from thermeta.predictors.lumped import fit_lumped, quick_rss
+from thermeta.predictors.lumped import LumpedFit, fit_lumped, quick_rss
 from thermeta.predictors.shared import shared
 
 MIN_REGIME_POINTS = 12
@@ -141,13 +141,13 @@ def find_regime(
     if smooth is None and rss is None:
         smooth = lambda i0, i1: smooth_rss(t[i0:i1], y[i0:i1])
     rss = rss or (lambda i0, i1: _rss(t[i0:i1], y[i0:i1]))
-    kept: dict[tuple[int, int], np.ndarray] = {}
+    kept: dict[tuple[int, int], LumpedFit] = {}
     if exact is None:
 
         def exact(i0: int, i1: int) -> float:
             f = fit_lumped(t[i0:i1], y[i0:i1], float(y[i1 - 1]), intervals=False)
             if f.ok:
-                kept[(i0, i1)] = f.residuals
+                kept[(i0, i1)] = f
             return f.rss if f.ok else math.inf
 
     if fit_sigma is None:
@@ -179,27 +179,53 @@ def find_regime(
             True,
             "the readings stopped cycling; fitted the newest run only",
         )
-    start, changes, cuts = 0, 0, []
-    while changes < max_changes and n - start >= 2 * min_points:
-        m = n - start
-        cands = start + np.unique(np.linspace(min_points, m - min_points, 14).astype(int))
-        scores = np.array([rss(start, j) + rss(j, n) for j in cands])
+
+    def best_split(lo: int, hi: int) -> int:
+        """The split of [lo, hi) that the quick RSS ranks best."""
+        cands = lo + np.unique(np.linspace(min_points, hi - lo - min_points, 14).astype(int))
+        scores = np.array([rss(lo, j) + rss(j, hi) for j in cands])
         i = int(np.argmin(scores))
         # refine between the neighbouring candidates
         fine = np.unique(
             np.linspace(cands[max(i - 1, 0)], cands[min(i + 1, cands.size - 1)], 9).astype(int)
         )
-        fine = fine[(fine >= start + min_points) & (fine <= n - min_points)]
+        fine = fine[(fine >= lo + min_points) & (fine <= hi - min_points)]
         j_best, best = int(cands[i]), float(scores[i])
         if fine.size:
-            fs = np.array([rss(start, j) + rss(j, n) for j in fine])
+            fs = np.array([rss(lo, j) + rss(j, hi) for j in fine])
             if fs.min() < best:
                 j_best = int(fine[np.argmin(fs)])
+        return j_best
+
+    def side_inflation(i0: int, i1: int) -> float | None:
+        """n / n_eff of the scatter about one side's curve: its residuals' lag-one inflation,
+        or, when the side holds a change of its own (a door opened, then closed: a misfit on
+        both sides of the split between them), the larger of its two halves' at its own best
+        split, if that is smaller (both halves must look white for the side to count as white:
+        correlated scatter stays correlated on either half).  None without the side's fit."""
+        res = _res(kept, i0, i1)
+        if res is None:
+            return None
+        infl = lag_inflation(res)
+        if infl > 1.0 and i1 - i0 >= 2 * min_points:
+            j = best_split(i0, i1)
+            exact(i0, j)
+            exact(j, i1)
+            left, right = _res(kept, i0, j), _res(kept, j, i1)
+            if left is not None and right is not None:
+                halves = max(short_inflation(left, n_params), short_inflation(right, n_params))
+                infl = min(infl, halves)
+        return infl
+
+    start, changes, cuts = 0, 0, []
+    while changes < max_changes and n - start >= 2 * min_points:
+        m = n - start
+        j_best = best_split(start, n)
         # the quick RSS ranks the splits; the test uses exact fits
         rss1 = exact(start, n)
         rss2 = exact(start, j_best) + exact(j_best, n)
         s2 = max(rss2 / max(m - 2 * n_params - 1, 1), sig * sig)
-        s2 *= _split_inflation(kept.get((start, j_best)), kept.get((j_best, n)), inflation)
+        s2 *= _split_inflation(side_inflation(start, j_best), side_inflation(j_best, n), inflation)
         # n_params + 1 more parameters (a second curve and the split): BIC-style, with margin
         if (rss1 - rss2) / s2 < (n_params + 1) * math.log(m) + 12.0:
             break
@@ -212,21 +238,26 @@ def find_regime(
     return Regime(start, changes, False, changes=cuts)
 
 
-def _split_inflation(left: np.ndarray | None, right: np.ndarray | None, scatter: float) -> float:
+def _res(kept: dict[tuple[int, int], LumpedFit], i0: int, i1: int) -> np.ndarray | None:
+    f = kept.get((i0, i1))
+    return None if f is None else np.asarray(f.residuals)
+
+
+def _split_inflation(left: float | None, right: float | None, scatter: float) -> float:
     """n / n_eff of the scatter around the two curves of a split: the smaller of the two sides'
-    lag-one inflations.  Correlated scatter (a fast logger's AR(1) wander) is a property of the
-    sensor and shows on both sides; the misfit of a side that still holds a change (a door
-    opened, then closed minutes ago) shows on that side only, so the side one curve explains
-    best speaks for the scatter.  The split test counts readings as independent; without this
-    it takes the wander of correlated scatter for changes of the surroundings (the gain of a
-    free split grows with n / n_eff; the variance of a mean of an AR(1) series, Box, Jenkins &
-    Reinsel, Time Series Analysis, from memory).  Without the sides' residuals (a caller's own
-    fits): ``scatter``, the readings' inflation from local lines, which a sharp change among few
-    readings inflates too (a door in 53 readings of white scatter: 3.6), so it is not used where
-    the sides are known."""
+    lag-one inflations (find_regime's side_inflation).  Correlated scatter (a fast logger's AR(1)
+    wander) is a property of the sensor and shows on both sides; the misfit of a side that still
+    holds a change (a door opened, then closed minutes ago) shows on that side only, so the side
+    one curve explains best speaks for the scatter.  The split test counts readings as
+    independent; without this it takes the wander of correlated scatter for changes of the
+    surroundings (the gain of a free split grows with n / n_eff; the variance of a mean of an
+    AR(1) series, Box, Jenkins & Reinsel, Time Series Analysis, from memory).  Without the sides'
+    residuals (a caller's own fits): ``scatter``, the readings' inflation from local lines, which
+    a sharp change among few readings inflates too (a door in 53 readings of white scatter: 3.6),
+    so it is not used where the sides are known."""
     if left is None or right is None:
         return scatter
-    return min(lag_inflation(left), lag_inflation(right))
+    return min(left, right)
 
 
 def oldest_regime_end(
@@ -427,6 +458,22 @@ def _door_residuals(y: np.ndarray, r: np.ndarray, e: np.ndarray, c: int, j: int)
         coef, *_ = np.linalg.lstsq(X, yy, rcond=None)
         out.insert(1, yy - X @ coef)
     return np.concatenate(out)
+
+
+def short_inflation(res: np.ndarray, n_params: int = 3) -> float:
+    """(1 + rho) / (1 - rho) of a short stretch's residuals, without lag_inflation's
+    white-noise band (which lets a dozen correlated readings pass for white) and with the
+    lag-one estimate's downward bias on residuals of a fitted curve taken off (about
+    (n_params + 1) / n, from memory; a fitted curve takes up part of the wander)."""
+    if res.size < 4:
+        return math.inf
+    res = res - res.mean()
+    den = float(res @ res)
+    if den <= 0:
+        return 1.0
+    rho = float(res[1:] @ res[:-1]) / den + (n_params + 1) / res.size
+    rho = min(max(rho, 0.0), 0.98)
+    return (1.0 + rho) / (1.0 - rho)
 
 
 def lag_inflation(res: np.ndarray) -> float:
