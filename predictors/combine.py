@@ -29,6 +29,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from scipy.special import ndtri
+from thermeta.predictors import baselines
 from thermeta.predictors.candidates import BENDS, Candidate, Local, Lumped, Spec, fit_all
 from thermeta.predictors.lumped import fit_lumped
 from thermeta.predictors.quantiles import t_ppf
@@ -228,6 +229,8 @@ def combine(
         etas = {m: None for m in names}
     best = max(weights, key=lambda m: weights[m])
     lo, hi = _interval(eta, etas, weights, s.ests, s.points)
+    if eta:
+        eta, lo, hi = _with_trend(eta, lo, hi, t, y, threshold, etas, weights, s, spec)
     never_w = sum(weights[m] for m, e in etas.items() if e is None)
     overruled = s.slowing and eta is not None and never_w > 0.5
     return Combined(
@@ -242,6 +245,88 @@ def combine(
         never_clear,
         overruled,
     )
+
+
+TREND_SHARE = 0.3  # the trend: a straight line through the newest 30 % of the readings' span
+
+
+def trend_eta(t: np.ndarray, y: np.ndarray, level: float) -> float | None:
+    """Seconds from the newest reading until the straight trend through the newest TREND_SHARE
+    of the readings' span (three readings at least) reaches ``level``; None when it is flat or
+    moves away."""
+    if t.size < 3:
+        return None
+    window = max(TREND_SHARE * float(t[-1] - t[0]), float(t[-1] - t[-3]))
+    return baselines.linear_eta(t, y, level, window_s=window)
+
+
+def _combined_errors(ests, weights, points) -> list[float]:
+    """The combination's own ln errors at the backtest's questions (the weighted median of the
+    candidates' ln ETA there; a "never" counts as very late), capped at MISS."""
+    errs = []
+    names = list(ests)
+    for j, p in enumerate(points):
+        logs, ws = [], []
+        for m in names:
+            e = ests[m][j]
+            logs.append(math.log(e) if e is not None and e > 0 else 50.0)
+            ws.append(weights[m])
+        err = _wmedian(logs, ws) - math.log(p.actual)
+        errs.append(min(max(err, -MISS), MISS))
+    return errs
+
+
+def _given_holds(spec: Spec, cands: dict[str, Candidate]) -> bool:
+    """Whether a given ambient anchors the bend: given exactly, or the one-exponential fit's
+    ambient within 2 sd of it (the readings do not contradict it)."""
+    if spec.ambient is None:
+        return False
+    if spec.ambient_sd <= 0:
+        return True
+    lumped = cands.get("lumped")
+    if not isinstance(lumped, Lumped) or not lumped.ok:
+        return False
+    return abs(float(lumped.fit.ambient) - spec.ambient) <= 2.0 * spec.ambient_sd
+
+
+def _with_trend(eta, lo, hi, t, y, threshold, etas, weights, s: Scored, spec: Spec):
+    """The curves' combined ETA pooled with the readings' straight trend, in ln ETA, each
+    weighted by the inverse of its variance (the trend's: its mean squared ln error on the
+    backtest; the curves': theirs on the same backtest plus the weighted variance of the ln ETA
+    of the credible curves that cross), and kept within those curves' ETAs.  Curves that
+    forecast the item's past about equally well but disagree about its future say that the bend
+    ahead is weakly supported: the forecast then leans toward the credible curve nearest the
+    trend, the answer that assumes least; a well-supported bend (one credible curve, several
+    that agree, or a given ambient the readings do not contradict, which says where the curve
+    is heading) keeps it.  The interval is stretched to hold the pooled point."""
+    credible = {m: e for m, e in etas.items() if e is not None and e > 0}
+    credible = {m: e for m, e in credible.items() if weights[m] >= CREDIBLE}
+    if len(credible) < 2 or not s.points or _given_holds(spec, s.final):
+        return eta, lo, hi
+    trend = trend_eta(t, y, threshold)
+    if trend is None or not trend > 0:
+        return eta, lo, hi
+    theirs = [log_error(trend_eta(t[: p.n], y[: p.n], p.level), p.actual) for p in s.points]
+    # a straight trend misses the bend ahead, an error that grows in proportion to the reach (its
+    # variance with the square), where the curves' errors grow like the conformal band's (the
+    # square root): the trend's backtest variance is scaled up by the forecast's reach over the
+    # backtest's typical one
+    reach = max(1.0, eta / float(np.median([p.actual for p in s.points])))
+    v_trend = (float(np.mean(np.square(theirs))) + FLOOR**2) * reach
+    mine = _combined_errors(s.ests, weights, s.points)
+    w = np.array([weights[m] for m in credible])
+    w = w / w.sum()
+    ln = np.log(np.array(list(credible.values())))
+    spread = float(w @ np.square(ln - float(w @ ln)))
+    v_mine = float(np.mean(np.square(mine))) + FLOOR**2 + spread
+    share = v_mine / (v_mine + v_trend)
+    pooled = (1.0 - share) * math.log(eta) + share * math.log(trend)
+    eta = math.exp(min(max(pooled, float(ln.min())), float(ln.max())))
+    if lo is not None:
+        lo = min(lo, eta)
+    if hi is not None:
+        hi = max(hi, eta)
+    return eta, lo, hi
 
 
 def _moving_away(t: np.ndarray, y: np.ndarray, threshold: float) -> bool:

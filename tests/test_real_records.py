@@ -177,3 +177,21 @@ def test_a_rate_that_falls_beyond_one_exponential_is_no_never(bench):
     assert NoteCode.SLOWING in [n.code for n in fc.notes]
     assert fc.eta_s is not None and fc.eta_hi_s is None
     assert _holds(fc, task.eta_true_s)
+
+
+def test_a_weakly_supported_bend_gives_way_toward_the_trend(bench):
+    """Cold water warming toward the room (eric-unc/MATH-383L-final, MIT), 80 % threshold, from
+    half the time: two time constants, the local curve and the curve toward the given room
+    forecast the readings so far about equally well (each within 25 % in ln time at the
+    backtest's questions) but disagree about the crossing by a factor of six, and the readings
+    contradict the given room (they point to 19.8 degC).  Alone, their weighted median said
+    6,579 s against a true 2,760 s (138 % late); with the curves' disagreement counted as doubt
+    and the straight trend weighted by its own backtest (scaled up with the reach), the
+    forecast leans toward the trend (4,151 s, 50 %) and stays within the credible curves
+    (1,962-11,962 s)."""
+    rec, task = _task(bench, "eric_water_warming", 0.8, 0.5)
+    fc = _run(rec, task)
+    assert fc.model_weights and len(fc.model_weights) > 1, fc.model_weights
+    assert 1962 * 0.99 <= fc.eta_s <= 0.7 * 6579
+    assert abs(fc.eta_s - task.eta_true_s) / task.eta_true_s <= 0.6, (fc.eta_s, task.eta_true_s)
+    assert _holds(fc, task.eta_true_s)
