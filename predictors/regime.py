@@ -9,7 +9,9 @@ bends the curve: dT/dt = -k (T - Ta) jumps with Ta.  One lumped curve then fits 
    the local slope; the window is then kept whole, unless the newest monotone run is much longer
    than the usual runs (the unit stopped cycling);
 3. otherwise binary segmentation on the tail: the split that lowers the RSS of two lumped fits the
-   most, kept when the gain beats a BIC-style penalty; repeated on the part after the split.
+   most, kept when the gain beats a BIC-style penalty in units of the residual variance times the
+   scatter's n / n_eff (read from the side one curve explains; a side that holds a change of its
+   own is read from its halves); repeated on the part after the split.
 
 A door opened and closed again is a change that leaves the load's k and the ambient as they were:
 find_door sees one too short for step 3 (a few minutes of readings), split_disturbance places its
