@@ -34,14 +34,21 @@ once, at the first refit whose fit WITHOUT the prior pins k (and a fitted ambien
 after that one's newest reading, and within an open episode only once.  A prior is never used on
 the episode it learned from: after a lesson, the item's fits keep the prior as it was before it
 until their window no longer holds the taught readings and the episode (if one is open) has
-ended.
+ended.  (``lessons.py`` keeps the priors and the lessons.)
+
+Storing: a chunk of :data:`SAVE_EVERY` forecasts is judged and stored in ONE transaction
+(``Store.batch``), with the levels' sides and the prior lessons decided since the last chunk and
+the alert rules' states: one fsync for the chunk, where the first round after a start used to
+pay one for each item's first side, lesson and alert state.  Nothing is published before its
+chunk is committed; a crash mid-round loses at most the chunk's decisions, which the next round
+makes again.  A round reads each chunk's item ids, recorded sides, newest episodes and priors in
+a few queries rather than one each an item.
 """
 
 from __future__ import annotations
 
 import json
 import logging
-import math
 import threading
 import time
 from collections.abc import Callable
@@ -52,7 +59,7 @@ from thermeta.daemon.clock import Clock, monotonic_of
 from thermeta.daemon.config import AMBIENT_SUFFIX, DEFROST_SUFFIX, Config, ItemConfig
 from thermeta.daemon.ingest.defrost import defrost_status
 from thermeta.daemon.ingest.writer import Activity
-from thermeta.daemon.levels.spec import Level, levels_of
+from thermeta.daemon.levels.spec import levels_of
 from thermeta.daemon.refit.batched import Batch
 from thermeta.daemon.refit.common import (
     ForecastUpdate,
@@ -65,15 +72,14 @@ from thermeta.daemon.refit.common import (
 )
 from thermeta.daemon.refit.episodes import EpisodeKeeper
 from thermeta.daemon.refit.judging import judge_item
+from thermeta.daemon.refit.lessons import PriorKeeper
 from thermeta.daemon.refit.workers import default_workers
 from thermeta.daemon.states import AmbientMode, ItemState, Side
 from thermeta.predictors import forecast
 from thermeta.predictors.outcome import Reason
-from thermeta.predictors.prior import Prior, learn, learnable
+from thermeta.predictors.prior import Prior
 from thermeta.predictors.result import Forecast
 from thermeta.predictors.shared import shared_fits
-from thermeta.storage.episodes import Episode
-from thermeta.storage.priors import PriorStore
 from thermeta.storage.store import Store
 
 log = logging.getLogger("thermeta.refit")
@@ -114,11 +120,7 @@ class Refitter:
         self.total_run_s = 0.0  # all rounds' time, for the service's figures (daemon/metrics.py)
         self.finished_at: float | None = None  # time.monotonic() at the newest round's end
         self._predict: Callable[..., Forecast] = forecast  # a seam for tests
-        self.prior_store = PriorStore(store)
-        self.priors: dict[str, Prior] = {}  # by prior class, loaded on first use
-        self.learned_until: dict[str, float] = {}  # by item
-        self.held: dict[str, tuple[Prior, float, int | None]] = {}  # by item (module docstring)
-        self.lessons = 0
+        self.teacher = PriorKeeper(store)  # the priors and the lessons (lessons.py)
         self.keeper = EpisodeKeeper(store)  # episodes, their tallies, the levels' sides
         self.fits = 0  # forecasts made (one per distinct threshold and side of an item)
         workers = config.fit.workers
@@ -131,6 +133,11 @@ class Refitter:
             self.batch.pool.most = MAX_FIT_POINTS
         self.use_batch = True
         self.owns: Callable[[str], bool] | None = None  # [cluster]: whether our lease still holds
+
+    @property
+    def lessons(self) -> int:
+        """Lessons taught since the start."""
+        return self.teacher.lessons
 
     def load_previous(self) -> None:
         """Pick up each item's last forecast from the store (after a restart)."""
@@ -166,11 +173,13 @@ class Refitter:
                 )
                 if due or going_stale:
                     due_items.append((name, cfg))
+            self._read_ids([name for name, _ in due_items])
             size = self.batch.chunk
             chunks = [due_items[at : at + size] for at in range(0, len(due_items), size)]
             for c, chunk in enumerate(chunks):
                 if self.stopping.is_set():
                     break
+                self._preload(chunk)
                 self._load_batch(chunk, now, last, chunks[c + 1 :])
                 for name, cfg in chunk:
                     if self.stopping.is_set():
@@ -198,12 +207,35 @@ class Refitter:
             return done
 
     def _flush(self, pending: list[Refitted], now: float, done: dict[str, ItemState]) -> None:
-        """Judge, then store a chunk of forecasts in one transaction, then publish them (one
-        commit per item would cost an fsync each and hold the writer's lock as often)."""
+        """Judge, then store a chunk of forecasts, with the sides and lessons decided since the
+        last chunk and the judges' own writes, in one transaction; then publish them (one commit
+        per item would cost an fsync each and hold the writer's lock as often)."""
         if self.owns is not None:  # a lease lost during the round: its new holder refits it
             pending[:] = [r for r in pending if self.owns(r.name)]
-        if not pending:
+        if not (pending or self.keeper.unrecorded or self.teacher.unstored):
             return
+        judged = False
+        try:
+            with self.store.batch():
+                self.keeper.write_sides()
+                self.teacher.write()
+                self._judge(pending)
+                judged = True
+                if pending:
+                    self.store.save_forecasts(
+                        [(r.item_id, now, r.state, r.body, r.last_ts) for r in pending]
+                    )
+        except Exception:  # noqa: BLE001 - published anyway; the next refit stores again
+            log.exception("storing %d forecasts failed", len(pending))
+        if not judged:  # the transaction never began: the judges go on as they can
+            self._judge(pending)
+        for r in pending:
+            self._deliver(r)
+            done[r.name] = r.state
+        pending.clear()
+
+    def _judge(self, pending: list[Refitted]) -> None:
+        """Hand each forecast to the judges (the alert rules), which may hold its states."""
         for r in pending:
             update = ForecastUpdate(r.cfg, r.state, r.body, self.previous.get(r.name))
             for judge in list(self.judges):
@@ -212,16 +244,29 @@ class Refitter:
                 except Exception:  # noqa: BLE001 - published as judged; the next refit retries
                     log.exception("judging %s failed", r.name)
             r.state = ItemState(r.body.get("state") or r.state)
-        try:
-            self.store.save_forecasts(
-                [(r.item_id, now, r.state, r.body, r.last_ts) for r in pending]
-            )
-        except Exception:  # noqa: BLE001 - published anyway; the next refit stores again
-            log.exception("storing %d forecasts failed", len(pending))
-        for r in pending:
-            self._deliver(r)
-            done[r.name] = r.state
-        pending.clear()
+
+    def _read_ids(self, names: list[str]) -> None:
+        """The items' ids not known yet, in one query per 500 (new ones are made one by one)."""
+        want = [n for n in names if n not in self.item_ids]
+        if want:
+            try:
+                self.item_ids.update(self.store.item_ids(want))
+            except Exception:  # noqa: BLE001 - read one by one at their first use
+                log.exception("reading the ids of %d items failed", len(want))
+
+    def _preload(self, chunk: list[tuple[str, ItemConfig]]) -> None:
+        """What the chunk's refits read of the store that is not known yet (the first round
+        after a start), in a few queries: the recorded sides, the newest episodes, the priors."""
+        names = [name for name, _ in chunk]
+        self.keeper.preload(names)
+        classes = []
+        for name, cfg in chunk:
+            if uses_prior(cfg, bool(cfg.ambient_topic)):
+                ep = self.keeper.open_eps.get(name) or self.keeper.last_eps.get(name)
+                classes.append(
+                    (ep.cls if ep is not None and ep.cls else None) or cfg.prior_class or name
+                )
+        self.teacher.preload(classes)
 
     def _load_batch(self, chunk: list, now: float, last: dict[str, float], ahead: list) -> None:
         """Read the chunk's windows in one query and fit its lumped items together (the next
@@ -287,7 +332,7 @@ class Refitter:
         cls = (episode.cls if episode is not None and episode.cls else None) or cfg.prior_class
         cls = cls or name
         prior = (
-            self._prior_for(name, cls, since, episode)
+            self.teacher.prior_for(name, cls, since, episode)
             if uses_prior(cfg, mode == "measured")
             else None
         )
@@ -307,8 +352,14 @@ class Refitter:
                             name, cfg, mode, t_fit, y_fit, rows, lv.threshold_c, prior, kw
                         )
                     if i == 0 and mode != "measured":
-                        self._learn_from(
-                            name, cls, made[key], prior, now, episode, t_fit, y_fit, lv, kw
+                        self.teacher.learn_from(
+                            name,
+                            cls,
+                            made[key],
+                            prior,
+                            now,
+                            episode,
+                            self._plain(t_fit, y_fit, lv.threshold_c, kw),
                         )
                 fcs.append(made[key])
         tally = (
@@ -375,7 +426,7 @@ class Refitter:
                 fc.t_last, fc.value_now = float(t.max()), float(y[np.argmax(t)])
             return fc
 
-    # -- defrost and priors ---------------------------------------------------------------------
+    # -- defrost and lessons ---------------------------------------------------------------------
     def _defrost(self, name: str, cfg: ItemConfig, now: float) -> dict[str, Any] | None:
         """The item's newest defrost from its stored signal (None: none lately), for the rules'
         defrost hold."""
@@ -383,106 +434,11 @@ class Refitter:
         rows = self.store.recent_readings(name + DEFROST_SUFFIX, since_ts=since, until_ts=now)
         return defrost_status(rows)
 
-    def _prior(self, cls: str) -> Prior:
-        """The class's prior (an empty one if it has none yet, or the store cannot say)."""
-        if cls not in self.priors:
-            try:
-                body = self.prior_store.get(cls)
-            except Exception:  # noqa: BLE001 - forecasts go on without a prior
-                log.exception("reading the prior of %s failed", cls)
-                return Prior()
-            self.priors[cls] = Prior() if body is None else Prior.from_dict(body)
-        return self.priors[cls]
-
-    def _prior_for(
-        self, name: str, cls: str, window_from: float | None, episode: Episode | None
-    ) -> Prior:
-        """The prior for the item's fit now: the class's, or the one it had before the item's
-        own lesson while the fit could still see the taught readings (module docstring)."""
-        held = self.held.get(name)
-        if held is not None:
-            before, until, ep_id = held
-            same = episode is not None and episode.closed_at is None and episode.id == ep_id
-            if same or window_from is None or window_from <= until:
-                return before
-            del self.held[name]
-        return self._prior(cls)
-
-    def _learn_from(
-        self,
-        name: str,
-        cls: str,
-        fc: Forecast,
-        prior: Prior | None,
-        now: float,
-        episode: Episode | None,
-        t: np.ndarray,
-        y: np.ndarray,
-        lv: Level,
-        kw: dict[str, Any],
-    ) -> None:
-        """Teach the class from this fit (per the module's rule)."""
-        ep_id = episode.id if episode is not None and episode.closed_at is None else None
-        held = self.held.get(name)
-        if ep_id is not None and held is not None and held[2] == ep_id:
-            return  # this episode has taught its class already
-        self._maybe_learn(
-            name,
-            cls,
-            fc,
-            prior,
-            now,
-            lambda: self._predict(t, y, lv.threshold_c, **kw),
-            ep_id,
-        )
-
-    def _maybe_learn(
-        self,
-        name: str,
-        cls: str,
-        fc: Forecast,
-        prior: Prior | None,
-        now: float,
-        refit_plain: Callable[[], Forecast],
-        episode_id: int | None = None,
-    ) -> None:
-        """Teach the class this stretch's k (and fitted ambient) per the module's rule."""
-        if not learnable(fc) or fc.regime_start is None or fc.t_last is None:
-            return
-        if name not in self.learned_until:
-            try:
-                self.learned_until[name] = self.prior_store.learned_until(name) or -math.inf
-            except Exception:  # noqa: BLE001
-                log.exception("reading the prior mark of %s failed", name)
-                return
-        if fc.regime_start <= self.learned_until[name]:
-            return
-        plain = fc if prior is None or not prior.n_episodes else refit_plain()
-        if not learnable(plain) or plain.t_last is None:
-            return
-        until = plain.t_last
-
-        def update(body: dict[str, Any] | None) -> dict[str, Any]:
-            return learn(None if body is None else Prior.from_dict(body), plain).to_dict()
-
-        before = prior if prior is not None else self._prior(cls)
-        try:
-            body = self.prior_store.learn(cls, name, until, now, update)
-        except Exception:  # noqa: BLE001 - the next episode teaches again
-            log.exception("storing the prior of %s failed", cls)
-            return
-        self.priors[cls] = Prior.from_dict(body)
-        self.learned_until[name] = until
-        # this item's own fits keep the prior as it was, while they can see what it taught
-        self.held[name] = (before, until, episode_id)
-        self.lessons += 1
-        log.info(
-            "prior %s learned from %s: %d episode(s), time constant about %.3g h",
-            cls,
-            name,
-            self.priors[cls].n_episodes,
-            1.0 / (plain.k_per_s or math.inf) / 3600.0,
-        )
+    def _plain(
+        self, t: np.ndarray, y: np.ndarray, threshold_c: float, kw: dict[str, Any]
+    ) -> Callable[[], Forecast]:
+        """The fit of this window without the prior, made only when a lesson needs it."""
+        return lambda: self._predict(t, y, threshold_c, **kw)
 
     def _deliver(self, r: Refitted) -> None:
         """Publish a stored forecast and hand it to the listeners."""
