@@ -57,12 +57,14 @@ from thermeta.storage.schema import (
 __all__ = [
     "BUSY_TIMEOUT_MS",
     "CHUNK",
+    "INSTANCE_BEAT",
     "PLUGIN_MODULES",
     "READING_COLUMNS",
     "SQLITE_INSERT_READINGS",
     "DeadLetter",
     "Store",
     "StoredForecast",
+    "instance_beat_key",
     "safe_url",
     "store_errors",
 ]
@@ -102,6 +104,15 @@ def _call_each(fns: list[Callable[[], Any]], what: str) -> None:
             fn()
         except Exception:  # noqa: BLE001 - one caller's callback does not stop the others
             log.exception("a callback %s failed", what)
+
+
+INSTANCE_BEAT = "daemon:"  # + a [cluster] instance: that daemon's own heartbeat in ``meta``
+
+
+def instance_beat_key(instance: str) -> str:
+    """The ``meta`` key of one daemon's heartbeat in a group (its body names the instance in
+    full; the key holds at most 100 characters)."""
+    return (INSTANCE_BEAT + instance)[:100]
 
 
 def safe_url(url: str) -> str:
@@ -546,6 +557,12 @@ class Store(ReadingQueries):
         with self.reading() as conn:
             text = conn.execute(select(meta.c.value).where(meta.c.key == key)).scalar()
         return default if text is None else json.loads(text)
+
+    def meta_with_prefix(self, prefix: str) -> dict[str, Any]:
+        """Every ``meta`` value whose key starts with ``prefix``, by key."""
+        q = select(meta.c.key, meta.c.value).where(meta.c.key.startswith(prefix, autoescape=True))
+        with self.reading() as conn:
+            return {k: json.loads(v) for k, v in conn.execute(q) if v is not None}
 
     def last_refit_at(self) -> float | None:
         value = self.get_meta("last_refit_at")

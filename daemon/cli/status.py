@@ -99,7 +99,11 @@ def collect(cfg: Any, store: Any, now: float) -> dict[str, Any]:
                 }
             )
     last_refit = store.last_refit_at()
+    group = getattr(getattr(cfg, "cluster", None), "group", None)
     return {
+        "cluster": None
+        if not group
+        else {"group": group, "instances": instances(store, group, now)},
         "items": counts["items"],
         "readings": counts["readings"],
         "dead_letters": counts["dead_letters"],
@@ -114,6 +118,68 @@ def collect(cfg: Any, store: Any, now: float) -> dict[str, Any]:
         },
         "per_item": sorted(per_item, key=lambda r: r["item"]),
     }
+
+
+def instances(store: Any, group: str, now: float) -> list[dict[str, Any]]:
+    """Each daemon of the group that ever wrote its own heartbeat (``[cluster] instance``): its
+    process, whether it runs now (a heartbeat within the last 20 s), running ones first."""
+    from thermeta.daemon.views.board import service_running
+    from thermeta.predictors.result import rfc3339
+    from thermeta.storage.store import INSTANCE_BEAT
+
+    out = [
+        {
+            "instance": b.get("instance"),
+            "running": service_running(b, now),
+            "state": b.get("state"),
+            "heartbeat_at": rfc3339(b.get("heartbeat_at")),
+            "pid": b.get("pid"),
+            "host": b.get("host"),
+            "connected": b.get("connected"),
+            "readings_per_s": b.get("readings_per_s"),
+        }
+        for b in store.meta_with_prefix(INSTANCE_BEAT).values()
+        if isinstance(b, dict) and b.get("group") == group and b.get("instance")
+    ]
+    return sorted(out, key=lambda d: (not d["running"], str(d["instance"])))
+
+
+def _head_lines(info: dict[str, Any], now: float) -> list[str]:
+    """The daemon (or, in a [cluster], each daemon of the group running now)."""
+    from thermeta.daemon.timefmt import clock, parse_time
+
+    def process(d: dict[str, Any]) -> str:
+        return (
+            f"pid {d['pid']}{' on ' + d['host'] if d.get('host') else ''}, broker "
+            f"{'connected' if d['connected'] else 'NOT connected'}, "
+            f"{d['readings_per_s'] or 0:.1f} readings/s"
+        )
+
+    def seen(beat: str | None) -> str:
+        return clock(parse_time(beat), now) if beat else "never"
+
+    cluster = info.get("cluster")
+    if cluster:
+        alive = [d for d in cluster["instances"] if d["running"]]
+        gone = [d for d in cluster["instances"] if not d["running"]]
+        lines = [f"cluster {cluster['group']}: {len(alive)} daemon(s) running"]
+        lines += [f"  {d['instance']}: {process(d)}" for d in alive]
+        if gone:
+            lines.append(
+                "  not running: "
+                + ", ".join(
+                    f"{d['instance']} (last heartbeat {seen(d['heartbeat_at'])})" for d in gone
+                )
+            )
+        return lines
+    d = info["daemon"]
+    if d["running"]:
+        return [
+            f"daemon running (pid {d['pid']}), broker "
+            f"{'connected' if d['connected'] else 'NOT connected'}, "
+            f"{d['readings_per_s'] or 0:.1f} readings/s"
+        ]
+    return [f"daemon not running (last heartbeat {seen(d['heartbeat_at'])})"]
 
 
 def _eta_text(r: dict[str, Any], now: float) -> str:
@@ -162,20 +228,10 @@ def run(args: argparse.Namespace) -> int:
     if args.json:
         print(json.dumps(info))
         return 0
-    d = info["daemon"]
-    if d["running"]:
-        head = (
-            f"daemon running (pid {d['pid']}), broker "
-            f"{'connected' if d['connected'] else 'NOT connected'}, "
-            f"{d['readings_per_s'] or 0:.1f} readings/s"
-        )
-    else:
-        beat = d["heartbeat_at"]
-        seen = clock(parse_time(beat), now) if beat else "never"
-        head = f"daemon not running (last heartbeat {seen})"
     last = info["last_refit_at"]
     ago = f"{clock(parse_time(last), now)} ({duration(now - parse_time(last))} ago)" if last else ""
-    print(head)
+    for line in _head_lines(info, now):
+        print(line)
     print(
         f"items {info['items']}, readings {info['readings']}, dead letters {info['dead_letters']}, "
         f"last refit {ago or 'never'}"
