@@ -13,26 +13,35 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--json", action="store_true", help="one JSON object on stdout")
 
 
-def period_figures(cfg: Any, store: Any, name: str, topic: str | None, now: float) -> Any:
-    """The item's rolling period from the store: time and degree-minutes beyond each limit, and
-    the mean kinetic temperature (None when its config is not known)."""
+def period_figures(cfg: Any, store: Any, topics: dict[str, str | None], now: float) -> dict:
+    """Each item's rolling period from the store: time and degree-minutes beyond each limit, and
+    the mean kinetic temperature, by item (those whose config is known); the readings of all in
+    a few queries (a site's status reads thousands of items)."""
     from thermeta.daemon.ingest.topics import Router
     from thermeta.daemon.levels.spec import levels_of
     from thermeta.daemon.levels.tally import new_tally
     from thermeta.storage.episodes import EpisodeStore
 
-    item = Router(cfg.items).item_for(name, topic)
-    if item is None:
-        return None
-    levels = levels_of(item)
-    recorded = EpisodeStore(store).sides(name) if store.has_table("level_sides") else {}
-    sides = {lv.name: (lv.side if lv.side != "auto" else recorded.get(lv.name)) for lv in levels}
-    tl = new_tally(levels, sides, now - item.period_s)  # type: ignore[arg-type]
-    rows = store.recent_readings(name, since_ts=now - item.period_s, until_ts=now)
-    tl.add([r[0] for r in rows], [r[1] for r in rows])
-    out = tl.to_json(item.unit)
-    out.pop("reached", None)
-    out["period_s"] = item.period_s
+    router = Router(cfg.items)
+    found = {name: router.item_for(name, topic) for name, topic in topics.items()}
+    known = {name: item for name, item in found.items() if item is not None}
+    has_sides = store.has_table("level_sides")
+    recorded = EpisodeStore(store).sides_of(list(known)) if has_sides else {}
+    ids = store.item_ids(list(known))
+    windows = store.windows([(ids[n], now - it.period_s) for n, it in known.items() if n in ids])
+    out = {}
+    for name, item in known.items():
+        levels = levels_of(item)
+        mine = recorded.get(name, {})
+        sides = {lv.name: (lv.side if lv.side != "auto" else mine.get(lv.name)) for lv in levels}
+        tl = new_tally(levels, sides, now - item.period_s)  # type: ignore[arg-type]
+        t, y = windows.get(ids.get(name, -1), ([], []))
+        upto = sum(1 for ts in t if ts <= now)  # oldest first
+        tl.add(list(t[:upto]), list(y[:upto]))
+        fig = tl.to_json(item.unit)
+        fig.pop("reached", None)
+        fig["period_s"] = item.period_s
+        out[name] = fig
     return out
 
 
@@ -44,6 +53,7 @@ def collect(cfg: Any, store: Any, now: float) -> dict[str, Any]:
     daemon = store.get_meta("daemon") or {}
     running = service_running(daemon, now)
     topics = {r["name"]: r.get("topic") for r in store.list_items("load")}
+    periods = period_figures(cfg, store, topics, now)
     per_item = []
     seen = set()
     for f in store.latest_forecasts():
@@ -70,7 +80,7 @@ def collect(cfg: Any, store: Any, now: float) -> dict[str, Any]:
                 "reason": d.get("reason"),
                 "levels": d.get("levels") or [],
                 "episode": d.get("episode"),
-                "period": period_figures(cfg, store, f.item, topics.get(f.item), now),
+                "period": periods.get(f.item),
             }
         )
     for it in cfg.items:
