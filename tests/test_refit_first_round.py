@@ -135,3 +135,42 @@ def test_sides_decided_in_a_rolled_back_batch_are_stored_with_the_next(tmp_path)
     assert EpisodeStore(store).sides(it.name) == {"limit": "below"}
     assert not keeper.unrecorded
     store.close()
+
+
+def test_an_alert_whose_batch_is_rolled_back_is_raised_again(tmp_path):
+    """The alert rules write their state (and any alert with its outbox rows) inside the chunk's
+    transaction; when that is rolled back they read their state back, so the next forecast
+    raises the alert again and it is stored once, not lost."""
+    from test_alerts_rules import T0_EPOCH, THR, fc_at
+    from test_outbox import write_config
+    from thermeta.daemon.config import load_config
+    from thermeta.daemon.refit.common import ForecastUpdate
+    from thermeta.storage.alerts import AlertStore
+
+    cfg = load_config(write_config(tmp_path, ""))
+    item = cfg.items[0]
+    store = Store(cfg.storage.url)
+    store.create_all()
+    clock = ManualClock(T0_EPOCH)
+    svc = AlertService(cfg, store, clock, attach_png=False)
+    svc.start()
+
+    def at(t_s, value, state):
+        clock.set(T0_EPOCH + t_s)
+        svc.on_forecast(ForecastUpdate(item, state, fc_at(0, value=value, state=state), None))
+
+    def events():
+        return [(e["body"]["event"], e["body"]["reminder"]) for e in AlertStore(store).events()]
+
+    try:
+        at(0, THR - 2, "steady")
+        with pytest.raises(RuntimeError), store.batch():
+            at(60, THR + 1, "crossed")
+            assert events() == [("crossed", False)]  # inside the batch: there
+            raise RuntimeError("the commit failed")
+        assert events() == []
+        at(120, THR + 1, "crossed")
+        assert events() == [("crossed", False)]
+    finally:
+        svc.stop()
+        store.close()
