@@ -34,7 +34,7 @@ from thermeta.daemon.scheduling import StepWatch
 from thermeta.daemon.states import ItemState
 from thermeta.daemon.timefmt import use_zone
 from thermeta.storage.errors import ThermetaError
-from thermeta.storage.store import Store, safe_url
+from thermeta.storage.store import Store, instance_beat_key, safe_url
 
 RATE_TAU_S = 60.0  # the readings rate's averaging time
 log = logging.getLogger("thermeta.service")
@@ -358,8 +358,13 @@ class Service:
             host=socket.gethostname(),
             started_at=self.started_at,
         )
+        if self.cluster is not None:
+            body.update(group=self.cluster.group, instance=self.cluster.instance)
         try:
-            self.store.set_meta("daemon", body)
+            with self.store.batch():  # one commit for both
+                self.store.set_meta("daemon", body)  # the site's newest (the dashboard's)
+                if self.cluster is not None:  # each daemon of a group its own: status lists them
+                    self.store.set_meta(instance_beat_key(self.cluster.instance), body)
         except Exception:  # noqa: BLE001 - the heartbeat is best effort
             log.exception("could not write the heartbeat")
         if state == "running" and self.link is not None:

@@ -13,6 +13,7 @@ At most one episode of an item is open (``closed_at`` null): opening one closes 
 from __future__ import annotations
 
 import json
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -25,6 +26,8 @@ from sqlalchemy import (
     String,
     Table,
     Text,
+    and_,
+    func,
     insert,
     select,
     update,
@@ -225,11 +228,75 @@ class EpisodeStore:
         with self.store.reading() as conn:
             return [_episode(r) for r in conn.execute(q)]
 
+    def newest_of(self, items: Sequence[str]) -> dict[str, Episode]:
+        """Each item's newest episode by its start, open or closed (``of_item(item)[-1]``), for
+        those of ``items`` that have one: one query per 500 items."""
+        names = list(dict.fromkeys(items))
+        out: dict[str, Episode] = {}
+        for i in range(0, len(names), 500):
+            newest = (
+                select(episodes.c.item, func.max(episodes.c.opened_at).label("at"))
+                .where(episodes.c.item.in_(names[i : i + 500]))
+                .group_by(episodes.c.item)
+                .subquery()
+            )
+            q = (
+                select(episodes)
+                .join(
+                    newest,
+                    and_(episodes.c.item == newest.c.item, episodes.c.opened_at == newest.c.at),
+                )
+                .order_by(episodes.c.id)
+            )
+            with self.store.reading() as conn:
+                out.update({e.item: e for e in map(_episode, conn.execute(q))})
+        return out
+
     # -- sides ---------------------------------------------------------------------------------
     def sides(self, item: str) -> dict[str, str]:
         with self.store.reading() as conn:
             q = select(level_sides.c.level, level_sides.c.side).where(level_sides.c.item == item)
             return {lv: side for lv, side in conn.execute(q)}
+
+    def sides_of(self, items: Sequence[str]) -> dict[str, dict[str, str]]:
+        """:meth:`sides` of many items (every one of ``items`` in the answer): one query per
+        500 items."""
+        names = list(dict.fromkeys(items))
+        out: dict[str, dict[str, str]] = {n: {} for n in names}
+        for i in range(0, len(names), 500):
+            q = select(level_sides.c.item, level_sides.c.level, level_sides.c.side).where(
+                level_sides.c.item.in_(names[i : i + 500])
+            )
+            with self.store.reading() as conn:
+                for item, lv, side in conn.execute(q):
+                    out[item][lv] = side
+        return out
+
+    def decide_sides(
+        self, rows: Sequence[tuple[str, str, str, float, float | None]]
+    ) -> dict[tuple[str, str], str]:
+        """:meth:`decide_side` of many (item, level, side, at, value) in one transaction (two
+        statements per 500): the side recorded for each (item, level) afterwards."""
+        out: dict[tuple[str, str], str] = {}
+        ignore = self.store._insert_ignore(level_sides)
+        if ignore is None:  # neither SQLite nor PostgreSQL: one by one
+            for item, level, side, at, value in rows:
+                out[(item, level)] = self.decide_side(item, level, side, at, value)
+            return out
+        for i in range(0, len(rows), 500):
+            part = rows[i : i + 500]
+            values = [
+                {"item": it, "level": lv, "side": sd, "decided_at": at, "value": v}
+                for it, lv, sd, at, v in part
+            ]
+            with self.store.transaction() as conn:
+                conn.execute(ignore, values)
+                q = select(level_sides.c.item, level_sides.c.level, level_sides.c.side).where(
+                    level_sides.c.item.in_(list({r[0] for r in part}))
+                )
+                wanted = {(r[0], r[1]) for r in part}
+                out.update({(it, lv): sd for it, lv, sd in conn.execute(q) if (it, lv) in wanted})
+        return out
 
     def decide_side(self, item: str, level: str, side: str, at: float, value: float | None) -> str:
         """Record ``side`` for the level unless one is recorded already; the recorded one."""

@@ -7,13 +7,14 @@
 
 The store knows nothing of the statistics: :meth:`PriorStore.learn` reads the class's row, hands
 it to the caller's update function and writes the result, the item's mark with it, in ONE
-transaction (two items of one class refitted by different processes cannot lose an update).
+transaction (two items of one class refitted by different processes cannot lose an update); in
+a :meth:`~thermeta.storage.store.Store.batch` that transaction is the batch's.
 """
 
 from __future__ import annotations
 
 import json
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from typing import Any
 
 from sqlalchemy import Column, Double, Integer, String, Table, Text, insert, select, update
@@ -58,6 +59,18 @@ class PriorStore:
                 c: json.loads(b)
                 for c, b in conn.execute(select(priors.c.prior_class, priors.c.body))
             }
+
+    def get_many(self, classes: Sequence[str]) -> dict[str, dict[str, Any]]:
+        """:meth:`get` of many classes (those that have a prior): one query per 500."""
+        names = list(dict.fromkeys(classes))
+        out: dict[str, dict[str, Any]] = {}
+        for i in range(0, len(names), 500):
+            q = select(priors.c.prior_class, priors.c.body).where(
+                priors.c.prior_class.in_(names[i : i + 500])
+            )
+            with self.store.reading() as conn:
+                out.update({c: json.loads(b) for c, b in conn.execute(q)})
+        return out
 
     def learned_until(self, item: str) -> float | None:
         with self.store.reading() as conn:

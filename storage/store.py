@@ -10,11 +10,13 @@ from __future__ import annotations
 
 import importlib
 import json
+import logging
 import sqlite3
+import threading
 import time
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 from sqlalchemy import (
@@ -55,15 +57,19 @@ from thermeta.storage.schema import (
 __all__ = [
     "BUSY_TIMEOUT_MS",
     "CHUNK",
+    "INSTANCE_BEAT",
     "PLUGIN_MODULES",
     "READING_COLUMNS",
     "SQLITE_INSERT_READINGS",
     "DeadLetter",
     "Store",
     "StoredForecast",
+    "instance_beat_key",
     "safe_url",
     "store_errors",
 ]
+
+log = logging.getLogger("thermeta.store")
 
 BUSY_TIMEOUT_MS = 15000
 PLUGIN_MODULES = (
@@ -81,6 +87,32 @@ class StoredForecast:
     state: str
     made_at: float
     forecast: dict[str, Any]
+
+
+@dataclass
+class _Batch:
+    """A :meth:`Store.batch` under way: its connection and what to call after it."""
+
+    conn: Any = None
+    after: list[Callable[[], Any]] = field(default_factory=list)
+    undo: list[Callable[[], Any]] = field(default_factory=list)
+
+
+def _call_each(fns: list[Callable[[], Any]], what: str) -> None:
+    for fn in fns:
+        try:
+            fn()
+        except Exception:  # noqa: BLE001 - one caller's callback does not stop the others
+            log.exception("a callback %s failed", what)
+
+
+INSTANCE_BEAT = "daemon:"  # + a [cluster] instance: that daemon's own heartbeat in ``meta``
+
+
+def instance_beat_key(instance: str) -> str:
+    """The ``meta`` key of one daemon's heartbeat in a group (its body names the instance in
+    full; the key holds at most 100 characters)."""
+    return (INSTANCE_BEAT + instance)[:100]
 
 
 def safe_url(url: str) -> str:
@@ -147,6 +179,7 @@ class Store(ReadingQueries):
         self._item_ids: dict[str, int] = {}
         self._kept: dict[int, Said | None] = {}  # each item's newest forecast in the history
         self._has_current: bool | None = None  # whether current_forecasts exists (old stores)
+        self._local = threading.local()  # this thread's batch (``batch()``), if one is open
 
     # -- life cycle ---------------------------------------------------------------------------
     def create_all(self) -> None:
@@ -185,7 +218,14 @@ class Store(ReadingQueries):
     @contextmanager
     def transaction(self) -> Iterator[Connection]:
         """A connection inside one write transaction, committed when the block ends (SQLite: the
-        write lock taken up front); database errors come out as :class:`StoreError`."""
+        write lock taken up front); database errors come out as :class:`StoreError`.  Inside
+        :meth:`batch` (on the same thread) the block is a savepoint of the batch's transaction:
+        undone alone if it raises, committed with the batch."""
+        joined = self._batch()
+        if joined is not None:
+            with store_errors("write failed"), joined.conn.begin_nested():
+                yield joined.conn
+            return
         with store_errors("write failed"):
             conn = self.engine.connect().execution_options(sqlite_immediate=True)
             with conn, conn.begin():
@@ -193,9 +233,60 @@ class Store(ReadingQueries):
 
     @contextmanager
     def reading(self) -> Iterator[Connection]:
-        """A connection for reads; database errors come out as :class:`StoreError`."""
+        """A connection for reads; database errors come out as :class:`StoreError`.  Inside
+        :meth:`batch` it is the batch's own (its writes so far are seen)."""
+        joined = self._batch()
+        if joined is not None:
+            with store_errors("read failed"):
+                yield joined.conn
+            return
         with store_errors("read failed"), self.engine.connect() as conn:
             yield conn
+
+    @contextmanager
+    def batch(self) -> Iterator[None]:
+        """One write transaction for many small writes: each :meth:`transaction` this thread
+        opens inside the block joins it as a savepoint, and the whole commits once (one fsync
+        on SQLite, where a transaction each costs one).  A refit chunk's forecasts, the levels'
+        sides and prior lessons decided for it and the alert rules' states go in one.
+
+        Callbacks given to :meth:`after_commit` run once the batch committed; if it does not
+        (the block raised, or the commit failed), those given to :meth:`on_rollback` run and
+        the error is raised.  A batch inside a batch is part of the outer one."""
+        if self._batch() is not None:
+            yield
+            return
+        joined = _Batch()
+        try:
+            with self.transaction() as conn:
+                joined.conn = conn
+                self._local.batch = joined
+                try:
+                    yield
+                finally:
+                    self._local.batch = None
+        except BaseException:
+            _call_each(joined.undo, "undoing a rolled back batch")
+            raise
+        _call_each(joined.after, "after a batch's commit")
+
+    def after_commit(self, fn: Callable[[], Any]) -> None:
+        """Call ``fn`` once what was written so far is committed: at once outside a batch."""
+        joined = self._batch()
+        if joined is None:
+            fn()
+        else:
+            joined.after.append(fn)
+
+    def on_rollback(self, fn: Callable[[], Any]) -> None:
+        """Call ``fn`` if the batch under way is rolled back after all (outside a batch the
+        caller's transaction has committed already: nothing to do)."""
+        joined = self._batch()
+        if joined is not None:
+            joined.undo.append(fn)
+
+    def _batch(self) -> _Batch | None:
+        return getattr(self._local, "batch", None)
 
     def _insert_ignore(self, table: Any) -> Any:
         if self.dialect == "sqlite":
@@ -293,6 +384,15 @@ class Store(ReadingQueries):
             self._item_ids[name] = int(found)
         return None if found is None else int(found)
 
+    def item_ids(self, names: Sequence[str]) -> dict[str, int]:
+        """The ids of those of ``names`` that are items (one query per 500 names)."""
+        want = [n for n in dict.fromkeys(names) if n not in self._item_ids]
+        for i in range(0, len(want), 500):
+            q = select(items.c.name, items.c.id).where(items.c.name.in_(want[i : i + 500]))
+            with self.reading() as conn:
+                self._item_ids.update({str(n): int(v) for n, v in conn.execute(q)})
+        return {n: self._item_ids[n] for n in names if n in self._item_ids}
+
     def list_items(self, kind: str | None = "load") -> list[dict[str, Any]]:
         q = select(items).order_by(items.c.name)
         if kind is not None:
@@ -346,7 +446,7 @@ class Store(ReadingQueries):
                 .values(state=bindparam("st"), last_reading_at=bindparam("last")),
                 [{"iid": i, "st": s, "last": last} for i, _, s, _, last in rows],
             )
-        self._kept.update(kept)
+        self.after_commit(lambda: self._kept.update(kept))
         return len(history)
 
     def _upsert_current(self, conn: Connection, rows: list[dict[str, Any]]) -> None:
@@ -457,6 +557,12 @@ class Store(ReadingQueries):
         with self.reading() as conn:
             text = conn.execute(select(meta.c.value).where(meta.c.key == key)).scalar()
         return default if text is None else json.loads(text)
+
+    def meta_with_prefix(self, prefix: str) -> dict[str, Any]:
+        """Every ``meta`` value whose key starts with ``prefix``, by key."""
+        q = select(meta.c.key, meta.c.value).where(meta.c.key.startswith(prefix, autoescape=True))
+        with self.reading() as conn:
+            return {k: json.loads(v) for k, v in conn.execute(q) if v is not None}
 
     def last_refit_at(self) -> float | None:
         value = self.get_meta("last_refit_at")

@@ -10,22 +10,35 @@ its limit, so alerts are raised on every daemon, some by the daemon that took an
 from __future__ import annotations
 
 import json
+import subprocess
+import sys
 import time
 from collections import Counter, defaultdict
+from concurrent.futures import ThreadPoolExecutor
 
 import pytest
 from sqlalchemy import create_engine, text
 from test_hooks import Receiver
+from thermeta.daemon.cli.status import _head_lines, instances
 from thermeta.daemon.cluster.scenario import ITEMS, Stream
 from thermeta.daemon.config import load_config
 from thermeta.daemon.ingest.mqtt import read_retained
 from thermeta.daemon.testing import RunningDaemon, wait_for, write_config
 from thermeta.storage.errors import ConfigError
+from thermeta.storage.store import Store, instance_beat_key
 
 N_ITEMS = 1000
 HISTORY = 12  # rounds of readings whose time stamps lie in the past, sent at once
 REFIT_S = 12.0
 HOOK = '[cluster]\ngroup = "yard"\n\n[[hook]]\nkind = "webhook"\nurl = "{url}"\n'
+
+
+NODES = [f"thermeta-node-{k}" for k in range(3)]
+
+
+def _running(store: Store) -> list[str]:
+    """The group's daemons whose own heartbeat says they run now (what status lists)."""
+    return [d["instance"] for d in instances(store, "yard", time.time()) if d["running"]]
 
 
 def _q(url: str, sql: str) -> list:
@@ -47,6 +60,7 @@ def test_three_daemons_one_killed_lose_nothing_and_hand_over_within_two_rounds(
     daemons within one refit_every (the round log, checked against the lease terms); the
     daemon's retained status names its group and items held, and turns offline when it dies."""
     receiver = Receiver()
+    store = Store(pg_schema_url)
     daemons, cfgs = [], []
     for k in range(3):
         work = tmp_path / f"d{k}"
@@ -80,12 +94,18 @@ def test_three_daemons_one_killed_lose_nothing_and_hand_over_within_two_rounds(
             120,
             daemons[0].log,
         )
-        time.sleep(REFIT_S)
         victim = daemons[2]
-        # each daemon's own retained status names its group, instance and items held
-        status = read_retained(cfgs[2].broker, "thermeta/status/thermeta-node-2")
-        assert status and status["state"] == "online" and status["group"] == "yard"
-        assert status["instance"] == "thermeta-node-2" and status["items_held"] > 0
+
+        def retained() -> dict:
+            return read_retained(cfgs[2].broker, "thermeta/status/thermeta-node-2") or {}
+
+        # each daemon's own retained status names its group, instance and items held, and each
+        # writes its own heartbeat: all three are listed as running
+        wait_for(lambda: retained().get("items_held", 0) > 0, 3 * REFIT_S, victim.log)
+        status = retained()
+        assert status["state"] == "online" and status["group"] == "yard"
+        assert status["instance"] == "thermeta-node-2"
+        wait_for(lambda: _running(store) == NODES, 20, victim.log)
         victim.kill9()
         killed_at = time.time()
         theirs = {
@@ -130,6 +150,10 @@ def test_three_daemons_one_killed_lose_nothing_and_hand_over_within_two_rounds(
         )
         stream.stop.set()
         stream.join(60)
+        # its heartbeat stops: the other two are listed as running, the killed one is not
+        wait_for(lambda: _running(store) == NODES[:2], 30, daemons[0].log)
+        assert [d["instance"] for d in instances(store, "yard", time.time())] == NODES
+        restarted_at = time.time()
         victim.start()  # its broker session holds the share of readings sent to it meanwhile
         want = N_ITEMS * stream.rounds
         wait_for(
@@ -144,11 +168,38 @@ def test_three_daemons_one_killed_lose_nothing_and_hand_over_within_two_rounds(
             30,
             daemons[0].log,
         )
-        time.sleep(REFIT_S)
+        # the restarted daemon is back in the group: it holds items again and refits them
+        wait_for(
+            lambda: (
+                _q(
+                    pg_schema_url,
+                    "select count(*) from cluster_refits "
+                    f"where instance = 'thermeta-node-2' and done_at > {restarted_at}",
+                )[0][0]
+                > 0
+            ),
+            3 * REFIT_S,
+            victim.log,
+        )
+        shown = subprocess.run(
+            [sys.executable, "-m", "thermeta.daemon.cli", "status"]
+            + ["--config", str(daemons[0].config), "--json"],
+            capture_output=True,
+            text=True,
+            timeout=120,
+        )
+        assert shown.returncode == 0, shown.stderr
+        listed = json.loads(shown.stdout)["cluster"]
+        assert listed["group"] == "yard"
+        assert [(d["instance"], d["running"]) for d in listed["instances"]] == [
+            (n, True) for n in NODES
+        ]
+        assert len({d["pid"] for d in listed["instances"]}) == 3
     finally:
-        for d in daemons:
-            d.stop()
+        with ThreadPoolExecutor(len(daemons)) as pool:  # each stops on its own, at once
+            list(pool.map(lambda d: d.stop(), daemons))
         receiver.close()
+        store.close()
 
     # every reading exactly once
     n, distinct = _q(pg_schema_url, "select count(*), count(distinct (item_id, ts)) from readings")[
@@ -202,3 +253,35 @@ def test_cluster_needs_a_postgresql_store(tmp_path):
         f"{path}:5: cluster.group: needs a PostgreSQL store: [storage] url is sqlite "
         "(e.g. postgresql+psycopg://user@host/db)"
     )
+
+
+def test_status_lists_each_daemon_of_a_group_by_its_own_heartbeat(tmp_path):
+    """Each daemon of a group beats under its own key: ``thermeta status`` lists those running
+    now by instance (another group's and a lone daemon's beats are not theirs), and names the
+    ones whose heartbeat stopped."""
+    store = Store(f"sqlite:///{tmp_path / 's.db'}")
+    store.create_all()
+    now = time.time()
+
+    def beat(instance: str, group: str, age_s: float, pid: int) -> None:
+        body = {"state": "running", "pid": pid, "host": "h", "heartbeat_at": now - age_s}
+        body.update(group=group, instance=instance, connected=True, readings_per_s=2.0)
+        store.set_meta(instance_beat_key(instance), body)
+
+    beat("north-1", "yard", 3.0, 11)
+    beat("north-2", "yard", 60.0, 12)  # stopped beating a minute ago
+    beat("north-0", "yard", 1.0, 10)
+    beat("south-1", "dock", 1.0, 21)  # another group's
+    store.set_meta("daemon", {"state": "running", "pid": 10, "heartbeat_at": now - 1.0})
+    got = instances(store, "yard", now)
+    store.close()
+    assert [(d["instance"], d["running"], d["pid"]) for d in got] == [
+        ("north-0", True, 10),
+        ("north-1", True, 11),
+        ("north-2", False, 12),
+    ]
+    lines = _head_lines({"cluster": {"group": "yard", "instances": got}}, now)
+    assert lines[0] == "cluster yard: 2 daemon(s) running"
+    assert lines[1].startswith("  north-0: pid 10 on h, broker connected, 2.0 readings/s")
+    assert lines[2].startswith("  north-1: pid 11")
+    assert lines[3].startswith("  not running: north-2 (last heartbeat ")

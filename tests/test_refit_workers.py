@@ -42,6 +42,24 @@ def _refitter(cfg, store, act, now, workers: int, got: dict):
     return rf
 
 
+@pytest.fixture
+def worker_round(tmp_path):
+    """A refitter with one worker process over nine warming loads on a real SQLite store, and
+    the forecasts it publishes (by item); its worker and store closed afterwards."""
+    from test_daemon import seeded_store
+
+    text, series = _items(9)
+    cfg, store, act = seeded_store(tmp_path, text, series)
+    now = max(float(t.max()) for t, _ in series.values()) + 30.0
+    got: dict[str, dict] = {}
+    rf = _refitter(cfg, store, act, now, 1, got)
+    try:
+        yield rf, got
+    finally:
+        rf.batch.close()
+        store.close()
+
+
 def test_a_round_fitted_in_worker_processes_publishes_what_the_in_process_one_does(tmp_path):
     from test_daemon import seeded_store
 
@@ -76,84 +94,64 @@ def test_a_round_fitted_in_worker_processes_publishes_what_the_in_process_one_do
     assert c1["item"] >= 1 and c1["item_in_worker"] == c1["item"] and c0["item_in_worker"] == 0
 
 
-def test_a_killed_worker_costs_neither_the_round_nor_the_service(tmp_path):
+def test_a_killed_worker_costs_neither_the_round_nor_the_service(worker_round):
     """SIGKILL to the worker between rounds: the next round publishes every item (the lost
     chunk the per-item way), counts the crash, and its later chunks get a fresh pool; the round
     after that goes the batch way again."""
-    from test_daemon import seeded_store
-
-    text, series = _items(9)
-    cfg, store, act = seeded_store(tmp_path, text, series)
-    now = max(float(t.max()) for t, _ in series.values()) + 30.0
-    got: dict[str, dict] = {}
-    rf = _refitter(cfg, store, act, now, 1, got)
-    try:
-        assert len(rf.run_once(force=True)) == 9
-        pool = rf.batch.pool
-        assert pool is not None
-        pids = pool.pids()
-        assert pids
-        for pid in pids:
-            os.kill(pid, signal.SIGKILL)
-        deadline = time.monotonic() + 10
-        while pool.pids() and time.monotonic() < deadline:
-            time.sleep(0.05)
-        got.clear()
-        before = rf.batch.counts.copy()
-        states = rf.run_once(force=True)
-        assert len(states) == 9 and set(got) == set(states)  # every item published
-        assert pool.crashes >= 1 and pool.generation >= 2  # counted, a fresh pool started
-        lost = rf.batch.counts["worker_lost"] - before["worker_lost"]
-        assert 1 <= lost <= 3  # the one chunk the dead worker held
-        gen = pool.generation
-        batched = rf.batch.counts["batch"]
-        assert len(rf.run_once(force=True)) == 9
-        assert rf.batch.counts["batch"] - batched >= 7 and pool.generation == gen
-    finally:
-        rf.batch.close()
-    store.close()
+    rf, got = worker_round
+    assert len(rf.run_once(force=True)) == 9
+    pool = rf.batch.pool
+    assert pool is not None
+    pids = pool.pids()
+    assert pids
+    for pid in pids:
+        os.kill(pid, signal.SIGKILL)
+    deadline = time.monotonic() + 10
+    while pool.pids() and time.monotonic() < deadline:
+        time.sleep(0.05)
+    got.clear()
+    before = rf.batch.counts.copy()
+    states = rf.run_once(force=True)
+    assert len(states) == 9 and set(got) == set(states)  # every item published
+    assert pool.crashes >= 1 and pool.generation >= 2  # counted, a fresh pool started
+    lost = rf.batch.counts["worker_lost"] - before["worker_lost"]
+    assert 1 <= lost <= 3  # the one chunk the dead worker held
+    gen = pool.generation
+    batched = rf.batch.counts["batch"]
+    assert len(rf.run_once(force=True)) == 9
+    assert rf.batch.counts["batch"] - batched >= 7 and pool.generation == gen
 
 
-def test_a_hung_worker_costs_its_chunk_the_batch_not_the_round(tmp_path):
+def test_a_hung_worker_costs_its_chunk_the_batch_not_the_round(worker_round):
     """A worker stopped (SIGSTOP: alive, silent) while the round waits on it: after the pool's
     timeout its chunk goes the per-item way, the stopped process is ended, every item is
     published, and the next round has a fresh worker."""
-    from test_daemon import seeded_store
-
-    text, series = _items(9)
-    cfg, store, act = seeded_store(tmp_path, text, series)
-    now = max(float(t.max()) for t, _ in series.values()) + 30.0
-    got: dict[str, dict] = {}
-    rf = _refitter(cfg, store, act, now, 1, got)
-    try:
-        assert len(rf.run_once(force=True)) == 9
-        pool = rf.batch.pool
-        assert pool is not None
-        pool.timeout_s = 1.0
-        (pid,) = pool.pids()
-        os.kill(pid, signal.SIGSTOP)
-        got.clear()
-        t0 = time.monotonic()
-        states = rf.run_once(force=True)
-        assert len(states) == 9 and set(got) == set(states)
-        assert time.monotonic() - t0 < 30.0  # not stalled on the silent worker
-        assert pool.timeouts >= 1 and rf.batch.counts["worker_lost"] >= 1
-        deadline = time.monotonic() + 10
-        while time.monotonic() < deadline:
-            try:
-                os.kill(pid, 0)
-                with open(f"/proc/{pid}/stat") as fh:
-                    if fh.read().rsplit(")", 1)[1].split()[0] == "Z":
-                        break  # ended, not yet reaped
-            except (ProcessLookupError, FileNotFoundError):
-                break
-            time.sleep(0.05)
-        else:
-            raise AssertionError("the hung worker was not ended")
-        assert pid not in pool.pids()
-    finally:
-        rf.batch.close()
-    store.close()
+    rf, got = worker_round
+    assert len(rf.run_once(force=True)) == 9
+    pool = rf.batch.pool
+    assert pool is not None
+    pool.timeout_s = 1.0
+    (pid,) = pool.pids()
+    os.kill(pid, signal.SIGSTOP)
+    got.clear()
+    t0 = time.monotonic()
+    states = rf.run_once(force=True)
+    assert len(states) == 9 and set(got) == set(states)
+    assert time.monotonic() - t0 < 30.0  # not stalled on the silent worker
+    assert pool.timeouts >= 1 and rf.batch.counts["worker_lost"] >= 1
+    deadline = time.monotonic() + 10
+    while time.monotonic() < deadline:
+        try:
+            os.kill(pid, 0)
+            with open(f"/proc/{pid}/stat") as fh:
+                if fh.read().rsplit(")", 1)[1].split()[0] == "Z":
+                    break  # ended, not yet reaped
+        except (ProcessLookupError, FileNotFoundError):
+            break
+        time.sleep(0.05)
+    else:
+        raise AssertionError("the hung worker was not ended")
+    assert pid not in pool.pids()
 
 
 def test_an_item_the_batch_raises_on_is_flagged_and_its_chunk_fitted():

@@ -340,3 +340,46 @@ def test_many_items_windows_in_one_read(store):
     for iid, since in ((a, 150.0), (b, None)):
         t, v = got[iid]
         assert list(zip(t, v)) == store.recent_readings(iid, since_ts=since)
+
+
+def test_a_batch_commits_once_and_undoes_a_failed_write_alone(store):
+    """Inside Store.batch, each transaction() is a savepoint of one transaction: its writes are
+    read back inside the batch but by no other connection until the batch commits; a write that
+    fails is undone alone (and raises as before); after_commit callbacks run after the commit."""
+    from sqlalchemy import insert
+    from thermeta.storage.errors import StoreRefused
+    from thermeta.storage.schema import items
+
+    other = Store(store.url)
+    after: list[str] = []
+    with store.batch():
+        store.set_meta("first", 1)
+        iid = store.ensure_item("probe-a", now=1.0)
+        with pytest.raises(StoreRefused), store.transaction() as conn:
+            conn.execute(insert(items).values(id=iid, name="probe-b", kind="load", unit="C",
+                                              created_at=1.0))  # fmt: skip
+        store.set_meta("second", 2)
+        store.after_commit(lambda: after.append("committed"))
+        assert store.get_meta("first") == 1  # the batch reads its own writes
+        assert other.get_meta("first") is None  # nobody else does before the commit
+        assert after == []
+    assert after == ["committed"]
+    assert other.get_meta("first") == 1 and other.get_meta("second") == 2
+    assert other.item_ids(["probe-a", "probe-b"]) == {"probe-a": iid}
+    other.close()
+
+
+def test_a_batch_rolled_back_writes_nothing_and_calls_its_undo(store):
+    """A batch whose block raises writes none of its writes and calls the on_rollback
+    callbacks (never the after_commit ones); outside a batch after_commit calls at once."""
+    undone: list[int] = []
+    after: list[int] = []
+    with pytest.raises(RuntimeError), store.batch():
+        store.set_meta("lost", 1)
+        store.on_rollback(lambda: undone.append(1))
+        store.after_commit(lambda: after.append(1))
+        raise RuntimeError("boom")
+    assert store.get_meta("lost") is None and undone == [1] and after == []
+    store.after_commit(lambda: after.append(2))
+    store.on_rollback(lambda: undone.append(2))  # nothing under way: never called
+    assert after == [2] and undone == [1]

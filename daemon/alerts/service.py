@@ -7,7 +7,8 @@ one worker per hook delivering them.
 ``on_forecast`` runs on the refit thread BEFORE the forecast is stored and published: the rules
 write the states they hold into it, so the state everyone sees and the alerts sent are one
 decision (see ``rules.py``).  It only touches the store (one short transaction when something
-changed); every network call happens on the hooks' own threads.
+changed, a savepoint of the refit's transaction for its chunk); every network call happens on the
+hooks' own threads.
 """
 
 from __future__ import annotations
@@ -119,8 +120,10 @@ class AlertService:
                     for ev in events
                 ]
                 if alerts or st.to_json() != old.to_json():
-                    # On a store failure the old state stays and the next refit decides again.
+                    # On a store failure the old state stays and the next refit decides again
+                    # (in the refit's batch, also when the batch is rolled back after all).
                     self.astore.commit_step(name, st.to_json(), alerts, self.hooks_for, now)
+                    self.store.on_rollback(lambda: self.reload_states([name]))
             except Exception:
                 # the forecast goes out with its states as judged, not as held
                 body.update(before)
@@ -131,9 +134,12 @@ class AlertService:
             del self.raised[:-1000]
         for a in alerts:
             log.warning("alert %s: %s", a["event"], a["sentence"])
-        if alerts:
-            for w in self.workers:
-                w.wake.set()
+        if alerts:  # once the outbox rows are committed (the refit's batch may hold them)
+            self.store.after_commit(self._wake)
+
+    def _wake(self) -> None:
+        for w in self.workers:
+            w.wake.set()
 
     def hooks_for(self, alert: dict[str, Any]) -> list[str]:
         return [h.key for h in self.hooks if h.wants(alert)]

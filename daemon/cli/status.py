@@ -13,26 +13,35 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--json", action="store_true", help="one JSON object on stdout")
 
 
-def period_figures(cfg: Any, store: Any, name: str, topic: str | None, now: float) -> Any:
-    """The item's rolling period from the store: time and degree-minutes beyond each limit, and
-    the mean kinetic temperature (None when its config is not known)."""
+def period_figures(cfg: Any, store: Any, topics: dict[str, str | None], now: float) -> dict:
+    """Each item's rolling period from the store: time and degree-minutes beyond each limit, and
+    the mean kinetic temperature, by item (those whose config is known); the readings of all in
+    a few queries (a site's status reads thousands of items)."""
     from thermeta.daemon.ingest.topics import Router
     from thermeta.daemon.levels.spec import levels_of
     from thermeta.daemon.levels.tally import new_tally
     from thermeta.storage.episodes import EpisodeStore
 
-    item = Router(cfg.items).item_for(name, topic)
-    if item is None:
-        return None
-    levels = levels_of(item)
-    recorded = EpisodeStore(store).sides(name) if store.has_table("level_sides") else {}
-    sides = {lv.name: (lv.side if lv.side != "auto" else recorded.get(lv.name)) for lv in levels}
-    tl = new_tally(levels, sides, now - item.period_s)  # type: ignore[arg-type]
-    rows = store.recent_readings(name, since_ts=now - item.period_s, until_ts=now)
-    tl.add([r[0] for r in rows], [r[1] for r in rows])
-    out = tl.to_json(item.unit)
-    out.pop("reached", None)
-    out["period_s"] = item.period_s
+    router = Router(cfg.items)
+    found = {name: router.item_for(name, topic) for name, topic in topics.items()}
+    known = {name: item for name, item in found.items() if item is not None}
+    has_sides = store.has_table("level_sides")
+    recorded = EpisodeStore(store).sides_of(list(known)) if has_sides else {}
+    ids = store.item_ids(list(known))
+    windows = store.windows([(ids[n], now - it.period_s) for n, it in known.items() if n in ids])
+    out = {}
+    for name, item in known.items():
+        levels = levels_of(item)
+        mine = recorded.get(name, {})
+        sides = {lv.name: (lv.side if lv.side != "auto" else mine.get(lv.name)) for lv in levels}
+        tl = new_tally(levels, sides, now - item.period_s)  # type: ignore[arg-type]
+        t, y = windows.get(ids.get(name, -1), ([], []))
+        upto = sum(1 for ts in t if ts <= now)  # oldest first
+        tl.add(list(t[:upto]), list(y[:upto]))
+        fig = tl.to_json(item.unit)
+        fig.pop("reached", None)
+        fig["period_s"] = item.period_s
+        out[name] = fig
     return out
 
 
@@ -44,6 +53,7 @@ def collect(cfg: Any, store: Any, now: float) -> dict[str, Any]:
     daemon = store.get_meta("daemon") or {}
     running = service_running(daemon, now)
     topics = {r["name"]: r.get("topic") for r in store.list_items("load")}
+    periods = period_figures(cfg, store, topics, now)
     per_item = []
     seen = set()
     for f in store.latest_forecasts():
@@ -70,7 +80,7 @@ def collect(cfg: Any, store: Any, now: float) -> dict[str, Any]:
                 "reason": d.get("reason"),
                 "levels": d.get("levels") or [],
                 "episode": d.get("episode"),
-                "period": period_figures(cfg, store, f.item, topics.get(f.item), now),
+                "period": periods.get(f.item),
             }
         )
     for it in cfg.items:
@@ -99,7 +109,11 @@ def collect(cfg: Any, store: Any, now: float) -> dict[str, Any]:
                 }
             )
     last_refit = store.last_refit_at()
+    group = getattr(getattr(cfg, "cluster", None), "group", None)
     return {
+        "cluster": None
+        if not group
+        else {"group": group, "instances": instances(store, group, now)},
         "items": counts["items"],
         "readings": counts["readings"],
         "dead_letters": counts["dead_letters"],
@@ -114,6 +128,68 @@ def collect(cfg: Any, store: Any, now: float) -> dict[str, Any]:
         },
         "per_item": sorted(per_item, key=lambda r: r["item"]),
     }
+
+
+def instances(store: Any, group: str, now: float) -> list[dict[str, Any]]:
+    """Each daemon of the group that ever wrote its own heartbeat (``[cluster] instance``): its
+    process, whether it runs now (a heartbeat within the last 20 s), running ones first."""
+    from thermeta.daemon.views.board import service_running
+    from thermeta.predictors.result import rfc3339
+    from thermeta.storage.store import INSTANCE_BEAT
+
+    out = [
+        {
+            "instance": b.get("instance"),
+            "running": service_running(b, now),
+            "state": b.get("state"),
+            "heartbeat_at": rfc3339(b.get("heartbeat_at")),
+            "pid": b.get("pid"),
+            "host": b.get("host"),
+            "connected": b.get("connected"),
+            "readings_per_s": b.get("readings_per_s"),
+        }
+        for b in store.meta_with_prefix(INSTANCE_BEAT).values()
+        if isinstance(b, dict) and b.get("group") == group and b.get("instance")
+    ]
+    return sorted(out, key=lambda d: (not d["running"], str(d["instance"])))
+
+
+def _head_lines(info: dict[str, Any], now: float) -> list[str]:
+    """The daemon (or, in a [cluster], each daemon of the group running now)."""
+    from thermeta.daemon.timefmt import clock, parse_time
+
+    def process(d: dict[str, Any]) -> str:
+        return (
+            f"pid {d['pid']}{' on ' + d['host'] if d.get('host') else ''}, broker "
+            f"{'connected' if d['connected'] else 'NOT connected'}, "
+            f"{d['readings_per_s'] or 0:.1f} readings/s"
+        )
+
+    def seen(beat: str | None) -> str:
+        return clock(parse_time(beat), now) if beat else "never"
+
+    cluster = info.get("cluster")
+    if cluster:
+        alive = [d for d in cluster["instances"] if d["running"]]
+        gone = [d for d in cluster["instances"] if not d["running"]]
+        lines = [f"cluster {cluster['group']}: {len(alive)} daemon(s) running"]
+        lines += [f"  {d['instance']}: {process(d)}" for d in alive]
+        if gone:
+            lines.append(
+                "  not running: "
+                + ", ".join(
+                    f"{d['instance']} (last heartbeat {seen(d['heartbeat_at'])})" for d in gone
+                )
+            )
+        return lines
+    d = info["daemon"]
+    if d["running"]:
+        return [
+            f"daemon running (pid {d['pid']}), broker "
+            f"{'connected' if d['connected'] else 'NOT connected'}, "
+            f"{d['readings_per_s'] or 0:.1f} readings/s"
+        ]
+    return [f"daemon not running (last heartbeat {seen(d['heartbeat_at'])})"]
 
 
 def _eta_text(r: dict[str, Any], now: float) -> str:
@@ -162,20 +238,10 @@ def run(args: argparse.Namespace) -> int:
     if args.json:
         print(json.dumps(info))
         return 0
-    d = info["daemon"]
-    if d["running"]:
-        head = (
-            f"daemon running (pid {d['pid']}), broker "
-            f"{'connected' if d['connected'] else 'NOT connected'}, "
-            f"{d['readings_per_s'] or 0:.1f} readings/s"
-        )
-    else:
-        beat = d["heartbeat_at"]
-        seen = clock(parse_time(beat), now) if beat else "never"
-        head = f"daemon not running (last heartbeat {seen})"
     last = info["last_refit_at"]
     ago = f"{clock(parse_time(last), now)} ({duration(now - parse_time(last))} ago)" if last else ""
-    print(head)
+    for line in _head_lines(info, now):
+        print(line)
     print(
         f"items {info['items']}, readings {info['readings']}, dead letters {info['dead_letters']}, "
         f"last refit {ago or 'never'}"

@@ -2,6 +2,7 @@
 
     keeper = EpisodeKeeper(store)
     keeper.load()                                   # each round: the open episodes
+    keeper.preload(names)                           # a chunk's sides and last episodes at once
     sides = keeper.sides(name, cfg, levels, value_c, now)
     ep = keeper.episode(name, cfg, levels, t, y)    # open, or opened/closed by the probe, or last
     tally = keeper.tally(name, levels, sides, ep, item_id)
@@ -9,6 +10,11 @@
 
 Episodes may also be opened and closed beside the refit (``thermeta start``/``end``, messages);
 each round reads the open ones again.
+
+A side decided in a round is used at once and stored by :meth:`EpisodeKeeper.write_sides` with
+the chunk's forecasts, in their transaction (a round's first after a start decides one for each
+``auto`` level of each item: one transaction each would cost an fsync each); a crash before that
+loses the decision with the forecasts judged from it, and the next round decides again.
 """
 
 from __future__ import annotations
@@ -45,6 +51,7 @@ class EpisodeKeeper:
         self.recorded: dict[str, dict[str, Side]] = {}  # by item: the recorded sides
         # by item: the last reading scanned for a start, and a pass of it waiting to be confirmed
         self.scanned: dict[str, tuple[tuple[float, float], float | None]] = {}
+        self.unrecorded: list[tuple[str, str, Side, float, float | None]] = []  # sides to store
 
     def load(self) -> None:
         """The open episodes (``thermeta start`` and messages change them beside the refit)."""
@@ -58,6 +65,25 @@ class EpisodeKeeper:
                 self.last_eps.pop(name, None)  # closed beside us: read it again when needed
         self.open_eps = opened
 
+    def preload(self, names: list[str]) -> None:
+        """The recorded sides and the newest episode of the items not known yet, two queries
+        for all (a round's first after a start would otherwise read two rows per item)."""
+        want = [n for n in names if n not in self.recorded]
+        if want:
+            try:
+                self.recorded.update(self.episodes.sides_of(want))  # type: ignore[arg-type]
+            except Exception:  # noqa: BLE001 - read one by one at their first use
+                log.exception("reading the sides of %d items failed", len(want))
+        want = [n for n in names if n not in self.last_eps and n not in self.open_eps]
+        if want:
+            try:
+                newest = self.episodes.newest_of(want)
+            except Exception:  # noqa: BLE001 - read one by one at their first use
+                log.exception("reading the episodes of %d items failed", len(want))
+                return
+            for n in want:
+                self.last_eps[n] = newest.get(n)
+
     # -- sides -----------------------------------------------------------------------------------
     def sides(
         self,
@@ -68,7 +94,8 @@ class EpisodeKeeper:
         now: float,
     ) -> dict[str, Side | None]:
         """Each level's side: configured, or recorded, or (first judged now) decided from the
-        live value and recorded; never re-derived from stored history."""
+        live value and recorded (stored by :meth:`write_sides`); never re-derived from stored
+        history."""
         if name not in self.recorded:
             try:
                 self.recorded[name] = {k: v for k, v in self.episodes.sides(name).items()}  # type: ignore[misc]
@@ -84,15 +111,27 @@ class EpisodeKeeper:
             if lv.name not in known and value_c is not None:
                 side = auto_side(lv, from_celsius(value_c, cfg.unit))
                 if side is not None:
-                    try:
-                        side = self.episodes.decide_side(name, lv.name, side, now, value_c)  # type: ignore[assignment]
-                    except Exception:  # noqa: BLE001 - judged with it; recorded next time
-                        log.exception("recording the side of %s/%s failed", name, lv.name)
-                        out[lv.name] = side
-                        continue
                     known[lv.name] = side  # type: ignore[assignment]
+                    self.unrecorded.append((name, lv.name, side, now, value_c))  # type: ignore[arg-type]
             out[lv.name] = known.get(lv.name)
         return out
+
+    def write_sides(self) -> None:
+        """Store the sides decided since the last call (inside a batch: in its transaction;
+        kept for the next call if that is rolled back or one cannot be stored).  A side found
+        recorded already (by another daemon) is the one kept from then on."""
+        if not self.unrecorded:
+            return
+        taken, self.unrecorded = self.unrecorded, []
+        try:
+            kept = self.episodes.decide_sides(taken)
+        except Exception:  # noqa: BLE001 - stored with the next chunk
+            log.exception("recording the sides of %d levels failed", len(taken))
+            self.unrecorded[:0] = taken
+            return
+        self.store.on_rollback(lambda: self.unrecorded.__setitem__(slice(0, 0), taken))
+        for (name, level), side in kept.items():
+            self.recorded.setdefault(name, {})[level] = side  # type: ignore[assignment]
 
     def episode(
         self,
