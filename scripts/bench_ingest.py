@@ -227,18 +227,25 @@ def run_thermeta(port: int, n: int, items: int, t0: float, workdir: Path, args) 
             th = threading.Thread(target=lambda: result.update(publish(port, n, items, t0)))
             th.start()
         done_at = None
-        count = 0
+        last = n - 1
+        last_key = (t0 + last // items, f"probe-i{last % items:04d}")
         conn = None
         deadline = time.monotonic() + 900
         while time.monotonic() < deadline:
             try:
                 conn = conn or sqlite3.connect(db, timeout=30)
-                # max(rowid) is one index probe (no deletes or duplicates here), unlike count(*),
-                # which would scan the table every poll and steal CPU from the daemon.
-                count = conn.execute("SELECT max(rowid) FROM readings").fetchone()[0] or 0
+                # The broker delivers one session's messages in order and the daemon commits them
+                # in order, so the last one published being stored means all are: one probe of
+                # the (item_id, ts) key, where count(*) would scan the table every poll and steal
+                # CPU from the daemon.
+                done = conn.execute(
+                    "SELECT 1 FROM readings WHERE ts = ? AND item_id = "
+                    "(SELECT id FROM items WHERE name = ?)",
+                    last_key,
+                ).fetchone()
             except sqlite3.OperationalError:
-                count = 0
-            if count >= n:
+                done = None
+            if done:
                 done_at = time.time()
                 break
             time.sleep(0.02)
@@ -252,7 +259,7 @@ def run_thermeta(port: int, n: int, items: int, t0: float, workdir: Path, args) 
             th.join()
         rss = vm_hwm_mb(proc.pid)
         if done_at is None:
-            raise SystemExit(f"thermeta stored {count} of {n}")
+            raise SystemExit(f"thermeta stored {stored} of {n} within the time allowed")
     finally:
         stop_daemon(proc)
         wipe_session(port, client_id)
@@ -334,7 +341,7 @@ def main() -> int:
         ratios = [o["rate"] / r["rate"] for o, r in zip(ours, base)]
         print(
             f"\nratio thermeta / {label}: median {statistics.median(ratios):.2f} "
-            f"(per repeat: {', '.join(f'{x:.2f}' for x in ratios)}); target >= 0.50"
+            f"(per repeat: {', '.join(f'{x:.2f}' for x in ratios)}); target >= 0.70"
         )
     return 0
 
