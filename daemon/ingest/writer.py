@@ -37,7 +37,7 @@ from thermeta.daemon.clock import Clock, monotonic_of
 from thermeta.daemon.config import Config, ItemConfig
 from thermeta.daemon.ingest.defrost import parse_defrost
 from thermeta.daemon.ingest.marks import parse_mark
-from thermeta.daemon.ingest.payloads import Limits, excerpt, parse_payload
+from thermeta.daemon.ingest.payloads import Limits, excerpt, parse_payload, quick_reading
 from thermeta.daemon.ingest.topics import Route, Router
 from thermeta.storage.errors import PayloadError, StoreError, StoreRefused
 from thermeta.storage.schema import FLAG_RECEIPT_TS
@@ -468,11 +468,18 @@ class Writer(threading.Thread):
             if msg.size:
                 failed = (name, f"oversized payload ({msg.size} bytes > {limits.max_bytes})")
                 break
+            kind = route.kind
+            if kind != "episode" and kind != "defrost":
+                quick = quick_reading(msg.payload, msg.received_at, route.item.unit, limits)
+                if quick is not None:  # the common payload, checked without objects
+                    readings.append((item_id, quick[0], quick[1], 0, msg.received_at))
+                    seen.append((load_name, route.item, quick[0] if kind == "load" else None))
+                    continue
             try:
-                if route.kind == "episode":
+                if kind == "episode":
                     marks.append(parse_mark(load_name, msg.payload, msg.received_at, limits))
                     continue
-                if route.kind == "defrost":
+                if kind == "defrost":
                     parsed = parse_defrost(msg.payload, msg.received_at, limits)
                 else:
                     parsed = parse_payload(
@@ -494,7 +501,7 @@ class Writer(threading.Thread):
                 )
                 if r.ts > newest:
                     newest = r.ts
-            seen.append((load_name, route.item, newest if route.kind == "load" else None))
+            seen.append((load_name, route.item, newest if kind == "load" else None))
         if failed is not None:
             dead.append(self._dead(msg, failed[0], failed[1]))
 
