@@ -314,7 +314,13 @@ def main() -> int:
     ap.add_argument("--messages", type=int, default=100_000)
     ap.add_argument("--items", type=int, default=1000)
     ap.add_argument("--repeat", type=int, default=3)
-    ap.add_argument("--inflight", type=int, default=1000, help="broker max_inflight_messages")
+    ap.add_argument(
+        "--inflight",
+        type=int,
+        default=4000,
+        help="broker max_inflight_messages (the window of an MQTT 3.1.1 subscriber; as in "
+        "config/mosquitto.conf)",
+    )
     ap.add_argument("--batch-size", type=int, default=0, help="[storage] batch_size (0: default)")
     ap.add_argument("--batch-ms", type=int, default=200)
     ap.add_argument("--refit-every", type=float, default=30.0)
@@ -324,7 +330,9 @@ def main() -> int:
         default="auto",
         help="thermeta's MQTT version (the bare subscriber uses paho's default, 3.1.1)",
     )
-    ap.add_argument("--receive-maximum", type=int, default=1000, help="[broker] receive_maximum")
+    ap.add_argument(
+        "--receive-maximum", type=int, default=4000, help="[broker] receive_maximum (the default)"
+    )
     ap.add_argument(
         "--mode",
         choices=["drain", "live"],
