@@ -300,7 +300,7 @@ class Writer(threading.Thread):
             for msg in batch:
                 part = _Part(msg)
                 self._convert_guarded(msg, part, quiet=True)
-                parts.append(self._write_one(part))
+                parts.append(self._write_one(msg, part))
         readings = sum(len(p.readings) for p in parts)
         dead = [d for p in parts for d in p.dead]
         self.counts["batches"] += 1
@@ -320,7 +320,7 @@ class Writer(threading.Thread):
         if dead:
             self._log_dead(len(dead), dead[-1])
 
-    def _write_one(self, part: _Part) -> _Part:
+    def _write_one(self, msg: Inbound, part: _Part) -> _Part:
         """Store one message's readings, dead letters and marks on their own; if the store refuses
         them, the message becomes a dead letter with the store's reason."""
         try:
@@ -334,8 +334,8 @@ class Writer(threading.Thread):
             return part
         except StoreRefused as exc:
             item = part.seen[0][0] if part.seen else None
-            gone = _Part(part.msg)
-            gone.dead.append(self._dead(part.msg, item, f"the store refused it: {exc}"))
+            gone = _Part(msg)
+            gone.dead.append(self._dead(msg, item, f"the store refused it: {exc}"))
             self._until_stored(
                 "store write failed (%s); retrying in %.1f s, nothing acknowledged",
                 self.store.write_batch,
