@@ -136,6 +136,35 @@ def test_writer_commits_then_acks_in_arrival_order(tmp_path):
     store.close()
 
 
+def test_a_row_the_store_refuses_sets_aside_only_its_message(tmp_path):
+    """When the store refuses a batch (a constraint: trying again cannot help), the batch is
+    written message by message: only the refused message becomes a dead letter with the store's
+    reason, a bad payload keeps its own reason, the rest is stored, and all are acknowledged in
+    the order received."""
+    w, store, acked, act = make_writer(
+        tmp_path, '[[item]]\nname = "p"\ntopic = "s/p"\nthreshold = 5\n'
+    )
+    with store.transaction() as conn:  # a site's rule the store enforces on one value
+        conn.exec_driver_sql(
+            "CREATE TRIGGER no_66 BEFORE INSERT ON readings WHEN NEW.value_c = 66.5 "
+            "BEGIN SELECT RAISE(ABORT, 'value 66.5 refused'); END"
+        )
+    values = [3.0, 3.5, 66.5, None, 4.0]
+    for i, v in enumerate(values):
+        payload = b"not a reading" if v is None else json.dumps({"ts": T0 - 100 + i, "value": v})
+        w.submit(Inbound("s/p", payload if v is None else payload.encode(), T0, mid=i + 1, qos=1))
+    w.start()
+    w.stop()
+    assert [m for batch in acked for m in batch] == [1, 2, 3, 4, 5]
+    assert store.recent_readings("p") == [(T0 - 100, 3.0), (T0 - 99, 3.5), (T0 - 96, 4.0)]
+    reasons = sorted(d["reason"] for d in store.recent_dead_letters())
+    assert len(reasons) == 2
+    assert reasons[0].startswith("not a number") and "value 66.5 refused" in reasons[1]
+    assert w.counts["readings"] == 3 and w.counts["dead_letters"] == 2
+    assert act.last_ts["p"] == T0 - 96
+    store.close()
+
+
 def test_stop_during_a_store_outage_returns_promptly(tmp_path):
     """While the store fails the writer backs off between tries; stop() ends the wait at once and
     leaves the batch unacknowledged (the broker sends it again), instead of retrying for ever."""

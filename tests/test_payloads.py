@@ -6,7 +6,13 @@ from __future__ import annotations
 import json
 
 import pytest
-from thermeta.daemon.ingest.payloads import Limits, PayloadError, excerpt, parse_payload
+from thermeta.daemon.ingest.payloads import (
+    Limits,
+    PayloadError,
+    excerpt,
+    parse_payload,
+    quick_reading,
+)
 
 NOW = 1_800_000_000.0  # 2027-01-15T08:00:00Z
 
@@ -98,3 +104,42 @@ def test_excerpt_truncates_and_escapes():
     assert excerpt(b"ab\xffc", 100) == "ab\\xffc"
     long = excerpt(b"y" * 5000, 10)
     assert long == "yyyyyyyyyy... (5000 bytes)"
+
+
+QUICK_CASES = [
+    b'{"ts": 1799999990, "value": 4.25}',
+    b'{"ts": 1799999990.5, "value": -3, "unit": "C"}',
+    b'{"value": 41, "ts": 1799999990, "unit": "F"}',
+    b'{"ts": 1799999990, "value": 278.15, "unit": "K"}',
+    b'{"ts": 1799999990, "value": 4.25, "unit": "X"}',  # refused: unit
+    b'{"ts": 1799999990, "value": 900}',  # refused: outside the plausible range
+    b'{"ts": 1799999990000, "value": 4}',  # refused: milliseconds
+    b'{"ts": 1800009990, "value": 4}',  # refused: in the future
+    b'{"ts": "2027-01-15T07:59:00Z", "value": 4}',  # an RFC 3339 time: the full parser's job
+    b'{"value": 4}',  # no time: stamped on receipt by the full parser
+    b'{"ts": 1799999990, "value": true}',  # refused: a boolean
+    b'{"ts": 1799999990, "value": NaN}',  # refused: not finite
+    b'{"ts": 1799999990, "value": 4',  # refused: cut short
+    b"\xff{}",
+    b'[{"n": "t", "u": "Cel", "v": 4}]',  # SenML: the full parser's job
+    b"4.5",
+]
+
+
+@pytest.mark.parametrize("payload", QUICK_CASES)
+def test_quick_reading_agrees_with_the_full_parser(payload):
+    """The ingest's hot path (a tuple for the common JSON object, else None) gives exactly what
+    parse_payload gives when it answers, and leaves everything else (refusals included, so
+    their reason comes from parse_payload) to the full parser."""
+    lim = Limits(low_c=-50.0, high_c=80.0)
+    quick = quick_reading(payload, NOW, "C", lim)
+    try:
+        full = parse_payload(payload, NOW, "C", lim)
+    except PayloadError:
+        full = None
+    if quick is not None:
+        assert full is not None and len(full) == 1 and not full[0].receipt_ts
+        assert quick == (full[0].ts, full[0].value_c)
+    simple = payload.startswith(b'{"ts": 17') and b'unit": "X' not in payload
+    if simple and full is not None:
+        assert quick is not None  # the common case does take the hot path

@@ -122,10 +122,20 @@ _NUMBER = (int, float)
 
 
 def _fast_object(payload: bytes, now: float, unit: str, limits: Limits) -> Reading | None:
-    """The common case, ``{"ts": number, "value": number[, "unit": ...]}``, checked quickly.
+    """:func:`quick_reading` as a :class:`Reading`."""
+    quick = quick_reading(payload, now, unit, limits)
+    return None if quick is None else Reading(quick[0], quick[1], False)
 
-    None means "not this simple or not valid": the general path then gives the exact reason.
-    """
+
+def quick_reading(
+    payload: bytes, now: float, unit: str = "C", limits: Limits = DEFAULT_LIMITS
+) -> tuple[float, float] | None:
+    """(ts, value in degC) of the common payload ``{"ts": number, "value": number[, "unit":
+    ...]}`` when it is that simple and valid, checked quickly (the ingest's hot path: a tuple,
+    no object).  None means "not this simple or not valid": :func:`parse_payload` then gives
+    the readings or the exact reason."""
+    if payload[:1] != b"{" or len(payload) > limits.max_bytes:
+        return None
     try:
         doc = _DECODE(payload.decode("utf-8"))
     except (ValueError, PayloadError, RecursionError):  # UnicodeDecodeError, JSONDecodeError
@@ -144,7 +154,7 @@ def _fast_object(payload: bytes, now: float, unit: str, limits: Limits) -> Readi
         and ts <= now + limits.max_future_s
     ):
         return None  # NaN and infinities fail the range test too
-    return Reading(float(ts), float(value_c), False)
+    return float(ts), float(value_c)
 
 
 def _finite(value: float, what: str, unit: str) -> float:

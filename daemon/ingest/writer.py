@@ -37,7 +37,7 @@ from thermeta.daemon.clock import Clock, monotonic_of
 from thermeta.daemon.config import Config, ItemConfig
 from thermeta.daemon.ingest.defrost import parse_defrost
 from thermeta.daemon.ingest.marks import parse_mark
-from thermeta.daemon.ingest.payloads import Limits, excerpt, parse_payload
+from thermeta.daemon.ingest.payloads import Limits, excerpt, parse_payload, quick_reading
 from thermeta.daemon.ingest.topics import Route, Router
 from thermeta.storage.errors import PayloadError, StoreError, StoreRefused
 from thermeta.storage.schema import FLAG_RECEIPT_TS
@@ -73,10 +73,10 @@ Ack = Callable[[list[Inbound]], None]
 
 @dataclass
 class _Part:
-    """What one message becomes: reading rows, dead letters, episode marks, and the items it
-    brought news of (name, config, newest reading time or None)."""
+    """What one message (or a whole batch: ``msg`` None) becomes: reading rows, dead letters,
+    episode marks, and the items it brought news of (name, config, newest reading time or None)."""
 
-    msg: Inbound
+    msg: Inbound | None
     readings: list[tuple] = field(default_factory=list)
     dead: list[DeadLetter] = field(default_factory=list)
     marks: list[Any] = field(default_factory=list)
@@ -108,6 +108,21 @@ class Activity:
             if ts is not None and ts > self.last_ts.get(name, float("-inf")):
                 self.last_ts[name] = ts
             self._dirty.add(name)
+
+    def note_all(
+        self, newest: dict[str, tuple[ItemConfig, float | None]], arrived: float | None
+    ) -> None:
+        """:meth:`note` for a whole batch's items (name -> (config, newest ts)), under one lock."""
+        with self._lock:
+            items, last, when = self.items, self.last_ts, self.arrived
+            for name, (cfg, ts) in newest.items():
+                if ts is not None:
+                    items.setdefault(name, cfg)
+                    if arrived is not None:
+                        when[name] = arrived
+                    if ts > last.get(name, float("-inf")):
+                        last[name] = ts
+            self._dirty.update(newest)
 
     def register(self, name: str, cfg: ItemConfig, last_ts: float | None) -> None:
         with self._lock:
@@ -265,31 +280,27 @@ class Writer(threading.Thread):
 
     def _write(self, batch: list[Inbound]) -> None:
         self._prepare_topics(batch)
-        parts: list[_Part] = []
+        whole = _Part(None)  # the whole batch's rows: no object per message on the hot path
         for msg in batch:
-            part = _Part(msg)
-            try:
-                self._convert(msg, part)
-            except StoreError:
-                raise
-            except Exception as exc:  # noqa: BLE001 - one odd message must not stop ingest
-                part = _Part(msg)
-                part.dead.append(self._dead(msg, None, f"internal error: {exc.__class__.__name__}"))
-                self._log_internal(msg)
-            parts.append(part)
+            self._convert_guarded(msg, whole)
+        parts = [whole]
         try:
             self._until_stored(
                 "store write failed (%s); retrying in %.1f s, nothing acknowledged",
                 self.store.write_batch,
-                [r for p in parts for r in p.readings],
-                [d for p in parts for d in p.dead],
-                [m for p in parts for m in p.marks],
+                whole.readings,
+                whole.dead,
+                whole.marks,
             )
         except StoreRefused as exc:
             # Something in the batch is refused by the store itself: store it message by message,
             # so only what is refused is set aside and the rest goes in.
             log.warning("the store refused part of a batch (%s); writing it one by one", exc)
-            parts = [self._write_one(p) for p in parts]
+            parts = []
+            for msg in batch:
+                part = _Part(msg)
+                self._convert_guarded(msg, part, quiet=True)
+                parts.append(self._write_one(msg, part))
         readings = sum(len(p.readings) for p in parts)
         dead = [d for p in parts for d in p.dead]
         self.counts["batches"] += 1
@@ -301,9 +312,7 @@ class Writer(threading.Thread):
             prev = newest.get(name)
             if prev is None or (ts is not None and (prev[1] is None or ts > prev[1])):
                 newest[name] = (cfg, ts)
-        arrived = monotonic_of(self.clock)
-        for name, (cfg, ts) in newest.items():
-            self.activity.note(name, cfg, ts, arrived)
+        self.activity.note_all(newest, monotonic_of(self.clock))
         try:
             self.ack(batch)
         except Exception:  # noqa: BLE001 - unacked messages come back and are absorbed
@@ -311,7 +320,7 @@ class Writer(threading.Thread):
         if dead:
             self._log_dead(len(dead), dead[-1])
 
-    def _write_one(self, part: _Part) -> _Part:
+    def _write_one(self, msg: Inbound, part: _Part) -> _Part:
         """Store one message's readings, dead letters and marks on their own; if the store refuses
         them, the message becomes a dead letter with the store's reason."""
         try:
@@ -325,8 +334,8 @@ class Writer(threading.Thread):
             return part
         except StoreRefused as exc:
             item = part.seen[0][0] if part.seen else None
-            gone = _Part(part.msg)
-            gone.dead.append(self._dead(part.msg, item, f"the store refused it: {exc}"))
+            gone = _Part(msg)
+            gone.dead.append(self._dead(msg, item, f"the store refused it: {exc}"))
             self._until_stored(
                 "store write failed (%s); retrying in %.1f s, nothing acknowledged",
                 self.store.write_batch,
@@ -431,6 +440,22 @@ class Writer(threading.Thread):
                 log.warning("the store refused item %r: %s", spec[0][:60], exc)
         return ids, refused
 
+    def _convert_guarded(self, msg: Inbound, part: _Part, quiet: bool = False) -> None:
+        """:meth:`_convert` into ``part``; an unexpected error makes the message a dead letter
+        (whatever it had added taken back), so one odd message cannot stop ingest.  ``quiet``:
+        converting again after the store refused a batch (the error was logged the first time)."""
+        sizes = (len(part.readings), len(part.dead), len(part.marks), len(part.seen))
+        try:
+            self._convert(msg, part)
+        except StoreError:
+            raise
+        except Exception as exc:  # noqa: BLE001 - set aside as a dead letter
+            del part.readings[sizes[0] :], part.dead[sizes[1] :]
+            del part.marks[sizes[2] :], part.seen[sizes[3] :]
+            part.dead.append(self._dead(msg, None, f"internal error: {exc.__class__.__name__}"))
+            if not quiet:
+                self._log_internal(msg)
+
     def _convert(self, msg: Inbound, part: _Part) -> None:
         readings, dead, seen, marks = part.readings, part.dead, part.seen, part.marks
         hits = self._topics.get(msg.topic)
@@ -443,11 +468,18 @@ class Writer(threading.Thread):
             if msg.size:
                 failed = (name, f"oversized payload ({msg.size} bytes > {limits.max_bytes})")
                 break
+            kind = route.kind
+            if kind != "episode" and kind != "defrost":
+                quick = quick_reading(msg.payload, msg.received_at, route.item.unit, limits)
+                if quick is not None:  # the common payload, checked without objects
+                    readings.append((item_id, quick[0], quick[1], 0, msg.received_at))
+                    seen.append((load_name, route.item, quick[0] if kind == "load" else None))
+                    continue
             try:
-                if route.kind == "episode":
+                if kind == "episode":
                     marks.append(parse_mark(load_name, msg.payload, msg.received_at, limits))
                     continue
-                if route.kind == "defrost":
+                if kind == "defrost":
                     parsed = parse_defrost(msg.payload, msg.received_at, limits)
                 else:
                     parsed = parse_payload(
@@ -469,7 +501,7 @@ class Writer(threading.Thread):
                 )
                 if r.ts > newest:
                     newest = r.ts
-            seen.append((load_name, route.item, newest if route.kind == "load" else None))
+            seen.append((load_name, route.item, newest if kind == "load" else None))
         if failed is not None:
             dead.append(self._dead(msg, failed[0], failed[1]))
 

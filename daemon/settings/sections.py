@@ -92,7 +92,7 @@ class BrokerConfig(Table):
     session_expiry_s: PositiveInt = Field(7 * 86400, validation_alias="session_expiry")
     qos: Literal[0, 1] = 1
     # MQTT 5: unacknowledged messages the broker may send ahead
-    receive_maximum: Annotated[PositiveInt, AfterValidator(_port)] = 1000
+    receive_maximum: Annotated[PositiveInt, AfterValidator(_port)] = 4000
     username: Text | None = None
     password_env: Text | None = None
     password: str | None = Field(
