@@ -68,6 +68,7 @@ from thermeta.predictors.lumped import (
 )
 from thermeta.predictors.lumped_forecast import fill_lumped
 from thermeta.predictors.lumped_profile import Sums, eta_sets
+from thermeta.predictors.outcome import NoteCode
 from thermeta.predictors.result import Forecast
 from thermeta.predictors.wording import DisplayUnit, showing
 
@@ -78,6 +79,7 @@ GAP_STEPS = 4.0  # cleaning.GAP_STEPS
 POOR_FIT = 1.5  # scatter about the curve / the readings' local scatter beyond which: per item
 BAND_SIGMA = 3.0  # the newest readings' mean residual, in its standard errors
 NEWEST = 5  # readings that make "the newest"
+LAG_CAP = 0.5  # residuals' lag-one correlation beyond which: per item (a door, a sawtooth)
 
 
 class Flag(StrEnum):
@@ -127,6 +129,7 @@ class Prepared:
     w: float  # fit_lumped's bend weight (fitted ambient), 1 otherwise
     line: tuple[float, float]  # the straight line through the centred readings: (slope, icpt)
     still: bool  # lumped_forecast.no_trend: the readings do not move
+    inflate: float = 1.0  # n / n_eff of correlated residuals: the intervals widened by it
     # per threshold (degC): the crossing's interval ends over the grid, computed with the batch
     # (lumped_profile.eta_sets' nanmin of the early ends, nanmax of the late ends; NaN: empty)
     bounds: dict[float, tuple[float, float]] = field(default_factory=dict)
@@ -205,6 +208,13 @@ class Prepared:
             regime_start=float(t[0]),
             lag_factor_j=1.0,
         )
+        if self.inflate > 1.0:  # lumped_forecast's note, before fill_lumped's own
+            fc.note(
+                NoteCode.CORRELATED_SCATTER,
+                f"the readings' scatter is correlated from one reading to the next: they count "
+                f"as about {t.size / self.inflate:.0f} independent ones, and the interval is "
+                "that wide",
+            )
         fill_lumped(fc, fit, ctx.with_readings(t, y, threshold=threshold, limit=limit))
         if fc.eta_s and self.still:
             return Flag.NO_TREND
@@ -357,6 +367,7 @@ def _rows(
             float(A["w"][i]),
             (float(A["slope"][i]), float(A["icpt"][i])),
             bool(still[i]),
+            float(A["infl"][i]),
         )
     return out
 
@@ -391,17 +402,17 @@ def _prepare_group(series: list[Series]) -> list[Prepared | Flag]:
     amb_sd = np.array([s.ambient_sd for s in series], float)
     amb_sd = np.where(np.isnan(within), amb_sd, within / math.sqrt(3.0))
     amb = _Ambient(value, amb_sd, value - within, value + within, noise_sd)
-    A = _analyse(T, Y, np.ones_like(T), amb)
+    A = _analyse(T, Y, np.ones_like(T), amb, inflate=True)
     f, res, sigma = A["fits"], A["res"], A["sigma"]
     flag(f.edge, Flag.EDGE)
     # the robust refit's test (lumped_forecast): a reading far off the fitted curve
     med = np.median(res, axis=1, keepdims=True)
     scale = np.maximum(_robust_sd(res), np.maximum(np.maximum(q, noise_sd), 1e-3 * ptp))
     flag((np.abs(res - med) > OUTLIER_SIGMA * scale[:, None]).any(1), Flag.SPIKE)
-    # a poor fit: scatter about the curve well above the readings' own, or correlated residuals
-    rc = res - res.mean(axis=1, keepdims=True)
-    lag = (rc[:, 1:] * rc[:, :-1]).sum(1) / np.maximum((rc * rc).sum(1), 1e-300)
-    flag(lag > 2.0 / math.sqrt(n), Flag.POOR_FIT)
+    # a poor fit: scatter about the curve well above the readings' own, residuals correlated
+    # beyond what scatter alone makes them (correlation below that widens the intervals, as in
+    # forecast()), or a smooth shape left in them
+    flag(A["lag"] > LAG_CAP, Flag.POOR_FIT)
     rms = np.sqrt((res * res).mean(axis=1))
     flag(rms > POOR_FIT * noise_sd, Flag.POOR_FIT)
     flag(_shape_left(res, A["d"] / A["D"][:, None]), Flag.POOR_FIT)

@@ -19,6 +19,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy.special import fdtri
+from thermeta.predictors.combined_forecast import RICH_MIN
 from thermeta.predictors.lumped import BEND_CONF, CONF, KD_MAX, KD_MIN
 
 KD_GRID = np.geomspace(KD_MIN, KD_MAX, 56)  # fit_lumped's grid, in units of 1 / span
@@ -269,13 +270,22 @@ class _Ambient:
     noise_sd: np.ndarray
 
 
-def _analyse(T: np.ndarray, Y: np.ndarray, W: np.ndarray, amb: _Ambient) -> dict:
+def _analyse(
+    T: np.ndarray, Y: np.ndarray, W: np.ndarray, amb: _Ambient, inflate: bool = False
+) -> dict:
     """fit_lumped's threshold-free part for every row: the fit, the residuals, the bend weight
-    and the straight line, k's and the ambient's intervals and the grid for the crossing's."""
+    and the straight line, k's and the ambient's intervals and the grid for the crossing's.
+    ``inflate``: the intervals' cut margin times n / n_eff where the residuals' lag-one
+    correlation is beyond the white-noise band (``combined_forecast.inflation``, what
+    ``forecast()`` refits with); ``infl`` and ``lag`` per row in the result."""
     fits, g = _fit(T, Y, W, amb.value, amb.sd, amb.lo, amb.hi, amb.noise_sd)
     k, a, b, rss, lam, dof = fits.k, fits.a, fits.b, fits.rss, fits.lam, g["dof"]
     d, yc, n = g["d"], g["yc"], g["n"]
     fit_y = (a[:, None] + b[:, None] * np.exp(-k[:, None] * d)) * W
+    res = (yc - fit_y) * W
+    lag, infl = _inflation(res, W, n)
+    if not inflate:
+        infl = np.ones_like(infl)
     # the bend weight (lumped.bend_weight) against the straight line through the readings
     dbar = (W * d).sum(axis=1) / n
     dm = (d - dbar[:, None]) * W
@@ -288,7 +298,7 @@ def _analyse(T: np.ndarray, Y: np.ndarray, W: np.ndarray, amb: _Ambient) -> dict
     q99 = fdtri(1.0, np.maximum(dof, 1), BEND_CONF)
     w = np.where(F > 0, np.maximum(0.0, 1.0 - q99 / F), 0.0)
     w = np.where((dof < 2) | (rss <= 0) | ~np.isnan(amb.value), 1.0, w)
-    cut = rss * (1.0 + fdtri(1.0, dof, CONF) / dof)
+    cut = rss * (1.0 + infl * fdtri(1.0, dof, CONF) / dof)
     s, k_all, r_k, a_u, b_u, delta = _grid(fits, g, cut)
     k_lo, k_hi = _profile_interval(k_all, r_k, cut, k)
     fixed = np.isinf(lam)
@@ -304,7 +314,9 @@ def _analyse(T: np.ndarray, Y: np.ndarray, W: np.ndarray, amb: _Ambient) -> dict
         g,
         fits=fits,
         fit_y=fit_y,
-        res=(yc - fit_y) * W,
+        res=res,
+        lag=lag,
+        infl=infl,
         sigma=np.sqrt(rss / dof),
         w=w,
         slope=slope,
@@ -322,6 +334,17 @@ def _analyse(T: np.ndarray, Y: np.ndarray, W: np.ndarray, amb: _Ambient) -> dict
         amb_lo=np.where(fixed, ambient, amb_lo),
         amb_hi=np.where(fixed, ambient, amb_hi),
     )
+
+
+def _inflation(res: np.ndarray, W: np.ndarray, n: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Each row's lag-one correlation of its residuals and n / n_eff = (1 + rho) / (1 - rho)
+    where it is beyond the white-noise band 2 / sqrt(n) (rho at most 0.98), 1 otherwise
+    (``combined_forecast.inflation`` per row; padded readings left out)."""
+    rc = (res - ((W * res).sum(axis=1) / n)[:, None]) * W
+    lag = (rc[:, 1:] * rc[:, :-1]).sum(1) / np.maximum((rc * rc).sum(1), 1e-300)
+    rho = np.clip(lag, 0.0, 0.98)
+    clear = (n >= RICH_MIN) & (lag > 2.0 / np.sqrt(n))
+    return lag, np.where(clear, (1.0 + rho) / (1.0 - rho), 1.0)
 
 
 def _grid(fits: _Fits, g: dict, cut: np.ndarray):
