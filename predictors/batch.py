@@ -30,9 +30,9 @@ Not here (the caller sends them the per-item way): a measured ambient, the core-
 ``tests/test_batch.py`` holds the two to the same ETA within 1 % and the same outcome.
 
 This module owns the items (:class:`Series`, :class:`Prepared`, :class:`Flag`), the flags that
-send them the per-item way and the self-check; the shared-grid estimator and its intervals are in
-``batch_fit``, the screens on the readings alone (step, local scatter, residual shape) in
-``batch_screen``.
+send them the per-item way; the shared-grid estimator and its intervals are in ``batch_fit``,
+the screens on the readings alone (step, local scatter, residual shape) in ``batch_screen``,
+the self-check and the crossings' intervals for many rows at once in ``batch_check``.
 """
 
 from __future__ import annotations
@@ -43,6 +43,7 @@ from enum import StrEnum
 from typing import Any
 
 import numpy as np
+from thermeta.predictors.batch_check import all_ends, self_check
 from thermeta.predictors.batch_fit import FINE, KD_GRID, _Ambient, _analyse
 from thermeta.predictors.batch_screen import (
     HALF,
@@ -52,10 +53,7 @@ from thermeta.predictors.batch_screen import (
     _shape_left,
 )
 from thermeta.predictors.combined_forecast import (
-    CHECK_MIN,
-    CHECK_ORIGIN,
     RICH_MIN,
-    _widen,
     note_ambient_agreement,
 )
 from thermeta.predictors.context import AmbientMode, Context
@@ -226,22 +224,6 @@ def _ends(lo: np.ndarray, hi: np.ndarray) -> tuple[float, float]:
     if np.all(np.isnan(lo)):
         return math.nan, math.nan
     return float(np.nanmin(lo)), float(np.nanmax(hi))
-
-
-def _all_ends(A: dict, rows: np.ndarray, thr_c: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """lumped_profile.eta_sets for many (row, threshold) pairs at once: each pair's earliest and
-    latest crossing over the row's grid (NaN where no curve inside the region crosses)."""
-    s = A["s"]
-    sub = Sums(s.k[rows], A["n"][rows, None], 0.0, 0.0, s.Se[rows], s.See[rows], s.Sye[rows])
-    args: tuple[Any, Any, Any] = (thr_c[:, None], A["D"][rows, None], A["fits"].lam[rows, None])
-    lo, hi = eta_sets(sub, A["a_u"][rows], A["b_u"][rows], A["delta"][rows], *args)
-    empty = np.all(np.isnan(lo), axis=1)
-    with np.errstate(all="ignore"):
-        lo_min, hi_max = (
-            np.nanmin(np.where(empty[:, None], 0.0, lo), axis=1),
-            np.nanmax(np.where(empty[:, None], 0.0, hi), axis=1),
-        )
-    return np.where(empty, np.nan, lo_min), np.where(empty, np.nan, hi_max)
 
 
 _FIT_FIELDS = (
@@ -426,65 +408,13 @@ def _prepare_group(series: list[Series]) -> list[Prepared | Flag]:
     s2 = np.maximum(np.maximum(A["rss_line"] / max(n - 2, 1), noise_sd**2), q**2 / 12.0)
     D = A["D"]
     still = np.abs(A["slope"]) * D < np.maximum(2.0 * np.sqrt(s2 / A["sxx"]) * D, q)
-    flag(_self_check(T, Y, amb, q, np.array([fl is None for fl in flags])), Flag.DOUBT)
+    flag(self_check(T, Y, amb, np.array([fl is None for fl in flags])), Flag.DOUBT)
     rows = _rows(A, series, T, amb, q, still, np.flatnonzero([fl is None for fl in flags]))
     pairs = [(i, th) for i, sr in enumerate(series) if flags[i] is None for th in sr.thresholds]
     if pairs:
         at = np.array([i for i, _ in pairs])
         ths = np.array([th for _, th in pairs], float)
-        lo, hi = _all_ends(A, at, ths - A["ybar"][at])
+        lo, hi = all_ends(A, at, ths - A["ybar"][at])
         for (i, th), a, b in zip(pairs, lo, hi):
             rows[i].bounds[float(th)] = (float(a), float(b))
     return [fl if fl is not None else rows[i] for i, fl in enumerate(flags)]
-
-
-def _self_check(
-    T: np.ndarray, Y: np.ndarray, amb: _Ambient, q: np.ndarray, wanted: np.ndarray
-) -> np.ndarray:
-    """combined_forecast.self_check per row: one exponential fitted to the first half of the
-    readings (weights 0 on the rest) forecast the newest level outside its own interval widened
-    to about 99.9 %.  True: doubt.  Only the ``wanted`` rows (those not flagged already) are
-    checked, on the columns their first halves use."""
-    N, n = T.shape
-    span = T[:, -1] - T[:, 0]
-    m = (T <= (T[:, :1] + CHECK_ORIGIN * span[:, None])).sum(axis=1)
-    half = 0.02 * span
-    recent = T >= (T[:, -1] - 2 * half)[:, None]
-    level = (Y * recent).sum(1) / recent.sum(1)
-    actual = T[:, -1] - half - T[np.arange(N), m - 1]
-    usable = (m >= CHECK_MIN) & (n - m >= 3) & wanted
-    out = np.zeros(N, bool)
-    use = np.flatnonzero(usable)
-    if not use.size:
-        return out
-    T, Y, m = T[use], Y[use], m[use]
-    cols = int(m.max())
-    T, Y = T[:, :cols], Y[:, :cols]
-    W = (np.arange(cols)[None, :] < m[:, None]).astype(float)
-    sub = _Ambient(*(v[use] for v in (amb.value, amb.sd, amb.lo, amb.hi, amb.noise_sd)))
-    A = _analyse(T, Y, W, sub)
-    M = use.size
-    dummy = [Series(T[j], Y[j]) for j in range(M)]
-    lv = level[use]
-    at = np.arange(M)
-    rows = _rows(A, dummy, T, sub, q[use], np.zeros(M, bool), at)
-    lo, hi = _all_ends(A, at, lv - A["ybar"])
-    for j, i in enumerate(use.tolist()):
-        p = rows[j]
-        p.bounds[float(lv[j])] = (float(lo[j]), float(hi[j]))
-        if actual[i] <= 0 or abs(lv[j] - p.fit.value_fit_now) < 1e-12:
-            continue
-        fit = p.crossing(float(lv[j]), None)
-        out[i] = _doubts(fit.eta_s, fit.eta_lo_s, fit.eta_hi_s, float(actual[i]))
-    return out
-
-
-def _doubts(eta: float | None, lo: float | None, hi: float | None, actual: float) -> bool:
-    """combined_forecast.self_check's verdict on the first half's forecast of the newest level."""
-    if eta is None:
-        return lo is None or not math.isfinite(lo) or lo > actual
-    if lo is None or not lo > 0:
-        return hi is not None and actual > hi * math.exp(_widen(eta, hi))
-    lo_w = lo * math.exp(-_widen(lo, eta))
-    hi_w = math.inf if hi is None else hi * math.exp(_widen(eta, hi))
-    return not lo_w <= actual <= hi_w
