@@ -26,6 +26,7 @@ KD_GRID = np.geomspace(KD_MIN, KD_MAX, 56)  # fit_lumped's grid, in units of 1 /
 LOG_STEP = float(np.log(KD_GRID[1] / KD_GRID[0]))
 GOLDEN_TOL = 1e-6  # in ln k: fit_lumped's xatol
 FINE = np.linspace(-4.0, 4.0, 61)  # the interval's fine grid around ln k_hat, in half-widths
+BLOCK_CELLS = 100_000  # rows x k x readings of e^(-k d) at a time (800 kB: in the cache)
 
 
 @dataclass
@@ -42,27 +43,32 @@ class _Sums:
 
 
 def _sums(d: np.ndarray, yc: np.ndarray, W: np.ndarray | None, k: np.ndarray) -> _Sums:
-    """Se, See, Sye for each item's k row: E = e^(-k d) as an (N, K, n) block, Sye one product
-    (``W`` None: every reading weighs 1, no padding)."""
-    E = np.multiply(k[:, :, None], d[:, None, :])
-    np.negative(E, out=E)
-    np.exp(E, out=E)
+    """Se, See, Sye for each item's k row: E = e^(-k d) as (rows, K, n) blocks of about
+    BLOCK_CELLS each (a block stays in the cache; one (N, K, n) block of a chunk was 100 MB,
+    allocated afresh at every call), Sye a batched product (``W`` None: every reading weighs 1,
+    no padding)."""
+    N, K = k.shape
+    n_r = d.shape[1]
+    Se, See, Sye = np.empty((N, K)), np.empty((N, K)), np.empty((N, K))
+    step = max(1, BLOCK_CELLS // max(K * n_r, 1))
+    for a in range(0, N, step):
+        b = min(N, a + step)
+        E = np.multiply(k[a:b, :, None], d[a:b, None, :])
+        np.negative(E, out=E)
+        np.exp(E, out=E)
+        if W is not None:
+            E *= W[a:b, None, :]
+        Se[a:b] = E.sum(axis=2)
+        Sye[a:b] = np.matmul(E, yc[a:b, :, None])[..., 0]
+        E *= E
+        See[a:b] = E.sum(axis=2)
     if W is not None:
-        E *= W[:, None, :]
         n = W.sum(axis=1, keepdims=True)
         Sy, Syy = (W * yc).sum(axis=1, keepdims=True), (W * yc * yc).sum(axis=1, keepdims=True)
     else:
-        n = np.full((d.shape[0], 1), float(d.shape[1]))
+        n = np.full((N, 1), float(n_r))
         Sy, Syy = yc.sum(axis=1, keepdims=True), (yc * yc).sum(axis=1, keepdims=True)
-    return _Sums(
-        k,
-        n,
-        Sy,
-        Syy,
-        E.sum(axis=2),
-        np.einsum("ikn,ikn->ik", E, E),
-        np.einsum("ikn,in->ik", E, yc),
-    )
+    return _Sums(k, n, Sy, Syy, Se, See, Sye)
 
 
 def _grid_sums(d: np.ndarray, D: np.ndarray, yc: np.ndarray, W: np.ndarray | None) -> _Sums:
