@@ -14,8 +14,13 @@ from __future__ import annotations
 from typing import Any
 
 import numpy as np
-from thermeta.predictors.batch_fit import _Ambient, _analyse
-from thermeta.predictors.combined_forecast import CHECK_MIN, CHECK_ORIGIN, CHECK_WIDEN
+from thermeta.predictors.batch_fit import _Ambient, _analyse, _intervals, _take
+from thermeta.predictors.combined_forecast import (
+    CHECK_FLOOR,
+    CHECK_MIN,
+    CHECK_ORIGIN,
+    CHECK_WIDEN,
+)
 from thermeta.predictors.lumped import TREND_REACH
 from thermeta.predictors.lumped_profile import Sums, eta_sets
 
@@ -38,7 +43,9 @@ def all_ends(A: dict, rows: np.ndarray, thr_c: np.ndarray) -> tuple[np.ndarray, 
 
 def self_check(T: np.ndarray, Y: np.ndarray, amb: _Ambient, wanted: np.ndarray) -> np.ndarray:
     """combined_forecast.self_check per row.  True: doubt.  Only the ``wanted`` rows (those not
-    flagged already) are checked, on the columns their first halves use."""
+    flagged already) are checked, on the columns their first halves use; the crossing's
+    interval is computed only for the rows whose first-half ETA misses the newest level's time
+    by more than self_check lets pass without one (half the averaging window, or 5 %)."""
     N, n = T.shape
     span = T[:, -1] - T[:, 0]
     m = (T <= (T[:, :1] + CHECK_ORIGIN * span[:, None])).sum(axis=1)
@@ -50,22 +57,29 @@ def self_check(T: np.ndarray, Y: np.ndarray, amb: _Ambient, wanted: np.ndarray) 
     use = np.flatnonzero((m >= CHECK_MIN) & (n - m >= 3) & wanted)
     if not use.size:
         return out
-    m = m[use]
+    m, lv, actual, half = m[use], level[use], actual[use], half[use]
     cols = int(m.max())
     W = (np.arange(cols)[None, :] < m[:, None]).astype(float)
     sub = _Ambient(*(v[use] for v in (amb.value, amb.sd, amb.lo, amb.hi, amb.noise_sd)))
-    A = _analyse(T[use, :cols], Y[use, :cols], W, sub)
-    lv = level[use]
-    eta, lo, hi, now = _crossing(A, lv, m - 1, np.isnan(sub.value))
+    A = _analyse(T[use, :cols], Y[use, :cols], W, sub, intervals=False)
+    eta, now = _eta(A, lv, m - 1, np.isnan(sub.value))
     with np.errstate(all="ignore"):
-        doubt = _doubts(eta, lo, hi, actual[use])
-    out[use] = doubt & (actual[use] > 0) & (np.abs(lv - now) >= 1e-12)
+        asked = (actual > 0) & (np.abs(lv - now) >= 1e-12)
+        near = ~np.isnan(eta) & (
+            (np.abs(actual - eta) <= half)
+            | ((eta > 0) & (np.abs(np.log(actual / eta)) <= CHECK_FLOOR))
+        )
+        rest = np.flatnonzero(asked & ~near)
+        if not rest.size:
+            return out
+        lo, hi = _interval(_intervals(_take(A, rest)), eta[rest], lv[rest])
+        out[use[rest]] = _doubts(eta[rest], lo, hi, actual[rest])
     return out
 
 
-def _crossing(A: dict, level: np.ndarray, last: np.ndarray, fitted: np.ndarray):
-    """Prepared.crossing of each row's level (no limit), in arrays: the ETA and its interval
-    (NaN for None) and the fit's value now."""
+def _eta(A: dict, level: np.ndarray, last: np.ndarray, fitted: np.ndarray):
+    """Prepared.crossing's ETA of each row's level (no limit), in arrays (NaN for None), and the
+    fit's value now."""
     f = A["fits"]
     rows = np.arange(level.size)
     ybar, k, amp, a, D, w = A["ybar"], f.k, f.b, A["ambient"], A["D"], A["w"]
@@ -86,15 +100,19 @@ def _crossing(A: dict, level: np.ndarray, last: np.ndarray, fitted: np.ndarray):
         bent = fitted & (eta > 0) & (w < 1.0) & ~np.isnan(eta_w)
         eta_t = _shrunk(A["icpt"] + A["slope"] * D, A["slope"], np.zeros_like(k), thr_c)
         trend = fitted & np.isnan(eta) & (w == 0.0) & (eta_t <= TREND_REACH * D)
-        eta = np.where(bent, eta_w, np.where(trend, eta_t, eta))
-        lo, hi = all_ends(A, rows, thr_c)  # NaN: no curve inside the region crosses
-        hi = np.where(np.isinf(hi), np.nan, hi)
-        has = ~np.isnan(eta)
-        lo = np.where(has, np.minimum(lo, eta), lo)  # (NaN stays: an empty region)
-        hi = np.where(has & ~np.isnan(hi), np.maximum(hi, eta), hi)
-        zero = eta == 0.0
-        lo, hi = np.where(zero, 0.0, lo), np.where(zero, 0.0, hi)
-    return eta, lo, hi, now
+        return np.where(bent, eta_w, np.where(trend, eta_t, eta)), now
+
+
+def _interval(A: dict, eta: np.ndarray, level: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Prepared.crossing's interval of the ETA (NaN for None) over each row's grid."""
+    rows = np.arange(level.size)
+    lo, hi = all_ends(A, rows, level - A["ybar"])  # NaN: no curve inside the region crosses
+    hi = np.where(np.isinf(hi), np.nan, hi)
+    has = ~np.isnan(eta)
+    lo = np.where(has, np.minimum(lo, eta), lo)  # (NaN stays: an empty region)
+    hi = np.where(has & ~np.isnan(hi), np.maximum(hi, eta), hi)
+    zero = eta == 0.0
+    return np.where(zero, 0.0, lo), np.where(zero, 0.0, hi)
 
 
 def _shrunk(now, slope, k, thr):

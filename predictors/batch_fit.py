@@ -277,15 +277,21 @@ class _Ambient:
 
 
 def _analyse(
-    T: np.ndarray, Y: np.ndarray, W: np.ndarray, amb: _Ambient, inflate: bool = False
+    T: np.ndarray,
+    Y: np.ndarray,
+    W: np.ndarray,
+    amb: _Ambient,
+    inflate: bool = False,
+    intervals: bool = True,
 ) -> dict:
     """fit_lumped's threshold-free part for every row: the fit, the residuals, the bend weight
-    and the straight line, k's and the ambient's intervals and the grid for the crossing's.
+    and the straight line, k's and the ambient's intervals and the grid for the crossing's
+    (``intervals`` False: not yet; :func:`_intervals` adds them, to some rows only if need be).
     ``inflate``: the intervals' cut margin times n / n_eff where the residuals' lag-one
     correlation is beyond the white-noise band (``combined_forecast.inflation``, what
     ``forecast()`` refits with); ``infl`` and ``lag`` per row in the result."""
     fits, g = _fit(T, Y, W, amb.value, amb.sd, amb.lo, amb.hi, amb.noise_sd)
-    k, a, b, rss, lam, dof = fits.k, fits.a, fits.b, fits.rss, fits.lam, g["dof"]
+    k, a, b, rss, dof = fits.k, fits.a, fits.b, fits.rss, g["dof"]
     d, yc, n = g["d"], g["yc"], g["n"]
     fit_y = (a[:, None] + b[:, None] * np.exp(-k[:, None] * d)) * W
     res = (yc - fit_y) * W
@@ -304,19 +310,7 @@ def _analyse(
     q99 = fdtri(1.0, np.maximum(dof, 1), BEND_CONF)
     w = np.where(F > 0, np.maximum(0.0, 1.0 - q99 / F), 0.0)
     w = np.where((dof < 2) | (rss <= 0) | ~np.isnan(amb.value), 1.0, w)
-    cut = rss * (1.0 + infl * fdtri(1.0, dof, CONF) / dof)
-    s, k_all, r_k, a_u, b_u, delta = _grid(fits, g, cut)
-    k_lo, k_hi = _profile_interval(k_all, r_k, cut, k)
-    fixed = np.isinf(lam)
-    lam_f = np.where(fixed, 0.0, lam)[:, None]
-    m11 = s.See / ((s.n + lam_f) * s.See - s.Se**2)
-    wa = np.sqrt(np.maximum(np.nan_to_num(np.maximum(delta, 0.0) * m11, nan=0.0), 0.0))
-    sel = (delta >= 0) & np.isfinite(wa)
-    sel = np.where(sel.any(axis=1, keepdims=True), sel, k_all == k[:, None])
-    ambient = a + g["ybar"]
-    amb_lo = np.maximum(np.where(sel, a_u - wa, np.inf).min(axis=1), g["lo"]) + g["ybar"]
-    amb_hi = np.minimum(np.where(sel, a_u + wa, -np.inf).max(axis=1), g["hi"]) + g["ybar"]
-    return dict(
+    A = dict(
         g,
         fits=fits,
         fit_y=fit_y,
@@ -329,6 +323,29 @@ def _analyse(
         icpt=icpt,
         rss_line=rss_line,
         sxx=sxx,
+        ambient=a + g["ybar"],
+        cut=rss * (1.0 + infl * fdtri(1.0, dof, CONF) / dof),
+    )
+    return _intervals(A) if intervals else A
+
+
+def _intervals(A: dict) -> dict:
+    """The profile intervals of :func:`_analyse`'s fits: k's and the ambient's, and the grid,
+    sums and margins the crossings' intervals are taken over (``lumped_profile.eta_sets``)."""
+    fits, cut, k, lam = A["fits"], A["cut"], A["fits"].k, A["fits"].lam
+    s, k_all, r_k, a_u, b_u, delta = _grid(fits, A, cut)
+    k_lo, k_hi = _profile_interval(k_all, r_k, cut, k)
+    fixed = np.isinf(lam)
+    lam_f = np.where(fixed, 0.0, lam)[:, None]
+    m11 = s.See / ((s.n + lam_f) * s.See - s.Se**2)
+    wa = np.sqrt(np.maximum(np.nan_to_num(np.maximum(delta, 0.0) * m11, nan=0.0), 0.0))
+    sel = (delta >= 0) & np.isfinite(wa)
+    sel = np.where(sel.any(axis=1, keepdims=True), sel, k_all == k[:, None])
+    ambient, ybar = A["ambient"], A["ybar"]
+    amb_lo = np.maximum(np.where(sel, a_u - wa, np.inf).min(axis=1), A["lo"]) + ybar
+    amb_hi = np.minimum(np.where(sel, a_u + wa, -np.inf).max(axis=1), A["hi"]) + ybar
+    return dict(
+        A,
         s=s,
         k_all=k_all,
         a_u=a_u,
@@ -336,10 +353,22 @@ def _analyse(
         delta=delta,
         k_lo=k_lo,
         k_hi=k_hi,
-        ambient=ambient,
         amb_lo=np.where(fixed, ambient, amb_lo),
         amb_hi=np.where(fixed, ambient, amb_hi),
     )
+
+
+def _take(A: dict, rows: np.ndarray) -> dict:
+    """:func:`_analyse`'s result for some of its rows only."""
+
+    def part(v):
+        if isinstance(v, np.ndarray) and v.ndim >= 1:
+            return v[rows]
+        if isinstance(v, _Fits | _Sums):
+            return type(v)(**{f: part(getattr(v, f)) for f in v.__dataclass_fields__})
+        return v
+
+    return {key: part(v) for key, v in A.items()}
 
 
 def _inflation(res: np.ndarray, W: np.ndarray, n: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
