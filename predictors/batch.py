@@ -11,14 +11,17 @@ per-item way:
    the local-line scatter of ``cleaning.clean`` (a spike or a dropout: flagged), then the fit of
    ``fit_lumped`` by variable projection for all items together: the closed-form sums on ONE
    shared grid of k D (the same 56 points ``fit_lumped`` scans; for item i, k = kD / D_i, so
-   e^(-k d) = e^(-kD u) with u = d / D_i), the sums ``Sye`` as one matrix product, three
-   parabolic steps in ln k from the grid's best point; k's and the ambient's 90 % profile
-   intervals on each item's own fine grid, all items in one product again.  Then the screens,
+   e^(-k d) = e^(-kD u) with u = d / D_i), the sums ``Sye`` as one matrix product,
+   ``fit_lumped``'s bounded Brent search in ln k from the grid's best point, every row at once;
+   k's and the ambient's 90 % profile intervals on each item's own fine grid, widened by
+   n / n_eff where the residuals are correlated from one reading to the next (as ``forecast()``
+   widens them, with its note).  Then the screens,
    each a reason to go the per-item way: too few readings, readings not strictly in time,
    a spike (the Hampel filter's or the robust refit's test), a possible change of surroundings
    (the newest readings off the curve, beyond its noise band), a poor fit (scatter about the
-   curve well above the readings' own local scatter, or residuals correlated from one reading
-   to the next: a second time constant, a door, a drifting room, a sawtooth), a given ambient
+   curve well above the readings' own local scatter, a smooth shape left in the residuals, or
+   their lag-one correlation beyond LAG_CAP: a second time constant, a door, a drifting room, a
+   sawtooth), a given ambient
    the readings contradict, the first half's fit that did not foresee the newest level (the
    self-check), a fit at the grid's edge, readings that do not move.
 2. :meth:`Prepared.forecast` (per threshold and side, scalar): the crossing, the bend kept ahead
