@@ -21,9 +21,9 @@ per-item way:
    (the newest readings off the curve, beyond its noise band), a poor fit (scatter about the
    curve well above the readings' own local scatter, a smooth shape left in the residuals, or
    their lag-one correlation beyond LAG_CAP: a second time constant, a door, a drifting room, a
-   sawtooth), a given ambient
-   the readings contradict, the first half's fit that did not foresee the newest level (the
-   self-check), a fit at the grid's edge, readings that do not move.
+   sawtooth), a given ambient the readings contradict, the first half's fit that did not
+   foresee the newest level (the self-check), a fit at the grid's edge, readings that do not
+   move.
 2. :meth:`Prepared.forecast` (per threshold and side, scalar): the crossing, the bend kept ahead
    (``fit_lumped``'s rule), the crossing's interval (``lumped_profile.eta_sets`` on the item's
    grid), then the same ``fill_lumped`` and notes as the per-item path.
