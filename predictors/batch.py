@@ -11,16 +11,19 @@ per-item way:
    the local-line scatter of ``cleaning.clean`` (a spike or a dropout: flagged), then the fit of
    ``fit_lumped`` by variable projection for all items together: the closed-form sums on ONE
    shared grid of k D (the same 56 points ``fit_lumped`` scans; for item i, k = kD / D_i, so
-   e^(-k d) = e^(-kD u) with u = d / D_i), the sums ``Sye`` as one matrix product, three
-   parabolic steps in ln k from the grid's best point; k's and the ambient's 90 % profile
-   intervals on each item's own fine grid, all items in one product again.  Then the screens,
+   e^(-k d) = e^(-kD u) with u = d / D_i), the sums ``Sye`` as one matrix product,
+   ``fit_lumped``'s bounded Brent search in ln k from the grid's best point, every row at once;
+   k's and the ambient's 90 % profile intervals on each item's own fine grid, widened by
+   n / n_eff where the residuals are correlated from one reading to the next (as ``forecast()``
+   widens them, with its note).  Then the screens,
    each a reason to go the per-item way: too few readings, readings not strictly in time,
    a spike (the Hampel filter's or the robust refit's test), a possible change of surroundings
    (the newest readings off the curve, beyond its noise band), a poor fit (scatter about the
-   curve well above the readings' own local scatter, or residuals correlated from one reading
-   to the next: a second time constant, a door, a drifting room, a sawtooth), a given ambient
-   the readings contradict, the first half's fit that did not foresee the newest level (the
-   self-check), a fit at the grid's edge, readings that do not move.
+   curve well above the readings' own local scatter, a smooth shape left in the residuals, or
+   their lag-one correlation beyond LAG_CAP: a second time constant, a door, a drifting room, a
+   sawtooth), a given ambient the readings contradict, the first half's fit that did not
+   foresee the newest level (the self-check), a fit at the grid's edge, readings that do not
+   move.
 2. :meth:`Prepared.forecast` (per threshold and side, scalar): the crossing, the bend kept ahead
    (``fit_lumped``'s rule), the crossing's interval (``lumped_profile.eta_sets`` on the item's
    grid), then the same ``fill_lumped`` and notes as the per-item path.
@@ -30,9 +33,9 @@ Not here (the caller sends them the per-item way): a measured ambient, the core-
 ``tests/test_batch.py`` holds the two to the same ETA within 1 % and the same outcome.
 
 This module owns the items (:class:`Series`, :class:`Prepared`, :class:`Flag`), the flags that
-send them the per-item way and the self-check; the shared-grid estimator and its intervals are in
-``batch_fit``, the screens on the readings alone (step, local scatter, residual shape) in
-``batch_screen``.
+send them the per-item way; the shared-grid estimator and its intervals are in ``batch_fit``,
+the screens on the readings alone (step, local scatter, residual shape) in ``batch_screen``,
+the self-check and the crossings' intervals for many rows at once in ``batch_check``.
 """
 
 from __future__ import annotations
@@ -43,6 +46,7 @@ from enum import StrEnum
 from typing import Any
 
 import numpy as np
+from thermeta.predictors.batch_check import all_ends, self_check
 from thermeta.predictors.batch_fit import FINE, KD_GRID, _Ambient, _analyse
 from thermeta.predictors.batch_screen import (
     HALF,
@@ -52,10 +56,7 @@ from thermeta.predictors.batch_screen import (
     _shape_left,
 )
 from thermeta.predictors.combined_forecast import (
-    CHECK_MIN,
-    CHECK_ORIGIN,
     RICH_MIN,
-    _widen,
     note_ambient_agreement,
 )
 from thermeta.predictors.context import AmbientMode, Context
@@ -68,6 +69,7 @@ from thermeta.predictors.lumped import (
 )
 from thermeta.predictors.lumped_forecast import fill_lumped
 from thermeta.predictors.lumped_profile import Sums, eta_sets
+from thermeta.predictors.outcome import NoteCode
 from thermeta.predictors.result import Forecast
 from thermeta.predictors.wording import DisplayUnit, showing
 
@@ -78,6 +80,7 @@ GAP_STEPS = 4.0  # cleaning.GAP_STEPS
 POOR_FIT = 1.5  # scatter about the curve / the readings' local scatter beyond which: per item
 BAND_SIGMA = 3.0  # the newest readings' mean residual, in its standard errors
 NEWEST = 5  # readings that make "the newest"
+LAG_CAP = 0.5  # residuals' lag-one correlation beyond which: per item (a door, a sawtooth)
 
 
 class Flag(StrEnum):
@@ -127,6 +130,7 @@ class Prepared:
     w: float  # fit_lumped's bend weight (fitted ambient), 1 otherwise
     line: tuple[float, float]  # the straight line through the centred readings: (slope, icpt)
     still: bool  # lumped_forecast.no_trend: the readings do not move
+    inflate: float = 1.0  # n / n_eff of correlated residuals: the intervals widened by it
     # per threshold (degC): the crossing's interval ends over the grid, computed with the batch
     # (lumped_profile.eta_sets' nanmin of the early ends, nanmax of the late ends; NaN: empty)
     bounds: dict[float, tuple[float, float]] = field(default_factory=dict)
@@ -205,6 +209,13 @@ class Prepared:
             regime_start=float(t[0]),
             lag_factor_j=1.0,
         )
+        if self.inflate > 1.0:  # lumped_forecast's note, before fill_lumped's own
+            fc.note(
+                NoteCode.CORRELATED_SCATTER,
+                f"the readings' scatter is correlated from one reading to the next: they count "
+                f"as about {t.size / self.inflate:.0f} independent ones, and the interval is "
+                "that wide",
+            )
         fill_lumped(fc, fit, ctx.with_readings(t, y, threshold=threshold, limit=limit))
         if fc.eta_s and self.still:
             return Flag.NO_TREND
@@ -216,22 +227,6 @@ def _ends(lo: np.ndarray, hi: np.ndarray) -> tuple[float, float]:
     if np.all(np.isnan(lo)):
         return math.nan, math.nan
     return float(np.nanmin(lo)), float(np.nanmax(hi))
-
-
-def _all_ends(A: dict, rows: np.ndarray, thr_c: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """lumped_profile.eta_sets for many (row, threshold) pairs at once: each pair's earliest and
-    latest crossing over the row's grid (NaN where no curve inside the region crosses)."""
-    s = A["s"]
-    sub = Sums(s.k[rows], A["n"][rows, None], 0.0, 0.0, s.Se[rows], s.See[rows], s.Sye[rows])
-    args: tuple[Any, Any, Any] = (thr_c[:, None], A["D"][rows, None], A["fits"].lam[rows, None])
-    lo, hi = eta_sets(sub, A["a_u"][rows], A["b_u"][rows], A["delta"][rows], *args)
-    empty = np.all(np.isnan(lo), axis=1)
-    with np.errstate(all="ignore"):
-        lo_min, hi_max = (
-            np.nanmin(np.where(empty[:, None], 0.0, lo), axis=1),
-            np.nanmax(np.where(empty[:, None], 0.0, hi), axis=1),
-        )
-    return np.where(empty, np.nan, lo_min), np.where(empty, np.nan, hi_max)
 
 
 _FIT_FIELDS = (
@@ -357,6 +352,7 @@ def _rows(
             float(A["w"][i]),
             (float(A["slope"][i]), float(A["icpt"][i])),
             bool(still[i]),
+            float(A["infl"][i]),
         )
     return out
 
@@ -391,17 +387,17 @@ def _prepare_group(series: list[Series]) -> list[Prepared | Flag]:
     amb_sd = np.array([s.ambient_sd for s in series], float)
     amb_sd = np.where(np.isnan(within), amb_sd, within / math.sqrt(3.0))
     amb = _Ambient(value, amb_sd, value - within, value + within, noise_sd)
-    A = _analyse(T, Y, np.ones_like(T), amb)
+    A = _analyse(T, Y, np.ones_like(T), amb, inflate=True)
     f, res, sigma = A["fits"], A["res"], A["sigma"]
     flag(f.edge, Flag.EDGE)
     # the robust refit's test (lumped_forecast): a reading far off the fitted curve
     med = np.median(res, axis=1, keepdims=True)
     scale = np.maximum(_robust_sd(res), np.maximum(np.maximum(q, noise_sd), 1e-3 * ptp))
     flag((np.abs(res - med) > OUTLIER_SIGMA * scale[:, None]).any(1), Flag.SPIKE)
-    # a poor fit: scatter about the curve well above the readings' own, or correlated residuals
-    rc = res - res.mean(axis=1, keepdims=True)
-    lag = (rc[:, 1:] * rc[:, :-1]).sum(1) / np.maximum((rc * rc).sum(1), 1e-300)
-    flag(lag > 2.0 / math.sqrt(n), Flag.POOR_FIT)
+    # a poor fit: scatter about the curve well above the readings' own, residuals correlated
+    # beyond what scatter alone makes them (correlation below that widens the intervals, as in
+    # forecast()), or a smooth shape left in them
+    flag(A["lag"] > LAG_CAP, Flag.POOR_FIT)
     rms = np.sqrt((res * res).mean(axis=1))
     flag(rms > POOR_FIT * noise_sd, Flag.POOR_FIT)
     flag(_shape_left(res, A["d"] / A["D"][:, None]), Flag.POOR_FIT)
@@ -415,65 +411,13 @@ def _prepare_group(series: list[Series]) -> list[Prepared | Flag]:
     s2 = np.maximum(np.maximum(A["rss_line"] / max(n - 2, 1), noise_sd**2), q**2 / 12.0)
     D = A["D"]
     still = np.abs(A["slope"]) * D < np.maximum(2.0 * np.sqrt(s2 / A["sxx"]) * D, q)
-    flag(_self_check(T, Y, amb, q, np.array([fl is None for fl in flags])), Flag.DOUBT)
+    flag(self_check(T, Y, amb, np.array([fl is None for fl in flags])), Flag.DOUBT)
     rows = _rows(A, series, T, amb, q, still, np.flatnonzero([fl is None for fl in flags]))
     pairs = [(i, th) for i, sr in enumerate(series) if flags[i] is None for th in sr.thresholds]
     if pairs:
         at = np.array([i for i, _ in pairs])
         ths = np.array([th for _, th in pairs], float)
-        lo, hi = _all_ends(A, at, ths - A["ybar"][at])
+        lo, hi = all_ends(A, at, ths - A["ybar"][at])
         for (i, th), a, b in zip(pairs, lo, hi):
             rows[i].bounds[float(th)] = (float(a), float(b))
     return [fl if fl is not None else rows[i] for i, fl in enumerate(flags)]
-
-
-def _self_check(
-    T: np.ndarray, Y: np.ndarray, amb: _Ambient, q: np.ndarray, wanted: np.ndarray
-) -> np.ndarray:
-    """combined_forecast.self_check per row: one exponential fitted to the first half of the
-    readings (weights 0 on the rest) forecast the newest level outside its own interval widened
-    to about 99.9 %.  True: doubt.  Only the ``wanted`` rows (those not flagged already) are
-    checked, on the columns their first halves use."""
-    N, n = T.shape
-    span = T[:, -1] - T[:, 0]
-    m = (T <= (T[:, :1] + CHECK_ORIGIN * span[:, None])).sum(axis=1)
-    half = 0.02 * span
-    recent = T >= (T[:, -1] - 2 * half)[:, None]
-    level = (Y * recent).sum(1) / recent.sum(1)
-    actual = T[:, -1] - half - T[np.arange(N), m - 1]
-    usable = (m >= CHECK_MIN) & (n - m >= 3) & wanted
-    out = np.zeros(N, bool)
-    use = np.flatnonzero(usable)
-    if not use.size:
-        return out
-    T, Y, m = T[use], Y[use], m[use]
-    cols = int(m.max())
-    T, Y = T[:, :cols], Y[:, :cols]
-    W = (np.arange(cols)[None, :] < m[:, None]).astype(float)
-    sub = _Ambient(*(v[use] for v in (amb.value, amb.sd, amb.lo, amb.hi, amb.noise_sd)))
-    A = _analyse(T, Y, W, sub)
-    M = use.size
-    dummy = [Series(T[j], Y[j]) for j in range(M)]
-    lv = level[use]
-    at = np.arange(M)
-    rows = _rows(A, dummy, T, sub, q[use], np.zeros(M, bool), at)
-    lo, hi = _all_ends(A, at, lv - A["ybar"])
-    for j, i in enumerate(use.tolist()):
-        p = rows[j]
-        p.bounds[float(lv[j])] = (float(lo[j]), float(hi[j]))
-        if actual[i] <= 0 or abs(lv[j] - p.fit.value_fit_now) < 1e-12:
-            continue
-        fit = p.crossing(float(lv[j]), None)
-        out[i] = _doubts(fit.eta_s, fit.eta_lo_s, fit.eta_hi_s, float(actual[i]))
-    return out
-
-
-def _doubts(eta: float | None, lo: float | None, hi: float | None, actual: float) -> bool:
-    """combined_forecast.self_check's verdict on the first half's forecast of the newest level."""
-    if eta is None:
-        return lo is None or not math.isfinite(lo) or lo > actual
-    if lo is None or not lo > 0:
-        return hi is not None and actual > hi * math.exp(_widen(eta, hi))
-    lo_w = lo * math.exp(-_widen(lo, eta))
-    hi_w = math.inf if hi is None else hi * math.exp(_widen(eta, hi))
-    return not lo_w <= actual <= hi_w

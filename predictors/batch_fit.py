@@ -19,12 +19,14 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy.special import fdtri
+from thermeta.predictors.combined_forecast import RICH_MIN
 from thermeta.predictors.lumped import BEND_CONF, CONF, KD_MAX, KD_MIN
 
 KD_GRID = np.geomspace(KD_MIN, KD_MAX, 56)  # fit_lumped's grid, in units of 1 / span
 LOG_STEP = float(np.log(KD_GRID[1] / KD_GRID[0]))
 GOLDEN_TOL = 1e-6  # in ln k: fit_lumped's xatol
 FINE = np.linspace(-4.0, 4.0, 61)  # the interval's fine grid around ln k_hat, in half-widths
+BLOCK_CELLS = 100_000  # rows x k x readings of e^(-k d) at a time (800 kB: in the cache)
 
 
 @dataclass
@@ -41,27 +43,32 @@ class _Sums:
 
 
 def _sums(d: np.ndarray, yc: np.ndarray, W: np.ndarray | None, k: np.ndarray) -> _Sums:
-    """Se, See, Sye for each item's k row: E = e^(-k d) as an (N, K, n) block, Sye one product
-    (``W`` None: every reading weighs 1, no padding)."""
-    E = np.multiply(k[:, :, None], d[:, None, :])
-    np.negative(E, out=E)
-    np.exp(E, out=E)
+    """Se, See, Sye for each item's k row: E = e^(-k d) as (rows, K, n) blocks of about
+    BLOCK_CELLS each (a block stays in the cache; one (N, K, n) block of a chunk was 100 MB,
+    allocated afresh at every call), Sye a batched product (``W`` None: every reading weighs 1,
+    no padding)."""
+    N, K = k.shape
+    n_r = d.shape[1]
+    Se, See, Sye = np.empty((N, K)), np.empty((N, K)), np.empty((N, K))
+    step = max(1, BLOCK_CELLS // max(K * n_r, 1))
+    for a in range(0, N, step):
+        b = min(N, a + step)
+        E = np.multiply(k[a:b, :, None], d[a:b, None, :])
+        np.negative(E, out=E)
+        np.exp(E, out=E)
+        if W is not None:
+            E *= W[a:b, None, :]
+        Se[a:b] = E.sum(axis=2)
+        Sye[a:b] = np.matmul(E, yc[a:b, :, None])[..., 0]
+        E *= E
+        See[a:b] = E.sum(axis=2)
     if W is not None:
-        E *= W[:, None, :]
         n = W.sum(axis=1, keepdims=True)
         Sy, Syy = (W * yc).sum(axis=1, keepdims=True), (W * yc * yc).sum(axis=1, keepdims=True)
     else:
-        n = np.full((d.shape[0], 1), float(d.shape[1]))
+        n = np.full((N, 1), float(n_r))
         Sy, Syy = yc.sum(axis=1, keepdims=True), (yc * yc).sum(axis=1, keepdims=True)
-    return _Sums(
-        k,
-        n,
-        Sy,
-        Syy,
-        E.sum(axis=2),
-        np.einsum("ikn,ikn->ik", E, E),
-        np.einsum("ikn,in->ik", E, yc),
-    )
+    return _Sums(k, n, Sy, Syy, Se, See, Sye)
 
 
 def _grid_sums(d: np.ndarray, D: np.ndarray, yc: np.ndarray, W: np.ndarray | None) -> _Sums:
@@ -269,13 +276,28 @@ class _Ambient:
     noise_sd: np.ndarray
 
 
-def _analyse(T: np.ndarray, Y: np.ndarray, W: np.ndarray, amb: _Ambient) -> dict:
+def _analyse(
+    T: np.ndarray,
+    Y: np.ndarray,
+    W: np.ndarray,
+    amb: _Ambient,
+    inflate: bool = False,
+    intervals: bool = True,
+) -> dict:
     """fit_lumped's threshold-free part for every row: the fit, the residuals, the bend weight
-    and the straight line, k's and the ambient's intervals and the grid for the crossing's."""
+    and the straight line, k's and the ambient's intervals and the grid for the crossing's
+    (``intervals`` False: not yet; :func:`_intervals` adds them, to some rows only if need be).
+    ``inflate``: the intervals' cut margin times n / n_eff where the residuals' lag-one
+    correlation is beyond the white-noise band (``combined_forecast.inflation``, what
+    ``forecast()`` refits with); ``infl`` and ``lag`` per row in the result."""
     fits, g = _fit(T, Y, W, amb.value, amb.sd, amb.lo, amb.hi, amb.noise_sd)
-    k, a, b, rss, lam, dof = fits.k, fits.a, fits.b, fits.rss, fits.lam, g["dof"]
+    k, a, b, rss, dof = fits.k, fits.a, fits.b, fits.rss, g["dof"]
     d, yc, n = g["d"], g["yc"], g["n"]
     fit_y = (a[:, None] + b[:, None] * np.exp(-k[:, None] * d)) * W
+    res = (yc - fit_y) * W
+    lag, infl = _inflation(res, W, n)
+    if not inflate:
+        infl = np.ones_like(infl)
     # the bend weight (lumped.bend_weight) against the straight line through the readings
     dbar = (W * d).sum(axis=1) / n
     dm = (d - dbar[:, None]) * W
@@ -288,8 +310,30 @@ def _analyse(T: np.ndarray, Y: np.ndarray, W: np.ndarray, amb: _Ambient) -> dict
     q99 = fdtri(1.0, np.maximum(dof, 1), BEND_CONF)
     w = np.where(F > 0, np.maximum(0.0, 1.0 - q99 / F), 0.0)
     w = np.where((dof < 2) | (rss <= 0) | ~np.isnan(amb.value), 1.0, w)
-    cut = rss * (1.0 + fdtri(1.0, dof, CONF) / dof)
-    s, k_all, r_k, a_u, b_u, delta = _grid(fits, g, cut)
+    A = dict(
+        g,
+        fits=fits,
+        fit_y=fit_y,
+        res=res,
+        lag=lag,
+        infl=infl,
+        sigma=np.sqrt(rss / dof),
+        w=w,
+        slope=slope,
+        icpt=icpt,
+        rss_line=rss_line,
+        sxx=sxx,
+        ambient=a + g["ybar"],
+        cut=rss * (1.0 + infl * fdtri(1.0, dof, CONF) / dof),
+    )
+    return _intervals(A) if intervals else A
+
+
+def _intervals(A: dict) -> dict:
+    """The profile intervals of :func:`_analyse`'s fits: k's and the ambient's, and the grid,
+    sums and margins the crossings' intervals are taken over (``lumped_profile.eta_sets``)."""
+    fits, cut, k, lam = A["fits"], A["cut"], A["fits"].k, A["fits"].lam
+    s, k_all, r_k, a_u, b_u, delta = _grid(fits, A, cut)
     k_lo, k_hi = _profile_interval(k_all, r_k, cut, k)
     fixed = np.isinf(lam)
     lam_f = np.where(fixed, 0.0, lam)[:, None]
@@ -297,20 +341,11 @@ def _analyse(T: np.ndarray, Y: np.ndarray, W: np.ndarray, amb: _Ambient) -> dict
     wa = np.sqrt(np.maximum(np.nan_to_num(np.maximum(delta, 0.0) * m11, nan=0.0), 0.0))
     sel = (delta >= 0) & np.isfinite(wa)
     sel = np.where(sel.any(axis=1, keepdims=True), sel, k_all == k[:, None])
-    ambient = a + g["ybar"]
-    amb_lo = np.maximum(np.where(sel, a_u - wa, np.inf).min(axis=1), g["lo"]) + g["ybar"]
-    amb_hi = np.minimum(np.where(sel, a_u + wa, -np.inf).max(axis=1), g["hi"]) + g["ybar"]
+    ambient, ybar = A["ambient"], A["ybar"]
+    amb_lo = np.maximum(np.where(sel, a_u - wa, np.inf).min(axis=1), A["lo"]) + ybar
+    amb_hi = np.minimum(np.where(sel, a_u + wa, -np.inf).max(axis=1), A["hi"]) + ybar
     return dict(
-        g,
-        fits=fits,
-        fit_y=fit_y,
-        res=(yc - fit_y) * W,
-        sigma=np.sqrt(rss / dof),
-        w=w,
-        slope=slope,
-        icpt=icpt,
-        rss_line=rss_line,
-        sxx=sxx,
+        A,
         s=s,
         k_all=k_all,
         a_u=a_u,
@@ -318,10 +353,33 @@ def _analyse(T: np.ndarray, Y: np.ndarray, W: np.ndarray, amb: _Ambient) -> dict
         delta=delta,
         k_lo=k_lo,
         k_hi=k_hi,
-        ambient=ambient,
         amb_lo=np.where(fixed, ambient, amb_lo),
         amb_hi=np.where(fixed, ambient, amb_hi),
     )
+
+
+def _take(A: dict, rows: np.ndarray) -> dict:
+    """:func:`_analyse`'s result for some of its rows only."""
+
+    def part(v):
+        if isinstance(v, np.ndarray) and v.ndim >= 1:
+            return v[rows]
+        if isinstance(v, _Fits | _Sums):
+            return type(v)(**{f: part(getattr(v, f)) for f in v.__dataclass_fields__})
+        return v
+
+    return {key: part(v) for key, v in A.items()}
+
+
+def _inflation(res: np.ndarray, W: np.ndarray, n: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Each row's lag-one correlation of its residuals and n / n_eff = (1 + rho) / (1 - rho)
+    where it is beyond the white-noise band 2 / sqrt(n) (rho at most 0.98), 1 otherwise
+    (``combined_forecast.inflation`` per row; padded readings left out)."""
+    rc = (res - ((W * res).sum(axis=1) / n)[:, None]) * W
+    lag = (rc[:, 1:] * rc[:, :-1]).sum(1) / np.maximum((rc * rc).sum(1), 1e-300)
+    rho = np.clip(lag, 0.0, 0.98)
+    clear = (n >= RICH_MIN) & (lag > 2.0 / np.sqrt(n))
+    return lag, np.where(clear, (1.0 + rho) / (1.0 - rho), 1.0)
 
 
 def _grid(fits: _Fits, g: dict, cut: np.ndarray):

@@ -31,18 +31,22 @@ def _quantum(Y: np.ndarray) -> np.ndarray:
 
 
 def _local_residuals(T: np.ndarray, Y: np.ndarray) -> np.ndarray:
-    """cleaning.local_line_residuals per row (readings of one length >= 11)."""
+    """cleaning.local_line_residuals per row (readings of one length >= 11).  The medians are
+    the middle of each window by ``np.partition``; those of the times are read off directly, as
+    the times of a row are in order (a row that is not is flagged before this counts)."""
     n = T.shape[1]
     w = 2 * HALF + 1
     idx = np.clip(np.arange(n) - w // 2, 0, n - w)
     tw = sliding_window_view(T, w, axis=1)[:, idx]  # (N, n, w)
     yw = sliding_window_view(Y, w, axis=1)[:, idx]
     h = w // 2
-    lt, rt = np.median(tw[..., :h], axis=2), np.median(tw[..., -h:], axis=2)
-    ly, ry = np.median(yw[..., :h], axis=2), np.median(yw[..., -h:], axis=2)
+    mid = [(h - 1) // 2, h // 2]  # the middle one or two of h
+    lt, rt = tw[..., mid].mean(axis=2), tw[..., [w - h + m for m in mid]].mean(axis=2)
+    ly = np.partition(yw[..., :h], mid, axis=2)[..., mid].mean(axis=2)
+    ry = np.partition(yw[..., -h:], mid, axis=2)[..., mid].mean(axis=2)
     dt = rt - lt
     slope = np.where(dt > 0, (ry - ly) / np.where(dt > 0, dt, 1.0), 0.0)
-    level = np.median(yw - slope[..., None] * (tw - T[..., None]), axis=2)
+    level = np.partition(yw - slope[..., None] * (tw - T[..., None]), w // 2, axis=2)[..., w // 2]
     return Y - level
 
 

@@ -285,39 +285,89 @@ def _agree(batch: dict, item: dict) -> None:
         print(f"bench_refit: {off} items differ between the ways", file=sys.stderr)
 
 
-def estimator(family: str, n_items: int, seed: int, sample: int = 300) -> dict:
-    """The estimator alone, no store: ``predictors.batch`` over ``n_items`` windows in chunks of
-    the refitter's size (prepare and one forecast each), against ``forecast()`` per item on the
-    first ``sample`` of them (the per-item way's cost per item does not depend on N)."""
+def _windows(family: str, n_items: int, seed: int) -> list:
+    """The estimator's windows: the history as a round sees it (the spare half hour cut)."""
+    out = []
+    for i in range(n_items):
+        t, y, _, _ = _series(family, i, seed)
+        out.append((t[:-30], y[:-30]))
+    return out
+
+
+def _old_batch(rev: str, folder: Path):
+    """``predictors/batch*.py`` as they were at ``rev`` (git), loaded beside these as a package
+    of their own (their imports of each other rewritten), for a same-run comparison."""
+    import importlib
+    import subprocess
+
+    root = Path(__file__).resolve().parent.parent
+    names = subprocess.run(
+        ["git", "-C", str(root), "ls-tree", "--name-only", rev, "predictors/"],
+        capture_output=True, text=True, check=True,
+    ).stdout.split()  # fmt: skip
+    pkg = folder / "batch_then"
+    pkg.mkdir()
+    (pkg / "__init__.py").write_text("")
+    for path in names:
+        name = Path(path).name
+        if not (name.startswith("batch") and name.endswith(".py")):
+            continue
+        text = subprocess.run(
+            ["git", "-C", str(root), "show", f"{rev}:{path}"],
+            capture_output=True, text=True, check=True,
+        ).stdout  # fmt: skip
+        text = text.replace("thermeta.predictors.batch", "batch_then.batch")
+        (pkg / name).write_text(text)
+    sys.path.insert(0, str(folder))
+    return importlib.import_module("batch_then.batch")
+
+
+def _batch_cpu(mod, windows: list, ambient: float | None) -> tuple[float, int]:
+    """CPU seconds of ``mod.prepare`` and one forecast each over the windows, in the refitter's
+    chunks, and how many it flagged."""
     from thermeta.daemon.refit.batched import CHUNK
-    from thermeta.predictors import forecast
-    from thermeta.predictors.batch import Flag, Series, prepare
+
+    cpu, flagged = 0.0, 0
+    for at in range(0, len(windows), CHUNK):
+        part = windows[at : at + CHUNK]
+        series = [mod.Series(t, y, ambient=ambient, thresholds=(8.0,)) for t, y in part]
+        c0 = time.process_time()
+        for p in mod.prepare(series):
+            out = p if isinstance(p, mod.Flag) else p.forecast(8.0, "upper")
+            flagged += isinstance(out, mod.Flag)
+        cpu += time.process_time() - c0
+    return cpu, flagged
+
+
+def estimator(family: str, n_items: int, seed: int, sample: int = 300, then=None) -> dict:
+    """The estimator alone, no store: ``predictors.batch`` over ``n_items`` windows in chunks of
+    the refitter's size (prepare and one forecast each; CPU time, median of 3 where ``then``, an
+    earlier revision's module, is timed beside it in turns), against ``forecast()`` per item on
+    the first ``sample`` of them (the per-item way's cost per item does not depend on N)."""
+    from thermeta.predictors import batch, forecast
 
     ambient = 25.0 if family == "known" else None
-    batch_s, flagged, done = 0.0, 0, 0
-    for at in range(0, n_items, CHUNK):
-        series = []
-        for i in range(at, min(n_items, at + CHUNK)):
-            t, y, _, _ = _series(family, i, seed)
-            t, y = t[:-30], y[:-30]  # the history, as a round sees it (the spare half hour cut)
-            series.append(Series(t, y, ambient=ambient, thresholds=(8.0,)))
-        t0 = time.perf_counter()
-        for p in prepare(series):
-            out = p if isinstance(p, Flag) else p.forecast(8.0, "upper")
-            flagged += isinstance(out, Flag)
-        batch_s += time.perf_counter() - t0
-        done += len(series)
-    t0 = time.perf_counter()
-    for i in range(min(sample, n_items)):
-        t, y, _, _ = _series(family, i, seed)
-        forecast(t[:-30], y[:-30], 8.0, ambient=ambient, limit="upper")
-    item_ms = 1000 * (time.perf_counter() - t0) / min(sample, n_items)
-    return {
-        "batch_us": 1e6 * batch_s / done,
+    windows = _windows(family, n_items, seed)
+    now, old = [], []
+    for _ in range(3 if then is not None else 1):
+        now.append(_batch_cpu(batch, windows, ambient))
+        if then is not None:
+            old.append(_batch_cpu(then, windows, ambient))
+    batch_s, flagged = statistics.median(c for c, _ in now), now[0][1]
+    c0 = time.process_time()
+    for t, y in windows[: min(sample, n_items)]:
+        forecast(t, y, 8.0, ambient=ambient, limit="upper")
+    item_ms = 1000 * (time.process_time() - c0) / min(sample, n_items)
+    out = {
+        "batch_us": 1e6 * batch_s / n_items,
         "item_ms": item_ms,
-        "flagged": flagged / done,
+        "flagged": flagged / n_items,
         "batch_s": batch_s,
     }
+    if then is not None:
+        out["then_us"] = 1e6 * statistics.median(c for c, _ in old) / n_items
+        out["then_flagged"] = old[0][1] / n_items
+    return out
 
 
 DESCRIBE = {
@@ -346,6 +396,12 @@ def main(argv: list[str] | None = None) -> int:
     )
     ap.add_argument(
         "--families", default=",".join(DESCRIBE), help="comma list of: " + ", ".join(DESCRIBE)
+    )
+    ap.add_argument(
+        "--against",
+        metavar="REV",
+        help="with --estimator: also time predictors/batch*.py as they were at this git "
+        "revision, in turns with these (CPU time, medians of 3)",
     )
     args = ap.parse_args(argv)
     try:
@@ -437,28 +493,40 @@ def _estimator_table(args: argparse.Namespace, families: list[str]) -> int:
     except ValueError:
         print("bench_refit: --estimator must be a comma list of whole numbers", file=sys.stderr)
         return 2
+    against = f" --against {args.against}" if args.against else ""
     print(
         f"Measured by `python scripts/bench_refit.py --estimator {args.estimator} --families "
-        f"{','.join(families)}`: the estimator alone on the windows (2 h of one-minute "
-        "readings), in chunks of the refitter's size; the per-item forecast() timed on 300 of "
-        "them.  Flagged items would go one by one: their time is not in the batch column.\n"
+        f"{','.join(families)}{against}`: the estimator alone on the windows (2 h of one-minute "
+        "readings), in chunks of the refitter's size, CPU time"
+        + (f" (medians of 3, {args.against}'s predictors/batch*.py in turns)" if against else "")
+        + "; the per-item forecast() timed on 300 of them.  Flagged items would go one by one: "
+        f"their time is not in the batch column.  Load average {os.getloadavg()[0]:.1f} at the "
+        "start.\n"
     )
-    print(
-        "| family | items | batch, µs per item | batch, whole run | flagged | forecast(), ms "
-        "per item | ratio |"
-    )
-    print("|---|---|---|---|---|---|---|")
-    for fam in families:
-        if fam not in ("known", "fitted"):
-            continue
-        for n in sizes:
-            r = estimator(fam, n, args.seed)
-            print(
-                f"| {DESCRIBE[fam]} | {n} | {r['batch_us']:.0f} | {r['batch_s']:.1f} s | "
-                f"{100 * r['flagged']:.0f} % | {r['item_ms']:.2f} | "
-                f"{1000 * r['item_ms'] / r['batch_us']:.0f} x |",
-                flush=True,
-            )
+    cols = "| family | items | batch, µs per item | batch, whole run | flagged |"
+    if against:
+        cols += f" {args.against}, µs per item | {args.against}, flagged | then / now |"
+    print(cols + " forecast(), ms per item | ratio |")
+    print("|---" * (cols.count("|") + 1) + "|")
+    with tempfile.TemporaryDirectory(prefix="thermeta-bench-then-") as d:
+        then = _old_batch(args.against, Path(d)) if args.against else None
+        for fam in families:
+            if fam not in ("known", "fitted"):
+                continue
+            for n in sizes:
+                r = estimator(fam, n, args.seed, then=then)
+                extra = ""
+                if then is not None:
+                    extra = (
+                        f" {r['then_us']:.0f} | {100 * r['then_flagged']:.1f} % | "
+                        f"{r['then_us'] / r['batch_us']:.2f} x |"
+                    )
+                print(
+                    f"| {DESCRIBE[fam]} | {n} | {r['batch_us']:.0f} | {r['batch_s']:.1f} s | "
+                    f"{100 * r['flagged']:.1f} % |{extra} {r['item_ms']:.2f} | "
+                    f"{1000 * r['item_ms'] / r['batch_us']:.0f} x |",
+                    flush=True,
+                )
     peak_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     print(f"\npeak RSS {peak_mb:.0f} MB.")
     return 0

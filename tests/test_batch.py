@@ -180,3 +180,35 @@ def test_a_round_through_the_batch_publishes_what_the_per_item_round_does(tmp_pa
             assert same(d1.get("eta_s"), d0.get("eta_s")), name
     assert counts["batch"] >= 10 and counts["item"] >= 1
     store.close()
+
+
+def test_correlated_scatter_is_widened_as_forecast_widens_it():
+    """Scatter correlated from one reading to the next (AR(1), lag-one 0.3-0.45: a logger that
+    smooths) about one exponential: ``forecast()`` fits one exponential and widens its interval
+    by n / n_eff with a note; the batch keeps such items (it does not send them the per-item way
+    for the correlation alone) and gives the same ETA, interval and notes."""
+    clean = Corruption(noise=0.0)
+    series, widened = [], 0
+    for i in range(40):
+        t, y = warming(i, noise=clean)
+        rng = np.random.default_rng([11, i])
+        rho = rng.uniform(0.3, 0.45)
+        e = np.zeros(t.size)
+        for j in range(1, t.size):
+            e[j] = rho * e[j - 1] + rng.normal(0.0, 0.04)
+        series.append(Series(t, np.round(y + e, 2), ambient=None, thresholds=(8.0,)))
+    kept = 0
+    for s, p in zip(series, prepare(series)):
+        ref = forecast(s.t, s.y, 8.0, limit="upper")
+        codes = [n.code for n in ref.notes]
+        got = p if isinstance(p, Flag) else p.forecast(8.0, "upper")
+        one = ref.model_weights == {"lumped": 1.0} and ref.interval_method == "profile likelihood"
+        if isinstance(got, Flag):
+            continue
+        assert one
+        kept += 1
+        widened += "correlated_scatter" in codes
+        assert [n.code for n in got.notes] == codes
+        for key in ("eta_s", "eta_lo_s", "eta_hi_s"):
+            assert same(getattr(got, key), getattr(ref, key)), key
+    assert kept >= 20 and widened >= 10  # most are kept, and most of those were widened

@@ -10,7 +10,9 @@ went where, for the service's figures.
 
 With worker processes (``[fit] workers``, ``workers.py``) the round tells :meth:`Batch.load`
 the chunks that follow: they are read and handed to the workers ahead, so the workers fit the
-next chunks while the service's process judges, stores and publishes this one.
+next chunks while the service's process judges, stores and publishes this one; and where the
+worker's chunk is not ready when the round needs it, the service's process fits one chunk
+further ahead itself meanwhile (``chunks_here`` counts them) rather than wait.
 """
 
 from __future__ import annotations
@@ -18,13 +20,14 @@ from __future__ import annotations
 import logging
 from collections import Counter
 from collections.abc import Sequence
+from concurrent.futures import Future
 from typing import Any
 
 import numpy as np
 from thermeta.daemon.config import ItemConfig
 from thermeta.daemon.levels.spec import auto_side, levels_of
 from thermeta.daemon.refit.common import forecast_kwargs
-from thermeta.daemon.refit.workers import FitPool
+from thermeta.daemon.refit.workers import FitPool, fit_chunk
 from thermeta.daemon.units import from_celsius, scale_to_celsius
 from thermeta.predictors.batch import Flag, Prepared, Series, prepare_safely
 from thermeta.predictors.prior import Prior
@@ -66,7 +69,9 @@ class Batch:
         self.pool = FitPool(workers, timeout_s) if workers > 0 else None
         self.queued: list[_Job] = []  # chunks handed to the workers ahead, in order
         self.made: dict[int, list[tuple[dict[str, Any], Forecast]]] = {}  # flagged, by a worker
-        self.workers = workers
+        # the chunks the round tells load() of ahead (rounds.py reads it): one for each worker
+        # and one more, which this process fits itself while it would wait on a worker
+        self.workers = workers + 1 if workers > 0 else 0
 
     def load(self, wanted: Wanted, ahead: Sequence[Wanted] = ()) -> None:
         """Read and fit the chunk's items: (item_id, config, since) each.  ``ahead``: the
@@ -87,6 +92,13 @@ class Batch:
         for w in ahead[: self.pool.workers]:
             if tuple(iid for iid, _, _ in w) not in keys:
                 self.queued.append(self._handed(w))
+        for w in ahead[self.pool.workers :]:
+            # rather than wait on the worker, fit a chunk further ahead here
+            if job.future is None or job.future.done():
+                break
+            if tuple(iid for iid, _, _ in w) not in keys:
+                self.queued.append(self._fitted_here(w))
+                self.counts["chunks_here"] += 1
         self.windows = job.windows
         got = self.pool.result(job.future, job.generation, job.series, job.asks)
         if got is None:
@@ -100,6 +112,18 @@ class Batch:
         assert self.pool is not None
         job = self._read(wanted, ask=True)
         job.future, job.generation = self.pool.submit(job.series, job.asks)
+        return job
+
+    def _fitted_here(self, wanted: Wanted) -> _Job:
+        """A chunk ahead read and fitted in this process, as a worker fits it (``fit_chunk``:
+        the flagged items' per-item forecasts made too), its result held as a done future."""
+        assert self.pool is not None
+        job = self._read(wanted, ask=True)
+        job.future, job.generation = Future(), self.pool.generation
+        try:
+            job.future.set_result(fit_chunk(job.series, job.asks, self.pool.most))
+        except Exception as exc:  # noqa: BLE001 - its items go the per-item way (FitPool.result)
+            job.future.set_exception(exc)
         return job
 
     def _keep(self, job: _Job, got: list[Prepared | Flag]) -> None:
