@@ -450,17 +450,8 @@ def _interval(eta, etas, weights, ests, points) -> tuple[float | None, float | N
         return (min(finite) if finite else math.inf), None
     if eta == 0.0:
         return 0.0, 0.0
-    errs, horizons = [], []
-    names = list(ests)
-    for j, p in enumerate(points):
-        logs, ws = [], []
-        for m in names:
-            e = ests[m][j]
-            logs.append(math.log(e) if e is not None and e > 0 else 50.0)
-            ws.append(weights[m])
-        err = _wmedian(logs, ws) - math.log(p.actual)
-        errs.append(min(max(err, -MISS), MISS))
-        horizons.append(p.actual)
+    errs = _combined_errors(ests, weights, points)
+    horizons = [p.actual for p in points]
     rms = math.sqrt(float(np.mean(np.square(errs))) + FLOOR**2) if errs else 1.0
     # the rms of a handful of backtest errors is itself uncertain: Student's t, not the normal
     q = float(t_ppf(0.95, len(errs) - 1)) if len(errs) > 1 else 2 * Z90
